@@ -1,0 +1,347 @@
+"""The job configuration (TOML), validated into frozen dataclasses.
+
+Relative paths in a configuration are relative to the configuration file's folder.
+Unknown keys and wrong types are errors naming the file, the table and the key.
+
+Example::
+
+    [response]                       # the OVERALL (two-pass) response
+    kind = "bandpass"
+    family = "auto"
+    passband_hz = [0.5, 30.0]
+    stopband_hz = [0.1, 45.0]
+    passband_ripple_db = 1.0
+    stopband_attenuation_db = 60.0
+
+    [processing]
+    tolerance = 1e-9
+    edge = "odd"
+    edge_samples = "auto"
+
+    [archive]
+    root = "archive"
+    include = ["**/*.wav"]
+
+    [output]
+    store = "filtered.zarr"
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping, get_args, get_origin, get_type_hints
+
+from .core.types import EDGE_MODES, FAMILIES, KINDS, ResponseSpec
+from .errors import ConfigError
+
+
+@dataclass(frozen=True)
+class ProcessingConfig:
+    """How blocks are filtered."""
+
+    tolerance: float = 1e-9
+    """Largest |blockwise - whole segment| / max |input of the segment|; sets the halo."""
+    edge: str = "odd"
+    """End extension at segment ends: odd | even | constant | none."""
+    edge_samples: int | str = "auto"
+    """Length of the end extension in samples, or "auto" (the effective length, capped)."""
+    block_seconds: float | None = None
+    """Core length of a block in seconds; None = automatic (about 20 halos, at least 65536 samples)."""
+    memory_budget_mib: float = 256.0
+    """Upper bound on one block's working memory (window + output, float64), MiB."""
+    mode: str = "auto"
+    """halo | carry | auto: carry filter states instead of halos when the halo exceeds
+    ``carry_threshold`` times the block length (IIR only)."""
+    carry_threshold: float = 1.0
+    nonfinite: str = "fail"
+    """Policy for NaN/Inf runs in float input: fail | split | interpolate."""
+    max_fill_samples: int = 0
+    """Longest NaN/Inf run filled by linear interpolation when ``nonfinite = "interpolate"``."""
+
+
+@dataclass(frozen=True)
+class ArchiveConfig:
+    """Where the input recordings are and how they group into streams."""
+
+    root: str = "archive"
+    include: tuple[str, ...] = ("**/*.wav", "**/*.npy", "**/*.raw", "**/*.bin", "**/*.dat")
+    exclude: tuple[str, ...] = ()
+    name_pattern: str | None = None
+    """Pattern matched against the relative path without suffix, e.g.
+    ``"{stream}/{stream}_{start:%Y%m%dT%H%M%S}"``."""
+    manifest: str | None = None
+    """CSV with columns path, stream, start_time (ISO 8601)."""
+    sample_rate_hz: float | None = None
+    """Sample rate for formats that do not store one (NPY)."""
+    fingerprint: str = "fast"
+    """fast (size + first and last MiB) | full (every byte)."""
+    truncated: str = "error"
+    """WAV data chunk shorter than its header claims: error | warn (read whole frames)."""
+
+
+@dataclass(frozen=True)
+class OutputConfig:
+    """The Zarr output store."""
+
+    store: str = "filtered.zarr"
+    """Local path (relative to the config file) or an fsspec URL."""
+    dtype: str = "float32"
+    """float32 | float64."""
+    compression: str = "lz4"
+    """none | lz4 | zstd (Blosc, with byte shuffle)."""
+    chunk_seconds: float | None = None
+    """Output chunk length in seconds; None = one chunk per block."""
+
+
+@dataclass(frozen=True)
+class EngineConfig:
+    """Parallel execution of blocks on Dask."""
+
+    scheduler: str = "threads"
+    """threads | processes | a distributed scheduler address (tcp://host:port)."""
+    workers: int = 2
+    retries: int = 2
+    """Extra attempts for a failing block."""
+    retry_backoff_seconds: float = 0.5
+    """First retry delay; doubles on each further attempt."""
+
+
+@dataclass(frozen=True)
+class ChecksConfig:
+    """Per-block checks and their thresholds."""
+
+    every: int = 1
+    """Run the response checks on every Nth block (1 = all, 0 = off). Integrity and seam
+    checks always run."""
+    seam_samples: int = 8
+    """Samples computed beyond each block edge and compared with the neighbour."""
+    passband_warn_db: float = 0.5
+    """Passband deviation beyond the designed ripple (plus estimator error) that warns."""
+    passband_fail_db: float = 3.0
+    phase_warn_deg: float = 5.0
+    phase_fail_deg: float = 20.0
+    stopband_margin_db: float = 10.0
+    """How far the measured stopband attenuation may fall short of the spec before failing."""
+    coherence_min: float = 0.9
+    """Frequency bins below this coherence are not used by the response check."""
+
+
+@dataclass(frozen=True)
+class FlowConfig:
+    """Prefect settings."""
+
+    retries: int = 1
+    retry_delay_seconds: float = 5.0
+    task_per: str = "segment"
+    """segment | file."""
+
+
+@dataclass(frozen=True)
+class JobConfig:
+    """A whole job: what to filter, how, and where to write."""
+
+    response: ResponseSpec
+    processing: ProcessingConfig = field(default_factory=ProcessingConfig)
+    archive: ArchiveConfig = field(default_factory=ArchiveConfig)
+    output: OutputConfig = field(default_factory=OutputConfig)
+    engine: EngineConfig = field(default_factory=EngineConfig)
+    checks: ChecksConfig = field(default_factory=ChecksConfig)
+    flow: FlowConfig = field(default_factory=FlowConfig)
+    base_dir: Path = Path(".")
+    """Folder of the configuration file; relative paths resolve against it."""
+    source: str = "<memory>"
+    """Where the configuration came from (for messages)."""
+    text: str = ""
+    """The TOML text as read (kept for provenance and the saved-configuration block)."""
+
+    # -- derived paths -------------------------------------------------
+    @property
+    def archive_root(self) -> Path:
+        return _resolve(self.base_dir, self.archive.root)
+
+    @property
+    def store_location(self) -> str:
+        """Absolute local path or the fsspec URL of the output store."""
+        s = self.output.store
+        if "://" in s:
+            return s
+        return str(_resolve(self.base_dir, s))
+
+    @property
+    def manifest_path(self) -> Path | None:
+        return None if self.archive.manifest is None else _resolve(self.base_dir, self.archive.manifest)
+
+    def digest(self) -> str:
+        """SHA-256 of the validated settings (not of comments or layout)."""
+        return hashlib.sha256(json.dumps(self.to_dict(), sort_keys=True).encode()).hexdigest()
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for name in ("response", "processing", "archive", "output", "engine", "checks", "flow"):
+            obj = getattr(self, name)
+            out[name] = {k: (list(v) if isinstance(v, tuple) else v) for k, v in dataclasses.asdict(obj).items()}
+        return out
+
+
+def _resolve(base: Path, p: str) -> Path:
+    path = Path(p).expanduser()
+    return path if path.is_absolute() else (base / path).resolve()
+
+
+_SECTIONS: dict[str, type] = {
+    "response": ResponseSpec,
+    "processing": ProcessingConfig,
+    "archive": ArchiveConfig,
+    "output": OutputConfig,
+    "engine": EngineConfig,
+    "checks": ChecksConfig,
+    "flow": FlowConfig,
+}
+
+_CHOICES: dict[tuple[str, str], tuple[str, ...]] = {
+    ("response", "kind"): KINDS,
+    ("response", "family"): FAMILIES,
+    ("response", "cutoff_means"): ("overall-3db", "per-pass"),
+    ("processing", "edge"): EDGE_MODES,
+    ("processing", "mode"): ("auto", "halo", "carry"),
+    ("processing", "nonfinite"): ("fail", "split", "interpolate"),
+    ("archive", "fingerprint"): ("fast", "full"),
+    ("archive", "truncated"): ("error", "warn"),
+    ("output", "dtype"): ("float32", "float64"),
+    ("output", "compression"): ("none", "lz4", "zstd"),
+    ("flow", "task_per"): ("segment", "file"),
+}
+
+
+def _type_name(tp: Any) -> str:
+    return getattr(tp, "__name__", str(tp))
+
+
+def _coerce(where: str, value: Any, tp: Any) -> Any:
+    """Check ``value`` against the annotation ``tp``; return it normalised (lists -> tuples)."""
+    origin = get_origin(tp)
+    args = get_args(tp)
+    if origin is None and tp is Any:
+        return value
+    if origin in (type(int | None),) or (origin is not None and str(origin) == "typing.Union"):
+        errors = []
+        for a in args:
+            if a is type(None):
+                if value is None:
+                    return None
+                continue
+            try:
+                return _coerce(where, value, a)
+            except ConfigError as e:
+                errors.append(str(e))
+        names = " or ".join(_type_name(a) for a in args if a is not type(None))
+        raise ConfigError(f"{where}: expected {names}, got {value!r}")
+    if origin is tuple:
+        if not isinstance(value, (list, tuple)):
+            raise ConfigError(f"{where}: expected a list, got {value!r}")
+        elem = args[0] if args else Any
+        return tuple(_coerce(f"{where}[{i}]", v, elem) for i, v in enumerate(value))
+    if tp is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"{where}: expected a number, got {value!r}")
+        return float(value)
+    if tp is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{where}: expected a whole number, got {value!r}")
+        return value
+    if tp is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"{where}: expected a string, got {value!r}")
+        return value
+    if tp is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"{where}: expected true or false, got {value!r}")
+        return value
+    return value
+
+
+def _section(source: str, name: str, table: Any, cls: type) -> Any:
+    if not isinstance(table, Mapping):
+        raise ConfigError(f"{source}: [{name}] must be a table")
+    hints = get_type_hints(cls)
+    known = {f.name for f in dataclasses.fields(cls)}
+    unknown = sorted(set(table) - known)
+    if unknown:
+        raise ConfigError(
+            f"{source}: unknown key(s) {', '.join(unknown)} in [{name}]; "
+            f"known keys are: {', '.join(sorted(known))}"
+        )
+    kwargs: dict[str, Any] = {}
+    for key, value in table.items():
+        where = f"{source}: [{name}] {key}"
+        v = _coerce(where, value, hints[key])
+        choices = _CHOICES.get((name, key))
+        if choices is not None and v not in choices:
+            raise ConfigError(f"{where} = {v!r} is not one of: {', '.join(choices)}")
+        kwargs[key] = v
+    return cls(**kwargs)
+
+
+def _check_values(cfg: JobConfig) -> None:
+    src = cfg.source
+    p = cfg.processing
+    if not (0.0 < p.tolerance < 1e-1):
+        raise ConfigError(f"{src}: [processing] tolerance = {p.tolerance!r} must be in (0, 0.1), e.g. 1e-9")
+    if isinstance(p.edge_samples, str) and p.edge_samples != "auto":
+        raise ConfigError(f"{src}: [processing] edge_samples = {p.edge_samples!r}: use \"auto\" or a whole number")
+    if isinstance(p.edge_samples, int) and p.edge_samples < 0:
+        raise ConfigError(f"{src}: [processing] edge_samples must be >= 0")
+    if p.block_seconds is not None and p.block_seconds <= 0:
+        raise ConfigError(f"{src}: [processing] block_seconds must be > 0")
+    if p.memory_budget_mib <= 0:
+        raise ConfigError(f"{src}: [processing] memory_budget_mib must be > 0")
+    if cfg.engine.workers < 1:
+        raise ConfigError(f"{src}: [engine] workers must be >= 1")
+    if cfg.engine.retries < 0:
+        raise ConfigError(f"{src}: [engine] retries must be >= 0")
+    sch = cfg.engine.scheduler
+    if sch not in ("threads", "processes") and "://" not in sch:
+        raise ConfigError(
+            f"{src}: [engine] scheduler = {sch!r}: use threads, processes or an address like tcp://127.0.0.1:8786"
+        )
+    if cfg.checks.every < 0:
+        raise ConfigError(f"{src}: [checks] every must be >= 0 (0 turns response checks off)")
+    if cfg.output.chunk_seconds is not None and cfg.output.chunk_seconds <= 0:
+        raise ConfigError(f"{src}: [output] chunk_seconds must be > 0")
+
+
+def parse_config(text: str, *, base_dir: Path | str = ".", source: str = "<memory>") -> JobConfig:
+    """Parse and validate TOML ``text``. Raises :class:`ConfigError` naming the key."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise ConfigError(f"{source}: not valid TOML: {e}") from None
+    unknown = sorted(set(data) - set(_SECTIONS))
+    if unknown:
+        raise ConfigError(
+            f"{source}: unknown table(s) {', '.join('[' + u + ']' for u in unknown)}; "
+            f"known tables are: {', '.join('[' + s + ']' for s in _SECTIONS)}"
+        )
+    if "response" not in data:
+        raise ConfigError(f"{source}: missing [response] table (what the overall filter must do)")
+    parts = {name: _section(source, name, data[name], cls) for name, cls in _SECTIONS.items() if name in data}
+    cfg = JobConfig(**parts, base_dir=Path(base_dir).resolve(), source=source, text=text)
+    _check_values(cfg)
+    return cfg
+
+
+def load_config(path: str | Path) -> JobConfig:
+    """Read and validate the TOML configuration at ``path``."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{p}: configuration file not found") from None
+    except OSError as e:
+        raise ConfigError(f"{p}: cannot read the configuration: {e.strerror}") from None
+    return parse_config(text, base_dir=p.resolve().parent, source=str(p))

@@ -1,0 +1,75 @@
+"""Exception classes of twinpass.
+
+Every error a user can meet derives from :class:`TwinpassError`. Messages name the
+file, the place (key, byte offset, sample index) and what to do about it.
+"""
+
+from __future__ import annotations
+
+
+class TwinpassError(Exception):
+    """Base class of every twinpass error."""
+
+
+class ConfigError(TwinpassError, ValueError):
+    """The configuration file is invalid (unknown key, wrong type, inconsistent values)."""
+
+
+class SpecError(TwinpassError, ValueError):
+    """The requested overall response cannot be designed as given."""
+
+
+class DesignError(SpecError):
+    """A design was produced but fails a check (unstable, badly conditioned, spec missed)."""
+
+
+class KernelError(TwinpassError, ValueError):
+    """A block window does not fit the kernel's requirements (too short, wrong shape)."""
+
+
+class InputError(TwinpassError):
+    """An input recording cannot be used. ``path`` names the file when known."""
+
+    def __init__(self, message: str, path: str | None = None) -> None:
+        super().__init__(message)
+        self.path = path
+
+
+class UnsupportedFormatError(InputError):
+    """No reader can open the file, or the encoding is not supported."""
+
+
+class CorruptInputError(InputError):
+    """The file's header or data are damaged or contradict each other."""
+
+
+class ArchiveError(TwinpassError):
+    """Discovery, grouping into streams/segments or planning failed."""
+
+    def __init__(self, message: str, path: str | None = None) -> None:
+        super().__init__(message)
+        self.path = path
+
+
+class OverlapError(ArchiveError):
+    """Two files of one stream overlap in time."""
+
+
+class StoreError(TwinpassError):
+    """The output store cannot be used (locked, unsafe path, full disk...)."""
+
+
+class StoreLockedError(StoreError):
+    """Another run holds the lock on the output store."""
+
+
+class UnsafePathError(StoreError):
+    """A name derived from an input path would escape the store, or the store overlaps the inputs."""
+
+
+class BlockFailedError(TwinpassError):
+    """A block kept failing after its retries."""
+
+
+class InjectedFault(TwinpassError):
+    """Raised by the fault-injection switch (tests only)."""

@@ -1,0 +1,1 @@
+"""I/O layer: input readers, archive discovery, fingerprints and the Zarr output store."""

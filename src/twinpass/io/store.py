@@ -1,0 +1,814 @@
+"""The Zarr v3 output store.
+
+Layout (zarr_format 3)::
+
+    <store>/                          group; attributes {"twinpass": {layout, spec, versions, runs}}
+      <stream>/<file stem>            one array per input file, shape (samples, channels),
+                                      chunks (chunk_samples, channels), dimension_names
+                                      ["time", "channel"], fill_value 0
+      _twinpass/blocks/<array name>/  block table of that file (group; attribute "errors")
+        status   int8    (n_blocks,)                         0 pending 1 pass 2 warn 3 fail 4 error
+        span     int64   (n_blocks, 2)                       [start, stop) in file frames
+        figures  float64 (n_blocks, channels, n_columns)     attribute "columns"; one block per chunk
+        seams    float64 (n_blocks, 4, seam_samples, channels) one block per chunk; see SEAM_*
+      .twinpass-lock                  present while a run writes (local stores)
+
+Array attributes are plain JSON (see :func:`json_safe`); ``complete`` is True only once every
+block is written and has passed. One process (the driver) writes attributes and block tables;
+block tasks write data regions only, through :func:`write_block_data`, in whole chunks.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import enum
+import os
+import threading
+import warnings
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+import fsspec
+import numpy as np
+import zarr
+from zarr.codecs import BloscCodec, BloscShuffle
+from zarr.storage import FsspecStore, LocalStore
+
+from ..core.types import FileRecord
+from ..errors import StoreError, UnsafePathError
+from . import store_lock
+from .store_lock import LockInfo
+from .store_util import (
+    RESERVED_PREFIX,
+    array_name,
+    check_name,
+    check_outside_archive,
+    json_safe,
+    library_versions,
+    local_path,
+    write_errors,
+)
+
+__all__ = [
+    "BlockStatus",
+    "BlockTable",
+    "COMPRESSIONS",
+    "LockInfo",
+    "OutputStore",
+    "SEAM_AFTER",
+    "SEAM_BEFORE",
+    "SEAM_HEAD",
+    "SEAM_TAIL",
+    "array_name",
+    "json_safe",
+    "library_versions",
+    "write_block_data",
+]
+
+STORE_LAYOUT = 1
+"""Version of this layout, stored as ``twinpass.layout`` in the root attributes."""
+COMPRESSIONS: tuple[str, ...] = ("none", "lz4", "zstd")
+DIMENSION_NAMES = ("time", "channel")
+REQUIRED_ATTRS = ("source", "source_fingerprint", "design_digest")
+"""Array attributes that mark an array as twinpass output (see :meth:`OutputStore.file_records`)."""
+
+SEAM_HEAD, SEAM_TAIL, SEAM_BEFORE, SEAM_AFTER = 0, 1, 2, 3
+"""Rows of a block's seams: its first and last ``seam_samples`` outputs, and the
+``seam_samples`` it computed before its start and after its end."""
+
+_MAX_ERROR_CHARS = 2000
+_TABLE_CHUNK = 4096
+
+
+class BlockStatus(enum.IntEnum):
+    """State of one block in the block table."""
+
+    PENDING = 0
+    PASS = 1
+    WARN = 2
+    FAIL = 3
+    """Written, but its checks failed."""
+    ERROR = 4
+    """Processing raised an exception."""
+
+
+_DONE = (BlockStatus.PASS, BlockStatus.WARN)
+
+
+@dataclass(frozen=True, eq=False)
+class BlockTable:
+    """The block table of one output array (arrays are read-only views).
+
+    ``status`` (n_blocks,) int8 :class:`BlockStatus` codes; ``span`` (n_blocks, 2) [start, stop)
+    in file frames; ``figures`` (n_blocks, channels, len(columns)) or None when not read;
+    ``seams`` (n_blocks, 4, seam_samples, channels) or None when not read; ``errors`` maps a
+    block index to its last error message.
+    """
+
+    name: str
+    status: np.ndarray
+    span: np.ndarray
+    columns: tuple[str, ...]
+    seam_samples: int
+    errors: dict[int, str]
+    figures: np.ndarray | None = field(default=None, repr=False)
+    seams: np.ndarray | None = field(default=None, repr=False)
+
+    @property
+    def n_blocks(self) -> int:
+        return int(self.status.shape[0])
+
+    def counts(self) -> dict[str, int]:
+        """Number of blocks per status name (``pending``, ``pass``, ``warn``, ``fail``, ``error``)."""
+        return {s.name.lower(): int(np.count_nonzero(self.status == s)) for s in BlockStatus}
+
+    def todo(self) -> np.ndarray:
+        """Indices of blocks that are neither passed nor warned."""
+        return np.flatnonzero(~np.isin(self.status, [int(s) for s in _DONE]))
+
+
+def _compressors(compression: str) -> list[BloscCodec] | None:
+    if compression == "none":
+        return None
+    if compression == "lz4":
+        return [BloscCodec(cname="lz4", clevel=5, shuffle=BloscShuffle.shuffle)]
+    if compression == "zstd":
+        return [BloscCodec(cname="zstd", clevel=1, shuffle=BloscShuffle.shuffle)]
+    raise StoreError(f"compression {compression!r} is not one of: {', '.join(COMPRESSIONS)} ([output] compression)")
+
+
+def _compression_of(arr: zarr.Array) -> str:
+    comp = tuple(arr.compressors)
+    if not comp:
+        return "none"
+    if len(comp) == 1 and isinstance(comp[0], BloscCodec) and comp[0].shuffle == BloscShuffle.shuffle:
+        c = comp[0]
+        if (c.cname.value, c.clevel) == ("lz4", 5):
+            return "lz4"
+        if (c.cname.value, c.clevel) == ("zstd", 1):
+            return "zstd"
+    return "other"
+
+
+def _url_fs(location: str) -> tuple[Any, str]:
+    """The (synchronous) fsspec file system and root path of a store URL (cached by fsspec)."""
+    try:
+        return fsspec.core.url_to_fs(location)
+    except (ImportError, ValueError) as e:
+        raise StoreError(f"output store {location}: cannot open this URL: {e}") from e
+
+
+def _open_zarr_store(location: str, *, read_only: bool) -> LocalStore | FsspecStore:
+    path = local_path(location)
+    if path is not None:
+        return LocalStore(path, read_only=read_only)
+    try:
+        return FsspecStore.from_url(location, read_only=read_only)
+    except (ImportError, ValueError) as e:
+        raise StoreError(f"output store {location}: cannot open this URL: {e}") from e
+
+
+def _table_path(name: str) -> str:
+    return f"{RESERVED_PREFIX}/blocks/{name}"
+
+
+def _members(group: zarr.Group) -> list[tuple[str, Any]]:
+    with warnings.catch_warnings():
+        # Lock files and in-flight "*.partial" files are not Zarr nodes.
+        warnings.filterwarnings("ignore", message=r"Object at .* is not recognized")
+        return list(group.members())
+
+
+def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> None:
+    """Write one block's output into its array (safe from worker threads and processes).
+
+    Parameters
+    ----------
+    location : str
+        The store location (local path or fsspec URL).
+    name : str
+        Array name inside the store.
+    start : int
+        First frame (sample index) of the region; a multiple of the chunk length.
+    data : numpy.ndarray
+        Shape (samples, channels), time-major; cast to the array's dtype. The region must
+        cover whole chunks or end at the array's end, so no two blocks share a chunk.
+
+    Raises
+    ------
+    StoreError
+        Missing array, wrong shape, a region off the chunk grid, or a failed write
+        (e.g. no space left on device).
+    """
+    check_name(name)
+    data = np.asarray(data)
+    store = _open_zarr_store(location, read_only=False)
+    try:
+        arr = zarr.open_array(store, path=name, mode="r+")
+    except (FileNotFoundError, KeyError, zarr.errors.BaseZarrError) as e:
+        raise StoreError(f"output array {name} not found in {location}; prepare the file before writing blocks") from e
+    arr = arr.with_config({"write_empty_chunks": True})
+    frames, channels = arr.shape
+    chunk = arr.chunks[0]
+    if data.ndim != 2 or data.shape[1] != channels:
+        raise StoreError(
+            f"{name}: block data at frame {start} has shape {data.shape}; expected (samples, {channels})"
+        )
+    stop = start + data.shape[0]
+    if data.shape[0] == 0 or start < 0 or stop > frames:
+        raise StoreError(f"{name}: block region [{start}, {stop}) is empty or outside the array's {frames} frames")
+    if start % chunk or (stop % chunk and stop != frames):
+        raise StoreError(
+            f"{name}: block region [{start}, {stop}) is not aligned to the {chunk}-sample chunks; "
+            "blocks must write whole chunks (or end at the array's end) so that no two blocks share a chunk"
+        )
+    with write_errors(f"{name} block [{start}, {stop}) in {location}"):
+        arr[start:stop, :] = data.astype(arr.dtype, copy=False)
+
+
+class OutputStore:
+    """A twinpass output store (Zarr v3 group). Open it with :meth:`OutputStore.open`.
+
+    Methods that change attributes or block tables are for the driver process only; they are
+    serialised by an internal lock so the driver may call them from several threads.
+    """
+
+    def __init__(self, location: str, store: LocalStore | FsspecStore, root: zarr.Group, read_only: bool) -> None:
+        self.location = location
+        self.local_root: Path | None = local_path(location)
+        self.read_only = read_only
+        self._store = store
+        self._root = root
+        self._mutex = threading.RLock()
+
+    # -- opening --------------------------------------------------------------
+
+    @classmethod
+    def open(
+        cls, location: str, mode: Literal["a", "r"] = "a", *, archive_root: Path | str | None = None
+    ) -> OutputStore:
+        """Open (mode ``"a"``: create if missing) or read (mode ``"r"``) the store at ``location``.
+
+        Parameters
+        ----------
+        location : str
+            Local folder, ``file://`` URL or another fsspec URL (e.g. ``memory://out.zarr``).
+        mode : {"a", "r"}
+        archive_root : Path, optional
+            The input archive; a local store that is, contains or lies inside it is refused.
+
+        Raises
+        ------
+        UnsafePathError
+            The store overlaps the archive.
+        StoreError
+            Missing store in mode ``"r"``, a folder that is not a Zarr v3 group, an unknown mode.
+        """
+        if mode not in ("a", "r"):
+            raise StoreError(f"output store {location}: mode {mode!r} is not 'a' or 'r'")
+        path = local_path(location)
+        if path is not None and archive_root is not None:
+            check_outside_archive(path, archive_root)
+        if path is not None:
+            if path.exists() and not path.is_dir():
+                raise StoreError(f"output store {path} is a file, not a folder; choose another [output] store")
+            exists = (path / "zarr.json").is_file()
+            if not exists and mode == "a" and path.is_dir() and any(path.iterdir()):
+                raise StoreError(
+                    f"output store {path} is a non-empty folder that is not a Zarr store; "
+                    "choose a new or empty folder for [output] store"
+                )
+        else:
+            fs, root = _url_fs(location)
+            exists = fs.exists(root.rstrip("/") + "/zarr.json")
+        if mode == "r" and not exists:
+            raise StoreError(f"output store {location} not found: run the job first, or check [output] store")
+        store = _open_zarr_store(location, read_only=(mode == "r"))
+        try:
+            with write_errors(f"the output store {location}"):
+                root_group = zarr.open_group(store, mode=mode, zarr_format=3)
+        except StoreError:
+            raise
+        except Exception as e:
+            raise StoreError(f"output store {location} is not a Zarr v3 group: {e}") from e
+        return cls(location, store, root_group, read_only=(mode == "r"))
+
+    def __repr__(self) -> str:
+        return f"OutputStore({self.location!r}, read_only={self.read_only})"
+
+    def _writable(self) -> None:
+        if self.read_only:
+            raise StoreError(f"output store {self.location} was opened read-only; open it with mode 'a' to write")
+
+    # -- locking and clean-up -------------------------------------------------
+
+    def _lock_file(self) -> store_lock.LockFile:
+        if self.local_root is not None:
+            return store_lock.LocalLockFile(self.local_root)
+        fs, root = _url_fs(self.location)
+        return store_lock.FsspecLockFile(fs, root, self.location)
+
+    @contextlib.contextmanager
+    def lock(self, run_id: str) -> Iterator[LockInfo]:
+        """Hold the store's run lock for the ``with`` block.
+
+        Raises
+        ------
+        StoreLockedError
+            Another live run holds it; the message names the holder and how to clear it.
+        """
+        self._writable()
+        lock_file = self._lock_file()
+        info = store_lock.acquire(lock_file, run_id)
+        try:
+            yield info
+        finally:
+            store_lock.release(lock_file, info)
+
+    def clean_partials(self) -> int:
+        """Delete ``*.partial`` files left by killed writers (local stores); return how many.
+
+        Call it while holding the lock: in-flight writes of a live run also use such files.
+        """
+        self._writable()
+        if self.local_root is None:
+            return 0
+        count = 0
+        for dirpath, _dirs, files in os.walk(self.local_root):
+            for f in files:
+                if f.endswith(".partial"):
+                    Path(dirpath, f).unlink(missing_ok=True)
+                    count += 1
+        return count
+
+    # -- nodes ----------------------------------------------------------------
+
+    def _node(self, path: str) -> zarr.Array | zarr.Group | None:
+        try:
+            return self._root[path]
+        except KeyError:
+            return None
+
+    def _array(self, name: str) -> zarr.Array:
+        node = self._node(check_name(name))
+        if not isinstance(node, zarr.Array):
+            raise StoreError(f"output array {name} not found in {self.location}")
+        return node
+
+    def _table(self, name: str) -> zarr.Group:
+        node = self._node(_table_path(check_name(name)))
+        if not isinstance(node, zarr.Group):
+            raise StoreError(f"no block table for {name} in {self.location}; prepare the file first")
+        return node
+
+    def _delete(self, path: str) -> None:
+        if self.local_root is not None:
+            target = (self.local_root / path).resolve()
+            root = self.local_root.resolve()
+            if target == root or not target.is_relative_to(root):
+                raise UnsafePathError(f"refusing to delete {target}: it is not inside the output store {root}")
+        with write_errors(f"{path} (deleting)"):
+            del self._root[path]
+
+    def _mark_incomplete(self, arr: zarr.Array) -> None:
+        if arr.attrs.get("complete") is not False:
+            arr.update_attributes({"complete": False})
+
+    def _check_parents(self, name: str) -> None:
+        parts = name.split("/")
+        for i in range(1, len(parts)):
+            parent = "/".join(parts[:i])
+            if isinstance(self._node(parent), zarr.Array):
+                raise UnsafePathError(
+                    f"output array {name} would lie inside the output array {parent}: two input paths "
+                    f"collide ({parent}.* and {name}.*); rename one of them"
+                )
+
+    # -- per-file arrays ------------------------------------------------------
+
+    def prepare_file(
+        self,
+        name: str,
+        *,
+        frames: int,
+        channels: int,
+        dtype: str,
+        chunk_samples: int,
+        compression: str,
+        attrs: dict[str, Any],
+        spans: list[tuple[int, int]],
+        n_figures_columns: list[str],
+        seam_samples: int,
+        keep_done: bool,
+    ) -> BlockTable:
+        """Create (or reuse) the output array of one file and reset or resume its block table.
+
+        The array is marked incomplete before anything else. It is recreated (old data and block
+        table deleted) when shape, dtype, chunks or compression differ. ``attrs`` replace the
+        array's attributes (``complete`` is set False). With ``keep_done`` and an unchanged
+        array, spans, columns and seam shape, the block statuses are kept (resume); otherwise
+        every block becomes pending.
+
+        Parameters
+        ----------
+        name : str
+            Array name (from :func:`array_name`).
+        frames, channels : int
+            Array shape (samples, channels).
+        dtype : str
+            ``"float32"`` or ``"float64"``.
+        chunk_samples : int
+            Chunk length in samples; every span starts on a chunk boundary.
+        compression : str
+            ``"none"``, ``"lz4"`` or ``"zstd"`` (Blosc with byte shuffle).
+        attrs : dict
+            Must hold ``source``, ``source_fingerprint`` and ``design_digest``; converted with
+            :func:`json_safe`. ``blocks`` is filled in when absent.
+        spans : list of (int, int)
+            Block regions [start, stop) in frames, in order, covering [0, frames) exactly.
+        n_figures_columns : list of str
+            Names of the per-channel check figures recorded for each block.
+        seam_samples : int
+            Samples kept at each block edge for seam checks.
+        keep_done : bool
+            Resume: keep existing statuses if nothing that matters changed.
+
+        Returns
+        -------
+        BlockTable
+            Statuses and spans (``figures`` and ``seams`` not read).
+        """
+        self._writable()
+        check_name(name)
+        span_arr = self._check_prepare_args(name, frames, channels, dtype, chunk_samples, compression, spans, seam_samples)
+        meta = json_safe(dict(attrs), f"{name} attributes")
+        missing = [k for k in REQUIRED_ATTRS if k not in meta]
+        if missing:
+            raise StoreError(f"{name}: attributes lack {', '.join(missing)}; the planner needs them to resume")
+        meta.setdefault(
+            "blocks",
+            {
+                "count": len(spans),
+                "block_samples": int(max((b - a for a, b in spans), default=0)),
+                "chunk_samples": int(chunk_samples),
+            },
+        )
+        meta["complete"] = False
+        columns = [str(c) for c in n_figures_columns]
+        with self._mutex, write_errors(f"{name} (preparing the output array)"):
+            self._check_parents(name)
+            node = self._node(name)
+            if isinstance(node, zarr.Group):
+                raise UnsafePathError(
+                    f"output array {name} would replace a group of other arrays: two input paths collide; rename one"
+                )
+            if node is not None:
+                old_source = node.attrs.get("source")
+                if old_source is None:
+                    raise StoreError(
+                        f"{self.location}: array {name} was not written by twinpass; remove it or choose another store"
+                    )
+                if old_source != meta["source"]:
+                    raise UnsafePathError(
+                        f"input {meta['source']!r} and input {old_source!r} both map to the output array {name}; "
+                        "rename one of them, or remove the array of the old one"
+                    )
+                self._mark_incomplete(node)  # first, before anything else
+            same = node is not None and (
+                node.shape == (frames, channels)
+                and node.dtype == np.dtype(dtype)
+                and node.chunks == (chunk_samples, channels)
+                and _compression_of(node) == compression
+            )
+            if same:
+                node.attrs.put(meta)
+            else:
+                if node is not None:
+                    self._delete(name)
+                self._delete(_table_path(name))
+                self._root.create_array(
+                    name,
+                    shape=(frames, channels),
+                    dtype=dtype,
+                    chunks=(chunk_samples, channels),
+                    compressors=_compressors(compression),
+                    fill_value=0,
+                    dimension_names=DIMENSION_NAMES,
+                    attributes=meta,
+                    overwrite=True,
+                )
+            if keep_done and same and self._table_matches(name, span_arr, columns, seam_samples, channels):
+                return self.read_block_table(name, figures=False, seams=False)
+            self._create_table(name, span_arr, columns, seam_samples, channels)
+            return self.read_block_table(name, figures=False, seams=False)
+
+    @staticmethod
+    def _check_prepare_args(
+        name: str, frames: int, channels: int, dtype: str, chunk_samples: int, compression: str,
+        spans: list[tuple[int, int]], seam_samples: int,
+    ) -> np.ndarray:
+        if dtype not in ("float32", "float64"):
+            raise StoreError(f"{name}: output dtype {dtype!r} is not float32 or float64 ([output] dtype)")
+        _compressors(compression)
+        if frames < 0 or channels < 1 or chunk_samples < 1 or seam_samples < 0:
+            raise StoreError(
+                f"{name}: invalid layout frames={frames}, channels={channels}, chunk_samples={chunk_samples}, "
+                f"seam_samples={seam_samples}"
+            )
+        span_arr = np.asarray(spans, dtype=np.int64).reshape(len(spans), 2)
+        expected_start = 0
+        for i, (a, b) in enumerate(span_arr.tolist()):
+            if a != expected_start or b <= a or a % chunk_samples or (b % chunk_samples and b != frames):
+                raise StoreError(
+                    f"{name}: block {i} span [{a}, {b}) does not continue at frame {expected_start} on the "
+                    f"{chunk_samples}-sample chunk grid; spans must tile [0, {frames}) in whole chunks"
+                )
+            expected_start = b
+        if expected_start != frames:
+            raise StoreError(f"{name}: block spans end at frame {expected_start}, not at the file's {frames} frames")
+        return span_arr
+
+    def _table_matches(self, name: str, span: np.ndarray, columns: list[str], seam_samples: int, channels: int) -> bool:
+        node = self._node(_table_path(name))
+        if not isinstance(node, zarr.Group):
+            return False
+        try:
+            st, sp, fig, sm = (node[k] for k in ("status", "span", "figures", "seams"))
+        except KeyError:
+            return False
+        n = span.shape[0]
+        return (
+            st.shape == (n,)
+            and sp.shape == (n, 2)
+            and np.array_equal(sp[:], span)
+            and fig.shape == (n, channels, len(columns))
+            and list(fig.attrs.get("columns", [])) == columns
+            and sm.shape == (n, 4, seam_samples, channels)
+        )
+
+    def _create_table(self, name: str, span: np.ndarray, columns: list[str], seam_samples: int, channels: int) -> None:
+        path = _table_path(name)
+        self._delete(path)
+        n = span.shape[0]
+        group = self._root.require_group(path)
+        group.attrs.put({"errors": {}})
+        tab_chunk = (max(1, min(n, _TABLE_CHUNK)),)
+        # status first (all pending): an interrupted reset never looks like a resumable table
+        group.create_array("status", shape=(n,), dtype="int8", chunks=tab_chunk, fill_value=0, compressors=None)
+        sp = group.create_array("span", shape=(n, 2), dtype="int64", chunks=tab_chunk + (2,), fill_value=-1, compressors=None)
+        if n:
+            sp[:] = span
+        group.create_array(
+            "figures", shape=(n, channels, len(columns)), dtype="float64",
+            chunks=(1, channels, max(1, len(columns))), fill_value=float("nan"), compressors=None,
+            attributes={"columns": columns},
+        )
+        group.create_array(
+            "seams", shape=(n, 4, seam_samples, channels), dtype="float64",
+            chunks=(1, 4, max(1, seam_samples), channels), fill_value=float("nan"), compressors=None,
+        )
+
+    # -- block tables ---------------------------------------------------------
+
+    def read_block_table(self, name: str, *, figures: bool = True, seams: bool = True) -> BlockTable:
+        """The block table of ``name``; ``figures``/``seams`` False skip reading those arrays."""
+        with self._mutex:
+            group = self._table(name)
+            fig = group["figures"]
+            sm = group["seams"]
+            errors = {int(k): str(v) for k, v in dict(group.attrs.get("errors") or {}).items()}
+            arrays = {
+                "status": np.asarray(group["status"][:], dtype=np.int8),
+                "span": np.asarray(group["span"][:], dtype=np.int64),
+                "figures": np.asarray(fig[:]) if figures else None,
+                "seams": np.asarray(sm[:]) if seams else None,
+            }
+        for a in arrays.values():
+            if a is not None:
+                a.setflags(write=False)
+        return BlockTable(
+            name=name,
+            columns=tuple(fig.attrs.get("columns", [])),
+            seam_samples=int(sm.shape[2]),
+            errors=errors,
+            **arrays,
+        )
+
+    def read_seams(self, name: str, indices: Iterable[int]) -> np.ndarray:
+        """Seams of some blocks, shape (len(indices), 4, seam_samples, channels); rows as SEAM_*."""
+        idx = [int(i) for i in indices]
+        with self._mutex:
+            sm = self._table(name)["seams"]
+            return np.asarray(sm.get_orthogonal_selection((idx, slice(None), slice(None), slice(None))))
+
+    def _chunk_exists(self, arr: zarr.Array, name: str, chunk_index: int) -> bool:
+        key = f"{name}/{arr.metadata.encode_chunk_key((chunk_index, 0))}"
+        if self.local_root is not None:
+            return (self.local_root / key).is_file()
+        fs, root = _url_fs(self.location)
+        return bool(fs.exists(root.rstrip("/") + "/" + key))
+
+    def record_block(
+        self,
+        name: str,
+        index: int,
+        status: BlockStatus | int,
+        figures: np.ndarray | None,
+        seams: np.ndarray | None,
+        error: str | None,
+    ) -> None:
+        """Record a block's outcome (driver only; call after its data are written).
+
+        Figures, seams and error are written before the status, so a passed status always has
+        them. ``figures`` has shape (channels, n_columns), ``seams`` (4, seam_samples, channels).
+        A pass or warn status is refused unless every data chunk of the block exists.
+        """
+        self._writable()
+        status = BlockStatus(int(status))
+        with self._mutex, write_errors(f"{name} block {index} (block table)"):
+            group = self._table(name)
+            st = group["status"]
+            n = st.shape[0]
+            if not 0 <= index < n:
+                raise StoreError(f"{name}: block index {index} is outside 0..{n - 1}")
+            if status in _DONE:
+                arr = self._array(name)
+                a, b = (int(v) for v in group["span"][index])
+                chunk = arr.chunks[0]
+                for c in range(a // chunk, -(-b // chunk)):
+                    if not self._chunk_exists(arr, name, c):
+                        raise StoreError(
+                            f"{name}: block {index} [{a}, {b}) recorded as {status.name.lower()} but its data chunk "
+                            f"{c} is missing; write the block's data first"
+                        )
+            if status not in _DONE:
+                self._mark_incomplete(self._array(name))
+            for key, value in (("figures", figures), ("seams", seams)):
+                if value is not None:
+                    target = group[key]
+                    value = np.asarray(value, dtype=np.float64)
+                    if value.shape != target.shape[1:]:
+                        raise StoreError(f"{name}: block {index} {key} have shape {value.shape}; expected {target.shape[1:]}")
+                    target[index] = value
+            errors = dict(group.attrs.get("errors") or {})
+            if error is not None:
+                errors[str(index)] = str(error)[:_MAX_ERROR_CHARS]
+                group.update_attributes({"errors": errors})
+            elif str(index) in errors:
+                del errors[str(index)]
+                group.update_attributes({"errors": errors})
+            st[index] = int(status)
+
+    def invalidate_blocks(self, name: str, block_indices: Iterable[int]) -> None:
+        """Set blocks pending (figures, seams and errors cleared) and the array incomplete."""
+        self._writable()
+        idx = sorted({int(i) for i in block_indices})
+        with self._mutex, write_errors(f"{name} (invalidating blocks)"):
+            self._mark_incomplete(self._array(name))
+            group = self._table(name)
+            st = group["status"]
+            for i in idx:
+                if not 0 <= i < st.shape[0]:
+                    raise StoreError(f"{name}: block index {i} is outside 0..{st.shape[0] - 1}")
+            if not idx:
+                return
+            status = st[:]
+            status[idx] = BlockStatus.PENDING
+            st[:] = status
+            for key in ("figures", "seams"):
+                for i in idx:
+                    group[key][i] = np.nan
+            errors = {k: v for k, v in dict(group.attrs.get("errors") or {}).items() if int(k) not in idx}
+            group.update_attributes({"errors": errors})
+
+    def set_complete(self, name: str, complete: bool, checks_summary: dict[str, Any] | None = None) -> None:
+        """Set the ``complete`` attribute (and ``checks``); True needs every block passed or warned."""
+        self._writable()
+        with self._mutex, write_errors(f"{name} (completion flag)"):
+            arr = self._array(name)
+            if complete:
+                table = self.read_block_table(name, figures=False, seams=False)
+                todo = table.todo()
+                if todo.size:
+                    counts = {k: v for k, v in table.counts().items() if k not in ("pass", "warn") and v}
+                    raise StoreError(
+                        f"cannot mark {name} complete: {todo.size} of {table.n_blocks} blocks are not done "
+                        f"({', '.join(f'{k} {v}' for k, v in counts.items())}; first: {todo[:5].tolist()}); "
+                        "rerun to process them"
+                    )
+            update: dict[str, Any] = {"complete": bool(complete)}
+            if checks_summary is not None:
+                update["checks"] = json_safe(checks_summary, f"{name} checks")
+            arr.update_attributes(update)
+
+    # -- whole files ----------------------------------------------------------
+
+    def _walk(self, group: zarr.Group, prefix: str = "") -> Iterator[tuple[str, zarr.Array]]:
+        for key, node in sorted(_members(group), key=lambda kv: kv[0]):
+            if not prefix and key == RESERVED_PREFIX:
+                continue
+            if isinstance(node, zarr.Array):
+                yield prefix + key, node
+            else:
+                yield from self._walk(node, prefix + key + "/")
+
+    def list_arrays(self) -> list[str]:
+        """Names of all output arrays (the block tables excluded), sorted."""
+        return [name for name, _ in self._walk(self._root)]
+
+    def file_records(self) -> dict[str, FileRecord]:
+        """What the store holds per input file, keyed by source path; foreign arrays are ignored."""
+        out: dict[str, FileRecord] = {}
+        for name, arr in self._walk(self._root):
+            a = arr.attrs.asdict()
+            if not all(k in a for k in REQUIRED_ATTRS):
+                continue
+            out[str(a["source"])] = FileRecord(
+                source=str(a["source"]),
+                source_fingerprint=dict(a["source_fingerprint"] or {}),
+                design_digest=str(a["design_digest"]),
+                complete=a.get("complete") is True,
+                frames=int(arr.shape[0]),
+                segment=None if a.get("segment") is None else str(a["segment"]),
+                array_name=name,
+            )
+        return out
+
+    def remove_file(self, name: str) -> bool:
+        """Delete an output array and its block table; return whether the array existed."""
+        self._writable()
+        check_name(name)
+        with self._mutex, write_errors(f"{name} (removing)"):
+            node = self._node(name)
+            if isinstance(node, zarr.Group):
+                raise StoreError(f"{name} in {self.location} is a group, not an output array; not removed")
+            if isinstance(node, zarr.Array):
+                self._mark_incomplete(node)
+                self._delete(name)
+            self._delete(_table_path(name))
+        return node is not None
+
+    def force_reset(self, names: Iterable[str]) -> int:
+        """Delete the given output arrays and their block tables (inside the store only).
+
+        Returns the number of arrays deleted.
+        """
+        return sum(self.remove_file(n) for n in list(names))
+
+    def update_attrs(self, name: str, **attrs: Any) -> None:
+        """Merge JSON-safe ``attrs`` into an array's attributes (not ``complete=True``: see set_complete)."""
+        self._writable()
+        if attrs.get("complete"):
+            raise StoreError(f"{name}: set complete only with set_complete(), which checks the block table")
+        with self._mutex, write_errors(f"{name} (attributes)"):
+            self._array(name).update_attributes(json_safe(attrs, f"{name} attributes"))
+
+    def read(self, name: str, start: int = 0, stop: int | None = None) -> np.ndarray:
+        """Frames [start, stop) of an output array, shape (samples, channels)."""
+        arr = self._array(name)
+        n = arr.shape[0]
+        stop = n if stop is None else stop
+        if not 0 <= start <= stop <= n:
+            raise StoreError(f"{name}: cannot read frames [{start}, {stop}) of {n}")
+        return np.asarray(arr[start:stop, :])
+
+    def array_attrs(self, name: str) -> dict[str, Any]:
+        """The attributes of an output array."""
+        return self._array(name).attrs.asdict()
+
+    # -- root information -----------------------------------------------------
+
+    def _fresh_root(self) -> zarr.Group:
+        return zarr.open_group(self._store, mode="r" if self.read_only else "r+", zarr_format=3)
+
+    def read_root_info(self) -> dict[str, Any]:
+        """The root ``twinpass`` attribute: {layout, spec, versions, runs} (empty if never set)."""
+        return dict(self._fresh_root().attrs.get("twinpass") or {})
+
+    def _write_root_info(self, info: dict[str, Any]) -> None:
+        with write_errors(f"the root attributes of {self.location}"):
+            self._fresh_root().update_attributes({"twinpass": json_safe(info, "twinpass root attributes")})
+
+    def set_root_info(self, spec: dict[str, Any], versions: dict[str, Any] | None = None) -> None:
+        """Record the job's specification and library versions (run history kept)."""
+        self._writable()
+        with self._mutex:
+            info = self.read_root_info()
+            info.update(
+                layout=STORE_LAYOUT,
+                spec=spec,
+                versions=library_versions() if versions is None else versions,
+                runs=info.get("runs", []),
+            )
+            self._write_root_info(info)
+
+    def append_run(self, entry: dict[str, Any]) -> None:
+        """Append a run history entry {run_id, start, end, counts, config_digest}."""
+        self._writable()
+        with self._mutex:
+            info = self.read_root_info()
+            info.setdefault("layout", STORE_LAYOUT)
+            info["runs"] = [*info.get("runs", []), entry]
+            self._write_root_info(info)

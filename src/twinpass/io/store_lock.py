@@ -1,0 +1,199 @@
+"""The run lock of an output store: one writing run at a time.
+
+Local stores get ``<store>/.twinpass-lock``, created atomically with ``O_CREAT | O_EXCL`` and
+holding JSON ``{pid, host, run_id, started, token}``. A lock whose holder ran on this host
+and is no longer alive is stale: it is removed with a warning and taken over.
+
+Stores behind other fsspec file systems get the same object, created with
+``pipe_file(mode="create")``: back ends with conditional writes make this atomic; on the
+others it is best effort (check, write, read back and compare the token).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import logging
+import os
+import socket
+import uuid
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any, Protocol
+
+import psutil
+
+from ..errors import StoreError, StoreLockedError
+from .store_util import write_errors
+
+LOCK_NAME = ".twinpass-lock"
+log = logging.getLogger("twinpass.store")
+
+
+@dataclass(frozen=True)
+class LockInfo:
+    """Who holds a store lock."""
+
+    pid: int
+    host: str
+    run_id: str
+    started: str
+    """ISO 8601 time (UTC) the lock was taken."""
+    token: str
+    """Random identifier of this acquisition."""
+
+    @classmethod
+    def new(cls, run_id: str) -> LockInfo:
+        return cls(
+            pid=os.getpid(),
+            host=socket.gethostname(),
+            run_id=str(run_id),
+            started=_dt.datetime.now(_dt.timezone.utc).isoformat(),
+            token=uuid.uuid4().hex,
+        )
+
+    def to_bytes(self) -> bytes:
+        return json.dumps(asdict(self), sort_keys=True).encode()
+
+    @classmethod
+    def parse(cls, raw: bytes) -> LockInfo | None:
+        try:
+            d: Any = json.loads(raw.decode())
+            return cls(
+                pid=int(d["pid"]), host=str(d["host"]), run_id=str(d["run_id"]),
+                started=str(d["started"]), token=str(d.get("token", "")),
+            )
+        except (ValueError, KeyError, TypeError, UnicodeDecodeError):
+            return None
+
+    def describe(self) -> str:
+        return f"run {self.run_id} (pid {self.pid} on host {self.host}, started {self.started})"
+
+    def is_stale(self) -> bool:
+        """True when the holder ran on this host and its process is gone (or the pid was reused)."""
+        if self.host != socket.gethostname():
+            return False
+        if not psutil.pid_exists(self.pid):
+            return True
+        try:
+            created = psutil.Process(self.pid).create_time()
+            started = _dt.datetime.fromisoformat(self.started).timestamp()
+        except (psutil.Error, ValueError):
+            return False
+        return created > started + 1.0  # a process younger than the lock reuses the pid
+
+
+class LockFile(Protocol):
+    """Exclusive creation, reading and removal of one lock object."""
+
+    where: str
+
+    def create(self, data: bytes) -> bool: ...
+    def read(self) -> bytes | None: ...
+    def remove(self) -> None: ...
+
+
+class LocalLockFile:
+    """``<store>/.twinpass-lock`` on a local file system."""
+
+    def __init__(self, root: Path) -> None:
+        self.path = root / LOCK_NAME
+        self.where = str(self.path)
+
+    def create(self, data: bytes) -> bool:
+        try:
+            fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            return False
+        try:
+            with write_errors(f"the lock file {self.path}"):
+                with os.fdopen(fd, "wb") as f:
+                    f.write(data)
+                    f.flush()
+                    os.fsync(f.fileno())
+        except StoreError:
+            self.path.unlink(missing_ok=True)
+            raise
+        return True
+
+    def read(self) -> bytes | None:
+        try:
+            return self.path.read_bytes()
+        except FileNotFoundError:
+            return None
+
+    def remove(self) -> None:
+        self.path.unlink(missing_ok=True)
+
+
+class FsspecLockFile:
+    """The lock object in a store behind an fsspec file system."""
+
+    def __init__(self, fs: Any, root: str, location: str) -> None:
+        self.fs = fs
+        self.path = root.rstrip("/") + "/" + LOCK_NAME
+        self.where = location.rstrip("/") + "/" + LOCK_NAME
+
+    def create(self, data: bytes) -> bool:
+        with write_errors(f"the lock object {self.where}"):
+            try:
+                self.fs.pipe_file(self.path, data, mode="create")
+            except FileExistsError:
+                return False
+        # Best effort where "create" is check-then-write: keep the lock only if it is still ours.
+        return self.read() == data
+
+    def read(self) -> bytes | None:
+        try:
+            return bytes(self.fs.cat_file(self.path))
+        except FileNotFoundError:
+            return None
+
+    def remove(self) -> None:
+        try:
+            self.fs.rm_file(self.path)
+        except FileNotFoundError:
+            pass
+
+
+def acquire(lock: LockFile, run_id: str) -> LockInfo:
+    """Take the lock for ``run_id``; recover a stale one; else raise :class:`StoreLockedError`."""
+    info = LockInfo.new(run_id)
+    for _ in range(3):
+        if lock.create(info.to_bytes()):
+            return info
+        raw = lock.read()
+        if raw is None:
+            continue  # released meanwhile: try again
+        holder = LockInfo.parse(raw)
+        if holder is None:
+            raise StoreLockedError(
+                f"output store is locked: {lock.where} exists but cannot be read (a writer may have been "
+                f"killed while taking it); if no run is using the store, delete {lock.where} and rerun"
+            )
+        if not holder.is_stale():
+            raise StoreLockedError(
+                f"output store is locked by {holder.describe()}: {lock.where}; wait for that run to finish, "
+                f"or if it is no longer running, delete {lock.where} and rerun"
+            )
+        # Remove the stale lock only if it is still the one judged stale.
+        if lock.read() == raw:
+            log.warning(
+                "recovering a stale lock on the output store: %s is no longer running; removing %s",
+                holder.describe(), lock.where,
+            )
+            lock.remove()
+    raise StoreLockedError(f"output store lock {lock.where} keeps changing hands; another run is starting: retry later")
+
+
+def release(lock: LockFile, info: LockInfo) -> None:
+    """Remove the lock if it is still held by ``info``; warn otherwise."""
+    raw = lock.read()
+    holder = None if raw is None else LockInfo.parse(raw)
+    if holder is not None and holder.token == info.token:
+        lock.remove()
+    else:
+        log.warning(
+            "output store lock %s was no longer held by %s at the end of the run; left as found",
+            lock.where, info.describe(),
+        )

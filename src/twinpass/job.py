@@ -1,0 +1,203 @@
+"""One run over an archive, without Prefect: design -> discover -> plan -> blocks -> finalise.
+
+The Prefect flow (:mod:`twinpass.flows`) calls the same steps as tasks; the CLI's
+``--no-flow`` path calls :func:`run_job` directly.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import importlib.metadata
+import logging
+import platform
+import uuid
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+from . import __version__
+from .config import JobConfig
+from .core.design import design_filter, response_report
+from .core.plan import FilePlan, Plan, make_plan
+from .core.segments import InvalidFile, Segment
+from .core.types import Design
+from .engine import FileOutcome, FileWork, SegmentWork, design_digest_for, run_segment
+from .errors import SpecError
+from .io.archive import Discovery, discover
+from .io.store import OutputStore
+from .io.store_util import array_name
+
+log = logging.getLogger("twinpass.job")
+
+
+def library_versions() -> dict[str, str]:
+    """Versions of twinpass and the libraries whose numerics or formats matter."""
+    import dask
+    import numpy
+    import scipy
+    import zarr
+
+    out = {"twinpass": __version__, "python": platform.python_version(), "numpy": numpy.__version__,
+           "scipy": scipy.__version__, "dask": dask.__version__, "zarr": zarr.__version__}
+    try:
+        out["prefect"] = importlib.metadata.version("prefect")  # importing prefect costs seconds
+    except importlib.metadata.PackageNotFoundError:  # pragma: no cover - prefect is a dependency
+        pass
+    return out
+
+
+@dataclass
+class Prepared:
+    """Everything decided before any block runs."""
+
+    cfg: JobConfig
+    discovery: Discovery
+    designs: dict[float, Design]
+    design_errors: dict[float, str]
+    plan: Plan
+    work: list[SegmentWork]
+    invalid: list[FilePlan] = field(default_factory=list)
+
+
+def designs_for(cfg: JobConfig, rates: set[float]) -> tuple[dict[float, Design], dict[float, str]]:
+    """One design per distinct sample rate; a rate the spec cannot serve is reported, not raised."""
+    designs: dict[float, Design] = {}
+    errors: dict[float, str] = {}
+    for fs in sorted(rates):
+        try:
+            designs[fs] = design_filter(cfg.response, fs, cfg.processing.tolerance)
+        except SpecError as e:
+            errors[fs] = str(e)
+    return designs, errors
+
+
+def _action(fp: FilePlan) -> Any:
+    if fp.redo is None:
+        return "skip"
+    if fp.redo == "all":
+        return "resume" if fp.resume else "all"
+    return tuple(tuple(s) for s in fp.redo)
+
+
+def segment_work(seg: Segment, plan: Plan) -> SegmentWork:
+    """The engine's view of a planned segment."""
+    plans = {fp.relpath: fp for fp in plan.for_segment(seg.id)}
+    files = []
+    for f, off in zip(seg.files, seg.offsets):
+        fp = plans.get(f.relpath)
+        files.append(FileWork(
+            relpath=f.relpath, array_name=array_name(f.relpath), spec=f.spec, frames=f.frames, seg_offset=off,
+            stream=seg.stream, start_time=None if f.start_time is None else f.start_time.isoformat(),
+            fingerprint=f.fingerprint or {}, action="skip" if fp is None else _action(fp),
+            full_scale=f.info.full_scale,
+        ))
+    return SegmentWork(seg.id, seg.stream, seg.sample_rate_hz, seg.channels, seg.frames, tuple(files))
+
+
+def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepared:
+    """Discover the archive, design per rate and plan against what ``store`` records."""
+    disc = discover(cfg)
+    segments, invalid = disc.segments()
+    rates = {s.sample_rate_hz for s in segments}
+    designs, design_errors = designs_for(cfg, rates)
+    bad_rates = set(design_errors)
+    if bad_rates:
+        keep = []
+        for s in segments:
+            if s.sample_rate_hz in bad_rates:
+                invalid.extend(InvalidFile(f.relpath, f"no filter for {s.sample_rate_hz:g} Hz: "
+                                           f"{design_errors[s.sample_rate_hz]}",
+                                           "adjust [response] so it suits this sample rate, or exclude the stream")
+                               for f in s.files)
+            else:
+                keep.append(s)
+        segments = keep
+    digests = {fs: design_digest_for(d, cfg) for fs, d in designs.items()}
+    halos = {fs: d.effective_length for fs, d in designs.items()}
+    plan = make_plan(segments, invalid, store.file_records(), digests, halos, force=force)
+    work = [segment_work(s, plan) for s in plan.segments]
+    return Prepared(cfg, disc, designs, design_errors, plan, work, list(plan.invalid))
+
+
+@dataclass
+class RunResult:
+    run_id: str
+    started: str
+    ended: str
+    outcomes: list[FileOutcome]
+    invalid: list[FilePlan]
+    designs: dict[float, Design]
+
+    @property
+    def failed(self) -> list[str]:
+        return [o.relpath for o in self.outcomes if o.status == "failed"]
+
+    def counts(self) -> dict[str, int]:
+        c: dict[str, int] = {"complete": 0, "failed": 0, "skipped": 0, "invalid": len(self.invalid)}
+        for o in self.outcomes:
+            c[o.status] = c.get(o.status, 0) + 1
+        c["blocks_run"] = sum(o.blocks_run for o in self.outcomes)
+        return c
+
+    @property
+    def ok(self) -> bool:
+        return not self.failed
+
+
+def now_iso() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def begin_run(store: OutputStore, prep: Prepared) -> None:
+    """Root provenance before any block runs."""
+    store.set_root_info({"response": prep.cfg.response.to_dict(),
+                         "processing": prep.cfg.to_dict()["processing"],
+                         "designs": {f"{fs:g}": d.report for fs, d in prep.designs.items()}},
+                        library_versions())
+
+
+def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
+    store.append_run({"run_id": result.run_id, "start": result.started, "end": result.ended,
+                      "counts": result.counts(), "config_digest": cfg.digest(),
+                      "failed": result.failed})
+
+
+def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None, workers: int | None = None,
+            on_block: Callable[[str, int, int, Any], None] | None = None,
+            log_fn: Callable[[str], None] | None = None) -> RunResult:
+    """Run the whole job with the engine alone (no Prefect)."""
+    from .engine import dask_client
+
+    say = log_fn or log.info
+    run_id = uuid.uuid4().hex[:12]
+    started = now_iso()
+    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    with store.lock(run_id):
+        n = store.clean_partials()
+        if n:
+            say(f"removed {n} partial chunk file(s) left by an interrupted run")
+        prep = prepare(cfg, store, force=force)
+        for bad in prep.invalid:
+            say(f"invalid: {bad.relpath}: {bad.reason}; {bad.remedy}")
+        begin_run(store, prep)
+        outcomes: list[FileOutcome] = []
+        busy = [w for w in prep.work if w.has_work]
+        for w in prep.work:
+            if not w.has_work:
+                outcomes.extend(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") for f in w.files)
+        if busy:
+            with dask_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as client:
+                def one(w: SegmentWork) -> list[FileOutcome]:
+                    cb = None if on_block is None else (lambda d, t, r, sid=w.segment_id: on_block(sid, d, t, r))
+                    return run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
+
+                with ThreadPoolExecutor(max_workers=4) as pool:
+                    for outs in pool.map(one, busy):
+                        outcomes.extend(outs)
+        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
+        finish_run(store, result, cfg)
+    return result
+
+
+__all__ = ["Prepared", "RunResult", "designs_for", "prepare", "run_job", "segment_work", "library_versions",
+           "response_report"]

@@ -1,0 +1,408 @@
+"""Tests of twinpass.core.design: overall (two-pass) filter design.
+
+External references: scipy.signal (sosfreqz/freqz, sosfiltfilt/filtfilt, *ord functions)
+as the reference library; textbook order formulas; published Butterworth correction.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy import signal
+from scipy.special import ellipk
+
+from twinpass.core.design import (
+    FIR_PREFERENCE,
+    HALF_POWER_DB,
+    check_sos,
+    cost_per_sample,
+    design_filter,
+    design_for_rates,
+    format_report,
+    overall_response,
+    per_pass_response,
+    response_report,
+    validate_spec,
+)
+from twinpass.core.effective import effective_length
+from twinpass.core.types import ResponseSpec
+from twinpass.errors import DesignError, SpecError
+
+FS = 1000.0
+RIPPLE_DB = 1.0
+ATTEN_DB = 60.0
+EDGES = {
+    "lowpass": dict(passband_hz=(40.0,), stopband_hz=(60.0,)),
+    "highpass": dict(passband_hz=(60.0,), stopband_hz=(40.0,)),
+    "bandpass": dict(passband_hz=(100.0, 200.0), stopband_hz=(80.0, 230.0)),
+    "bandstop": dict(passband_hz=(80.0, 220.0), stopband_hz=(100.0, 200.0)),
+}
+FAMILIES = ("butterworth", "chebyshev1", "chebyshev2", "elliptic", "fir")
+
+
+def tolerance_spec(kind: str, family: str, **kw) -> ResponseSpec:
+    return ResponseSpec(
+        kind=kind,
+        family=family,
+        passband_ripple_db=RIPPLE_DB,
+        stopband_attenuation_db=ATTEN_DB,
+        **{**EDGES[kind], **kw},
+    )
+
+
+def scipy_overall_db(design, freqs: np.ndarray) -> np.ndarray:
+    """Two-pass gain in dB computed with scipy.signal directly (the reference library)."""
+    if design.sos is not None:
+        _, h = signal.sosfreqz(design.sos, worN=freqs, fs=design.sample_rate_hz)
+    else:
+        _, h = signal.freqz(design.taps, 1.0, worN=freqs, fs=design.sample_rate_hz)
+    with np.errstate(divide="ignore"):
+        return 20.0 * np.log10(np.abs(h) ** 2)
+
+
+def bands(kind: str, nyq: float):
+    p, s = EDGES[kind]["passband_hz"], EDGES[kind]["stopband_hz"]
+    if kind == "lowpass":
+        return [(0.0, p[0])], [(s[0], nyq)]
+    if kind == "highpass":
+        return [(p[0], nyq)], [(0.0, s[0])]
+    if kind == "bandpass":
+        return [p], [(0.0, s[0]), (s[1], nyq)]
+    return [(0.0, p[0]), (p[1], nyq)], [s]
+
+
+def independent_figures(design, kind: str) -> tuple[float, float]:
+    """Overall ripple (peak-to-trough) and attenuation on 2**16 points plus the exact edges."""
+    nyq = FS / 2
+    passbands, stopbands = bands(kind, nyq)
+    edges = [e for b in passbands + stopbands for e in b]
+    f = np.unique(np.concatenate([np.linspace(0, nyq, 2**16 + 1), edges]))
+    g = scipy_overall_db(design, f)
+    in_pass = np.any([(f >= lo) & (f <= hi) for lo, hi in passbands], axis=0)
+    in_stop = np.any([(f >= lo) & (f <= hi) for lo, hi in stopbands], axis=0)
+    return float(g[in_pass].max() - g[in_pass].min()), float(-g[in_stop].max())
+
+
+# ----------------------------------------------------------------------------- overall -> per pass
+
+
+@pytest.mark.parametrize("kind", list(EDGES))
+@pytest.mark.parametrize("family", FAMILIES)
+def test_overall_spec_is_halved_per_pass_and_met_by_two_passes(kind: str, family: str) -> None:
+    # Common practice: dB figures add over cascaded passes, so 60 dB overall needs 30 dB per
+    # pass and 1 dB overall ripple needs 0.5 dB per pass. Reference: scipy.signal.sosfreqz /
+    # freqz, squared (forward + backward = |H|^2), on a dense grid.
+    design = design_filter(tolerance_spec(kind, family), FS)
+    report = design.report
+    for edge in report["edges"]:
+        assert edge["overall_db"] == pytest.approx(2 * edge["per_pass_db"], abs=1e-9)
+        if edge["edge"] == "passband":
+            assert edge["per_pass_db"] >= -RIPPLE_DB / 2 - 1e-6
+        else:
+            assert edge["per_pass_db"] <= -ATTEN_DB / 2 + 1e-6
+    ripple, attenuation = independent_figures(design, kind)
+    assert ripple <= RIPPLE_DB + 1e-6
+    assert attenuation >= ATTEN_DB - 1e-6
+    assert report["passband_ripple_db"] == pytest.approx(ripple, abs=1e-3)
+    assert report["stopband_attenuation_db"] == pytest.approx(attenuation, abs=1e-3)
+    assert report["passband_ripple_margin_db"] >= -1e-6
+    assert report["stopband_attenuation_margin_db"] >= -1e-6
+
+
+@pytest.mark.parametrize("family", ["elliptic", "fir"])
+def test_overall_response_matches_forward_backward_filtering_of_tones(family: str) -> None:
+    # Reference: scipy.signal.sosfiltfilt / filtfilt. In steady state a tone's amplitude is
+    # scaled by the overall gain |H(f)|^2.
+    design = design_filter(tolerance_spec("lowpass", family), FS)
+    n = 20000
+    t = np.arange(n) / FS
+    for f in (25.0, 40.0, 60.0, 90.0):
+        x = np.sin(2 * np.pi * f * t)
+        if design.sos is not None:
+            y = signal.sosfiltfilt(design.sos, x)
+        else:
+            y = signal.filtfilt(design.taps, [1.0], x)
+        core = slice(5000, n - 5000)
+        gain = float(overall_response(design, [f])[0])
+        assert np.max(np.abs(y[core] - gain * x[core])) < 1e-6
+
+
+# ----------------------------------------------------------------------------- minimum orders
+
+
+def test_minimum_orders_match_textbook_formulas_and_worked_example() -> None:
+    # Order formulas (Oppenheim & Schafer, Discrete-Time Signal Processing, sec. 7.2; from
+    # memory): Butterworth N >= log10(D) / (2 log10 k), Chebyshev N >= acosh(sqrt(D)) / acosh(k),
+    # D = (10^(As/10) - 1) / (10^(Ap/10) - 1), k = ratio of the prewarped edges. Elliptic:
+    # N >= K(k') K(sqrt(1 - k1^2)) / (K(sqrt(1 - k'^2)) K(k1)), k' = 1/k, k1 = 1/sqrt(D)
+    # (standard elliptic order formula, e.g. Parks & Burrus, Digital Filter Design; from memory).
+    # Worked example (from memory), fs = 1000 Hz, low-pass 40 -> 60 Hz: 1 dB / 60 dB in one pass
+    # needs Butterworth 19, Chebyshev 9, elliptic 6; 0.5 / 30 dB per pass needs 11, 6 and 4.
+    # The formulas and scipy.signal's *ord functions agree with every recalled number.
+    k = math.tan(math.pi * 60 / FS) / math.tan(math.pi * 40 / FS)
+    expected = {(1.0, 60.0): (19, 9, 6), (0.5, 30.0): (11, 6, 4)}
+    for (ap, as_), (n_butter, n_cheb, n_ellip) in expected.items():
+        d = (10 ** (as_ / 10) - 1) / (10 ** (ap / 10) - 1)
+        assert math.ceil(math.log10(d) / (2 * math.log10(k))) == n_butter
+        assert math.ceil(math.acosh(math.sqrt(d)) / math.acosh(k)) == n_cheb
+        k1 = 1 / math.sqrt(d)
+        n_e = ellipk(1 / k**2) * ellipk(1 - k1**2) / (ellipk(1 - 1 / k**2) * ellipk(k1**2))
+        assert math.ceil(n_e) == n_ellip
+        assert signal.buttord(40, 60, ap, as_, fs=FS)[0] == n_butter
+        assert signal.cheb1ord(40, 60, ap, as_, fs=FS)[0] == n_cheb
+        assert signal.cheb2ord(40, 60, ap, as_, fs=FS)[0] == n_cheb
+        assert signal.ellipord(40, 60, ap, as_, fs=FS)[0] == n_ellip
+    # The designer asked for 1 dB / 60 dB OVERALL designs the 0.5 / 30 dB per-pass orders.
+    per_pass = {"butterworth": 11, "chebyshev1": 6, "chebyshev2": 6, "elliptic": 4}
+    for family, order in per_pass.items():
+        design = design_filter(tolerance_spec("lowpass", family), FS)
+        assert design.order == order, family
+        assert design.report["order_per_pass"] == order
+
+
+# ----------------------------------------------------------------------------- zero phase
+
+
+@pytest.fixture(scope="module")
+def bandpass_design():
+    return design_filter(tolerance_spec("bandpass", "elliptic"), FS)
+
+
+def test_passband_tone_has_zero_lag(bandpass_design) -> None:
+    # Reference: scipy.signal.sosfiltfilt; zero phase means no delay (common practice).
+    n = 8000
+    t = np.arange(n) / FS
+    x = np.sin(2 * np.pi * 150.0 * t) * np.hanning(n)
+    y = signal.sosfiltfilt(bandpass_design.sos, x)
+    xc = signal.correlate(y, x, mode="full")
+    lags = signal.correlation_lags(n, n, mode="full")
+    assert lags[np.argmax(xc)] == 0
+
+
+def test_step_response_starts_before_the_step() -> None:
+    # Reference: scipy.signal.sosfiltfilt; forward-backward filtering is non-causal (common
+    # practice): the output moves before the input does, within the effective length.
+    design = design_filter(ResponseSpec(kind="lowpass", family="butterworth", order=4, cutoff_hz=(20.0,)), FS)
+    n, n0 = 4000, 2000
+    x = np.zeros(n)
+    x[n0:] = 1.0
+    y = signal.sosfiltfilt(design.sos, x)
+    assert np.max(np.abs(y[n0 - 20 : n0])) > 0.05
+    assert np.max(np.abs(y[: n0 - design.effective_length])) < 1e-8
+    assert f"{design.effective_length} samples" in design.report["statement"]
+
+
+def test_overall_response_is_real_and_non_negative(bandpass_design) -> None:
+    # Reference: scipy.signal.sosfiltfilt of an impulse. Its two-pass impulse response is
+    # symmetric about the impulse, so its spectrum is real (phase 0) and equals |H|^2 >= 0.
+    n = 8192
+    c = n // 2
+    x = np.zeros(n)
+    x[c] = 1.0
+    h2 = signal.sosfiltfilt(bandpass_design.sos, x, padtype=None)
+    assert np.allclose(h2[c + 1 : c + 2000], h2[c - 1 : c - 2000 : -1], atol=1e-14)
+    spectrum = np.fft.rfft(np.roll(h2, -c))
+    freqs = np.fft.rfftfreq(n, d=1 / FS)
+    assert np.max(np.abs(spectrum.imag)) < 1e-10
+    assert np.min(spectrum.real) > -1e-10
+    assert np.allclose(spectrum.real, overall_response(bandpass_design, freqs), atol=1e-8)
+    per_pass = per_pass_response(bandpass_design, freqs)
+    assert np.allclose(per_pass * np.conj(per_pass), overall_response(bandpass_design, freqs))
+
+
+# ----------------------------------------------------------------------------- cutoff meaning
+
+
+def test_butterworth_twice_is_half_at_per_pass_cutoff() -> None:
+    # Common practice: a Butterworth filter run twice has gain 0.5 (-6.02 dB) at its own
+    # cutoff. Reference: scipy.signal.sosfreqz.
+    for kind in ("lowpass", "highpass"):
+        spec = ResponseSpec(kind=kind, family="butterworth", order=2, cutoff_hz=(10.0,), cutoff_means="per-pass")
+        design = design_filter(spec, FS)
+        _, h = signal.sosfreqz(design.sos, worN=[10.0], fs=FS)
+        assert abs(h[0]) ** 2 == pytest.approx(0.5, abs=1e-12)
+
+
+def test_overall_3db_correction_matches_published_factor() -> None:
+    # D. A. Winter, Biomechanics and Motor Control of Human Movement, 4th ed., 2009 (from
+    # memory): a 2nd-order low-pass run twice is corrected with the factor 0.802, i.e. the
+    # per-pass cutoff is f_c / 0.802. Closed form: tan(pi f_d/fs) = tan(pi f_c/fs) / C,
+    # C = (sqrt(2) - 1)^(1/(2N)). Reference response: scipy.signal.sosfreqz.
+    fc = 6.0
+    design = design_filter(ResponseSpec(kind="lowpass", family="butterworth", order=2, cutoff_hz=(fc,)), FS)
+    _, h = signal.sosfreqz(design.sos, worN=[fc], fs=FS)
+    assert 20 * np.log10(abs(h[0]) ** 2) == pytest.approx(HALF_POWER_DB, abs=1e-6)
+    # The per-pass -3.0103 dB point (the overall -6.02 dB point) is the design cutoff.
+    (f_design,) = design.report["overall_minus6db_hz"]
+    c = (math.sqrt(2) - 1) ** (1 / 4)
+    assert c == pytest.approx(0.802, abs=5e-4)
+    assert math.tan(math.pi * f_design / FS) == pytest.approx(math.tan(math.pi * fc / FS) / c, rel=1e-9)
+    assert fc / f_design == pytest.approx(0.802, abs=1e-3)
+    # High-pass mirror: the per-pass cutoff is lower, tan(pi f_d/fs) = tan(pi f_c/fs) * C.
+    hp = design_filter(ResponseSpec(kind="highpass", family="butterworth", order=2, cutoff_hz=(fc,)), FS)
+    (f_design_hp,) = hp.report["overall_minus6db_hz"]
+    assert math.tan(math.pi * f_design_hp / FS) == pytest.approx(math.tan(math.pi * fc / FS) * c, rel=1e-9)
+
+
+CUTOFFS = {"lowpass": (10.0,), "highpass": (10.0,), "bandpass": (20.0, 80.0), "bandstop": (45.0, 55.0)}
+
+
+@pytest.mark.parametrize("kind", list(CUTOFFS))
+@pytest.mark.parametrize("family", FAMILIES)
+def test_overall_3db_lands_on_every_cutoff(kind: str, family: str) -> None:
+    # Reference: scipy.signal.sosfreqz / freqz, squared: -3.0103 dB overall at each cutoff.
+    spec = ResponseSpec(
+        kind=kind,
+        family=family,
+        order=400 if family == "fir" else 4,
+        cutoff_hz=CUTOFFS[kind],
+        passband_ripple_db=1.0,
+        stopband_attenuation_db=60.0,
+    )
+    design = design_filter(spec, FS)
+    g = scipy_overall_db(design, np.asarray(CUTOFFS[kind]))
+    assert np.allclose(g, 10 * np.log10(0.5), atol=1e-6)
+    assert design.report["overall_minus3db_hz"] == pytest.approx(list(CUTOFFS[kind]), abs=1e-6)
+
+
+def test_notch_overall_width_and_q() -> None:
+    # Reference: scipy.signal.sosfreqz. The overall (two-pass) -3.0103 dB points are the
+    # requested width apart around the notch; Q = notch_hz / width; gain 1 far from it.
+    for width_hz, q in ((3.0, None), (None, 25.0)):
+        spec = ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=width_hz, notch_q=q)
+        design = design_filter(spec, FS)
+        expected = width_hz if width_hz is not None else 50.0 / q
+        lo, hi = design.report["overall_minus3db_hz"]
+        assert lo < 50.0 < hi
+        assert hi - lo == pytest.approx(expected, rel=1e-9)
+        g = scipy_overall_db(design, np.array([lo, hi, 50.0, 0.0, FS / 2]))
+        assert np.allclose(g[:2], HALF_POWER_DB, atol=1e-6)
+        assert g[2] < -100.0
+        assert np.allclose(g[3:], 0.0, atol=1e-9)
+
+
+# ----------------------------------------------------------------------------- errors
+
+
+ERROR_CASES = [
+    (dict(kind="lowpass", order=4, cutoff_hz=(10.0,)), None, "sample rate"),
+    (dict(kind="lowpass", order=4, cutoff_hz=(500.0,)), FS, "500"),
+    (dict(kind="lowpass", order=4, cutoff_hz=(0.0,)), FS, "edge 0 Hz"),
+    (dict(kind="lowpass", order=4, cutoff_hz=(-5.0,)), FS, "-5"),
+    (dict(kind="bandpass", order=4, cutoff_hz=(80.0, 20.0)), FS, "(80, 20)"),
+    (dict(kind="bandpass", order=4, cutoff_hz=(20.0,)), FS, "cutoff_hz=(20)"),
+    (dict(kind="lowpass", order=4, cutoff_hz=(10.0, 20.0)), FS, "cutoff_hz=(10, 20)"),
+    (dict(kind="lowpass", passband_hz=(40.0,), stopband_hz=(30.0,), passband_ripple_db=1.0,
+          stopband_attenuation_db=60.0), FS, "stopband_hz=(30)"),
+    (dict(kind="bandpass", passband_hz=(100.0, 200.0), stopband_hz=(120.0, 230.0),
+          passband_ripple_db=1.0, stopband_attenuation_db=60.0), FS, "stopband_hz=(120, 230)"),
+    (dict(kind="lowpass", passband_hz=(40.0,), stopband_hz=(60.0,), passband_ripple_db=3.0,
+          stopband_attenuation_db=2.0), FS, "stopband_attenuation_db=2"),
+    (dict(kind="lowpass", passband_hz=(40.0,), stopband_hz=(60.0,), passband_ripple_db=1.0,
+          stopband_attenuation_db=60.0, order=4), FS, "order"),
+    (dict(kind="lowpass"), FS, "neither"),
+    (dict(kind="lowpass", order=4, cutoff_hz=(10.0,), cutoff_means="half-power"), FS, "half-power"),
+    (dict(kind="notch", notch_width_hz=2.0), FS, "notch_hz"),
+    (dict(kind="notch", notch_hz=50.0), FS, "notch_width_hz"),
+    (dict(kind="lowpass", order=70, cutoff_hz=(10.0,)), FS, "order=70"),
+    (dict(kind="lowpass", family="butterworth", passband_hz=(40.0,), stopband_hz=(41.0,),
+          passband_ripple_db=0.1, stopband_attenuation_db=120.0), FS, "needs order"),
+    (dict(kind="lowpass", family="fir", passband_hz=(40.0,), stopband_hz=(40.05,),
+          passband_ripple_db=0.1, stopband_attenuation_db=120.0), FS, "max_taps=20001"),
+]
+
+
+@pytest.mark.parametrize(("fields", "fs", "needle"), ERROR_CASES)
+def test_errors_name_the_offending_value(fields: dict, fs, needle: str) -> None:
+    # Each invalid request raises our SpecError naming the value to change.
+    with pytest.raises(SpecError) as info:
+        design_filter(ResponseSpec(**fields), fs)
+    assert needle in str(info.value)
+    if fs is not None and "needs order" not in needle and "max_taps" not in needle:
+        with pytest.raises(SpecError):
+            validate_spec(ResponseSpec(**fields), fs)
+
+
+def test_unstable_and_badly_conditioned_designs_raise_design_error() -> None:
+    # A hand-made section with a pole pair at radius 1.01 (a2 = r^2) is unstable.
+    unstable = np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 1.01**2]])
+    with pytest.raises(DesignError, match="unstable"):
+        check_sos(unstable)
+    # A cutoff 1e-8 Hz at 1 kHz puts the poles within ~6e-11 of the unit circle.
+    spec = ResponseSpec(kind="lowpass", family="butterworth", order=2, cutoff_hz=(1e-8,))
+    with pytest.raises(DesignError, match="badly conditioned"):
+        design_filter(spec, FS)
+
+
+# ----------------------------------------------------------------------------- auto, rates, report
+
+
+def test_auto_picks_an_iir_that_meets_the_spec() -> None:
+    # Reference: scipy.signal.sosfreqz on a dense grid. For this spec the cheapest design is
+    # an elliptic filter of order 4 (2 sections, 20 multiply-adds per sample).
+    design = design_filter(tolerance_spec("bandpass", "auto"), FS)
+    assert design.family in ("butterworth", "chebyshev1", "chebyshev2", "elliptic")
+    assert design.sos is not None and design.taps is None
+    ripple, attenuation = independent_figures(design, "bandpass")
+    assert ripple <= RIPPLE_DB + 1e-6 and attenuation >= ATTEN_DB - 1e-6
+    # Cost model: the cheapest IIR; FIR only if it costs less than half as much.
+    cost = design.report["cost_per_sample"]
+    for family in FAMILIES:
+        other = design_filter(tolerance_spec("bandpass", family), FS).report["cost_per_sample"]
+        assert cost <= other if family != "fir" else FIR_PREFERENCE * cost <= other
+
+
+def test_cost_model() -> None:
+    # IIR: 5 multiply-adds per section per pass; FIR: min(2M - 1, 4 log2 N_fft).
+    sos = signal.butter(4, 10.0, fs=FS, output="sos")
+    assert cost_per_sample(sos=sos) == 20.0
+    assert cost_per_sample(taps=np.ones(5)) == 9.0  # direct: 2*5 - 1
+    assert cost_per_sample(taps=np.ones(1000)) == 4.0 * 12  # FFT of 4096 >= 2 * 1999
+
+
+def test_design_for_rates_one_design_per_distinct_rate() -> None:
+    spec = ResponseSpec(kind="highpass", family="butterworth", order=4, cutoff_hz=(1.0,))
+    designs = design_for_rates(spec, [250, 1000.0, 250.0, 500], tolerance=1e-6)
+    assert sorted(designs) == [250.0, 500.0, 1000.0]
+    for rate, design in designs.items():
+        assert design.sample_rate_hz == rate
+        g = scipy_overall_db(design, np.array([1.0]))
+        assert g[0] == pytest.approx(HALF_POWER_DB, abs=1e-6)
+    with pytest.raises(SpecError, match="at sample rate 100 Hz"):
+        design_for_rates(ResponseSpec(kind="lowpass", order=4, cutoff_hz=(60.0,)), [1000.0, 100.0])
+
+
+def _plain(value) -> bool:
+    if isinstance(value, dict):
+        return all(isinstance(k, str) and _plain(v) for k, v in value.items())
+    if isinstance(value, list):
+        return all(_plain(v) for v in value)
+    return value is None or type(value) in (str, int, float, bool)
+
+
+@pytest.mark.parametrize(
+    "spec",
+    [
+        tolerance_spec("bandstop", "chebyshev2"),
+        tolerance_spec("lowpass", "fir"),
+        ResponseSpec(kind="notch", notch_hz=60.0, notch_q=30.0),
+    ],
+)
+def test_report_is_plain_json_and_formats(spec: ResponseSpec) -> None:
+    design = design_filter(spec, FS, tolerance=1e-7)
+    report = response_report(design)
+    assert _plain(report)
+    json.dumps(report, allow_nan=False)
+    assert report == design.report
+    # Halo: twinpass.core.effective for the same tolerance; for FIR exactly M - 1.
+    assert report["effective_length_samples"] == effective_length(sos=design.sos, taps=design.taps, tolerance=1e-7)
+    if design.taps is not None:
+        assert report["effective_length_samples"] == design.taps.size - 1
+        assert report["max_pole_radius"] is None
+    assert report["effective_length_seconds"] == pytest.approx(report["effective_length_samples"] / FS)
+    text = format_report(report)
+    assert report["kind"] in text and report["family"] in text
+    assert "non-causal" in text

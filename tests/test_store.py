@@ -1,0 +1,453 @@
+"""The Zarr v3 output store: layout, chunk-aligned writes, block tables, locking, safety.
+
+Every test builds a real Zarr store (in ``tmp_path`` or fsspec's in-memory file system)
+and reads it back, often through ``zarr.json`` with the standard ``json`` module.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import errno
+import json
+import logging
+import socket
+import subprocess
+import sys
+import uuid
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import pytest
+import zarr
+from zarr.storage import LocalStore
+
+from twinpass.errors import StoreError, StoreLockedError, UnsafePathError
+from twinpass.io.store import (
+    BlockStatus,
+    OutputStore,
+    array_name,
+    json_safe,
+    write_block_data,
+)
+
+SOURCE = "deck-north/deck-north_20260301T000000.wav"
+NAME = "deck-north/deck-north_20260301T000000"
+COLUMNS = ["passband_db", "phase_deg"]
+
+
+def _strict_json(text: str) -> object:
+    """Parse JSON as RFC 8259 defines it: NaN and Infinity are not JSON values."""
+
+    def refuse(token: str) -> object:
+        raise ValueError(f"non-JSON constant {token}")
+
+    return json.loads(text, parse_constant=refuse)
+
+
+def _attrs(source: str = SOURCE, **extra: object) -> dict:
+    return {
+        "sample_rate_hz": np.float64(1000.0),
+        "source": source,
+        "source_fingerprint": {"size": np.int64(1234), "digest": "ab12"},
+        "stream": "deck-north",
+        "segment": "deck-north#0",
+        "start_time": dt.datetime(2026, 3, 1, 0, 0, tzinfo=dt.timezone.utc),
+        "edge_zone_samples": (np.int32(30), 30),
+        "filter": {"family": "butterworth", "order": 4, "sos": np.ones((2, 6)), "tolerance": np.float32(1e-9)},
+        "design_digest": "d1",
+        "checks": {"worst_db": np.nan, "peak": np.inf},
+        **extra,
+    }
+
+
+def _prepare(store: OutputStore, name: str = NAME, *, frames: int = 100, channels: int = 3,
+             chunk: int = 20, spans=((0, 40), (40, 80), (80, 100)), keep_done: bool = True,
+             compression: str = "lz4", dtype: str = "float32", source: str = SOURCE, seam: int = 4):
+    return store.prepare_file(
+        name, frames=frames, channels=channels, dtype=dtype, chunk_samples=chunk,
+        compression=compression, attrs=_attrs(source), spans=list(spans),
+        n_figures_columns=COLUMNS, seam_samples=seam, keep_done=keep_done,
+    )
+
+
+def _finish_block(store: OutputStore, i: int, status: BlockStatus = BlockStatus.PASS,
+                  name: str = NAME, channels: int = 3, seam: int = 4) -> np.ndarray:
+    """Write block i's data (value i + 1) then record it, as the engine does."""
+    a, b = store.read_block_table(name, figures=False, seams=False).span[i]
+    data = np.full((b - a, channels), i + 1.0)
+    write_block_data(store.location, name, int(a), data)
+    figures = np.arange(channels * len(COLUMNS), dtype=float).reshape(channels, len(COLUMNS)) + i
+    seams = np.full((4, seam, channels), float(i))
+    store.record_block(name, i, status, figures, seams, None)
+    return data
+
+
+@pytest.fixture
+def store(tmp_path: Path) -> OutputStore:
+    return OutputStore.open(str(tmp_path / "out.zarr"))
+
+
+# -- layout ----------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("compression, cname, clevel", [("none", None, None), ("lz4", "lz4", 5), ("zstd", "zstd", 1)])
+def test_layout_matches_zarr_v3_metadata(tmp_path: Path, compression: str, cname: str | None, clevel: int | None):
+    root = tmp_path / "out.zarr"
+    store = OutputStore.open(str(root))
+    _prepare(store, compression=compression)
+    # Zarr v3 core specification, "Array metadata": zarr.json holds zarr_format, node_type,
+    # shape, data_type, chunk_grid (regular, chunk_shape), fill_value, codecs, attributes
+    # and the optional dimension_names.
+    meta = _strict_json((root / NAME / "zarr.json").read_text())
+    assert meta["zarr_format"] == 3 and meta["node_type"] == "array"
+    assert meta["shape"] == [100, 3]
+    assert meta["data_type"] == "float32"
+    assert meta["chunk_grid"] == {"name": "regular", "configuration": {"chunk_shape": [20, 3]}}
+    assert meta["fill_value"] == 0.0
+    assert meta["dimension_names"] == ["time", "channel"]
+    blosc = [c for c in meta["codecs"] if c["name"] == "blosc"]
+    if cname is None:
+        assert blosc == []
+    else:
+        # Zarr v3 blosc codec specification: configuration cname, clevel, shuffle, typesize, blocksize.
+        assert len(blosc) == 1
+        cfg = blosc[0]["configuration"]
+        assert (cfg["cname"], cfg["clevel"], cfg["shuffle"]) == (cname, clevel, "shuffle")
+    group_meta = _strict_json((root / "zarr.json").read_text())
+    assert group_meta["zarr_format"] == 3 and group_meta["node_type"] == "group"
+
+    attrs = meta["attributes"]
+    assert attrs["complete"] is False
+    assert attrs["sample_rate_hz"] == 1000.0
+    assert attrs["edge_zone_samples"] == [30, 30]
+    assert attrs["checks"] == {"worst_db": None, "peak": None}  # RFC 8259: no NaN/Infinity in JSON
+    assert attrs["filter"]["sos"] == [[1.0] * 6] * 2
+    # ISO 8601 extended format with UTC offset
+    assert dt.datetime.fromisoformat(attrs["start_time"]) == dt.datetime(2026, 3, 1, tzinfo=dt.timezone.utc)
+    assert attrs["blocks"] == {"count": 3, "block_samples": 40, "chunk_samples": 20}
+
+    # block tables, hidden under _twinpass/blocks/<array name>/
+    tables = root / "_twinpass" / "blocks" / NAME
+    status = _strict_json((tables / "status" / "zarr.json").read_text())
+    assert (status["shape"], status["data_type"]) == ([3], "int8")
+    span = _strict_json((tables / "span" / "zarr.json").read_text())
+    assert (span["shape"], span["data_type"]) == ([3, 2], "int64")
+    figures = json.loads((tables / "figures" / "zarr.json").read_text())  # fill_value "NaN" is the v3 encoding
+    assert figures["shape"] == [3, 3, 2]
+    assert figures["chunk_grid"]["configuration"]["chunk_shape"] == [1, 3, 2]
+    assert figures["attributes"]["columns"] == COLUMNS
+    seams = json.loads((tables / "seams" / "zarr.json").read_text())
+    assert seams["shape"] == [3, 4, 4, 3]
+    assert seams["chunk_grid"]["configuration"]["chunk_shape"] == [1, 4, 4, 3]
+    assert store.list_arrays() == [NAME]
+
+
+def test_json_safe_converts_numpy_nan_tuples_and_datetimes():
+    out = json_safe({
+        "a": np.float32(0.5), "b": np.int16(-3), "c": (1, np.nan), "d": np.array([[np.inf, 2.0]]),
+        "e": dt.date(2026, 3, 1), "f": np.bool_(True), 7: Path("x/y"), "g": np.datetime64("2026-03-01T00:00"),
+    })
+    # RFC 8259 forbids NaN/Infinity: they become null
+    assert json.dumps(out, allow_nan=False)
+    assert out == {"a": 0.5, "b": -3, "c": [1, None], "d": [[None, 2.0]], "e": "2026-03-01", "f": True,
+                   "7": "x/y", "g": "2026-03-01T00:00"}
+    with pytest.raises(StoreError, match="object"):
+        json_safe({"bad": object()})
+
+
+# -- data writes -----------------------------------------------------------------
+
+
+def test_chunk_aligned_writes_from_threads_land_exactly(store: OutputStore, tmp_path: Path):
+    frames, chunk = 1010, 50  # last block ends mid-chunk at the array end
+    spans = [(a, min(a + 100, frames)) for a in range(0, frames, 100)]
+    _prepare(store, frames=frames, chunk=chunk, spans=spans, channels=4)
+    rng = np.random.default_rng(7)
+    expected = rng.standard_normal((frames, 4)).astype(np.float32)
+    expected[200:300] = 0.0  # an all-fill block must still be stored
+    with ThreadPoolExecutor(4) as pool:
+        list(pool.map(lambda s: write_block_data(store.location, NAME, s[0], expected[s[0]:s[1]]), spans))
+    # reference: the same values assembled in memory, bit for bit
+    np.testing.assert_array_equal(store.read(NAME), expected)
+    np.testing.assert_array_equal(store.read(NAME, 990, 1010), expected[990:1010])
+    chunk_dir = tmp_path / "out.zarr" / NAME / "c"
+    assert sorted(int(p.name) for p in chunk_dir.iterdir()) == list(range(21))  # ceil(1010 / 50) chunk rows
+
+
+def test_misaligned_writes_are_refused(store: OutputStore):
+    _prepare(store)
+    with pytest.raises(StoreError, match="not aligned"):
+        write_block_data(store.location, NAME, 10, np.zeros((30, 3)))  # starts mid-chunk
+    with pytest.raises(StoreError, match="not aligned"):
+        write_block_data(store.location, NAME, 0, np.zeros((30, 3)))  # ends mid-chunk, not at the end
+    with pytest.raises(StoreError, match="outside"):
+        write_block_data(store.location, NAME, 80, np.zeros((40, 3)))
+    with pytest.raises(StoreError, match="shape"):
+        write_block_data(store.location, NAME, 0, np.zeros((40, 2)))
+    with pytest.raises(StoreError, match="not found"):
+        write_block_data(store.location, "deck-north/missing", 0, np.zeros((20, 3)))
+    np.testing.assert_array_equal(store.read(NAME), np.zeros((100, 3), np.float32))
+
+
+# -- block tables -----------------------------------------------------------------
+
+
+def test_block_table_round_trip(store: OutputStore):
+    table = _prepare(store)
+    assert table.status.tolist() == [0, 0, 0]
+    assert table.span.tolist() == [[0, 40], [40, 80], [80, 100]]
+    _finish_block(store, 0)
+    _finish_block(store, 1, BlockStatus.WARN)
+    write_block_data(store.location, NAME, 80, np.ones((20, 3)))
+    store.record_block(NAME, 2, BlockStatus.ERROR, None, None, "ValueError: boom")
+    t = store.read_block_table(NAME)
+    assert t.status.tolist() == [BlockStatus.PASS, BlockStatus.WARN, BlockStatus.ERROR]
+    assert t.columns == tuple(COLUMNS) and t.seam_samples == 4
+    assert t.errors == {2: "ValueError: boom"}
+    np.testing.assert_array_equal(t.figures[1], np.arange(6.0).reshape(3, 2) + 1)
+    assert np.isnan(t.figures[2]).all()
+    np.testing.assert_array_equal(t.seams[0], np.zeros((4, 4, 3)))
+    np.testing.assert_array_equal(store.read_seams(NAME, [1]), np.ones((1, 4, 4, 3)))
+    assert t.counts() == {"pending": 0, "pass": 1, "warn": 1, "fail": 0, "error": 1}
+    assert t.todo().tolist() == [2]
+    # a later pass clears the block's error message
+    _finish_block(store, 2)
+    assert store.read_block_table(NAME, figures=False, seams=False).errors == {}
+    with pytest.raises(StoreError, match="shape"):
+        store.record_block(NAME, 0, BlockStatus.PASS, np.zeros((2, 2)), None, None)
+
+
+def test_pass_needs_written_data(store: OutputStore):
+    _prepare(store)
+    with pytest.raises(StoreError, match="missing"):
+        store.record_block(NAME, 1, BlockStatus.PASS, None, None, None)
+    assert store.read_block_table(NAME).status.tolist() == [0, 0, 0]
+
+
+def test_resume_keeps_done_blocks_only_when_nothing_changed(store: OutputStore):
+    _prepare(store)
+    data0 = _finish_block(store, 0)
+    assert _prepare(store, keep_done=True).status.tolist() == [1, 0, 0]
+    np.testing.assert_array_equal(store.read(NAME, 0, 40), data0)
+    assert _prepare(store, keep_done=False).status.tolist() == [0, 0, 0]
+
+    _finish_block(store, 0)
+    # other spans: statuses reset, data kept (same array layout)
+    assert _prepare(store, spans=[(0, 60), (60, 100)]).status.tolist() == [0, 0]
+    np.testing.assert_array_equal(store.read(NAME, 0, 40), data0)
+    # other chunking: the array is recreated, old data gone
+    _prepare(store, chunk=10, spans=[(0, 60), (60, 100)])
+    np.testing.assert_array_equal(store.read(NAME), np.zeros((100, 3), np.float32))
+
+
+def test_invalidate_and_set_complete(store: OutputStore, tmp_path: Path):
+    _prepare(store)
+    for i in range(3):
+        _finish_block(store, i)
+    store.set_complete(NAME, True, {"worst_passband_db": np.float64(0.1), "nan": np.nan})
+    attrs = _strict_json((tmp_path / "out.zarr" / NAME / "zarr.json").read_text())["attributes"]
+    assert attrs["complete"] is True and attrs["checks"] == {"worst_passband_db": 0.1, "nan": None}
+    assert store.file_records()[SOURCE].complete
+
+    store.invalidate_blocks(NAME, [1])
+    t = store.read_block_table(NAME)
+    assert t.status.tolist() == [1, 0, 1] and np.isnan(t.figures[1]).all()
+    assert store.array_attrs(NAME)["complete"] is False
+    with pytest.raises(StoreError, match="pending 1"):
+        store.set_complete(NAME, True, None)
+
+    _finish_block(store, 1, BlockStatus.FAIL)
+    with pytest.raises(StoreError, match="fail 1"):
+        store.set_complete(NAME, True, None)
+    assert store.array_attrs(NAME)["complete"] is False
+    with pytest.raises(StoreError, match="set_complete"):
+        store.update_attrs(NAME, complete=True)
+
+    # preparing again marks a complete array incomplete before anything else
+    _finish_block(store, 1)
+    store.set_complete(NAME, True, None)
+    _prepare(store)
+    assert store.array_attrs(NAME)["complete"] is False
+
+
+def test_file_records_root_info_and_removal(store: OutputStore):
+    _prepare(store)
+    other = array_name("deck-south/b.wav")
+    _prepare(store, other, source="deck-south/b.wav")
+    zarr.open_group(store.local_root, mode="r+").create_array("foreign", shape=(4,), dtype="f4")
+    records = store.file_records()
+    assert set(records) == {SOURCE, "deck-south/b.wav"}
+    rec = records[SOURCE]
+    assert (rec.array_name, rec.frames, rec.design_digest, rec.complete, rec.segment) == (NAME, 100, "d1", False, "deck-north#0")
+    assert rec.source_fingerprint == {"size": 1234, "digest": "ab12"}
+
+    store.set_root_info({"response": {"kind": "bandpass"}}, {"zarr": zarr.__version__})
+    store.append_run({"run_id": "r1", "start": dt.datetime(2026, 3, 2), "end": None, "counts": {"pass": 3},
+                      "config_digest": "c"})
+    store.append_run({"run_id": "r2"})
+    info = OutputStore.open(store.location, "r").read_root_info()
+    assert info["spec"] == {"response": {"kind": "bandpass"}}
+    assert [r["run_id"] for r in info["runs"]] == ["r1", "r2"]
+    assert info["runs"][0]["start"] == "2026-03-02T00:00:00"
+
+    assert store.force_reset([other]) == 1
+    assert store.list_arrays() == [NAME, "foreign"]
+    with pytest.raises(StoreError, match="block table"):
+        store.read_block_table(other)
+
+
+# -- locking and clean-up -----------------------------------------------------------
+
+
+def test_second_lock_is_refused_naming_the_holder(store: OutputStore, tmp_path: Path):
+    # The lock file is created with open(2) O_CREAT | O_EXCL (POSIX: fails if the file exists).
+    lock_path = tmp_path / "out.zarr" / ".twinpass-lock"
+    with store.lock("run-one"):
+        holder = json.loads(lock_path.read_text())
+        assert holder["run_id"] == "run-one" and holder["host"] == socket.gethostname()
+        with pytest.raises(StoreLockedError) as err:
+            with OutputStore.open(store.location).lock("run-two"):
+                pass
+        msg = str(err.value)
+        assert "run-one" in msg and str(holder["pid"]) in msg and "delete" in msg and str(lock_path) in msg
+    assert not lock_path.exists()
+    with store.lock("run-two"):
+        assert store.list_arrays() == []  # the lock file is not taken for an array
+
+
+def test_stale_lock_is_recovered_with_a_warning(store: OutputStore, tmp_path: Path, caplog):
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    lock_path = tmp_path / "out.zarr" / ".twinpass-lock"
+    lock_path.write_text(json.dumps({"pid": dead.pid, "host": socket.gethostname(), "run_id": "old",
+                                     "started": "2026-03-01T00:00:00+00:00"}))
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        with store.lock("new"):
+            assert json.loads(lock_path.read_text())["run_id"] == "new"
+    assert "stale" in caplog.text and "old" in caplog.text
+    # a lock from another host cannot be judged: refused
+    lock_path.write_text(json.dumps({"pid": dead.pid, "host": "elsewhere-" + uuid.uuid4().hex, "run_id": "far",
+                                     "started": "2026-03-01T00:00:00+00:00"}))
+    with pytest.raises(StoreLockedError, match="far"):
+        with store.lock("new"):
+            pass
+
+
+def test_partial_files_are_cleaned(store: OutputStore, tmp_path: Path):
+    _prepare(store)
+    _finish_block(store, 0)
+    chunk_dir = tmp_path / "out.zarr" / NAME / "c"
+    (chunk_dir / f"3.{uuid.uuid4().hex}.partial").write_bytes(b"junk")
+    (tmp_path / "out.zarr" / NAME / f"zarr.json.{uuid.uuid4().hex}.partial").write_bytes(b"{")
+    assert store.clean_partials() == 2
+    assert not list((tmp_path / "out.zarr").rglob("*.partial"))
+    assert store.clean_partials() == 0
+    assert store.read(NAME, 0, 40).tolist() == np.ones((40, 3)).tolist()
+
+
+# -- names and paths ---------------------------------------------------------------
+
+
+@pytest.mark.parametrize("relpath", ["../x.wav", "/abs.wav", "a/../../b.wav", "_twinpass/x.wav",
+                                     "C:/x.wav", "a\\b.wav", "a//b.wav", "a/", "./a.wav", ".hidden/x.wav",
+                                     "zarr.json.wav", ""])
+def test_array_name_rejects_escaping_or_reserved_paths(relpath: str):
+    with pytest.raises(UnsafePathError, match="cannot name an output array"):
+        array_name(relpath)
+
+
+def test_array_name_normalises():
+    assert array_name("we ird#name.wav") == "we_ird_name"
+    assert array_name("deck north/a.b.wav") == "deck_north/a.b"
+    assert array_name("café/x") == "caf_/x"
+    assert array_name(SOURCE) == NAME
+
+
+def test_colliding_names_are_refused(store: OutputStore):
+    _prepare(store, "deck/a", source="deck/a.wav")
+    with pytest.raises(UnsafePathError, match="both map"):
+        _prepare(store, "deck/a", source="deck/a.npy")
+    with pytest.raises(UnsafePathError, match="inside the output array"):
+        _prepare(store, "deck/a/b", source="deck/a/b.wav")
+    with pytest.raises(UnsafePathError, match="group"):
+        _prepare(store, "deck", source="deck.wav")
+
+
+def test_store_overlapping_the_archive_is_refused(tmp_path: Path):
+    archive = tmp_path / "archive"
+    archive.mkdir()
+    with pytest.raises(UnsafePathError, match="inside the archive root"):
+        OutputStore.open(str(archive / "out.zarr"), archive_root=archive)
+    with pytest.raises(UnsafePathError, match="is the archive root"):
+        OutputStore.open(f"file://{archive}", archive_root=archive)
+    with pytest.raises(UnsafePathError, match="inside the output store"):
+        OutputStore.open(str(tmp_path), archive_root=archive)
+    assert OutputStore.open(str(tmp_path / "out.zarr"), archive_root=archive).list_arrays() == []
+
+
+def test_missing_or_foreign_store_is_refused(tmp_path: Path):
+    with pytest.raises(StoreError, match="not found"):
+        OutputStore.open(str(tmp_path / "none.zarr"), "r")
+    (tmp_path / "docs").mkdir()
+    (tmp_path / "docs" / "notes.txt").write_text("keep me")
+    with pytest.raises(StoreError, match="not a Zarr store"):
+        OutputStore.open(str(tmp_path / "docs"))
+    OutputStore.open(str(tmp_path / "s.zarr"))
+    ro = OutputStore.open(str(tmp_path / "s.zarr"), "r")
+    with pytest.raises(StoreError, match="read-only"):
+        _prepare(ro)
+
+
+def test_force_reset_does_not_follow_links_out_of_the_store(store: OutputStore, tmp_path: Path):
+    outside = tmp_path / "outside.zarr"
+    zarr.create_array(LocalStore(outside), name="victim", shape=(4,), dtype="f4", fill_value=1)
+    (tmp_path / "out.zarr" / "link").symlink_to(outside, target_is_directory=True)
+    with pytest.raises(UnsafePathError, match="not inside the output store"):
+        store.force_reset(["link/victim"])
+    assert (outside / "victim" / "zarr.json").exists()
+
+
+# -- other file systems and faults ----------------------------------------------------
+
+
+def test_fsspec_memory_store():
+    url = f"memory://twinpass-test-{uuid.uuid4().hex}/out.zarr"
+    store = OutputStore.open(url)
+    assert store.local_root is None
+    _prepare(store)
+    with store.lock("mem-run"):
+        with pytest.raises(StoreLockedError, match="mem-run"):
+            with OutputStore.open(url).lock("other"):
+                pass
+        expected = [_finish_block(store, i) for i in range(3)]
+        store.set_complete(NAME, True, {"ok": True})
+    reread = OutputStore.open(url, "r")
+    np.testing.assert_array_equal(reread.read(NAME), np.concatenate(expected).astype(np.float32))
+    assert reread.file_records()[SOURCE].complete
+    with OutputStore.open(url).lock("after"):
+        pass  # the first lock was released
+    with pytest.raises(StoreError, match="not found"):
+        OutputStore.open(f"memory://twinpass-test-{uuid.uuid4().hex}/none.zarr", "r")
+
+
+def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore, monkeypatch):
+    _prepare(store)
+    _finish_block(store, 0)
+
+    async def full_disk(self, key, value):  # injected fault: POSIX errno ENOSPC, "No space left on device"
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    with monkeypatch.context() as m:
+        m.setattr(LocalStore, "set", full_disk)
+        with pytest.raises(StoreError, match="no space left on device while writing .*block") as err:
+            write_block_data(store.location, NAME, 40, np.ones((40, 3)))
+        assert "finished blocks are kept" in str(err.value)
+        with pytest.raises(StoreError, match="no space left"):
+            store.record_block(NAME, 0, BlockStatus.PASS, np.zeros((3, 2)), None, None)
+    with pytest.raises(StoreError, match="missing"):
+        store.record_block(NAME, 1, BlockStatus.PASS, None, None, None)
+    with pytest.raises(StoreError, match="not done"):
+        store.set_complete(NAME, True, None)
+    assert store.array_attrs(NAME)["complete"] is False
+    assert store.read_block_table(NAME).status.tolist() == [1, 0, 0]  # the finished block is kept
