@@ -133,12 +133,11 @@ class ChecksConfig:
 
 @dataclass(frozen=True)
 class FlowConfig:
-    """Prefect settings."""
+    """Prefect settings: one task per segment; its retries rerun only unfinished blocks."""
 
     retries: int = 1
     retry_delay_seconds: float = 5.0
-    task_per: str = "segment"
-    """segment | file."""
+    """Delay before the first retry of a segment task; later retries back off (x2, x4...)."""
 
 
 @dataclass(frozen=True)
@@ -214,7 +213,6 @@ _CHOICES: dict[tuple[str, str], tuple[str, ...]] = {
     ("archive", "truncated"): ("error", "warn"),
     ("output", "dtype"): ("float32", "float64"),
     ("output", "compression"): ("none", "lz4", "zstd"),
-    ("flow", "task_per"): ("segment", "file"),
 }
 
 

@@ -269,9 +269,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
                edge_samples: int) -> dict[str, Any]:
     """The array attributes of one output file (see the store layout)."""
     L = design.effective_length
-    first = fw.seg_offset == 0
-    last = fw.seg_offset + fw.frames == seg.frames
-    zone_start = min(fw.frames, max(0, L - fw.seg_offset)) if True else 0
+    zone_start = min(fw.frames, max(0, L - fw.seg_offset))
     zone_end = min(fw.frames, max(0, L - (seg.frames - fw.seg_offset - fw.frames)))
     return {
         "sample_rate_hz": float(seg.sample_rate_hz),
@@ -280,8 +278,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
         "stream": seg.stream,
         "segment": seg.segment_id,
         "start_time": fw.start_time,
-        "edge_zone_samples": [int(zone_start) if first or zone_start else 0,
-                              int(zone_end) if last or zone_end else 0],
+        "edge_zone_samples": [int(zone_start), int(zone_end)],
         "filter": {
             "family": design.family,
             "order": int(design.order),
@@ -391,6 +388,13 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
                 on_block(done, total, res)
             fut.release()
     touched = {fw.array_name for fw in seg.files if fw.action != "skip"}
+    if touched:
+        # Unchanged files of a busy segment: keep their segment id and edge zones current,
+        # so the next plan sees how files are joined now.
+        for fw in seg.files:
+            if fw.action == "skip":
+                a = file_attrs(seg, fw, design, cfg, layout, edge_samples)
+                store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
     _seam_pass(seg, store, spans_by_file, touched, design, cfg)
     outcomes = []
     elapsed = time.perf_counter() - t0

@@ -1,0 +1,25 @@
+"""Prefect settings twinpass needs before prefect is imported.
+
+* Server analytics off: on a fresh home the temporary server's telemetry insert races
+  the first flow run and logs a "database is locked" traceback; offline it logs errors.
+* A longer start-up timeout for the temporary local server on slow machines.
+
+Users' own settings win: only unset variables are given a value.
+"""
+
+from __future__ import annotations
+
+import os
+
+DEFAULTS = {
+    "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
+}
+
+
+def apply() -> None:
+    for key, value in DEFAULTS.items():
+        os.environ.setdefault(key, value)
+
+
+apply()

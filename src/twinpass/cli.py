@@ -1,0 +1,300 @@
+"""The ``twinpass`` command line.
+
+Commands: ``design``, ``plan``, ``run``, ``status``, ``report``, ``demo``, ``serve``, ``save``.
+Exit status: 0 success, 1 some files failed or are incomplete, 2 bad configuration or input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import os
+import sys
+import time
+from pathlib import Path
+from typing import Any, Sequence
+
+from . import __version__
+from .errors import TwinpassError
+
+
+def _eprint(*a: Any) -> None:
+    print(*a, file=sys.stderr, flush=True)
+
+
+class _ProgressBar:
+    """A one-line terminal progress bar for blocks (stderr; plain lines when not a TTY)."""
+
+    def __init__(self) -> None:
+        self.done = 0
+        self.total: dict[str, int] = {}
+        self.seen: dict[str, int] = {}
+        self.tty = sys.stderr.isatty()
+        self._last = 0.0
+
+    def __call__(self, segment: str, done: int, total: int, result: Any) -> None:
+        self.total[segment] = total
+        self.seen[segment] = done
+        d, t = sum(self.seen.values()), sum(self.total.values())
+        now = time.monotonic()
+        if not self.tty:
+            if d == t or now - self._last > 5:
+                self._last = now
+                _eprint(f"blocks {d}/{t}")
+            return
+        width = 30
+        fill = int(width * d / max(t, 1))
+        sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {d}/{t}")
+        if d == t:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+
+
+# ------------------------------------------------------------------- commands
+def cmd_design(args: argparse.Namespace) -> int:
+    from .config import load_config
+    from .core.design import design_filter, format_report
+
+    cfg = load_config(args.config)
+    d = design_filter(cfg.response, args.fs, cfg.processing.tolerance)
+    if args.json:
+        r = dict(d.report)
+        r.update(family=d.family, order=int(d.order), **d.coefficients(),
+                 effective_length_samples=int(d.effective_length), tolerance=float(d.tolerance),
+                 overall_passband_ripple_db=d.report.get("passband_ripple_db"),
+                 overall_stopband_attenuation_db=d.report.get("stopband_attenuation_db"))
+        print(json.dumps(r, indent=2))
+    else:
+        print(format_report(d.report))
+    return 0
+
+
+def cmd_plan(args: argparse.Namespace) -> int:
+    from .config import load_config
+    from .core.plan import format_plan
+    from .errors import StoreError
+    from .io.store import OutputStore
+    from .job import prepare
+
+    cfg = load_config(args.config)
+    try:
+        store = OutputStore.open(cfg.store_location, mode="r", archive_root=cfg.archive_root)
+    except StoreError:
+        store = None
+    prep = prepare(cfg, store if store is not None else _EmptyStore(), force=args.force)
+    if args.json:
+        print(json.dumps({"files": prep.plan.to_json(), "totals": prep.plan.totals(),
+                          "notes": list(prep.plan.notes)}, indent=2))
+    else:
+        print(format_plan(prep.plan))
+    return 0
+
+
+class _EmptyStore:
+    """Stands for a store that does not exist yet (planning only reads records)."""
+
+    def file_records(self) -> dict[str, Any]:
+        return {}
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from .config import load_config
+
+    cfg = load_config(args.config)
+    bar = _ProgressBar()
+    if args.no_flow:
+        from .job import run_job
+
+        res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
+                      log_fn=lambda m: _eprint(m))
+        c = res.counts()
+        print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
+              f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+        for f in res.failed:
+            print(f"failed: {f}")
+        if not args.no_report:
+            from .report_data import write_report
+
+            print(f"report: {write_report(cfg)}")
+        print(f"store: {cfg.store_location}")
+        return 0 if res.ok else 1
+    return _run_flow(cfg, args.config, force=args.force, scheduler=args.scheduler, workers=args.workers,
+                     report=not args.no_report, progress=bar)
+
+
+def _run_flow(cfg: Any, config_path: str, *, force: bool, scheduler: str | None, workers: int | None,
+              report: bool, progress: Any) -> int:
+    from . import flows
+
+    flows.TERMINAL_PROGRESS = progress
+    state = flows.archive_run(config_path=str(Path(config_path).resolve()), force=force, scheduler=scheduler,
+                              workers=workers, report=report, return_state=True)
+    summary = None
+    try:
+        summary = state.result(raise_on_failure=False)
+    except Exception:
+        summary = None
+    if isinstance(summary, dict):
+        c = summary["counts"]
+        print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
+              f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+        for f in summary.get("invalid", []):
+            print(f"left out (invalid input): {f}")
+        if summary.get("report"):
+            print(f"report: {summary['report']}")
+        print(f"store: {summary['store']}")
+    if state.is_completed():
+        return 0
+    print(f"run ended {state.name}: {state.message}")
+    return 1
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    from .status import all_passed, collect_status, format_status, open_target
+
+    store, _ = open_target(args.target)
+    st = collect_status(store)
+    print(json.dumps(st, indent=2) if args.json else format_status(st))
+    if args.require_complete and not all_passed(st):
+        _eprint("not every file is complete with passed checks")
+        return 1
+    return 0
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from .config import load_config
+    from .report_data import write_report
+
+    cfg = load_config(args.config)
+    print(write_report(cfg, args.output))
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from .demo import DEMO_SCENARIO, write_demo_archive
+
+    folder = Path(args.folder).resolve()
+    t0 = time.perf_counter()
+    config = write_demo_archive(folder, hours=args.hours)
+    print(DEMO_SCENARIO)
+    print(f"demo archive: {folder / 'archive'} (written in {time.perf_counter() - t0:.1f} s)")
+    print(f"configuration: {config}")
+    if args.no_run:
+        return 0
+    from .config import load_config
+
+    cfg = load_config(config)
+    rc = _run_flow(cfg, str(config), force=False, scheduler=None, workers=None, report=True,
+                   progress=_ProgressBar())
+    print(f"demo finished in {time.perf_counter() - t0:.1f} s (exit status {rc}; the truncated file is left out "
+          "on purpose and reported above)")
+    print("next: run the same command again to see unchanged files skipped;")
+    print(f"      twinpass status {config}    (per-file table)")
+    print("      prefect server start         (dashboard at http://127.0.0.1:4200; then set")
+    print("      PREFECT_API_URL=http://127.0.0.1:4200/api and rerun to watch the run there)")
+    return rc
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    from prefect.schedules import Cron
+
+    from . import flows
+
+    path = str(Path(args.config).resolve())
+    from .config import load_config
+
+    load_config(path)  # fail early on a bad configuration
+    flows.archive_run.serve(name=args.name, schedules=[Cron(args.cron, timezone=args.timezone)],
+                            parameters={"config_path": path})
+    return 0
+
+
+def cmd_save(args: argparse.Namespace) -> int:
+    from . import _prefect_env  # noqa: F401
+    from .prefect_blocks import TwinpassJob
+
+    block = TwinpassJob.from_file(args.config)
+    block.save(args.name, overwrite=True)
+    print(f"saved configuration {args.config} as TwinpassJob block {args.name!r}; "
+          f"run it with: twinpass run --block {args.name}")
+    return 0
+
+
+# ------------------------------------------------------------------- parser
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="twinpass", description="Zero-phase filtering of large sensor archives.")
+    p.add_argument("--version", action="version", version=f"twinpass {__version__}")
+    p.add_argument("-v", "--verbose", action="store_true", help="more log output")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    s = sub.add_parser("design", help="design the filter for a sample rate and print the response report")
+    s.add_argument("config")
+    s.add_argument("--fs", type=float, required=True, help="sample rate in Hz")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_design)
+
+    s = sub.add_parser("plan", help="show what a run would do, and why; runs nothing")
+    s.add_argument("config")
+    s.add_argument("--json", action="store_true")
+    s.add_argument("--force", action="store_true", help="plan as if every file changed")
+    s.set_defaults(func=cmd_plan)
+
+    s = sub.add_parser("run", help="filter the archive (through the Prefect flow unless --no-flow)")
+    s.add_argument("config")
+    s.add_argument("--workers", type=int, help="local Dask workers (default from the config)")
+    s.add_argument("--scheduler", help="threads | processes | tcp://HOST:PORT (default from the config)")
+    s.add_argument("--force", action="store_true", help="reprocess every file, changed or not")
+    s.add_argument("--no-flow", action="store_true", help="run the engine alone, without Prefect")
+    s.add_argument("--no-report", action="store_true", help="do not write the HTML report")
+    s.set_defaults(func=cmd_run)
+
+    s = sub.add_parser("status", help="per-file status of an output store (TARGET: config or store)")
+    s.add_argument("target")
+    s.add_argument("--json", action="store_true")
+    s.add_argument("--require-complete", action="store_true",
+                   help="exit 1 unless every file is complete with passed checks")
+    s.set_defaults(func=cmd_status)
+
+    s = sub.add_parser("report", help="write the self-contained HTML report")
+    s.add_argument("config")
+    s.add_argument("--output", help="HTML file to write (default: beside the store)")
+    s.set_defaults(func=cmd_report)
+
+    s = sub.add_parser("demo", help="write the built-in demo archive and run the full flow on it")
+    s.add_argument("folder", nargs="?", default="twinpass-demo")
+    s.add_argument("--hours", type=int, default=3, help="hours of recording per stream (default 3)")
+    s.add_argument("--no-run", action="store_true", help="only write the archive and its configuration")
+    s.set_defaults(func=cmd_demo)
+
+    s = sub.add_parser("serve", help="serve a scheduled deployment of the flow (needs a Prefect server)")
+    s.add_argument("config")
+    s.add_argument("--cron", required=True, help='cron expression, e.g. "30 2 * * *"')
+    s.add_argument("--timezone", default=None, help="IANA time zone of the cron expression (default UTC)")
+    s.add_argument("--name", default="nightly", help="deployment name")
+    s.set_defaults(func=cmd_serve)
+
+    s = sub.add_parser("save", help="save a configuration to the Prefect server as a TwinpassJob block")
+    s.add_argument("config")
+    s.add_argument("--name", required=True, help="block name (lower case letters, digits and dashes)")
+    s.set_defaults(func=cmd_save)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+                        format="%(levelname)s %(name)s: %(message)s")
+    os.environ.setdefault("PREFECT_LOGGING_LEVEL", "INFO")
+    try:
+        return int(args.func(args) or 0)
+    except TwinpassError as e:
+        _eprint(f"twinpass: error: {e}")
+        return 2
+    except KeyboardInterrupt:
+        _eprint("twinpass: interrupted; finished blocks are kept, rerun to resume")
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

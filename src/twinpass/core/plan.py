@@ -1,0 +1,539 @@
+"""The work plan: which files (and which spans of them) a run must filter.
+
+The planner compares what discovery found with what the output store remembers
+(:class:`~twinpass.core.types.FileRecord`, one per input file) and the design digest of
+each sample rate. Every file gets one status:
+
+========== ==================================================================
+new        no record in the store: filter the whole file
+changed    fingerprint, frame count or design digest differs (or ``force``):
+           filter the whole file
+unchanged  same fingerprint and design, output complete: nothing to do
+incomplete same fingerprint and design, output not complete: resume (blocks
+           already marked done are kept)
+neighbour  unchanged itself, but its output near a file join depends on input
+           that changed: recompute the given spans
+removed    a record whose input is no longer in the archive
+invalid    reported by discovery or segment building; not processed
+========== ==================================================================
+
+Neighbours. A block is filtered with a halo of ``halo`` samples (the filter's effective
+length) on each side, so the output within ``halo`` samples of a change depends on it.
+In segment coordinates, a changed file covering ``[x0, x1)`` invalidates
+``[x0 - halo, x1 + halo)`` (clipped to the segment): the previous file gets
+``[frames - halo, frames)`` and the next ``[0, halo)``, further files too when a file is
+shorter than the halo. A changed *join* at segment position ``x`` (segment membership
+changed: a file appended after today's last one, whose end was edge-extended before; a file
+removed from the middle, so both neighbours now end a segment) invalidates
+``[x - halo, x + halo)``.
+
+Membership changes are found from the records alone: each record names its segment
+(``FileRecord.segment``, whose id carries the first file's start time) and its frame
+count, so a file's old position in its old segment is ``(start - segment start) * fs``
+and its old segment's length is the sum of its members' frames (a file alone in its old
+segment was both first and last; a file whose start time moved lands at an impossible
+position, so both its ends count as changed). Records without a segment name are taken
+as unchanged in membership.
+
+``redo`` of a file is ``None`` (nothing to compute), ``"all"``, or a tuple of
+``(start, stop)`` sample spans within the file, sorted and merged. ``resume`` is true when
+blocks already marked done in the store may be kept (status ``incomplete``).
+
+This module is pure (no I/O).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from collections import defaultdict
+from dataclasses import dataclass, field
+from typing import Any, Iterable, Mapping, Sequence
+
+from twinpass.core.segments import InvalidFile, Segment
+from twinpass.core.types import FileRecord
+from twinpass.errors import ArchiveError
+
+__all__ = [
+    "STATUSES",
+    "FilePlan",
+    "Plan",
+    "Redo",
+    "fingerprint_changed",
+    "format_plan",
+    "make_plan",
+]
+
+STATUSES: tuple[str, ...] = ("new", "changed", "unchanged", "incomplete", "neighbour", "removed", "invalid")
+"""Every status a file can have in a plan, in display order."""
+
+Span = tuple[int, int]
+Redo = None | str | tuple[Span, ...]
+"""``None`` (nothing), ``"all"``, or sorted, merged ``(start, stop)`` spans in samples."""
+
+
+# -- fingerprints ------------------------------------------------------------
+
+
+def fingerprint_changed(old: Mapping[str, Any] | None, new: Mapping[str, Any] | None) -> tuple[bool, str]:
+    """Compare two file fingerprints.
+
+    Parameters
+    ----------
+    old, new : mapping or None
+        As produced by ``twinpass.io.fingerprint.fingerprint_file``: ``size`` (bytes),
+        ``mtime_ns``, ``mode`` (``"fast"`` or ``"full"``), ``digest`` (hex) and ``whole``
+        (the digest covers every byte).
+
+    Returns
+    -------
+    changed : bool
+    reason : str
+        Why the file counts as changed, or what matched.
+
+    Notes
+    -----
+    Fast mode: changed when size, modification time or digest differ. Full mode: when
+    size or digest differ (the modification time is not used). Fingerprints taken in
+    different modes compare their digests only when both cover the whole file (small
+    files); otherwise the file counts as changed.
+    """
+    if not old or not new or "digest" not in old or "digest" not in new:
+        return True, "no fingerprint to compare with"
+    if old.get("size") != new.get("size"):
+        return True, f"size changed ({old.get('size')} -> {new.get('size')} bytes)"
+    if old.get("algorithm") != new.get("algorithm"):
+        return True, f"fingerprint algorithm changed ({old.get('algorithm')} -> {new.get('algorithm')})"
+    mode_old, mode_new = old.get("mode"), new.get("mode")
+    if mode_old != mode_new:
+        if not (old.get("whole") and new.get("whole")):
+            return True, f"fingerprint mode changed ({mode_old} -> {mode_new}); the file is compared afresh"
+    elif mode_new == "fast" and old.get("mtime_ns") != new.get("mtime_ns"):
+        return True, "modification time changed"
+    if old["digest"] != new["digest"]:
+        return True, "content changed (digest differs)"
+    if mode_old == mode_new == "fast":
+        return False, "same size, modification time and digest"
+    return False, "same size and digest"
+
+
+# -- plan value objects ------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class FilePlan:
+    """What a run does with one file."""
+
+    relpath: str
+    """Path relative to the archive root (POSIX)."""
+    stream: str | None
+    """Stream name; ``None`` for removed files (the store does not keep it)."""
+    segment: str | None
+    """Id of the file's segment now (for removed files: the segment its record names)."""
+    status: str
+    """One of :data:`STATUSES`."""
+    reason: str
+    redo: Redo = None
+    """Samples of the file to (re)compute; see :data:`Redo`."""
+    record: FileRecord | None = None
+    """The store's record of the file before this run, if any."""
+    resume: bool = False
+    """Blocks already marked done in the store may be kept (only with ``redo == "all"``)."""
+    frames: int = 0
+    """Samples per channel of the file now (of the record for removed files)."""
+    remedy: str | None = None
+    """What to do, for invalid files."""
+
+    @property
+    def redo_frames(self) -> int:
+        """Samples per channel to compute (an upper bound when :attr:`resume`)."""
+        if self.redo is None:
+            return 0
+        if self.redo == "all":
+            return self.frames
+        return sum(b - a for a, b in self.redo)  # type: ignore[misc]
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready summary (spans as lists)."""
+        redo: Any = self.redo
+        if isinstance(redo, tuple):
+            redo = [list(s) for s in redo]
+        return {
+            "path": self.relpath,
+            "stream": self.stream,
+            "segment": self.segment,
+            "status": self.status,
+            "reason": self.reason,
+            "redo": redo,
+            "resume": self.resume,
+            "frames": self.frames,
+            "remedy": self.remedy,
+        }
+
+
+@dataclass(frozen=True)
+class Plan:
+    """The result of :func:`make_plan`."""
+
+    files: tuple[FilePlan, ...]
+    """Plans of the valid files, in segment order (stream, start time, position)."""
+    segments: tuple[Segment, ...]
+    removed: tuple[FilePlan, ...]
+    """Records whose input is gone (status ``removed``)."""
+    invalid: tuple[FilePlan, ...]
+    """Files that cannot be processed (status ``invalid``), with their remedy."""
+    halos: Mapping[float, int] = field(default_factory=dict)
+    """Halo in samples per sample rate (Hz), as given to :func:`make_plan`."""
+    notes: tuple[str, ...] = ()
+    """Things worth a look that are not errors (rate or channel changes inside a stream)."""
+
+    def all_files(self) -> tuple[FilePlan, ...]:
+        """Valid, removed and invalid file plans, in that order."""
+        return self.files + self.removed + self.invalid
+
+    def file(self, relpath: str) -> FilePlan:
+        """The plan of ``relpath``; :class:`ArchiveError` when the plan does not know it."""
+        for fp in self.all_files():
+            if fp.relpath == relpath:
+                return fp
+        raise ArchiveError(f"{relpath}: not part of this plan", path=relpath)
+
+    def for_segment(self, segment_id: str) -> tuple[FilePlan, ...]:
+        """Plans of the files of one segment, in order."""
+        return tuple(fp for fp in self.files if fp.segment == segment_id)
+
+    def segments_with_work(self) -> tuple[Segment, ...]:
+        """Segments with at least one file to compute."""
+        busy = {fp.segment for fp in self.files if fp.redo is not None}
+        return tuple(s for s in self.segments if s.id in busy)
+
+    def to_json(self) -> list[dict[str, Any]]:
+        """A JSON-ready list of every file: path, stream, segment, status, reason, redo, ..."""
+        return [fp.to_dict() for fp in self.all_files()]
+
+    def totals(self) -> dict[str, Any]:
+        """Counts and work estimates.
+
+        Returns
+        -------
+        dict
+            ``files``: files per status (every status, zeros included); ``segments`` and
+            ``segments_with_work``; ``samples``: samples per channel to compute (whole
+            files for resumed ones, so an upper bound); ``block_work_samples``: the same
+            plus a halo on each side of every run of consecutive samples to compute in a
+            segment (file joins inside a segment do not break a run); an estimate of what
+            the blocks read, in samples per channel.
+        """
+        counts = {s: 0 for s in STATUSES}
+        for fp in self.all_files():
+            counts[fp.status] += 1
+        samples = sum(fp.redo_frames for fp in self.files)
+        work = 0
+        by_id = {s.id: s for s in self.segments}
+        per_segment: dict[str, list[Span]] = defaultdict(list)
+        for fp in self.files:
+            seg = by_id.get(fp.segment or "")
+            if seg is None or fp.redo is None:
+                continue
+            off = seg.offsets[seg.index_of(fp.relpath)]
+            spans = ((0, fp.frames),) if fp.redo == "all" else fp.redo
+            per_segment[seg.id].extend((off + a, off + b) for a, b in spans)  # type: ignore[union-attr]
+        for sid, spans in per_segment.items():
+            halo = int(self.halos.get(by_id[sid].sample_rate_hz, 0))
+            for a, b in _merge(spans):
+                work += (b - a) + 2 * halo
+        return {
+            "files": counts,
+            "segments": len(self.segments),
+            "segments_with_work": len(per_segment),
+            "samples": int(samples),
+            "block_work_samples": int(work),
+        }
+
+
+# -- planning ----------------------------------------------------------------
+
+
+def _merge(spans: Iterable[Span]) -> tuple[Span, ...]:
+    """Sort spans and merge the ones that overlap or touch; drop empty ones."""
+    out: list[list[int]] = []
+    for a, b in sorted((int(a), int(b)) for a, b in spans if b > a):
+        if out and a <= out[-1][1]:
+            out[-1][1] = max(out[-1][1], b)
+        else:
+            out.append([a, b])
+    return tuple((a, b) for a, b in out)
+
+
+def _segment_start(segment_id: str | None) -> _dt.datetime | None:
+    """Start time encoded in a segment id ``stream@ISO``; ``None`` when there is none."""
+    if not segment_id or "@" not in segment_id:
+        return None
+    try:
+        t = _dt.datetime.fromisoformat(segment_id.rpartition("@")[2])
+    except ValueError:
+        return None
+    return t if t.tzinfo is not None else t.replace(tzinfo=_dt.timezone.utc)
+
+
+def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool) -> tuple[str, str]:
+    """Status of a file judged on its own content: new, changed, incomplete or unchanged."""
+    if force:
+        return "changed", "forced"
+    if rec is None:
+        return "new", "no output yet"
+    changed, why = fingerprint_changed(rec.source_fingerprint, entry.fingerprint)
+    if changed:
+        return "changed", why
+    if int(rec.frames) != entry.frames:
+        return "changed", f"frame count changed ({rec.frames} -> {entry.frames})"
+    if rec.design_digest != digest:
+        return "changed", "filter design or processing settings changed"
+    if not rec.complete:
+        return "incomplete", "output incomplete: resume (blocks already done are kept)"
+    return "unchanged", "same fingerprint and design; output complete"
+
+
+class _SegmentPlanner:
+    """Statuses and redo spans of the files of one segment."""
+
+    def __init__(
+        self,
+        seg: Segment,
+        records: Mapping[str, FileRecord],
+        members: Mapping[str, list[FileRecord]],
+        digest: str,
+        halo: int,
+        force: bool,
+    ) -> None:
+        self.seg = seg
+        self.members = members
+        self.halo = int(halo)
+        self.recs = [records.get(f.relpath) for f in seg.files]
+        self.own = [_own_status(r, f, digest, force) for r, f in zip(self.recs, seg.files)]
+        self.spans: list[list[Span]] = [[] for _ in seg.files]
+        self.causes: list[list[str]] = [[] for _ in seg.files]
+
+    def _dirty(self, k: int) -> bool:
+        return self.own[k][0] in ("new", "changed")
+
+    def _invalidate(self, a: int, b: int, cause_at: int | None, cause: str) -> None:
+        """Mark the segment window [a, b) (clipped) for recomputation; skip file ``cause_at``."""
+        a, b = max(0, a), min(self.seg.frames, b)
+        for j, fa, fb in self.seg.locate(a, b) if b > a else []:
+            if j == cause_at or self._dirty(j):
+                continue
+            self.spans[j].append((fa, fb))
+            text = cause
+            if cause_at is not None:
+                rel = "next" if cause_at == j + 1 else "previous" if cause_at == j - 1 else (
+                    "later" if cause_at > j else "earlier"
+                )
+                text = f"{rel} file {cause}"
+            if text not in self.causes[j]:
+                self.causes[j].append(text)
+
+    def _old_position(self, k: int) -> tuple[bool, bool]:
+        """Was file ``k`` first / last of the segment its record names?"""
+        f, rec = self.seg.files[k], self.recs[k]
+        assert rec is not None and rec.segment is not None and f.start_time is not None
+        members = self.members.get(rec.segment, [rec])
+        t0 = _segment_start(rec.segment)
+        if t0 is None or len(members) == 1:
+            return True, True
+        fs = self.seg.sample_rate_hz
+        # a start time that moved gives an impossible position: both ends count as changed
+        offset = ((f.start_time - t0) // _dt.timedelta(microseconds=1)) * 1e-6 * fs
+        total = sum(int(r.frames) for r in members)
+        tol = max(0.5, 1e-6 * fs)
+        return abs(offset) <= tol, abs(offset + f.frames - total) <= tol
+
+    def _gone(self, k: int) -> str:
+        """Members of file ``k``'s old segment that are not in this segment now."""
+        rec = self.recs[k]
+        assert rec is not None
+        here = set(self.seg.relpaths)
+        gone = sorted(r.source for r in self.members.get(rec.segment or "", []) if r.source not in here)
+        if not gone:
+            return ""
+        more = f" and {len(gone) - 3} more" if len(gone) > 3 else ""
+        return f" (no longer in it: {', '.join(gone[:3])}{more})"
+
+    def _check_joins(self, k: int) -> None:
+        """Invalidate the joins of file ``k`` whose neighbour changed by membership."""
+        f, rec = self.seg.files[k], self.recs[k]
+        if self._dirty(k) or rec is None or rec.segment is None or f.start_time is None:
+            return
+        was_first, was_last = self._old_position(k)
+        off = self.seg.offsets[k]
+        n = len(self.seg.files)
+        for side, is_end, was_end, j in (("start", k == 0, was_first, k - 1), ("end", k == n - 1, was_last, k + 1)):
+            x = off if side == "start" else off + f.frames
+            if is_end:
+                if not was_end:
+                    self._invalidate(
+                        x - self.halo, x + self.halo, None,
+                        f"the segment now {'starts at' if side == 'start' else 'ends after'} {f.relpath} "
+                        f"(its old segment {rec.segment} continued{self._gone(k)})",
+                    )
+                continue
+            if self._dirty(j):
+                continue  # the neighbour's own change already covers this join
+            other = self.recs[j]
+            if was_end or other is None or (other.segment is not None and other.segment != rec.segment):
+                a, b = sorted((j, k))
+                self._invalidate(
+                    x - self.halo, x + self.halo, None,
+                    f"{self.seg.files[a].relpath} and {self.seg.files[b].relpath} are now joined "
+                    "(they were not neighbours before)",
+                )
+
+    def run(self) -> list[FilePlan]:
+        seg = self.seg
+        for k, f in enumerate(seg.files):
+            if self._dirty(k):
+                x0 = seg.offsets[k]
+                self._invalidate(x0 - self.halo, x0 + f.frames + self.halo, k, f"{f.relpath} is {self.own[k][0]}")
+        for k in range(len(seg.files)):
+            self._check_joins(k)
+        out = []
+        for k, f in enumerate(seg.files):
+            status, reason = self.own[k]
+            redo: Redo = None
+            resume = False
+            spans = _merge(self.spans[k])
+            why = "; ".join(self.causes[k])
+            if status in ("new", "changed"):
+                redo = "all"
+            elif status == "incomplete":
+                redo, resume = "all", not spans
+                if spans:
+                    reason = f"output incomplete, and {why}: recompute the whole file"
+            elif spans:
+                status, redo, reason = "neighbour", spans, why
+            out.append(
+                FilePlan(
+                    relpath=f.relpath, stream=seg.stream, segment=seg.id, status=status, reason=reason,
+                    redo=redo, record=self.recs[k], resume=resume, frames=f.frames,
+                )
+            )
+        return out
+
+
+def _lookup(table: Mapping[float, Any], fs: float, what: str, seg: Segment) -> Any:
+    try:
+        return table[fs]
+    except KeyError:
+        known = ", ".join(f"{r:g}" for r in sorted(table)) or "none"
+        raise ArchiveError(
+            f"segment {seg.id}: no {what} for sample rate {fs:g} Hz (known rates: {known}); "
+            "design the filter for every sample rate found in the archive",
+            path=seg.files[0].relpath,
+        ) from None
+
+
+def make_plan(
+    segments: Sequence[Segment],
+    invalid: Sequence[InvalidFile],
+    records: Mapping[str, FileRecord],
+    design_digests: Mapping[float, str],
+    halos: Mapping[float, int],
+    force: bool = False,
+) -> Plan:
+    """Decide what a run must compute.
+
+    Parameters
+    ----------
+    segments : sequence of Segment
+        From :func:`twinpass.core.segments.build_segments`.
+    invalid : sequence of InvalidFile
+        Everything discovery and segment building left out.
+    records : mapping of str to FileRecord
+        The store's records, keyed by input path relative to the archive root.
+    design_digests : mapping of float to str
+        Design digest per sample rate (Hz); a record with another digest is stale.
+    halos : mapping of float to int
+        Halo per sample rate, samples (the design's effective length).
+    force : bool
+        Recompute every valid file (status ``changed``, reason ``"forced"``).
+
+    Returns
+    -------
+    Plan
+    """
+    members: dict[str, list[FileRecord]] = defaultdict(list)
+    for rec in records.values():
+        if rec.segment is not None:
+            members[rec.segment].append(rec)
+    files: list[FilePlan] = []
+    notes: list[str] = []
+    present: set[str] = set()
+    for seg in segments:
+        digest = _lookup(design_digests, seg.sample_rate_hz, "design digest", seg)
+        halo = _lookup(halos, seg.sample_rate_hz, "halo", seg)
+        files.extend(_SegmentPlanner(seg, records, members, digest, halo, force).run())
+        present.update(seg.relpaths)
+        if seg.break_kind == "layout":
+            notes.append(f"stream {seg.stream}: new segment {seg.id}: {seg.break_reason}")
+    bad: list[FilePlan] = []
+    for inv in invalid:
+        if inv.path in present or any(b.relpath == inv.path for b in bad):
+            continue
+        rec = records.get(inv.path)
+        bad.append(
+            FilePlan(
+                relpath=inv.path, stream=None, segment=None if rec is None else rec.segment, status="invalid",
+                reason=inv.reason, record=rec, frames=0 if rec is None else int(rec.frames), remedy=inv.remedy,
+            )
+        )
+    known = present | {b.relpath for b in bad}
+    removed = tuple(
+        FilePlan(
+            relpath=path, stream=None, segment=rec.segment, status="removed",
+            reason="no longer in the archive; its output is out of date", record=rec, frames=int(rec.frames),
+        )
+        for path, rec in sorted(records.items())
+        if path not in known
+    )
+    return Plan(
+        files=tuple(files), segments=tuple(segments), removed=removed, invalid=tuple(bad),
+        halos=dict(halos), notes=tuple(notes),
+    )
+
+
+# -- terminal table ----------------------------------------------------------
+
+
+def _redo_text(fp: FilePlan) -> str:
+    if fp.redo is None:
+        return "-"
+    if fp.redo == "all":
+        return "resume" if fp.resume else "all"
+    spans = [f"[{a}, {b})" for a, b in fp.redo]  # type: ignore[union-attr]
+    if len(spans) > 2:
+        spans = spans[:2] + [f"+{len(spans) - 2} more"]
+    return " ".join(spans)
+
+
+def format_plan(plan: Plan) -> str:
+    """The plan as a plain-text table (one row per file) followed by totals and notes."""
+    header = ("STATUS", "STREAM", "FILE", "REDO (samples)", "REASON")
+    rows = []
+    for fp in plan.all_files():
+        reason = fp.reason if not fp.remedy else f"{fp.reason}; {fp.remedy}"
+        rows.append((fp.status, fp.stream or "-", fp.relpath, _redo_text(fp), reason))
+    widths = [max(len(r[i]) for r in [header, *rows]) for i in range(4)]
+    lines = []
+    for r in [header, *rows]:
+        lines.append("  ".join(c.ljust(w) for c, w in zip(r[:4], widths)) + "  " + r[4])
+    t = plan.totals()
+    counts = ", ".join(f"{s} {n}" for s, n in t["files"].items() if n)
+    lines.append("")
+    lines.append(f"files: {counts or 'none'}")
+    lines.append(f"segments: {t['segments']} ({t['segments_with_work']} with work)")
+    lines.append(
+        f"samples to compute: {t['samples']:,} per channel; "
+        f"estimated block work including halos: {t['block_work_samples']:,}"
+    )
+    for note in plan.notes:
+        lines.append(f"note: {note}")
+    return "\n".join(lines)

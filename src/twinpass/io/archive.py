@@ -1,0 +1,576 @@
+"""Discovery: find the input files of an archive and say which stream and time each holds.
+
+Files
+-----
+Every file under ``cfg.archive_root`` whose path relative to the root (POSIX separators)
+matches one of ``[archive] include`` and none of ``[archive] exclude`` is a candidate.
+Glob syntax: ``*`` (any text without ``/``), ``?`` (one character but ``/``), ``[abc]``
+/ ``[!abc]`` (character classes), and ``**`` as a whole path component (any number of
+folders, none included). A folder that is one recording (named ``*.zarr`` or holding
+Zarr metadata) is a candidate like a file and is not searched further. Symbolic links to
+folders are followed once (no loops). The output store, the manifest and anything reached
+through a link into the output store are never taken as input. Paths are sorted, so
+discovery is deterministic.
+
+Each candidate is opened read-only with the reader the registry picks for it, to learn
+frames, channels, sample rate (Hz) and sample format without reading samples.
+
+Stream and start time
+---------------------
+Taken from the first source that applies, per file:
+
+1. the manifest CSV (``[archive] manifest``; columns ``path``, ``stream``,
+   ``start_time``; paths relative to the archive root; times ISO 8601, UTC when no
+   offset is given, an empty ``start_time`` meaning "unknown");
+2. ``[archive] name_pattern`` matched against the relative path without its suffix
+   (when a manifest is configured too, files it does not list use the pattern);
+3. when neither is configured: the start time stored in the file (e.g. a Broadcast WAVE
+   ``bext`` chunk); the stream is then the parent folder's relative path, or the file
+   name for files at the root;
+4. otherwise the file is a stream and a segment of its own, with no start time.
+
+A file a configured manifest does not list (and no pattern names) is reported invalid.
+
+Name patterns
+-------------
+Literal text plus these fields:
+
+``{stream}``
+    one or more characters except ``/``; when repeated, every occurrence must match the
+    same text.
+``{start:FORMAT}``
+    a time written with a ``strftime``/``strptime`` FORMAT (``%Y %m %d %H %M %S %f %j %y
+    %b %B %a %A %p %I %z %Z %U %W %w %G %V %u %%``); numeric fields have their fixed
+    width (``%f`` 1 to 6 digits). Times are UTC unless the FORMAT carries an offset (``%z``).
+    At most one per pattern.
+``{*}``
+    any text without ``/`` (possibly empty).
+``{**}``
+    any text (possibly empty, may cross folders).
+
+``{{`` and ``}}`` stand for literal braces. The whole relative path without its last
+suffix must match. Without a ``{stream}`` field the stream is the parent folder's
+relative path (the archive root's own name for files at the root). Example:
+``"{stream}/{stream}_{start:%Y%m%dT%H%M%S}"`` matches ``"sensor-a/sensor-a_20240501T120000"``.
+Patterns are compiled to one regular expression once per discovery.
+
+Bad input
+---------
+Problems of single files never stop discovery: an unreadable or unknown file, a damaged
+header, zero frames, a missing sample rate, an unparsable start time, a path the pattern
+does not match, or a second file with the same (stream, start time) becomes an
+:class:`~twinpass.core.segments.InvalidFile` (path, reason, remedy) and is left out.
+Problems of the configuration itself (unreadable manifest, bad pattern) raise.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import os
+import re
+from dataclasses import dataclass
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+from twinpass.config import JobConfig
+from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
+from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
+from twinpass.io.fingerprint import fingerprint_file
+from twinpass.io.readers.registry import open_recording, reader_for
+
+__all__ = [
+    "Discovery",
+    "NamePattern",
+    "compile_glob",
+    "discover",
+    "list_archive",
+    "read_manifest",
+]
+
+UTC = _dt.timezone.utc
+
+_REMEDY_EXCLUDE = "repair or re-export the file, or leave it out with [archive] exclude"
+
+
+# -- globbing ----------------------------------------------------------------
+
+
+def _glob_component(part: str) -> str:
+    out, i = [], 0
+    while i < len(part):
+        c = part[i]
+        if c == "*":
+            while i + 1 < len(part) and part[i + 1] == "*":
+                i += 1
+            out.append("[^/]*")
+        elif c == "?":
+            out.append("[^/]")
+        elif c == "[":
+            j = part.find("]", i + 2 if part[i + 1: i + 2] in ("!", "]") else i + 1)
+            if j < 0:
+                out.append(re.escape(c))
+            else:
+                body = part[i + 1: j]
+                neg = body.startswith("!")
+                body = body[1:] if neg else body
+                out.append("[" + ("^" if neg else "") + body.replace("\\", "\\\\") + "]")
+                i = j
+        else:
+            out.append(re.escape(c))
+        i += 1
+    return "".join(out)
+
+
+def compile_glob(pattern: str) -> re.Pattern[str]:
+    """Regular expression matching relative POSIX paths against a glob ``pattern``.
+
+    ``**`` as a whole component matches any number of folders (including none).
+    """
+    parts = [p for p in pattern.strip().lstrip("/").split("/") if p not in ("", ".")]
+    if not parts:
+        raise ConfigError(f"[archive] glob pattern {pattern!r} is empty; use e.g. \"**/*.wav\"")
+    rx = ""
+    for k, part in enumerate(parts):
+        last = k == len(parts) - 1
+        if part == "**":
+            rx += ".*" if last else "(?:[^/]+/)*"
+        else:
+            rx += _glob_component(part) + ("" if last else "/")
+    return re.compile(rx + r"\Z", re.DOTALL)
+
+
+def _inside(path: str, folder: str) -> bool:
+    return path == folder or path.startswith(folder.rstrip(os.sep) + os.sep)
+
+
+_STORE_MARKERS = ("zarr.json", ".zarray", ".zgroup")
+
+
+def _is_array_store(path: str) -> bool:
+    """A folder that is one recording: named ``*.zarr`` or holding Zarr metadata."""
+    return path.lower().endswith(".zarr") or any(os.path.isfile(os.path.join(path, m)) for m in _STORE_MARKERS)
+
+
+def _selected(rel: str, include: list[re.Pattern[str]], exclude: list[re.Pattern[str]]) -> bool:
+    return any(rx.match(rel) for rx in include) and not any(rx.match(rel) for rx in exclude)
+
+
+def list_archive(cfg: JobConfig) -> list[str]:
+    """Relative POSIX paths of the candidate input files of ``cfg``'s archive, sorted.
+
+    Raises :class:`ArchiveError` when the archive root is not a readable folder.
+    """
+    root = cfg.archive_root
+    if not root.is_dir():
+        raise ArchiveError(
+            f"archive root {root} is not a folder ([archive] root = {cfg.archive.root!r} in {cfg.source}); "
+            "point it at the folder holding the recordings",
+            path=str(root),
+        )
+    include = [compile_glob(p) for p in cfg.archive.include]
+    exclude = [compile_glob(p) for p in cfg.archive.exclude]
+    store = cfg.store_location
+    fenced = [] if "://" in store else [os.path.realpath(store)]
+    manifest = cfg.manifest_path
+    skip_files = {os.path.realpath(manifest)} if manifest is not None else set()
+
+    found: list[str] = []
+    seen_dirs: set[str] = set()
+    for dirpath, dirnames, filenames in os.walk(root, followlinks=True):
+        real = os.path.realpath(dirpath)
+        if real in seen_dirs or any(_inside(real, f) for f in fenced):
+            dirnames[:] = []
+            continue
+        seen_dirs.add(real)
+        rel_dir = Path(dirpath).relative_to(root).as_posix()
+        keep = []
+        for name in sorted(dirnames):
+            rel = name if rel_dir == "." else f"{rel_dir}/{name}"
+            if _is_array_store(os.path.join(dirpath, name)):
+                # a folder holding one recording (e.g. a Zarr array): a candidate, never descended
+                real_dir = os.path.realpath(os.path.join(dirpath, name))
+                if _selected(rel, include, exclude) and not any(_inside(real_dir, f) for f in fenced):
+                    found.append(rel)
+                continue
+            keep.append(name)
+        dirnames[:] = keep
+        for name in sorted(filenames):
+            rel = name if rel_dir == "." else f"{rel_dir}/{name}"
+            if not _selected(rel, include, exclude):
+                continue
+            real_file = os.path.realpath(os.path.join(dirpath, name))
+            if real_file in skip_files or any(_inside(real_file, f) for f in fenced):
+                continue
+            found.append(rel)
+    return sorted(found)
+
+
+# -- name patterns -----------------------------------------------------------
+
+_STRPTIME: dict[str, str] = {
+    "Y": r"\d{4}", "G": r"\d{4}", "y": r"\d{2}", "m": r"\d{2}", "d": r"\d{2}", "H": r"\d{2}",
+    "I": r"\d{2}", "M": r"\d{2}", "S": r"\d{2}", "f": r"\d{1,6}", "j": r"\d{3}", "U": r"\d{2}",
+    "W": r"\d{2}", "V": r"\d{2}", "w": r"\d", "u": r"\d", "p": r"(?:[AaPp][Mm])",
+    "b": r"[A-Za-z]{3}", "a": r"[A-Za-z]{3}", "B": r"[A-Za-z]+", "A": r"[A-Za-z]+",
+    "z": r"(?:Z|[+-]\d{2}:?\d{2}(?::?\d{2}(?:\.\d{1,6})?)?)", "Z": r"(?:UTC|GMT)", "%": "%",
+}
+
+
+def _strptime_regex(fmt: str, pattern: str) -> str:
+    out, i = [], 0
+    while i < len(fmt):
+        c = fmt[i]
+        if c != "%":
+            out.append(re.escape(c))
+            i += 1
+            continue
+        d = fmt[i + 1: i + 2]
+        if d not in _STRPTIME:
+            raise ConfigError(
+                f"[archive] name_pattern {pattern!r}: time directive %{d} in {{start:{fmt}}} is not supported; "
+                f"use {' '.join('%' + k for k in _STRPTIME)}"
+            )
+        out.append(_STRPTIME[d])
+        i += 2
+    return "".join(out)
+
+
+_TOKEN = re.compile(r"\{\{|\}\}|\{([^{}]*)\}|[{}]")
+
+
+class NamePattern:
+    """A compiled ``[archive] name_pattern`` (syntax in the module documentation)."""
+
+    def __init__(self, pattern: str) -> None:
+        self.pattern = pattern
+        rx: list[str] = []
+        pos = 0
+        self.has_stream = False
+        self.time_format: str | None = None
+        for m in _TOKEN.finditer(pattern):
+            rx.append(re.escape(pattern[pos: m.start()]))
+            pos = m.end()
+            tok, name = m.group(0), m.group(1)
+            if tok in ("{{", "}}"):
+                rx.append(re.escape(tok[0]))
+            elif name is None:
+                raise ConfigError(
+                    f"[archive] name_pattern {pattern!r}: lone {tok!r} at character {m.start()}; "
+                    "write {{ or }} for a literal brace"
+                )
+            elif name == "stream":
+                rx.append("(?P=stream)" if self.has_stream else "(?P<stream>[^/]+)")
+                self.has_stream = True
+            elif name == "*":
+                rx.append("[^/]*")
+            elif name == "**":
+                rx.append(".*")
+            elif name.startswith("start:") and name[6:]:
+                if self.time_format is not None:
+                    raise ConfigError(f"[archive] name_pattern {pattern!r}: more than one {{start:...}} field")
+                self.time_format = name[6:]
+                rx.append(f"(?P<start>{_strptime_regex(self.time_format, pattern)})")
+            else:
+                raise ConfigError(
+                    f"[archive] name_pattern {pattern!r}: unknown field {tok}; "
+                    "fields are {stream}, {start:FORMAT}, {*} and {**}"
+                )
+        rx.append(re.escape(pattern[pos:]))
+        self.regex = re.compile("".join(rx) + r"\Z", re.DOTALL)
+
+    def match(self, stem: str) -> tuple[str | None, _dt.datetime | None] | None:
+        """Stream and start time (UTC) of a relative path without suffix, or ``None``.
+
+        Raises :class:`ValueError` when the time text matches the shape but is not a
+        valid time (e.g. month 13).
+        """
+        m = self.regex.match(stem)
+        if m is None:
+            return None
+        stream = m.group("stream") if self.has_stream else None
+        start = None
+        if self.time_format is not None:
+            t = _dt.datetime.strptime(m.group("start"), self.time_format)
+            start = t.replace(tzinfo=UTC) if t.tzinfo is None else t.astimezone(UTC)
+        return stream, start
+
+
+# -- manifest ----------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class _Row:
+    line: int
+    stream: str
+    start: str
+
+
+def _norm_rel(p: str) -> str:
+    p = p.strip().replace("\\", "/")
+    while p.startswith("./"):
+        p = p[2:]
+    return str(PurePosixPath(p)) if p else p
+
+
+def read_manifest(path: Path) -> tuple[dict[str, _Row], list[InvalidFile]]:
+    """Rows of the manifest CSV keyed by relative path, plus rows that contradict each other.
+
+    Raises :class:`ArchiveError` when the file cannot be read or lacks a column.
+    """
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.DictReader(fh)
+            cols = {(c or "").strip().lower(): c for c in (reader.fieldnames or [])}
+            missing = [c for c in ("path", "stream", "start_time") if c not in cols]
+            if missing:
+                raise ArchiveError(
+                    f"manifest {path}: missing column(s) {', '.join(missing)}; the first line must name "
+                    "the columns path, stream, start_time",
+                    path=str(path),
+                )
+            rows: dict[str, _Row] = {}
+            bad: list[InvalidFile] = []
+            for raw in reader:
+                line = reader.line_num
+                rel = _norm_rel(raw.get(cols["path"]) or "")
+                row = _Row(line, (raw.get(cols["stream"]) or "").strip(), (raw.get(cols["start_time"]) or "").strip())
+                if not rel:
+                    continue
+                old = rows.get(rel)
+                if old is not None and (old.stream, old.start) != (row.stream, row.start):
+                    if any(b.path == rel for b in bad):
+                        continue
+                    bad.append(
+                        InvalidFile(
+                            rel,
+                            f"manifest {path} lines {old.line} and {line} give different stream/start_time",
+                            "keep one row per file in the manifest",
+                        )
+                    )
+                    continue
+                rows.setdefault(rel, row)
+    except OSError as e:
+        raise ArchiveError(
+            f"manifest {path}: cannot be read ({e.strerror}); check [archive] manifest", path=str(path)
+        ) from None
+    except (csv.Error, UnicodeDecodeError) as e:
+        raise ArchiveError(f"manifest {path}: not a readable UTF-8 CSV file ({e})", path=str(path)) from None
+    conflicted = {b.path for b in bad}
+    return {k: v for k, v in rows.items() if k not in conflicted}, bad
+
+
+def _parse_iso(text: str) -> _dt.datetime:
+    t = _dt.datetime.fromisoformat(text)
+    return t.replace(tzinfo=UTC) if t.tzinfo is None else t.astimezone(UTC)
+
+
+# -- discovery ---------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Discovery:
+    """What :func:`discover` found."""
+
+    root: Path
+    """The archive root (absolute)."""
+    files: tuple[FileEntry, ...]
+    """Valid files, sorted by relative path."""
+    invalid: tuple[InvalidFile, ...]
+    """Files left out, each with the reason and what to do."""
+    warnings: tuple[str, ...] = ()
+    """Non-fatal findings of the readers, prefixed with the relative path."""
+
+    def segments(self) -> tuple[list[Segment], list[InvalidFile]]:
+        """Group :attr:`files` into segments; invalid files of discovery and grouping together."""
+        segs, bad = build_segments(self.files)
+        return segs, [*self.invalid, *bad]
+
+
+class _Bad(Exception):
+    def __init__(self, reason: str, remedy: str) -> None:
+        super().__init__(reason)
+        self.reason, self.remedy = reason, remedy
+
+
+def _strip_path(message: str, abspath: str) -> str:
+    for prefix in (abspath + ": ", abspath + " "):
+        if message.startswith(prefix):
+            return message[len(prefix):]
+    return message
+
+
+def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
+    """RecordingInfo and ReaderSpec of one file, or :class:`_Bad`."""
+    try:
+        reader = reader_for(abspath)
+        accepted = tuple(getattr(reader, "options", ()))
+        opts: dict[str, Any] = {}
+        if "truncated" in accepted:
+            opts["truncated"] = cfg.archive.truncated
+        with open_recording(abspath, format=reader.name, options=opts) as rec:
+            info, spec = rec.info, rec.spec
+        if info.sample_rate_hz is None and cfg.archive.sample_rate_hz is not None and "sample_rate_hz" in accepted:
+            opts["sample_rate_hz"] = cfg.archive.sample_rate_hz
+            with open_recording(abspath, format=reader.name, options=opts) as rec:
+                info, spec = rec.info, rec.spec
+    except (TwinpassError, OSError) as e:
+        text = _strip_path(str(e), abspath)
+        raise _Bad(f"cannot be opened: {text}", _REMEDY_EXCLUDE) from None
+    if info.frames <= 0:
+        raise _Bad("holds no samples (0 frames)", "remove it or leave it out with [archive] exclude")
+    if info.sample_rate_hz is None:
+        raise _Bad(
+            f"the {info.format} format stores no sample rate",
+            "set [archive] sample_rate_hz (Hz) in the configuration",
+        )
+    if not info.sample_rate_hz > 0:
+        raise _Bad(f"sample rate {info.sample_rate_hz!r} Hz is not positive", _REMEDY_EXCLUDE)
+    return info, spec
+
+
+def _identify(
+    cfg: JobConfig,
+    rel: str,
+    info: Any,
+    manifest: dict[str, _Row] | None,
+    pattern: NamePattern | None,
+) -> tuple[str, _dt.datetime | None]:
+    """Stream and start time of one file (rules in the module documentation), or :class:`_Bad`."""
+    if manifest is not None and rel in manifest:
+        row = manifest[rel]
+        where = f"manifest {cfg.manifest_path} line {row.line}"
+        if not row.stream:
+            raise _Bad(f"{where}: the stream is empty", "name the file's stream in the manifest")
+        if not row.start:
+            return row.stream, None
+        try:
+            return row.stream, _parse_iso(row.start)
+        except ValueError:
+            raise _Bad(
+                f"{where}: start_time {row.start!r} is not an ISO 8601 time",
+                "write it like 2024-05-01T12:00:00Z (UTC when no offset is given)",
+            ) from None
+    if pattern is not None:
+        stem = str(PurePosixPath(rel).with_suffix("")) if PurePosixPath(rel).suffix else rel
+        try:
+            got = pattern.match(stem)
+        except ValueError as e:
+            raise _Bad(
+                f"the start time in the name does not parse with {{start:{pattern.time_format}}} ({e})",
+                "rename the file or correct [archive] name_pattern",
+            ) from None
+        if got is None:
+            raise _Bad(
+                f"{stem!r} does not match [archive] name_pattern {pattern.pattern!r}",
+                "rename the file, correct the pattern, or leave it out with [archive] exclude",
+            )
+        stream, start = got
+        if stream is None:
+            parent = PurePosixPath(rel).parent.as_posix()
+            stream = cfg.archive_root.name if parent == "." else parent
+        return stream, start
+    if manifest is not None:
+        raise _Bad(
+            f"not listed in the manifest {cfg.manifest_path}",
+            "add a row (path, stream, start_time) for it, or leave it out with [archive] exclude",
+        )
+    start = info.start_time
+    if start is not None:
+        start = start.replace(tzinfo=UTC) if start.tzinfo is None else start.astimezone(UTC)
+        parent = PurePosixPath(rel).parent.as_posix()
+        return (PurePosixPath(rel).name if parent == "." else parent), start
+    return rel, None
+
+
+def _split_duplicates(entries: list[FileEntry]) -> tuple[list[FileEntry], list[InvalidFile]]:
+    """Keep the first file (by path) of each (stream, start time); report the others."""
+    first: dict[tuple[str, _dt.datetime], str] = {}
+    keep: list[FileEntry] = []
+    dups: list[InvalidFile] = []
+    for e in entries:
+        key = (e.stream, e.start_time)
+        if e.start_time is not None and key in first:
+            dups.append(
+                InvalidFile(
+                    e.relpath,
+                    f"same stream {e.stream!r} and start time {e.start_time.isoformat()} as {first[key]}",
+                    "keep one of the two files (or correct its name or manifest row), or exclude one with "
+                    "[archive] exclude",
+                )
+            )
+            continue
+        if e.start_time is not None:
+            first[key] = e.relpath  # type: ignore[index]
+        keep.append(e)
+    return keep, dups
+
+
+def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
+    """Find the archive's input files, open each read-only and assign stream and start time.
+
+    Parameters
+    ----------
+    cfg : JobConfig
+        Uses ``cfg.archive_root``, ``[archive]`` (include, exclude, name_pattern, manifest,
+        sample_rate_hz, truncated, fingerprint) and the output store location.
+    fingerprints : bool
+        Fingerprint every valid file (mode ``[archive] fingerprint``); ``False`` leaves
+        :attr:`FileEntry.fingerprint` as ``None``.
+
+    Returns
+    -------
+    Discovery
+        Valid files and invalid ones (with reasons); per-file problems never raise.
+
+    Raises
+    ------
+    ArchiveError
+        The archive root is not a folder, or the manifest cannot be read.
+    ConfigError
+        The name pattern or a glob pattern is malformed.
+    """
+    root = cfg.archive_root
+    pattern = NamePattern(cfg.archive.name_pattern) if cfg.archive.name_pattern else None
+    manifest: dict[str, _Row] | None = None
+    invalid: list[InvalidFile] = []
+    if cfg.manifest_path is not None:
+        manifest, conflicts = read_manifest(cfg.manifest_path)
+        invalid.extend(conflicts)
+    rels = list_archive(cfg)
+    entries: list[FileEntry] = []
+    warnings: list[str] = []
+    reported = {b.path for b in invalid}
+    for rel in rels:
+        if rel in reported:
+            continue
+        abspath = str(root / rel)
+        try:
+            info, spec = _open_info(cfg, abspath)
+            stream, start = _identify(cfg, rel, info, manifest, pattern)
+            fp = None
+            if fingerprints:
+                try:
+                    fp = fingerprint_file(abspath, cfg.archive.fingerprint)
+                except InputError as e:
+                    raise _Bad(f"cannot be fingerprinted: {_strip_path(str(e), abspath)}", _REMEDY_EXCLUDE) from None
+        except _Bad as bad:
+            invalid.append(InvalidFile(rel, bad.reason, bad.remedy))
+            continue
+        warnings.extend(f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings)
+        entries.append(FileEntry(rel, spec, info, stream, start, fp))
+    valid, dups = _split_duplicates(entries)
+    invalid.extend(dups)
+    if manifest is not None:
+        listed = set(rels) | {b.path for b in invalid}
+        for rel, row in sorted(manifest.items()):
+            if rel not in listed and not (root / rel).exists():
+                invalid.append(
+                    InvalidFile(
+                        rel,
+                        f"listed in the manifest {cfg.manifest_path} (line {row.line}) but not found under {root}",
+                        "restore the file or remove its row from the manifest",
+                    )
+                )
+    invalid.sort(key=lambda i: i.path)
+    return Discovery(root=root, files=tuple(valid), invalid=tuple(invalid), warnings=tuple(warnings))

@@ -1,0 +1,125 @@
+"""The archive's status as recorded in an output store: per stream and file.
+
+Reads only; safe to run while a job is writing (figures may lag the data).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+from .config import load_config
+from .core import checks as _checks
+from .errors import StoreError
+from .io.store import OutputStore
+
+
+def open_target(target: str) -> tuple[OutputStore, str]:
+    """Open the store named by ``target``: a config file (its [output] store) or a store path/URL."""
+    p = Path(target)
+    if p.is_file() and p.suffix.lower() == ".toml":
+        cfg = load_config(p)
+        return OutputStore.open(cfg.store_location, mode="r"), cfg.store_location
+    return OutputStore.open(target, mode="r"), target
+
+
+def _worst(summary: dict[str, Any], key: str) -> Any:
+    v = summary.get(key)
+    return None if v is None or (isinstance(v, float) and math.isnan(v)) else v
+
+
+def collect_status(store: OutputStore) -> dict[str, Any]:
+    """A JSON-ready status: {store, files: [...], totals: {...}}."""
+    files = []
+    for name in store.list_arrays():
+        attrs = store.array_attrs(name)
+        if "source" not in attrs:
+            continue
+        try:
+            t = store.read_block_table(name, figures=True, seams=False)
+            counts = t.counts()
+            summary = _checks.summarise(t.figures) if t.figures is not None else {}
+            errors = {str(k): v.splitlines()[0] for k, v in t.errors.items()}
+            grade = _checks.grade_file(t.status.tolist())
+        except StoreError:
+            counts, summary, errors, grade = {}, {}, {}, "incomplete"
+        n = sum(counts.values())
+        done = counts.get("pass", 0) + counts.get("warn", 0)
+        files.append({
+            "name": name, "source": attrs.get("source"), "stream": attrs.get("stream"),
+            "segment": attrs.get("segment"), "start_time": attrs.get("start_time"),
+            "blocks": n, "blocks_done": done, "blocks_pending": counts.get("pending", 0),
+            "blocks_warn": counts.get("warn", 0), "blocks_fail": counts.get("fail", 0),
+            "blocks_error": counts.get("error", 0), "checks": grade,
+            "complete": attrs.get("complete") is True,
+            "edge_zone_samples": attrs.get("edge_zone_samples"),
+            "worst": {k: _worst(summary, k) for k in ("passband_dev_db", "phase_deg", "stopband_att_db",
+                                                      "seam_mismatch", "clipped", "nonfinite_out")},
+            "errors": errors,
+        })
+    files.sort(key=lambda f: (str(f["stream"]), str(f["start_time"] or ""), f["name"]))
+    root = store.read_root_info()
+    runs = root.get("runs", [])
+    totals = {
+        "files": len(files),
+        "complete": sum(f["complete"] for f in files),
+        "incomplete": sum(not f["complete"] for f in files),
+        "blocks": sum(f["blocks"] for f in files),
+        "blocks_done": sum(f["blocks_done"] for f in files),
+        "blocks_failed": sum(f["blocks_fail"] + f["blocks_error"] for f in files),
+        "checks_failed": sum(f["checks"] == "fail" for f in files),
+    }
+    return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None}
+
+
+def _fmt(v: Any, spec: str = ".3g") -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return format(v, spec)
+    return str(v)
+
+
+def format_status(status: dict[str, Any]) -> str:
+    """The status as a plain-text table grouped by stream."""
+    header = ("FILE", "BLOCKS", "FAILED", "CHECKS", "PB DEV dB", "PHASE deg", "STOP dB", "SEAM", "EDGE ZONE", "COMPLETE")
+    lines = [f"store: {status['store']}"]
+    by_stream: dict[str, list[dict[str, Any]]] = {}
+    for f in status["files"]:
+        by_stream.setdefault(str(f["stream"]), []).append(f)
+    rows: list[tuple[str, ...] | str] = []
+    for stream, files in by_stream.items():
+        rows.append(f"stream {stream}")
+        for f in files:
+            w = f["worst"]
+            ez = f["edge_zone_samples"] or [0, 0]
+            rows.append((f["name"], f"{f['blocks_done']}/{f['blocks']}", str(f["blocks_fail"] + f["blocks_error"]),
+                         f["checks"], _fmt(w["passband_dev_db"]), _fmt(w["phase_deg"]), _fmt(w["stopband_att_db"]),
+                         _fmt(w["seam_mismatch"], ".1e"), f"{ez[0]}/{ez[1]}", "yes" if f["complete"] else "NO"))
+    table = [header] + [r for r in rows if isinstance(r, tuple)]
+    widths = [max(len(r[i]) for r in table) for i in range(len(header))]
+
+    def line(r: tuple[str, ...]) -> str:
+        return "  ".join(c.ljust(widths[i]) for i, c in enumerate(r)).rstrip()
+
+    lines.append(line(header))
+    for r in rows:
+        lines.append(r if isinstance(r, str) else "  " + line(r))
+    t = status["totals"]
+    lines.append(f"files: {t['files']} ({t['complete']} complete, {t['incomplete']} incomplete); "
+                 f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed; "
+                 f"files with failed checks: {t['checks_failed']}")
+    for f in status["files"]:
+        for b, msg in f["errors"].items():
+            lines.append(f"  error {f['name']} block {b}: {msg}")
+    return "\n".join(lines)
+
+
+def all_passed(status: dict[str, Any]) -> bool:
+    """Every file complete and no block failed its checks."""
+    t = status["totals"]
+    return t["files"] > 0 and t["incomplete"] == 0 and t["checks_failed"] == 0 and t["blocks_failed"] == 0
+
+
+__all__ = ["open_target", "collect_status", "format_status", "all_passed"]

@@ -1,0 +1,368 @@
+"""Discovery of archive files, name patterns, manifests, bad input and fingerprints.
+
+References:
+* WAV inputs are written with scipy.io.wavfile; NPY inputs with numpy.save; Zarr inputs
+  with zarr-python.
+* Start times in names are checked against Python's datetime.strptime / fromisoformat.
+* Fingerprint digests are checked against hashlib.blake2b (digest_size=32) computed here.
+* Broadcast WAVE ``bext`` layout (OriginationDate at byte 320, OriginationTime at 330,
+  TimeReference at 338; 602 bytes before CodingHistory): EBU Tech 3285, from memory.
+* Everything else (which source of stream and time wins, what is reported invalid) is a
+  twinpass rule.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import os
+import struct
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.io import wavfile
+
+from twinpass.config import ArchiveConfig, JobConfig, OutputConfig
+from twinpass.core.plan import make_plan
+from twinpass.core.types import Design, FileRecord, ResponseSpec
+from twinpass.errors import ArchiveError, ConfigError
+from twinpass.io.archive import NamePattern, compile_glob, discover, list_archive
+from twinpass.io.fingerprint import design_digest, fingerprint_changed, fingerprint_file
+
+UTC = dt.timezone.utc
+MIB = 1 << 20
+
+
+def job(tmp_path: Path, **archive) -> JobConfig:
+    archive.setdefault("root", "archive")
+    store = archive.pop("store", "out/filtered.zarr")
+    return JobConfig(response=ResponseSpec(), archive=ArchiveConfig(**archive), output=OutputConfig(store=store),
+                     base_dir=tmp_path)
+
+
+def npy(root: Path, rel: str, frames: int, channels: int = 1, seed: int = 0) -> Path:
+    p = root / rel
+    p.parent.mkdir(parents=True, exist_ok=True)
+    x = np.random.default_rng(seed).standard_normal((frames, channels)).astype(np.float32)
+    np.save(p, x)
+    return p
+
+
+def wav(root: Path, rel: str, frames: int, rate: int = 8000, channels: int = 1) -> Path:
+    p = root / rel
+    p.parent.mkdir(parents=True, exist_ok=True)
+    x = (np.random.default_rng(1).standard_normal((frames, channels)) * 1000).astype(np.int16)
+    wavfile.write(p, rate, x)
+    return p
+
+
+def add_bext(path: Path, date: str, time: str) -> None:
+    """Insert a Broadcast WAVE bext chunk (EBU Tech 3285) before the data chunk."""
+    blob = path.read_bytes()
+    pos = blob.index(b"data")
+    body = bytearray(602)
+    body[320:330] = date.encode()
+    body[330:338] = time.encode()
+    chunk = b"bext" + struct.pack("<I", len(body)) + bytes(body)
+    out = blob[:pos] + chunk + blob[pos:]
+    out = out[:4] + struct.pack("<I", len(out) - 8) + out[8:]
+    path.write_bytes(out)
+
+
+def by_path(disc) -> dict:
+    return {e.relpath: e for e in disc.files}
+
+
+def reasons(disc) -> dict[str, str]:
+    return {i.path: f"{i.reason} | {i.remedy}" for i in disc.invalid}
+
+
+# -- discovery with a name pattern --------------------------------------------------
+
+
+def hourly(root: Path, streams=("north", "south"), hours=3, fs=1.0) -> None:
+    for s in streams:
+        for h in range(hours):
+            npy(root, f"{s}/{s}_20240501T{h:02d}0000.npy", int(3600 * fs), seed=h)
+
+
+def test_pattern_hourly_files_of_two_streams(tmp_path):
+    root = tmp_path / "archive"
+    hourly(root)
+    cfg = job(tmp_path, include=("**/*.npy",), name_pattern="{stream}/{stream}_{start:%Y%m%dT%H%M%S}",
+              sample_rate_hz=1.0)
+    disc = discover(cfg)
+    assert disc.invalid == ()
+    rels = [e.relpath for e in disc.files]
+    assert rels == sorted(rels) and len(rels) == 6
+    e = by_path(disc)["south/south_20240501T020000.npy"]
+    assert e.stream == "south"
+    # reference: datetime.strptime of the name's time text, taken as UTC
+    assert e.start_time == dt.datetime.strptime("20240501T020000", "%Y%m%dT%H%M%S").replace(tzinfo=UTC)
+    assert (e.info.frames, e.info.sample_rate_hz, e.spec.format) == (3600, 1.0, "npy")
+    assert e.fingerprint is not None and e.fingerprint["mode"] == "fast"
+    segs, bad = disc.segments()
+    assert bad == [] and [(s.stream, len(s.files), s.frames) for s in segs] == [("north", 3, 10800), ("south", 3, 10800)]
+    assert segs[0].id == "north@2024-05-01T00:00:00+00:00"
+    # deterministic: a second discovery gives the same files and fingerprints
+    again = discover(cfg)
+    assert [(e.relpath, e.fingerprint) for e in again.files] == [(e.relpath, e.fingerprint) for e in disc.files]
+
+
+def test_pattern_fields():
+    p = NamePattern("{**}/{stream}/{stream}_{start:%Y%m%dT%H%M%S%z}_{*}")
+    got = p.match("deep/er/a1/a1_20240501T120000+0200_v2")
+    # reference: datetime.strptime with %z, converted to UTC
+    ref = dt.datetime.strptime("20240501T120000+0200", "%Y%m%dT%H%M%S%z").astimezone(UTC)
+    assert got == ("a1", ref) and ref.hour == 10
+    assert p.match("deep/a1/b1_20240501T120000+0200_v2") is None  # repeated {stream} must agree
+    assert p.match("a1/a1_20240501T120000+0200_v2") is None  # {**}/ needs a folder
+    assert NamePattern("{{x}}_{start:%Y-%j}").match("{x}_2024-122") == (None, dt.datetime(2024, 5, 1, tzinfo=UTC))
+    with pytest.raises(ValueError):
+        NamePattern("{stream}_{start:%Y%m%d}").match("s_20241301")  # month 13 fits the shape only
+    for bad in ("{station}_{start:%Y}", "{start:%Y%Q}", "{stream", "{start:%Y}{start:%m}"):
+        with pytest.raises(ConfigError, match="name_pattern"):
+            NamePattern(bad)
+
+
+def test_pattern_without_stream_uses_parent_folder(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "east/20240501T00.npy", 3600)
+    npy(root, "20240501T00.npy", 3600)
+    disc = discover(job(tmp_path, include=("**/*.npy",), name_pattern="{**}{start:%Y%m%dT%H}", sample_rate_hz=1.0))
+    assert {e.relpath: e.stream for e in disc.files} == {"east/20240501T00.npy": "east", "20240501T00.npy": "archive"}
+
+
+# -- manifest and metadata --------------------------------------------------------
+
+
+def test_manifest_csv(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "x/rec1.npy", 100)
+    npy(root, "x/rec2.npy", 100)
+    npy(root, "unlisted.npy", 100)
+    npy(root, "badtime.npy", 100)
+    man = root / "manifest.csv"
+    man.write_text(
+        "path,stream,start_time\n"
+        "x/rec1.npy,buoy,2024-05-01T12:00:00+02:00\n"
+        "./x/rec2.npy,buoy,2024-05-01T10:00:01\n"
+        "badtime.npy,buoy,yesterday noon\n"
+        "lost.npy,buoy,2024-05-01T11:00:00Z\n"
+    )
+    disc = discover(job(tmp_path, include=("**/*",), manifest="archive/manifest.csv", sample_rate_hz=100.0))
+    got = by_path(disc)
+    assert set(got) == {"x/rec1.npy", "x/rec2.npy"}  # the manifest itself is never an input
+    # reference: datetime.fromisoformat, offsets converted to UTC, no offset = UTC
+    assert got["x/rec1.npy"].start_time == dt.datetime.fromisoformat("2024-05-01T12:00:00+02:00")
+    assert got["x/rec1.npy"].start_time.utcoffset() == dt.timedelta(0)
+    assert got["x/rec2.npy"].start_time == dt.datetime(2024, 5, 1, 10, 0, 1, tzinfo=UTC)
+    bad = reasons(disc)
+    assert "not listed in the manifest" in bad["unlisted.npy"]
+    assert "line 4" in bad["badtime.npy"] and "ISO 8601" in bad["badtime.npy"]
+    assert "not found" in bad["lost.npy"] and "line 5" in bad["lost.npy"]
+    segs, _ = disc.segments()  # rec1 starts at 10:00:00 UTC and lasts 1 s: rec2 continues it
+    assert [s.relpaths for s in segs] == [("x/rec1.npy", "x/rec2.npy")]
+
+
+def test_manifest_rows_that_disagree_are_reported(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "a.npy", 10)
+    npy(root, "b.npy", 10)
+    (tmp_path / "m.csv").write_text(
+        "path,stream,start_time\na.npy,s,2024-05-01T00:00:00Z\nb.npy,s,\na.npy,t,2024-05-01T00:00:00Z\n"
+        "a.npy,u,2024-05-01T00:00:00Z\n"
+    )
+    disc = discover(job(tmp_path, manifest="m.csv", sample_rate_hz=1.0))
+    assert [(e.relpath, e.stream, e.start_time) for e in disc.files] == [("b.npy", "s", None)]
+    assert [i.path for i in disc.invalid] == ["a.npy"] and "lines 2 and 4" in disc.invalid[0].reason
+
+
+def test_manifest_without_a_column_raises(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "a.npy", 10)
+    (tmp_path / "m.csv").write_text("path,stream\na.npy,s\n")
+    with pytest.raises(ArchiveError, match="start_time"):
+        discover(job(tmp_path, manifest="m.csv"))
+
+
+def test_no_pattern_uses_format_start_time_or_own_stream(tmp_path):
+    import zarr
+
+    root = tmp_path / "archive"
+    for name, start in (("a.zarr", "2024-05-01T00:00:00Z"), ("b.zarr", "2024-05-01T00:00:02Z")):
+        arr = zarr.create_array(store=str(root / "site" / name), shape=(200,), dtype="float32", chunks=(100,))
+        arr[:] = np.arange(200, dtype="float32")
+        arr.attrs.update({"sample_rate_hz": 100.0, "start_time": start})
+    wav(root, "loose.wav", 400)
+    wav(root, "field/bw.wav", 400)
+    add_bext(root / "field/bw.wav", "2024-05-02", "06:30:00")
+    npy(root, "plain.npy", 50)
+    disc = discover(job(tmp_path, include=("**/*.zarr", "**/*.wav", "**/*.npy"), sample_rate_hz=10.0))
+    assert disc.invalid == ()
+    got = by_path(disc)
+    assert got["site/a.zarr"].stream == "site" and got["site/a.zarr"].info.format == "zarr"
+    assert got["field/bw.wav"].stream == "field"
+    assert got["field/bw.wav"].start_time == dt.datetime(2024, 5, 2, 6, 30, tzinfo=UTC)
+    # reference: scipy.io.wavfile wrote 8000 Hz, 400 frames
+    assert (got["loose.wav"].info.sample_rate_hz, got["loose.wav"].frames) == (8000.0, 400)
+    assert (got["loose.wav"].stream, got["loose.wav"].start_time) == ("loose.wav", None)
+    assert (got["plain.npy"].stream, got["plain.npy"].start_time) == ("plain.npy", None)
+    segs, bad = disc.segments()
+    assert bad == [] and ("site/a.zarr", "site/b.zarr") in [s.relpaths for s in segs]
+
+
+# -- include / exclude and the output store --------------------------------------------
+
+
+def test_include_exclude_and_store_fenced(tmp_path):
+    root = tmp_path / "archive"
+    for rel in ("a.npy", "d1/b.npy", "d1/d2/c.npy", "tmp/x.npy", "d1/c_bad.npy", "d1/notes.txt"):
+        npy(root, rel, 10) if rel.endswith(".npy") else (root / rel).write_text("x")
+    npy(root, "results/leftover.npy", 10)  # an output store inside the archive
+    outside = tmp_path / "elsewhere.zarr"
+    npy(outside, "data.npy", 10)
+    os.symlink(outside, root / "d1" / "link")  # a link into an output store elsewhere
+    cfg = job(tmp_path, include=("**/*.npy",), exclude=("tmp/**", "**/*_bad.npy"), store="archive/results")
+    assert list_archive(cfg) == ["a.npy", "d1/b.npy", "d1/d2/c.npy", "d1/link/data.npy"]
+    cfg = job(tmp_path, include=("**/*.npy",), exclude=("tmp/**", "**/*_bad.npy"), store="elsewhere.zarr")
+    assert "d1/link/data.npy" not in list_archive(cfg)
+    assert "results/leftover.npy" in list_archive(cfg)  # not the store of this job
+    assert list_archive(job(tmp_path, include=("d1/*.npy",))) == ["d1/b.npy", "d1/c_bad.npy"]
+
+
+def test_glob_translation():
+    # common practice (shell/pathlib glob): ** spans folders, * stays within one
+    rx = compile_glob("**/*.wav")
+    assert rx.match("a.wav") and rx.match("x/y/a.wav") and not rx.match("a.wavx")
+    assert compile_glob("d?/[!x]*.npy").match("d1/a.npy") and not compile_glob("d?/[!x]*.npy").match("d1/xa.npy")
+    assert not compile_glob("*.npy").match("d/a.npy")
+
+
+def test_missing_root_raises(tmp_path):
+    with pytest.raises(ArchiveError, match="not a folder"):
+        discover(job(tmp_path, root="nowhere"))
+
+
+# -- bad input is reported, the rest discovered ----------------------------------------
+
+
+def test_bad_inputs_are_reported_with_path_and_remedy(tmp_path):
+    root = tmp_path / "archive"
+    pat = "{stream}_{start:%Y%m%dT%H%M%S}{*}"
+    good = [npy(root, "s1_20240501T000000.npy", 100), npy(root, "s1_20240501T000100.npy", 100)]
+    (root / "s1_20240501T000200.npy").write_bytes(b"not an array at all")
+    np.save(root / "s1_20240501T000300.npy", np.zeros((0, 1), np.float32))
+    npy(root, "s1_20241301T000000.npy", 10)  # month 13
+    npy(root, "readme_notes.npy", 10)
+    npy(root, "s1_20240501T000000b.npy", 10)  # same stream and start as the first good file
+    w = wav(root, "s2_20240501T000000.wav", 1000)
+    w.write_bytes(w.read_bytes()[:-7])  # data chunk shorter than the header claims
+    (root / "s3_20240501T000000.npy").write_bytes(b"")
+    disc = discover(job(tmp_path, include=("*.npy", "*.wav"), name_pattern=pat, sample_rate_hz=1.0))
+    assert [e.relpath for e in disc.files] == [p.name for p in good]
+    bad = reasons(disc)
+    assert set(bad) == {
+        "s1_20240501T000200.npy", "s1_20240501T000300.npy", "s1_20241301T000000.npy", "readme_notes.npy",
+        "s1_20240501T000000b.npy", "s2_20240501T000000.wav", "s3_20240501T000000.npy",
+    }
+    assert "not an NPY file" in bad["s1_20240501T000200.npy"] and "exclude" in bad["s1_20240501T000200.npy"]
+    assert "no frames" in bad["s1_20240501T000300.npy"]
+    assert "does not parse" in bad["s1_20241301T000000.npy"] and "name_pattern" in bad["s1_20241301T000000.npy"]
+    assert "does not match" in bad["readme_notes.npy"]
+    assert "s1_20240501T000000.npy" in bad["s1_20240501T000000b.npy"]
+    assert "truncated" in bad["s2_20240501T000000.wav"]
+    # the same truncated WAV is accepted (whole frames) with a warning when asked to
+    disc = discover(job(tmp_path, include=("*.wav",), name_pattern=pat, truncated="warn"))
+    assert [e.frames for e in disc.files] == [996] and "s2_20240501T000000.wav" in disc.warnings[0]
+    # an NPY without [archive] sample_rate_hz
+    disc = discover(job(tmp_path, include=("s1_20240501T0001*.npy",), name_pattern=pat))
+    assert disc.files == () and "[archive] sample_rate_hz" in reasons(disc)["s1_20240501T000100.npy"]
+
+
+# -- fingerprints ---------------------------------------------------------------------
+
+
+def _blake(data: bytes) -> str:
+    return hashlib.blake2b(data, digest_size=32).hexdigest()
+
+
+def test_fingerprint_fast_and_full(tmp_path):
+    p = tmp_path / "big.bin"
+    data = bytearray(np.random.default_rng(3).integers(0, 256, 5 * MIB, dtype=np.uint8).tobytes())
+    p.write_bytes(data)
+    fast, full = fingerprint_file(p, "fast"), fingerprint_file(p, "full")
+    # reference: hashlib.blake2b over the first and last MiB (fast) or every byte (full)
+    assert fast["digest"] == _blake(bytes(data[:MIB] + data[-MIB:])) and not fast["whole"]
+    assert full["digest"] == _blake(bytes(data)) and full["whole"] and full["size"] == 5 * MIB
+    assert fingerprint_file(p, "fast") == fast  # stable across runs
+    # a change in the middle, same size and modification time: only full sees it
+    stat = p.stat()
+    data[2 * MIB + 123] ^= 0xFF
+    p.write_bytes(data)
+    os.utime(p, ns=(stat.st_atime_ns, stat.st_mtime_ns))
+    assert not fingerprint_changed(fast, fingerprint_file(p, "fast"))[0]
+    changed, why = fingerprint_changed(full, fingerprint_file(p, "full"))
+    assert changed and "digest" in why
+    # a new modification time: fast sees it, full compares content only
+    os.utime(p, ns=(stat.st_atime_ns, stat.st_mtime_ns + 10**9))
+    assert fingerprint_changed(fast, fingerprint_file(p, "fast")) == (True, "modification time changed")
+    again = fingerprint_file(p, "full")
+    assert not fingerprint_changed(again | {"mtime_ns": 0}, again)[0]
+    # a new size: both see it
+    p.write_bytes(bytes(data) + b"x")
+    assert "size" in fingerprint_changed(fast, fingerprint_file(p, "fast"))[1]
+
+
+def test_small_files_are_hashed_whole_in_both_modes(tmp_path):
+    p = tmp_path / "small.bin"
+    p.write_bytes(b"abc" * 1000)
+    fast, full = fingerprint_file(p, "fast"), fingerprint_file(p, "full")
+    assert fast["digest"] == full["digest"] == _blake(b"abc" * 1000) and fast["whole"]
+    assert not fingerprint_changed(fast, full)[0]  # whole digests compare across modes
+    with pytest.raises(ConfigError):
+        fingerprint_file(p, "quick")
+
+
+def test_folder_fingerprint_sees_a_changed_chunk(tmp_path):
+    d = tmp_path / "rec.zarr"
+    (d / "c").mkdir(parents=True)
+    (d / "zarr.json").write_text("{}")
+    (d / "c" / "0").write_bytes(b"\x00" * 100)
+    before = fingerprint_file(d, "full")
+    (d / "c" / "0").write_bytes(b"\x00" * 99 + b"\x01")
+    assert fingerprint_changed(before, fingerprint_file(d, "full"))[0]
+    assert fingerprint_file(d, "full")["size"] == 102
+
+
+def test_design_digest_is_stable_and_sensitive():
+    from scipy import signal
+
+    sos = signal.butter(4, 10.0, fs=100.0, output="sos")
+    d = Design(ResponseSpec(kind="lowpass"), "butterworth", 100.0, 4, sos, None, 120, 1e-9)
+    a = design_digest(d, "odd", "auto", "0.1.0")
+    assert a == design_digest(d, "odd", "auto", "0.1.0") and len(a) == 64
+    assert a != design_digest(d, "even", "auto", "0.1.0")
+    assert a != design_digest(d, "odd", 50, "0.1.0")
+    assert a != design_digest(d, "odd", "auto", "0.2.0")
+
+
+# -- discovery into a plan -----------------------------------------------------------
+
+
+def test_appending_an_hour_replans_the_previous_hour(tmp_path):
+    root = tmp_path / "archive"
+    hourly(root, streams=("north",), hours=2)
+    cfg = job(tmp_path, include=("**/*.npy",), name_pattern="{stream}/{stream}_{start:%Y%m%dT%H%M%S}",
+              sample_rate_hz=1.0)
+    segs, bad = discover(cfg).segments()
+    records = {
+        f.relpath: FileRecord(f.relpath, f.fingerprint, "x", True, f.frames, s.id) for s in segs for f in s.files
+    }
+    npy(root, "north/north_20240501T020000.npy", 3600, seed=9)
+    segs, bad = discover(cfg).segments()
+    plan = make_plan(segs, bad, records, {1.0: "x"}, {1.0: 60})
+    assert [(f.status, f.redo) for f in plan.files] == [
+        ("unchanged", None), ("neighbour", ((3540, 3600),)), ("new", "all"),
+    ]
