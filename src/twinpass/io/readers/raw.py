@@ -1,0 +1,253 @@
+"""Raw reader: headerless interleaved samples described by a sidecar file.
+
+The sidecar sits next to the data file: ``<file>.toml`` or ``<file>.json`` (e.g.
+``run1.bin.toml``), or the same name with the suffix replaced (``run1.toml``); the reader
+option ``sidecar`` names one explicitly. Exactly one candidate may exist. Keys:
+
+=================  ========  ====================================================
+key                required  meaning
+=================  ========  ====================================================
+``dtype``          yes       numpy dtype name of one sample: ``"int8"``, ``"uint8"``,
+                             ``"int16"``, ``"int32"``, ``"float32"``, ``"float64"``...,
+                             or ``"int24"`` for packed 3-byte signed samples; a
+                             ``"<"``/``">"`` prefix (``">i2"``) sets the byte order
+``channels``       yes       interleaved channels per frame (>= 1)
+``byte_order``     no        ``"little"`` (default) or ``"big"``
+``sample_rate_hz`` no        Hz; else the ``sample_rate_hz`` option, else unknown
+``header_bytes``   no        bytes to skip at the start of the file (default 0)
+``start_time``     no        ISO 8601 time of the first sample (no zone = UTC)
+``gain``           no        ``y = x_scaled * gain + offset`` (default 1)
+``offset``         no        (default 0)
+``frames``         no        expected frame count, checked against the file size
+=================  ========  ====================================================
+
+``x_scaled`` follows the usual convention: signed integers ``v / 2**(bits - 1)``,
+unsigned ``(v - 2**(bits - 1)) / 2**(bits - 1)``, floats as stored.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import tomllib
+from typing import Any, BinaryIO
+
+import numpy as np
+
+from ...errors import CorruptInputError, UnsupportedFormatError
+from ._common import (
+    Codec,
+    FileReader,
+    InterleavedRecording,
+    normalize_path,
+    option_rate,
+    parse_time,
+    positive_rate,
+    resolve_rate,
+)
+from .base import ReaderSpec, RecordingInfo
+
+SIDECAR_KEYS = (
+    "dtype",
+    "channels",
+    "byte_order",
+    "sample_rate_hz",
+    "header_bytes",
+    "start_time",
+    "gain",
+    "offset",
+    "frames",
+)
+_SIDECAR_MAX_BYTES = 1 << 20
+_EXAMPLE = 'dtype = "int16"\nchannels = 2\nsample_rate_hz = 1000.0'
+
+
+def sidecar_candidates(path: str) -> list[str]:
+    """Where the sidecar of ``path`` may be, in the order they are tried."""
+    stem = os.path.splitext(path)[0]
+    out: list[str] = []
+    for c in (path + ".toml", path + ".json", stem + ".toml", stem + ".json"):
+        if c != path and c not in out:
+            out.append(c)
+    return out
+
+
+def _find_sidecar(path: str, explicit: Any) -> str:
+    if explicit is not None:
+        side = normalize_path(os.fspath(explicit))
+        if not os.path.isfile(side):
+            raise CorruptInputError(
+                f"{path}: the sidecar named by the option sidecar, {side}, does not exist", path=path
+            )
+        return side
+    cands = sidecar_candidates(path)
+    found = [c for c in cands if os.path.isfile(c)]
+    if not found:
+        raise CorruptInputError(
+            f"{path}: raw data needs a sidecar describing it; none found (looked for "
+            f"{', '.join(cands)}). Write {cands[0]} such as:\n{_EXAMPLE}",
+            path=path,
+        )
+    if len(found) > 1:
+        raise CorruptInputError(
+            f"{path}: several sidecars found ({', '.join(found)}); keep exactly one", path=path
+        )
+    return found[0]
+
+
+def _load_sidecar(path: str, side: str) -> dict[str, Any]:
+    try:
+        with open(side, "rb") as f:
+            text = f.read(_SIDECAR_MAX_BYTES + 1)
+    except OSError as exc:
+        raise CorruptInputError(f"{path}: cannot read its sidecar {side} ({exc})", path=path) from None
+    if len(text) > _SIDECAR_MAX_BYTES:
+        raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB", path=path)
+    try:
+        if side.lower().endswith(".json"):
+            doc = json.loads(text.decode("utf-8"))
+        else:
+            doc = tomllib.loads(text.decode("utf-8"))
+    except (ValueError, UnicodeDecodeError, RecursionError) as exc:
+        raise CorruptInputError(f"{path}: its sidecar {side} cannot be parsed: {exc}", path=path) from None
+    if not isinstance(doc, dict):
+        raise CorruptInputError(
+            f"{path}: its sidecar {side} must hold a table/object of keys, not {type(doc).__name__}",
+            path=path,
+        )
+    unknown = sorted(str(k) for k in doc if k not in SIDECAR_KEYS)
+    if unknown:
+        raise CorruptInputError(
+            f"{path}: its sidecar {side} has unknown key(s) {', '.join(map(repr, unknown))}; "
+            f"allowed keys: {', '.join(SIDECAR_KEYS)}",
+            path=path,
+        )
+    return doc
+
+
+def _int_key(doc: dict[str, Any], key: str, default: int | None, minimum: int, where: str) -> int | None:
+    v = doc.get(key, default)
+    if v is None:
+        return None
+    if isinstance(v, bool) or not isinstance(v, int) or v < minimum:
+        raise CorruptInputError(f"{where}: {key} must be an integer >= {minimum}, got {v!r}")
+    return v
+
+
+def _float_key(doc: dict[str, Any], key: str, default: float, where: str) -> float:
+    v = doc.get(key, default)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(float(v)):
+        raise CorruptInputError(f"{where}: {key} must be a finite number, got {v!r}")
+    return float(v)
+
+
+def _codec(doc: dict[str, Any], where: str, path: str) -> Codec:
+    order_txt = doc.get("byte_order", "little")
+    if order_txt not in ("little", "big"):
+        raise CorruptInputError(f"{where}: byte_order must be \"little\" or \"big\", got {order_txt!r}")
+    order = "<" if order_txt == "little" else ">"
+    name = doc.get("dtype")
+    if not isinstance(name, str) or not name:
+        raise CorruptInputError(
+            f"{where}: dtype must name the sample type, e.g. \"int16\", \"int24\" or \"float32\"; got {name!r}"
+        )
+    gain = _float_key(doc, "gain", 1.0, where)
+    offset = _float_key(doc, "offset", 0.0, where)
+    if name.strip().lower() == "int24":
+        return Codec("i", 3, order, gain, offset)
+    try:
+        dt = np.dtype(name)
+    except Exception as exc:  # numpy raises TypeError/ValueError/SyntaxError for bad strings
+        raise CorruptInputError(
+            f"{where}: dtype {name!r} is not a numpy dtype name ({type(exc).__name__}); use e.g. \"int16\""
+        ) from None
+    prefix = name.strip()[:1]  # numpy reports an explicit native order as "=", so read the text
+    if prefix in ("<", ">") and "byte_order" not in doc:
+        order = prefix
+    elif prefix in ("<", ">") and prefix != order and dt.itemsize > 1:
+        raise CorruptInputError(
+            f"{where}: dtype {name!r} is {'little' if prefix == '<' else 'big'}-endian but "
+            f"byte_order is {order_txt!r}; make them agree (or drop the '<'/'>' prefix)"
+        )
+    try:
+        base = Codec.from_dtype(dt, where)
+    except UnsupportedFormatError as exc:
+        raise UnsupportedFormatError(str(exc), path=path) from None
+    return Codec(base.kind, base.itemsize, order, gain, offset)
+
+
+class RawReader(FileReader):
+    """Headerless interleaved samples with a TOML/JSON sidecar."""
+
+    name = "raw"
+    suffixes = (".raw", ".bin", ".dat")
+    options = ("sample_rate_hz", "sidecar")
+
+    def _open_file(self, path: str, fh: BinaryIO, size: int, opts: dict[str, Any]) -> InterleavedRecording:
+        rate_opt = option_rate(path, opts)
+        side = _find_sidecar(path, opts.get("sidecar"))
+        if opts.get("sidecar") is not None:
+            opts["sidecar"] = side  # absolute, so the spec reopens from any directory
+        doc = _load_sidecar(path, side)
+        where = f"{path}: sidecar {side}"
+        try:
+            codec = _codec(doc, where, path)
+            channels = _int_key(doc, "channels", None, 1, where)
+            if channels is None:
+                raise CorruptInputError(f"{where}: the key channels is missing (interleaved channels per frame)")
+            header = _int_key(doc, "header_bytes", 0, 0, where) or 0
+            expected = _int_key(doc, "frames", None, 1, where)
+            rate = positive_rate(doc.get("sample_rate_hz"), where)
+            start = parse_time(doc["start_time"], where) if "start_time" in doc else None
+        except CorruptInputError as exc:
+            exc.path = path
+            raise
+        rate = resolve_rate(path, rate, f"sidecar {side}", rate_opt)
+        frame = codec.itemsize * channels
+        payload = size - header
+        if payload < 0:
+            raise CorruptInputError(
+                f"{path}: the file has {size} bytes, fewer than header_bytes = {header} in its sidecar "
+                f"{side}; fix header_bytes",
+                path=path,
+            )
+        frames, rest = divmod(payload, frame)
+        if rest:
+            raise CorruptInputError(
+                f"{path}: {payload} data bytes (file size {size} - header_bytes {header}) are not a whole "
+                f"number of {frame}-byte frames ({channels} channels x {codec.itemsize} bytes): "
+                f"{frames} frames + {rest} bytes. Check dtype, channels and header_bytes in {side}, "
+                "or cut the partial frame from the data file",
+                path=path,
+            )
+        if expected is not None and expected != frames:
+            raise CorruptInputError(
+                f"{path}: its sidecar {side} declares frames = {expected} but the file holds {frames} "
+                f"frames of {frame} bytes; fix frames (or dtype/channels/header_bytes) in the sidecar",
+                path=path,
+            )
+        if frames == 0:
+            raise CorruptInputError(
+                f"{path}: the file holds no frames after header_bytes = {header} (sidecar {side})", path=path
+            )
+        fmt = "int24" if codec.itemsize == 3 else codec.dtype.name
+        info = RecordingInfo(
+            path=path,
+            format=self.name,
+            frames=frames,
+            channels=channels,
+            sample_rate_hz=rate,
+            sample_format=fmt,
+            start_time=start,
+            full_scale=codec.full_scale,
+            extra={
+                "sidecar": side,
+                "header_bytes": header,
+                "byte_order": "little" if codec.byteorder == "<" else "big",
+                "gain": codec.gain,
+                "offset": codec.offset,
+            },
+        )
+        spec = ReaderSpec.create(self.name, path, opts)
+        return InterleavedRecording(info, spec, fh, codec, header)

@@ -1,0 +1,172 @@
+"""Zarr input reader: one array of a Zarr store (format 2 or 3), opened read-only.
+
+Location: ``store.zarr`` (the store root is the array), ``store.zarr#path/in/store`` or the
+reader option ``array``. The array is 1-D (one channel) or 2-D time-major
+(samples, channels). Windows are read lazily: only the chunks they touch are loaded.
+
+Attributes used when present: ``sample_rate_hz`` (Hz; else the ``sample_rate_hz`` option,
+else unknown) and ``start_time`` (ISO 8601; no zone = UTC). Integer arrays are scaled by
+``2**(bits - 1)`` (unsigned ones offset by ``2**(bits - 1)`` first), float arrays taken as is.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Any
+
+import numpy as np
+
+from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
+from ._common import (
+    Codec,
+    WindowRecording,
+    check_options,
+    is_url,
+    normalize_path,
+    option_rate,
+    parse_time,
+    positive_rate,
+    resolve_rate,
+)
+from .base import Reader, ReaderSpec, RecordingInfo
+
+_MARKERS = ("zarr.json", ".zarray", ".zgroup")
+
+
+def split_location(path: str) -> tuple[str, str]:
+    """Split ``"store.zarr#array/path"`` into ``("store.zarr", "array/path")``.
+
+    Only a ``#`` right after a name ending in ``.zarr`` separates; otherwise the array path
+    is empty (the store root).
+    """
+    i = path.find("#")
+    while i >= 0:
+        head = path[:i].rstrip("/\\")
+        if head.lower().endswith(".zarr"):
+            return head, path[i + 1 :].strip("/")
+        i = path.find("#", i + 1)
+    return path, ""
+
+
+class ZarrRecording(WindowRecording):
+    """An open Zarr array."""
+
+    def __init__(self, info: RecordingInfo, spec: ReaderSpec, array: Any, codec: Codec) -> None:
+        super().__init__(info, spec)
+        self._array = array
+        self._codec = codec
+
+    def _read(self, start: int, stop: int) -> np.ndarray:
+        try:
+            block = np.asarray(self._array[start:stop])
+        except Exception as exc:  # a damaged or missing chunk: codec and store errors vary
+            raise CorruptInputError(
+                f"{self.info.path}: frames [{start}, {stop}) cannot be read "
+                f"({type(exc).__name__}: {exc}); a chunk of the store is damaged",
+                path=self.info.path,
+            ) from exc
+        return self._codec.to_float(block).reshape(stop - start, self.info.channels)
+
+
+class ZarrReader(Reader):
+    """One array of a Zarr store, read-only and lazy."""
+
+    name = "zarr"
+    suffixes = (".zarr",)
+    options = ("array", "sample_rate_hz")
+
+    def guess_can_open(self, path: str) -> bool:
+        store, _ = split_location(path)
+        store = store.rstrip("/\\")
+        if store.lower().endswith(".zarr"):
+            return True
+        return not is_url(store) and any(os.path.isfile(os.path.join(store, m)) for m in _MARKERS)
+
+    def open(self, path: str, options: dict[str, Any] | None = None) -> ZarrRecording:
+        import zarr  # imported here: only Zarr inputs pay for it
+
+        store, frag = split_location(os.fspath(path))
+        store = normalize_path(store.rstrip("/\\") or store)
+        opts = check_options(self, store, options)
+        arr_opt = opts.get("array")
+        if arr_opt is not None and not isinstance(arr_opt, str):
+            raise ConfigError(f"{store}: option array must be a path inside the store, got {arr_opt!r}")
+        arr_opt = (arr_opt or "").strip("/")
+        if frag and arr_opt and frag != arr_opt:
+            raise ConfigError(
+                f"{store}: the location names array {frag!r} but the option array is {arr_opt!r}; keep one"
+            )
+        arr_path = frag or arr_opt
+        shown = f"{store}#{arr_path}" if arr_path else store
+        rate_opt = option_rate(shown, opts)
+        if not is_url(store) and not os.path.exists(store):
+            raise InputError(f"{store}: no such Zarr store", path=store)
+        try:
+            array = zarr.open_array(store=store, path=arr_path, mode="r")
+        except Exception as exc:  # zarr raises many types: not found, wrong node type, bad metadata
+            raise self._open_error(zarr, store, arr_path, exc) from exc
+        try:
+            dtype = np.dtype(array.dtype)
+        except TypeError:
+            raise UnsupportedFormatError(
+                f"{shown}: array dtype {array.dtype!r} is not a numeric sample type", path=store
+            ) from None
+        codec = Codec.from_dtype(dtype, shown)
+        shape = tuple(int(s) for s in array.shape)
+        if len(shape) not in (1, 2):
+            raise UnsupportedFormatError(
+                f"{shown}: array of shape {shape} is not supported; store 1-D (samples,) or 2-D "
+                "time-major (samples, channels) arrays",
+                path=store,
+            )
+        frames = shape[0]
+        channels = shape[1] if len(shape) == 2 else 1
+        if frames == 0 or channels == 0:
+            raise CorruptInputError(f"{shown}: array of shape {shape} holds no samples", path=store)
+        attrs = dict(array.attrs)
+        where = f"{shown}: attribute"
+        try:
+            rate = positive_rate(attrs.get("sample_rate_hz"), where)
+            start = parse_time(attrs["start_time"], where) if attrs.get("start_time") is not None else None
+        except CorruptInputError as exc:
+            exc.path = store
+            raise
+        rate = resolve_rate(shown, rate, "attribute sample_rate_hz", rate_opt)
+        spec_opts = {k: v for k, v in opts.items() if k != "array"}
+        if arr_path:
+            spec_opts["array"] = arr_path
+        info = RecordingInfo(
+            path=shown,
+            format=self.name,
+            frames=frames,
+            channels=channels,
+            sample_rate_hz=rate,
+            sample_format=dtype.name,
+            start_time=start,
+            full_scale=codec.full_scale,
+            extra={"store": store, "array": arr_path, "chunks": tuple(int(c) for c in array.chunks)},
+        )
+        return ZarrRecording(info, ReaderSpec.create(self.name, store, spec_opts), array, codec)
+
+    @staticmethod
+    def _open_error(zarr: Any, store: str, arr_path: str, exc: Exception) -> InputError:
+        shown = f"{store}#{arr_path}" if arr_path else store
+        try:
+            group = zarr.open_group(store=store, path=arr_path or None, mode="r")
+            names = [k for k, v in group.members(max_depth=None) if isinstance(v, zarr.Array)]
+        except Exception:
+            names = []
+        if names:
+            listed = ", ".join(names[:20]) + (" ..." if len(names) > 20 else "")
+            prefix = f"{arr_path}/" if arr_path else ""
+            return InputError(
+                f"{shown} is a group, not an array; name one of its arrays as {store}#{prefix}<name> "
+                f"or with the option array: {listed}",
+                path=store,
+            )
+        missing = (FileNotFoundError, getattr(zarr.errors, "NodeNotFoundError", FileNotFoundError))
+        if isinstance(exc, missing):
+            return InputError(f"{shown}: no Zarr array at this location ({exc})", path=store)
+        return CorruptInputError(
+            f"{shown}: cannot be opened as a Zarr array ({type(exc).__name__}: {exc})", path=store
+        )

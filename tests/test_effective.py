@@ -1,0 +1,151 @@
+"""Effective length (halo) of two-pass filtering.
+
+References: the FIR support length (M - 1 per side, from the length 2M - 1 autocorrelation);
+the pole-radius estimate n = ln(tol) / ln(r) (common practice); scipy.signal.sosfiltfilt on
+the whole signal for the halo's actual error.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from twinpass.core.effective import dominant_pole_radius, effective_length
+from twinpass.core.kernel import block_window, filtfilt_window
+from twinpass.errors import DesignError
+
+FS = 1000.0
+
+
+def pole_estimate(sos: np.ndarray, tol: float) -> float:
+    """Common practice: samples until r^n falls to the tolerance."""
+    return math.log(tol) / math.log(dominant_pole_radius(sos))
+
+
+@pytest.mark.parametrize("taps_count", [1, 2, 31, 1000])
+def test_fir_effective_length_is_taps_minus_one(taps_count: int) -> None:
+    # conv(h, h[::-1]) has 2M - 1 samples centred on lag 0: M - 1 per side.
+    taps = np.ones(taps_count) / taps_count
+    assert effective_length(taps=taps, tolerance=1e-6) == taps_count - 1
+    assert effective_length(taps=taps, tolerance=1e-12) == taps_count - 1
+
+
+def test_dominant_pole_radius_known_values() -> None:
+    # A first-order section y[n] = x[n] + 0.9 y[n-1] has its pole at 0.9 (textbook).
+    assert dominant_pole_radius(np.array([[1.0, 0, 0, 1.0, -0.9, 0]])) == pytest.approx(0.9)
+    # Butterworth: radius from numpy.roots of the transfer-function denominator.
+    b, a = signal.butter(4, 0.1)
+    sos = signal.butter(4, 0.1, output="sos")
+    assert dominant_pole_radius(sos) == pytest.approx(np.abs(np.roots(a)).max(), rel=1e-9)
+
+
+def test_grows_as_cutoff_falls_and_tracks_pole_estimate() -> None:
+    lengths = []
+    for fc in (30.0, 10.0, 3.0, 1.0, 0.3):
+        sos = signal.butter(4, fc, "highpass", fs=FS, output="sos")
+        n = effective_length(sos=sos, tolerance=1e-9)
+        est = pole_estimate(sos, 1e-9)
+        # Same order as the pole-radius estimate (common practice), a little above it
+        # because of the ||h||_1 safety factor and the slower-than-r^n onset.
+        assert est <= n <= 2.0 * est, (fc, n, est)
+        lengths.append(n)
+    assert lengths == sorted(lengths) and lengths[-1] > 50 * lengths[0]
+
+
+def test_log_linear_in_tolerance() -> None:
+    sos = signal.cheby1(4, 0.5, (2.0, 40.0), "bandpass", fs=FS, output="sos")
+    tols = (1e-4, 1e-6, 1e-8, 1e-10, 1e-12)
+    lengths = [effective_length(sos=sos, tolerance=t) for t in tols]
+    steps = np.diff(lengths)
+    # Each factor 100 in tolerance adds about ln(100) / -ln(r) samples (geometric decay, r^n).
+    expected = math.log(100.0) / -math.log(dominant_pole_radius(sos))
+    assert np.all(steps > 0)
+    np.testing.assert_allclose(steps, expected, rtol=0.25)
+
+
+def _stitched_error(x: np.ndarray, sos: np.ndarray, halo: int, block: int, edge_samples: int) -> float:
+    n = x.shape[0]
+    # Reference: scipy.signal.sosfiltfilt on the whole signal.
+    ref = signal.sosfiltfilt(sos, x, axis=0, padtype="odd", padlen=edge_samples)
+    err = 0.0
+    for start in range(0, n, block):
+        stop = min(n, start + block)
+        ws, we, a, b = block_window(start, stop, n, halo, edge_samples)
+        y = filtfilt_window(
+            x[ws:we], sos=sos, core_start=start - ws, core_stop=stop - ws, at_start=a,
+            at_end=b, edge="odd", edge_samples=edge_samples,
+        )
+        err = max(err, float(np.abs(y - ref[start:stop]).max()))
+    return err / float(np.abs(x).max())
+
+
+@pytest.mark.parametrize(
+    "design",
+    [
+        lambda: signal.butter(4, 2.0, "highpass", fs=FS, output="sos"),
+        lambda: signal.butter(4, (5.0, 40.0), "bandpass", fs=FS, output="sos"),
+        lambda: signal.ellip(3, 1, 40, 20.0, "lowpass", fs=FS, output="sos"),
+    ],
+)
+@pytest.mark.parametrize("tol", [1e-6, 1e-9])
+def test_halo_meets_tolerance_and_half_of_it_does_not(design, tol: float) -> None:
+    sos = design()
+    halo = effective_length(sos=sos, tolerance=tol)
+    n = 10 * halo
+    t = np.arange(n)
+    # Adversarial step-like signal: a square wave whose edges fall everywhere relative to
+    # the block boundaries.
+    x = np.sign(np.sin(2 * np.pi * t / (0.77 * halo)))[:, None] + 0.5
+    block = halo // 3
+    assert _stitched_error(x, sos, halo, block, halo) <= tol
+    # Not wildly oversized: half the halo misses the tolerance.
+    assert _stitched_error(x, sos, halo // 2, block, halo) > tol
+
+
+def test_very_long_filter_is_computed() -> None:
+    # 0.1 Hz high-pass at 30 kHz: effective length of millions of samples.
+    sos = signal.butter(4, 0.1, "highpass", fs=30_000.0, output="sos")
+    n = effective_length(sos=sos, tolerance=1e-9)
+    est = pole_estimate(sos, 1e-9)
+    assert 1e6 < n and est <= n <= 2.0 * est
+
+
+def test_extrapolation_beyond_computed_length_is_conservative() -> None:
+    sos = signal.butter(4, 0.5, "highpass", fs=FS, output="sos")
+    exact = effective_length(sos=sos, tolerance=1e-9)
+    capped = effective_length(sos=sos, tolerance=1e-9, max_computed_length=4096)
+    # The tail extrapolated from the pole radius (with a margin for repeated poles) must
+    # not undercut the computed value, and stays of the same order.
+    assert exact <= capped <= 2.0 * exact
+
+
+def test_first_order_section_closed_form() -> None:
+    # h[k] = (1 - a) a^k: ||h||_1 = 1, T(n) = a^n, so the bound 10 T(L) <= tol gives
+    # L = ceil(ln(tol / 10) / ln(a)) (geometric series).
+    a = 0.99
+    sos = np.array([[1 - a, 0, 0, 1.0, -a, 0]])
+    expected = math.ceil(math.log(1e-9 / 10) / math.log(a))
+    assert abs(effective_length(sos=sos, tolerance=1e-9) - expected) <= 1
+
+
+def test_unstable_filter_is_rejected() -> None:
+    # |p| >= 1: not BIBO stable (textbook criterion).
+    with pytest.raises(DesignError, match="unstable"):
+        effective_length(sos=np.array([[1.0, 0, 0, 1.0, -1.0, 0]]))
+    with pytest.raises(DesignError, match="unstable"):
+        effective_length(sos=np.array([[1.0, 0, 0, 1.0, -2.0, 1.01]]))
+
+
+def test_argument_errors() -> None:
+    sos = signal.butter(2, 0.2, output="sos")
+    with pytest.raises(DesignError, match="exactly one"):
+        effective_length()
+    with pytest.raises(DesignError, match="exactly one"):
+        effective_length(sos=sos, taps=np.ones(3))
+    with pytest.raises(DesignError, match="tolerance"):
+        effective_length(sos=sos, tolerance=0.0)
+    with pytest.raises(DesignError, match="shape"):
+        effective_length(sos=np.ones((2, 5)))
