@@ -1,0 +1,164 @@
+"""The command line end to end on small archives built here.
+
+References: scipy.io.wavfile and Python's wave module write the WAV inputs (reference
+libraries); the design numbers are checked in test_design.py, here only the CLI contract.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import wave
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.io.wavfile
+
+FS = 100
+
+
+def _twinpass(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "twinpass.cli", *args], capture_output=True, text=True,
+                          cwd=cwd, timeout=600)
+
+
+def _signal(n: int, ch: int, seed: int) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / FS
+    return 0.3 * np.sin(2 * np.pi * 5 * t)[:, None] + 0.05 * rng.standard_normal((n, ch))
+
+
+def _wav24(path: Path, x: np.ndarray) -> None:
+    # Python's wave module writes 24-bit PCM (reference library).
+    q = np.clip(np.round(x * 2**23), -(2**23), 2**23 - 1).astype("<i4")
+    raw = q.view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
+    with wave.open(str(path), "wb") as w:
+        w.setnchannels(x.shape[1])
+        w.setsampwidth(3)
+        w.setframerate(FS)
+        w.writeframes(raw)
+
+
+def mixed_archive(root: Path) -> Path:
+    """Two-stream WAV 16/24-bit archive with a gap, an NPY stream, and raw + sidecar."""
+    arch = root / "archive"
+    (arch / "alpha").mkdir(parents=True)
+    (arch / "beta").mkdir()
+    (arch / "gamma").mkdir()
+    n = 60 * FS  # one-minute files
+    # contiguous files of one stream must share rate, channels and sample format
+    _wav24(arch / "alpha/alpha_20260301T000000.wav", _signal(n, 2, 1))
+    _wav24(arch / "alpha/alpha_20260301T000100.wav", _signal(n, 2, 2))
+    # three minutes later: a gap, so a new segment
+    scipy.io.wavfile.write(arch / "alpha/alpha_20260301T000500.wav", FS,
+                           (_signal(n, 2, 3) * 32767).astype(np.int16))
+    np.save(arch / "beta/beta_20260301T000000.npy", _signal(n, 1, 4).astype(np.float32))
+    np.save(arch / "beta/beta_20260301T000100.npy", _signal(n, 1, 5).astype(np.float32))
+    (_signal(n, 3, 6) * 1000).astype("<i2").tofile(arch / "gamma/gamma_20260301T000000.raw")
+    (arch / "gamma/gamma_20260301T000000.raw.toml").write_text(
+        'dtype = "int16"\nbyte_order = "little"\nchannels = 3\nsample_rate_hz = 100.0\n')
+    cfg = root / "twinpass.toml"
+    cfg.write_text(f"""
+[response]
+kind = "bandpass"
+family = "butterworth"
+passband_hz = [1.0, 20.0]
+stopband_hz = [0.3, 35.0]
+passband_ripple_db = 1.0
+stopband_attenuation_db = 40.0
+
+[processing]
+tolerance = 1e-9
+block_seconds = 30.0
+
+[archive]
+root = "archive"
+include = ["**/*.wav", "**/*.npy", "**/*.raw"]
+name_pattern = "{{stream}}/{{stream}}_{{start:%Y%m%dT%H%M%S}}"
+sample_rate_hz = {FS}
+
+[output]
+store = "out.zarr"
+dtype = "float64"
+
+[engine]
+scheduler = "threads"
+workers = 2
+""")
+    return cfg
+
+
+def test_design_prints_report_and_json(tmp_path: Path) -> None:
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("design", str(cfg), "--fs", "100")
+    assert r.returncode == 0, r.stderr
+    assert "effective length" in r.stdout and "non-causal" in r.stdout
+    r = _twinpass("design", str(cfg), "--fs", "100", "--json")
+    d = json.loads(r.stdout)
+    for key in ("family", "order", "sos", "effective_length_samples", "tolerance",
+                "overall_passband_ripple_db", "overall_stopband_attenuation_db"):
+        assert key in d, key
+    assert np.asarray(d["sos"]).shape[1] == 6
+    # the achieved overall figures meet the requested ones
+    assert d["overall_stopband_attenuation_db"] >= 40.0 - 1e-9
+    assert d["overall_passband_ripple_db"] <= 1.0 + 1e-9
+
+
+def test_design_bad_spec_exits_nonzero_with_one_line(tmp_path: Path) -> None:
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("design", str(cfg), "--fs", "50")  # 35 Hz stop edge above Nyquist 25 Hz
+    assert r.returncode == 2
+    lines = [ln for ln in r.stderr.strip().splitlines() if ln]
+    assert len(lines) == 1 and "Nyquist" in lines[0]
+
+
+def test_plan_on_mixed_archive_with_gap(tmp_path: Path) -> None:
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("plan", str(cfg), "--json")
+    assert r.returncode == 0, r.stderr
+    plan = json.loads(r.stdout)
+    files = {f["path"]: f for f in plan["files"]}
+    assert len(files) == 6
+    assert all(f["status"] == "new" for f in files.values())
+    segs = {f["segment"] for f in files.values()}
+    # alpha: two contiguous files + one after the gap; beta: one segment; gamma: one
+    assert len(segs) == 4
+    assert files["alpha/alpha_20260301T000000.wav"]["segment"] == files["alpha/alpha_20260301T000100.wav"]["segment"]
+    assert files["alpha/alpha_20260301T000500.wav"]["segment"] != files["alpha/alpha_20260301T000100.wav"]["segment"]
+    assert plan["totals"]["samples"] == 6 * 60 * FS
+    r = _twinpass("plan", str(cfg))
+    assert "alpha/alpha_20260301T000500.wav" in r.stdout and "new" in r.stdout
+
+
+@pytest.mark.slow
+def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("run", str(cfg), "--no-flow")
+    assert r.returncode == 0, r.stdout + r.stderr
+    assert "blocks" in r.stderr  # the progress bar
+    r = _twinpass("status", str(cfg), "--json", "--require-complete")
+    assert r.returncode == 0, r.stdout + r.stderr
+    st = json.loads(r.stdout)
+    assert st["totals"]["files"] == 6 and st["totals"]["complete"] == 6
+    assert {f["stream"] for f in st["files"]} == {"alpha", "beta", "gamma"}
+    r = _twinpass("status", str(tmp_path / "out.zarr"))
+    assert "stream alpha" in r.stdout and r.returncode == 0
+    report = tmp_path / "twinpass-report.html"
+    assert report.is_file()
+    html = report.read_text()
+    assert html.count("data:image/png;base64,") >= 5
+    # a second run skips everything
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
+    assert r.returncode == 0 and "blocks run 0" in r.stdout
+    r = _twinpass("plan", str(cfg), "--json")
+    assert all(f["status"] == "unchanged" for f in json.loads(r.stdout)["files"])
+
+
+def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
+    cfg = mixed_archive(tmp_path)
+    cfg.write_text(cfg.read_text().replace("[processing]", "[processing]\nblok_seconds = 3"))
+    r = _twinpass("plan", str(cfg))
+    assert r.returncode == 2
+    assert "blok_seconds" in r.stderr and "[processing]" in r.stderr
