@@ -126,19 +126,26 @@ def cmd_run(args: argparse.Namespace) -> int:
 def _run_flow(cfg: Any, config_path: str, *, force: bool, scheduler: str | None, workers: int | None,
               report: bool, progress: Any) -> int:
     from . import flows
+    from .errors import BlockFailedError
 
     flows.TERMINAL_PROGRESS = progress
-    state = flows.archive_run(config_path=str(Path(config_path).resolve()), force=force, scheduler=scheduler,
-                              workers=workers, report=report, return_state=True)
-    summary = None
+    try:
+        state = flows.archive_run(config_path=str(Path(config_path).resolve()), force=force, scheduler=scheduler,
+                                  workers=workers, report=report, return_state=True)
+    finally:
+        flows.TERMINAL_PROGRESS = None
     try:
         summary = state.result(raise_on_failure=False)
-    except Exception:
-        summary = None
+    except Exception as e:  # the result could not be read back
+        summary = e
+    if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
+        raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):
         c = summary["counts"]
         print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
               f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+        for f in summary.get("failed", []):
+            print(f"failed: {f}")
         for f in summary.get("invalid", []):
             print(f"left out (invalid input): {f}")
         if summary.get("report"):
@@ -197,27 +204,21 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
-    from prefect.schedules import Cron
+    from . import flows  # sets twinpass's Prefect defaults before prefect is imported
 
-    from . import flows
-
-    path = str(Path(args.config).resolve())
-    from .config import load_config
-
-    load_config(path)  # fail early on a bad configuration
-    flows.archive_run.serve(name=args.name, schedules=[Cron(args.cron, timezone=args.timezone)],
-                            parameters={"config_path": path})
+    deployment = flows.build_deployment(args.config, cron=args.cron, timezone=args.timezone, name=args.name)
+    flows.serve_deployment(deployment)
     return 0
 
 
 def cmd_save(args: argparse.Namespace) -> int:
-    from . import _prefect_env  # noqa: F401
+    from . import _prefect_env  # noqa: F401  (must precede the prefect import)
     from .prefect_blocks import TwinpassJob
 
     block = TwinpassJob.from_file(args.config)
     block.save(args.name, overwrite=True)
-    print(f"saved configuration {args.config} as TwinpassJob block {args.name!r}; "
-          f"run it with: twinpass run --block {args.name}")
+    print(f"saved configuration {args.config} as TwinpassJob block {args.name!r}; a flow run or deployment "
+          f"uses it with the parameter config_block={args.name!r}")
     return 0
 
 
@@ -286,6 +287,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
                         format="%(levelname)s %(name)s: %(message)s")
     os.environ.setdefault("PREFECT_LOGGING_LEVEL", "INFO")
+    if not args.verbose:
+        # dask reads this when distributed is first imported (later, lazily)
+        os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
     try:
         return int(args.func(args) or 0)
     except TwinpassError as e:

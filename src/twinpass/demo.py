@@ -374,12 +374,22 @@ def write_wav_pcm24(
     complete = keep_bytes is None
     if not complete:
         payload = payload[: int(keep_bytes)]
-    with open(path, "wb") as fh:
-        fh.write(_wav_header(declared, channels, int(sample_rate_hz)))
-        fh.write(payload)
-        if complete and len(payload) & 1:
-            fh.write(b"\x00")
+    blob = _wav_header(declared, channels, int(sample_rate_hz)) + payload
+    if complete and len(payload) & 1:
+        blob += b"\x00"
+    _write_if_changed(Path(path), blob)
     return len(payload)
+
+
+def _write_if_changed(path: Path, blob: bytes) -> None:
+    """Write ``blob`` unless the file already holds exactly it (its modification time is then
+    kept, so a rerun of the demo sees unchanged inputs)."""
+    try:
+        if path.stat().st_size == len(blob) and path.read_bytes() == blob:
+            return
+    except FileNotFoundError:
+        pass
+    path.write_bytes(blob)
 
 
 # ---------------------------------------------------------------------------------------
@@ -480,7 +490,8 @@ def write_demo_archive(folder: Path, *, hours: int = 3, seed: int = 7) -> Path:
     ----------
     folder : Path
         Where to write: ``folder/archive`` (the WAV files) and ``folder/twinpass.toml``.
-        A run writes ``folder/filtered.zarr``. Demo files already present are replaced;
+        A run writes ``folder/filtered.zarr``. Demo files already present are replaced
+        (files whose bytes would not change are left untouched);
         any other file under ``folder/archive`` is an error (it would join the run).
     hours : int
         Hours of recording per complete stream (>= 1). Each complete stream gets
@@ -524,5 +535,5 @@ def write_demo_archive(folder: Path, *, hours: int = 3, seed: int = 7) -> Path:
         else:
             write_wav_pcm24(path, demo_signal(f.stream, f.start, f.frames, seed=seed), SAMPLE_RATE_HZ)
     config = folder / "twinpass.toml"
-    config.write_text(demo_config_text(), encoding="utf-8")
+    _write_if_changed(config, demo_config_text().encode("utf-8"))
     return config

@@ -1,0 +1,737 @@
+"""Per-block checks: integrity, levels and the achieved two-pass response.
+
+Each filtered block is checked against its own input. The figures are plain numbers per
+channel (a row of :data:`FIGURES`), graded per block by :func:`grade` into pass / warn /
+fail. Nothing here does I/O.
+
+Conventions: signal arrays are time-major, shape (samples, channels) (1-D is one channel);
+frequencies in Hz, levels in dB, lengths in samples. The designed overall response is the
+two-pass amplitude ``G(f) = |H(f)|^2`` (real, non-negative); its level in dB is
+``20 log10 G``.
+
+The transfer estimate
+---------------------
+Between the block input ``x`` and output ``y`` the frequency response is estimated with
+Welch-averaged spectra (``scipy.signal.csd`` / ``scipy.signal.welch``; Hann window, 50 %
+overlap, constant detrend per segment, one-sided density)::
+
+    H(f) = Pxy(f) / Pxx(f)          coherence = |Pxy|^2 / (Pxx Pyy)
+
+and compared with the designed ``G(f)``:
+
+* passband deviation: ``20 log10 |H| - 20 log10 G`` over *coherent* passband bins, the
+  signed value of largest magnitude (dB);
+* phase: ``angle(H)`` over the same bins, the signed value of largest magnitude
+  (degrees; zero-phase filtering means about 0);
+* stopband attenuation: ``10 log10(Pxx / Pyy)`` over stopband bins where the input has
+  energy (within :data:`INPUT_FLOOR_DB` of its peak PSD) and the output is measurable
+  (coherent with the input and above the estimator's leakage, see below); the smallest
+  value (dB).
+
+Passband bins are those where the designed overall level is within the designed ripple
+of 0 dB (``passband_ripple_db``; -3.0103 dB when the response has no ripple figure, i.e.
+fixed-order and notch designs); stopband bins are those where it is at or below
+``-stopband_attenuation_db`` (only when the response states an attenuation). Both sets
+leave out every bin closer than :data:`EDGE_ALLOWANCE_BINS` bins to a band edge, to 0 Hz
+and to the Nyquist frequency (the edges are found on a grid :data:`OVERSAMPLE` times finer
+than the bins, so narrow notches are not skipped).
+
+A passband bin is *coherent* when its coherence is at least ``ChecksConfig.coherence_min``
+and the normalised random error of ``|H|`` (Bendat & Piersol, *Random Data*, chapter on
+frequency-response estimates, from memory)
+``eps = sqrt(1 - coh) / (sqrt(coh) sqrt(2 n_d))`` is at most :data:`RANDOM_ERROR_MAX`;
+``n_d`` is the number of Welch segments divided by ``1 + 2 c^2`` with the Hann
+50 %-overlap correlation ``c = 0.167`` (Harris 1978, from memory).
+
+Estimator bias and the error allowance
+--------------------------------------
+* The filter is non-causal: every output sample depends on input on both sides. The part
+  of a segment's output that comes from input outside the segment is not explained by the
+  segment's input; this lowers the coherence and biases ``|H|`` slightly low (the bias
+  grows with impulse-response length / segment length). It is symmetric in time, so it
+  adds no phase bias.
+* A Welch window with a long impulse response underestimates sharp features: the estimate
+  is the true response smoothed over about two bins (the Hann main lobe). Ripple peaks of
+  equiripple designs are flattened by up to about half their height and transition bands
+  are smeared; hence the edge allowance and the ``ripple / 2`` term in the grading.
+* The segment length (:func:`segment_length`) is :data:`SEGMENT_CYCLES` periods of the
+  smallest spectral feature of the design (lowest band edge, narrowest transition band or
+  notch width, distance of the top edge to Nyquist), a power of two of at least
+  :data:`MIN_NPERSEG` samples, capped at a quarter of the block so that at least seven
+  segments are averaged. A capped segment resolves less: fewer bins survive the edge
+  allowance (none: the figures are NaN).
+* Stopband bins are used only where the coherence passes ``coherence_min`` (output that
+  came from input outside the segment, e.g. the ringing of a transient in the previous
+  segment, is not coherent and would understate the attenuation), where the output is at
+  least :data:`LEAKAGE_MARGIN_DB` above the Hann window's leakage from the rest of the
+  output spectrum (estimated by convolving the output spectrum with the window's spectral
+  side lobes), and within :data:`NUMERIC_RANGE_DB` of the output's peak. A correct filter
+  whose stopband output is buried in leakage therefore reports NaN (not measured) rather
+  than a figure set by the estimator's own floor.
+
+With ``eps <= 0.01`` the random error is at most ``3 eps`` (three standard deviations):
+``20 log10(1.03) = 0.26 dB`` and ``0.03 rad = 1.7 deg``. The grading allows
+:data:`ESTIMATOR_ERROR_DB` (0.3 dB) for the magnitude; :data:`ESTIMATOR_ERROR_DEG` (2 deg)
+bounds the phase error and lies below the default ``phase_warn_deg`` of 5 deg.
+
+The figures are tests of the processing, not calibrations: an unfiltered, wrongly filtered
+(different cutoff, a single forward pass, swapped channels) or corrupted block shows as a
+passband deviation, a phase, a missing stopband attenuation or a loss of coherence far
+beyond these allowances.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from functools import lru_cache
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+from scipy import ndimage, signal
+
+from twinpass.core.design import HALF_POWER_DB, overall_response
+from twinpass.core.types import Design
+from twinpass.errors import KernelError, TwinpassError
+
+if TYPE_CHECKING:  # the configuration module is not part of the numeric core
+    from twinpass.config import ChecksConfig
+
+__all__ = [
+    "FIGURES",
+    "FIGURE_INDEX",
+    "PENDING",
+    "PASS",
+    "WARN",
+    "FAIL",
+    "ERROR",
+    "STATUS_NAMES",
+    "TransferEstimate",
+    "transfer_estimate",
+    "segment_length",
+    "block_figures",
+    "grade",
+    "grade_file",
+    "summarise",
+    "seam_mismatch",
+    "SEAM_FACTOR",
+    "ESTIMATOR_ERROR_DB",
+    "ESTIMATOR_ERROR_DEG",
+]
+
+FIGURES: tuple[str, ...] = (
+    "nonfinite_in",
+    "nonfinite_out",
+    "clipped",
+    "rms_in",
+    "rms_out",
+    "peak_in",
+    "peak_out",
+    "passband_dev_db",
+    "phase_deg",
+    "stopband_att_db",
+    "passband_bins",
+    "coherent_bins",
+    "seam_mismatch",
+)
+"""Columns of :func:`block_figures` (one row per channel).
+
+``nonfinite_in`` / ``nonfinite_out``: NaN or infinite samples (count); ``clipped``: finite
+output samples beyond the output type's range (count); ``rms_*`` / ``peak_*``: RMS and
+largest |value| of the finite samples (input units); ``passband_dev_db`` (dB),
+``phase_deg`` (degrees), ``stopband_att_db`` (dB): see the module notes, NaN when not
+measured; ``passband_bins``: passband bins with input energy; ``coherent_bins``: those of
+them that passed the coherence gate; ``seam_mismatch``: filled by the caller with
+:func:`seam_mismatch`, NaN when not computed.
+"""
+
+FIGURE_INDEX: dict[str, int] = {name: i for i, name in enumerate(FIGURES)}
+
+PENDING, PASS, WARN, FAIL, ERROR = 0, 1, 2, 3, 4
+"""Block status codes: not yet done, passed, warned, failed a check, raised an error."""
+STATUS_NAMES: dict[int, str] = {PENDING: "pending", PASS: "pass", WARN: "warn", FAIL: "fail", ERROR: "error"}
+
+SEGMENT_CYCLES: float = 16.0
+"""Welch segment length in periods of the design's smallest spectral feature."""
+MIN_NPERSEG: int = 256
+"""Shortest Welch segment aimed for (samples)."""
+MIN_USABLE_NPERSEG: int = 64
+"""Below this segment length (samples) the response is not measured."""
+MAX_NPERSEG: int = 1 << 18
+"""Longest Welch segment (samples); bounds the cost of the check."""
+MIN_SEGMENTS: int = 4
+"""The segment is at most ``block length / MIN_SEGMENTS`` (7 segments at 50 % overlap)."""
+EDGE_ALLOWANCE_BINS: int = 4
+"""Bins left out next to band edges, 0 Hz and Nyquist (Hann main lobe: +/- 2 bins)."""
+OVERSAMPLE: int = 8
+"""Fine-grid factor for locating band edges of the designed response."""
+INPUT_FLOOR_DB: float = 60.0
+"""Bins whose input PSD is more than this below the input's peak PSD are not used."""
+LEAKAGE_MARGIN_DB: float = 10.0
+"""A stopband bin's output must exceed the estimated window leakage by this much."""
+NUMERIC_RANGE_DB: float = 200.0
+"""A stopband bin's output must be within this range of the output's peak PSD."""
+RANDOM_ERROR_MAX: float = 0.01
+"""Largest normalised random error of |H| accepted for a passband bin."""
+HANN_OVERLAP_CORRELATION: float = 0.167
+"""Correlation of Hann-windowed segments at 50 % overlap (Harris 1978, from memory)."""
+ESTIMATOR_ERROR_DB: float = 0.3
+"""Passband estimator error allowance (dB) added to the thresholds in :func:`grade`."""
+ESTIMATOR_ERROR_DEG: float = 2.0
+"""Bound on the phase estimator error (degrees) of a coherent bin (documentation)."""
+COHERENT_FRACTION_MIN: float = 0.5
+"""A block whose coherent passband bins are fewer than this fraction of the passband
+bins with input energy fails: its output is not explained by its input."""
+MIN_CANDIDATE_BINS: int = 8
+"""The coherent-fraction rule applies only with at least this many passband bins."""
+SEAM_FACTOR: float = 10.0
+"""A seam mismatch above ``SEAM_FACTOR * tolerance`` fails.
+
+Each block is within ``tolerance`` (relative to the segment's max |input|) of the
+whole-signal result, so two neighbours agree within ``2 * tolerance``; the remaining
+factor 5 is headroom for floating-point rounding in the recursions. Compare float64
+outputs, before any cast to the output type."""
+
+_MAIN_LOBE_BINS = 2
+_RESPONSE_FIGURES = ("passband_dev_db", "phase_deg", "stopband_att_db", "passband_bins", "coherent_bins")
+_WINDOW = "hann"
+
+
+# ----------------------------------------------------------------------------- estimate
+
+
+@dataclass(frozen=True)
+class TransferEstimate:
+    """Welch estimate of the response from ``x`` to ``y`` (per channel).
+
+    Arrays have shape (n_freqs, channels); frequencies in Hz; PSDs in units^2/Hz.
+    """
+
+    freqs_hz: np.ndarray
+    h: np.ndarray
+    """``Pxy / Pxx`` (complex, dimensionless)."""
+    coherence: np.ndarray
+    pxx: np.ndarray
+    pyy: np.ndarray
+    pxy: np.ndarray
+    nperseg: int
+    segments: int
+    """Number of Welch segments averaged."""
+
+
+def _as_2d(a: np.ndarray) -> np.ndarray:
+    arr = np.asarray(a)
+    return arr[:, None] if arr.ndim == 1 else arr
+
+
+def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, nperseg: int) -> TransferEstimate:
+    """Welch estimate of the frequency response from ``x`` to ``y``.
+
+    Parameters
+    ----------
+    x, y : ndarray, shape (samples,) or (samples, channels)
+        Input and output, time-major, same shape, finite.
+    sample_rate_hz : float
+        Sample rate (Hz).
+    nperseg : int
+        Segment length (samples); Hann window, ``nperseg // 2`` overlap, constant detrend.
+
+    Returns
+    -------
+    TransferEstimate
+        ``h = Pxy / Pxx`` and coherence ``|Pxy|^2 / (Pxx Pyy)`` (0 where a PSD is 0). The
+        spectra are the averages over segments of ``conj(X) Y``, ``|X|^2``, ``|Y|^2``
+        (one-sided densities), the same numbers as ``scipy.signal.csd(x, y)`` and
+        ``scipy.signal.welch`` with these parameters, but each segment is transformed only
+        once.
+    """
+    x2 = np.asarray(_as_2d(x), dtype=np.float64)
+    y2 = np.asarray(_as_2d(y), dtype=np.float64)
+    if x2.shape != y2.shape:
+        raise KernelError(f"transfer estimate: input shape {x2.shape} and output shape {y2.shape} differ.")
+    nperseg = int(nperseg)
+    if not 2 <= nperseg <= x2.shape[0]:
+        raise KernelError(
+            f"transfer estimate: segment length {nperseg} must lie in [2, {x2.shape[0]}] samples "
+            "(the block length)."
+        )
+    fs = float(sample_rate_hz)
+    step = nperseg - nperseg // 2
+    segments = 1 + (x2.shape[0] - nperseg) // step
+    window = _hann(nperseg)
+    scale = 1.0 / (fs * float(np.sum(window * window)))
+    pxx = np.empty((nperseg // 2 + 1, x2.shape[1]))
+    pyy = np.empty_like(pxx)
+    pxy = np.empty(pxx.shape, dtype=complex)
+    for c in range(x2.shape[1]):  # one channel at a time bounds the memory
+        sx = _segment_spectra(x2[:, c], window, nperseg, step, segments)
+        sy = _segment_spectra(y2[:, c], window, nperseg, step, segments)
+        pxx[:, c] = np.mean(sx.real**2 + sx.imag**2, axis=0)
+        pyy[:, c] = np.mean(sy.real**2 + sy.imag**2, axis=0)
+        pxy[:, c] = np.mean(np.conj(sx) * sy, axis=0)
+    # One-sided density: double every bin but 0 Hz (and Nyquist for an even length).
+    fold = np.full((pxx.shape[0], 1), 2.0 * scale)
+    fold[0] = scale
+    if nperseg % 2 == 0:
+        fold[-1] = scale
+    pxx *= fold
+    pyy *= fold
+    pxy *= fold
+    f = np.fft.rfftfreq(nperseg, 1.0 / fs)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        h = np.where(pxx > 0, pxy / np.where(pxx > 0, pxx, 1.0), 0.0)
+        denom = pxx * pyy
+        coh = np.where(denom > 0, np.abs(pxy) ** 2 / np.where(denom > 0, denom, 1.0), 0.0)
+    step = nperseg - nperseg // 2
+    segments = 1 + (x2.shape[0] - nperseg) // step
+    return TransferEstimate(f, h, np.minimum(coh, 1.0), pxx, pyy, pxy, nperseg, int(segments))
+
+
+@lru_cache(maxsize=8)
+def _hann(nperseg: int) -> np.ndarray:
+    w = signal.get_window(_WINDOW, nperseg)  # periodic Hann, as scipy.signal.welch uses
+    w.setflags(write=False)
+    return w
+
+
+def _segment_spectra(v: np.ndarray, window: np.ndarray, nperseg: int, step: int, segments: int) -> np.ndarray:
+    """rfft of each detrended (mean removed), windowed segment; shape (segments, n_freqs)."""
+    seg = np.lib.stride_tricks.sliding_window_view(v, nperseg)[: (segments - 1) * step + 1 : step]
+    seg = seg - seg.mean(axis=1, keepdims=True)
+    seg *= window
+    return np.fft.rfft(seg, axis=1)
+
+
+def _feature_scale_hz(design: Design) -> float:
+    """Smallest spectral feature of the design (Hz): lowest edge, narrowest transition..."""
+    spec = design.spec
+    nyq = design.sample_rate_hz / 2.0
+    edges: list[float] = []
+    for name in ("passband_hz", "stopband_hz", "cutoff_hz"):
+        edges += [float(v) for v in getattr(spec, name) or ()]
+    widths: list[float] = []
+    if spec.passband_hz and spec.stopband_hz and len(spec.passband_hz) == len(spec.stopband_hz):
+        widths += [abs(float(p) - float(s)) for p, s in zip(spec.passband_hz, spec.stopband_hz)]
+    if spec.kind == "notch" and spec.notch_hz:
+        f0 = float(spec.notch_hz)
+        width = spec.notch_width_hz or (f0 / float(spec.notch_q) if spec.notch_q else None)
+        edges.append(f0)
+        if width:
+            widths.append(float(width))
+    if edges:
+        widths.append(nyq - max(edges))
+    scales = [v for v in edges + widths if math.isfinite(v) and v > 0]
+    return min(scales) if scales else design.sample_rate_hz / MIN_NPERSEG
+
+
+def segment_length(n_samples: int, design: Design) -> int:
+    """Welch segment length (samples) for a block of ``n_samples``; 0 = too short to measure.
+
+    :data:`SEGMENT_CYCLES` periods of the design's smallest spectral feature, rounded up
+    to a power of two, at least :data:`MIN_NPERSEG`, at most :data:`MAX_NPERSEG` and
+    ``n_samples // MIN_SEGMENTS`` (made even).
+    """
+    fs = float(design.sample_rate_hz)
+    target = SEGMENT_CYCLES * fs / _feature_scale_hz(design)
+    n = 1 << max(0, math.ceil(math.log2(max(target, 1.0))))
+    n = min(max(n, MIN_NPERSEG), MAX_NPERSEG, int(n_samples) // MIN_SEGMENTS)
+    n -= n % 2
+    return n if n >= MIN_USABLE_NPERSEG else 0
+
+
+def _eroded(mask: np.ndarray, width: int) -> np.ndarray:
+    """``mask`` shrunk by ``width`` points on each side; outside the array counts as False."""
+    if width <= 0 or not mask.any():
+        return mask
+    return ndimage.binary_erosion(mask, structure=np.ones(2 * width + 1, dtype=bool), border_value=0)
+
+
+@lru_cache(maxsize=32)
+def _design_masks(design: Design, nperseg: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(designed level in dB, passband mask, stopband mask) on the Welch bins of ``nperseg``."""
+    fs = float(design.sample_rate_hz)
+    n_bins = nperseg // 2 + 1
+    fine = np.linspace(0.0, fs / 2.0, (n_bins - 1) * OVERSAMPLE + 1)
+    with np.errstate(divide="ignore"):
+        level_db = 20.0 * np.log10(overall_response(design, fine))
+    spec = design.spec
+    ripple = spec.passband_ripple_db if spec.mode == "tolerance" else None
+    pass_level = -float(ripple) if ripple is not None else HALF_POWER_DB
+    pass_fine = level_db >= pass_level - 0.01
+    allowance = EDGE_ALLOWANCE_BINS * OVERSAMPLE
+    passband = _eroded(pass_fine, allowance)[::OVERSAMPLE]
+    if spec.stopband_attenuation_db is not None:
+        stop_fine = level_db <= -float(spec.stopband_attenuation_db) + 0.01
+        stopband = _eroded(stop_fine, allowance)[::OVERSAMPLE]
+    else:
+        stopband = np.zeros(n_bins, dtype=bool)
+    for a in (passband, stopband):
+        a.setflags(write=False)
+    db = level_db[::OVERSAMPLE].copy()
+    db.setflags(write=False)
+    return db, passband, stopband
+
+
+@lru_cache(maxsize=8)
+def _leakage_kernel(nperseg: int) -> np.ndarray:
+    """Hann spectral window averaged over each bin, main lobe zeroed, sum 1; lags -n/2..n/2."""
+    w = signal.get_window(_WINDOW, nperseg)
+    spectrum = np.abs(np.fft.fft(w, nperseg * OVERSAMPLE)) ** 2
+    spectrum = np.roll(spectrum, OVERSAMPLE // 2)  # bin k averages lags k - 1/2 .. k + 1/2
+    per_bin = spectrum.reshape(nperseg, OVERSAMPLE).mean(axis=1)
+    per_bin /= per_bin.sum()
+    half = nperseg // 2
+    kernel = np.concatenate([per_bin[-half:], per_bin[: half + 1]])  # lags -half..half
+    kernel[half - _MAIN_LOBE_BINS : half + _MAIN_LOBE_BINS + 1] = 0.0
+    kernel.setflags(write=False)
+    return kernel
+
+
+def _response_figures(
+    est: TransferEstimate, design: Design, cfg: ChecksConfig
+) -> np.ndarray:
+    """Shape (channels, 5): the columns ``_RESPONSE_FIGURES``."""
+    db, passband, stopband = _design_masks(design, est.nperseg)
+    n_ch = est.h.shape[1]
+    out = np.full((n_ch, 5), np.nan)
+    n_d = est.segments / (1.0 + 2.0 * HANN_OVERLAP_CORRELATION**2)
+    kernel = _leakage_kernel(est.nperseg)
+    for c in range(n_ch):
+        pxx, pyy, h, coh = est.pxx[:, c], est.pyy[:, c], est.h[:, c], est.coherence[:, c]
+        peak_in = float(np.max(pxx))
+        if not peak_in > 0.0:
+            continue
+        energetic = pxx >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
+        candidates = passband & energetic
+        with np.errstate(divide="ignore", invalid="ignore"):
+            eps = np.sqrt(np.maximum(1.0 - coh, 0.0)) / (np.sqrt(coh) * math.sqrt(2.0 * n_d))
+        coherent = candidates & (coh >= cfg.coherence_min) & (eps <= RANDOM_ERROR_MAX)
+        out[c, 3] = float(np.count_nonzero(candidates))
+        out[c, 4] = float(np.count_nonzero(coherent))
+        if coherent.any():
+            with np.errstate(divide="ignore"):
+                dev = 20.0 * np.log10(np.abs(h[coherent])) - db[coherent]
+            phase = np.degrees(np.angle(h[coherent]))
+            out[c, 0] = dev[np.argmax(np.abs(dev))]
+            out[c, 1] = phase[np.argmax(np.abs(phase))]
+        if stopband.any():
+            leak = signal.fftconvolve(pyy, kernel, mode="same")
+            peak_out = float(np.max(pyy))
+            usable = (
+                stopband
+                & energetic
+                & (coh >= cfg.coherence_min)
+                & (pyy >= leak * 10.0 ** (LEAKAGE_MARGIN_DB / 10.0))
+                & (pyy > peak_out * 10.0 ** (-NUMERIC_RANGE_DB / 10.0))
+            )
+            if usable.any():
+                out[c, 2] = float(np.min(10.0 * np.log10(pxx[usable] / pyy[usable])))
+    return out
+
+
+# ----------------------------------------------------------------------------- figures
+
+
+def _finite_stats(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(non-finite count, RMS of finite samples, peak |finite sample|) per channel."""
+    finite = np.isfinite(a)
+    n_bad = np.count_nonzero(~finite, axis=0).astype(np.float64)
+    n_ok = a.shape[0] - n_bad
+    clean = np.where(finite, a, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        rms = np.sqrt(np.sum(clean * clean, axis=0) / n_ok)
+    peak = np.max(np.abs(clean), axis=0, initial=0.0)
+    rms = np.where(n_ok > 0, rms, np.nan)
+    peak = np.where(n_ok > 0, peak, np.nan)
+    return n_bad, rms, peak
+
+
+def block_figures(
+    x_core: np.ndarray,
+    y_core: np.ndarray,
+    design: Design,
+    cfg: ChecksConfig,
+    *,
+    out_dtype: str | np.dtype = "float32",
+    response: bool = True,
+) -> np.ndarray:
+    """Check figures of one filtered block, one row per channel.
+
+    Parameters
+    ----------
+    x_core : ndarray, shape (samples,) or (samples, channels)
+        The block's input, core only (no halo), time-major.
+    y_core : ndarray, same shape
+        The block's output for the same samples, before the cast to ``out_dtype``
+        (float64 as computed).
+    design : Design
+        The filter the block was processed with.
+    cfg : ChecksConfig
+        Thresholds; ``coherence_min`` gates the response estimate.
+    out_dtype : str or dtype
+        Type the output is written as; finite samples beyond its range count as clipped.
+    response : bool
+        Estimate the response (see the module notes). False leaves those figures NaN.
+
+    Returns
+    -------
+    ndarray of float64, shape (channels, len(FIGURES))
+        Columns as :data:`FIGURES`; ``seam_mismatch`` is NaN (filled by the caller).
+        Channels with non-finite samples have NaN response figures.
+
+    Raises
+    ------
+    KernelError
+        Input and output shapes differ.
+    """
+    x = np.asarray(_as_2d(x_core), dtype=np.float64)
+    y = np.asarray(_as_2d(y_core), dtype=np.float64)
+    if x.shape != y.shape or x.ndim != 2:
+        raise KernelError(
+            f"block checks: input core shape {x.shape} and output core shape {y.shape} must be equal "
+            "(samples, channels); pass the core of the block without its halo."
+        )
+    n_ch = x.shape[1]
+    figures = np.full((n_ch, len(FIGURES)), np.nan)
+    bad_in, rms_in, peak_in = _finite_stats(x)
+    bad_out, rms_out, peak_out = _finite_stats(y)
+    dt = np.dtype(out_dtype)
+    limit = float(np.finfo(dt).max) if dt.kind == "f" else float(np.iinfo(dt).max)
+    with np.errstate(invalid="ignore"):
+        clipped = np.count_nonzero(np.isfinite(y) & (np.abs(y) > limit), axis=0)
+    for name, value in (
+        ("nonfinite_in", bad_in),
+        ("nonfinite_out", bad_out),
+        ("clipped", clipped),
+        ("rms_in", rms_in),
+        ("rms_out", rms_out),
+        ("peak_in", peak_in),
+        ("peak_out", peak_out),
+    ):
+        figures[:, FIGURE_INDEX[name]] = value
+    if response and x.shape[0] > 0:
+        nperseg = segment_length(x.shape[0], design)
+        clean = (bad_in == 0) & (bad_out == 0)
+        cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
+        for c in np.nonzero(clean)[0] if nperseg else ():
+            # One channel at a time bounds the memory of the segment spectra.
+            est = transfer_estimate(x[:, c], y[:, c], design.sample_rate_hz, nperseg)
+            figures[c, cols] = _response_figures(est, design, cfg)[0]
+    return figures
+
+
+# ----------------------------------------------------------------------------- grading
+
+
+def _column(figures: np.ndarray, name: str) -> np.ndarray:
+    return np.atleast_2d(np.asarray(figures, dtype=np.float64))[:, FIGURE_INDEX[name]]
+
+
+def _any_above(values: np.ndarray, limit: float) -> bool:
+    v = values[~np.isnan(values)]
+    return bool(np.any(v > limit))
+
+
+def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: float) -> int:
+    """Status of one block from its figures: :data:`PASS`, :data:`WARN` or :data:`FAIL`.
+
+    Parameters
+    ----------
+    figures : ndarray, shape (channels, len(FIGURES))
+        As from :func:`block_figures` (with ``seam_mismatch`` filled when computed).
+    design : Design
+        The filter; its spec gives the ripple (dB) and stopband attenuation (dB).
+    cfg : ChecksConfig
+        Thresholds.
+    tolerance : float
+        Relative blockwise tolerance (the seam limit is ``SEAM_FACTOR * tolerance``).
+
+    Returns
+    -------
+    int
+        The worst over channels of these rules (NaN figures are not measured and ignored):
+
+        * non-finite input or output samples: fail;
+        * clipped output samples: warn;
+        * ``|passband_dev_db| > ripple/2 + ESTIMATOR_ERROR_DB + passband_warn_db``: warn;
+          ``... + passband_fail_db``: fail (``ripple`` is the spec's overall passband
+          ripple, 0 when not given);
+        * ``|phase_deg| > phase_warn_deg``: warn; ``> phase_fail_deg``: fail;
+        * ``stopband_att_db < stopband_attenuation_db - stopband_margin_db``: fail;
+        * fewer than ``COHERENT_FRACTION_MIN`` of at least ``MIN_CANDIDATE_BINS`` passband
+          bins with input energy coherent: fail (the output is not a linear function of
+          the input);
+        * ``seam_mismatch > SEAM_FACTOR * tolerance``: fail.
+    """
+    status = PASS
+    if _any_above(_column(figures, "nonfinite_in"), 0) or _any_above(_column(figures, "nonfinite_out"), 0):
+        return FAIL
+    if _any_above(_column(figures, "clipped"), 0):
+        status = WARN
+    spec = design.spec
+    base = float(spec.passband_ripple_db or 0.0) / 2.0 + ESTIMATOR_ERROR_DB
+    dev = np.abs(_column(figures, "passband_dev_db"))
+    if _any_above(dev, base + cfg.passband_fail_db):
+        return FAIL
+    if _any_above(dev, base + cfg.passband_warn_db):
+        status = WARN
+    phase = np.abs(_column(figures, "phase_deg"))
+    if _any_above(phase, cfg.phase_fail_deg):
+        return FAIL
+    if _any_above(phase, cfg.phase_warn_deg):
+        status = WARN
+    if spec.stopband_attenuation_db is not None:
+        short = float(spec.stopband_attenuation_db) - _column(figures, "stopband_att_db")
+        if _any_above(short, cfg.stopband_margin_db):
+            return FAIL
+    bins = _column(figures, "passband_bins")
+    coherent = _column(figures, "coherent_bins")
+    with np.errstate(invalid="ignore"):
+        lost = (bins >= MIN_CANDIDATE_BINS) & (coherent < COHERENT_FRACTION_MIN * bins)
+    if np.any(lost):
+        return FAIL
+    if _any_above(_column(figures, "seam_mismatch"), SEAM_FACTOR * float(tolerance)):
+        return FAIL
+    return status
+
+
+_BY_NAME = {name: code for code, name in STATUS_NAMES.items()}
+
+
+def grade_file(statuses: Iterable[int | str | None]) -> str:
+    """Status of a file from its blocks' statuses.
+
+    Parameters
+    ----------
+    statuses : iterable of int, str or None
+        Block status codes (:data:`STATUS_NAMES`) or their names; ``None`` = pending.
+
+    Returns
+    -------
+    str
+        ``"fail"`` if any block failed or raised an error; otherwise ``"incomplete"`` if
+        there are no blocks or any is pending; otherwise ``"warn"`` if any warned, else
+        ``"pass"``.
+    """
+    codes = []
+    for s in statuses:
+        if s is None:
+            codes.append(PENDING)
+        elif isinstance(s, str):
+            if s not in _BY_NAME:
+                raise TwinpassError(f"unknown block status {s!r}; use a status code or one of {', '.join(_BY_NAME)}")
+            codes.append(_BY_NAME[s])
+        else:
+            codes.append(int(s))
+    if any(c in (FAIL, ERROR) for c in codes):
+        return "fail"
+    if not codes or any(c == PENDING for c in codes):
+        return "incomplete"
+    return "warn" if any(c == WARN for c in codes) else "pass"
+
+
+_SUMMARY_RULE: dict[str, str] = {
+    "nonfinite_in": "sum",
+    "nonfinite_out": "sum",
+    "clipped": "sum",
+    "rms_in": "max",
+    "rms_out": "max",
+    "peak_in": "max",
+    "peak_out": "max",
+    "passband_dev_db": "absmax",
+    "phase_deg": "absmax",
+    "stopband_att_db": "min",
+    "passband_bins": "min",
+    "coherent_bins": "min",
+    "seam_mismatch": "max",
+}
+
+
+def summarise(figures_by_block: Mapping[Any, np.ndarray] | Iterable[np.ndarray]) -> dict[str, Any]:
+    """Worst figures over blocks and channels, JSON-safe.
+
+    Parameters
+    ----------
+    figures_by_block : mapping or iterable of ndarray, shape (channels, len(FIGURES))
+        One array per block (a mapping's values are used).
+
+    Returns
+    -------
+    dict
+        ``blocks`` (count), ``blocks_measured`` (blocks with a response estimate) and one
+        key per name in :data:`FIGURES`: counts summed (int); RMS, peak and seam mismatch
+        the largest; passband deviation and phase the signed value of largest magnitude;
+        stopband attenuation and bin counts the smallest. ``None`` where nothing was
+        measured (no NaN or infinity).
+    """
+    arrays = list(figures_by_block.values() if isinstance(figures_by_block, Mapping) else figures_by_block)
+    rows = [np.atleast_2d(np.asarray(a, dtype=np.float64)) for a in arrays]
+    stacked = np.concatenate(rows, axis=0) if rows else np.empty((0, len(FIGURES)))
+    measured = sum(1 for r in rows if np.any(~np.isnan(r[:, FIGURE_INDEX["passband_bins"]])))
+    out: dict[str, Any] = {"blocks": len(rows), "blocks_measured": measured}
+    for name, rule in _SUMMARY_RULE.items():
+        col = stacked[:, FIGURE_INDEX[name]]
+        col = col[~np.isnan(col)]
+        value: float | None
+        if col.size == 0:
+            value = None
+        elif rule == "sum":
+            out[name] = int(np.sum(col))
+            continue
+        elif rule == "max":
+            value = float(np.max(col))
+        elif rule == "min":
+            value = float(np.min(col))
+        else:
+            value = float(col[np.argmax(np.abs(col))])
+        out[name] = value if value is not None and math.isfinite(value) else None
+    return out
+
+
+def seam_mismatch(own_tail_beyond: np.ndarray, neighbour_head: np.ndarray, full_scale: float) -> float:
+    """Largest |difference| between two blocks' outputs for the same samples, relative.
+
+    Parameters
+    ----------
+    own_tail_beyond : ndarray, shape (samples,) or (samples, channels)
+        This block's output computed for samples beyond its core (float64, before cast).
+    neighbour_head : ndarray, same shape
+        The neighbouring block's output for those samples.
+    full_scale : float
+        Reference level, the segment's max |input| (input units).
+
+    Returns
+    -------
+    float
+        ``max |a - b| / full_scale`` over the samples where neither value is NaN (NaN
+        marks a sample that was not computed); NaN if no sample is comparable; ``inf``
+        if a difference is infinite or ``full_scale`` is not positive while the outputs
+        differ.
+
+    Raises
+    ------
+    KernelError
+        The two arrays have different shapes.
+    """
+    a = np.asarray(own_tail_beyond, dtype=np.float64)
+    b = np.asarray(neighbour_head, dtype=np.float64)
+    if a.shape != b.shape:
+        raise KernelError(
+            f"seam check: this block's samples beyond its edge have shape {a.shape} but the "
+            f"neighbour's have shape {b.shape}; compute the same number of seam samples on both sides."
+        )
+    both = ~(np.isnan(a) | np.isnan(b))
+    if not both.any():
+        return math.nan
+    with np.errstate(invalid="ignore", over="ignore"):
+        diff = np.abs(a[both] - b[both])
+    if not np.all(np.isfinite(diff)):
+        return math.inf
+    worst = float(np.max(diff))
+    if worst == 0.0:
+        return 0.0
+    scale = float(full_scale)
+    if not (math.isfinite(scale) and scale > 0.0):
+        return math.inf
+    return worst / scale

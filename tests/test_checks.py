@@ -1,0 +1,387 @@
+"""Per-block checks against reference computations.
+
+Reference library: scipy.signal (``csd``, ``welch``, ``coherence``, ``spectrogram`` for the
+Welch estimate; ``sosfiltfilt`` / ``filtfilt`` for correct two-pass processing; ``sosfilt``
+for a single forward pass; ``ellip`` / ``ellipord`` / ``butter`` / ``firwin`` for the
+filters, built here independently of twinpass's own designer).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from twinpass.config import ChecksConfig
+from twinpass.core import checks
+from twinpass.core.checks import FAIL, FIGURE_INDEX, FIGURES, PASS, WARN
+from twinpass.core.effective import effective_length
+from twinpass.core.types import Design, ResponseSpec
+from twinpass.errors import KernelError
+
+FS = 100.0
+TOL = 1e-9
+CFG = ChecksConfig()
+
+
+def make_design(spec: ResponseSpec, family: str, order: int, *, sos=None, taps=None) -> Design:
+    """A Design wrapping coefficients designed directly with scipy.signal."""
+    return Design(
+        spec=spec,
+        family=family,
+        sample_rate_hz=FS,
+        order=order,
+        sos=sos,
+        taps=taps,
+        effective_length=effective_length(sos=sos, taps=taps, tolerance=TOL),
+        tolerance=TOL,
+    )
+
+
+def bandpass_elliptic() -> Design:
+    """Overall 0.5-30 Hz passband, 0.1/45 Hz stopband, 1 dB ripple, 60 dB attenuation.
+
+    Two passes double the dB figures, so each pass gets 0.5 dB / 30 dB (scipy.signal.ellipord).
+    """
+    spec = ResponseSpec(kind="bandpass", family="elliptic", passband_hz=(0.5, 30.0), stopband_hz=(0.1, 45.0),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    n, wn = signal.ellipord([0.5, 30.0], [0.1, 45.0], 0.5, 30.0, fs=FS)
+    return make_design(spec, "elliptic", n, sos=signal.ellip(n, 0.5, 30.0, wn, "bandpass", output="sos", fs=FS))
+
+
+def lowpass_butterworth() -> Design:
+    """Order 4 per pass, overall -3.01 dB at 10 Hz.
+
+    Butterworth magnitude |H|^2 = 1 / (1 + (f/fc)^(2N)) (textbook formula); the two-pass
+    amplitude is that value, so it is 1/sqrt(2) at 10 Hz when fc = 10 / (sqrt(2) - 1)^(1/(2N)).
+    """
+    spec = ResponseSpec(kind="lowpass", order=4, cutoff_hz=(10.0,))
+    fc = 10.0 / (math.sqrt(2.0) - 1.0) ** (1.0 / 8.0)
+    return make_design(spec, "butterworth", 4, sos=signal.butter(4, fc, output="sos", fs=FS))
+
+
+def lowpass_fir() -> Design:
+    """101-tap Hamming-window lowpass at 12.5 Hz: overall 0.1 dB / 80 dB, 10 / 15 Hz edges."""
+    spec = ResponseSpec(kind="lowpass", family="fir", passband_hz=(10.0,), stopband_hz=(15.0,),
+                        passband_ripple_db=0.1, stopband_attenuation_db=80.0)
+    return make_design(spec, "fir", 100, taps=signal.firwin(101, 12.5, fs=FS))
+
+
+def two_pass(design: Design, x: np.ndarray) -> np.ndarray:
+    """Whole-signal forward-backward filtering (scipy.signal reference)."""
+    if design.sos is not None:
+        return signal.sosfiltfilt(design.sos, x, axis=0)
+    return signal.filtfilt(design.taps, [1.0], x, axis=0)
+
+
+def block(design: Design, core: int = 65536, channels: int = 2, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """(input core, output core) of white noise filtered as a whole, cores 2 halos from the ends.
+
+    Far from the ends the whole-signal result is what a blockwise run reproduces (within
+    the tolerance), so the core is a correctly processed block.
+    """
+    pad = 2 * design.effective_length + 64
+    x = np.random.default_rng(seed).standard_normal((core + 2 * pad, channels))
+    y = two_pass(design, x)
+    return x[pad:-pad], y[pad:-pad]
+
+
+def col(figures: np.ndarray, name: str) -> np.ndarray:
+    return figures[:, FIGURE_INDEX[name]]
+
+
+# ----------------------------------------------------------------------------- estimate
+
+
+def test_transfer_estimate_agrees_with_scipy_csd_welch() -> None:
+    # Reference: scipy.signal.csd / welch / coherence / spectrogram called directly with the
+    # documented parameters (Hann window, 50 % overlap, constant detrend, density).
+    design = lowpass_butterworth()
+    x, y = block(design, core=20001, channels=2, seed=3)  # segments do not fill the block exactly
+    nperseg = 512
+    est = checks.transfer_estimate(x, y, FS, nperseg)
+    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2, axis=0)
+    f, pxy = signal.csd(x, y, **kw)
+    _, pxx = signal.welch(x, **kw)
+    _, pyy = signal.welch(y, **kw)
+    _, coh = signal.coherence(x, y, **kw)
+    # Equal up to FFT rounding (relative 1e-9 of each value, 1e-13 of the largest).
+    np.testing.assert_allclose(est.freqs_hz, f)
+    np.testing.assert_allclose(est.pxx, pxx, rtol=1e-9, atol=1e-13 * pxx.max())
+    np.testing.assert_allclose(est.pyy, pyy, rtol=1e-9, atol=1e-13 * pyy.max())
+    np.testing.assert_allclose(est.pxy, pxy, rtol=1e-9, atol=1e-13 * np.abs(pxy).max())
+    np.testing.assert_allclose(est.h, pxy / pxx, rtol=1e-6, atol=1e-12)
+    np.testing.assert_allclose(est.coherence, coh, rtol=1e-6, atol=1e-9)
+    _, t, _ = signal.spectrogram(x[:, 0], fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2)
+    assert est.segments == t.size
+
+
+def test_transfer_estimate_rejects_mismatched_shapes() -> None:
+    with pytest.raises(KernelError, match="shape"):
+        checks.transfer_estimate(np.zeros((1000, 2)), np.zeros((1000, 1)), FS, 256)
+
+
+# ----------------------------------------------------------------------------- correct blocks
+
+
+@pytest.mark.parametrize(
+    "make, stopband_measurable",
+    [
+        (bandpass_elliptic, True),
+        (lowpass_butterworth, False),  # fixed order: no attenuation figure to check
+        # about 106 dB overall (twice the ~53 dB of a Hamming window, from memory): below the
+        # Hann window's leakage at this resolution, so not measured (NaN), never a false figure
+        (lowpass_fir, False),
+    ],
+)
+def test_correct_two_pass_block_passes(make, stopband_measurable: bool) -> None:
+    # Reference: scipy.signal.sosfiltfilt / filtfilt of broadband noise. The measured response
+    # must match the designed |H|^2 within the design ripple plus the estimator error, with
+    # ~0 phase, and reach the spec attenuation where it can be measured.
+    design = make()
+    x, y = block(design)
+    fig = checks.block_figures(x, y, design, CFG)
+    assert fig.shape == (2, len(FIGURES))
+    ripple = design.spec.passband_ripple_db or 0.0
+    assert np.all(col(fig, "coherent_bins") > 10)
+    assert np.all(np.abs(col(fig, "passband_dev_db")) <= ripple + checks.ESTIMATOR_ERROR_DB)
+    assert np.all(np.abs(col(fig, "phase_deg")) <= checks.ESTIMATOR_ERROR_DEG)
+    att = col(fig, "stopband_att_db")
+    if stopband_measurable:
+        assert np.all(np.isfinite(att)), "white noise has energy in the stopband: attenuation must be measured"
+        assert np.all(att >= design.spec.stopband_attenuation_db - CFG.stopband_margin_db)
+    else:
+        assert np.all(np.isnan(att) | (att >= (design.spec.stopband_attenuation_db or 0.0) - CFG.stopband_margin_db))
+    assert np.all(np.isnan(col(fig, "seam_mismatch")))
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+
+
+def test_correct_block_with_realistic_input_passes() -> None:
+    # Offset + random walk + a tone + a spike: a correct two-pass result (scipy.signal.sosfiltfilt)
+    # must not be flagged even though the input is far from white.
+    design = bandpass_elliptic()
+    pad = 2 * design.effective_length
+    n = 65536 + 2 * pad
+    rng = np.random.default_rng(7)
+    t = np.arange(n) / FS
+    x = 500.0 + np.cumsum(rng.standard_normal(n)) * 0.05 + 3.0 * np.sin(2 * np.pi * 16.3 * t)
+    x += 0.01 * rng.standard_normal(n)
+    x[n // 2] += 200.0
+    y = two_pass(design, x)
+    fig = checks.block_figures(x[pad:-pad], y[pad:-pad], design, CFG)
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+
+
+def test_short_block_is_not_measured() -> None:
+    # Too short for a usable Welch segment: response figures are NaN and do not grade.
+    design = bandpass_elliptic()
+    x, y = block(design, core=200, channels=1)
+    fig = checks.block_figures(x, y, design, CFG)
+    for name in ("passband_dev_db", "phase_deg", "stopband_att_db"):
+        assert np.isnan(col(fig, name)).all()
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+
+
+def test_response_false_leaves_response_figures_nan() -> None:
+    design = lowpass_fir()
+    x, y = block(design, core=8192, channels=1)
+    fig = checks.block_figures(x, y, design, CFG, response=False)
+    assert np.isnan(col(fig, "passband_dev_db")).all()
+    assert np.isfinite(col(fig, "rms_out")).all()
+
+
+# ----------------------------------------------------------------------------- wrong blocks
+
+
+def test_single_forward_pass_fails() -> None:
+    # Reference: scipy.signal.sosfilt, one causal pass: its phase is far from zero in the passband.
+    design = bandpass_elliptic()
+    x, _ = block(design, channels=1)
+    y = signal.sosfilt(design.sos, x, axis=0)
+    fig = checks.block_figures(x, y, design, CFG)
+    assert np.abs(col(fig, "phase_deg")).max() > CFG.phase_fail_deg
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+def test_perturbed_coefficients_fail() -> None:
+    # The block was processed with a different design (upper passband edge 25 Hz instead of
+    # 30 Hz, scipy.signal.ellip): the 25-30 Hz part of the passband is attenuated.
+    design = bandpass_elliptic()
+    n, wn = signal.ellipord([0.5, 25.0], [0.1, 37.0], 0.5, 30.0, fs=FS)
+    wrong = signal.ellip(n, 0.5, 30.0, wn, "bandpass", output="sos", fs=FS)
+    pad = 2 * design.effective_length + 64
+    x = np.random.default_rng(1).standard_normal((65536 + 2 * pad, 1))
+    y = signal.sosfiltfilt(wrong, x, axis=0)
+    fig = checks.block_figures(x[pad:-pad], y[pad:-pad], design, CFG)
+    assert np.abs(col(fig, "passband_dev_db")).max() > 10.0
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+def test_unfiltered_block_fails_on_stopband() -> None:
+    # Output = input: the stopband is not attenuated at all (about 0 dB against 60 dB).
+    design = bandpass_elliptic()
+    x, _ = block(design, channels=1)
+    fig = checks.block_figures(x, x.copy(), design, CFG)
+    assert col(fig, "stopband_att_db")[0] < 1.0
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+def test_swapped_channels_fail() -> None:
+    # Each output channel is the other channel's correct result: not explained by its input.
+    design = bandpass_elliptic()
+    x, y = block(design, channels=2)
+    fig = checks.block_figures(x, y[:, ::-1], design, CFG)
+    assert np.all(col(fig, "coherent_bins") < checks.COHERENT_FRACTION_MIN * col(fig, "passband_bins"))
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+def test_seam_mismatch_beyond_tolerance_fails() -> None:
+    design = bandpass_elliptic()
+    x, y = block(design, core=16384, channels=1)
+    fig = checks.block_figures(x, y, design, CFG, response=False)
+    full_scale = float(np.max(np.abs(x)))
+    own = y[:8]
+    # max |difference| / full scale, computed by hand.
+    bad = own + 1e-6 * full_scale
+    value = checks.seam_mismatch(own, bad, full_scale)
+    assert value == pytest.approx(1e-6, rel=1e-9)
+    fig[:, FIGURE_INDEX["seam_mismatch"]] = value
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+    fig[:, FIGURE_INDEX["seam_mismatch"]] = checks.seam_mismatch(own, own * (1 + 1e-13), full_scale)
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+    # Just above and below the documented limit SEAM_FACTOR * tolerance.
+    fig[:, FIGURE_INDEX["seam_mismatch"]] = checks.SEAM_FACTOR * TOL * 1.01
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+    fig[:, FIGURE_INDEX["seam_mismatch"]] = checks.SEAM_FACTOR * TOL * 0.99
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+
+
+def test_seam_mismatch_edge_cases() -> None:
+    a = np.array([[1.0, 2.0], [3.0, np.nan]])
+    b = np.array([[1.0, 2.5], [3.0, np.nan]])
+    assert checks.seam_mismatch(a, b, 5.0) == pytest.approx(0.1)  # NaN = not computed, ignored
+    assert math.isnan(checks.seam_mismatch(np.full(3, np.nan), np.full(3, np.nan), 1.0))
+    assert checks.seam_mismatch(np.array([1.0, np.inf]), np.array([1.0, 2.0]), 1.0) == math.inf
+    with pytest.raises(KernelError, match="seam"):
+        checks.seam_mismatch(np.zeros(3), np.zeros(4), 1.0)
+
+
+# ----------------------------------------------------------------------------- integrity
+
+
+def test_nan_input_fails() -> None:
+    design = lowpass_fir()
+    x, y = block(design, core=8192, channels=2)
+    x[[10, 20, 30], 1] = np.nan
+    fig = checks.block_figures(x, y, design, CFG)
+    np.testing.assert_array_equal(col(fig, "nonfinite_in"), np.count_nonzero(~np.isfinite(x), axis=0))
+    assert np.isnan(col(fig, "passband_dev_db")[1])  # no response estimate on a non-finite channel
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+def test_nonfinite_output_fails(bad: float) -> None:
+    design = lowpass_fir()
+    x, y = block(design, core=8192, channels=1)
+    y[100, 0] = bad
+    fig = checks.block_figures(x, y, design, CFG)
+    assert col(fig, "nonfinite_out")[0] == 1
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+def test_values_beyond_float32_range_count_as_clipped() -> None:
+    # IEEE 754 binary32: largest finite value 3.4028235e38 (numpy.finfo); 1e39 becomes inf
+    # when cast to float32.
+    assert np.finfo(np.float32).max == pytest.approx(3.4028235e38, rel=1e-7)
+    with np.errstate(over="ignore"):
+        assert np.isinf(np.float32(1e39))
+    design = lowpass_fir()
+    x, y = block(design, core=8192, channels=2)
+    y[[5, 6, 7], 0] = [1e39, -2e39, 3.4e38]  # the last one still fits
+    fig = checks.block_figures(x, y, design, CFG, out_dtype="float32", response=False)
+    np.testing.assert_array_equal(col(fig, "clipped"), [2, 0])
+    assert checks.grade(fig, design, CFG, TOL) == WARN
+    fig64 = checks.block_figures(x, y, design, CFG, out_dtype="float64", response=False)
+    np.testing.assert_array_equal(col(fig64, "clipped"), [0, 0])
+
+
+def test_levels_of_a_sine() -> None:
+    # RMS of a sinusoid of amplitude A over whole periods is A / sqrt(2) (textbook formula).
+    design = lowpass_fir()
+    t = np.arange(10000) / FS
+    x = 2.0 * np.sin(2 * np.pi * 5.0 * t)
+    fig = checks.block_figures(x, 0.5 * x, design, CFG, response=False)
+    assert col(fig, "rms_in")[0] == pytest.approx(2.0 / math.sqrt(2.0), rel=1e-9)
+    assert col(fig, "rms_out")[0] == pytest.approx(1.0 / math.sqrt(2.0), rel=1e-9)
+    assert col(fig, "peak_in")[0] == pytest.approx(2.0, rel=1e-6)
+    assert col(fig, "peak_out")[0] == pytest.approx(1.0, rel=1e-6)
+
+
+def test_shape_mismatch_is_an_error() -> None:
+    with pytest.raises(KernelError, match="shape"):
+        checks.block_figures(np.zeros((100, 2)), np.zeros((100, 3)), lowpass_fir(), CFG)
+
+
+# ----------------------------------------------------------------------------- grading rules
+
+
+def _figures(**values: float) -> np.ndarray:
+    row = np.full((1, len(FIGURES)), np.nan)
+    for name in ("nonfinite_in", "nonfinite_out", "clipped"):
+        row[0, FIGURE_INDEX[name]] = 0.0
+    for name, v in values.items():
+        row[0, FIGURE_INDEX[name]] = v
+    return row
+
+
+def test_grading_thresholds_follow_the_configuration() -> None:
+    # Product rule: thresholds from ChecksConfig; the passband limits sit on top of half the
+    # spec ripple plus the estimator allowance.
+    design = bandpass_elliptic()
+    base = 1.0 / 2.0 + checks.ESTIMATOR_ERROR_DB
+    cases = [
+        (dict(passband_dev_db=base + CFG.passband_warn_db - 0.01), PASS),
+        (dict(passband_dev_db=-(base + CFG.passband_warn_db + 0.01)), WARN),
+        (dict(passband_dev_db=base + CFG.passband_fail_db + 0.01), FAIL),
+        (dict(phase_deg=CFG.phase_warn_deg - 0.1), PASS),
+        (dict(phase_deg=-(CFG.phase_warn_deg + 0.1)), WARN),
+        (dict(phase_deg=CFG.phase_fail_deg + 0.1), FAIL),
+        (dict(stopband_att_db=60.0 - CFG.stopband_margin_db + 0.1), PASS),
+        (dict(stopband_att_db=60.0 - CFG.stopband_margin_db - 0.1), FAIL),
+        (dict(clipped=1.0), WARN),
+        (dict(passband_bins=100.0, coherent_bins=49.0), FAIL),
+        (dict(passband_bins=100.0, coherent_bins=51.0), PASS),
+    ]
+    for values, expected in cases:
+        assert checks.grade(_figures(**values), design, CFG, TOL) == expected, values
+
+
+def test_grade_file() -> None:
+    assert checks.grade_file([PASS, PASS]) == "pass"
+    assert checks.grade_file([PASS, WARN]) == "warn"
+    assert checks.grade_file([PASS, FAIL, None]) == "fail"
+    assert checks.grade_file([PASS, checks.ERROR]) == "fail"
+    assert checks.grade_file([PASS, checks.PENDING]) == "incomplete"
+    assert checks.grade_file(["pass", None]) == "incomplete"
+    assert checks.grade_file([]) == "incomplete"
+
+
+def test_summarise_is_json_safe_and_takes_the_worst() -> None:
+    a = _figures(passband_dev_db=0.2, phase_deg=-3.0, stopband_att_db=70.0, passband_bins=50, coherent_bins=50)
+    b = _figures(passband_dev_db=-0.4, phase_deg=1.0, stopband_att_db=65.0, passband_bins=50, coherent_bins=40)
+    b[0, FIGURE_INDEX["clipped"]] = 2
+    empty = np.full((1, len(FIGURES)), np.nan)
+    s = checks.summarise({0: a, 1: b, 2: empty})
+    json.dumps(s, allow_nan=False)  # raises on NaN or infinity
+    assert s["blocks"] == 3 and s["blocks_measured"] == 2
+    assert s["passband_dev_db"] == pytest.approx(-0.4)
+    assert s["phase_deg"] == pytest.approx(-3.0)
+    assert s["stopband_att_db"] == pytest.approx(65.0)
+    assert s["coherent_bins"] == pytest.approx(40.0)
+    assert s["clipped"] == 2
+    assert s["seam_mismatch"] is None
+    stacked = checks.summarise(np.stack([a, b]))  # a (blocks, channels, figures) array
+    assert stacked["passband_dev_db"] == pytest.approx(-0.4)

@@ -1,0 +1,233 @@
+"""The HTML run report.
+
+References: the HTML is parsed with Python's html.parser, images are decoded with
+matplotlib.image (PNG), the two-pass impulse response is compared with scipy.signal.sosfilt
+run forward and then backward over an impulse (the definition of forward-backward
+filtering), the overlay with scipy.signal.sosfiltfilt, and the page is rendered by a
+headless Chromium when one is installed.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import re
+import shutil
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+from matplotlib import image as mpimg
+from scipy import signal
+
+from twinpass import report
+from twinpass.core.effective import effective_length
+from twinpass.core.types import Design, ResponseSpec
+
+FS = 100.0
+TOL = 1e-9
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
+HEADINGS = (
+    "Summary",
+    "Cautions",
+    "Filter design",
+    "Overall response",
+    "Phase",
+    "Impulse response",
+    "Design report",
+    "Block check map",
+    "Before and after filtering",
+    "Files",
+)
+
+
+def bandpass() -> Design:
+    spec = ResponseSpec(kind="bandpass", family="elliptic", passband_hz=(0.5, 30.0), stopband_hz=(0.1, 45.0),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    n, wn = signal.ellipord([0.5, 30.0], [0.1, 45.0], 0.5, 30.0, fs=FS)
+    sos = signal.ellip(n, 0.5, 30.0, wn, "bandpass", output="sos", fs=FS)
+    return Design(spec=spec, family="elliptic", sample_rate_hz=FS, order=n, sos=sos, taps=None,
+                  effective_length=effective_length(sos=sos, tolerance=TOL), tolerance=TOL,
+                  report={"kind": "bandpass", "family": "elliptic", "edges": [{"edge": "passband", "hz": 0.5}]})
+
+
+def fir_lowpass() -> Design:
+    spec = ResponseSpec(kind="lowpass", order=60, cutoff_hz=(12.5,), cutoff_means="per-pass", family="fir")
+    taps = signal.firwin(61, 12.5, fs=FS)
+    return Design(spec=spec, family="fir", sample_rate_hz=FS, order=60, sos=None, taps=taps,
+                  effective_length=effective_length(taps=taps, tolerance=TOL), tolerance=TOL)
+
+
+class _Collector(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.headings: list[str] = []
+        self.images: list[str] = []
+        self.links: list[str] = []
+        self._in_heading = False
+        self.tags: set[str] = set()
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.add(tag)
+        a = dict(attrs)
+        if tag in ("h1", "h2", "h3", "h4"):
+            self._in_heading = True
+            self.headings.append("")
+        if tag == "img":
+            self.images.append(a.get("src") or "")
+        for key in ("src", "href", "action", "poster", "data"):
+            if a.get(key):
+                self.links.append(a[key] or "")
+
+    def handle_endtag(self, tag: str) -> None:
+        if tag in ("h1", "h2", "h3", "h4"):
+            self._in_heading = False
+
+    def handle_data(self, data: str) -> None:
+        if self._in_heading:
+            self.headings[-1] += data
+
+
+def _blocks() -> list[dict]:
+    statuses = [1, 1, 2, 3, 0, 4, "pass"]
+    out = []
+    for s, stream in enumerate(("north-deck", "south-pier")):
+        for i in range(14):
+            out.append(dict(stream=stream, file=f"{stream}/rec_{i // 7}.wav", start_time_s=1.6e9 + i * 300.0 + s,
+                            duration_s=300.0, status=statuses[i % len(statuses)]))
+    return out
+
+
+def _overlay(design: Design) -> dict:
+    t = np.arange(-400, 401) / FS
+    x = 0.05 * np.random.default_rng(0).standard_normal(t.size)
+    x[400] += 4.0
+    return dict(file="north-deck/rec_0.wav", t=t, before=x, after=signal.sosfiltfilt(design.sos, x))
+
+
+@pytest.fixture(scope="module")
+def rendered(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    designs = [bandpass(), fir_lowpass()]
+    files = [
+        dict(file="north-deck/rec_0.wav", stream="north-deck", blocks_done=7, blocks_total=7, blocks_failed=1,
+             worst={"passband_dev_db": 0.02, "phase_deg": -0.1, "stopband_att_db": None}, edge_zones=[[0.0, 34.3]],
+             complete=False),
+        dict(file="south-pier/rec_1.wav", stream="south-pier", blocks_done=7, blocks_total=7, blocks_failed=0,
+             worst={"passband_dev_db": -0.01}, edge_zones="none", complete=True, note="<b>escaped</b>"),
+    ]
+    path = tmp_path_factory.mktemp("report") / "sub" / "report.html"
+    out = report.render_report(
+        path,
+        design_reports=[designs[0].report],
+        designs=designs,
+        files=files,
+        blocks=_blocks(),
+        overlays=[_overlay(designs[0])],
+        title="Bridge deck survey <filtered>",
+        cautions=["Recorder clocks were not disciplined."],
+    )
+    return out, out.read_text(encoding="utf-8")
+
+
+def test_report_file_sections_and_images(rendered: tuple[Path, str]) -> None:
+    path, text = rendered
+    assert path.is_file()
+    parsed = _Collector()
+    parsed.feed(text)
+    for heading in HEADINGS:
+        assert any(h.strip().startswith(heading) for h in parsed.headings), heading
+    # 3 figures per design (2 designs) + the block map + 1 overlay.
+    assert len(parsed.images) == 3 * 2 + 1 + 1
+    for src in parsed.images:
+        assert src.startswith("data:image/png;base64,")
+        png = base64.b64decode(src.split(",", 1)[1])
+        assert png.startswith(PNG_SIGNATURE)
+        pixels = mpimg.imread(io.BytesIO(png), format="png")
+        assert pixels.shape[0] > 100 and pixels.shape[1] > 400
+    # Self-contained: every link is a data URI, no script, no remote reference anywhere.
+    assert all(link.startswith("data:") for link in parsed.links)
+    assert "script" not in parsed.tags
+    assert not re.search(r"(?i)(https?:|ftp:)//|@import|url\(", text)
+    assert "<b>escaped</b>" not in text and html.escape("<b>escaped</b>") in text
+    assert html.escape("Bridge deck survey <filtered>") in text
+
+
+def test_report_cautions(rendered: tuple[Path, str]) -> None:
+    _, text = rendered
+    for caution in (*report.DEFAULT_CAUTIONS, "Recorder clocks were not disciplined."):
+        assert html.escape(caution) in text
+    lowered = text.lower()
+    for phrase in ("non-causal", "pre-response", "onset", "real-time", "licensed practice", "local codes"):
+        assert phrase in lowered
+
+
+def test_overlay_shows_no_time_shift(rendered: tuple[Path, str]) -> None:
+    # Reference: scipy.signal.sosfiltfilt is zero-phase, so the output's cross-correlation
+    # with the input peaks at lag 0.
+    _, text = rendered
+    assert "lag of 0 samples" in text
+
+
+def test_report_without_blocks_or_overlays(tmp_path: Path) -> None:
+    design = fir_lowpass()
+    out = report.render_report(tmp_path / "r.html", design_reports=[], designs=[design], files=[], blocks=[],
+                               overlays=[], title="empty", cautions=[])
+    text = out.read_text(encoding="utf-8")
+    parsed = _Collector()
+    parsed.feed(text)
+    assert len(parsed.images) == 3
+    assert "No blocks recorded." in text
+    for caution in report.DEFAULT_CAUTIONS:
+        assert html.escape(caution) in text
+
+
+def test_response_figure_png() -> None:
+    png = report.response_figure_png(bandpass())
+    assert png.startswith(PNG_SIGNATURE)
+    assert mpimg.imread(io.BytesIO(png), format="png").ndim == 3
+
+
+def test_two_pass_impulse_matches_forward_backward_sosfilt() -> None:
+    # Reference: scipy.signal.sosfilt over an impulse in the middle of zeros, forward, then
+    # over the time-reversed result, reversed back: forward-backward filtering by definition.
+    design = bandpass()
+    t, g = report.two_pass_impulse(design)
+    m = (g.size - 1) // 2
+    assert t[m] == 0.0 and g.size == 2 * design.effective_length + 1
+    np.testing.assert_allclose(g, g[::-1], rtol=0, atol=1e-15 * np.abs(g).max())  # symmetric about t = 0
+    x = np.zeros(4 * m + 1)
+    x[2 * m] = 1.0
+    ref = signal.sosfilt(design.sos, signal.sosfilt(design.sos, x)[::-1])[::-1]
+    np.testing.assert_allclose(g, ref[m : 3 * m + 1], rtol=0, atol=1e-9 * np.abs(ref).max())
+    assert np.abs(g[:m]).max() > 1e-3 * np.abs(g).max()  # a visible pre-response before t = 0
+
+
+def _browser() -> str | None:
+    for name in ("/usr/bin/chromium", "chromium", "chromium-browser", "google-chrome"):
+        found = shutil.which(name)
+        if found:
+            return found
+    return None
+
+
+def test_report_renders_in_headless_chromium(rendered: tuple[Path, str], tmp_path: Path) -> None:
+    browser = _browser()
+    if browser is None:
+        pytest.skip("no Chromium or Chrome on PATH to render the report headless; "
+                    "install one with `apt-get install chromium`")
+    path, _ = rendered
+    proc = subprocess.run(
+        [browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+         "--dump-dom", "--enable-logging=stderr", "--v=0", f"--user-data-dir={tmp_path / 'profile'}",
+         path.resolve().as_uri()],
+        capture_output=True, text=True, timeout=120,
+    )
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert "<h1>" in proc.stdout and "Block check map" in proc.stdout
+    assert proc.stdout.count("<img") == 8
+    console = [line for line in proc.stderr.splitlines()
+               if re.search(r"CONSOLE|Uncaught|Failed to load resource|Not allowed to load", line)]
+    assert not console, "\n".join(console)
