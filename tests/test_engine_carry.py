@@ -1,0 +1,244 @@
+"""Carry mode end to end: real archives on disk, real Zarr stores, a real Dask client.
+
+Filters here have poles at radius 0.99999, so their effective length (about 2.4 million
+samples for a 1e-9 tolerance) is 10 to 100 times the block length. The blockwise result
+must equal two-pass filtering of the whole segment with ``scipy.signal.sosfiltfilt`` (the
+reference library), and a rerun after a failure must write the same bytes.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+from pathlib import Path
+
+import zarr
+
+import numpy as np
+import pytest
+import scipy.signal
+
+from conftest import make_signal, read_output, write_config, write_stream
+from test_carry import EXTENDED, extended_precision_filtfilt
+from twinpass import faults
+from twinpass.config import load_config
+from twinpass.core.checks import FIGURE_INDEX, SEAM_FACTOR
+from twinpass.core.effective import dominant_pole_radius
+from twinpass.engine import dask_client
+from twinpass.engine_carry import carry_layout, run_segment_carry, use_carry
+from twinpass.errors import ConfigError
+from twinpass.io.store import OutputStore
+from twinpass.job import prepare
+
+FS = 200.0
+R = 0.99999
+# First-order bilinear high-pass: pole (1 - t) / (1 + t) with t = tan(pi f / fs)
+# (bilinear transform, e.g. Oppenheim & Schafer, Discrete-Time Signal Processing).
+F1 = FS / math.pi * math.atan((1 - R) / (1 + R))
+# A 2nd-order Butterworth high-pass at a small cutoff w (rad/sample) has poles of radius
+# about 1 - w / sqrt(2) (its analog poles lie at 45 degrees): cutoff sqrt(2) F1 gives ~R.
+HIGHPASS_1 = {"kind": "highpass", "family": "butterworth", "order": 1, "cutoff_hz": [F1], "cutoff_means": "per-pass"}
+HIGHPASS_2 = {"kind": "highpass", "family": "butterworth", "order": 2, "cutoff_hz": [math.sqrt(2) * F1],
+              "cutoff_means": "per-pass"}
+FILES = [130000, 110000, 120000]
+BLOCK_SECONDS = 200.0  # 40000 samples: 10 to 100 times shorter than the effective length
+
+
+@pytest.fixture(scope="module")
+def client():
+    with dask_client("threads", 2) as c:
+        yield c
+
+
+def _signal(channels: int, seed: int) -> np.ndarray:
+    x = make_signal(sum(FILES), channels, FS, seed=seed)
+    x += 0.5 + 0.3 * np.arange(x.shape[0])[:, None] / x.shape[0]  # offset and drift for the high-pass
+    return x
+
+
+def _run(folder: Path, client, *, collect: list | None = None, **tables) -> tuple[list, Path]:
+    """Plan the job of ``folder/twinpass.toml`` and run every busy segment in carry mode."""
+    cfg = load_config(folder / "twinpass.toml")
+    store = OutputStore.open(cfg.store_location, mode="a")
+    prep = prepare(cfg, store)
+    outcomes = []
+    for work in prep.work:
+        if work.has_work:
+            design = prep.designs[work.sample_rate_hz]
+            cb = None if collect is None else (lambda d, t, r: collect.append(r))
+            outcomes += run_segment_carry(work, design, cfg, store, client, on_block=cb)
+    return outcomes, Path(cfg.store_location)
+
+
+def _setup(tmp_path: Path, response: dict, channels: int = 2, seed: int = 1, **processing) -> tuple:
+    x = _signal(channels, seed)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, FILES)
+    write_config(tmp_path, response=response, processing={"block_seconds": BLOCK_SECONDS, "mode": "carry",
+                                                          **processing})
+    return files
+
+
+@pytest.mark.parametrize(
+    "response, edge, edge_samples, channels",
+    [
+        (HIGHPASS_1, "odd", "auto", 2),       # extension of the whole segment, in pieces
+        (HIGHPASS_2, "even", 50000, 3),
+        (HIGHPASS_2, "constant", "auto", 1),
+        (HIGHPASS_1, "none", "auto", 2),
+    ],
+)
+def test_carry_mode_equals_whole_segment_two_pass(tmp_path, client, response, edge, edge_samples, channels):
+    if response is HIGHPASS_2 and not EXTENDED:
+        pytest.skip("numpy.longdouble is float64 here: poles this close to 1 lose accuracy")
+    files = _setup(tmp_path, response, channels, seed=channels, edge=edge, edge_samples=edge_samples)
+    results: list = []
+    outcomes, store = _run(tmp_path, client, collect=results)
+    assert [o.status for o in outcomes] == ["complete"] * 3
+    out = OutputStore.open(str(store), mode="r")
+    attrs = out.array_attrs(files.arrays[0])
+    filt = attrs["filter"]
+    sos = np.asarray(filt["sos"])
+    block = attrs["blocks"]["block_samples"]
+    assert attrs["blocks"]["halo_samples"] == 0 and attrs["blocks"]["mode"] == "carry"
+    # The filters of interest: a pole at radius 0.99999 and a halo 10 to 100 blocks long.
+    assert dominant_pole_radius(sos) == pytest.approx(R, abs=2e-7)
+    assert 10 * block <= filt["effective_length_samples"] <= 100 * block
+    # Every output block task held one block (plus the seam samples before it), never a halo.
+    assert len(results) == sum(-(-f // block) for f in FILES)
+    assert max(r.window_samples for r in results) <= block + 8
+
+    x = files.concat
+    y = np.concatenate(read_output(store, files.arrays))
+    padtype = None if edge == "none" else edge
+    n = int(filt["edge_samples"])
+    # "auto" extends by the effective length, capped at the segment length - 1 (sosfiltfilt
+    # needs padlen < len(x)): here the whole segment is mirrored.
+    assert n == {"none": 0, 50000: 50000}.get(edge if edge == "none" else edge_samples, sum(FILES) - 1)
+    # Reference: scipy.signal.sosfiltfilt on the whole segment with the stored coefficients.
+    ref = scipy.signal.sosfiltfilt(sos, x, axis=0, padtype=padtype, padlen=n)
+    scale = np.abs(x).max()
+    # sosfiltfilt's own float64 rounding for poles this close to 1 (measured against its
+    # steps in extended precision) is part of the bound, as in tests/test_carry.py.
+    own = float(np.abs(ref - extended_precision_filtfilt(sos, x, edge, n)).max())
+    assert np.abs(y - ref).max() <= filt["tolerance"] * scale + 2 * own
+
+    # Seams were computed across every join (file joins included) and agree to rounding.
+    for a in files.arrays:
+        table = out.read_block_table(a)
+        assert set(np.asarray(table.status).tolist()) <= {1, 2}
+        seam = table.figures[..., FIGURE_INDEX["seam_mismatch"]]
+        assert np.isfinite(seam).all()
+        assert seam.max() <= SEAM_FACTOR * filt["tolerance"]
+
+
+def _cfg(mode: str, threshold: float = 1.0, response: dict | None = None, tmp_path: Path | None = None):
+    folder = tmp_path
+    write_config(folder, response=response or HIGHPASS_1, processing={"mode": mode, "carry_threshold": threshold})
+    return load_config(folder / "twinpass.toml")
+
+
+def test_use_carry_decisions(tmp_path):
+    from twinpass.core.design import design_filter
+
+    iir_cfg = _cfg("auto", tmp_path=tmp_path)
+    iir = design_filter(iir_cfg.response, FS, 1e-9)
+    fir = design_filter(_cfg("auto", response={"kind": "lowpass", "family": "fir", "passband_hz": [20.0],
+                                               "stopband_hz": [40.0], "passband_ripple_db": 1.0,
+                                               "stopband_attenuation_db": 40.0}, tmp_path=tmp_path).response,
+                        FS, 1e-9)
+    length = iir.effective_length
+    auto = iir_cfg
+    assert use_carry(iir, length - 1, auto)              # halo longer than the block
+    assert not use_carry(iir, length, auto)              # not longer: the halo mode
+    loose = dataclasses.replace(auto, processing=dataclasses.replace(auto.processing, carry_threshold=0.25))
+    assert use_carry(iir, 4 * length - 1, loose) and not use_carry(iir, 4 * length, loose)
+    assert not use_carry(fir, 1, auto)                   # FIR never carries in auto mode
+    halo = dataclasses.replace(auto, processing=dataclasses.replace(auto.processing, mode="halo"))
+    assert not use_carry(iir, 1, halo)
+    carry = dataclasses.replace(auto, processing=dataclasses.replace(auto.processing, mode="carry"))
+    assert use_carry(iir, 10 * length, carry)            # forced, whatever the lengths
+    with pytest.raises(ConfigError, match=r"mode = \"carry\".*FIR"):
+        use_carry(fir, 1, carry)
+
+
+def test_fir_design_is_refused(tmp_path, client):
+    write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, FS), FS, 2)
+    write_config(tmp_path, response={"kind": "lowpass", "family": "fir", "passband_hz": [20.0],
+                                     "stopband_hz": [40.0], "passband_ripple_db": 1.0,
+                                     "stopband_attenuation_db": 40.0})
+    with pytest.raises(ConfigError, match="IIR"):
+        _run(tmp_path, client)
+
+
+def _set_faults(monkeypatch, tmp_path: Path, rules: list[dict]) -> None:
+    monkeypatch.setenv(faults.ENV, json.dumps(rules))
+    monkeypatch.setenv(faults.ENV_STATE, str(tmp_path / "fault-state"))
+
+
+def _bytes(store: Path, arrays) -> list[bytes]:
+    return [a.tobytes() for a in read_output(store, arrays)]
+
+
+def test_failures_resume_to_identical_bytes(tmp_path, client, monkeypatch):
+    clean_dir, faulty_dir = tmp_path / "clean", tmp_path / "faulty"
+    clean_dir.mkdir()
+    faulty_dir.mkdir()
+    files = _setup(clean_dir, HIGHPASS_1, 2, seed=5)
+    _setup(faulty_dir, HIGHPASS_1, 2, seed=5)
+    outcomes, clean_store = _run(clean_dir, client)
+    assert all(o.status == "complete" for o in outcomes)
+    clean = _bytes(clean_store, files.arrays)
+
+    # A block that always raises: its state cannot be carried, so no block of the segment
+    # is written; the steps of the other pieces are kept.
+    _set_faults(monkeypatch, tmp_path, [{"action": "raise", "file": files.arrays[1], "block": 1}])
+    outcomes, store = _run(faulty_dir, client)
+    assert [o.status for o in outcomes] == ["failed"] * 3
+    assert "could not be carried" in outcomes[0].errors[0]
+    carry_groups = [d for d in (store / "_twinpass" / "carry").iterdir() if d.is_dir()]
+    assert len(carry_groups) == 1
+    record = zarr.open_group(str(carry_groups[0]), mode="r")
+    assert np.count_nonzero(record["fwd_done"][:] == 0) >= 1  # the failing piece
+    assert np.count_nonzero(record["fwd_done"][:]) > 1        # the others are kept
+
+    # A one-off failure is retried inside the task; a perturbed block fails its checks.
+    _set_faults(monkeypatch, tmp_path, [{"action": "raise-once", "file": files.arrays[1], "block": 1},
+                                        {"action": "perturb", "file": files.arrays[2], "block": 0}])
+    outcomes, store = _run(faulty_dir, client)
+    assert outcomes[2].status == "failed" and outcomes[0].status == "complete"
+    out = OutputStore.open(str(store), mode="r")
+    statuses = [np.asarray(out.read_block_table(a, figures=False, seams=False).status) for a in files.arrays]
+    assert statuses[2][0] == 3  # the perturbed block fails (and its seam neighbours with it)
+    not_done = sum(int(np.count_nonzero(~np.isin(s, [1, 2]))) for s in statuses)
+
+    # Without faults the rerun redoes only those blocks, from the recorded carries, and
+    # writes the clean bytes.
+    monkeypatch.delenv(faults.ENV)
+    outcomes, store = _run(faulty_dir, client)
+    assert [o.status for o in outcomes] == ["skipped", "complete", "complete"]
+    assert sum(o.blocks_run for o in outcomes) == not_done
+    assert _bytes(store, files.arrays) == clean
+
+
+def test_lost_carried_state_fails_the_seam_check(tmp_path, client, monkeypatch):
+    # "halo0" makes a block start from steady states instead of its carried ones (what a
+    # block would do with no history): the seam check must catch it.
+    files = _setup(tmp_path, HIGHPASS_1, 1, seed=7)
+    _set_faults(monkeypatch, tmp_path, [{"action": "halo0", "file": files.arrays[1], "block": 1}])
+    outcomes, store = _run(tmp_path, client)
+    assert outcomes[1].status == "failed"
+    table = OutputStore.open(str(store), mode="r").read_block_table(files.arrays[1])
+    seam = table.figures[:, 0, FIGURE_INDEX["seam_mismatch"]]
+    tol = 1e-9
+    assert seam[1] > SEAM_FACTOR * tol
+    assert table.status[1] == 3  # fail
+
+
+def test_carry_layout_has_no_halo(tmp_path):
+    cfg = _cfg("carry", tmp_path=tmp_path)
+    from twinpass.engine import SegmentWork
+
+    seg = SegmentWork("s", "deck", FS, 4, 10**6, ())
+    layout = carry_layout(seg, cfg)
+    assert layout.halo == 0 and layout.block_samples == int(cfg.processing.block_seconds * FS)
