@@ -73,15 +73,17 @@ def cmd_design(args: argparse.Namespace) -> int:
 def cmd_plan(args: argparse.Namespace) -> int:
     from .config import load_config
     from .core.plan import format_plan
-    from .errors import StoreError
+    from .errors import StoreError, UnsafePathError
     from .io.store import OutputStore
     from .job import prepare
 
     cfg = load_config(args.config)
     try:
         store = OutputStore.open(cfg.store_location, mode="r", archive_root=cfg.archive_root)
+    except UnsafePathError:
+        raise
     except StoreError:
-        store = None
+        store = None  # no store yet: everything is new
     prep = prepare(cfg, store if store is not None else _EmptyStore(), force=args.force)
     if args.json:
         print(json.dumps({"files": prep.plan.to_json(), "totals": prep.plan.totals(),

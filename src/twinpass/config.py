@@ -311,6 +311,22 @@ def _check_values(cfg: JobConfig) -> None:
         raise ConfigError(f"{src}: [checks] every must be >= 0 (0 turns response checks off)")
     if cfg.output.chunk_seconds is not None and cfg.output.chunk_seconds <= 0:
         raise ConfigError(f"{src}: [output] chunk_seconds must be > 0")
+    if p.max_fill_samples < 0:
+        raise ConfigError(f"{src}: [processing] max_fill_samples must be >= 0")
+    if p.nonfinite == "interpolate" and p.max_fill_samples == 0:
+        raise ConfigError(
+            f"{src}: [processing] nonfinite = \"interpolate\" needs max_fill_samples > 0 "
+            "(the longest NaN/Inf run to fill, in samples)"
+        )
+    # The response must make sense before any sample rate is known; the Nyquist check
+    # waits for the archive's rates (a stand-in rate far above any edge skips it here).
+    from .core.design import validate_spec
+    from .errors import SpecError
+
+    try:
+        validate_spec(cfg.response, 1e15)
+    except SpecError as e:
+        raise ConfigError(f"{src}: [response] {e}") from None
 
 
 def parse_config(text: str, *, base_dir: Path | str = ".", source: str = "<memory>") -> JobConfig:

@@ -17,6 +17,11 @@ Rules (all lengths in samples, times in seconds, datetimes timezone-aware UTC):
   left out of the segments and reported as an :class:`InvalidFile` naming both files;
   the stream goes on with the next file, compared against the last file kept.
 * Files without a start time form single-file segments.
+* Non-finite input (``[processing] nonfinite = "split"``): the runs of a file that are not
+  filled (:attr:`FileEntry.holes`) become :attr:`Segment.holes` in segment coordinates
+  (runs meeting at a file join are merged). A hole does not end the segment: its id, files
+  and offsets stay as they are, and the engine filters the pieces between holes separately
+  (each piece end extended like a segment end) and writes NaN inside the holes.
 
 Segment ids are stable across runs: ``f"{stream}@{start.isoformat()}"`` of the first
 file, or the file's relative path when it has no start time.
@@ -33,6 +38,8 @@ from collections import defaultdict
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable
 
+from twinpass.core.nonfinite import FillSpan, merge_runs
+from twinpass.core.nonfinite import pieces as _pieces
 from twinpass.errors import ArchiveError
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -82,6 +89,27 @@ class FileEntry:
     """Time of the first sample (timezone-aware UTC), or ``None`` when unknown."""
     fingerprint: dict[str, Any] | None = field(default=None, compare=False)
     """Content fingerprint (see ``twinpass.io.fingerprint``), or ``None`` when not taken."""
+    nonfinite_runs: tuple[tuple[int, int], ...] = field(default=(), compare=False)
+    """Spans ``[start, stop)`` (file samples) in which at least one channel is NaN or
+    infinite, as found by the scan of a float file (empty for integer formats)."""
+    nonfinite_fill: tuple[FillSpan, ...] = field(default=(), compare=False)
+    """Per-channel linear fills of those runs (``[processing] nonfinite = "interpolate"``),
+    with the finite neighbour values taken when the file was scanned; empty otherwise."""
+
+    @property
+    def holes(self) -> tuple[tuple[int, int], ...]:
+        """Runs of :attr:`nonfinite_runs` that no fill covers (file samples): the samples
+        left out of filtering (``"split"``)."""
+        return tuple(
+            (a, b) for a, b in self.nonfinite_runs
+            if not any(a <= f.start and f.stop <= b for f in self.nonfinite_fill)
+        )
+
+    @property
+    def filled_spans(self) -> tuple[tuple[int, int], ...]:
+        """Runs of :attr:`nonfinite_runs` replaced by interpolation (file samples)."""
+        holes = set(self.holes)
+        return tuple(r for r in self.nonfinite_runs if r not in holes)
 
     @property
     def frames(self) -> int:
@@ -141,6 +169,13 @@ class Segment:
     break_kind: str | None = None
     """``None`` (first segment of its stream), ``"gap"``, ``"layout"`` (sample rate, channel
     count or sample format changed; worth reporting) or ``"untimed"`` (no start time)."""
+    holes: tuple[tuple[int, int], ...] = ()
+    """Spans ``[start, stop)`` in segment coordinates left out of filtering (unfilled
+    non-finite runs of its files); sorted, merged. The output is NaN there."""
+
+    def pieces(self) -> list[tuple[int, int]]:
+        """Spans ``[start, stop)`` between :attr:`holes`, each filtered as a signal of its own."""
+        return _pieces(self.frames, self.holes)
 
     @property
     def start_time(self) -> _dt.datetime | None:
@@ -224,9 +259,11 @@ def _mismatch(prev: FileEntry, nxt: FileEntry) -> list[str]:
 
 def _make_segment(stream: str, files: list[FileEntry], why: tuple[str | None, str | None]) -> Segment:
     offsets = []
+    holes: list[tuple[int, int]] = []
     total = 0
     for f in files:
         offsets.append(total)
+        holes.extend((total + a, total + b) for a, b in f.holes)
         total += f.frames
     first = files[0]
     return Segment(
@@ -240,6 +277,7 @@ def _make_segment(stream: str, files: list[FileEntry], why: tuple[str | None, st
         sample_format=str(first.info.sample_format),
         break_kind=why[0],
         break_reason=why[1],
+        holes=tuple(merge_runs(holes)),
     )
 
 

@@ -58,9 +58,33 @@ Bad input
 ---------
 Problems of single files never stop discovery: an unreadable or unknown file, a damaged
 header, zero frames, a missing sample rate, an unparsable start time, a path the pattern
-does not match, or a second file with the same (stream, start time) becomes an
-:class:`~twinpass.core.segments.InvalidFile` (path, reason, remedy) and is left out.
-Problems of the configuration itself (unreadable manifest, bad pattern) raise.
+does not match, a second file with the same (stream, start time), a path that cannot name
+an output array (a hidden ``.name`` component, the reserved ``_twinpass`` prefix) or whose
+array name clashes with an earlier file's (``a b.wav`` and ``a_b.wav`` both give ``a_b``;
+``a.wav`` and ``a/b.wav`` would nest one array in the other), and a manifest row naming a
+path outside the root becomes an :class:`~twinpass.core.segments.InvalidFile` (path,
+reason, remedy) and is left out. Problems of the configuration itself (unreadable
+manifest, bad pattern) raise.
+
+Non-finite samples
+------------------
+Files with floating-point samples (float WAV, float NPY/raw/Zarr) are read once from end to
+end, window by window, for NaN and infinite values (integer formats cannot hold them and are
+not read). What happens to a file holding some depends on ``[processing] nonfinite``:
+
+``"fail"`` (default)
+    The file is invalid: the reason names the first run (samples and channel), how many
+    runs there are and the longest; the remedy names the other policies.
+``"split"``
+    The file is valid; :attr:`FileEntry.nonfinite_runs` lists the runs and the segment
+    treats them as holes (see :mod:`twinpass.core.segments`); a warning says so.
+``"interpolate"``
+    Each channel's runs are filled linearly between their finite neighbours
+    (:attr:`FileEntry.nonfinite_fill`, neighbour values read here, so every block fills
+    alike). A run longer than ``[processing] max_fill_samples`` or touching the file's first
+    or last sample makes the file invalid, naming the run.
+
+A file that cannot be read to its end during the scan is invalid too.
 """
 
 from __future__ import annotations
@@ -74,10 +98,13 @@ from pathlib import Path, PurePosixPath
 from typing import Any
 
 from twinpass.config import JobConfig
+from twinpass.core.nonfinite import ChannelRun, FillSpan, describe_run, fill_problem, union_runs
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_file
 from twinpass.io.readers.registry import open_recording, reader_for
+from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
+from twinpass.io.store_util import array_name
 
 __all__ = [
     "Discovery",
@@ -91,6 +118,7 @@ __all__ = [
 UTC = _dt.timezone.utc
 
 _REMEDY_EXCLUDE = "repair or re-export the file, or leave it out with [archive] exclude"
+_DRIVE = re.compile(r"^[A-Za-z]:")
 
 
 # -- globbing ----------------------------------------------------------------
@@ -400,6 +428,10 @@ def _strip_path(message: str, abspath: str) -> str:
     return message
 
 
+_READER_TRUNCATED = 'the reader option truncated="warn"'
+_CONFIG_TRUNCATED = '[archive] truncated = "warn"'
+
+
 def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
     """RecordingInfo and ReaderSpec of one file, or :class:`_Bad`."""
     try:
@@ -416,7 +448,12 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
                 info, spec = rec.info, rec.spec
     except (TwinpassError, OSError) as e:
         text = _strip_path(str(e), abspath)
-        raise _Bad(f"cannot be opened: {text}", _REMEDY_EXCLUDE) from None
+        remedy = _REMEDY_EXCLUDE
+        if _READER_TRUNCATED in text:
+            # the reader names its option; the configuration key is [archive] truncated
+            text = text.replace(_READER_TRUNCATED, _CONFIG_TRUNCATED)
+            remedy = f"set {_CONFIG_TRUNCATED} to filter the whole frames that are present, or " + remedy
+        raise _Bad(f"cannot be opened: {text}", remedy) from None
     if info.frames <= 0:
         raise _Bad("holds no samples (0 frames)", "remove it or leave it out with [archive] exclude")
     if info.sample_rate_hz is None:
@@ -427,6 +464,72 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
     if not info.sample_rate_hz > 0:
         raise _Bad(f"sample rate {info.sample_rate_hz!r} Hz is not positive", _REMEDY_EXCLUDE)
     return info, spec
+
+
+def _runs_summary(runs: list[ChannelRun]) -> str:
+    union = union_runs(runs)
+    longest = max(b - a for _c, a, b in runs)
+    first = min(runs, key=lambda r: (r[1], r[0]))
+    if len(runs) == 1:
+        return f"NaN/Inf at {describe_run(first)}"
+    return (
+        f"NaN/Inf at {describe_run(first)} and in {len(runs) - 1} more run(s) "
+        f"({len(union)} span(s) of samples, {sum(b - a for a, b in union)} samples in all; "
+        f"the longest run of one channel is {longest} samples)"
+    )
+
+
+def _scan_nonfinite(
+    cfg: JobConfig, info: Any, spec: Any
+) -> tuple[tuple[tuple[int, int], ...], tuple[FillSpan, ...], str | None]:
+    """Non-finite runs of a float file under ``[processing] nonfinite``, or :class:`_Bad`.
+
+    Returns the runs (union over channels), the fills (``"interpolate"``) and a warning.
+    """
+    if not holds_floats(info):
+        return (), (), None
+    policy = cfg.processing.nonfinite
+    max_fill = cfg.processing.max_fill_samples
+    try:
+        with spec.open() as rec:
+            runs = scan_channel_runs(rec)
+            if not runs:
+                return (), (), None
+            union = tuple(union_runs(runs))
+            summary = _runs_summary(runs)
+            longest = max(b - a for _c, a, b in runs)
+            if policy == "fail":
+                raise _Bad(
+                    summary,
+                    'set [processing] nonfinite = "split" (the finite pieces are filtered separately and '
+                    'the output is NaN there) or "interpolate" with max_fill_samples >= '
+                    f"{longest} (linear fill), or repair the file",
+                )
+            if policy == "split":
+                return union, (), (
+                    f"{summary}: the samples on either side are filtered as separate pieces; "
+                    "the output is NaN at those samples"
+                )
+            refused = [(r, why) for r in runs if (why := fill_problem(r, info.frames, max_fill)) is not None]
+            if refused:
+                refused.sort(key=lambda rw: (rw[0][1], rw[0][0]))
+                (c, a, b), why = refused[0]
+                more = f" (and {len(refused) - 1} more run(s) that cannot be filled)" if len(refused) > 1 else ""
+                at_end = a <= 0 or b >= info.frames
+                remedy = (
+                    'set [processing] nonfinite = "split", or trim or repair the file'
+                    if at_end
+                    else f"raise [processing] max_fill_samples to {max(r[2] - r[1] for r, _ in refused)} or "
+                    'more, set nonfinite = "split", or repair the file'
+                )
+                raise _Bad(why + more, remedy)
+            fills = fill_spans_for(rec, runs)
+    except (TwinpassError, OSError) as e:
+        raise _Bad(
+            f"cannot be read to the end while looking for NaN/Inf samples: {_strip_path(str(e), info.path)}",
+            _REMEDY_EXCLUDE,
+        ) from None
+    return union, fills, f"{summary}: filled by linear interpolation (filled_spans in the output attributes)"
 
 
 def _identify(
@@ -506,6 +609,51 @@ def _split_duplicates(entries: list[FileEntry]) -> tuple[list[FileEntry], list[I
     return keep, dups
 
 
+_REMEDY_RENAME = "rename the file (or its folder), or leave it out with [archive] exclude"
+
+
+def _output_name(rel: str) -> str:
+    """The output array name of ``rel``, or :class:`_Bad` when none can be made safely."""
+    try:
+        return array_name(rel)
+    except TwinpassError as e:
+        raise _Bad(f"cannot name its output: {e}", _REMEDY_RENAME) from None
+
+
+def _split_name_clashes(entries: list[FileEntry]) -> tuple[list[FileEntry], list[InvalidFile]]:
+    """Keep the first file (by path) of each output array name; report the others.
+
+    Two files clash when they map to the same array name (characters outside
+    ``[A-Za-z0-9._-/]`` become ``_`` and the suffix is dropped) or when one name is a folder
+    of the other (``a.wav`` and ``a/b.wav``): the second would overwrite or break the first.
+    """
+    taken: dict[str, str] = {}
+    keep: list[FileEntry] = []
+    bad: list[InvalidFile] = []
+    for e in sorted(entries, key=lambda e: e.relpath):
+        name = array_name(e.relpath)
+        parts = name.split("/")
+        parents = ["/".join(parts[:i]) for i in range(1, len(parts))]
+        other = taken.get(name) or next((taken[p] for p in parents if p in taken), None)
+        if other is None:
+            prefix = name + "/"
+            other = next((src for n, src in taken.items() if n.startswith(prefix)), None)
+        if other is not None:
+            bad.append(
+                InvalidFile(
+                    e.relpath,
+                    f"its output array name {name!r} clashes with that of {other} ({array_name(other)!r}): "
+                    "suffixes are dropped and characters outside A-Z a-z 0-9 . _ - become _",
+                    _REMEDY_RENAME,
+                )
+            )
+            continue
+        taken[name] = e.relpath
+        keep.append(e)
+    order = {e.relpath: i for i, e in enumerate(entries)}
+    return sorted(keep, key=lambda e: order[e.relpath]), bad
+
+
 def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
     """Find the archive's input files, open each read-only and assign stream and start time.
 
@@ -513,7 +661,8 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
     ----------
     cfg : JobConfig
         Uses ``cfg.archive_root``, ``[archive]`` (include, exclude, name_pattern, manifest,
-        sample_rate_hz, truncated, fingerprint) and the output store location.
+        sample_rate_hz, truncated, fingerprint), ``[processing]`` nonfinite and
+        max_fill_samples, and the output store location.
     fingerprints : bool
         Fingerprint every valid file (mode ``[archive] fingerprint``); ``False`` leaves
         :attr:`FileEntry.fingerprint` as ``None``.
@@ -546,6 +695,7 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
             continue
         abspath = str(root / rel)
         try:
+            _output_name(rel)
             info, spec = _open_info(cfg, abspath)
             stream, start = _identify(cfg, rel, info, manifest, pattern)
             fp = None
@@ -554,17 +704,34 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
                     fp = fingerprint_file(abspath, cfg.archive.fingerprint)
                 except InputError as e:
                     raise _Bad(f"cannot be fingerprinted: {_strip_path(str(e), abspath)}", _REMEDY_EXCLUDE) from None
+            runs, fills, note = _scan_nonfinite(cfg, info, spec)
         except _Bad as bad:
             invalid.append(InvalidFile(rel, bad.reason, bad.remedy))
             continue
         warnings.extend(f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings)
-        entries.append(FileEntry(rel, spec, info, stream, start, fp))
+        if note:
+            warnings.append(f"{rel}: {note}")
+        entries.append(FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=runs, nonfinite_fill=fills))
     valid, dups = _split_duplicates(entries)
     invalid.extend(dups)
+    valid, clashes = _split_name_clashes(valid)
+    invalid.extend(clashes)
     if manifest is not None:
         listed = set(rels) | {b.path for b in invalid}
         for rel, row in sorted(manifest.items()):
-            if rel not in listed and not (root / rel).exists():
+            if rel in listed:
+                continue
+            parts = PurePosixPath(rel).parts
+            if PurePosixPath(rel).is_absolute() or ".." in parts or _DRIVE.match(rel):
+                invalid.append(
+                    InvalidFile(
+                        rel,
+                        f"the manifest {cfg.manifest_path} (line {row.line}) names a path outside the archive "
+                        f"root {root}; inputs are read only from under the root",
+                        "give paths relative to [archive] root, without '..', or move the file under the root",
+                    )
+                )
+            elif not (root / rel).exists():
                 invalid.append(
                     InvalidFile(
                         rel,

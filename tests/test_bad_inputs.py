@@ -1,0 +1,521 @@
+"""A catalogue of bad inputs: each test builds the bad file and checks what a run makes of it.
+
+Every bad file must be reported by discovery (and so by ``twinpass plan`` and a run) with its
+path, the place of the problem (byte offset, header field, sample, other file) and what to do,
+while the rest of the archive is processed.
+
+References:
+* WAV byte layouts: Microsoft "Multiple channel audio data and WAVE files" (RIFF size at
+  byte 4 = file size - 8; ``fmt `` format tags 0x0001 PCM, 0x0002 Microsoft ADPCM, 0x0003 IEEE
+  float, 0x0007 mu-law); good WAV files are written with scipy.io.wavfile, bad ones by hand
+  (tests/wavtools.py) starting from scipy's bytes.
+* NPY layout: numpy.lib.format (written with numpy.save).
+* Integer full scale: common practice, integer PCM / 2**(bits - 1) (8-bit unsigned offset by
+  128); the stored integers are read back with scipy.io.wavfile and Python's wave module.
+* Whole-signal two-pass reference: scipy.signal.sosfiltfilt.
+* Everything about which file is left out and what the message says is a twinpass rule.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import struct
+import wave
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import pytest
+import scipy.io.wavfile as wavfile
+from scipy import signal
+
+from twinpass import cli
+from twinpass.config import JobConfig, load_config, parse_config
+from twinpass.core.checks import FIGURES
+from twinpass.errors import ConfigError
+from twinpass.io.archive import discover
+from twinpass.io.readers import open_recording
+from twinpass.io.store import OutputStore
+from twinpass.job import RunResult, run_job
+from conftest import config_text, run_cli
+from wavtools import ADPCM, EXTENSIBLE, MULAW, PCM, chunk, data_offset, fmt_chunk, pack_int24, riff
+
+UTC = dt.timezone.utc
+T0 = dt.datetime(2026, 3, 1, tzinfo=UTC)
+RATE = 100
+PATTERN = "{stream}/{stream}_{start:%Y%m%dT%H%M%S}"
+RESPONSE: dict[str, Any] = {
+    "kind": "lowpass",
+    "passband_hz": [10.0],
+    "stopband_hz": [20.0],
+    "passband_ripple_db": 1.0,
+    "stopband_attenuation_db": 40.0,
+}
+
+
+# -- helpers shared with test_safety.py and test_nonfinite.py ---------------------------
+
+
+def write_config(folder: Path, *, name: str = "job.toml", **tables: dict[str, Any]) -> Path:
+    """Write a job configuration into ``folder``; tables given override the defaults.
+
+    Defaults: the low-pass RESPONSE, archive root ``archive`` (all built-in suffixes), store
+    ``out/filtered.zarr``, one thread and no retries.
+    """
+    body: dict[str, dict[str, Any]] = {
+        "response": dict(RESPONSE),
+        "archive": {"root": "archive"},
+        "output": {"store": "out/filtered.zarr"},
+        "engine": {"scheduler": "threads", "workers": 1, "retries": 0, "retry_backoff_seconds": 0.0},
+    }
+    for table, values in tables.items():
+        body.setdefault(table, {}).update(values)
+    path = folder / name
+    path.write_text(config_text(body))
+    return path
+
+
+def load(folder: Path, **tables: dict[str, Any]) -> JobConfig:
+    return load_config(write_config(folder, **tables))
+
+
+def stem(stream: str, start: dt.datetime = T0) -> str:
+    """Relative path without suffix that PATTERN names ``stream`` starting at ``start``."""
+    return f"{stream}/{stream}_{start:%Y%m%dT%H%M%S}"
+
+
+def noise(frames: int, channels: int = 1, seed: int = 0, scale: float = 0.3) -> np.ndarray:
+    return np.random.default_rng(seed).standard_normal((frames, channels)) * scale
+
+
+def put(root: Path, rel: str, blob: bytes) -> Path:
+    p = root / rel
+    p.parent.mkdir(parents=True, exist_ok=True)
+    p.write_bytes(blob)
+    return p
+
+
+def write_wav(root: Path, rel: str, data: np.ndarray, rate: int = RATE) -> Path:
+    """A WAV file written by scipy.io.wavfile (int16/int32 PCM or IEEE float by dtype)."""
+    p = root / rel
+    p.parent.mkdir(parents=True, exist_ok=True)
+    wavfile.write(p, rate, data)
+    return p
+
+
+def write_npy(root: Path, rel: str, data: np.ndarray) -> Path:
+    """An NPY file written by numpy.save."""
+    p = root / rel
+    p.parent.mkdir(parents=True, exist_ok=True)
+    np.save(p, data)
+    return p
+
+
+def pcm16(frames: int, channels: int = 1, seed: int = 0) -> np.ndarray:
+    return (noise(frames, channels, seed) * 8000).astype(np.int16)
+
+
+def run(cfg: JobConfig, **kw: Any) -> RunResult:
+    """One run without Prefect on one local thread."""
+    return run_job(cfg, scheduler="threads", workers=1, **kw)
+
+
+def invalid_by_path(cfg: JobConfig) -> dict[str, Any]:
+    return {b.path: b for b in discover(cfg).invalid}
+
+
+# -- the catalogue ----------------------------------------------------------------------
+# Each builder writes one bad file (or a pair) under ``root`` and returns
+# {relpath: (text expected in the reason, text expected in the remedy)}.
+
+Expect = dict[str, tuple[list[str], list[str]]]
+REMEDY_EXCLUDE = "[archive] exclude"
+
+
+def bad_truncated_mid_frame(root: Path) -> Expect:
+    rel = stem("trunc") + ".wav"
+    p = write_wav(root, rel, pcm16(1000, 2))
+    blob = p.read_bytes()
+    p.write_bytes(blob[:-3])  # the last frame loses 3 of its 4 bytes
+    at = data_offset(blob) - 8
+    return {rel: ([f"data chunk at byte {at}", "claims 4000 bytes = 1000 frames", "3997 bytes",
+                   "999 whole frames"], ['[archive] truncated = "warn"', REMEDY_EXCLUDE])}
+
+
+def bad_header_claims_more(root: Path) -> Expect:
+    rel = stem("claims") + ".wav"
+    p = write_wav(root, rel, pcm16(1000))
+    blob = bytearray(p.read_bytes())
+    at = data_offset(bytes(blob)) - 8
+    blob[at + 4: at + 8] = struct.pack("<I", 4000)  # 2000 frames claimed, 1000 present
+    blob[4:8] = struct.pack("<I", len(blob) - 8 + 2000)
+    p.write_bytes(bytes(blob))
+    return {rel: ([f"data chunk at byte {at}", "claims 4000 bytes = 2000 frames", "1000 whole frames"],
+                  ['[archive] truncated = "warn"'])}
+
+
+def bad_npy_shape_claims_more(root: Path) -> Expect:
+    rel = stem("npyshort") + ".npy"
+    p = write_npy(root, rel, noise(1000, 2).astype(np.float32))
+    p.write_bytes(p.read_bytes()[:-800])  # 100 frames of 8 bytes gone
+    return {rel: (["NPY header claims 1000 frames"], ['[archive] truncated = "warn"'])}
+
+
+def bad_riff_size_too_small(root: Path) -> Expect:
+    rel = stem("riffsmall") + ".wav"
+    p = write_wav(root, rel, pcm16(500))
+    blob = bytearray(p.read_bytes())
+    blob[4:8] = struct.pack("<I", 28)  # RIFF chunk ends right after the fmt chunk
+    p.write_bytes(bytes(blob))
+    return {rel: (["no 'data' chunk", "RIFF size at byte 4 (28)", "file size minus 8"], [REMEDY_EXCLUDE])}
+
+
+def bad_mulaw(root: Path) -> Expect:
+    rel = stem("mulaw") + ".wav"
+    put(root, rel, riff([fmt_chunk(MULAW, 1, 8000, 8), chunk(b"data", bytes(range(200)))]))
+    return {rel: (["format tag 0x0007 (mu-law)", "fmt chunk at byte 12", "convert the file to PCM or IEEE float"],
+                  [REMEDY_EXCLUDE])}
+
+
+def bad_adpcm(root: Path) -> Expect:
+    rel = stem("adpcm") + ".wav"
+    put(root, rel, riff([fmt_chunk(ADPCM, 1, 8000, 4, block_align=256), chunk(b"data", bytes(512))]))
+    return {rel: (["format tag 0x0002 (Microsoft ADPCM)", "convert the file to PCM or IEEE float"], [REMEDY_EXCLUDE])}
+
+
+def bad_extensible_mulaw(root: Path) -> Expect:
+    rel = stem("extmulaw") + ".wav"
+    put(root, rel, riff([fmt_chunk(EXTENSIBLE, 1, 8000, 8, sub_tag=MULAW), chunk(b"data", bytes(100))]))
+    return {rel: (["sub-format 0x0007 (mu-law)", "fmt chunk at byte 12", "is not supported"], [REMEDY_EXCLUDE])}
+
+
+def bad_zero_byte_wav(root: Path) -> Expect:
+    rel = stem("emptywav") + ".wav"
+    put(root, rel, b"")
+    return {rel: (["0 bytes"], [REMEDY_EXCLUDE])}
+
+
+def bad_zero_byte_npy(root: Path) -> Expect:
+    rel = stem("emptynpy") + ".npy"
+    put(root, rel, b"")
+    return {rel: (["not an NPY file"], [REMEDY_EXCLUDE])}
+
+
+def bad_empty_data_chunk(root: Path) -> Expect:
+    rel = stem("nodata") + ".wav"
+    put(root, rel, riff([fmt_chunk(PCM, 1, RATE, 16), chunk(b"data", b"")]))
+    return {rel: (["holds no whole frame", "the recording is empty"], [REMEDY_EXCLUDE])}
+
+
+def bad_zero_byte_raw(root: Path) -> Expect:
+    rel = stem("emptyraw") + ".bin"
+    put(root, rel, b"")
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
+    return {rel: (["holds no frames"], [REMEDY_EXCLUDE])}
+
+
+def bad_raw_without_sidecar(root: Path) -> Expect:
+    rel = stem("nosidecar") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    return {rel: (["needs a sidecar", f"{rel}.toml", 'dtype = "int16"'], [REMEDY_EXCLUDE])}
+
+
+def bad_sidecar_frames_contradict_size(root: Path) -> Expect:
+    rel = stem("sidecarframes") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\nframes = 500\n')
+    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes", "fix frames"], [REMEDY_EXCLUDE])}
+
+
+def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
+    rel = stem("sidecarsize") + ".bin"
+    put(root, rel, bytes(801))  # 801 bytes cannot be whole 2-byte frames
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
+    return {rel: (["801 data bytes", "not a whole number of 2-byte frames", "400 frames + 1 bytes"],
+                  [REMEDY_EXCLUDE])}
+
+
+def bad_nan_run_fail_policy(root: Path) -> Expect:
+    rel = stem("nanfail") + ".wav"
+    x = noise(1000, 2).astype(np.float32)
+    x[300:350, 1] = np.nan
+    x[600, 0] = np.inf
+    write_wav(root, rel, x)
+    return {rel: (["NaN/Inf at samples 300-349 (50 samples) of channel 1", "and in 1 more run(s)",
+                   "the longest run of one channel is 50 samples"],
+                  ['nonfinite = "split"', '"interpolate" with max_fill_samples >= 50', "repair the file"])}
+
+
+def bad_overlap(root: Path) -> Expect:
+    first, second = stem("ovl") + ".wav", stem("ovl", T0 + dt.timedelta(seconds=5)) + ".wav"
+    write_wav(root, first, pcm16(1000))  # 10 s at 100 Hz
+    write_wav(root, second, pcm16(1000, seed=1))  # starts 5 s into the first
+    return {second: ([f"overlaps {first}", "by 500.0 samples"], ["correct the start time", REMEDY_EXCLUDE])}
+
+
+def bad_hidden_output_name(root: Path) -> Expect:
+    rel = "hid/.hid_20260301T000000.wav"
+    write_wav(root, rel, pcm16(300))
+    return {rel: (["cannot name its output", "starts with '.'"], ["rename the file"])}
+
+
+def bad_output_name_clash(root: Path) -> Expect:
+    keep, clash = stem("cl ash") + ".wav", stem("cl_ash") + ".wav"  # different streams, one output name
+    write_wav(root, keep, pcm16(300))
+    write_wav(root, clash, pcm16(300, seed=3))
+    return {clash: ([f"output array name {stem('cl_ash')!r} clashes with that of {keep}"],
+                    ["rename the file"])}
+
+
+CATALOGUE: list[Callable[[Path], Expect]] = [
+    bad_truncated_mid_frame,
+    bad_header_claims_more,
+    bad_npy_shape_claims_more,
+    bad_riff_size_too_small,
+    bad_mulaw,
+    bad_adpcm,
+    bad_extensible_mulaw,
+    bad_zero_byte_wav,
+    bad_zero_byte_npy,
+    bad_empty_data_chunk,
+    bad_zero_byte_raw,
+    bad_raw_without_sidecar,
+    bad_sidecar_frames_contradict_size,
+    bad_sidecar_dtype_contradicts_size,
+    bad_nan_run_fail_policy,
+    bad_overlap,
+    bad_hidden_output_name,
+    bad_output_name_clash,
+]
+
+
+def _check_reported(invalid: dict[str, Any], expect: Expect) -> None:
+    for rel, (in_reason, in_remedy) in expect.items():
+        assert rel in invalid, f"{rel} not reported; reported: {sorted(invalid)}"
+        bad = invalid[rel]
+        reason, remedy = (bad["reason"], bad["remedy"]) if isinstance(bad, dict) else (bad.reason, bad.remedy)
+        for text in in_reason:
+            assert text in reason, f"{rel}: {text!r} not in reason {reason!r}"
+        for text in in_remedy:
+            assert text in remedy, f"{rel}: {text!r} not in remedy {remedy!r}"
+
+
+def _good_files(root: Path) -> list[str]:
+    """Two contiguous files of one stream and a float NPY-free stream: all must complete."""
+    a, b = stem("good") + ".wav", stem("good", T0 + dt.timedelta(seconds=20)) + ".wav"
+    write_wav(root, a, pcm16(2000, 2, seed=10))
+    write_wav(root, b, pcm16(2000, 2, seed=11))
+    return [a, b]
+
+
+@pytest.mark.parametrize("build", CATALOGUE, ids=lambda f: f.__name__)
+def test_discovery_reports_bad_file_with_place_and_remedy(tmp_path, build):
+    root = tmp_path / "archive"
+    expect = build(root)
+    good = _good_files(root)
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN})
+    segments, invalid = discover(cfg).segments()
+    _check_reported({b.path: b for b in invalid}, expect)
+    valid = {f for s in segments for f in s.relpaths}
+    assert set(good) <= valid
+    assert not set(expect) & valid
+
+
+def test_whole_catalogue_in_one_run_processes_the_rest(tmp_path, capsys):
+    """plan --json and a run: every bad file reported once; the good files complete."""
+    root = tmp_path / "archive"
+    expect: Expect = {}
+    for build in CATALOGUE:
+        expect.update(build(root))
+    good = _good_files(root)
+    kept = [stem("ovl") + ".wav", stem("cl ash") + ".wav"]  # first of a clashing pair
+    config = write_config(tmp_path, archive={"name_pattern": PATTERN})
+
+    assert cli.main(["plan", str(config), "--json"]) == 0
+    planned = json.loads(capsys.readouterr().out)
+    rows = {f["path"]: f for f in planned["files"]}
+    _check_reported({p: r for p, r in rows.items() if r["status"] == "invalid"}, expect)
+    assert {rows[p]["status"] for p in good + kept} == {"new"}
+    assert planned["totals"]["files"]["invalid"] == len(expect)
+
+    res = run(load_config(config))
+    _check_reported({b.relpath: b for b in res.invalid}, expect)
+    done = {o.relpath: o.status for o in res.outcomes}
+    assert done == {p: "complete" for p in good + kept}
+    store = OutputStore.open(load_config(config).store_location, mode="r")
+    assert set(store.file_records()) == set(good + kept)
+
+
+def test_truncated_file_is_read_to_its_last_whole_frame_when_asked(tmp_path):
+    root = tmp_path / "archive"
+    (rel,) = bad_truncated_mid_frame(root)
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN, "truncated": "warn"})
+    disc = discover(cfg)
+    assert [f.relpath for f in disc.files] == [rel] and disc.files[0].frames == 999
+    assert any(w.startswith(rel + ": ") and "999" in w for w in disc.warnings)
+
+
+def test_riff_size_larger_than_the_file_is_a_warning_only(tmp_path):
+    root = tmp_path / "archive"
+    rel = stem("rifflarge") + ".wav"
+    p = write_wav(root, rel, pcm16(500))
+    blob = bytearray(p.read_bytes())
+    blob[4:8] = struct.pack("<I", len(blob) + 1000)
+    p.write_bytes(bytes(blob))
+    disc = discover(load(tmp_path, archive={"name_pattern": PATTERN}))
+    assert [f.relpath for f in disc.files] == [rel] and disc.files[0].frames == 500
+    assert any(w.startswith(rel + ": ") and "RIFF size at byte 4" in w for w in disc.warnings)
+
+
+def test_rate_change_within_a_stream_starts_a_segment_and_is_noted(tmp_path, capsys):
+    root = tmp_path / "archive"
+    a, b = stem("mixed") + ".wav", stem("mixed", T0 + dt.timedelta(seconds=10)) + ".wav"
+    write_wav(root, a, pcm16(1000), rate=100)  # 10 s
+    write_wav(root, b, pcm16(2000, seed=2), rate=200)  # follows without a gap, at 200 Hz
+    config = write_config(tmp_path, archive={"name_pattern": PATTERN})
+    assert cli.main(["plan", str(config), "--json"]) == 0
+    planned = json.loads(capsys.readouterr().out)
+    (note,) = planned["notes"]
+    for text in ("sample rate 100 Hz -> 200 Hz", a, b, "different streams"):
+        assert text in note
+    rows = {f["path"]: f for f in planned["files"]}
+    assert rows[a]["segment"] != rows[b]["segment"] and {rows[a]["status"], rows[b]["status"]} == {"new"}
+
+
+# -- integer full scale ----------------------------------------------------------------
+
+
+def _extremes(dtype: type, frames: int = 1200) -> np.ndarray:
+    """Runs of the most negative and most positive code, with a full-scale square wave."""
+    info = np.iinfo(dtype)
+    x = np.empty((frames, 2), dtype=dtype)
+    x[:, 0] = np.where((np.arange(frames) // 37) % 2, info.max, info.min)
+    x[:, 1] = info.max
+    x[frames // 2 :, 1] = info.min
+    return x
+
+
+def _wav24(root: Path, rel: str, codes: np.ndarray) -> Path:
+    """A 24-bit PCM WAV (2 channels) built from integer codes."""
+    data = pack_int24(codes.reshape(-1))
+    return put(root, rel, riff([fmt_chunk(PCM, 2, RATE, 24), chunk(b"data", data)]))
+
+
+def test_integer_extremes_read_exactly(tmp_path):
+    root = tmp_path / "archive"
+    cases = {}
+    for dtype in (np.int16, np.int32):
+        rel = stem(f"full{np.dtype(dtype).itemsize * 8}") + ".wav"
+        write_wav(root, rel, _extremes(dtype))
+        cases[rel] = np.dtype(dtype).itemsize * 8
+    codes24 = np.array([[-(2**23), 2**23 - 1], [2**23 - 1, -(2**23)]] * 600, dtype=np.int64)
+    rel24 = stem("full24") + ".wav"
+    _wav24(root, rel24, codes24)
+    for rel, bits in cases.items():
+        _rate, ref = wavfile.read(root / rel)  # scipy.io.wavfile as the reference decoder
+        with open_recording(root / rel) as rec:
+            x = rec.read(0, rec.info.frames)
+        np.testing.assert_array_equal(x, ref / 2.0 ** (bits - 1))
+        assert x.min() == -1.0 and x.max() == (2 ** (bits - 1) - 1) / 2 ** (bits - 1)
+    with wave.open(str(root / rel24), "rb") as w:  # Python's wave module: raw little-endian frames
+        raw = w.readframes(w.getnframes())
+    ref24 = np.array([int.from_bytes(raw[i: i + 3], "little", signed=True) for i in range(0, len(raw), 3)])
+    with open_recording(root / rel24) as rec:
+        x24 = rec.read(0, rec.info.frames)
+    np.testing.assert_array_equal(x24.reshape(-1), ref24 / 2.0**23)
+    assert x24.min() == -1.0 and x24.max() == (2**23 - 1) / 2**23
+
+
+def test_integer_extremes_filter_to_finite_output_without_clipping(tmp_path):
+    root = tmp_path / "archive"
+    rels = {}
+    for dtype in (np.int16, np.int32):
+        rel = f"full{np.dtype(dtype).itemsize * 8}.wav"
+        write_wav(root, rel, _extremes(dtype))
+        rels[rel] = np.dtype(dtype).itemsize * 8
+    _wav24(root, "full24.wav", np.array([[-(2**23), 2**23 - 1]] * 600 + [[2**23 - 1, -(2**23)]] * 600))
+    rels["full24.wav"] = 24
+    cfg = load(tmp_path, output={"dtype": "float64"})
+    res = run(cfg)
+    assert {o.relpath: o.status for o in res.outcomes} == {r: "complete" for r in rels}
+    store = OutputStore.open(cfg.store_location, mode="r")
+    design = res.designs[float(RATE)]
+    clipped = list(FIGURES).index("clipped")
+    for rel in rels:
+        name = rel[:-4]
+        with open_recording(root / rel) as rec:
+            x = rec.read(0, rec.info.frames)
+        y = store.read(name)
+        assert y.dtype == np.float64 and np.all(np.isfinite(y))
+        # whole-signal reference: scipy.signal.sosfiltfilt with the run's end extension
+        pad = min(design.effective_length, x.shape[0] - 1)
+        ref = signal.sosfiltfilt(design.sos, x, axis=0, padtype="odd", padlen=pad)
+        assert np.max(np.abs(y - ref)) <= 1e-9 * np.max(np.abs(x))
+        assert np.max(np.abs(y)) > 1.0  # overshoot beyond full scale is kept, not clipped
+        table = store.read_block_table(name)
+        assert np.all(table.figures[..., clipped] == 0)
+        assert set(table.counts()) >= {"pass"} and table.counts()["warn"] == 0
+
+
+# -- configuration errors --------------------------------------------------------------
+
+_BASE = '[response]\nkind = "lowpass"\npassband_hz = [10.0]\nstopband_hz = [20.0]\n' \
+        "passband_ripple_db = 1.0\nstopband_attenuation_db = 40.0\n"
+
+
+@pytest.mark.parametrize(
+    "extra, expected",
+    [
+        ("[processing]\nnonfinit = \"split\"\n", ["unknown key(s) nonfinit in [processing]", "nonfinite"]),
+        ("[outputs]\nstore = \"x.zarr\"\n", ["unknown table(s) [outputs]", "[output]"]),
+        ("[processing]\nmax_fill_samples = \"ten\"\n", ["[processing] max_fill_samples", "whole number", "'ten'"]),
+        ("[processing]\nmax_fill_samples = 2.5\n", ["[processing] max_fill_samples", "whole number"]),
+        ("[processing]\nnonfinite = \"zero\"\n", ["[processing] nonfinite = 'zero'", "fail, split, interpolate"]),
+        ("[archive]\ninclude = \"*.wav\"\n", ["[archive] include", "expected a list"]),
+        ("[engine]\nworkers = 0\n", ["[engine] workers must be >= 1"]),
+        ("[processing]\ntolerance = 0.5\n", ["[processing] tolerance", "(0, 0.1)"]),
+        ("[processing\n", ["not valid TOML"]),
+    ],
+)
+def test_config_errors_name_table_and_key(extra, expected):
+    with pytest.raises(ConfigError) as e:
+        parse_config(_BASE + extra, source="job.toml")
+    msg = str(e.value)
+    assert msg.startswith("job.toml: ") and "\n" not in msg
+    for text in expected:
+        assert text in msg
+
+
+def test_config_error_for_inconsistent_response():
+    text = _BASE.replace("passband_hz = [10.0]", "passband_hz = [30.0]")  # passband above the stopband
+    with pytest.raises(ConfigError, match="passband"):
+        parse_config(text, source="job.toml")
+
+
+def test_config_error_for_negative_fill_length():
+    with pytest.raises(ConfigError, match="max_fill_samples"):
+        parse_config(_BASE + "[processing]\nmax_fill_samples = -3\n", source="job.toml")
+
+
+def test_cli_config_error_is_one_line_and_exit_status_2(tmp_path):
+    config = tmp_path / "job.toml"
+    config.write_text(_BASE + "[archive]\nroot = \"archive\"\nglob = \"*.wav\"\n")
+    proc = run_cli(["plan", str(config)], check=False)
+    assert proc.returncode == 2
+    lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1, proc.stderr
+    assert lines[0].startswith(f"twinpass: error: {config}: unknown key(s) glob in [archive]")
+    assert proc.stdout == ""
+
+
+@pytest.mark.parametrize("command", ["plan", "run"])
+def test_cli_missing_config_and_bad_value_exit_2(tmp_path, capsys, command):
+    args = [command, str(tmp_path / "nope.toml")] + (["--no-flow"] if command == "run" else [])
+    assert cli.main(args) == 2
+    assert capsys.readouterr().err.strip() == f"twinpass: error: {tmp_path / 'nope.toml'}: configuration file not found"
+    config = write_config(tmp_path, output={"dtype": "float16"})
+    args[1] = str(config)
+    assert cli.main(args) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "[output] dtype = 'float16' is not one of: float32, float64" in err
