@@ -6,6 +6,9 @@ report. Unchanged files are not run; one ``skip-unchanged`` task run, in state
 "Skipped", lists them. A failed segment never stops the others; the flow ends Failed
 naming the failed files, Completed otherwise. Every future is resolved.
 
+:func:`build_deployment` / :func:`serve_deployment` turn the flow into a scheduled
+deployment (cron expression in a given time zone) served by this process.
+
 This is the only module (with :mod:`twinpass.prefect_blocks`) that imports prefect.
 """
 
@@ -14,12 +17,13 @@ from __future__ import annotations
 from . import _prefect_env  # noqa: F401  (must precede the prefect import)
 
 import contextlib
+import dataclasses
 import re
 import threading
 import time
 import uuid
 from pathlib import Path
-from typing import Any, Iterator
+from typing import TYPE_CHECKING, Any, Iterator
 
 from prefect import flow, get_run_logger, task
 from prefect.artifacts import (
@@ -34,10 +38,14 @@ from prefect.states import Completed, Failed
 
 from .config import JobConfig, load_config
 from .core.design import format_report
-from .engine import ERROR, FileOutcome, SegmentWork, dask_client, run_segment
-from .errors import BlockFailedError
+from .core.plan import fingerprint_changed
+from .engine import ERROR, FileOutcome, SegmentWork, dask_client, retry_delays, run_segment
+from .errors import BlockFailedError, ConfigError
 from .io.store import OutputStore
 from .job import Prepared, RunResult, begin_run, finish_run, now_iso, prepare
+
+if TYPE_CHECKING:
+    from prefect.deployments.runner import RunnerDeployment
 
 FLOW_NAME = "twinpass-archive-run"
 ARTIFACT_DESIGN = "twinpass-design"
@@ -48,6 +56,9 @@ ARTIFACT_REPORT = "twinpass-report"
 # of the flow's process; a client is not passed as a task parameter).
 _CLIENTS: dict[str, Any] = {}
 _CLIENTS_LOCK = threading.Lock()
+# (client key, segment id) of segments whose files a first attempt has prepared in the
+# store (their block tables are current): a retry resumes them instead of starting over.
+_PREPARED: set[tuple[str, str]] = set()
 
 TERMINAL_PROGRESS: Any = None
 """Optional ``callable(segment_id, done, total, result)`` the CLI sets for a terminal progress bar."""
@@ -64,6 +75,13 @@ def _shared_client(scheduler: str, workers: int) -> Iterator[str]:
         finally:
             with _CLIENTS_LOCK:
                 _CLIENTS.pop(key, None)
+                _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
+
+
+def _as_resume(seg: SegmentWork) -> SegmentWork:
+    """The segment with every file that has work set to finish its not-done blocks only."""
+    files = tuple(f if f.action == "skip" else dataclasses.replace(f, action="resume") for f in seg.files)
+    return dataclasses.replace(seg, files=files)
 
 
 def _slug(text: str) -> str:
@@ -90,11 +108,19 @@ def design_task(prep: Prepared) -> dict[str, Any]:
 def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_key: str) -> list[FileOutcome]:
     """Run every block a segment needs on the shared Dask client; fail naming failed files.
 
-    A retry reruns only the blocks that are not yet done (the block table persists).
+    A retry reruns only the blocks that are not yet done: once a first attempt has
+    prepared the segment's files (and invalidated the blocks a neighbour's change reaches),
+    their block tables are current, so a retry resumes every file instead of resetting it.
     """
     logger = get_run_logger()
     cfg = prep.cfg
     client = _CLIENTS[client_key]
+    mark = (client_key, seg.segment_id)
+    with _CLIENTS_LOCK:
+        retry = mark in _PREPARED
+    if retry:
+        seg = _as_resume(seg)
+        logger.info("segment %s: retry; running only the blocks not done yet", seg.segment_id)
     design = prep.designs[seg.sample_rate_hz]
     todo = [f.relpath for f in seg.files if f.action != "skip"]
     logger.info("segment %s: %d file(s) to filter: %s", seg.segment_id, len(todo), ", ".join(todo))
@@ -102,6 +128,10 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     last = [0.0]
 
     def on_block(done: int, total: int, res: Any) -> None:
+        # Blocks are submitted only after every file of the segment is prepared.
+        if done == 1:
+            with _CLIENTS_LOCK:
+                _PREPARED.add(mark)
         if TERMINAL_PROGRESS is not None:
             TERMINAL_PROGRESS(seg.segment_id, done, total, res)
         if res.status == ERROR:
@@ -167,12 +197,15 @@ def report_task(cfg: JobConfig) -> str:
 
 
 def _load(config_path: str | None, config_block: str | None) -> JobConfig:
+    if config_path and config_block:
+        raise ConfigError(f"give config_path ({config_path}) or config_block ({config_block}), not both")
     if config_block:
         from .prefect_blocks import TwinpassJob
 
         return TwinpassJob.load(config_block).to_job_config()
     if not config_path:
-        raise ValueError("give config_path or config_block")
+        raise ConfigError("no configuration: give config_path (a twinpass TOML file) or config_block "
+                          "(the name of a saved TwinpassJob block)")
     return load_config(config_path)
 
 
@@ -196,6 +229,13 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         of ``config_path``.
     report : bool
         Write the HTML report at the end.
+
+    Returns
+    -------
+    dict
+        ``run_id``, ``counts`` (files per status, ``blocks_run``), ``failed`` and ``invalid``
+        (input paths), ``store`` and ``report`` (path or None). When files fail the flow
+        ends Failed, naming them, with this summary as the state's data.
     """
     logger = get_run_logger()
     cfg = _load(config_path, config_block)
@@ -203,6 +243,7 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
     started = now_iso()
     store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
     durations: dict[str, float] = {}
+    failed_files: list[str] = []
     with store.lock(run_id):
         cleaned = store.clean_partials()
         if cleaned:
@@ -221,28 +262,32 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
                                        for w in idle for f in w.files]
         if unchanged:
             skip_unchanged(unchanged)
-        failed_files: list[str] = []
         if busy:
-            seg_task = filter_segment.with_options(retries=cfg.flow.retries,
-                                                   retry_delay_seconds=[cfg.flow.retry_delay_seconds * 2**i
-                                                                        for i in range(max(cfg.flow.retries, 1))])
+            seg_task = filter_segment.with_options(
+                retries=cfg.flow.retries,
+                retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
+            )
             with _shared_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as key:
                 futures = []
                 for w in busy:
                     futures.append((w, time.perf_counter(),
                                     seg_task.with_options(task_run_name=f"filter-{_slug(w.segment_id)}")
                                     .submit(w, prep, store, key)))
+                # Resolve every future, failed or not, before deciding the run's outcome.
                 for w, t0, fut in futures:
-                    fut.wait()
-                    state = fut.state
+                    value = fut.result(raise_on_failure=False)
                     secs = time.perf_counter() - t0
-                    if state.is_completed():
-                        outs = fut.result()
+                    state = fut.state
+                    if state.is_completed() and isinstance(value, list):
+                        outs = value
                     else:
                         outs = _outcomes_from_store(store, w)
-                        failed_files += [o.relpath for o in outs if o.status == "failed"]
+                        bad = [o.relpath for o in outs if o.status == "failed"]
+                        logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
+                                     state.message or state.name, ", ".join(bad))
+                        failed_files += bad
                     for o in outs:
-                        durations[o.relpath] = secs
+                        durations[o.relpath] = o.seconds or secs
                     outcomes.extend(outs)
         result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
         finalize_task(store, result, cfg, durations)
@@ -257,7 +302,13 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
 
 
 def _outcomes_from_store(store: OutputStore, seg: SegmentWork) -> list[FileOutcome]:
-    """Per-file outcomes of a segment whose task failed, read back from the block tables."""
+    """Per-file outcomes of a segment whose task failed, read back from the store.
+
+    A file counts as complete only when the store marks it complete for its current
+    input (same fingerprint) and every block is done. When the task failed but no file
+    looks failed by that measure (the failure came from outside the blocks), every file
+    the segment had to compute counts as failed.
+    """
     out = []
     for f in seg.files:
         if f.action == "skip":
@@ -265,14 +316,100 @@ def _outcomes_from_store(store: OutputStore, seg: SegmentWork) -> list[FileOutco
             continue
         try:
             t = store.read_block_table(f.array_name, figures=False, seams=False)
+            attrs = store.array_attrs(f.array_name)
         except Exception:
             out.append(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "failed"))
             continue
         c = t.counts()
         done = c["pass"] + c["warn"]
+        current = not fingerprint_changed(attrs.get("source_fingerprint"), f.fingerprint)[0]
+        ok = done == t.n_blocks and attrs.get("complete") is True and current
         out.append(FileOutcome(f.relpath, f.array_name, t.n_blocks, 0, done, t.n_blocks - done,
-                               "complete" if done == t.n_blocks else "failed", errors=dict(t.errors)))
+                               "complete" if ok else "failed", errors=dict(t.errors)))
+    if not any(o.status == "failed" for o in out):
+        out = [o if o.status == "skipped" else dataclasses.replace(o, status="failed") for o in out]
     return out
 
 
-__all__ = ["FLOW_NAME", "archive_run", "filter_segment", "design_task", "finalize_task", "report_task"]
+# ------------------------------------------------------------------ deployments
+def schedule(cron: str, timezone: str | None = None) -> Any:
+    """A Prefect cron schedule, validated.
+
+    Parameters
+    ----------
+    cron : str
+        Five-field cron expression (minute hour day-of-month month day-of-week), e.g.
+        ``"30 2 * * *"`` for 02:30 every day.
+    timezone : str, optional
+        IANA time zone the expression is read in (e.g. ``"Europe/Berlin"``, so runs follow
+        daylight saving time); default UTC.
+
+    Raises
+    ------
+    ConfigError
+        The expression or the time zone is not valid.
+    """
+    from prefect.client.schemas.schedules import CronSchedule
+    from prefect.schedules import Cron
+    from pydantic import ValidationError
+
+    try:
+        CronSchedule(cron=cron, timezone=timezone)
+    except ValidationError as e:
+        detail = "; ".join(str(err.get("msg", "")).removeprefix("Value error, ") for err in e.errors())
+        raise ConfigError(f"schedule: cron {cron!r}, time zone {timezone or 'UTC'}: {detail}; use a five-field "
+                          "cron expression such as \"30 2 * * *\" and an IANA time zone such as Europe/Berlin"
+                          ) from None
+    return Cron(cron, timezone=timezone)
+
+
+def build_deployment(config_path: str | None = None, *, cron: str, timezone: str | None = None,
+                     name: str = "nightly", config_block: str | None = None) -> "RunnerDeployment":
+    """A deployment of :func:`archive_run` on a cron schedule (not yet applied or served).
+
+    Parameters
+    ----------
+    config_path : str, optional
+        The job configuration; stored as an absolute path in the deployment's parameters.
+    cron, timezone : str
+        The schedule, see :func:`schedule`.
+    name : str
+        Deployment name.
+    config_block : str, optional
+        Name of a saved :class:`~twinpass.prefect_blocks.TwinpassJob` block, instead of
+        ``config_path``.
+
+    Raises
+    ------
+    ConfigError
+        Bad schedule, or the configuration cannot be read or is invalid.
+    """
+    from prefect.types.entrypoint import EntrypointType
+
+    if config_path and config_block:
+        raise ConfigError(f"give a configuration file ({config_path}) or a block ({config_block}), not both")
+    if config_block:
+        parameters: dict[str, Any] = {"config_block": config_block}
+    elif config_path:
+        path = str(Path(config_path).resolve())
+        load_config(path)  # fail now on a bad configuration, not at 02:30
+        parameters = {"config_path": path}
+    else:
+        raise ConfigError("a deployment needs a configuration file or the name of a saved TwinpassJob block")
+    # The module path (not a file path relative to the working folder) lets the runner
+    # load the flow from wherever it is started.
+    return archive_run.to_deployment(name=name, schedules=[schedule(cron, timezone)], parameters=parameters,
+                                     description=f"twinpass archive run, cron {cron!r} ({timezone or 'UTC'})",
+                                     entrypoint_type=EntrypointType.MODULE_PATH)
+
+
+def serve_deployment(deployment: "RunnerDeployment") -> None:
+    """Register ``deployment`` with the Prefect server and run its scheduled runs here until stopped."""
+    from prefect import serve
+
+    serve(deployment)
+
+
+__all__ = ["ARTIFACT_DESIGN", "ARTIFACT_FILES", "ARTIFACT_REPORT", "FLOW_NAME", "archive_run", "build_deployment",
+           "design_task", "filter_segment", "finalize_task", "report_task", "schedule", "serve_deployment",
+           "skip_unchanged"]

@@ -1,0 +1,348 @@
+"""The Prefect flow against a real temporary Prefect server.
+
+Every run's task states and artifacts are read back through Prefect's own client. Output
+is checked against scipy.signal.sosfiltfilt on the whole segment (the whole-signal
+two-pass reference; see :func:`prefect_fixtures.check_against_sosfiltfilt`). Faults are
+real failures inside the real engine, switched on through ``TWINPASS_FAULTS``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import signal
+import subprocess
+import sys
+import uuid
+from pathlib import Path
+from types import SimpleNamespace
+from urllib.parse import urlparse
+from urllib.request import url2pathname
+
+import pytest
+
+pytest.register_assert_rewrite("prefect_fixtures")  # helpers with asserts, loaded as a plug-in too
+from prefect_fixtures import (
+    FILE_FRAMES,
+    FILES_PER_STREAM,
+    PREFECT_HOME,
+    STREAMS,
+    artifacts,
+    check_against_sosfiltfilt,
+    file_relpath,
+    final_task_runs,
+    flow_env,
+    flow_run_id,
+    poll,
+    runs_of,
+    table_rows,
+    write_archive,
+    write_file,
+    write_job,
+)
+from twinpass import cli, flows
+from twinpass.core.blocks import blocks_touching
+from twinpass.errors import ConfigError
+from twinpass.io.store import OutputStore
+from twinpass.io.store_util import array_name
+
+# The Prefect fixtures (one temporary server for the whole session) come from this plug-in.
+pytest_plugins = ("prefect_fixtures",)
+
+ROOT = Path(__file__).resolve().parents[1]
+ALL_FILES = [file_relpath(s, k) for s in STREAMS for k in range(FILES_PER_STREAM)]
+BLOCKS_PER_FILE = 4  # 4000 frames in 1000-sample blocks (block_seconds 10 at 100 Hz)
+
+
+def _artifacts_by_key(client, run_id, keys: set[str], progress: int) -> list:
+    """The run's artifacts once the keyed ones and ``progress`` progress artifacts at 100 % are in."""
+    return poll(lambda: artifacts(client, run_id),
+                lambda arts: keys <= {a.key for a in arts}
+                and sum(a.type == "progress" and float(a.data) == 100.0 for a in arts) >= progress,
+                f"artifacts {sorted(keys)} and {progress} progress artifact(s) at 100 of flow run {run_id}")
+
+
+def _one(arts: list, key: str):
+    found = [a for a in arts if a.key == key]
+    assert len(found) == 1, f"{len(found)} artifacts with key {key}"
+    return found[0]
+
+
+# ------------------------------------------------------------------ full runs
+@pytest.fixture(scope="module")
+def first_run(prefect_server, tmp_path_factory):
+    """A first run over its own copy of the archive (later tests change a file)."""
+    folder = tmp_path_factory.mktemp("incremental")
+    archive = write_archive(folder / "archive")
+    cfg = write_job(folder, archive)
+    state = flows.archive_run(config_path=str(cfg), return_state=True)
+    return SimpleNamespace(folder=folder, archive=archive, cfg=cfg, state=state, store=str(folder / "out.zarr"))
+
+
+def test_first_run_completes_with_tasks_and_artifacts(first_run, prefect_client):
+    state = first_run.state
+    assert state.is_completed(), state.message
+    summary = state.result()
+    assert summary["counts"]["complete"] == 6 and summary["counts"]["blocks_run"] == 6 * BLOCKS_PER_FILE
+
+    run_id = flow_run_id(state)
+    runs = final_task_runs(prefect_client, run_id, expected=5)
+    assert all(t.state.is_completed() for t in runs), [(t.name, t.state.name) for t in runs]
+    assert len(runs_of(runs, flows.design_task)) == 1
+    assert len(runs_of(runs, flows.filter_segment)) == 2  # one task per segment (one segment per stream)
+    assert len(runs_of(runs, flows.finalize_task)) == 1
+    assert len(runs_of(runs, flows.report_task)) == 1
+    assert runs_of(runs, flows.skip_unchanged) == []
+
+    arts = _artifacts_by_key(prefect_client, run_id, {flows.ARTIFACT_DESIGN, flows.ARTIFACT_FILES,
+                                                      flows.ARTIFACT_REPORT}, progress=2)
+    design = _one(arts, flows.ARTIFACT_DESIGN)
+    assert design.type == "markdown" and "## 100 Hz" in design.data
+    files = _one(arts, flows.ARTIFACT_FILES)
+    rows = table_rows(files)
+    assert sorted(r["file"] for r in rows) == sorted(ALL_FILES)  # one row per file
+    assert all(r["status"] == "complete" and r["blocks"] == BLOCKS_PER_FILE for r in rows)
+    assert sum(a.type == "progress" for a in arts) == 2  # one per segment task, each at 100 (polled above)
+    link = _one(arts, flows.ARTIFACT_REPORT)
+    # Prefect stores a link artifact as markdown: [link text](URL).
+    match = re.fullmatch(r"\[twinpass report\]\((file://\S+)\)", link.data)
+    assert match, link.data
+    report = Path(url2pathname(urlparse(match.group(1)).path))
+    assert report.is_file() and report == Path(summary["report"]).resolve()
+
+    for stream in STREAMS:
+        check_against_sosfiltfilt(first_run.store, first_run.archive, stream)
+
+
+def test_rerun_skips_unchanged_and_a_touched_file_reruns_its_halo_neighbours(first_run, prefect_client):
+    assert first_run.state.is_completed()
+    cfg = str(first_run.cfg)
+
+    # Nothing changed: one skip-unchanged task run in state "Skipped" lists every file.
+    state = flows.archive_run(config_path=cfg, report=False, return_state=True)
+    assert state.is_completed(), state.message
+    assert state.result()["counts"]["skipped"] == 6 and state.result()["counts"]["blocks_run"] == 0
+    runs = final_task_runs(prefect_client, flow_run_id(state), expected=3)
+    assert runs_of(runs, flows.filter_segment) == []
+    (skip,) = runs_of(runs, flows.skip_unchanged)
+    assert skip.state.name == "Skipped"
+    assert all(rel in skip.state.message for rel in ALL_FILES), skip.state.message
+
+    # Rewrite the middle file of "north" with new samples.
+    write_file(first_run.archive, "north", 1, seed=999)
+    state = flows.archive_run(config_path=cfg, report=False, return_state=True)
+    assert state.is_completed(), state.message
+    run_id = flow_run_id(state)
+    runs = final_task_runs(prefect_client, run_id, expected=4)
+    assert len(runs_of(runs, flows.filter_segment)) == 1  # only the north segment has work
+    (skip,) = runs_of(runs, flows.skip_unchanged)
+    assert skip.state.name == "Skipped"
+    assert all(file_relpath("south", k) in skip.state.message for k in range(FILES_PER_STREAM))
+    assert "north" not in skip.state.message
+
+    # A two-pass filter's output depends on input within its effective length (the halo)
+    # on either side (common practice: the halo is where the impulse response has decayed
+    # below the tolerance), so only neighbour blocks within the halo of the rewritten file rerun.
+    store = OutputStore.open(first_run.store, mode="r")
+    attrs = store.array_attrs(array_name(file_relpath("north", 0)))
+    halo = int(attrs["filter"]["effective_length_samples"])
+    block = int(attrs["blocks"]["block_samples"])
+    spans = [(s, min(s + block, FILE_FRAMES)) for s in range(0, FILE_FRAMES, block)]
+    expected = {
+        file_relpath("north", 0): len(blocks_touching(spans, ((FILE_FRAMES - halo, FILE_FRAMES),))),
+        file_relpath("north", 1): len(spans),
+        file_relpath("north", 2): len(blocks_touching(spans, ((0, halo),))),
+    }
+    assert halo < block and expected[file_relpath("north", 0)] == 1  # the test archive's premise
+    arts = _artifacts_by_key(prefect_client, run_id, {flows.ARTIFACT_FILES}, progress=1)
+    rows = {r["file"]: r for r in table_rows(_one(arts, flows.ARTIFACT_FILES))}
+    for rel, n in expected.items():
+        assert rows[rel]["status"] == "complete" and rows[rel]["blocks run"] == n, rows[rel]
+    for k in range(FILES_PER_STREAM):
+        assert rows[file_relpath("south", k)]["status"] == "skipped"
+    assert state.result()["counts"]["blocks_run"] == sum(expected.values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(first_run.store, first_run.archive, stream)
+
+
+# ---------------------------------------------------------------------- faults
+def test_block_failing_once_is_retried_by_the_segment_task(prefect_client, npy_archive, tmp_path, monkeypatch):
+    cfg = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise-once", "file": "north/*", "block": 1}]))
+    monkeypatch.setenv("TWINPASS_FAULTS_STATE", str(tmp_path / "fault-state"))
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed(), state.message
+    assert len(os.listdir(tmp_path / "fault-state")) == FILES_PER_STREAM  # block 1 of each north file failed once
+
+    runs = final_task_runs(prefect_client, flow_run_id(state), expected=4)
+    segs = {t.name: t for t in runs_of(runs, flows.filter_segment)}
+    north = next(t for n, t in segs.items() if "north" in n)
+    south = next(t for n, t in segs.items() if "south" in n)
+    assert north.state.is_completed() and north.run_count == 2
+    assert south.state.is_completed() and south.run_count == 1
+    history = [s.name for s in prefect_client.read_task_run_states(north.id)]
+    assert "Retrying" in history, history
+    # The retry resumes: it reruns only the failed blocks, one per north file.
+    summary = state.result()
+    assert summary["counts"]["blocks_run"] == FILES_PER_STREAM + FILES_PER_STREAM * BLOCKS_PER_FILE
+    check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
+
+
+def _flow_run_of(client, cfg: Path):
+    """The (single) flow run whose config_path parameter is ``cfg``, once it is final."""
+    runs = poll(lambda: [r for r in client.read_flow_runs(limit=200)
+                         if r.parameters.get("config_path") == str(cfg.resolve())],
+                lambda rs: len(rs) == 1 and rs[0].state is not None and rs[0].state.is_final(),
+                f"the flow run of {cfg}")
+    return runs[0]
+
+
+def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archive, tmp_path, monkeypatch, capsys):
+    bad = file_relpath("south", 1)
+    cfg = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise", "file": array_name(bad), "block": 2}]))
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    assert cli.main(["run", str(cfg), "--no-report"]) == 1
+    out = capsys.readouterr().out
+    assert f"failed: {bad}" in out and "complete 5, skipped (unchanged) 0, failed 1" in out, out
+
+    run = _flow_run_of(prefect_client, cfg)
+    assert run.state.is_failed()
+    assert bad in run.state.message and "1 file(s) failed" in run.state.message, run.state.message
+
+    runs = final_task_runs(prefect_client, run.id, expected=4)  # every future resolved
+    segs = runs_of(runs, flows.filter_segment)
+    assert sorted(t.state.name for t in segs) == ["Completed", "Failed"]
+    failed = next(t for t in segs if t.state.is_failed())
+    assert "south" in failed.name and failed.run_count == 2 and bad in failed.state.message
+    assert runs_of(runs, flows.finalize_task)[0].state.is_completed()
+
+    records = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").file_records()
+    assert {rel: rec.complete for rel, rec in records.items()} == {rel: rel != bad for rel in ALL_FILES}
+    arts = _artifacts_by_key(prefect_client, run.id, {flows.ARTIFACT_FILES}, progress=2)
+    rows = {r["file"]: r for r in table_rows(_one(arts, flows.ARTIFACT_FILES))}
+    assert rows[bad]["status"] == "failed" and rows[bad]["blocks not done"] == 1
+    check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
+
+
+def test_locked_store_exits_2_naming_the_lock(prefect_server, npy_archive, tmp_path, monkeypatch, capsys):
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="a", archive_root=npy_archive)
+    with store.lock("another-run"):
+        assert cli.main(["run", str(cfg), "--no-report"]) == 2
+    err = capsys.readouterr().err
+    assert "twinpass: error:" in err and "another-run" in err, err
+
+
+# ------------------------------------------------------------------ execution
+def test_distributed_scheduler_address_from_inside_the_task(prefect_client, npy_archive, tmp_path):
+    from distributed import Client, LocalCluster
+
+    cfg = write_job(tmp_path, npy_archive)
+    with LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None) as cluster:
+        state = flows.archive_run(config_path=str(cfg), scheduler=cluster.scheduler_address, report=False,
+                                  return_state=True)
+        with Client(cluster) as client:
+            executed = client.run(lambda dask_worker: dask_worker.state.executed_count)
+            pids = client.run(os.getpid)
+    assert state.is_completed(), state.message
+    assert len(pids) == 2 and os.getpid() not in pids.values()
+    # Every block ran on the cluster's worker processes (the only tasks they ran).
+    assert sum(executed.values()) == 6 * BLOCKS_PER_FILE, executed
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
+@pytest.mark.parametrize("scheme", ["memory", "file"])
+def test_output_to_an_fsspec_url(prefect_client, npy_archive, tmp_path, monkeypatch, scheme):
+    monkeypatch.chdir(tmp_path)  # a report of a non-local store goes to the working folder
+    url = (f"memory://twinpass-flow-tests/{uuid.uuid4().hex}/out.zarr" if scheme == "memory"
+           else (tmp_path / "out.zarr").as_uri())
+    cfg = write_job(tmp_path, npy_archive, store=url)
+    state = flows.archive_run(config_path=str(cfg), report=scheme == "memory", return_state=True)
+    assert state.is_completed(), state.message
+    summary = state.result()
+    assert summary["store"] == url
+    if scheme == "memory":
+        assert Path(summary["report"]) == tmp_path / "twinpass-report.html" and Path(summary["report"]).is_file()
+    if scheme == "file":
+        assert (tmp_path / "out.zarr" / "zarr.json").is_file()
+    for stream in STREAMS:
+        check_against_sosfiltfilt(url, npy_archive, stream)
+
+
+# ----------------------------------------------------------------- deployments
+def test_bad_schedule_is_a_config_error(npy_archive, tmp_path):
+    cfg = write_job(tmp_path, npy_archive)
+    with pytest.raises(ConfigError, match="Invalid cron"):
+        flows.build_deployment(str(cfg), cron="30 2 * *")
+    with pytest.raises(ConfigError, match="Mars/Olympus"):
+        flows.build_deployment(str(cfg), cron="30 2 * * *", timezone="Mars/Olympus")
+    with pytest.raises(ConfigError, match="not found"):
+        flows.build_deployment(str(tmp_path / "missing.toml"), cron="30 2 * * *")
+
+
+def test_deployment_of_a_saved_block_applies(prefect_server, prefect_client):
+    dep = flows.build_deployment(config_block="tp-nightly-job", cron="0 3 * * *", timezone="America/New_York",
+                                 name="tp-block-deployment")
+    dep_id = dep.apply()
+    stored = prefect_client.read_deployment(dep_id)
+    assert stored.parameters == {"config_block": "tp-nightly-job"}
+    assert stored.entrypoint == "twinpass.flows.archive_run"
+    (sched,) = stored.schedules
+    assert (sched.schedule.cron, sched.schedule.timezone) == ("0 3 * * *", "America/New_York")
+    assert prefect_client.read_flow(stored.flow_id).name == flows.FLOW_NAME
+
+
+def test_deployable_module_exposes_the_flow():
+    from prefect.flows import load_flow_from_entrypoint
+
+    # What `prefect deploy flows/archive_flow.py:archive_run` loads.
+    loaded = load_flow_from_entrypoint(f"{ROOT / 'flows' / 'archive_flow.py'}:archive_run")
+    assert loaded.name == flows.FLOW_NAME
+    assert set(loaded.parameters.properties) >= {"config_path", "config_block", "force", "scheduler", "workers"}
+
+
+def test_cli_serve_creates_the_scheduled_deployment(prefect_server, prefect_client, npy_archive, tmp_path):
+    from prefect.client.schemas.filters import DeploymentFilter, DeploymentFilterName
+
+    cfg = write_job(tmp_path, npy_archive)
+    name = "tp-weekday-mornings"
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server})
+    with open(tmp_path / "serve.log", "w") as log:
+        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "serve", str(cfg), "--cron", "30 2 * * 1-5",
+                                 "--timezone", "Europe/Berlin", "--name", name],
+                                env=env, cwd=tmp_path, stdout=log, stderr=subprocess.STDOUT)
+    try:
+        deps = poll(lambda: prefect_client.read_deployments(
+                        deployment_filter=DeploymentFilter(name=DeploymentFilterName(any_=[name]))),
+                    lambda d: len(d) == 1 or proc.poll() is not None, f"deployment {name}")
+        assert proc.poll() is None, (tmp_path / "serve.log").read_text()
+    finally:
+        proc.send_signal(signal.SIGINT)
+        try:
+            proc.wait(timeout=60)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+    (dep,) = deps
+    (sched,) = dep.schedules
+    assert (sched.schedule.cron, sched.schedule.timezone) == ("30 2 * * 1-5", "Europe/Berlin")
+    assert dep.parameters == {"config_path": str(cfg.resolve())}
+    assert prefect_client.read_flow(dep.flow_id).name == flows.FLOW_NAME
+
+
+# ------------------------------------------------------------------------- CLI
+def test_cli_run_through_the_flow_on_a_fresh_prefect_home(npy_archive, tmp_path):
+    """`twinpass run` with no server configured starts Prefect's temporary local server."""
+    cfg = write_job(tmp_path, npy_archive)
+    env = flow_env({"PREFECT_HOME": str(tmp_path / "fresh-prefect-home")})  # analytics left to twinpass
+    proc = subprocess.run([sys.executable, "-m", "twinpass.cli", "run", str(cfg)], env=env, cwd=tmp_path,
+                          capture_output=True, text=True, timeout=600)
+    out = proc.stdout + proc.stderr
+    assert proc.returncode == 0, out
+    assert "database is locked" not in out
+    assert "Traceback" not in out
+    assert "complete 6, skipped (unchanged) 0, failed 0" in proc.stdout, out
