@@ -120,3 +120,17 @@ def test_saving_a_missing_file_exits_2(tmp_path, monkeypatch, capsys):
     missing = tmp_path / "missing.toml"
     assert cli.main(["save", str(missing), "--name", "tp-missing"]) == 2
     assert f"{missing}: configuration file not found" in capsys.readouterr().err
+
+
+def test_cli_runs_a_saved_block(prefect_server, npy_archive, tmp_path, monkeypatch, capsys):
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    cfg_path = write_job(tmp_path, npy_archive)
+    assert cli.main(["save", str(cfg_path), "--name", "tp-cli-block"]) == 0
+    assert "twinpass run --block tp-cli-block" in capsys.readouterr().out
+    assert cli.main(["run", "--block", "tp-cli-block", "--no-report"]) == 0
+    assert "complete 6" in capsys.readouterr().out
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+    # exactly one configuration source
+    assert cli.main(["run", str(cfg_path), "--block", "tp-cli-block"]) == 2
+    assert cli.main(["run", "--block", "tp-cli-block", "--no-flow"]) == 2

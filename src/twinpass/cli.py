@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from . import __version__
-from .errors import TwinpassError
+from .errors import ConfigError, TwinpassError
 
 
 def _eprint(*a: Any) -> None:
@@ -103,6 +103,13 @@ class _EmptyStore:
 def cmd_run(args: argparse.Namespace) -> int:
     from .config import load_config
 
+    if (args.config is None) == (args.block is None):
+        raise ConfigError("twinpass run: give either a configuration file or --block NAME (a saved TwinpassJob)")
+    if args.block is not None:
+        if args.no_flow:
+            raise ConfigError("twinpass run: --block needs the Prefect flow; drop --no-flow")
+        return _run_flow(None, None, force=args.force, scheduler=args.scheduler, workers=args.workers,
+                         report=not args.no_report, progress=_ProgressBar(), config_block=args.block)
     cfg = load_config(args.config)
     bar = _ProgressBar()
     if args.no_flow:
@@ -125,14 +132,15 @@ def cmd_run(args: argparse.Namespace) -> int:
                      report=not args.no_report, progress=bar)
 
 
-def _run_flow(cfg: Any, config_path: str, *, force: bool, scheduler: str | None, workers: int | None,
-              report: bool, progress: Any) -> int:
+def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str | None, workers: int | None,
+              report: bool, progress: Any, config_block: str | None = None) -> int:
     from . import flows
     from .errors import BlockFailedError
 
     flows.TERMINAL_PROGRESS = progress
     try:
-        state = flows.archive_run(config_path=str(Path(config_path).resolve()), force=force, scheduler=scheduler,
+        state = flows.archive_run(config_path=None if config_path is None else str(Path(config_path).resolve()),
+                                  config_block=config_block, force=force, scheduler=scheduler,
                                   workers=workers, report=report, return_state=True)
     finally:
         flows.TERMINAL_PROGRESS = None
@@ -219,8 +227,8 @@ def cmd_save(args: argparse.Namespace) -> int:
 
     block = TwinpassJob.from_file(args.config)
     block.save(args.name, overwrite=True)
-    print(f"saved configuration {args.config} as TwinpassJob block {args.name!r}; a flow run or deployment "
-          f"uses it with the parameter config_block={args.name!r}")
+    print(f"saved configuration {args.config} as TwinpassJob block {args.name!r}; run it with "
+          f"`twinpass run --block {args.name}`, or name it in a deployment with config_block={args.name!r}")
     return 0
 
 
@@ -244,7 +252,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(func=cmd_plan)
 
     s = sub.add_parser("run", help="filter the archive (through the Prefect flow unless --no-flow)")
-    s.add_argument("config")
+    s.add_argument("config", nargs="?", help="the job configuration (TOML)")
+    s.add_argument("--block", help="run a configuration saved on the Prefect server (twinpass save)")
     s.add_argument("--workers", type=int, help="local Dask workers (default from the config)")
     s.add_argument("--scheduler", help="threads | processes | tcp://HOST:PORT (default from the config)")
     s.add_argument("--force", action="store_true", help="reprocess every file, changed or not")
