@@ -8,17 +8,32 @@ threads, local processes and an existing distributed scheduler: all three go thr
 
 The driver (the thread that calls :func:`run_segment`) is the only writer of attributes
 and block tables; block tasks write only their own whole chunks of one output array.
-A block's status is recorded after its data, so a crash never leaves a block marked
-done without its data.
+
+Crash safety. A run may be killed at any instant; the next run must resume to the output
+an uninterrupted run writes, and no file may ever be marked complete with a block missing.
+The driver therefore orders its writes so that every prefix of them is safe:
+
+1. blocks a neighbour's change reaches are set pending *before* any file of the segment
+   records its new input fingerprint (else a kill in between would leave them done with
+   stale data while the plan no longer sees the change);
+2. a file recomputed from scratch records its design digest only after its block table
+   is reset (until then it carries :data:`RESETTING_DIGEST`, which the plan never matches);
+3. a block's status is recorded after its data are written (the store refuses "done" for
+   a block whose chunks are missing);
+4. a file is marked complete only when every block is done (the store checks it).
+
+Block tasks are idempotent (same input, same bytes), so a block written but not recorded
+before a kill is simply computed again.
 """
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import logging
 import time
 import traceback
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator
 
 import numpy as np
@@ -29,7 +44,7 @@ from .core import checks as _checks
 from .core.blocks import Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.types import Design
-from .errors import BlockFailedError, InputError, TwinpassError
+from .errors import ConfigError, InputError, StoreError, TwinpassError
 from .io.readers.base import ReaderSpec
 
 log = logging.getLogger("twinpass.engine")
@@ -38,11 +53,14 @@ PENDING, PASS, WARN, FAIL, ERROR = 0, 1, 2, 3, 4
 STATUS_NAMES = {PENDING: "pending", PASS: "pass", WARN: "warn", FAIL: "fail", ERROR: "error"}
 DONE = (PASS, WARN)
 
+RESETTING_DIGEST = "resetting"
+"""Design digest a file carries while its block table is being reset (see the module notes)."""
+
 
 # --------------------------------------------------------------------------- jobs
 @dataclass(frozen=True)
 class SourceSlice:
-    """One input file of a segment: where it sits in segment coordinates."""
+    """One input file of a segment: where it sits in segment coordinates (samples)."""
 
     spec: ReaderSpec
     seg_offset: int
@@ -50,7 +68,18 @@ class SourceSlice:
 
 
 def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channels: int) -> np.ndarray:
-    """Read segment samples [a, b) across file joins; float64 (b - a, channels)."""
+    """Read segment samples [a, b) across file joins.
+
+    Returns
+    -------
+    ndarray, float64, shape (b - a, channels)
+        Time-major, in the readers' full-scale units.
+
+    Raises
+    ------
+    InputError
+        ``sources`` do not cover [a, b).
+    """
     out = np.empty((b - a, channels), dtype=np.float64)
     filled = 0
     for src in sources:
@@ -62,13 +91,45 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
             out[lo - a : hi - a] = rec.read(lo - src.seg_offset, hi - src.seg_offset)
         filled += hi - lo
     if filled != b - a:
-        raise InputError(f"segment window [{a}, {b}) is not covered by its files (read {filled} samples)")
+        raise InputError(f"segment window [{a}, {b}) is not covered by its files (read {filled} samples); "
+                         "rerun so that the plan is made afresh")
     return out
+
+
+def block_reach(start: int, stop: int, segment_frames: int, halo: int, seam_samples: int,
+                edge_samples: int) -> tuple[int, int, int, int, bool, bool]:
+    """Samples a block computes and reads, in segment samples.
+
+    Parameters
+    ----------
+    start, stop : int
+        The block core [start, stop).
+    segment_frames : int
+        Samples in the segment.
+    halo : int
+        Halo per side (samples).
+    seam_samples : int
+        Outputs computed beyond each core edge for the seam check.
+    edge_samples : int
+        Resolved end-extension length (samples).
+
+    Returns
+    -------
+    xs, xe : int
+        Outputs computed: the core plus up to ``seam_samples`` on each side.
+    ws, we : int
+        Input window read (see :func:`twinpass.core.kernel.block_window`).
+    at_start, at_end : bool
+        The window touches the segment's first / last sample.
+    """
+    xs, xe = max(0, start - seam_samples), min(segment_frames, stop + seam_samples)
+    ws, we, at_start, at_end = block_window(xs, xe, segment_frames, halo, edge_samples)
+    return xs, xe, ws, we, at_start, at_end
 
 
 @dataclass(frozen=True)
 class BlockJob:
-    """Everything one block task needs; small and picklable."""
+    """Everything one block task needs; small and picklable (no sample data)."""
 
     store_location: str
     array_name: str
@@ -80,6 +141,7 @@ class BlockJob:
     segment_frames: int
     channels: int
     sources: tuple[SourceSlice, ...]
+    """The files the block's window reaches."""
     design: Design
     halo: int
     edge: str
@@ -110,22 +172,25 @@ class BlockResult:
     window_samples: int = 0
 
 
+def retry_delays(retries: int, first_seconds: float) -> list[float]:
+    """Waits before each retry of a failing block, seconds: ``first * 2**i`` (exponential backoff)."""
+    return [float(first_seconds) * 2.0**i for i in range(max(0, int(retries)))]
+
+
 def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Return (x_core, y_core, seams, window_samples) for a job."""
     s, e = job.core
-    n = job.segment_frames
     k = job.seam_samples
-    xs, xe = max(0, s - k), min(n, e + k)
     halo = 0 if "halo0" in tamper else job.halo
-    ws, we, at_start, at_end = block_window(xs, xe, n, halo, job.edge_samples)
+    xs, xe, ws, we, at_start, at_end = block_reach(s, e, job.segment_frames, halo, k, job.edge_samples)
     window = read_segment_window(job.sources, ws, we, job.channels)
     sos, taps = job.design.sos, job.design.taps
     if "perturb" in tamper:
         if sos is not None:
-            sos = sos.copy()
+            sos = np.array(sos, dtype=np.float64)
             sos[0, :3] *= np.sqrt(2.0)  # +3 dB per pass, +6 dB overall
         elif taps is not None:
-            taps = taps * np.sqrt(2.0)
+            taps = np.asarray(taps, dtype=np.float64) * np.sqrt(2.0)
     y_ext = filtfilt_window(
         window, sos=sos, taps=taps, core_start=xs - ws, core_stop=xe - ws,
         at_start=at_start, at_end=at_end, edge=job.edge, edge_samples=job.edge_samples,
@@ -145,8 +210,14 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
 
 
 def run_block(job: BlockJob) -> BlockResult:
-    """Filter, check and write one block, retrying with backoff. Never raises for block errors."""
+    """Filter, check and write one block, retrying with backoff. Never raises for block errors.
+
+    An attempt that raises is retried ``job.retries`` times after the waits of
+    :func:`retry_delays`; the last error (type, message and, for errors that are not
+    twinpass's own, a short traceback) is returned with status ``ERROR``.
+    """
     t0 = time.perf_counter()
+    delays = retry_delays(job.retries, job.retry_backoff_seconds)
     last = ""
     for attempt in range(job.retries + 1):
         try:
@@ -168,7 +239,7 @@ def run_block(job: BlockJob) -> BlockResult:
             if not isinstance(exc, TwinpassError):
                 last += "\n" + traceback.format_exc(limit=4)
             if attempt < job.retries:
-                time.sleep(job.retry_backoff_seconds * 2**attempt)
+                time.sleep(delays[attempt])
     return BlockResult(job.array_name, job.block_index, ERROR, None, None, last,
                        job.retries + 1, time.perf_counter() - t0, 0)
 
@@ -176,25 +247,56 @@ def run_block(job: BlockJob) -> BlockResult:
 # ----------------------------------------------------------------------- clients
 @contextlib.contextmanager
 def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
-    """A :class:`distributed.Client` for ``threads``, ``processes`` or an address."""
+    """A :class:`distributed.Client` for ``threads``, ``processes`` or an address.
+
+    Parameters
+    ----------
+    scheduler : str
+        ``threads`` (one local worker with ``workers`` threads), ``processes`` (``workers``
+        local worker processes of one thread) or the address of a running scheduler,
+        e.g. ``tcp://127.0.0.1:8786`` (its own workers are used; ``workers`` is ignored).
+    workers : int
+        Local threads or processes (>= 1).
+
+    Raises
+    ------
+    ConfigError
+        An unknown scheduler name, ``workers < 1``, or an address nobody answers at.
+    """
     from distributed import Client, LocalCluster
 
     if "://" in scheduler:
-        client = Client(scheduler, timeout="20s")
+        try:
+            client = Client(scheduler, timeout="20s")
+        except (OSError, asyncio.TimeoutError) as e:
+            raise ConfigError(f"cannot reach the Dask scheduler at {scheduler} ({e}); start it, or set "
+                              "[engine] scheduler (or --scheduler) to threads or processes") from None
         try:
             yield client
         finally:
             client.close()
         return
+    if scheduler not in ("threads", "processes"):
+        raise ConfigError(f"scheduler {scheduler!r} is not threads, processes or an address like "
+                          "tcp://127.0.0.1:8786; fix [engine] scheduler or --scheduler")
+    if int(workers) < 1:
+        raise ConfigError(f"workers = {workers}: at least one worker is needed ([engine] workers or --workers)")
     processes = scheduler == "processes"
     cluster = LocalCluster(
         n_workers=workers if processes else 1,
         threads_per_worker=1 if processes else workers,
         processes=processes,
         dashboard_address=None,
+        # The scheduler's HTTP endpoint (health, metrics) on a free local port, no dashboard:
+        # a fixed default port would clash with any other cluster on the machine.
+        scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"},
         silence_logs=logging.ERROR,
     )
-    client = Client(cluster)
+    try:
+        client = Client(cluster)
+    except BaseException:
+        cluster.close()
+        raise
     try:
         yield client
     finally:
@@ -304,6 +406,188 @@ def design_digest_for(design: Design, cfg: JobConfig) -> str:
 ProgressFn = Callable[[int, int, BlockResult], None]
 
 
+def _stored_table(store: Any, name: str) -> Any:
+    """The block table of ``name`` (statuses and spans only), or None when there is none."""
+    try:
+        return store.read_block_table(name, figures=False, seams=False)
+    except StoreError:
+        return None
+
+
+def _set_pending(store: Any, name: str, status: np.ndarray, indices: list[int]) -> None:
+    """Invalidate those of ``indices`` that are not pending already."""
+    idx = [i for i in indices if int(status[i]) != PENDING]
+    if idx:
+        store.invalidate_blocks(name, idx)
+
+
+def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout,
+                    edge_samples: int, *, mode: str | None = None
+                    ) -> tuple[dict[str, list[tuple[int, int]]], dict[str, list[int]]]:
+    """Create or update the output arrays and block tables of a segment's files.
+
+    Writes in the crash-safe order of the module notes (points 1 and 2). ``mode``, when
+    given, is recorded as the ``blocks.mode`` attribute (e.g. ``"carry"``).
+
+    Returns
+    -------
+    spans_by_file : dict
+        Block cores [start, stop) in file frames, per array name (every file).
+    todo_by_file : dict
+        Indices of the blocks to run, per array name (files with work only).
+    """
+    # 1. Blocks a neighbour's change reaches become pending before any file records its
+    #    new fingerprint (module notes, point 1).
+    for fw in seg.files:
+        if isinstance(fw.action, tuple):
+            old = _stored_table(store, fw.array_name)
+            if old is not None:
+                spans = [(int(a), int(b)) for a, b in old.span]
+                _set_pending(store, fw.array_name, old.status, blocks_touching(spans, fw.action))
+    # 2. Arrays and tables.
+    spans_by_file: dict[str, list[tuple[int, int]]] = {}
+    todo_by_file: dict[str, list[int]] = {}
+    columns = list(_checks.FIGURES)
+    for fw in seg.files:
+        spans = layout.spans(fw.frames)
+        spans_by_file[fw.array_name] = spans
+        if fw.action == "skip":
+            continue
+        attrs = file_attrs(seg, fw, design, cfg, layout, edge_samples)
+        if mode is not None:
+            attrs["blocks"]["mode"] = mode
+        digest = attrs["design_digest"]
+        fresh = fw.action == "all"
+        if fresh:
+            attrs["design_digest"] = RESETTING_DIGEST  # module notes, point 2
+        table = store.prepare_file(
+            fw.array_name, frames=fw.frames, channels=seg.channels, dtype=cfg.output.dtype,
+            chunk_samples=layout.chunk_for(fw.frames), compression=cfg.output.compression, attrs=attrs,
+            spans=spans, n_figures_columns=columns, seam_samples=cfg.checks.seam_samples, keep_done=not fresh,
+        )
+        if fresh:
+            store.update_attrs(fw.array_name, design_digest=digest)
+        status = np.asarray(table.status)
+        todo = {i for i in range(len(spans)) if status[i] not in DONE}
+        if isinstance(fw.action, tuple):
+            redo = blocks_touching(spans, fw.action)
+            _set_pending(store, fw.array_name, status, redo)
+            todo |= set(redo)
+        todo_by_file[fw.array_name] = sorted(todo)
+    return spans_by_file, todo_by_file
+
+
+def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout, edge_samples: int,
+               spans_by_file: dict[str, list[tuple[int, int]]], todo_by_file: dict[str, list[int]]) -> list[BlockJob]:
+    """One :class:`BlockJob` per block to run, in segment order."""
+    k = cfg.checks.seam_samples
+    every = cfg.checks.every
+    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames) for f in seg.files)
+    jobs: list[BlockJob] = []
+    for fw in seg.files:
+        spans = spans_by_file[fw.array_name]
+        for i in todo_by_file.get(fw.array_name, []):
+            s, e = fw.seg_offset + spans[i][0], fw.seg_offset + spans[i][1]
+            _, _, ws, we, _, _ = block_reach(s, e, seg.frames, layout.halo, k, edge_samples)
+            jobs.append(BlockJob(
+                store_location=store.location, array_name=fw.array_name, block_index=i, core=(s, e),
+                file_offset=fw.seg_offset, segment_frames=seg.frames, channels=seg.channels,
+                sources=tuple(src for src in sources if src.seg_offset < we and ws < src.seg_offset + src.frames),
+                design=design, halo=layout.halo, edge=cfg.processing.edge, edge_samples=edge_samples,
+                out_dtype=cfg.output.dtype, seam_samples=k, check_response=bool(every) and i % every == 0,
+                checks_cfg=cfg.checks, retries=cfg.engine.retries,
+                retry_backoff_seconds=cfg.engine.retry_backoff_seconds,
+            ))
+    return jobs
+
+
+def _record(store: Any, res: BlockResult) -> BlockResult:
+    """Record a block's outcome; a refused record (e.g. data missing) becomes the block's error."""
+    try:
+        store.record_block(res.array_name, res.block_index, res.status, res.figures, res.seams, res.error)
+        return res
+    except StoreError as e:
+        res = BlockResult(res.array_name, res.block_index, ERROR, error=f"{type(e).__name__}: {e}",
+                          attempts=res.attempts, seconds=res.seconds)
+        store.record_block(res.array_name, res.block_index, ERROR, None, None, res.error)
+        return res
+
+
+def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: ProgressFn | None = None) -> dict[str, int]:
+    """Run block jobs on ``client`` and record each result as it arrives.
+
+    Returns the number of blocks run per array name. A block whose task is lost (its
+    worker died more often than the scheduler allows, or it was cancelled) is recorded
+    with status ``ERROR`` and the reason; the others carry on.
+    """
+    from distributed import as_completed
+
+    run_count: dict[str, int] = {}
+    if not jobs:
+        return run_count
+    total = len(jobs)
+    stamp = time.time_ns()
+    futures = [client.submit(run_block, j, pure=False, retries=j.retries,
+                             key=f"twinpass-block-{j.array_name}-{j.block_index}-{stamp}")
+               for j in jobs]
+    by_key = {f.key: j for f, j in zip(futures, jobs)}
+    done = 0
+    for fut in as_completed(futures):
+        job = by_key[fut.key]
+        try:
+            res: BlockResult = fut.result()
+        except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
+            res = BlockResult(job.array_name, job.block_index, ERROR,
+                              error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
+        res = _record(store, res)
+        run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
+        done += 1
+        if res.status == ERROR:
+            log.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,
+                      res.attempts, (res.error or "").splitlines()[0])
+        if on_block is not None:
+            on_block(done, total, res)
+        fut.release()
+    return run_count
+
+
+def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout,
+                   edge_samples: int, spans_by_file: dict[str, list[tuple[int, int]]],
+                   run_count: dict[str, int], t0: float) -> list[FileOutcome]:
+    """Seam checks, segment attributes of unchanged files, completion flags and outcomes."""
+    touched = {fw.array_name for fw in seg.files if fw.action != "skip"}
+    if touched:
+        # Unchanged files of a busy segment: keep their segment id and edge zones current,
+        # so the next plan sees how files are joined now.
+        for fw in seg.files:
+            if fw.action == "skip":
+                a = file_attrs(seg, fw, design, cfg, layout, edge_samples)
+                store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
+    # An unchanged file whose block fails a seam now is reported (and rerun next time).
+    checked = touched | _seam_pass(seg, store, spans_by_file, touched, design, cfg)
+    outcomes = []
+    elapsed = time.perf_counter() - t0
+    for fw in seg.files:
+        spans = spans_by_file[fw.array_name]
+        if fw.array_name not in checked:
+            outcomes.append(FileOutcome(fw.relpath, fw.array_name, len(spans), 0, len(spans), 0, "skipped"))
+            continue
+        table = store.read_block_table(fw.array_name)
+        st = np.asarray(table.status)
+        finished = np.isin(st, DONE)
+        ok = bool(np.all(finished))
+        summary = _checks.summarise(table.figures)
+        for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
+            summary[f"blocks_{name}"] = int(np.sum(st == code))
+        store.set_complete(fw.array_name, ok, summary)
+        outcomes.append(FileOutcome(
+            fw.relpath, fw.array_name, len(spans), run_count.get(fw.array_name, 0),
+            int(np.sum(finished)), int(np.sum(~finished)),
+            "complete" if ok else "failed", elapsed, dict(table.errors), summary,
+        ))
+    return outcomes
+
+
 def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any,
                 *, on_block: ProgressFn | None = None) -> list[FileOutcome]:
     """Filter every block a segment needs, record results, run seam checks, finalise files.
@@ -320,104 +604,32 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     client : distributed.Client
     on_block : callable, optional
         Called as ``on_block(done, total, result)`` from this thread after each block.
-    """
-    from distributed import as_completed
 
+    Returns
+    -------
+    list of FileOutcome
+        One per file of the segment, in order. A block that keeps failing leaves its
+        file ``"failed"`` (its error in :attr:`FileOutcome.errors`); the other files of
+        the segment are still completed.
+
+    Notes
+    -----
+    ``[processing] mode`` ``"carry"``, or ``"auto"`` with a halo longer than
+    ``carry_threshold`` blocks, hands the segment to
+    :func:`twinpass.engine_carry.run_segment_carry` (same contract, no halos).
+    """
     t0 = time.perf_counter()
     layout = _layout(seg, design, cfg)
+    if cfg.processing.mode != "halo":
+        from .engine_carry import run_segment_carry, use_carry  # it imports this module
+
+        if use_carry(design, layout.block_samples, cfg):
+            return run_segment_carry(seg, design, cfg, store, client, on_block=on_block)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
-    k = cfg.checks.seam_samples
-    columns = list(_checks.FIGURES)
-    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames) for f in seg.files)
-    jobs: list[BlockJob] = []
-    spans_by_file: dict[str, list[tuple[int, int]]] = {}
-    for fw in seg.files:
-        spans = layout.spans(fw.frames)
-        spans_by_file[fw.array_name] = spans
-        if fw.action == "skip":
-            continue
-        attrs = file_attrs(seg, fw, design, cfg, layout, edge_samples)
-        table = store.prepare_file(
-            fw.array_name, frames=fw.frames, channels=seg.channels, dtype=cfg.output.dtype,
-            chunk_samples=layout.chunk_for(fw.frames), compression=cfg.output.compression, attrs=attrs,
-            spans=spans, n_figures_columns=columns, seam_samples=k, keep_done=fw.action != "all",
-        )
-        status = np.asarray(table.status)
-        todo = [i for i in range(len(spans)) if status[i] not in DONE]
-        if isinstance(fw.action, tuple):
-            redo = blocks_touching(spans, fw.action)
-            if redo:
-                store.invalidate_blocks(fw.array_name, redo)
-            todo = sorted(set(todo) | set(redo))
-        every = cfg.checks.every
-        for i in todo:
-            s, e = spans[i]
-            a, b = fw.seg_offset + s - layout.halo - k, fw.seg_offset + e + layout.halo + k
-            job_sources = tuple(src for src in sources
-                                if src.seg_offset < b and a < src.seg_offset + src.frames)
-            jobs.append(BlockJob(
-                store_location=store.location, array_name=fw.array_name, block_index=i,
-                core=(fw.seg_offset + s, fw.seg_offset + e), file_offset=fw.seg_offset,
-                segment_frames=seg.frames, channels=seg.channels, sources=job_sources, design=design,
-                halo=layout.halo, edge=cfg.processing.edge, edge_samples=edge_samples,
-                out_dtype=cfg.output.dtype, seam_samples=k,
-                check_response=bool(every) and i % every == 0, checks_cfg=cfg.checks,
-                retries=cfg.engine.retries, retry_backoff_seconds=cfg.engine.retry_backoff_seconds,
-            ))
-    total = len(jobs)
-    run_count: dict[str, int] = {}
-    if jobs:
-        futures = [client.submit(run_block, j, pure=False, retries=cfg.engine.retries,
-                                 key=f"twinpass-block-{j.array_name}-{j.block_index}-{time.time_ns()}")
-                   for j in jobs]
-        by_key = {f.key: j for f, j in zip(futures, jobs)}
-        done = 0
-        for fut in as_completed(futures):
-            job = by_key[fut.key]
-            try:
-                res: BlockResult = fut.result()
-            except Exception as exc:  # worker lost repeatedly, cancelled...
-                res = BlockResult(job.array_name, job.block_index, ERROR, error=f"{type(exc).__name__}: {exc}")
-            store.record_block(res.array_name, res.block_index, res.status, res.figures, res.seams, res.error)
-            run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
-            done += 1
-            if res.status == ERROR:
-                log.error("block %d of %s failed: %s", res.block_index, res.array_name,
-                          (res.error or "").splitlines()[0])
-            if on_block is not None:
-                on_block(done, total, res)
-            fut.release()
-    touched = {fw.array_name for fw in seg.files if fw.action != "skip"}
-    if touched:
-        # Unchanged files of a busy segment: keep their segment id and edge zones current,
-        # so the next plan sees how files are joined now.
-        for fw in seg.files:
-            if fw.action == "skip":
-                a = file_attrs(seg, fw, design, cfg, layout, edge_samples)
-                store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
-    _seam_pass(seg, store, spans_by_file, touched, design, cfg)
-    outcomes = []
-    elapsed = time.perf_counter() - t0
-    for fw in seg.files:
-        spans = spans_by_file[fw.array_name]
-        if fw.array_name not in touched:
-            outcomes.append(FileOutcome(fw.relpath, fw.array_name, len(spans), 0, len(spans), 0, "skipped"))
-            continue
-        table = store.read_block_table(fw.array_name)
-        st = np.asarray(table.status)
-        ok = bool(np.all(np.isin(st, DONE)))
-        summary = _checks.summarise(table.figures)
-        summary["blocks_pass"] = int(np.sum(st == PASS))
-        summary["blocks_warn"] = int(np.sum(st == WARN))
-        summary["blocks_fail"] = int(np.sum(st == FAIL))
-        summary["blocks_error"] = int(np.sum(st == ERROR))
-        store.set_complete(fw.array_name, ok, summary)
-        outcomes.append(FileOutcome(
-            fw.relpath, fw.array_name, len(spans), run_count.get(fw.array_name, 0),
-            int(np.sum(np.isin(st, DONE))), int(np.sum(~np.isin(st, DONE))),
-            "complete" if ok else "failed", elapsed, dict(table.errors), summary,
-        ))
-    return outcomes
+    spans_by_file, todo_by_file = prepare_segment(seg, design, cfg, store, layout, edge_samples)
+    jobs = block_jobs(seg, design, cfg, store, layout, edge_samples, spans_by_file, todo_by_file)
+    run_count = run_jobs(jobs, store, client, on_block=on_block)
+    return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
 
 
 class _MutableTable:
@@ -431,23 +643,34 @@ class _MutableTable:
 
 
 def _seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple[int, int]]],
-               touched: set[str], design: Design, cfg: JobConfig) -> None:
-    """Compare each block's samples beyond its edges with its neighbours' own samples."""
+               touched: set[str], design: Design, cfg: JobConfig) -> set[str]:
+    """Compare each block's samples beyond its edges with its neighbours' own samples.
+
+    Mismatches are relative to the segment's largest |input| (the reference of the
+    blockwise tolerance), measured by the blocks themselves; the format's full scale is
+    used only when no block has measured it. Joins with at least one block of a file in
+    ``touched`` are checked; each block is recorded once, with the worse of its seams.
+
+    Returns
+    -------
+    set of str
+        Arrays in which a block done before this check now fails it (also files outside
+        ``touched``: an unchanged neighbour whose output no longer joins).
+    """
+    failed: set[str] = set()
     if not touched or cfg.checks.seam_samples == 0:
-        return
+        return failed
     tables = {fw.array_name: _MutableTable(store.read_block_table(fw.array_name)) for fw in seg.files}
     order: list[tuple[str, int]] = [(fw.array_name, i) for fw in seg.files
                                     for i in range(len(spans_by_file[fw.array_name]))]
     col = list(_checks.FIGURES).index("seam_mismatch")
     peak_col = list(_checks.FIGURES).index("peak_in")
+    peaks = [float(np.nanmax(t.figures[..., peak_col])) for t in tables.values()
+             if t.figures is not None and np.isfinite(t.figures[..., peak_col]).any()]
     scales = [fw.full_scale for fw in seg.files if fw.full_scale]
-    if scales:
-        full_scale = max(scales)
-    else:
-        peaks = [np.nanmax(t.figures[..., peak_col]) for t in tables.values()
-                 if t.figures is not None and np.isfinite(t.figures[..., peak_col]).any()]
-        full_scale = max(peaks) if peaks else 1.0
+    full_scale = max(peaks) if peaks else (max(scales) if scales else 1.0)
     full_scale = full_scale if full_scale > 0 else 1.0
+    worst: dict[tuple[str, int], float] = {}
     for (na, ia), (nb, ib) in zip(order, order[1:]):
         if na not in touched and nb not in touched:
             continue
@@ -462,13 +685,20 @@ def _seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple
         right = _checks.seam_mismatch(sa[3], sb[0], full_scale)
         left = _checks.seam_mismatch(sb[2], sa[1], full_scale)
         mism = np.nanmax([right, left]) if np.isfinite([right, left]).any() else np.nan
-        for name, idx, t in ((na, ia, ta), (nb, ib, tb)):
-            figs = np.array(t.figures[idx], dtype=np.float64)
-            prev = figs[:, col]
-            figs[:, col] = np.fmax(prev, mism)
-            status = int(t.status[idx])
-            if status in DONE:
-                status = max(status, _checks.grade(figs, design, cfg.checks, design.tolerance))
-            store.record_block(name, idx, status, figs, None, t.errors.get(idx))
-            t.figures[idx] = figs
-            t.status[idx] = status
+        for key in ((na, ia), (nb, ib)):
+            worst[key] = np.fmax(worst.get(key, np.nan), mism)
+    # One record per block, with the worse of its two seams.
+    for (name, idx), mism in worst.items():
+        t = tables[name]
+        figs = np.array(t.figures[idx], dtype=np.float64)
+        prev = figs[:, col].copy()
+        figs[:, col] = np.fmax(prev, mism)
+        status = int(t.status[idx])
+        if status in DONE:
+            status = max(status, _checks.grade(figs, design, cfg.checks, design.tolerance))
+        if status == int(t.status[idx]) and np.array_equal(prev, figs[:, col], equal_nan=True):
+            continue  # checked before with the same outcome (a rerun or a resumed file)
+        store.record_block(name, idx, status, figs, None, t.errors.get(idx))
+        if status == FAIL and int(t.status[idx]) in DONE:
+            failed.add(name)
+    return failed

@@ -10,6 +10,7 @@ import datetime as _dt
 import importlib.metadata
 import logging
 import platform
+import traceback
 import uuid
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -22,7 +23,7 @@ from .core.plan import FilePlan, Plan, make_plan
 from .core.segments import InvalidFile, Segment
 from .core.types import Design
 from .engine import FileOutcome, FileWork, SegmentWork, design_digest_for, run_segment
-from .errors import SpecError
+from .errors import SpecError, TwinpassError
 from .io.archive import Discovery, discover
 from .io.store import OutputStore
 from .io.store_util import array_name
@@ -162,10 +163,41 @@ def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
                       "failed": result.failed})
 
 
+def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None]) -> list[FileOutcome]:
+    """Outcomes of a segment whose driver raised: its files with work failed, naming the error."""
+    msg = f"{type(exc).__name__}: {exc}"
+    if not isinstance(exc, TwinpassError):
+        msg += "\n" + "".join(traceback.format_exception(exc, limit=6))
+    say(f"segment {w.segment_id} failed: {msg.splitlines()[0]}")
+    return [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") if f.action == "skip"
+            else FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "failed", errors={-1: msg})
+            for f in w.files]
+
+
 def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None, workers: int | None = None,
             on_block: Callable[[str, int, int, Any], None] | None = None,
             log_fn: Callable[[str], None] | None = None) -> RunResult:
-    """Run the whole job with the engine alone (no Prefect)."""
+    """Run the whole job with the engine alone (no Prefect).
+
+    Parameters
+    ----------
+    cfg : JobConfig
+    force : bool
+        Recompute every valid file, changed or not.
+    scheduler, workers : optional
+        Override ``[engine] scheduler`` / ``workers`` (see :func:`twinpass.engine.dask_client`).
+    on_block : callable, optional
+        ``on_block(segment_id, done, total, result)`` after each block (from driver threads,
+        one per segment running).
+    log_fn : callable, optional
+        Receives one-line messages (invalid inputs, clean-up, failed segments).
+
+    Returns
+    -------
+    RunResult
+        Per-file outcomes; a segment whose driver raised has its files ``"failed"`` with
+        the error under block index -1, and the other segments still run.
+    """
     from .engine import dask_client
 
     say = log_fn or log.info
@@ -189,7 +221,10 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             with dask_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as client:
                 def one(w: SegmentWork) -> list[FileOutcome]:
                     cb = None if on_block is None else (lambda d, t, r, sid=w.segment_id: on_block(sid, d, t, r))
-                    return run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
+                    try:
+                        return run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
+                    except Exception as e:  # one segment's trouble (e.g. its store arrays) must not stop the others
+                        return segment_failed(w, e, say)
 
                 with ThreadPoolExecutor(max_workers=4) as pool:
                     for outs in pool.map(one, busy):
@@ -199,5 +234,5 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
     return result
 
 
-__all__ = ["Prepared", "RunResult", "designs_for", "prepare", "run_job", "segment_work", "library_versions",
-           "response_report"]
+__all__ = ["Prepared", "RunResult", "designs_for", "prepare", "run_job", "segment_work", "segment_failed",
+           "library_versions", "response_report"]

@@ -1,0 +1,219 @@
+"""The engine end to end: real archives on disk, real Zarr stores, real Dask schedulers.
+
+The blockwise result of a segment of several files must equal filtering the whole
+segment at once with ``scipy.signal.sosfiltfilt`` / ``scipy.signal.filtfilt`` (the
+reference library for whole-signal two-pass results), and must not depend on how the
+blocks are scheduled.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.io.wavfile
+import scipy.signal
+
+from conftest import (
+    BANDPASS,
+    LOWPASS_FIR,
+    chunk_files,
+    make_signal,
+    open_store,
+    read_output,
+    run_cli,
+    write_config,
+    write_stream,
+)
+from twinpass.config import load_config
+from twinpass.job import run_job
+
+FS = 200.0
+
+
+def _reference(x: np.ndarray, filt: dict) -> np.ndarray:
+    """Whole-segment two-pass result from scipy.signal with the stored coefficients and edge."""
+    edge = filt["edge"]
+    padtype = None if edge == "none" else edge
+    n = int(filt["edge_samples"])
+    if "sos" in filt:
+        return scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=padtype, padlen=n)
+    return scipy.signal.filtfilt(np.asarray(filt["taps"]), [1.0], x, axis=0, padtype=padtype, padlen=n)
+
+
+def _wav_full_scale(path: Path) -> np.ndarray:
+    """A PCM WAV file read by scipy.io.wavfile, in full-scale units (24-bit arrives left-justified in int32)."""
+    _, data = scipy.io.wavfile.read(path)
+    data = data.reshape(data.shape[0], -1)
+    scale = {np.dtype("int16"): 2.0**15, np.dtype("int32"): 2.0**31}[data.dtype]
+    return data.astype(np.float64) / scale
+
+
+CASES = [
+    # fmt, channels, edge, edge_samples, block_seconds, response
+    ("npy", 1, "odd", "auto", 2.0, BANDPASS),      # blocks (400) shorter than the halo (670)
+    ("wav24", 3, "even", "auto", 5.0, BANDPASS),
+    ("npy", 2, "constant", 50, 3.0, BANDPASS),
+    ("wav24", 1, "none", "auto", 7.0, BANDPASS),
+    ("wav16", 2, "odd", "auto", 2.0, LOWPASS_FIR),  # FIR: halo = taps - 1 (16), blocks of 400
+]
+
+
+@pytest.mark.parametrize("fmt,channels,edge,edge_samples,block_seconds,response", CASES)
+def test_segment_equals_whole_signal_two_pass(tmp_path, fmt, channels, edge, edge_samples, block_seconds,
+                                              response):
+    x = make_signal(36000, channels, FS, seed=channels)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, [12000, 10000, 14000], fmt=fmt)
+    cfg = write_config(tmp_path, response=response,
+                       processing={"edge": edge, "edge_samples": edge_samples, "block_seconds": block_seconds})
+    res = run_job(load_config(cfg))
+    assert res.ok and res.counts()["complete"] == 3
+
+    g = open_store(tmp_path / "out.zarr")
+    filt = g[files.arrays[0]].attrs["filter"]
+    assert all(g[a].attrs["filter"] == filt for a in files.arrays)  # one design for the segment
+    assert filt["edge"] == edge
+    # The input as a reference reader sees it: numpy for NPY, scipy.io.wavfile for WAV.
+    if fmt == "npy":
+        x_in = np.concatenate([np.load(p).reshape(-1, channels) for p in files.paths])
+    else:
+        x_in = np.concatenate([_wav_full_scale(p) for p in files.paths])
+    np.testing.assert_array_equal(x_in, files.concat)
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    assert y.dtype == np.float64 and y.shape == x_in.shape
+    ref = _reference(x_in, filt)
+    err = np.max(np.abs(y - ref))
+    # The product's promise: |blockwise - whole segment| <= tolerance * max|input|.
+    assert err <= filt["tolerance"] * np.max(np.abs(x_in)), err
+    # Several blocks per file, and the layout recorded in the attributes is the one used.
+    blocks = g[files.arrays[0]].attrs["blocks"]
+    assert blocks["block_samples"] == int(block_seconds * FS)
+    assert blocks["halo_samples"] == filt["effective_length_samples"]
+
+
+def test_default_checks_pass_and_figures_are_recorded(tmp_path):
+    x = make_signal(24000, 2, FS, seed=3)
+    files = write_stream(tmp_path / "archive", "pier", x, FS, 2)
+    cfg = write_config(tmp_path)
+    res = run_job(load_config(cfg))
+    assert res.ok
+    g = open_store(tmp_path / "out.zarr")
+    for a in files.arrays:
+        st = np.asarray(g[f"_twinpass/blocks/{a}/status"][:])
+        assert set(st.tolist()) <= {1, 2} and len(st) == 12000 // 1000
+        checks = g[a].attrs["checks"]
+        assert checks["blocks_measured"] == len(st)  # the response was measured on every block
+        assert checks["seam_mismatch"] is not None and checks["seam_mismatch"] < 10 * 1e-9
+        assert g[a].attrs["complete"] is True
+
+
+def _archive_for_schedulers(root: Path) -> list[str]:
+    x = make_signal(30000, 3, FS, seed=11)
+    return list(write_stream(root, "deck", x, FS, [10000, 12000, 8000], fmt="wav24").arrays)
+
+
+def _variant(tmp_path: Path, name: str, archive: Path) -> Path:
+    folder = tmp_path / name
+    folder.mkdir()
+    return write_config(folder, archive={"root": str(archive)},
+                        processing={"block_seconds": 3.0},
+                        output={"dtype": "float32", "compression": "lz4"})
+
+
+def test_identical_bytes_for_every_scheduler_and_worker_count(tmp_path, process_cluster):
+    archive = tmp_path / "archive"
+    arrays = _archive_for_schedulers(archive)
+    runs = {}
+    for scheduler, workers in (("threads", 1), ("threads", 2), ("processes", 2),
+                               (process_cluster.scheduler_address, 2)):
+        name = "address" if "://" in scheduler else scheduler
+        cfg = _variant(tmp_path, f"{name}{workers}", archive)
+        assert run_job(load_config(cfg), scheduler=scheduler, workers=workers).ok
+        runs[(name, workers)] = cfg.parent / "out.zarr"
+
+    # The same inputs give the same bytes whatever runs the blocks, in whatever order.
+    first = runs[("threads", 1)]
+    ref_arrays = read_output(first, arrays)
+    ref_chunks = chunk_files(first)
+    assert len(ref_chunks) == sum(-(-n // 600) for n in (10000, 12000, 8000))  # one chunk per 600-sample block
+    for key, store in runs.items():
+        for a, b in zip(ref_arrays, read_output(store, arrays)):
+            assert np.array_equal(a, b), key
+        assert chunk_files(store) == ref_chunks, key
+
+
+def test_cli_run_no_flow_prints_progress_and_summary(tmp_path):
+    x = make_signal(16000, 1, FS, seed=5)
+    write_stream(tmp_path / "archive", "deck", x, FS, 2)
+    cfg = write_config(tmp_path)
+    proc = run_cli(["run", str(cfg), "--no-flow", "--no-report"])
+    assert "blocks 16/16" in proc.stderr
+    assert "complete 2, skipped (unchanged) 0, failed 0" in proc.stdout
+    assert "blocks run 16" in proc.stdout
+    # Library log chatter (Dask scheduler and worker start-up) stays out of the terminal.
+    assert "distributed." not in proc.stderr, proc.stderr
+
+
+def test_no_whole_file_array_enters_the_task_graph(tmp_path, monkeypatch):
+    """Every block task's arguments pickle to a few kB, whatever the file size."""
+    import pickle
+
+    from twinpass import engine
+
+    sizes = []
+    real_submit = None
+
+    class Spy:
+        def __init__(self, client):
+            self.client = client
+
+        def submit(self, fn, *args, **kw):
+            sizes.append(len(pickle.dumps(args)))
+            return real_submit(fn, *args, **kw)
+
+        def __getattr__(self, name):
+            return getattr(self.client, name)
+
+    x = make_signal(60000, 4, FS, seed=2)
+    write_stream(tmp_path / "archive", "deck", x, FS, 2)
+    cfg = load_config(write_config(tmp_path, processing={"block_seconds": 10.0}))
+    original = engine.run_segment
+
+    def spying_run_segment(seg, design, cfg_, store, client, **kw):
+        nonlocal real_submit
+        real_submit = client.submit
+        return original(seg, design, cfg_, store, Spy(client), **kw)
+
+    monkeypatch.setattr("twinpass.job.run_segment", spying_run_segment)
+    assert run_job(cfg).ok
+    assert len(sizes) == 2 * 30000 // 2000
+    # One file is 30000 x 4 float64 = 960 kB; a task carries coefficients and paths only.
+    assert max(sizes) < 20_000, max(sizes)
+
+
+def test_auto_mode_carries_states_when_the_halo_exceeds_the_block(tmp_path):
+    """Blocks of 300 samples against a 670-sample halo: run_job hands the segment to carry mode,
+    whose result also equals scipy.signal.sosfiltfilt over the whole segment."""
+    x = make_signal(9000, 2, FS, seed=8)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, 3)
+    cfg = write_config(tmp_path, processing={"mode": "auto", "block_seconds": 1.5})
+    assert run_job(load_config(cfg)).ok
+    g = open_store(tmp_path / "out.zarr")
+    assert g[files.arrays[0]].attrs["blocks"]["mode"] == "carry"
+    filt = g[files.arrays[0]].attrs["filter"]
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
+def test_end_extension_longer_than_the_halo_reads_across_several_files(tmp_path):
+    """With 2500 edge samples (more than halo + block) the blocks at each segment end read
+    windows spanning three of these 1000-sample files."""
+    x = make_signal(5000, 1, FS, seed=6)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, 5)
+    cfg = write_config(tmp_path, processing={"edge_samples": 2500, "block_seconds": 2.0})
+    assert run_job(load_config(cfg)).ok
+    filt = open_store(tmp_path / "out.zarr")[files.arrays[0]].attrs["filter"]
+    assert filt["edge_samples"] == 2500 and filt["effective_length_samples"] < 1000
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))

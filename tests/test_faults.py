@@ -1,0 +1,202 @@
+"""Injected faults inside the real engine: retries, lost workers and wrong blocks.
+
+Faults are the only thing simulated (``twinpass.faults``); archives, stores and Dask
+schedulers are real. Whole-signal references come from ``scipy.signal.sosfiltfilt``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.signal
+
+from conftest import block_status, make_signal, open_store, read_output, write_config, write_stream
+from twinpass import faults
+from twinpass.config import load_config
+from twinpass.core.checks import SEAM_FACTOR
+from twinpass.engine import ERROR, FAIL, PASS, WARN, retry_delays
+from twinpass.errors import ConfigError
+from twinpass.job import run_job
+
+FS = 200.0
+FRAMES = [8000, 6000, 8000]  # blocks of 1000 samples: 8 + 6 + 8
+
+
+def _archive(tmp_path, name="run", *, seed=21, **overrides):
+    """One three-file stream (shared by every run of a test) and a config for the store ``name``."""
+    archive = tmp_path / "archive"
+    if not archive.exists():
+        write_stream(archive, "deck", make_signal(sum(FRAMES), 2, FS, seed=seed), FS, FRAMES)
+    folder = tmp_path / name
+    folder.mkdir()
+    return load_config(write_config(folder, archive={"root": str(archive)}, **overrides))
+
+
+ARRAYS = [f"deck/deck_20260301T{t}" for t in ("000000", "000040", "000110")]
+
+
+def _results(cfg, **kw):
+    seen = []
+    res = run_job(cfg, on_block=lambda sid, d, t, r: seen.append(r), **kw)
+    return res, {(r.array_name, r.block_index): r for r in seen}
+
+
+def test_retry_delays_back_off_exponentially():
+    # Exponential backoff (common practice): each wait doubles the previous one.
+    assert retry_delays(3, 0.5) == [0.5, 1.0, 2.0]
+    assert retry_delays(0, 0.5) == []
+
+
+def test_a_block_failing_once_is_retried_and_the_output_is_unchanged(tmp_path, inject):
+    clean = _archive(tmp_path, "clean")
+    assert run_job(clean).ok
+    state = inject([{"action": "raise-once", "file": ARRAYS[1], "block": 2}])
+    res, blocks = _results(_archive(tmp_path, "faulty"))
+    assert res.ok and res.counts()["complete"] == 3
+    assert blocks[(ARRAYS[1], 2)].attempts == 2 and blocks[(ARRAYS[1], 2)].status in (PASS, WARN)
+    assert all(r.attempts == 1 for key, r in blocks.items() if key != (ARRAYS[1], 2))
+    assert len(faults.fired(state)) == 1
+    for a, b in zip(read_output(clean.store_location, ARRAYS), read_output(tmp_path / "faulty" / "out.zarr", ARRAYS)):
+        assert np.array_equal(a, b)
+
+
+def test_a_block_that_keeps_failing_fails_only_its_file(tmp_path, inject):
+    inject([{"action": "raise", "file": ARRAYS[1], "block": 3}])
+    cfg = _archive(tmp_path, engine={"retries": 2, "retry_backoff_seconds": 0.01})
+    res, blocks = _results(cfg)
+    assert res.failed == ["deck/deck_20260301T000040.npy"]
+    assert blocks[(ARRAYS[1], 3)].attempts == 3 and blocks[(ARRAYS[1], 3)].status == ERROR
+    g = open_store(cfg.store_location)
+    st = block_status(cfg.store_location, ARRAYS[1])
+    assert st[3] == ERROR and np.all(np.isin(np.delete(st, 3), (PASS, WARN)))
+    errors = g[f"_twinpass/blocks/{ARRAYS[1]}"].attrs["errors"]
+    assert list(errors) == ["3"] and "InjectedFault: injected fault in deck/deck_20260301T000040 block 3" in errors["3"]
+    assert g[ARRAYS[1]].attrs["complete"] is False
+    assert g[ARRAYS[0]].attrs["complete"] is True and g[ARRAYS[2]].attrs["complete"] is True
+    outcome = {o.array_name: o for o in res.outcomes}[ARRAYS[1]]
+    assert outcome.status == "failed" and outcome.blocks_failed == 1 and "injected fault" in outcome.errors[3]
+
+    # Without the fault a rerun runs that block alone and completes the file; the seam
+    # check covers its two joins again.
+    inject([])
+    res2, blocks2 = _results(cfg)
+    assert res2.ok and list(blocks2) == [(ARRAYS[1], 3)]
+    assert open_store(cfg.store_location)[ARRAYS[1]].attrs["complete"] is True
+
+
+def test_a_worker_killed_mid_block_is_replaced_and_the_output_is_unchanged(tmp_path, inject, process_cluster):
+    clean = _archive(tmp_path, "clean")
+    assert run_job(clean).ok
+    state = inject([{"action": "kill-once", "file": ARRAYS[0], "block": 4}])
+    cfg = _archive(tmp_path, "killed")
+    res = run_job(cfg, scheduler=process_cluster.scheduler_address)
+    assert res.ok and res.counts()["complete"] == 3
+    assert [line.split()[:4] for line in faults.fired(state)] == [["kill-once", ARRAYS[0], "block", "4"]]
+    for a, b in zip(read_output(clean.store_location, ARRAYS), read_output(cfg.store_location, ARRAYS)):
+        assert np.array_equal(a, b)
+
+
+def test_a_block_filtered_without_halo_fails_the_seam_check(tmp_path, inject):
+    inject([{"action": "halo0", "file": ARRAYS[1], "block": 2}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 5.0, "mode": "halo"})
+    res = run_job(cfg)
+    assert res.failed == ["deck/deck_20260301T000040.npy"]
+    g = open_store(cfg.store_location)
+    st = block_status(cfg.store_location, ARRAYS[1])
+    # The block itself and both neighbours sharing a seam with it fail; nothing else.
+    assert st.tolist() == [PASS, FAIL, FAIL, FAIL, PASS, PASS]
+    table = g[f"_twinpass/blocks/{ARRAYS[1]}"]
+    columns = list(table["figures"].attrs["columns"])
+    seam = np.asarray(table["figures"][:])[:, :, columns.index("seam_mismatch")]
+    assert np.all(seam[1:4] > SEAM_FACTOR * 1e-9) and np.all(seam[[0, 4]] <= SEAM_FACTOR * 1e-9)
+    assert g[ARRAYS[1]].attrs["complete"] is False
+    assert g[ARRAYS[0]].attrs["complete"] is True and g[ARRAYS[2]].attrs["complete"] is True
+
+
+def test_a_block_with_a_wrong_response_fails_the_response_check(tmp_path, inject):
+    inject([{"action": "perturb", "file": ARRAYS[2], "block": 3}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 10.0, "mode": "halo"})
+    res = run_job(cfg)
+    assert res.failed == ["deck/deck_20260301T000110.npy"]
+    table = open_store(cfg.store_location)[f"_twinpass/blocks/{ARRAYS[2]}"]
+    columns = list(table["figures"].attrs["columns"])
+    figures = np.asarray(table["figures"][:])
+    dev = figures[:, :, columns.index("passband_dev_db")]
+    # Each pass gains sqrt(2) in amplitude: 2x overall, 20*log10(2) = 6.02 dB (definition of the dB).
+    np.testing.assert_allclose(dev[3], 20 * np.log10(2.0), atol=0.5)
+    assert np.all(np.abs(np.delete(dev, 3, axis=0)) < 0.5)
+    st = block_status(cfg.store_location, ARRAYS[2])
+    assert st[3] == FAIL
+
+
+def test_fault_rules_are_checked():
+    with pytest.raises(ConfigError, match="unknown action 'explode'"):
+        faults.parse_rules('[{"action": "explode"}]')
+    with pytest.raises(ConfigError, match="unknown key"):
+        faults.parse_rules('[{"action": "raise", "blocks": 3}]')
+    with pytest.raises(ConfigError, match="not valid JSON"):
+        faults.parse_rules("[{")
+    assert faults.parse_rules('[{"action": "sleep", "seconds": 0.1, "block": 2}]')[0].matches("x", 2)
+
+
+def test_reference_check_of_the_faulty_run_uses_scipy(tmp_path, inject):
+    """After a retried fault the segment still equals scipy.signal.sosfiltfilt over the whole segment."""
+    inject([{"action": "raise-once", "file": "*", "block": 1}])
+    cfg = _archive(tmp_path)
+    assert run_job(cfg).ok
+    g = open_store(cfg.store_location)
+    filt = g[ARRAYS[0]].attrs["filter"]
+    x = make_signal(sum(FRAMES), 2, FS, seed=21)
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=filt["edge"],
+                                   padlen=filt["edge_samples"])
+    y = np.concatenate(read_output(cfg.store_location, ARRAYS))
+    assert np.max(np.abs(y - ref)) <= filt["tolerance"] * np.max(np.abs(x))
+
+
+def test_an_unchanged_neighbour_failing_a_seam_is_reported_and_rerun(tmp_path, inject):
+    inject([{"action": "raise", "file": ARRAYS[1], "block": 0}])
+    cfg = _archive(tmp_path)
+    res = run_job(cfg)
+    assert res.failed == ["deck/deck_20260301T000040.npy"]
+    # Second run: the first file is complete and unchanged; the second resumes its block 0,
+    # now filtered without halo, so the join of the two files fails its seam check.
+    inject([{"action": "halo0", "file": ARRAYS[1], "block": 0}])
+    res, blocks = _results(cfg)
+    assert list(blocks) == [(ARRAYS[1], 0)]
+    outcome = {o.array_name: o for o in res.outcomes}
+    assert outcome[ARRAYS[0]].status == "failed" and outcome[ARRAYS[1]].status == "failed"
+    assert outcome[ARRAYS[2]].status == "skipped"
+    assert block_status(cfg.store_location, ARRAYS[0]).tolist() == [PASS] * 7 + [FAIL]
+    assert block_status(cfg.store_location, ARRAYS[1]).tolist() == [FAIL, FAIL] + [PASS] * 4
+    assert open_store(cfg.store_location)[ARRAYS[0]].attrs["complete"] is False
+    # Third run, no faults: the blocks on both sides of the failed seams are recomputed and
+    # everything completes.
+    inject([])
+    res, blocks = _results(cfg)
+    assert res.ok and sorted(blocks) == [(ARRAYS[0], 7), (ARRAYS[1], 0), (ARRAYS[1], 1)]
+
+
+def test_a_segment_that_cannot_be_prepared_does_not_stop_the_others(tmp_path, monkeypatch):
+    from twinpass.errors import StoreError
+    from twinpass.io.store import OutputStore
+
+    archive = tmp_path / "archive"
+    write_stream(archive, "deck", make_signal(8000, 1, FS, seed=1), FS, 2)
+    write_stream(archive, "pier", make_signal(8000, 1, FS, seed=2), FS, 2)
+    cfg = load_config(write_config(tmp_path))
+    real = OutputStore.prepare_file
+
+    def full_disk_for_pier(self, name, **kw):  # injected fault: the store refuses one stream's arrays
+        if name.startswith("pier/"):
+            raise StoreError(f"{name}: no space left on device (injected)")
+        return real(self, name, **kw)
+
+    monkeypatch.setattr(OutputStore, "prepare_file", full_disk_for_pier)
+    messages = []
+    res = run_job(cfg, log_fn=messages.append)
+    status = {o.relpath: o.status for o in res.outcomes}
+    assert status == {"deck/deck_20260301T000000.npy": "complete", "deck/deck_20260301T000020.npy": "complete",
+                      "pier/pier_20260301T000000.npy": "failed", "pier/pier_20260301T000020.npy": "failed"}
+    failed = [o for o in res.outcomes if o.status == "failed"]
+    assert all("no space left on device" in o.errors[-1] for o in failed)
+    assert any(m.startswith("segment pier@") and "no space left" in m for m in messages)
