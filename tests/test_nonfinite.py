@@ -25,7 +25,6 @@ from scipy import signal
 
 from twinpass.core import nonfinite as nf
 from twinpass.core.segments import FileEntry, build_segments
-from twinpass.engine import BlockJob
 from twinpass.errors import InputError
 from twinpass.io.archive import discover
 from twinpass.io.readers import ReaderSpec, RecordingInfo, open_recording
@@ -304,13 +303,6 @@ def test_policy_interpolate_refuses_long_or_end_runs(tmp_path, max_fill, edit, r
 
 # -- end to end (needs the engine's hooks for holes and fills) ---------------------------
 
-_ENGINE_HOOKS = "holes" in {f.name for f in dataclasses.fields(BlockJob)}
-needs_engine_hooks = pytest.mark.skipif(
-    not _ENGINE_HOOKS, reason="the engine does not yet filter around holes nor apply fills"
-)
-
-
-@needs_engine_hooks
 @pytest.mark.parametrize("policy", ["split", "interpolate"])
 def test_policy_end_to_end_matches_scipy(tmp_path, policy):
     """Two contiguous float files filtered as one segment, in blocks of 600 samples.

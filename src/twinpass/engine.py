@@ -43,6 +43,7 @@ from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.blocks import Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
+from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.types import Design
 from .errors import ConfigError, InputError, StoreError, TwinpassError
 from .io.readers.base import ReaderSpec
@@ -65,6 +66,8 @@ class SourceSlice:
     spec: ReaderSpec
     seg_offset: int
     frames: int
+    fill: tuple[FillSpan, ...] = ()
+    """Linear fills of the file's NaN/Inf runs (file samples), applied to every read."""
 
 
 def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channels: int) -> np.ndarray:
@@ -88,7 +91,10 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
         if lo >= hi:
             continue
         with src.spec.open() as rec:
-            out[lo - a : hi - a] = rec.read(lo - src.seg_offset, hi - src.seg_offset)
+            part = rec.read(lo - src.seg_offset, hi - src.seg_offset)
+        if src.fill:
+            apply_fill(part, lo - src.seg_offset, src.fill)
+        out[lo - a : hi - a] = part
         filled += hi - lo
     if filled != b - a:
         raise InputError(f"segment window [{a}, {b}) is not covered by its files (read {filled} samples); "
@@ -153,6 +159,8 @@ class BlockJob:
     retries: int = 0
     retry_backoff_seconds: float = 0.5
     write: bool = True
+    holes: tuple[tuple[int, int], ...] = ()
+    """Segment spans left out of filtering (NaN/Inf runs under nonfinite = "split")."""
 
 
 @dataclass
@@ -182,8 +190,6 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
     s, e = job.core
     k = job.seam_samples
     halo = 0 if "halo0" in tamper else job.halo
-    xs, xe, ws, we, at_start, at_end = block_reach(s, e, job.segment_frames, halo, k, job.edge_samples)
-    window = read_segment_window(job.sources, ws, we, job.channels)
     sos, taps = job.design.sos, job.design.taps
     if "perturb" in tamper:
         if sos is not None:
@@ -191,10 +197,21 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
             sos[0, :3] *= np.sqrt(2.0)  # +3 dB per pass, +6 dB overall
         elif taps is not None:
             taps = np.asarray(taps, dtype=np.float64) * np.sqrt(2.0)
-    y_ext = filtfilt_window(
-        window, sos=sos, taps=taps, core_start=xs - ws, core_stop=xe - ws,
-        at_start=at_start, at_end=at_end, edge=job.edge, edge_samples=job.edge_samples,
-    )
+    if job.holes:  # nonfinite = "split": each piece between holes is filtered as its own signal
+        xs, xe = max(0, s - k), min(job.segment_frames, e + k)
+        window, y_ext, wlen = filter_with_holes(
+            lambda a, b: read_segment_window(job.sources, a, b, job.channels), xs, xe, job.segment_frames,
+            job.holes, halo=halo, edge=job.edge, edge_samples=job.edge_samples, channels=job.channels,
+            sos=sos, taps=taps,
+        )
+        ws, we = xs, xs + wlen
+    else:
+        xs, xe, ws, we, at_start, at_end = block_reach(s, e, job.segment_frames, halo, k, job.edge_samples)
+        window = read_segment_window(job.sources, ws, we, job.channels)
+        y_ext = filtfilt_window(
+            window, sos=sos, taps=taps, core_start=xs - ws, core_stop=xe - ws,
+            at_start=at_start, at_end=at_end, edge=job.edge, edge_samples=job.edge_samples,
+        )
     y = y_ext[s - xs : s - xs + (e - s)]
     x = window[s - ws : e - ws]
     seams = np.full((4, k, job.channels), np.nan)
@@ -223,9 +240,14 @@ def run_block(job: BlockJob) -> BlockResult:
         try:
             tamper = faults.apply(job.array_name, job.block_index)
             x, y, seams, wlen = _filter_block(job, tamper)
-            figs = _checks.block_figures(
-                x, y, job.design, job.checks_cfg, out_dtype=job.out_dtype, response=job.check_response
-            )
+            keep = ~hole_mask(job.core[0], job.core[1], job.holes) if job.holes else None
+            if keep is None or keep.all():
+                figs = _checks.block_figures(
+                    x, y, job.design, job.checks_cfg, out_dtype=job.out_dtype, response=job.check_response
+                )
+            else:  # levels and integrity outside the holes; no response estimate across pieces
+                figs = _checks.block_figures(x[keep], y[keep], job.design, job.checks_cfg,
+                                             out_dtype=job.out_dtype, response=False)
             status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
             if job.write:
                 from .io.store import write_block_data
@@ -320,6 +342,11 @@ class FileWork:
     action: str | tuple[tuple[int, int], ...]
     """"all" (recompute), "resume" (finish pending/failed blocks), "skip", or frame spans."""
     full_scale: float | None = None
+    fill: tuple[FillSpan, ...] = ()
+    """Linear fills of NaN/Inf runs (nonfinite = "interpolate"), file samples."""
+    filled_spans: tuple[tuple[int, int], ...] = ()
+    nan_spans: tuple[tuple[int, int], ...] = ()
+    """File spans written as NaN (nonfinite = "split")."""
 
 
 @dataclass(frozen=True)
@@ -330,6 +357,8 @@ class SegmentWork:
     channels: int
     frames: int
     files: tuple[FileWork, ...]
+    holes: tuple[tuple[int, int], ...] = ()
+    """Segment spans left out of filtering (nonfinite = "split")."""
 
     @property
     def has_work(self) -> bool:
@@ -381,6 +410,8 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
         "segment": seg.segment_id,
         "start_time": fw.start_time,
         "edge_zone_samples": [int(zone_start), int(zone_end)],
+        "filled_spans": [list(sp) for sp in fw.filled_spans],
+        "nan_spans": [list(sp) for sp in fw.nan_spans],
         "filter": {
             "family": design.family,
             "order": int(design.order),
@@ -400,7 +431,8 @@ def design_digest_for(design: Design, cfg: JobConfig) -> str:
     from . import __version__
 
     return design.digest({"edge": cfg.processing.edge, "edge_samples": str(cfg.processing.edge_samples),
-                          "version": __version__})
+                          "nonfinite": cfg.processing.nonfinite,
+                          "max_fill_samples": cfg.processing.max_fill_samples, "version": __version__})
 
 
 ProgressFn = Callable[[int, int, BlockResult], None]
@@ -482,13 +514,15 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
     """One :class:`BlockJob` per block to run, in segment order."""
     k = cfg.checks.seam_samples
     every = cfg.checks.every
-    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames) for f in seg.files)
+    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
     jobs: list[BlockJob] = []
     for fw in seg.files:
         spans = spans_by_file[fw.array_name]
         for i in todo_by_file.get(fw.array_name, []):
             s, e = fw.seg_offset + spans[i][0], fw.seg_offset + spans[i][1]
             _, _, ws, we, _, _ = block_reach(s, e, seg.frames, layout.halo, k, edge_samples)
+            if seg.holes:  # a piece end may widen the window by the end extension
+                ws, we = ws - edge_samples, we + edge_samples
             jobs.append(BlockJob(
                 store_location=store.location, array_name=fw.array_name, block_index=i, core=(s, e),
                 file_offset=fw.seg_offset, segment_frames=seg.frames, channels=seg.channels,
@@ -496,7 +530,7 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
                 design=design, halo=layout.halo, edge=cfg.processing.edge, edge_samples=edge_samples,
                 out_dtype=cfg.output.dtype, seam_samples=k, check_response=bool(every) and i % every == 0,
                 checks_cfg=cfg.checks, retries=cfg.engine.retries,
-                retry_backoff_seconds=cfg.engine.retry_backoff_seconds,
+                retry_backoff_seconds=cfg.engine.retry_backoff_seconds, holes=seg.holes,
             ))
     return jobs
 
@@ -623,7 +657,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     if cfg.processing.mode != "halo":
         from .engine_carry import run_segment_carry, use_carry  # it imports this module
 
-        if use_carry(design, layout.block_samples, cfg):
+        if not seg.holes and use_carry(design, layout.block_samples, cfg):  # pieces between holes use halos
             return run_segment_carry(seg, design, cfg, store, client, on_block=on_block)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
     spans_by_file, todo_by_file = prepare_segment(seg, design, cfg, store, layout, edge_samples)

@@ -696,7 +696,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     """Steps 1-5 for one segment; returns the number of blocks run per array."""
     k = cfg.checks.seam_samples
     m = len(pieces)
-    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames) for f in seg.files)
+    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
     retries = cfg.engine.retries
 
     def job(p: Piece, before: int = 0, **extra: Any) -> PieceJob:

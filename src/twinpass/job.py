@@ -90,9 +90,10 @@ def segment_work(seg: Segment, plan: Plan) -> SegmentWork:
             relpath=f.relpath, array_name=array_name(f.relpath), spec=f.spec, frames=f.frames, seg_offset=off,
             stream=seg.stream, start_time=None if f.start_time is None else f.start_time.isoformat(),
             fingerprint=f.fingerprint or {}, action="skip" if fp is None else _action(fp),
-            full_scale=f.info.full_scale,
+            full_scale=f.info.full_scale, fill=f.nonfinite_fill, filled_spans=f.filled_spans, nan_spans=f.holes,
         ))
-    return SegmentWork(seg.id, seg.stream, seg.sample_rate_hz, seg.channels, seg.frames, tuple(files))
+    return SegmentWork(seg.id, seg.stream, seg.sample_rate_hz, seg.channels, seg.frames, tuple(files),
+                       holes=seg.holes)
 
 
 def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepared:
