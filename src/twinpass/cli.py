@@ -99,6 +99,9 @@ class _EmptyStore:
     def file_records(self) -> dict[str, Any]:
         return {}
 
+    def read_scan_cache(self) -> dict[str, Any]:
+        return {}
+
 
 def cmd_run(args: argparse.Namespace) -> int:
     from .config import load_config

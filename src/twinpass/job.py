@@ -97,8 +97,15 @@ def segment_work(seg: Segment, plan: Plan) -> SegmentWork:
 
 
 def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepared:
-    """Discover the archive, design per rate and plan against what ``store`` records."""
-    disc = discover(cfg)
+    """Discover the archive, design per rate and plan against what ``store`` records.
+
+    Float files are scanned for NaN/Inf only when the store's scan cache holds nothing valid
+    for them (:func:`twinpass.io.archive.discover`); a writable store then gets the updated
+    cache (files gone from the archive drop out). A read-only store is never written.
+    """
+    read_cache = getattr(store, "read_scan_cache", None)
+    cache = read_cache() if read_cache is not None else {}
+    disc = discover(cfg, scan_cache=cache)
     segments, invalid = disc.segments()
     rates = {s.sample_rate_hz for s in segments}
     designs, design_errors = designs_for(cfg, rates)
@@ -117,6 +124,8 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
     digests = {fs: design_digest_for(d, cfg) for fs, d in designs.items()}
     halos = {fs: d.effective_length for fs, d in designs.items()}
     plan = make_plan(segments, invalid, store.file_records(), digests, halos, force=force)
+    if disc.scans != cache and hasattr(store, "write_scan_cache") and getattr(store, "read_only", True) is False:
+        store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]
     return Prepared(cfg, disc, designs, design_errors, plan, work, list(plan.invalid))
 

@@ -85,6 +85,17 @@ not read). What happens to a file holding some depends on ``[processing] nonfini
     or last sample makes the file invalid, naming the run.
 
 A file that cannot be read to its end during the scan is invalid too.
+
+Scan cache
+----------
+A scan's findings (the runs of each channel and, for ``"interpolate"``, the fills) can be
+handed back to the next discovery (``scan_cache``, kept in the output store by the run). A
+file is then not read again while its fingerprint has not changed
+(:func:`~twinpass.core.plan.fingerprint_changed`), its frame and channel counts are the
+same and ``[processing] nonfinite`` and ``max_fill_samples`` are those of the scan; the
+verdict (left out, split, filled) is drawn again from the kept runs, so messages do not
+change. An entry that is malformed or does not fit the file is ignored and the file is
+read. Files with more than :data:`SCAN_CACHE_MAX_RUNS` runs are not kept.
 """
 
 from __future__ import annotations
@@ -93,15 +104,24 @@ import csv
 import datetime as _dt
 import os
 import re
-from dataclasses import dataclass
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import Any
 
 from twinpass.config import JobConfig
-from twinpass.core.nonfinite import ChannelRun, FillSpan, describe_run, fill_problem, union_runs
+from twinpass.core.nonfinite import (
+    ChannelRun,
+    FillSpan,
+    describe_run,
+    fill_problem,
+    join_channel_runs,
+    union_runs,
+)
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
-from twinpass.io.fingerprint import fingerprint_file
+from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
@@ -109,6 +129,7 @@ from twinpass.io.store_util import array_name
 __all__ = [
     "Discovery",
     "NamePattern",
+    "SCAN_CACHE_MAX_RUNS",
     "compile_glob",
     "discover",
     "list_archive",
@@ -119,6 +140,10 @@ UTC = _dt.timezone.utc
 
 _REMEDY_EXCLUDE = "repair or re-export the file, or leave it out with [archive] exclude"
 _DRIVE = re.compile(r"^[A-Za-z]:")
+
+SCAN_CACHE_MAX_RUNS = 10_000
+"""Most channel runs of NaN/Inf samples a file may have for its scan to be kept in the cache
+(the whole cache is one JSON document, rewritten when it changes)."""
 
 
 # -- globbing ----------------------------------------------------------------
@@ -408,6 +433,13 @@ class Discovery:
     """Files left out, each with the reason and what to do."""
     warnings: tuple[str, ...] = ()
     """Non-fatal findings of the readers, prefixed with the relative path."""
+    scans: Mapping[str, dict[str, Any]] = field(default_factory=dict)
+    """Scan cache entries (plain JSON) of the float files scanned or reused, by relative path:
+    ``fingerprint``, ``policy``, ``max_fill_samples``, ``frames``, ``channels``, ``runs``
+    (``[channel, start, stop]`` lists, samples) and ``fills`` (``[channel, start, stop, left,
+    right]`` lists, the :class:`FillSpan` fields). Hand it to the next :func:`discover`."""
+    scanned: tuple[str, ...] = ()
+    """Relative paths of the files whose samples were read for NaN/Inf this time."""
 
     def segments(self) -> tuple[list[Segment], list[InvalidFile]]:
         """Group :attr:`files` into segments; invalid files of discovery and grouping together."""
@@ -479,56 +511,120 @@ def _runs_summary(runs: list[ChannelRun]) -> str:
     )
 
 
-def _scan_nonfinite(
-    cfg: JobConfig, info: Any, spec: Any
-) -> tuple[tuple[tuple[int, int], ...], tuple[FillSpan, ...], str | None]:
-    """Non-finite runs of a float file under ``[processing] nonfinite``, or :class:`_Bad`.
+def _refused(runs: list[ChannelRun], frames: int, max_fill: int) -> list[tuple[ChannelRun, str]]:
+    """Channel runs that linear interpolation cannot fill, each with the reason."""
+    return [(r, why) for r in runs if (why := fill_problem(r, frames, max_fill)) is not None]
 
-    Returns the runs (union over channels), the fills (``"interpolate"``) and a warning.
+
+def _read_scan(cfg: JobConfig, info: Any, spec: Any) -> tuple[list[ChannelRun], tuple[FillSpan, ...]]:
+    """Read a float file to its end for NaN/Inf runs (and, to fill them, their neighbours).
+
+    Fills are taken only under ``nonfinite = "interpolate"`` when every run can be filled.
+    Raises :class:`_Bad` when the file cannot be read.
     """
-    if not holds_floats(info):
-        return (), (), None
-    policy = cfg.processing.nonfinite
-    max_fill = cfg.processing.max_fill_samples
     try:
         with spec.open() as rec:
             runs = scan_channel_runs(rec)
-            if not runs:
-                return (), (), None
-            union = tuple(union_runs(runs))
-            summary = _runs_summary(runs)
-            longest = max(b - a for _c, a, b in runs)
-            if policy == "fail":
-                raise _Bad(
-                    summary,
-                    'set [processing] nonfinite = "split" (the finite pieces are filtered separately and '
-                    'the output is NaN there) or "interpolate" with max_fill_samples >= '
-                    f"{longest} (linear fill), or repair the file",
-                )
-            if policy == "split":
-                return union, (), (
-                    f"{summary}: the samples on either side are filtered as separate pieces; "
-                    "the output is NaN at those samples"
-                )
-            refused = [(r, why) for r in runs if (why := fill_problem(r, info.frames, max_fill)) is not None]
-            if refused:
-                refused.sort(key=lambda rw: (rw[0][1], rw[0][0]))
-                (c, a, b), why = refused[0]
-                more = f" (and {len(refused) - 1} more run(s) that cannot be filled)" if len(refused) > 1 else ""
-                at_end = a <= 0 or b >= info.frames
-                remedy = (
-                    'set [processing] nonfinite = "split", or trim or repair the file'
-                    if at_end
-                    else f"raise [processing] max_fill_samples to {max(r[2] - r[1] for r, _ in refused)} or "
-                    'more, set nonfinite = "split", or repair the file'
-                )
-                raise _Bad(why + more, remedy)
-            fills = fill_spans_for(rec, runs)
+            fills: tuple[FillSpan, ...] = ()
+            if (
+                runs
+                and cfg.processing.nonfinite == "interpolate"
+                and not _refused(runs, info.frames, cfg.processing.max_fill_samples)
+            ):
+                fills = fill_spans_for(rec, runs)
     except (TwinpassError, OSError) as e:
         raise _Bad(
             f"cannot be read to the end while looking for NaN/Inf samples: {_strip_path(str(e), info.path)}",
             _REMEDY_EXCLUDE,
         ) from None
+    return runs, fills
+
+
+def _scan_entry(
+    cfg: JobConfig, info: Any, fp: Mapping[str, Any] | None, runs: list[ChannelRun], fills: tuple[FillSpan, ...]
+) -> dict[str, Any] | None:
+    """The scan cache entry of one file (plain JSON), or ``None`` when it is not to be kept."""
+    if fp is None or len(runs) > SCAN_CACHE_MAX_RUNS:
+        return None
+    return {
+        "fingerprint": dict(fp),
+        "policy": cfg.processing.nonfinite,
+        "max_fill_samples": int(cfg.processing.max_fill_samples),
+        "frames": int(info.frames),
+        "channels": int(info.channels),
+        "runs": [[int(c), int(a), int(b)] for c, a, b in runs],
+        "fills": [[f.channel, f.start, f.stop, float(f.left), float(f.right)] for f in fills],
+    }
+
+
+def _cached_scan(
+    cfg: JobConfig, info: Any, fp: Mapping[str, Any] | None, entry: Any
+) -> tuple[list[ChannelRun], tuple[FillSpan, ...]] | None:
+    """The runs and fills of a scan cache entry that still holds for the file, else ``None``."""
+    if fp is None or not isinstance(entry, Mapping) or not isinstance(entry.get("fingerprint"), Mapping):
+        return None
+    policy, max_fill = cfg.processing.nonfinite, cfg.processing.max_fill_samples
+    if (entry.get("policy"), entry.get("max_fill_samples")) != (policy, max_fill):
+        return None
+    if (entry.get("frames"), entry.get("channels")) != (info.frames, info.channels):
+        return None
+    if fingerprint_changed(entry["fingerprint"], fp)[0]:
+        return None
+    try:
+        runs = [(int(c), int(a), int(b)) for c, a, b in entry["runs"]]
+        fills = tuple(FillSpan(int(c), int(a), int(b), float(lo), float(hi)) for c, a, b, lo, hi in entry["fills"])
+    except (KeyError, TypeError, ValueError):
+        return None
+    if any(not (0 <= c < info.channels and 0 <= a < b <= info.frames) for c, a, b in runs):
+        return None
+    if runs != join_channel_runs(runs):  # sorted and maximal, as a scan gives them
+        return None
+    wanted = runs if runs and policy == "interpolate" and not _refused(runs, info.frames, max_fill) else []
+    if [(f.channel, f.start, f.stop) for f in fills] != wanted:
+        return None
+    if not all(math.isfinite(f.left) and math.isfinite(f.right) for f in fills):
+        return None
+    return runs, fills
+
+
+def _judge_nonfinite(
+    cfg: JobConfig, info: Any, runs: list[ChannelRun], fills: tuple[FillSpan, ...]
+) -> tuple[tuple[tuple[int, int], ...], tuple[FillSpan, ...], str | None]:
+    """What ``[processing] nonfinite`` makes of a file's runs, or :class:`_Bad`.
+
+    Returns the runs (union over channels), the fills (``"interpolate"``) and a warning.
+    """
+    if not runs:
+        return (), (), None
+    policy = cfg.processing.nonfinite
+    union = tuple(union_runs(runs))
+    summary = _runs_summary(runs)
+    longest = max(b - a for _c, a, b in runs)
+    if policy == "fail":
+        raise _Bad(
+            summary,
+            'set [processing] nonfinite = "split" (the finite pieces are filtered separately and '
+            'the output is NaN there) or "interpolate" with max_fill_samples >= '
+            f"{longest} (linear fill), or repair the file",
+        )
+    if policy == "split":
+        return union, (), (
+            f"{summary}: the samples on either side are filtered as separate pieces; "
+            "the output is NaN at those samples"
+        )
+    refused = _refused(runs, info.frames, cfg.processing.max_fill_samples)
+    if refused:
+        refused.sort(key=lambda rw: (rw[0][1], rw[0][0]))
+        (c, a, b), why = refused[0]
+        more = f" (and {len(refused) - 1} more run(s) that cannot be filled)" if len(refused) > 1 else ""
+        at_end = a <= 0 or b >= info.frames
+        remedy = (
+            'set [processing] nonfinite = "split", or trim or repair the file'
+            if at_end
+            else f"raise [processing] max_fill_samples to {max(r[2] - r[1] for r, _ in refused)} or "
+            'more, set nonfinite = "split", or repair the file'
+        )
+        raise _Bad(why + more, remedy)
     return union, fills, f"{summary}: filled by linear interpolation (filled_spans in the output attributes)"
 
 
@@ -654,7 +750,9 @@ def _split_name_clashes(entries: list[FileEntry]) -> tuple[list[FileEntry], list
     return sorted(keep, key=lambda e: order[e.relpath]), bad
 
 
-def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
+def discover(
+    cfg: JobConfig, *, fingerprints: bool = True, scan_cache: Mapping[str, Mapping[str, Any]] | None = None
+) -> Discovery:
     """Find the archive's input files, open each read-only and assign stream and start time.
 
     Parameters
@@ -665,12 +763,16 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
         max_fill_samples, and the output store location.
     fingerprints : bool
         Fingerprint every valid file (mode ``[archive] fingerprint``); ``False`` leaves
-        :attr:`FileEntry.fingerprint` as ``None``.
+        :attr:`FileEntry.fingerprint` as ``None`` (and the scan cache unused).
+    scan_cache : mapping, optional
+        :attr:`Discovery.scans` of an earlier discovery, by relative path: a float file whose
+        entry still holds (see "Scan cache" in the module documentation) is not read again.
 
     Returns
     -------
     Discovery
         Valid files and invalid ones (with reasons); per-file problems never raise.
+        :attr:`Discovery.scans` holds the scan cache entries to keep.
 
     Raises
     ------
@@ -689,6 +791,9 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
     rels = list_archive(cfg)
     entries: list[FileEntry] = []
     warnings: list[str] = []
+    cache = scan_cache or {}
+    scans: dict[str, dict[str, Any]] = {}
+    scanned: list[str] = []
     reported = {b.path for b in invalid}
     for rel in rels:
         if rel in reported:
@@ -704,14 +809,25 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
                     fp = fingerprint_file(abspath, cfg.archive.fingerprint)
                 except InputError as e:
                     raise _Bad(f"cannot be fingerprinted: {_strip_path(str(e), abspath)}", _REMEDY_EXCLUDE) from None
-            runs, fills, note = _scan_nonfinite(cfg, info, spec)
+            runs: list[ChannelRun] = []
+            fills: tuple[FillSpan, ...] = ()
+            if holds_floats(info):
+                got = _cached_scan(cfg, info, fp, cache.get(rel))
+                if got is None:
+                    scanned.append(rel)
+                    got = _read_scan(cfg, info, spec)
+                runs, fills = got
+                entry = _scan_entry(cfg, info, fp, runs, fills)
+                if entry is not None:
+                    scans[rel] = entry
+            union, fills, note = _judge_nonfinite(cfg, info, runs, fills)
         except _Bad as bad:
             invalid.append(InvalidFile(rel, bad.reason, bad.remedy))
             continue
         warnings.extend(f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings)
         if note:
             warnings.append(f"{rel}: {note}")
-        entries.append(FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=runs, nonfinite_fill=fills))
+        entries.append(FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills))
     valid, dups = _split_duplicates(entries)
     invalid.extend(dups)
     valid, clashes = _split_name_clashes(valid)
@@ -740,4 +856,7 @@ def discover(cfg: JobConfig, *, fingerprints: bool = True) -> Discovery:
                     )
                 )
     invalid.sort(key=lambda i: i.path)
-    return Discovery(root=root, files=tuple(valid), invalid=tuple(invalid), warnings=tuple(warnings))
+    return Discovery(
+        root=root, files=tuple(valid), invalid=tuple(invalid), warnings=tuple(warnings), scans=scans,
+        scanned=tuple(scanned),
+    )

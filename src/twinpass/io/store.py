@@ -11,6 +11,8 @@ Layout (zarr_format 3)::
         span     int64   (n_blocks, 2)                       [start, stop) in file frames
         figures  float64 (n_blocks, channels, n_columns)     attribute "columns"; one block per chunk
         seams    float64 (n_blocks, 4, seam_samples, channels) one block per chunk; see SEAM_*
+      _twinpass/scan/                 scan cache (group; attributes {"layout", "files"}): per input
+                                      path, what discovery learnt about its NaN/Inf samples
       .twinpass-lock                  present while a run writes (local stores)
 
 Array attributes are plain JSON (see :func:`json_safe`); ``complete`` is True only once every
@@ -25,7 +27,7 @@ import enum
 import os
 import threading
 import warnings
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -77,6 +79,9 @@ REQUIRED_ATTRS = ("source", "source_fingerprint", "design_digest")
 SEAM_HEAD, SEAM_TAIL, SEAM_BEFORE, SEAM_AFTER = 0, 1, 2, 3
 """Rows of a block's seams: its first and last ``seam_samples`` outputs, and the
 ``seam_samples`` it computed before its start and after its end."""
+
+SCAN_CACHE_LAYOUT = 1
+"""Version of the scan cache's layout (``layout`` attribute of ``_twinpass/scan``)."""
 
 _MAX_ERROR_CHARS = 2000
 _TABLE_CHUNK = 4096
@@ -172,6 +177,9 @@ def _open_zarr_store(location: str, *, read_only: bool) -> LocalStore | FsspecSt
 
 def _table_path(name: str) -> str:
     return f"{RESERVED_PREFIX}/blocks/{name}"
+
+
+_SCAN_PATH = f"{RESERVED_PREFIX}/scan"
 
 
 def _members(group: zarr.Group) -> list[tuple[str, Any]]:
@@ -777,6 +785,43 @@ class OutputStore:
     def array_attrs(self, name: str) -> dict[str, Any]:
         """The attributes of an output array."""
         return self._array(name).attrs.asdict()
+
+    # -- scan cache -----------------------------------------------------------
+
+    def read_scan_cache(self) -> dict[str, dict[str, Any]]:
+        """The scan cache: one JSON object per input path (relative to the archive root).
+
+        Works on a read-only store. Returns ``{}`` when there is no cache, or one written with
+        another layout; entries that are not JSON objects are dropped. The entries' contents
+        are checked by their user (:func:`twinpass.io.archive.discover`).
+        """
+        with self._mutex:
+            node = self._node(_SCAN_PATH)
+            if not isinstance(node, zarr.Group):
+                return {}
+            attrs = node.attrs.asdict()
+        files = attrs.get("files")
+        if attrs.get("layout") != SCAN_CACHE_LAYOUT or not isinstance(files, dict):
+            return {}
+        return {str(k): dict(v) for k, v in files.items() if isinstance(v, dict)}
+
+    def write_scan_cache(self, entries: Mapping[str, Mapping[str, Any]]) -> None:
+        """Replace the whole scan cache with ``entries`` (driver only).
+
+        Paths not in ``entries`` drop out. Values are converted with :func:`json_safe`.
+
+        Raises
+        ------
+        StoreError
+            Read-only store, a value with no JSON form, or a failed write.
+        """
+        self._writable()
+        doc = {
+            "layout": SCAN_CACHE_LAYOUT,
+            "files": json_safe({str(k): dict(v) for k, v in entries.items()}, "scan cache"),
+        }
+        with self._mutex, write_errors(f"the scan cache of {self.location}"):
+            self._root.require_group(_SCAN_PATH).attrs.put(doc)
 
     # -- root information -----------------------------------------------------
 
