@@ -11,6 +11,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import shutil
 from pathlib import Path
 
 import zarr
@@ -19,14 +20,15 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from conftest import make_signal, read_output, write_config, write_stream
+from conftest import BANDPASS, make_signal, read_output, write_config, write_file, write_stream
 from test_carry import EXTENDED, extended_precision_filtfilt
+from test_resume import Crash, CrashingStore, _assert_no_complete_file_misses_a_block
 from twinpass import faults
 from twinpass.config import load_config
 from twinpass.core.checks import FIGURE_INDEX, SEAM_FACTOR
 from twinpass.core.effective import dominant_pole_radius
 from twinpass.engine import dask_client
-from twinpass.engine_carry import carry_layout, run_segment_carry, use_carry
+from twinpass.engine_carry import carry_layout, run_segment_carry, use_carry, zarr_store_like
 from twinpass.errors import ConfigError
 from twinpass.io.store import OutputStore
 from twinpass.job import prepare
@@ -57,10 +59,15 @@ def _signal(channels: int, seed: int) -> np.ndarray:
     return x
 
 
-def _run(folder: Path, client, *, collect: list | None = None, **tables) -> tuple[list, Path]:
-    """Plan the job of ``folder/twinpass.toml`` and run every busy segment in carry mode."""
+def _run(folder: Path, client, *, collect: list | None = None, store_wrapper=None) -> tuple[list, Path]:
+    """Plan the job of ``folder/twinpass.toml`` and run every busy segment in carry mode.
+
+    ``store_wrapper``, when given, wraps the opened output store (injected faults).
+    """
     cfg = load_config(folder / "twinpass.toml")
     store = OutputStore.open(cfg.store_location, mode="a")
+    if store_wrapper is not None:
+        store = store_wrapper(store)
     prep = prepare(cfg, store)
     outcomes = []
     for work in prep.work:
@@ -242,3 +249,118 @@ def test_carry_layout_has_no_halo(tmp_path):
     seg = SegmentWork("s", "deck", FS, 4, 10**6, ())
     layout = carry_layout(seg, cfg)
     assert layout.halo == 0 and layout.block_samples == int(cfg.processing.block_seconds * FS)
+
+
+# ----------------------------------------------------------- crashes between driver writes
+def _blocks(store: Path, arrays, block: int) -> list[list[bytes]]:
+    """The output bytes of every block, per file."""
+    return [[y[i : i + block].tobytes() for i in range(0, len(y), block)] for y in read_output(store, arrays)]
+
+
+def _copy_run(template: Path, folder: Path, client, crash_at: int | None) -> CrashingStore:
+    """Run a copy of ``template`` with the store of ``tests/test_resume.py`` that raises
+    :class:`Crash` instead of its ``crash_at``-th write (an injected fault: the process dies
+    just then); return that store wrapper, whose ``writes`` list what the run wrote."""
+    shutil.copytree(template, folder)
+    made: list[CrashingStore] = []
+
+    def wrap(store):
+        made.append(CrashingStore(store, crash_at))
+        return made[-1]
+
+    try:
+        outcomes, _ = _run(folder, client, store_wrapper=wrap)
+    except Crash:
+        assert crash_at is not None
+    else:
+        assert crash_at is None or crash_at > len(made[0].writes)
+        assert [o.status for o in outcomes] == ["complete"] * 3
+    return made[0]
+
+
+def test_a_carry_run_dying_between_any_two_driver_writes_resumes_correctly(tmp_path, client):
+    """A changed middle file; the run dies before each preparation write and near the end.
+
+    In carry mode every block's output depends on the whole segment, so a block the plan
+    recomputes although the change does not reach it differs from the kept one by rounding
+    (the plan recomputes a whole file whose output is incomplete). Each block of a resumed
+    run must therefore be bit-identical to the uninterrupted run of the change or to a run
+    from scratch over the changed input, and every block the change reaches to both.
+    """
+    # Three files of 2000 samples, blocks of 1000: the 2-40 Hz band-pass's effective length
+    # (several hundred samples) reaches one block into each neighbour of the middle file.
+    frames, block = [2000, 2000, 2000], 1000
+    x = make_signal(sum(frames), 2, FS, seed=12)
+    template = tmp_path / "template"
+    files = write_stream(template / "archive", "deck", x, FS, frames)
+    write_config(template, response=BANDPASS, processing={"block_seconds": block / FS, "mode": "carry"})
+    scratch = tmp_path / "scratch"  # the same archive, run from scratch after the change
+    shutil.copytree(template, scratch)
+    outcomes, _ = _run(template, client)
+    assert [o.status for o in outcomes] == ["complete"] * 3
+    x[2000:4000] = make_signal(2000, 2, FS, seed=13)
+    for folder in (template, scratch):
+        write_file(folder / "archive" / files.relpaths[1], x[2000:4000], FS, "npy")
+    _run(scratch, client)
+    fresh = _blocks(scratch / "out.zarr", files.arrays, block)
+
+    # The uninterrupted rerun of the change: its writes and its blocks are the reference.
+    writes = _copy_run(template, tmp_path / "clean", client, None).writes
+    clean_store = tmp_path / "clean" / "out.zarr"
+    clean = _blocks(clean_store, files.arrays, block)
+    filt = OutputStore.open(str(clean_store), mode="r").array_attrs(files.arrays[0])["filter"]
+    reach = filt["effective_length_samples"]
+    assert filt["edge_samples"] == reach < block
+    # Reference: scipy.signal.sosfiltfilt of the whole new segment with the stored coefficients.
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=filt["edge"],
+                                   padlen=filt["edge_samples"])
+    y = np.concatenate(read_output(clean_store, files.arrays))
+    assert np.abs(y - ref).max() <= filt["tolerance"] * np.abs(x).max()
+    # Blocks whose samples lie within the effective length of the changed samples [2000, 4000).
+    reached = [[off + i * block < 4000 + reach and 2000 - reach < off + (i + 1) * block for i in range(n // block)]
+               for off, n in zip(np.cumsum([0, *frames[:-1]]), frames)]
+    assert reached == [[False, True], [True, True], [True, False]]
+    for f in range(3):
+        for i in range(2):
+            assert (clean[f][i] == fresh[f][i]) or not reached[f][i], (f, i)
+    # Preparation: the neighbours' edge blocks go pending before any file is prepared.
+    first_record = next(i for i, (name, _) in enumerate(writes) if name == "record_block")
+    first_prepare = next(i for i, (name, _) in enumerate(writes) if name == "prepare_file")
+    assert {a for name, a in writes[:first_prepare] if name == "invalidate_blocks"} == {files.arrays[0],
+                                                                                         files.arrays[2]}
+
+    # Die before each preparation write (no block task is running yet) and before each of the
+    # last two writes (every task has finished).
+    for crash_at in sorted({*range(1, first_record + 1), len(writes) - 1, len(writes)}):
+        where = (crash_at, writes[crash_at - 1])
+        folder = tmp_path / f"crash{crash_at}"
+        crashed = _copy_run(template, folder, client, crash_at)
+        assert len(crashed.writes) == crash_at, where
+        store = folder / "out.zarr"
+        _assert_no_complete_file_misses_a_block(store)
+        # No file is left complete with stale blocks: a file whose output is not yet the
+        # uninterrupted run's is still work for the next plan.
+        plan = prepare(load_config(folder / "twinpass.toml"), OutputStore.open(str(store), mode="r"))
+        actions = {f.array_name: f.action for w in plan.work for f in w.files}
+        for a, now, want in zip(files.arrays, _blocks(store, files.arrays, block), clean):
+            assert now == want or actions[a] != "skip", (where, a)
+
+        outcomes, _ = _run(folder, client)  # the rerun after the crash
+        assert all(o.status in ("complete", "skipped") for o in outcomes), where
+        assert _assert_no_complete_file_misses_a_block(store) == 3, where
+        resumed = _blocks(store, files.arrays, block)
+        for f in range(3):
+            for i in range(2):
+                assert resumed[f][i] in (clean[f][i], fresh[f][i]), (where, f, i)
+                assert resumed[f][i] == clean[f][i] or not reached[f][i], (where, f, i)
+
+
+def test_zarr_store_like_names_the_stores_the_output_store_uses(tmp_path):
+    # file:// URLs name local folders (RFC 8089); other fsspec URLs are passed to Zarr as they are.
+    assert zarr_store_like(f"file://{tmp_path}/a/../out.zarr") == str(tmp_path / "out.zarr")
+    assert zarr_store_like(str(tmp_path / "out.zarr")) == str(tmp_path / "out.zarr")
+    assert zarr_store_like("memory://carry/out.zarr") == "memory://carry/out.zarr"
+    # Zarr opens what it returns as the very store the output store writes.
+    for location in (f"file://{tmp_path}/out.zarr", "memory://carry/out.zarr"):
+        OutputStore.open(location, mode="a").set_root_info({"stream": "deck"}, versions={})
+        assert zarr.open_group(zarr_store_like(location), mode="r").attrs["twinpass"]["spec"] == {"stream": "deck"}

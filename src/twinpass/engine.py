@@ -535,8 +535,12 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
     return jobs
 
 
-def _record(store: Any, res: BlockResult) -> BlockResult:
-    """Record a block's outcome; a refused record (e.g. data missing) becomes the block's error."""
+def record_result(store: Any, res: BlockResult) -> BlockResult:
+    """Record a block's outcome in its block table (driver only; after its data are written).
+
+    A record the store refuses (e.g. "done" while a data chunk is missing) is recorded as
+    status ``ERROR`` with the store's message instead; the result actually recorded is returned.
+    """
     try:
         store.record_block(res.array_name, res.block_index, res.status, res.figures, res.seams, res.error)
         return res
@@ -573,7 +577,7 @@ def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: Progres
         except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
             res = BlockResult(job.array_name, job.block_index, ERROR,
                               error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
-        res = _record(store, res)
+        res = record_result(store, res)
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
         if res.status == ERROR:
@@ -598,7 +602,7 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
                 a = file_attrs(seg, fw, design, cfg, layout, edge_samples)
                 store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
     # An unchanged file whose block fails a seam now is reported (and rerun next time).
-    checked = touched | _seam_pass(seg, store, spans_by_file, touched, design, cfg)
+    checked = touched | seam_pass(seg, store, spans_by_file, touched, design, cfg)
     outcomes = []
     elapsed = time.perf_counter() - t0
     for fw in seg.files:
@@ -676,8 +680,8 @@ class _MutableTable:
         self.errors = dict(table.errors)
 
 
-def _seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple[int, int]]],
-               touched: set[str], design: Design, cfg: JobConfig) -> set[str]:
+def seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple[int, int]]],
+              touched: set[str], design: Design, cfg: JobConfig) -> set[str]:
     """Compare each block's samples beyond its edges with its neighbours' own samples.
 
     Mismatches are relative to the segment's largest |input| (the reference of the
@@ -736,3 +740,8 @@ def _seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple
         if status == FAIL and int(t.status[idx]) in DONE:
             failed.add(name)
     return failed
+
+
+# Former private names, kept for callers that still use them.
+_record = record_result
+_seam_pass = seam_pass

@@ -56,7 +56,13 @@ digest of the design, the edge handling, the files (with fingerprints) and the p
 changed key starts over. Every step is idempotent and deterministic, so a rerun skips the
 pieces whose step results are recorded, recomputes the scans bit for bit and writes
 output identical to an uninterrupted run. Block statuses, figures and seams go to the
-normal block tables through the store API, as in the halo mode.
+normal block tables through the store API, as in the halo mode. Output arrays and block
+tables are prepared and finished by the halo mode's own
+:func:`twinpass.engine.prepare_segment` and :func:`twinpass.engine.finish_segment`, so a run
+killed between any two driver writes is as safe as there (see the crash-safety notes of
+:mod:`twinpass.engine`): blocks a neighbour's change reaches are set pending before any file
+records its new input, and a file recomputed from scratch carries
+:data:`twinpass.engine.RESETTING_DIGEST` until its block table is reset.
 
 Seams. With exact carrying a block's output equals the whole-segment output, so the
 samples beyond its edges are its neighbours' own samples. The seam check still tests the
@@ -84,29 +90,25 @@ from scipy import signal
 from . import faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
-from .core.blocks import Layout, blocks_touching, choose_layout
+from .core.blocks import Layout, choose_layout
 from .core.carry import carry_states, steady_state, transition_matrix
 from .core.types import Design
 from .engine import (
-    DONE,
     ERROR,
-    FAIL,
-    PASS,
-    WARN,
     BlockResult,
     FileOutcome,
     ProgressFn,
     SegmentWork,
     SourceSlice,
-    _seam_pass,
-    file_attrs,
-    read_segment_window,
-    segment_edge_samples,
     design_digest_for,
+    finish_segment,
+    prepare_segment,
+    read_segment_window,
+    record_result,
+    segment_edge_samples,
 )
 from .errors import ConfigError, KernelError, TwinpassError
-from .io.store import _open_zarr_store
-from .io.store_util import RESERVED_PREFIX, json_safe
+from .io.store_util import RESERVED_PREFIX, json_safe, local_path
 
 __all__ = [
     "CarryRecord",
@@ -116,6 +118,7 @@ __all__ = [
     "carry_pieces",
     "run_segment_carry",
     "use_carry",
+    "zarr_store_like",
 ]
 
 log = logging.getLogger("twinpass.engine.carry")
@@ -441,11 +444,24 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
 
 
 # ------------------------------------------------------------------- scratch arrays
+def zarr_store_like(location: str) -> str:
+    """An output store location as Zarr's own ``store`` argument (a documented ``StoreLike``).
+
+    Plain paths and ``file://`` URLs become the resolved local folder, which Zarr opens as a
+    :class:`zarr.storage.LocalStore`; other fsspec URLs (e.g. ``memory://out.zarr``) are kept,
+    and Zarr opens them as a :class:`zarr.storage.FsspecStore`: the same stores
+    :class:`twinpass.io.store.OutputStore` uses for that location. Open with ``mode="r"``
+    for reading only.
+    """
+    path = local_path(location)
+    return location if path is None else str(path)
+
+
 def _write_scratch(location: str, path: str, data: np.ndarray) -> None:
     import zarr
 
-    arr = zarr.create_array(_open_zarr_store(location, read_only=False), name=path, shape=data.shape, chunks=data.shape, dtype="float64",
-                            fill_value=0.0, compressors=None, overwrite=True)
+    arr = zarr.create_array(zarr_store_like(location), name=path, shape=data.shape, chunks=data.shape,
+                            dtype="float64", fill_value=0.0, compressors=None, overwrite=True)
     arr[...] = data
 
 
@@ -454,7 +470,7 @@ def _read_scratch(location: str, path: str | None) -> np.ndarray | None:
     import zarr
 
     try:
-        arr = zarr.open_array(_open_zarr_store(location, read_only=True), path=path, mode="r")
+        arr = zarr.open_array(zarr_store_like(location), path=path, mode="r")
     except (FileNotFoundError, KeyError, zarr.errors.BaseZarrError):
         return None
     return np.ascontiguousarray(np.asarray(arr[...]).T)
@@ -483,7 +499,7 @@ class CarryRecord:
 
         self.location, self.path, self.key = location, f"{RESERVED_PREFIX}/carry/{slug}", key
         self.m, shape_state = pieces, (pieces, sections, 2, channels)
-        root = zarr.open_group(_open_zarr_store(location, read_only=False), mode="a", zarr_format=3)
+        root = zarr.open_group(zarr_store_like(location), mode="a", zarr_format=3)
         parent = root.require_group(f"{RESERVED_PREFIX}/carry")
         group = parent.get(slug)
         shapes = {**{a: shape_state for a in self.STATE_ARRAYS},
@@ -656,30 +672,10 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
     t0 = time.perf_counter()
     layout = carry_layout(seg, cfg)
     n = segment_edge_samples(seg.frames, design, cfg)
-    k = cfg.checks.seam_samples
     sos = np.asarray(design.sos, dtype=np.float64)
-    spans_by_file: dict[str, list[tuple[int, int]]] = {}
-    todo_by_file: dict[str, list[int]] = {}
-    for fw in seg.files:
-        spans = layout.spans(fw.frames)
-        spans_by_file[fw.array_name] = spans
-        if fw.action == "skip":
-            continue
-        attrs = file_attrs(seg, fw, design, cfg, layout, n)
-        attrs["blocks"]["mode"] = "carry"
-        table = store.prepare_file(
-            fw.array_name, frames=fw.frames, channels=seg.channels, dtype=cfg.output.dtype,
-            chunk_samples=layout.chunk_for(fw.frames), compression=cfg.output.compression, attrs=attrs,
-            spans=spans, n_figures_columns=list(_checks.FIGURES), seam_samples=k, keep_done=fw.action != "all",
-        )
-        status = np.asarray(table.status)
-        todo = [i for i in range(len(spans)) if status[i] not in DONE]
-        if isinstance(fw.action, tuple):
-            redo = blocks_touching(spans, fw.action)
-            if redo:
-                store.invalidate_blocks(fw.array_name, redo)
-            todo = sorted(set(todo) | set(redo))
-        todo_by_file[fw.array_name] = todo
+    # The crash-safe preparation of the halo mode (neighbours' blocks pending first, a reset
+    # file marked by RESETTING_DIGEST until its table is reset), with blocks.mode = "carry".
+    spans_by_file, todo_by_file = prepare_segment(seg, design, cfg, store, layout, n, mode="carry")
     run_count: dict[str, int] = {}
     if any(todo_by_file.values()):
         pieces = carry_pieces(seg, spans_by_file, n, layout.block_samples)
@@ -687,7 +683,10 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
                              len(pieces), sos.shape[0], seg.channels)
         run_count = _run_carry(seg, design, cfg, store, client, pieces, record, todo_by_file, n, sos,
                                forward_output, on_block)
-    return _finish_segment(seg, design, cfg, store, layout, n, spans_by_file, run_count, t0)
+    outcomes = finish_segment(seg, design, cfg, store, layout, n, spans_by_file, run_count, t0)
+    if seg.has_work and not any(o.status == "failed" for o in outcomes):
+        _drop_scratch(store.location, _slug(seg.segment_id))
+    return outcomes
 
 
 def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any, pieces: list[Piece],
@@ -750,7 +749,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
 
     def report(res: BlockResult) -> None:
         nonlocal done
-        store.record_block(res.array_name, res.block_index, res.status, res.figures, res.seams, res.error)
+        res = record_result(store, res)
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
         if res.status == ERROR:
@@ -787,48 +786,12 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     return run_count
 
 
-def _finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout,
-                    edge_samples: int, spans_by_file: dict[str, list[tuple[int, int]]],
-                    run_count: dict[str, int], t0: float) -> list[FileOutcome]:
-    """Seam checks, segment attributes of unchanged files, completion flags and outcomes."""
-    touched = {fw.array_name for fw in seg.files if fw.action != "skip"}
-    for fw in seg.files:
-        if touched and fw.action == "skip":
-            a = file_attrs(seg, fw, design, cfg, layout, edge_samples)
-            store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
-    _seam_pass(seg, store, spans_by_file, touched, design, cfg)
-    outcomes = []
-    elapsed = time.perf_counter() - t0
-    all_ok = True
-    for fw in seg.files:
-        count = len(spans_by_file[fw.array_name])
-        if fw.array_name not in touched:
-            outcomes.append(FileOutcome(fw.relpath, fw.array_name, count, 0, count, 0, "skipped"))
-            continue
-        table = store.read_block_table(fw.array_name)
-        status = np.asarray(table.status)
-        finished = np.isin(status, DONE)
-        ok = bool(np.all(finished))
-        all_ok &= ok
-        summary = _checks.summarise(table.figures)
-        for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
-            summary[f"blocks_{name}"] = int(np.sum(status == code))
-        store.set_complete(fw.array_name, ok, summary)
-        outcomes.append(FileOutcome(fw.relpath, fw.array_name, count, run_count.get(fw.array_name, 0),
-                                    int(np.sum(finished)), int(np.sum(~finished)),
-                                    "complete" if ok else "failed", elapsed, dict(table.errors), summary))
-    if touched and all_ok:
-        _drop_scratch(store.location, _slug(seg.segment_id))
-    return outcomes
-
-
 def _drop_scratch(location: str, slug: str) -> None:
     """Delete a finished segment's scratch forward outputs (the small carried states stay)."""
     import zarr
 
     try:
-        group = zarr.open_group(_open_zarr_store(location, read_only=False), path=f"{RESERVED_PREFIX}/carry/{slug}",
-                                mode="r+")
+        group = zarr.open_group(zarr_store_like(location), path=f"{RESERVED_PREFIX}/carry/{slug}", mode="r+")
     except (FileNotFoundError, KeyError, zarr.errors.BaseZarrError):
         return
     if "forward" in group:
