@@ -225,7 +225,7 @@ def _as_2d(a: np.ndarray) -> np.ndarray:
     return arr[:, None] if arr.ndim == 1 else arr
 
 
-MAX_SEGMENTS: int = 24
+MAX_SEGMENTS: int = 16
 """Welch segments a block's response check averages at most. Longer blocks spread this many
 segments evenly over the block instead of overlapping them by half, which bounds the cost of
 the check per block (the estimate's random error depends on the number of segments, about
