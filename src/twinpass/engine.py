@@ -422,7 +422,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
             "effective_length_samples": int(L),
         },
         "design_digest": design_digest_for(design, cfg),
-        "blocks": {"block_samples": layout.block_samples, "chunk_samples": layout.chunk_for(fw.frames),
+        "blocks": {"block_samples": layout.block_for(fw.frames), "chunk_samples": layout.chunk_for(fw.frames),
                    "halo_samples": layout.halo},
     }
 

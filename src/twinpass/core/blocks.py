@@ -11,8 +11,10 @@ from dataclasses import dataclass
 
 MIN_BLOCK_SAMPLES = 65536
 """Smallest automatic block core (samples)."""
-HALOS_PER_BLOCK = 20
-"""Automatic blocks are at least this many halos long: halo overhead 2/20 = 10 % or less."""
+HALOS_PER_BLOCK = 24
+"""Automatic blocks are at least this many halos long: halo overhead 2/24 (8.3 %) or less,
+before the balancing of :meth:`Layout.block_for` (which keeps it below 2/12 in the worst case
+of a file just over one block, and near 2/24 for files of several blocks)."""
 BYTES_PER_WINDOW_SAMPLE = 8 * 5
 """float64 working copies per window sample and channel: input, extension, forward,
 backward and output (a conservative count used for the memory budget)."""
@@ -23,16 +25,32 @@ class Layout:
     """Block and chunk lengths for one sample rate and channel count (samples)."""
 
     block_samples: int
+    """Longest block core (samples)."""
     chunk_samples: int
     halo: int
+    balanced: bool = False
+    """Cut each file into blocks of equal length (at most ``block_samples``) instead of full
+    blocks and a short remainder, whose halos would cost as much as a full block's."""
+
+    def block_for(self, frames: int) -> int:
+        """Block core length (samples) used for a file of ``frames`` samples."""
+        if not self.balanced or frames <= self.block_samples:
+            return self.block_samples
+        n = -(-frames // self.block_samples)
+        b = -(-frames // n)
+        if self.chunk_samples < self.block_samples:  # whole chunks per block
+            b = -(-b // self.chunk_samples) * self.chunk_samples
+        return min(b, self.block_samples)
 
     def spans(self, frames: int) -> list[tuple[int, int]]:
         """Block cores [start, stop) covering a file of ``frames`` samples."""
-        return [(s, min(s + self.block_samples, frames)) for s in range(0, frames, self.block_samples)]
+        b = self.block_for(frames)
+        return [(s, min(s + b, frames)) for s in range(0, frames, b)]
 
     def chunk_for(self, frames: int) -> int:
         """Chunk length of a file's output array (never longer than the file)."""
-        return max(1, min(self.chunk_samples, frames))
+        chunk = self.block_for(frames) if self.chunk_samples == self.block_samples else self.chunk_samples
+        return max(1, min(chunk, frames))
 
 
 def choose_layout(
@@ -55,8 +73,9 @@ def choose_layout(
     halo : int
         Halo per side in samples (the design's effective length), or 0 in carry mode.
     block_seconds : float or None
-        Requested block core length in seconds; None chooses ``max(20 * halo, 65536)``
-        samples, capped by the memory budget.
+        Requested block core length in seconds (used as given); None chooses
+        ``max(24 * halo, 65536)`` samples, capped by the memory budget, and balances the
+        blocks of each file (see :meth:`Layout.block_for`).
     chunk_seconds : float or None
         Output chunk length in seconds; None makes one chunk per block. Blocks are rounded
         up to a whole number of chunks.
@@ -77,7 +96,7 @@ def choose_layout(
         block = int(math.ceil(block / chunk)) * chunk
     else:
         chunk = block
-    return Layout(block_samples=block, chunk_samples=chunk, halo=halo)
+    return Layout(block_samples=block, chunk_samples=chunk, halo=halo, balanced=block_seconds is None)
 
 
 def blocks_touching(spans: list[tuple[int, int]], redo: tuple[tuple[int, int], ...]) -> list[int]:
