@@ -255,13 +255,9 @@ class Plan:
 
 def _merge(spans: Iterable[Span]) -> tuple[Span, ...]:
     """Sort spans and merge the ones that overlap or touch; drop empty ones."""
-    out: list[list[int]] = []
-    for a, b in sorted((int(a), int(b)) for a, b in spans if b > a):
-        if out and a <= out[-1][1]:
-            out[-1][1] = max(out[-1][1], b)
-        else:
-            out.append([a, b])
-    return tuple((a, b) for a, b in out)
+    from .nonfinite import merge_runs  # imported here: nonfinite imports the kernel
+
+    return tuple(merge_runs(spans))
 
 
 def _segment_start(segment_id: str | None) -> _dt.datetime | None:
