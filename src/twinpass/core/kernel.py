@@ -7,8 +7,11 @@ the segment). At the segment's ends the signal is extended the way
 ``scipy.signal.sosfiltfilt`` / ``scipy.signal.filtfilt`` extend it (``padtype``, ``padlen``),
 so a window that covers the whole segment reproduces those functions to rounding.
 
-Internally the arithmetic runs channel-major (channels, samples) in float64, which is what
-``scipy.signal.sosfilt`` does itself after moving the time axis last.
+IIR arithmetic runs time-major in float64 through :func:`twinpass.core.loops.sos_cascade`
+(the same operations as ``scipy.signal.sosfilt``, bit for bit, without transposing the
+window); the backward pass runs in place from the last sample. FIR arithmetic runs
+channel-major (channels, samples), as ``scipy.signal.lfilter`` does after moving the time
+axis last.
 """
 
 from __future__ import annotations
@@ -17,6 +20,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import signal
 
+from twinpass.core.loops import sos_cascade
 from twinpass.core.types import EDGE_MODES
 from twinpass.errors import KernelError
 
@@ -250,7 +254,8 @@ def unit_steady_state(*, sos: np.ndarray | None = None, taps: np.ndarray | None 
     return _unit_steady_state_cached(coeffs.tobytes(), taps is not None)
 
 
-def _as_channel_major(window: np.ndarray) -> np.ndarray:
+def _as_time_major(window: np.ndarray) -> np.ndarray:
+    """The window as a C-contiguous float64 (samples, channels) array (no copy if it is one)."""
     w = np.asarray(window)
     if w.ndim == 1:
         w = w[:, None]
@@ -260,7 +265,38 @@ def _as_channel_major(window: np.ndarray) -> np.ndarray:
         )
     if not (np.issubdtype(w.dtype, np.integer) or np.issubdtype(w.dtype, np.floating)):
         raise KernelError(f"window samples must be integers or floats; got dtype {w.dtype}.")
-    return np.ascontiguousarray(w.T, dtype=np.float64)
+    return np.ascontiguousarray(w, dtype=np.float64)
+
+
+def _extend_ends(x: np.ndarray, n_left: int, n_right: int, edge: str) -> np.ndarray:
+    """Extend a time-major array, each end independently, like :func:`extend`."""
+    if n_left == 0 and n_right == 0:
+        return x
+    parts = []
+    if n_left:
+        parts.append(extend(x[: n_left + 1], n_left, edge)[:n_left])
+    parts.append(x)
+    if n_right:
+        parts.append(extend(x[-(n_right + 1) :], n_right, edge)[-n_right:])
+    return np.concatenate(parts, axis=0)
+
+
+def _sos_two_pass(
+    sos: np.ndarray, x: np.ndarray, n_left: int, n_right: int, edge: str, out_start: int, out_stop: int
+) -> np.ndarray:
+    """Literal two-pass of time-major ``x`` with sections ``sos``, as ``sosfiltfilt`` does it.
+
+    Same arguments and result as :func:`_fir_two_pass` (outputs ``[out_start, out_stop)`` of
+    ``x``), time-major: the forward pass writes a new array and the backward pass runs in
+    place over it from the last sample down to the first requested output.
+    """
+    zi_unit = unit_steady_state(sos=sos)[:, :, None]  # (sections, 2, 1)
+    ext = x if (n_left == 0 and n_right == 0) else _extend_ends(x, n_left, n_right, edge)
+    y = sos_cascade(sos, ext, zi_unit * ext[0])
+    lo = n_left + out_start
+    back = y[lo:]
+    sos_cascade(sos, back, zi_unit * y[-1], back, reverse=True)
+    return y[lo : n_left + out_stop]
 
 
 def _extend_channel_major(x: np.ndarray, n_left: int, n_right: int, edge: str) -> np.ndarray:
@@ -274,13 +310,6 @@ def _extend_channel_major(x: np.ndarray, n_left: int, n_right: int, edge: str) -
     if n_right:
         parts.append(extend(x[:, -(n_right + 1) :].T, n_right, edge)[-n_right:].T)
     return np.concatenate(parts, axis=1)
-
-
-def _sos_pass(sos: np.ndarray, x: np.ndarray, zi_unit: np.ndarray, first: np.ndarray) -> np.ndarray:
-    """One ``sosfilt`` pass along axis -1 of (channels, samples), steady state on ``first``."""
-    zi = zi_unit[:, None, :] * first[None, :, None]  # (sections, channels, 2)
-    y, _ = signal.sosfilt(sos, x, axis=-1, zi=zi)
-    return y
 
 
 def _fir_pass(taps: np.ndarray, x: np.ndarray, zi_unit: np.ndarray, first: np.ndarray) -> np.ndarray:
@@ -299,9 +328,8 @@ def _fir_pass(taps: np.ndarray, x: np.ndarray, zi_unit: np.ndarray, first: np.nd
     return y
 
 
-def _two_pass(
-    coeffs: np.ndarray,
-    is_fir: bool,
+def _fir_two_pass(
+    taps: np.ndarray,
     x: np.ndarray,
     n_left: int,
     n_right: int,
@@ -309,23 +337,18 @@ def _two_pass(
     out_start: int,
     out_stop: int,
 ) -> np.ndarray:
-    """Literal two-pass on (channels, samples) ``x`` as sosfiltfilt/filtfilt do it.
+    """Literal two-pass FIR on (channels, samples) ``x`` as ``filtfilt`` does it.
 
     ``n_left``/``n_right`` samples of extension are added at the respective end (0: that
     end is an interior cut and the steady-state initial condition stands in for the
     missing history). Returns output samples ``[out_start, out_stop)`` of ``x``.
     """
-    if is_fir:
-        zi_unit = unit_steady_state(taps=coeffs)
-        one_pass = _fir_pass
-    else:
-        zi_unit = unit_steady_state(sos=coeffs)
-        one_pass = _sos_pass
+    zi_unit = unit_steady_state(taps=taps)
     ext = _extend_channel_major(x, n_left, n_right, edge)
-    y_f = one_pass(coeffs, ext, zi_unit, ext[:, 0])
+    y_f = _fir_pass(taps, ext, zi_unit, ext[:, 0])
     # The backward pass only needs to reach the first requested output sample.
     rev = y_f[:, : n_left + out_start - 1 : -1] if n_left + out_start > 0 else y_f[:, ::-1]
-    y_b = one_pass(coeffs, np.ascontiguousarray(rev), zi_unit, y_f[:, -1])
+    y_b = _fir_pass(taps, np.ascontiguousarray(rev), zi_unit, y_f[:, -1])
     y = y_b[:, ::-1]  # now y[:, 0] is output sample out_start of x
     return y[:, : out_stop - out_start]
 
@@ -388,8 +411,8 @@ def filtfilt_window(
         raise KernelError("give exactly one of 'sos' (IIR) and 'taps' (FIR) to filtfilt_window.")
     _check_edge(edge)
     one_d = np.ndim(window) == 1
-    x = _as_channel_major(window)
-    length = x.shape[1]
+    x = _as_time_major(window)
+    length = x.shape[0]
     core_start, core_stop = int(core_start), int(core_stop)
     if not 0 <= core_start < core_stop <= length:
         raise KernelError(
@@ -412,13 +435,14 @@ def filtfilt_window(
         coeffs = np.asarray(sos, dtype=np.float64)
         if coeffs.ndim != 2 or coeffs.shape[1] != 6:
             raise KernelError(f"sos must have shape (n_sections, 6); got {coeffs.shape}.")
-        y = _two_pass(coeffs, False, x, n_left, n_right, edge, core_start, core_stop)
+        out = _sos_two_pass(coeffs, x, n_left, n_right, edge, core_start, core_stop)
     else:
         h = np.asarray(taps, dtype=np.float64)
         if h.ndim != 1 or h.size < 1:
             raise KernelError(f"taps must be a non-empty 1-D array; got shape {h.shape}.")
-        y = _fir_core(h, x, core_start, core_stop, at_start, at_end, n_left, n_right, edge)
-    out = np.ascontiguousarray(y.T)
+        y = _fir_core(h, np.ascontiguousarray(x.T), core_start, core_stop, at_start, at_end,
+                      n_left, n_right, edge)
+        out = np.ascontiguousarray(y.T)
     return out[:, 0] if one_d else out
 
 
@@ -450,19 +474,19 @@ def _fir_core(
     if not (left_ok and right_ok) or (ends and length <= ends * piece):
         # Short halo, or a window at a segment end too short to split: the literal
         # procedure on the whole window.
-        return _two_pass(h, True, x, n_left, n_right, edge, core_start, core_stop)
+        return _fir_two_pass(h, x, n_left, n_right, edge, core_start, core_stop)
 
     parts = []
     lo, hi = core_start, core_stop
     if at_start and lo < m1:
         stop = min(hi, m1)
-        parts.append(_two_pass(h, True, x[:, :piece], n_left, 0, edge, lo, stop))
+        parts.append(_fir_two_pass(h, x[:, :piece], n_left, 0, edge, lo, stop))
         lo = stop
     tail = None
     if at_end and hi > length - m1 and hi > lo:
         start = max(lo, length - m1)
         off = length - piece
-        tail = _two_pass(h, True, x[:, off:], 0, n_right, edge, start - off, hi - off)
+        tail = _fir_two_pass(h, x[:, off:], 0, n_right, edge, start - off, hi - off)
         hi = start
     if hi > lo:
         g = autocorrelation(h)

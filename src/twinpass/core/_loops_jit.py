@@ -1,0 +1,115 @@
+"""numba versions of the loops in :mod:`twinpass.core.loops` (imported on first use).
+
+Compiled machine code is cached on disk beside this file (numba's ``cache=True``; where that
+folder is read-only numba uses its user-wide cache folder), so a process pays for compiling
+only once per machine and for loading (a fraction of a second) once per process.
+"""
+
+# ruff: noqa: E702
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+_CHUNK_ROWS = 2048
+"""Rows per cache block: each section sweeps this many rows (128 KiB at 8 channels) before
+the next section runs on them, so the cascade's data stays in the L2 cache."""
+
+_jit = numba.njit(nogil=True, cache=True, boundscheck=False)
+
+
+@_jit
+def _rows4(b0, b1, b2, a1, a2, src, dst, z, q, c, i0, i1, step):  # type: ignore[no-untyped-def]
+    # One section over rows i0, i0+step, ... (i1 excluded) for channels c..c+3; the
+    # operations are sosfilt's, in its order, with the state held in registers.
+    za0 = z[q, 0, c]; zb0 = z[q, 0, c + 1]; zc0 = z[q, 0, c + 2]; zd0 = z[q, 0, c + 3]
+    za1 = z[q, 1, c]; zb1 = z[q, 1, c + 1]; zc1 = z[q, 1, c + 2]; zd1 = z[q, 1, c + 3]
+    i = i0
+    while i != i1:
+        xa = src[i, c]; xb = src[i, c + 1]; xc = src[i, c + 2]; xd = src[i, c + 3]
+        ya = b0 * xa + za0; yb = b0 * xb + zb0; yc = b0 * xc + zc0; yd = b0 * xd + zd0
+        za0 = b1 * xa - a1 * ya + za1; zb0 = b1 * xb - a1 * yb + zb1
+        zc0 = b1 * xc - a1 * yc + zc1; zd0 = b1 * xd - a1 * yd + zd1
+        za1 = b2 * xa - a2 * ya; zb1 = b2 * xb - a2 * yb
+        zc1 = b2 * xc - a2 * yc; zd1 = b2 * xd - a2 * yd
+        dst[i, c] = ya; dst[i, c + 1] = yb; dst[i, c + 2] = yc; dst[i, c + 3] = yd
+        i += step
+    z[q, 0, c] = za0; z[q, 0, c + 1] = zb0; z[q, 0, c + 2] = zc0; z[q, 0, c + 3] = zd0
+    z[q, 1, c] = za1; z[q, 1, c + 1] = zb1; z[q, 1, c + 2] = zc1; z[q, 1, c + 3] = zd1
+
+
+@_jit
+def _rows_all_sections(sos, src, dst, z, c, i0, i1, step):  # type: ignore[no-untyped-def]
+    # One channel, every section per sample (sosfilt's own loop order): the sections
+    # of one sample overlap in the pipeline, which suits a lone channel.
+    ns = sos.shape[0]
+    i = i0
+    while i != i1:
+        v = src[i, c]
+        for q in range(ns):
+            y = sos[q, 0] * v + z[q, 0, c]
+            z[q, 0, c] = sos[q, 1] * v - sos[q, 4] * y + z[q, 1, c]
+            z[q, 1, c] = sos[q, 2] * v - sos[q, 5] * y
+            v = y
+        dst[i, c] = v
+        i += step
+
+
+@_jit
+def _cascade_jit(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
+    n, nc = x.shape
+    ns = sos.shape[0]
+    groups = nc // 4
+    for k in range((n + _CHUNK_ROWS - 1) // _CHUNK_ROWS):
+        if reverse:
+            hi = n - k * _CHUNK_ROWS
+            lo = max(0, hi - _CHUNK_ROWS)
+            i0, i1, step = hi - 1, lo - 1, -1
+        else:
+            lo = k * _CHUNK_ROWS
+            hi = min(n, lo + _CHUNK_ROWS)
+            i0, i1, step = lo, hi, 1
+        if groups:
+            for q in range(ns):
+                b0, b1, b2, a1, a2 = sos[q, 0], sos[q, 1], sos[q, 2], sos[q, 4], sos[q, 5]
+                for g in range(groups):
+                    if q == 0:
+                        _rows4(b0, b1, b2, a1, a2, x, out, z, q, 4 * g, i0, i1, step)
+                    else:
+                        _rows4(b0, b1, b2, a1, a2, out, out, z, q, 4 * g, i0, i1, step)
+        for c in range(4 * groups, nc):
+            _rows_all_sections(sos, x, out, z, c, i0, i1, step)
+
+
+@_jit
+def _stats_jit(a):  # type: ignore[no-untyped-def]
+    n, nc = a.shape
+    bad = np.zeros(nc)
+    ss = np.zeros(nc)
+    peak = np.zeros(nc)
+    for i in range(n):
+        for c in range(nc):
+            v = a[i, c]
+            if np.isfinite(v):
+                ss[c] += v * v
+                m = abs(v)
+                if m > peak[c]:
+                    peak[c] = m
+            else:
+                bad[c] += 1.0
+    return bad, ss, peak
+
+
+@_jit
+def _int24_jit(raw, scale, big_endian):  # type: ignore[no-untyped-def]
+    n = raw.shape[0] // 3
+    out = np.empty(n)
+    for i in range(n):
+        if big_endian:
+            v = (np.int32(raw[3 * i]) << 16) | (np.int32(raw[3 * i + 1]) << 8) | np.int32(raw[3 * i + 2])
+        else:
+            v = np.int32(raw[3 * i]) | (np.int32(raw[3 * i + 1]) << 8) | (np.int32(raw[3 * i + 2]) << 16)
+        if v >= 8388608:
+            v -= 16777216
+        out[i] = v * scale
+    return out

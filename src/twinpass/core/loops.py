@@ -1,0 +1,167 @@
+"""Compiled inner loops of the block pipeline, each with a plain numpy/scipy equivalent.
+
+Three loops dominate the cost of a block after reading: the cascade of second-order
+sections run twice over the window, the integrity statistics of input and output, and
+the decoding of packed 24-bit samples. Written with numpy they sweep a time-major
+(samples, channels) array several times and transpose it (``scipy.signal.sosfilt`` moves
+the time axis last and works one channel at a time, so each sample's state update waits
+for the previous one). The compiled versions (numba) make one pass in the arrays' own
+layout and run four channels side by side, which hides the latency of the recursion.
+
+Exactness. :func:`sos_cascade` performs, per section and sample, the same operations in
+the same order as ``scipy.signal.sosfilt`` (transposed direct form II), so both give
+bit-identical outputs and final states; the tests hold them to equality. The numpy
+fallback is used when numba cannot be imported or ``TWINPASS_JIT=0`` is set.
+
+Conventions: arrays are time-major, shape (samples, channels), float64; a cascade state
+has shape (n_sections, 2, channels), as ``sosfilt(..., axis=0, zi=...)`` takes it.
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from typing import Any, Callable
+
+import numpy as np
+from scipy import signal
+
+__all__ = ["jit_enabled", "sos_cascade", "channel_stats", "int24_to_float"]
+
+# ----------------------------------------------------------------------------- numpy
+
+
+def _cascade_numpy(sos: np.ndarray, x: np.ndarray, z: np.ndarray, out: np.ndarray, reverse: bool) -> None:
+    if reverse:
+        y, zf = signal.sosfilt(sos, x[::-1], axis=0, zi=z)
+        out[::-1] = y
+    else:
+        y, zf = signal.sosfilt(sos, x, axis=0, zi=z)
+        out[...] = y
+    z[...] = zf
+
+
+def _stats_numpy(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    finite = np.isfinite(a)
+    bad = np.count_nonzero(~finite, axis=0).astype(np.float64)
+    clean = np.where(finite, a, 0.0)
+    return bad, np.sum(clean * clean, axis=0), np.max(np.abs(clean), axis=0, initial=0.0)
+
+
+def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool) -> np.ndarray:
+    b = raw.reshape(-1, 3)
+    if big_endian:
+        b = b[:, ::-1]
+    wide = np.zeros((b.shape[0], 4), dtype=np.uint8)
+    wide[:, 1:] = b  # little-endian int32 holding value << 8
+    v = wide.view("<i4").reshape(-1)
+    v >>= 8  # arithmetic shift restores the sign
+    out = v.astype(np.float64)
+    out *= scale
+    return out
+
+
+# ----------------------------------------------------------------------------- compiled
+
+_impl: dict[str, Callable[..., Any]] = {}
+_impl_lock = threading.Lock()
+
+
+def _loop(name: str) -> Callable[..., Any]:
+    """The compiled loop ``name`` (numba imported on first use), else the numpy one."""
+    try:
+        return _impl[name]
+    except KeyError:
+        pass
+    with _impl_lock:
+        if not _impl:
+            fallback = {"cascade": _cascade_numpy, "stats": _stats_numpy, "int24": _int24_numpy}
+            jit = _load_jit()
+            if jit is not None:
+                fallback.update(cascade=jit._cascade_jit, stats=jit._stats_jit, int24=jit._int24_jit)
+            _impl.update(fallback)
+    return _impl[name]
+
+
+def _load_jit() -> Any:
+    if os.environ.get("TWINPASS_JIT", "1").strip().lower() in ("0", "false", "no", "off"):
+        return None
+    try:
+        from twinpass.core import _loops_jit
+    except Exception:  # numba missing or broken for this interpreter: numpy it is
+        return None
+    return _loops_jit
+
+
+def jit_enabled() -> bool:
+    """Whether the compiled loops are in use (numba importable and ``TWINPASS_JIT`` not 0)."""
+    return _loop("cascade") is not _cascade_numpy
+
+
+# ----------------------------------------------------------------------------- public
+
+
+def sos_cascade(sos: np.ndarray, x: np.ndarray, state: np.ndarray, out: np.ndarray | None = None,
+                *, reverse: bool = False) -> np.ndarray:
+    """Filter ``x`` along time with second-order sections from ``state``; update ``state``.
+
+    Parameters
+    ----------
+    sos : ndarray, float64, shape (n_sections, 6)
+        Sections ``[b0, b1, b2, a0, a1, a2]`` with ``a0 == 1`` (as ``scipy.signal`` designs them).
+    x : ndarray, float64, shape (samples, channels)
+        Time-major input.
+    state : ndarray, float64, shape (n_sections, 2, channels)
+        Initial state, overwritten with the final state.
+    out : ndarray, float64, shape of ``x``, optional
+        Where to write the output; may be ``x`` itself (in place). New array if None.
+    reverse : bool
+        Run from the last sample to the first (the backward pass of a two-pass filter
+        without reversing copies): ``out[::-1]`` is then the forward filtering of ``x[::-1]``.
+
+    Returns
+    -------
+    ndarray
+        ``out``. Forward it equals ``scipy.signal.sosfilt(sos, x, axis=0, zi=state)[0]``
+        bit for bit, and ``state`` its final state.
+    """
+    if out is None:
+        out = np.empty_like(x)
+    if x.shape[0]:
+        _loop("cascade")(sos, x, state, out, reverse)
+    return out
+
+
+def channel_stats(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per channel of a time-major (samples, channels) float64 array, in one pass.
+
+    Returns
+    -------
+    nonfinite : ndarray, float64, shape (channels,)
+        Count of NaN and infinite samples.
+    sum_squares : ndarray, float64
+        Sum of the squares of the finite samples.
+    peak : ndarray, float64
+        Largest magnitude among the finite samples (0 when there is none).
+    """
+    return _loop("stats")(np.ascontiguousarray(a, dtype=np.float64))
+
+
+def int24_to_float(raw: np.ndarray, scale: float, *, big_endian: bool = False) -> np.ndarray:
+    """Packed 24-bit two's-complement samples (``uint8`` bytes) times ``scale``, as float64.
+
+    Parameters
+    ----------
+    raw : ndarray of uint8, shape (3 n,)
+        Interleaved sample bytes.
+    scale : float
+        Factor applied to each integer value (e.g. ``2**-23`` for full-scale units).
+    big_endian : bool
+        Byte order of each sample (WAV is little-endian).
+
+    Returns
+    -------
+    ndarray, float64, shape (n,)
+    """
+    raw = np.ascontiguousarray(raw, dtype=np.uint8).reshape(-1)
+    return _loop("int24")(raw, float(scale), bool(big_endian))
