@@ -22,6 +22,7 @@ from typing import Any, BinaryIO
 
 import numpy as np
 
+from ...core.loops import int24_to_float
 from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
 from .base import Reader, ReaderSpec, Recording, RecordingInfo
 
@@ -126,18 +127,6 @@ def parse_time(value: Any, where: str) -> _dt.datetime:
 # --------------------------------------------------------------------------- samples
 
 
-def decode_int24(raw: np.ndarray, byteorder: str = "<") -> np.ndarray:
-    """Packed 24-bit two's-complement samples (``uint8`` bytes) as int32 values."""
-    b = raw.reshape(-1, 3)
-    if byteorder == ">":
-        b = b[:, ::-1]
-    wide = np.zeros((b.shape[0], 4), dtype=np.uint8)
-    wide[:, 1:] = b  # little-endian int32 holding value << 8
-    v = wide.view("<i4").reshape(-1)
-    v >>= 8  # arithmetic shift restores the sign
-    return v
-
-
 @dataclass(frozen=True)
 class Codec:
     """How one stored sample maps to float64.
@@ -197,6 +186,9 @@ class Codec:
             if self.kind == "u":
                 out -= half
             out *= 1.0 / half
+        return self._gain_offset(out)
+
+    def _gain_offset(self, out: np.ndarray) -> np.ndarray:
         if self.gain != 1.0:
             out *= self.gain
         if self.offset != 0.0:
@@ -205,11 +197,10 @@ class Codec:
 
     def decode(self, raw: np.ndarray, channels: int) -> np.ndarray:
         """Interleaved sample bytes (``uint8``) as float64, shape (frames, channels)."""
-        if self.itemsize == 3:
-            values = decode_int24(raw, self.byteorder)
-        else:
-            values = raw.view(self.dtype)
-        return self.to_float(values).reshape(-1, channels)
+        if self.itemsize == 3:  # packed 24-bit: decoded and scaled in one pass
+            out = int24_to_float(raw, 2.0**-23, big_endian=self.byteorder == ">")
+            return self._gain_offset(out).reshape(-1, channels)
+        return self.to_float(raw.view(self.dtype)).reshape(-1, channels)
 
 
 # --------------------------------------------------------------------------- files
