@@ -285,7 +285,8 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     ConfigError
         An unknown scheduler name, ``workers < 1``, or an address nobody answers at.
     """
-    from distributed import Client, LocalCluster
+    import dask
+    from distributed import Client
 
     if "://" in scheduler:
         try:
@@ -304,16 +305,10 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     if int(workers) < 1:
         raise ConfigError(f"workers = {workers}: at least one worker is needed ([engine] workers or --workers)")
     processes = scheduler == "processes"
-    cluster = LocalCluster(
-        n_workers=workers if processes else 1,
-        threads_per_worker=1 if processes else workers,
-        processes=processes,
-        dashboard_address=None,
-        # The scheduler's HTTP endpoint (health, metrics) on a free local port, no dashboard:
-        # a fixed default port would clash with any other cluster on the machine.
-        scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"},
-        silence_logs=logging.ERROR,
-    )
+    # Dask's statistical profiler samples every worker thread each 10 ms (for its
+    # dashboard, which local clusters here do not serve): a few per cent of the CPU.
+    with dask.config.set({"distributed.worker.profile.enabled": False}):
+        cluster = _local_cluster(workers, processes)
     try:
         client = Client(cluster)
     except BaseException:
@@ -324,6 +319,21 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     finally:
         client.close()
         cluster.close()
+
+
+def _local_cluster(workers: int, processes: bool) -> Any:
+    from distributed import LocalCluster
+
+    return LocalCluster(
+        n_workers=workers if processes else 1,
+        threads_per_worker=1 if processes else workers,
+        processes=processes,
+        dashboard_address=None,
+        # The scheduler's HTTP endpoint (health, metrics) on a free local port, no dashboard:
+        # a fixed default port would clash with any other cluster on the machine.
+        scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"},
+        silence_logs=logging.ERROR,
+    )
 
 
 # ------------------------------------------------------------------- the driver
