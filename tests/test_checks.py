@@ -119,6 +119,43 @@ def test_transfer_estimate_agrees_with_scipy_csd_welch() -> None:
     assert est.segments == t.size
 
 
+@pytest.mark.parametrize(
+    "n_samples, step",
+    [
+        (3000, 512),  # few enough half-overlapping segments: scipy's own hop
+        (5000, 795),  # spread: overlap below half
+        (20000, 3795),  # spread: gaps between segments
+    ],
+)
+def test_spread_segments_agree_with_scipy_csd_per_segment(n_samples: int, step: int, monkeypatch) -> None:
+    # Reference: scipy.signal.csd / scipy.signal.welch (Hann window, constant detrend, density)
+    # of each segment on its own, averaged over the segments the estimate uses (the Welch
+    # average). Three channels of very different offsets and levels, all estimated together.
+    nperseg, max_segments = 1024, 6
+    rng = np.random.default_rng(5)
+    x = rng.standard_normal((n_samples, 3)) * [1.0, 1e-3, 50.0] + [0.0, 7.0, -2e3]
+    y = two_pass(lowpass_butterworth(), x)  # a lowpass keeps the offsets
+    est = checks.transfer_estimate(x, y, FS, nperseg, max_segments)
+    starts = range(0, n_samples - nperseg + 1, step)
+    assert est.segments == len(starts) <= max_segments
+    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=0, axis=0)
+    pxy = np.mean([signal.csd(x[s : s + nperseg], y[s : s + nperseg], **kw)[1] for s in starts], axis=0)
+    pxx = np.mean([signal.welch(x[s : s + nperseg], **kw)[1] for s in starts], axis=0)
+    pyy = np.mean([signal.welch(y[s : s + nperseg], **kw)[1] for s in starts], axis=0)
+
+    def close(a: np.ndarray, b: np.ndarray) -> None:  # relative 1e-9, or 1e-13 of the channel's largest
+        np.testing.assert_array_less(np.abs(a - b), 1e-9 * np.abs(b) + 1e-13 * np.abs(b).max(axis=0))
+
+    close(est.pxx, pxx)
+    close(est.pyy, pyy)
+    close(est.pxy, pxy)
+    # Channels estimated one at a time (the buffer bound split into groups) give the same numbers.
+    monkeypatch.setattr(checks, "_GROUP_BYTES", 8 * nperseg)
+    single = checks.transfer_estimate(x, y, FS, nperseg, max_segments)
+    close(single.pxy, pxy)
+    np.testing.assert_allclose(single.coherence, est.coherence, rtol=1e-12, atol=1e-15)
+
+
 def test_transfer_estimate_rejects_mismatched_shapes() -> None:
     with pytest.raises(KernelError, match="shape"):
         checks.transfer_estimate(np.zeros((1000, 2)), np.zeros((1000, 1)), FS, 256)

@@ -13,7 +13,8 @@ The transfer estimate
 ---------------------
 Between the block input ``x`` and output ``y`` the frequency response is estimated with
 Welch-averaged spectra (``scipy.signal.csd`` / ``scipy.signal.welch``; Hann window, 50 %
-overlap, constant detrend per segment, one-sided density)::
+overlap, constant detrend per segment, one-sided density; long blocks spread
+:data:`MAX_SEGMENTS` segments evenly instead, see :func:`transfer_estimate`)::
 
     H(f) = Pxy(f) / Pxx(f)          coherence = |Pxy|^2 / (Pxx Pyy)
 
@@ -89,8 +90,10 @@ from functools import lru_cache
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from scipy import fft as sp_fft
 from scipy import ndimage, signal
 
+from twinpass.core.loops import channel_stats
 from twinpass.core.design import HALF_POWER_DB, overall_response
 from twinpass.core.types import Design
 from twinpass.errors import KernelError, TwinpassError
@@ -152,7 +155,7 @@ PENDING, PASS, WARN, FAIL, ERROR = 0, 1, 2, 3, 4
 """Block status codes: not yet done, passed, warned, failed a check, raised an error."""
 STATUS_NAMES: dict[int, str] = {PENDING: "pending", PASS: "pass", WARN: "warn", FAIL: "fail", ERROR: "error"}
 
-SEGMENT_CYCLES: float = 16.0
+SEGMENT_CYCLES: float = 8.0
 """Welch segment length in periods of the design's smallest spectral feature."""
 MIN_NPERSEG: int = 256
 """Shortest Welch segment aimed for (samples)."""
@@ -231,6 +234,21 @@ segments evenly over the block instead of overlapping them by half, which bounds
 the check per block (the estimate's random error depends on the number of segments, about
 1/sqrt(segments) relative, not on the block length)."""
 
+_GROUP_BYTES: int = 1 << 23
+"""Largest segment buffer (bytes) per signal: more channels than fit are estimated in groups."""
+_FFT_CHANNELS: int = 2
+"""Channels transformed per call: their spectra stay in the core's cache for the products."""
+_TRANSPOSE_BYTES: int = 1 << 18
+"""Bytes of time-major input per step of the blocked transpose to channel-major segments."""
+
+
+def _segment_plan(n_samples: int, nperseg: int, max_segments: int | None) -> tuple[int, int]:
+    """(hop, number of segments) in samples: half overlap, or spread to ``max_segments``."""
+    step = nperseg - nperseg // 2
+    if max_segments is not None and max_segments >= 2:
+        step = max(step, (n_samples - nperseg) // (int(max_segments) - 1))
+    return step, 1 + (n_samples - nperseg) // step
+
 
 def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, nperseg: int,
                       max_segments: int | None = None) -> TransferEstimate:
@@ -243,10 +261,14 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
     sample_rate_hz : float
         Sample rate (Hz).
     nperseg : int
-        Segment length (samples); Hann window, ``nperseg // 2`` overlap, constant detrend.
+        Segment length (samples); Hann window, constant detrend per segment.
     max_segments : int, optional
-        Average at most this many segments, spread evenly over the signal (their hop then
-        exceeds ``nperseg // 2``). None uses every half-overlapping segment, as scipy does.
+        Average at most this many segments. Segments start every ``nperseg - nperseg // 2``
+        samples (half overlap, as scipy does) from the first sample; when that gives more
+        than ``max_segments`` (>= 2), ``max_segments`` segments are spread evenly instead,
+        with the hop ``(samples - nperseg) // (max_segments - 1)`` (overlap below half, or
+        gaps). Segments never overlap by more than half. None uses every half-overlapping
+        segment.
 
     Returns
     -------
@@ -254,8 +276,8 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         ``h = Pxy / Pxx`` and coherence ``|Pxy|^2 / (Pxx Pyy)`` (0 where a PSD is 0). The
         spectra are the averages over segments of ``conj(X) Y``, ``|X|^2``, ``|Y|^2``
         (one-sided densities), the same numbers as ``scipy.signal.csd(x, y)`` and
-        ``scipy.signal.welch`` with these parameters, but each segment is transformed only
-        once.
+        ``scipy.signal.welch`` with these parameters (up to rounding), but each segment is
+        transformed only once, all channels together.
     """
     x2 = np.asarray(_as_2d(x), dtype=np.float64)
     y2 = np.asarray(_as_2d(y), dtype=np.float64)
@@ -268,23 +290,21 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
             "(the block length)."
         )
     fs = float(sample_rate_hz)
-    step = nperseg - nperseg // 2
-    if max_segments is not None and max_segments >= 2:
-        step = max(step, (x2.shape[0] - nperseg) // (int(max_segments) - 1))
-    segments = 1 + (x2.shape[0] - nperseg) // step
+    step, segments = _segment_plan(x2.shape[0], nperseg, max_segments)
     window = _hann(nperseg)
-    scale = 1.0 / (fs * float(np.sum(window * window)))
-    pxx = np.empty((nperseg // 2 + 1, x2.shape[1]))
+    n_ch = x2.shape[1]
+    # Channel-major (channels, n_freqs) inside; the estimate holds the transposed views.
+    pxx = np.empty((n_ch, nperseg // 2 + 1))
     pyy = np.empty_like(pxx)
     pxy = np.empty(pxx.shape, dtype=complex)
-    for c in range(x2.shape[1]):  # one channel at a time bounds the memory
-        sx = _segment_spectra(x2[:, c], window, nperseg, step, segments)
-        sy = _segment_spectra(y2[:, c], window, nperseg, step, segments)
-        pxx[:, c] = np.mean(sx.real**2 + sx.imag**2, axis=0)
-        pyy[:, c] = np.mean(sy.real**2 + sy.imag**2, axis=0)
-        pxy[:, c] = np.mean(np.conj(sx) * sy, axis=0)
-    # One-sided density: double every bin but 0 Hz (and Nyquist for an even length).
-    fold = np.full((pxx.shape[0], 1), 2.0 * scale)
+    group = max(1, _GROUP_BYTES // (8 * nperseg))  # channels per group: bounds the buffers
+    for c0 in range(0, n_ch, group):
+        c = slice(c0, min(n_ch, c0 + group))
+        _welch_sums(x2[:, c], y2[:, c], window, step, segments, pxx[c], pyy[c], pxy[c])
+    # Mean over segments; one-sided density: double every bin but 0 Hz (and Nyquist for an
+    # even length).
+    scale = 1.0 / (fs * float(np.sum(window * window)) * segments)
+    fold = np.full(pxx.shape[1], 2.0 * scale)
     fold[0] = scale
     if nperseg % 2 == 0:
         fold[-1] = scale
@@ -296,7 +316,8 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         h = np.where(pxx > 0, pxy / np.where(pxx > 0, pxx, 1.0), 0.0)
         denom = pxx * pyy
         coh = np.where(denom > 0, np.abs(pxy) ** 2 / np.where(denom > 0, denom, 1.0), 0.0)
-    return TransferEstimate(f, h, np.minimum(coh, 1.0), pxx, pyy, pxy, nperseg, int(segments))
+    np.minimum(coh, 1.0, out=coh)
+    return TransferEstimate(f, h.T, coh.T, pxx.T, pyy.T, pxy.T, nperseg, int(segments))
 
 
 @lru_cache(maxsize=8)
@@ -306,12 +327,47 @@ def _hann(nperseg: int) -> np.ndarray:
     return w
 
 
-def _segment_spectra(v: np.ndarray, window: np.ndarray, nperseg: int, step: int, segments: int) -> np.ndarray:
-    """rfft of each detrended (mean removed), windowed segment; shape (segments, n_freqs)."""
-    seg = np.lib.stride_tricks.sliding_window_view(v, nperseg)[: (segments - 1) * step + 1 : step]
-    seg = seg - seg.mean(axis=1, keepdims=True)
-    seg *= window
-    return np.fft.rfft(seg, axis=1)
+def _to_channel_major(seg: np.ndarray, out: np.ndarray) -> None:
+    """Copy a (samples, channels) segment into ``out`` (channels, samples), in cache-sized steps."""
+    rows = max(64, _TRANSPOSE_BYTES // (8 * seg.shape[1]))
+    for r in range(0, seg.shape[0], rows):
+        np.copyto(out[:, r : r + rows], seg[r : r + rows].T)
+
+
+def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, segments: int,
+                sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray) -> None:
+    """Sums over segments of ``|X|^2``, ``|Y|^2``, ``conj(X) Y`` into ``sxx``, ``syy``, ``sxy``.
+
+    ``x``, ``y``: time-major (samples, channels); ``sxx`` ... channel-major (channels,
+    n_freqs). ``X``, ``Y``: rfft of each segment (``window.size`` samples, every ``step``
+    samples) with its mean removed, times the window. Each segment is copied channel-major
+    once, so the mean, the window and the transform run along contiguous rows.
+    """
+    n = window.size
+    n_freqs = n // 2 + 1
+    n_ch = x.shape[1]
+    bx, by = np.empty((n_ch, n)), np.empty((n_ch, n))
+    for a in (sxx, syy, sxy):
+        a[...] = 0.0
+    pairs = np.empty((min(_FFT_CHANNELS, n_ch), n_freqs))
+    prod = np.empty(pairs.shape, dtype=complex)
+    for start in range(0, segments * step, step):
+        for v, b in ((x, bx), (y, by)):
+            _to_channel_major(v[start : start + n], b)
+            b -= b.mean(axis=1, keepdims=True)  # constant detrend
+            b *= window
+        for c0 in range(0, n_ch, _FFT_CHANNELS):
+            c = slice(c0, min(n_ch, c0 + _FFT_CHANNELS))
+            t, t_c = pairs[: c.stop - c0], prod[: c.stop - c0]
+            # ihfft with norm="forward" is conj(rfft) of real input: the conjugate the cross
+            # product needs comes out of the transform itself.
+            cx = sp_fft.ihfft(bx[c], axis=1, norm="forward")
+            sy = sp_fft.rfft(by[c], axis=1)
+            np.add(sxy[c], np.multiply(cx, sy, out=t_c), out=sxy[c])
+            for spec, acc in ((cx, sxx), (sy, syy)):
+                parts = spec.view(np.float64)  # real, imaginary, real, ... per row
+                np.square(parts, out=parts)
+                np.add(acc[c], np.add(parts[:, 0::2], parts[:, 1::2], out=t), out=acc[c])
 
 
 def _feature_scale_hz(design: Design) -> float:
@@ -358,9 +414,27 @@ def _eroded(mask: np.ndarray, width: int) -> np.ndarray:
     return ndimage.binary_erosion(mask, structure=np.ones(2 * width + 1, dtype=bool), border_value=0)
 
 
-@lru_cache(maxsize=32)
+_MASK_CACHE: dict[tuple[str, int], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+_MASK_CACHE_SIZE = 32
+
+
 def _design_masks(design: Design, nperseg: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(designed level in dB, passband mask, stopband mask) on the Welch bins of ``nperseg``."""
+    """(designed level in dB, passband mask, stopband mask) on the Welch bins of ``nperseg``.
+
+    Cached by content (coefficients, spec, sample rate), not by object: every block task
+    receives its own copy of the design.
+    """
+    key = (design.digest({"spec": design.spec.to_dict(), "fs": float(design.sample_rate_hz)}), int(nperseg))
+    hit = _MASK_CACHE.get(key)
+    if hit is None:
+        hit = _compute_design_masks(design, int(nperseg))
+        if len(_MASK_CACHE) >= _MASK_CACHE_SIZE:
+            _MASK_CACHE.pop(next(iter(_MASK_CACHE)), None)
+        _MASK_CACHE[key] = hit
+    return hit
+
+
+def _compute_design_masks(design: Design, nperseg: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     fs = float(design.sample_rate_hz)
     n_bins = nperseg // 2 + 1
     fine = np.linspace(0.0, fs / 2.0, (n_bins - 1) * OVERSAMPLE + 1)
@@ -399,45 +473,69 @@ def _leakage_kernel(nperseg: int) -> np.ndarray:
     return kernel
 
 
+@lru_cache(maxsize=8)
+def _leakage_spectrum(nperseg: int) -> tuple[int, np.ndarray]:
+    """(FFT length, rfft of :func:`_leakage_kernel`) for a linear convolution with the bins."""
+    kernel = _leakage_kernel(nperseg)
+    n_fft = sp_fft.next_fast_len(nperseg // 2 + kernel.size, real=True)
+    spectrum = sp_fft.rfft(kernel, n_fft)
+    spectrum.setflags(write=False)
+    return n_fft, spectrum
+
+
+def _leakage(pyy: np.ndarray, nperseg: int) -> np.ndarray:
+    """Hann window leakage into each bin, per column of ``pyy`` (n_freqs, channels).
+
+    ``scipy.signal.fftconvolve(pyy[:, c], _leakage_kernel(nperseg), mode="same")`` for every
+    column, with the kernel's spectrum computed once.
+    """
+    n_bins = pyy.shape[0]
+    n_fft, spectrum = _leakage_spectrum(nperseg)
+    start = (_leakage_kernel(nperseg).size - 1) // 2  # centre of the full convolution
+    full = sp_fft.irfft(sp_fft.rfft(pyy, n_fft, axis=0) * spectrum[:, None], n_fft, axis=0)
+    return full[start : start + n_bins]
+
+
 def _response_figures(
     est: TransferEstimate, design: Design, cfg: ChecksConfig
 ) -> np.ndarray:
     """Shape (channels, 5): the columns ``_RESPONSE_FIGURES``."""
     db, passband, stopband = _design_masks(design, est.nperseg)
-    n_ch = est.h.shape[1]
-    out = np.full((n_ch, 5), np.nan)
+    pxx, pyy, h, coh = est.pxx, est.pyy, est.h, est.coherence
+    out = np.full((pxx.shape[1], 5), np.nan)
     n_d = est.segments / (1.0 + 2.0 * HANN_OVERLAP_CORRELATION**2)
-    kernel = _leakage_kernel(est.nperseg)
-    for c in range(n_ch):
-        pxx, pyy, h, coh = est.pxx[:, c], est.pyy[:, c], est.h[:, c], est.coherence[:, c]
-        peak_in = float(np.max(pxx))
-        if not peak_in > 0.0:
-            continue
-        energetic = pxx >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
-        candidates = passband & energetic
-        with np.errstate(divide="ignore", invalid="ignore"):
-            eps = np.sqrt(np.maximum(1.0 - coh, 0.0)) / (np.sqrt(coh) * math.sqrt(2.0 * n_d))
-        coherent = candidates & (coh >= cfg.coherence_min) & (eps <= RANDOM_ERROR_MAX)
-        out[c, 3] = float(np.count_nonzero(candidates))
-        out[c, 4] = float(np.count_nonzero(coherent))
-        if coherent.any():
-            with np.errstate(divide="ignore"):
-                dev = 20.0 * np.log10(np.abs(h[coherent])) - db[coherent]
-            phase = np.degrees(np.angle(h[coherent]))
-            out[c, 0] = dev[np.argmax(np.abs(dev))]
-            out[c, 1] = phase[np.argmax(np.abs(phase))]
-        if stopband.any():
-            leak = signal.fftconvolve(pyy, kernel, mode="same")
-            peak_out = float(np.max(pyy))
-            usable = (
-                stopband
-                & energetic
-                & (coh >= cfg.coherence_min)
-                & (pyy >= leak * 10.0 ** (LEAKAGE_MARGIN_DB / 10.0))
-                & (pyy > peak_out * 10.0 ** (-NUMERIC_RANGE_DB / 10.0))
-            )
-            if usable.any():
-                out[c, 2] = float(np.min(10.0 * np.log10(pxx[usable] / pyy[usable])))
+    peak_in = np.max(pxx, axis=0)
+    live = peak_in > 0.0
+    energetic = pxx >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
+    candidates = passband[:, None] & energetic
+    with np.errstate(divide="ignore", invalid="ignore"):
+        eps = np.sqrt(np.maximum(1.0 - coh, 0.0)) / (np.sqrt(coh) * math.sqrt(2.0 * n_d))
+    gated = coh >= cfg.coherence_min
+    coherent = candidates & gated & (eps <= RANDOM_ERROR_MAX)
+    out[:, 3] = np.count_nonzero(candidates, axis=0)
+    out[:, 4] = np.count_nonzero(coherent, axis=0)
+    for c in np.flatnonzero(live & coherent.any(axis=0)):
+        sel = coherent[:, c]
+        hc = h[sel, c]
+        with np.errstate(divide="ignore"):
+            dev = 20.0 * np.log10(np.abs(hc)) - db[sel]
+        phase = np.degrees(np.angle(hc))
+        out[c, 0] = dev[np.argmax(np.abs(dev))]
+        out[c, 1] = phase[np.argmax(np.abs(phase))]
+    if stopband.any():
+        leak = _leakage(pyy, est.nperseg)
+        peak_out = np.max(pyy, axis=0)
+        usable = (
+            stopband[:, None]
+            & energetic
+            & gated
+            & (pyy >= leak * 10.0 ** (LEAKAGE_MARGIN_DB / 10.0))
+            & (pyy > peak_out * 10.0 ** (-NUMERIC_RANGE_DB / 10.0))
+        )
+        for c in np.flatnonzero(live & usable.any(axis=0)):
+            sel = usable[:, c]
+            out[c, 2] = float(np.min(10.0 * np.log10(pxx[sel, c] / pyy[sel, c])))
+    out[~live] = np.nan  # no input: nothing measured
     return out
 
 
@@ -445,20 +543,15 @@ def _response_figures(
 
 
 def _finite_stats(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(non-finite count, RMS of finite samples, peak |finite sample|) per channel."""
-    if a.shape[0]:
-        t = np.ascontiguousarray(a.T)  # channel-major: row reductions are much faster than axis-0 ones
-        hi, lo = t.max(axis=1), t.min(axis=1)  # NaN or inf here if any sample is not finite
-        if np.all(np.isfinite(hi)) and np.all(np.isfinite(lo)):  # the usual case
-            rms = np.sqrt(np.einsum("ij,ij->i", t, t) / a.shape[0])
-            return np.zeros(a.shape[1]), rms, np.maximum(hi, -lo)
-    finite = np.isfinite(a)
-    n_bad = np.count_nonzero(~finite, axis=0).astype(np.float64)
+    """(non-finite count, RMS of finite samples, peak |finite sample|) per channel.
+
+    One pass over the time-major array (:func:`twinpass.core.loops.channel_stats`); RMS and
+    peak are NaN for a channel without any finite sample.
+    """
+    n_bad, sum_sq, peak = channel_stats(a)
     n_ok = a.shape[0] - n_bad
-    clean = np.where(finite, a, 0.0)
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        rms = np.sqrt(np.sum(clean * clean, axis=0) / n_ok)
-    peak = np.max(np.abs(clean), axis=0, initial=0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rms = np.sqrt(sum_sq / n_ok)
     rms = np.where(n_ok > 0, rms, np.nan)
     peak = np.where(n_ok > 0, peak, np.nan)
     return n_bad, rms, peak
@@ -532,12 +625,13 @@ def block_figures(
         figures[:, FIGURE_INDEX[name]] = value
     if response and x.shape[0] > 0:
         nperseg = segment_length(x.shape[0], design)
-        clean = (bad_in == 0) & (bad_out == 0)
-        cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
-        for c in np.nonzero(clean)[0] if nperseg else ():
-            # One channel at a time bounds the memory of the segment spectra.
-            est = transfer_estimate(x[:, c], y[:, c], design.sample_rate_hz, nperseg, MAX_SEGMENTS)
-            figures[c, cols] = _response_figures(est, design, cfg)[0]
+        clean = np.flatnonzero((bad_in == 0) & (bad_out == 0))
+        if nperseg and clean.size:
+            if clean.size < n_ch:
+                x, y = x[:, clean], y[:, clean]
+            est = transfer_estimate(x, y, design.sample_rate_hz, nperseg, MAX_SEGMENTS)
+            cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
+            figures[np.ix_(clean, cols)] = _response_figures(est, design, cfg)
     return figures
 
 
