@@ -83,10 +83,22 @@ def _cascade_jit(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
 
 @_jit
 def _stats_jit(a):  # type: ignore[no-untyped-def]
+    # Fast pass without a branch per sample; a non-finite sum means some channel holds a
+    # NaN/Inf (or squares overflow), and only then the careful pass counts and skips them.
     n, nc = a.shape
-    bad = np.zeros(nc)
     ss = np.zeros(nc)
     peak = np.zeros(nc)
+    for i in range(n):
+        for c in range(nc):
+            v = a[i, c]
+            ss[c] += v * v
+            m = abs(v)
+            peak[c] = m if m > peak[c] else peak[c]
+    bad = np.zeros(nc)
+    if np.all(np.isfinite(ss)):
+        return bad, ss, peak
+    ss[:] = 0.0
+    peak[:] = 0.0
     for i in range(n):
         for c in range(nc):
             v = a[i, c]
