@@ -2,7 +2,8 @@
 
 * Server analytics off: on a fresh home the temporary server's telemetry insert races
   the first flow run and logs a "database is locked" traceback; offline it logs errors.
-* A longer start-up timeout for the temporary local server on slow machines.
+* A longer start-up timeout for the temporary local server on slow machines (read by
+  :mod:`twinpass.prefect_server`, which starts that server, and by Prefect).
 
 Users' own settings win: only unset variables are given a value.
 """

@@ -104,13 +104,17 @@ class _EmptyStore:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from .config import load_config
-
     if (args.config is None) == (args.block is None):
         raise ConfigError("twinpass run: give either a configuration file or --block NAME (a saved TwinpassJob)")
+    if args.block is not None and args.no_flow:
+        raise ConfigError("twinpass run: --block needs the Prefect flow; drop --no-flow")
+    if not args.no_flow:
+        from .prefect_server import early_start
+
+        early_start()  # a temporary Prefect server (if one is needed) starts while this process prepares
+    from .config import load_config
+
     if args.block is not None:
-        if args.no_flow:
-            raise ConfigError("twinpass run: --block needs the Prefect flow; drop --no-flow")
         return _run_flow(None, None, force=args.force, scheduler=args.scheduler, workers=args.workers,
                          report=not args.no_report, progress=_ProgressBar(), config_block=args.block)
     cfg = load_config(args.config)
@@ -139,18 +143,20 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
               report: bool, progress: Any, config_block: str | None = None) -> int:
     from . import flows
     from .errors import BlockFailedError
+    from .prefect_server import prefect_api
 
-    flows.TERMINAL_PROGRESS = progress
-    try:
-        state = flows.archive_run(config_path=None if config_path is None else str(Path(config_path).resolve()),
-                                  config_block=config_block, force=force, scheduler=scheduler,
-                                  workers=workers, report=report, return_state=True)
-    finally:
-        flows.TERMINAL_PROGRESS = None
-    try:
-        summary = state.result(raise_on_failure=False)
-    except Exception as e:  # the result could not be read back
-        summary = e
+    with prefect_api():  # the configured Prefect API, else a temporary local server
+        flows.TERMINAL_PROGRESS = progress
+        try:
+            state = flows.archive_run(config_path=None if config_path is None else str(Path(config_path).resolve()),
+                                      config_block=config_block, force=force, scheduler=scheduler,
+                                      workers=workers, report=report, return_state=True)
+        finally:
+            flows.TERMINAL_PROGRESS = None
+        try:
+            summary = state.result(raise_on_failure=False)
+        except Exception as e:  # the result could not be read back
+            summary = e
     if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):
@@ -192,6 +198,10 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    if not args.no_run:
+        from .prefect_server import early_start
+
+        early_start()  # a temporary Prefect server (if one is needed) starts while the archive is written
     from .demo import DEMO_SCENARIO, write_demo_archive
 
     folder = Path(args.folder).resolve()
