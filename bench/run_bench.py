@@ -2,7 +2,7 @@
 
 Usage::
 
-    python bench/run_bench.py [--size 1GiB | --quick] [--only SECTION ...]
+    python bench/run_bench.py [--size 2GiB | --quick] [--only SECTION ...]
                               [--workdir /tmp/twinpass-bench] [--out bench/results/latest.json]
 
 Sections (all by default, in this order):
@@ -51,8 +51,9 @@ sys.path.insert(0, str(HERE))
 
 import make_archive  # noqa: E402  (bench/ is not a package)
 
-DEFAULT_SIZE = "1GiB"
-"""Default archive size: the whole matrix on 2 GiB takes about 40 min on an idle 2-core machine."""
+DEFAULT_SIZE = "2GiB"
+"""Default archive size. From scratch, the whole matrix on 2 GiB took about 20 min on a
+2-core machine with light other load; use ``--size 1GiB`` (about 12 min) on a busy one."""
 POLL_S = 0.05
 """Interval of the RSS poll (s)."""
 SECTIONS = ("baseline", "engine", "checks", "flow", "rerun", "small", "halo")
