@@ -291,25 +291,12 @@ def _sos_two_pass(
     place over it from the last sample down to the first requested output.
     """
     zi_unit = unit_steady_state(sos=sos)[:, :, None]  # (sections, 2, 1)
-    ext = x if (n_left == 0 and n_right == 0) else _extend_ends(x, n_left, n_right, edge)
+    ext = _extend_ends(x, n_left, n_right, edge)
     y = sos_cascade(sos, ext, zi_unit * ext[0])
     lo = n_left + out_start
     back = y[lo:]
     sos_cascade(sos, back, zi_unit * y[-1], back, reverse=True)
     return y[lo : n_left + out_stop]
-
-
-def _extend_channel_major(x: np.ndarray, n_left: int, n_right: int, edge: str) -> np.ndarray:
-    """Extend a (channels, samples) array, each end independently, like :func:`extend`."""
-    if n_left == 0 and n_right == 0:
-        return x
-    parts = []
-    if n_left:
-        parts.append(extend(x[:, : n_left + 1].T, n_left, edge)[:n_left].T)
-    parts.append(x)
-    if n_right:
-        parts.append(extend(x[:, -(n_right + 1) :].T, n_right, edge)[-n_right:].T)
-    return np.concatenate(parts, axis=1)
 
 
 def _fir_pass(taps: np.ndarray, x: np.ndarray, zi_unit: np.ndarray, first: np.ndarray) -> np.ndarray:
@@ -344,7 +331,7 @@ def _fir_two_pass(
     missing history). Returns output samples ``[out_start, out_stop)`` of ``x``.
     """
     zi_unit = unit_steady_state(taps=taps)
-    ext = _extend_channel_major(x, n_left, n_right, edge)
+    ext = _extend_ends(x.T, n_left, n_right, edge).T  # channel-major view
     y_f = _fir_pass(taps, ext, zi_unit, ext[:, 0])
     # The backward pass only needs to reach the first requested output sample.
     rev = y_f[:, : n_left + out_start - 1 : -1] if n_left + out_start > 0 else y_f[:, ::-1]
