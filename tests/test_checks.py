@@ -119,6 +119,29 @@ def test_transfer_estimate_agrees_with_scipy_csd_welch() -> None:
     assert est.segments == t.size
 
 
+def test_float32_transforms_agree_with_scipy_where_the_output_is_strong() -> None:
+    # Reference: scipy.signal.csd / welch in float64 (as above). Single precision rounds at
+    # 1.2e-7 relative (IEEE 754 binary32), so bins within 60 dB of each channel's strongest
+    # output bin must agree to 1e-4 relative; deeper bins are what float32 cannot resolve,
+    # which is why block_figures uses float32 only when no stopband figure is measured.
+    design = lowpass_butterworth()
+    x, y = block(design, core=20001, channels=3, seed=8)
+    nperseg = 512
+    est = checks.transfer_estimate(x, y, FS, nperseg, precision="float32")
+    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2, axis=0)
+    _, pxy = signal.csd(x, y, **kw)
+    _, pxx = signal.welch(x, **kw)
+    _, pyy = signal.welch(y, **kw)
+    _, coh = signal.coherence(x, y, **kw)
+    strong = pyy >= pyy.max(axis=0) * 1e-6
+    assert strong.sum() > 50
+    for got, ref in ((est.pxx, pxx), (est.pyy, pyy), (est.pxy, pxy), (est.h, pxy / pxx)):
+        np.testing.assert_array_less(np.abs(got - ref)[strong], 1e-4 * np.abs(ref)[strong])
+    np.testing.assert_array_less(np.abs(est.coherence - coh)[strong], 1e-4)
+    with pytest.raises(KernelError, match="precision"):
+        checks.transfer_estimate(x, y, FS, nperseg, precision="float16")
+
+
 @pytest.mark.parametrize(
     "n_samples, step",
     [

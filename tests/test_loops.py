@@ -118,8 +118,40 @@ def test_numba_is_used_when_importable_and_can_be_switched_off() -> None:
     import sys
 
     pytest.importorskip("numba")
+    if __import__("os").environ.get("TWINPASS_JIT", "1") == "0":
+        pytest.skip("the compiled loops are switched off in this environment")
     assert loops.jit_enabled()
     code = "from twinpass.core import loops; print(loops.jit_enabled())"
     env = {**__import__("os").environ, "TWINPASS_JIT": "0"}
     out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_welch_segment_loops_match_numpy(dtype: type) -> None:
+    # Reference: numpy's mean, product and complex arithmetic (the fallback loops are the
+    # plain numpy expressions): constant detrend and window, then the sums of |X|^2,
+    # |Y|^2 and conj(X) Y.
+    rng = np.random.default_rng(11)
+    v = rng.standard_normal((3000, 5)) * [1.0, 10.0, 1e-3, 5.0, 1.0] + [0.0, 3.0, -1.0, 100.0, 0.0]
+    window = signal.get_window("hann", 1024).astype(dtype)
+    out = np.empty((5, 1024), dtype)
+    loops.segment_rows(v, 700, window, out)
+    seg = v[700:1724]
+    want = ((seg - seg.mean(axis=0)) * window.astype(np.float64)[:, None]).T
+    tol = 1e-12 if dtype is np.float64 else 1e-5
+    np.testing.assert_allclose(out, want, rtol=tol, atol=tol * np.abs(want).max())
+    with pytest.raises(ValueError, match="outside"):
+        loops.segment_rows(v, 2000, window, out)
+    cx = np.conj(np.fft.rfft(out, axis=1))
+    sy = np.fft.rfft(out[::-1], axis=1)
+    sums = [np.ones((5, 513)), np.zeros((5, 513)), np.zeros((5, 513), dtype=complex)]
+    loops.spectra_sums(cx, sy, *sums)
+    a, b = cx.astype(complex), sy.astype(complex)
+    np.testing.assert_allclose(sums[0], 1.0 + np.abs(a) ** 2, rtol=1e-12)
+    np.testing.assert_allclose(sums[1], np.abs(b) ** 2, rtol=1e-12)
+    np.testing.assert_allclose(sums[2], a * b, rtol=1e-12)
+    fallback = [np.ones((5, 513)), np.zeros((5, 513)), np.zeros((5, 513), dtype=complex)]
+    loops._spectra_sums_numpy(cx, sy, *fallback)
+    for got, ref in zip(sums, fallback):
+        np.testing.assert_allclose(got, ref, rtol=1e-12)

@@ -113,7 +113,7 @@ def test_layout_matches_zarr_v3_metadata(tmp_path: Path, compression: str, cname
         # Zarr v3 blosc codec specification: configuration cname, clevel, shuffle, typesize, blocksize.
         assert len(blosc) == 1
         cfg = blosc[0]["configuration"]
-        assert (cfg["cname"], cfg["clevel"], cfg["shuffle"]) == (cname, clevel, "shuffle")
+        assert (cfg["cname"], cfg["clevel"], cfg["shuffle"]) == (cname, clevel, "bitshuffle")
     group_meta = _strict_json((root / "zarr.json").read_text())
     assert group_meta["zarr_format"] == 3 and group_meta["node_type"] == "group"
 
@@ -239,6 +239,29 @@ def test_resume_keeps_done_blocks_only_when_nothing_changed(store: OutputStore):
     # other chunking: the array is recreated, old data gone
     _prepare(store, chunk=10, spans=[(0, 60), (60, 100)])
     np.testing.assert_array_equal(store.read(NAME), np.zeros((100, 3), np.float32))
+
+
+def test_arrays_compressed_with_byte_shuffle_are_kept(store: OutputStore):
+    # Arrays written with lz4 and byte shuffle (before bit shuffle became the default)
+    # still match "lz4": a resume keeps their finished blocks and data.
+    from zarr.codecs import BloscCodec, BloscShuffle
+
+    _prepare(store)
+    data0 = _finish_block(store, 0)
+    group = zarr.open_group(store.location, mode="r+")
+    old = group[NAME]
+    byte_shuffled = group.create_array(
+        NAME + "-copy", shape=old.shape, chunks=old.chunks, dtype=old.dtype,
+        compressors=[BloscCodec(cname="lz4", clevel=5, shuffle=BloscShuffle.shuffle)],
+    )
+    byte_shuffled[...] = old[...]
+    byte_shuffled.attrs.update(old.attrs.asdict())
+    del group[NAME]
+    Path(store.location, NAME + "-copy").rename(Path(store.location, NAME))
+    assert _prepare(store, keep_done=True).status.tolist() == [1, 0, 0]
+    np.testing.assert_array_equal(store.read(NAME, 0, 40), data0)
+    # a different codec is not "lz4": the array is recreated
+    assert _prepare(store, compression="zstd").status.tolist() == [0, 0, 0]
 
 
 def test_invalidate_and_set_complete(store: OutputStore, tmp_path: Path):

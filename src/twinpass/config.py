@@ -93,7 +93,7 @@ class OutputConfig:
     dtype: str = "float32"
     """float32 | float64."""
     compression: str = "lz4"
-    """none | lz4 | zstd (Blosc, with byte shuffle)."""
+    """none | lz4 | zstd (Blosc, with bit shuffle)."""
     chunk_seconds: float | None = None
     """Output chunk length in seconds; None = one chunk per block."""
 

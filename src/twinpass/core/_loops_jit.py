@@ -163,6 +163,37 @@ def _int24_jit(raw, scale, big_endian):  # type: ignore[no-untyped-def]
     return out
 
 
+@_jit
+def _segment_rows_jit(v, start, window, out):  # type: ignore[no-untyped-def]
+    # Mean over the segment in float64, then (v - mean) * window written channel-major in
+    # out's type; reads the time-major rows once for the mean and once for the copy.
+    n = window.shape[0]
+    nc = v.shape[1]
+    mean = np.zeros(nc)
+    for i in range(start, start + n):
+        for c in range(nc):
+            mean[c] += v[i, c]
+    for c in range(nc):
+        mean[c] /= n
+    for i in range(n):
+        w = window[i]
+        for c in range(nc):
+            out[c, i] = (v[start + i, c] - mean[c]) * w
+
+
+@_jit
+def _spectra_sums_jit(cx, sy, sxx, syy, sxy):  # type: ignore[no-untyped-def]
+    # cx = conj(X), sy = Y (rows = channels); sums in float64 whatever the spectra's type.
+    nc, nf = cx.shape
+    for c in range(nc):
+        for k in range(nf):
+            ar = np.float64(cx[c, k].real); ai = np.float64(cx[c, k].imag)
+            br = np.float64(sy[c, k].real); bi = np.float64(sy[c, k].imag)
+            sxx[c, k] += ar * ar + ai * ai
+            syy[c, k] += br * br + bi * bi
+            sxy[c, k] += complex(ar * br - ai * bi, ar * bi + ai * br)
+
+
 def compile_cascade():  # type: ignore[no-untyped-def]
     """Build the cascade for C-contiguous float64 arrays with LLVM's SLP vectorizer on.
 

@@ -1,8 +1,9 @@
 """Compiled inner loops of the block pipeline, each with a plain numpy/scipy equivalent.
 
-Three loops dominate the cost of a block after reading: the cascade of second-order
-sections run twice over the window, the integrity statistics of input and output, and
-the decoding of packed 24-bit samples. Written with numpy they sweep a time-major
+A few loops dominate the cost of a block after reading: the cascade of second-order
+sections run twice over the window, the integrity statistics of input and output, the
+decoding of packed 24-bit samples, and the preparation and summing of the Welch segments
+of the response check. Written with numpy they sweep a time-major
 (samples, channels) array several times and transpose it (``scipy.signal.sosfilt`` moves
 the time axis last and works one channel at a time, so each sample's state update waits
 for the previous one). The compiled versions (numba) make one pass in the arrays' own
@@ -28,7 +29,7 @@ from typing import Any, Callable
 import numpy as np
 from scipy import signal
 
-__all__ = ["jit_enabled", "sos_cascade", "channel_stats", "int24_to_float"]
+__all__ = ["jit_enabled", "sos_cascade", "channel_stats", "int24_to_float", "segment_rows", "spectra_sums"]
 
 # ----------------------------------------------------------------------------- numpy
 
@@ -63,6 +64,21 @@ def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool) -> np.ndarray:
     return out
 
 
+def _segment_rows_numpy(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray) -> None:
+    rows = np.array(v[start : start + window.shape[0]].T, dtype=np.float64, order="C")
+    rows -= rows.mean(axis=1, keepdims=True)  # the same sums whatever the channels around it
+    rows *= window
+    out[...] = rows
+
+
+def _spectra_sums_numpy(cx: np.ndarray, sy: np.ndarray, sxx: np.ndarray, syy: np.ndarray,
+                        sxy: np.ndarray) -> None:
+    a, b = cx.astype(np.complex128), sy.astype(np.complex128)
+    sxx += a.real**2 + a.imag**2
+    syy += b.real**2 + b.imag**2
+    sxy += a * b
+
+
 # ----------------------------------------------------------------------------- compiled
 
 _impl: dict[str, Callable[..., Any]] = {}
@@ -77,10 +93,12 @@ def _loop(name: str) -> Callable[..., Any]:
         pass
     with _impl_lock:
         if not _impl:
-            fallback = {"cascade": _cascade_numpy, "stats": _stats_numpy, "int24": _int24_numpy}
+            fallback = {"cascade": _cascade_numpy, "stats": _stats_numpy, "int24": _int24_numpy,
+                        "segment_rows": _segment_rows_numpy, "spectra_sums": _spectra_sums_numpy}
             jit = _load_jit()
             if jit is not None:
-                fallback.update(stats=jit._stats_jit, int24=jit._int24_jit)
+                fallback.update(stats=jit._stats_jit, int24=jit._int24_jit,
+                                segment_rows=jit._segment_rows_jit, spectra_sums=jit._spectra_sums_jit)
                 cascade = jit.compile_cascade()
                 if _cascade_agrees(cascade):
                     fallback["cascade"] = cascade
@@ -202,3 +220,39 @@ def int24_to_float(raw: np.ndarray, scale: float, *, big_endian: bool = False) -
     """
     raw = np.ascontiguousarray(raw, dtype=np.uint8).reshape(-1)
     return _loop("int24")(raw, float(scale), bool(big_endian))
+
+
+def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """One Welch segment of time-major ``v``, mean removed and windowed, channel-major in ``out``.
+
+    Parameters
+    ----------
+    v : ndarray, float64, shape (samples, channels)
+        Time-major signal.
+    start : int
+        First sample of the segment.
+    window : ndarray, shape (n,)
+        Window samples, in the type of ``out``.
+    out : ndarray, float32 or float64, shape (channels, n), C-contiguous
+        Receives ``(v[start + i, c] - mean_c) * window[i]`` at ``[c, i]``, where ``mean_c``
+        is the segment's mean (computed in float64): scipy's constant detrend.
+
+    Returns
+    -------
+    ndarray
+        ``out``.
+    """
+    if start < 0 or start + window.shape[0] > v.shape[0]:
+        raise ValueError(f"segment [{start}, {start + window.shape[0]}) outside the {v.shape[0]} samples")
+    _loop("segment_rows")(v, int(start), window, out)
+    return out
+
+
+def spectra_sums(cx: np.ndarray, sy: np.ndarray, sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray) -> None:
+    """Add one segment's auto and cross spectra to running float64 sums, per channel row.
+
+    ``cx`` is ``conj(X)`` and ``sy`` is ``Y`` (complex64 or complex128, shape (channels,
+    n_freqs)); adds ``|X|^2`` to ``sxx``, ``|Y|^2`` to ``syy`` (float64) and ``conj(X) Y``
+    to ``sxy`` (complex128), each product formed in float64.
+    """
+    _loop("spectra_sums")(cx, sy, sxx, syy, sxy)

@@ -135,20 +135,27 @@ class BlockTable:
 
 
 def _compressors(compression: str) -> list[BloscCodec] | None:
+    """Codecs of new arrays. Bit shuffle: filtered float32 samples keep little redundancy
+    beyond their exponent and top mantissa bits, which bit shuffle groups together; on
+    filtered noise it compresses better than byte shuffle (about 1.17 against 1.09 with lz4)
+    and faster."""
     if compression == "none":
         return None
     if compression == "lz4":
-        return [BloscCodec(cname="lz4", clevel=5, shuffle=BloscShuffle.shuffle)]
+        return [BloscCodec(cname="lz4", clevel=5, shuffle=BloscShuffle.bitshuffle)]
     if compression == "zstd":
-        return [BloscCodec(cname="zstd", clevel=1, shuffle=BloscShuffle.shuffle)]
+        return [BloscCodec(cname="zstd", clevel=1, shuffle=BloscShuffle.bitshuffle)]
     raise StoreError(f"compression {compression!r} is not one of: {', '.join(COMPRESSIONS)} ([output] compression)")
 
 
 def _compression_of(arr: zarr.Array) -> str:
+    """The ``[output] compression`` an existing array matches; arrays written with byte
+    shuffle (earlier versions) count as their codec's name, so they are not rewritten."""
     comp = tuple(arr.compressors)
     if not comp:
         return "none"
-    if len(comp) == 1 and isinstance(comp[0], BloscCodec) and comp[0].shuffle == BloscShuffle.shuffle:
+    shuffles = (BloscShuffle.shuffle, BloscShuffle.bitshuffle)
+    if len(comp) == 1 and isinstance(comp[0], BloscCodec) and comp[0].shuffle in shuffles:
         c = comp[0]
         if (c.cname.value, c.clevel) == ("lz4", 5):
             return "lz4"
@@ -430,7 +437,7 @@ class OutputStore:
         chunk_samples : int
             Chunk length in samples; every span starts on a chunk boundary.
         compression : str
-            ``"none"``, ``"lz4"`` or ``"zstd"`` (Blosc with byte shuffle).
+            ``"none"``, ``"lz4"`` or ``"zstd"`` (Blosc with bit shuffle).
         attrs : dict
             Must hold ``source``, ``source_fingerprint`` and ``design_digest``; converted with
             :func:`json_safe`. ``blocks`` is filled in when absent.
