@@ -149,9 +149,10 @@ def _stats_jit(a):  # type: ignore[no-untyped-def]
 
 
 @_jit
-def _int24_jit(raw, scale, big_endian):  # type: ignore[no-untyped-def]
+def _int24_jit(raw, scale, big_endian, out):  # type: ignore[no-untyped-def]
+    # out: float64, raw.shape[0] // 3 items, allocated by the caller (numpy asks the kernel
+    # for huge pages on large arrays; numba's own allocator does not).
     n = raw.shape[0] // 3
-    out = np.empty(n)
     for i in range(n):
         if big_endian:
             v = (np.int32(raw[3 * i]) << 16) | (np.int32(raw[3 * i + 1]) << 8) | np.int32(raw[3 * i + 2])

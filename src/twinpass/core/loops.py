@@ -51,7 +51,7 @@ def _stats_numpy(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return bad, np.sum(clean * clean, axis=0), np.max(np.abs(clean), axis=0, initial=0.0)
 
 
-def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool) -> np.ndarray:
+def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool, out: np.ndarray | None = None) -> np.ndarray:
     b = raw.reshape(-1, 3)
     if big_endian:
         b = b[:, ::-1]
@@ -59,8 +59,9 @@ def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool) -> np.ndarray:
     wide[:, 1:] = b  # little-endian int32 holding value << 8
     v = wide.view("<i4").reshape(-1)
     v >>= 8  # arithmetic shift restores the sign
-    out = v.astype(np.float64)
-    out *= scale
+    if out is None:
+        out = np.empty(v.shape[0])
+    np.multiply(v, scale, out=out)
     return out
 
 
@@ -219,7 +220,8 @@ def int24_to_float(raw: np.ndarray, scale: float, *, big_endian: bool = False) -
     ndarray, float64, shape (n,)
     """
     raw = np.ascontiguousarray(raw, dtype=np.uint8).reshape(-1)
-    return _loop("int24")(raw, float(scale), bool(big_endian))
+    out = np.empty(raw.shape[0] // 3)
+    return _loop("int24")(raw, float(scale), bool(big_endian), out)
 
 
 def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray) -> np.ndarray:

@@ -196,10 +196,16 @@ class Codec:
         return out
 
     def decode(self, raw: np.ndarray, channels: int) -> np.ndarray:
-        """Interleaved sample bytes (``uint8``) as float64, shape (frames, channels)."""
+        """Interleaved sample bytes (``uint8``) as float64, shape (frames, channels).
+
+        ``raw`` must be a buffer the caller owns: native float64 samples are scaled in it
+        and returned as a view of it, without a copy."""
         if self.itemsize == 3:  # packed 24-bit: decoded and scaled in one pass
             out = int24_to_float(raw, 2.0**-23, big_endian=self.byteorder == ">")
             return self._gain_offset(out).reshape(-1, channels)
+        if self.dtype == np.dtype(np.float64) and self.dtype.isnative:
+            # Native float64: the bytes just read are the samples; scale them in place.
+            return self._gain_offset(raw.view(np.float64)).reshape(-1, channels)
         return self.to_float(raw.view(self.dtype)).reshape(-1, channels)
 
 
