@@ -474,3 +474,22 @@ def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore
         store.set_complete(NAME, True, None)
     assert store.array_attrs(NAME)["complete"] is False
     assert store.read_block_table(NAME).status.tolist() == [1, 0, 0]  # the finished block is kept
+
+
+def test_records_after_invalidation_and_re_preparation_see_the_current_table(store: OutputStore):
+    # record_block keeps the block table open between calls; invalidating blocks or
+    # preparing the file again must not let an old view resurrect errors or spans.
+    _prepare(store)
+    store.record_block(NAME, 1, BlockStatus.ERROR, None, None, "disk full")
+    _finish_block(store, 0)
+    assert store.read_block_table(NAME).errors == {1: "disk full"}
+    store.invalidate_blocks(NAME, [1])
+    _finish_block(store, 2)
+    table = store.read_block_table(NAME)
+    assert table.errors == {} and table.status.tolist() == [1, 0, 1]
+    # new chunking and spans: the array and table are recreated
+    _prepare(store, chunk=10, spans=[(0, 50), (50, 100)])
+    _finish_block(store, 1)
+    assert store.read_block_table(NAME).status.tolist() == [0, 1]
+    with pytest.raises(StoreError, match="missing"):
+        store.record_block(NAME, 0, BlockStatus.PASS, None, None, None)

@@ -30,7 +30,7 @@ import warnings
 from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Callable, Literal
 
 import fsspec
 import numpy as np
@@ -182,6 +182,19 @@ def _open_zarr_store(location: str, *, read_only: bool) -> LocalStore | FsspecSt
         raise StoreError(f"output store {location}: cannot open this URL: {e}") from e
 
 
+@dataclass
+class _TableHandles:
+    """A block table's open arrays and what :meth:`OutputStore.record_block` needs of its array."""
+
+    group: zarr.Group
+    status: zarr.Array
+    span: np.ndarray
+    figures: zarr.Array
+    seams: zarr.Array
+    chunk: int
+    chunk_key: Callable[[tuple[int, ...]], str]
+
+
 def _table_path(name: str) -> str:
     return f"{RESERVED_PREFIX}/blocks/{name}"
 
@@ -257,6 +270,9 @@ class OutputStore:
         self._store = store
         self._root = root
         self._mutex = threading.RLock()
+        self._handles: dict[str, _TableHandles] = {}
+        """Open block-table arrays per output array, for :meth:`record_block` (driver only);
+        dropped by every method that rewrites a table or deletes nodes."""
 
     # -- opening --------------------------------------------------------------
 
@@ -378,7 +394,19 @@ class OutputStore:
             raise StoreError(f"no block table for {name} in {self.location}; prepare the file first")
         return node
 
+    def _table_handles(self, name: str) -> _TableHandles:
+        h = self._handles.get(name)
+        if h is None:
+            group = self._table(name)
+            arr = self._array(name)
+            h = self._handles[name] = _TableHandles(
+                group, group["status"], np.asarray(group["span"][:]), group["figures"], group["seams"],
+                int(arr.chunks[0]), arr.metadata.encode_chunk_key,
+            )
+        return h
+
     def _delete(self, path: str) -> None:
+        self._handles.clear()
         if self.local_root is not None:
             target = (self.local_root / path).resolve()
             root = self.local_root.resolve()
@@ -473,6 +501,7 @@ class OutputStore:
         meta["complete"] = False
         columns = [str(c) for c in n_figures_columns]
         with self._mutex, write_errors(f"{name} (preparing the output array)"):
+            self._handles.pop(name, None)
             self._check_parents(name)
             node = self._node(name)
             if isinstance(node, zarr.Group):
@@ -619,7 +648,9 @@ class OutputStore:
             return np.asarray(sm.get_orthogonal_selection((idx, slice(None), slice(None), slice(None))))
 
     def _chunk_exists(self, arr: zarr.Array, name: str, chunk_index: int) -> bool:
-        key = f"{name}/{arr.metadata.encode_chunk_key((chunk_index, 0))}"
+        return self._chunk_key_exists(f"{name}/{arr.metadata.encode_chunk_key((chunk_index, 0))}")
+
+    def _chunk_key_exists(self, key: str) -> bool:
         if self.local_root is not None:
             return (self.local_root / key).is_file()
         fs, root = _url_fs(self.location)
@@ -643,26 +674,24 @@ class OutputStore:
         self._writable()
         status = BlockStatus(int(status))
         with self._mutex, write_errors(f"{name} block {index} (block table)"):
-            group = self._table(name)
-            st = group["status"]
+            h = self._table_handles(name)
+            group, st = h.group, h.status
             n = st.shape[0]
             if not 0 <= index < n:
                 raise StoreError(f"{name}: block index {index} is outside 0..{n - 1}")
             if status in _DONE:
-                arr = self._array(name)
-                a, b = (int(v) for v in group["span"][index])
-                chunk = arr.chunks[0]
+                a, b = (int(v) for v in h.span[index])
+                chunk = h.chunk
                 for c in range(a // chunk, -(-b // chunk)):
-                    if not self._chunk_exists(arr, name, c):
+                    if not self._chunk_key_exists(f"{name}/{h.chunk_key((c, 0))}"):
                         raise StoreError(
                             f"{name}: block {index} [{a}, {b}) recorded as {status.name.lower()} but its data chunk "
                             f"{c} is missing; write the block's data first"
                         )
             if status not in _DONE:
                 self._mark_incomplete(self._array(name))
-            for key, value in (("figures", figures), ("seams", seams)):
+            for key, target, value in (("figures", h.figures, figures), ("seams", h.seams, seams)):
                 if value is not None:
-                    target = group[key]
                     value = np.asarray(value, dtype=np.float64)
                     if value.shape != target.shape[1:]:
                         raise StoreError(f"{name}: block {index} {key} have shape {value.shape}; expected {target.shape[1:]}")
@@ -681,6 +710,7 @@ class OutputStore:
         self._writable()
         idx = sorted({int(i) for i in block_indices})
         with self._mutex, write_errors(f"{name} (invalidating blocks)"):
+            self._handles.pop(name, None)
             self._mark_incomplete(self._array(name))
             group = self._table(name)
             st = group["status"]
