@@ -217,21 +217,3 @@ def test_end_extension_longer_than_the_halo_reads_across_several_files(tmp_path)
     assert filt["edge_samples"] == 2500 and filt["effective_length_samples"] < 1000
     y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
     assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
-
-
-def test_scratch_buffers_are_kept_per_thread_and_grow() -> None:
-    # Each worker thread reuses its own buffer per key; a larger request replaces it.
-    import threading
-
-    from twinpass.engine import scratch
-
-    a = scratch("test-key", 100)
-    assert scratch("test-key", 80) is a and a.size >= 100
-    b = scratch("test-key", 1000)
-    assert b is not a and b.size >= 1000 and scratch("test-key", 10) is b
-    assert scratch("test-key", 10, np.float32).dtype == np.float32
-    other: list[np.ndarray] = []
-    t = threading.Thread(target=lambda: other.append(scratch("test-key", 10, np.float32)))
-    t.start()
-    t.join()
-    assert not np.shares_memory(other[0], scratch("test-key", 10, np.float32))

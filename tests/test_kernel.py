@@ -165,23 +165,6 @@ def test_whole_window_equals_sosfiltfilt(edge: str, edge_samples: int) -> None:
     np.testing.assert_array_equal(part, ref[123:4567])
 
 
-def test_workspace_gives_the_same_samples_and_is_reused() -> None:
-    # Reference: scipy.signal.sosfiltfilt (as above). A workspace large enough holds the
-    # passes (the result is a view of it); one too small is left alone.
-    sos = signal.ellip(6, 0.5, 60, (20, 90), "bandpass", fs=FS, output="sos")
-    x = make_signal(6000, 9, np.float64, seed=4)
-    ref = signal.sosfiltfilt(sos, x, axis=0, padlen=300)
-    kw = dict(sos=sos, core_start=0, core_stop=6000, at_start=True, at_end=True, edge_samples=300)
-    work = np.full((6000 + 600) * 9 + 17, np.nan)
-    y = filtfilt_window(x, workspace=work, **kw)
-    np.testing.assert_array_equal(y, ref)
-    assert np.shares_memory(y, work)
-    small = np.full(100, np.nan)
-    y2 = filtfilt_window(x, workspace=small, **kw)
-    np.testing.assert_array_equal(y2, ref)
-    assert not np.shares_memory(y2, small) and np.isnan(small).all()
-
-
 def test_one_dimensional_window() -> None:
     # 1-D input is one channel; reference scipy.signal.sosfiltfilt.
     sos = signal.butter(3, 30, fs=FS, output="sos")

@@ -31,7 +31,6 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
-import threading
 import time
 import traceback
 from dataclasses import dataclass, field
@@ -191,24 +190,6 @@ def retry_delays(retries: int, first_seconds: float) -> list[float]:
     return [float(first_seconds) * 2.0**i for i in range(max(0, int(retries)))]
 
 
-_SCRATCH = threading.local()
-
-
-def scratch(key: str, size: int, dtype: Any = np.float64) -> np.ndarray:
-    """A 1-D array of at least ``size`` items kept for this thread and reused block after block.
-
-    Fresh arrays of tens of MiB cost page faults on every block (the allocator returns them
-    to the system when freed); each worker thread keeps one buffer per ``key`` instead, as
-    large as its largest block so far. Its contents are valid until the next call with the
-    same key on the same thread.
-    """
-    bufs: dict[str, np.ndarray] = _SCRATCH.__dict__.setdefault("bufs", {})
-    buf = bufs.get(key)
-    if buf is None or buf.size < size or buf.dtype != np.dtype(dtype):
-        buf = bufs[key] = np.empty(int(size), dtype=dtype)
-    return buf
-
-
 def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Return (x_core, y_core, seams, window_samples) for a job."""
     s, e = job.core
@@ -232,11 +213,9 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
     else:
         xs, xe, ws, we, at_start, at_end = block_reach(s, e, job.segment_frames, halo, k, job.edge_samples)
         window = read_segment_window(job.sources, ws, we, job.channels)
-        n_ext = (we - ws + 2 * job.edge_samples) * job.channels  # the window and both end extensions
         y_ext = filtfilt_window(
             window, sos=sos, taps=taps, core_start=xs - ws, core_stop=xe - ws,
             at_start=at_start, at_end=at_end, edge=job.edge, edge_samples=job.edge_samples,
-            workspace=scratch("two-pass", n_ext),
         )
     y = y_ext[s - xs : s - xs + (e - s)]
     x = window[s - ws : e - ws]
@@ -278,9 +257,8 @@ def run_block(job: BlockJob) -> BlockResult:
             if job.write:
                 from .io.store import write_block_data
 
-                cast = scratch("output", y.size, job.out_dtype)[: y.size].reshape(y.shape)
-                np.copyto(cast, y, casting="unsafe")
-                write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset, cast)
+                write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
+                                 y.astype(job.out_dtype))
             return BlockResult(job.array_name, job.block_index, status, figs, seams, None,
                                attempt + 1, time.perf_counter() - t0, wlen)
         except Exception as exc:  # a block failure must never stop the others

@@ -282,22 +282,17 @@ def _extend_ends(x: np.ndarray, n_left: int, n_right: int, edge: str) -> np.ndar
 
 
 def _sos_two_pass(
-    sos: np.ndarray, x: np.ndarray, n_left: int, n_right: int, edge: str, out_start: int, out_stop: int,
-    workspace: np.ndarray | None = None,
+    sos: np.ndarray, x: np.ndarray, n_left: int, n_right: int, edge: str, out_start: int, out_stop: int
 ) -> np.ndarray:
     """Literal two-pass of time-major ``x`` with sections ``sos``, as ``sosfiltfilt`` does it.
 
     Same arguments and result as :func:`_fir_two_pass` (outputs ``[out_start, out_stop)`` of
-    ``x``), time-major: the forward pass writes a new array (or into ``workspace``, a 1-D
-    float64 array, when it is large enough) and the backward pass runs in place over it
-    from the last sample down to the first requested output.
+    ``x``), time-major: the forward pass writes a new array and the backward pass runs in
+    place over it from the last sample down to the first requested output.
     """
     zi_unit = unit_steady_state(sos=sos)[:, :, None]  # (sections, 2, 1)
     ext = _extend_ends(x, n_left, n_right, edge)
-    buf = None
-    if workspace is not None and workspace.dtype == np.float64 and workspace.size >= ext.size:
-        buf = workspace[: ext.size].reshape(ext.shape)
-    y = sos_cascade(sos, ext, zi_unit * ext[0], buf)
+    y = sos_cascade(sos, ext, zi_unit * ext[0])
     lo = n_left + out_start
     back = y[lo:]
     sos_cascade(sos, back, zi_unit * y[-1], back, reverse=True)
@@ -356,7 +351,6 @@ def filtfilt_window(
     at_end: bool,
     edge: str = "odd",
     edge_samples: int,
-    workspace: np.ndarray | None = None,
 ) -> np.ndarray:
     """Two-pass (forward then backward) result for a block core from its haloed window.
 
@@ -378,10 +372,6 @@ def filtfilt_window(
     edge_samples : int
         Extension length at segment ends (ignored for ``"none"``); the window needs at
         least ``edge_samples + 1`` samples.
-    workspace : ndarray, float64, 1-D, optional
-        Scratch memory reused across calls (IIR only): when it holds at least the extended
-        window's samples x channels, the passes run in it and the result is a view of it,
-        valid until the workspace is used again. Otherwise a new array is allocated.
 
     Returns
     -------
@@ -432,7 +422,7 @@ def filtfilt_window(
         coeffs = np.asarray(sos, dtype=np.float64)
         if coeffs.ndim != 2 or coeffs.shape[1] != 6:
             raise KernelError(f"sos must have shape (n_sections, 6); got {coeffs.shape}.")
-        out = _sos_two_pass(coeffs, x, n_left, n_right, edge, core_start, core_stop, workspace)
+        out = _sos_two_pass(coeffs, x, n_left, n_right, edge, core_start, core_stop)
     else:
         h = np.asarray(taps, dtype=np.float64)
         if h.ndim != 1 or h.size < 1:
