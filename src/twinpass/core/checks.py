@@ -239,8 +239,6 @@ _GROUP_BYTES: int = 1 << 23
 _FFT_CHANNELS: int = 8
 """Channels transformed per call: pocketfft runs several rows side by side in vector
 registers (float32 needs at least four rows to gain from it)."""
-_TRANSPOSE_BYTES: int = 1 << 18
-"""Bytes of time-major input per step of the blocked transpose to channel-major segments."""
 
 
 def _segment_plan(n_samples: int, nperseg: int, max_segments: int | None) -> tuple[int, int]:
@@ -344,7 +342,7 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
     ``x``, ``y``: time-major (samples, channels); ``sxx`` ... channel-major (channels,
     n_freqs), float64. ``X``, ``Y``: rfft of each segment (``window.size`` samples, every
     ``step`` samples) with its mean removed, times the window, transformed in ``dtype``
-    (float64, or float32 where :func:`transform_dtype` allows it). Each segment is copied
+    (float64, or float32 where :func:`block_figures` chooses it). Each segment is copied
     channel-major once, so the transforms run along contiguous rows.
     """
     n = window.size
