@@ -44,7 +44,7 @@ from prefect_fixtures import (
 from twinpass import cli, flows
 from twinpass.core.blocks import blocks_touching
 from twinpass.errors import ConfigError
-from twinpass.io.store import OutputStore
+from twinpass.io.store import BlockStatus, OutputStore
 from twinpass.io.store_util import array_name
 
 # The Prefect fixtures (one temporary server for the whole session) come from this plug-in.
@@ -224,6 +224,29 @@ def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archiv
     rows = {r["file"]: r for r in table_rows(_one(arts, flows.ARTIFACT_FILES))}
     assert rows[bad]["status"] == "failed" and rows[bad]["blocks not done"] == 1
     check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
+
+
+def test_a_segment_whose_checks_fail_is_not_retried(prefect_client, npy_archive, tmp_path, monkeypatch):
+    # Injected fault: block 2 of one file is filtered with its first section's numerator
+    # scaled by sqrt(2) (+6 dB overall), so its response check fails; running the block
+    # again gives the same figures, so the segment task ends Failed after one run even
+    # with a retry configured, and the other stream's segment completes.
+    bad = file_relpath("south", 1)
+    cfg = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "perturb", "file": array_name(bad), "block": 2}]))
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_failed() and bad in state.message, state.message
+
+    runs = final_task_runs(prefect_client, flow_run_id(state), expected=4)
+    segs = runs_of(runs, flows.filter_segment)
+    failed = next(t for t in segs if t.state.is_failed())
+    assert "south" in failed.name and failed.run_count == 1, (failed.name, failed.run_count)
+    assert "checks failed" in failed.state.message and "not retried" in failed.state.message
+    assert [s.name for s in prefect_client.read_task_run_states(failed.id)].count("Retrying") == 0
+    north = next(t for t in segs if "north" in t.name)
+    assert north.state.is_completed()
+    table = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_block_table(array_name(bad))
+    assert table.status[2] == BlockStatus.FAIL and not table.errors
 
 
 def test_locked_store_exits_2_naming_the_lock(prefect_server, npy_archive, tmp_path, monkeypatch, capsys):

@@ -133,7 +133,9 @@ class ChecksConfig:
 
 @dataclass(frozen=True)
 class FlowConfig:
-    """Prefect settings: one task per segment; its retries rerun only unfinished blocks."""
+    """Prefect settings: one task per segment; its retries rerun only unfinished blocks, and a
+    segment whose only failures are failed checks is not retried (the same blocks give the
+    same figures)."""
 
     retries: int = 1
     retry_delay_seconds: float = 5.0

@@ -71,5 +71,10 @@ class BlockFailedError(TwinpassError):
     """A block kept failing after its retries."""
 
 
+class ChecksFailedError(BlockFailedError):
+    """Blocks ran and were written, but their checks failed: running them again gives the same
+    figures, so the segment is not retried. Inspect the figures (``twinpass status``/report)."""
+
+
 class InjectedFault(TwinpassError):
     """Raised by the fault-injection switch (tests only)."""

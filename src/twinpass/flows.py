@@ -40,7 +40,7 @@ from .config import JobConfig, load_config
 from .core.design import format_report
 from .core.plan import fingerprint_changed
 from .engine import ERROR, FileOutcome, SegmentWork, dask_client, retry_delays, run_segment
-from .errors import BlockFailedError, ConfigError
+from .errors import BlockFailedError, ChecksFailedError, ConfigError
 from .io.store import OutputStore
 from .job import Prepared, RunResult, begin_run, finish_run, now_iso, prepare
 
@@ -104,7 +104,13 @@ def design_task(prep: Prepared) -> dict[str, Any]:
     return {f"{fs:g}": d.report for fs, d in prep.designs.items()}
 
 
-@task(name="filter-segment", cache_policy=NO_CACHE, retries=1, retry_delay_seconds=5.0)
+def _worth_retrying(task: Any, task_run: Any, state: Any) -> bool:
+    """Retry a failed segment unless only checks failed: the same blocks give the same figures."""
+    return not isinstance(getattr(state, "data", None), ChecksFailedError)
+
+
+@task(name="filter-segment", cache_policy=NO_CACHE, retries=1, retry_delay_seconds=5.0,
+      retry_condition_fn=_worth_retrying)
 def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_key: str) -> list[FileOutcome]:
     """Run every block a segment needs on the shared Dask client; fail naming failed files.
 
@@ -151,6 +157,9 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     if failed:
         names = "; ".join(f"{o.relpath} ({o.blocks_failed} block(s) not done: "
                           f"{next(iter(o.errors.values()), 'checks failed').splitlines()[0]})" for o in failed)
+        if not any(o.errors for o in failed):  # every block ran; only their checks failed
+            raise ChecksFailedError(f"segment {seg.segment_id}: {names}; not retried (the same blocks give "
+                                    "the same figures): see `twinpass status` or the report")
         raise BlockFailedError(f"segment {seg.segment_id}: {names}")
     return outcomes
 
