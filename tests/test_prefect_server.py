@@ -19,7 +19,7 @@ from pathlib import Path
 import pytest
 
 from twinpass import prefect_server
-from twinpass.errors import ConfigError
+from twinpass.errors import PrefectServerError
 from twinpass.prefect_server import LocalPrefectServer, early_start
 
 SRC = str(Path(__file__).resolve().parents[1] / "src")
@@ -174,7 +174,7 @@ def test_a_server_that_cannot_start_is_a_config_error_with_its_output(server_env
     server = LocalPrefectServer()
     server.start()
     process = server.process
-    with pytest.raises(ConfigError) as info:
+    with pytest.raises(PrefectServerError) as info:
         server.wait_ready()
     message = str(info.value)
     assert "exited with status" in message

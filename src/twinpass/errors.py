@@ -67,6 +67,10 @@ class UnsafePathError(StoreError):
     """A name derived from an input path would escape the store, or the store overlaps the inputs."""
 
 
+class PrefectServerError(TwinpassError):
+    """The temporary local Prefect server did not start or did not answer in time."""
+
+
 class BlockFailedError(TwinpassError):
     """A block kept failing after its retries."""
 

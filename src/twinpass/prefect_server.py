@@ -37,7 +37,7 @@ import urllib.request
 from pathlib import Path
 from typing import Any, Iterator
 
-from .errors import ConfigError
+from .errors import PrefectServerError
 
 log = logging.getLogger(__name__)
 
@@ -171,7 +171,7 @@ class LocalPrefectServer:
 
         Raises
         ------
-        ConfigError
+        PrefectServerError
             If the server process ends or does not answer in time (it is stopped then); the
             message holds the end of its output.
         """
@@ -193,7 +193,7 @@ class LocalPrefectServer:
                     self._spawn()
                     continue
                 self.stop()
-                raise ConfigError(
+                raise PrefectServerError(
                     f"the temporary Prefect server (for the database under PREFECT_HOME) exited with status "
                     f"{code} while starting; its output ends:\n{tail or '(nothing)'}\n"
                     "Fix the Prefect settings named there, set PREFECT_API_URL to a running Prefect server, "
@@ -207,7 +207,7 @@ class LocalPrefectServer:
             if time.monotonic() > deadline:
                 tail = self._output_tail(ended=False)
                 self.stop()
-                raise ConfigError(
+                raise PrefectServerError(
                     f"the temporary Prefect server on {self.api_url} did not answer within {timeout:g} s; "
                     f"its output ends:\n{tail or '(nothing)'}\nRaise {STARTUP_TIMEOUT_ENV}, set PREFECT_API_URL "
                     "to a running Prefect server, or run with --no-flow")
@@ -363,7 +363,7 @@ def prefect_api() -> Iterator[str | None]:
 
     Raises
     ------
-    ConfigError
+    PrefectServerError
         If the temporary server cannot be started.
     """
     global _early
