@@ -131,6 +131,27 @@ def test_flow_runs_against_the_early_server_and_is_recorded_there(shared_home: P
     assert "Traceback" not in proc.stderr, proc.stderr
 
 
+def test_save_without_an_api_keeps_the_block_in_the_local_database(shared_home: Path, tmp_path: Path) -> None:
+    # `twinpass save` with no PREFECT_API_URL writes through a temporary server into the
+    # database under PREFECT_HOME; a later temporary server over that database finds it.
+    cfg = tmp_path / "job.toml"
+    cfg.write_text('[response]\nkind = "lowpass"\nfamily = "butterworth"\norder = 4\ncutoff_hz = [10.0]\n'
+                   '[archive]\nroot = "archive"\n[output]\nstore = "out.zarr"\n', encoding="utf-8")
+    env = _clean_env(shared_home)
+    saved = subprocess.run([sys.executable, "-m", "twinpass.cli", "save", str(cfg), "--name", "tp-local-save"],
+                           env=env, cwd=tmp_path, capture_output=True, text=True, timeout=300)
+    assert saved.returncode == 0, saved.stdout + saved.stderr
+    assert "saved configuration" in saved.stdout
+    load = ("from twinpass.prefect_server import prefect_api\n"
+            "with prefect_api():\n"
+            "    from twinpass.prefect_blocks import TwinpassJob\n"
+            "    print('CUTOFF', TwinpassJob.load('tp-local-save').to_job_config().response.cutoff_hz)\n")
+    loaded = subprocess.run([sys.executable, "-c", load], env=env, cwd=tmp_path, capture_output=True, text=True,
+                            timeout=300)
+    assert loaded.returncode == 0, loaded.stdout + loaded.stderr
+    assert "CUTOFF (10.0,)" in loaded.stdout, loaded.stdout
+
+
 def test_no_server_when_an_api_url_is_configured(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("PREFECT_API_URL", "http://127.0.0.1:9/api")
     assert early_start() is None

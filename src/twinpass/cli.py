@@ -235,11 +235,16 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
 
 def cmd_save(args: argparse.Namespace) -> int:
-    from . import _prefect_env  # noqa: F401  (must precede the prefect import)
+    from .prefect_server import early_start, prefect_api
+
+    # With no Prefect API configured the block goes to a temporary server's database, the one
+    # under PREFECT_HOME that `prefect server start` uses too, so the block stays.
+    early_start()
     from .prefect_blocks import TwinpassJob
 
     block = TwinpassJob.from_file(args.config)
-    block.save(args.name, overwrite=True)
+    with prefect_api():
+        block.save(args.name, overwrite=True)
     print(f"saved configuration {args.config} as TwinpassJob block {args.name!r}; run it with "
           f"`twinpass run --block {args.name}`, or name it in a deployment with config_block={args.name!r}")
     return 0
