@@ -780,9 +780,10 @@ def main(argv: list[str] | None = None) -> int:
     out = Path(a.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(json.dumps(res, indent=2, default=str), encoding="utf-8")
-    header = (f"Measured {res['date']} on {machine_line(mach)}. Archive: {b.info.get('bytes', 0) / 2**30:.2f} GiB, "
-              f"{b.info.get('files', 0)} files, {b.info.get('samples', 0) / 1e6:.0f} Msamples "
-              f"({b.info.get('channels')} channels at {b.info.get('rate_hz')} Hz). Load average at start "
+    archive = (f" Archive: {b.info.get('bytes', 0) / 2**30:.2f} GiB, {b.info.get('files', 0)} files, "
+               f"{b.info.get('samples', 0) / 1e6:.0f} Msamples ({b.info.get('channels')} channels at "
+               f"{b.info.get('rate_hz')} Hz)." if b.info.get("files") else "")  # absent when only `small` ran
+    header = (f"Measured {res['date']} on {machine_line(mach)}.{archive} Load average at start "
               f"{mach['load_average_at_start'][0]:.1f}, at end {res['load_average_at_end'][0]:.1f}. "
               f"Bench took {res['duration_s'] / 60:.1f} min.")
     out.with_suffix(".md").write_text(header + "\n\n" + text + "\n", encoding="utf-8")
