@@ -490,10 +490,10 @@ def _leakage(pyy: np.ndarray, nperseg: int) -> np.ndarray:
 
 
 def _response_figures(
-    est: TransferEstimate, design: Design, cfg: ChecksConfig
+    est: TransferEstimate, cfg: ChecksConfig, masks: tuple[np.ndarray, np.ndarray, np.ndarray]
 ) -> np.ndarray:
-    """Shape (channels, 5): the columns ``_RESPONSE_FIGURES``."""
-    db, passband, stopband = _design_masks(design, est.nperseg)
+    """Shape (channels, 5): the columns ``_RESPONSE_FIGURES``; ``masks`` from :func:`_design_masks`."""
+    db, passband, stopband = masks
     pxx, pyy, h, coh = est.pxx, est.pyy, est.h, est.coherence
     out = np.full((pxx.shape[1], 5), np.nan)
     n_d = est.segments / (1.0 + 2.0 * HANN_OVERLAP_CORRELATION**2)
@@ -622,13 +622,13 @@ def block_figures(
         if nperseg and clean.size:
             if clean.size < n_ch:
                 x, y = x[:, clean], y[:, clean]
-            stopband = _design_masks(design, nperseg)[2]
+            masks = _design_masks(design, nperseg)
             # float32 transforms suffice for passband figures (relative errors near 1e-7);
             # a stopband figure needs float64's range below the output's strongest bin.
-            precision = "float64" if stopband.any() else "float32"
+            precision = "float64" if masks[2].any() else "float32"
             est = transfer_estimate(x, y, design.sample_rate_hz, nperseg, MAX_SEGMENTS, precision=precision)
             cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
-            figures[np.ix_(clean, cols)] = _response_figures(est, design, cfg)
+            figures[np.ix_(clean, cols)] = _response_figures(est, cfg, masks)
     return figures
 
 
