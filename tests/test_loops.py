@@ -20,7 +20,8 @@ FS = 1000.0
 @pytest.mark.parametrize("channels", [1, 3, 4, 5, 8, 9, 12, 19])
 @pytest.mark.parametrize("reverse", [False, True])
 def test_cascade_equals_sosfilt_bit_for_bit(channels: int, reverse: bool) -> None:
-    # Channel counts cover lone channels, groups of eight and of four, and mixes of them.
+    # Reference: scipy.signal.sosfilt (output and final state). Channel counts cover lone
+    # channels, groups of eight and of four, and mixes of them.
     sos = signal.ellip(5, 0.5, 60, (15, 120), "bandpass", fs=FS, output="sos")
     rng = np.random.default_rng(channels)
     n = 3 * 2048 + 77  # several cache blocks plus a partial one
@@ -43,8 +44,9 @@ def test_cascade_equals_sosfilt_bit_for_bit(channels: int, reverse: bool) -> Non
 
 
 def test_cascade_on_strided_arrays_equals_sosfilt() -> None:
-    # Views that are not C-contiguous (every other sample, a reversed view) go through
-    # contiguous copies; the results and the state written back are sosfilt's.
+    # Reference: scipy.signal.sosfilt. Views that are not C-contiguous (every other sample,
+    # a reversed view) go through contiguous copies; the results and the state written back
+    # are sosfilt's.
     sos = signal.butter(4, (1.0, 40.0), "bandpass", fs=FS, output="sos")
     rng = np.random.default_rng(7)
     base = rng.standard_normal((6000, 8))
@@ -62,8 +64,9 @@ def test_cascade_on_strided_arrays_equals_sosfilt() -> None:
 
 
 def test_a_cascade_that_differs_from_sosfilt_is_refused() -> None:
-    # The compiled cascade is verified against scipy before first use; a loop off by one
-    # unit in the last place in a single output is rejected (injected fault).
+    # Reference: scipy.signal.sosfilt (through the numpy fallback). The compiled cascade is
+    # verified against it before first use; a loop off by one unit in the last place in a
+    # single output is rejected (injected fault).
     def off_by_one_ulp(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
         loops._cascade_numpy(sos, x, z, out, reverse)
         out[5, 0] = np.nextafter(out[5, 0], np.inf)
