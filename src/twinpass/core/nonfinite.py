@@ -117,7 +117,10 @@ def channel_runs(x: np.ndarray, offset: int = 0) -> list[ChannelRun]:
     a = _as_2d(x)
     if a.dtype.kind not in "fc":
         return []
-    bad = ~np.isfinite(a)
+    bad = np.isfinite(a)
+    if bad.all():  # the usual case, and a contiguous reduction far faster than any(axis=0)
+        return []
+    np.logical_not(bad, out=bad)
     out: list[ChannelRun] = []
     for c in np.flatnonzero(bad.any(axis=0)):
         d = np.diff(np.concatenate(([0], bad[:, c].view(np.int8), [0])))
@@ -154,7 +157,10 @@ def find_runs(x: np.ndarray) -> list[Span]:
     a = _as_2d(x)
     if a.dtype.kind not in "fc" or a.shape[0] == 0:
         return []
-    bad = (~np.isfinite(a)).any(axis=1).view(np.int8)
+    finite = np.isfinite(a)
+    if finite.all():
+        return []
+    bad = (~finite).any(axis=1).view(np.int8)
     d = np.diff(np.concatenate(([0], bad, [0])))
     return [(int(s), int(e)) for s, e in zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1))]
 

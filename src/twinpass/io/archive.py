@@ -106,6 +106,7 @@ import os
 import re
 import math
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import Any
@@ -750,6 +751,61 @@ def _split_name_clashes(entries: list[FileEntry]) -> tuple[list[FileEntry], list
     return sorted(keep, key=lambda e: order[e.relpath]), bad
 
 
+_EXAMINE_THREADS = 4
+"""Most threads that open, fingerprint and scan input files at once."""
+
+
+def _examine_threads(n_files: int) -> int:
+    return max(1, min(_EXAMINE_THREADS, os.cpu_count() or 1, n_files))
+
+
+def _examine(
+    cfg: JobConfig,
+    root: Path,
+    rel: str,
+    manifest: dict[str, _Row] | None,
+    pattern: NamePattern | None,
+    fingerprints: bool,
+    cache: Mapping[str, Mapping[str, Any]],
+) -> tuple[FileEntry | InvalidFile, list[str], dict[str, Any] | None, bool]:
+    """Open, identify, fingerprint and (float files) scan one input file.
+
+    Returns the file's entry (or the :class:`InvalidFile` that says why it is refused), its
+    warnings, its scan cache entry (or ``None``) and whether it was read for the scan.
+    """
+    abspath = str(root / rel)
+    scan_entry = None
+    was_scanned = False
+    try:
+        _output_name(rel)
+        info, spec = _open_info(cfg, abspath)
+        stream, start = _identify(cfg, rel, info, manifest, pattern)
+        fp = None
+        if fingerprints:
+            try:
+                fp = fingerprint_file(abspath, cfg.archive.fingerprint)
+            except InputError as e:
+                raise _Bad(f"cannot be fingerprinted: {_strip_path(str(e), abspath)}", _REMEDY_EXCLUDE) from None
+        runs: list[ChannelRun] = []
+        fills: tuple[FillSpan, ...] = ()
+        if holds_floats(info):
+            got = _cached_scan(cfg, info, fp, cache.get(rel))
+            if got is None:
+                was_scanned = True
+                got = _read_scan(cfg, info, spec)
+            runs, fills = got
+            scan_entry = _scan_entry(cfg, info, fp, runs, fills)
+        union, fills, note = _judge_nonfinite(cfg, info, runs, fills)
+    except _Bad as bad:
+        return InvalidFile(rel, bad.reason, bad.remedy), [], scan_entry, was_scanned
+    notes = [f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings]
+    if note:
+        notes.append(f"{rel}: {note}")
+    entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills)
+    return entry, notes, scan_entry, was_scanned
+
+
+
 def discover(
     cfg: JobConfig, *, fingerprints: bool = True, scan_cache: Mapping[str, Mapping[str, Any]] | None = None
 ) -> Discovery:
@@ -795,39 +851,21 @@ def discover(
     scans: dict[str, dict[str, Any]] = {}
     scanned: list[str] = []
     reported = {b.path for b in invalid}
-    for rel in rels:
-        if rel in reported:
+    todo = [rel for rel in rels if rel not in reported]
+    # Opening, fingerprinting and scanning are reads and hashes that release the GIL:
+    # a few threads overlap them (results are taken in listing order).
+    with ThreadPoolExecutor(max_workers=_examine_threads(len(todo))) as pool:
+        looked = list(pool.map(lambda rel: _examine(cfg, root, rel, manifest, pattern, fingerprints, cache), todo))
+    for rel, (entry, notes, scan_entry, was_scanned) in zip(todo, looked):
+        if was_scanned:
+            scanned.append(rel)
+        if scan_entry is not None:  # kept for refused files too: they need not be read again
+            scans[rel] = scan_entry
+        if isinstance(entry, InvalidFile):
+            invalid.append(entry)
             continue
-        abspath = str(root / rel)
-        try:
-            _output_name(rel)
-            info, spec = _open_info(cfg, abspath)
-            stream, start = _identify(cfg, rel, info, manifest, pattern)
-            fp = None
-            if fingerprints:
-                try:
-                    fp = fingerprint_file(abspath, cfg.archive.fingerprint)
-                except InputError as e:
-                    raise _Bad(f"cannot be fingerprinted: {_strip_path(str(e), abspath)}", _REMEDY_EXCLUDE) from None
-            runs: list[ChannelRun] = []
-            fills: tuple[FillSpan, ...] = ()
-            if holds_floats(info):
-                got = _cached_scan(cfg, info, fp, cache.get(rel))
-                if got is None:
-                    scanned.append(rel)
-                    got = _read_scan(cfg, info, spec)
-                runs, fills = got
-                entry = _scan_entry(cfg, info, fp, runs, fills)
-                if entry is not None:
-                    scans[rel] = entry
-            union, fills, note = _judge_nonfinite(cfg, info, runs, fills)
-        except _Bad as bad:
-            invalid.append(InvalidFile(rel, bad.reason, bad.remedy))
-            continue
-        warnings.extend(f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings)
-        if note:
-            warnings.append(f"{rel}: {note}")
-        entries.append(FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills))
+        warnings.extend(notes)
+        entries.append(entry)
     valid, dups = _split_duplicates(entries)
     invalid.extend(dups)
     valid, clashes = _split_name_clashes(valid)
