@@ -253,7 +253,73 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> 
             "blocks must write whole chunks (or end at the array's end) so that no two blocks share a chunk"
         )
     with write_errors(f"{name} block [{start}, {stop}) in {location}"):
-        arr[start:stop, :] = data.astype(arr.dtype, copy=False)
+        root = local_path(location)
+        encode = _chunk_encoder(arr) if root is not None else None
+        if encode is None:
+            arr[start:stop, :] = data.astype(arr.dtype, copy=False)
+        else:
+            _write_local_chunks(root / name, arr, encode, start, data)
+
+
+def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
+    """Bytes of one whole chunk as the array's codecs store it, for the codec chains twinpass
+    creates (little-endian bytes, then optionally Blosc); ``None`` for any other chain.
+
+    The Blosc step is numcodecs' ``Blosc`` with the codec's own settings, which is what Zarr
+    itself runs for this codec; run here, it compresses in the calling worker thread.
+    """
+    from zarr.codecs import BytesCodec
+    from zarr.core.metadata.v3 import ArrayV3Metadata
+
+    meta = arr.metadata
+    if not isinstance(meta, ArrayV3Metadata) or meta.chunk_key_encoding.name != "default":
+        return None
+    codecs = tuple(meta.codecs)
+    if not codecs or not isinstance(codecs[0], BytesCodec) or codecs[0].endian not in (None, "little"):
+        return None
+    dtype = np.dtype(arr.dtype).newbyteorder("<")
+    if len(codecs) == 1:
+        return lambda a: np.ascontiguousarray(a, dtype=dtype).tobytes()
+    if len(codecs) != 2 or not isinstance(codecs[1], BloscCodec):
+        return None
+    import numcodecs
+
+    c = codecs[1]
+    blosc = numcodecs.Blosc(cname=c.cname.value, clevel=c.clevel,
+                            shuffle={"noshuffle": 0, "shuffle": 1, "bitshuffle": 2}[c.shuffle.value],
+                            blocksize=c.blocksize, typesize=c.typesize)
+    return lambda a: blosc.encode(np.ascontiguousarray(a, dtype=dtype))
+
+
+def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndarray], Any], start: int,
+                        data: np.ndarray) -> None:
+    """Encode and write the whole chunks ``data`` covers, from frame ``start`` (a chunk boundary).
+
+    Each chunk file is written to a temporary name and renamed into place, as Zarr's local
+    store does, so a reader never sees half a chunk. A chunk that runs past the array's end
+    is completed with the fill value, as Zarr stores edge chunks.
+    """
+    import uuid
+
+    chunk = arr.chunks[0]
+    frames, channels = arr.shape
+    for c0 in range(start, start + data.shape[0], chunk):
+        part = data[c0 - start : c0 - start + chunk]
+        if part.shape[0] < chunk:  # the array's last, partial chunk
+            full = np.full((chunk, channels), arr.fill_value, dtype=arr.dtype)
+            full[: part.shape[0]] = part
+            part = full
+        key = arr.metadata.encode_chunk_key((c0 // chunk, 0))
+        path = folder / key
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f"{path.name}.{uuid.uuid4().hex}.partial")
+        try:
+            with open(tmp, "wb") as f:
+                f.write(encode(part))
+            os.replace(tmp, path)
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
 
 
 class OutputStore:
