@@ -35,6 +35,7 @@ from twinpass.config import load_config
 from twinpass.core.design import design_filter
 from twinpass.errors import StoreError
 from twinpass.io.readers import open_recording
+from twinpass.io import store as store_module
 from twinpass.io.store import OutputStore
 from twinpass.io.store_lock import LOCK_NAME, LockInfo
 from conftest import run_cli
@@ -320,7 +321,11 @@ def test_disk_full_during_block_writes_then_rerun_completes(tmp_path, monkeypatc
             raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), key)
         return await real_set(self, key, value)
 
+    def full_disk_file(path, payload):  # the chunk files block tasks write themselves
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+
     monkeypatch.setattr(LocalStore, "set", full_disk)
+    monkeypatch.setattr(store_module, "_put_file", full_disk_file)
     res = run(cfg)
     monkeypatch.undo()
     assert _complete(res) == {r: "failed" for r in rels}

@@ -30,6 +30,8 @@ from twinpass.io.store import (
     json_safe,
     write_block_data,
 )
+from twinpass.io import store as store_module
+from twinpass.io.store import _chunk_encoder
 
 SOURCE = "deck-north/deck-north_20260301T000000.wav"
 NAME = "deck-north/deck-north_20260301T000000"
@@ -192,6 +194,7 @@ def test_block_chunks_are_the_bytes_zarr_writes(tmp_path: Path, compression: str
     for a, b in spans:
         write_block_data(ours.location, NAME, a, values[a:b])
     ref = zarr.open_array(LocalStore(tmp_path / "theirs.zarr"), path=NAME, mode="r+")
+    assert _chunk_encoder(ref) is not None  # the arrays twinpass creates take the direct path
     ref[:, :] = values.astype(dtype)
     for i in range(4):
         key = Path(NAME, "c", str(i), "0")
@@ -495,8 +498,12 @@ def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore
     async def full_disk(self, key, value):  # injected fault: POSIX errno ENOSPC, "No space left on device"
         raise OSError(errno.ENOSPC, "No space left on device")
 
+    def full_disk_file(path, payload):  # the same fault where block tasks write chunk files themselves
+        raise OSError(errno.ENOSPC, "No space left on device")
+
     with monkeypatch.context() as m:
         m.setattr(LocalStore, "set", full_disk)
+        m.setattr(store_module, "_put_file", full_disk_file)
         with pytest.raises(StoreError, match="no space left on device while writing .*block") as err:
             write_block_data(store.location, NAME, 40, np.ones((40, 3)))
         assert "finished blocks are kept" in str(err.value)

@@ -275,7 +275,8 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
     if not isinstance(meta, ArrayV3Metadata) or meta.chunk_key_encoding.name != "default":
         return None
     codecs = tuple(meta.codecs)
-    if not codecs or not isinstance(codecs[0], BytesCodec) or codecs[0].endian not in (None, "little"):
+    endian = getattr(codecs[0], "endian", None) if codecs else None
+    if not codecs or not isinstance(codecs[0], BytesCodec) or getattr(endian, "value", endian) not in (None, "little"):
         return None
     dtype = np.dtype(arr.dtype).newbyteorder("<")
     if len(codecs) == 1:
@@ -299,8 +300,6 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
     store does, so a reader never sees half a chunk. A chunk that runs past the array's end
     is completed with the fill value, as Zarr stores edge chunks.
     """
-    import uuid
-
     chunk = arr.chunks[0]
     frames, channels = arr.shape
     for c0 in range(start, start + data.shape[0], chunk):
@@ -309,17 +308,22 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
             full = np.full((chunk, channels), arr.fill_value, dtype=arr.dtype)
             full[: part.shape[0]] = part
             part = full
-        key = arr.metadata.encode_chunk_key((c0 // chunk, 0))
-        path = folder / key
-        path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f"{path.name}.{uuid.uuid4().hex}.partial")
-        try:
-            with open(tmp, "wb") as f:
-                f.write(encode(part))
-            os.replace(tmp, path)
-        except BaseException:
-            tmp.unlink(missing_ok=True)
-            raise
+        _put_file(folder / arr.metadata.encode_chunk_key((c0 // chunk, 0)), encode(part))
+
+
+def _put_file(path: Path, payload: Any) -> None:
+    """Write ``payload`` (bytes-like) to a temporary file beside ``path``, then rename it into place."""
+    import uuid
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f"{path.name}.{uuid.uuid4().hex}.partial")
+    try:
+        with open(tmp, "wb") as f:
+            f.write(payload)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 class OutputStore:
