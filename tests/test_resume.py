@@ -210,7 +210,8 @@ class Crash(BaseException):
     """Stands for the process dying (a BaseException, so that nothing in the run catches it)."""
 
 
-_WRITES = ("prepare_file", "update_attrs", "invalidate_blocks", "record_block", "set_complete", "remove_file")
+_WRITES = ("prepare_file", "update_attrs", "invalidate_blocks", "record_block", "record_blocks", "set_complete",
+           "remove_file")
 
 
 class CrashingStore:
@@ -279,7 +280,7 @@ def test_a_run_dying_between_any_two_driver_writes_resumes_correctly(tmp_path, m
     probe = tmp_path / "probe"
     shutil.copytree(template, probe)
     writes = _run_crashing(monkeypatch, load_config(probe / "twinpass.toml"), None).writes
-    first_record = next(i for i, (name, _) in enumerate(writes) if name == "record_block")
+    first_record = next(i for i, (name, _) in enumerate(writes) if name in ("record_block", "record_blocks"))
     # Every write before the first block is recorded (preparation), then a few later ones.
     points = sorted({*range(1, first_record + 2), len(writes) - 4, len(writes) - 1, len(writes)})
     for crash_at in points:

@@ -24,6 +24,7 @@ from zarr.storage import LocalStore
 
 from twinpass.errors import StoreError, StoreLockedError, UnsafePathError
 from twinpass.io.store import (
+    BlockRecord,
     BlockStatus,
     OutputStore,
     array_name,
@@ -515,6 +516,46 @@ def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore
         store.set_complete(NAME, True, None)
     assert store.array_attrs(NAME)["complete"] is False
     assert store.read_block_table(NAME).status.tolist() == [1, 0, 0]  # the finished block is kept
+
+
+def test_a_batch_of_records_equals_the_same_records_one_by_one(tmp_path: Path):
+    spans = [(a, a + 20) for a in range(0, 100, 20)]
+    tables = []
+    for kind in ("single", "batch"):
+        store = OutputStore.open(str(tmp_path / f"{kind}.zarr"))
+        _prepare(store, spans=spans)
+        for a, b in spans[:4]:
+            write_block_data(store.location, NAME, a, np.ones((b - a, 3)))
+        store.record_block(NAME, 4, BlockStatus.ERROR, None, None, "OSError: earlier")
+        figs = [np.full((3, 2), float(i)) for i in range(5)]
+        seams = [np.full((4, 4, 3), -float(i)) for i in range(5)]
+        records = [BlockRecord(0, BlockStatus.PASS, figs[0], seams[0]),
+                   BlockRecord(2, BlockStatus.FAIL, figs[2], None),
+                   BlockRecord(3, BlockStatus.WARN, figs[3], seams[3]),
+                   BlockRecord(4, BlockStatus.ERROR, None, None, "ValueError: again"),
+                   BlockRecord(1, BlockStatus.ERROR, None, None, "first try"),
+                   BlockRecord(1, BlockStatus.PASS, figs[1], seams[1])]  # listed twice: the last counts
+        if kind == "single":
+            for r in records:
+                store.record_block(NAME, r.index, r.status, r.figures, r.seams, r.error)
+        else:
+            store.record_blocks(NAME, records)
+        tables.append(store.read_block_table(NAME))
+    one, batch = tables
+    assert batch.status.tolist() == one.status.tolist() == [1, 1, 3, 2, 4]
+    assert batch.errors == one.errors == {4: "ValueError: again"}
+    np.testing.assert_array_equal(batch.figures, one.figures)
+    np.testing.assert_array_equal(batch.seams, one.seams)
+
+
+def test_a_batch_with_a_refused_record_records_nothing(store: OutputStore):
+    _prepare(store)
+    write_block_data(store.location, NAME, 0, np.ones((40, 3)))
+    with pytest.raises(StoreError, match="block 1 .* data chunk 2 is missing"):
+        store.record_blocks(NAME, [BlockRecord(0, BlockStatus.PASS, np.zeros((3, 2))),
+                                   BlockRecord(1, BlockStatus.PASS, np.zeros((3, 2)))])
+    t = store.read_block_table(NAME)
+    assert t.status.tolist() == [0, 0, 0] and np.isnan(t.figures).all()
 
 
 def test_records_after_invalidation_and_re_preparation_see_the_current_table(store: OutputStore):

@@ -566,12 +566,59 @@ def record_result(store: Any, res: BlockResult) -> BlockResult:
         return res
 
 
+RECORD_BATCH = 8
+"""Block results recorded together, at most (one block-table write per array instead of one each)."""
+RECORD_WAIT_S = 0.5
+"""Longest a finished block waits to be recorded while other results keep arriving (seconds)."""
+
+
+class _BatchRecorder:
+    """Block results waiting to be recorded; written to the block tables in batches (driver only).
+
+    Results are recorded once :data:`RECORD_BATCH` wait, or when one arrives after the oldest
+    has waited :data:`RECORD_WAIT_S` seconds, and always before :func:`run_jobs` returns. A
+    result the driver has not recorded when it dies is run again on resume: a block table
+    never claims more than is written. A batch the store refuses is recorded one result at a
+    time, so that only the refused results become errors (:func:`record_result`).
+    """
+
+    def __init__(self, store: Any, on_recorded: Callable[[BlockResult], None]) -> None:
+        self.store = store
+        self.on_recorded = on_recorded
+        self.pending: list[BlockResult] = []
+        self.since = 0.0
+
+    def add(self, res: BlockResult) -> None:
+        if not self.pending:
+            self.since = time.monotonic()
+        self.pending.append(res)
+        if len(self.pending) >= RECORD_BATCH or time.monotonic() - self.since >= RECORD_WAIT_S:
+            self.flush()
+
+    def flush(self) -> None:
+        from .io.store import BlockRecord
+
+        by_name: dict[str, list[BlockResult]] = {}
+        for res in self.pending:
+            by_name.setdefault(res.array_name, []).append(res)
+        self.pending = []
+        for name, results in by_name.items():
+            try:
+                self.store.record_blocks(name, [BlockRecord(r.block_index, r.status, r.figures, r.seams, r.error)
+                                                for r in results])
+            except StoreError:
+                results = [record_result(self.store, r) for r in results]
+            for res in results:
+                self.on_recorded(res)
+
+
 def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: ProgressFn | None = None) -> dict[str, int]:
-    """Run block jobs on ``client`` and record each result as it arrives.
+    """Run block jobs on ``client`` and record each result as it arrives (in small batches).
 
     Returns the number of blocks run per array name. A block whose task is lost (its
     worker died more often than the scheduler allows, or it was cancelled) is recorded
-    with status ``ERROR`` and the reason; the others carry on.
+    with status ``ERROR`` and the reason; the others carry on. ``on_block`` is called for
+    each result once it is recorded.
     """
     from distributed import as_completed
 
@@ -585,14 +632,9 @@ def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: Progres
                for j in jobs]
     by_key = {f.key: j for f, j in zip(futures, jobs)}
     done = 0
-    for fut in as_completed(futures):
-        job = by_key[fut.key]
-        try:
-            res: BlockResult = fut.result()
-        except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
-            res = BlockResult(job.array_name, job.block_index, ERROR,
-                              error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
-        res = record_result(store, res)
+
+    def recorded(res: BlockResult) -> None:
+        nonlocal done
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
         if res.status == ERROR:
@@ -600,7 +642,23 @@ def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: Progres
                       res.attempts, (res.error or "").splitlines()[0])
         if on_block is not None:
             on_block(done, total, res)
-        fut.release()
+
+    recorder = _BatchRecorder(store, recorded)
+    try:
+        for fut in as_completed(futures):
+            job = by_key[fut.key]
+            try:
+                res: BlockResult = fut.result()
+            except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
+                res = BlockResult(job.array_name, job.block_index, ERROR,
+                                  error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
+            fut.release()
+            recorder.add(res)
+    except BaseException:
+        with contextlib.suppress(Exception):  # keep what finished; the first error is the one to report
+            recorder.flush()
+        raise
+    recorder.flush()
     return run_count
 
 
@@ -740,7 +798,10 @@ def seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple[
         mism = np.nanmax([right, left]) if np.isfinite([right, left]).any() else np.nan
         for key in ((na, ia), (nb, ib)):
             worst[key] = np.fmax(worst.get(key, np.nan), mism)
-    # One record per block, with the worse of its two seams.
+    # One record per block, with the worse of its two seams; one write per array.
+    from .io.store import BlockRecord
+
+    records: dict[str, list[BlockRecord]] = {}
     for (name, idx), mism in worst.items():
         t = tables[name]
         figs = np.array(t.figures[idx], dtype=np.float64)
@@ -751,9 +812,11 @@ def seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple[
             status = max(status, _checks.grade(figs, design, cfg.checks, design.tolerance))
         if status == int(t.status[idx]) and np.array_equal(prev, figs[:, col], equal_nan=True):
             continue  # checked before with the same outcome (a rerun or a resumed file)
-        store.record_block(name, idx, status, figs, None, t.errors.get(idx))
+        records.setdefault(name, []).append(BlockRecord(idx, status, figs, None, t.errors.get(idx)))
         if status == FAIL and int(t.status[idx]) in DONE:
             failed.add(name)
+    for name, recs in records.items():
+        store.record_blocks(name, recs)
     return failed
 
 

@@ -27,7 +27,7 @@ import enum
 import os
 import threading
 import warnings
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Literal
@@ -54,6 +54,7 @@ from .store_util import (
 )
 
 __all__ = [
+    "BlockRecord",
     "BlockStatus",
     "BlockTable",
     "COMPRESSIONS",
@@ -193,6 +194,23 @@ class _TableHandles:
     seams: zarr.Array
     chunk: int
     chunk_key: Callable[[tuple[int, ...]], str]
+
+
+@dataclass(frozen=True)
+class BlockRecord:
+    """One block's outcome, for :meth:`OutputStore.record_blocks`."""
+
+    index: int
+    status: BlockStatus | int
+    figures: np.ndarray | None = None
+    """(channels, n_columns) float64, or None to keep what is recorded."""
+    seams: np.ndarray | None = None
+    """(4, seam_samples, channels) float64, or None to keep what is recorded."""
+    error: str | None = None
+
+
+def _contiguous(rows: list[int]) -> bool:
+    return rows[-1] - rows[0] + 1 == len(rows)
 
 
 def _table_path(name: str) -> str:
@@ -741,39 +759,72 @@ class OutputStore:
         them. ``figures`` has shape (channels, n_columns), ``seams`` (4, seam_samples, channels).
         A pass or warn status is refused unless every data chunk of the block exists.
         """
+        self.record_blocks(name, [BlockRecord(index, status, figures, seams, error)])
+
+    def record_blocks(self, name: str, records: Sequence[BlockRecord]) -> None:
+        """Record the outcomes of several blocks of one array, as :meth:`record_block` each.
+
+        Every record is checked before anything is written (a refused record raises
+        :class:`StoreError` and none is recorded); then all figures, all seams, the errors
+        and last all statuses are written, one write each, so a passed status always has
+        its figures. A block listed twice keeps its last record.
+        """
         self._writable()
-        status = BlockStatus(int(status))
-        with self._mutex, write_errors(f"{name} block {index} (block table)"):
+        latest = {int(r.index): r for r in records}
+        if not latest:
+            return
+        where = f"{name} block {next(iter(latest))}" if len(latest) == 1 else f"{name} blocks {sorted(latest)}"
+        with self._mutex, write_errors(f"{where} (block table)"):
             h = self._table_handles(name)
             group, st = h.group, h.status
             n = st.shape[0]
-            if not 0 <= index < n:
-                raise StoreError(f"{name}: block index {index} is outside 0..{n - 1}")
-            if status in _DONE:
-                a, b = (int(v) for v in h.span[index])
-                chunk = h.chunk
-                for c in range(a // chunk, -(-b // chunk)):
-                    if not self._chunk_key_exists(f"{name}/{h.chunk_key((c, 0))}"):
-                        raise StoreError(
-                            f"{name}: block {index} [{a}, {b}) recorded as {status.name.lower()} but its data chunk "
-                            f"{c} is missing; write the block's data first"
-                        )
-            if status not in _DONE:
+            rows = sorted(latest)
+            statuses = {i: BlockStatus(int(latest[i].status)) for i in rows}
+            values: dict[str, tuple[list[int], list[np.ndarray]]] = {"figures": ([], []), "seams": ([], [])}
+            for i in rows:
+                if not 0 <= i < n:
+                    raise StoreError(f"{name}: block index {i} is outside 0..{n - 1}")
+                if statuses[i] in _DONE:
+                    a, b = (int(v) for v in h.span[i])
+                    chunk = h.chunk
+                    for c in range(a // chunk, -(-b // chunk)):
+                        if not self._chunk_key_exists(f"{name}/{h.chunk_key((c, 0))}"):
+                            raise StoreError(
+                                f"{name}: block {i} [{a}, {b}) recorded as {statuses[i].name.lower()} but its data "
+                                f"chunk {c} is missing; write the block's data first"
+                            )
+                for key, target, value in (("figures", h.figures, latest[i].figures),
+                                           ("seams", h.seams, latest[i].seams)):
+                    if value is not None:
+                        value = np.asarray(value, dtype=np.float64)
+                        if value.shape != target.shape[1:]:
+                            raise StoreError(
+                                f"{name}: block {i} {key} have shape {value.shape}; expected {target.shape[1:]}"
+                            )
+                        values[key][0].append(i)
+                        values[key][1].append(value)
+            if any(v not in _DONE for v in statuses.values()):
                 self._mark_incomplete(self._array(name))
-            for key, target, value in (("figures", h.figures, figures), ("seams", h.seams, seams)):
-                if value is not None:
-                    value = np.asarray(value, dtype=np.float64)
-                    if value.shape != target.shape[1:]:
-                        raise StoreError(f"{name}: block {index} {key} have shape {value.shape}; expected {target.shape[1:]}")
-                    target[index] = value
+            for key, target in (("figures", h.figures), ("seams", h.seams)):
+                idx, vals = values[key]
+                if len(idx) == 1:
+                    target[idx[0]] = vals[0]
+                elif idx:
+                    target.oindex[np.asarray(idx)] = np.stack(vals)
             errors = dict(group.attrs.get("errors") or {})
-            if error is not None:
-                errors[str(index)] = str(error)[:_MAX_ERROR_CHARS]
+            before = dict(errors)
+            for i in rows:
+                if latest[i].error is not None:
+                    errors[str(i)] = str(latest[i].error)[:_MAX_ERROR_CHARS]
+                else:
+                    errors.pop(str(i), None)
+            if errors != before:
                 group.update_attributes({"errors": errors})
-            elif str(index) in errors:
-                del errors[str(index)]
-                group.update_attributes({"errors": errors})
-            st[index] = int(status)
+            codes = np.asarray([int(statuses[i]) for i in rows], dtype=np.int8)
+            if _contiguous(rows):
+                st[rows[0] : rows[-1] + 1] = codes
+            else:
+                st.oindex[np.asarray(rows)] = codes
 
     def invalidate_blocks(self, name: str, block_indices: Iterable[int]) -> None:
         """Set blocks pending (figures, seams and errors cleared) and the array incomplete."""
