@@ -217,3 +217,18 @@ def test_end_extension_longer_than_the_halo_reads_across_several_files(tmp_path)
     assert filt["edge_samples"] == 2500 and filt["effective_length_samples"] < 1000
     y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
     assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
+def test_local_clusters_poll_their_monitors_rarely():
+    # The local cluster twinpass starts for "threads" runs without a dashboard, Dask's
+    # profiler and disk monitor, and polls memory and the host each second or two.
+    from twinpass.engine import dask_client
+
+    with dask_client("threads", 1) as client:
+        worker = next(iter(client.cluster.workers.values()))
+        scheduler = client.cluster.scheduler
+        assert worker.periodic_callbacks["memory_monitor"].callback_time == 1000  # ms
+        assert worker.periodic_callbacks["monitor"].callback_time == 2000
+        assert scheduler.periodic_callbacks["monitor"].callback_time == 2000
+        assert "profile" not in worker.periodic_callbacks
+        assert not worker.monitor.monitor_disk_io

@@ -310,9 +310,7 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     if int(workers) < 1:
         raise ConfigError(f"workers = {workers}: at least one worker is needed ([engine] workers or --workers)")
     processes = scheduler == "processes"
-    # Dask's statistical profiler samples every worker thread each 10 ms (for its
-    # dashboard, which local clusters here do not serve): a few per cent of the CPU.
-    with dask.config.set({"distributed.worker.profile.enabled": False}):
+    with dask.config.set(_LOCAL_CLUSTER_CONFIG):
         cluster = _local_cluster(workers, processes)
     try:
         client = Client(cluster)
@@ -324,6 +322,21 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     finally:
         client.close()
         cluster.close()
+
+
+_LOCAL_CLUSTER_CONFIG = {
+    # Dask's statistical profiler samples every worker thread each 10 ms (for its dashboard,
+    # which local clusters here do not serve): a few per cent of the CPU.
+    "distributed.worker.profile.enabled": False,
+    # The host monitors feed that dashboard too; polled less often (and disks not at all)
+    # they leave the event loop idle. Block tasks keep no results in Dask's memory, so the
+    # worker's memory monitor need not look ten times a second.
+    "distributed.admin.system-monitor.interval": "2s",
+    "distributed.admin.system-monitor.disk": False,
+    "distributed.worker.memory.monitor-interval": "1s",
+    "distributed.admin.tick.interval": "500ms",
+}
+"""Dask settings of the local clusters twinpass starts (not of a scheduler given by address)."""
 
 
 def _local_cluster(workers: int, processes: bool) -> Any:
