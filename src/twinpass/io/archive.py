@@ -805,7 +805,6 @@ def _examine(
     return entry, notes, scan_entry, was_scanned
 
 
-
 def discover(
     cfg: JobConfig, *, fingerprints: bool = True, scan_cache: Mapping[str, Mapping[str, Any]] | None = None
 ) -> Discovery:
