@@ -231,3 +231,28 @@ def test_report_renders_in_headless_chromium(rendered: tuple[Path, str], tmp_pat
     console = [line for line in proc.stderr.splitlines()
                if re.search(r"CONSOLE|Uncaught|Failed to load resource|Not allowed to load", line)]
     assert not console, "\n".join(console)
+
+
+def test_the_report_reads_each_block_table_once(tmp_path: Path, monkeypatch) -> None:
+    # Status, block map and largest transient all need the block tables; on archives of
+    # thousands of files each Zarr read counts, so the report reads every table once.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import write_report
+
+    write_stream(tmp_path / "archive", "deck", make_signal(6000, 2, 200.0, seed=3), 200.0, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    reads: list[str] = []
+    real = OutputStore.read_block_table
+
+    def counting(self, name, **kw):
+        reads.append(name)
+        return real(self, name, **kw)
+
+    monkeypatch.setattr(OutputStore, "read_block_table", counting)
+    path = write_report(cfg, tmp_path / "report.html")
+    assert path.is_file() and "deck" in path.read_text()
+    assert len(reads) == 3 and len(set(reads)) == 3  # three files, one read each

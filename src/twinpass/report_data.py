@@ -71,9 +71,37 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
             "t": t, "before": before - np.mean(before), "after": after}
 
 
+class _ReadOnce:
+    """A read-only :class:`OutputStore` whose block tables and array attributes are read once.
+
+    The report looks at each file's table and attributes several times (status, block map,
+    largest transient); on archives of thousands of files every Zarr read counts.
+    """
+
+    def __init__(self, store: OutputStore) -> None:
+        self._store = store
+        self._tables: dict[str, Any] = {}
+        self._attrs: dict[str, dict[str, Any]] = {}
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._store, name)
+
+    def read_block_table(self, name: str, *, figures: bool = True, seams: bool = True) -> Any:
+        if seams:  # not kept: the report does not show seams
+            return self._store.read_block_table(name, figures=figures, seams=True)
+        if name not in self._tables:
+            self._tables[name] = self._store.read_block_table(name, figures=True, seams=False)
+        return self._tables[name]
+
+    def array_attrs(self, name: str) -> dict[str, Any]:
+        if name not in self._attrs:
+            self._attrs[name] = self._store.array_attrs(name)
+        return self._attrs[name]
+
+
 def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
     """Render the HTML report of ``cfg``'s store; returns the written path."""
-    store = OutputStore.open(cfg.store_location, mode="r")
+    store: Any = _ReadOnce(OutputStore.open(cfg.store_location, mode="r"))
     status = collect_status(store)
     rates = sorted({float(store.array_attrs(f["name"])["sample_rate_hz"]) for f in status["files"]})
     designs = [design_filter(cfg.response, fs, cfg.processing.tolerance) for fs in rates]
