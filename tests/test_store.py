@@ -558,6 +558,28 @@ def test_a_batch_with_a_refused_record_records_nothing(store: OutputStore):
     assert t.status.tolist() == [0, 0, 0] and np.isnan(t.figures).all()
 
 
+def test_the_drivers_batch_records_all_results_and_only_a_refused_one_becomes_an_error(store: OutputStore):
+    # The driver records the results that finished together in one batch; the store refuses
+    # block 1 (its data chunk was never written), which alone must be recorded as an error.
+    from twinpass.engine import ERROR, BlockResult, _BatchRecorder
+
+    _prepare(store)
+    write_block_data(store.location, NAME, 0, np.ones((40, 3)))
+    write_block_data(store.location, NAME, 80, np.ones((20, 3)))
+    seen = []
+    rec = _BatchRecorder(store, seen.append)
+    figs = np.zeros((3, 2))
+    for i in (0, 1, 2):
+        rec.add(BlockResult(NAME, i, BlockStatus.PASS, figs, np.zeros((4, 4, 3))))
+    assert seen == []  # nothing is recorded before the flush
+    rec.flush()
+    assert [(r.block_index, r.status) for r in seen] == [(0, BlockStatus.PASS), (1, ERROR), (2, BlockStatus.PASS)]
+    assert "data chunk 2 is missing" in seen[1].error
+    t = store.read_block_table(NAME)
+    assert t.status.tolist() == [BlockStatus.PASS, ERROR, BlockStatus.PASS]
+    assert list(t.errors) == [1]
+
+
 def test_records_after_invalidation_and_re_preparation_see_the_current_table(store: OutputStore):
     # record_block keeps the block table open between calls; invalidating blocks or
     # preparing the file again must not let an old view resurrect errors or spans.

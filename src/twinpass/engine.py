@@ -579,34 +579,24 @@ def record_result(store: Any, res: BlockResult) -> BlockResult:
         return res
 
 
-RECORD_BATCH = 8
-"""Block results recorded together, at most (one block-table write per array instead of one each)."""
-RECORD_WAIT_S = 0.5
-"""Longest a finished block waits to be recorded while other results keep arriving (seconds)."""
-
-
 class _BatchRecorder:
-    """Block results waiting to be recorded; written to the block tables in batches (driver only).
+    """Block results waiting to be recorded; written to the block tables together (driver only).
 
-    Results are recorded once :data:`RECORD_BATCH` wait, or when one arrives after the oldest
-    has waited :data:`RECORD_WAIT_S` seconds, and always before :func:`run_jobs` returns. A
-    result the driver has not recorded when it dies is run again on resume: a block table
-    never claims more than is written. A batch the store refuses is recorded one result at a
-    time, so that only the refused results become errors (:func:`record_result`).
+    :func:`run_jobs` adds every result that has finished by the time it looks, then flushes:
+    no result waits for a later one, and when results arrive faster than the driver records
+    them, one write per block-table array records them all. A result the driver has not
+    recorded when it dies is run again on resume: a block table never claims more than is
+    written. A batch the store refuses is recorded one result at a time, so that only the
+    refused results become errors (:func:`record_result`).
     """
 
     def __init__(self, store: Any, on_recorded: Callable[[BlockResult], None]) -> None:
         self.store = store
         self.on_recorded = on_recorded
         self.pending: list[BlockResult] = []
-        self.since = 0.0
 
     def add(self, res: BlockResult) -> None:
-        if not self.pending:
-            self.since = time.monotonic()
         self.pending.append(res)
-        if len(self.pending) >= RECORD_BATCH or time.monotonic() - self.since >= RECORD_WAIT_S:
-            self.flush()
 
     def flush(self) -> None:
         from .io.store import BlockRecord
@@ -626,7 +616,7 @@ class _BatchRecorder:
 
 
 def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: ProgressFn | None = None) -> dict[str, int]:
-    """Run block jobs on ``client`` and record each result as it arrives (in small batches).
+    """Run block jobs on ``client`` and record the results as they arrive.
 
     Returns the number of blocks run per array name. A block whose task is lost (its
     worker died more often than the scheduler allows, or it was cancelled) is recorded
@@ -658,15 +648,17 @@ def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: Progres
 
     recorder = _BatchRecorder(store, recorded)
     try:
-        for fut in as_completed(futures):
-            job = by_key[fut.key]
-            try:
-                res: BlockResult = fut.result()
-            except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
-                res = BlockResult(job.array_name, job.block_index, ERROR,
-                                  error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
-            fut.release()
-            recorder.add(res)
+        for batch in as_completed(futures).batches():  # everything finished so far, at least one
+            for fut in batch:
+                job = by_key[fut.key]
+                try:
+                    res: BlockResult = fut.result()
+                except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
+                    res = BlockResult(job.array_name, job.block_index, ERROR,
+                                      error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
+                fut.release()
+                recorder.add(res)
+            recorder.flush()
     except BaseException:
         with contextlib.suppress(Exception):  # keep what finished; the first error is the one to report
             recorder.flush()
