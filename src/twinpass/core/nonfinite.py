@@ -117,10 +117,10 @@ def channel_runs(x: np.ndarray, offset: int = 0) -> list[ChannelRun]:
     a = _as_2d(x)
     if a.dtype.kind not in "fc":
         return []
-    bad = np.isfinite(a)
-    if bad.all():  # the usual case, and a contiguous reduction far faster than any(axis=0)
+    finite = np.isfinite(a)
+    if finite.all():  # the usual case, and a contiguous reduction far faster than any(axis=0)
         return []
-    np.logical_not(bad, out=bad)
+    bad = np.logical_not(finite, out=finite)
     out: list[ChannelRun] = []
     for c in np.flatnonzero(bad.any(axis=0)):
         d = np.diff(np.concatenate(([0], bad[:, c].view(np.int8), [0])))

@@ -304,9 +304,10 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
     import numcodecs
 
     c = codecs[1]
-    blosc = numcodecs.Blosc(cname=c.cname.value, clevel=c.clevel,
-                            shuffle={"noshuffle": 0, "shuffle": 1, "bitshuffle": 2}[c.shuffle.value],
-                            blocksize=c.blocksize, typesize=c.typesize)
+    shuffle = {BloscShuffle.noshuffle: numcodecs.Blosc.NOSHUFFLE, BloscShuffle.shuffle: numcodecs.Blosc.SHUFFLE,
+               BloscShuffle.bitshuffle: numcodecs.Blosc.BITSHUFFLE}[c.shuffle]
+    blosc = numcodecs.Blosc(cname=c.cname.value, clevel=c.clevel, shuffle=shuffle, blocksize=c.blocksize,
+                            typesize=c.typesize)
     return lambda a: blosc.encode(np.ascontiguousarray(a, dtype=dtype))
 
 
@@ -319,7 +320,7 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
     is completed with the fill value, as Zarr stores edge chunks.
     """
     chunk = arr.chunks[0]
-    frames, channels = arr.shape
+    channels = arr.shape[1]
     for c0 in range(start, start + data.shape[0], chunk):
         part = data[c0 - start : c0 - start + chunk]
         if part.shape[0] < chunk:  # the array's last, partial chunk
