@@ -7,8 +7,9 @@ of the response check. Written with numpy they sweep a time-major
 (samples, channels) array several times and transpose it (``scipy.signal.sosfilt`` moves
 the time axis last and works one channel at a time, so each sample's state update waits
 for the previous one). The compiled versions (numba) make one pass in the arrays' own
-layout and run eight (or four) channels side by side as vector instructions, which also
-hides the latency of the recursion.
+layout and run eight (or four) channels side by side as vector instructions, and two
+sections at a time (the second one row behind the first), which hides the latency of the
+recursion.
 
 Exactness. :func:`sos_cascade` performs, per section and sample, the same operations in
 the same order as ``scipy.signal.sosfilt`` (transposed direct form II), so both give
