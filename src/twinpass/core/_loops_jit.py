@@ -221,6 +221,29 @@ def _rows4(b0, b1, b2, a1, a2, src, dst, z, q, c, i0, n, reverse):  # type: igno
 
 
 @_jit
+def _sections(sos, src, dst, z, c, width, i0, n, reverse):  # type: ignore[no-untyped-def]
+    # Every section over n rows from row i0 for the lane group c..c+width-1 (width 8 or 4):
+    # in pairs, an odd last section alone; the first reads src, the rest work in dst.
+    ns = sos.shape[0]
+    q = 0
+    while q < ns:
+        s = src if q == 0 else dst
+        if q + 1 < ns:
+            if width == 8:
+                _pair8(sos[q], sos[q + 1], s, dst, z, q, c, i0, n, reverse)
+            else:
+                _pair4(sos[q], sos[q + 1], s, dst, z, q, c, i0, n, reverse)
+            q += 2
+        else:
+            b0, b1, b2, a1, a2 = sos[q, 0], sos[q, 1], sos[q, 2], sos[q, 4], sos[q, 5]
+            if width == 8:
+                _rows8(b0, b1, b2, a1, a2, s, dst, z, q, c, i0, n, reverse)
+            else:
+                _rows4(b0, b1, b2, a1, a2, s, dst, z, q, c, i0, n, reverse)
+            q += 1
+
+
+@_jit
 def _rows_all_sections(sos, src, dst, z, c, i0, i1, step):  # type: ignore[no-untyped-def]
     # One channel, every section per sample (sosfilt's own loop order): the sections
     # of one sample overlap in the pipeline, which suits a lone channel.
@@ -238,39 +261,68 @@ def _rows_all_sections(sos, src, dst, z, c, i0, i1, step):  # type: ignore[no-un
 
 
 @_jit
+def _lanes_to_scratch(x, scratch, c, width, i0, n, sgn):  # type: ignore[no-untyped-def]
+    # scratch[r, j] = x[i0 + sgn * r, c + j]; flat unsigned indices, as in _rows8.
+    xs = x.ravel(); ss = scratch.ravel()
+    nc = np.uint64(x.shape[1]); cu = np.uint64(c); w = np.uint64(width)
+    for r in range(n):
+        k = np.uint64(i0 + sgn * r) * nc + cu
+        t = np.uint64(r) * np.uint64(4)
+        for j in range(w):
+            ss[t + j] = xs[k + j]
+
+
+@_jit
+def _scratch_to_lanes(scratch, out, c, width, i0, n, sgn):  # type: ignore[no-untyped-def]
+    # out[i0 + sgn * r, c + j] = scratch[r, j]
+    os_ = out.ravel(); ss = scratch.ravel()
+    nc = np.uint64(out.shape[1]); cu = np.uint64(c); w = np.uint64(width)
+    for r in range(n):
+        k = np.uint64(i0 + sgn * r) * nc + cu
+        t = np.uint64(r) * np.uint64(4)
+        for j in range(w):
+            os_[k + j] = ss[t + j]
+
+
+@_jit
 def _cascade_jit(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
-    # Cache block by cache block (from the last row when reversing), the sections in pairs
-    # (an odd last one alone) for groups of eight and four channels, then every section per
-    # sample for the channels left over.
+    # Cache block by cache block (from the last row when reversing): groups of eight and
+    # four channels in place; two or three channels left over are copied, in the order
+    # they are processed, into a four-lane scratch block (the spare lanes hold zeros), run
+    # as a group of four and copied back; a single one left over runs every section per
+    # sample (faster for one lane than the copies).
     n, nc = x.shape
     ns = sos.shape[0]
     eights = nc // 8
     fours = (nc - 8 * eights) // 4
-    lone = 8 * eights + 4 * fours
+    c_rest = 8 * eights + 4 * fours
+    rest = nc - c_rest  # channels c_rest.. left over
+    scratch = np.zeros((_CHUNK_ROWS, 4))
+    zs = np.zeros((ns, 2, 4))
+    in_scratch = rest if rest > 1 else 0  # channels run in the scratch block
+    for q in range(ns):
+        for j in range(in_scratch):
+            zs[q, 0, j] = z[q, 0, c_rest + j]
+            zs[q, 1, j] = z[q, 1, c_rest + j]
+    sgn = -1 if reverse else 1
     for k in range((n + _CHUNK_ROWS - 1) // _CHUNK_ROWS):
         lo = k * _CHUNK_ROWS
         rows = min(_CHUNK_ROWS, n - lo)
         i0 = n - 1 - lo if reverse else lo
-        if lone:
-            q = 0
-            while q < ns:
-                src = x if q == 0 else out
-                if q + 1 < ns:
-                    for g in range(eights):
-                        _pair8(sos[q], sos[q + 1], src, out, z, q, 8 * g, i0, rows, reverse)
-                    if fours:
-                        _pair4(sos[q], sos[q + 1], src, out, z, q, 8 * eights, i0, rows, reverse)
-                    q += 2
-                else:
-                    b0, b1, b2, a1, a2 = sos[q, 0], sos[q, 1], sos[q, 2], sos[q, 4], sos[q, 5]
-                    for g in range(eights):
-                        _rows8(b0, b1, b2, a1, a2, src, out, z, q, 8 * g, i0, rows, reverse)
-                    if fours:
-                        _rows4(b0, b1, b2, a1, a2, src, out, z, q, 8 * eights, i0, rows, reverse)
-                    q += 1
-        step = -1 if reverse else 1
-        for c in range(lone, nc):
-            _rows_all_sections(sos, x, out, z, c, i0, i0 + step * rows, step)
+        for g in range(eights):
+            _sections(sos, x, out, z, 8 * g, 8, i0, rows, reverse)
+        if fours:
+            _sections(sos, x, out, z, 8 * eights, 4, i0, rows, reverse)
+        if rest == 1:
+            _rows_all_sections(sos, x, out, z, c_rest, i0, i0 + sgn * rows, sgn)
+        elif in_scratch:
+            _lanes_to_scratch(x, scratch, c_rest, rest, i0, rows, sgn)
+            _sections(sos, scratch, scratch, zs, 0, 4, 0, rows, False)
+            _scratch_to_lanes(scratch, out, c_rest, rest, i0, rows, sgn)
+    for q in range(ns):
+        for j in range(in_scratch):
+            z[q, 0, c_rest + j] = zs[q, 0, j]
+            z[q, 1, c_rest + j] = zs[q, 1, j]
 
 
 @_jit
