@@ -261,27 +261,19 @@ def _rows_all_sections(sos, src, dst, z, c, i0, i1, step):  # type: ignore[no-un
 
 
 @_jit
-def _lanes_to_scratch(x, scratch, c, width, i0, n, sgn):  # type: ignore[no-untyped-def]
-    # scratch[r, j] = x[i0 + sgn * r, c + j]; flat unsigned indices, as in _rows8.
+def _copy_lanes(x, scratch, c, width, i0, n, sgn, into_scratch):  # type: ignore[no-untyped-def]
+    # scratch[r, j] = x[i0 + sgn * r, c + j] (or back when not into_scratch), r < n,
+    # j < width; flat unsigned indices, as in _rows8.
     xs = x.ravel(); ss = scratch.ravel()
     nc = np.uint64(x.shape[1]); cu = np.uint64(c); w = np.uint64(width)
     for r in range(n):
         k = np.uint64(i0 + sgn * r) * nc + cu
         t = np.uint64(r) * np.uint64(4)
         for j in range(w):
-            ss[t + j] = xs[k + j]
-
-
-@_jit
-def _scratch_to_lanes(scratch, out, c, width, i0, n, sgn):  # type: ignore[no-untyped-def]
-    # out[i0 + sgn * r, c + j] = scratch[r, j]
-    os_ = out.ravel(); ss = scratch.ravel()
-    nc = np.uint64(out.shape[1]); cu = np.uint64(c); w = np.uint64(width)
-    for r in range(n):
-        k = np.uint64(i0 + sgn * r) * nc + cu
-        t = np.uint64(r) * np.uint64(4)
-        for j in range(w):
-            os_[k + j] = ss[t + j]
+            if into_scratch:
+                ss[t + j] = xs[k + j]
+            else:
+                xs[k + j] = ss[t + j]
 
 
 @_jit
@@ -316,9 +308,9 @@ def _cascade_jit(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
         if rest == 1:
             _rows_all_sections(sos, x, out, z, c_rest, i0, i0 + sgn * rows, sgn)
         elif in_scratch:
-            _lanes_to_scratch(x, scratch, c_rest, rest, i0, rows, sgn)
+            _copy_lanes(x, scratch, c_rest, rest, i0, rows, sgn, True)
             _sections(sos, scratch, scratch, zs, 0, 4, 0, rows, False)
-            _scratch_to_lanes(scratch, out, c_rest, rest, i0, rows, sgn)
+            _copy_lanes(out, scratch, c_rest, rest, i0, rows, sgn, False)
     for q in range(ns):
         for j in range(in_scratch):
             z[q, 0, c_rest + j] = zs[q, 0, j]
