@@ -482,12 +482,15 @@ def _set_pending(store: Any, name: str, status: np.ndarray, indices: list[int]) 
 
 
 def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout,
-                    edge_samples: int, *, mode: str | None = None
+                    edge_samples: int, *, mode: str | None = None,
+                    on_file: Callable[[str, list[tuple[int, int]], list[int]], None] | None = None,
                     ) -> tuple[dict[str, list[tuple[int, int]]], dict[str, list[int]]]:
     """Create or update the output arrays and block tables of a segment's files.
 
     Writes in the crash-safe order of the module notes (points 1 and 2). ``mode``, when
-    given, is recorded as the ``blocks.mode`` attribute (e.g. ``"carry"``).
+    given, is recorded as the ``blocks.mode`` attribute (e.g. ``"carry"``). ``on_file``,
+    when given, is called as ``on_file(array_name, spans, todo)`` as soon as each file with
+    work is prepared (its array and block table are current), before the next file is.
 
     Returns
     -------
@@ -534,19 +537,24 @@ def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any
             _set_pending(store, fw.array_name, status, redo)
             todo |= set(redo)
         todo_by_file[fw.array_name] = sorted(todo)
+        if on_file is not None:
+            on_file(fw.array_name, spans, todo_by_file[fw.array_name])
     return spans_by_file, todo_by_file
 
 
 def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout, edge_samples: int,
                spans_by_file: dict[str, list[tuple[int, int]]], todo_by_file: dict[str, list[int]]) -> list[BlockJob]:
-    """One :class:`BlockJob` per block to run, in segment order."""
+    """One :class:`BlockJob` per block to run, in segment order (files in ``todo_by_file`` only)."""
     k = cfg.checks.seam_samples
     every = cfg.checks.every
     sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
     jobs: list[BlockJob] = []
     for fw in seg.files:
+        todo = todo_by_file.get(fw.array_name)
+        if not todo:
+            continue
         spans = spans_by_file[fw.array_name]
-        for i in todo_by_file.get(fw.array_name, []):
+        for i in todo:
             s, e = fw.seg_offset + spans[i][0], fw.seg_offset + spans[i][1]
             _, _, ws, we, _, _ = block_reach(s, e, seg.frames, layout.halo, k, edge_samples)
             if seg.holes:  # a piece end may widen the window by the end extension
@@ -615,25 +623,33 @@ class _BatchRecorder:
                 self.on_recorded(res)
 
 
-def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: ProgressFn | None = None) -> dict[str, int]:
+def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]:
+    """Submit block jobs to ``client``; (future, job) pairs for :func:`run_jobs`."""
+    stamp = time.time_ns()
+    return [(client.submit(run_block, j, pure=False, retries=j.retries,
+                           key=f"twinpass-block-{j.array_name}-{j.block_index}-{stamp}"), j)
+            for j in jobs]
+
+
+def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: ProgressFn | None = None,
+             submitted: list[tuple[Any, BlockJob]] | None = None) -> dict[str, int]:
     """Run block jobs on ``client`` and record the results as they arrive.
 
     Returns the number of blocks run per array name. A block whose task is lost (its
     worker died more often than the scheduler allows, or it was cancelled) is recorded
     with status ``ERROR`` and the reason; the others carry on. ``on_block`` is called for
-    each result once it is recorded.
+    each result once it is recorded. ``submitted`` are jobs already submitted with
+    :func:`submit_jobs`, recorded together with ``jobs``.
     """
     from distributed import as_completed
 
     run_count: dict[str, int] = {}
-    if not jobs:
+    pairs = list(submitted or []) + (submit_jobs(jobs, client) if jobs else [])
+    if not pairs:
         return run_count
-    total = len(jobs)
-    stamp = time.time_ns()
-    futures = [client.submit(run_block, j, pure=False, retries=j.retries,
-                             key=f"twinpass-block-{j.array_name}-{j.block_index}-{stamp}")
-               for j in jobs]
-    by_key = {f.key: j for f, j in zip(futures, jobs)}
+    total = len(pairs)
+    futures = [f for f, _ in pairs]
+    by_key = {f.key: j for f, j in pairs}
     done = 0
 
     def recorded(res: BlockResult) -> None:
@@ -742,9 +758,21 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
         if not seg.holes and use_carry(design, layout.block_samples, cfg):  # pieces between holes use halos
             return run_segment_carry(seg, design, cfg, store, client, on_block=on_block)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
-    spans_by_file, todo_by_file = prepare_segment(seg, design, cfg, store, layout, edge_samples)
-    jobs = block_jobs(seg, design, cfg, store, layout, edge_samples, spans_by_file, todo_by_file)
-    run_count = run_jobs(jobs, store, client, on_block=on_block)
+    # Each file's blocks go to the workers as soon as the file is prepared, while the next
+    # files are; their results are recorded once every file is prepared.
+    submitted: list[tuple[Any, BlockJob]] = []
+
+    def submit_file(name: str, spans: list[tuple[int, int]], todo: list[int]) -> None:
+        submitted.extend(submit_jobs(block_jobs(seg, design, cfg, store, layout, edge_samples,
+                                                {name: spans}, {name: todo}), client))
+
+    try:
+        spans_by_file, _ = prepare_segment(seg, design, cfg, store, layout, edge_samples, on_file=submit_file)
+    except BaseException:
+        with contextlib.suppress(Exception):  # nothing is recorded for these blocks; stop them
+            client.cancel([f for f, _ in submitted])
+        raise
+    run_count = run_jobs([], store, client, on_block=on_block, submitted=submitted)
     return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
 
 
