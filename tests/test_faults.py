@@ -221,3 +221,31 @@ def test_a_segment_that_cannot_be_prepared_does_not_stop_the_others(tmp_path, mo
     failed = [o for o in res.outcomes if o.status == "failed"]
     assert all("no space left on device" in o.errors[-1] for o in failed)
     assert any(m.startswith("segment pier@") and "no space left" in m for m in messages)
+
+
+def test_a_later_file_that_cannot_be_prepared_leaves_the_earlier_ones_unrecorded(tmp_path, monkeypatch):
+    # A segment submits each file's blocks as soon as the file is prepared. When a later
+    # file of the segment cannot be prepared, the blocks already submitted are cancelled
+    # and none is recorded as done: the segment fails whole, the other segment completes.
+    from twinpass.errors import StoreError
+    from twinpass.io.store import OutputStore
+
+    archive = tmp_path / "archive"
+    write_stream(archive, "deck", make_signal(8000, 1, FS, seed=1), FS, 2)
+    write_stream(archive, "pier", make_signal(8000, 1, FS, seed=2), FS, 2)
+    cfg = load_config(write_config(tmp_path))
+    real = OutputStore.prepare_file
+
+    def full_disk_for_second_pier_file(self, name, **kw):  # injected fault
+        if name.startswith("pier/") and name.endswith("000020"):
+            raise StoreError(f"{name}: no space left on device (injected)")
+        return real(self, name, **kw)
+
+    monkeypatch.setattr(OutputStore, "prepare_file", full_disk_for_second_pier_file)
+    res = run_job(cfg, log_fn=lambda m: None)
+    status = {o.relpath: o.status for o in res.outcomes}
+    assert status == {"deck/deck_20260301T000000.npy": "complete", "deck/deck_20260301T000020.npy": "complete",
+                      "pier/pier_20260301T000000.npy": "failed", "pier/pier_20260301T000020.npy": "failed"}
+    first_pier = "pier/pier_20260301T000000"
+    assert open_store(cfg.store_location)[first_pier].attrs["complete"] is False
+    assert not np.isin(block_status(cfg.store_location, first_pier), [PASS, WARN]).any()
