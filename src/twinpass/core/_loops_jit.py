@@ -43,7 +43,7 @@ def _pair8(sa, sb, src, dst, z, q, c, i0, n, reverse):  # type: ignore[no-untype
     ra1 = z[q + 1, 1, c]; rb1 = z[q + 1, 1, c + 1]; rc1 = z[q + 1, 1, c + 2]; rd1 = z[q + 1, 1, c + 3]
     re1 = z[q + 1, 1, c + 4]; rf1 = z[q + 1, 1, c + 5]; rg1 = z[q + 1, 1, c + 6]; rh1 = z[q + 1, 1, c + 7]
     # section q, first row
-    k = np.uint64(i0 + sgn * 0) * nc + cu
+    k = np.uint64(i0) * nc + cu
     xa = s[k]; xb = s[k + np.uint64(1)]; xc = s[k + np.uint64(2)]; xd = s[k + np.uint64(3)]
     xe = s[k + np.uint64(4)]; xf = s[k + np.uint64(5)]; xg = s[k + np.uint64(6)]; xh = s[k + np.uint64(7)]
     ya = b0 * xa + pa0; yb = b0 * xb + pb0; yc = b0 * xc + pc0; yd = b0 * xd + pd0
@@ -124,7 +124,7 @@ def _pair4(sa, sb, src, dst, z, q, c, i0, n, reverse):  # type: ignore[no-untype
     ra0 = z[q + 1, 0, c]; rb0 = z[q + 1, 0, c + 1]; rc0 = z[q + 1, 0, c + 2]; rd0 = z[q + 1, 0, c + 3]
     ra1 = z[q + 1, 1, c]; rb1 = z[q + 1, 1, c + 1]; rc1 = z[q + 1, 1, c + 2]; rd1 = z[q + 1, 1, c + 3]
     # section q, first row
-    k = np.uint64(i0 + sgn * 0) * nc + cu
+    k = np.uint64(i0) * nc + cu
     xa = s[k]; xb = s[k + np.uint64(1)]; xc = s[k + np.uint64(2)]; xd = s[k + np.uint64(3)]
     ya = b0 * xa + pa0; yb = b0 * xb + pb0; yc = b0 * xc + pc0; yd = b0 * xd + pd0
     pa0 = b1 * xa - a1 * ya + pa1; pb0 = b1 * xb - a1 * yb + pb1
@@ -289,9 +289,9 @@ def _cascade_jit(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
     fours = (nc - 8 * eights) // 4
     c_rest = 8 * eights + 4 * fours
     rest = nc - c_rest  # channels c_rest.. left over
-    scratch = np.zeros((_CHUNK_ROWS, 4))
-    zs = np.zeros((ns, 2, 4))
     in_scratch = rest if rest > 1 else 0  # channels run in the scratch block
+    scratch = np.zeros((_CHUNK_ROWS if in_scratch else 0, 4))
+    zs = np.zeros((ns, 2, 4))
     for q in range(ns):
         for j in range(in_scratch):
             zs[q, 0, j] = z[q, 0, c_rest + j]
