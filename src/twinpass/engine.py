@@ -639,25 +639,23 @@ def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]
             for j in jobs]
 
 
-def run_jobs(jobs: list[BlockJob], store: Any, client: Any, *, on_block: ProgressFn | None = None,
-             submitted: list[tuple[Any, BlockJob]] | None = None) -> dict[str, int]:
-    """Run block jobs on ``client`` and record the results as they arrive.
+def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
+             on_block: ProgressFn | None = None) -> dict[str, int]:
+    """Record the results of block jobs submitted with :func:`submit_jobs` as they arrive.
 
     Returns the number of blocks run per array name. A block whose task is lost (its
     worker died more often than the scheduler allows, or it was cancelled) is recorded
     with status ``ERROR`` and the reason; the others carry on. ``on_block`` is called for
-    each result once it is recorded. ``submitted`` are jobs already submitted with
-    :func:`submit_jobs`, recorded together with ``jobs``.
+    each result once it is recorded.
     """
     from distributed import as_completed
 
     run_count: dict[str, int] = {}
-    pairs = list(submitted or []) + (submit_jobs(jobs, client) if jobs else [])
-    if not pairs:
+    if not submitted:
         return run_count
-    total = len(pairs)
-    futures = [f for f, _ in pairs]
-    by_key = {f.key: j for f, j in pairs}
+    total = len(submitted)
+    futures = [f for f, _ in submitted]
+    by_key = {f.key: j for f, j in submitted}
     done = 0
 
     def recorded(res: BlockResult) -> None:
@@ -780,7 +778,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
         with contextlib.suppress(Exception):  # nothing is recorded for these blocks; stop them
             client.cancel([f for f, _ in submitted])
         raise
-    run_count = run_jobs([], store, client, on_block=on_block, submitted=submitted)
+    run_count = run_jobs(submitted, store, on_block=on_block)
     return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
 
 
