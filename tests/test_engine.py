@@ -234,7 +234,6 @@ def test_local_clusters_poll_their_monitors_rarely():
         assert not worker.monitor.monitor_disk_io
 
 
-
 def test_local_worker_processes_keep_the_allocator_defaults():
     # Local worker processes run with one thread per numeric library, as Dask sets them up,
     # but without Dask's MALLOC_TRIM_THRESHOLD_ (it makes every block array page-fault in

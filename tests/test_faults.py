@@ -197,22 +197,28 @@ def test_an_unchanged_neighbour_failing_a_seam_is_reported_and_rerun(tmp_path, i
     assert res.ok and sorted(blocks) == [(ARRAYS[0], 7), (ARRAYS[1], 0), (ARRAYS[1], 1)]
 
 
-def test_a_segment_that_cannot_be_prepared_does_not_stop_the_others(tmp_path, monkeypatch):
+def _deck_and_pier_with_full_disk(tmp_path, monkeypatch, refused):
+    """Two streams of two files each; the store refuses to prepare the arrays ``refused``
+    accepts (injected fault: no space left on device). Returns the job configuration."""
     from twinpass.errors import StoreError
     from twinpass.io.store import OutputStore
 
     archive = tmp_path / "archive"
     write_stream(archive, "deck", make_signal(8000, 1, FS, seed=1), FS, 2)
     write_stream(archive, "pier", make_signal(8000, 1, FS, seed=2), FS, 2)
-    cfg = load_config(write_config(tmp_path))
     real = OutputStore.prepare_file
 
-    def full_disk_for_pier(self, name, **kw):  # injected fault: the store refuses one stream's arrays
-        if name.startswith("pier/"):
+    def full_disk(self, name, **kw):
+        if refused(name):
             raise StoreError(f"{name}: no space left on device (injected)")
         return real(self, name, **kw)
 
-    monkeypatch.setattr(OutputStore, "prepare_file", full_disk_for_pier)
+    monkeypatch.setattr(OutputStore, "prepare_file", full_disk)
+    return load_config(write_config(tmp_path))
+
+
+def test_a_segment_that_cannot_be_prepared_does_not_stop_the_others(tmp_path, monkeypatch):
+    cfg = _deck_and_pier_with_full_disk(tmp_path, monkeypatch, lambda name: name.startswith("pier/"))
     messages = []
     res = run_job(cfg, log_fn=messages.append)
     status = {o.relpath: o.status for o in res.outcomes}
@@ -227,21 +233,8 @@ def test_a_later_file_that_cannot_be_prepared_leaves_the_earlier_ones_unrecorded
     # A segment submits each file's blocks as soon as the file is prepared. When a later
     # file of the segment cannot be prepared, the blocks already submitted are cancelled
     # and none is recorded as done: the segment fails whole, the other segment completes.
-    from twinpass.errors import StoreError
-    from twinpass.io.store import OutputStore
-
-    archive = tmp_path / "archive"
-    write_stream(archive, "deck", make_signal(8000, 1, FS, seed=1), FS, 2)
-    write_stream(archive, "pier", make_signal(8000, 1, FS, seed=2), FS, 2)
-    cfg = load_config(write_config(tmp_path))
-    real = OutputStore.prepare_file
-
-    def full_disk_for_second_pier_file(self, name, **kw):  # injected fault
-        if name.startswith("pier/") and name.endswith("000020"):
-            raise StoreError(f"{name}: no space left on device (injected)")
-        return real(self, name, **kw)
-
-    monkeypatch.setattr(OutputStore, "prepare_file", full_disk_for_second_pier_file)
+    cfg = _deck_and_pier_with_full_disk(
+        tmp_path, monkeypatch, lambda name: name.startswith("pier/") and name.endswith("000020"))
     res = run_job(cfg, log_fn=lambda m: None)
     status = {o.relpath: o.status for o in res.outcomes}
     assert status == {"deck/deck_20260301T000000.npy": "complete", "deck/deck_20260301T000020.npy": "complete",
