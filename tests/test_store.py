@@ -548,6 +548,70 @@ def test_a_batch_of_records_equals_the_same_records_one_by_one(tmp_path: Path):
     np.testing.assert_array_equal(batch.seams, one.seams)
 
 
+@pytest.mark.parametrize("status_chunk", [4096, 2])  # 2: the status column spans two chunks, the last partial
+def test_block_table_chunks_are_the_bytes_zarr_writes(tmp_path: Path, monkeypatch, status_chunk: int):
+    # Reference: zarr-python writing the same figures, seams and statuses through its own
+    # codec pipeline. Records in a local store encode and rename the table's chunk files
+    # themselves; the files must be byte for byte Zarr's (the status chunk stored whole,
+    # completed with the fill value, as Zarr stores an edge chunk).
+    monkeypatch.setattr(store_module, "_TABLE_CHUNK", status_chunk)
+    ours = OutputStore.open(str(tmp_path / "ours.zarr"))
+    _prepare(ours)
+    theirs = OutputStore.open(str(tmp_path / "theirs.zarr"))
+    _prepare(theirs)
+    figures = [np.arange(6.0).reshape(3, 2) * (i + 1) for i in range(3)]
+    seams = [np.linspace(-1.0, 1.0, 48).reshape(4, 4, 3) * (i + 1) for i in range(3)]
+    write_block_data(ours.location, NAME, 0, np.ones((80, 3)))
+    ours.record_blocks(NAME, [BlockRecord(0, BlockStatus.PASS, figures[0], seams[0]),
+                              BlockRecord(2, BlockStatus.ERROR, figures[2], seams[2], "OSError: disk")])
+    ours.record_blocks(NAME, [BlockRecord(1, BlockStatus.WARN, figures[1], seams[1])])
+    ref = zarr.open_group(LocalStore(tmp_path / "theirs.zarr"), path=f"_twinpass/blocks/{NAME}", mode="r+")
+    ref = {k: ref[k].with_config({"write_empty_chunks": True}) for k in ("status", "figures", "seams")}
+    ref["status"][:] = np.array([BlockStatus.PASS, BlockStatus.WARN, BlockStatus.ERROR], dtype=np.int8)
+    for i in range(3):
+        ref["figures"][i] = figures[i]
+        ref["seams"][i] = seams[i]
+    table_dir = Path("_twinpass", "blocks", NAME)
+    status_keys = [Path("status", "c", str(c)) for c in range(-(-3 // min(3, status_chunk)))]
+    row_keys = [Path(k, "c", str(i), *["0"] * n) for k, n in (("figures", 2), ("seams", 3)) for i in range(3)]
+    keys = status_keys + row_keys
+    for key in keys:
+        assert (tmp_path / "ours.zarr" / table_dir / key).read_bytes() == \
+            (tmp_path / "theirs.zarr" / table_dir / key).read_bytes(), key
+    t = ours.read_block_table(NAME)
+    assert t.status.tolist() == [1, 2, 4] and t.errors == {2: "OSError: disk"}
+    np.testing.assert_array_equal(t.figures, np.stack(figures))
+    np.testing.assert_array_equal(t.seams, np.stack(seams))
+    assert not list((tmp_path / "ours.zarr" / table_dir).rglob("*.partial"))
+
+
+def test_a_forced_reset_of_a_matching_table_equals_a_new_table(tmp_path: Path):
+    # Preparing a file again without keeping its blocks (a forced or changed file) resets a
+    # table whose spans, columns and seam shape match in place; the result must read exactly
+    # as a newly created table (reference: a store that never had the file).
+    store = OutputStore.open(str(tmp_path / "out.zarr"))
+    _prepare(store)
+    for i in range(3):
+        _finish_block(store, i)
+    store.record_block(NAME, 1, BlockStatus.ERROR, None, None, "ValueError: boom")
+    status_meta = tmp_path / "out.zarr" / "_twinpass" / "blocks" / NAME / "status" / "zarr.json"
+    inode = status_meta.stat().st_ino
+    reset = _prepare(store, keep_done=False)
+    assert status_meta.stat().st_ino == inode  # reset in place, not recreated
+    new = OutputStore.open(str(tmp_path / "new.zarr"))
+    fresh = _prepare(new)
+    a, b = store.read_block_table(NAME), new.read_block_table(NAME)
+    assert reset.status.tolist() == fresh.status.tolist() == a.status.tolist() == [0, 0, 0]
+    assert a.errors == b.errors == {}
+    np.testing.assert_array_equal(a.span, b.span)
+    np.testing.assert_array_equal(a.figures, b.figures)  # all NaN
+    np.testing.assert_array_equal(a.seams, b.seams)
+    assert (a.columns, a.seam_samples) == (b.columns, b.seam_samples)
+    # the reset table records as a new one does
+    _finish_block(store, 2)
+    assert store.read_block_table(NAME).status.tolist() == [0, 0, 1]
+
+
 def test_a_batch_with_a_refused_record_records_nothing(store: OutputStore):
     _prepare(store)
     write_block_data(store.location, NAME, 0, np.ones((40, 3)))

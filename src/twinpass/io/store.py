@@ -25,6 +25,7 @@ from __future__ import annotations
 import contextlib
 import enum
 import os
+import shutil
 import threading
 import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
@@ -185,7 +186,14 @@ def _open_zarr_store(location: str, *, read_only: bool) -> LocalStore | FsspecSt
 
 @dataclass
 class _TableHandles:
-    """A block table's open arrays and what :meth:`OutputStore.record_block` needs of its array."""
+    """A block table's open arrays and what :meth:`OutputStore.record_block` needs of its array.
+
+    ``codes`` is the status column as recorded (the driver is the table's only writer, and
+    any other change to the table drops these handles). ``folder`` is set for a table in a
+    local store whose chunks :meth:`OutputStore.record_blocks` encodes and writes itself
+    (``encoders``, one per column array), as it does for data chunks: byte for byte what
+    Zarr writes, without a round trip through Zarr's event loop per block.
+    """
 
     group: zarr.Group
     status: zarr.Array
@@ -194,6 +202,9 @@ class _TableHandles:
     seams: zarr.Array
     chunk: int
     chunk_key: Callable[[tuple[int, ...]], str]
+    codes: np.ndarray
+    folder: Path | None = None
+    encoders: dict[str, Callable[[np.ndarray], Any]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -488,10 +499,19 @@ class OutputStore:
         if h is None:
             group = self._table(name)
             arr = self._array(name)
-            h = self._handles[name] = _TableHandles(
-                group, group["status"], np.asarray(group["span"][:]), group["figures"], group["seams"],
-                int(arr.chunks[0]), arr.metadata.encode_chunk_key,
+            status, figures, seams = group["status"], group["figures"], group["seams"]
+            h = _TableHandles(
+                group, status, np.asarray(group["span"][:]), figures, seams,
+                int(arr.chunks[0]), arr.metadata.encode_chunk_key, np.array(status[:], dtype=np.int8),
             )
+            if self.local_root is not None:
+                encoders = {"status": _chunk_encoder(status), "figures": _chunk_encoder(figures),
+                            "seams": _chunk_encoder(seams)}
+                one_row = all(a.chunks == (1,) + a.shape[1:] for a in (figures, seams))
+                if one_row and all(e is not None for e in encoders.values()):
+                    h.folder = self.local_root / _table_path(name)
+                    h.encoders = {k: e for k, e in encoders.items() if e is not None}
+            self._handles[name] = h
         return h
 
     def _delete(self, path: str) -> None:
@@ -632,9 +652,11 @@ class OutputStore:
                     attributes=meta,
                     overwrite=True,
                 )
-            if keep_done and same and self._table_matches(name, span_arr, columns, seam_samples, channels):
+            table = self._matching_table(name, span_arr, columns, seam_samples, channels) if same else None
+            if table is not None and keep_done:
                 return self.read_block_table(name, figures=False, seams=False)
-            self._create_table(name, span_arr, columns, seam_samples, channels)
+            if table is None or not self._reset_table(name, table):
+                self._create_table(name, span_arr, columns, seam_samples, channels)
             return self.read_block_table(name, figures=False, seams=False)
 
     @staticmethod
@@ -663,16 +685,18 @@ class OutputStore:
             raise StoreError(f"{name}: block spans end at frame {expected_start}, not at the file's {frames} frames")
         return span_arr
 
-    def _table_matches(self, name: str, span: np.ndarray, columns: list[str], seam_samples: int, channels: int) -> bool:
+    def _matching_table(self, name: str, span: np.ndarray, columns: list[str], seam_samples: int,
+                        channels: int) -> zarr.Group | None:
+        """The block table of ``name`` if it has these spans, columns and seam shape, else None."""
         node = self._node(_table_path(name))
         if not isinstance(node, zarr.Group):
-            return False
+            return None
         try:
             st, sp, fig, sm = (node[k] for k in ("status", "span", "figures", "seams"))
         except KeyError:
-            return False
+            return None
         n = span.shape[0]
-        return (
+        same = (
             st.shape == (n,)
             and sp.shape == (n, 2)
             and np.array_equal(sp[:], span)
@@ -680,6 +704,29 @@ class OutputStore:
             and list(fig.attrs.get("columns", [])) == columns
             and sm.shape == (n, 4, seam_samples, channels)
         )
+        return node if same else None
+
+    def _reset_table(self, name: str, group: zarr.Group) -> bool:
+        """Reset a matching block table in place, as :meth:`_create_table` would leave it.
+
+        Every status becomes pending first (an interrupted reset never looks resumable), then
+        the figure and seam chunks are deleted (they read as NaN, the fill value) and the
+        errors cleared. Local stores with Zarr's default chunk keys only (False: nothing done).
+        """
+        arrays = [group[k] for k in ("status", "figures", "seams")]
+        if self.local_root is None or any(a.metadata.chunk_key_encoding.name != "default" for a in arrays):
+            return False
+        self._handles.pop(name, None)
+        st = arrays[0]
+        st[:] = np.full(st.shape, BlockStatus.PENDING, dtype=np.int8)
+        folder = self.local_root / _table_path(name)
+        for key in ("figures", "seams"):
+            chunks = folder / key / "c"  # default chunk keys: "c/i/j/..."
+            if chunks.exists():
+                shutil.rmtree(chunks)
+        if group.attrs.get("errors"):
+            group.update_attributes({"errors": {}})
+        return True
 
     def _create_table(self, name: str, span: np.ndarray, columns: list[str], seam_samples: int, channels: int) -> None:
         path = _table_path(name)
@@ -808,7 +855,12 @@ class OutputStore:
                 self._mark_incomplete(self._array(name))
             for key, target in (("figures", h.figures), ("seams", h.seams)):
                 idx, vals = values[key]
-                if len(idx) == 1:
+                if h.folder is not None:  # one block per chunk: each value is one whole chunk
+                    zeros = (0,) * (target.ndim - 1)
+                    for i, v in zip(idx, vals):
+                        _put_file(h.folder / key / target.metadata.encode_chunk_key((i, *zeros)),
+                                  h.encoders[key](v[np.newaxis]))
+                elif len(idx) == 1:
                     target[idx[0]] = vals[0]
                 elif idx:
                     target.oindex[np.asarray(idx)] = np.stack(vals)
@@ -822,10 +874,20 @@ class OutputStore:
             if errors != before:
                 group.update_attributes({"errors": errors})
             codes = np.asarray([int(statuses[i]) for i in rows], dtype=np.int8)
+            if h.folder is not None:  # whole status chunks from the recorded column, written last
+                h.codes[rows] = codes
+                size = int(st.chunks[0])
+                for c in sorted({i // size for i in rows}):
+                    part = np.full(size, st.fill_value, dtype=np.int8)  # an edge chunk is stored whole
+                    column = h.codes[c * size : (c + 1) * size]
+                    part[: column.size] = column
+                    _put_file(h.folder / "status" / st.metadata.encode_chunk_key((c,)), h.encoders["status"](part))
+                return
             if _contiguous(rows):
                 st[rows[0] : rows[-1] + 1] = codes
             else:
                 st.oindex[np.asarray(rows)] = codes
+            h.codes[rows] = codes
 
     def invalidate_blocks(self, name: str, block_indices: Iterable[int]) -> None:
         """Set blocks pending (figures, seams and errors cleared) and the array incomplete."""
