@@ -655,7 +655,8 @@ def test_records_after_invalidation_and_re_preparation_see_the_current_table(sto
     _finish_block(store, 2)
     table = store.read_block_table(NAME)
     assert table.errors == {} and table.status.tolist() == [1, 0, 1]
-    # new chunking and spans: the array and table are recreated
+    # new chunking and spans: the array and table are recreated (and block writes, which
+    # keep the array open while its metadata document is unchanged, must see the new chunks)
     _prepare(store, chunk=10, spans=[(0, 50), (50, 100)])
     _finish_block(store, 1)
     assert store.read_block_table(NAME).status.tolist() == [0, 1]

@@ -261,12 +261,10 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> 
     """
     check_name(name)
     data = np.asarray(data)
-    store = _open_zarr_store(location, read_only=False)
     try:
-        arr = zarr.open_array(store, path=name, mode="r+")
-    except (FileNotFoundError, KeyError, zarr.errors.BaseZarrError) as e:
+        arr = _writable_array(location, name)
+    except (FileNotFoundError, NotADirectoryError, KeyError, zarr.errors.BaseZarrError) as e:
         raise StoreError(f"output array {name} not found in {location}; prepare the file before writing blocks") from e
-    arr = arr.with_config({"write_empty_chunks": True})
     frames, channels = arr.shape
     chunk = arr.chunks[0]
     if data.ndim != 2 or data.shape[1] != channels:
@@ -288,6 +286,38 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> 
             arr[start:stop, :] = data.astype(arr.dtype, copy=False)
         else:
             _write_local_chunks(root / name, arr, encode, start, data)
+
+
+_OPENED: dict[str, tuple[bytes, zarr.Array]] = {}
+_OPENED_LOCK = threading.Lock()
+
+
+def _writable_array(location: str, name: str) -> zarr.Array:
+    """The output array ``name`` opened for block writes (``write_empty_chunks`` on).
+
+    In a local store the array is opened once per process for as long as its metadata
+    document (``zarr.json``) reads the same, byte for byte: a block task then reads one
+    small file instead of a round trip through Zarr's event loop. Other stores open it
+    every time.
+    """
+    root = local_path(location)
+    if root is None:
+        arr = zarr.open_array(_open_zarr_store(location, read_only=False), path=name, mode="r+")
+        return arr.with_config({"write_empty_chunks": True})
+    meta_path = root / name / "zarr.json"
+    doc = meta_path.read_bytes()
+    key = str(meta_path)
+    with _OPENED_LOCK:
+        hit = _OPENED.get(key)
+    if hit is not None and hit[0] == doc:
+        return hit[1]
+    arr = zarr.open_array(LocalStore(root), path=name, mode="r+").with_config({"write_empty_chunks": True})
+    if meta_path.read_bytes() == doc:  # unchanged while opening: the array matches the document
+        with _OPENED_LOCK:
+            if len(_OPENED) >= 1024:
+                _OPENED.clear()
+            _OPENED[key] = (doc, arr)
+    return arr
 
 
 def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
