@@ -606,7 +606,8 @@ def test_a_forced_reset_of_a_matching_table_equals_a_new_table(tmp_path: Path):
     np.testing.assert_array_equal(a.span, b.span)
     np.testing.assert_array_equal(a.figures, b.figures)  # all NaN
     np.testing.assert_array_equal(a.seams, b.seams)
-    assert (a.columns, a.seam_samples) == (b.columns, b.seam_samples)
+    assert (a.columns, a.seam_samples) == (b.columns, b.seam_samples) == (reset.columns, reset.seam_samples)
+    np.testing.assert_array_equal(reset.span, a.span)  # the returned table is what the store holds
     # the reset table records as a new one does
     _finish_block(store, 2)
     assert store.read_block_table(NAME).status.tolist() == [0, 0, 1]

@@ -687,7 +687,12 @@ class OutputStore:
                 return self.read_block_table(name, figures=False, seams=False)
             if table is None or not self._reset_table(name, table):
                 self._create_table(name, span_arr, columns, seam_samples, channels)
-            return self.read_block_table(name, figures=False, seams=False)
+            status = np.zeros(span_arr.shape[0], dtype=np.int8)  # all pending, as just written
+            span_arr = span_arr.copy()
+            for a in (status, span_arr):
+                a.setflags(write=False)
+            return BlockTable(name=name, status=status, span=span_arr, columns=tuple(columns),
+                              seam_samples=int(seam_samples), errors={})
 
     @staticmethod
     def _check_prepare_args(
