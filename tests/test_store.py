@@ -518,6 +518,27 @@ def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore
     assert store.read_block_table(NAME).status.tolist() == [1, 0, 0]  # the finished block is kept
 
 
+def test_a_status_write_that_fails_leaves_no_trace_in_later_records(store: OutputStore, monkeypatch):
+    # The driver keeps a copy of the status column to write whole status chunks; a record
+    # whose status chunk could not be written must not reach the store with a later record.
+    _prepare(store)
+    for a in (0, 40):
+        write_block_data(store.location, NAME, a, np.ones((40, 3)))
+    real_put = store_module._put_file
+
+    def no_space_for_statuses(path, payload):  # injected fault: ENOSPC on the status chunk only
+        if "status" in Path(path).parts:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        real_put(path, payload)
+
+    with monkeypatch.context() as m:
+        m.setattr(store_module, "_put_file", no_space_for_statuses)
+        with pytest.raises(StoreError, match="no space left"):
+            store.record_block(NAME, 0, BlockStatus.PASS, np.zeros((3, 2)), None, None)
+    store.record_block(NAME, 1, BlockStatus.PASS, np.ones((3, 2)), None, None)
+    assert store.read_block_table(NAME).status.tolist() == [0, 1, 0]
+
+
 def test_a_batch_of_records_equals_the_same_records_one_by_one(tmp_path: Path):
     spans = [(a, a + 20) for a in range(0, 100, 20)]
     tables = []

@@ -910,13 +910,20 @@ class OutputStore:
                 group.update_attributes({"errors": errors})
             codes = np.asarray([int(statuses[i]) for i in rows], dtype=np.int8)
             if h.folder is not None:  # whole status chunks from the recorded column, written last
-                h.codes[rows] = codes
+                recorded = h.codes.copy()
+                recorded[rows] = codes
                 size = int(st.chunks[0])
-                for c in sorted({i // size for i in rows}):
-                    part = np.full(size, st.fill_value, dtype=np.int8)  # an edge chunk is stored whole
-                    column = h.codes[c * size : (c + 1) * size]
-                    part[: column.size] = column
-                    _put_file(h.folder / "status" / st.metadata.encode_chunk_key((c,)), h.encoders["status"](part))
+                try:
+                    for c in sorted({i // size for i in rows}):
+                        part = np.full(size, st.fill_value, dtype=np.int8)  # an edge chunk is stored whole
+                        column = recorded[c * size : (c + 1) * size]
+                        part[: column.size] = column
+                        _put_file(h.folder / "status" / st.metadata.encode_chunk_key((c,)),
+                                  h.encoders["status"](part))
+                except BaseException:
+                    self._handles.pop(name, None)  # the next record reads the column back from the store
+                    raise
+                h.codes = recorded
                 return
             if _contiguous(rows):
                 st[rows[0] : rows[-1] + 1] = codes
