@@ -749,7 +749,8 @@ class OutputStore:
         errors cleared. Local stores with Zarr's default chunk keys only (False: nothing done).
         """
         arrays = [group[k] for k in ("status", "figures", "seams")]
-        if self.local_root is None or any(a.metadata.chunk_key_encoding.name != "default" for a in arrays):
+        keys = [a.metadata.chunk_key_encoding for a in arrays]
+        if self.local_root is None or any(k.name != "default" or getattr(k, "separator", "/") != "/" for k in keys):
             return False
         self._handles.pop(name, None)
         st = arrays[0]
