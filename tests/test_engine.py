@@ -8,6 +8,8 @@ blocks are scheduled.
 
 from __future__ import annotations
 
+import logging
+import time
 from pathlib import Path
 
 import numpy as np
@@ -258,3 +260,27 @@ def test_local_worker_processes_keep_the_allocator_defaults():
     assert out.returncode == 0, out.stderr[-2000:]
     env = json.loads(out.stdout.strip().splitlines()[-1])
     assert env == {"MALLOC_TRIM_THRESHOLD_": None, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
+
+
+def test_a_slow_first_load_of_the_compiled_loops_is_announced(monkeypatch, caplog):
+    # On a machine's first run numba compiles the loops for tens of seconds before the first
+    # block; the driver loads them first and says so when that takes long.
+    from twinpass.core import loops
+    from twinpass.engine import COMPILE_NOTICE, warm_compiled_loops
+
+    real = loops.jit_enabled
+    in_use = real()  # loaded (or compiled) once in this process before timing anything
+
+    def slow() -> bool:  # injected delay: numba compiling on a first run
+        time.sleep(0.5)
+        return real()
+
+    with monkeypatch.context() as m, caplog.at_level(logging.WARNING, logger="twinpass.engine"):
+        m.setattr(loops, "jit_enabled", slow)
+        assert warm_compiled_loops(notice_after_s=0.05) is in_use
+    assert COMPILE_NOTICE in caplog.text
+    caplog.clear()
+    with caplog.at_level(logging.WARNING, logger="twinpass.engine"):
+        assert warm_compiled_loops(notice_after_s=5.0) is in_use  # already loaded: quick, no notice
+    time.sleep(0.1)
+    assert COMPILE_NOTICE not in caplog.text

@@ -31,6 +31,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import threading
 import time
 import traceback
 from dataclasses import dataclass, field
@@ -310,6 +311,7 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     if int(workers) < 1:
         raise ConfigError(f"workers = {workers}: at least one worker is needed ([engine] workers or --workers)")
     processes = scheduler == "processes"
+    warm_compiled_loops()  # local workers find them loaded (threads) or in numba's cache (processes)
     with dask.config.set(_LOCAL_CLUSTER_CONFIG):
         cluster = _local_cluster(workers, processes)
     try:
@@ -322,6 +324,30 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     finally:
         client.close()
         cluster.close()
+
+
+COMPILE_NOTICE = ("compiling twinpass's filter loops for this machine (first use after installing; "
+                  "this takes a minute or so, and later runs load them from numba's cache)")
+
+
+def warm_compiled_loops(notice_after_s: float = 3.0) -> bool:
+    """Load the compiled loops in this process before any block needs them.
+
+    On a machine's first run after installing, numba compiles them (about 40 s of one core
+    on the bench machine; a fraction of a second to load from its cache afterwards); when
+    that takes longer than ``notice_after_s`` seconds, :data:`COMPILE_NOTICE` is logged as a
+    warning, so that a first run does not look stuck. Returns whether the compiled loops are
+    in use (see :func:`twinpass.core.loops.jit_enabled`).
+    """
+    from .core import loops
+
+    timer = threading.Timer(notice_after_s, log.warning, args=(COMPILE_NOTICE,))
+    timer.daemon = True
+    timer.start()
+    try:
+        return loops.jit_enabled()
+    finally:
+        timer.cancel()
 
 
 _LOCAL_CLUSTER_CONFIG = {
