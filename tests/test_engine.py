@@ -284,3 +284,24 @@ def test_a_slow_first_load_of_the_compiled_loops_is_announced(monkeypatch, caplo
         assert warm_compiled_loops(notice_after_s=5.0) is in_use  # already loaded: quick, no notice
     time.sleep(0.1)
     assert COMPILE_NOTICE not in caplog.text
+
+
+def test_blocks_set_by_hand_beyond_the_memory_budget_fail_their_segment_with_a_remedy(tmp_path):
+    # block_seconds is used as given, but a window that cannot fit [processing]
+    # memory_budget_mib is refused before anything is written, naming both settings; the
+    # other stream (another channel count, small enough) still runs.
+    write_stream(tmp_path / "archive", "deck", make_signal(36000, 4, FS, seed=1), FS, 2)
+    write_stream(tmp_path / "archive", "pier", make_signal(36000, 1, FS, seed=2), FS, 2)
+    # 4 channels: (20 s x 200 Hz + 2 halos) x 4 ch x 40 B > 0.6 MiB; 1 channel fits
+    cfg = write_config(tmp_path, processing={"block_seconds": 20.0, "memory_budget_mib": 0.6})
+    res = run_job(load_config(cfg))
+    status = {o.relpath.split("/")[0]: o.status for o in res.outcomes}
+    assert set(status.values()) == {"failed", "complete"} and status["pier"] == "complete", status
+    failed = [o for o in res.outcomes if o.status == "failed"]
+    assert failed and all(o.relpath.startswith("deck/") for o in failed)
+    message = " ".join(str(e) for o in failed for e in o.errors.values())
+    assert "block_seconds = 20" in message and "memory_budget_mib = 0.6" in message
+    assert "lower block_seconds" in message
+    g = open_store(tmp_path / "out.zarr")
+    for o in failed:  # nothing of the refused segment is marked complete
+        assert o.array_name not in g or g[o.array_name].attrs.get("complete") is not True

@@ -226,6 +226,25 @@ def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archiv
     check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
 
 
+def test_a_segment_whose_blocks_do_not_fit_the_memory_budget_is_not_retried(prefect_client, npy_archive, tmp_path):
+    # Blocks set by hand (block_seconds) whose window exceeds [processing] memory_budget_mib
+    # fail their segment with a message naming both settings; running it again cannot help,
+    # so the task ends Failed after one run although a retry is configured.
+    cfg = write_job(tmp_path, npy_archive, flow_retries=1)
+    text = cfg.read_text(encoding="utf-8").replace("block_seconds = 10.0", "block_seconds = 1000.0\nmemory_budget_mib = 1.0")
+    cfg.write_text(text, encoding="utf-8")
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_failed(), state.message
+    runs = final_task_runs(prefect_client, flow_run_id(state), expected=3)
+    segs = runs_of(runs, flows.filter_segment)
+    assert len(segs) == 2 and all(t.state.is_failed() and t.run_count == 1 for t in segs), \
+        [(t.name, t.state.name, t.run_count) for t in segs]
+    assert all("block_seconds = 1000" in t.state.message and "memory_budget_mib = 1" in t.state.message
+               for t in segs)
+    records = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").file_records()
+    assert not any(rec.complete for rec in records.values())
+
+
 def test_a_segment_whose_checks_fail_is_not_retried(prefect_client, npy_archive, tmp_path, monkeypatch):
     # Injected fault: block 2 of one file is filtered with its first section's numerator
     # scaled by sqrt(2) (+6 dB overall), so its response check fails; running the block

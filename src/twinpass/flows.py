@@ -110,8 +110,9 @@ def design_task(prep: Prepared) -> dict[str, Any]:
 
 
 def _worth_retrying(task: Any, task_run: Any, state: Any) -> bool:
-    """Retry a failed segment unless only checks failed: the same blocks give the same figures."""
-    return not isinstance(getattr(state, "data", None), ChecksFailedError)
+    """Retry a failed segment unless only checks failed (the same blocks give the same
+    figures) or the configuration does not suit it (e.g. blocks too large for the memory budget)."""
+    return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError))
 
 
 @task(name="filter-segment", cache_policy=NO_CACHE, retries=1, retry_delay_seconds=5.0,

@@ -9,6 +9,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from twinpass.errors import ConfigError
+
 MIN_BLOCK_SAMPLES = 65536
 """Smallest automatic block core (samples)."""
 HALOS_PER_BLOCK = 24
@@ -73,7 +75,8 @@ def choose_layout(
     halo : int
         Halo per side in samples (the design's effective length), or 0 in carry mode.
     block_seconds : float or None
-        Requested block core length in seconds (used as given); None chooses
+        Requested block core length in seconds (used as given, if its window fits the
+        memory budget); None chooses
         ``max(24 * halo, 65536)`` samples, capped by the memory budget, and balances the
         blocks of each file (see :meth:`Layout.block_for`).
     chunk_seconds : float or None
@@ -82,11 +85,25 @@ def choose_layout(
     memory_budget_mib : float
         Budget for one block's working memory; the window (block + 2 halos) times
         channels times ``BYTES_PER_WINDOW_SAMPLE`` must fit.
+
+    Raises
+    ------
+    ConfigError
+        ``block_seconds`` asks for blocks whose window does not fit the memory budget.
     """
     budget = memory_budget_mib * 2**20
     cap = int(budget // (channels * BYTES_PER_WINDOW_SAMPLE)) - 2 * halo
     if block_seconds is not None:
         block = max(1, int(round(block_seconds * sample_rate_hz)))
+        need = (block + 2 * halo) * channels * BYTES_PER_WINDOW_SAMPLE
+        if need > budget:
+            fits = f"at most {cap / sample_rate_hz:.3g} s here" if cap > 0 else "carry mode needs no halos"
+            raise ConfigError(
+                f"[processing] block_seconds = {block_seconds:g} makes blocks of {block} samples; with halos of "
+                f"{halo} samples on each side and {channels} channels one block needs about "
+                f"{need / 2**20:.0f} MiB, above [processing] memory_budget_mib = {memory_budget_mib:g}: lower "
+                f"block_seconds ({fits}) or raise memory_budget_mib"
+            )
     else:
         block = max(HALOS_PER_BLOCK * halo, MIN_BLOCK_SAMPLES)
         if cap > 0:
