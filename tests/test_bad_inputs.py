@@ -299,6 +299,7 @@ def _check_reported(invalid: dict[str, Any], expect: Expect) -> None:
             assert text in reason, f"{rel}: {text!r} not in reason {reason!r}"
         for text in in_remedy:
             assert text in remedy, f"{rel}: {text!r} not in remedy {remedy!r}"
+            assert (reason + remedy).count(text) == 1, f"{rel}: {text!r} said twice in {reason!r} / {remedy!r}"
 
 
 def _good_files(root: Path) -> list[str]:

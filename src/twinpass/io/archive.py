@@ -483,7 +483,8 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
         text = _strip_path(str(e), abspath)
         remedy = _REMEDY_EXCLUDE
         if _READER_TRUNCATED in text:
-            # the reader names its option; the configuration key is [archive] truncated
+            # the reader's own hint names its option; the remedy names the configuration key
+            text = text.replace(f"; to read up to the last whole frame set {_READER_TRUNCATED}", "")
             text = text.replace(_READER_TRUNCATED, _CONFIG_TRUNCATED)
             remedy = f"set {_CONFIG_TRUNCATED} to filter the whole frames that are present, or " + remedy
         raise _Bad(f"cannot be opened: {text}", remedy) from None
