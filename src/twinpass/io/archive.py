@@ -123,6 +123,7 @@ from twinpass.core.nonfinite import (
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
+from twinpass.io.readers._common import TRUNCATED_HINT
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
@@ -461,7 +462,6 @@ def _strip_path(message: str, abspath: str) -> str:
     return message
 
 
-_READER_TRUNCATED = 'the reader option truncated="warn"'
 _CONFIG_TRUNCATED = '[archive] truncated = "warn"'
 
 
@@ -482,10 +482,9 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
     except (TwinpassError, OSError) as e:
         text = _strip_path(str(e), abspath)
         remedy = _REMEDY_EXCLUDE
-        if _READER_TRUNCATED in text:
-            # the reader's own hint names its option; the remedy names the configuration key
-            text = text.replace(f"; to read up to the last whole frame set {_READER_TRUNCATED}", "")
-            text = text.replace(_READER_TRUNCATED, _CONFIG_TRUNCATED)
+        if TRUNCATED_HINT in text:
+            # the reader's hint names its own option; the remedy names the configuration key
+            text = text.replace(f"; {TRUNCATED_HINT}", "")
             remedy = f"set {_CONFIG_TRUNCATED} to filter the whole frames that are present, or " + remedy
         raise _Bad(f"cannot be opened: {text}", remedy) from None
     if info.frames <= 0:

@@ -29,6 +29,9 @@ from .base import Reader, ReaderSpec, Recording, RecordingInfo
 UTC = _dt.timezone.utc
 
 TRUNCATED_MODES = ("error", "warn")
+TRUNCATED_HINT = 'to read up to the last whole frame set the reader option truncated="warn"'
+"""The last clause of a reader's error for a file cut short (after "; "); discovery
+(:mod:`twinpass.io.archive`) gives the configuration key in its remedy instead."""
 
 
 def is_url(path: str) -> bool:

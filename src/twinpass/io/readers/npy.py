@@ -25,6 +25,7 @@ import numpy.lib.format as npformat
 
 from ...errors import CorruptInputError, UnsupportedFormatError
 from ._common import (
+    TRUNCATED_HINT,
     Codec,
     FileReader,
     InterleavedRecording,
@@ -104,10 +105,7 @@ class NpyReader(FileReader):
                 f"has {size} bytes"
             )
             if fortran or mode == "error":
-                hint = (
-                    "re-export it" if fortran
-                    else "to read up to the last whole frame set the reader option truncated=\"warn\""
-                )
+                hint = "re-export it" if fortran else TRUNCATED_HINT
                 raise CorruptInputError(f"{path}: {what}; the file is truncated; {hint}", path=path)
             frames = present
             warnings.append(f"{what}; read up to the last whole frame ({present})")

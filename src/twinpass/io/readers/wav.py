@@ -48,6 +48,7 @@ from typing import Any, BinaryIO
 
 from ...errors import CorruptInputError, UnsupportedFormatError
 from ._common import (
+    TRUNCATED_HINT,
     UTC,
     Codec,
     FileReader,
@@ -369,8 +370,7 @@ def _describe(path: str, lay: _Layout, size: int, mode: str, rate_opt: float | N
         )
         if mode == "error":
             raise CorruptInputError(
-                f"{path}: {what}. The file is truncated or its data size is wrong; to read up to the "
-                "last whole frame set the reader option truncated=\"warn\"",
+                f"{path}: {what}. The file is truncated or its data size is wrong; {TRUNCATED_HINT}",
                 path=path,
             )
         lay.warnings.append(f"{what}; read up to the last whole frame ({frames})")
