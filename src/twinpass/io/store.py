@@ -354,21 +354,24 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
 
 def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndarray], Any], start: int,
                         data: np.ndarray) -> None:
-    """Encode and write the whole chunks ``data`` covers, from frame ``start`` (a chunk boundary).
+    """Encode and write the whole chunks ``data`` covers, from row ``start`` (a chunk boundary).
 
-    Each chunk file is written to a temporary name and renamed into place, as Zarr's local
-    store does, so a reader never sees half a chunk. A chunk that runs past the array's end
-    is completed with the fill value, as Zarr stores edge chunks.
+    ``arr`` is chunked along its first axis only (a chunk spans every other axis whole: the
+    output arrays, one row per chunk of a block table's figures and seams, its status
+    column); ``data`` holds rows of ``arr``. Each chunk file is written to a temporary name
+    and renamed into place, as Zarr's local store does, so a reader never sees half a chunk.
+    A chunk that runs past the array's end is completed with the fill value, as Zarr stores
+    edge chunks.
     """
     chunk = arr.chunks[0]
-    channels = arr.shape[1]
+    rest = (0,) * (arr.ndim - 1)
     for c0 in range(start, start + data.shape[0], chunk):
         part = data[c0 - start : c0 - start + chunk]
         if part.shape[0] < chunk:  # the array's last, partial chunk
-            full = np.full((chunk, channels), arr.fill_value, dtype=arr.dtype)
+            full = np.full((chunk, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
             full[: part.shape[0]] = part
             part = full
-        _put_file(folder / arr.metadata.encode_chunk_key((c0 // chunk, 0)), encode(part))
+        _put_file(folder / arr.metadata.encode_chunk_key((c0 // chunk, *rest)), encode(part))
 
 
 def _put_file(path: Path, payload: Any) -> None:
@@ -892,10 +895,8 @@ class OutputStore:
             for key, target in (("figures", h.figures), ("seams", h.seams)):
                 idx, vals = values[key]
                 if h.folder is not None:  # one block per chunk: each value is one whole chunk
-                    zeros = (0,) * (target.ndim - 1)
                     for i, v in zip(idx, vals):
-                        _put_file(h.folder / key / target.metadata.encode_chunk_key((i, *zeros)),
-                                  h.encoders[key](v[np.newaxis]))
+                        _write_local_chunks(h.folder / key, target, h.encoders[key], i, v[np.newaxis])
                 elif len(idx) == 1:
                     target[idx[0]] = vals[0]
                 elif idx:
@@ -915,12 +916,9 @@ class OutputStore:
                 recorded[rows] = codes
                 size = int(st.chunks[0])
                 try:
-                    for c in sorted({i // size for i in rows}):
-                        part = np.full(size, st.fill_value, dtype=np.int8)  # an edge chunk is stored whole
-                        column = recorded[c * size : (c + 1) * size]
-                        part[: column.size] = column
-                        _put_file(h.folder / "status" / st.metadata.encode_chunk_key((c,)),
-                                  h.encoders["status"](part))
+                    for c0 in sorted({i // size * size for i in rows}):
+                        _write_local_chunks(h.folder / "status", st, h.encoders["status"], c0,
+                                            recorded[c0 : c0 + size])
                 except BaseException:
                     self._handles.pop(name, None)  # the next record reads the column back from the store
                     raise
