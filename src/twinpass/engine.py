@@ -311,9 +311,11 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     if int(workers) < 1:
         raise ConfigError(f"workers = {workers}: at least one worker is needed ([engine] workers or --workers)")
     processes = scheduler == "processes"
-    # Loaded beside the cluster's start and the first files' preparation; block tasks in this
-    # process wait for it on first use, worker processes then load numba's cached code.
-    threading.Thread(target=warm_compiled_loops, name="twinpass-loops", daemon=True).start()
+    if not processes:
+        # Loaded beside the cluster's start and the first files' preparation; the block tasks
+        # (threads of this process) wait for it on first use. Not for worker processes: they
+        # load their own, and numba and LLVM would add about 100 MiB to this process's peak.
+        threading.Thread(target=warm_compiled_loops, name="twinpass-loops", daemon=True).start()
     with dask.config.set(_LOCAL_CLUSTER_CONFIG):
         cluster = _local_cluster(workers, processes)
     try:
@@ -333,7 +335,7 @@ COMPILE_NOTICE = ("compiling twinpass's filter loops for this machine (first use
 
 
 def warm_compiled_loops(notice_after_s: float = 3.0) -> bool:
-    """Load the compiled loops in this process (:func:`dask_client` starts it on a thread).
+    """Load the compiled loops in this process (:func:`dask_client` starts it on a thread for local threads).
 
     On a machine's first run after installing, numba compiles them (about 40 s of one core
     on the bench machine; a fraction of a second to load from its cache afterwards); when
