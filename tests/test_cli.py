@@ -162,3 +162,29 @@ def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     r = _twinpass("plan", str(cfg))
     assert r.returncode == 2
     assert "blok_seconds" in r.stderr and "[processing]" in r.stderr
+
+
+def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
+    # The run command pauses the cyclic collector only while it imports its modules.
+    import gc
+
+    from twinpass import cli
+
+    cfg = mixed_archive(tmp_path)
+    assert gc.isenabled()
+    assert cli.main(["run", str(cfg), "--no-flow", "--no-report"]) == 0
+    assert gc.isenabled()
+    assert cli.main(["run", str(tmp_path / "missing.toml"), "--no-flow"]) == 2  # the error path too
+    assert gc.isenabled()
+    gc.disable()  # a caller that keeps the collector off gets it back off
+    try:
+        with pytest.raises(RuntimeError):
+            with cli._start_up_imports():
+                assert not gc.isenabled()
+                raise RuntimeError("import failed")
+        assert not gc.isenabled()
+    finally:
+        gc.enable()
+    with cli._start_up_imports():
+        assert not gc.isenabled()
+    assert gc.isenabled()

@@ -68,9 +68,18 @@ def app() -> Any:
     if os.name == "posix" and parent.isdigit():
         threading.Thread(target=_exit_with_parent, args=(int(parent),), name="twinpass-parent-watch",
                          daemon=True).start()
-    from prefect.server.api.server import create_app
+    # The server's start-up is almost all imports and route building; as in the command
+    # line, the cyclic garbage collector is paused meanwhile and the objects built frozen.
+    import gc
 
-    return create_app(ephemeral=True, final=True)
+    gc.disable()
+    try:
+        from prefect.server.api.server import create_app
+
+        return create_app(ephemeral=True, final=True)
+    finally:
+        gc.freeze()
+        gc.enable()
 
 
 def _exit_with_parent(parent_pid: int, interval_s: float = 1.0) -> None:
