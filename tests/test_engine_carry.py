@@ -101,7 +101,9 @@ def test_carry_mode_equals_whole_segment_two_pass(tmp_path, client, response, ed
     files = _setup(tmp_path, response, channels, seed=channels, edge=edge, edge_samples=edge_samples)
     results: list = []
     outcomes, store = _run(tmp_path, client, collect=results)
-    assert [o.status for o in outcomes] == ["complete"] * 3
+    assert [o.status for o in outcomes] == ["complete"] * 3, (  # say which file is missing, should it be
+        [(o.relpath, o.status) for o in outcomes],
+        sorted(str(p.relative_to(tmp_path)) for p in (tmp_path / "archive").rglob("*")))
     out = OutputStore.open(str(store), mode="r")
     attrs = out.array_attrs(files.arrays[0])
     filt = attrs["filter"]
