@@ -172,8 +172,10 @@ def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
 
     cfg = mixed_archive(tmp_path)
     assert gc.isenabled()
+    frozen = gc.get_freeze_count()
     assert cli.main(["run", str(cfg), "--no-flow", "--no-report"]) == 0
     assert gc.isenabled()
+    assert gc.get_freeze_count() == frozen  # a caller's objects are never frozen
     assert cli.main(["run", str(tmp_path / "missing.toml"), "--no-flow"]) == 2  # the error path too
     assert gc.isenabled()
     gc.disable()  # a caller that keeps the collector off gets it back off
@@ -188,3 +190,9 @@ def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
     with cli._start_up_imports():
         assert not gc.isenabled()
     assert gc.isenabled()
+    # The command's own process freezes what its imports built (a child process: the
+    # freeze is process-wide).
+    code = ("import gc, sys\nfrom twinpass import cli\nn = gc.get_freeze_count()\n"
+            "with cli._start_up_imports(freeze=True):\n    import twinpass.job\n"
+            "sys.exit(0 if gc.isenabled() and gc.get_freeze_count() > n + 1000 else 1)")
+    assert subprocess.run([sys.executable, "-c", code], timeout=300).returncode == 0

@@ -69,7 +69,8 @@ def app() -> Any:
         threading.Thread(target=_exit_with_parent, args=(int(parent),), name="twinpass-parent-watch",
                          daemon=True).start()
     # The server's start-up is almost all imports and route building; as in the command
-    # line, the cyclic garbage collector is paused meanwhile and the objects built frozen.
+    # line, the cyclic garbage collector is paused meanwhile. This process is the server's
+    # own, so the objects built are also frozen (later collections skip them).
     import gc
 
     gc.disable()
