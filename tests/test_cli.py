@@ -169,6 +169,7 @@ def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
     import gc
 
     from twinpass import cli
+    from twinpass.startup import start_up_imports
 
     cfg = mixed_archive(tmp_path)
     assert gc.isenabled()
@@ -181,18 +182,18 @@ def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
     gc.disable()  # a caller that keeps the collector off gets it back off
     try:
         with pytest.raises(RuntimeError):
-            with cli._start_up_imports():
+            with start_up_imports():
                 assert not gc.isenabled()
                 raise RuntimeError("import failed")
         assert not gc.isenabled()
     finally:
         gc.enable()
-    with cli._start_up_imports():
+    with start_up_imports():
         assert not gc.isenabled()
     assert gc.isenabled()
     # The command's own process freezes what its imports built (a child process: the
     # freeze is process-wide).
-    code = ("import gc, sys\nfrom twinpass import cli\nn = gc.get_freeze_count()\n"
-            "with cli._start_up_imports(freeze=True):\n    import twinpass.job\n"
+    code = ("import gc, sys\nfrom twinpass.startup import start_up_imports\nn = gc.get_freeze_count()\n"
+            "with start_up_imports(freeze=True):\n    import twinpass.job\n"
             "sys.exit(0 if gc.isenabled() and gc.get_freeze_count() > n + 1000 else 1)")
     assert subprocess.run([sys.executable, "-c", code], timeout=300).returncode == 0

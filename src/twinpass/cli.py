@@ -7,18 +7,17 @@ Exit status: 0 success, 1 some files failed or are incomplete, 2 bad configurati
 from __future__ import annotations
 
 import argparse
-import contextlib
-import gc
 import json
 import logging
 import os
 import sys
 import time
 from pathlib import Path
-from typing import Any, Iterator, Sequence
+from typing import Any, Sequence
 
 from . import __version__
 from .errors import ConfigError, TwinpassError
+from .startup import start_up_imports
 
 
 def _eprint(*a: Any) -> None:
@@ -105,29 +104,6 @@ class _EmptyStore:
         return {}
 
 
-@contextlib.contextmanager
-def _start_up_imports(freeze: bool = False) -> Iterator[None]:
-    """Import a command's heavy modules with the cyclic garbage collector paused.
-
-    Importing scipy, dask, zarr and prefect builds hundreds of thousands of objects and
-    almost no garbage, yet triggers several full collections, each walking every object
-    built so far. Pausing the collector meanwhile saves 10-15 % of the import time; it
-    runs again as usual afterwards. With ``freeze`` (only when the command is the process
-    itself, not when :func:`main` is called from a caller's Python) the objects built so
-    far are also frozen (``gc.freeze()``), so that later collections skip them; in a
-    caller's long-lived process that would keep every garbage cycle alive at that moment.
-    """
-    was_enabled = gc.isenabled()
-    gc.disable()
-    try:
-        yield
-    finally:
-        if freeze:
-            gc.freeze()
-        if was_enabled:
-            gc.enable()
-
-
 def cmd_run(args: argparse.Namespace) -> int:
     if (args.config is None) == (args.block is None):
         raise ConfigError("twinpass run: give either a configuration file or --block NAME (a saved TwinpassJob)")
@@ -137,7 +113,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         from .prefect_server import early_start
 
         early_start()  # a temporary Prefect server (if one is needed) starts while this process prepares
-    with _start_up_imports(freeze=args.own_process):
+    with start_up_imports(freeze=args.own_process):
         import distributed  # noqa: F401  (the engine's local cluster, started later)
 
         from .config import load_config
@@ -235,7 +211,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         from .prefect_server import early_start
 
         early_start()  # a temporary Prefect server (if one is needed) starts while the archive is written
-    with _start_up_imports(freeze=args.own_process):
+    with start_up_imports(freeze=args.own_process):
         from .demo import DEMO_SCENARIO, write_demo_archive
 
         if not args.no_run:

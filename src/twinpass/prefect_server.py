@@ -68,19 +68,14 @@ def app() -> Any:
     if os.name == "posix" and parent.isdigit():
         threading.Thread(target=_exit_with_parent, args=(int(parent),), name="twinpass-parent-watch",
                          daemon=True).start()
-    # The server's start-up is almost all imports and route building; as in the command
-    # line, the cyclic garbage collector is paused meanwhile. This process is the server's
-    # own, so the objects built are also frozen (later collections skip them).
-    import gc
+    from .startup import start_up_imports
 
-    gc.disable()
-    try:
+    # The server's start-up is almost all imports and route building. This process is the
+    # server's own, so what they build is also frozen.
+    with start_up_imports(freeze=True):
         from prefect.server.api.server import create_app
 
         return create_app(ephemeral=True, final=True)
-    finally:
-        gc.freeze()
-        gc.enable()
 
 
 def _exit_with_parent(parent_pid: int, interval_s: float = 1.0) -> None:
