@@ -219,7 +219,7 @@ class CrashingStore:
     of happening (an injected fault: the run dies just before that write)."""
 
     def __init__(self, store, crash_at: int | None) -> None:
-        self._store, self.crash_at, self.writes = store, crash_at, []
+        self._store, self.crash_at, self.writes, self.crashed = store, crash_at, [], False
 
     def __getattr__(self, name):
         attr = getattr(self._store, name)
@@ -229,6 +229,7 @@ class CrashingStore:
         def write(*args, **kwargs):
             self.writes.append((name, args[0] if args else None))
             if len(self.writes) == self.crash_at:
+                self.crashed = True
                 raise Crash(f"killed before {name}{args[:2]}")
             return attr(*args, **kwargs)
 
@@ -288,7 +289,13 @@ def test_a_run_dying_between_any_two_driver_writes_resumes_correctly(tmp_path, m
         shutil.copytree(template, folder)
         cfg = load_config(folder / "twinpass.toml")
         crashed = _run_crashing(monkeypatch, cfg, crash_at)
-        assert len(crashed.writes) == crash_at
+        # Block records are written in batches of whatever has finished when the driver looks,
+        # so a run may need a write more or less than the probe: near the end the crash point
+        # may lie past this run's last write, and the run then simply completes.
+        if crashed.crashed:
+            assert len(crashed.writes) == crash_at
+        else:
+            assert len(crashed.writes) < crash_at, (crash_at, crashed.writes)
         _assert_no_complete_file_misses_a_block(folder / "out.zarr")
         res = run_job(cfg)  # the rerun after the crash
         assert res.ok, (crash_at, writes[crash_at - 1])
