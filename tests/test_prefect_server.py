@@ -32,6 +32,9 @@ PROBE = textwrap.dedent('''
     process = server.process
     from prefect import flow, get_client, get_run_logger, task
     from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterId, LogFilter, LogFilterFlowRunId
+    from prefect.settings import get_current_settings
+
+    seen = {}
 
     @task
     def double(x):
@@ -40,6 +43,7 @@ PROBE = textwrap.dedent('''
     @flow(name="tp-server-probe")
     def probe(x):
         get_run_logger().info("probe says hello")
+        seen["heartbeat_in_flow"] = get_current_settings().flows.heartbeat_frequency
         return double(x)
 
     out = {"early_url": server.api_url}
@@ -62,6 +66,7 @@ PROBE = textwrap.dedent('''
             out["task_runs"] = sorted((t.task_key.split("-")[0], t.state.type.value if t.state else None)
                                       for t in trs)
             out["logs"] = [l.message for l in logs]
+    out.update(seen, heartbeat_after=get_current_settings().flows.heartbeat_frequency)
     out["server_exit_code"] = process.poll()
     out["server_modules_here"] = sorted(m for m in sys.modules if m.startswith("prefect.server"))
     print("PROBE " + json.dumps(out))
@@ -126,6 +131,9 @@ def test_flow_runs_against_the_early_server_and_is_recorded_there(shared_home: P
     assert (out["flow"], out["state"]) == ("tp-server-probe", "COMPLETED")
     assert out["task_runs"] == [["double", "COMPLETED"]]
     assert any("probe says hello" in m for m in out["logs"]), out["logs"]
+    # No heartbeats to a server that ends with the run; the caller's setting comes back after
+    # (Prefect's documented default of 180 s, in its settings reference).
+    assert (out["heartbeat_in_flow"], out["heartbeat_after"]) == (None, 180)
     assert out["server_exit_code"] is not None  # the server process is gone after the context
     assert out["server_modules_here"] == []  # the client process never imported the server code
     assert "Traceback" not in proc.stderr, proc.stderr

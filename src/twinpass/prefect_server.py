@@ -387,6 +387,10 @@ def prefect_api() -> Iterator[str | None]:
     updates: dict[Any, Any] = {}
     if not PREFECT_UI_URL.value():
         updates[PREFECT_UI_URL] = ""  # no "View at" links: this server has no UI and ends with the command
+    # No flow-run heartbeats: they let a lasting server notice a run whose process died, and
+    # this server dies with the process. Prefect's heartbeat thread sleeps in 1 s steps, and
+    # the end of every flow run waits for it (0.5 s on average).
+    updates["flows.heartbeat_frequency"] = None
     server = server or LocalPrefectServer()
     try:
         api = server.wait_ready(float(PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS.value()))
