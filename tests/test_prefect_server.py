@@ -139,6 +139,23 @@ def test_flow_runs_against_the_early_server_and_is_recorded_there(shared_home: P
     assert "Traceback" not in proc.stderr, proc.stderr
 
 
+def test_server_application_is_the_one_its_own_clients_get(shared_home: Path, tmp_path: Path) -> None:
+    # Prefect's server code builds in-process clients with ``create_app()`` (no arguments),
+    # which returns the application cached for those arguments; Prefect's own temporary
+    # server (``SubprocessASGIServer`` in prefect.server.api.server) is made ephemeral through
+    # the environment for that reason. The application twinpass serves must be that one, or
+    # the server builds a second one at its first requests.
+    code = ("import os\n"
+            "from twinpass.prefect_server import app\n"
+            "served = app()\n"
+            "from prefect.server.api.server import create_app\n"
+            "print('APP', create_app() is served, os.environ.get('PREFECT__SERVER_EPHEMERAL'))\n")
+    proc = subprocess.run([sys.executable, "-c", code], env=_clean_env(shared_home), cwd=tmp_path,
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "APP True 1" in proc.stdout.splitlines(), proc.stdout
+
+
 def test_save_without_an_api_keeps_the_block_in_the_local_database(shared_home: Path, tmp_path: Path) -> None:
     # `twinpass save` with no PREFECT_API_URL writes through a temporary server into the
     # database under PREFECT_HOME; a later temporary server over that database finds it.

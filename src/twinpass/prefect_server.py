@@ -8,10 +8,10 @@ the server's start-up overlaps the command's own imports and preparation, and po
 process's Prefect client at it for the flow call (:func:`prefect_api`). The calling process
 never imports ``prefect.server``.
 
-The server is Prefect's own application (``prefect.server.api.server.create_app`` with
-``ephemeral=True``: no UI, only the services a temporary server needs) under uvicorn, on
-127.0.0.1 and a free port, with the same Prefect home and so the same database as any other
-Prefect process of the user. It lives in its own process group, so that Ctrl-C reaches the
+The server is Prefect's own application (``prefect.server.api.server.create_app``, made
+ephemeral as Prefect makes its own temporary server: no UI, only the services a temporary
+server needs) under uvicorn, on 127.0.0.1 and a free port, with the same Prefect home and
+so the same database as any other Prefect process of the user. It lives in its own process group, so that Ctrl-C reaches the
 command alone and the run's final state can still be recorded; the command stops it on exit,
 and the server stops itself when the command's process is gone.
 
@@ -45,6 +45,10 @@ HOST = "127.0.0.1"
 PARENT_PID_ENV = "TWINPASS_PREFECT_SERVER_PARENT"
 """Environment variable naming the process the server belongs to (the server exits when it is gone)."""
 STARTUP_TIMEOUT_ENV = "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS"
+EPHEMERAL_ENV = "PREFECT__SERVER_EPHEMERAL"
+FINAL_ENV = "PREFECT__SERVER_FINAL"
+"""Prefect's switches for its server application: temporary (no UI, only the services a
+temporary server needs) and the only application of its process."""
 DEFAULT_STARTUP_TIMEOUT_S = 90.0
 STOP_WAIT_S = 5.0
 """Seconds :meth:`LocalPrefectServer.stop` waits after asking the server to stop, before killing it."""
@@ -62,7 +66,7 @@ def app() -> Any:
     """The uvicorn application factory run in the server process.
 
     Returns Prefect's server application as for Prefect's own temporary server: no UI, and
-    only the background services a temporary server needs (``ephemeral=True``).
+    only the background services a temporary server needs (``PREFECT__SERVER_EPHEMERAL``).
     """
     parent = os.environ.get(PARENT_PID_ENV, "")
     if os.name == "posix" and parent.isdigit():
@@ -70,12 +74,17 @@ def app() -> Any:
                          daemon=True).start()
     from .startup import start_up_imports
 
+    # Ephemeral and final through the environment, with no arguments to create_app, as
+    # Prefect's own temporary server does: create_app caches the application by its
+    # arguments, and the server's own clients (its event actions, for one) call it with none,
+    # so they find this application instead of building a second one at the first requests.
+    os.environ[EPHEMERAL_ENV] = os.environ[FINAL_ENV] = "1"
     # The server's start-up is almost all imports and route building. This process is the
     # server's own, so what they build is also frozen.
     with start_up_imports(freeze=True):
         from prefect.server.api.server import create_app
 
-        return create_app(ephemeral=True, final=True)
+        return create_app()
 
 
 def _exit_with_parent(parent_pid: int, interval_s: float = 1.0) -> None:
