@@ -132,7 +132,8 @@ def test_flow_runs_against_the_early_server_and_is_recorded_there(shared_home: P
     assert out["task_runs"] == [["double", "COMPLETED"]]
     assert any("probe says hello" in m for m in out["logs"]), out["logs"]
     # No heartbeats to a server that ends with the run; the caller's setting comes back after
-    # (Prefect's documented default of 180 s, in its settings reference).
+    # (180 s: the default of Prefect's flows.heartbeat_frequency setting, in
+    # prefect.settings.models.flows).
     assert (out["heartbeat_in_flow"], out["heartbeat_after"]) == (None, 180)
     assert out["server_exit_code"] is not None  # the server process is gone after the context
     assert out["server_modules_here"] == []  # the client process never imported the server code

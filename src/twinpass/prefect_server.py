@@ -11,9 +11,10 @@ never imports ``prefect.server``.
 The server is Prefect's own application (``prefect.server.api.server.create_app``, made
 ephemeral as Prefect makes its own temporary server: no UI, only the services a temporary
 server needs) under uvicorn, on 127.0.0.1 and a free port, with the same Prefect home and
-so the same database as any other Prefect process of the user. It lives in its own process group, so that Ctrl-C reaches the
-command alone and the run's final state can still be recorded; the command stops it on exit,
-and the server stops itself when the command's process is gone.
+so the same database as any other Prefect process of the user. It lives in its own process
+group, so that Ctrl-C reaches the command alone and the run's final state can still be
+recorded; the command stops it on exit, and the server stops itself when the command's
+process is gone.
 
 Importing this module is cheap (standard library only); prefect is imported only by
 :func:`prefect_api` and, in the server process, by :func:`app`.
