@@ -89,14 +89,14 @@ def test_a_block_whose_chunk_never_lands_is_an_error_and_the_others_are_recorded
     # refuse to record that block as passed; every other block keeps its own status.
     from twinpass.io import store as store_module
 
-    real_put = store_module._put_file
+    real_put = store_module._overwrite_file  # block tasks write their data chunks with it
     lost = f"{ARRAYS[1]}/c/3/0"
 
     def lossy_put(path, payload):
         if not str(path).endswith(lost):
             real_put(path, payload)
 
-    monkeypatch.setattr(store_module, "_put_file", lossy_put)
+    monkeypatch.setattr(store_module, "_overwrite_file", lossy_put)
     res, blocks = _results(_archive(tmp_path, engine={"retries": 0}))
     assert res.failed == ["deck/deck_20260301T000040.npy"]
     assert blocks[(ARRAYS[1], 3)].status == ERROR and "data chunk 3 is missing" in blocks[(ARRAYS[1], 3)].error

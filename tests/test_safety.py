@@ -326,6 +326,7 @@ def test_disk_full_during_block_writes_then_rerun_completes(tmp_path, monkeypatc
 
     monkeypatch.setattr(LocalStore, "set", full_disk)
     monkeypatch.setattr(store_module, "_put_file", full_disk_file)
+    monkeypatch.setattr(store_module, "_overwrite_file", full_disk_file)
     res = run(cfg)
     monkeypatch.undo()
     assert _complete(res) == {r: "failed" for r in rels}

@@ -9,6 +9,7 @@ from __future__ import annotations
 import datetime as dt
 import errno
 import json
+import os
 import logging
 import socket
 import subprocess
@@ -182,7 +183,7 @@ def test_chunk_aligned_writes_from_threads_land_exactly(store: OutputStore, tmp_
 @pytest.mark.parametrize("dtype", ["float32", "float64"])
 def test_block_chunks_are_the_bytes_zarr_writes(tmp_path: Path, compression: str, dtype: str):
     # Reference: zarr-python writing the same values through its own codec pipeline. Block
-    # writes to a local store encode and rename chunk files themselves; the files must be
+    # writes to a local store encode and write chunk files themselves; the files must be
     # byte for byte Zarr's, including the edge chunk completed with the fill value.
     frames, chunk = 1010, 300
     spans = [(0, 600), (600, 900), (900, 1010)]
@@ -202,6 +203,44 @@ def test_block_chunks_are_the_bytes_zarr_writes(tmp_path: Path, compression: str
         assert (tmp_path / "ours.zarr" / key).read_bytes() == (tmp_path / "theirs.zarr" / key).read_bytes()
     np.testing.assert_array_equal(ours.read(NAME), values.astype(dtype))
     assert not list((tmp_path / "ours.zarr" / NAME).rglob("*.partial"))  # no temporary file left
+
+
+def test_rewritten_blocks_overwrite_their_chunk_files_and_never_write_through_links(tmp_path: Path):
+    # Reference: zarr-python reading the array back through its own codec pipeline. A rerun
+    # writes a block's chunk files over the previous run's in place (no new file), whether the
+    # new compressed chunk is longer or shorter; a chunk file that is a symbolic link, or that
+    # a hard-linked snapshot of the store shares, is replaced instead, leaving the other file
+    # as it was.
+    frames, chunk = 900, 300
+    spans = [(0, 300), (300, 600), (600, 900)]
+    store = OutputStore.open(str(tmp_path / "out.zarr"))
+    _prepare(store, frames=frames, chunk=chunk, spans=spans)
+    keys = [tmp_path / "out.zarr" / NAME / "c" / str(i) / "0" for i in range(3)]
+    noise = np.random.default_rng(5).standard_normal((frames, 3))
+    for a, b in spans:  # first run: noise compresses little
+        write_block_data(store.location, NAME, a, noise[a:b])
+    inodes = [k.stat().st_ino for k in keys]
+    snapshot = tmp_path / "snapshot-chunk"
+    os.link(keys[1], snapshot)  # a hard-linked snapshot shares chunk 1
+    before = snapshot.read_bytes()
+    outside = tmp_path / "outside-chunk"
+    outside.write_bytes(b"not twinpass's")
+    keys[2].unlink()
+    keys[2].symlink_to(outside)  # chunk 2 is a link out of the store
+    smooth = np.full((frames, 3), 0.25)  # compresses well
+    for a, b in spans:
+        write_block_data(store.location, NAME, a, smooth[a:b])
+    ref = zarr.open_array(LocalStore(tmp_path / "out.zarr"), path=NAME, mode="r")
+    np.testing.assert_array_equal(ref[:], smooth.astype(np.float32))
+    assert keys[0].stat().st_ino == inodes[0]  # overwritten in place, shorter than before
+    assert keys[0].stat().st_size < len(before)
+    assert snapshot.read_bytes() == before and keys[1].stat().st_ino != inodes[1]
+    assert outside.read_bytes() == b"not twinpass's" and not keys[2].is_symlink()
+    for a, b in spans:  # and back to the longer chunks, still in place
+        write_block_data(store.location, NAME, a, noise[a:b])
+    np.testing.assert_array_equal(ref[:], noise.astype(np.float32))
+    assert keys[0].stat().st_ino == inodes[0]
+    assert not list((tmp_path / "out.zarr" / NAME).rglob("*.partial"))
 
 
 def test_block_writes_to_fsspec_stores_go_through_zarr():
@@ -505,6 +544,7 @@ def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore
     with monkeypatch.context() as m:
         m.setattr(LocalStore, "set", full_disk)
         m.setattr(store_module, "_put_file", full_disk_file)
+        m.setattr(store_module, "_overwrite_file", full_disk_file)
         with pytest.raises(StoreError, match="no space left on device while writing .*block") as err:
             write_block_data(store.location, NAME, 40, np.ones((40, 3)))
         assert "finished blocks are kept" in str(err.value)

@@ -285,7 +285,7 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> 
         if encode is None:
             arr[start:stop, :] = data.astype(arr.dtype, copy=False)
         else:
-            _write_local_chunks(root / name, arr, encode, start, data)
+            _write_local_chunks(root / name, arr, encode, start, data, in_place=True)
 
 
 _OPENED: dict[str, tuple[bytes, zarr.Array]] = {}
@@ -353,15 +353,18 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
 
 
 def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndarray], Any], start: int,
-                        data: np.ndarray) -> None:
+                        data: np.ndarray, *, in_place: bool = False) -> None:
     """Encode and write the whole chunks ``data`` covers, from row ``start`` (a chunk boundary).
 
     ``arr`` is chunked along its first axis only (a chunk spans every other axis whole: the
     output arrays, one row per chunk of a block table's figures and seams, its status
-    column); ``data`` holds rows of ``arr``. Each chunk file is written to a temporary name
-    and renamed into place, as Zarr's local store does, so a reader never sees half a chunk.
-    A chunk that runs past the array's end is completed with the fill value, as Zarr stores
-    edge chunks.
+    column); ``data`` holds rows of ``arr``. A chunk that runs past the array's end is
+    completed with the fill value, as Zarr stores edge chunks.
+
+    By default each chunk file is written to a temporary name and renamed into place, as
+    Zarr's local store does, so a reader never sees half a chunk: block tables are written so.
+    ``in_place`` overwrites an existing chunk file instead (:func:`_overwrite_file`), for the
+    output arrays' blocks, whose chunks only count once their block is recorded done.
     """
     chunk = arr.chunks[0]
     rest = (0,) * (arr.ndim - 1)
@@ -371,7 +374,8 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
             full = np.full((chunk, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
             full[: part.shape[0]] = part
             part = full
-        _put_file(folder / arr.metadata.encode_chunk_key((c0 // chunk, *rest)), encode(part))
+        (_overwrite_file if in_place else _put_file)(folder / arr.metadata.encode_chunk_key((c0 // chunk, *rest)),
+                                                     encode(part))
 
 
 def _put_file(path: Path, payload: Any) -> None:
@@ -387,6 +391,36 @@ def _put_file(path: Path, payload: Any) -> None:
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
+
+
+def _overwrite_file(path: Path, payload: Any) -> None:
+    """Write ``payload`` (bytes-like) over the file at ``path`` in place (created if missing).
+
+    For the chunks of a block being computed: its status in the block table is pending and
+    its file is marked incomplete while it is written, and it is recorded done only after
+    this returns, so a half-written chunk (the writing process killed) is never taken for a
+    result; the next run writes it again. Replacing the file instead (a temporary file renamed
+    over it) frees the old file's disk blocks and, on ext4, makes the next journal commit write
+    the new data out first: on a virtual disk mounted with ``discard`` a forced rerun then
+    spent about 4 ms per 2.4 MB chunk and stalled every few seconds (300 such chunks: 1.2-1.4 s
+    replaced, 0.15 s overwritten). Like every twinpass write, this one is not synced to disk.
+
+    A file that is a symbolic link or has other hard links (a snapshot of the store made with
+    hard links shares it) is replaced as :func:`_put_file` does, never written through.
+    """
+    path.parent.mkdir(parents=True, exist_ok=True)
+    flags = os.O_WRONLY | os.O_CREAT | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_CLOEXEC", 0)
+    try:
+        fd = os.open(path, flags, 0o666)
+    except OSError:  # a symbolic link (ELOOP), or not a file
+        _put_file(path, payload)
+        return
+    with os.fdopen(fd, "wb") as f:
+        if os.fstat(fd).st_nlink == 1:
+            f.write(payload)
+            f.truncate()  # a shorter chunk than the file held
+            return
+    _put_file(path, payload)
 
 
 class OutputStore:
