@@ -29,7 +29,6 @@ before a kill is simply computed again.
 from __future__ import annotations
 
 import asyncio
-import concurrent.futures
 import contextlib
 import logging
 import threading
@@ -233,30 +232,6 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
     return x, y, seams, we - ws
 
 
-_WRITER: concurrent.futures.ThreadPoolExecutor | None = None
-_WRITER_LOCK = threading.Lock()
-
-
-def _block_writer() -> concurrent.futures.ThreadPoolExecutor:
-    """This process's threads that write block outputs while the block tasks check them.
-
-    Writing a block (the float32 cast, compression, the file write and the sync to disk) waits
-    on the disk for part of its time; beside the checks, that wait no longer holds up the
-    block task's core.
-    """
-    global _WRITER
-    with _WRITER_LOCK:
-        if _WRITER is None:
-            _WRITER = concurrent.futures.ThreadPoolExecutor(max_workers=4, thread_name_prefix="twinpass-write")
-        return _WRITER
-
-
-def _write_block(job: BlockJob, y: np.ndarray) -> None:
-    from .io.store import write_block_data
-
-    write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset, y.astype(job.out_dtype))
-
-
 def run_block(job: BlockJob) -> BlockResult:
     """Filter, check and write one block, retrying with backoff. Never raises for block errors.
 
@@ -268,13 +243,9 @@ def run_block(job: BlockJob) -> BlockResult:
     delays = retry_delays(job.retries, job.retry_backoff_seconds)
     last = ""
     for attempt in range(job.retries + 1):
-        writing = None
         try:
             tamper = faults.apply(job.array_name, job.block_index)
             x, y, seams, wlen = _filter_block(job, tamper)
-            if job.write:
-                # Encoded, written and synced to disk beside the checks; recorded only after both.
-                writing = _block_writer().submit(_write_block, job, y)
             keep = ~hole_mask(job.core[0], job.core[1], job.holes) if job.holes else None
             if keep is None or keep.all():
                 figs = _checks.block_figures(
@@ -284,13 +255,14 @@ def run_block(job: BlockJob) -> BlockResult:
                 figs = _checks.block_figures(x[keep], y[keep], job.design, job.checks_cfg,
                                              out_dtype=job.out_dtype, response=False)
             status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
-            if writing is not None:
-                writing.result()
+            if job.write:
+                from .io.store import write_block_data
+
+                write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
+                                 y.astype(job.out_dtype))
             return BlockResult(job.array_name, job.block_index, status, figs, seams, None,
                                attempt + 1, time.perf_counter() - t0, wlen)
         except Exception as exc:  # a block failure must never stop the others
-            if writing is not None:  # never two writes of one block at once (a retry follows)
-                concurrent.futures.wait([writing])
             last = f"{type(exc).__name__}: {exc}"
             if not isinstance(exc, TwinpassError):
                 last += "\n" + traceback.format_exc(limit=4)
