@@ -92,9 +92,9 @@ def test_a_block_whose_chunk_never_lands_is_an_error_and_the_others_are_recorded
     real_put = store_module._overwrite_file  # block tasks write their data chunks with it
     lost = f"{ARRAYS[1]}/c/3/0"
 
-    def lossy_put(path, payload):
+    def lossy_put(path, payload, **kwargs):
         if not str(path).endswith(lost):
-            real_put(path, payload)
+            real_put(path, payload, **kwargs)
 
     monkeypatch.setattr(store_module, "_overwrite_file", lossy_put)
     res, blocks = _results(_archive(tmp_path, engine={"retries": 0}))
@@ -105,32 +105,55 @@ def test_a_block_whose_chunk_never_lands_is_an_error_and_the_others_are_recorded
     assert all(r.status in (PASS, WARN) for key, r in blocks.items() if key != (ARRAYS[1], 3))
 
 
-def test_a_block_whose_chunk_cannot_be_synced_is_an_error_and_the_rerun_completes(tmp_path, monkeypatch):
-    # Injected fault: the disk reports an I/O error (POSIX errno EIO) when one block's chunk
-    # is synced. The block must not be recorded done (its data may not be on the disk); the
-    # other blocks keep their own statuses, and a rerun without the fault completes the file.
+def _failing_sync(chunk: str):
+    """An ``os.fdatasync`` that reports an I/O error (POSIX errno EIO) for one chunk file."""
     import errno
     import os
 
     if not hasattr(os, "fdatasync") or not os.path.isdir("/proc/self/fd"):
         pytest.skip("needs fdatasync and /proc/self/fd (Linux)")
     real_sync = os.fdatasync
-    lost = f"{ARRAYS[1]}/c/3/0"
 
     def failing_sync(fd):
-        if os.readlink(f"/proc/self/fd/{fd}").endswith(lost):
+        if os.readlink(f"/proc/self/fd/{fd}").endswith(chunk):
             raise OSError(errno.EIO, os.strerror(errno.EIO))
         return real_sync(fd)
 
+    return failing_sync
+
+
+def test_a_block_whose_chunk_cannot_be_synced_is_an_error_and_the_rerun_completes(tmp_path, monkeypatch):
+    # Injected fault: the disk reports an I/O error when one block's chunk is synced. The
+    # block must not be recorded done (its data may not be on the disk); the other blocks
+    # keep their own statuses, and a rerun without the fault completes the file.
+    import os
+
     cfg = _archive(tmp_path, engine={"retries": 0})
     with monkeypatch.context() as m:
-        m.setattr(os, "fdatasync", failing_sync)
+        m.setattr(os, "fdatasync", _failing_sync(f"{ARRAYS[1]}/c/3/0"))
         res, blocks = _results(cfg)
     assert res.failed == ["deck/deck_20260301T000040.npy"]
     assert blocks[(ARRAYS[1], 3)].status == ERROR and "input/output error" in blocks[(ARRAYS[1], 3)].error.lower()
     st = block_status(tmp_path / "run" / "out.zarr", ARRAYS[1])
     assert st[3] == ERROR and np.all(np.isin(np.delete(st, 3), (PASS, WARN)))
     assert run_job(cfg).ok  # the fault gone, the rerun writes the block again
+
+
+def test_without_sync_no_block_waits_on_the_disk(tmp_path, monkeypatch):
+    # [output] sync = false: the same injected sync error goes unnoticed (nothing is synced),
+    # every block completes, and the output is the synced run's, byte for byte.
+    import os
+
+    synced = _archive(tmp_path, "synced")
+    assert run_job(synced).ok
+    cfg = _archive(tmp_path, output={"sync": False}, engine={"retries": 0})
+    with monkeypatch.context() as m:
+        m.setattr(os, "fdatasync", _failing_sync(f"{ARRAYS[1]}/c/3/0"))
+        res, _ = _results(cfg)
+    assert res.ok
+    for a in ARRAYS:
+        np.testing.assert_array_equal(open_store(tmp_path / "run" / "out.zarr")[a][:],
+                                      open_store(tmp_path / "synced" / "out.zarr")[a][:])
 
 
 def test_a_worker_killed_mid_block_is_replaced_and_the_output_is_unchanged(tmp_path, inject, process_cluster):

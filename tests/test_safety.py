@@ -321,7 +321,7 @@ def test_disk_full_during_block_writes_then_rerun_completes(tmp_path, monkeypatc
             raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), key)
         return await real_set(self, key, value)
 
-    def full_disk_file(path, payload):  # the chunk files block tasks write themselves
+    def full_disk_file(path, payload, **_):  # the chunk files block tasks write themselves
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
 
     monkeypatch.setattr(LocalStore, "set", full_disk)

@@ -538,7 +538,7 @@ def test_no_space_left_gives_store_error_and_nothing_complete(store: OutputStore
     async def full_disk(self, key, value):  # injected fault: POSIX errno ENOSPC, "No space left on device"
         raise OSError(errno.ENOSPC, "No space left on device")
 
-    def full_disk_file(path, payload):  # the same fault where block tasks write chunk files themselves
+    def full_disk_file(path, payload, **_):  # the same fault where block tasks write chunk files themselves
         raise OSError(errno.ENOSPC, "No space left on device")
 
     with monkeypatch.context() as m:

@@ -96,6 +96,10 @@ class OutputConfig:
     """none | lz4 | zstd (Blosc, with bit shuffle)."""
     chunk_seconds: float | None = None
     """Output chunk length in seconds; None = one chunk per block."""
+    sync: bool = True
+    """Sync each block's output to disk before recording the block done (local stores), so
+    that what the store records as done survives a power cut. false is faster on slow disks
+    (a first run here about 9 %) for copies that can simply be made again."""
 
 
 @dataclass(frozen=True)

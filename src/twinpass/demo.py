@@ -452,6 +452,10 @@ store = "{store}"
 dtype = "float32"
 # lz4 is quick to write and read; vibration data compresses only a little anyway.
 compression = "lz4"
+# Each block's output is on the disk before the block counts as done, so a power cut
+# cannot leave a block recorded done without its data. false is faster, for copies that
+# can simply be made again.
+sync = true
 
 [engine]
 # Threads suit this job: the filtering runs in numpy and scipy, which release Python's

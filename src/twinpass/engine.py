@@ -167,6 +167,8 @@ class BlockJob:
     write: bool = True
     holes: tuple[tuple[int, int], ...] = ()
     """Segment spans left out of filtering (NaN/Inf runs under nonfinite = "split")."""
+    sync: bool = True
+    """Sync the output to disk before the block counts as done (``[output] sync``)."""
 
 
 @dataclass
@@ -259,7 +261,7 @@ def run_block(job: BlockJob) -> BlockResult:
                 from .io.store import write_block_data
 
                 write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
-                                 y.astype(job.out_dtype))
+                                 y.astype(job.out_dtype), sync=job.sync)
             return BlockResult(job.array_name, job.block_index, status, figs, seams, None,
                                attempt + 1, time.perf_counter() - t0, wlen)
         except Exception as exc:  # a block failure must never stop the others
@@ -604,7 +606,7 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
                 design=design, halo=layout.halo, edge=cfg.processing.edge, edge_samples=edge_samples,
                 out_dtype=cfg.output.dtype, seam_samples=k, check_response=bool(every) and i % every == 0,
                 checks_cfg=cfg.checks, retries=cfg.engine.retries,
-                retry_backoff_seconds=cfg.engine.retry_backoff_seconds, holes=seg.holes,
+                retry_backoff_seconds=cfg.engine.retry_backoff_seconds, holes=seg.holes, sync=cfg.output.sync,
             ))
     return jobs
 

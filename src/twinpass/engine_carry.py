@@ -282,6 +282,8 @@ class PieceJob:
     check_response: bool = False
     out_dtype: str = "float32"
     seam_samples: int = 0
+    sync: bool = True
+    """Sync the output to disk before the block counts as done (``[output] sync``)."""
 
 
 def _to_cm(state: np.ndarray) -> np.ndarray:
@@ -432,7 +434,7 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
         from .io.store import write_block_data
 
         write_block_data(job.store_location, p.array_name, p.start - job.edge_samples - p.file_offset,
-                         y.astype(job.out_dtype))
+                         y.astype(job.out_dtype), sync=job.sync)
         return BlockResult(p.array_name, p.block_index, status, figs, seams, None, 1, 0.0, window.shape[0])
 
     res, err, attempts = _with_retries(job, work)
@@ -774,7 +776,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
         seam = v["bwd_seam"][p.index - 1] if before else None
         calls5.append((job(p, before, scratch=record.scratch_path(p.index) if forward_output == "scratch" else None,
                            design=design, checks_cfg=cfg.checks, check_response=bool(every) and p.block_index % every == 0,
-                           out_dtype=cfg.output.dtype, seam_samples=k),
+                           out_dtype=cfg.output.dtype, seam_samples=k, sync=cfg.output.sync),
                        np.array(v["fwd_state"][p.index]), np.array(v["bwd_state"][p.index]),
                        None if seam is None else np.array(seam)))
     for args, res in _run_tasks(client, step_output, calls5, retries, "output"):

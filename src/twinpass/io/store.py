@@ -238,7 +238,7 @@ def _members(group: zarr.Group) -> list[tuple[str, Any]]:
         return list(group.members())
 
 
-def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> None:
+def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, sync: bool = True) -> None:
     """Write one block's output into its array (safe from worker threads and processes).
 
     Parameters
@@ -252,6 +252,9 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> 
     data : numpy.ndarray
         Shape (samples, channels), time-major; cast to the array's dtype. The region must
         cover whole chunks or end at the array's end, so no two blocks share a chunk.
+    sync : bool
+        In a local store, return only once the chunks are on the disk (see
+        :func:`_overwrite_file`).
 
     Raises
     ------
@@ -285,7 +288,7 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray) -> 
         if encode is None:
             arr[start:stop, :] = data.astype(arr.dtype, copy=False)
         else:
-            _write_local_chunks(root / name, arr, encode, start, data, in_place=True)
+            _write_local_chunks(root / name, arr, encode, start, data, in_place=True, sync=sync)
 
 
 _OPENED: dict[str, tuple[bytes, zarr.Array]] = {}
@@ -353,7 +356,7 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
 
 
 def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndarray], Any], start: int,
-                        data: np.ndarray, *, in_place: bool = False) -> None:
+                        data: np.ndarray, *, in_place: bool = False, sync: bool = True) -> None:
     """Encode and write the whole chunks ``data`` covers, from row ``start`` (a chunk boundary).
 
     ``arr`` is chunked along its first axis only (a chunk spans every other axis whole: the
@@ -363,8 +366,9 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
 
     By default each chunk file is written to a temporary name and renamed into place, as
     Zarr's local store does, so a reader never sees half a chunk: block tables are written so.
-    ``in_place`` overwrites an existing chunk file instead (:func:`_overwrite_file`), for the
-    output arrays' blocks, whose chunks only count once their block is recorded done.
+    ``in_place`` overwrites an existing chunk file instead (:func:`_overwrite_file`, synced
+    unless ``sync`` is False), for the output arrays' blocks, whose chunks only count once
+    their block is recorded done.
     """
     chunk = arr.chunks[0]
     rest = (0,) * (arr.ndim - 1)
@@ -374,8 +378,11 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
             full = np.full((chunk, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
             full[: part.shape[0]] = part
             part = full
-        (_overwrite_file if in_place else _put_file)(folder / arr.metadata.encode_chunk_key((c0 // chunk, *rest)),
-                                                     encode(part))
+        path, payload = folder / arr.metadata.encode_chunk_key((c0 // chunk, *rest)), encode(part)
+        if in_place:
+            _overwrite_file(path, payload, sync=sync)
+        else:
+            _put_file(path, payload)
 
 
 def _put_file(path: Path, payload: Any) -> None:
@@ -393,15 +400,15 @@ def _put_file(path: Path, payload: Any) -> None:
         raise
 
 
-def _overwrite_file(path: Path, payload: Any) -> None:
+def _overwrite_file(path: Path, payload: Any, *, sync: bool = True) -> None:
     """Write ``payload`` (bytes-like) over the file at ``path`` in place (created if missing).
 
     For the chunks of a block being computed: its status in the block table is pending and
     its file is marked incomplete while it is written, and it is recorded done only after
     this returns, so a half-written chunk (the writing process killed) is never taken for a
-    result; the next run writes it again. Written in place, the data is on the disk
-    (``fdatasync``) before this returns, so a block recorded done keeps its data through a
-    power cut or a crash of the operating system, on any file system.
+    result; the next run writes it again. Written in place with ``sync``, the data is on the
+    disk (``fdatasync``) before this returns, so a block recorded done keeps its data through
+    a power cut or a crash of the operating system, on any file system.
 
     Replacing the file instead (a temporary file renamed over it, as Zarr's local store does)
     frees the old file's disk blocks and, on ext4, makes the next journal commit write the
@@ -423,8 +430,9 @@ def _overwrite_file(path: Path, payload: Any) -> None:
         if os.fstat(fd).st_nlink == 1:
             f.write(payload)
             f.truncate()  # a shorter chunk than the file held
-            f.flush()
-            (os.fdatasync if hasattr(os, "fdatasync") else os.fsync)(fd)  # durable before the block is recorded
+            if sync:  # durable before the block is recorded
+                f.flush()
+                (os.fdatasync if hasattr(os, "fdatasync") else os.fsync)(fd)
             return
     _put_file(path, payload)
 
