@@ -9,8 +9,8 @@ from __future__ import annotations
 import datetime as dt
 import errno
 import json
-import os
 import logging
+import os
 import socket
 import subprocess
 import sys
