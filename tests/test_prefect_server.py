@@ -44,10 +44,13 @@ PROBE = textwrap.dedent('''
     def probe(x):
         get_run_logger().info("probe says hello")
         seen["heartbeat_in_flow"] = get_current_settings().flows.heartbeat_frequency
+        seen["csrf_in_flow"] = get_current_settings().client.csrf_support_enabled
         return double(x)
 
+    order = []
     out = {"early_url": server.api_url}
-    with prefect_api() as url:
+    with prefect_api(while_starting=lambda: order.append("while_starting")) as url:
+        order.append("body")
         state = probe(21, return_state=True)
         out.update(url=url, result=state.result())
         run_id = state.state_details.flow_run_id
@@ -66,7 +69,8 @@ PROBE = textwrap.dedent('''
             out["task_runs"] = sorted((t.task_key.split("-")[0], t.state.type.value if t.state else None)
                                       for t in trs)
             out["logs"] = [l.message for l in logs]
-    out.update(seen, heartbeat_after=get_current_settings().flows.heartbeat_frequency)
+    out.update(seen, heartbeat_after=get_current_settings().flows.heartbeat_frequency, order=order,
+               csrf_after=get_current_settings().client.csrf_support_enabled)
     out["server_exit_code"] = process.poll()
     out["server_modules_here"] = sorted(m for m in sys.modules if m.startswith("prefect.server"))
     print("PROBE " + json.dumps(out))
@@ -135,6 +139,11 @@ def test_flow_runs_against_the_early_server_and_is_recorded_there(shared_home: P
     # (180 s: the default of Prefect's flows.heartbeat_frequency setting, in
     # prefect.settings.models.flows).
     assert (out["heartbeat_in_flow"], out["heartbeat_after"]) == (None, 180)
+    # The server hands out no CSRF tokens (server.api.csrf_protection_enabled defaults to
+    # False, prefect.settings.models.server.api), so the client asks for none; the client's
+    # default (True, prefect.settings.models.client) comes back after.
+    assert (out["csrf_in_flow"], out["csrf_after"]) == (False, True)
+    assert out["order"] == ["while_starting", "body"]  # the work while the server starts ran once, first
     assert out["server_exit_code"] is not None  # the server process is gone after the context
     assert out["server_modules_here"] == []  # the client process never imported the server code
     assert "Traceback" not in proc.stderr, proc.stderr
@@ -182,6 +191,14 @@ def test_no_server_when_an_api_url_is_configured(monkeypatch: pytest.MonkeyPatch
     monkeypatch.setenv("PREFECT_API_URL", "http://127.0.0.1:9/api")
     assert early_start() is None
     assert prefect_server._early is None
+    from prefect.settings import PREFECT_API_URL, temporary_settings
+
+    calls = []
+    # Prefect reads its settings once per context: set the API there too (prefect may be imported already).
+    with temporary_settings(updates={PREFECT_API_URL: "http://127.0.0.1:9/api"}):
+        with prefect_server.prefect_api(while_starting=lambda: calls.append(1)) as url:
+            assert url == "http://127.0.0.1:9/api"
+    assert calls == []  # no temporary server, nothing to do while one starts
 
 
 EARLY = textwrap.dedent('''

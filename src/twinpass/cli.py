@@ -154,7 +154,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .errors import BlockFailedError
     from .prefect_server import prefect_api
 
-    with prefect_api():  # the configured Prefect API, else a temporary local server
+    # The configured Prefect API, else a temporary local server; while that starts, load
+    # what the flow call would load after it.
+    with prefect_api(while_starting=flows.preload):
         flows.TERMINAL_PROGRESS = progress
         try:
             state = flows.archive_run(config_path=None if config_path is None else str(Path(config_path).resolve()),

@@ -36,7 +36,7 @@ import time
 import urllib.error
 import urllib.request
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Callable, Iterator
 
 from .errors import PrefectServerError
 
@@ -368,13 +368,20 @@ def early_start() -> LocalPrefectServer | None:
 
 
 @contextlib.contextmanager
-def prefect_api() -> Iterator[str | None]:
+def prefect_api(while_starting: Callable[[], object] | None = None) -> Iterator[str | None]:
     """Run the body against a Prefect API: the configured one, else a temporary local server.
 
     Yields the API URL, or None when Prefect will use neither (no API configured and its
     temporary server turned off: Prefect reports that itself). With no API configured, the
     body runs with ``PREFECT_API_URL`` pointing at the server from :func:`early_start` (or one
     started now); on exit, queued events and logs are sent and the server is stopped.
+
+    Parameters
+    ----------
+    while_starting : callable, optional
+        Work to do while the temporary server starts, before waiting for it to answer
+        (called only when a temporary server is used): work the body would otherwise do
+        after the server is up, such as loading what the first flow call loads.
 
     Raises
     ------
@@ -392,7 +399,7 @@ def prefect_api() -> Iterator[str | None]:
         yield url
         return
     from prefect.settings import PREFECT_API_URL, PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS, PREFECT_UI_URL
-    from prefect.settings import temporary_settings
+    from prefect.settings import get_current_settings, temporary_settings
 
     updates: dict[Any, Any] = {}
     if not PREFECT_UI_URL.value():
@@ -401,8 +408,15 @@ def prefect_api() -> Iterator[str | None]:
     # this server dies with the process. Prefect's heartbeat thread sleeps in 1 s steps, and
     # the end of every flow run waits for it (0.5 s on average).
     updates["flows.heartbeat_frequency"] = None
+    if not get_current_settings().server.api.csrf_protection_enabled:
+        # This server inherits the setting: it hands out no CSRF tokens, so asking for one
+        # (once per Prefect client) is a request for nothing.
+        updates["client.csrf_support_enabled"] = False
     server = server or LocalPrefectServer()
     try:
+        server.start()
+        if while_starting is not None:
+            while_starting()
         api = server.wait_ready(float(PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS.value()))
         updates[PREFECT_API_URL] = api
         with temporary_settings(updates=updates):
