@@ -155,8 +155,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .prefect_server import prefect_api
 
     # The configured Prefect API, else a temporary local server; while that starts, load
-    # what the flow call would load after it.
-    with prefect_api(while_starting=flows.preload):
+    # what the flow call would load after it (a saved block's scheduler is not known yet).
+    run_scheduler = scheduler or (cfg.engine.scheduler if cfg is not None else None)
+    with prefect_api(while_starting=lambda: flows.preload(run_scheduler)):
         flows.TERMINAL_PROGRESS = progress
         try:
             state = flows.archive_run(config_path=None if config_path is None else str(Path(config_path).resolve()),

@@ -44,7 +44,7 @@ from prefect.utilities.annotations import quote
 from .config import JobConfig, load_config
 from .core.design import format_report
 from .core.plan import fingerprint_changed
-from .engine import ERROR, FileOutcome, SegmentWork, dask_client, retry_delays, run_segment
+from .engine import ERROR, FileOutcome, SegmentWork, dask_client, retry_delays, run_segment, warm_compiled_loops
 from .errors import BlockFailedError, ChecksFailedError, ConfigError
 from .io.store import OutputStore
 from .job import Prepared, RunResult, begin_run, finish_run, now_iso, prepare
@@ -321,23 +321,30 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
     return summary
 
 
-def preload() -> None:
+def preload(scheduler: str | None) -> None:
     """Load now what the first flow call and its first block would load.
 
     A flow call makes Prefect import its flow and task engines and serialise the flow's
-    parameters (which imports FastAPI's encoders); the first block loads the engine's
-    compiled loops (and checks them against scipy's). Together about 0.7 s. The command
-    line calls this while the temporary Prefect server starts, when it would otherwise
-    wait, so that the run starts that much sooner once the server answers.
+    parameters (which imports FastAPI's encoders); with the ``threads`` scheduler the first
+    block loads the engine's compiled loops in this process (and checks them against
+    scipy's). Together about 0.7 s. The command line calls this while the temporary Prefect
+    server starts, when it would otherwise wait, so that the run starts that much sooner
+    once the server answers.
+
+    Parameters
+    ----------
+    scheduler : str or None
+        The run's Dask scheduler (``threads``, ``processes`` or an address), None if not
+        known yet. The compiled loops are loaded only for ``threads``, as
+        :func:`~twinpass.engine.dask_client` does: worker processes load their own.
     """
     import prefect.flow_engine  # noqa: F401
     import prefect.task_engine  # noqa: F401
     import prefect.utilities.visualization  # noqa: F401
 
-    from .core.loops import jit_enabled
-
     archive_run.serialize_parameters({"config_path": None, "force": False})
-    jit_enabled()
+    if scheduler == "threads":
+        warm_compiled_loops()
 
 
 def _outcomes_from_store(store: OutputStore, seg: SegmentWork) -> list[FileOutcome]:
