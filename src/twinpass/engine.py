@@ -39,7 +39,7 @@ from typing import Any, Callable, Iterator
 
 import numpy as np
 
-from . import faults
+from . import allocator, faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.blocks import Layout, blocks_touching, choose_layout
@@ -292,6 +292,12 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     ------
     ConfigError
         An unknown scheduler name, ``workers < 1``, or an address nobody answers at.
+
+    Notes
+    -----
+    With ``threads`` the block tasks run in this process, which from then on keeps freed
+    block-sized arrays in its heap for reuse; when the client closes, the heap's free
+    memory is returned to the system (:mod:`twinpass.allocator`).
     """
     import dask
     from distributed import Client
@@ -318,6 +324,8 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
         # (threads of this process) wait for it on first use. Not for worker processes: they
         # load their own, and numba and LLVM would add about 100 MiB to this process's peak.
         threading.Thread(target=warm_compiled_loops, name="twinpass-loops", daemon=True).start()
+        # Block arrays reused from the heap instead of mapped and zeroed afresh for every block.
+        allocator.keep_block_memory()
     with dask.config.set(_LOCAL_CLUSTER_CONFIG):
         cluster = _local_cluster(workers, processes)
     try:
@@ -330,6 +338,8 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     finally:
         client.close()
         cluster.close()
+        if not processes:
+            allocator.release_free_memory()
 
 
 COMPILE_NOTICE = ("compiling twinpass's filter loops for this machine (first use after installing; "
