@@ -156,6 +156,53 @@ def test_without_sync_no_block_waits_on_the_disk(tmp_path, monkeypatch):
                                       open_store(tmp_path / "synced" / "out.zarr")[a][:])
 
 
+def test_with_local_workers_the_driver_syncs_each_block_before_recording_it(tmp_path, monkeypatch):
+    # Local worker threads leave syncing to the driver, which waits on the disk while they
+    # compute. Every block recorded done must have had its chunk file synced first, and no
+    # Dask worker thread may wait in fdatasync for an output chunk.
+    import os
+    import threading
+
+    from twinpass.io.store import OutputStore
+
+    if not hasattr(os, "fdatasync") or not os.path.isdir("/proc/self/fd"):
+        pytest.skip("needs fdatasync and /proc/self/fd (Linux)")
+    events: list[tuple[str, ...]] = []
+    real_sync, real_record = os.fdatasync, OutputStore.record_blocks
+
+    def watched_sync(fd):
+        events.append(("sync", os.readlink(f"/proc/self/fd/{fd}"), threading.current_thread().name))
+        return real_sync(fd)
+
+    def watched_record(self, name, records):
+        events.extend(("record", f"{name}/c/{r.index}/0") for r in records if r.status in (PASS, WARN))
+        return real_record(self, name, records)
+
+    cfg = _archive(tmp_path, engine={"scheduler": "threads", "workers": 2})
+    monkeypatch.setattr(os, "fdatasync", watched_sync)
+    monkeypatch.setattr(OutputStore, "record_blocks", watched_record)
+    res, blocks = _results(cfg)
+    assert res.ok and len(blocks) == sum(FRAMES) // 1000
+    output_syncs = [e for e in events if e[0] == "sync" and any(f"/{a}/c/" in e[1] for a in ARRAYS)]
+    assert output_syncs and not [e for e in output_syncs if "Dask" in e[2]], output_syncs  # Dask worker threads
+    recorded = [e[1] for e in events if e[0] == "record"]
+    assert set(recorded) == {f"{name}/c/{i}/0" for name, i in blocks}  # (the seam checks record some again)
+    for chunk in set(recorded):
+        first_record = events.index(("record", chunk))
+        assert any(e[0] == "sync" and e[1].endswith(chunk) for e in events[:first_record]), chunk
+
+
+def test_only_workers_of_a_local_cluster_leave_syncing_to_the_driver(process_cluster):
+    from distributed import Client
+
+    from twinpass.engine import dask_client, shares_this_machine
+
+    with dask_client("threads", 1) as client:
+        assert shares_this_machine(client)
+    with Client(process_cluster.scheduler_address) as client:  # workers anywhere: they sync their own
+        assert not shares_this_machine(client)
+
+
 def test_a_worker_killed_mid_block_is_replaced_and_the_output_is_unchanged(tmp_path, inject, process_cluster):
     clean = _archive(tmp_path, "clean")
     assert run_job(clean).ok

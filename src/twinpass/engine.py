@@ -18,8 +18,8 @@ The driver therefore orders its writes so that every prefix of them is safe:
    stale data while the plan no longer sees the change);
 2. a file recomputed from scratch records its design digest only after its block table
    is reset (until then it carries :data:`RESETTING_DIGEST`, which the plan never matches);
-3. a block's status is recorded after its data are written (the store refuses "done" for
-   a block whose chunks are missing);
+3. a block's status is recorded after its data are written, and with ``[output] sync``
+   on the disk (the store refuses "done" for a block whose chunks are missing);
 4. a file is marked complete only when every block is done (the store checks it).
 
 Block tasks are idempotent (same input, same bytes), so a block written but not recorded
@@ -168,7 +168,8 @@ class BlockJob:
     holes: tuple[tuple[int, int], ...] = ()
     """Segment spans left out of filtering (NaN/Inf runs under nonfinite = "split")."""
     sync: bool = True
-    """Sync the output to disk before the block counts as done (``[output] sync``)."""
+    """Sync the output to disk in the task (``[output] sync``), before it returns. False also
+    when the driver syncs it instead, before recording the block (see :func:`run_jobs`)."""
 
 
 @dataclass
@@ -593,8 +594,15 @@ def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any
 
 
 def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout, edge_samples: int,
-               spans_by_file: dict[str, list[tuple[int, int]]], todo_by_file: dict[str, list[int]]) -> list[BlockJob]:
-    """One :class:`BlockJob` per block to run, in segment order (files in ``todo_by_file`` only)."""
+               spans_by_file: dict[str, list[tuple[int, int]]], todo_by_file: dict[str, list[int]], *,
+               sync_in_task: bool | None = None) -> list[BlockJob]:
+    """One :class:`BlockJob` per block to run, in segment order (files in ``todo_by_file`` only).
+
+    ``sync_in_task`` (default ``[output] sync``) says whether the tasks sync their output
+    themselves; False when the driver does (:func:`run_jobs` with ``sync_before_record``).
+    """
+    if sync_in_task is None:
+        sync_in_task = cfg.output.sync
     k = cfg.checks.seam_samples
     every = cfg.checks.every
     sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
@@ -616,7 +624,7 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
                 design=design, halo=layout.halo, edge=cfg.processing.edge, edge_samples=edge_samples,
                 out_dtype=cfg.output.dtype, seam_samples=k, check_response=bool(every) and i % every == 0,
                 checks_cfg=cfg.checks, retries=cfg.engine.retries,
-                retry_backoff_seconds=cfg.engine.retry_backoff_seconds, holes=seg.holes, sync=cfg.output.sync,
+                retry_backoff_seconds=cfg.engine.retry_backoff_seconds, holes=seg.holes, sync=sync_in_task,
             ))
     return jobs
 
@@ -648,19 +656,23 @@ class _BatchRecorder:
     refused results become errors (:func:`record_result`).
     """
 
-    def __init__(self, store: Any, on_recorded: Callable[[BlockResult], None]) -> None:
+    def __init__(self, store: Any, on_recorded: Callable[[BlockResult], None], *,
+                 sync_before_record: bool = False) -> None:
         self.store = store
         self.on_recorded = on_recorded
-        self.pending: list[BlockResult] = []
+        self.sync_before_record = sync_before_record
+        self.pending: list[tuple[BlockResult, BlockJob | None]] = []
 
-    def add(self, res: BlockResult) -> None:
-        self.pending.append(res)
+    def add(self, res: BlockResult, job: BlockJob | None = None) -> None:
+        self.pending.append((res, job))
 
     def flush(self) -> None:
         from .io.store import BlockRecord
 
         by_name: dict[str, list[BlockResult]] = {}
-        for res in self.pending:
+        for res, job in self.pending:
+            if self.sync_before_record and job is not None:
+                res = _synced(res, job)
             by_name.setdefault(res.array_name, []).append(res)
         self.pending = []
         for name, results in by_name.items():
@@ -673,6 +685,29 @@ class _BatchRecorder:
                 self.on_recorded(res)
 
 
+def _synced(res: BlockResult, job: BlockJob) -> BlockResult:
+    """``res`` once its output chunks are on the disk; an ``ERROR`` result if they cannot be synced."""
+    if res.status not in DONE or not job.write or job.sync:
+        return res
+    from .io.store import sync_block_data
+
+    start = job.core[0] - job.file_offset
+    try:
+        sync_block_data(job.store_location, job.array_name, start, start + job.core[1] - job.core[0])
+    except StoreError as e:
+        return BlockResult(res.array_name, res.block_index, ERROR, error=f"{type(e).__name__}: {e}",
+                           attempts=res.attempts, seconds=res.seconds, window_samples=res.window_samples)
+    return res
+
+
+def shares_this_machine(client: Any) -> bool:
+    """Whether ``client``'s workers run on this machine (a local cluster :func:`dask_client` started).
+
+    Their writes then sit in this machine's page cache, and the driver can sync them.
+    """
+    return getattr(client, "cluster", None) is not None
+
+
 def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]:
     """Submit block jobs to ``client``; (future, job) pairs for :func:`run_jobs`."""
     stamp = time.time_ns()
@@ -682,13 +717,19 @@ def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]
 
 
 def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
-             on_block: ProgressFn | None = None) -> dict[str, int]:
+             on_block: ProgressFn | None = None, sync_before_record: bool = False) -> dict[str, int]:
     """Record the results of block jobs submitted with :func:`submit_jobs` as they arrive.
 
     Returns the number of blocks run per array name. A block whose task is lost (its
     worker died more often than the scheduler allows, or it was cancelled) is recorded
     with status ``ERROR`` and the reason; the others carry on. ``on_block`` is called for
     each result once it is recorded.
+
+    With ``sync_before_record``, the output of every finished block whose task did not sync
+    it (``BlockJob.sync`` False) is synced to disk here before the block is recorded (a block
+    whose chunks cannot be synced is recorded ``ERROR``). The workers then never wait on the
+    disk; this thread does, while they compute the next blocks. Only for workers on this
+    machine (:func:`shares_this_machine`): their writes are in this machine's page cache.
     """
     from distributed import as_completed
 
@@ -710,7 +751,7 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
         if on_block is not None:
             on_block(done, total, res)
 
-    recorder = _BatchRecorder(store, recorded)
+    recorder = _BatchRecorder(store, recorded, sync_before_record=sync_before_record)
     try:
         for batch in as_completed(futures).batches():  # everything finished so far, at least one
             for fut in batch:
@@ -721,7 +762,7 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
                     res = BlockResult(job.array_name, job.block_index, ERROR,
                                       error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
                 fut.release()
-                recorder.add(res)
+                recorder.add(res, job)
             recorder.flush()
     except BaseException:
         with contextlib.suppress(Exception):  # keep what finished; the first error is the one to report
@@ -806,13 +847,17 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
         if not seg.holes and use_carry(design, layout.block_samples, cfg):  # pieces between holes use halos
             return run_segment_carry(seg, design, cfg, store, client, on_block=on_block)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
+    # Workers on this machine leave syncing their output to this thread, which waits on the
+    # disk while they compute; workers elsewhere sync their own.
+    sync_here = cfg.output.sync and shares_this_machine(client)
     # Each file's blocks go to the workers as soon as the file is prepared, while the next
     # files are; their results are recorded once every file is prepared.
     submitted: list[tuple[Any, BlockJob]] = []
 
     def submit_file(name: str, spans: list[tuple[int, int]], todo: list[int]) -> None:
         submitted.extend(submit_jobs(block_jobs(seg, design, cfg, store, layout, edge_samples,
-                                                {name: spans}, {name: todo}), client))
+                                                {name: spans}, {name: todo},
+                                                sync_in_task=cfg.output.sync and not sync_here), client))
 
     try:
         spans_by_file, _ = prepare_segment(seg, design, cfg, store, layout, edge_samples, on_file=submit_file)
@@ -820,7 +865,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
         with contextlib.suppress(Exception):  # nothing is recorded for these blocks; stop them
             client.cancel([f for f, _ in submitted])
         raise
-    run_count = run_jobs(submitted, store, on_block=on_block)
+    run_count = run_jobs(submitted, store, on_block=on_block, sync_before_record=sync_here)
     return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
 
 

@@ -291,6 +291,52 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, 
             _write_local_chunks(root / name, arr, encode, start, data, in_place=True, sync=sync)
 
 
+def sync_block_data(location: str, name: str, start: int, stop: int) -> None:
+    """Make the chunks of output region [start, stop) durable (``fdatasync``), in a local store.
+
+    For blocks written with ``write_block_data(..., sync=False)`` by another thread or
+    process of this machine: the chunk files' data reach the disk before this returns, as
+    they would have with ``sync=True``, but the wait is the caller's (the driver, while the
+    workers compute the next blocks) instead of a worker's. A non-local store does nothing
+    here (its writes are complete when they return).
+
+    Parameters
+    ----------
+    location : str
+        The store location.
+    name : str
+        Array name inside the store.
+    start, stop : int
+        The region written, frames; ``start`` a multiple of the chunk length.
+
+    Raises
+    ------
+    StoreError
+        A chunk file is missing or the disk reports an error while syncing it (the data may
+        not be on the disk: the block must not count as done).
+    """
+    root = local_path(location)
+    if root is None:
+        return
+    check_name(name)
+    with write_errors(f"{name} block [{start}, {stop}) in {location} (syncing it to disk)"):
+        arr = _writable_array(location, name)
+        chunk = arr.chunks[0]
+        rest = (0,) * (arr.ndim - 1)
+        flags = (os.O_RDONLY if os.name == "posix" else os.O_RDWR) | getattr(os, "O_CLOEXEC", 0)
+        sync = os.fdatasync if hasattr(os, "fdatasync") else os.fsync
+        for c0 in range(start - start % chunk, stop, chunk):
+            try:
+                fd = os.open(root / name / arr.metadata.encode_chunk_key((c0 // chunk, *rest)), flags)
+            except FileNotFoundError:
+                raise StoreError(f"{name}: block [{start}, {stop}) was written but its data chunk {c0 // chunk} "
+                                 "is missing; the block is run again on the next run") from None
+            try:
+                sync(fd)
+            finally:
+                os.close(fd)
+
+
 _OPENED: dict[str, tuple[bytes, zarr.Array]] = {}
 _OPENED_LOCK = threading.Lock()
 
