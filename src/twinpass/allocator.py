@@ -26,7 +26,7 @@ are left alone. Elsewhere (macOS, Windows, musl) both functions do nothing.
 from __future__ import annotations
 
 import ctypes
-import ctypes.util
+import functools
 import os
 import sys
 import threading
@@ -46,14 +46,18 @@ _lock = threading.Lock()
 _applied = False
 
 
+@functools.lru_cache(maxsize=1)
 def _glibc() -> ctypes.CDLL | None:
+    """This process's C library if it is glibc (on Linux), else None."""
     if not sys.platform.startswith("linux"):
         return None
     try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        # glibc's soname on x86-64, arm64 and the other common Linux machines (elsewhere this
+        # does nothing); ctypes.util.find_library would run ldconfig first (60 ms).
+        libc = ctypes.CDLL("libc.so.6")
         libc.gnu_get_libc_version  # glibc only; musl has no such symbol  # noqa: B018
-        libc.mallopt
-        libc.malloc_trim
+        libc.mallopt  # noqa: B018
+        libc.malloc_trim  # noqa: B018
     except (OSError, AttributeError):
         return None
     return libc
