@@ -11,8 +11,8 @@ system time 6-7 s of 26-29 s of CPU.
 
 :func:`keep_block_memory` raises the mmap threshold and the trim threshold, so that freed
 block arrays stay in the allocator's heap and the next block reuses them already mapped
-(on the same run: pages cleared 3 % of CPU time, system time 3.5-5 s, peak RSS 40-60 MiB
-higher).
+(on the same run: pages cleared 3 % of CPU time, system time 3.5-5 s; peak RSS 40-80 MiB
+higher, the more the larger the blocks).
 :func:`release_free_memory` hands free heap memory back to the system when a run ends, so
 a long-lived process (a Prefect worker, a notebook) does not keep it.
 
@@ -37,8 +37,10 @@ M_MMAP_THRESHOLD = -3
 
 MMAP_THRESHOLD_BYTES = 256 * 2**20
 """Allocations up to this size come from the heap (bytes); larger ones are still mapped apart."""
-TRIM_THRESHOLD_BYTES = 512 * 2**20
-"""Free memory at the top of the heap kept for reuse instead of returned at once (bytes)."""
+TRIM_THRESHOLD_BYTES = 128 * 2**20
+"""Free memory at the top of a heap kept for reuse instead of returned at once (bytes): a
+few block arrays. 512 MiB saved a little more system time (elliptic bench design, two
+threads: 2.8-3.0 s against 2.9-3.9 s) but raised peak RSS by 130 MiB instead of 80 MiB."""
 
 USER_SETTINGS_ENV = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_", "GLIBC_TUNABLES")
 
