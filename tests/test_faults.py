@@ -192,6 +192,75 @@ def test_with_local_workers_the_driver_syncs_each_block_before_recording_it(tmp_
         assert any(e[0] == "sync" and e[1].endswith(chunk) for e in events[:first_record]), chunk
 
 
+def test_block_records_are_synced_before_any_file_is_marked_complete(tmp_path, monkeypatch):
+    # Tables and attributes are replaced by rename, durable only once synced: every
+    # completion flag must follow a sync of the file system that came after the file's
+    # last block record, so that a power cut cannot keep the flag and lose the records.
+    from twinpass.io.store import OutputStore
+
+    events: list[tuple[str, str]] = []
+    real_sync, real_record, real_complete = OutputStore.sync_records, OutputStore.record_blocks, OutputStore.set_complete
+
+    def watched_sync(self):
+        events.append(("sync", ""))
+        return real_sync(self)
+
+    def watched_record(self, name, records):
+        events.append(("record", name))
+        return real_record(self, name, records)
+
+    def watched_complete(self, name, complete, checks_summary=None):
+        events.append(("complete" if complete else "incomplete", name))
+        return real_complete(self, name, complete, checks_summary)
+
+    monkeypatch.setattr(OutputStore, "sync_records", watched_sync)
+    monkeypatch.setattr(OutputStore, "record_blocks", watched_record)
+    monkeypatch.setattr(OutputStore, "set_complete", watched_complete)
+    res, _ = _results(_archive(tmp_path))
+    assert res.ok
+    completed = [i for i, e in enumerate(events) if e[0] == "complete"]
+    assert [events[i][1] for i in completed] == ARRAYS
+    for i in completed:
+        last_record = max(j for j, e in enumerate(events[:i]) if e == ("record", events[i][1]))
+        assert ("sync", "") in events[last_record:i], events
+
+    events.clear()  # [output] sync = false: nothing is synced
+    res, _ = _results(_archive(tmp_path, "unsynced", output={"sync": False}))
+    assert res.ok and ("sync", "") not in events and [e[1] for e in events if e[0] == "complete"] == ARRAYS
+
+
+def test_files_whose_records_cannot_be_synced_are_not_marked_complete(tmp_path, monkeypatch):
+    # Injected fault: the disk reports an I/O error (POSIX errno EIO) when the records are
+    # synced. No file of the segment may be marked complete; a rerun without the fault
+    # completes them.
+    import errno
+
+    from twinpass.io import store as store_module
+
+    def failing(path):
+        raise OSError(errno.EIO, "Input/output error", str(path))
+
+    cfg = _archive(tmp_path)
+    with monkeypatch.context() as m:
+        m.setattr(store_module, "sync_file_system", failing)
+        res = run_job(cfg)
+    assert not res.ok and res.counts()["complete"] == 0
+    assert all("input/output error" in " ".join(o.errors.values()).lower() for o in res.outcomes), res.outcomes
+    assert not any(open_store(cfg.store_location)[a].attrs.get("complete") for a in ARRAYS)
+    assert run_job(cfg).ok
+
+
+def test_syncing_a_file_system_reports_errors(tmp_path):
+    from twinpass.io.store_util import sync_file_system
+
+    import sys
+
+    sync_file_system(tmp_path)  # the real system call
+    if sys.platform.startswith("linux"):  # syncfs(2) needs the file system's folder; sync(2) takes none
+        with pytest.raises(OSError):
+            sync_file_system(tmp_path / "missing")
+
+
 def test_only_workers_of_a_local_cluster_leave_syncing_to_the_driver(process_cluster):
     from distributed import Client
 

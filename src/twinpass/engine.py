@@ -20,7 +20,8 @@ The driver therefore orders its writes so that every prefix of them is safe:
    is reset (until then it carries :data:`RESETTING_DIGEST`, which the plan never matches);
 3. a block's status is recorded after its data are written, and with ``[output] sync``
    on the disk (the store refuses "done" for a block whose chunks are missing);
-4. a file is marked complete only when every block is done (the store checks it).
+4. a file is marked complete only when every block is done (the store checks it) and,
+   with ``[output] sync``, only after the block records are synced to disk.
 
 Block tasks are idempotent (same input, same bytes), so a block written but not recorded
 before a kill is simply computed again.
@@ -786,6 +787,10 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
                 store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
     # An unchanged file whose block fails a seam now is reported (and rerun next time).
     checked = touched | seam_pass(seg, store, spans_by_file, touched, design, cfg)
+    if cfg.output.sync and checked:
+        # Block records durable before any completion flag: a power cut may lose a flag
+        # (the file is checked again), never keep one whose records are lost.
+        store.sync_records()
     outcomes = []
     elapsed = time.perf_counter() - t0
     for fw in seg.files:

@@ -51,6 +51,7 @@ from .store_util import (
     json_safe,
     library_versions,
     local_path,
+    sync_file_system,
     write_errors,
 )
 
@@ -1046,6 +1047,25 @@ class OutputStore:
                     group[key][i] = np.nan
             errors = {k: v for k, v in dict(group.attrs.get("errors") or {}).items() if int(k) not in idx}
             group.update_attributes({"errors": errors})
+
+    def sync_records(self) -> None:
+        """Make the block tables and attributes written so far durable (a local store).
+
+        Block tables and attributes are replaced by renaming new files into place, which is
+        atomic but reaches the disk later; call this before marking files complete, so that
+        a power cut can never keep a completion flag while losing the records behind it.
+        One ``syncfs`` for the store's file system (``sync`` off Linux); a non-local store
+        does nothing (its writes are complete when they return).
+
+        Raises
+        ------
+        StoreError
+            The disk reports an error (the files must not be marked complete).
+        """
+        if self.local_root is None:
+            return
+        with write_errors(f"the block records of {self.location} (syncing them to disk)"):
+            sync_file_system(self.local_root)
 
     def set_complete(self, name: str, complete: bool, checks_summary: dict[str, Any] | None = None) -> None:
         """Set the ``complete`` attribute (and ``checks``); True needs every block passed or warned."""

@@ -7,9 +7,12 @@ root; they never leave the store and never collide with the store's own bookkeep
 
 from __future__ import annotations
 
+import ctypes
 import datetime as _dt
 import errno
 import math
+import os
+import sys
 import posixpath
 import re
 from contextlib import contextmanager
@@ -207,6 +210,25 @@ def write_errors(what: str) -> Iterator[None]:
         else:
             msg = f"cannot write {what}: {reason}; check the store location and rerun: finished blocks are kept"
         raise StoreError(msg) from e
+
+
+def sync_file_system(path: Path) -> None:
+    """Make everything written to the file system holding ``path`` durable (renames included).
+
+    Linux: ``syncfs(2)`` on that file system alone; other POSIX systems: ``sync(2)``;
+    elsewhere nothing. Raises :class:`OSError` when the system reports a write error.
+    """
+    if sys.platform.startswith("linux"):
+        libc = ctypes.CDLL(None, use_errno=True)
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
+        try:
+            if libc.syncfs(fd) != 0:
+                err = ctypes.get_errno()
+                raise OSError(err, os.strerror(err), str(path))
+        finally:
+            os.close(fd)
+    elif hasattr(os, "sync"):
+        os.sync()
 
 
 def library_versions() -> dict[str, str | None]:
