@@ -77,6 +77,11 @@ def test_the_users_own_allocator_settings_are_left_alone(name: str, value: str) 
     assert r["applied"] is False and r["released"] is False, r
 
 
+def test_tunables_of_other_parts_of_glibc_do_not_count_as_allocator_settings() -> None:
+    r = _run(_CHURN, GLIBC_TUNABLES="glibc.pthread.rseq=1")
+    assert r["applied"] is True, r
+
+
 _CLIENT = """
 import json, sys
 from twinpass import allocator

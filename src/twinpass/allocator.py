@@ -19,8 +19,9 @@ a long-lived process (a Prefect worker, a notebook) does not keep it.
 Only the process that runs block tasks on its own threads applies this (the ``threads``
 scheduler); Dask worker processes keep glibc's defaults (their peak memory with two of them
 is the closest of twinpass's figures to the 1 GiB budget). Settings the user made through
-the environment (``MALLOC_MMAP_THRESHOLD_``, ``MALLOC_TRIM_THRESHOLD_``, ``GLIBC_TUNABLES``)
-are left alone. Elsewhere (macOS, Windows, musl) both functions do nothing.
+the environment (``MALLOC_MMAP_THRESHOLD_``, ``MALLOC_TRIM_THRESHOLD_``, a ``glibc.malloc.``
+tunable in ``GLIBC_TUNABLES``) are left alone. Elsewhere (macOS, Windows, musl) both
+functions do nothing.
 """
 
 from __future__ import annotations
@@ -43,6 +44,15 @@ few block arrays. 512 MiB saved a little more system time (elliptic bench design
 threads: 2.8-3.0 s against 2.9-3.9 s) but raised peak RSS by 130 MiB instead of 80 MiB."""
 
 USER_SETTINGS_ENV = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_", "GLIBC_TUNABLES")
+"""Environment variables through which a user sets glibc's malloc (``GLIBC_TUNABLES`` counts
+only when it names a ``glibc.malloc.`` tunable)."""
+
+
+def _user_settings() -> bool:
+    env = os.environ
+    return bool(env.get("MALLOC_MMAP_THRESHOLD_") or env.get("MALLOC_TRIM_THRESHOLD_")
+                or "glibc.malloc." in env.get("GLIBC_TUNABLES", ""))
+
 
 _lock = threading.Lock()
 _applied = False
@@ -82,7 +92,7 @@ def keep_block_memory() -> bool:
     with _lock:
         if _applied:
             return True
-        if any(os.environ.get(k) for k in USER_SETTINGS_ENV):
+        if _user_settings():
             return False
         libc = _glibc()
         if libc is None:
