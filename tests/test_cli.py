@@ -7,6 +7,7 @@ libraries); the design numbers are checked in test_design.py, here only the CLI 
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import wave
@@ -15,6 +16,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.io.wavfile
+
+from conftest import cli_env, run_cli
 
 FS = 100
 
@@ -197,3 +200,24 @@ def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
             "with start_up_imports(freeze=True):\n    import twinpass.job\n"
             "sys.exit(0 if gc.isenabled() and gc.get_freeze_count() > n + 1000 else 1)")
     assert subprocess.run([sys.executable, "-c", code], timeout=300).returncode == 0
+
+
+def test_compile_makes_the_filter_loops_ready_and_says_so(tmp_path):
+    # numba is a dependency: the compiled loops load (or compile) and pass their check
+    # against scipy.signal.sosfilt.
+    proc = run_cli(["compile"])
+    assert "compiled filter loops ready" in proc.stdout
+    off = run_cli(["compile"], env=cli_env(TWINPASS_JIT="0"))
+    assert "turned off" in off.stdout
+
+
+def test_compile_fails_clearly_when_numba_cannot_load(tmp_path):
+    # Injected fault: a numba that raises on import (a broken installation).
+    fake = tmp_path / "broken" / "numba"
+    fake.mkdir(parents=True)
+    (fake / "__init__.py").write_text("raise ImportError('numba is broken here')\n", encoding="utf-8")
+    env = cli_env()
+    env["PYTHONPATH"] = str(fake.parent) + os.pathsep + env["PYTHONPATH"]
+    proc = run_cli(["compile"], env=env, check=False)
+    assert proc.returncode == 1
+    assert "not available on this machine" in proc.stderr and "still runs" in proc.stderr

@@ -242,6 +242,28 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return rc
 
 
+def cmd_compile(args: argparse.Namespace) -> int:
+    import time
+
+    from .core import loops
+    from .engine import warm_compiled_loops
+
+    t0 = time.perf_counter()
+    in_use = warm_compiled_loops()
+    took = time.perf_counter() - t0
+    if in_use:
+        print(f"compiled filter loops ready for this machine ({took:.1f} s; later runs load them from "
+              "numba's cache)")
+        return 0
+    if not loops.jit_requested():
+        print("compiled filter loops are turned off (TWINPASS_JIT=0); twinpass uses numpy and scipy's loops")
+        return 0
+    _eprint("twinpass: the compiled filter loops are not available on this machine (numba missing, broken, "
+            "or its result differs from scipy's; see any warning above); twinpass still runs, with numpy "
+            "and scipy's slower loops. Reinstall numba or report its and LLVM's versions.")
+    return 1
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     from . import flows  # sets twinpass's Prefect defaults before prefect is imported
 
@@ -312,6 +334,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--hours", type=int, default=3, help="hours of recording per stream (default 3)")
     s.add_argument("--no-run", action="store_true", help="only write the archive and its configuration")
     s.set_defaults(func=cmd_demo)
+
+    s = sub.add_parser("compile", help="compile the filter loops for this machine ahead of the first run "
+                                       "(e.g. while building a container image)")
+    s.set_defaults(func=cmd_compile)
 
     s = sub.add_parser("serve", help="serve a scheduled deployment of the flow (needs a Prefect server)")
     s.add_argument("config")

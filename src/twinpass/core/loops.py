@@ -133,8 +133,13 @@ def _cascade_agrees(cascade: Callable[..., Any]) -> bool:
     return True
 
 
+def jit_requested() -> bool:
+    """Whether the compiled loops are wanted (``TWINPASS_JIT`` unset or not 0/false/no/off)."""
+    return os.environ.get("TWINPASS_JIT", "1").strip().lower() not in ("0", "false", "no", "off")
+
+
 def _load_jit() -> Any:
-    if os.environ.get("TWINPASS_JIT", "1").strip().lower() in ("0", "false", "no", "off"):
+    if not jit_requested():
         return None
     try:
         from twinpass.core import _loops_jit
