@@ -596,14 +596,13 @@ def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any
 
 def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout, edge_samples: int,
                spans_by_file: dict[str, list[tuple[int, int]]], todo_by_file: dict[str, list[int]], *,
-               sync_in_task: bool | None = None) -> list[BlockJob]:
+               sync_in_task: bool) -> list[BlockJob]:
     """One :class:`BlockJob` per block to run, in segment order (files in ``todo_by_file`` only).
 
-    ``sync_in_task`` (default ``[output] sync``) says whether the tasks sync their output
-    themselves; False when the driver does (:func:`run_jobs` with ``sync_before_record``).
+    ``sync_in_task`` says whether the tasks sync their output themselves (``[output] sync``
+    and workers elsewhere); False when the driver does (:func:`run_jobs` with
+    ``sync_before_record``) or nothing is synced.
     """
-    if sync_in_task is None:
-        sync_in_task = cfg.output.sync
     k = cfg.checks.seam_samples
     every = cfg.checks.every
     sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)

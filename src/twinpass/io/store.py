@@ -323,17 +323,15 @@ def sync_block_data(location: str, name: str, start: int, stop: int) -> None:
     with write_errors(f"{name} block [{start}, {stop}) in {location} (syncing it to disk)"):
         arr = _writable_array(location, name)
         chunk = arr.chunks[0]
-        rest = (0,) * (arr.ndim - 1)
         flags = (os.O_RDONLY if os.name == "posix" else os.O_RDWR) | getattr(os, "O_CLOEXEC", 0)
-        sync = os.fdatasync if hasattr(os, "fdatasync") else os.fsync
         for c0 in range(start - start % chunk, stop, chunk):
             try:
-                fd = os.open(root / name / arr.metadata.encode_chunk_key((c0 // chunk, *rest)), flags)
+                fd = os.open(_chunk_file(root / name, arr, c0), flags)
             except FileNotFoundError:
                 raise StoreError(f"{name}: block [{start}, {stop}) was written but its data chunk {c0 // chunk} "
                                  "is missing; the block is run again on the next run") from None
             try:
-                sync(fd)
+                _data_sync(fd)
             finally:
                 os.close(fd)
 
@@ -418,18 +416,27 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
     their block is recorded done.
     """
     chunk = arr.chunks[0]
-    rest = (0,) * (arr.ndim - 1)
     for c0 in range(start, start + data.shape[0], chunk):
         part = data[c0 - start : c0 - start + chunk]
         if part.shape[0] < chunk:  # the array's last, partial chunk
             full = np.full((chunk, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
             full[: part.shape[0]] = part
             part = full
-        path, payload = folder / arr.metadata.encode_chunk_key((c0 // chunk, *rest)), encode(part)
+        path, payload = _chunk_file(folder, arr, c0), encode(part)
         if in_place:
             _overwrite_file(path, payload, sync=sync)
         else:
             _put_file(path, payload)
+
+
+def _chunk_file(folder: Path, arr: zarr.Array, row: int) -> Path:
+    """The file of the chunk of ``arr`` (chunked along its first axis only) that starts at ``row``."""
+    return folder / arr.metadata.encode_chunk_key((row // arr.chunks[0], *(0,) * (arr.ndim - 1)))
+
+
+def _data_sync(fd: int) -> None:
+    """Flush an open file's data to the disk (``fdatasync``, else ``fsync``)."""
+    (os.fdatasync if hasattr(os, "fdatasync") else os.fsync)(fd)
 
 
 def _put_file(path: Path, payload: Any) -> None:
@@ -479,7 +486,7 @@ def _overwrite_file(path: Path, payload: Any, *, sync: bool = True) -> None:
             f.truncate()  # a shorter chunk than the file held
             if sync:  # durable before the block is recorded
                 f.flush()
-                (os.fdatasync if hasattr(os, "fdatasync") else os.fsync)(fd)
+                _data_sync(fd)
             return
     _put_file(path, payload)
 
