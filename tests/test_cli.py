@@ -155,6 +155,9 @@ def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     # a second run skips everything
     r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
     assert r.returncode == 0 and "blocks run 0" in r.stdout
+    st = json.loads(_twinpass("status", str(cfg), "--json").stdout)
+    assert st["runs_total"] == 2 and st["last_run"]["counts"]["skipped"] == 6
+    assert "runs recorded: 2; last " in _twinpass("status", str(cfg)).stdout
     r = _twinpass("plan", str(cfg), "--json")
     assert all(f["status"] == "unchanged" for f in json.loads(r.stdout)["files"])
 

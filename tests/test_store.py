@@ -33,7 +33,7 @@ from twinpass.io.store import (
     write_block_data,
 )
 from twinpass.io import store as store_module
-from twinpass.io.store import _chunk_encoder
+from twinpass.io.store import RUNS_IN_ROOT, _chunk_encoder
 
 SOURCE = "deck-north/deck-north_20260301T000000.wav"
 NAME = "deck-north/deck-north_20260301T000000"
@@ -390,11 +390,57 @@ def test_file_records_root_info_and_removal(store: OutputStore):
     assert info["spec"] == {"response": {"kind": "bandpass"}}
     assert [r["run_id"] for r in info["runs"]] == ["r1", "r2"]
     assert info["runs"][0]["start"] == "2026-03-02T00:00:00"
+    assert info["runs_total"] == 2
 
     assert store.force_reset([other]) == 1
     assert store.list_arrays() == [NAME, "foreign"]
     with pytest.raises(StoreError, match="block table"):
         store.read_block_table(other)
+
+
+def _run(i: int) -> dict:
+    return {"run_id": f"run{i:04d}", "start": f"2026-03-{1 + i // 100:02d}T{(i // 4) % 24:02d}:{(i % 4) * 15:02d}:00",
+            "end": None, "counts": {"complete": i}, "config_digest": "c", "failed": [f"f{i}.wav"] * (i % 3)}
+
+
+def test_run_history_keeps_the_root_bounded_and_every_run_in_its_own_group(store: OutputStore):
+    # A scheduled archive accumulates runs: the root attributes, read at every open of the
+    # store, keep only the latest RUNS_IN_ROOT, and each run is recorded once in its group.
+    n = RUNS_IN_ROOT + 12
+    sizes = []
+    for i in range(n):
+        store.append_run(_run(i))
+        sizes.append((Path(store.location) / "zarr.json").stat().st_size)
+    ro = OutputStore.open(store.location, "r")
+    info = ro.read_root_info()
+    assert [r["run_id"] for r in info["runs"]] == [f"run{i:04d}" for i in range(n - RUNS_IN_ROOT, n)]
+    assert info["runs_total"] == n
+    assert [r["run_id"] for r in ro.read_runs()] == [f"run{i:04d}" for i in range(n)]
+    assert ro.read_runs()[7] == json.loads(json.dumps(_run(7)))
+    # the root stops growing once it holds RUNS_IN_ROOT entries (entries differ by a few bytes)
+    assert max(sizes[RUNS_IN_ROOT:]) - min(sizes[RUNS_IN_ROOT:]) < 200
+    with pytest.raises(StoreError, match="read-only"):
+        ro.append_run(_run(n))
+
+
+def test_run_history_of_an_older_store_is_kept_when_the_root_list_is_trimmed(store: OutputStore):
+    # A store written before run groups existed holds its whole history in the root list;
+    # the entries that leave it get their groups first, so none is lost.
+    legacy = [_run(i) for i in range(RUNS_IN_ROOT + 5)]
+    zarr.open_group(store.local_root, mode="r+").update_attributes({"twinpass": {"layout": 1, "runs": legacy}})
+    assert [r["run_id"] for r in store.read_runs()] == [r["run_id"] for r in legacy]
+    store.append_run(_run(999))
+    info = store.read_root_info()
+    assert len(info["runs"]) == RUNS_IN_ROOT and info["runs"][-1]["run_id"] == "run0999"
+    assert info["runs_total"] == len(legacy) + 1
+    assert [r["run_id"] for r in store.read_runs()] == [r["run_id"] for r in legacy] + ["run0999"]
+
+
+@pytest.mark.parametrize("run_id", ["", "a/b", "..", "x" * 129, None])
+def test_run_entry_needs_an_id_that_can_name_its_group(store: OutputStore, run_id):
+    with pytest.raises(StoreError, match="run_id"):
+        store.append_run({"run_id": run_id})
+    assert store.read_runs() == []
 
 
 # -- locking and clean-up -----------------------------------------------------------

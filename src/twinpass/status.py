@@ -70,7 +70,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
         "blocks_failed": sum(f["blocks_fail"] + f["blocks_error"] for f in files),
         "checks_failed": sum(f["checks"] == "fail" for f in files),
     }
-    return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None}
+    return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
+            "runs_total": int(root.get("runs_total", len(runs)))}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -110,6 +111,12 @@ def format_status(status: dict[str, Any]) -> str:
     lines.append(f"files: {t['files']} ({t['complete']} complete, {t['incomplete']} incomplete); "
                  f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed; "
                  f"files with failed checks: {t['checks_failed']}")
+    last = status.get("last_run")
+    if last:
+        counts = last.get("counts") or {}
+        lines.append(f"runs recorded: {status.get('runs_total', 1)}; last {last.get('run_id')} "
+                     f"{last.get('start')} to {last.get('end') or '-'}: "
+                     + ", ".join(f"{k} {v}" for k, v in counts.items()))
     for f in status["files"]:
         for b, msg in f["errors"].items():
             lines.append(f"  error {f['name']} block {b}: {msg}")

@@ -2,7 +2,8 @@
 
 Layout (zarr_format 3)::
 
-    <store>/                          group; attributes {"twinpass": {layout, spec, versions, runs}}
+    <store>/                          group; attributes {"twinpass": {layout, spec, versions, runs,
+                                      runs_total}}: runs = the latest RUNS_IN_ROOT run entries
       <stream>/<file stem>            one array per input file, shape (samples, channels),
                                       chunks (chunk_samples, channels), dimension_names
                                       ["time", "channel"], fill_value 0
@@ -11,6 +12,7 @@ Layout (zarr_format 3)::
         span     int64   (n_blocks, 2)                       [start, stop) in file frames
         figures  float64 (n_blocks, channels, n_columns)     attribute "columns"; one block per chunk
         seams    float64 (n_blocks, 4, seam_samples, channels) one block per chunk; see SEAM_*
+      _twinpass/runs/<run id>         every run's entry (group; attribute "run"), written once
       _twinpass/scan/                 scan cache (group; attributes {"layout", "files"}): per input
                                       path, what discovery learnt about its NaN/Inf samples
       .twinpass-lock                  present while a run writes (local stores)
@@ -25,6 +27,7 @@ from __future__ import annotations
 import contextlib
 import enum
 import os
+import re
 import shutil
 import threading
 import warnings
@@ -230,6 +233,12 @@ def _table_path(name: str) -> str:
 
 
 _SCAN_PATH = f"{RESERVED_PREFIX}/scan"
+_RUNS_PATH = f"{RESERVED_PREFIX}/runs"
+_RUN_ID = re.compile(r"[A-Za-z0-9._-]{1,128}")
+RUNS_IN_ROOT = 50
+"""Run entries kept in the root attributes (the latest). Every entry also has its own group
+under ``_twinpass/runs``, so the root's metadata, read by every open of the store, stays the
+same size however many runs a scheduled archive accumulates."""
 
 
 def _members(group: zarr.Group) -> list[tuple[str, Any]]:
@@ -1233,10 +1242,54 @@ class OutputStore:
             self._write_root_info(info)
 
     def append_run(self, entry: dict[str, Any]) -> None:
-        """Append a run history entry {run_id, start, end, counts, config_digest}."""
+        """Record a run: ``entry`` = {run_id, start, end, counts, config_digest, ...}.
+
+        The entry gets its own group ``_twinpass/runs/<run_id>`` (attribute ``run``); the root
+        attributes keep the latest :data:`RUNS_IN_ROOT` entries and ``runs_total``. Entries of
+        stores written before run groups existed get their group before they leave the root
+        list, so no entry is lost (:meth:`read_runs`).
+
+        Raises
+        ------
+        StoreError
+            Read-only store, an entry without a ``run_id`` usable as a name, or a failed write.
+        """
         self._writable()
+        entry = json_safe(dict(entry), "run entry")
         with self._mutex:
             info = self.read_root_info()
+            runs = [*info.get("runs", []), entry]
+            total = int(info.get("runs_total", len(runs) - 1)) + 1
+            for old in runs[:-RUNS_IN_ROOT]:
+                self._write_run_group(old, replace=False)
+            self._write_run_group(entry, replace=True)
             info.setdefault("layout", STORE_LAYOUT)
-            info["runs"] = [*info.get("runs", []), entry]
+            info["runs"] = runs[-RUNS_IN_ROOT:]
+            info["runs_total"] = total
             self._write_root_info(info)
+
+    def _write_run_group(self, entry: dict[str, Any], *, replace: bool) -> None:
+        run_id = str(entry.get("run_id") or "")
+        if not _RUN_ID.fullmatch(run_id) or set(run_id) == {"."}:
+            raise StoreError(f"run entry has run_id {run_id!r}, which cannot name a group in "
+                             f"{self.location}; give each run an id of letters, digits, '.', '_' or '-'")
+        path = f"{_RUNS_PATH}/{run_id}"
+        with write_errors(f"the run record {path} of {self.location}"):
+            if not replace and isinstance(self._node(path), zarr.Group):
+                return
+            self._root.require_group(path).attrs.put({"run": entry})
+
+    def read_runs(self) -> list[dict[str, Any]]:
+        """Every run's entry, oldest first (by ``start``, then ``run_id``). Works read-only."""
+        with self._mutex:
+            found: dict[str, dict[str, Any]] = {}
+            node = self._node(_RUNS_PATH)
+            if isinstance(node, zarr.Group):
+                for _name, child in node.groups():
+                    run = child.attrs.get("run")
+                    if isinstance(run, dict) and run.get("run_id"):
+                        found[str(run["run_id"])] = dict(run)
+            for run in self.read_root_info().get("runs", []):  # written before run groups existed
+                if isinstance(run, dict) and run.get("run_id"):
+                    found.setdefault(str(run["run_id"]), dict(run))
+        return sorted(found.values(), key=lambda r: (str(r.get("start") or ""), str(r["run_id"])))
