@@ -625,6 +625,51 @@ def test_a_status_write_that_fails_leaves_no_trace_in_later_records(store: Outpu
     assert store.read_block_table(NAME).status.tolist() == [0, 1, 0]
 
 
+def test_a_flag_write_that_fails_is_not_taken_as_written(store: OutputStore, monkeypatch):
+    # The store keeps the arrays it has opened, and Zarr updates an opened array's
+    # attributes in memory before writing them. After a failed write the store must read
+    # the array again, or a later "mark incomplete" would think it already done and leave
+    # the completion flag of changed data standing on the disk.
+    _prepare(store)
+    for i in range(3):
+        _finish_block(store, i)
+    store.set_complete(NAME, True, None)
+
+    async def io_error(self, key, value):  # injected fault: POSIX errno EIO on metadata writes
+        raise OSError(errno.EIO, "Input/output error")
+
+    with monkeypatch.context() as m:
+        m.setattr(LocalStore, "set", io_error)
+        with pytest.raises(StoreError, match="Input/output error"):
+            store.invalidate_blocks(NAME, [1])
+    assert OutputStore.open(store.location, "r").array_attrs(NAME)["complete"] is True  # nothing written
+    store.invalidate_blocks(NAME, [1])
+    reread = OutputStore.open(store.location, "r")
+    assert reread.array_attrs(NAME)["complete"] is False
+    assert reread.read_block_table(NAME).status.tolist() == [1, 0, 1]
+
+
+def test_each_node_is_opened_once_per_store_object(store: OutputStore, monkeypatch):
+    # Opening an array reads and parses its metadata document; the driver records, reads
+    # and checks each file's block table many times, from the arrays it opened first.
+    _prepare(store)
+    driver = OutputStore.open(store.location)  # a new store object: nothing opened yet
+    opened: list[str] = []
+    real_getitem = zarr.Group.__getitem__
+
+    def counting(self, path):
+        opened.append(path)
+        return real_getitem(self, path)
+
+    monkeypatch.setattr(zarr.Group, "__getitem__", counting)
+    for i in range(3):
+        _finish_block(driver, i)
+        driver.read_block_table(NAME)
+    driver.set_complete(NAME, True, None)
+    assert NAME in opened and len(opened) == len(set(opened)), opened
+    assert OutputStore.open(store.location, "r").file_records()[SOURCE].complete
+
+
 def test_a_batch_of_records_equals_the_same_records_one_by_one(tmp_path: Path):
     spans = [(a, a + 20) for a in range(0, 100, 20)]
     tables = []

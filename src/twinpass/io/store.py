@@ -517,6 +517,8 @@ class OutputStore:
         self._handles: dict[str, _TableHandles] = {}
         """Open block-table arrays per output array, for :meth:`record_block` (driver only);
         dropped by every method that rewrites a table or deletes nodes."""
+        self._nodes: dict[str, zarr.Array | zarr.Group] = {}
+        """Arrays and groups opened so far, by path (see :meth:`_node`)."""
 
     # -- opening --------------------------------------------------------------
 
@@ -621,10 +623,55 @@ class OutputStore:
     # -- nodes ----------------------------------------------------------------
 
     def _node(self, path: str) -> zarr.Array | zarr.Group | None:
+        """The array or group at ``path``, or None.
+
+        Opening a node reads and parses its metadata document, a few milliseconds, and the
+        driver needs each file's array and block-table arrays dozens of times: nodes are
+        kept once opened. This is safe because every metadata change of this store goes
+        through this object while it holds the run lock (Zarr updates an opened node's
+        attributes in place), deletions and creations replace the kept nodes
+        (:meth:`_forget`), and any failed operation drops them all (:meth:`_writing`), so
+        that a write that did not reach the disk is never taken as done. Chunk data are read
+        from the store every time. A missing node is not kept.
+        """
+        hit = self._nodes.get(path)
+        if hit is not None:
+            return hit
         try:
-            return self._root[path]
+            node = self._root[path]
         except KeyError:
             return None
+        self._nodes[path] = node
+        return node
+
+    def _keep(self, path: str, node: zarr.Array | zarr.Group) -> None:
+        """Keep a node just created or rewritten through ``node`` (see :meth:`_node`)."""
+        self._nodes[path] = node
+
+    def _forget(self, path: str | None = None) -> None:
+        """Drop kept nodes: ``path`` and everything under it, or all of them (None)."""
+        self._handles.clear()
+        if path is None:
+            self._nodes.clear()
+            return
+        for key in [k for k in self._nodes if k == path or k.startswith(path + "/")]:
+            del self._nodes[key]
+
+    @contextlib.contextmanager
+    def _writing(self, what: str) -> Iterator[None]:
+        """Hold the store's lock while writing ``what``; on any error forget every kept node.
+
+        OS errors become :class:`StoreError` (:func:`write_errors`). After a failure an
+        opened node may hold attributes that never reached the disk, so nodes are opened
+        afresh from then on.
+        """
+        with self._mutex:
+            try:
+                with write_errors(what):
+                    yield
+            except BaseException:
+                self._forget()
+                raise
 
     def _array(self, name: str) -> zarr.Array:
         node = self._node(check_name(name))
@@ -638,14 +685,22 @@ class OutputStore:
             raise StoreError(f"no block table for {name} in {self.location}; prepare the file first")
         return node
 
+    def _table_array(self, name: str, key: str) -> zarr.Array:
+        """One array of the block table of ``name``: status, span, figures or seams."""
+        node = self._node(f"{_table_path(check_name(name))}/{key}")
+        if not isinstance(node, zarr.Array):
+            raise StoreError(f"the block table of {name} in {self.location} has no {key} array; "
+                             "rerun with --force to rebuild it")
+        return node
+
     def _table_handles(self, name: str) -> _TableHandles:
         h = self._handles.get(name)
         if h is None:
             group = self._table(name)
             arr = self._array(name)
-            status, figures, seams = group["status"], group["figures"], group["seams"]
+            status, figures, seams = (self._table_array(name, k) for k in ("status", "figures", "seams"))
             h = _TableHandles(
-                group, status, np.asarray(group["span"][:]), figures, seams,
+                group, status, np.asarray(self._table_array(name, "span")[:]), figures, seams,
                 int(arr.chunks[0]), arr.metadata.encode_chunk_key, np.array(status[:], dtype=np.int8),
             )
             if self.local_root is not None:
@@ -659,7 +714,7 @@ class OutputStore:
         return h
 
     def _delete(self, path: str) -> None:
-        self._handles.clear()
+        self._forget(path)
         if self.local_root is not None:
             target = (self.local_root / path).resolve()
             root = self.local_root.resolve()
@@ -753,7 +808,7 @@ class OutputStore:
         )
         meta["complete"] = False
         columns = [str(c) for c in n_figures_columns]
-        with self._mutex, write_errors(f"{name} (preparing the output array)"):
+        with self._writing(f"{name} (preparing the output array)"):
             self._handles.pop(name, None)
             self._check_parents(name)
             node = self._node(name)
@@ -772,7 +827,6 @@ class OutputStore:
                         f"input {meta['source']!r} and input {old_source!r} both map to the output array {name}; "
                         "rename one of them, or remove the array of the old one"
                     )
-                self._mark_incomplete(node)  # first, before anything else
             same = node is not None and (
                 node.shape == (frames, channels)
                 and node.dtype == np.dtype(dtype)
@@ -780,12 +834,13 @@ class OutputStore:
                 and _compression_of(node) == compression
             )
             if same:
-                node.attrs.put(meta)
+                node.attrs.put(meta)  # first, before anything else: one write, complete = False
             else:
                 if node is not None:
+                    self._mark_incomplete(node)  # first: a deletion cut short never leaves a complete array
                     self._delete(name)
                 self._delete(_table_path(name))
-                self._root.create_array(
+                created = self._root.create_array(
                     name,
                     shape=(frames, channels),
                     dtype=dtype,
@@ -796,6 +851,7 @@ class OutputStore:
                     attributes=meta,
                     overwrite=True,
                 )
+                self._keep(name, created)
             table = self._matching_table(name, span_arr, columns, seam_samples, channels) if same else None
             if table is not None and keep_done:
                 return self.read_block_table(name, figures=False, seams=False)
@@ -840,9 +896,9 @@ class OutputStore:
         node = self._node(_table_path(name))
         if not isinstance(node, zarr.Group):
             return None
-        try:
-            st, sp, fig, sm = (node[k] for k in ("status", "span", "figures", "seams"))
-        except KeyError:
+        path = _table_path(name)
+        st, sp, fig, sm = (self._node(f"{path}/{k}") for k in ("status", "span", "figures", "seams"))
+        if not all(isinstance(a, zarr.Array) for a in (st, sp, fig, sm)):
             return None
         n = span.shape[0]
         same = (
@@ -862,7 +918,7 @@ class OutputStore:
         the figure and seam chunks are deleted (they read as NaN, the fill value) and the
         errors cleared. Local stores with Zarr's default chunk keys only (False: nothing done).
         """
-        arrays = [group[k] for k in ("status", "figures", "seams")]
+        arrays = [self._table_array(name, k) for k in ("status", "figures", "seams")]
         keys = [a.metadata.chunk_key_encoding for a in arrays]
         if self.local_root is None or any(k.name != "default" or getattr(k, "separator", "/") != "/" for k in keys):
             return False
@@ -884,21 +940,26 @@ class OutputStore:
         n = span.shape[0]
         group = self._root.require_group(path)
         group.attrs.put({"errors": {}})
+        self._keep(path, group)
         tab_chunk = (max(1, min(n, _TABLE_CHUNK)),)
         # status first (all pending): an interrupted reset never looks like a resumable table
-        group.create_array("status", shape=(n,), dtype="int8", chunks=tab_chunk, fill_value=0, compressors=None)
+        st = group.create_array("status", shape=(n,), dtype="int8", chunks=tab_chunk, fill_value=0, compressors=None)
+        self._keep(f"{path}/status", st)
         sp = group.create_array("span", shape=(n, 2), dtype="int64", chunks=tab_chunk + (2,), fill_value=-1, compressors=None)
+        self._keep(f"{path}/span", sp)
         if n:
             sp[:] = span
-        group.create_array(
+        fig = group.create_array(
             "figures", shape=(n, channels, len(columns)), dtype="float64",
             chunks=(1, channels, max(1, len(columns))), fill_value=float("nan"), compressors=None,
             attributes={"columns": columns},
         )
-        group.create_array(
+        self._keep(f"{path}/figures", fig)
+        sm = group.create_array(
             "seams", shape=(n, 4, seam_samples, channels), dtype="float64",
             chunks=(1, 4, max(1, seam_samples), channels), fill_value=float("nan"), compressors=None,
         )
+        self._keep(f"{path}/seams", sm)
 
     # -- block tables ---------------------------------------------------------
 
@@ -906,12 +967,12 @@ class OutputStore:
         """The block table of ``name``; ``figures``/``seams`` False skip reading those arrays."""
         with self._mutex:
             group = self._table(name)
-            fig = group["figures"]
-            sm = group["seams"]
+            fig = self._table_array(name, "figures")
+            sm = self._table_array(name, "seams")
             errors = {int(k): str(v) for k, v in dict(group.attrs.get("errors") or {}).items()}
             arrays = {
-                "status": np.asarray(group["status"][:], dtype=np.int8),
-                "span": np.asarray(group["span"][:], dtype=np.int64),
+                "status": np.asarray(self._table_array(name, "status")[:], dtype=np.int8),
+                "span": np.asarray(self._table_array(name, "span")[:], dtype=np.int64),
                 "figures": np.asarray(fig[:]) if figures else None,
                 "seams": np.asarray(sm[:]) if seams else None,
             }
@@ -930,7 +991,7 @@ class OutputStore:
         """Seams of some blocks, shape (len(indices), 4, seam_samples, channels); rows as SEAM_*."""
         idx = [int(i) for i in indices]
         with self._mutex:
-            sm = self._table(name)["seams"]
+            sm = self._table_array(name, "seams")
             return np.asarray(sm.get_orthogonal_selection((idx, slice(None), slice(None), slice(None))))
 
     def _chunk_exists(self, arr: zarr.Array, name: str, chunk_index: int) -> bool:
@@ -972,7 +1033,7 @@ class OutputStore:
         if not latest:
             return
         where = f"{name} block {next(iter(latest))}" if len(latest) == 1 else f"{name} blocks {sorted(latest)}"
-        with self._mutex, write_errors(f"{where} (block table)"):
+        with self._writing(f"{where} (block table)"):
             h = self._table_handles(name)
             group, st = h.group, h.status
             n = st.shape[0]
@@ -1045,11 +1106,11 @@ class OutputStore:
         """Set blocks pending (figures, seams and errors cleared) and the array incomplete."""
         self._writable()
         idx = sorted({int(i) for i in block_indices})
-        with self._mutex, write_errors(f"{name} (invalidating blocks)"):
+        with self._writing(f"{name} (invalidating blocks)"):
             self._handles.pop(name, None)
             self._mark_incomplete(self._array(name))
             group = self._table(name)
-            st = group["status"]
+            st = self._table_array(name, "status")
             for i in idx:
                 if not 0 <= i < st.shape[0]:
                     raise StoreError(f"{name}: block index {i} is outside 0..{st.shape[0] - 1}")
@@ -1059,8 +1120,9 @@ class OutputStore:
             status[idx] = BlockStatus.PENDING
             st[:] = status
             for key in ("figures", "seams"):
+                arr = self._table_array(name, key)
                 for i in idx:
-                    group[key][i] = np.nan
+                    arr[i] = np.nan
             errors = {k: v for k, v in dict(group.attrs.get("errors") or {}).items() if int(k) not in idx}
             group.update_attributes({"errors": errors})
 
@@ -1086,7 +1148,7 @@ class OutputStore:
     def set_complete(self, name: str, complete: bool, checks_summary: dict[str, Any] | None = None) -> None:
         """Set the ``complete`` attribute (and ``checks``); True needs every block passed or warned."""
         self._writable()
-        with self._mutex, write_errors(f"{name} (completion flag)"):
+        with self._writing(f"{name} (completion flag)"):
             arr = self._array(name)
             if complete:
                 table = self.read_block_table(name, figures=False, seams=False)
@@ -1140,7 +1202,7 @@ class OutputStore:
         """Delete an output array and its block table; return whether the array existed."""
         self._writable()
         check_name(name)
-        with self._mutex, write_errors(f"{name} (removing)"):
+        with self._writing(f"{name} (removing)"):
             node = self._node(name)
             if isinstance(node, zarr.Group):
                 raise StoreError(f"{name} in {self.location} is a group, not an output array; not removed")
@@ -1162,7 +1224,7 @@ class OutputStore:
         self._writable()
         if attrs.get("complete"):
             raise StoreError(f"{name}: set complete only with set_complete(), which checks the block table")
-        with self._mutex, write_errors(f"{name} (attributes)"):
+        with self._writing(f"{name} (attributes)"):
             self._array(name).update_attributes(json_safe(attrs, f"{name} attributes"))
 
     def read(self, name: str, start: int = 0, stop: int | None = None) -> np.ndarray:
@@ -1188,7 +1250,10 @@ class OutputStore:
         are checked by their user (:func:`twinpass.io.archive.discover`).
         """
         with self._mutex:
-            node = self._node(_SCAN_PATH)
+            try:  # read afresh: read once per run, and possibly written by another process
+                node = self._root[_SCAN_PATH]
+            except KeyError:
+                return {}
             if not isinstance(node, zarr.Group):
                 return {}
             attrs = node.attrs.asdict()
@@ -1212,8 +1277,10 @@ class OutputStore:
             "layout": SCAN_CACHE_LAYOUT,
             "files": json_safe({str(k): dict(v) for k, v in entries.items()}, "scan cache"),
         }
-        with self._mutex, write_errors(f"the scan cache of {self.location}"):
-            self._root.require_group(_SCAN_PATH).attrs.put(doc)
+        with self._writing(f"the scan cache of {self.location}"):
+            group = self._root.require_group(_SCAN_PATH)
+            group.attrs.put(doc)
+            self._keep(_SCAN_PATH, group)
 
     # -- root information -----------------------------------------------------
 
@@ -1274,10 +1341,12 @@ class OutputStore:
             raise StoreError(f"run entry has run_id {run_id!r}, which cannot name a group in "
                              f"{self.location}; give each run an id of letters, digits, '.', '_' or '-'")
         path = f"{_RUNS_PATH}/{run_id}"
-        with write_errors(f"the run record {path} of {self.location}"):
+        with self._writing(f"the run record {path} of {self.location}"):
             if not replace and isinstance(self._node(path), zarr.Group):
                 return
-            self._root.require_group(path).attrs.put({"run": entry})
+            group = self._root.require_group(path)
+            group.attrs.put({"run": entry})
+            self._keep(path, group)
 
     def read_runs(self) -> list[dict[str, Any]]:
         """Every run's entry, oldest first (by ``start``, then ``run_id``). Works read-only."""
