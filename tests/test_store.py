@@ -147,6 +147,26 @@ def test_layout_matches_zarr_v3_metadata(tmp_path: Path, compression: str, cname
     assert store.list_arrays() == [NAME]
 
 
+def test_block_table_documents_are_the_ones_zarr_writes_node_by_node(tmp_path: Path):
+    # Reference: zarr-python creating the group and each array with its own calls. The
+    # store writes a table's five documents in one call; they must not differ.
+    store = OutputStore.open(str(tmp_path / "out.zarr"))
+    _prepare(store)
+    ref = zarr.open_group(LocalStore(tmp_path / "ref.zarr"), mode="w", zarr_format=3)
+    group = ref.create_group("t", attributes={"errors": {}})
+    nan = float("nan")
+    group.create_array("status", shape=(3,), dtype="int8", chunks=(3,), fill_value=0, compressors=None)
+    group.create_array("span", shape=(3, 2), dtype="int64", chunks=(3, 2), fill_value=-1, compressors=None)
+    group.create_array("figures", shape=(3, 3, 2), dtype="float64", chunks=(1, 3, 2), fill_value=nan,
+                       compressors=None, attributes={"columns": COLUMNS})
+    group.create_array("seams", shape=(3, 4, 4, 3), dtype="float64", chunks=(1, 4, 4, 3), fill_value=nan,
+                       compressors=None)
+    ours = tmp_path / "out.zarr" / "_twinpass" / "blocks" / NAME
+    for key in ("", "status", "span", "figures", "seams"):
+        assert json.loads((ours / key / "zarr.json").read_text()) == \
+            json.loads((tmp_path / "ref.zarr" / "t" / key / "zarr.json").read_text()), key
+
+
 def test_json_safe_converts_numpy_nan_tuples_and_datetimes():
     out = json_safe({
         "a": np.float32(0.5), "b": np.int16(-3), "c": (1, np.nan), "d": np.array([[np.inf, 2.0]]),
