@@ -316,7 +316,7 @@ def _halo_of(config: Path) -> dict[str, Any]:
     from twinpass.config import load_config
     from twinpass.core.blocks import choose_layout
     from twinpass.core.kernel import block_window
-    from twinpass.engine import segment_edge_samples
+    from twinpass.engine import segment_block_samples, segment_edge_samples
     from twinpass.job import prepare
 
     class NoRecords:
@@ -341,7 +341,7 @@ def _halo_of(config: Path) -> dict[str, Any]:
                             memory_budget_mib=cfg.processing.memory_budget_mib)
         # The engine's own choice (engine.run_segment): carry mode has no halos.
         carry = (cfg.processing.mode != "halo" and not getattr(w, "holes", ())
-                 and use_carry(d, lay.block_samples, cfg))
+                 and use_carry(d, segment_block_samples(w, lay), cfg))
         info = layouts.setdefault(f"{w.sample_rate_hz:g} Hz x {w.channels} ch", {
             "family": d.family, "order": d.order, "sections": d.n_sections, "halo": lay.halo,
             "block_samples": lay.block_samples, "nominal_overhead": 2 * lay.halo / lay.block_samples,

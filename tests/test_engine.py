@@ -208,6 +208,24 @@ def test_auto_mode_carries_states_when_the_halo_exceeds_the_block(tmp_path):
     assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
 
 
+def test_auto_mode_carries_states_for_files_shorter_than_the_halo(tmp_path):
+    """Twenty files of 400 samples, no block length set: the layout's blocks would be far
+    longer than the 670-sample halo, but no block can be longer than its file, so run_job
+    carries the states instead of reading several neighbouring files for every block; the
+    result equals scipy.signal.sosfiltfilt over the whole segment."""
+    x = make_signal(8000, 2, FS, seed=9)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, 20)
+    cfg = write_config(tmp_path, processing={"mode": "auto"})
+    assert run_job(load_config(cfg)).ok
+    g = open_store(tmp_path / "out.zarr")
+    assert {g[a].attrs["blocks"]["mode"] for a in files.arrays} == {"carry"}
+    filt = g[files.arrays[0]].attrs["filter"]
+    assert filt["effective_length_samples"] > 400
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    # Reference: scipy.signal.sosfiltfilt on the whole segment (see _reference).
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
 def test_end_extension_longer_than_the_halo_reads_across_several_files(tmp_path):
     """With 2500 edge samples (more than halo + block) the blocks at each segment end read
     windows spanning three of these 1000-sample files."""

@@ -471,6 +471,16 @@ def _layout(seg: SegmentWork, design: Design, cfg: JobConfig) -> Layout:
     )
 
 
+def segment_block_samples(seg: SegmentWork, layout: Layout) -> int:
+    """The longest block core (samples) the halo mode would run in ``seg``.
+
+    The layout's block length, or less when every file of the segment is shorter (blocks
+    never cross a file's end): a segment of files shorter than the halo is then carried
+    in ``mode = "auto"``, instead of reading many neighbouring files for each block.
+    """
+    return max((b - a for f in seg.files for a, b in layout.spans(f.frames)), default=layout.block_samples)
+
+
 def segment_edge_samples(seg_frames: int, design: Design, cfg: JobConfig) -> int:
     return resolve_edge_samples(cfg.processing.edge_samples, design.effective_length, seg_frames,
                                 edge=cfg.processing.edge)
@@ -848,7 +858,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     if cfg.processing.mode != "halo":
         from .engine_carry import run_segment_carry, use_carry  # it imports this module
 
-        if not seg.holes and use_carry(design, layout.block_samples, cfg):  # pieces between holes use halos
+        if not seg.holes and use_carry(design, segment_block_samples(seg, layout), cfg):  # pieces between holes use halos
             return run_segment_carry(seg, design, cfg, store, client, on_block=on_block)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
     # Workers on this machine leave syncing their output to this thread, which waits on the
