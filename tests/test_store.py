@@ -690,6 +690,23 @@ def test_each_node_is_opened_once_per_store_object(store: OutputStore, monkeypat
     assert OutputStore.open(store.location, "r").file_records()[SOURCE].complete
 
 
+def test_kept_nodes_are_bounded_and_evicted_ones_are_opened_again(store: OutputStore, monkeypatch):
+    # However many files an archive has, the store keeps a bounded number of opened nodes;
+    # a file whose nodes were dropped meanwhile is simply opened again.
+    monkeypatch.setattr(store_module, "_NODES_KEPT", 4)
+    names = [array_name(f"deck-north/f{i}.wav") for i in range(3)]
+    for n in names:
+        _prepare(store, n, source=f"deck-north/{n}.wav")
+        assert len(store._nodes) <= 4
+    for n in names:
+        for i in range(3):
+            _finish_block(store, i, name=n)
+        store.set_complete(n, True, None)
+        assert len(store._nodes) <= 4
+    records = OutputStore.open(store.location, "r").file_records()
+    assert sorted(r.array_name for r in records.values() if r.complete) == sorted(names)
+
+
 def test_a_batch_of_records_equals_the_same_records_one_by_one(tmp_path: Path):
     spans = [(a, a + 20) for a in range(0, 100, 20)]
     tables = []

@@ -24,6 +24,7 @@ block tasks write data regions only, through :func:`write_block_data`, in whole 
 
 from __future__ import annotations
 
+import collections
 import contextlib
 import copy
 import dataclasses
@@ -237,6 +238,8 @@ def _table_path(name: str) -> str:
 
 
 _SCAN_PATH = f"{RESERVED_PREFIX}/scan"
+_NODES_KEPT = 1024
+"""Opened arrays and groups an :class:`OutputStore` keeps (about six per file in hand)."""
 _RUNS_PATH = f"{RESERVED_PREFIX}/runs"
 _RUN_ID = re.compile(r"[A-Za-z0-9._-]{1,128}")
 RUNS_IN_ROOT = 50
@@ -543,8 +546,8 @@ class OutputStore:
         self._handles: dict[str, _TableHandles] = {}
         """Open block-table arrays per output array, for :meth:`record_block` (driver only);
         dropped by every method that rewrites a table or deletes nodes."""
-        self._nodes: dict[str, zarr.Array | zarr.Group] = {}
-        """Arrays and groups opened so far, by path (see :meth:`_node`)."""
+        self._nodes: collections.OrderedDict[str, zarr.Array | zarr.Group] = collections.OrderedDict()
+        """Arrays and groups opened lately, by path, least recently used first (see :meth:`_node`)."""
 
     # -- opening --------------------------------------------------------------
 
@@ -662,17 +665,25 @@ class OutputStore:
         """
         hit = self._nodes.get(path)
         if hit is not None:
+            self._nodes.move_to_end(path)
             return hit
         try:
             node = self._root[path]
         except KeyError:
             return None
-        self._nodes[path] = node
+        self._keep(path, node)
         return node
 
     def _keep(self, path: str, node: zarr.Array | zarr.Group) -> None:
-        """Keep a node just created or rewritten through ``node`` (see :meth:`_node`)."""
+        """Keep a node just opened, created or rewritten through ``node`` (see :meth:`_node`).
+
+        At most :data:`_NODES_KEPT` nodes are kept, the most recently used: enough for the
+        files the segment drivers have in hand, and bounded however many files the archive has.
+        """
         self._nodes[path] = node
+        self._nodes.move_to_end(path)
+        while len(self._nodes) > _NODES_KEPT:
+            self._nodes.popitem(last=False)
 
     def _forget(self, path: str | None = None) -> None:
         """Drop kept nodes: ``path`` and everything under it, or all of them (None)."""
