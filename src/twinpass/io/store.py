@@ -238,8 +238,9 @@ def _table_path(name: str) -> str:
 
 
 _SCAN_PATH = f"{RESERVED_PREFIX}/scan"
-_NODES_KEPT = 1024
-"""Opened arrays and groups an :class:`OutputStore` keeps (about six per file in hand)."""
+_NODES_KEPT = 8192
+"""Opened arrays and groups an :class:`OutputStore` keeps: about six per file in hand, some 3 kB
+each (about 23 MiB in all at most)."""
 _RUNS_PATH = f"{RESERVED_PREFIX}/runs"
 _RUN_ID = re.compile(r"[A-Za-z0-9._-]{1,128}")
 RUNS_IN_ROOT = 50
