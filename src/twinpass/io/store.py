@@ -686,6 +686,12 @@ class OutputStore:
         while len(self._nodes) > _NODES_KEPT:
             self._nodes.popitem(last=False)
 
+    def _put_group(self, path: str, attrs: dict[str, Any]) -> None:
+        """Create the group at ``path`` if missing, replace its attributes, and keep it."""
+        group = self._root.require_group(path)
+        group.attrs.put(attrs)
+        self._keep(path, group)
+
     def _forget(self, path: str | None = None) -> None:
         """Drop kept nodes: ``path`` and everything under it, or all of them (None)."""
         self._handles.clear()
@@ -1308,9 +1314,7 @@ class OutputStore:
             "files": json_safe({str(k): dict(v) for k, v in entries.items()}, "scan cache"),
         }
         with self._writing(f"the scan cache of {self.location}"):
-            group = self._root.require_group(_SCAN_PATH)
-            group.attrs.put(doc)
-            self._keep(_SCAN_PATH, group)
+            self._put_group(_SCAN_PATH, doc)
 
     # -- root information -----------------------------------------------------
 
@@ -1374,9 +1378,7 @@ class OutputStore:
         with self._writing(f"the run record {path} of {self.location}"):
             if not replace and isinstance(self._node(path), zarr.Group):
                 return
-            group = self._root.require_group(path)
-            group.attrs.put({"run": entry})
-            self._keep(path, group)
+            self._put_group(path, {"run": entry})
 
     def read_runs(self) -> list[dict[str, Any]]:
         """Every run's entry, oldest first (by ``start``, then ``run_id``). Works read-only."""
