@@ -167,6 +167,84 @@ def test_block_table_documents_are_the_ones_zarr_writes_node_by_node(tmp_path: P
             json.loads((tmp_path / "ref.zarr" / "t" / key / "zarr.json").read_text()), key
 
 
+@pytest.mark.parametrize("compression", ["none", "lz4", "zstd"])
+def test_output_array_and_attribute_documents_are_the_ones_zarr_writes(tmp_path: Path, compression: str):
+    # Reference: zarr-python creating the array, replacing and merging its attributes with
+    # its own calls. In a local store twinpass writes these documents itself.
+    store = OutputStore.open(str(tmp_path / "out.zarr"))
+    _prepare(store, compression=compression)
+    ref = zarr.open_group(LocalStore(tmp_path / "ref.zarr"), mode="w", zarr_format=3)
+    ours = tmp_path / "out.zarr" / NAME / "zarr.json"
+    theirs = tmp_path / "ref.zarr" / NAME / "zarr.json"
+    attrs = json.loads(ours.read_text())["attributes"]
+    arr = ref.create_array(NAME, shape=(100, 3), dtype="float32", chunks=(20, 3),
+                           compressors=store_module._compressors(compression), fill_value=0,
+                           dimension_names=("time", "channel"), attributes=attrs)
+    assert json.loads(ours.read_text()) == json.loads(theirs.read_text())
+    # the parent group made on the way, as Zarr makes it
+    assert json.loads((ours.parent.parent / "zarr.json").read_text()) == \
+        json.loads((theirs.parent.parent / "zarr.json").read_text())
+    for i in range(3):
+        _finish_block(store, i)
+    store.set_complete(NAME, True, {"worst": 0.5})
+    store.update_attrs(NAME, segment="deck-north#1")
+    arr.update_attributes({"complete": True, "checks": {"worst": 0.5}})
+    arr.update_attributes({"segment": "deck-north#1"})
+    assert json.loads(ours.read_text()) == json.loads(theirs.read_text())
+    # and Zarr reads what twinpass wrote, attributes and data
+    back = zarr.open_array(LocalStore(tmp_path / "out.zarr"), path=NAME, mode="r")
+    assert back.attrs["complete"] is True and back.attrs["segment"] == "deck-north#1"
+    assert back[45, 0] == 2.0
+
+
+def test_block_table_reads_equal_zarrs_own_reads(store: OutputStore, tmp_path: Path):
+    # Reference: zarr-python reading the same arrays. Local block tables are read by
+    # twinpass from their chunk files: missing chunks (blocks not recorded) must read as
+    # the fill value, and a status column longer than one chunk must come back whole.
+    n = store_module._TABLE_CHUNK + 3
+    spans = [(i * 20, i * 20 + 20) for i in range(n)]
+    _prepare(store, frames=20 * n, spans=spans)
+    for i in (0, 2, n - 1):
+        _finish_block(store, i, BlockStatus.WARN if i == 2 else BlockStatus.PASS)
+    store.record_block(NAME, 1, BlockStatus.ERROR, None, None, "reader failed")
+    table = store.read_block_table(NAME)
+    group = zarr.open_group(LocalStore(tmp_path / "out.zarr"), path=f"_twinpass/blocks/{NAME}", mode="r")
+    for key in ("status", "span", "figures", "seams"):
+        np.testing.assert_array_equal(getattr(table, key), group[key][:], err_msg=key)
+    assert table.status[: 3].tolist() == [1, 4, 2] and table.status[-1] == 1
+    assert np.isnan(table.figures[3]).all() and table.errors == {1: "reader failed"}
+
+
+@pytest.mark.parametrize("compression", ["none", "lz4"])
+def test_rows_written_by_the_store_are_byte_for_byte_zarrs(tmp_path: Path, compression: str):
+    # Reference: zarr-python writing the same rows into an array of the same metadata,
+    # including the array's last, partial chunk (filled with the fill value by Zarr).
+    root = zarr.open_group(LocalStore(tmp_path / "s.zarr"), mode="w", zarr_format=3)
+    values = np.arange(23 * 4, dtype=np.float64).reshape(23, 4)
+    ours, theirs = (root.create_array(k, shape=(23, 4), chunks=(5, 4), dtype="float64", fill_value=np.nan,
+                                      compressors=store_module._compressors(compression)) for k in ("a", "b"))
+    store_module.write_rows(ours, 0, values)
+    theirs[:] = values
+    files = sorted(p.relative_to(tmp_path / "s.zarr" / "b") for p in (tmp_path / "s.zarr" / "b").rglob("c/*/*"))
+    assert len(files) == 5
+    for f in files:
+        assert (tmp_path / "s.zarr" / "a" / f).read_bytes() == (tmp_path / "s.zarr" / "b" / f).read_bytes(), f
+    np.testing.assert_array_equal(zarr.open_array(LocalStore(tmp_path / "s.zarr"), path="a", mode="r")[:], values)
+    with pytest.raises(StoreError, match="whole 5-row chunks"):
+        store_module.write_rows(ours, 3, values[:4])
+
+
+def test_arrays_for_block_writes_are_made_from_their_documents(store: OutputStore, tmp_path: Path):
+    # Reference: zarr-python opening the array itself.
+    _prepare(store)
+    ours = store_module._writable_array(store.location, NAME)
+    theirs = zarr.open_array(LocalStore(tmp_path / "out.zarr"), path=NAME, mode="r+")
+    assert ours.metadata == theirs.metadata
+    assert ours.path == theirs.path and ours.chunks == theirs.chunks
+    with pytest.raises(StoreError, match="not found"):
+        write_block_data(store.location, "deck-north", 0, np.zeros((20, 3)))  # a group, not an array
+
+
 def test_json_safe_converts_numpy_nan_tuples_and_datetimes():
     out = json_safe({
         "a": np.float32(0.5), "b": np.int16(-3), "c": (1, np.nan), "d": np.array([[np.inf, 2.0]]),
@@ -658,8 +736,16 @@ def test_a_flag_write_that_fails_is_not_taken_as_written(store: OutputStore, mon
     async def io_error(self, key, value):  # injected fault: POSIX errno EIO on metadata writes
         raise OSError(errno.EIO, "Input/output error")
 
+    real_put = store_module._put_file
+
+    def io_error_on_documents(path, payload):  # the store writes local metadata documents itself
+        if Path(path).name == "zarr.json":
+            raise OSError(errno.EIO, "Input/output error")
+        real_put(path, payload)
+
     with monkeypatch.context() as m:
         m.setattr(LocalStore, "set", io_error)
+        m.setattr(store_module, "_put_file", io_error_on_documents)
         with pytest.raises(StoreError, match="Input/output error"):
             store.invalidate_blocks(NAME, [1])
     assert OutputStore.open(store.location, "r").array_attrs(NAME)["complete"] is True  # nothing written

@@ -29,6 +29,7 @@ import contextlib
 import copy
 import dataclasses
 import enum
+import json
 import os
 import re
 import shutil
@@ -44,8 +45,11 @@ import fsspec
 import numpy as np
 import zarr
 from zarr.codecs import BloscCodec, BloscShuffle
-from zarr.core.group import GroupMetadata
-from zarr.storage import FsspecStore, LocalStore, MemoryStore
+from zarr.core.array import AsyncArray
+from zarr.core.buffer import default_buffer_prototype
+from zarr.core.group import AsyncGroup, GroupMetadata
+from zarr.core.metadata.v3 import ArrayV3Metadata
+from zarr.storage import FsspecStore, LocalStore, MemoryStore, StorePath
 
 from ..core.types import FileRecord
 from ..errors import StoreError, UnsafePathError
@@ -78,6 +82,7 @@ __all__ = [
     "json_safe",
     "library_versions",
     "write_block_data",
+    "write_rows",
 ]
 
 STORE_LAYOUT = 1
@@ -286,6 +291,9 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, 
         arr = _writable_array(location, name)
     except (FileNotFoundError, NotADirectoryError, KeyError, zarr.errors.BaseZarrError) as e:
         raise StoreError(f"output array {name} not found in {location}; prepare the file before writing blocks") from e
+    except (ValueError, TypeError) as e:  # a metadata document that is not JSON, or not an array's
+        raise StoreError(f"output array {name} in {location}: its zarr.json cannot be read ({e}); the store is "
+                         "damaged: rerun with --force to rewrite the file") from e
     frames, channels = arr.shape
     chunk = arr.chunks[0]
     if data.ndim != 2 or data.shape[1] != channels:
@@ -360,10 +368,16 @@ _OPENED_LOCK = threading.Lock()
 def _writable_array(location: str, name: str) -> zarr.Array:
     """The output array ``name`` opened for block writes (``write_empty_chunks`` on).
 
-    In a local store the array is opened once per process for as long as its metadata
-    document (``zarr.json``) reads the same, byte for byte: a block task then reads one
-    small file instead of a round trip through Zarr's event loop. Other stores open it
-    every time.
+    In a local store the array is made from its metadata document (``zarr.json``), read
+    once per block as one small file, parsed by Zarr itself and kept per process for as long
+    as the document reads the same, byte for byte: no round trip through Zarr's event loop,
+    which cost a block task about as much as writing a one-second block. Other stores open
+    it through Zarr every time.
+
+    Raises
+    ------
+    FileNotFoundError, KeyError
+        No array ``name`` (KeyError: a group is there).
     """
     root = local_path(location)
     if root is None:
@@ -376,21 +390,27 @@ def _writable_array(location: str, name: str) -> zarr.Array:
         hit = _OPENED.get(key)
     if hit is not None and hit[0] == doc:
         return hit[1]
-    arr = zarr.open_array(LocalStore(root), path=name, mode="r+").with_config({"write_empty_chunks": True})
-    if meta_path.read_bytes() == doc:  # unchanged while opening: the array matches the document
-        with _OPENED_LOCK:
-            if len(_OPENED) >= 1024:
-                _OPENED.clear()
-            _OPENED[key] = (doc, arr)
+    data = json.loads(doc)
+    if not isinstance(data, dict) or data.get("zarr_format") != 3 or data.get("node_type") != "array":
+        raise KeyError(f"{name} is not a Zarr v3 array")
+    async_arr = AsyncArray.from_dict(StorePath(LocalStore(root), name), data)
+    arr = zarr.Array(async_arr).with_config({"write_empty_chunks": True})
+    with _OPENED_LOCK:
+        if len(_OPENED) >= 1024:
+            _OPENED.clear()
+        _OPENED[key] = (doc, arr)
     return arr
 
 
-def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
-    """Bytes of one whole chunk as the array's codecs store it, for the codec chains twinpass
-    creates (little-endian bytes, then optionally Blosc); ``None`` for any other chain.
+def _chunk_codec(arr: zarr.Array) -> tuple[Callable[[np.ndarray], Any], Callable[[bytes], np.ndarray]] | None:
+    """Encoder and decoder of one whole chunk as the array's codecs store it, for the codec
+    chains twinpass creates (little-endian bytes, then optionally Blosc) with Zarr's default
+    chunk keys; ``None`` for any other chain (Zarr reads and writes those itself).
 
-    The Blosc step is numcodecs' ``Blosc`` with the codec's own settings, which is what Zarr
-    itself runs for this codec; run here, it compresses in the calling worker thread.
+    The encoder takes a whole chunk's values and returns its bytes; the decoder takes the
+    bytes of a chunk file and returns the chunk, shape ``arr.chunks``. The Blosc step is
+    numcodecs' ``Blosc`` with the codec's own settings, which is what Zarr itself runs for
+    this codec; run here, it runs in the calling thread.
     """
     from zarr.codecs import BytesCodec
     from zarr.core.metadata.v3 import ArrayV3Metadata
@@ -403,8 +423,17 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
     if not codecs or not isinstance(codecs[0], BytesCodec) or getattr(endian, "value", endian) not in (None, "little"):
         return None
     dtype = np.dtype(arr.dtype).newbyteorder("<")
+    shape = tuple(arr.chunks)
+
+    def values(raw: Any) -> np.ndarray:
+        out = np.frombuffer(raw, dtype=dtype)
+        if out.size != int(np.prod(shape)):
+            raise StoreError(f"a chunk of {arr.path} holds {out.size} values, not the {int(np.prod(shape))} of "
+                             f"its {shape} chunks; the store is damaged: rerun with --force")
+        return out.reshape(shape).astype(arr.dtype, copy=False)
+
     if len(codecs) == 1:
-        return lambda a: np.ascontiguousarray(a, dtype=dtype).tobytes()
+        return (lambda a: np.ascontiguousarray(a, dtype=dtype).tobytes()), values
     if len(codecs) != 2 or not isinstance(codecs[1], BloscCodec):
         return None
     import numcodecs
@@ -414,7 +443,38 @@ def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
                BloscShuffle.bitshuffle: numcodecs.Blosc.BITSHUFFLE}[c.shuffle]
     blosc = numcodecs.Blosc(cname=c.cname.value, clevel=c.clevel, shuffle=shuffle, blocksize=c.blocksize,
                             typesize=c.typesize)
-    return lambda a: blosc.encode(np.ascontiguousarray(a, dtype=dtype))
+    return (lambda a: blosc.encode(np.ascontiguousarray(a, dtype=dtype))), (lambda b: values(blosc.decode(b)))
+
+
+def _chunk_encoder(arr: zarr.Array) -> Callable[[np.ndarray], Any] | None:
+    """The encoder of :func:`_chunk_codec`, or None."""
+    codec = _chunk_codec(arr)
+    return None if codec is None else codec[0]
+
+
+def _read_local_chunks(folder: Path, arr: zarr.Array) -> np.ndarray | None:
+    """The whole of ``arr`` read from its chunk files under ``folder``, or None if twinpass
+    cannot decode them itself (see :func:`_chunk_codec`) or the array is not chunked along its
+    first axis only; Zarr reads it then.
+
+    For the small arrays of block tables, read many times per file: byte for byte what Zarr
+    reads, without a round trip through Zarr's event loop per array. A missing chunk reads as
+    the fill value, as in Zarr.
+    """
+    codec = _chunk_codec(arr)
+    if codec is None or tuple(arr.chunks[1:]) != tuple(arr.shape[1:]):
+        return None
+    decode = codec[1]
+    out = np.full(arr.shape, arr.fill_value, dtype=arr.dtype)
+    chunk = arr.chunks[0]
+    for c0 in range(0, arr.shape[0], chunk):
+        try:
+            raw = _chunk_file(folder, arr, c0).read_bytes()
+        except FileNotFoundError:
+            continue
+        part = out[c0 : c0 + chunk]
+        part[...] = decode(raw)[: part.shape[0]]
+    return out
 
 
 def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndarray], Any], start: int,
@@ -444,6 +504,35 @@ def _write_local_chunks(folder: Path, arr: zarr.Array, encode: Callable[[np.ndar
             _overwrite_file(path, payload, sync=sync)
         else:
             _put_file(path, payload)
+
+
+def write_rows(arr: zarr.Array, start: int, data: np.ndarray) -> None:
+    """Write ``data`` as rows [start, start + len(data)) of ``arr``, in whole chunks.
+
+    For the small bookkeeping arrays of a store (block tables, carried filter states): in a
+    local store whose codecs twinpass encodes itself (:func:`_chunk_codec`) and an array
+    chunked along its first axis only, each chunk is encoded here and renamed into place
+    (:func:`_write_local_chunks`), byte for byte what Zarr writes, without a round trip
+    through Zarr's event loop; Zarr writes it otherwise.
+
+    Parameters
+    ----------
+    arr : zarr.Array
+    start : int
+        First row; a multiple of the chunk length.
+    data : numpy.ndarray
+        Rows of ``arr`` (shape ``(rows, *arr.shape[1:])``), ending on a chunk boundary or at
+        the array's end.
+    """
+    stop = start + data.shape[0]
+    chunk = arr.chunks[0]
+    if start % chunk or (stop % chunk and stop != arr.shape[0]):
+        raise StoreError(f"{arr.path}: rows [{start}, {stop}) are not whole {chunk}-row chunks")
+    encode = _chunk_encoder(arr) if isinstance(arr.store, LocalStore) else None
+    if encode is None or tuple(arr.chunks[1:]) != tuple(arr.shape[1:]):
+        arr[start:stop] = data
+        return
+    _write_local_chunks(Path(arr.store.root) / arr.path, arr, encode, start, np.asarray(data))
 
 
 def _chunk_file(folder: Path, arr: zarr.Array, row: int) -> Path:
@@ -506,6 +595,21 @@ def _overwrite_file(path: Path, payload: Any, *, sync: bool = True) -> None:
                 _data_sync(fd)
             return
     _put_file(path, payload)
+
+
+def _metadata_files(meta: ArrayV3Metadata | GroupMetadata) -> dict[str, bytes]:
+    """A node's metadata documents (``zarr.json``) as Zarr itself serialises them."""
+    return {key: buf.to_bytes() for key, buf in meta.to_buffer_dict(default_buffer_prototype()).items()}
+
+
+@lru_cache(maxsize=64)
+def _array_metadata(frames: int, channels: int, dtype: str, chunk_samples: int, compression: str) -> ArrayV3Metadata:
+    """Zarr metadata of an output array with no attributes, made by Zarr itself (its
+    ``create_array`` in memory); kept, since the files of an archive mostly share it."""
+    mem = zarr.open_group(MemoryStore(), mode="w", zarr_format=3)
+    return mem.create_array("a", shape=(frames, channels), dtype=dtype, chunks=(chunk_samples, channels),
+                            compressors=_compressors(compression), fill_value=0,
+                            dimension_names=DIMENSION_NAMES).metadata
 
 
 @lru_cache(maxsize=64)
@@ -668,6 +772,8 @@ class OutputStore:
         if hit is not None:
             self._nodes.move_to_end(path)
             return hit
+        if self._missing_locally(path):
+            return None
         try:
             node = self._root[path]
         except KeyError:
@@ -691,6 +797,76 @@ class OutputStore:
         group = self._root.require_group(path)
         group.attrs.put(attrs)
         self._keep(path, group)
+
+    def _create_nodes(self, nodes: Mapping[str, ArrayV3Metadata | GroupMetadata]) -> None:
+        """Create the groups and arrays ``nodes`` (paths where nothing is) and keep them.
+
+        In a local store their metadata documents are written here, each renamed into place,
+        with any missing parent group, as Zarr writes them (:func:`_metadata_files`): a
+        round trip through Zarr's event loop per document cost a file of a first run more
+        than its samples did. Other stores use ``zarr.create_hierarchy``. Each node must
+        have attributes of its own: Zarr updates an opened node's attributes in place.
+
+        Raises
+        ------
+        StoreError
+            Something is already at one of the paths, or a parent is an array.
+        """
+        if self.local_root is None:
+            for node_path, node in zarr.create_hierarchy(store=self._store, nodes=nodes, overwrite=False):
+                if node_path in nodes:
+                    self._keep(node_path, node)
+            return
+        parents = sorted({"/".join(path.split("/")[:i]) for path in nodes for i in range(1, path.count("/") + 1)}
+                         - set(nodes))
+        for parent in parents:
+            doc = self.local_root / parent / "zarr.json"
+            if not doc.exists():
+                _put_file(doc, _metadata_files(GroupMetadata())["zarr.json"])
+            elif self._node_type(parent) != "group":
+                raise StoreError(f"{self.location}: cannot create {sorted(nodes)[0]} inside {parent}, "
+                                 "which is not a group; remove it or choose another store")
+        for path, meta in nodes.items():
+            if (self.local_root / path / "zarr.json").exists():
+                raise StoreError(f"{self.location}: {path} exists already; rerun to replace it")
+        for path, meta in nodes.items():
+            for key, payload in _metadata_files(meta).items():
+                _put_file(self.local_root / path / key, payload)
+            where = StorePath(self._store, path)
+            if isinstance(meta, GroupMetadata):
+                self._keep(path, zarr.Group(AsyncGroup(metadata=meta, store_path=where)))
+            else:
+                self._keep(path, zarr.Array(AsyncArray(metadata=meta, store_path=where)))
+
+    def _node_type(self, path: str) -> str | None:
+        """``"array"`` or ``"group"``: what the metadata document at ``path`` describes (local stores)."""
+        node = self._nodes.get(path)
+        if node is not None:
+            return "group" if isinstance(node, zarr.Group) else "array"
+        try:
+            return str(json.loads((self.local_root / path / "zarr.json").read_bytes()).get("node_type"))
+        except (OSError, ValueError, AttributeError):
+            return None
+
+    def _set_attributes(self, path: str, node: zarr.Array | zarr.Group, attrs: Mapping[str, Any], *,
+                        replace: bool = False) -> None:
+        """Merge ``attrs`` into the attributes of ``node`` (the kept node at ``path``), or with
+        ``replace`` make them its attributes, and write its metadata document.
+
+        In a local store the document is written here, renamed into place, as Zarr serialises
+        it; the node in hand changes only once it is written. Other stores go through Zarr.
+        """
+        if self.local_root is None:
+            if replace:
+                node.attrs.put(dict(attrs))
+            else:
+                node.update_attributes(dict(attrs))
+            return
+        new = dict(attrs) if replace else {**node.metadata.attributes, **attrs}
+        for key, payload in _metadata_files(dataclasses.replace(node.metadata, attributes=new)).items():
+            _put_file(self.local_root / path / key, payload)
+        node.metadata.attributes.clear()
+        node.metadata.attributes.update(new)
 
     def _forget(self, path: str | None = None) -> None:
         """Drop kept nodes: ``path`` and everything under it, or all of them (None)."""
@@ -737,6 +913,16 @@ class OutputStore:
                              "rerun with --force to rebuild it")
         return node
 
+    def _table_values(self, name: str, key: str, arr: zarr.Array | None = None) -> np.ndarray:
+        """The whole of one block-table array of ``name`` (a new array): from its chunk files
+        in a local store (:func:`_read_local_chunks`), through Zarr otherwise."""
+        arr = self._table_array(name, key) if arr is None else arr
+        if self.local_root is not None:
+            values = _read_local_chunks(self.local_root / _table_path(name) / key, arr)
+            if values is not None:
+                return values
+        return np.asarray(arr[:])
+
     def _table_handles(self, name: str) -> _TableHandles:
         h = self._handles.get(name)
         if h is None:
@@ -744,8 +930,9 @@ class OutputStore:
             arr = self._array(name)
             status, figures, seams = (self._table_array(name, k) for k in ("status", "figures", "seams"))
             h = _TableHandles(
-                group, status, np.asarray(self._table_array(name, "span")[:]), figures, seams,
-                int(arr.chunks[0]), arr.metadata.encode_chunk_key, np.array(status[:], dtype=np.int8),
+                group, status, self._table_values(name, "span"), figures, seams,
+                int(arr.chunks[0]), arr.metadata.encode_chunk_key,
+                self._table_values(name, "status", status).astype(np.int8, copy=False),
             )
             if self.local_root is not None:
                 encoders = {"status": _chunk_encoder(status), "figures": _chunk_encoder(figures),
@@ -757,8 +944,15 @@ class OutputStore:
             self._handles[name] = h
         return h
 
+    def _missing_locally(self, path: str) -> bool:
+        """Whether a local store has no node at ``path`` (no metadata document there): one
+        ``stat`` instead of a round trip through Zarr's event loop, for the paths of new files."""
+        return self.local_root is not None and not (self.local_root / path / "zarr.json").exists()
+
     def _delete(self, path: str) -> None:
         self._forget(path)
+        if self.local_root is not None and not (self.local_root / path).exists():
+            return  # nothing there: one stat instead of a round trip through Zarr's event loop
         if self.local_root is not None:
             target = (self.local_root / path).resolve()
             root = self.local_root.resolve()
@@ -767,9 +961,10 @@ class OutputStore:
         with write_errors(f"{path} (deleting)"):
             del self._root[path]
 
-    def _mark_incomplete(self, arr: zarr.Array) -> None:
+    def _mark_incomplete(self, name: str) -> None:
+        arr = self._array(name)
         if arr.attrs.get("complete") is not False:
-            arr.update_attributes({"complete": False})
+            self._set_attributes(name, arr, {"complete": False})
 
     def _check_parents(self, name: str) -> None:
         parts = name.split("/")
@@ -878,24 +1073,14 @@ class OutputStore:
                 and _compression_of(node) == compression
             )
             if same:
-                node.attrs.put(meta)  # first, before anything else: one write, complete = False
+                self._set_attributes(name, node, meta, replace=True)  # first: one write, complete = False
             else:
                 if node is not None:
-                    self._mark_incomplete(node)  # first: a deletion cut short never leaves a complete array
+                    self._mark_incomplete(name)  # first: a deletion cut short never leaves a complete array
                     self._delete(name)
                 self._delete(_table_path(name))
-                created = self._root.create_array(
-                    name,
-                    shape=(frames, channels),
-                    dtype=dtype,
-                    chunks=(chunk_samples, channels),
-                    compressors=_compressors(compression),
-                    fill_value=0,
-                    dimension_names=DIMENSION_NAMES,
-                    attributes=meta,
-                    overwrite=True,
-                )
-                self._keep(name, created)
+                self._create_nodes({name: dataclasses.replace(
+                    _array_metadata(frames, channels, dtype, chunk_samples, compression), attributes=meta)})
             table = self._matching_table(name, span_arr, columns, seam_samples, channels) if same else None
             if table is not None and keep_done:
                 return self.read_block_table(name, figures=False, seams=False)
@@ -948,7 +1133,7 @@ class OutputStore:
         same = (
             st.shape == (n,)
             and sp.shape == (n, 2)
-            and np.array_equal(sp[:], span)
+            and np.array_equal(self._table_values(name, "span", sp), span)
             and fig.shape == (n, channels, len(columns))
             and list(fig.attrs.get("columns", [])) == columns
             and sm.shape == (n, 4, seam_samples, channels)
@@ -975,14 +1160,14 @@ class OutputStore:
             if chunks.exists():
                 shutil.rmtree(chunks)
         if group.attrs.get("errors"):
-            group.update_attributes({"errors": {}})
+            self._set_attributes(_table_path(name), group, {"errors": {}})
         return True
 
     def _create_table(self, name: str, span: np.ndarray, columns: list[str], seam_samples: int, channels: int) -> None:
         path = _table_path(name)
         self._delete(path)
-        # One call writes the group and its four arrays side by side (a fifth of the time of
-        # creating them one by one, which a first run pays for every file). Their statuses
+        # The group and its four arrays are written side by side (a first run pays for them
+        # for every file). Their statuses
         # read as pending (the fill value) until written, so the order of the documents
         # does not matter.
         metas = _table_metadata(int(span.shape[0]), int(channels), tuple(str(c) for c in columns), int(seam_samples),
@@ -991,11 +1176,9 @@ class OutputStore:
         # each node its own attributes: Zarr updates an opened node's attributes in place
         nodes.update({f"{path}/{key}": dataclasses.replace(meta, attributes=copy.deepcopy(meta.attributes))
                       for key, meta in metas.items()})
-        for node_path, node in zarr.create_hierarchy(store=self._store, nodes=nodes, overwrite=False):
-            if node_path in nodes:
-                self._keep(node_path, node)
+        self._create_nodes(nodes)
         if span.shape[0]:
-            self._table_array(name, "span")[:] = span
+            write_rows(self._table_array(name, "span"), 0, span)
 
     # -- block tables ---------------------------------------------------------
 
@@ -1007,10 +1190,10 @@ class OutputStore:
             sm = self._table_array(name, "seams")
             errors = {int(k): str(v) for k, v in dict(group.attrs.get("errors") or {}).items()}
             arrays = {
-                "status": np.asarray(self._table_array(name, "status")[:], dtype=np.int8),
-                "span": np.asarray(self._table_array(name, "span")[:], dtype=np.int64),
-                "figures": np.asarray(fig[:]) if figures else None,
-                "seams": np.asarray(sm[:]) if seams else None,
+                "status": self._table_values(name, "status").astype(np.int8, copy=False),
+                "span": self._table_values(name, "span").astype(np.int64, copy=False),
+                "figures": self._table_values(name, "figures", fig) if figures else None,
+                "seams": self._table_values(name, "seams", sm) if seams else None,
             }
         for a in arrays.values():
             if a is not None:
@@ -1099,7 +1282,7 @@ class OutputStore:
                         values[key][0].append(i)
                         values[key][1].append(value)
             if any(v not in _DONE for v in statuses.values()):
-                self._mark_incomplete(self._array(name))
+                self._mark_incomplete(name)
             for key, target in (("figures", h.figures), ("seams", h.seams)):
                 idx, vals = values[key]
                 if h.folder is not None:  # one block per chunk: each value is one whole chunk
@@ -1117,7 +1300,7 @@ class OutputStore:
                 else:
                     errors.pop(str(i), None)
             if errors != before:
-                group.update_attributes({"errors": errors})
+                self._set_attributes(_table_path(name), group, {"errors": errors})
             codes = np.asarray([int(statuses[i]) for i in rows], dtype=np.int8)
             if h.folder is not None:  # whole status chunks from the recorded column, written last
                 recorded = h.codes.copy()
@@ -1144,7 +1327,7 @@ class OutputStore:
         idx = sorted({int(i) for i in block_indices})
         with self._writing(f"{name} (invalidating blocks)"):
             self._handles.pop(name, None)
-            self._mark_incomplete(self._array(name))
+            self._mark_incomplete(name)
             group = self._table(name)
             st = self._table_array(name, "status")
             for i in idx:
@@ -1160,7 +1343,7 @@ class OutputStore:
                 for i in idx:
                     arr[i] = np.nan
             errors = {k: v for k, v in dict(group.attrs.get("errors") or {}).items() if int(k) not in idx}
-            group.update_attributes({"errors": errors})
+            self._set_attributes(_table_path(name), group, {"errors": errors})
 
     def sync_records(self) -> None:
         """Make the block tables and attributes written so far durable (a local store).
@@ -1199,7 +1382,7 @@ class OutputStore:
             update: dict[str, Any] = {"complete": bool(complete)}
             if checks_summary is not None:
                 update["checks"] = json_safe(checks_summary, f"{name} checks")
-            arr.update_attributes(update)
+            self._set_attributes(name, arr, update)
 
     # -- whole files ----------------------------------------------------------
 
@@ -1243,7 +1426,7 @@ class OutputStore:
             if isinstance(node, zarr.Group):
                 raise StoreError(f"{name} in {self.location} is a group, not an output array; not removed")
             if isinstance(node, zarr.Array):
-                self._mark_incomplete(node)
+                self._mark_incomplete(name)
                 self._delete(name)
             self._delete(_table_path(name))
         return node is not None
@@ -1261,7 +1444,7 @@ class OutputStore:
         if attrs.get("complete"):
             raise StoreError(f"{name}: set complete only with set_complete(), which checks the block table")
         with self._writing(f"{name} (attributes)"):
-            self._array(name).update_attributes(json_safe(attrs, f"{name} attributes"))
+            self._set_attributes(name, self._array(name), json_safe(attrs, f"{name} attributes"))
 
     def read(self, name: str, start: int = 0, stop: int | None = None) -> np.ndarray:
         """Frames [start, stop) of an output array, shape (samples, channels)."""
