@@ -28,7 +28,7 @@ from twinpass.config import load_config
 from twinpass.core.checks import FIGURE_INDEX, SEAM_FACTOR
 from twinpass.core.effective import dominant_pole_radius
 from twinpass.engine import dask_client
-from twinpass.engine_carry import carry_layout, run_segment_carry, use_carry, zarr_store_like
+from twinpass.engine_carry import CarryRecord, carry_layout, run_segment_carry, use_carry, zarr_store_like
 from twinpass.errors import ConfigError
 from twinpass.io.store import OutputStore
 from twinpass.job import prepare
@@ -366,3 +366,50 @@ def test_zarr_store_like_names_the_stores_the_output_store_uses(tmp_path):
     for location in (f"file://{tmp_path}/out.zarr", "memory://carry/out.zarr"):
         OutputStore.open(location, mode="a").set_root_info({"stream": "deck"}, versions={})
         assert zarr.open_group(zarr_store_like(location), mode="r").attrs["twinpass"]["spec"] == {"stream": "deck"}
+
+
+@pytest.mark.parametrize("where", ["local", "memory"])
+def test_carry_record_resumes_its_steps_and_starts_afresh_for_another_key(tmp_path, where):
+    # Reference for what is on the store: zarr-python reading the record's group back.
+    location = str(tmp_path / "out.zarr") if where == "local" else f"memory://record-{tmp_path.name}/out.zarr"
+    OutputStore.open(location, mode="a")
+    rec = CarryRecord(location, "deck-0", "key-1", pieces=3, sections=2, channels=2)
+    assert np.isnan(rec.values["fwd_final"]).all() and not rec.done("fwd_done").any()
+    assert not rec.scanned("forward")
+    rec.put("fwd_done", 1, fwd_first=np.array([1.0, 2.0]), fwd_final=np.full((2, 2, 2), 0.5))
+    rec.flush()
+    rec.store_scan("forward", {0: np.ones((2, 2, 2)), 2: np.zeros((2, 2, 2))})
+    again = CarryRecord(location, "deck-0", "key-1", pieces=3, sections=2, channels=2)
+    assert again.done("fwd_done").tolist() == [False, True, False] and again.scanned("forward")
+    np.testing.assert_array_equal(again.values["fwd_final"][1], np.full((2, 2, 2), 0.5))
+    np.testing.assert_array_equal(again.values["fwd_state"][0], np.ones((2, 2, 2)))
+    group = zarr.open_group(zarr_store_like(location), path=again.path, mode="r")
+    assert group.attrs["key"] == "key-1"
+    for name, values in again.values.items():
+        np.testing.assert_array_equal(group[name][...], values, err_msg=name)
+    other = CarryRecord(location, "deck-0", "key-2", pieces=3, sections=2, channels=2)  # another design or files
+    assert not other.done("fwd_done").any() and not other.scanned("forward")
+    assert np.isnan(other.values["fwd_first"]).all()
+    assert zarr.open_group(zarr_store_like(location), path=other.path, mode="r").attrs["key"] == "key-2"
+
+
+def test_short_pieces_share_dask_tasks_and_whole_blocks_run_alone():
+    from types import SimpleNamespace
+
+    from twinpass.engine_carry import _BATCH_PIECES, _MIN_BATCHES, _batches
+
+    def calls(*lengths):
+        return [(SimpleNamespace(piece=SimpleNamespace(index=i, length=n)),) for i, n in enumerate(lengths)]
+
+    block = 1000
+    # blocks of a long file: one task each
+    assert [len(b) for b in _batches(calls(1000, 1000, 1000), block)] == [1, 1, 1]
+    # 100 one-tenth-block files: ten to a task (the samples of a block), in order
+    tasks = _batches(calls(*[100] * 100), block)
+    assert [len(b) for b in tasks] == [10] * 10
+    assert [a[0].piece.index for b in tasks for a in b] == list(range(100))
+    # tiny pieces: at most _BATCH_PIECES to a task; few pieces: spread over _MIN_BATCHES tasks
+    assert max(len(b) for b in _batches(calls(*[1] * 200), block)) == _BATCH_PIECES
+    assert len(_batches(calls(*[1] * 8), block)) == _MIN_BATCHES
+    # a whole block after short pieces starts a task of its own
+    assert [len(b) for b in _batches(calls(*[300] * 6, 1000, 300), block)] == [2, 2, 2, 1, 1]

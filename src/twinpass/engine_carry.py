@@ -75,12 +75,14 @@ with wrong input or with wrong coefficients fails that comparison on one of its 
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import logging
 import re
 import time
 import traceback
+import dataclasses
 from dataclasses import dataclass
 from typing import Any, Callable, TypeVar
 
@@ -108,6 +110,7 @@ from .engine import (
     segment_edge_samples,
 )
 from .errors import ConfigError, KernelError, TwinpassError
+from .io.store import write_rows
 from .io.store_util import RESERVED_PREFIX, json_safe, local_path
 
 __all__ = [
@@ -135,6 +138,10 @@ CARRY_FORMAT = 1
 """Version of the persisted carry layout (part of the key)."""
 _FLUSH_SECONDS = 2.0
 _RECORD_CHUNK = 256
+_BATCH_PIECES = 32
+"""At most this many pieces run in one Dask task (see :func:`_batches`)."""
+_MIN_BATCHES = 4
+"""Pieces of a step are spread over at least this many Dask tasks, when there are that many."""
 
 T = TypeVar("T")
 
@@ -498,28 +505,39 @@ class CarryRecord:
 
     def __init__(self, location: str, slug: str, key: str, pieces: int, sections: int, channels: int) -> None:
         import zarr
+        from zarr.core.group import GroupMetadata
 
         self.location, self.path, self.key = location, f"{RESERVED_PREFIX}/carry/{slug}", key
-        self.m, shape_state = pieces, (pieces, sections, 2, channels)
+        self.m = pieces
+        metas = _record_metadata(pieces, sections, channels)
         root = zarr.open_group(zarr_store_like(location), mode="a", zarr_format=3)
         parent = root.require_group(f"{RESERVED_PREFIX}/carry")
         group = parent.get(slug)
-        shapes = {**{a: shape_state for a in self.STATE_ARRAYS},
-                  **{a: (pieces, channels) for a in self.SAMPLE_ARRAYS}, **{a: (pieces,) for a in self.FLAGS}}
-        fresh = not (isinstance(group, zarr.Group) and group.attrs.get("key") == key
-                     and all(name in group and group[name].shape == shp for name, shp in shapes.items()))
-        if fresh:
+        arrays: dict[str, Any] = {}
+        if isinstance(group, zarr.Group) and group.attrs.get("key") == key:
+            for name, meta in metas.items():
+                arr = group.get(name)
+                if not isinstance(arr, zarr.Array) or arr.shape != meta.shape:
+                    break
+                arrays[name] = arr
+        if len(arrays) == len(metas):  # resume: the steps recorded so far
+            self.values = {name: np.asarray(arr[...]) for name, arr in arrays.items()}
+        else:
             if group is not None:
                 del parent[slug]
-            group = parent.create_group(slug)
-            for name, shp in shapes.items():
-                flag = name in self.FLAGS
-                group.create_array(name, shape=shp, dtype="int8" if flag else "float64",
-                                   chunks=(min(max(1, pieces), _RECORD_CHUNK),) + shp[1:],
-                                   fill_value=0 if flag else float("nan"), compressors=None)
-            group.update_attributes({"key": key, "forward_scan": False, "backward_scan": False})
-        self.group = group
-        self.values = {name: np.asarray(group[name][...]) for name in shapes}
+            # The group (its key written with it) and its arrays in one call; an array cut
+            # short is missing next time, and the record starts afresh.
+            nodes: dict[str, Any] = {self.path: GroupMetadata(
+                attributes={"key": key, "forward_scan": False, "backward_scan": False})}
+            # each array its own attributes: Zarr updates an opened node's attributes in place
+            nodes.update({f"{self.path}/{name}": dataclasses.replace(meta, attributes=dict(meta.attributes))
+                          for name, meta in metas.items()})
+            made = dict(zarr.create_hierarchy(store=root.store, nodes=nodes, overwrite=False))
+            group = made[self.path]
+            arrays = {name: made[f"{self.path}/{name}"] for name in metas}
+            self.values = {name: np.full(meta.shape, meta.fill_value, dtype=meta.dtype.to_native_dtype())
+                           for name, meta in metas.items()}
+        self.group, self.arrays = group, arrays
         self._dirty: set[int] = set()
         self._last_flush = time.monotonic()
 
@@ -544,7 +562,7 @@ class CarryRecord:
             for c in sorted(self._dirty):
                 sl = slice(c * _RECORD_CHUNK, min(self.m, (c + 1) * _RECORD_CHUNK))
                 for name in names:
-                    self.group[name][sl] = self.values[name][sl]
+                    write_rows(self.arrays[name], sl.start, self.values[name][sl])
         self._dirty.clear()
         self._last_flush = time.monotonic()
 
@@ -553,11 +571,30 @@ class CarryRecord:
         name = "fwd_state" if direction == "forward" else "bwd_state"
         for i, s in states.items():
             self.values[name][i] = s
-        self.group[name][...] = self.values[name]
+        write_rows(self.arrays[name], 0, self.values[name])
         self.group.update_attributes({f"{direction}_scan": True})
 
     def scratch_path(self, index: int) -> str:
         return f"{self.path}/forward/{index}"
+
+
+@functools.lru_cache(maxsize=16)
+def _record_metadata(pieces: int, sections: int, channels: int) -> dict[str, Any]:
+    """Zarr metadata of a :class:`CarryRecord`'s arrays, made by Zarr itself (in memory), by name."""
+    import zarr
+    from zarr.storage import MemoryStore
+
+    mem = zarr.open_group(MemoryStore(), mode="w", zarr_format=3)
+    shape_state = (pieces, sections, 2, channels)
+    shapes = {**{a: shape_state for a in CarryRecord.STATE_ARRAYS},
+              **{a: (pieces, channels) for a in CarryRecord.SAMPLE_ARRAYS}, **{a: (pieces,) for a in CarryRecord.FLAGS}}
+    metas = {}
+    for name, shp in shapes.items():
+        flag = name in CarryRecord.FLAGS
+        metas[name] = mem.create_array(name, shape=shp, dtype="int8" if flag else "float64",
+                                       chunks=(min(max(1, pieces), _RECORD_CHUNK),) + shp[1:],
+                                       fill_value=0 if flag else float("nan"), compressors=None).metadata
+    return metas
 
 
 def _slug(segment_id: str) -> str:
@@ -601,31 +638,65 @@ def _sources_for(sources: tuple[SourceSlice, ...], ranges: list[tuple[int, int]]
                  if any(s.seg_offset < b and a < s.seg_offset + s.frames for a, b in ranges))
 
 
+def _batches(calls: list[tuple[Any, ...]], batch_samples: int) -> list[list[tuple[Any, ...]]]:
+    """Consecutive calls grouped into Dask tasks: pieces of whole blocks alone, short pieces
+    (files shorter than a block) together, up to ``batch_samples`` samples and
+    :data:`_BATCH_PIECES` pieces a task, and at least :data:`_MIN_BATCHES` tasks when there
+    are that many pieces, so that every worker has some."""
+    per_task = min(_BATCH_PIECES, max(1, -(-len(calls) // _MIN_BATCHES)))
+    out: list[list[tuple[Any, ...]]] = []
+    size = 0
+    for args in calls:
+        length = args[0].piece.length
+        if not out or len(out[-1]) >= per_task or size + length > batch_samples:
+            out.append([])
+            size = 0
+        out[-1].append(args)
+        size += length
+    return out
+
+
+def _run_batch(fn: Callable[..., Any], calls: list[tuple[Any, ...]]) -> list[Any]:
+    """Dask task: ``fn(*args)`` for each call in turn; an exception is returned as its text."""
+    out: list[Any] = []
+    for args in calls:
+        try:
+            out.append(fn(*args))
+        except Exception as exc:  # the step functions catch their own; never lose the others
+            out.append(f"{type(exc).__name__}: {exc}")
+    return out
+
+
 def _run_tasks(client: Any, fn: Callable[..., Any], calls: list[tuple[Any, ...]], retries: int,
-               label: str) -> Any:
-    """Submit ``fn(*args)`` for each call; yield (args, result or exception text) as they finish."""
+               label: str, batch_samples: int) -> Any:
+    """Run ``fn(*args)`` for each call on the Dask client, short pieces several to a task
+    (:func:`_batches`): a Dask task costs the process about 10 ms of the interpreter, as much
+    as a one-second piece's own work. Yields (args, result or exception text) as they finish.
+    """
     from distributed import as_completed
 
-    futures = [client.submit(fn, *args, pure=False, retries=retries,
-                             key=f"twinpass-carry-{label}-{args[0].piece.index}-{time.time_ns()}")
-               for args in calls]
-    by_key = {f.key: args for f, args in zip(futures, calls)}
+    batches = _batches(calls, batch_samples)
+    futures = [client.submit(_run_batch, fn, batch, pure=False, retries=retries,
+                             key=f"twinpass-carry-{label}-{batch[0][0].piece.index}-{time.time_ns()}")
+               for batch in batches]
+    by_key = {f.key: batch for f, batch in zip(futures, batches)}
     for fut in as_completed(futures):
-        args = by_key[fut.key]
+        batch = by_key[fut.key]
         try:
-            yield args, fut.result()
+            results = fut.result()
         except Exception as exc:  # worker lost repeatedly, cancelled...
-            yield args, f"{type(exc).__name__}: {exc}"
+            results = [f"{type(exc).__name__}: {exc}"] * len(batch)
         fut.release()
+        yield from zip(batch, results)
 
 
 def _run_state_step(client: Any, record: CarryRecord, fn: Callable[..., dict[str, Any]],
                     calls: list[tuple[Any, ...]], flag: str, names: dict[str, str], retries: int,
-                    label: str) -> dict[int, str]:
+                    label: str, batch_samples: int) -> dict[int, str]:
     """Run step 1 or 3 tasks, recording their results; return errors by piece index."""
     errors: dict[int, str] = {}
     try:
-        for args, out in _run_tasks(client, fn, calls, retries, label):
+        for args, out in _run_tasks(client, fn, calls, retries, label, batch_samples):
             index = args[0].piece.index
             if isinstance(out, str) or out.get("error"):
                 errors[index] = out if isinstance(out, str) else str(out["error"])
@@ -684,7 +755,7 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
         record = CarryRecord(store.location, _slug(seg.segment_id), _carry_key(seg, design, cfg, n, pieces),
                              len(pieces), sos.shape[0], seg.channels)
         run_count = _run_carry(seg, design, cfg, store, client, pieces, record, todo_by_file, n, sos,
-                               forward_output, on_block)
+                               forward_output, on_block, layout.block_samples)
     outcomes = finish_segment(seg, design, cfg, store, layout, n, spans_by_file, run_count, t0)
     if seg.has_work and not any(o.status == "failed" for o in outcomes):
         _drop_scratch(store.location, _slug(seg.segment_id))
@@ -693,8 +764,11 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
 
 def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any, pieces: list[Piece],
                record: CarryRecord, todo_by_file: dict[str, list[int]], n: int, sos: np.ndarray,
-               forward_output: str, on_block: ProgressFn | None) -> dict[str, int]:
-    """Steps 1-5 for one segment; returns the number of blocks run per array."""
+               forward_output: str, on_block: ProgressFn | None, batch_samples: int) -> dict[str, int]:
+    """Steps 1-5 for one segment; returns the number of blocks run per array.
+
+    Short pieces share Dask tasks, up to ``batch_samples`` samples a task (a block's length).
+    """
     k = cfg.checks.seam_samples
     m = len(pieces)
     sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
@@ -719,7 +793,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     fwd_done = record.done("fwd_done")
     calls1 = [(job(p),) for p in pieces if (p.index < m - 1 or p.index == 0) and not fwd_done[p.index]]
     errors |= _run_state_step(client, record, step_forward_final, calls1, "fwd_done",
-                              {"first": "fwd_first", "final": "fwd_final"}, retries, "forward")
+                              {"first": "fwd_first", "final": "fwd_final"}, retries, "forward", batch_samples)
     v = record.values
     log.info("segment %s: step 1 ran %d of %d pieces in %.2f s", seg.segment_id, len(calls1), m,
              time.perf_counter() - t0)
@@ -737,7 +811,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
                   for p in pieces if p.kind != "head" and not bwd_done[p.index]]
         errors |= _run_state_step(client, record, step_backward_final, calls3, "bwd_done",
                                   {"last": "bwd_last", "final": "bwd_final", "seam": "bwd_seam"}, retries,
-                                  "backward")
+                                  "backward", batch_samples)
         log.info("segment %s: step 3 ran %d pieces, at %.2f s", seg.segment_id, len(calls3), time.perf_counter() - t0)
     if not errors and not record.scanned("backward"):
         # Step 4 (driver): backward states in reverse order from sosfilt_zi * y_f[-1].
@@ -779,7 +853,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
                            out_dtype=cfg.output.dtype, seam_samples=k, sync=cfg.output.sync),
                        np.array(v["fwd_state"][p.index]), np.array(v["bwd_state"][p.index]),
                        None if seam is None else np.array(seam)))
-    for args, res in _run_tasks(client, step_output, calls5, retries, "output"):
+    for args, res in _run_tasks(client, step_output, calls5, retries, "output", batch_samples):
         if isinstance(res, str):
             p = args[0].piece
             res = BlockResult(p.array_name, p.block_index, ERROR, error=res)
