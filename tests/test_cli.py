@@ -162,6 +162,18 @@ def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     assert all(f["status"] == "unchanged" for f in json.loads(r.stdout)["files"])
 
 
+def test_an_unchanged_rerun_does_not_load_the_dask_scheduler(tmp_path: Path) -> None:
+    # Nothing to filter: no Dask cluster is started, so its library (about 0.75 s of imports
+    # here) is not loaded either; a rerun of an unchanged archive pays only for its checks.
+    cfg = mixed_archive(tmp_path)
+    assert _twinpass("run", str(cfg), "--no-flow", "--no-report").returncode == 0
+    code = ("import sys\nfrom twinpass import cli\nrc = cli.main(['run', sys.argv[1], '--no-flow', '--no-report'])\n"
+            "print('distributed' in sys.modules)\nsys.exit(rc)")
+    r = subprocess.run([sys.executable, "-c", code, str(cfg)], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0 and "blocks run 0" in r.stdout, r.stdout + r.stderr
+    assert r.stdout.strip().splitlines()[-1] == "False"
+
+
 def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)
     cfg.write_text(cfg.read_text().replace("[processing]", "[processing]\nblok_seconds = 3"))

@@ -114,8 +114,6 @@ def cmd_run(args: argparse.Namespace) -> int:
 
         early_start()  # a temporary Prefect server (if one is needed) starts while this process prepares
     with start_up_imports(freeze=args.own_process):
-        import distributed  # noqa: F401  (the engine's local cluster, started later)
-
         from .config import load_config
 
         if args.no_flow:

@@ -302,7 +302,11 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     memory is returned to the system (:mod:`twinpass.allocator`).
     """
     import dask
-    from distributed import Client
+
+    from .startup import start_up_imports
+
+    with start_up_imports():  # imported here, when blocks are to run: an unchanged rerun never needs it
+        from distributed import Client
 
     if "://" in scheduler:
         try:
