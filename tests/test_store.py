@@ -793,6 +793,32 @@ def test_kept_nodes_are_bounded_and_evicted_ones_are_opened_again(store: OutputS
     assert sorted(r.array_name for r in records.values() if r.complete) == sorted(names)
 
 
+def test_forgetting_a_path_drops_what_is_kept_under_it_and_nothing_else(store: OutputStore, monkeypatch):
+    # Deleting a file's block table must drop its four kept arrays and its record handles
+    # (the next record opens the new table), and leave every other file's nodes alone.
+    names = [array_name(f"deck-north/f{i}.wav") for i in range(3)]
+    for n in names:
+        _prepare(store, n, source=f"deck-north/{n}.wav")
+        _finish_block(store, 0, name=n)
+    table = store_module._table_path(names[1])
+    assert {f"{table}/{k}" for k in ("status", "span", "figures", "seams")} <= set(store._nodes)
+    kept_before = set(store._nodes)
+    store._forget(table)
+    assert not {k for k in store._nodes if k == table or k.startswith(table + "/")}
+    assert names[1] not in store._handles and names[0] in store._handles
+    assert set(store._nodes) == {k for k in kept_before if k != table and not k.startswith(table + "/")}
+    assert all(paths and all(p in store._nodes for p in paths) for paths in store._below.values())
+    _finish_block(store, 1, name=names[1])  # reopened from the store
+    assert store.read_block_table(names[1]).status.tolist()[:2] == [1, 1]
+    # evictions keep the index in step with what is kept
+    monkeypatch.setattr(store_module, "_NODES_KEPT", 3)
+    _prepare(store, array_name("deck-north/g.wav"), source="deck-north/g.wav")
+    assert len(store._nodes) <= 3
+    assert {p for paths in store._below.values() for p in paths} <= set(store._nodes)
+    store._forget()
+    assert not store._nodes and not store._below and not store._handles
+
+
 def test_a_batch_of_records_equals_the_same_records_one_by_one(tmp_path: Path):
     spans = [(a, a + 20) for a in range(0, 100, 20)]
     tables = []

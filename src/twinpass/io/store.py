@@ -238,8 +238,17 @@ def _contiguous(rows: list[int]) -> bool:
     return rows[-1] - rows[0] + 1 == len(rows)
 
 
+_TABLES_PREFIX = f"{RESERVED_PREFIX}/blocks/"
+
+
 def _table_path(name: str) -> str:
-    return f"{RESERVED_PREFIX}/blocks/{name}"
+    return f"{_TABLES_PREFIX}{name}"
+
+
+def _ancestors(path: str) -> list[str]:
+    """The paths of the groups above ``path``: ``"a/b/c"`` -> ``["a", "a/b"]``."""
+    parts = path.split("/")
+    return ["/".join(parts[:i]) for i in range(1, len(parts))]
 
 
 _SCAN_PATH = f"{RESERVED_PREFIX}/scan"
@@ -402,7 +411,25 @@ def _writable_array(location: str, name: str) -> zarr.Array:
     return arr
 
 
+_CODECS: dict[int, tuple[Any, Any]] = {}
+"""Codecs made by :func:`_chunk_codec`, by the id of the metadata they were made for (kept with it)."""
+
+
 def _chunk_codec(arr: zarr.Array) -> tuple[Callable[[np.ndarray], Any], Callable[[bytes], np.ndarray]] | None:
+    """:func:`_make_chunk_codec` for ``arr``, made once per metadata object (block tables are
+    read and written many times per file)."""
+    meta = arr.metadata
+    hit = _CODECS.get(id(meta))
+    if hit is not None and hit[0] is meta:
+        return hit[1]
+    codec = _make_chunk_codec(arr)
+    if len(_CODECS) >= 4 * _NODES_KEPT:
+        _CODECS.clear()
+    _CODECS[id(meta)] = (meta, codec)
+    return codec
+
+
+def _make_chunk_codec(arr: zarr.Array) -> tuple[Callable[[np.ndarray], Any], Callable[[bytes], np.ndarray]] | None:
     """Encoder and decoder of one whole chunk as the array's codecs store it, for the codec
     chains twinpass creates (little-endian bytes, then optionally Blosc) with Zarr's default
     chunk keys; ``None`` for any other chain (Zarr reads and writes those itself).
@@ -634,6 +661,17 @@ def _table_metadata(n: int, channels: int, columns: tuple[str, ...], seam_sample
     return {key: mem.create_array(key, compressors=None, **spec).metadata for key, spec in specs.items()}
 
 
+@lru_cache(maxsize=64)
+def _table_documents(n: int, channels: int, columns: tuple[str, ...], seam_samples: int,
+                     table_chunk: int) -> dict[str, dict[str, bytes]]:
+    """The metadata documents of a new block table (see :func:`_table_metadata`), by key under
+    the table's path ("" for its group, whose ``errors`` are empty)."""
+    docs = {"": _metadata_files(GroupMetadata(attributes={"errors": {}}))}
+    docs.update({key: _metadata_files(meta)
+                 for key, meta in _table_metadata(n, channels, columns, seam_samples, table_chunk).items()})
+    return docs
+
+
 class OutputStore:
     """A twinpass output store (Zarr v3 group). Open it with :meth:`OutputStore.open`.
 
@@ -648,11 +686,15 @@ class OutputStore:
         self._store = store
         self._root = root
         self._mutex = threading.RLock()
-        self._handles: dict[str, _TableHandles] = {}
-        """Open block-table arrays per output array, for :meth:`record_block` (driver only);
-        dropped by every method that rewrites a table or deletes nodes."""
+        self._handles: collections.OrderedDict[str, _TableHandles] = collections.OrderedDict()
+        """Open block-table arrays per output array, for :meth:`record_block` (driver only), the
+        :data:`_NODES_KEPT` most recently used; dropped by every method that rewrites a table
+        or deletes nodes."""
         self._nodes: collections.OrderedDict[str, zarr.Array | zarr.Group] = collections.OrderedDict()
         """Arrays and groups opened lately, by path, least recently used first (see :meth:`_node`)."""
+        self._below: dict[str, set[str]] = {}
+        """Kept paths under each path that has some (so that forgetting a path and what lies
+        under it does not scan every kept node)."""
 
     # -- opening --------------------------------------------------------------
 
@@ -787,10 +829,21 @@ class OutputStore:
         At most :data:`_NODES_KEPT` nodes are kept, the most recently used: enough for the
         files the segment drivers have in hand, and bounded however many files the archive has.
         """
+        if path not in self._nodes:
+            for parent in _ancestors(path):
+                self._below.setdefault(parent, set()).add(path)
         self._nodes[path] = node
         self._nodes.move_to_end(path)
         while len(self._nodes) > _NODES_KEPT:
-            self._nodes.popitem(last=False)
+            self._unindex(self._nodes.popitem(last=False)[0])
+
+    def _unindex(self, path: str) -> None:
+        for parent in _ancestors(path):
+            below = self._below.get(parent)
+            if below is not None:
+                below.discard(path)
+                if not below:
+                    del self._below[parent]
 
     def _put_group(self, path: str, attrs: dict[str, Any]) -> None:
         """Create the group at ``path`` if missing, replace its attributes, and keep it."""
@@ -798,8 +851,12 @@ class OutputStore:
         group.attrs.put(attrs)
         self._keep(path, group)
 
-    def _create_nodes(self, nodes: Mapping[str, ArrayV3Metadata | GroupMetadata]) -> None:
+    def _create_nodes(self, nodes: Mapping[str, ArrayV3Metadata | GroupMetadata],
+                      documents: Mapping[str, Mapping[str, bytes]] | None = None) -> None:
         """Create the groups and arrays ``nodes`` (paths where nothing is) and keep them.
+
+        ``documents`` may hold the serialised metadata of some of them (by path), when the
+        caller has them already.
 
         In a local store their metadata documents are written here, each renamed into place,
         with any missing parent group, as Zarr writes them (:func:`_metadata_files`): a
@@ -830,7 +887,7 @@ class OutputStore:
             if (self.local_root / path / "zarr.json").exists():
                 raise StoreError(f"{self.location}: {path} exists already; rerun to replace it")
         for path, meta in nodes.items():
-            for key, payload in _metadata_files(meta).items():
+            for key, payload in ((documents or {}).get(path) or _metadata_files(meta)).items():
                 _put_file(self.local_root / path / key, payload)
             where = StorePath(self._store, path)
             if isinstance(meta, GroupMetadata):
@@ -870,12 +927,21 @@ class OutputStore:
 
     def _forget(self, path: str | None = None) -> None:
         """Drop kept nodes: ``path`` and everything under it, or all of them (None)."""
-        self._handles.clear()
         if path is None:
+            self._handles.clear()
             self._nodes.clear()
+            self._below.clear()
             return
-        for key in [k for k in self._nodes if k == path or k.startswith(path + "/")]:
-            del self._nodes[key]
+        for key in [path, *self._below.get(path, ())]:
+            if self._nodes.pop(key, None) is not None:
+                self._unindex(key)
+        # the handles of the output arrays at or under path, or whose block tables are
+        if path.startswith(_TABLES_PREFIX):
+            name = path[len(_TABLES_PREFIX):]
+        else:
+            name = "" if _TABLES_PREFIX.startswith(path + "/") else path
+        for key in [k for k in self._handles if not name or k == name or k.startswith(name + "/")]:
+            del self._handles[key]
 
     @contextlib.contextmanager
     def _writing(self, what: str) -> Iterator[None]:
@@ -942,6 +1008,10 @@ class OutputStore:
                     h.folder = self.local_root / _table_path(name)
                     h.encoders = {k: e for k, e in encoders.items() if e is not None}
             self._handles[name] = h
+            while len(self._handles) > _NODES_KEPT:
+                self._handles.popitem(last=False)
+        else:
+            self._handles.move_to_end(name)
         return h
 
     def _missing_locally(self, path: str) -> bool:
@@ -1167,16 +1237,16 @@ class OutputStore:
         path = _table_path(name)
         self._delete(path)
         # The group and its four arrays are written side by side (a first run pays for them
-        # for every file). Their statuses
-        # read as pending (the fill value) until written, so the order of the documents
-        # does not matter.
-        metas = _table_metadata(int(span.shape[0]), int(channels), tuple(str(c) for c in columns), int(seam_samples),
-                                 _TABLE_CHUNK)
+        # for every file). Their statuses read as pending (the fill value) until written, so
+        # the order of the documents does not matter.
+        shape = (int(span.shape[0]), int(channels), tuple(str(c) for c in columns), int(seam_samples), _TABLE_CHUNK)
+        metas = _table_metadata(*shape)
         nodes: dict[str, Any] = {path: GroupMetadata(attributes={"errors": {}})}
         # each node its own attributes: Zarr updates an opened node's attributes in place
         nodes.update({f"{path}/{key}": dataclasses.replace(meta, attributes=copy.deepcopy(meta.attributes))
                       for key, meta in metas.items()})
-        self._create_nodes(nodes)
+        docs = _table_documents(*shape)  # the same for every table of this shape
+        self._create_nodes(nodes, {f"{path}/{key}" if key else path: doc for key, doc in docs.items()})
         if span.shape[0]:
             write_rows(self._table_array(name, "span"), 0, span)
 
