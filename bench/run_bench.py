@@ -15,8 +15,9 @@ Sections (all by default, in this order):
 ``flow``      ``twinpass run CONFIG --force --no-report`` (through the Prefect flow)
 ``rerun``     unchanged archive (engine, flow, and an in-process breakdown), then a rerun
               after changing one file (engine and flow)
-``small``     unchanged rerun of a separate archive of 1,000 small NPY files, with
-              discovery + hashing timed apart from the rest
+``small``     a separate archive of 1,000 small NPY files: the baseline, a first run into
+              a new store, unchanged reruns (engine, flow, and in process with discovery
+              + hashing timed apart from the rest)
 ``halo``      window samples / core samples from the block layout and halos
 
 Every timed run is a subprocess; its peak RSS is the largest sum of RSS over the process
@@ -546,11 +547,25 @@ class Bench:
             m.extra["changed"] = str(target.relative_to(self.big() / "archive"))
 
     def sec_small(self) -> None:
+        import numpy as np
+        from twinpass.config import load_config
+        from twinpass.core.design import design_filter
+
         cfg = self.ensure_small()
         store = cfg.parent / "out-small.zarr"
         samples = self.small_info["samples"]
-        if not store.exists():
-            self.run("small-first-run-engine", self.cli(cfg, flow=False, force=True), samples)
+        # The same hand-written baseline, on these files (each filtered on its own).
+        job = load_config(cfg)
+        design = design_filter(job.response, float(self.small_info["rate_hz"]), job.processing.tolerance)
+        sos_path = self.work / "sos-small.npy"
+        np.save(sos_path, design.sos)
+        out = self.work / "baseline-out-small"
+        shutil.rmtree(out, ignore_errors=True)
+        self.run("small-baseline", [self.py, str(HERE / "baseline.py"), str(sos_path), str(cfg.parent / "archive"),
+                                    str(out)], samples)
+        shutil.rmtree(out, ignore_errors=True)
+        shutil.rmtree(store, ignore_errors=True)  # a first run: a new store
+        self.run("small-first-run-engine", self.cli(cfg, flow=False, force=True), samples)
         self.run("small-rerun-unchanged-engine", self.cli(cfg, flow=False, force=False))
         self._prefect_warmup()
         self.run("small-rerun-unchanged-flow", self.cli(cfg, flow=True, force=False))
@@ -621,6 +636,11 @@ class Bench:
         peaks = {k: m.peak_rss for k, m in r.items() if k.startswith(("engine-", "flow-"))}
         if peaks:
             s["peak_rss_max_engine_or_flow_mib"] = max(peaks.values()) / MiB
+        sb, sf = r.get("small-baseline"), r.get("small-first-run-engine")
+        if sb and sf and sb.rc == 0 and sf.rc == 0:
+            s["small_first_run"] = {"files": self.small_info.get("files"), "baseline_s": sb.wall_s,
+                                    "first_run_s": sf.wall_s, "vs_baseline": sb.wall_s / sf.wall_s,
+                                    "per_file_ms": 1000 * sf.wall_s / max(1, self.small_info.get("files") or 1)}
         return s
 
     def targets(self, s: dict[str, Any]) -> list[dict[str, Any]]:
@@ -713,6 +733,11 @@ def tables(res: dict[str, Any]) -> str:
         more.append(f"| check overhead, {MAIN} (every=1 vs every=0, threads x2, fastest of alternating runs) | "
                     f"{100 * co['overhead']:+.1f} % wall ({co['every_1_s']:.1f} s against {co['every_0_s']:.1f} s), "
                     f"{100 * (co['cpu_overhead'] or 0):+.1f} % CPU |")
+    sf = s.get("small_first_run")
+    if sf:
+        more.append(f"| first run, small-file archive ({sf['files']} files), engine against its baseline | "
+                    f"{sf['first_run_s']:.1f} s against {sf['baseline_s']:.1f} s = {sf['vs_baseline']:.2f}x "
+                    f"({sf['per_file_ms']:.0f} ms per file, start-up included) |")
     for name, h in res["probes"].get("halo", {}).items():
         lay = "; ".join(f"{k}: {v['family']} {v['sections']} sections, halo {v['halo']}, block {v['block_samples']}"
                         + (f", {v['carry_segments']} segment(s) in carry mode" if v.get("carry_segments") else "")
