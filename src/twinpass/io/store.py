@@ -423,7 +423,7 @@ def _chunk_codec(arr: zarr.Array) -> tuple[Callable[[np.ndarray], Any], Callable
     if hit is not None and hit[0] is meta:
         return hit[1]
     codec = _make_chunk_codec(arr)
-    if len(_CODECS) >= 4 * _NODES_KEPT:
+    if len(_CODECS) >= _NODES_KEPT:  # bounded like the kept nodes (each entry keeps its metadata alive)
         _CODECS.clear()
     _CODECS[id(meta)] = (meta, codec)
     return codec
