@@ -110,7 +110,7 @@ from .engine import (
     segment_edge_samples,
 )
 from .errors import ConfigError, KernelError, TwinpassError
-from .io.store import write_rows
+from .io.store import array_metadata, write_rows
 from .io.store_util import RESERVED_PREFIX, json_safe, local_path
 
 __all__ = [
@@ -580,20 +580,16 @@ class CarryRecord:
 
 @functools.lru_cache(maxsize=16)
 def _record_metadata(pieces: int, sections: int, channels: int) -> dict[str, Any]:
-    """Zarr metadata of a :class:`CarryRecord`'s arrays, made by Zarr itself (in memory), by name."""
-    import zarr
-    from zarr.storage import MemoryStore
-
-    mem = zarr.open_group(MemoryStore(), mode="w", zarr_format=3)
+    """Zarr metadata of a :class:`CarryRecord`'s arrays, made by Zarr itself, by name."""
     shape_state = (pieces, sections, 2, channels)
     shapes = {**{a: shape_state for a in CarryRecord.STATE_ARRAYS},
               **{a: (pieces, channels) for a in CarryRecord.SAMPLE_ARRAYS}, **{a: (pieces,) for a in CarryRecord.FLAGS}}
     metas = {}
     for name, shp in shapes.items():
         flag = name in CarryRecord.FLAGS
-        metas[name] = mem.create_array(name, shape=shp, dtype="int8" if flag else "float64",
-                                       chunks=(min(max(1, pieces), _RECORD_CHUNK),) + shp[1:],
-                                       fill_value=0 if flag else float("nan"), compressors=None).metadata
+        metas[name] = array_metadata(shape=shp, dtype="int8" if flag else "float64",
+                                     chunks=(min(max(1, pieces), _RECORD_CHUNK),) + shp[1:],
+                                     fill_value=0 if flag else float("nan"), compressors=None)
     return metas
 
 

@@ -81,6 +81,7 @@ __all__ = [
     "array_name",
     "json_safe",
     "library_versions",
+    "array_metadata",
     "write_block_data",
     "write_rows",
 ]
@@ -629,14 +630,18 @@ def _metadata_files(meta: ArrayV3Metadata | GroupMetadata) -> dict[str, bytes]:
     return {key: buf.to_bytes() for key, buf in meta.to_buffer_dict(default_buffer_prototype()).items()}
 
 
+def array_metadata(**spec: Any) -> ArrayV3Metadata:
+    """The Zarr v3 metadata of an array made with ``create_array(**spec)``, made by Zarr itself
+    (in memory), so that documents written from it are the ones Zarr would write."""
+    return zarr.create_array(MemoryStore(), zarr_format=3, **spec).metadata
+
+
 @lru_cache(maxsize=64)
 def _array_metadata(frames: int, channels: int, dtype: str, chunk_samples: int, compression: str) -> ArrayV3Metadata:
-    """Zarr metadata of an output array with no attributes, made by Zarr itself (its
-    ``create_array`` in memory); kept, since the files of an archive mostly share it."""
-    mem = zarr.open_group(MemoryStore(), mode="w", zarr_format=3)
-    return mem.create_array("a", shape=(frames, channels), dtype=dtype, chunks=(chunk_samples, channels),
-                            compressors=_compressors(compression), fill_value=0,
-                            dimension_names=DIMENSION_NAMES).metadata
+    """Zarr metadata of an output array with no attributes; kept, since the files of an
+    archive mostly share it."""
+    return array_metadata(shape=(frames, channels), dtype=dtype, chunks=(chunk_samples, channels),
+                          compressors=_compressors(compression), fill_value=0, dimension_names=DIMENSION_NAMES)
 
 
 @lru_cache(maxsize=64)
@@ -644,10 +649,9 @@ def _table_metadata(n: int, channels: int, columns: tuple[str, ...], seam_sample
                     table_chunk: int) -> dict[str, Any]:
     """Zarr metadata of a block table's arrays (status, span, figures, seams) for ``n`` blocks.
 
-    Made by Zarr itself (its ``create_array`` in memory), so the documents written are the
-    ones it would write; kept, since the files of an archive mostly share them.
+    Made by Zarr itself (:func:`array_metadata`); kept, since the files of an archive mostly
+    share them.
     """
-    mem = zarr.open_group(MemoryStore(), mode="w", zarr_format=3)
     tab_chunk = (max(1, min(n, table_chunk)),)
     specs: dict[str, dict[str, Any]] = {
         "status": dict(shape=(n,), dtype="int8", chunks=tab_chunk, fill_value=0),
@@ -658,7 +662,7 @@ def _table_metadata(n: int, channels: int, columns: tuple[str, ...], seam_sample
         "seams": dict(shape=(n, 4, seam_samples, channels), dtype="float64",
                       chunks=(1, 4, max(1, seam_samples), channels), fill_value=float("nan")),
     }
-    return {key: mem.create_array(key, compressors=None, **spec).metadata for key, spec in specs.items()}
+    return {key: array_metadata(compressors=None, **spec) for key, spec in specs.items()}
 
 
 @lru_cache(maxsize=64)
@@ -874,26 +878,27 @@ class OutputStore:
                 if node_path in nodes:
                     self._keep(node_path, node)
             return
-        parents = sorted({"/".join(path.split("/")[:i]) for path in nodes for i in range(1, path.count("/") + 1)}
-                         - set(nodes))
-        for parent in parents:
-            doc = self.local_root / parent / "zarr.json"
-            if not doc.exists():
-                _put_file(doc, _metadata_files(GroupMetadata())["zarr.json"])
+        for parent in sorted({a for path in nodes for a in _ancestors(path)} - set(nodes)):
+            if self._missing_locally(parent):
+                self._write_documents(parent, _metadata_files(GroupMetadata()))
             elif self._node_type(parent) != "group":
                 raise StoreError(f"{self.location}: cannot create {sorted(nodes)[0]} inside {parent}, "
                                  "which is not a group; remove it or choose another store")
-        for path, meta in nodes.items():
-            if (self.local_root / path / "zarr.json").exists():
+        for path in nodes:
+            if not self._missing_locally(path):
                 raise StoreError(f"{self.location}: {path} exists already; rerun to replace it")
         for path, meta in nodes.items():
-            for key, payload in ((documents or {}).get(path) or _metadata_files(meta)).items():
-                _put_file(self.local_root / path / key, payload)
+            self._write_documents(path, (documents or {}).get(path) or _metadata_files(meta))
             where = StorePath(self._store, path)
             if isinstance(meta, GroupMetadata):
                 self._keep(path, zarr.Group(AsyncGroup(metadata=meta, store_path=where)))
             else:
                 self._keep(path, zarr.Array(AsyncArray(metadata=meta, store_path=where)))
+
+    def _write_documents(self, path: str, documents: Mapping[str, bytes]) -> None:
+        """Write a node's metadata documents (local stores), each renamed into place."""
+        for key, payload in documents.items():
+            _put_file(self.local_root / path / key, payload)
 
     def _node_type(self, path: str) -> str | None:
         """``"array"`` or ``"group"``: what the metadata document at ``path`` describes (local stores)."""
@@ -920,8 +925,7 @@ class OutputStore:
                 node.update_attributes(dict(attrs))
             return
         new = dict(attrs) if replace else {**node.metadata.attributes, **attrs}
-        for key, payload in _metadata_files(dataclasses.replace(node.metadata, attributes=new)).items():
-            _put_file(self.local_root / path / key, payload)
+        self._write_documents(path, _metadata_files(dataclasses.replace(node.metadata, attributes=new)))
         node.metadata.attributes.clear()
         node.metadata.attributes.update(new)
 
