@@ -964,3 +964,11 @@ def test_records_after_invalidation_and_re_preparation_see_the_current_table(sto
     assert store.read_block_table(NAME).status.tolist() == [0, 1]
     with pytest.raises(StoreError, match="missing"):
         store.record_block(NAME, 0, BlockStatus.PASS, None, None, None)
+
+
+def test_a_deletion_outside_the_store_is_refused_even_when_nothing_is_there(store: OutputStore, tmp_path: Path):
+    # The safety check comes before the shortcut for paths with nothing there.
+    assert not (tmp_path / "elsewhere").exists()
+    with pytest.raises(UnsafePathError, match="not inside the output store"):
+        store._delete("../elsewhere")
+    store._delete("deck-north/never-written")  # inside the store and absent: nothing to do

@@ -1025,13 +1025,13 @@ class OutputStore:
 
     def _delete(self, path: str) -> None:
         self._forget(path)
-        if self.local_root is not None and not (self.local_root / path).exists():
-            return  # nothing there: one stat instead of a round trip through Zarr's event loop
         if self.local_root is not None:
             target = (self.local_root / path).resolve()
             root = self.local_root.resolve()
             if target == root or not target.is_relative_to(root):
                 raise UnsafePathError(f"refusing to delete {target}: it is not inside the output store {root}")
+            if not target.exists():
+                return  # nothing there: one stat instead of a round trip through Zarr's event loop
         with write_errors(f"{path} (deleting)"):
             del self._root[path]
 
