@@ -393,16 +393,20 @@ def test_cli_run_through_the_flow_on_a_fresh_prefect_home(npy_archive, tmp_path)
 @pytest.mark.parametrize(("scheduler", "loops_loaded"), [("threads", True), ("processes", False)])
 def test_preload_loads_what_the_first_flow_call_and_block_would(tmp_path, scheduler, loops_loaded):
     # In a fresh interpreter: Prefect's flow engine and the encoders its parameter
-    # serialisation uses are loaded by preload() alone, and the engine's compiled loops too
-    # when blocks run in this process's threads (worker processes load their own).
+    # serialisation uses are loaded by preload() alone, so is Dask's distributed (but no
+    # cluster is started), and the engine's compiled loops too when blocks run in this
+    # process's threads (worker processes load their own).
     code = ("import sys\n"
             "from twinpass import flows\n"
             "from twinpass.core import loops\n"
-            "before = ('prefect.flow_engine' in sys.modules, 'fastapi.encoders' in sys.modules, bool(loops._impl))\n"
+            "names = ('prefect.flow_engine', 'fastapi.encoders', 'distributed')\n"
+            "before = (*(n in sys.modules for n in names), bool(loops._impl))\n"
             f"flows.preload({scheduler!r})\n"
-            "after = ('prefect.flow_engine' in sys.modules, 'fastapi.encoders' in sys.modules, bool(loops._impl))\n"
-            "print('LOADED', before, after)\n")
+            "after = (*(n in sys.modules for n in names), bool(loops._impl))\n"
+            "import distributed\n"
+            "print('LOADED', before, after, 'clusters', len(distributed.LocalCluster._instances))\n")
     proc = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=300,
                           env={**os.environ, "PREFECT_HOME": str(tmp_path / "home")})
     assert proc.returncode == 0, proc.stdout + proc.stderr
-    assert f"LOADED (False, False, False) (True, True, {loops_loaded})" in proc.stdout, proc.stdout
+    assert f"LOADED (False, False, False, False) (True, True, True, {loops_loaded}) clusters 0" in proc.stdout, \
+        proc.stdout
