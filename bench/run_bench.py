@@ -9,10 +9,12 @@ Sections (all by default, in this order):
 
 ``baseline``  per file: load whole, ``scipy.signal.sosfiltfilt``, save ``.npy`` (subprocess)
 ``engine``    ``twinpass run CONFIG --no-flow --force --no-report``: threads and processes,
-              1 and 2 workers
+              1 and 2 workers, each into a new store; then one forced rerun over the store
+              just written (chunks overwritten in place)
 ``checks``    the engine with ``[checks] every = 1`` and ``every = 0`` (response checks off),
               in alternating pairs (``--repeat``)
-``flow``      ``twinpass run CONFIG --force --no-report`` (through the Prefect flow)
+``flow``      ``twinpass run CONFIG --force --no-report`` (through the Prefect flow), into a
+              new store
 ``rerun``     unchanged archive (engine, flow, and an in-process breakdown), then a rerun
               after changing one file (engine and flow)
 ``small``     a separate archive of 1,000 small NPY files: the baseline, a first run into
@@ -20,6 +22,9 @@ Sections (all by default, in this order):
               + hashing timed apart from the rest)
 ``halo``      window samples / core samples from the block layout and halos
 
+Every throughput run of twinpass writes a new store (the previous run's store is deleted
+first), as a first run over an archive does and as the baseline writes new files; every
+timed run starts after ``sync``, so that no earlier run's writes are flushed during it.
 Every timed run is a subprocess; its peak RSS is the largest sum of RSS over the process
 and all its descendants, polled every ``POLL_S`` seconds. CPU seconds come from
 ``wait4`` (the process and the descendants it reaped). Throughput counts samples as
@@ -177,6 +182,10 @@ def measure(label: str, cmd: list[str], *, env: dict[str, str], logs: Path, samp
     """Run ``cmd``, polling the RSS of its process tree every ``POLL_S`` seconds."""
     logs.mkdir(parents=True, exist_ok=True)
     out_path, err_path = logs / f"{label}.out", logs / f"{label}.err"
+    # What an earlier run left unwritten (the baseline does not sync its files) must not be
+    # written back during this one.
+    if hasattr(os, "sync"):
+        os.sync()
     m = Measured(label, [str(c) for c in cmd], samples=samples, load_before=os.getloadavg()[0])
     print(f"[{time.strftime('%H:%M:%S')}] {label}: {' '.join(m.cmd[1:])}", flush=True)
     with open(out_path, "wb") as out, open(err_path, "wb") as err:
@@ -436,6 +445,16 @@ class Bench:
             cmd += ["--workers", str(workers)]
         return cmd
 
+    def first_run(self, label: str, config: Path, *, flow: bool, scheduler: str | None = None,
+                  workers: int | None = None) -> Measured:
+        """A throughput run: the configuration's store deleted first, so that the run writes a
+        new one, as a first run over an archive does (and as the baseline writes new files)."""
+        from twinpass.config import load_config
+
+        shutil.rmtree(load_config(config).store_location, ignore_errors=True)
+        return self.run(label, self.cli(config, flow=flow, scheduler=scheduler, workers=workers),
+                        self.info["samples"])
+
     def run(self, label: str, cmd: list[str], samples: int = 0) -> Measured:
         m = measure(label, cmd, env=self.env, logs=self.logs, samples=samples)
         self.runs[label] = m
@@ -481,12 +500,14 @@ class Bench:
         n = self.info["samples"]
         for sched in ("threads", "processes"):
             for w in (1, 2):
-                self.run(f"engine-{MAIN}-{sched}-{w}",
-                         self.cli(self.config(MAIN), flow=False, scheduler=sched, workers=w), n)
+                self.first_run(f"engine-{MAIN}-{sched}-{w}", self.config(MAIN), flow=False, scheduler=sched,
+                               workers=w)
+        # A forced rerun over the store just written: block chunks are overwritten in place.
+        self.run(f"engine-{MAIN}-threads-2-in-place",
+                 self.cli(self.config(MAIN), flow=False, scheduler="threads", workers=2), n)
         for d in DESIGNS:
             if d != MAIN:
-                self.run(f"engine-{d}-threads-2", self.cli(self.config(d), flow=False, scheduler="threads",
-                                                          workers=2), n)
+                self.first_run(f"engine-{d}-threads-2", self.config(d), flow=False, scheduler="threads", workers=2)
 
     def sec_checks(self) -> None:
         n = self.info["samples"]
@@ -497,10 +518,10 @@ class Bench:
         # fastest of each.
         for i in range(1, self.args.repeat + 1):
             suffix = "" if i == 1 else f"-r{i}"
-            self.run(f"engine-{MAIN}-threads-2-checks{suffix}",
-                     self.cli(self.config(MAIN), flow=False, scheduler="threads", workers=2), n)
-            self.run(f"engine-{MAIN}-threads-2-nochecks{suffix}",
-                     self.cli(cfg, flow=False, scheduler="threads", workers=2), n)
+            self.first_run(f"engine-{MAIN}-threads-2-checks{suffix}", self.config(MAIN), flow=False,
+                           scheduler="threads", workers=2)
+            self.first_run(f"engine-{MAIN}-threads-2-nochecks{suffix}", cfg, flow=False, scheduler="threads",
+                           workers=2)
         shutil.rmtree(self.big() / f"out-{MAIN}-nochecks.zarr", ignore_errors=True)
 
     def _prefect_warmup(self) -> None:
@@ -515,16 +536,15 @@ class Bench:
         self._prefect_warmup()
         for d in DESIGNS:
             if f"engine-{d}-threads-2" not in self.runs:  # the flow's overhead is measured against it
-                self.run(f"engine-{d}-threads-2", self.cli(self.config(d), flow=False, scheduler="threads",
-                                                          workers=2), n)
-            self.run(f"flow-{d}-threads-2", self.cli(self.config(d), flow=True, scheduler="threads", workers=2), n)
+                self.first_run(f"engine-{d}-threads-2", self.config(d), flow=False, scheduler="threads", workers=2)
+            self.first_run(f"flow-{d}-threads-2", self.config(d), flow=True, scheduler="threads", workers=2)
             # Other load on the machine moves wall times by more than Prefect costs: repeat
             # the pair, alternating, and compare the fastest of each.
             for i in range(2, self.args.repeat + 1 if d == MAIN else 0):
-                self.run(f"engine-{d}-threads-2-r{i}", self.cli(self.config(d), flow=False, scheduler="threads",
-                                                               workers=2), n)
-                self.run(f"flow-{d}-threads-2-r{i}", self.cli(self.config(d), flow=True, scheduler="threads",
-                                                             workers=2), n)
+                self.first_run(f"engine-{d}-threads-2-r{i}", self.config(d), flow=False, scheduler="threads",
+                               workers=2)
+                self.first_run(f"flow-{d}-threads-2-r{i}", self.config(d), flow=True, scheduler="threads",
+                               workers=2)
 
     def _files(self, stream: str) -> list[Path]:
         return sorted((self.big() / "archive" / stream).iterdir())
@@ -532,8 +552,7 @@ class Bench:
     def sec_rerun(self) -> None:
         cfg = self.config(MAIN)
         if not any(k.startswith(f"engine-{MAIN}") or k.startswith(f"flow-{MAIN}") for k in self.runs):
-            self.run(f"engine-{MAIN}-threads-2", self.cli(cfg, flow=False, scheduler="threads", workers=2),
-                     self.info["samples"])
+            self.first_run(f"engine-{MAIN}-threads-2", cfg, flow=False, scheduler="threads", workers=2)
         self._prefect_warmup()
         self.run(f"rerun-unchanged-engine-{MAIN}", self.cli(cfg, flow=False, force=False))
         self.run(f"rerun-unchanged-flow-{MAIN}", self.cli(cfg, flow=True, force=False))
@@ -633,6 +652,10 @@ class Bench:
                                     "every_1_s": on.wall_s, "every_0_s": off.wall_s,
                                     "overhead": on.wall_s / off.wall_s - 1,
                                     "cpu_overhead": on.cpu_s / off.cpu_s - 1 if off.cpu_s else None}
+        ip, new = r.get(f"engine-{MAIN}-threads-2-in-place"), r.get(f"engine-{MAIN}-threads-2")
+        if ip and new and ip.rc == 0 and new.rc == 0:
+            s["in_place_rerun"] = {"in_place_run": ip.label, "new_store_run": new.label, "in_place_s": ip.wall_s,
+                                   "new_store_s": new.wall_s, "vs_new_store": ip.wall_s / new.wall_s - 1}
         peaks = {k: m.peak_rss for k, m in r.items() if k.startswith(("engine-", "flow-"))}
         if peaks:
             s["peak_rss_max_engine_or_flow_mib"] = max(peaks.values()) / MiB
@@ -733,6 +756,11 @@ def tables(res: dict[str, Any]) -> str:
         more.append(f"| check overhead, {MAIN} (every=1 vs every=0, threads x2, fastest of alternating runs) | "
                     f"{100 * co['overhead']:+.1f} % wall ({co['every_1_s']:.1f} s against {co['every_0_s']:.1f} s), "
                     f"{100 * (co['cpu_overhead'] or 0):+.1f} % CPU |")
+    ip = s.get("in_place_rerun")
+    if ip:
+        more.append(f"| forced rerun over the store just written (chunks overwritten in place), {MAIN} threads x2 | "
+                    f"{ip['in_place_s']:.1f} s against {ip['new_store_s']:.1f} s into a new store "
+                    f"({100 * ip['vs_new_store']:+.1f} %) |")
     sf = s.get("small_first_run")
     if sf:
         more.append(f"| first run, small-file archive ({sf['files']} files), engine against its baseline | "
