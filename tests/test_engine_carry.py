@@ -379,8 +379,10 @@ def test_carry_record_resumes_its_steps_and_starts_afresh_for_another_key(tmp_pa
     rec.put("fwd_done", 1, fwd_first=np.array([1.0, 2.0]), fwd_final=np.full((2, 2, 2), 0.5))
     rec.flush()
     rec.store_scan("forward", {0: np.ones((2, 2, 2)), 2: np.zeros((2, 2, 2))})
+    assert rec.scanned("forward")
     again = CarryRecord(location, "deck-0", "key-1", pieces=3, sections=2, channels=2)
-    assert again.done("fwd_done").tolist() == [False, True, False] and again.scanned("forward")
+    # the step results are kept; the scan is stored but computed again by whoever resumes
+    assert again.done("fwd_done").tolist() == [False, True, False] and not again.scanned("forward")
     np.testing.assert_array_equal(again.values["fwd_final"][1], np.full((2, 2, 2), 0.5))
     np.testing.assert_array_equal(again.values["fwd_state"][0], np.ones((2, 2, 2)))
     group = zarr.open_group(zarr_store_like(location), path=again.path, mode="r")
@@ -391,6 +393,71 @@ def test_carry_record_resumes_its_steps_and_starts_afresh_for_another_key(tmp_pa
     assert not other.done("fwd_done").any() and not other.scanned("forward")
     assert np.isnan(other.values["fwd_first"]).all()
     assert zarr.open_group(zarr_store_like(location), path=other.path, mode="r").attrs["key"] == "key-2"
+
+
+def test_a_record_flag_without_its_values_or_with_a_cut_chunk_is_not_trusted(tmp_path):
+    # After a crash of the operating system a flag may be on the disk without the values
+    # written before it (they read as NaN, the fill value), or a chunk file may be cut short.
+    location = str(tmp_path / "out.zarr")
+    OutputStore.open(location, mode="a")
+    rec = CarryRecord(location, "deck-0", "key-1", pieces=3, sections=2, channels=2)
+    rec.put("fwd_done", 0, fwd_first=np.array([1.0, 2.0]), fwd_final=np.full((2, 2, 2), 0.5))
+    rec.put("fwd_done", 1, fwd_first=np.array([1.0, 2.0]), fwd_final=np.full((2, 2, 2), 0.5))
+    rec.put("bwd_done", 2, bwd_last=np.array([3.0, 4.0]), bwd_final=np.full((2, 2, 2), 0.25))
+    rec.flush()
+    group = zarr.open_group(location, path=rec.path, mode="r+")
+    final = group["fwd_final"][...]
+    final[1, 0, 1, 0] = np.nan  # piece 1's values lost, its flag kept
+    group["fwd_final"][...] = final
+    again = CarryRecord(location, "deck-0", "key-1", pieces=3, sections=2, channels=2)
+    assert again.done("fwd_done").tolist() == [True, False, False]
+    assert again.done("bwd_done").tolist() == [False, False, True]
+    # a chunk file cut short: the record cannot be read and starts afresh
+    chunk = next(p for p in (Path(location) / rec.path / "bwd_final").rglob("*") if p.is_file()
+                 and p.name != "zarr.json")
+    chunk.write_bytes(chunk.read_bytes()[:10])
+    fresh = CarryRecord(location, "deck-0", "key-1", pieces=3, sections=2, channels=2)
+    assert not fresh.done("fwd_done").any() and not fresh.done("bwd_done").any()
+    assert np.isnan(fresh.values["bwd_final"]).all()
+    reread = zarr.open_group(location, path=rec.path, mode="r")
+    assert np.isnan(reread["bwd_final"][...]).all() and not reread["fwd_done"][...].any()
+
+
+@pytest.mark.parametrize("damage", ["scan-states", "step-values", "cut-chunk"])
+def test_a_damaged_carry_record_resumes_to_identical_bytes(tmp_path, client, monkeypatch, damage):
+    # Reference: the bytes of an undisturbed run (itself equal to scipy.signal.sosfiltfilt,
+    # see test_carry_mode_equals_whole_segment_two_pass).
+    clean_dir, faulty_dir = tmp_path / "clean", tmp_path / "faulty"
+    clean_dir.mkdir()
+    faulty_dir.mkdir()
+    files = _setup(clean_dir, HIGHPASS_1, 2, seed=9)
+    _setup(faulty_dir, HIGHPASS_1, 2, seed=9)
+    outcomes, clean_store = _run(clean_dir, client)
+    assert all(o.status == "complete" for o in outcomes)
+    clean = _bytes(clean_store, files.arrays)
+    # A perturbed block fails its checks, so the next run resumes from the record.
+    _set_faults(monkeypatch, tmp_path, [{"action": "perturb", "file": files.arrays[2], "block": 1}])
+    outcomes, store = _run(faulty_dir, client)
+    assert outcomes[2].status == "failed"
+    monkeypatch.delenv(faults.ENV)
+    (record_dir,) = [d for d in (store / "_twinpass" / "carry").iterdir() if d.is_dir()]
+    record = zarr.open_group(str(record_dir), mode="r+")
+    assert record["bwd_done"][...][-1] and record["fwd_done"][...][0]  # the steps are recorded
+    if damage == "scan-states":  # finite but wrong carried states, the scan marked stored
+        record["fwd_state"][...] = np.zeros(record["fwd_state"].shape)
+        record["bwd_state"][...] = np.zeros(record["bwd_state"].shape)
+        assert record.attrs["forward_scan"] and record.attrs["backward_scan"]
+    elif damage == "step-values":  # a flag on the disk without its values, before the scan was stored
+        final = record["bwd_final"][...]
+        final[-2] = np.nan  # a core piece's (step 3 does not run for the start extension's)
+        record["bwd_final"][...] = final
+        record.attrs["backward_scan"] = False
+    else:  # a chunk file cut short
+        chunk = next(p for p in (record_dir / "fwd_final").rglob("*") if p.is_file() and p.name != "zarr.json")
+        chunk.write_bytes(b"")
+    outcomes, store = _run(faulty_dir, client)
+    assert [o.status for o in outcomes] == ["skipped", "skipped", "complete"]
+    assert _bytes(store, files.arrays) == clean
 
 
 def test_short_pieces_share_dask_tasks_and_whole_blocks_run_alone():

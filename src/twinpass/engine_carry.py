@@ -497,6 +497,15 @@ class CarryRecord:
     ``bwd_state`` (m, S, 2, C) carried backward states; ``fwd_done`` / ``bwd_done`` (m,)
     int8 flags, written after the values. Attributes: ``key`` (the digest the values
     belong to), ``forward_scan`` / ``backward_scan`` (True once the scans are stored).
+
+    What a resumed record is trusted with. The values and flags are not synced to the disk
+    one after the other, so after a crash of the operating system a flag may be on the disk
+    without its values (which then read as NaN, the fill value), and a chunk file may be
+    cut short. A piece counts as done only if its flag is set *and* its step's values are
+    finite (:meth:`done`); a record that cannot be read starts afresh; and the scans are
+    always computed again in the process that resumes (:meth:`scanned`): they take the
+    driver a few matrix products per piece and give the same states bit for bit from the
+    same step results, so stored scan states are never used after a restart.
     """
 
     STATE_ARRAYS = ("fwd_final", "fwd_state", "bwd_final", "bwd_seam", "bwd_state")
@@ -520,9 +529,15 @@ class CarryRecord:
                 if not isinstance(arr, zarr.Array) or arr.shape != meta.shape:
                     break
                 arrays[name] = arr
+        self.values: dict[str, np.ndarray] = {}
         if len(arrays) == len(metas):  # resume: the steps recorded so far
-            self.values = {name: np.asarray(arr[...]) for name, arr in arrays.items()}
-        else:
+            try:
+                self.values = {name: np.asarray(arr[...]) for name, arr in arrays.items()}
+            except Exception as exc:  # a chunk cut short or unreadable: the steps run again
+                log.warning("carry record %s of %s cannot be read (%s: %s); its steps are computed again",
+                            self.path, location, type(exc).__name__, exc)
+                self.values = {}
+        if not self.values:
             if group is not None:
                 del parent[slug]
             # The group (its key written with it) and its arrays in one call; an array cut
@@ -540,12 +555,24 @@ class CarryRecord:
         self.group, self.arrays = group, arrays
         self._dirty: set[int] = set()
         self._last_flush = time.monotonic()
+        self._scanned: set[str] = set()
+
+    _STEP_VALUES = {"fwd_done": ("fwd_first", "fwd_final"), "bwd_done": ("bwd_last", "bwd_final")}
 
     def done(self, flag: str) -> np.ndarray:
-        return self.values[flag] != 0
+        """Pieces whose step (``fwd_done``: 1, ``bwd_done``: 3) is recorded: the flag set and
+        the step's values finite (``bwd_seam`` is checked by the caller, which knows which
+        pieces have one)."""
+        ok = self.values[flag] != 0
+        for name in self._STEP_VALUES[flag]:
+            v = self.values[name]
+            ok &= np.isfinite(v.reshape(v.shape[0], -1)).all(axis=1)
+        return ok
 
     def scanned(self, direction: str) -> bool:
-        return bool(self.group.attrs.get(f"{direction}_scan"))
+        """Whether this object has stored the scan (``forward`` / ``backward``); a resumed
+        record's stored scan states are not used (see the class notes)."""
+        return direction in self._scanned
 
     def put(self, flag: str, index: int, **values: np.ndarray | None) -> None:
         """Record a piece's step results in memory; :meth:`flush` writes them (values, then flags)."""
@@ -573,6 +600,7 @@ class CarryRecord:
             self.values[name][i] = s
         write_rows(self.arrays[name], 0, self.values[name])
         self.group.update_attributes({f"{direction}_scan": True})
+        self._scanned.add(direction)
 
     def scratch_path(self, index: int) -> str:
         return f"{self.path}/forward/{index}"
@@ -799,7 +827,8 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             initial = steady_state(sos, v["fwd_first"][0])
             record.store_scan("forward", _scan(sos, pieces, initial, v["fwd_final"]))
         # Step 3 (parallel): forward output, backward final state, seam states.
-        bwd_done = record.done("bwd_done")
+        bwd_done = record.done("bwd_done") & np.array(
+            [seam_len(i) == 0 or bool(np.isfinite(v["bwd_seam"][i]).all()) for i in range(m)], dtype=bool)
         scratch = forward_output == "scratch"
         calls3 = [(job(p, seam_split=seam_len(p.index),
                        scratch=record.scratch_path(p.index) if scratch and p.kind == "core" else None),
