@@ -13,6 +13,7 @@ import json
 import math
 import shutil
 from pathlib import Path
+from typing import Any
 
 import zarr
 
@@ -189,15 +190,21 @@ def _bytes(store: Path, arrays) -> list[bytes]:
     return [a.tobytes() for a in read_output(store, arrays)]
 
 
-def test_failures_resume_to_identical_bytes(tmp_path, client, monkeypatch):
+def _clean_and_faulty(tmp_path: Path, client, seed: int) -> tuple[Any, list[bytes], Path]:
+    """The same archive twice: ``clean/`` run undisturbed (its output bytes returned) and
+    ``faulty/`` not run yet."""
     clean_dir, faulty_dir = tmp_path / "clean", tmp_path / "faulty"
     clean_dir.mkdir()
     faulty_dir.mkdir()
-    files = _setup(clean_dir, HIGHPASS_1, 2, seed=5)
-    _setup(faulty_dir, HIGHPASS_1, 2, seed=5)
+    files = _setup(clean_dir, HIGHPASS_1, 2, seed=seed)
+    _setup(faulty_dir, HIGHPASS_1, 2, seed=seed)
     outcomes, clean_store = _run(clean_dir, client)
     assert all(o.status == "complete" for o in outcomes)
-    clean = _bytes(clean_store, files.arrays)
+    return files, _bytes(clean_store, files.arrays), faulty_dir
+
+
+def test_failures_resume_to_identical_bytes(tmp_path, client, monkeypatch):
+    files, clean, faulty_dir = _clean_and_faulty(tmp_path, client, seed=5)
 
     # A block that always raises: its state cannot be carried, so no block of the segment
     # is written; the steps of the other pieces are kept.
@@ -427,14 +434,7 @@ def test_a_record_flag_without_its_values_or_with_a_cut_chunk_is_not_trusted(tmp
 def test_a_damaged_carry_record_resumes_to_identical_bytes(tmp_path, client, monkeypatch, damage):
     # Reference: the bytes of an undisturbed run (itself equal to scipy.signal.sosfiltfilt,
     # see test_carry_mode_equals_whole_segment_two_pass).
-    clean_dir, faulty_dir = tmp_path / "clean", tmp_path / "faulty"
-    clean_dir.mkdir()
-    faulty_dir.mkdir()
-    files = _setup(clean_dir, HIGHPASS_1, 2, seed=9)
-    _setup(faulty_dir, HIGHPASS_1, 2, seed=9)
-    outcomes, clean_store = _run(clean_dir, client)
-    assert all(o.status == "complete" for o in outcomes)
-    clean = _bytes(clean_store, files.arrays)
+    files, clean, faulty_dir = _clean_and_faulty(tmp_path, client, seed=9)
     # A perturbed block fails its checks, so the next run resumes from the record.
     _set_faults(monkeypatch, tmp_path, [{"action": "perturb", "file": files.arrays[2], "block": 1}])
     outcomes, store = _run(faulty_dir, client)
