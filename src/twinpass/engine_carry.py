@@ -82,6 +82,7 @@ import logging
 import re
 import time
 import traceback
+import zlib
 import dataclasses
 from dataclasses import dataclass
 from typing import Any, Callable, TypeVar
@@ -134,7 +135,7 @@ x 8 channels, blocks of 65536, 2 threads, six filters): recomputing took 72.5 s 
 the scratch array 79.3 s, and recomputing was faster in 5 of 6 runs; it also needs no
 scratch space (8 bytes per sample and channel), so it is the default."""
 
-CARRY_FORMAT = 1
+CARRY_FORMAT = 2
 """Version of the persisted carry layout (part of the key)."""
 _FLUSH_SECONDS = 2.0
 _RECORD_CHUNK = 256
@@ -495,17 +496,19 @@ class CarryRecord:
     (m, C) last forward output; ``bwd_final`` (m, S, 2, C) step-3 backward final state;
     ``bwd_seam`` (m, S, 2, C) forward state ``seam_samples`` before a block's end;
     ``bwd_state`` (m, S, 2, C) carried backward states; ``fwd_done`` / ``bwd_done`` (m,)
-    int8 flags, written after the values. Attributes: ``key`` (the digest the values
-    belong to), ``forward_scan`` / ``backward_scan`` (True once the scans are stored).
+    int64 flags, written after the values: 0 for a step not done, else 1 + the CRC-32 of
+    the piece's step values (:meth:`_check_value`). Attributes: ``key`` (the digest the
+    values belong to), ``forward_scan`` / ``backward_scan`` (True once the scans are stored).
 
     What a resumed record is trusted with. The values and flags are not synced to the disk
     one after the other, so after a crash of the operating system a flag may be on the disk
-    without its values (which then read as NaN, the fill value), and a chunk file may be
-    cut short. A piece counts as done only if its flag is set *and* its step's values are
-    finite (:meth:`done`); a record that cannot be read starts afresh; and the scans are
-    always computed again in the process that resumes (:meth:`scanned`): they take the
-    driver a few matrix products per piece and give the same states bit for bit from the
-    same step results, so stored scan states are never used after a restart.
+    without its values (which then read as NaN, the fill value, or, on some file systems,
+    as zeros), and a chunk file may be cut short. A piece counts as done only if its flag
+    matches the values read back (:meth:`done`); a record that cannot be read starts
+    afresh; and the scans are always computed again in the process that resumes
+    (:meth:`scanned`): they take the driver a few matrix products per piece and give the
+    same states bit for bit from the same step results, so stored scan states are never
+    used after a restart.
     """
 
     STATE_ARRAYS = ("fwd_final", "fwd_state", "bwd_final", "bwd_seam", "bwd_state")
@@ -557,17 +560,20 @@ class CarryRecord:
         self._last_flush = time.monotonic()
         self._scanned: set[str] = set()
 
-    _STEP_VALUES = {"fwd_done": ("fwd_first", "fwd_final"), "bwd_done": ("bwd_last", "bwd_final")}
+    _STEP_VALUES = {"fwd_done": ("fwd_first", "fwd_final"), "bwd_done": ("bwd_last", "bwd_final", "bwd_seam")}
+
+    def _check_value(self, flag: str, index: int) -> int:
+        """The flag of a done step: 1 + CRC-32 of the piece's step values (their bytes)."""
+        crc = 0
+        for name in self._STEP_VALUES[flag]:
+            crc = zlib.crc32(np.ascontiguousarray(self.values[name][index]).tobytes(), crc)
+        return crc + 1
 
     def done(self, flag: str) -> np.ndarray:
-        """Pieces whose step (``fwd_done``: 1, ``bwd_done``: 3) is recorded: the flag set and
-        the step's values finite (``bwd_seam`` is checked by the caller, which knows which
-        pieces have one)."""
-        ok = self.values[flag] != 0
-        for name in self._STEP_VALUES[flag]:
-            v = self.values[name]
-            ok &= np.isfinite(v.reshape(v.shape[0], -1)).all(axis=1)
-        return ok
+        """Pieces whose step (``fwd_done``: 1, ``bwd_done``: 3) is recorded: a flag that
+        matches the step's values as they read back."""
+        flags = self.values[flag]
+        return np.array([f != 0 and int(f) == self._check_value(flag, i) for i, f in enumerate(flags)], dtype=bool)
 
     def scanned(self, direction: str) -> bool:
         """Whether this object has stored the scan (``forward`` / ``backward``); a resumed
@@ -579,7 +585,7 @@ class CarryRecord:
         for name, v in values.items():
             if v is not None:
                 self.values[name][index] = v
-        self.values[flag][index] = 1
+        self.values[flag][index] = self._check_value(flag, index)
         self._dirty.add(index // _RECORD_CHUNK)
         if time.monotonic() - self._last_flush > _FLUSH_SECONDS:
             self.flush()
@@ -615,7 +621,7 @@ def _record_metadata(pieces: int, sections: int, channels: int) -> dict[str, Any
     metas = {}
     for name, shp in shapes.items():
         flag = name in CarryRecord.FLAGS
-        metas[name] = array_metadata(shape=shp, dtype="int8" if flag else "float64",
+        metas[name] = array_metadata(shape=shp, dtype="int64" if flag else "float64",
                                      chunks=(min(max(1, pieces), _RECORD_CHUNK),) + shp[1:],
                                      fill_value=0 if flag else float("nan"), compressors=None)
     return metas
@@ -827,8 +833,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             initial = steady_state(sos, v["fwd_first"][0])
             record.store_scan("forward", _scan(sos, pieces, initial, v["fwd_final"]))
         # Step 3 (parallel): forward output, backward final state, seam states.
-        bwd_done = record.done("bwd_done") & np.array(
-            [seam_len(i) == 0 or bool(np.isfinite(v["bwd_seam"][i]).all()) for i in range(m)], dtype=bool)
+        bwd_done = record.done("bwd_done")
         scratch = forward_output == "scratch"
         calls3 = [(job(p, seam_split=seam_len(p.index),
                        scratch=record.scratch_path(p.index) if scratch and p.kind == "core" else None),
