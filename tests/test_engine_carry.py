@@ -12,6 +12,7 @@ import dataclasses
 import json
 import math
 import shutil
+import threading
 from pathlib import Path
 from typing import Any
 
@@ -487,3 +488,29 @@ def test_short_pieces_share_dask_tasks_and_whole_blocks_run_alone():
     assert len(_batches(calls(*[1] * 8), block)) == _MIN_BATCHES
     # a whole block after short pieces starts a task of its own
     assert [len(b) for b in _batches(calls(*[300] * 6, 1000, 300), block)] == [2, 2, 2, 1, 1]
+
+
+def test_segments_starting_together_on_a_new_store_create_their_records(tmp_path):
+    # Several segment drivers create their first carry record at the same moment; the
+    # group that holds all records must not make one of them fail ("a group exists").
+    for attempt in range(10):
+        location = str(tmp_path / f"out-{attempt}.zarr")
+        OutputStore.open(location, mode="a")
+        barrier = threading.Barrier(8)
+        errors: list[BaseException] = []
+
+        def make(i: int) -> None:
+            barrier.wait()
+            try:
+                CarryRecord(location, f"seg-{i}", "key", pieces=3, sections=2, channels=2)
+            except BaseException as exc:  # noqa: BLE001 (reported below)
+                errors.append(exc)
+
+        threads = [threading.Thread(target=make, args=(i,)) for i in range(8)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert not errors, errors
+        group = zarr.open_group(location, path="_twinpass/carry", mode="r")
+        assert sorted(name for name, _ in group.groups()) == [f"seg-{i}" for i in range(8)]

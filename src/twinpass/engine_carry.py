@@ -80,6 +80,7 @@ import hashlib
 import json
 import logging
 import re
+import threading
 import time
 import traceback
 import zlib
@@ -523,7 +524,7 @@ class CarryRecord:
         self.m = pieces
         metas = _record_metadata(pieces, sections, channels)
         root = zarr.open_group(zarr_store_like(location), mode="a", zarr_format=3)
-        parent = root.require_group(f"{RESERVED_PREFIX}/carry")
+        parent = _carry_parent(root)
         group = parent.get(slug)
         arrays: dict[str, Any] = {}
         if isinstance(group, zarr.Group) and group.attrs.get("key") == key:
@@ -610,6 +611,26 @@ class CarryRecord:
 
     def scratch_path(self, index: int) -> str:
         return f"{self.path}/forward/{index}"
+
+
+_PARENT_LOCK = threading.Lock()
+
+
+def _carry_parent(root: Any) -> Any:
+    """The group holding every segment's record, created if missing.
+
+    Segment drivers start together: Zarr's ``require_group`` looks, then creates, so two
+    drivers of a new store could both create it and one fail ("a group exists"). Drivers of
+    this process take turns; another process creating it meanwhile is taken as created.
+    """
+    import zarr
+
+    path = f"{RESERVED_PREFIX}/carry"
+    with _PARENT_LOCK:
+        try:
+            return root.require_group(path)
+        except zarr.errors.ContainsGroupError:
+            return root[path]
 
 
 @functools.lru_cache(maxsize=16)
