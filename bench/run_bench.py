@@ -446,14 +446,34 @@ class Bench:
         return cmd
 
     def first_run(self, label: str, config: Path, *, flow: bool, scheduler: str | None = None,
-                  workers: int | None = None) -> Measured:
+                  workers: int | None = None, samples: int | None = None) -> Measured:
         """A throughput run: the configuration's store deleted first, so that the run writes a
-        new one, as a first run over an archive does (and as the baseline writes new files)."""
+        new one, as a first run over an archive does (and as the baseline writes new files).
+        ``samples`` defaults to the main archive's."""
         from twinpass.config import load_config
 
         shutil.rmtree(load_config(config).store_location, ignore_errors=True)
         return self.run(label, self.cli(config, flow=flow, scheduler=scheduler, workers=workers),
-                        self.info["samples"])
+                        self.info["samples"] if samples is None else samples)
+
+    def save_sos(self, config: Path, rate_hz: float, name: str) -> Path:
+        """The sections twinpass designs for ``config`` at ``rate_hz``, saved for the baseline."""
+        import numpy as np
+        from twinpass.config import load_config
+        from twinpass.core.design import design_filter
+
+        cfg = load_config(config)
+        path = self.work / f"sos-{name}.npy"
+        np.save(path, design_filter(cfg.response, float(rate_hz), cfg.processing.tolerance).sos)
+        return path
+
+    def run_baseline(self, label: str, sos_path: Path, archive: Path, samples: int) -> Measured:
+        """The hand-written baseline over ``archive``, into an emptied output folder (removed after)."""
+        out = self.work / f"baseline-out-{label}"
+        shutil.rmtree(out, ignore_errors=True)
+        m = self.run(label, [self.py, str(HERE / "baseline.py"), str(sos_path), str(archive), str(out)], samples)
+        shutil.rmtree(out, ignore_errors=True)
+        return m
 
     def run(self, label: str, cmd: list[str], samples: int = 0) -> Measured:
         m = measure(label, cmd, env=self.env, logs=self.logs, samples=samples)
@@ -470,31 +490,18 @@ class Bench:
 
     # -- sections
     def sec_baseline(self) -> None:
-        import numpy as np
-        from twinpass.config import load_config
-        from twinpass.core.design import design_filter
-
+        archive, n = self.big() / "archive", self.info["samples"]
         for d in DESIGNS:
-            cfg = load_config(self.config(d))
-            design = design_filter(cfg.response, self.info["rate_hz"], cfg.processing.tolerance)
-            sos_path = self.work / f"sos-{d}.npy"
-            np.save(sos_path, design.sos)
-            out = self.work / f"baseline-out-{d}"
-            shutil.rmtree(out, ignore_errors=True)
-            m = self.run(f"baseline-{d}", [self.py, str(HERE / "baseline.py"), str(sos_path),
-                                            str(self.big() / "archive"), str(out)], self.info["samples"])
+            sos_path = self.save_sos(self.config(d), self.info["rate_hz"], d)
+            m = self.run_baseline(f"baseline-{d}", sos_path, archive, n)
             try:
                 m.extra = json.loads(m.stdout_tail.strip().splitlines()[-1])
             except (ValueError, IndexError):
                 pass
-            shutil.rmtree(out, ignore_errors=True)
         # Other load moves wall times by 10 % or more: the main design's baseline runs as often
         # as the engine/flow pairs (--repeat), and the fastest run is the reference.
         for i in range(2, self.args.repeat + 1):
-            out = self.work / f"baseline-out-{MAIN}"
-            m = self.run(f"baseline-{MAIN}-r{i}", [self.py, str(HERE / "baseline.py"), str(self.work / f"sos-{MAIN}.npy"),
-                                                   str(self.big() / "archive"), str(out)], self.info["samples"])
-            shutil.rmtree(out, ignore_errors=True)
+            self.run_baseline(f"baseline-{MAIN}-r{i}", self.work / f"sos-{MAIN}.npy", archive, n)
 
     def sec_engine(self) -> None:
         n = self.info["samples"]
@@ -566,25 +573,12 @@ class Bench:
             m.extra["changed"] = str(target.relative_to(self.big() / "archive"))
 
     def sec_small(self) -> None:
-        import numpy as np
-        from twinpass.config import load_config
-        from twinpass.core.design import design_filter
-
         cfg = self.ensure_small()
-        store = cfg.parent / "out-small.zarr"
         samples = self.small_info["samples"]
         # The same hand-written baseline, on these files (each filtered on its own).
-        job = load_config(cfg)
-        design = design_filter(job.response, float(self.small_info["rate_hz"]), job.processing.tolerance)
-        sos_path = self.work / "sos-small.npy"
-        np.save(sos_path, design.sos)
-        out = self.work / "baseline-out-small"
-        shutil.rmtree(out, ignore_errors=True)
-        self.run("small-baseline", [self.py, str(HERE / "baseline.py"), str(sos_path), str(cfg.parent / "archive"),
-                                    str(out)], samples)
-        shutil.rmtree(out, ignore_errors=True)
-        shutil.rmtree(store, ignore_errors=True)  # a first run: a new store
-        self.run("small-first-run-engine", self.cli(cfg, flow=False, force=True), samples)
+        sos_path = self.save_sos(cfg, self.small_info["rate_hz"], "small")
+        self.run_baseline("small-baseline", sos_path, cfg.parent / "archive", samples)
+        self.first_run("small-first-run-engine", cfg, flow=False, samples=samples)
         self.run("small-rerun-unchanged-engine", self.cli(cfg, flow=False, force=False))
         self._prefect_warmup()
         self.run("small-rerun-unchanged-flow", self.cli(cfg, flow=True, force=False))
