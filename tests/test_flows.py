@@ -410,3 +410,77 @@ def test_preload_loads_what_the_first_flow_call_and_block_would(tmp_path, schedu
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert f"LOADED (False, False, False, False) (True, True, True, {loops_loaded}) clusters 0" in proc.stdout, \
         proc.stdout
+
+
+# ------------------------------------------------------------------ heartbeats
+def _run_events(client, run_id) -> list:
+    """The flow run's heartbeat and Completed events (at most 50, the API's page size)."""
+    from prefect.events.filters import EventFilter, EventNameFilter, EventResourceFilter
+
+    flt = EventFilter(resource=EventResourceFilter(id=[f"prefect.flow-run.{run_id}"]),
+                      event=EventNameFilter(name=["prefect.flow-run.heartbeat", "prefect.flow-run.Completed"]))
+    return client.read_events(filter=flt, limit=50).events
+
+
+def _heartbeats_once_final(client, run_id) -> list:
+    """The run's heartbeat events, read once the server holds its final state's event.
+
+    A heartbeat is sent when the flow body starts, long before the run's final state, so
+    every heartbeat of the run is stored by the time that state's event is.
+    """
+    from prefect.events.worker import EventsWorker
+
+    EventsWorker.drain_all(timeout=30)
+    events = poll(lambda: _run_events(client, run_id),
+                  lambda evs: any(e.event == "prefect.flow-run.Completed" for e in evs)
+                  and any(e.event == "prefect.flow-run.heartbeat" for e in evs),
+                  f"the Completed and heartbeat events of flow run {run_id}")
+    return [e for e in events if e.event == "prefect.flow-run.heartbeat"]
+
+
+def _latest_flow_run(client):
+    from prefect.client.schemas.sorting import FlowRunSort
+
+    return client.read_flow_runs(sort=FlowRunSort.START_TIME_DESC, limit=1)[0]
+
+
+def test_the_command_sends_its_flow_runs_heartbeats_itself_once(first_run, prefect_client, tmp_path):
+    """`twinpass run` turns Prefect's heartbeat thread off and sends the heartbeats itself.
+
+    Reference: Prefect's own flow-run heartbeat (the event name, resource and related flow
+    that Prefect's flow engine sends), seen on the first_run fixture's run, which was called
+    without prompt_heartbeats.
+    """
+    import threading
+
+    from prefect.settings import get_current_settings
+
+    from twinpass.heartbeats import HEARTBEAT_EVENT, prompt_heartbeats
+
+    assert first_run.state.is_completed()
+    own = _heartbeats_once_final(prefect_client, flow_run_id(first_run.state))
+    assert own, "Prefect's own heartbeat was not sent"
+
+    configured = get_current_settings().flows.heartbeat_frequency
+    assert configured is not None  # Prefect sends heartbeats by default
+    with prompt_heartbeats() as seconds:
+        assert seconds == max(configured, 30)
+        assert get_current_settings().flows.heartbeat_frequency is None  # Prefect's thread off
+    assert get_current_settings().flows.heartbeat_frequency == configured
+
+    # `twinpass run` against the configured server makes its flow call inside prompt_heartbeats.
+    cfg = write_job(tmp_path, first_run.archive)
+    assert cli.main(["run", str(cfg), "--no-report"]) == 0
+    assert not [t for t in threading.enumerate() if t.name == "twinpass-flow-heartbeat"]
+    run_id = _latest_flow_run(prefect_client).id
+    beats = _heartbeats_once_final(prefect_client, run_id)
+    # One heartbeat: twinpass's (it carries its interval), at the body's start (a run this
+    # short sends no second one); Prefect's thread, had it run too, would have sent another.
+    assert len(beats) == 1, beats
+    beat, ref = beats[0], own[0]
+    assert beat.payload == {"interval_seconds": max(configured, 30)} and not ref.payload
+    assert beat.event == ref.event == HEARTBEAT_EVENT
+    assert beat.resource.id == f"prefect.flow-run.{run_id}"
+    assert beat.resource.get("prefect.resource.name") == prefect_client.read_flow_run(run_id).name
+    assert sorted((r.role, r.id) for r in beat.related if r.role == "flow") == \
+        sorted((r.role, r.id) for r in ref.related if r.role == "flow")

@@ -150,6 +150,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
               report: bool, progress: Any, config_block: str | None = None) -> int:
     from . import flows
     from .errors import BlockFailedError
+    from .heartbeats import prompt_heartbeats
     from .prefect_server import prefect_api
 
     # The configured Prefect API, else a temporary local server; while that starts, load
@@ -158,9 +159,11 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     with prefect_api(while_starting=lambda: flows.preload(run_scheduler)):
         flows.TERMINAL_PROGRESS = progress
         try:
-            state = flows.archive_run(config_path=None if config_path is None else str(Path(config_path).resolve()),
-                                      config_block=config_block, force=force, scheduler=scheduler,
-                                      workers=workers, report=report, return_state=True)
+            with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
+                state = flows.archive_run(
+                    config_path=None if config_path is None else str(Path(config_path).resolve()),
+                    config_block=config_block, force=force, scheduler=scheduler, workers=workers,
+                    report=report, return_state=True)
         finally:
             flows.TERMINAL_PROGRESS = None
         try:

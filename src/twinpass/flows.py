@@ -46,6 +46,7 @@ from .core.design import format_report
 from .core.plan import fingerprint_changed
 from .engine import ERROR, FileOutcome, SegmentWork, dask_client, retry_delays, run_segment, warm_compiled_loops
 from .errors import BlockFailedError, ChecksFailedError, ConfigError
+from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
 from .job import Prepared, RunResult, begin_run, finish_run, now_iso, prepare
 
@@ -257,6 +258,13 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         (input paths), ``store`` and ``report`` (path or None). When files fail the flow
         ends Failed, naming them, with this summary as the state's data.
     """
+    with flow_heartbeats():  # only when the caller asked for them (see twinpass.heartbeats)
+        return _archive_run(config_path, force, scheduler, workers, config_block, report)
+
+
+def _archive_run(config_path: str | None, force: bool, scheduler: str | None, workers: int | None,
+                 config_block: str | None, report: bool) -> Any:
+    """The body of :func:`archive_run` (same parameters and result)."""
     logger = get_run_logger()
     cfg = _load(config_path, config_block)
     run_id = uuid.uuid4().hex[:12]
