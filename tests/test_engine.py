@@ -29,6 +29,7 @@ from conftest import (
     write_stream,
 )
 from twinpass.config import load_config
+from twinpass.errors import ConfigError
 from twinpass.job import run_job
 
 FS = 200.0
@@ -252,6 +253,28 @@ def test_local_clusters_poll_their_monitors_rarely():
         assert scheduler.periodic_callbacks["monitor"].callback_time == 2000
         assert "profile" not in worker.periodic_callbacks
         assert not worker.monitor.monitor_disk_io
+
+
+def test_a_client_started_on_its_own_thread_serves_and_closes():
+    # ClientStart enters dask_client on a thread of its own; the client it hands over is a
+    # working distributed.Client (reference: distributed's Client.submit/result), and
+    # closing it closes its local cluster too. A bad scheduler name surfaces from client().
+    from twinpass.engine import ClientStart
+
+    start = ClientStart("threads", 2)
+    client = start.client()
+    assert client.submit(sum, [1, 2, 3]).result() == 6
+    cluster = client.cluster
+    start.close()
+    start.close()  # safe to repeat
+    assert client.status == "closed" and cluster.status.name == "closed"
+    with pytest.raises(RuntimeError, match="closed"):
+        start.client()
+
+    bad = ClientStart("thread", 2)
+    with pytest.raises(ConfigError, match="scheduler 'thread'"):
+        bad.client()
+    bad.close()  # nothing to close after a failed start
 
 
 def test_local_worker_processes_keep_the_allocator_defaults():

@@ -297,6 +297,33 @@ def test_distributed_scheduler_address_from_inside_the_task(prefect_client, npy_
         check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
 
 
+def test_a_cluster_started_before_the_flow_call_runs_its_blocks(prefect_client, npy_archive, tmp_path):
+    # The command line starts the local cluster while Prefect's temporary server starts
+    # (start_client_early); the flow run takes it, runs every block on it and closes it.
+    # A run with nothing to filter closes it unused. Output: scipy.signal.sosfiltfilt.
+    cfg = write_job(tmp_path, npy_archive)
+    flows.start_client_early("threads", 2)
+    early = flows._EARLY
+    worker = next(iter(early.client().cluster.workers.values()))
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed(), state.message
+    assert flows._EARLY is None
+    with pytest.raises(RuntimeError, match="closed"):
+        early.client()
+    assert worker.state.executed_count == 6 * BLOCKS_PER_FILE
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+    flows.start_client_early("threads", 2)
+    unused = flows._EARLY
+    worker = next(iter(unused.client().cluster.workers.values()))
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed() and state.result()["counts"]["skipped"] == 6
+    assert flows._EARLY is None and worker.state.executed_count == 0
+    with pytest.raises(RuntimeError, match="closed"):
+        unused.client()
+
+
 @pytest.mark.parametrize("scheme", ["memory", "file"])
 def test_output_to_an_fsspec_url(prefect_client, npy_archive, tmp_path, monkeypatch, scheme):
     monkeypatch.chdir(tmp_path)  # a report of a non-local store goes to the working folder

@@ -154,22 +154,32 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .prefect_server import prefect_api
 
     # The configured Prefect API, else a temporary local server; while that starts, load
-    # what the flow call would load after it (a saved block's scheduler is not known yet).
+    # what the flow call would load after it and start its local Dask cluster (a saved
+    # block's scheduler and workers are not known yet).
     run_scheduler = scheduler or (cfg.engine.scheduler if cfg is not None else None)
-    with prefect_api(while_starting=lambda: flows.preload(run_scheduler)):
-        flows.TERMINAL_PROGRESS = progress
-        try:
-            with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
-                state = flows.archive_run(
-                    config_path=None if config_path is None else str(Path(config_path).resolve()),
-                    config_block=config_block, force=force, scheduler=scheduler, workers=workers,
-                    report=report, return_state=True)
-        finally:
-            flows.TERMINAL_PROGRESS = None
-        try:
-            summary = state.result(raise_on_failure=False)
-        except Exception as e:  # the result could not be read back
-            summary = e
+    run_workers = workers or (cfg.engine.workers if cfg is not None else None)
+
+    def while_starting() -> None:
+        flows.start_client_early(run_scheduler, run_workers)
+        flows.preload(run_scheduler)
+
+    try:
+        with prefect_api(while_starting=while_starting):
+            flows.TERMINAL_PROGRESS = progress
+            try:
+                with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
+                    state = flows.archive_run(
+                        config_path=None if config_path is None else str(Path(config_path).resolve()),
+                        config_block=config_block, force=force, scheduler=scheduler, workers=workers,
+                        report=report, return_state=True)
+            finally:
+                flows.TERMINAL_PROGRESS = None
+            try:
+                summary = state.result(raise_on_failure=False)
+            except Exception as e:  # the result could not be read back
+                summary = e
+    finally:
+        flows.close_early_client()  # one the flow run did not take, or after a failed server start
     if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):

@@ -348,6 +348,54 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
             allocator.release_free_memory()
 
 
+class ClientStart:
+    """:func:`dask_client` entered on a thread of its own, so that a local cluster's start-up
+    (about 0.2-0.3 s of interpreter time, 1-2 s with worker processes) overlaps other work.
+
+    The constructor returns at once; :meth:`client` waits for the client (and raises what
+    starting it raised); :meth:`close` closes it (safe to repeat, and after a failed start).
+
+    Parameters
+    ----------
+    scheduler, workers
+        As for :func:`dask_client`.
+    """
+
+    def __init__(self, scheduler: str = "threads", workers: int = 2) -> None:
+        self.scheduler = scheduler
+        self.workers = int(workers)
+        self._cm = dask_client(scheduler, self.workers)
+        self._client: Any = None
+        self._error: BaseException | None = None
+        self._closed = False
+        self._thread = threading.Thread(target=self._enter, name="twinpass-dask-start", daemon=True)
+        self._thread.start()
+
+    def _enter(self) -> None:
+        try:
+            self._client = self._cm.__enter__()
+        except BaseException as e:  # handed to the caller by client()
+            self._error = e
+
+    def client(self) -> Any:
+        """The started :class:`distributed.Client` (waits for the start)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        if self._closed:
+            raise RuntimeError("this Dask client was closed")
+        return self._client
+
+    def close(self) -> None:
+        """Close the client and its local cluster (waits for the start first)."""
+        self._thread.join()
+        if self._closed:
+            return
+        self._closed = True
+        if self._error is None:
+            self._cm.__exit__(None, None, None)
+
+
 COMPILE_NOTICE = ("compiling twinpass's filter loops for this machine (first use after installing; "
                   "this takes a minute or so, and later runs load them from numba's cache)")
 

@@ -44,7 +44,7 @@ from prefect.utilities.annotations import quote
 from .config import JobConfig, load_config
 from .core.design import format_report
 from .core.plan import fingerprint_changed
-from .engine import ERROR, FileOutcome, SegmentWork, dask_client, retry_delays, run_segment, warm_compiled_loops
+from .engine import ERROR, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
 from .errors import BlockFailedError, ChecksFailedError, ConfigError
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
@@ -75,18 +75,61 @@ TERMINAL_PROGRESS: Any = None
 """Optional ``callable(segment_id, done, total, result)`` the CLI sets for a terminal progress bar."""
 
 
+_EARLY: ClientStart | None = None
+"""A local Dask client the command line started before its flow call (see
+:func:`start_client_early`), for the next flow run with the same scheduler and workers."""
+
+
+def start_client_early(scheduler: str | None, workers: int | None) -> None:
+    """Start the local Dask cluster of the next flow call in this process now, on a thread.
+
+    The command line calls it while Prefect's temporary server starts, so that the flow run
+    finds its cluster up instead of starting it after preparing the archive. Only for the
+    ``threads`` scheduler: worker processes would cost a run with nothing to filter (an
+    unchanged archive) seconds of start-up. A client the flow run does not take is closed
+    by :func:`close_early_client`.
+    """
+    global _EARLY
+    if scheduler == "threads" and workers is not None and int(workers) >= 1:
+        with _CLIENTS_LOCK:
+            if _EARLY is None:
+                _EARLY = ClientStart(scheduler, int(workers))
+
+
+def close_early_client() -> None:
+    """Close the client :func:`start_client_early` started, if no flow run took it."""
+    global _EARLY
+    with _CLIENTS_LOCK:
+        early, _EARLY = _EARLY, None
+    if early is not None:
+        early.close()
+
+
+def _client_start(scheduler: str, workers: int) -> ClientStart:
+    """The early client if it matches, else a client starting now on its own thread."""
+    global _EARLY
+    with _CLIENTS_LOCK:
+        early = _EARLY
+        if early is not None and early.scheduler == scheduler and early.workers == int(workers):
+            _EARLY = None
+            return early
+    return ClientStart(scheduler, workers)
+
+
 @contextlib.contextmanager
-def _shared_client(scheduler: str, workers: int) -> Iterator[str]:
+def _shared_client(start: ClientStart) -> Iterator[str]:
+    """Register the started client for the segment tasks under a new key; close it on exit."""
     key = uuid.uuid4().hex
-    with dask_client(scheduler, workers) as client:
+    try:
+        client = start.client()
         with _CLIENTS_LOCK:
             _CLIENTS[key] = client
-        try:
-            yield key
-        finally:
-            with _CLIENTS_LOCK:
-                _CLIENTS.pop(key, None)
-                _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
+        yield key
+    finally:
+        with _CLIENTS_LOCK:
+            _CLIENTS.pop(key, None)
+            _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
+        start.close()
 
 
 def _as_resume(seg: SegmentWork) -> SegmentWork:
@@ -281,42 +324,23 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             logger.error("left out %s: %s; %s", bad.relpath, bad.reason, bad.remedy)
         for fp in prep.plan.removed:
             logger.warning("%s: %s", fp.relpath, fp.reason)
-        design_task(quote(prep))
-        begin_run(store, prep)
         busy = [w for w in prep.work if w.has_work]
-        unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
-        idle = [w for w in prep.work if not w.has_work]
-        outcomes: list[FileOutcome] = [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped")
-                                       for w in idle for f in w.files]
-        if unchanged:
-            skip_unchanged(quote(unchanged))
-        if busy:
-            seg_task = filter_segment.with_options(
-                retries=cfg.flow.retries,
-                retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
-            )
-            with _shared_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as key:
-                futures = []
-                for w in busy:
-                    futures.append((w, time.perf_counter(),
-                                    seg_task.with_options(task_run_name=f"filter-{_slug(w.segment_id)}")
-                                    .submit(quote(w), quote(prep), quote(store), key)))
-                # Resolve every future, failed or not, before deciding the run's outcome.
-                for w, t0, fut in futures:
-                    value = fut.result(raise_on_failure=False)
-                    secs = time.perf_counter() - t0
-                    state = fut.state
-                    if state.is_completed() and isinstance(value, list):
-                        outs = value
-                    else:
-                        outs = _outcomes_from_store(store, w)
-                        bad = [o.relpath for o in outs if o.status == "failed"]
-                        logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
-                                     state.message or state.name, ", ".join(bad))
-                        failed_files += bad
-                    for o in outs:
-                        durations[o.relpath] = o.seconds or secs
-                    outcomes.extend(outs)
+        # The cluster starts on its own thread while the design task and the run's records go.
+        start = _client_start(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) if busy else None
+        if not busy:
+            close_early_client()  # nothing to filter: a cluster the command started is not needed
+        with contextlib.closing(start) if start is not None else contextlib.nullcontext():
+            design_task(quote(prep))
+            begin_run(store, prep)
+            unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
+            idle = [w for w in prep.work if not w.has_work]
+            outcomes: list[FileOutcome] = [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped")
+                                           for w in idle for f in w.files]
+            if unchanged:
+                skip_unchanged(quote(unchanged))
+            if start is not None:
+                done, failed_files, durations = _filter_segments(busy, prep, store, start)
+                outcomes.extend(done)
         result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
     report_path = None
@@ -327,6 +351,43 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     if failed_files:
         return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}", data=summary)
     return summary
+
+
+def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore,
+                     start: ClientStart) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
+    """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file)."""
+    logger = get_run_logger()
+    cfg = prep.cfg
+    outcomes: list[FileOutcome] = []
+    failed_files: list[str] = []
+    durations: dict[str, float] = {}
+    seg_task = filter_segment.with_options(
+        retries=cfg.flow.retries,
+        retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
+    )
+    with _shared_client(start) as key:
+        futures = []
+        for w in busy:
+            futures.append((w, time.perf_counter(),
+                            seg_task.with_options(task_run_name=f"filter-{_slug(w.segment_id)}")
+                            .submit(quote(w), quote(prep), quote(store), key)))
+        # Resolve every future, failed or not, before deciding the run's outcome.
+        for w, t0, fut in futures:
+            value = fut.result(raise_on_failure=False)
+            secs = time.perf_counter() - t0
+            state = fut.state
+            if state.is_completed() and isinstance(value, list):
+                outs = value
+            else:
+                outs = _outcomes_from_store(store, w)
+                bad = [o.relpath for o in outs if o.status == "failed"]
+                logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
+                             state.message or state.name, ", ".join(bad))
+                failed_files += bad
+            for o in outs:
+                durations[o.relpath] = o.seconds or secs
+            outcomes.extend(outs)
+    return outcomes, failed_files, durations
 
 
 def preload(scheduler: str | None) -> None:
