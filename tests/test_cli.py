@@ -117,6 +117,56 @@ def test_design_bad_spec_exits_nonzero_with_one_line(tmp_path: Path) -> None:
     assert len(lines) == 1 and "Nyquist" in lines[0]
 
 
+_EXIT_SCRIPT = """\
+import atexit, sys
+from twinpass import cli
+marks, trace, args = sys.argv[1], sys.argv[2] == "trace", sys.argv[3:]
+
+class Witness:  # a finaliser that runs only if the interpreter is finalised
+    def __init__(self, path):
+        self.path = path
+
+    def __del__(self, _open=open):  # module globals may be gone by then
+        _open(self.path, "w").write("yes")
+
+witness = Witness(marks + ".finalised")
+build = cli.build_parser
+
+def build_and_register():  # an exit handler registered while the command runs
+    atexit.register(lambda: open(marks + ".handler", "w").write("yes"))
+    return build()
+
+cli.build_parser = build_and_register
+if trace:
+    sys.settrace(lambda *a: None)
+sys.argv = ["twinpass", *args]
+sys.exit(cli.main())
+"""
+
+
+@pytest.mark.parametrize("trace", [False, True])
+def test_the_command_ends_after_its_exit_handlers_without_finalising(tmp_path: Path, trace: bool) -> None:
+    # The command line (main() with no arguments) ends the process once every exit handler
+    # registered during the command has run, with its exit status and all its piped output,
+    # but without finalising the interpreter (a finaliser does not run; Python does not
+    # promise that it would). Under a tracer (coverage, a debugger) it finalises as usual.
+    cfg = mixed_archive(tmp_path)
+    reference = _twinpass("design", str(cfg), "--fs", "100", "--json")
+    assert reference.returncode == 0, reference.stderr
+    for args, status in ((["design", str(cfg), "--fs", "100", "--json"], 0),
+                         (["design", str(cfg), "--fs", "50"], 2)):
+        marks = tmp_path / f"marks-{status}"
+        r = subprocess.run([sys.executable, "-c", _EXIT_SCRIPT, str(marks), "trace" if trace else "-", *args],
+                           capture_output=True, text=True, timeout=600)
+        assert r.returncode == status, r.stderr
+        if status == 0:
+            assert r.stdout == reference.stdout  # every byte of the piped output
+        else:
+            assert "Nyquist" in r.stderr
+        assert (tmp_path / f"marks-{status}.handler").exists()
+        assert (tmp_path / f"marks-{status}.finalised").exists() is trace
+
+
 def test_plan_on_mixed_archive_with_gap(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)
     r = _twinpass("plan", str(cfg), "--json")

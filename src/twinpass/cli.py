@@ -7,6 +7,7 @@ Exit status: 0 success, 1 some files failed or are incomplete, 2 bad configurati
 from __future__ import annotations
 
 import argparse
+import atexit
 import json
 import logging
 import os
@@ -364,7 +365,53 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+_exit_code: int | None = None
+"""The command's exit status once :func:`main` has returned it (the command line only)."""
+
+
+def _end_without_finalizing() -> None:
+    """The command's last exit handler: end the process without finalising the interpreter.
+
+    Finalising frees every remaining object one by one (module by module, then the garbage
+    collector's generations): 0.35 s after an engine run and 0.65 s after a flow run on the
+    bench machine, work the operating system does at once when the process ends. Registered
+    first, this runs after every exit handler registered later (Prefect's flushes of events
+    and logs, the temporary server's stop, Dask's and multiprocessing's clean-up); logging
+    and the standard streams are flushed here. Python does not promise to run ``__del__``
+    methods of objects alive at exit, so nothing twinpass keeps relies on them: chunks,
+    records and the report are written and closed before :func:`main` returns.
+
+    Does nothing, and the interpreter finalises as usual, when :func:`main` did not return
+    (an uncaught exception) or when a tracer or profiler is active (coverage and profilers
+    write their data at exit, after this handler).
+    """
+    if _exit_code is None or sys.gettrace() is not None or sys.getprofile() is not None:
+        return
+    logging.shutdown()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):  # closed or broken stream: nothing more to show
+            pass
+    os._exit(_exit_code)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run the ``twinpass`` command with ``argv`` (default: the command line); return the exit status.
+
+    Called with the command line (``argv`` None), the process ends without finalising the
+    interpreter once every exit handler has run (see :func:`_end_without_finalizing`).
+    """
+    global _exit_code
+    if argv is None:
+        atexit.register(_end_without_finalizing)
+    code = _main(argv)
+    if argv is None:
+        _exit_code = code
+    return code
+
+
+def _main(argv: Sequence[str] | None) -> int:
     args = build_parser().parse_args(argv)
     args.own_process = argv is None  # the command line itself, not a call from a caller's Python
     logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
