@@ -325,9 +325,10 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         for fp in prep.plan.removed:
             logger.warning("%s: %s", fp.relpath, fp.reason)
         busy = [w for w in prep.work if w.has_work]
-        # The cluster starts on its own thread while the design task and the run's records go.
-        start = _client_start(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) if busy else None
-        if not busy:
+        if busy:  # the cluster starts on its own thread while the design task and the run's records go
+            start = _client_start(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers)
+        else:
+            start = None
             close_early_client()  # nothing to filter: a cluster the command started is not needed
         with contextlib.closing(start) if start is not None else contextlib.nullcontext():
             design_task(quote(prep))
@@ -399,8 +400,8 @@ def preload(scheduler: str | None) -> None:
     first block loads the engine's compiled loops in this process (and checks them against
     scipy's). Together about 0.8 s. The command line calls this while the temporary Prefect
     server starts, when it would otherwise wait, so that the run starts that much sooner
-    once the server answers. Nothing is started: the Dask cluster is still made by the
-    flow's first segment, and an unchanged archive makes none.
+    once the server answers. Nothing is started here (the command line starts a threads
+    cluster beside it with :func:`start_client_early`).
 
     Parameters
     ----------

@@ -10,8 +10,9 @@ command, 0.5 s on average, which is several per cent of a short run.
 heartbeat thread off for that call and hands the same frequency to :func:`flow_heartbeats`,
 which the flow body enters. That sends the same event, for the same resources (the flow
 run, its flow, its deployment, its tags), with the interval as its payload
-(``interval_seconds``), from a thread that waits on an event and so ends at once. Flow runs started any other way (a deployment served by a runner, a
-library call) keep Prefect's own heartbeats and :func:`flow_heartbeats` does nothing.
+(``interval_seconds``), from a thread that waits on an event and so ends at once. Flow
+runs started any other way (a deployment served by a runner, a library call) keep
+Prefect's own heartbeats and :func:`flow_heartbeats` does nothing.
 
 Prefect is imported only inside the functions.
 """
