@@ -148,8 +148,9 @@ sys.exit(cli.main())
 def test_the_command_ends_after_its_exit_handlers_without_finalising(tmp_path: Path, trace: bool) -> None:
     # The command line (main() with no arguments) ends the process once every exit handler
     # registered during the command has run, with its exit status and all its piped output,
-    # but without finalising the interpreter (a finaliser does not run; Python does not
-    # promise that it would). Under a tracer (coverage, a debugger) it finalises as usual.
+    # but without finalising the interpreter (a finaliser does not run; the Python language
+    # reference, object.__del__, does not promise that it would for objects alive at exit).
+    # Under a tracer (coverage, a debugger) it finalises as usual.
     cfg = mixed_archive(tmp_path)
     reference = _twinpass("design", str(cfg), "--fs", "100", "--json")
     assert reference.returncode == 0, reference.stderr
