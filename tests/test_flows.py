@@ -43,7 +43,9 @@ from prefect_fixtures import (
 )
 from twinpass import cli, flows
 from twinpass.core.blocks import blocks_touching
-from twinpass.errors import ConfigError
+from twinpass.config import load_config
+from twinpass.errors import ConfigError, StoreLockedError
+from twinpass.headstart import HeadStart, offer, withdraw
 from twinpass.io.store import BlockStatus, OutputStore
 from twinpass.io.store_util import array_name
 
@@ -322,6 +324,104 @@ def test_a_cluster_started_before_the_flow_call_runs_its_blocks(prefect_client, 
     assert flows._EARLY is None and worker.state.executed_count == 0
     with pytest.raises(RuntimeError, match="closed"):
         unused.client()
+
+
+# ----------------------------------------------------------------- head starts
+def _file_records_honest(store_location: str) -> dict[str, bool]:
+    """Each file's ``complete`` flag, checked against its block table (complete: every block passed or warned)."""
+    store = OutputStore.open(store_location, mode="r")
+    records = store.file_records()
+    for rel, rec in records.items():
+        if rec.complete:
+            table = store.read_block_table(array_name(rel), figures=False, seams=False)
+            assert all(s in (BlockStatus.PASS, BlockStatus.WARN) for s in table.status), (rel, table.status)
+    return {rel: rec.complete for rel, rec in records.items()}
+
+
+def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy_archive, tmp_path):
+    # The command line begins the run (lock, preparation, cluster, segment drivers) before
+    # the flow run exists; the flow run takes it over: same run id, every block run once on
+    # the head start's cluster, one task per segment with its progress artifact, the lock
+    # released at the end. Output: scipy.signal.sosfiltfilt of the whole segment.
+    cfg_path = write_job(tmp_path, npy_archive)
+    head = HeadStart.begin(load_config(cfg_path))
+    assert sorted(head.segments) and head.client_start is not None
+    worker = next(iter(head.client_start.client().cluster.workers.values()))
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="a", archive_root=npy_archive)
+    with pytest.raises(StoreLockedError, match=head.run_id):
+        with store.lock("another-run"):
+            pass
+    offer(head)
+    state = flows.archive_run(config_path=str(cfg_path), report=False, return_state=True)
+    assert state.is_completed(), state.message
+    summary = state.result()
+    assert summary["run_id"] == head.run_id and summary["counts"]["blocks_run"] == 6 * BLOCKS_PER_FILE
+    assert worker.state.executed_count == 6 * BLOCKS_PER_FILE  # each block once, on the head start's cluster
+    assert head.segments == {}  # every driver followed by its task
+
+    run_id = flow_run_id(state)
+    runs = final_task_runs(prefect_client, run_id, expected=4)
+    segs = runs_of(runs, flows.filter_segment)
+    assert len(segs) == 2 and all(t.state.is_completed() and t.run_count == 1 for t in segs)
+    _artifacts_by_key(prefect_client, run_id, {flows.ARTIFACT_FILES}, progress=2)
+    assert [r["run_id"] for r in OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()] == [head.run_id]
+    with store.lock("the-next-run"):  # released
+        pass
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
+def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_client, npy_archive, tmp_path,
+                                                                   monkeypatch):
+    # Block 1 of each north file fails once while the head start's driver runs it; the
+    # task following that driver fails, and its retry (a normal attempt) resumes: it runs
+    # only the failed blocks, because the followed driver's blocks marked the segment prepared.
+    cfg_path = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise-once", "file": "north/*", "block": 1}]))
+    monkeypatch.setenv("TWINPASS_FAULTS_STATE", str(tmp_path / "fault-state"))
+    offer(HeadStart.begin(load_config(cfg_path)))
+    state = flows.archive_run(config_path=str(cfg_path), report=False, return_state=True)
+    assert state.is_completed(), state.message
+    runs = final_task_runs(prefect_client, flow_run_id(state), expected=3)
+    north = next(t for t in runs_of(runs, flows.filter_segment) if "north" in t.name)
+    assert north.run_count == 2
+    assert state.result()["counts"]["blocks_run"] == FILES_PER_STREAM + FILES_PER_STREAM * BLOCKS_PER_FILE
+    check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
+
+
+def test_a_run_begun_but_not_taken_over_stops_without_marking_anything_complete(prefect_client, npy_archive,
+                                                                              tmp_path, monkeypatch):
+    # As when the temporary server never answers: the head start is withdrawn while its
+    # blocks run (each delayed 0.2 s). Its cluster stops, the lock is released, no file is
+    # marked complete unless every block of it is done, and the next run finishes the job.
+    cfg_path = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
+                                                       "seconds": 0.2}]))
+    offer(HeadStart.begin(load_config(cfg_path)))
+    withdraw()
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    monkeypatch.delenv("TWINPASS_FAULTS")
+    state = flows.archive_run(config_path=str(cfg_path), report=False, return_state=True)  # takes the lock
+    assert state.is_completed(), state.message
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
+def test_a_run_begun_for_other_settings_is_stopped_and_the_flow_run_starts_afresh(prefect_client, npy_archive,
+                                                                                 tmp_path):
+    cfg_path = write_job(tmp_path, npy_archive)
+    head = HeadStart.begin(load_config(cfg_path))
+    offer(head)
+    state = flows.archive_run(config_path=str(cfg_path), force=True, report=False, return_state=True)
+    assert state.is_completed(), state.message
+    summary = state.result()
+    assert summary["run_id"] != head.run_id
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
 
 
 @pytest.mark.parametrize("scheme", ["memory", "file"])

@@ -25,5 +25,5 @@ def test_core_imports_neither_prefect_nor_zarr_nor_dask() -> None:
 
 def test_io_layer_does_not_import_prefect() -> None:
     loaded = _loaded_after_import(["twinpass.io.store", "twinpass.io.archive", "twinpass.io.readers",
-                                   "twinpass.engine", "twinpass.job"])
+                                   "twinpass.engine", "twinpass.job", "twinpass.headstart"])
     assert "prefect" not in loaded

@@ -46,6 +46,7 @@ from .core.design import format_report
 from .core.plan import fingerprint_changed
 from .engine import ERROR, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
 from .errors import BlockFailedError, ChecksFailedError, ConfigError
+from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
 from .job import Prepared, RunResult, begin_run, finish_run, now_iso, prepare
@@ -65,6 +66,8 @@ _CLIENTS_LOCK = threading.Lock()
 # (client key, segment id) of segments whose files a first attempt has prepared in the
 # store (their block tables are current): a retry resumes them instead of starting over.
 _PREPARED: set[tuple[str, str]] = set()
+# Head starts whose running segments the segment tasks follow, by client key.
+_HEADS: dict[str, HeadStart] = {}
 
 PROGRESS_INTERVAL_S = 3.0
 """Seconds between updates of a segment's progress artifact on the dashboard (and one at the
@@ -117,8 +120,9 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 
 
 @contextlib.contextmanager
-def _shared_client(start: ClientStart) -> Iterator[str]:
-    """Register the started client for the segment tasks under a new key; close it on exit."""
+def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterator[str]:
+    """Register the started client for the segment tasks under a new key; close it on exit
+    (with a head start, through :meth:`HeadStart.close`, which first stops its drivers)."""
     key = uuid.uuid4().hex
     try:
         client = start.client()
@@ -128,8 +132,9 @@ def _shared_client(start: ClientStart) -> Iterator[str]:
     finally:
         with _CLIENTS_LOCK:
             _CLIENTS.pop(key, None)
+            _HEADS.pop(key, None)
             _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
-        start.close()
+        (head or start).close()
 
 
 def _as_resume(seg: SegmentWork) -> SegmentWork:
@@ -203,7 +208,13 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
             last[0] = now
             update_progress_artifact(artifact_id, 100.0 * done / max(total, 1))
 
-    outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block)
+    with _CLIENTS_LOCK:
+        head = _HEADS.get(client_key)
+    early = head.take_segment(seg.segment_id) if head is not None else None
+    if early is not None:  # begun before the flow run: follow it (a retry runs as usual)
+        outcomes = early.follow(on_block)
+    else:
+        outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block)
     update_progress_artifact(artifact_id, 100.0)
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:
@@ -310,29 +321,40 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     """The body of :func:`archive_run` (same parameters and result)."""
     logger = get_run_logger()
     cfg = _load(config_path, config_block)
-    run_id = uuid.uuid4().hex[:12]
-    started = now_iso()
-    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    # A run the command line began before this flow run existed (twinpass.headstart), if it
+    # is this one: its lock, preparation, root record, cluster and running segments.
+    head = claim(cfg, force=force, scheduler=scheduler, workers=workers)
+    if head is not None:
+        run_id, started, store, held = head.run_id, head.started, head.store, head.held()
+    else:
+        run_id, started = uuid.uuid4().hex[:12], now_iso()
+        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        held = store.lock(run_id)
     durations: dict[str, float] = {}
     failed_files: list[str] = []
-    with store.lock(run_id):
-        cleaned = store.clean_partials()
+    with held:
+        cleaned = store.clean_partials() if head is None else head.cleaned
         if cleaned:
             logger.warning("removed %d partial chunk file(s) left by an interrupted run", cleaned)
-        prep = prepare(cfg, store, force=force)
+        prep = prepare(cfg, store, force=force) if head is None or head.prep is None else head.prep
         for bad in prep.invalid:
             logger.error("left out %s: %s; %s", bad.relpath, bad.reason, bad.remedy)
         for fp in prep.plan.removed:
             logger.warning("%s: %s", fp.relpath, fp.reason)
         busy = [w for w in prep.work if w.has_work]
-        if busy:  # the cluster starts on its own thread while the design task and the run's records go
+        if head is not None:
+            start = head.client_start
+        elif busy:  # the cluster starts on its own thread while the design task and the run's records go
             start = _client_start(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers)
         else:
             start = None
-            close_early_client()  # nothing to filter: a cluster the command started is not needed
-        with contextlib.closing(start) if start is not None else contextlib.nullcontext():
+        if start is None:
+            close_early_client()  # nothing to filter here: a cluster the command started is not needed
+        # Closed on the way out: a head start stops its drivers before its cluster closes.
+        with contextlib.closing(head or start) if start is not None else contextlib.nullcontext():
             design_task(quote(prep))
-            begin_run(store, prep)
+            if head is None:
+                begin_run(store, prep)
             unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
             idle = [w for w in prep.work if not w.has_work]
             outcomes: list[FileOutcome] = [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped")
@@ -340,7 +362,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             if unchanged:
                 skip_unchanged(quote(unchanged))
             if start is not None:
-                done, failed_files, durations = _filter_segments(busy, prep, store, start)
+                done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
                 outcomes.extend(done)
         result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
@@ -354,9 +376,12 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     return summary
 
 
-def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore,
-                     start: ClientStart) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
-    """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file)."""
+def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore, start: ClientStart,
+                     head: HeadStart | None = None) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
+    """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file).
+
+    With a head start, each task follows its segment's running driver instead of starting one.
+    """
     logger = get_run_logger()
     cfg = prep.cfg
     outcomes: list[FileOutcome] = []
@@ -366,7 +391,10 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
         retries=cfg.flow.retries,
         retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
     )
-    with _shared_client(start) as key:
+    with _shared_client(start, head) as key:
+        if head is not None:
+            with _CLIENTS_LOCK:
+                _HEADS[key] = head
         futures = []
         for w in busy:
             futures.append((w, time.perf_counter(),

@@ -1,0 +1,280 @@
+"""A run's first steps, taken by the command line before its Prefect flow run exists.
+
+Before the flow body of :func:`twinpass.flows.archive_run` can start a block, the command
+imports Prefect (about 0.6 s of interpreter time) and creates the flow run (about 0.4 s
+against a running server; with a temporary server it first waits about 3 s for the server
+to answer). A :class:`HeadStart` takes the body's first steps meanwhile, the same steps and
+in the same order as the body: it takes the store's run lock, removes partial chunk files,
+prepares the run (discovery, designs, plan), records the run's root provenance, starts the
+Dask cluster when there are blocks to run, and starts each segment's driver
+(:func:`twinpass.engine.run_segment`) on a thread of its own.
+
+The command line offers it (:func:`offer`) before the flow call; the flow body takes it
+(:func:`claim`) when it is for the same configuration, ``force`` flag, scheduler and
+workers, and then owns the lock, the prepared run and the cluster. Each ``filter-segment``
+task follows its segment's driver (:meth:`EarlySegment.follow`): the driver's block events
+reach the task's own thread (its log lines, progress artifact, the terminal's progress bar
+and the mark that makes a retry resume), and the task returns the driver's outcomes or
+raises its error, so the flow run records, reports and retries what it would have done
+itself. A second attempt runs as usual.
+
+Nothing is marked complete before the flow run records it: the drivers write block
+results and file records exactly as in the flow body, and the run itself is recorded by
+the flow's ``finalize-run`` task. If no flow run takes the head start (the temporary
+server did not start, the command was interrupted), :func:`withdraw` stops it: the cluster
+closes, the drivers record their unfinished blocks as not done, and the lock is released.
+
+Prefect is not imported here: the command line starts a head start before importing it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import queue
+import threading
+import uuid
+import weakref
+from dataclasses import dataclass, field
+from typing import Any, Callable, Iterator
+
+from .config import JobConfig
+from .engine import ClientStart, FileOutcome, SegmentWork, run_segment
+from .io.store import OutputStore
+from .job import Prepared, begin_run, now_iso, prepare
+
+log = logging.getLogger(__name__)
+
+BlockFn = Callable[[int, int, Any], None]
+"""``on_block(done, total, result)``, as for :func:`twinpass.engine.run_segment`."""
+
+_END = object()
+STOP_POLL_S = 0.1
+"""Seconds between rounds of cancelling the drivers' blocks while :meth:`HeadStart.close` waits for them."""
+
+
+class _CancellableClient:
+    """The cluster's client as the drivers see it: the blocks they submit can all be cancelled.
+
+    Closing a cluster under a driver that still submits or waits on blocks can leave the
+    driver waiting forever on a client whose event loop is gone; cancelling its blocks
+    first lets it record them as not done and return.
+    """
+
+    def __init__(self, client: Any) -> None:
+        self._client = client
+        self._futures: weakref.WeakSet[Any] = weakref.WeakSet()  # forgotten once the driver drops them
+        self._guard = threading.Lock()
+
+    def submit(self, *args: Any, **kwargs: Any) -> Any:
+        fut = self._client.submit(*args, **kwargs)
+        with self._guard:
+            self._futures.add(fut)
+        return fut
+
+    def cancel_all(self) -> None:
+        """Cancel every block submitted so far that has not finished."""
+        with self._guard:
+            pending = [f for f in self._futures if not f.done()]
+        if pending:
+            self._client.cancel(pending)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._client, name)
+
+
+class EarlySegment:
+    """One segment's driver, started on a thread of its own before any flow task exists.
+
+    The driver's block events wait in a queue until a task follows the segment
+    (:meth:`follow`).
+    """
+
+    def __init__(self, seg: SegmentWork, prep: Prepared, store: OutputStore, client: Any) -> None:
+        self.seg = seg
+        self._events: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self._outcomes: list[FileOutcome] | None = None
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._drive, args=(prep, store, client),
+                                        name=f"twinpass-early-{seg.segment_id}"[:60], daemon=True)
+        self._thread.start()
+
+    def _drive(self, prep: Prepared, store: OutputStore, client: Any) -> None:
+        try:
+            self._outcomes = run_segment(self.seg, prep.designs[self.seg.sample_rate_hz], prep.cfg, store, client,
+                                         on_block=lambda done, total, res: self._events.put((done, total, res)))
+        except BaseException as e:  # handed to the follower
+            self._error = e
+        finally:
+            self._events.put(_END)
+
+    def follow(self, on_block: BlockFn | None = None) -> list[FileOutcome]:
+        """Wait for the driver, calling ``on_block`` in this thread for each of its blocks.
+
+        Returns the driver's outcomes (as :func:`~twinpass.engine.run_segment` returns
+        them) or raises what the driver raised. Events that came before the call are
+        passed on first, in order.
+        """
+        while (event := self._events.get()) is not _END:
+            if on_block is not None:
+                on_block(*event)
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        assert self._outcomes is not None
+        return self._outcomes
+
+    def join(self, timeout: float | None = None) -> bool:
+        """Wait for the driver to end (at most ``timeout`` seconds); whether it has ended."""
+        self._thread.join(timeout)
+        return not self._thread.is_alive()
+
+
+@dataclass
+class HeadStart:
+    """A run begun before its flow run (see the module notes); make one with :meth:`begin`.
+
+    Attributes
+    ----------
+    run_id, started : str
+        The run's id and start time (ISO 8601, UTC), used by the flow run that claims it.
+    store : OutputStore
+        Opened for writing, its run lock held.
+    cleaned : int
+        Partial chunk files removed.
+    prep : Prepared
+        The prepared run.
+    client_start : ClientStart or None
+        The cluster, when there are blocks to run.
+    segments : dict
+        :class:`EarlySegment` by segment id, one per segment with work.
+    """
+
+    cfg: JobConfig
+    force: bool
+    scheduler: str
+    workers: int
+    run_id: str
+    started: str
+    store: OutputStore
+    cleaned: int = 0
+    prep: Prepared | None = None
+    client_start: ClientStart | None = None
+    segments: dict[str, EarlySegment] = field(default_factory=dict)
+    _drivers: list[EarlySegment] = field(default_factory=list)
+    _client: _CancellableClient | None = None
+    _lock: contextlib.ExitStack = field(default_factory=contextlib.ExitStack)
+
+    @classmethod
+    def begin(cls, cfg: JobConfig, *, force: bool = False, scheduler: str | None = None,
+              workers: int | None = None) -> HeadStart:
+        """Take the run's first steps now; returns with the segments' drivers running.
+
+        Parameters are those of the flow call to come (``scheduler`` and ``workers``
+        default to the configuration's ``[engine]`` settings).
+
+        Raises
+        ------
+        TwinpassError
+            What the flow body would raise at these steps (a locked or unusable store, an
+            unreadable archive...); nothing is left held.
+        """
+        run_id = uuid.uuid4().hex[:12]
+        head = cls(cfg, bool(force), scheduler or cfg.engine.scheduler, int(workers or cfg.engine.workers), run_id,
+                   now_iso(), OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root))
+        with head._lock:
+            head._lock.enter_context(head.store.lock(run_id))
+            head.cleaned = head.store.clean_partials()
+            head.prep = prep = prepare(cfg, head.store, force=head.force)
+            busy = [w for w in prep.work if w.has_work]
+            if busy:
+                head.client_start = ClientStart(head.scheduler, head.workers)
+                head._lock.callback(head.close)  # runs before the lock is released
+            begin_run(head.store, prep)
+            if busy:
+                head._client = _CancellableClient(head.client_start.client())  # type: ignore[union-attr]
+                for w in busy:
+                    head.segments[w.segment_id] = EarlySegment(w, prep, head.store, head._client)
+                head._drivers = list(head.segments.values())
+            head._lock = head._lock.pop_all()  # held from now on until release() or withdraw()
+        return head
+
+    def matches(self, cfg: JobConfig, force: bool, scheduler: str | None, workers: int | None) -> bool:
+        """Whether a flow call with these settings is the run this head start began."""
+        return (cfg.digest() == self.cfg.digest() and bool(force) == self.force
+                and (scheduler or cfg.engine.scheduler) == self.scheduler
+                and int(workers or cfg.engine.workers) == self.workers)
+
+    def take_segment(self, segment_id: str) -> EarlySegment | None:
+        """The segment's driver, once (None for a segment not started here, or taken already)."""
+        return self.segments.pop(segment_id, None)
+
+    @contextlib.contextmanager
+    def held(self) -> Iterator[HeadStart]:
+        """The ``with`` block runs holding the run lock; on exit every driver has ended and the lock is released."""
+        try:
+            yield self
+        finally:
+            self.release()
+
+    def close(self) -> None:
+        """Stop the drivers still running and close the cluster (safe to repeat).
+
+        Blocks not finished are cancelled (again, until every driver has ended: a driver
+        may still be submitting), so their drivers record them as not done and return;
+        then the cluster closes. After a normal run every driver has been followed to its
+        end, and this only closes the cluster.
+        """
+        if self._client is not None:
+            while not all(d.join(0) for d in self._drivers):
+                self._client.cancel_all()
+                for d in self._drivers:
+                    d.join(STOP_POLL_S)
+        if self.client_start is not None:
+            self.client_start.close()
+
+    def release(self) -> None:
+        """:meth:`close`, then release the run lock (safe to repeat)."""
+        self._lock.close()
+
+
+_pending: HeadStart | None = None
+_pending_lock = threading.Lock()
+
+
+def offer(head: HeadStart) -> None:
+    """Make ``head`` the head start the next :func:`claim` in this process can take."""
+    global _pending
+    with _pending_lock:
+        previous, _pending = _pending, head
+    if previous is not None:
+        previous.release()
+
+
+def claim(cfg: JobConfig, *, force: bool, scheduler: str | None, workers: int | None) -> HeadStart | None:
+    """Take the offered head start if it is for this run; else stop any offered one and return None."""
+    global _pending
+    with _pending_lock:
+        head, _pending = _pending, None
+    if head is None:
+        return None
+    if head.matches(cfg, force, scheduler, workers):
+        return head
+    log.warning("a run begun for other settings was stopped; this run starts afresh")
+    head.release()
+    return None
+
+
+def withdraw() -> None:
+    """Stop the offered head start if no flow run took it (see :meth:`HeadStart.release`)."""
+    global _pending
+    with _pending_lock:
+        head, _pending = _pending, None
+    if head is not None:
+        if not all(d.join(0) for d in head._drivers):
+            log.warning("no flow run took over run %s; stopping it: its unfinished blocks are recorded as not "
+                        "done, and the next run of the same configuration finishes them", head.run_id)
+        head.release()
+
+
+__all__ = ["EarlySegment", "HeadStart", "claim", "offer", "withdraw"]
