@@ -372,6 +372,32 @@ def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy
         check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
 
 
+def test_the_command_begins_the_run_on_worker_processes_and_the_flow_run_finishes_it(prefect_client, npy_archive,
+                                                                                    tmp_path, monkeypatch, capsys):
+    # `twinpass run` begins the run before the flow call, here on two local worker
+    # processes; the flow run takes it over (its run id is the one in the store's record).
+    # Output: scipy.signal.sosfiltfilt of the whole segment.
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")
+    begun: list[HeadStart] = []
+    real_begin = HeadStart.begin.__func__
+
+    def spy(cls, *args, **kwargs):  # records the head start; no behaviour changed
+        begun.append(real_begin(cls, *args, **kwargs))
+        return begun[-1]
+
+    monkeypatch.setattr(HeadStart, "begin", classmethod(spy))
+    assert cli.main(["run", str(cfg), "--no-report", "--scheduler", "processes", "--workers", "2"]) == 0
+    assert "complete 6, skipped (unchanged) 0, failed 0" in capsys.readouterr().out
+    assert len(begun) == 1 and begun[0].scheduler == "processes" and begun[0].segments == {}
+    run = _flow_run_of(prefect_client, cfg)
+    assert run.state.is_completed()
+    records = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert [r["run_id"] for r in records] == [begun[0].run_id]
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
 def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_client, npy_archive, tmp_path,
                                                                    monkeypatch):
     # Block 1 of each north file fails once while the head start's driver runs it; the

@@ -6,6 +6,11 @@ report. Unchanged files are not run; one ``skip-unchanged`` task run, in state
 "Skipped", lists them. A failed segment never stops the others; the flow ends Failed
 naming the failed files, Completed otherwise. Every future is resolved.
 
+``twinpass run`` begins the run before the flow run exists (:mod:`twinpass.headstart`:
+lock, preparation, cluster, segment drivers); the flow body takes it over, and each
+segment task follows its running driver. Other callers (deployments, Python) run the body
+from the start.
+
 :func:`build_deployment` / :func:`serve_deployment` turn the flow into a scheduled
 deployment (cron expression in a given time zone) served by this process.
 
@@ -86,8 +91,10 @@ _EARLY: ClientStart | None = None
 def start_client_early(scheduler: str | None, workers: int | None) -> None:
     """Start the local Dask cluster of the next flow call in this process now, on a thread.
 
-    The command line calls it while Prefect's temporary server starts, so that the flow run
-    finds its cluster up instead of starting it after preparing the archive. Only for the
+    The command line calls it while Prefect's temporary server starts for a run of a saved
+    configuration block (a run from a configuration file has begun already, with its own
+    cluster: :mod:`twinpass.headstart`), so that the flow run finds its cluster up instead
+    of starting it after preparing the archive. Only for the
     ``threads`` scheduler: worker processes would cost a run with nothing to filter (an
     unchanged archive) seconds of start-up. A client the flow run does not take is closed
     by :func:`close_early_client`.
@@ -428,8 +435,9 @@ def preload(scheduler: str | None) -> None:
     first block loads the engine's compiled loops in this process (and checks them against
     scipy's). Together about 0.8 s. The command line calls this while the temporary Prefect
     server starts, when it would otherwise wait, so that the run starts that much sooner
-    once the server answers. Nothing is started here (the command line starts a threads
-    cluster beside it with :func:`start_client_early`).
+    once the server answers. Nothing is started here (the run's blocks may be running
+    meanwhile: :mod:`twinpass.headstart`; or the command line starts a threads cluster
+    beside it with :func:`start_client_early`).
 
     Parameters
     ----------
