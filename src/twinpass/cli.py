@@ -160,15 +160,16 @@ def cmd_run(args: argparse.Namespace) -> int:
 def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None) -> bool:
     """Begin the run before its flow run exists and offer it to the flow run; whether that worked.
 
-    See :mod:`twinpass.headstart`. A failure here (a locked store, an unusable archive...)
-    is left to the flow run, which meets it again at the same step and reports it on the
-    dashboard as usual.
+    See :mod:`twinpass.headstart`. A failure here (a locked store, an unusable archive, or
+    an error of twinpass's own) is left to the flow run, which meets it again at the same
+    step and reports it on the dashboard as usual.
     """
     from .headstart import HeadStart, offer
 
     try:
         offer(HeadStart.begin(cfg, force=force, scheduler=scheduler, workers=workers))
-    except TwinpassError:
+    except Exception as e:  # the flow run reports it
+        logging.getLogger(__name__).debug("the run was not begun before its flow run: %s", e, exc_info=True)
         return False
     return True
 
