@@ -127,18 +127,8 @@ def cmd_run(args: argparse.Namespace) -> int:
                          report=not args.no_report, progress=_ProgressBar(), config_block=args.block)
     cfg = load_config(args.config)
     if not args.no_flow:
-        # The run's first blocks start before the flow run exists: the flow run's creation (and
-        # the wait for a temporary server) goes on beside them, and the flow run takes them
-        # over. Only now, after Prefect's import: begun before it, the import competed with
-        # the blocks for the interpreter lock and took 1.6 s instead of 0.6 s.
-        from .headstart import withdraw
-
-        try:
-            head = _head_start(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers)
-            return _run_flow(cfg, args.config, force=args.force, scheduler=args.scheduler, workers=args.workers,
-                             report=not args.no_report, progress=_ProgressBar(), head=head)
-        finally:
-            withdraw()  # if the flow run did not take it
+        return _run_flow(cfg, args.config, force=args.force, scheduler=args.scheduler, workers=args.workers,
+                         report=not args.no_report, progress=_ProgressBar())
     from .job import run_job
 
     bar = _ProgressBar()
@@ -175,7 +165,7 @@ def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | 
 
 
 def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str | None, workers: int | None,
-              report: bool, progress: Any, config_block: str | None = None, head: bool = False) -> int:
+              report: bool, progress: Any, config_block: str | None = None) -> int:
     from . import flows
     from .errors import BlockFailedError
     from .headstart import withdraw
@@ -183,11 +173,12 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .prefect_server import prefect_api
 
     # The configured Prefect API, else a temporary local server; while that starts, load
-    # what the flow call would load after it and, unless a head start was offered (it has
-    # its cluster), start its local Dask cluster (a saved block's scheduler and workers are
-    # not known yet).
+    # what the flow call would load after it and, unless the run has begun (it has its
+    # cluster), start its local Dask cluster (a saved block's scheduler and workers are not
+    # known yet).
     run_scheduler = scheduler or (cfg.engine.scheduler if cfg is not None else None)
     run_workers = workers or (cfg.engine.workers if cfg is not None else None)
+    head = False
 
     def while_starting() -> None:
         if not head:
@@ -195,6 +186,12 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
         flows.preload(run_scheduler)
 
     try:
+        # With a configuration at hand, the run's first blocks start before the flow run
+        # exists: the flow run's creation (and the wait for a temporary server) goes on beside
+        # them, and the flow run takes them over. Only after Prefect's import: begun before
+        # it, the import competed with the blocks for the interpreter lock and took 1.6 s
+        # instead of 0.6 s.
+        head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers)
         with prefect_api(while_starting=while_starting):
             flows.TERMINAL_PROGRESS = progress
             try:
@@ -273,14 +270,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
         return 0
     from .config import load_config
 
-    from .headstart import withdraw
-
     cfg = load_config(config)
-    try:
-        rc = _run_flow(cfg, str(config), force=False, scheduler=None, workers=None, report=True,
-                       progress=_ProgressBar(), head=_head_start(cfg, force=False, scheduler=None, workers=None))
-    finally:
-        withdraw()  # if the flow run did not take it
+    rc = _run_flow(cfg, str(config), force=False, scheduler=None, workers=None, report=True,
+                   progress=_ProgressBar())
     print(f"demo finished in {time.perf_counter() - t0:.1f} s (exit status {rc}; the truncated file is left out "
           "on purpose and reported above)")
     print("next: run the same command again to see unchanged files skipped;")

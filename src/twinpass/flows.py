@@ -128,20 +128,21 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 
 @contextlib.contextmanager
 def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterator[str]:
-    """Register the started client for the segment tasks under a new key; close it on exit
-    (with a head start, through :meth:`HeadStart.close`, which first stops its drivers)."""
+    """Register the started client (and the head start whose drivers the tasks follow) for
+    the segment tasks under a new key, for the ``with`` block; the caller closes them."""
     key = uuid.uuid4().hex
     try:
         client = start.client()
         with _CLIENTS_LOCK:
             _CLIENTS[key] = client
+            if head is not None:
+                _HEADS[key] = head
         yield key
     finally:
         with _CLIENTS_LOCK:
             _CLIENTS.pop(key, None)
             _HEADS.pop(key, None)
             _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
-        (head or start).close()
 
 
 def _as_resume(seg: SegmentWork) -> SegmentWork:
@@ -343,7 +344,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         cleaned = store.clean_partials() if head is None else head.cleaned
         if cleaned:
             logger.warning("removed %d partial chunk file(s) left by an interrupted run", cleaned)
-        prep = prepare(cfg, store, force=force) if head is None or head.prep is None else head.prep
+        prep = prepare(cfg, store, force=force) if head is None else head.prep
         for bad in prep.invalid:
             logger.error("left out %s: %s; %s", bad.relpath, bad.reason, bad.remedy)
         for fp in prep.plan.removed:
@@ -399,9 +400,6 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
         retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
     )
     with _shared_client(start, head) as key:
-        if head is not None:
-            with _CLIENTS_LOCK:
-                _HEADS[key] = head
         futures = []
         for w in busy:
             futures.append((w, time.perf_counter(),

@@ -147,7 +147,7 @@ class HeadStart:
     client_start : ClientStart or None
         The cluster, when there are blocks to run.
     segments : dict
-        :class:`EarlySegment` by segment id, one per segment with work.
+        :class:`EarlySegment` by segment id, one per segment with work, until its task takes it.
     """
 
     cfg: JobConfig
@@ -157,9 +157,9 @@ class HeadStart:
     run_id: str
     started: str
     store: OutputStore
-    cleaned: int = 0
-    prep: Prepared | None = None
-    client_start: ClientStart | None = None
+    cleaned: int
+    prep: Prepared
+    client_start: ClientStart | None
     segments: dict[str, EarlySegment] = field(default_factory=dict)
     _drivers: list[EarlySegment] = field(default_factory=list)
     _client: _CancellableClient | None = None
@@ -179,24 +179,23 @@ class HeadStart:
             What the flow body would raise at these steps (a locked or unusable store, an
             unreadable archive...); nothing is left held.
         """
-        run_id = uuid.uuid4().hex[:12]
-        head = cls(cfg, bool(force), scheduler or cfg.engine.scheduler, int(workers or cfg.engine.workers), run_id,
-                   now_iso(), OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root))
-        with head._lock:
-            head._lock.enter_context(head.store.lock(run_id))
-            head.cleaned = head.store.clean_partials()
-            head.prep = prep = prepare(cfg, head.store, force=head.force)
+        run_id, started = uuid.uuid4().hex[:12], now_iso()
+        scheduler, workers = scheduler or cfg.engine.scheduler, int(workers or cfg.engine.workers)
+        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        with contextlib.ExitStack() as held:
+            held.enter_context(store.lock(run_id))
+            cleaned = store.clean_partials()
+            prep = prepare(cfg, store, force=bool(force))
             busy = [w for w in prep.work if w.has_work]
-            if busy:
-                head.client_start = ClientStart(head.scheduler, head.workers)
-                head._lock.callback(head.close)  # runs before the lock is released
-            begin_run(head.store, prep)
-            if busy:
-                head._client = _CancellableClient(head.client_start.client())  # type: ignore[union-attr]
-                for w in busy:
-                    head.segments[w.segment_id] = EarlySegment(w, prep, head.store, head._client)
+            head = cls(cfg, bool(force), scheduler, workers, run_id, started, store, cleaned, prep,
+                       ClientStart(scheduler, workers) if busy else None)
+            held.callback(head.close)  # runs before the lock is released
+            begin_run(store, prep)
+            if head.client_start is not None:
+                head._client = _CancellableClient(head.client_start.client())
+                head.segments = {w.segment_id: EarlySegment(w, prep, store, head._client) for w in busy}
                 head._drivers = list(head.segments.values())
-            head._lock = head._lock.pop_all()  # held from now on until release() or withdraw()
+            head._lock = held.pop_all()  # held from now on until release() or withdraw()
         return head
 
     def matches(self, cfg: JobConfig, force: bool, scheduler: str | None, workers: int | None) -> bool:
