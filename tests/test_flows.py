@@ -403,6 +403,7 @@ def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_clie
     # Block 1 of each north file fails once while the head start's driver runs it; the
     # task following that driver fails, and its retry (a normal attempt) resumes: it runs
     # only the failed blocks, because the followed driver's blocks marked the segment prepared.
+    # Output: scipy.signal.sosfiltfilt of the whole segment.
     cfg_path = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
     monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise-once", "file": "north/*", "block": 1}]))
     monkeypatch.setenv("TWINPASS_FAULTS_STATE", str(tmp_path / "fault-state"))
@@ -421,6 +422,7 @@ def test_a_run_begun_but_not_taken_over_stops_without_marking_anything_complete(
     # As when the temporary server never answers: the head start is withdrawn while its
     # blocks run (each delayed 0.2 s). Its cluster stops, the lock is released, no file is
     # marked complete unless every block of it is done, and the next run finishes the job.
+    # Output: scipy.signal.sosfiltfilt of the whole segment.
     cfg_path = write_job(tmp_path, npy_archive)
     monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
                                                        "seconds": 0.2}]))
@@ -438,6 +440,8 @@ def test_a_run_begun_but_not_taken_over_stops_without_marking_anything_complete(
 
 def test_a_run_begun_for_other_settings_is_stopped_and_the_flow_run_starts_afresh(prefect_client, npy_archive,
                                                                                  tmp_path):
+    # A flow call with other settings (here force) than the offered head start drops it and
+    # runs from the start. Output: scipy.signal.sosfiltfilt of the whole segment.
     cfg_path = write_job(tmp_path, npy_archive)
     head = HeadStart.begin(load_config(cfg_path))
     offer(head)
