@@ -514,3 +514,61 @@ def test_segments_starting_together_on_a_new_store_create_their_records(tmp_path
         assert not errors, errors
         group = zarr.open_group(location, path="_twinpass/carry", mode="r")
         assert sorted(name for name, _ in group.groups()) == [f"seg-{i}" for i in range(8)]
+
+
+class _CancellingClient:
+    """The Dask client as a driver sees it, keeping every future it hands out so that a test
+    can cancel them all, as stopping a run does."""
+
+    def __init__(self, client) -> None:
+        self._client = client
+        self.futures: list = []
+
+    def submit(self, *args, **kwargs):
+        fut = self._client.submit(*args, **kwargs)
+        self.futures.append(fut)
+        return fut
+
+    def __getattr__(self, name):
+        return getattr(self._client, name)
+
+
+def test_a_stopped_carry_run_records_its_cancelled_blocks_as_such_and_resumes(tmp_path, client, monkeypatch,
+                                                                             caplog):
+    # Stopping a run cancels its Dask tasks. The blocks are recorded not done, with a text
+    # saying they were cancelled, logged in one line rather than one error line per block,
+    # and the next run writes the same bytes as an undisturbed run.
+    import logging
+    import threading
+
+    files, clean, faulty_dir = _clean_and_faulty(tmp_path, client, seed=7)
+    _set_faults(monkeypatch, tmp_path, [{"action": "sleep", "file": "*", "block": "*", "seconds": 0.3}])
+    cfg = load_config(faulty_dir / "twinpass.toml")
+    store = OutputStore.open(cfg.store_location, mode="a")
+    prep = prepare(cfg, store)
+    (work,) = [w for w in prep.work if w.has_work]
+    proxy = _CancellingClient(client)
+    caplog.set_level(logging.INFO, logger="twinpass")
+    result: list = []
+    driver = threading.Thread(target=lambda: result.extend(
+        run_segment_carry(work, prep.designs[work.sample_rate_hz], cfg, store, proxy)))
+    driver.start()
+    while not proxy.futures:
+        driver.join(0.05)
+    while driver.is_alive():
+        client.cancel(list(proxy.futures))
+        driver.join(0.1)
+    assert [o.status for o in result] == ["failed"] * 3
+    errors = [e for a in files.arrays
+              for e in store.read_block_table(a, figures=False, seams=False).errors.values()]
+    assert errors and all(e.startswith("cancelled: the run was stopped") for e in errors), errors
+    logged = [r for r in caplog.records if r.name.startswith("twinpass.engine")]
+    assert not [r.getMessage() for r in logged if r.levelno >= logging.ERROR]
+    assert len([r for r in logged if "cancelled before they finished" in r.getMessage()]) == 1
+
+    monkeypatch.delenv(faults.ENV)
+    outcomes, out = _run(faulty_dir, client)
+    assert all(o.status == "complete" for o in outcomes)
+    # Reference: the undisturbed run's bytes (checked against scipy.signal.sosfiltfilt in
+    # test_carry_mode_equals_whole_segment_two_pass).
+    assert _bytes(out, files.arrays) == clean

@@ -9,6 +9,7 @@ real failures inside the real engine, switched on through ``TWINPASS_FAULTS``.
 from __future__ import annotations
 
 import json
+import logging
 import os
 import re
 import signal
@@ -418,18 +419,29 @@ def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_clie
 
 
 def test_a_run_begun_but_not_taken_over_stops_without_marking_anything_complete(prefect_client, npy_archive,
-                                                                              tmp_path, monkeypatch):
+                                                                              tmp_path, monkeypatch, caplog):
     # As when the temporary server never answers: the head start is withdrawn while its
     # blocks run (each delayed 0.2 s). Its cluster stops, the lock is released, no file is
     # marked complete unless every block of it is done, and the next run finishes the job.
-    # Output: scipy.signal.sosfiltfilt of the whole segment.
+    # The cancelled blocks are recorded as cancelled and logged in one line per segment, not
+    # as failures. Output: scipy.signal.sosfiltfilt of the whole segment.
     cfg_path = write_job(tmp_path, npy_archive)
     monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
                                                        "seconds": 0.2}]))
+    caplog.set_level(logging.INFO, logger="twinpass")
     offer(HeadStart.begin(load_config(cfg_path)))
     withdraw()
     records = _file_records_honest(str(tmp_path / "out.zarr"))
     assert not all(records.values()), records
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    errors = [e for rel in records for e in store.read_block_table(array_name(rel), figures=False,
+                                                                   seams=False).errors.values()]
+    assert errors and all(e.startswith("cancelled: the run was stopped") for e in errors), errors
+    engine_logs = [r for r in caplog.records if r.name == "twinpass.engine"]
+    assert not [r for r in engine_logs if r.levelno >= logging.ERROR], [r.getMessage() for r in engine_logs]
+    summaries = [r.getMessage() for r in engine_logs if "cancelled before they finished" in r.getMessage()]
+    assert 1 <= len(summaries) <= len(STREAMS), summaries
+    assert sum(int(m.split(": ")[1].split()[0]) for m in summaries) == len(errors)
     monkeypatch.delenv("TWINPASS_FAULTS")
     state = flows.archive_run(config_path=str(cfg_path), report=False, return_state=True)  # takes the lock
     assert state.is_completed(), state.message

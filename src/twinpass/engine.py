@@ -30,6 +30,7 @@ before a kill is simply computed again.
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import contextlib
 import logging
 import threading
@@ -778,8 +779,68 @@ def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]
             for j in jobs]
 
 
+CANCELLED = "cancelled"
+"""How the error text of a block whose task was cancelled begins (the run was stopped meanwhile)."""
+
+
+def lost_task_error(exc: BaseException) -> str:
+    """The error text recorded for a block whose Dask task raised ``exc`` instead of a result.
+
+    A cancelled task (the run was stopped: Ctrl-C, a run begun before its flow run and not
+    taken over) gets a text beginning with :data:`CANCELLED`; anything else (a worker lost
+    more often than the scheduler allows) gets the exception's type and message.
+    """
+    if isinstance(exc, (concurrent.futures.CancelledError, asyncio.CancelledError)):
+        return f"{CANCELLED}: the run was stopped before this block finished; the next run does it"
+    return f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__
+
+
+class BlockErrorLog:
+    """Logs the blocks of one segment recorded ``ERROR``: each failed block in a line of its
+    own, the cancelled ones in a single line.
+
+    Stopping a run cancels every block not finished; a line for each would bury the
+    failures that matter. Call :meth:`block` with each block result and :meth:`close` once
+    the segment's results are in.
+
+    Parameters
+    ----------
+    segment_id : str
+        The segment named in the cancellation line ("" for none).
+    logger : logging.Logger, optional
+        Where the lines go (default the engine's logger).
+    """
+
+    def __init__(self, segment_id: str, logger: logging.Logger = log) -> None:
+        self.segment_id = segment_id
+        self.log = logger
+        self.cancelled = 0
+
+    def block(self, res: BlockResult, *, attempts: bool = True) -> None:
+        """Log ``res`` if it failed (naming its attempts with ``attempts``); count it if it was cancelled."""
+        if res.status != ERROR:
+            return
+        first = (res.error or "").splitlines()[0] if res.error else ""
+        if first.startswith(CANCELLED):
+            self.cancelled += 1
+        elif attempts:
+            self.log.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,
+                           res.attempts, first)
+        else:
+            self.log.error("block %d of %s failed: %s", res.block_index, res.array_name, first)
+
+    def close(self) -> None:
+        """Log the cancelled blocks counted so far, in one line (nothing if none)."""
+        if self.cancelled:
+            where = f"segment {self.segment_id}: " if self.segment_id else ""
+            self.log.warning("%s%d block(s) cancelled before they finished (the run was stopped); they are "
+                             "recorded as not done and the next run does them", where, self.cancelled)
+            self.cancelled = 0
+
+
 def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
-             on_block: ProgressFn | None = None, sync_before_record: bool = False) -> dict[str, int]:
+             on_block: ProgressFn | None = None, sync_before_record: bool = False,
+             segment_id: str = "") -> dict[str, int]:
     """Record the results of block jobs submitted with :func:`submit_jobs` as they arrive.
 
     Returns the number of blocks run per array name. A block whose task is lost (its
@@ -802,14 +863,13 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
     futures = [f for f, _ in submitted]
     by_key = {f.key: j for f, j in submitted}
     done = 0
+    errors = BlockErrorLog(segment_id)
 
     def recorded(res: BlockResult) -> None:
         nonlocal done
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        if res.status == ERROR:
-            log.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,
-                      res.attempts, (res.error or "").splitlines()[0])
+        errors.block(res)
         if on_block is not None:
             on_block(done, total, res)
 
@@ -821,8 +881,7 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
                 try:
                     res: BlockResult = fut.result()
                 except (Exception, asyncio.CancelledError) as exc:  # worker lost repeatedly, cancelled...
-                    res = BlockResult(job.array_name, job.block_index, ERROR,
-                                      error=f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__)
+                    res = BlockResult(job.array_name, job.block_index, ERROR, error=lost_task_error(exc))
                 fut.release()
                 recorder.add(res, job)
             recorder.flush()
@@ -830,6 +889,8 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
         with contextlib.suppress(Exception):  # keep what finished; the first error is the one to report
             recorder.flush()
         raise
+    finally:
+        errors.close()
     recorder.flush()
     return run_count
 
@@ -931,7 +992,8 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
         with contextlib.suppress(Exception):  # nothing is recorded for these blocks; stop them
             client.cancel([f for f, _ in submitted])
         raise
-    run_count = run_jobs(submitted, store, on_block=on_block, sync_before_record=sync_here)
+    run_count = run_jobs(submitted, store, on_block=on_block, sync_before_record=sync_here,
+                         segment_id=seg.segment_id)
     return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
 
 

@@ -98,7 +98,9 @@ from .core.blocks import Layout, choose_layout
 from .core.carry import carry_states, steady_state, transition_matrix
 from .core.types import Design
 from .engine import (
+    CANCELLED,
     ERROR,
+    BlockErrorLog,
     BlockResult,
     FileOutcome,
     ProgressFn,
@@ -106,6 +108,7 @@ from .engine import (
     SourceSlice,
     design_digest_for,
     finish_segment,
+    lost_task_error,
     prepare_segment,
     read_segment_window,
     record_result,
@@ -736,7 +739,7 @@ def _run_tasks(client: Any, fn: Callable[..., Any], calls: list[tuple[Any, ...]]
         try:
             results = fut.result()
         except Exception as exc:  # worker lost repeatedly, cancelled...
-            results = [f"{type(exc).__name__}: {exc}"] * len(batch)
+            results = [lost_task_error(exc)] * len(batch)
         fut.release()
         yield from zip(batch, results)
 
@@ -873,25 +876,28 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     total = len(blocks)
     run_count: dict[str, int] = {}
     done = 0
+    block_errors = BlockErrorLog(seg.segment_id, log)
 
     def report(res: BlockResult) -> None:
         nonlocal done
         res = record_result(store, res)
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        if res.status == ERROR:
-            log.error("block %d of %s failed: %s", res.block_index, res.array_name, (res.error or "").splitlines()[0])
+        block_errors.block(res, attempts=False)
         if on_block is not None:
             on_block(done, total, res)
 
     if errors:
         first = min(errors)
+        reason = errors[first].splitlines()[0]
         msg = (f"carry mode: the filter state could not be carried past piece {first} of segment "
                f"{seg.segment_id} ({pieces[first].kind}, samples [{pieces[first].start - n}, "
-               f"{pieces[first].stop - n}) of the segment): {errors[first].splitlines()[0]}; rerun to resume "
-               f"(finished steps are kept)")
+               f"{pieces[first].stop - n}) of the segment): {reason}; rerun to resume (finished steps are kept)")
+        if reason.startswith(CANCELLED):
+            msg = f"{reason} (carry mode: finished steps are kept)"
         for p in blocks:
             report(BlockResult(p.array_name or "", p.block_index, ERROR, error=msg))
+        block_errors.close()
         return run_count
     # Step 5 (parallel): outputs of the blocks to do.
     every = cfg.checks.every
@@ -909,6 +915,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             p = args[0].piece
             res = BlockResult(p.array_name, p.block_index, ERROR, error=res)
         report(res)
+    block_errors.close()
     log.info("segment %s: step 5 wrote %d blocks, at %.2f s", seg.segment_id, total, time.perf_counter() - t0)
     return run_count
 
