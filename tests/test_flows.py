@@ -15,6 +15,7 @@ import re
 import signal
 import subprocess
 import sys
+import threading
 import uuid
 from pathlib import Path
 from types import SimpleNamespace
@@ -339,13 +340,19 @@ def _file_records_honest(store_location: str) -> dict[str, bool]:
     return {rel: rec.complete for rel, rec in records.items()}
 
 
-def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy_archive, tmp_path):
+def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy_archive, tmp_path, monkeypatch):
     # The command line begins the run (lock, preparation, cluster, segment drivers) before
     # the flow run exists; the flow run takes it over: same run id, every block run once on
     # the head start's cluster, one task per segment with its progress artifact, the lock
-    # released at the end. Output: scipy.signal.sosfiltfilt of the whole segment.
+    # released at the end. The terminal's progress bar sees each block once, as the drivers
+    # record it, not again when the tasks follow them. Output: scipy.signal.sosfiltfilt of
+    # the whole segment.
     cfg_path = write_job(tmp_path, npy_archive)
-    head = HeadStart.begin(load_config(cfg_path))
+    watched: list[tuple[str, int, int, str]] = []
+    again: list[tuple[str, int, int]] = []
+    monkeypatch.setattr(flows, "TERMINAL_PROGRESS", lambda seg, done, total, res: again.append((seg, done, total)))
+    head = HeadStart.begin(load_config(cfg_path), watch=lambda seg, done, total, res: watched.append(
+        (seg, done, total, threading.current_thread().name)))
     assert sorted(head.segments) and head.client_start is not None
     worker = next(iter(head.client_start.client().cluster.workers.values()))
     store = OutputStore.open(str(tmp_path / "out.zarr"), mode="a", archive_root=npy_archive)
@@ -359,6 +366,14 @@ def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy
     assert summary["run_id"] == head.run_id and summary["counts"]["blocks_run"] == 6 * BLOCKS_PER_FILE
     assert worker.state.executed_count == 6 * BLOCKS_PER_FILE  # each block once, on the head start's cluster
     assert head.segments == {}  # every driver followed by its task
+    by_segment: dict[str, list[tuple[int, int]]] = {}
+    for seg, done, total, thread in watched:
+        assert thread.startswith("twinpass-early-"), thread
+        by_segment.setdefault(seg, []).append((done, total))
+    assert len(by_segment) == len(STREAMS)
+    assert sum(ev[-1][1] for ev in by_segment.values()) == 6 * BLOCKS_PER_FILE
+    assert all([d for d, _ in ev] == list(range(1, ev[-1][1] + 1)) for ev in by_segment.values()), by_segment
+    assert again == []
 
     run_id = flow_run_id(state)
     runs = final_task_runs(prefect_client, run_id, expected=4)
@@ -389,7 +404,10 @@ def test_the_command_begins_the_run_on_worker_processes_and_the_flow_run_finishe
 
     monkeypatch.setattr(HeadStart, "begin", classmethod(spy))
     assert cli.main(["run", str(cfg), "--no-report", "--scheduler", "processes", "--workers", "2"]) == 0
-    assert "complete 6, skipped (unchanged) 0, failed 0" in capsys.readouterr().out
+    out = capsys.readouterr()
+    assert "complete 6, skipped (unchanged) 0, failed 0" in out.out
+    n = 6 * BLOCKS_PER_FILE
+    assert out.err.count(f"blocks {n}/{n}") == 1, out.err  # the progress bar saw each block once
     assert len(begun) == 1 and begun[0].scheduler == "processes" and begun[0].segments == {}
     run = _flow_run_of(prefect_client, cfg)
     assert run.state.is_completed()

@@ -12,6 +12,7 @@ import json
 import logging
 import os
 import sys
+import threading
 import time
 from pathlib import Path
 from typing import Any, Sequence
@@ -26,31 +27,54 @@ def _eprint(*a: Any) -> None:
 
 
 class _ProgressBar:
-    """A one-line terminal progress bar for blocks (stderr; plain lines when not a TTY)."""
+    """A one-line terminal progress bar for blocks (stderr; plain lines when not a TTY).
+
+    Called from the segments' driver threads as blocks are recorded. The total grows as
+    segments report theirs, so the bar's line is ended by :meth:`close` (after the run),
+    not when the blocks seen so far are all done. Without a TTY it prints a line at most
+    every 5 s, and the final count on :meth:`close`.
+    """
 
     def __init__(self) -> None:
-        self.done = 0
         self.total: dict[str, int] = {}
         self.seen: dict[str, int] = {}
         self.tty = sys.stderr.isatty()
         self._last = 0.0
+        self._shown: tuple[int, int] | None = None
+        self._lock = threading.Lock()
 
     def __call__(self, segment: str, done: int, total: int, result: Any) -> None:
-        self.total[segment] = total
-        self.seen[segment] = done
-        d, t = sum(self.seen.values()), sum(self.total.values())
-        now = time.monotonic()
-        if not self.tty:
-            if d == t or now - self._last > 5:
-                self._last = now
+        with self._lock:
+            self.total[segment] = total
+            self.seen[segment] = done
+            d, t = sum(self.seen.values()), sum(self.total.values())
+            now = time.monotonic()
+            if not self.tty:
+                if now - self._last > 5:
+                    self._last = now
+                    self._shown = (d, t)
+                    _eprint(f"blocks {d}/{t}")
+                return
+            width = 30
+            fill = int(width * d / max(t, 1))
+            sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {d}/{t}")
+            sys.stderr.flush()
+            self._shown = (d, t)
+
+    def close(self) -> None:
+        """End the bar's line (a TTY) or print the final count (otherwise); nothing if no block was seen."""
+        with self._lock:
+            if not self.seen:
+                return
+            d, t = sum(self.seen.values()), sum(self.total.values())
+            if self.tty:
+                sys.stderr.write("\n")
+                sys.stderr.flush()
+            elif self._shown != (d, t):
                 _eprint(f"blocks {d}/{t}")
-            return
-        width = 30
-        fill = int(width * d / max(t, 1))
-        sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {d}/{t}")
-        if d == t:
-            sys.stderr.write("\n")
-        sys.stderr.flush()
+            self.seen.clear()
+            self.total.clear()
+            self._shown = None
 
 
 # ------------------------------------------------------------------- commands
@@ -132,8 +156,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     from .job import run_job
 
     bar = _ProgressBar()
-    res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
-                  log_fn=lambda m: _eprint(m))
+    try:
+        res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
+                      log_fn=lambda m: _eprint(m))
+    finally:
+        bar.close()
     c = res.counts()
     print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
           f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
@@ -147,8 +174,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0 if res.ok else 1
 
 
-def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None) -> bool:
+def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None, progress: _ProgressBar) -> bool:
     """Begin the run before its flow run exists and offer it to the flow run; whether that worked.
+
+    ``progress`` (the terminal's progress bar) sees the blocks as they are recorded, before
+    the flow run follows them.
 
     See :mod:`twinpass.headstart`. A failure here (a locked store, an unusable archive, or
     an error of twinpass's own) is left to the flow run, which meets it again at the same
@@ -157,7 +187,7 @@ def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | 
     from .headstart import HeadStart, offer
 
     try:
-        offer(HeadStart.begin(cfg, force=force, scheduler=scheduler, workers=workers))
+        offer(HeadStart.begin(cfg, force=force, scheduler=scheduler, workers=workers, watch=progress))
     except Exception as e:  # the flow run reports it
         logging.getLogger(__name__).debug("the run was not begun before its flow run: %s", e, exc_info=True)
         return False
@@ -165,7 +195,7 @@ def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | 
 
 
 def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str | None, workers: int | None,
-              report: bool, progress: Any, config_block: str | None = None) -> int:
+              report: bool, progress: _ProgressBar, config_block: str | None = None) -> int:
     from . import flows
     from .errors import BlockFailedError
     from .headstart import withdraw
@@ -191,7 +221,8 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
         # them, and the flow run takes them over. Only after Prefect's import: begun before
         # it, the import competed with the blocks for the interpreter lock and took 1.6 s
         # instead of 0.6 s.
-        head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers)
+        head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers,
+                                               progress=progress)
         with prefect_api(while_starting=while_starting):
             flows.TERMINAL_PROGRESS = progress
             try:
@@ -209,6 +240,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     finally:
         withdraw()  # a head start the flow run did not take (a failed server start, Ctrl-C): stop it
         flows.close_early_client()  # likewise a cluster started early
+        progress.close()
     if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):

@@ -807,11 +807,11 @@ class BlockErrorLog:
     ----------
     segment_id : str
         The segment named in the cancellation line ("" for none).
-    logger : logging.Logger, optional
-        Where the lines go (default the engine's logger).
+    logger : logging.Logger or logging.LoggerAdapter, optional
+        Where the lines go (default the engine's logger; a flow task passes its run logger).
     """
 
-    def __init__(self, segment_id: str, logger: logging.Logger = log) -> None:
+    def __init__(self, segment_id: str, logger: logging.Logger | logging.LoggerAdapter[Any] = log) -> None:
         self.segment_id = segment_id
         self.log = logger
         self.cancelled = 0

@@ -49,7 +49,7 @@ from prefect.utilities.annotations import quote
 from .config import JobConfig, load_config
 from .core.design import format_report
 from .core.plan import fingerprint_changed
-from .engine import ERROR, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
+from .engine import BlockErrorLog, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
 from .errors import BlockFailedError, ChecksFailedError, ConfigError
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
@@ -200,29 +200,32 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     logger.info("segment %s: %d file(s) to filter: %s", seg.segment_id, len(todo), ", ".join(todo))
     artifact_id = create_progress_artifact(0.0, description=f"blocks of segment {seg.segment_id}")
     last = [time.monotonic()]
+    block_errors = BlockErrorLog(seg.segment_id, logger)
+    with _CLIENTS_LOCK:
+        head = _HEADS.get(client_key)
+    early = head.take_segment(seg.segment_id) if head is not None else None
+    terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
 
     def on_block(done: int, total: int, res: Any) -> None:
         # Blocks are submitted only after every file of the segment is prepared.
         if done == 1:
             with _CLIENTS_LOCK:
                 _PREPARED.add(mark)
-        if TERMINAL_PROGRESS is not None:
-            TERMINAL_PROGRESS(seg.segment_id, done, total, res)
-        if res.status == ERROR:
-            logger.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,
-                         res.attempts, (res.error or "").splitlines()[0])
+        if terminal is not None:
+            terminal(seg.segment_id, done, total, res)
+        block_errors.block(res)
         now = time.monotonic()
         if done < total and now - last[0] >= PROGRESS_INTERVAL_S:  # 100 % is set once the segment ends
             last[0] = now
             update_progress_artifact(artifact_id, 100.0 * done / max(total, 1))
 
-    with _CLIENTS_LOCK:
-        head = _HEADS.get(client_key)
-    early = head.take_segment(seg.segment_id) if head is not None else None
-    if early is not None:  # begun before the flow run: follow it (a retry runs as usual)
-        outcomes = early.follow(on_block)
-    else:
-        outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block)
+    try:
+        if early is not None:  # begun before the flow run: follow it (a retry runs as usual)
+            outcomes = early.follow(on_block)
+        else:
+            outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block)
+    finally:
+        block_errors.close()
     update_progress_artifact(artifact_id, 100.0)
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:

@@ -13,10 +13,11 @@ The command line offers it (:func:`offer`) before the flow call; the flow body t
 (:func:`claim`) when it is for the same configuration, ``force`` flag, scheduler and
 workers, and then owns the lock, the prepared run and the cluster. Each ``filter-segment``
 task follows its segment's driver (:meth:`EarlySegment.follow`): the driver's block events
-reach the task's own thread (its log lines, progress artifact, the terminal's progress bar
-and the mark that makes a retry resume), and the task returns the driver's outcomes or
-raises its error, so the flow run records, reports and retries what it would have done
-itself. A second attempt runs as usual.
+reach the task's own thread (its log lines, progress artifact and the mark that makes a
+retry resume), and the task returns the driver's outcomes or raises its error, so the flow
+run records, reports and retries what it would have done itself. A second attempt runs as
+usual. The terminal's progress bar need not wait for the flow run: it watches the drivers
+(``watch``) and sees each block as it is recorded.
 
 Nothing is marked complete before the flow run records it: the drivers write block
 results and file records exactly as in the flow body, and the run itself is recorded by
@@ -47,6 +48,8 @@ log = logging.getLogger(__name__)
 
 BlockFn = Callable[[int, int, Any], None]
 """``on_block(done, total, result)``, as for :func:`twinpass.engine.run_segment`."""
+WatchFn = Callable[[str, int, int, Any], None]
+"""``watch(segment_id, done, total, result)``: sees every segment's blocks as they are recorded."""
 
 _END = object()
 STOP_POLL_S = 0.1
@@ -87,11 +90,16 @@ class EarlySegment:
     """One segment's driver, started on a thread of its own before any flow task exists.
 
     The driver's block events wait in a queue until a task follows the segment
-    (:meth:`follow`).
+    (:meth:`follow`); ``watch``, when given, also sees each of them at once, in the
+    driver's thread (the terminal's progress bar, which need not wait for the flow run).
     """
 
-    def __init__(self, seg: SegmentWork, prep: Prepared, store: OutputStore, client: Any) -> None:
+    def __init__(self, seg: SegmentWork, prep: Prepared, store: OutputStore, client: Any,
+                 watch: WatchFn | None = None) -> None:
         self.seg = seg
+        self.watched = watch is not None
+        """Whether a watcher has seen the driver's blocks already (a follower need not show them again)."""
+        self._watch = watch
         self._events: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self._outcomes: list[FileOutcome] | None = None
         self._error: BaseException | None = None
@@ -99,10 +107,18 @@ class EarlySegment:
                                         name=f"twinpass-early-{seg.segment_id}"[:60], daemon=True)
         self._thread.start()
 
+    def _event(self, done: int, total: int, res: Any) -> None:
+        self._events.put((done, total, res))
+        if self._watch is not None:
+            try:
+                self._watch(self.seg.segment_id, done, total, res)
+            except Exception:  # a display must never stop the blocks
+                log.debug("a watcher of segment %s failed", self.seg.segment_id, exc_info=True)
+
     def _drive(self, prep: Prepared, store: OutputStore, client: Any) -> None:
         try:
             self._outcomes = run_segment(self.seg, prep.designs[self.seg.sample_rate_hz], prep.cfg, store, client,
-                                         on_block=lambda done, total, res: self._events.put((done, total, res)))
+                                         on_block=self._event)
         except BaseException as e:  # handed to the follower
             self._error = e
         finally:
@@ -167,11 +183,13 @@ class HeadStart:
 
     @classmethod
     def begin(cls, cfg: JobConfig, *, force: bool = False, scheduler: str | None = None,
-              workers: int | None = None) -> HeadStart:
+              workers: int | None = None, watch: WatchFn | None = None) -> HeadStart:
         """Take the run's first steps now; returns with the segments' drivers running.
 
         Parameters are those of the flow call to come (``scheduler`` and ``workers``
-        default to the configuration's ``[engine]`` settings).
+        default to the configuration's ``[engine]`` settings), and ``watch``:
+        ``watch(segment_id, done, total, result)`` called in the drivers' threads for each
+        block recorded (the terminal's progress bar), before any task follows them.
 
         Raises
         ------
@@ -193,7 +211,7 @@ class HeadStart:
             begin_run(store, prep)
             if head.client_start is not None:
                 head._client = _CancellableClient(head.client_start.client())
-                head.segments = {w.segment_id: EarlySegment(w, prep, store, head._client) for w in busy}
+                head.segments = {w.segment_id: EarlySegment(w, prep, store, head._client, watch) for w in busy}
                 head._drivers = list(head.segments.values())
             head._lock = held.pop_all()  # held from now on until release() or withdraw()
         return head
