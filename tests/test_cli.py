@@ -287,3 +287,66 @@ def test_compile_fails_clearly_when_numba_cannot_load(tmp_path):
     proc = run_cli(["compile"], env=env, check=False)
     assert proc.returncode == 1
     assert "not available on this machine" in proc.stderr and "still runs" in proc.stderr
+
+
+# ----------------------------------------------------------------- progress display
+class _Terminal:
+    """A stand-in for a terminal's stderr: keeps what is written, says it is a TTY."""
+
+    def __init__(self, tty: bool) -> None:
+        self.text = ""
+        self.tty = tty
+
+    def write(self, s: str) -> int:
+        self.text += s
+        return len(s)
+
+    def flush(self) -> None:
+        pass
+
+    def isatty(self) -> bool:
+        return self.tty
+
+
+def test_the_progress_bar_gives_log_lines_a_line_of_their_own(monkeypatch):
+    # On a terminal the bar is redrawn in place ("\r"); a log record made while it is
+    # shown first erases it ("\r" + ANSI erase-in-line, ECMA-48 EL), so the log line
+    # starts at the line's beginning; the next block draws the bar again and close() ends
+    # its line with the final count.
+    import logging
+
+    from twinpass import cli
+
+    term = _Terminal(tty=True)
+    monkeypatch.setattr(sys, "stderr", term)
+    bar = cli._ProgressBar()
+    handler = logging.StreamHandler(term)
+    log = logging.getLogger("twinpass.test-progress")
+    log.addHandler(handler)
+    log.propagate = False
+    try:
+        with bar.over_logs():
+            bar("a", 1, 2, None)
+            log.warning("a log line")
+            bar("b", 1, 1, None)
+            bar("a", 2, 2, None)
+        log.warning("after the run")  # the bar was cleared on leaving
+    finally:
+        log.removeHandler(handler)
+    bar.close()
+    assert term.text.startswith("\rblocks [###############...............] 1/2\r\x1b[Ka log line\n"), term.text
+    assert "\rblocks [####################..........] 2/3\rblocks [##############################] 3/3" in term.text
+    assert term.text.endswith("3/3\r\x1b[Kafter the run\n\rblocks [##############################] 3/3\n"), term.text
+
+
+def test_without_a_terminal_progress_is_a_line_now_and_then_and_the_final_count_once(monkeypatch):
+    from twinpass import cli
+
+    term = _Terminal(tty=False)
+    monkeypatch.setattr(sys, "stderr", term)
+    bar = cli._ProgressBar()
+    for done in range(1, 4):
+        bar("a", done, 3, None)
+    bar.close()
+    bar.close()  # nothing more
+    assert term.text == "blocks 1/3\nblocks 3/3\n", term.text

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import atexit
+import contextlib
 import json
 import logging
 import os
@@ -15,7 +16,7 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Iterator, Sequence
 
 from . import __version__
 from .errors import ConfigError, TwinpassError
@@ -31,8 +32,10 @@ class _ProgressBar:
 
     Called from the segments' driver threads as blocks are recorded. The total grows as
     segments report theirs, so the bar's line is ended by :meth:`close` (after the run),
-    not when the blocks seen so far are all done. Without a TTY it prints a line at most
-    every 5 s, and the final count on :meth:`close`.
+    not when the blocks seen so far are all done. While :meth:`over_logs` is active, a log
+    record (Prefect's, twinpass's) first clears the bar's line, so that the log line starts
+    on a line of its own; the next block draws the bar again below it. Without a TTY it
+    prints a line at most every 5 s, and the final count on :meth:`close`.
     """
 
     def __init__(self) -> None:
@@ -61,6 +64,34 @@ class _ProgressBar:
             sys.stderr.flush()
             self._shown = (d, t)
 
+    def clear_line(self) -> None:
+        """Erase the bar from its line, if drawn (a TTY), so that other output starts on a clean line."""
+        with self._lock:
+            if self.tty and self._shown is not None:
+                sys.stderr.write("\r\033[K")
+                sys.stderr.flush()
+                self._shown = None
+
+    @contextlib.contextmanager
+    def over_logs(self) -> Iterator[None]:
+        """While active, every log record made in this process clears the bar first (a TTY only);
+        the bar is cleared on leaving too, and :meth:`close` draws it a last time."""
+        if not self.tty:
+            yield
+            return
+        previous = logging.getLogRecordFactory()
+
+        def factory(*args: Any, **kwargs: Any) -> logging.LogRecord:
+            self.clear_line()
+            return previous(*args, **kwargs)
+
+        logging.setLogRecordFactory(factory)
+        try:
+            yield
+        finally:
+            logging.setLogRecordFactory(previous)
+            self.clear_line()  # what is written next (until close) starts on a clean line too
+
     def close(self) -> None:
         """End the bar's line (a TTY) or print the final count (otherwise); nothing if no block was seen."""
         with self._lock:
@@ -68,7 +99,9 @@ class _ProgressBar:
                 return
             d, t = sum(self.seen.values()), sum(self.total.values())
             if self.tty:
-                sys.stderr.write("\n")
+                width = 30
+                fill = int(width * d / max(t, 1))
+                sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {d}/{t}\n")
                 sys.stderr.flush()
             elif self._shown != (d, t):
                 _eprint(f"blocks {d}/{t}")
@@ -157,8 +190,9 @@ def cmd_run(args: argparse.Namespace) -> int:
 
     bar = _ProgressBar()
     try:
-        res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
-                      log_fn=lambda m: _eprint(m))
+        with bar.over_logs():
+            res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
+                          log_fn=lambda m: (bar.clear_line(), _eprint(m)))
     finally:
         bar.close()
     c = res.counts()
@@ -216,27 +250,28 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
         flows.preload(run_scheduler)
 
     try:
-        # With a configuration at hand, the run's first blocks start before the flow run
-        # exists: the flow run's creation (and the wait for a temporary server) goes on beside
-        # them, and the flow run takes them over. Only after Prefect's import: begun before
-        # it, the import competed with the blocks for the interpreter lock and took 1.6 s
-        # instead of 0.6 s.
-        head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers,
-                                               progress=progress)
-        with prefect_api(while_starting=while_starting):
-            flows.TERMINAL_PROGRESS = progress
-            try:
-                with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
-                    state = flows.archive_run(
-                        config_path=None if config_path is None else str(Path(config_path).resolve()),
-                        config_block=config_block, force=force, scheduler=scheduler, workers=workers,
-                        report=report, return_state=True)
-            finally:
-                flows.TERMINAL_PROGRESS = None
-            try:
-                summary = state.result(raise_on_failure=False)
-            except Exception as e:  # the result could not be read back
-                summary = e
+        with progress.over_logs():  # log lines start on a line of their own, not after the bar
+            # With a configuration at hand, the run's first blocks start before the flow run
+            # exists: the flow run's creation (and the wait for a temporary server) goes on beside
+            # them, and the flow run takes them over. Only after Prefect's import: begun before
+            # it, the import competed with the blocks for the interpreter lock and took 1.6 s
+            # instead of 0.6 s.
+            head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers,
+                                                   progress=progress)
+            with prefect_api(while_starting=while_starting):
+                flows.TERMINAL_PROGRESS = progress
+                try:
+                    with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
+                        state = flows.archive_run(
+                            config_path=None if config_path is None else str(Path(config_path).resolve()),
+                            config_block=config_block, force=force, scheduler=scheduler, workers=workers,
+                            report=report, return_state=True)
+                finally:
+                    flows.TERMINAL_PROGRESS = None
+                try:
+                    summary = state.result(raise_on_failure=False)
+                except Exception as e:  # the result could not be read back
+                    summary = e
     finally:
         withdraw()  # a head start the flow run did not take (a failed server start, Ctrl-C): stop it
         flows.close_early_client()  # likewise a cluster started early
