@@ -246,3 +246,23 @@ def test_a_server_that_cannot_start_is_a_config_error_with_its_output(server_env
     assert "PREFECT_API_URL" in message and "--no-flow" in message
     assert process is not None and process.poll() is not None
     assert server.process is None
+
+
+@pytest.mark.parametrize("given, expected", [(None, "1"), ("0", "0")])
+def test_twinpass_processes_ask_prefect_to_send_no_usage_data(given: str | None, expected: str) -> None:
+    # DO_NOT_TRACK (the cross-tool "Console Do Not Track" convention) turns Prefect's client
+    # usage data off: prefect._internal.analytics.enabled.is_telemetry_enabled reads it.
+    # twinpass sets it unless the user has, as it does Prefect's server analytics setting.
+    env = {k: v for k, v in os.environ.items() if k not in ("DO_NOT_TRACK", "CI", "GITHUB_ACTIONS")}
+    if given is not None:
+        env["DO_NOT_TRACK"] = given
+    code = ("import os, twinpass.flows\n"
+            "from prefect._internal.analytics.enabled import is_telemetry_enabled\n"
+            "print(os.environ['DO_NOT_TRACK'], os.environ['PREFECT_SERVER_ANALYTICS_ENABLED'], "
+            "is_telemetry_enabled())")
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    dnt, server, enabled = out.stdout.split()
+    assert dnt == expected and server == "false"
+    if expected == "1":
+        assert enabled == "False"

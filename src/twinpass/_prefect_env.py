@@ -2,6 +2,9 @@
 
 * Server analytics off: on a fresh home the temporary server's telemetry insert races
   the first flow run and logs a "database is locked" traceback; offline it logs errors.
+* Client usage data off too (``DO_NOT_TRACK=1``, the cross-tool convention Prefect's client
+  honours): twinpass's processes send nothing anywhere on their own, which matters on the
+  isolated networks monitoring systems often run on.
 * A longer start-up timeout for the temporary local server on slow machines (read by
   :mod:`twinpass.prefect_server`, which starts that server, and by Prefect).
 
@@ -14,6 +17,7 @@ import os
 
 DEFAULTS = {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    "DO_NOT_TRACK": "1",
     "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
 }
 
