@@ -58,11 +58,15 @@ class _ProgressBar:
                     self._shown = (d, t)
                     _eprint(f"blocks {d}/{t}")
                 return
-            width = 30
-            fill = int(width * d / max(t, 1))
-            sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {d}/{t}")
-            sys.stderr.flush()
+            self._draw(d, t)
             self._shown = (d, t)
+
+    @staticmethod
+    def _draw(done: int, total: int, end: str = "") -> None:
+        width = 30
+        fill = int(width * done / max(total, 1))
+        sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {done}/{total}{end}")
+        sys.stderr.flush()
 
     def clear_line(self) -> None:
         """Erase the bar from its line, if drawn (a TTY), so that other output starts on a clean line."""
@@ -99,10 +103,7 @@ class _ProgressBar:
                 return
             d, t = sum(self.seen.values()), sum(self.total.values())
             if self.tty:
-                width = 30
-                fill = int(width * d / max(t, 1))
-                sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {d}/{t}\n")
-                sys.stderr.flush()
+                self._draw(d, t, "\n")
             elif self._shown != (d, t):
                 _eprint(f"blocks {d}/{t}")
             self.seen.clear()
@@ -189,10 +190,15 @@ def cmd_run(args: argparse.Namespace) -> int:
     from .job import run_job
 
     bar = _ProgressBar()
+
+    def say(message: str) -> None:  # the engine's messages, on a line of their own
+        bar.clear_line()
+        _eprint(message)
+
     try:
         with bar.over_logs():
             res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
-                          log_fn=lambda m: (bar.clear_line(), _eprint(m)))
+                          log_fn=say)
     finally:
         bar.close()
     c = res.counts()
@@ -208,7 +214,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0 if res.ok else 1
 
 
-def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None, progress: _ProgressBar) -> bool:
+def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None,
+                progress: _ProgressBar) -> bool:
     """Begin the run before its flow run exists and offer it to the flow run; whether that worked.
 
     ``progress`` (the terminal's progress bar) sees the blocks as they are recorded, before
