@@ -577,6 +577,48 @@ def test_cli_run_through_the_flow_on_a_fresh_prefect_home(npy_archive, tmp_path)
     assert "complete 6, skipped (unchanged) 0, failed 0" in proc.stdout, out
 
 
+def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_complete_falsely(
+        prefect_server, prefect_client, npy_archive, tmp_path):
+    # Ctrl-C (SIGINT) while `twinpass run` filters (each block delayed 0.5 s): the command
+    # ends with status 130 and says so; the store's lock is released, no file is marked
+    # complete with a block not done, the stopped blocks are logged in one line per
+    # segment, not one error line each, and the next run finishes the job.
+    # Output: scipy.signal.sosfiltfilt of the whole segment.
+    cfg = write_job(tmp_path, npy_archive)
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server,
+                    "TWINPASS_FAULTS": json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.5}]),
+                    "TWINPASS_FAULTS_STATE": str(tmp_path / "fault-state")})
+    err_path = tmp_path / "run.err"
+    with open(err_path, "w") as err:
+        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-report"], env=env,
+                                cwd=tmp_path, stdout=subprocess.PIPE, stderr=err, text=True)
+    try:
+        poll(lambda: err_path.read_text(), lambda text: "Beginning flow run" in text or proc.poll() is not None,
+             "the flow run to begin")
+        assert proc.poll() is None, err_path.read_text()
+        proc.send_signal(signal.SIGINT)
+        out, _ = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    text = err_path.read_text()
+    assert proc.returncode == 130, text + out
+    assert "twinpass: interrupted; finished blocks are kept, rerun to resume" in text
+    # Stopped blocks are neither failures nor retried; no traceback, no final block count.
+    assert "failed after" not in text and "Traceback" not in text, text
+    assert "cancelled before they finished (the run was stopped)" in text, text
+    assert "Retries are exhausted" not in text, text
+    assert f"blocks {6 * BLOCKS_PER_FILE}/{6 * BLOCKS_PER_FILE}" not in text, text
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
+    assert state.is_completed(), state.message
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
 @pytest.mark.parametrize(("scheduler", "loops_loaded"), [("threads", True), ("processes", False)])
 def test_preload_loads_what_the_first_flow_call_and_block_would(tmp_path, scheduler, loops_loaded):
     # In a fresh interpreter: Prefect's flow engine and the encoders its parameter

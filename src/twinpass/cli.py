@@ -96,15 +96,21 @@ class _ProgressBar:
             logging.setLogRecordFactory(previous)
             self.clear_line()  # what is written next (until close) starts on a clean line too
 
-    def close(self) -> None:
-        """End the bar's line (a TTY) or print the final count (otherwise); nothing if no block was seen."""
+    def close(self, *, count: bool = True) -> None:
+        """End the bar's line (a TTY) or print the final count (otherwise); nothing if no block
+        was seen. With ``count`` False (the run was interrupted: its stopped blocks were
+        counted as they were recorded) only the bar's line is ended."""
         with self._lock:
             if not self.seen:
                 return
             d, t = sum(self.seen.values()), sum(self.total.values())
             if self.tty:
-                self._draw(d, t, "\n")
-            elif self._shown != (d, t):
+                if count:
+                    self._draw(d, t, "\n")
+                elif self._shown is not None:
+                    sys.stderr.write("\n")
+                    sys.stderr.flush()
+            elif count and self._shown != (d, t):
                 _eprint(f"blocks {d}/{t}")
             self.seen.clear()
             self.total.clear()
@@ -200,7 +206,7 @@ def cmd_run(args: argparse.Namespace) -> int:
             res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
                           log_fn=say)
     finally:
-        bar.close()
+        bar.close(count=sys.exc_info()[0] is None)
     c = res.counts()
     print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
           f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
@@ -282,7 +288,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     finally:
         withdraw()  # a head start the flow run did not take (a failed server start, Ctrl-C): stop it
         flows.close_early_client()  # likewise a cluster started early
-        progress.close()
+        progress.close(count=sys.exc_info()[0] is None)  # an interrupted run's count would mislead
     if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):

@@ -80,5 +80,10 @@ class ChecksFailedError(BlockFailedError):
     figures, so the segment is not retried. Inspect the figures (``twinpass status``/report)."""
 
 
+class RunStoppedError(BlockFailedError):
+    """The run was stopped (Ctrl-C, a run no flow run took over) before these blocks finished:
+    they are recorded as not done and the segment is not retried; rerun to finish them."""
+
+
 class InjectedFault(TwinpassError):
     """Raised by the fault-injection switch (tests only)."""

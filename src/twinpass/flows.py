@@ -49,8 +49,8 @@ from prefect.utilities.annotations import quote
 from .config import JobConfig, load_config
 from .core.design import format_report
 from .core.plan import fingerprint_changed
-from .engine import BlockErrorLog, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
-from .errors import BlockFailedError, ChecksFailedError, ConfigError
+from .engine import CANCELLED, BlockErrorLog, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
+from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
@@ -173,8 +173,9 @@ def design_task(prep: Prepared) -> dict[str, Any]:
 
 def _worth_retrying(task: Any, task_run: Any, state: Any) -> bool:
     """Retry a failed segment unless only checks failed (the same blocks give the same
-    figures) or the configuration does not suit it (e.g. blocks too large for the memory budget)."""
-    return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError))
+    figures), the configuration does not suit it (e.g. blocks too large for the memory
+    budget) or the run was stopped (its cluster is closing)."""
+    return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError, RunStoppedError))
 
 
 @task(name="filter-segment", cache_policy=NO_CACHE, retries=1, retry_delay_seconds=5.0,
@@ -188,7 +189,10 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     """
     logger = get_run_logger()
     cfg = prep.cfg
-    client = _CLIENTS[client_key]
+    client = _CLIENTS.get(client_key)
+    if client is None:  # the flow body has closed the run's cluster: the run is being stopped
+        raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before this segment started; "
+                              "rerun to finish it")
     mark = (client_key, seg.segment_id)
     with _CLIENTS_LOCK:
         retry = mark in _PREPARED
@@ -234,6 +238,10 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     if failed:
         names = "; ".join(f"{o.relpath} ({o.blocks_failed} block(s) not done: "
                           f"{next(iter(o.errors.values()), 'checks failed').splitlines()[0]})" for o in failed)
+        reasons = [str(e) for o in failed for e in o.errors.values()]
+        if reasons and all(r.startswith(CANCELLED) for r in reasons):
+            raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before {len(reasons)} block(s) "
+                                  "finished; they are recorded as not done; rerun to finish them")
         if not any(o.errors for o in failed):  # every block ran; only their checks failed
             raise ChecksFailedError(f"segment {seg.segment_id}: {names}; not retried (the same blocks give "
                                     "the same figures): see `twinpass status` or the report")
