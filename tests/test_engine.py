@@ -146,6 +146,57 @@ def test_identical_bytes_for_every_scheduler_and_worker_count(tmp_path, process_
         assert chunk_files(store) == ref_chunks, key
 
 
+def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
+    """SIGINT while `twinpass run --no-flow` filters (each block delayed 0.5 s): the command
+    stops its blocks instead of running the rest, exits 130 saying so, logs the stopped
+    blocks in one line per segment, and marks no file complete with a block not done; the
+    next run finishes the job, and the result equals scipy.signal.sosfiltfilt over the
+    whole segment."""
+    import json
+    import signal
+    import subprocess
+
+    from conftest import PYTHON, cli_env
+    from twinpass.io.store import OutputStore
+    from twinpass.io.store_util import array_name
+
+    x = make_signal(16000, 1, FS, seed=8)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, 2)
+    cfg = write_config(tmp_path)
+    env = cli_env(TWINPASS_FAULTS=json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.5}]),
+                  TWINPASS_FAULTS_STATE=str(tmp_path / "fault-state"))
+    err_path = tmp_path / "run.err"
+    with open(err_path, "w") as err:
+        proc = subprocess.Popen([PYTHON, "-m", "twinpass.cli", "run", str(cfg), "--no-flow", "--no-report"],
+                                env=env, stdout=subprocess.PIPE, stderr=err, text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while "blocks " not in err_path.read_text() and proc.poll() is None and time.monotonic() < deadline:
+            time.sleep(0.1)  # the first block recorded
+        assert proc.poll() is None, err_path.read_text()
+        proc.send_signal(signal.SIGINT)
+        out, _ = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    text = err_path.read_text()
+    assert proc.returncode == 130 and "twinpass: interrupted" in text, text + out
+    assert "cancelled before they finished (the run was stopped)" in text and "failed after" not in text, text
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    records = store.file_records()
+    todo = {rel: store.read_block_table(array_name(rel), figures=False, seams=False).todo().size for rel in records}
+    assert sum(todo.values()) > 0, todo  # stopped: blocks were left, not run to the end
+    assert all(todo[rel] == 0 for rel, rec in records.items() if rec.complete), (records, todo)
+
+    assert run_job(load_config(cfg)).ok
+    g = open_store(tmp_path / "out.zarr")
+    filt = g[files.arrays[0]].attrs["filter"]
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    # Reference: scipy.signal.sosfiltfilt on the whole segment (see _reference).
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
 def test_cli_run_no_flow_prints_progress_and_summary(tmp_path):
     x = make_signal(16000, 1, FS, seed=5)
     write_stream(tmp_path / "archive", "deck", x, FS, 2)

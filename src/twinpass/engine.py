@@ -36,6 +36,7 @@ import logging
 import threading
 import time
 import traceback
+import weakref
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator
 
@@ -777,6 +778,42 @@ def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]
     return [(client.submit(run_block, j, pure=False, retries=j.retries,
                            key=f"twinpass-block-{j.array_name}-{j.block_index}-{stamp}"), j)
             for j in jobs]
+
+
+STOP_POLL_S = 0.1
+"""Seconds between rounds of cancelling the drivers' blocks while a stopped run waits for them."""
+
+
+class CancellableClient:
+    """The cluster's client as the segment drivers see it: the blocks they submit can all be cancelled.
+
+    Stopping a run (Ctrl-C) must stop its drivers before the cluster closes: closing a
+    cluster under a driver that still submits or waits on blocks can leave the driver
+    waiting forever on a client whose event loop is gone. :meth:`cancel_all`, repeated
+    until the drivers have returned (a driver may still be submitting), lets each record
+    its unfinished blocks as not done and return.
+    """
+
+    def __init__(self, client: Any) -> None:
+        self._client = client
+        self._futures: weakref.WeakSet[Any] = weakref.WeakSet()  # forgotten once the driver drops them
+        self._guard = threading.Lock()
+
+    def submit(self, *args: Any, **kwargs: Any) -> Any:
+        fut = self._client.submit(*args, **kwargs)
+        with self._guard:
+            self._futures.add(fut)
+        return fut
+
+    def cancel_all(self) -> None:
+        """Cancel every block submitted so far that has not finished."""
+        with self._guard:
+            pending = [f for f in self._futures if not f.done()]
+        if pending:
+            self._client.cancel(pending)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._client, name)
 
 
 CANCELLED = "cancelled"

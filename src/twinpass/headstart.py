@@ -35,12 +35,11 @@ import logging
 import queue
 import threading
 import uuid
-import weakref
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator
 
 from .config import JobConfig
-from .engine import ClientStart, FileOutcome, SegmentWork, run_segment
+from .engine import STOP_POLL_S, CancellableClient, ClientStart, FileOutcome, SegmentWork, run_segment
 from .io.store import OutputStore
 from .job import Prepared, begin_run, now_iso, prepare
 
@@ -52,38 +51,6 @@ WatchFn = Callable[[str, int, int, Any], None]
 """``watch(segment_id, done, total, result)``: sees every segment's blocks as they are recorded."""
 
 _END = object()
-STOP_POLL_S = 0.1
-"""Seconds between rounds of cancelling the drivers' blocks while :meth:`HeadStart.close` waits for them."""
-
-
-class _CancellableClient:
-    """The cluster's client as the drivers see it: the blocks they submit can all be cancelled.
-
-    Closing a cluster under a driver that still submits or waits on blocks can leave the
-    driver waiting forever on a client whose event loop is gone; cancelling its blocks
-    first lets it record them as not done and return.
-    """
-
-    def __init__(self, client: Any) -> None:
-        self._client = client
-        self._futures: weakref.WeakSet[Any] = weakref.WeakSet()  # forgotten once the driver drops them
-        self._guard = threading.Lock()
-
-    def submit(self, *args: Any, **kwargs: Any) -> Any:
-        fut = self._client.submit(*args, **kwargs)
-        with self._guard:
-            self._futures.add(fut)
-        return fut
-
-    def cancel_all(self) -> None:
-        """Cancel every block submitted so far that has not finished."""
-        with self._guard:
-            pending = [f for f in self._futures if not f.done()]
-        if pending:
-            self._client.cancel(pending)
-
-    def __getattr__(self, name: str) -> Any:
-        return getattr(self._client, name)
 
 
 class EarlySegment:
@@ -178,7 +145,7 @@ class HeadStart:
     client_start: ClientStart | None
     segments: dict[str, EarlySegment] = field(default_factory=dict)
     _drivers: list[EarlySegment] = field(default_factory=list)
-    _client: _CancellableClient | None = None
+    _client: CancellableClient | None = None
     _lock: contextlib.ExitStack = field(default_factory=contextlib.ExitStack)
 
     @classmethod
@@ -210,7 +177,7 @@ class HeadStart:
             held.callback(head.close)  # runs before the lock is released
             begin_run(store, prep)
             if head.client_start is not None:
-                head._client = _CancellableClient(head.client_start.client())
+                head._client = CancellableClient(head.client_start.client())
                 head.segments = {w.segment_id: EarlySegment(w, prep, store, head._client, watch) for w in busy}
                 head._drivers = list(head.segments.values())
             head._lock = held.pop_all()  # held from now on until release() or withdraw()

@@ -12,7 +12,7 @@ import logging
 import platform
 import traceback
 import uuid
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
@@ -22,7 +22,15 @@ from .core.design import design_filter, response_report
 from .core.plan import FilePlan, Plan, make_plan
 from .core.segments import InvalidFile, Segment
 from .core.types import Design
-from .engine import FileOutcome, FileWork, SegmentWork, design_digest_for, run_segment
+from .engine import (
+    STOP_POLL_S,
+    CancellableClient,
+    FileOutcome,
+    FileWork,
+    SegmentWork,
+    design_digest_for,
+    run_segment,
+)
 from .errors import SpecError, TwinpassError
 from .io.archive import Discovery, discover
 from .io.store import OutputStore
@@ -184,6 +192,16 @@ def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None
             for f in w.files]
 
 
+def _stop_drivers(pool: ThreadPoolExecutor, drivers: list[Future[Any]], client: CancellableClient) -> None:
+    """Stop a run's segment drivers: segments not started are dropped, and the blocks of
+    those running are cancelled, round after round, until every driver has returned (each
+    records its unfinished blocks as not done). Only then may the cluster close."""
+    pool.shutdown(wait=False, cancel_futures=True)
+    while not all(d.done() for d in drivers):
+        client.cancel_all()
+        wait(drivers, timeout=STOP_POLL_S)
+
+
 def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None, workers: int | None = None,
             on_block: Callable[[str, int, int, Any], None] | None = None,
             log_fn: Callable[[str], None] | None = None) -> RunResult:
@@ -228,7 +246,9 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             if not w.has_work:
                 outcomes.extend(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") for f in w.files)
         if busy:
-            with dask_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as client:
+            with dask_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as dask:
+                client = CancellableClient(dask)
+
                 def one(w: SegmentWork) -> list[FileOutcome]:
                     cb = None if on_block is None else (lambda d, t, r, sid=w.segment_id: on_block(sid, d, t, r))
                     try:
@@ -237,8 +257,13 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
                         return segment_failed(w, e, say)
 
                 with ThreadPoolExecutor(max_workers=4) as pool:
-                    for outs in pool.map(one, busy):
-                        outcomes.extend(outs)
+                    drivers = [pool.submit(one, w) for w in busy]
+                    try:
+                        for d in drivers:
+                            outcomes.extend(d.result())
+                    except BaseException:  # Ctrl-C: stop the drivers before the cluster closes
+                        _stop_drivers(pool, drivers, client)
+                        raise
         result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
         finish_run(store, result, cfg)
     return result
