@@ -246,6 +246,30 @@ def run_cli(args: Sequence[str], *, env: Mapping[str, str] | None = None, timeou
     return proc
 
 
+def interrupt_cli(args: Sequence[str], env: Mapping[str, str], err_path: Path, when: str, *,
+                  cwd: Path | None = None, timeout: float = 120) -> tuple[int, str, str]:
+    """Start ``python -m twinpass.cli ARGS``, send it SIGINT (Ctrl-C) once ``when`` appears in
+    its stderr (kept in ``err_path``), and return (exit status, stderr, stdout)."""
+    import signal
+    import time
+
+    with open(err_path, "w") as err:
+        proc = subprocess.Popen([PYTHON, "-m", "twinpass.cli", *args], env=dict(env), cwd=cwd,
+                                stdout=subprocess.PIPE, stderr=err, text=True)
+    try:
+        deadline = time.monotonic() + timeout
+        while when not in err_path.read_text() and proc.poll() is None and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert proc.poll() is None, f"the command ended before {when!r}:\n{err_path.read_text()}"
+        proc.send_signal(signal.SIGINT)
+        out, _ = proc.communicate(timeout=timeout)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    return proc.returncode, err_path.read_text(), out
+
+
 # ----------------------------------------------------------------------- fixtures
 @pytest.fixture(scope="session")
 def _fault_channel(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Path, Path]]:

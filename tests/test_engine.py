@@ -153,10 +153,8 @@ def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
     next run finishes the job, and the result equals scipy.signal.sosfiltfilt over the
     whole segment."""
     import json
-    import signal
-    import subprocess
 
-    from conftest import PYTHON, cli_env
+    from conftest import cli_env, interrupt_cli
     from twinpass.io.store import OutputStore
     from twinpass.io.store_util import array_name
 
@@ -165,23 +163,10 @@ def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
     cfg = write_config(tmp_path)
     env = cli_env(TWINPASS_FAULTS=json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.5}]),
                   TWINPASS_FAULTS_STATE=str(tmp_path / "fault-state"))
-    err_path = tmp_path / "run.err"
-    with open(err_path, "w") as err:
-        proc = subprocess.Popen([PYTHON, "-m", "twinpass.cli", "run", str(cfg), "--no-flow", "--no-report"],
-                                env=env, stdout=subprocess.PIPE, stderr=err, text=True)
-    try:
-        deadline = time.monotonic() + 120
-        while "blocks " not in err_path.read_text() and proc.poll() is None and time.monotonic() < deadline:
-            time.sleep(0.1)  # the first block recorded
-        assert proc.poll() is None, err_path.read_text()
-        proc.send_signal(signal.SIGINT)
-        out, _ = proc.communicate(timeout=120)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
-    text = err_path.read_text()
-    assert proc.returncode == 130 and "twinpass: interrupted" in text, text + out
+    # Ctrl-C once the first block is recorded (its progress line).
+    code, text, out = interrupt_cli(["run", str(cfg), "--no-flow", "--no-report"], env, tmp_path / "run.err",
+                                    "blocks ")
+    assert code == 130 and "twinpass: interrupted" in text, text + out
     assert "cancelled before they finished (the run was stopped)" in text and "failed after" not in text, text
     store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
     records = store.file_records()

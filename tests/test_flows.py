@@ -25,6 +25,7 @@ from urllib.request import url2pathname
 import pytest
 
 pytest.register_assert_rewrite("prefect_fixtures")  # helpers with asserts, loaded as a plug-in too
+from conftest import interrupt_cli
 from prefect_fixtures import (
     FILE_FRAMES,
     FILES_PER_STREAM,
@@ -588,22 +589,9 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server,
                     "TWINPASS_FAULTS": json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.5}]),
                     "TWINPASS_FAULTS_STATE": str(tmp_path / "fault-state")})
-    err_path = tmp_path / "run.err"
-    with open(err_path, "w") as err:
-        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-report"], env=env,
-                                cwd=tmp_path, stdout=subprocess.PIPE, stderr=err, text=True)
-    try:
-        poll(lambda: err_path.read_text(), lambda text: "Beginning flow run" in text or proc.poll() is not None,
-             "the flow run to begin")
-        assert proc.poll() is None, err_path.read_text()
-        proc.send_signal(signal.SIGINT)
-        out, _ = proc.communicate(timeout=120)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
-    text = err_path.read_text()
-    assert proc.returncode == 130, text + out
+    code, text, out = interrupt_cli(["run", str(cfg), "--no-report"], env, tmp_path / "run.err",
+                                    "Beginning flow run", cwd=tmp_path)
+    assert code == 130, text + out
     assert "twinpass: interrupted; finished blocks are kept, rerun to resume" in text
     # Stopped blocks are neither failures nor retried; no traceback, no final block count.
     assert "failed after" not in text and "Traceback" not in text, text
