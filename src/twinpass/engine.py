@@ -789,9 +789,9 @@ class CancellableClient:
 
     Stopping a run (Ctrl-C) must stop its drivers before the cluster closes: closing a
     cluster under a driver that still submits or waits on blocks can leave the driver
-    waiting forever on a client whose event loop is gone. :meth:`cancel_all`, repeated
-    until the drivers have returned (a driver may still be submitting), lets each record
-    its unfinished blocks as not done and return.
+    waiting forever on a client whose event loop is gone. :meth:`cancel_until` cancels
+    their blocks, round after round until the drivers have returned (a driver may still be
+    submitting), so that each records its unfinished blocks as not done and returns.
     """
 
     def __init__(self, client: Any) -> None:
@@ -812,12 +812,28 @@ class CancellableClient:
         if pending:
             self._client.cancel(pending)
 
+    def cancel_until(self, ended: Callable[[float], bool]) -> None:
+        """Cancel the unfinished blocks, round after round, until the drivers have returned.
+
+        ``ended(timeout)`` waits up to ``timeout`` seconds for the drivers and says whether
+        every one has returned; it is asked with 0 first, then between rounds with
+        :data:`STOP_POLL_S`.
+        """
+        while not ended(0.0):
+            self.cancel_all()
+            ended(STOP_POLL_S)
+
     def __getattr__(self, name: str) -> Any:
         return getattr(self._client, name)
 
 
 CANCELLED = "cancelled"
 """How the error text of a block whose task was cancelled begins (the run was stopped meanwhile)."""
+
+
+def was_cancelled(error: str | None) -> bool:
+    """Whether a block's recorded error text says its task was cancelled (see :func:`lost_task_error`)."""
+    return bool(error) and str(error).startswith(CANCELLED)
 
 
 def lost_task_error(exc: BaseException) -> str:
@@ -858,7 +874,7 @@ class BlockErrorLog:
         if res.status != ERROR:
             return
         first = (res.error or "").splitlines()[0] if res.error else ""
-        if first.startswith(CANCELLED):
+        if was_cancelled(first):
             self.cancelled += 1
         elif attempts:
             self.log.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,

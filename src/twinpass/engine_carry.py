@@ -98,7 +98,6 @@ from .core.blocks import Layout, choose_layout
 from .core.carry import carry_states, steady_state, transition_matrix
 from .core.types import Design
 from .engine import (
-    CANCELLED,
     ERROR,
     BlockErrorLog,
     BlockResult,
@@ -113,6 +112,7 @@ from .engine import (
     read_segment_window,
     record_result,
     segment_edge_samples,
+    was_cancelled,
 )
 from .errors import ConfigError, KernelError, TwinpassError
 from .io.store import array_metadata, write_rows
@@ -893,7 +893,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
         msg = (f"carry mode: the filter state could not be carried past piece {first} of segment "
                f"{seg.segment_id} ({pieces[first].kind}, samples [{pieces[first].start - n}, "
                f"{pieces[first].stop - n}) of the segment): {reason}; rerun to resume (finished steps are kept)")
-        if reason.startswith(CANCELLED):
+        if was_cancelled(reason):
             msg = f"{reason} (carry mode: finished steps are kept)"
         for p in blocks:
             report(BlockResult(p.array_name or "", p.block_index, ERROR, error=msg))

@@ -49,7 +49,16 @@ from prefect.utilities.annotations import quote
 from .config import JobConfig, load_config
 from .core.design import format_report
 from .core.plan import fingerprint_changed
-from .engine import CANCELLED, BlockErrorLog, ClientStart, FileOutcome, SegmentWork, retry_delays, run_segment, warm_compiled_loops
+from .engine import (
+    BlockErrorLog,
+    ClientStart,
+    FileOutcome,
+    SegmentWork,
+    retry_delays,
+    run_segment,
+    warm_compiled_loops,
+    was_cancelled,
+)
 from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
@@ -239,7 +248,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         names = "; ".join(f"{o.relpath} ({o.blocks_failed} block(s) not done: "
                           f"{next(iter(o.errors.values()), 'checks failed').splitlines()[0]})" for o in failed)
         reasons = [str(e) for o in failed for e in o.errors.values()]
-        if reasons and all(r.startswith(CANCELLED) for r in reasons):
+        if reasons and all(was_cancelled(r) for r in reasons):
             raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before {len(reasons)} block(s) "
                                   "finished; they are recorded as not done; rerun to finish them")
         if not any(o.errors for o in failed):  # every block ran; only their checks failed

@@ -39,14 +39,12 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator
 
 from .config import JobConfig
-from .engine import STOP_POLL_S, CancellableClient, ClientStart, FileOutcome, SegmentWork, run_segment
+from .engine import CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .io.store import OutputStore
 from .job import Prepared, begin_run, now_iso, prepare
 
 log = logging.getLogger(__name__)
 
-BlockFn = Callable[[int, int, Any], None]
-"""``on_block(done, total, result)``, as for :func:`twinpass.engine.run_segment`."""
 WatchFn = Callable[[str, int, int, Any], None]
 """``watch(segment_id, done, total, result)``: sees every segment's blocks as they are recorded."""
 
@@ -91,7 +89,7 @@ class EarlySegment:
         finally:
             self._events.put(_END)
 
-    def follow(self, on_block: BlockFn | None = None) -> list[FileOutcome]:
+    def follow(self, on_block: ProgressFn | None = None) -> list[FileOutcome]:
         """Wait for the driver, calling ``on_block`` in this thread for each of its blocks.
 
         Returns the driver's outcomes (as :func:`~twinpass.engine.run_segment` returns
@@ -210,12 +208,13 @@ class HeadStart:
         end, and this only closes the cluster.
         """
         if self._client is not None:
-            while not all(d.join(0) for d in self._drivers):
-                self._client.cancel_all()
-                for d in self._drivers:
-                    d.join(STOP_POLL_S)
+            self._client.cancel_until(self._drivers_ended)
         if self.client_start is not None:
             self.client_start.close()
+
+    def _drivers_ended(self, timeout: float = 0.0) -> bool:
+        """Whether every driver has returned, waiting up to ``timeout`` seconds for each one still running."""
+        return all(d.join(timeout) for d in self._drivers)
 
     def release(self) -> None:
         """:meth:`close`, then release the run lock (safe to repeat)."""
@@ -255,7 +254,7 @@ def withdraw() -> None:
     with _pending_lock:
         head, _pending = _pending, None
     if head is not None:
-        if not all(d.join(0) for d in head._drivers):
+        if not head._drivers_ended():
             log.warning("no flow run took over run %s; stopping it: its unfinished blocks are recorded as not "
                         "done, and the next run of the same configuration finishes them", head.run_id)
         head.release()

@@ -23,7 +23,6 @@ from .core.plan import FilePlan, Plan, make_plan
 from .core.segments import InvalidFile, Segment
 from .core.types import Design
 from .engine import (
-    STOP_POLL_S,
     CancellableClient,
     FileOutcome,
     FileWork,
@@ -194,12 +193,10 @@ def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None
 
 def _stop_drivers(pool: ThreadPoolExecutor, drivers: list[Future[Any]], client: CancellableClient) -> None:
     """Stop a run's segment drivers: segments not started are dropped, and the blocks of
-    those running are cancelled, round after round, until every driver has returned (each
-    records its unfinished blocks as not done). Only then may the cluster close."""
+    those running are cancelled until every driver has returned (each records its
+    unfinished blocks as not done). Only then may the cluster close."""
     pool.shutdown(wait=False, cancel_futures=True)
-    while not all(d.done() for d in drivers):
-        client.cancel_all()
-        wait(drivers, timeout=STOP_POLL_S)
+    client.cancel_until(lambda timeout: not wait(drivers, timeout=timeout).not_done)
 
 
 def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None, workers: int | None = None,
