@@ -580,14 +580,15 @@ def test_cli_run_through_the_flow_on_a_fresh_prefect_home(npy_archive, tmp_path)
 
 def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_complete_falsely(
         prefect_server, prefect_client, npy_archive, tmp_path):
-    # Ctrl-C (SIGINT) while `twinpass run` filters (each block delayed 0.5 s): the command
+    # Ctrl-C (SIGINT) while `twinpass run` filters (each block delayed 2 s, so that
+    # blocks are still running when the flow run begins, even on a loaded machine): the command
     # ends with status 130 and says so; the store's lock is released, no file is marked
     # complete with a block not done, the stopped blocks are logged in one line per
     # segment, not one error line each, and the next run finishes the job.
     # Output: scipy.signal.sosfiltfilt of the whole segment.
     cfg = write_job(tmp_path, npy_archive)
     env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server,
-                    "TWINPASS_FAULTS": json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.5}]),
+                    "TWINPASS_FAULTS": json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 2.0}]),
                     "TWINPASS_FAULTS_STATE": str(tmp_path / "fault-state")})
     code, text, out = interrupt_cli(["run", str(cfg), "--no-report"], env, tmp_path / "run.err",
                                     "Beginning flow run", cwd=tmp_path)
