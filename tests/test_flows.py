@@ -172,12 +172,21 @@ def test_rerun_skips_unchanged_and_a_touched_file_reruns_its_halo_neighbours(fir
 
 
 # ---------------------------------------------------------------------- faults
-def test_block_failing_once_is_retried_by_the_segment_task(prefect_client, npy_archive, tmp_path, monkeypatch):
+def _engine_block_lines(caplog) -> list[str]:
+    """The engine's own lines about failed or cancelled blocks (a flow task logs those itself)."""
+    return [r.getMessage() for r in caplog.records if r.name == "twinpass.engine"
+            and ("failed after" in r.getMessage() or "cancelled before" in r.getMessage())]
+
+
+def test_block_failing_once_is_retried_by_the_segment_task(prefect_client, npy_archive, tmp_path, monkeypatch,
+                                                           caplog):
     cfg = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
     monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise-once", "file": "north/*", "block": 1}]))
     monkeypatch.setenv("TWINPASS_FAULTS_STATE", str(tmp_path / "fault-state"))
+    caplog.set_level(logging.INFO, logger="twinpass")
     state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
     assert state.is_completed(), state.message
+    assert _engine_block_lines(caplog) == []  # the task's run logger has them, once
     assert len(os.listdir(tmp_path / "fault-state")) == FILES_PER_STREAM  # block 1 of each north file failed once
 
     runs = final_task_runs(prefect_client, flow_run_id(state), expected=4)
@@ -419,7 +428,7 @@ def test_the_command_begins_the_run_on_worker_processes_and_the_flow_run_finishe
 
 
 def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_client, npy_archive, tmp_path,
-                                                                   monkeypatch):
+                                                                   monkeypatch, caplog):
     # Block 1 of each north file fails once while the head start's driver runs it; the
     # task following that driver fails, and its retry (a normal attempt) resumes: it runs
     # only the failed blocks, because the followed driver's blocks marked the segment prepared.
@@ -427,9 +436,11 @@ def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_clie
     cfg_path = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=1)
     monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise-once", "file": "north/*", "block": 1}]))
     monkeypatch.setenv("TWINPASS_FAULTS_STATE", str(tmp_path / "fault-state"))
+    caplog.set_level(logging.INFO, logger="twinpass")
     offer(HeadStart.begin(load_config(cfg_path)))
     state = flows.archive_run(config_path=str(cfg_path), report=False, return_state=True)
     assert state.is_completed(), state.message
+    assert _engine_block_lines(caplog) == []  # the following task's run logger has them, once
     runs = final_task_runs(prefect_client, flow_run_id(state), expected=3)
     north = next(t for t in runs_of(runs, flows.filter_segment) if "north" in t.name)
     assert north.run_count == 2
@@ -596,7 +607,10 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     assert "twinpass: interrupted; finished blocks are kept, rerun to resume" in text
     # Stopped blocks are neither failures nor retried; no traceback, no final block count.
     assert "failed after" not in text and "Traceback" not in text, text
-    assert "cancelled before they finished (the run was stopped)" in text, text
+    stopped = [line for line in text.splitlines() if "cancelled before they finished (the run was stopped)" in line]
+    assert stopped, text
+    for stream in STREAMS:  # once per segment: by its task, or by the engine for one no task took
+        assert len([line for line in stopped if f"segment {stream}@" in line]) <= 1, text
     assert "Retries are exhausted" not in text, text
     assert f"blocks {6 * BLOCKS_PER_FILE}/{6 * BLOCKS_PER_FILE}" not in text, text
     records = _file_records_honest(str(tmp_path / "out.zarr"))

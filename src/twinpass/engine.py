@@ -893,7 +893,7 @@ class BlockErrorLog:
 
 def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
              on_block: ProgressFn | None = None, sync_before_record: bool = False,
-             segment_id: str = "") -> dict[str, int]:
+             segment_id: str = "", log_blocks: bool = True) -> dict[str, int]:
     """Record the results of block jobs submitted with :func:`submit_jobs` as they arrive.
 
     Returns the number of blocks run per array name. A block whose task is lost (its
@@ -906,6 +906,9 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
     whose chunks cannot be synced is recorded ``ERROR``). The workers then never wait on the
     disk; this thread does, while they compute the next blocks. Only for workers on this
     machine (:func:`shares_this_machine`): their writes are in this machine's page cache.
+
+    With ``log_blocks`` the failed and cancelled blocks are logged here (:class:`BlockErrorLog`,
+    naming ``segment_id``); a caller whose ``on_block`` logs them itself passes False.
     """
     from distributed import as_completed
 
@@ -916,13 +919,14 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
     futures = [f for f, _ in submitted]
     by_key = {f.key: j for f, j in submitted}
     done = 0
-    errors = BlockErrorLog(segment_id)
+    errors = BlockErrorLog(segment_id) if log_blocks else None
 
     def recorded(res: BlockResult) -> None:
         nonlocal done
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        errors.block(res)
+        if errors is not None:
+            errors.block(res)
         if on_block is not None:
             on_block(done, total, res)
 
@@ -943,7 +947,8 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
             recorder.flush()
         raise
     finally:
-        errors.close()
+        if errors is not None:
+            errors.close()
     recorder.flush()
     return run_count
 
@@ -990,7 +995,7 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
 
 
 def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any,
-                *, on_block: ProgressFn | None = None) -> list[FileOutcome]:
+                *, on_block: ProgressFn | None = None, log_blocks: bool = True) -> list[FileOutcome]:
     """Filter every block a segment needs, record results, run seam checks, finalise files.
 
     Parameters
@@ -1005,6 +1010,10 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     client : distributed.Client
     on_block : callable, optional
         Called as ``on_block(done, total, result)`` from this thread after each block.
+    log_blocks : bool
+        Log failed blocks (a line each) and cancelled ones (a line for the segment) on the
+        engine's logger. False when ``on_block`` logs them (a flow task does, on its run
+        logger), so that each appears once.
 
     Returns
     -------
@@ -1025,7 +1034,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
         from .engine_carry import run_segment_carry, use_carry  # it imports this module
 
         if not seg.holes and use_carry(design, segment_block_samples(seg, layout), cfg):  # pieces between holes use halos
-            return run_segment_carry(seg, design, cfg, store, client, on_block=on_block)
+            return run_segment_carry(seg, design, cfg, store, client, on_block=on_block, log_blocks=log_blocks)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
     # Workers on this machine leave syncing their output to this thread, which waits on the
     # disk while they compute; workers elsewhere sync their own.
@@ -1046,7 +1055,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
             client.cancel([f for f, _ in submitted])
         raise
     run_count = run_jobs(submitted, store, on_block=on_block, sync_before_record=sync_here,
-                         segment_id=seg.segment_id)
+                         segment_id=seg.segment_id, log_blocks=log_blocks)
     return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
 
 

@@ -762,7 +762,7 @@ def _run_state_step(client: Any, record: CarryRecord, fn: Callable[..., dict[str
 
 
 def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any,
-                      *, on_block: ProgressFn | None = None,
+                      *, on_block: ProgressFn | None = None, log_blocks: bool = True,
                       forward_output: str = FORWARD_OUTPUT) -> list[FileOutcome]:
     """Filter a segment in carry mode; same contract as :func:`twinpass.engine.run_segment`.
 
@@ -778,6 +778,8 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
     client : distributed.Client
     on_block : callable, optional
         Called as ``on_block(done, total, result)`` from this thread after each output block.
+    log_blocks : bool
+        Log failed and cancelled blocks on the engine's logger (False when ``on_block`` does).
     forward_output : {"recompute", "scratch"}
         How the output step gets each block's forward output (see :data:`FORWARD_OUTPUT`).
 
@@ -809,7 +811,7 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
         record = CarryRecord(store.location, _slug(seg.segment_id), _carry_key(seg, design, cfg, n, pieces),
                              len(pieces), sos.shape[0], seg.channels)
         run_count = _run_carry(seg, design, cfg, store, client, pieces, record, todo_by_file, n, sos,
-                               forward_output, on_block, layout.block_samples)
+                               forward_output, on_block, layout.block_samples, log_blocks)
     outcomes = finish_segment(seg, design, cfg, store, layout, n, spans_by_file, run_count, t0)
     if seg.has_work and not any(o.status == "failed" for o in outcomes):
         _drop_scratch(store.location, _slug(seg.segment_id))
@@ -818,7 +820,8 @@ def run_segment_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: A
 
 def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any, pieces: list[Piece],
                record: CarryRecord, todo_by_file: dict[str, list[int]], n: int, sos: np.ndarray,
-               forward_output: str, on_block: ProgressFn | None, batch_samples: int) -> dict[str, int]:
+               forward_output: str, on_block: ProgressFn | None, batch_samples: int,
+               log_blocks: bool = True) -> dict[str, int]:
     """Steps 1-5 for one segment; returns the number of blocks run per array.
 
     Short pieces share Dask tasks, up to ``batch_samples`` samples a task (a block's length).
@@ -876,14 +879,15 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     total = len(blocks)
     run_count: dict[str, int] = {}
     done = 0
-    block_errors = BlockErrorLog(seg.segment_id, log)
+    block_errors = BlockErrorLog(seg.segment_id, log) if log_blocks else None
 
     def report(res: BlockResult) -> None:
         nonlocal done
         res = record_result(store, res)
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        block_errors.block(res, attempts=False)
+        if block_errors is not None:
+            block_errors.block(res, attempts=False)
         if on_block is not None:
             on_block(done, total, res)
 
@@ -897,7 +901,8 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             msg = f"{reason} (carry mode: finished steps are kept)"
         for p in blocks:
             report(BlockResult(p.array_name or "", p.block_index, ERROR, error=msg))
-        block_errors.close()
+        if block_errors is not None:
+            block_errors.close()
         return run_count
     # Step 5 (parallel): outputs of the blocks to do.
     every = cfg.checks.every
@@ -915,7 +920,8 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             p = args[0].piece
             res = BlockResult(p.array_name, p.block_index, ERROR, error=res)
         report(res)
-    block_errors.close()
+    if block_errors is not None:
+        block_errors.close()
     log.info("segment %s: step 5 wrote %d blocks, at %.2f s", seg.segment_id, total, time.perf_counter() - t0)
     return run_count
 

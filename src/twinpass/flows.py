@@ -236,7 +236,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         if early is not None:  # begun before the flow run: follow it (a retry runs as usual)
             outcomes = early.follow(on_block)
         else:
-            outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block)
+            outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block, log_blocks=False)
     finally:
         block_errors.close()
     update_progress_artifact(artifact_id, 100.0)

@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator
 
 from .config import JobConfig
-from .engine import CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
+from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .io.store import OutputStore
 from .job import Prepared, begin_run, now_iso, prepare
 
@@ -82,8 +82,10 @@ class EarlySegment:
 
     def _drive(self, prep: Prepared, store: OutputStore, client: Any) -> None:
         try:
+            # The follower logs failed and cancelled blocks (a flow task, on its run logger);
+            # for a driver never followed, log_unfollowed() does.
             self._outcomes = run_segment(self.seg, prep.designs[self.seg.sample_rate_hz], prep.cfg, store, client,
-                                         on_block=self._event)
+                                         on_block=self._event, log_blocks=False)
         except BaseException as e:  # handed to the follower
             self._error = e
         finally:
@@ -104,6 +106,18 @@ class EarlySegment:
             raise self._error
         assert self._outcomes is not None
         return self._outcomes
+
+    def log_unfollowed(self) -> None:
+        """Log the failed and cancelled blocks of a driver no task followed (after it has ended).
+
+        On the engine's logger, as :func:`~twinpass.engine.run_segment` logs them; a
+        follower logs them itself instead, so that each appears once.
+        """
+        errors = BlockErrorLog(self.seg.segment_id)
+        with contextlib.suppress(queue.Empty):
+            while (event := self._events.get_nowait()) is not _END:
+                errors.block(event[2])
+        errors.close()
 
     def join(self, timeout: float | None = None) -> bool:
         """Wait for the driver to end (at most ``timeout`` seconds); whether it has ended."""
@@ -205,10 +219,18 @@ class HeadStart:
         Blocks not finished are cancelled (again, until every driver has ended: a driver
         may still be submitting), so their drivers record them as not done and return;
         then the cluster closes. After a normal run every driver has been followed to its
-        end, and this only closes the cluster.
+        end, and this only closes the cluster. The blocks of drivers no task took are
+        logged here (:meth:`EarlySegment.log_unfollowed`), and no task can take those
+        drivers afterwards.
         """
+        unfollowed = []
+        with contextlib.suppress(KeyError):
+            while True:  # one at a time: a task taking a segment meanwhile gets it whole
+                unfollowed.append(self.segments.popitem()[1])
         if self._client is not None:
             self._client.cancel_until(self._drivers_ended)
+        for driver in unfollowed:
+            driver.log_unfollowed()
         if self.client_start is not None:
             self.client_start.close()
 
