@@ -827,6 +827,23 @@ class CancellableClient:
         return getattr(self._client, name)
 
 
+class _CancelledBlockNotice(logging.Filter):
+    """Drops distributed's warning for each twinpass task it cancelled while running.
+
+    Stopping a run cancels its running blocks, and each worker then logs "Async
+    instruction for <Task ... execute('twinpass-block-...')> ended with CancelledError":
+    expected, and said once per segment by :class:`BlockErrorLog`. Other tasks' warnings
+    pass.
+    """
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        msg = record.getMessage()
+        return not ("ended with CancelledError" in msg and "execute('twinpass-" in msg)
+
+
+# Installed wherever this module is imported, worker processes included (they import it to run blocks).
+logging.getLogger("distributed.worker.state_machine").addFilter(_CancelledBlockNotice())
+
 CANCELLED = "cancelled"
 """How the error text of a block whose task was cancelled begins (the run was stopped meanwhile)."""
 
