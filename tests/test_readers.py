@@ -527,6 +527,90 @@ def test_npy_truncated(tmp_path):
         assert np.array_equal(rec.read(0, 69), x[:69] / 32768.0)
 
 
+class _CyclicWithFinalizer:
+    """Garbage whose collection runs Python code (a finalizer), where threads can switch."""
+
+    def __del__(self) -> None:
+        total = 0
+        for i in range(50):
+            total += i
+
+
+def test_npy_headers_parsed_on_many_threads_at_once(tmp_path):
+    # The archive scan and the block reads open NPY files on several threads. numpy parses
+    # the header with ast.literal_eval, and CPython 3.11's AST constructor shares its
+    # recursion-depth count between threads: concurrent parses can fail with "SystemError:
+    # AST constructor recursion depth mismatch" (python/cpython#106905), which made a sound
+    # file look damaged. Threads switching as often as possible and garbage whose collection
+    # runs Python code make the parses interleave. Reference: np.load of the same file.
+    import threading
+
+    x = RNG.normal(0, 1, (50, 3)).astype("float32")
+    path = tmp_path / "h.npy"
+    np.save(path, x)
+    ref = np.load(path)
+    errors: list[str] = []
+    wrong: list[int] = []
+
+    def opener() -> None:
+        for _ in range(1500):
+            junk: list = [_CyclicWithFinalizer() for _ in range(3)]
+            junk.append(junk)
+            del junk
+            try:
+                with open_recording(path, options={"sample_rate_hz": 100.0}) as rec:
+                    if not np.array_equal(rec.read(0, 50), ref):
+                        wrong.append(1)
+            except Exception as exc:
+                errors.append(f"{type(exc).__name__}: {exc}")
+
+    before = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)
+    try:
+        threads = [threading.Thread(target=opener) for _ in range(4)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+    finally:
+        sys.setswitchinterval(before)
+    assert errors == [] and wrong == [], errors[:3]
+
+
+def test_npy_header_parse_tried_again_after_the_spurious_ast_error(tmp_path, monkeypatch):
+    # Another library's thread may still use the AST constructor during a parse; the
+    # reader tries again (injected fault: the first parse raises CPython's message).
+    # Reference: np.load of the same file.
+    import numpy.lib.format as npformat
+
+    path = tmp_path / "r.npy"
+    np.save(path, _ints("int16", (40, 2)))
+    real = npformat.read_array_header_1_0
+    calls: list[int] = []
+
+    def flaky(fh, *args, **kwargs):
+        calls.append(1)
+        if len(calls) == 1:
+            fh.read(5)  # a partial read before the failure: the retry must start over
+            raise SystemError("AST constructor recursion depth mismatch (before=24, after=21)")
+        return real(fh, *args, **kwargs)
+
+    monkeypatch.setattr(npformat, "read_array_header_1_0", flaky)
+    with open_recording(path) as rec:
+        assert np.array_equal(rec.read(0, 40), np.load(path) / 32768.0)
+    assert len(calls) == 2
+
+    def always(fh, *args, **kwargs):  # injected fault: another SystemError is not retried
+        calls.append(1)
+        raise SystemError("something else")
+
+    monkeypatch.setattr(npformat, "read_array_header_1_0", always)
+    calls.clear()
+    with pytest.raises(CorruptInputError, match="NPY header is damaged .*something else"):
+        open_recording(path)
+    assert len(calls) == 1
+
+
 # ----------------------------------------------------------------------------- raw
 
 

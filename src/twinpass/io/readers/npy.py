@@ -18,6 +18,7 @@ claims is an error, or with ``"warn"`` ends at the last whole frame (with a warn
 
 from __future__ import annotations
 
+import threading
 from typing import Any, BinaryIO
 
 import numpy as np
@@ -33,6 +34,37 @@ from ._common import (
     truncated_mode,
 )
 from .base import ReaderSpec, RecordingInfo
+
+_HEADER_LOCK = threading.Lock()
+"""Held while numpy parses a header. numpy evaluates the header's dict with
+``ast.literal_eval``, and CPython 3.11's AST constructor keeps its recursion depth in state
+that all threads share: two threads parsing at once can fail with ``SystemError: AST
+constructor recursion depth mismatch`` (python/cpython#106905), which would make a sound file
+look damaged. The archive scan and the block reads open files on several threads."""
+_HEADER_ATTEMPTS = 3
+"""Parses tried when that error still comes (another library's thread using the AST meanwhile)."""
+
+
+def read_header(fh: BinaryIO, version: tuple[int, int]) -> tuple[tuple[int, ...], bool, np.dtype[Any]]:
+    """(shape, fortran_order, dtype) from the header after the magic string, as numpy reads it.
+
+    ``fh`` is positioned just after :func:`numpy.lib.format.read_magic`; it is left at the
+    first data byte. One parse at a time in this process (see :data:`_HEADER_LOCK`), and a
+    parse that fails with CPython's spurious recursion-depth ``SystemError`` is tried again.
+    """
+    start = fh.tell()
+    for attempt in range(_HEADER_ATTEMPTS):
+        try:
+            with _HEADER_LOCK:
+                if version == (1, 0):
+                    return npformat.read_array_header_1_0(fh)
+                # 2.0 and 3.0 share the layout; plain numeric dtypes keep 3.0 headers ASCII.
+                return npformat.read_array_header_2_0(fh)
+        except SystemError as exc:
+            if "recursion depth mismatch" not in str(exc) or attempt == _HEADER_ATTEMPTS - 1:
+                raise
+            fh.seek(start)
+    raise AssertionError("unreachable")  # pragma: no cover
 
 
 class NpyRecording(InterleavedRecording):
@@ -70,11 +102,7 @@ class NpyReader(FileReader):
         except ValueError as exc:
             raise UnsupportedFormatError(f"{path}: not an NPY file ({exc})", path=path) from None
         try:
-            if version == (1, 0):
-                shape, fortran, dtype = npformat.read_array_header_1_0(fh)
-            else:
-                # 2.0 and 3.0 share the layout; plain numeric dtypes keep 3.0 headers ASCII.
-                shape, fortran, dtype = npformat.read_array_header_2_0(fh)
+            shape, fortran, dtype = read_header(fh, version)
         except Exception as exc:  # numpy's parser leaks ValueError, SyntaxError, tokenize.TokenError...
             raise CorruptInputError(f"{path}: the NPY header is damaged ({exc})", path=path) from None
         offset = fh.tell()
