@@ -9,12 +9,16 @@ when a deployment runs (``config_block="NAME"``).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 from prefect.blocks.core import Block
 from pydantic import Field
 
-from .config import JobConfig, load_config, parse_config
+if TYPE_CHECKING:
+    from .config import JobConfig
+# The configuration module (and numpy through it) is imported by the methods that need it:
+# Prefect's server imports this module to register the block type, at every start of its
+# temporary server, and needs only the class (0.08-0.1 s of CPU saved there).
 
 
 class TwinpassJob(Block):
@@ -49,9 +53,13 @@ config = twinpass_job_block.to_job_config()
     @classmethod
     def from_file(cls, path: str | Path) -> "TwinpassJob":
         """Read and validate a configuration file into a block (not yet saved)."""
+        from .config import load_config
+
         cfg = load_config(path)
         return cls(config_toml=cfg.text, base_dir=str(cfg.base_dir))
 
     def to_job_config(self) -> JobConfig:
         """Validate the stored TOML and return the :class:`~twinpass.config.JobConfig`."""
+        from .config import parse_config
+
         return parse_config(self.config_toml, base_dir=self.base_dir, source=f"block {self._block_document_name or '<unsaved>'}")
