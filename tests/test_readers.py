@@ -545,6 +545,8 @@ def test_npy_headers_parsed_on_many_threads_at_once(tmp_path):
     # runs Python code make the parses interleave. Reference: np.load of the same file.
     import threading
 
+    from twinpass.io.readers import npy
+
     x = RNG.normal(0, 1, (50, 3)).astype("float32")
     path = tmp_path / "h.npy"
     np.save(path, x)
@@ -557,6 +559,7 @@ def test_npy_headers_parsed_on_many_threads_at_once(tmp_path):
             junk: list = [_CyclicWithFinalizer() for _ in range(3)]
             junk.append(junk)
             del junk
+            npy._parse_header.cache_clear()  # numpy parses the header at every open
             try:
                 with open_recording(path, options={"sample_rate_hz": 100.0}) as rec:
                     if not np.array_equal(rec.read(0, 50), ref):
@@ -583,8 +586,11 @@ def test_npy_header_parse_tried_again_after_the_spurious_ast_error(tmp_path, mon
     # Reference: np.load of the same file.
     import numpy.lib.format as npformat
 
+    from twinpass.io.readers import npy
+
     path = tmp_path / "r.npy"
     np.save(path, _ints("int16", (40, 2)))
+    npy._parse_header.cache_clear()  # parsed headers are kept by their bytes
     real = npformat.read_array_header_1_0
     calls: list[int] = []
 
@@ -605,10 +611,38 @@ def test_npy_header_parse_tried_again_after_the_spurious_ast_error(tmp_path, mon
         raise SystemError("something else")
 
     monkeypatch.setattr(npformat, "read_array_header_1_0", always)
+    npy._parse_header.cache_clear()
     calls.clear()
     with pytest.raises(CorruptInputError, match="NPY header is damaged .*something else"):
         open_recording(path)
     assert len(calls) == 1
+
+
+def test_npy_files_with_equal_headers_are_parsed_once(tmp_path, monkeypatch):
+    # Files of one archive mostly share their header (same shape and dtype); it is parsed
+    # once by its bytes, and each file still reads its own samples. A header differing in
+    # one byte (another length) is parsed anew. Reference: np.load of each file.
+    import numpy.lib.format as npformat
+
+    from twinpass.io.readers import npy
+
+    real = npformat.read_array_header_1_0
+    parses: list[int] = []
+
+    def counted(fh, *args, **kwargs):  # a spy: numpy's own parse, counted
+        parses.append(1)
+        return real(fh, *args, **kwargs)
+
+    monkeypatch.setattr(npformat, "read_array_header_1_0", counted)
+    npy._parse_header.cache_clear()
+    paths = []
+    for i in range(6):
+        paths.append(tmp_path / f"f{i}.npy")
+        np.save(paths[-1], RNG.normal(0, 1, (30 if i < 5 else 31, 2)).astype("float32"))
+    for path in paths + paths:
+        with open_recording(path) as rec:
+            assert np.array_equal(rec.read(0, rec.info.frames), np.load(path))
+    assert len(parses) == 2
 
 
 # ----------------------------------------------------------------------------- raw

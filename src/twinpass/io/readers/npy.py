@@ -18,6 +18,8 @@ claims is an error, or with ``"warn"`` ends at the last whole frame (with a warn
 
 from __future__ import annotations
 
+import functools
+import io
 import threading
 from typing import Any, BinaryIO
 
@@ -43,15 +45,41 @@ constructor recursion depth mismatch`` (python/cpython#106905), which would make
 look damaged. The archive scan and the block reads open files on several threads."""
 _HEADER_ATTEMPTS = 3
 """Parses tried when that error still comes (another library's thread using the AST meanwhile)."""
+_HEADER_BYTES_MAX = 1 << 16
+"""Longer headers are left to numpy to read and refuse (it allows 10,000 characters)."""
+_HEADERS_KEPT = 1024
+"""Parsed headers kept, by their bytes (files of one archive mostly share a few)."""
 
 
 def read_header(fh: BinaryIO, version: tuple[int, int]) -> tuple[tuple[int, ...], bool, np.dtype[Any]]:
     """(shape, fortran_order, dtype) from the header after the magic string, as numpy reads it.
 
     ``fh`` is positioned just after :func:`numpy.lib.format.read_magic`; it is left at the
-    first data byte. One parse at a time in this process (see :data:`_HEADER_LOCK`), and a
-    parse that fails with CPython's spurious recursion-depth ``SystemError`` is tried again.
+    first data byte. The header's bytes are read first: one parsed before (the same length,
+    shape and dtype: every file of an archive of equal files, every block read of a file)
+    is not parsed again. numpy parses the others, one at a time in this process (see
+    :data:`_HEADER_LOCK`).
     """
+    start = fh.tell()
+    size_bytes = 2 if version == (1, 0) else 4  # the header length: uint16 in 1.0, uint32 after
+    length = fh.read(size_bytes)
+    if len(length) == size_bytes and (n := int.from_bytes(length, "little")) <= _HEADER_BYTES_MAX:
+        header = fh.read(n)
+        if len(header) == n:
+            return _parse_header(version, length + header)
+    fh.seek(start)  # short or oversized: numpy reads it again and says what is wrong
+    return _parse_header_from(fh, version)
+
+
+@functools.lru_cache(maxsize=_HEADERS_KEPT)
+def _parse_header(version: tuple[int, int], blob: bytes) -> tuple[tuple[int, ...], bool, np.dtype[Any]]:
+    """numpy's parse of a header's bytes (length field included); kept for the next file."""
+    return _parse_header_from(io.BytesIO(blob), version)
+
+
+def _parse_header_from(fh: BinaryIO, version: tuple[int, int]) -> tuple[tuple[int, ...], bool, np.dtype[Any]]:
+    """numpy's parse of the header at ``fh``, under :data:`_HEADER_LOCK`; tried again after
+    CPython's spurious recursion-depth ``SystemError``."""
     start = fh.tell()
     for attempt in range(_HEADER_ATTEMPTS):
         try:
