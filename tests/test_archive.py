@@ -348,6 +348,29 @@ def test_design_digest_is_stable_and_sensitive():
     assert a != design_digest(d, "odd", "auto", "0.2.0")
 
 
+def test_design_digest_kept_per_extra_equals_a_fresh_computation():
+    # The digest is kept on the design per `extra`; each value is still the SHA-256 of the
+    # canonical JSON payload (hashlib and json of the standard library computed here), so
+    # stores written before keep matching.
+    import hashlib
+    import json
+
+    from scipy import signal
+
+    sos = signal.butter(4, 10.0, fs=100.0, output="sos")
+    d = Design(ResponseSpec(kind="lowpass"), "butterworth", 100.0, 4, sos, None, 120, 1e-9)
+
+    def fresh(extra):
+        payload = {"family": "butterworth", "sample_rate_hz": 100.0, "tolerance": 1e-9, "effective_length": 120,
+                   "sos": sos.tolist(), "extra": extra}
+        return hashlib.sha256(json.dumps(payload, sort_keys=True, separators=(",", ":")).encode()).hexdigest()
+
+    one, two = {"edge": "odd", "version": "1"}, {"version": "1", "edge": "even"}
+    for _ in range(2):
+        assert d.digest(one) == fresh(one) and d.digest(two) == fresh(two) and d.digest() == fresh({})
+    assert d.digest({"version": "1", "edge": "odd"}) == fresh(one)  # key order does not matter
+
+
 # -- discovery into a plan -----------------------------------------------------------
 
 

@@ -107,7 +107,18 @@ class Design:
         return {"taps": np.asarray(self.taps, dtype=float).tolist()}
 
     def digest(self, extra: dict[str, Any] | None = None) -> str:
-        """SHA-256 hex digest of coefficients, tolerance and ``extra`` (edge handling, version)."""
+        """SHA-256 hex digest of coefficients, tolerance and ``extra`` (edge handling, version).
+
+        Kept per ``extra`` on the design (every output file records it; a long FIR's
+        coefficients take a while to serialise).
+        """
+        key = json.dumps(extra or {}, sort_keys=True, separators=(",", ":"))
+        kept: dict[str, str] = self.__dict__.setdefault("_digests", {})  # a frozen dataclass's own cache
+        if key not in kept:
+            kept[key] = self._digest(extra)
+        return kept[key]
+
+    def _digest(self, extra: dict[str, Any] | None) -> str:
         payload = {
             "family": self.family,
             "sample_rate_hz": float(self.sample_rate_hz),
