@@ -877,18 +877,20 @@ class BlockErrorLog:
     ----------
     segment_id : str
         The segment named in the cancellation line ("" for none).
-    logger : logging.Logger or logging.LoggerAdapter, optional
+    logger : logging.Logger or logging.LoggerAdapter or None, optional
         Where the lines go (default the engine's logger; a flow task passes its run logger).
+        None logs nothing: the caller logs the blocks another way (see ``log_blocks`` of
+        :func:`run_segment`).
     """
 
-    def __init__(self, segment_id: str, logger: logging.Logger | logging.LoggerAdapter[Any] = log) -> None:
+    def __init__(self, segment_id: str, logger: logging.Logger | logging.LoggerAdapter[Any] | None = log) -> None:
         self.segment_id = segment_id
         self.log = logger
         self.cancelled = 0
 
     def block(self, res: BlockResult, *, attempts: bool = True) -> None:
         """Log ``res`` if it failed (naming its attempts with ``attempts``); count it if it was cancelled."""
-        if res.status != ERROR:
+        if res.status != ERROR or self.log is None:
             return
         first = (res.error or "").splitlines()[0] if res.error else ""
         if was_cancelled(first):
@@ -901,7 +903,7 @@ class BlockErrorLog:
 
     def close(self) -> None:
         """Log the cancelled blocks counted so far, in one line (nothing if none)."""
-        if self.cancelled:
+        if self.cancelled and self.log is not None:
             where = f"segment {self.segment_id}: " if self.segment_id else ""
             self.log.warning("%s%d block(s) cancelled before they finished (the run was stopped); they are "
                              "recorded as not done and the next run does them", where, self.cancelled)
@@ -936,14 +938,13 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
     futures = [f for f, _ in submitted]
     by_key = {f.key: j for f, j in submitted}
     done = 0
-    errors = BlockErrorLog(segment_id) if log_blocks else None
+    errors = BlockErrorLog(segment_id, log if log_blocks else None)
 
     def recorded(res: BlockResult) -> None:
         nonlocal done
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        if errors is not None:
-            errors.block(res)
+        errors.block(res)
         if on_block is not None:
             on_block(done, total, res)
 
@@ -964,8 +965,7 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
             recorder.flush()
         raise
     finally:
-        if errors is not None:
-            errors.close()
+        errors.close()
     recorder.flush()
     return run_count
 

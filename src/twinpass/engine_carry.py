@@ -879,15 +879,14 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     total = len(blocks)
     run_count: dict[str, int] = {}
     done = 0
-    block_errors = BlockErrorLog(seg.segment_id, log) if log_blocks else None
+    block_errors = BlockErrorLog(seg.segment_id, log if log_blocks else None)
 
     def report(res: BlockResult) -> None:
         nonlocal done
         res = record_result(store, res)
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        if block_errors is not None:
-            block_errors.block(res, attempts=False)
+        block_errors.block(res, attempts=False)
         if on_block is not None:
             on_block(done, total, res)
 
@@ -901,8 +900,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             msg = f"{reason} (carry mode: finished steps are kept)"
         for p in blocks:
             report(BlockResult(p.array_name or "", p.block_index, ERROR, error=msg))
-        if block_errors is not None:
-            block_errors.close()
+        block_errors.close()
         return run_count
     # Step 5 (parallel): outputs of the blocks to do.
     every = cfg.checks.every
@@ -920,8 +918,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
             p = args[0].piece
             res = BlockResult(p.array_name, p.block_index, ERROR, error=res)
         report(res)
-    if block_errors is not None:
-        block_errors.close()
+    block_errors.close()
     log.info("segment %s: step 5 wrote %d blocks, at %.2f s", seg.segment_id, total, time.perf_counter() - t0)
     return run_count
 
