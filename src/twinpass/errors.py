@@ -84,6 +84,11 @@ class RunStoppedError(BlockFailedError):
     """The run was stopped (Ctrl-C, a run no flow run took over) before these blocks finished:
     they are recorded as not done and the segment is not retried; rerun to finish them."""
 
+    @classmethod
+    def before_start(cls, segment_id: str) -> "RunStoppedError":
+        """For a segment whose task came after the run began to stop: it must not start."""
+        return cls(f"segment {segment_id}: the run was stopped before this segment started; rerun to finish it")
+
 
 class InjectedFault(TwinpassError):
     """Raised by the fault-injection switch (tests only)."""

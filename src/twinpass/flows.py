@@ -198,13 +198,14 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     """
     logger = get_run_logger()
     cfg = prep.cfg
-    client = _CLIENTS.get(client_key)
-    if client is None:  # the flow body has closed the run's cluster: the run is being stopped
-        raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before this segment started; "
-                              "rerun to finish it")
     mark = (client_key, seg.segment_id)
-    with _CLIENTS_LOCK:
-        retry = mark in _PREPARED
+    with _CLIENTS_LOCK:  # the run's cluster and head start, both or neither: the flow body drops them together
+        client, head, retry = _CLIENTS.get(client_key), _HEADS.get(client_key), mark in _PREPARED
+    if client is None:  # the flow body has closed the run's cluster: the run is being stopped
+        raise RunStoppedError.before_start(seg.segment_id)
+    # Taken first thing: a driver a stopped head start gave up is refused (RunStoppedError),
+    # so that the segment does not start again on a cluster being closed.
+    early = head.take_segment(seg.segment_id) if head is not None else None
     if retry:
         seg = _as_resume(seg)
         logger.info("segment %s: retry; running only the blocks not done yet", seg.segment_id)
@@ -214,9 +215,6 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     artifact_id = create_progress_artifact(0.0, description=f"blocks of segment {seg.segment_id}")
     last = [time.monotonic()]
     block_errors = BlockErrorLog(seg.segment_id, logger)
-    with _CLIENTS_LOCK:
-        head = _HEADS.get(client_key)
-    early = head.take_segment(seg.segment_id) if head is not None else None
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
 
     def on_block(done: int, total: int, res: Any) -> None:
@@ -237,6 +235,11 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
             outcomes = early.follow(on_block)
         else:
             outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block, log_blocks=False)
+    except Exception as exc:
+        if getattr(client, "status", "running") in ("closing", "closed"):  # the flow body stopped the run
+            raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped while this segment ran "
+                                  f"({type(exc).__name__}); finished blocks are kept; rerun to finish it") from exc
+        raise
     finally:
         block_errors.close()
     update_progress_artifact(artifact_id, 100.0)

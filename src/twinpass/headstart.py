@@ -40,6 +40,7 @@ from typing import Any, Callable, Iterator
 
 from .config import JobConfig
 from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
+from .errors import RunStoppedError
 from .io.store import OutputStore
 from .job import Prepared, begin_run, now_iso, prepare
 
@@ -159,6 +160,7 @@ class HeadStart:
     _drivers: list[EarlySegment] = field(default_factory=list)
     _client: CancellableClient | None = None
     _lock: contextlib.ExitStack = field(default_factory=contextlib.ExitStack)
+    _stopped: bool = False
 
     @classmethod
     def begin(cls, cfg: JobConfig, *, force: bool = False, scheduler: str | None = None,
@@ -202,8 +204,18 @@ class HeadStart:
                 and int(workers or cfg.engine.workers) == self.workers)
 
     def take_segment(self, segment_id: str) -> EarlySegment | None:
-        """The segment's driver, once (None for a segment not started here, or taken already)."""
-        return self.segments.pop(segment_id, None)
+        """The segment's driver, once (None for a segment not started here, or taken already).
+
+        Raises
+        ------
+        RunStoppedError
+            The head start has been stopped (:meth:`close`) and this task did not take the
+            driver before: the segment must not start again on the closing cluster.
+        """
+        driver = self.segments.pop(segment_id, None)
+        if driver is None and self._stopped:
+            raise RunStoppedError.before_start(segment_id)
+        return driver
 
     @contextlib.contextmanager
     def held(self) -> Iterator[HeadStart]:
@@ -220,9 +232,10 @@ class HeadStart:
         may still be submitting), so their drivers record them as not done and return;
         then the cluster closes. After a normal run every driver has been followed to its
         end, and this only closes the cluster. The blocks of drivers no task took are
-        logged here (:meth:`EarlySegment.log_unfollowed`), and no task can take those
-        drivers afterwards.
+        logged here (:meth:`EarlySegment.log_unfollowed`); a task that comes for one of
+        them afterwards is refused (:meth:`take_segment`).
         """
+        self._stopped = True  # before the drivers are taken away, so that a late task sees it
         unfollowed = []
         with contextlib.suppress(KeyError):
             while True:  # one at a time: a task taking a segment meanwhile gets it whole
