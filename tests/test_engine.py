@@ -382,3 +382,19 @@ def test_blocks_set_by_hand_beyond_the_memory_budget_fail_their_segment_with_a_r
     g = open_store(tmp_path / "out.zarr")
     for o in failed:  # nothing of the refused segment is marked complete
         assert o.array_name not in g or g[o.array_name].attrs.get("complete") is not True
+
+
+def test_block_error_lines_name_attempts_only_where_counted(caplog):
+    # A block task counts its attempts; a block whose task was lost, or that never ran
+    # because an earlier step failed, has none counted, and its line claims none.
+    from twinpass.engine import ERROR, BlockErrorLog, BlockResult
+
+    errors = BlockErrorLog("north-0", logging.getLogger("twinpass.test-block-errors"))
+    with caplog.at_level(logging.ERROR, logger="twinpass.test-block-errors"):
+        errors.block(BlockResult("a", 3, ERROR, error="OSError: disk full\nmore", attempts=3))
+        errors.block(BlockResult("a", 4, ERROR, error="worker lost"))
+        errors.close()
+    assert [r.getMessage() for r in caplog.records] == [
+        "block 3 of a failed after 3 attempt(s): OSError: disk full",
+        "block 4 of a failed: worker lost",
+    ]

@@ -204,7 +204,7 @@ def _clean_and_faulty(tmp_path: Path, client, seed: int) -> tuple[Any, list[byte
     return files, _bytes(clean_store, files.arrays), faulty_dir
 
 
-def test_failures_resume_to_identical_bytes(tmp_path, client, monkeypatch):
+def test_failures_resume_to_identical_bytes(tmp_path, client, monkeypatch, caplog):
     files, clean, faulty_dir = _clean_and_faulty(tmp_path, client, seed=5)
 
     # A block that always raises: its state cannot be carried, so no block of the segment
@@ -213,6 +213,9 @@ def test_failures_resume_to_identical_bytes(tmp_path, client, monkeypatch):
     outcomes, store = _run(faulty_dir, client)
     assert [o.status for o in outcomes] == ["failed"] * 3
     assert "could not be carried" in outcomes[0].errors[0]
+    # Those blocks never ran, so their lines name no attempts.
+    lines = [r.getMessage() for r in caplog.records if r.name == "twinpass.engine.carry" and r.levelname == "ERROR"]
+    assert lines and all(" failed: carry mode: the filter state could not be carried" in m for m in lines), lines
     carry_groups = [d for d in (store / "_twinpass" / "carry").iterdir() if d.is_dir()]
     assert len(carry_groups) == 1
     record = zarr.open_group(str(carry_groups[0]), mode="r")

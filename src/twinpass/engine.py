@@ -187,7 +187,9 @@ class BlockResult:
     seams: np.ndarray | None = None
     """(4, seam_samples, channels): own first, own last, beyond left, beyond right (NaN where none)."""
     error: str | None = None
-    attempts: int = 1
+    attempts: int = 0
+    """Attempts the block's task made (0: not counted: the task was lost, or the block never
+    ran because an earlier step failed)."""
     seconds: float = 0.0
     window_samples: int = 0
 
@@ -888,14 +890,14 @@ class BlockErrorLog:
         self.log = logger
         self.cancelled = 0
 
-    def block(self, res: BlockResult, *, attempts: bool = True) -> None:
-        """Log ``res`` if it failed (naming its attempts with ``attempts``); count it if it was cancelled."""
+    def block(self, res: BlockResult) -> None:
+        """Log ``res`` if it failed (naming its attempts where counted); count it if it was cancelled."""
         if res.status != ERROR or self.log is None:
             return
         first = (res.error or "").splitlines()[0] if res.error else ""
         if was_cancelled(first):
             self.cancelled += 1
-        elif attempts:
+        elif res.attempts:
             self.log.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,
                            res.attempts, first)
         else:

@@ -886,7 +886,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
         res = record_result(store, res)
         run_count[res.array_name] = run_count.get(res.array_name, 0) + 1
         done += 1
-        block_errors.block(res, attempts=False)
+        block_errors.block(res)
         if on_block is not None:
             on_block(done, total, res)
 
