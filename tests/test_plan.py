@@ -65,10 +65,12 @@ def chain(names_frames: list[tuple[str, int]], *, start_s: float = 0.0, stream: 
     return out
 
 
-def records_for(segments: list[Segment], *, complete: bool = True) -> dict[str, FileRecord]:
-    """Records as a finished run over ``segments`` would leave them."""
+def records_for(segments: list[Segment], *, complete: bool = True, times: bool = True) -> dict[str, FileRecord]:
+    """Records as a finished run over ``segments`` would leave them (``times`` False: as stores
+    written before records kept their files' start times)."""
     return {
-        f.relpath: FileRecord(f.relpath, dict(f.fingerprint or {}), DIGEST, complete, f.frames, seg.id)
+        f.relpath: FileRecord(f.relpath, dict(f.fingerprint or {}), DIGEST, complete, f.frames, seg.id,
+                              start_time=f.start_time.isoformat() if times and f.start_time else None)
         for seg in segments
         for f in seg.files
     }
@@ -233,12 +235,13 @@ def test_first_run_new_then_unchanged():
     assert plan2.totals()["samples"] == 0 and plan2.segments_with_work() == ()
 
 
-def test_append_recomputes_end_of_previous_file():
+@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
+def test_append_recomputes_end_of_previous_file(times):
     # DESIGN: appending tomorrow's file recomputes the end of today's (edge-extended before)
     old = chain([("day1", 1000), ("day2", 1000)])
     new = chain([("day1", 1000), ("day2", 1000), ("day3", 800)])
     old_segs, _ = build_segments(old)
-    plan, new_segs = plan_for(new, records_for(old_segs))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
     by = {f.relpath: f for f in plan.files}
     assert by["day1"].status == "unchanged" and by["day1"].redo is None
     assert by["day2"].status == "neighbour" and by["day2"].redo == ((1000 - HALO, 1000),)
@@ -282,11 +285,12 @@ def test_change_reaches_past_a_file_shorter_than_the_halo():
     assert_plan_covers(plan, segs, new_segs, old_data, new_data)
 
 
-def test_prepended_file_touches_only_the_next_start():
+@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
+def test_prepended_file_touches_only_the_next_start(times):
     old = chain([("b", 1000), ("c", 1000)], start_s=10.0)
     new = chain([("a", 1000), ("b", 1000), ("c", 1000)])
     old_segs, _ = build_segments(old)
-    plan, new_segs = plan_for(new, records_for(old_segs))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
     by = {f.relpath: f for f in plan.files}
     assert (by["a"].status, by["b"].status, by["c"].status) == ("new", "neighbour", "unchanged")
     assert by["b"].redo == ((0, HALO),)
@@ -294,11 +298,12 @@ def test_prepended_file_touches_only_the_next_start():
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
 
-def test_removed_middle_file_changes_ends_of_both_neighbours():
+@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
+def test_removed_middle_file_changes_ends_of_both_neighbours(times):
     old = chain([("a", 1000), ("b", 500), ("c", 1000)])
     old_segs, _ = build_segments(old)
     new = [old[0], old[2]]
-    plan, new_segs = plan_for(new, records_for(old_segs))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
     assert [s.relpaths for s in new_segs] == [("a",), ("c",)]
     by = {f.relpath: f for f in plan.all_files()}
     assert by["b"].status == "removed" and by["b"] in plan.removed
@@ -309,27 +314,50 @@ def test_removed_middle_file_changes_ends_of_both_neighbours():
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
 
-def test_removed_last_file_changes_end_of_previous():
+@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
+def test_removed_last_file_changes_end_of_previous(times):
     old = chain([("a", 1000), ("b", 500)])
     old_segs, _ = build_segments(old)
-    plan, new_segs = plan_for([old[0]], records_for(old_segs))
+    plan, new_segs = plan_for([old[0]], records_for(old_segs, times=times))
     assert plan.file("a").redo == ((1000 - HALO, 1000),)
     assert plan.file("b").status == "removed"
     data = signals(old)
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
 
-def test_files_joined_by_a_corrected_start_time():
+@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
+def test_files_joined_by_a_corrected_start_time(times):
     # same contents; a corrected start time closes the gap between a and c
     old = [entry("a", 0.0, 1000), entry("c", 15.0, 1000)]
     old_segs, _ = build_segments(old)
     new = [old[0], entry("c", 10.0, 1000)]
-    plan, new_segs = plan_for(new, records_for(old_segs))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
     assert [s.relpaths for s in new_segs] == [("a", "c")]
     assert plan.file("a").redo == ((1000 - HALO, 1000),) and plan.file("c").redo == ((0, HALO),)
     assert "a and c are now joined" in plan.file("c").reason
     data = signals(old)
     assert_plan_covers(plan, old_segs, new_segs, data, data)
+
+
+def test_start_times_drifting_along_a_segment_leave_an_unchanged_archive_unchanged():
+    # Each file starts 0.4 sample after the previous one's end: joined (within half a sample,
+    # common practice), so the drift adds up along the segment, while its offsets are the
+    # sums of the frames. Nothing changed, so nothing is planned; appending a file then
+    # recomputes only the end of the last one (reference: scipy.signal.filtfilt, as above).
+    files, t = [], 0.0
+    for name in ("f0", "f1", "f2", "f3", "f4"):
+        files.append(entry(name, t, 1000))
+        t += (1000 + 0.4) / FS
+    segs, _ = build_segments(files)
+    assert [s.relpaths for s in segs] == [("f0", "f1", "f2", "f3", "f4")]
+    plan, _ = plan_for(files, records_for(segs))
+    assert [(f.status, f.redo) for f in plan.files] == [("unchanged", None)] * 5, [f.reason for f in plan.files]
+    new = files + [entry("f5", t, 700)]
+    plan, new_segs = plan_for(new, records_for(segs))
+    assert [f.status for f in plan.files] == ["unchanged"] * 4 + ["neighbour", "new"]
+    assert plan.file("f4").redo == ((1000 - HALO, 1000),)
+    data = signals(new)
+    assert_plan_covers(plan, segs, new_segs, data, data)
 
 
 def test_incomplete_file_next_to_a_change_is_redone_whole():

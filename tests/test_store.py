@@ -446,7 +446,10 @@ def test_invalidate_and_set_complete(store: OutputStore, tmp_path: Path):
     store.set_complete(NAME, True, {"worst_passband_db": np.float64(0.1), "nan": np.nan})
     attrs = _strict_json((tmp_path / "out.zarr" / NAME / "zarr.json").read_text())["attributes"]
     assert attrs["complete"] is True and attrs["checks"] == {"worst_passband_db": 0.1, "nan": None}
-    assert store.file_records()[SOURCE].complete
+    rec = store.file_records()[SOURCE]
+    assert rec.complete and rec.segment is not None
+    # the planner orders a segment's old members by these (see test_plan)
+    assert dt.datetime.fromisoformat(rec.start_time) == dt.datetime(2026, 3, 1, tzinfo=dt.timezone.utc)
 
     store.invalidate_blocks(NAME, [1])
     t = store.read_block_table(NAME)

@@ -28,12 +28,14 @@ removed from the middle, so both neighbours now end a segment) invalidates
 ``[x - halo, x + halo)``.
 
 Membership changes are found from the records alone: each record names its segment
-(``FileRecord.segment``, whose id carries the first file's start time) and its frame
-count, so a file's old position in its old segment is ``(start - segment start) * fs``
-and its old segment's length is the sum of its members' frames (a file alone in its old
-segment was both first and last; a file whose start time moved lands at an impossible
-position, so both its ends count as changed). Records without a segment name are taken
-as unchanged in membership.
+(``FileRecord.segment``) and the start time its file had then, so a file was first (last)
+of its old segment when no other member started before (after) it (a file alone in its old
+segment was both first and last). Records without start times (stores written before they
+were kept) place a file from its present start time instead: its old position is
+``(start - segment start) * fs``, with the segment start from the segment id, and its old
+segment's length is the sum of its members' frames (a file whose start time moved lands at
+an impossible position, so both its ends count as changed). Records without a segment name
+are taken as unchanged in membership.
 
 ``redo`` of a file is ``None`` (nothing to compute), ``"all"``, or a tuple of
 ``(start, stop)`` sample spans within the file, sorted and merged. ``resume`` is true when
@@ -260,15 +262,22 @@ def _merge(spans: Iterable[Span]) -> tuple[Span, ...]:
     return tuple(merge_runs(spans))
 
 
+def _parse_time(text: str | None) -> _dt.datetime | None:
+    """An ISO 8601 time (UTC when it names no zone); ``None`` when absent or unreadable."""
+    if not text:
+        return None
+    try:
+        t = _dt.datetime.fromisoformat(text)
+    except ValueError:
+        return None
+    return t if t.tzinfo is not None else t.replace(tzinfo=_dt.timezone.utc)
+
+
 def _segment_start(segment_id: str | None) -> _dt.datetime | None:
     """Start time encoded in a segment id ``stream@ISO``; ``None`` when there is none."""
     if not segment_id or "@" not in segment_id:
         return None
-    try:
-        t = _dt.datetime.fromisoformat(segment_id.rpartition("@")[2])
-    except ValueError:
-        return None
-    return t if t.tzinfo is not None else t.replace(tzinfo=_dt.timezone.utc)
+    return _parse_time(segment_id.rpartition("@")[2])
 
 
 def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool) -> tuple[str, str]:
@@ -333,8 +342,16 @@ class _SegmentPlanner:
         f, rec = self.seg.files[k], self.recs[k]
         assert rec is not None and rec.segment is not None and f.start_time is not None
         members = self.members.get(rec.segment, [rec])
+        if len(members) == 1:
+            return True, True
+        starts = [_parse_time(r.start_time) for r in members]
+        if all(t is not None for t in starts):
+            # By the members' own start times: joins allow half a sample each, so times
+            # drift from the sum of the frames along a long segment, but their order does not.
+            order = sorted(zip(starts, (r.source for r in members)))
+            return order[0][1] == rec.source, order[-1][1] == rec.source
         t0 = _segment_start(rec.segment)
-        if t0 is None or len(members) == 1:
+        if t0 is None:
             return True, True
         fs = self.seg.sample_rate_hz
         # a start time that moved gives an impossible position: both ends count as changed

@@ -147,3 +147,6 @@ class FileRecord:
     segment: str | None = None
     array_name: str | None = None
     """Path of the output array inside the store."""
+    start_time: str | None = None
+    """The file's start time when it was filtered (ISO 8601, as the array's ``start_time``
+    attribute holds it); None when unknown."""

@@ -1488,6 +1488,7 @@ class OutputStore:
                 frames=int(arr.shape[0]),
                 segment=None if a.get("segment") is None else str(a["segment"]),
                 array_name=name,
+                start_time=None if a.get("start_time") is None else str(a["start_time"]),
             )
         return out
 
