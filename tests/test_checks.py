@@ -445,3 +445,29 @@ def test_summarise_is_json_safe_and_takes_the_worst() -> None:
     assert s["seam_mismatch"] is None
     stacked = checks.summarise(np.stack([a, b]))  # a (blocks, channels, figures) array
     assert stacked["passband_dev_db"] == pytest.approx(-0.4)
+
+
+def test_seam_limit_widens_to_the_rounding_of_a_design_that_cannot_meet_the_tolerance() -> None:
+    # A 2nd-order high-pass at 2e-6 of the sample rate (pole radius 1 - 7.1e-6): float64
+    # rounding alone makes blocks and the whole signal differ by about 2.5e-9 of full scale
+    # (measured against scipy.signal.sosfiltfilt; see test_effective for the estimate's
+    # calibration against extended precision), so a 1e-9 tolerance cannot be held and the
+    # seam limit follows the rounding estimate instead; the report says so.
+    from twinpass.core.design import design_filter
+    from twinpass.core.effective import rounding_estimate
+    from twinpass.core.types import ResponseSpec
+
+    design = design_filter(ResponseSpec(kind="highpass", family="butterworth", order=2, cutoff_hz=(0.002,)),
+                           1000.0, tolerance=TOL)
+    estimate = rounding_estimate(sos=design.sos)
+    assert estimate > 10 * TOL and design.report["rounding_estimate"] == pytest.approx(estimate)
+    assert "Caution: float64 rounding" in design.report["statement"]
+    fig = np.full((1, len(checks.FIGURES)), np.nan)
+    fig[:, FIGURE_INDEX["seam_mismatch"]] = checks.SEAM_FACTOR * TOL * 2  # beyond the tolerance's limit
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+    fig[:, FIGURE_INDEX["seam_mismatch"]] = checks.SEAM_FACTOR * estimate * 1.01
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+    # An ordinary design keeps the tolerance's limit and no caution.
+    ordinary = bandpass_elliptic()
+    assert rounding_estimate(sos=ordinary.sos) < TOL / 100
+    assert "Caution" not in design_filter(ordinary.spec, ordinary.sample_rate_hz, tolerance=TOL).report["statement"]

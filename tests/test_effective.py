@@ -149,3 +149,38 @@ def test_argument_errors() -> None:
         effective_length(sos=sos, tolerance=0.0)
     with pytest.raises(DesignError, match="shape"):
         effective_length(sos=np.ones((2, 5)))
+
+
+def _two_pass(sos: np.ndarray, x: np.ndarray, dtype: type) -> np.ndarray:
+    """Forward-backward filtering in ``dtype`` from steady-state initial conditions
+    (scipy.signal.sosfilt_zi scaled by the first sample, as scipy.signal.sosfiltfilt does)."""
+    s, xd = sos.astype(dtype), x.astype(dtype)
+    zi = signal.sosfilt_zi(sos).astype(dtype)
+    y, _ = signal.sosfilt(s, xd, zi=zi * xd[0])
+    y, _ = signal.sosfilt(s, y[::-1], zi=zi * y[-1])
+    return y[::-1]
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).eps > 1e-18, reason="needs an extended-precision long double")
+@pytest.mark.parametrize("name, sos", [
+    ("Butterworth high-pass, 1 - r = 8.9e-5", signal.butter(2, 4e-5, "highpass", output="sos")),
+    ("elliptic high-pass, 1 - r = 8.0e-5", signal.ellip(4, 0.5, 40, 2e-4, "highpass", output="sos")),
+    ("elliptic band-pass, 1 - r = 3.1e-3", signal.ellip(4, 0.5, 30, [0.01, 0.3], "bandpass", output="sos")),
+])
+def test_rounding_estimate_bounds_float64_against_extended_precision(name: str, sos: np.ndarray) -> None:
+    # Reference: the same two-pass filtering by scipy.signal.sosfilt in np.longdouble (x86-64
+    # extended precision, 11 more bits than float64), on a signal as long as the halo plus
+    # twice its settling. The largest float64 difference must stay below the estimate and,
+    # where the estimate is above its floor, within 100 times of it (an estimate, not a
+    # loose bound).
+    from twinpass.core.effective import ROUNDING_FLOOR, rounding_estimate
+
+    n = max(3 * effective_length(sos=sos, tolerance=1e-9), 200_000)
+    rng = np.random.default_rng(0)
+    t = np.arange(n)
+    x = 0.3 * rng.standard_normal(n) + 0.3 * np.sin(t / 50.0) + 0.2 * (t > n // 2)
+    err = np.max(np.abs(_two_pass(sos, x, np.float64) - _two_pass(sos, x, np.longdouble))) / np.max(np.abs(x))
+    estimate = rounding_estimate(sos=sos)
+    assert err < estimate, (name, err, estimate)
+    if estimate > ROUNDING_FLOOR * np.finfo(np.float64).eps:
+        assert err > estimate / 100, (name, err, estimate)

@@ -95,6 +95,7 @@ from scipy import ndimage, signal
 
 from twinpass.core.loops import channel_stats, segment_rows, spectra_sums
 from twinpass.core.design import HALF_POWER_DB, overall_response
+from twinpass.core.effective import rounding_estimate
 from twinpass.core.types import Design
 from twinpass.errors import KernelError, TwinpassError
 
@@ -644,6 +645,15 @@ def _any_above(values: np.ndarray, limit: float) -> bool:
     return bool(np.any(v > limit))
 
 
+def seam_scale(design: Design, tolerance: float) -> float:
+    """The relative agreement two filterings of one signal can reach: the larger of the
+    tolerance and the design's float64 rounding estimate (from its report when there)."""
+    rounding = design.report.get("rounding_estimate")
+    if rounding is None:
+        rounding = rounding_estimate(sos=design.sos, taps=design.taps)
+    return max(float(tolerance), float(rounding))
+
+
 def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: float) -> int:
     """Status of one block from its figures: :data:`PASS`, :data:`WARN` or :data:`FAIL`.
 
@@ -656,7 +666,9 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
     cfg : ChecksConfig
         Thresholds.
     tolerance : float
-        Relative blockwise tolerance (the seam limit is ``SEAM_FACTOR * tolerance``).
+        Relative blockwise tolerance (the seam limit is ``SEAM_FACTOR`` times the larger of
+        it and the design's float64 rounding estimate,
+        :func:`~twinpass.core.effective.rounding_estimate`).
 
     Returns
     -------
@@ -673,7 +685,9 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
         * fewer than ``COHERENT_FRACTION_MIN`` of at least ``MIN_CANDIDATE_BINS`` passband
           bins with input energy coherent: fail (the output is not a linear function of
           the input);
-        * ``seam_mismatch > SEAM_FACTOR * tolerance``: fail.
+        * ``seam_mismatch > SEAM_FACTOR * max(tolerance, rounding estimate)``: fail (a
+          design whose rounding exceeds the tolerance cannot agree more closely; its report
+          says so).
     """
     status = PASS
     if _any_above(_column(figures, "nonfinite_in"), 0) or _any_above(_column(figures, "nonfinite_out"), 0):
@@ -702,7 +716,7 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
         lost = (bins >= MIN_CANDIDATE_BINS) & (coherent < COHERENT_FRACTION_MIN * bins)
     if np.any(lost):
         return FAIL
-    if _any_above(_column(figures, "seam_mismatch"), SEAM_FACTOR * float(tolerance)):
+    if _any_above(_column(figures, "seam_mismatch"), SEAM_FACTOR * seam_scale(design, tolerance)):
         return FAIL
     return status
 

@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 from scipy import optimize, signal
 
-from twinpass.core.effective import dominant_pole_radius, effective_length
+from twinpass.core.effective import dominant_pole_radius, effective_length, rounding_estimate
 from twinpass.core.types import FAMILIES, KINDS, Design, ResponseSpec
 from twinpass.errors import DesignError, SpecError
 
@@ -1051,8 +1051,9 @@ def response_report(design: Design) -> dict[str, Any]:
     ``overall_minus3db_hz`` / ``overall_minus6db_hz`` (-3.0103 / -6.0206 dB crossings, Hz;
     the overall -6.0206 dB points are the per-pass -3.0103 dB points), ``notch_width_hz`` (notch: achieved overall -3 dB width),
     ``max_pole_radius`` (IIR, else ``None``), ``cost_per_sample``,
-    ``effective_length_samples``, ``effective_length_seconds``, ``tolerance`` and
-    ``statement``.
+    ``effective_length_samples``, ``effective_length_seconds``, ``tolerance``,
+    ``rounding_estimate`` (see :func:`~twinpass.core.effective.rounding_estimate`) and
+    ``statement`` (with a caution when the rounding estimate exceeds the tolerance).
     """
     spec = design.spec
     fs = float(design.sample_rate_hz)
@@ -1077,6 +1078,18 @@ def response_report(design: Design) -> dict[str, Any]:
         attenuation_margin = _num(a - float(spec.stopband_attenuation_db))
     halo = int(design.effective_length)
     seconds = halo / fs
+    rounding = rounding_estimate(sos=sos, taps=taps)
+    statement = (
+        "The overall phase is zero (forward-backward filtering). The filter is non-causal: "
+        f"a transient appears up to {halo} samples ({seconds:.6g} s) before it occurs, and "
+        f"its effect lasts as long after it (to a relative tolerance of {design.tolerance:g})."
+    )
+    if rounding > design.tolerance:
+        statement += (
+            f" Caution: float64 rounding in this design is estimated at {rounding:.2g} of full scale, "
+            f"above the tolerance: blocks agree with filtering the whole signal at once only to about "
+            "that. Raise the cutoff relative to the sample rate (decimate first), or raise the tolerance."
+        )
     report: dict[str, Any] = {
         "kind": spec.kind,
         "family": design.family,
@@ -1104,11 +1117,8 @@ def response_report(design: Design) -> dict[str, Any]:
         "effective_length_samples": halo,
         "effective_length_seconds": seconds,
         "tolerance": float(design.tolerance),
-        "statement": (
-            "The overall phase is zero (forward-backward filtering). The filter is non-causal: "
-            f"a transient appears up to {halo} samples ({seconds:.6g} s) before it occurs, and "
-            f"its effect lasts as long after it (to a relative tolerance of {design.tolerance:g})."
-        ),
+        "rounding_estimate": rounding,
+        "statement": statement,
     }
     return _jsonable(report)
 
@@ -1148,6 +1158,7 @@ def format_report(report: dict[str, Any]) -> str:
         ("effective length", "effective_length_samples", "samples"),
         ("effective length (time)", "effective_length_seconds", "s"),
         ("tolerance", "tolerance", ""),
+        ("float64 rounding (estimate)", "rounding_estimate", "of full scale"),
     ]
     for label, key, unit in fields:
         if key is None:
@@ -1159,7 +1170,7 @@ def format_report(report: dict[str, Any]) -> str:
         else:
             if report.get(key) is None:
                 continue
-            text = _cell(report.get(key), 12 if key == "max_pole_radius" else 6)
+            text = _cell(report.get(key), {"max_pole_radius": 12, "rounding_estimate": 2}.get(key, 6))
         rows.append((label, f"{text} {unit}".rstrip()))
     width = max(len(label) for label, _ in rows)
     lines = [f"{label:<{width}}  {text}" for label, text in rows]
