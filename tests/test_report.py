@@ -256,3 +256,30 @@ def test_the_report_reads_each_block_table_once(tmp_path: Path, monkeypatch) -> 
     path = write_report(cfg, tmp_path / "report.html")
     assert path.is_file() and "deck" in path.read_text()
     assert len(reads) == 3 and len(set(reads)) == 3  # three files, one read each
+
+
+def test_the_report_passes_over_inputs_gone_since_they_were_filtered(tmp_path: Path) -> None:
+    # The largest transient is shown from the input and the output side by side; an input
+    # removed from the archive since its output was written is passed over for the next
+    # largest peak, and with none left the report has no overlay, rather than failing.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+    from twinpass.report_data import _largest_transient, write_report
+    from twinpass.io.store import OutputStore
+
+    x = make_signal(6000, 2, 200.0, seed=3)
+    x[4500, 0] += 50.0  # the largest peak, in the third file
+    files = write_stream(tmp_path / "archive", "deck", x, 200.0, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    store = OutputStore.open(cfg.store_location, mode="r")
+    names = store.list_arrays()
+    assert _largest_transient(cfg, store, names)["file"].startswith(files.relpaths[2])
+    files.paths[2].unlink()
+    shown = _largest_transient(cfg, store, names)
+    assert shown is not None and shown["file"].split(" ")[0] in files.relpaths[:2]
+    for p in files.paths[:2]:
+        p.unlink()
+    assert _largest_transient(cfg, store, names) is None
+    assert write_report(cfg, tmp_path / "report.html").is_file()

@@ -11,6 +11,7 @@ import numpy as np
 from .config import JobConfig
 from .core import checks as _checks
 from .core.design import design_filter
+from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
 from .report import DEFAULT_CAUTIONS, render_report
@@ -38,9 +39,13 @@ def _epoch(iso: str | None) -> float | None:
 
 
 def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> dict[str, Any] | None:
-    """Input and output around the block input peak of the whole store (first channel peaking)."""
+    """Input and output around the block input peak of the whole store (first channel peaking).
+
+    Files whose input can no longer be read (removed from the archive since, or unreadable
+    now) are passed over for the next largest peak; None when no file has one.
+    """
     peak_col = list(_checks.FIGURES).index("peak_in")
-    best: tuple[float, str, int, int] | None = None
+    peaks: list[tuple[float, str, int, int]] = []
     for name in names:
         try:
             t = store.read_block_table(name, figures=True, seams=False)
@@ -50,25 +55,26 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
             continue
         figs = np.nan_to_num(t.figures[..., peak_col], nan=-1.0)
         b, ch = np.unravel_index(int(np.argmax(figs)), figs.shape)
-        if best is None or figs[b, ch] > best[0]:
-            best = (float(figs[b, ch]), name, int(b), int(ch))
-    if best is None:
-        return None
-    _, name, b, ch = best
-    attrs = store.array_attrs(name)
-    fs = float(attrs["sample_rate_hz"])
-    span = store.read_block_table(name, figures=False, seams=False).span[b]
-    src = cfg.archive_root / attrs["source"]
-    with open_recording(str(src)) as rec:
-        x = rec.read(int(span[0]), int(span[1]))[:, ch]
-        i = int(span[0]) + int(np.argmax(np.abs(x - np.median(x))))
-        half = int(OVERLAY_SECONDS * fs / 2)
-        a, z = max(0, i - half), min(rec.info.frames, i + half)
-        before = rec.read(a, z)[:, ch]
-    after = store.read(name, a, z)[:, ch].astype(np.float64)
-    t = (np.arange(a, z) - i) / fs
-    return {"file": f"{attrs['source']} (channel {ch}, samples {a}-{z}; t = 0 at the input's largest excursion)",
-            "t": t, "before": before - np.mean(before), "after": after}
+        peaks.append((float(figs[b, ch]), name, int(b), int(ch)))
+    for _, name, b, ch in sorted(peaks, key=lambda p: -p[0]):
+        attrs = store.array_attrs(name)
+        fs = float(attrs["sample_rate_hz"])
+        span = store.read_block_table(name, figures=False, seams=False).span[b]
+        src = cfg.archive_root / attrs["source"]
+        try:
+            with open_recording(str(src)) as rec:
+                x = rec.read(int(span[0]), int(span[1]))[:, ch]
+                i = int(span[0]) + int(np.argmax(np.abs(x - np.median(x))))
+                half = int(OVERLAY_SECONDS * fs / 2)
+                a, z = max(0, i - half), min(rec.info.frames, i + half)
+                before = rec.read(a, z)[:, ch]
+        except (TwinpassError, OSError):
+            continue
+        after = store.read(name, a, z)[:, ch].astype(np.float64)
+        t = (np.arange(a, z) - i) / fs
+        return {"file": f"{attrs['source']} (channel {ch}, samples {a}-{z}; t = 0 at the input's largest excursion)",
+                "t": t, "before": before - np.mean(before), "after": after}
+    return None
 
 
 class _ReadOnce:
