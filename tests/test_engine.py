@@ -398,3 +398,16 @@ def test_block_error_lines_name_attempts_only_where_counted(caplog):
         "block 3 of a failed after 3 attempt(s): OSError: disk full",
         "block 4 of a failed: worker lost",
     ]
+
+
+def test_run_job_says_which_outputs_lost_their_input(tmp_path):
+    # An output whose input left the archive is out of date; the run says so, as the flow does.
+    from conftest import make_signal, write_config, write_stream
+
+    files = write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, 200.0, seed=4), 200.0, [2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    files.paths[1].unlink()
+    lines: list[str] = []
+    assert run_job(cfg, log_fn=lines.append).ok
+    assert f"{files.relpaths[1]}: no longer in the archive; its output is out of date" in lines, lines

@@ -236,6 +236,8 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         prep = prepare(cfg, store, force=force)
         for bad in prep.invalid:
             say(f"invalid: {bad.relpath}: {bad.reason}; {bad.remedy}")
+        for fp in prep.plan.removed:
+            say(f"{fp.relpath}: {fp.reason}")
         begin_run(store, prep)
         outcomes: list[FileOutcome] = []
         busy = [w for w in prep.work if w.has_work]
