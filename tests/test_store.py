@@ -33,6 +33,7 @@ from twinpass.io.store import (
     write_block_data,
 )
 from twinpass.io import store as store_module
+from twinpass.io import store_lock
 from twinpass.io.store import RUNS_IN_ROOT, _chunk_encoder
 
 SOURCE = "deck-north/deck-north_20260301T000000.wav"
@@ -975,3 +976,29 @@ def test_a_deletion_outside_the_store_is_refused_even_when_nothing_is_there(stor
     with pytest.raises(UnsafePathError, match="not inside the output store"):
         store._delete("../elsewhere")
     store._delete("deck-north/never-written")  # inside the store and absent: nothing to do
+
+
+def test_a_stale_lock_is_removed_by_one_run_at_a_time(store: OutputStore, tmp_path: Path, caplog):
+    # Two runs may find one stale lock together. Removing it is done under a takeover guard
+    # created as exclusively as the lock itself, so that one run cannot remove the lock the
+    # other has just taken: while a live process holds the guard, the stale lock stays.
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    lock_path = tmp_path / "out.zarr" / ".twinpass-lock"
+    guard_path = tmp_path / "out.zarr" / ".twinpass-lock.takeover"
+    stale = json.dumps({"pid": dead.pid, "host": socket.gethostname(), "run_id": "old",
+                        "started": "2026-03-01T00:00:00+00:00"})
+    lock_path.write_text(stale)
+    guard_path.write_bytes(store_lock.LockInfo.new("taking over").to_bytes())  # held by this live process
+    with pytest.raises(StoreLockedError, match="taking it over") as err:
+        with store.lock("new"):
+            pass
+    assert str(guard_path) in str(err.value) and lock_path.read_text() == stale and guard_path.exists()
+    # A guard whose creator is gone is cleared with a warning; the stale lock is then recovered.
+    guard_path.write_text(json.dumps({"pid": dead.pid, "host": socket.gethostname(), "run_id": "taker",
+                                      "started": "2026-03-01T00:00:00+00:00"}))
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        with store.lock("new"):
+            assert json.loads(lock_path.read_text())["run_id"] == "new"
+    assert "clearing" in caplog.text and "taker" in caplog.text and "recovering a stale lock" in caplog.text
+    assert not guard_path.exists() and not lock_path.exists()

@@ -2,7 +2,10 @@
 
 Local stores get ``<store>/.twinpass-lock``, created atomically with ``O_CREAT | O_EXCL`` and
 holding JSON ``{pid, host, run_id, started, token}``. A lock whose holder ran on this host
-and is no longer alive is stale: it is removed with a warning and taken over.
+and is no longer alive is stale: it is removed with a warning and taken over. Only one
+process at a time may remove a stale lock: it first creates ``<lock>.takeover`` the same
+exclusive way (itself judged stale, and cleared, when its creator is gone), so that two runs
+that found one stale lock cannot remove each other's new lock.
 
 Stores behind other fsspec file systems get the same object, created with
 ``pipe_file(mode="create")``: back ends with conditional writes make this atomic; on the
@@ -16,6 +19,7 @@ import json
 import logging
 import os
 import socket
+import time
 import uuid
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -27,6 +31,10 @@ from ..errors import StoreError, StoreLockedError
 from .store_util import write_errors
 
 LOCK_NAME = ".twinpass-lock"
+TAKEOVER_SUFFIX = ".takeover"
+"""Suffix of the guard object a process holds while it removes a stale lock."""
+ATTEMPTS = 5
+"""Attempts to take a lock that is released, or found stale, meanwhile."""
 log = logging.getLogger("twinpass.store")
 
 
@@ -91,14 +99,20 @@ class LockFile(Protocol):
     def create(self, data: bytes) -> bool: ...
     def read(self) -> bytes | None: ...
     def remove(self) -> None: ...
+    def sibling(self, suffix: str) -> LockFile:
+        """The lock object whose name is this one's with ``suffix`` appended."""
+        ...
 
 
 class LocalLockFile:
     """``<store>/.twinpass-lock`` on a local file system."""
 
-    def __init__(self, root: Path) -> None:
-        self.path = root / LOCK_NAME
+    def __init__(self, root: Path, name: str = LOCK_NAME) -> None:
+        self.root, self.path = root, root / name
         self.where = str(self.path)
+
+    def sibling(self, suffix: str) -> LocalLockFile:
+        return LocalLockFile(self.root, self.path.name + suffix)
 
     def create(self, data: bytes) -> bool:
         try:
@@ -129,10 +143,13 @@ class LocalLockFile:
 class FsspecLockFile:
     """The lock object in a store behind an fsspec file system."""
 
-    def __init__(self, fs: Any, root: str, location: str) -> None:
-        self.fs = fs
-        self.path = root.rstrip("/") + "/" + LOCK_NAME
-        self.where = location.rstrip("/") + "/" + LOCK_NAME
+    def __init__(self, fs: Any, root: str, location: str, name: str = LOCK_NAME) -> None:
+        self.fs, self.root, self.location, self.name = fs, root, location, name
+        self.path = root.rstrip("/") + "/" + name
+        self.where = location.rstrip("/") + "/" + name
+
+    def sibling(self, suffix: str) -> FsspecLockFile:
+        return FsspecLockFile(self.fs, self.root, self.location, self.name + suffix)
 
     def create(self, data: bytes) -> bool:
         with write_errors(f"the lock object {self.where}"):
@@ -159,7 +176,7 @@ class FsspecLockFile:
 def acquire(lock: LockFile, run_id: str) -> LockInfo:
     """Take the lock for ``run_id``; recover a stale one; else raise :class:`StoreLockedError`."""
     info = LockInfo.new(run_id)
-    for _ in range(3):
+    for _ in range(ATTEMPTS):
         if lock.create(info.to_bytes()):
             return info
         raw = lock.read()
@@ -176,14 +193,40 @@ def acquire(lock: LockFile, run_id: str) -> LockInfo:
                 f"output store is locked by {holder.describe()}: {lock.where}; wait for that run to finish, "
                 f"or if it is no longer running, delete {lock.where} and rerun"
             )
-        # Remove the stale lock only if it is still the one judged stale.
+        _remove_stale(lock, raw, holder)
+    raise StoreLockedError(
+        f"output store lock {lock.where} keeps changing hands, or another run is taking it over "
+        f"({lock.where}{TAKEOVER_SUFFIX}): retry later; if no other run is starting, delete both and rerun"
+    )
+
+
+def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> None:
+    """Remove the lock judged stale (``raw``, held by ``holder``) if it is still that one.
+
+    The check and the removal happen while holding the takeover guard: without it, a run
+    that judged the same stale lock could check, let another remove it and take the lock,
+    and then remove that live lock. A guard held by a live process makes this call wait a
+    moment and return (the caller tries again); one left by a process that is gone is cleared.
+    """
+    guard = lock.sibling(TAKEOVER_SUFFIX)
+    if not guard.create(LockInfo.new(f"taking over {lock.where}").to_bytes()):
+        taken = guard.read()
+        taker = None if taken is None else LockInfo.parse(taken)
+        if taken is not None and taker is not None and taker.is_stale() and guard.read() == taken:
+            log.warning("clearing %s, left by %s while it took over a stale lock", guard.where, taker.describe())
+            guard.remove()
+        else:
+            time.sleep(0.05)  # another run is taking the lock over (or is writing the guard)
+        return
+    try:
         if lock.read() == raw:
             log.warning(
                 "recovering a stale lock on the output store: %s is no longer running; removing %s",
                 holder.describe(), lock.where,
             )
             lock.remove()
-    raise StoreLockedError(f"output store lock {lock.where} keeps changing hands; another run is starting: retry later")
+    finally:
+        guard.remove()
 
 
 def release(lock: LockFile, info: LockInfo) -> None:
