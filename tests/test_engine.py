@@ -411,3 +411,20 @@ def test_run_job_says_which_outputs_lost_their_input(tmp_path):
     lines: list[str] = []
     assert run_job(cfg, log_fn=lines.append).ok
     assert f"{files.relpaths[1]}: no longer in the archive; its output is out of date" in lines, lines
+
+
+def test_a_file_rewritten_with_another_shape_during_a_run_is_named(tmp_path):
+    # Blocks reopen their files; one rewritten since the run planned it (here with a third
+    # channel) fails its blocks with a message naming it, rather than a bare shape error.
+    from twinpass.engine import SourceSlice, read_segment_window
+    from twinpass.errors import InputError
+    from twinpass.io.readers.base import ReaderSpec
+
+    path = tmp_path / "deck_20260301T000000.npy"
+    np.save(path, np.zeros((1000, 2)))
+    sources = (SourceSlice(ReaderSpec.create("npy", str(path), {"sample_rate_hz": 200.0}), 0, 1000),)
+    assert read_segment_window(sources, 0, 100, 2).shape == (100, 2)
+    np.save(path, np.zeros((1000, 3)))
+    with pytest.raises(InputError, match="changed while this run used it") as err:
+        read_segment_window(sources, 0, 100, 2)
+    assert str(path) in str(err.value) and "1000 frames x 3 channel(s)" in str(err.value)

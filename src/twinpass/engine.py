@@ -85,7 +85,8 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
     Raises
     ------
     InputError
-        ``sources`` do not cover [a, b).
+        ``sources`` do not cover [a, b), or a file no longer has the frames and channels
+        the run planned with (it changed while the run used it).
     """
     out: np.ndarray | None = None
     filled = 0
@@ -95,6 +96,12 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
         if lo >= hi:
             continue
         with src.spec.open() as rec:
+            if (rec.info.frames, rec.info.channels) != (src.frames, channels):
+                raise InputError(
+                    f"{src.spec.path}: the file changed while this run used it: it now holds {rec.info.frames} "
+                    f"frames x {rec.info.channels} channel(s), against {src.frames} x {channels} when the run "
+                    "planned it; its blocks are recorded as not done: rerun to filter it afresh"
+                )
             part = rec.read(lo - src.seg_offset, hi - src.seg_offset)
         if src.fill:
             apply_fill(part, lo - src.seg_offset, src.fill)
