@@ -59,7 +59,8 @@ class ZarrRecording(WindowRecording):
     def _read(self, start: int, stop: int) -> np.ndarray:
         try:
             block = np.asarray(self._array[start:stop])
-        except Exception as exc:  # a damaged or missing chunk: codec and store errors vary
+        except Exception as exc:  # a damaged chunk: codec and store errors vary (a missing chunk reads
+            # as the array's fill value: Zarr writes none for chunks that equal it)
             raise CorruptInputError(
                 f"{self.info.path}: frames [{start}, {stop}) cannot be read "
                 f"({type(exc).__name__}: {exc}); a chunk of the store is damaged",
