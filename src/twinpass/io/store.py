@@ -596,7 +596,10 @@ def _overwrite_file(path: Path, payload: Any, *, sync: bool = True) -> None:
     this returns, so a half-written chunk (the writing process killed) is never taken for a
     result; the next run writes it again. Written in place with ``sync``, the data is on the
     disk (``fdatasync``) before this returns, so a block recorded done keeps its data through
-    a power cut or a crash of the operating system, on any file system.
+    a power cut or a crash of the operating system. A chunk file created here also needs its
+    name to be durable: journalling file systems such as ext4 (``data=ordered``) and XFS
+    commit a new file's directory entry with the data ``fdatasync`` flushes; POSIX alone asks
+    for an ``fsync`` of the folder as well, which twinpass does not make.
 
     Replacing the file instead (a temporary file renamed over it, as Zarr's local store does)
     frees the old file's disk blocks and, on ext4, makes the next journal commit write the
