@@ -384,6 +384,32 @@ def test_blocks_set_by_hand_beyond_the_memory_budget_fail_their_segment_with_a_r
         assert o.array_name not in g or g[o.array_name].attrs.get("complete") is not True
 
 
+def test_halos_beyond_the_memory_budget_are_carried_in_auto_mode_and_refused_in_halo_mode(tmp_path):
+    # 2 channels and the 670-sample halo of BANDPASS: the halos alone need
+    # 2 x 670 x 2 x 40 B = 107200 B, above 0.1 MiB (104858 B), so no block with halos fits.
+    # mode = "auto" carries the segment (no halos; blocks of 0.1 MiB / 80 B = 1310 samples),
+    # and the result still equals scipy.signal.sosfiltfilt over the whole segment; mode =
+    # "halo" refuses the segment, naming the budget and carry mode as the remedy.
+    x = make_signal(6000, 2, FS, seed=12)
+    budget = {"block_seconds": None, "memory_budget_mib": 0.1}
+    auto, halo = tmp_path / "auto", tmp_path / "halo"
+    files = write_stream(auto / "archive", "deck", x, FS, 2)
+    write_stream(halo / "archive", "deck", x, FS, 2)
+    assert run_job(load_config(write_config(auto, processing={**budget, "mode": "auto"}))).ok
+    g = open_store(auto / "out.zarr")
+    assert {g[a].attrs["blocks"]["mode"] for a in files.arrays} == {"carry"}
+    filt = g[files.arrays[0]].attrs["filter"]
+    assert 2 * filt["effective_length_samples"] * 2 * 40 > 0.1 * 2**20  # the case meant
+    y = np.concatenate(read_output(auto / "out.zarr", files.arrays))
+    # Reference: scipy.signal.sosfiltfilt on the whole segment (see _reference).
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+    res = run_job(load_config(write_config(halo, processing={**budget, "mode": "halo"})))
+    assert not res.ok and {o.status for o in res.outcomes} == {"failed"}
+    message = " ".join(str(e) for o in res.outcomes for e in o.errors.values())
+    assert "memory_budget_mib = 0.1" in message and 'mode = "carry"' in message
+
+
 def test_block_error_lines_name_attempts_only_where_counted(caplog):
     # A block task counts its attempts; a block whose task was lost, or that never ran
     # because an earlier step failed, has none counted, and its line claims none.

@@ -56,7 +56,8 @@ class ProcessingConfig:
     """Upper bound on one block's working memory (window + output, float64), MiB."""
     mode: str = "auto"
     """halo | carry | auto: carry filter states instead of halos when the halo exceeds
-    ``carry_threshold`` times the block length (IIR only)."""
+    ``carry_threshold`` times the block length, or no block with its halos fits
+    ``memory_budget_mib`` (IIR only)."""
     carry_threshold: float = 1.0
     nonfinite: str = "fail"
     """Policy for NaN/Inf runs in float input: fail | split | interpolate."""
@@ -95,7 +96,8 @@ class OutputConfig:
     compression: str = "lz4"
     """none | lz4 | zstd (Blosc, with bit shuffle)."""
     chunk_seconds: float | None = None
-    """Output chunk length in seconds; None = one chunk per block."""
+    """Output chunk length in seconds; None = one chunk per block. Blocks are whole chunks,
+    within ``[processing] memory_budget_mib``."""
     sync: bool = True
     """Sync each block's output to disk before recording the block done (local stores), so
     that what the store records as done survives a power cut. With local workers the driver

@@ -1051,16 +1051,26 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     Notes
     -----
     ``[processing] mode`` ``"carry"``, or ``"auto"`` with a halo longer than
-    ``carry_threshold`` blocks, hands the segment to
-    :func:`twinpass.engine_carry.run_segment_carry` (same contract, no halos).
+    ``carry_threshold`` blocks or with no block whose halos fit ``memory_budget_mib``,
+    hands the segment to :func:`twinpass.engine_carry.run_segment_carry` (same contract,
+    no halos) unless it has holes.
     """
     t0 = time.perf_counter()
-    layout = _layout(seg, design, cfg)
-    if cfg.processing.mode != "halo":
+    if cfg.processing.mode != "halo" and not seg.holes:  # pieces between holes use halos
         from .engine_carry import run_segment_carry, use_carry  # it imports this module
 
-        if not seg.holes and use_carry(design, segment_block_samples(seg, layout), cfg):  # pieces between holes use halos
+        try:
+            layout = _layout(seg, design, cfg)
+        except ConfigError:
+            # No block with its halos fits the memory budget; carry mode needs no halos
+            # (and refuses an FIR design in mode "carry").
+            if design.is_fir and cfg.processing.mode == "auto":
+                raise
             return run_segment_carry(seg, design, cfg, store, client, on_block=on_block, log_blocks=log_blocks)
+        if use_carry(design, segment_block_samples(seg, layout), cfg):
+            return run_segment_carry(seg, design, cfg, store, client, on_block=on_block, log_blocks=log_blocks)
+    else:
+        layout = _layout(seg, design, cfg)
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
     # Workers on this machine leave syncing their output to this thread, which waits on the
     # disk while they compute; workers elsewhere sync their own.

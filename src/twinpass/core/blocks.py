@@ -6,17 +6,19 @@ so blocks can be written concurrently without locks. Lengths are in samples.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 from twinpass.errors import ConfigError
 
 MIN_BLOCK_SAMPLES = 65536
-"""Smallest automatic block core (samples)."""
+"""Smallest automatic block core (samples), where the memory budget allows it."""
 HALOS_PER_BLOCK = 24
-"""Automatic blocks are at least this many halos long: halo overhead 2/24 (8.3 %) or less,
+"""Automatic blocks are at least this many halos long where the memory budget allows it:
+halo overhead 2/24 (8.3 %) or less,
 before the balancing of :meth:`Layout.block_for` (which keeps it below 2/12 in the worst case
 of a file just over one block, and near 2/24 for files of several blocks)."""
+CARRY_REMEDY = 'use [processing] mode = "carry" (IIR designs; it needs no halos)'
+"""The remedy named when the halos alone exceed the memory budget."""
 BYTES_PER_WINDOW_SAMPLE = 8 * 5
 """float64 working copies per window sample and channel: input, extension, forward,
 backward and output (a conservative count used for the memory budget)."""
@@ -69,50 +71,71 @@ def choose_layout(
     Parameters
     ----------
     sample_rate_hz : float
-        Samples per second.
+        Samples per second (Hz).
     channels : int
         Channels per sample.
     halo : int
         Halo per side in samples (the design's effective length), or 0 in carry mode.
     block_seconds : float or None
-        Requested block core length in seconds (used as given, if its window fits the
-        memory budget); None chooses
-        ``max(24 * halo, 65536)`` samples, capped by the memory budget, and balances the
-        blocks of each file (see :meth:`Layout.block_for`).
+        Requested block core length in seconds (s), used as given if its window fits the
+        memory budget; None chooses ``max(24 * halo, 65536)`` samples, capped by the memory
+        budget, and balances the blocks of each file (see :meth:`Layout.block_for`).
     chunk_seconds : float or None
-        Output chunk length in seconds; None makes one chunk per block. Blocks are rounded
-        up to a whole number of chunks.
+        Output chunk length in seconds (s); None makes one chunk per block. Blocks are a whole
+        number of chunks: rounded up, or down where rounding up would exceed the memory
+        budget (never below one chunk).
     memory_budget_mib : float
-        Budget for one block's working memory; the window (block + 2 halos) times
-        channels times ``BYTES_PER_WINDOW_SAMPLE`` must fit.
+        Budget for one block's working memory (MiB); the window (block + 2 halos, samples)
+        times channels times ``BYTES_PER_WINDOW_SAMPLE`` must fit. The returned layout
+        always fits.
+
+    Returns
+    -------
+    Layout
 
     Raises
     ------
     ConfigError
-        ``block_seconds`` asks for blocks whose window does not fit the memory budget.
+        No block fits the memory budget: ``block_seconds`` asks for blocks whose window does
+        not fit, one chunk of ``chunk_seconds`` with its halos does not fit, or the halos
+        alone do not fit.
     """
     budget = memory_budget_mib * 2**20
-    cap = int(budget // (channels * BYTES_PER_WINDOW_SAMPLE)) - 2 * halo
+    per_sample = channels * BYTES_PER_WINDOW_SAMPLE  # bytes per window sample, all channels
+    cap = int(budget // per_sample) - 2 * halo  # longest block core (samples) whose window fits
+
+    halos = (f"with halos of {halo} samples on each side and {channels} channels" if halo
+             else f"with {channels} channels")
+
+    def too_long(setting: str, value: float, samples: int, made: str) -> ConfigError:
+        """The error for a setting whose shortest block (``samples``) does not fit."""
+        remedy = (f"lower {setting.split()[-1]} (at most {cap / sample_rate_hz:.3g} s here)" if cap > 0
+                  else CARRY_REMEDY)
+        need = (samples + 2 * halo) * per_sample / 2**20
+        return ConfigError(
+            f"{setting} = {value:g} makes {made}; {halos} one block needs about {need:.3g} MiB, above "
+            f"[processing] memory_budget_mib = {memory_budget_mib:g}: {remedy} or raise memory_budget_mib"
+        )
+
     if block_seconds is not None:
         block = max(1, int(round(block_seconds * sample_rate_hz)))
-        need = (block + 2 * halo) * channels * BYTES_PER_WINDOW_SAMPLE
-        if need > budget:
-            fits = f"at most {cap / sample_rate_hz:.3g} s here" if cap > 0 else "carry mode needs no halos"
-            raise ConfigError(
-                f"[processing] block_seconds = {block_seconds:g} makes blocks of {block} samples; with halos of "
-                f"{halo} samples on each side and {channels} channels one block needs about "
-                f"{need / 2**20:.0f} MiB, above [processing] memory_budget_mib = {memory_budget_mib:g}: lower "
-                f"block_seconds ({fits}) or raise memory_budget_mib"
-            )
+        if block > cap:
+            raise too_long("[processing] block_seconds", block_seconds, block, f"blocks of {block} samples")
+    elif cap <= 0:
+        raise ConfigError(
+            f"{halos}, the halos alone need about {2 * halo * per_sample / 2**20:.3g} MiB, above [processing] "
+            f"memory_budget_mib = {memory_budget_mib:g}, so no block fits: raise memory_budget_mib or {CARRY_REMEDY}"
+        )
     else:
-        block = max(HALOS_PER_BLOCK * halo, MIN_BLOCK_SAMPLES)
-        if cap > 0:
-            block = min(block, max(cap, 4096))
-    if chunk_seconds is not None:
-        chunk = max(1, int(round(chunk_seconds * sample_rate_hz)))
-        block = int(math.ceil(block / chunk)) * chunk
-    else:
-        chunk = block
+        block = min(max(HALOS_PER_BLOCK * halo, MIN_BLOCK_SAMPLES), cap)
+    if chunk_seconds is None:
+        return Layout(block_samples=block, chunk_samples=block, halo=halo, balanced=block_seconds is None)
+    chunk = max(1, int(round(chunk_seconds * sample_rate_hz)))
+    if chunk > cap:  # blocks are whole chunks
+        raise too_long("[output] chunk_seconds", chunk_seconds, chunk,
+                       f"chunks of {chunk} samples, and blocks of whole chunks")
+    up = -(-block // chunk) * chunk
+    block = up if up <= cap else cap // chunk * chunk
     return Layout(block_samples=block, chunk_samples=chunk, halo=halo, balanced=block_seconds is None)
 
 
