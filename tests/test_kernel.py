@@ -194,6 +194,28 @@ def test_extend_matches_numpy_pad(mode: str, n: int) -> None:
     np.testing.assert_array_equal(y, ref)
 
 
+@pytest.mark.parametrize("mode", ["odd", "even", "constant"])
+@pytest.mark.parametrize("dtype", DTYPES)
+def test_extend_is_exact_for_every_input_dtype(mode: str, dtype: type) -> None:
+    # Reference: scipy.signal._arraytools.odd_ext / even_ext / const_ext (the end extensions
+    # sosfiltfilt applies), run on a float64 copy: on int16 itself odd_ext wraps around
+    # (2 * 30000 - (-30000) gives 24464). Values at the ends of the dtype's range make
+    # 2 * x[0] - x[k] leave it; the extension must be exact, in float64.
+    from scipy.signal._arraytools import const_ext, even_ext, odd_ext
+
+    big = np.iinfo(dtype).max if np.issubdtype(dtype, np.integer) else 0.9 * np.finfo(np.float32).max
+    x = np.array([[1.0, -1.0], [-1.0, 1.0], [0.0, 0.5], [0.25, -0.25], [-1.0, 1.0]]) * big
+    x = x.astype(dtype)
+    reference = {"odd": odd_ext, "even": even_ext, "constant": const_ext}[mode]
+    for n in (1, 2, 4):
+        y = extend(x, n, mode)
+        assert y.dtype == np.float64
+        np.testing.assert_array_equal(y, reference(x.astype(np.float64), n, axis=0))
+    # the case of the int16 overflow: 2 * 30000 - (-30000) = 90000
+    if mode == "odd" and dtype is np.int16:
+        assert extend(np.array([[30000], [-30000], [0]], dtype=np.int16), 1, "odd")[0, 0] == 90000
+
+
 def test_extend_rejects_too_long_reflection() -> None:
     # scipy.signal's odd/even extensions need n <= len - 1 (their own validation).
     with pytest.raises(KernelError, match="at least 11 samples"):

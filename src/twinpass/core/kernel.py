@@ -55,9 +55,13 @@ def extend(x: np.ndarray, n: int, mode: str) -> np.ndarray:
     * ``"constant"``: the end sample repeated ``n`` times;
     * ``"none"``: no extension (``n`` is ignored).
 
+    The values are computed in float64, so ``2*x[0] - x[k]`` cannot overflow an integer
+    dtype: exact for integer input up to 2**51 in magnitude (int16, int32 samples) and for
+    float32 input; float64 input rounds as ``scipy.signal.sosfiltfilt`` does.
+
     Parameters
     ----------
-    x : ndarray, shape (samples, ...)
+    x : array_like of real numbers, shape (samples, ...)
         Time-major signal.
     n : int
         Samples added at each end. ``"odd"`` and ``"even"`` need ``n <= samples - 1``.
@@ -66,8 +70,8 @@ def extend(x: np.ndarray, n: int, mode: str) -> np.ndarray:
 
     Returns
     -------
-    ndarray, shape (samples + 2 n, ...)
-        The extended signal (``x`` itself when nothing is added), same dtype as ``x``.
+    ndarray of float64, shape (samples + 2 n, ...)
+        The extended signal (``x`` itself when it is float64 and nothing is added).
 
     Raises
     ------
@@ -78,6 +82,7 @@ def extend(x: np.ndarray, n: int, mode: str) -> np.ndarray:
     n = int(n)
     if n < 0:
         raise KernelError(f"extension length must be >= 0 samples; got {n}.")
+    x = np.asarray(x, dtype=np.float64)
     if mode == "none" or n == 0:
         return x
     length = x.shape[0]
