@@ -331,7 +331,9 @@ def test_unstable_and_badly_conditioned_designs_raise_design_error() -> None:
     unstable = np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 1.01**2]])
     with pytest.raises(DesignError, match="unstable"):
         check_sos(unstable)
-    # A cutoff 1e-8 Hz at 1 kHz puts the poles within ~6e-11 of the unit circle.
+    # A cutoff 1e-8 Hz at 1 kHz puts the poles within ~4.4e-11 of the unit circle: by the
+    # bilinear transform a 2nd-order Butterworth's pole radius is 1 - sqrt(2) * pi * fc / fs
+    # to first order (from memory; scipy.signal.sos2zpk of this design gives 4.44e-11).
     spec = ResponseSpec(kind="lowpass", family="butterworth", order=2, cutoff_hz=(1e-8,))
     with pytest.raises(DesignError, match="badly conditioned"):
         design_filter(spec, FS)
@@ -342,7 +344,8 @@ def test_unstable_and_badly_conditioned_designs_raise_design_error() -> None:
 
 def test_auto_picks_an_iir_that_meets_the_spec() -> None:
     # Reference: scipy.signal.sosfreqz on a dense grid. For this spec the cheapest design is
-    # an elliptic filter of order 4 (2 sections, 20 multiply-adds per sample).
+    # an elliptic band-pass from a prototype of order 4 (4 sections, 40 multiply-adds per
+    # sample); Chebyshev designs cost 60, Butterworth 110.
     design = design_filter(tolerance_spec("bandpass", "auto"), FS)
     assert design.family in ("butterworth", "chebyshev1", "chebyshev2", "elliptic")
     assert design.sos is not None and design.taps is None
