@@ -454,3 +454,32 @@ def test_a_file_rewritten_with_another_shape_during_a_run_is_named(tmp_path):
     with pytest.raises(InputError, match="changed while this run used it") as err:
         read_segment_window(sources, 0, 100, 2)
     assert str(path) in str(err.value) and "1000 frames x 3 channel(s)" in str(err.value)
+
+
+def test_status_names_the_inputs_the_last_run_left_out_or_found_gone(tmp_path):
+    # Outputs made earlier are kept as they were; the status says which of them the last
+    # run could not check against their input (invalid now, or gone), and which files it
+    # left out without any output.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.io.store import OutputStore
+    from twinpass.status import collect_status, format_status
+
+    files = write_stream(tmp_path / "archive", "deck", make_signal(6000, 1, 200.0, seed=5), 200.0,
+                         [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    files.paths[0].write_bytes(b"not a recording")  # damaged since
+    files.paths[2].unlink()                          # removed since
+    never = tmp_path / "archive" / "deck" / "deck_20260301T010000.npy"
+    never.write_bytes(b"\x93NUMPY garbage")          # never readable
+    assert run_job(cfg).ok
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    by_source = {f["source"]: f for f in status["files"]}
+    assert by_source[files.relpaths[0]]["input"].startswith("left out at the last run: ")
+    assert by_source[files.relpaths[1]]["input"] is None
+    assert by_source[files.relpaths[2]]["input"] == "no longer in the archive"
+    assert set(status["left_out"]) == {files.relpaths[0], "deck/deck_20260301T010000.npy"}
+    assert status["gone"] == [files.relpaths[2]]
+    text = format_status(status)
+    assert "left out by the last run (invalid input; an output made earlier is kept as it was): 2" in text
+    assert f"  {files.relpaths[2]}" in text

@@ -395,7 +395,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             if start is not None:
                 done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
                 outcomes.extend(done)
-        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
+        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed))
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
     report_path = None
     if report:

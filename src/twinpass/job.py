@@ -145,6 +145,8 @@ class RunResult:
     outcomes: list[FileOutcome]
     invalid: list[FilePlan]
     designs: dict[float, Design]
+    removed: list[FilePlan] = field(default_factory=list)
+    """Files the store has outputs of that are no longer in the archive."""
 
     @property
     def failed(self) -> list[str]:
@@ -175,9 +177,14 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
 
 
 def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
+    """Record the run: its entry, and in its own record the files it left out (invalid:
+    reason and remedy) and the outputs whose input is gone (see ``twinpass status``)."""
     store.append_run({"run_id": result.run_id, "start": result.started, "end": result.ended,
                       "counts": result.counts(), "config_digest": cfg.digest(),
-                      "failed": result.failed})
+                      "failed": result.failed},
+                     details={"left_out": {b.relpath: f"{b.reason}; {b.remedy}" if b.remedy else b.reason
+                                           for b in result.invalid},
+                              "gone": [r.relpath for r in result.removed]})
 
 
 def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None]) -> list[FileOutcome]:
@@ -263,7 +270,7 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
                     except BaseException:  # Ctrl-C: stop the drivers before the cluster closes
                         _stop_drivers(pool, drivers, client)
                         raise
-        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs)
+        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed))
         finish_run(store, result, cfg)
     return result
 

@@ -24,6 +24,10 @@ def open_target(target: str) -> tuple[OutputStore, str]:
     return OutputStore.open(target, mode="r"), target
 
 
+LISTED = 20
+"""Files listed by name under each note of the status table (``--json`` has them all)."""
+
+
 def _worst(summary: dict[str, Any], key: str) -> Any:
     v = summary.get(key)
     return None if v is None or (isinstance(v, float) and math.isnan(v)) else v
@@ -61,6 +65,13 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     files.sort(key=lambda f: (str(f["stream"]), str(f["start_time"] or ""), f["name"]))
     root = store.read_root_info()
     runs = root.get("runs", [])
+    details = store.read_run_details(str(runs[-1].get("run_id"))) if runs else {}
+    left_out = {str(k): str(v) for k, v in (details.get("left_out") or {}).items()}
+    gone = {str(r) for r in details.get("gone") or []}
+    for f in files:
+        src = str(f["source"])
+        f["input"] = ("left out at the last run: " + left_out[src] if src in left_out
+                      else "no longer in the archive" if src in gone else None)
     totals = {
         "files": len(files),
         "complete": sum(f["complete"] for f in files),
@@ -71,7 +82,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
         "checks_failed": sum(f["checks"] == "fail" for f in files),
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
-            "runs_total": int(root.get("runs_total", len(runs)))}
+            "runs_total": int(root.get("runs_total", len(runs))),
+            "left_out": left_out, "gone": sorted(gone)}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -120,6 +132,15 @@ def format_status(status: dict[str, Any]) -> str:
     for f in status["files"]:
         for b, msg in f["errors"].items():
             lines.append(f"  error {f['name']} block {b}: {msg}")
+    for title, entries in (("left out by the last run (invalid input; an output made earlier is kept as it was)",
+                            [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
+                           ("outputs whose input is no longer in the archive (kept as they were)",
+                            list(status.get("gone") or []))):
+        if entries:
+            lines.append(f"{title}: {len(entries)}")
+            lines += [f"  {e}" for e in entries[:LISTED]]
+            if len(entries) > LISTED:
+                lines.append(f"  ... and {len(entries) - LISTED} more (twinpass status --json lists them all)")
     return "\n".join(lines)
 
 

@@ -1603,13 +1603,15 @@ class OutputStore:
             )
             self._write_root_info(info)
 
-    def append_run(self, entry: dict[str, Any]) -> None:
+    def append_run(self, entry: dict[str, Any], details: dict[str, Any] | None = None) -> None:
         """Record a run: ``entry`` = {run_id, start, end, counts, config_digest, ...}.
 
         The entry gets its own group ``_twinpass/runs/<run_id>`` (attribute ``run``); the root
         attributes keep the latest :data:`RUNS_IN_ROOT` entries and ``runs_total``. Entries of
         stores written before run groups existed get their group before they leave the root
-        list, so no entry is lost (:meth:`read_runs`).
+        list, so no entry is lost (:meth:`read_runs`). ``details`` (lists that grow with the
+        archive, such as the files left out) go to the run's group alone, as its attribute
+        ``details`` (:meth:`read_run_details`).
 
         Raises
         ------
@@ -1624,13 +1626,14 @@ class OutputStore:
             total = int(info.get("runs_total", len(runs) - 1)) + 1
             for old in runs[:-RUNS_IN_ROOT]:
                 self._write_run_group(old, replace=False)
-            self._write_run_group(entry, replace=True)
+            self._write_run_group(entry, replace=True,
+                                  details=None if details is None else json_safe(dict(details), "run details"))
             info.setdefault("layout", STORE_LAYOUT)
             info["runs"] = runs[-RUNS_IN_ROOT:]
             info["runs_total"] = total
             self._write_root_info(info)
 
-    def _write_run_group(self, entry: dict[str, Any], *, replace: bool) -> None:
+    def _write_run_group(self, entry: dict[str, Any], *, replace: bool, details: dict[str, Any] | None = None) -> None:
         run_id = str(entry.get("run_id") or "")
         if not _RUN_ID.fullmatch(run_id) or set(run_id) == {"."}:
             raise StoreError(f"run entry has run_id {run_id!r}, which cannot name a group in "
@@ -1639,7 +1642,14 @@ class OutputStore:
         with self._writing(f"the run record {path} of {self.location}"):
             if not replace and isinstance(self._node(path), zarr.Group):
                 return
-            self._put_group(path, {"run": entry})
+            self._put_group(path, {"run": entry} if details is None else {"run": entry, "details": details})
+
+    def read_run_details(self, run_id: str) -> dict[str, Any]:
+        """The ``details`` recorded with run ``run_id`` (empty when none). Works read-only."""
+        with self._mutex:
+            node = self._node(f"{_RUNS_PATH}/{run_id}") if _RUN_ID.fullmatch(str(run_id)) else None
+            details = node.attrs.get("details") if isinstance(node, zarr.Group) else None
+        return dict(details) if isinstance(details, dict) else {}
 
     def read_runs(self) -> list[dict[str, Any]]:
         """Every run's entry, oldest first (by ``start``, then ``run_id``). Works read-only."""
