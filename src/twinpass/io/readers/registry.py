@@ -227,7 +227,8 @@ def reader_for(path: str | os.PathLike[str], hint: str | None = None) -> Reader:
     suffix = os.path.splitext(p.rstrip("/\\"))[1] or "(none)"
     raise UnsupportedFormatError(
         f"{p}: no reader recognises this file (suffix {suffix}); installed readers: {_installed_text()}. "
-        f"Pass format=<name> to choose one. {_HOW_TO_ADD}",
+        "Leave it out of the job ([archive] include / exclude), name the reader from Python "
+        f"(format=<name>), or rename a file of a known format to its suffix. {_HOW_TO_ADD}",
         path=p,
     )
 
