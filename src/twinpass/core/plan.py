@@ -98,6 +98,13 @@ def fingerprint_changed(old: Mapping[str, Any] | None, new: Mapping[str, Any] | 
     size or digest differ (the modification time is not used). Fingerprints taken in
     different modes compare their digests only when both cover the whole file (small
     files); otherwise the file counts as changed.
+
+    Then ``decoding`` (how the file decodes to samples: sample format, byte order, gain,
+    offset, header bytes, rate, start time..., see ``twinpass.io.fingerprint.decoding_of``):
+    changed when it differs, the reason naming the fields (and the sidecar, for raw files).
+    A fingerprint without ``decoding`` (taken before fingerprints recorded it) is compared
+    on its bytes alone, except that a file decoded through a sidecar (``sidecar`` in
+    ``new``) counts as changed once: its sidecar may have been edited unseen.
     """
     if not old or not new or "digest" not in old or "digest" not in new:
         return True, "no fingerprint to compare with"
@@ -113,9 +120,36 @@ def fingerprint_changed(old: Mapping[str, Any] | None, new: Mapping[str, Any] | 
         return True, "modification time changed"
     if old["digest"] != new["digest"]:
         return True, "content changed (digest differs)"
+    decoded = _decoding_changed(old, new)
+    if decoded is not None:
+        return True, decoded
     if mode_old == mode_new == "fast":
         return False, "same size, modification time and digest"
     return False, "same size and digest"
+
+
+def _decoding_changed(old: Mapping[str, Any], new: Mapping[str, Any]) -> str | None:
+    """Why the file decodes otherwise than when ``old`` was taken, or ``None``."""
+    was, now = old.get("decoding"), new.get("decoding")
+    side = new.get("sidecar") or old.get("sidecar")
+    if not isinstance(now, Mapping):
+        return None
+    if not isinstance(was, Mapping):
+        if not new.get("sidecar"):
+            return None  # how it decodes is in its own bytes, which were compared
+        return (
+            f"its output was written by an older twinpass that did not record the content of its "
+            f"sidecar {side}, so an edit of the sidecar since then cannot be ruled out; it is "
+            "filtered again once"
+        )
+    keys = sorted(set(was) | set(now))
+    diffs = [f"{k} {was.get(k)!r} -> {now.get(k)!r}" for k in keys if was.get(k) != now.get(k)]
+    if not diffs:
+        return None
+    what = "; ".join(diffs)
+    if side:
+        return f"its sidecar {side} changed ({what})"
+    return f"how it decodes changed ({what})"
 
 
 # -- plan value objects ------------------------------------------------------

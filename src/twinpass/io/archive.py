@@ -783,7 +783,7 @@ def _examine(
         fp = None
         if fingerprints:
             try:
-                fp = fingerprint_file(abspath, cfg.archive.fingerprint)
+                fp = fingerprint_file(abspath, cfg.archive.fingerprint, info=info)
             except InputError as e:
                 raise _Bad(f"cannot be fingerprinted: {_strip_path(str(e), abspath)}", _REMEDY_EXCLUDE) from None
         runs: list[ChannelRun] = []

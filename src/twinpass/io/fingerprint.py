@@ -10,11 +10,21 @@ Files under 2 MiB are hashed whole in both modes (``whole`` is then true). Folde
 hold one recording (Zarr arrays) are fingerprinted by their file list (fast) or by every
 byte of every file (full). The comparison rules live in
 :func:`twinpass.core.plan.fingerprint_changed` (re-exported here).
+
+Bytes alone do not fix the samples a file decodes to: a raw file's sidecar (``NAME.toml``
+/ ``NAME.json``) sets its dtype, byte order, gain, offset, header length, rate and start
+time, and reader options (e.g. ``[archive] sample_rate_hz``) add to what a header says.
+So a fingerprint taken with the reader's :class:`~twinpass.io.readers.base.RecordingInfo`
+also holds ``decoding`` (:func:`decoding_of`: format, sample format, channels, rate, full
+scale, start time and the reader's own layout fields such as byte order, gain, offset and
+header bytes) and, for a raw file, ``sidecar`` (the sidecar's file name, for messages): any
+change of how the file decodes makes it changed, with the fields that differ named.
 """
 
 from __future__ import annotations
 
 import hashlib
+import math
 import os
 from pathlib import Path
 from typing import Any, BinaryIO, Mapping
@@ -22,7 +32,7 @@ from typing import Any, BinaryIO, Mapping
 from twinpass.core.plan import fingerprint_changed
 from twinpass.errors import ConfigError, InputError
 
-__all__ = ["CHUNK_BYTES", "ALGORITHM", "fingerprint_file", "fingerprint_changed", "design_digest"]
+__all__ = ["CHUNK_BYTES", "ALGORITHM", "decoding_of", "fingerprint_file", "fingerprint_changed", "design_digest"]
 
 CHUNK_BYTES = 1 << 20
 """Read size and the length of the head and tail hashed in fast mode (1 MiB)."""
@@ -50,7 +60,57 @@ def _tree_files(root: Path) -> list[tuple[str, os.stat_result]]:
     return sorted(out)
 
 
-def fingerprint_file(path: str | os.PathLike[str], mode: str = "fast") -> dict[str, Any]:
+_PATH_FIELDS = frozenset({"sidecar", "store"})
+"""Fields of ``RecordingInfo.extra`` that hold where a file lies, not how it decodes (an
+archive moved elsewhere decodes alike)."""
+
+
+def _plain(value: Any) -> Any:
+    """``value`` as it reads back from JSON (tuples as lists, odd floats and objects as text)."""
+    if value is None or isinstance(value, (bool, int, str)):
+        return value
+    if isinstance(value, float):
+        return value if math.isfinite(value) else repr(value)
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if hasattr(value, "item"):  # numpy scalars
+        return _plain(value.item())
+    return str(value)
+
+
+def decoding_of(info: Any) -> dict[str, Any]:
+    """How a recording decodes to samples, as plain JSON data (compared by the planner).
+
+    Parameters
+    ----------
+    info : twinpass.io.readers.base.RecordingInfo
+        What the reader found (with the sidecar and options it was opened with).
+
+    Returns
+    -------
+    dict
+        ``format``, ``sample_format``, ``channels``, ``sample_rate_hz`` (Hz), ``full_scale``,
+        ``start_time`` (ISO 8601 or ``None``) and every field of ``info.extra`` but paths
+        (raw: ``byte_order``, ``gain``, ``offset``, ``header_bytes``; WAV: container, format
+        tag, data offset...). The frame count is left out: the planner compares it apart.
+    """
+    out: dict[str, Any] = {
+        "format": str(info.format),
+        "sample_format": str(info.sample_format),
+        "channels": int(info.channels),
+        "sample_rate_hz": None if info.sample_rate_hz is None else float(info.sample_rate_hz),
+        "full_scale": None if info.full_scale is None else float(info.full_scale),
+        "start_time": None if info.start_time is None else info.start_time.isoformat(),
+    }
+    for key in sorted(info.extra or {}):
+        if key not in _PATH_FIELDS and key not in out:
+            out[str(key)] = _plain(info.extra[key])
+    return out
+
+
+def fingerprint_file(
+    path: str | os.PathLike[str], mode: str = "fast", info: Any = None
+) -> dict[str, Any]:
     """Fingerprint one file (or a folder holding one recording, e.g. a Zarr array).
 
     Parameters
@@ -62,13 +122,17 @@ def fingerprint_file(path: str | os.PathLike[str], mode: str = "fast") -> dict[s
         files under 2 MiB are hashed whole either way. For a folder, ``fast`` hashes the
         list of its files with their sizes (the newest modification time is compared
         separately) and ``full`` the names and every byte of its files.
+    info : RecordingInfo, optional
+        What the reader found in the file; adds ``decoding`` (:func:`decoding_of`) and, when
+        the reader used a sidecar, ``sidecar`` (its file name).
 
     Returns
     -------
     dict
         ``size`` (bytes; for a folder the sum over its files), ``mtime_ns`` (for a folder
         the newest of its files), ``mode``, ``algorithm``, ``whole`` (the digest covers
-        every byte) and ``digest`` (hex). JSON-serialisable.
+        every byte) and ``digest`` (hex); with ``info`` also ``decoding`` (and ``sidecar``).
+        JSON-serialisable.
 
     Raises
     ------
@@ -103,7 +167,7 @@ def fingerprint_file(path: str | os.PathLike[str], mode: str = "fast") -> dict[s
             f"{p}: cannot read it to take its fingerprint ({e.strerror}); check that it exists and is readable",
             path=str(p),
         ) from None
-    return {
+    out: dict[str, Any] = {
         "size": int(size),
         "mtime_ns": int(mtime_ns),
         "mode": mode,
@@ -111,6 +175,12 @@ def fingerprint_file(path: str | os.PathLike[str], mode: str = "fast") -> dict[s
         "whole": bool(whole),
         "digest": h.hexdigest(),
     }
+    if info is not None:
+        out["decoding"] = decoding_of(info)
+        side = (info.extra or {}).get("sidecar")
+        if side:
+            out["sidecar"] = os.path.basename(str(side))
+    return out
 
 
 def design_digest(design: Any, edge: str, edge_samples: int | str, package_version: str) -> str:
