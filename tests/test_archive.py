@@ -389,3 +389,61 @@ def test_appending_an_hour_replans_the_previous_hour(tmp_path):
     assert [(f.status, f.redo) for f in plan.files] == [
         ("unchanged", None), ("neighbour", ((3540, 3600),)), ("new", "all"),
     ]
+
+
+# -- times outside datetime's range, unforeseen errors ------------------------------------
+
+
+def test_a_time_outside_years_1_to_9999_in_utc_makes_only_that_file_invalid(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "good.npy", 100)
+    npy(root, "early.npy", 100)
+    npy(root, "late.npy", 100)
+    (root / "m.csv").write_text(
+        "path,stream,start_time\n"
+        "good.npy,buoy,2024-05-01T12:00:00Z\n"
+        "early.npy,buoy,0001-01-01T00:00:00+01:00\n"  # 0000-12-31T23:00Z: no such year
+        "late.npy,buoy,9999-12-31T23:30:00-01:00\n"  # 10000-01-01T00:30Z
+    )
+    disc = discover(job(tmp_path, include=("*.npy",), manifest="archive/m.csv", sample_rate_hz=100.0))
+    assert [e.relpath for e in disc.files] == ["good.npy"]
+    bad = {b.path: b for b in disc.invalid}
+    assert set(bad) == {"early.npy", "late.npy"}
+    assert "line 3" in bad["early.npy"].reason and "'0001-01-01T00:00:00+01:00'" in bad["early.npy"].reason
+    assert "before year 1 in UTC" in bad["early.npy"].reason
+    assert "line 4" in bad["late.npy"].reason and "after year 9999 in UTC" in bad["late.npy"].reason
+    assert all("correct the start_time in the manifest" in b.remedy for b in bad.values())
+
+
+def test_a_name_time_outside_years_1_to_9999_in_utc_makes_only_that_file_invalid(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "s/s_20240501T000000+0000.npy", 100)
+    npy(root, "s/s_00010101T000000+0100.npy", 100)
+    disc = discover(job(tmp_path, include=("**/*.npy",), name_pattern="{stream}/{stream}_{start:%Y%m%dT%H%M%S%z}",
+                        sample_rate_hz=100.0))
+    assert [e.relpath for e in disc.files] == ["s/s_20240501T000000+0000.npy"]
+    (bad,) = disc.invalid
+    assert bad.path == "s/s_00010101T000000+0100.npy"
+    assert "{start:%Y%m%dT%H%M%S%z}" in bad.reason and "before year 1 in UTC" in bad.reason
+    assert "rename the file" in bad.remedy
+
+
+def test_an_unforeseen_error_examining_one_file_makes_only_that_file_invalid(tmp_path, monkeypatch):
+    import twinpass.io.archive as archive_mod
+
+    root = tmp_path / "archive"
+    npy(root, "a.npy", 100)
+    npy(root, "b.npy", 100)
+    real = archive_mod._identify
+
+    def failing(cfg, rel, *args):  # an injected fault: a bug met while examining b.npy only
+        if rel == "b.npy":
+            raise KeyError("surprise")
+        return real(cfg, rel, *args)
+
+    monkeypatch.setattr(archive_mod, "_identify", failing)
+    disc = discover(job(tmp_path, include=("*.npy",), sample_rate_hz=100.0))
+    assert [e.relpath for e in disc.files] == ["a.npy"]
+    (bad,) = disc.invalid
+    assert bad.path == "b.npy" and "failed unexpectedly: KeyError: 'surprise'" in bad.reason
+    assert "[archive] exclude" in bad.remedy and "report" in bad.remedy

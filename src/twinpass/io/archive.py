@@ -57,13 +57,15 @@ Patterns are compiled to one regular expression once per discovery.
 Bad input
 ---------
 Problems of single files never stop discovery: an unreadable or unknown file, a damaged
-header, zero frames, a missing sample rate, an unparsable start time, a path the pattern
+header, zero frames, a missing sample rate, an unparsable start time or one outside the
+years 1 to 9999 once taken to UTC, a path the pattern
 does not match, a second file with the same (stream, start time), a path that cannot name
 an output array (a hidden ``.name`` component, the reserved ``_twinpass`` prefix) or whose
 array name clashes with an earlier file's (``a b.wav`` and ``a_b.wav`` both give ``a_b``;
 ``a.wav`` and ``a/b.wav`` would nest one array in the other), and a manifest row naming a
 path outside the root becomes an :class:`~twinpass.core.segments.InvalidFile` (path,
-reason, remedy) and is left out. Problems of the configuration itself (unreadable
+reason, remedy) and is left out. So does a file whose examination fails in a way not
+foreseen here (the reason names the error). Problems of the configuration itself (unreadable
 manifest, bad pattern) raise.
 
 Non-finite samples
@@ -263,6 +265,23 @@ def list_archive(cfg: JobConfig) -> list[str]:
 
 # -- name patterns -----------------------------------------------------------
 
+
+class _OutOfRange(ValueError):
+    """A time whose UTC equivalent falls outside the years 1 to 9999 (:class:`datetime.datetime`'s range)."""
+
+
+def _to_utc(t: _dt.datetime) -> _dt.datetime:
+    """``t`` in UTC (naive times are UTC); :class:`_OutOfRange` when UTC leaves years 1-9999."""
+    if t.tzinfo is None:
+        return t.replace(tzinfo=UTC)
+    try:
+        return t.astimezone(UTC)
+    except OverflowError:
+        raise _OutOfRange(
+            f"{t.isoformat()} is {'before year 1' if t.year < 5000 else 'after year 9999'} in UTC, "
+            "outside the times twinpass can hold (years 1 to 9999)"
+        ) from None
+
 _STRPTIME: dict[str, str] = {
     "Y": r"\d{4}", "G": r"\d{4}", "y": r"\d{2}", "m": r"\d{2}", "d": r"\d{2}", "H": r"\d{2}",
     "I": r"\d{2}", "M": r"\d{2}", "S": r"\d{2}", "f": r"\d{1,6}", "j": r"\d{3}", "U": r"\d{2}",
@@ -338,7 +357,7 @@ class NamePattern:
         """Stream and start time (UTC) of a relative path without suffix, or ``None``.
 
         Raises :class:`ValueError` when the time text matches the shape but is not a
-        valid time (e.g. month 13).
+        valid time (e.g. month 13) or falls outside years 1 to 9999 once taken to UTC.
         """
         m = self.regex.match(stem)
         if m is None:
@@ -347,7 +366,7 @@ class NamePattern:
         start = None
         if self.time_format is not None:
             t = _dt.datetime.strptime(m.group("start"), self.time_format)
-            start = t.replace(tzinfo=UTC) if t.tzinfo is None else t.astimezone(UTC)
+            start = _to_utc(t)
         return stream, start
 
 
@@ -416,8 +435,8 @@ def read_manifest(path: Path) -> tuple[dict[str, _Row], list[InvalidFile]]:
 
 
 def _parse_iso(text: str) -> _dt.datetime:
-    t = _dt.datetime.fromisoformat(text)
-    return t.replace(tzinfo=UTC) if t.tzinfo is None else t.astimezone(UTC)
+    """An ISO 8601 time as UTC; :class:`ValueError` when it does not parse or leaves years 1-9999."""
+    return _to_utc(_dt.datetime.fromisoformat(text))
 
 
 # -- discovery ---------------------------------------------------------------
@@ -646,6 +665,11 @@ def _identify(
             return row.stream, None
         try:
             return row.stream, _parse_iso(row.start)
+        except _OutOfRange as e:
+            raise _Bad(
+                f"{where}: start_time {row.start!r}: {e}",
+                "correct the start_time in the manifest (or leave it empty for an unknown time)",
+            ) from None
         except ValueError:
             raise _Bad(
                 f"{where}: start_time {row.start!r} is not an ISO 8601 time",
@@ -655,6 +679,11 @@ def _identify(
         stem = str(PurePosixPath(rel).with_suffix("")) if PurePosixPath(rel).suffix else rel
         try:
             got = pattern.match(stem)
+        except _OutOfRange as e:
+            raise _Bad(
+                f"the start time in the name, read with {{start:{pattern.time_format}}}: {e}",
+                "rename the file so its name carries the right time, or correct [archive] name_pattern",
+            ) from None
         except ValueError as e:
             raise _Bad(
                 f"the start time in the name does not parse with {{start:{pattern.time_format}}} ({e})",
@@ -677,7 +706,14 @@ def _identify(
         )
     start = info.start_time
     if start is not None:
-        start = start.replace(tzinfo=UTC) if start.tzinfo is None else start.astimezone(UTC)
+        try:
+            start = _to_utc(start)
+        except _OutOfRange as e:
+            raise _Bad(
+                f"the start time stored in the file: {e}",
+                "correct the time in the file's header (or sidecar), name the start time with [archive] "
+                "name_pattern or a manifest, or leave the file out with [archive] exclude",
+            ) from None
         parent = PurePosixPath(rel).parent.as_posix()
         return (PurePosixPath(rel).name if parent == "." else parent), start
     return rel, None
@@ -774,6 +810,31 @@ def _examine(
     warnings, its scan cache entry (or ``None``) and whether it was read for the scan.
     """
     abspath = str(root / rel)
+    scan_entry = None
+    was_scanned = False
+    try:
+        return _examine_file(cfg, abspath, rel, manifest, pattern, fingerprints, cache)
+    except Exception as e:  # one file's unforeseen failure must not stop discovery of the others
+        return (
+            InvalidFile(
+                rel,
+                f"examining it failed unexpectedly: {type(e).__name__}: {_strip_path(str(e), abspath)}",
+                f"{_REMEDY_EXCLUDE}; please report this error to the twinpass developers",
+            ),
+            [], scan_entry, was_scanned,
+        )
+
+
+def _examine_file(
+    cfg: JobConfig,
+    abspath: str,
+    rel: str,
+    manifest: dict[str, _Row] | None,
+    pattern: NamePattern | None,
+    fingerprints: bool,
+    cache: Mapping[str, Mapping[str, Any]],
+) -> tuple[FileEntry | InvalidFile, list[str], dict[str, Any] | None, bool]:
+    """:func:`_examine` but for unforeseen exceptions, which propagate."""
     scan_entry = None
     was_scanned = False
     try:
