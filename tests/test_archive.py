@@ -447,3 +447,68 @@ def test_an_unforeseen_error_examining_one_file_makes_only_that_file_invalid(tmp
     (bad,) = disc.invalid
     assert bad.path == "b.npy" and "failed unexpectedly: KeyError: 'surprise'" in bad.reason
     assert "[archive] exclude" in bad.remedy and "report" in bad.remedy
+
+
+# -- paths that are not regular files ------------------------------------------------------
+
+
+def _discover_within(cfg: JobConfig, seconds: float = 30.0):
+    """discover(cfg) on a daemon thread; fail (instead of hanging the suite) if it blocks."""
+    import threading
+
+    out: dict = {}
+    t = threading.Thread(target=lambda: out.setdefault("disc", discover(cfg)), daemon=True)
+    t.start()
+    t.join(seconds)
+    assert not t.is_alive(), f"discovery still running after {seconds} s (blocked opening a file?)"
+    return out["disc"]
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes need POSIX")
+def test_a_named_pipe_is_reported_not_opened(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "a.npy", 100)
+    os.mkfifo(root / "pipe.npy")
+    os.symlink(root / "pipe.npy", root / "to_pipe.npy")
+    disc = _discover_within(job(tmp_path, include=("*.npy",), sample_rate_hz=100.0))
+    assert [e.relpath for e in disc.files] == ["a.npy"]
+    bad = {b.path: b for b in disc.invalid}
+    assert set(bad) == {"pipe.npy", "to_pipe.npy"}
+    assert "is a named pipe (FIFO), not a regular file" in bad["pipe.npy"].reason
+    assert "reached through a symbolic link" in bad["to_pipe.npy"].reason
+    assert "only regular files" in bad["pipe.npy"].remedy and "[archive] exclude" in bad["pipe.npy"].remedy
+
+
+def test_a_broken_link_names_its_missing_target(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "a.npy", 100)
+    os.symlink(root / "gone.npy", root / "link.npy")
+    disc = discover(job(tmp_path, include=("*.npy",), sample_rate_hz=100.0))
+    assert [e.relpath for e in disc.files] == ["a.npy"]
+    (bad,) = disc.invalid
+    assert bad.path == "link.npy"
+    assert f"a symbolic link whose target {root / 'gone.npy'} does not exist" in bad.reason
+    assert "restore the target" in bad.remedy
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes need POSIX")
+def test_a_reader_refuses_a_named_pipe_without_blocking(tmp_path):
+    import threading
+
+    from twinpass.errors import InputError
+    from twinpass.io.readers import open_recording
+
+    os.mkfifo(tmp_path / "pipe.wav")
+    got: dict = {}
+
+    def attempt():
+        try:
+            open_recording(tmp_path / "pipe.wav")
+        except InputError as e:
+            got["error"] = str(e)
+
+    t = threading.Thread(target=attempt, daemon=True)
+    t.start()
+    t.join(30)
+    assert not t.is_alive(), "opening a named pipe blocked"
+    assert "is a named pipe (FIFO); only regular files can be read" in got["error"]

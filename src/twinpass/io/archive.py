@@ -9,8 +9,10 @@ Glob syntax: ``*`` (any text without ``/``), ``?`` (one character but ``/``), ``
 folders, none included). A folder that is one recording (named ``*.zarr`` or holding
 Zarr metadata) is a candidate like a file and is not searched further. Symbolic links to
 folders are followed once (no loops). The output store, the manifest and anything reached
-through a link into the output store are never taken as input. Paths are sorted, so
-discovery is deterministic.
+through a link into the output store are never taken as input. Only regular files (after
+following symbolic links) are opened: a named pipe, socket, device or broken link that the
+globs select is reported invalid without being opened. Paths are sorted, so discovery is
+deterministic.
 
 Each candidate is opened read-only with the reader the registry picks for it, to learn
 frames, channels, sample rate (Hz) and sample format without reading samples.
@@ -107,6 +109,7 @@ import datetime as _dt
 import os
 import re
 import math
+import stat
 from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -137,6 +140,7 @@ __all__ = [
     "compile_glob",
     "discover",
     "list_archive",
+    "walk_archive",
     "read_manifest",
 ]
 
@@ -213,8 +217,66 @@ def _selected(rel: str, include: list[re.Pattern[str]], exclude: list[re.Pattern
     return any(rx.match(rel) for rx in include) and not any(rx.match(rel) for rx in exclude)
 
 
+_KINDS = (
+    (stat.S_ISFIFO, "a named pipe (FIFO)"),
+    (stat.S_ISSOCK, "a socket"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+    (stat.S_ISDIR, "a folder"),
+)
+_REMEDY_NOT_REGULAR = (
+    "only regular files (or links to them) are read: put the recording there as a regular file, "
+    "or leave the path out with [archive] exclude"
+)
+
+
+def _not_regular(path: str, rel: str) -> InvalidFile | None:
+    """Why the candidate at ``path`` cannot be opened as a regular file, or ``None`` when it can.
+
+    Checked before any open: opening a named pipe blocks until something writes to it.
+    """
+    try:
+        st = os.stat(path)  # follows symbolic links
+    except FileNotFoundError:
+        if os.path.islink(path):
+            try:
+                target = os.readlink(path)
+            except OSError:
+                target = "?"
+            return InvalidFile(
+                rel,
+                f"a symbolic link whose target {target} does not exist",
+                "restore the target, correct or remove the link, or leave it out with [archive] exclude",
+            )
+        return InvalidFile(rel, "vanished while the archive was listed", "run again once the archive is settled")
+    except OSError as e:
+        what = "a symbolic link that cannot be followed" if os.path.islink(path) else "cannot be examined"
+        return InvalidFile(rel, f"{what} ({e.strerror or e})", _REMEDY_EXCLUDE)
+    if stat.S_ISREG(st.st_mode):
+        return None
+    kind = next((name for test, name in _KINDS if test(st.st_mode)), "not a regular file")
+    link = " (reached through a symbolic link)" if os.path.islink(path) else ""
+    return InvalidFile(rel, f"is {kind}{link}, not a regular file", _REMEDY_NOT_REGULAR)
+
+
 def list_archive(cfg: JobConfig) -> list[str]:
     """Relative POSIX paths of the candidate input files of ``cfg``'s archive, sorted.
+
+    Candidates that are not regular files (named pipes, sockets, devices, broken links) are
+    left out; :func:`walk_archive` reports them.
+
+    Raises :class:`ArchiveError` when the archive root is not a readable folder.
+    """
+    return walk_archive(cfg)[0]
+
+
+def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
+    """The candidate input files of ``cfg``'s archive (relative POSIX paths, sorted) and the
+    paths matching the globs that cannot be taken as input, each with the reason.
+
+    Only regular files (after following symbolic links) and folders holding one recording
+    are candidates; a named pipe, socket, device or broken link that the globs select is
+    reported instead, without being opened.
 
     Raises :class:`ArchiveError` when the archive root is not a readable folder.
     """
@@ -233,6 +295,7 @@ def list_archive(cfg: JobConfig) -> list[str]:
     skip_files = {os.path.realpath(manifest)} if manifest is not None else set()
 
     found: list[str] = []
+    refused: list[InvalidFile] = []
     seen_dirs: set[str] = set()
     for dirpath, dirnames, filenames in os.walk(root, followlinks=True):
         real = os.path.realpath(dirpath)
@@ -259,8 +322,12 @@ def list_archive(cfg: JobConfig) -> list[str]:
             real_file = os.path.realpath(os.path.join(dirpath, name))
             if real_file in skip_files or any(_inside(real_file, f) for f in fenced):
                 continue
+            bad = _not_regular(os.path.join(dirpath, name), rel)
+            if bad is not None:
+                refused.append(bad)
+                continue
             found.append(rel)
-    return sorted(found)
+    return sorted(found), sorted(refused, key=lambda b: b.path)
 
 
 # -- name patterns -----------------------------------------------------------
@@ -904,7 +971,8 @@ def discover(
     if cfg.manifest_path is not None:
         manifest, conflicts = read_manifest(cfg.manifest_path)
         invalid.extend(conflicts)
-    rels = list_archive(cfg)
+    rels, refused = walk_archive(cfg)
+    invalid.extend(b for b in refused if b.path not in {i.path for i in invalid})
     entries: list[FileEntry] = []
     warnings: list[str] = []
     cache = scan_cache or {}

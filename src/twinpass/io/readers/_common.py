@@ -15,6 +15,7 @@ import datetime as _dt
 import math
 import operator
 import os
+import stat
 import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -254,9 +255,14 @@ def read_exact(fh: BinaryIO, path: str, offset: int, nbytes: int) -> np.ndarray:
 
 
 def open_binary(path: str) -> tuple[BinaryIO, int]:
-    """Open ``path`` read-only (``'rb'``, unbuffered); return the handle and its size in bytes."""
+    """Open ``path`` read-only (``'rb'``, unbuffered); return the handle and its size in bytes.
+
+    Only regular files are opened: a named pipe, socket or device raises
+    :class:`~twinpass.errors.InputError` (opened non-blocking, so a pipe without a writer
+    does not hang).
+    """
     try:
-        fh = open(path, "rb", buffering=0)
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
     except FileNotFoundError:
         raise InputError(f"{path}: no such file", path=path) from None
     except IsADirectoryError:
@@ -264,11 +270,22 @@ def open_binary(path: str) -> tuple[BinaryIO, int]:
     except OSError as exc:
         raise InputError(f"{path}: cannot be opened for reading ({exc.strerror or exc})", path=path) from None
     try:
-        size = os.fstat(fh.fileno()).st_size
+        st = os.fstat(fd)
+        if not stat.S_ISREG(st.st_mode):
+            kind = "a directory" if stat.S_ISDIR(st.st_mode) else (
+                "a named pipe (FIFO)" if stat.S_ISFIFO(st.st_mode) else "not a regular file (a socket or device)"
+            )
+            raise InputError(f"{path}: is {kind}; only regular files can be read", path=path)
+        if hasattr(os, "set_blocking"):
+            os.set_blocking(fd, True)
+        fh = os.fdopen(fd, "rb", buffering=0)
     except OSError as exc:  # pragma: no cover - fstat on an open file rarely fails
-        fh.close()
+        os.close(fd)
         raise InputError(f"{path}: cannot stat ({exc})", path=path) from None
-    return fh, size  # type: ignore[return-value]
+    except BaseException:
+        os.close(fd)
+        raise
+    return fh, st.st_size  # type: ignore[return-value]
 
 
 # --------------------------------------------------------------------------- recordings
