@@ -512,3 +512,74 @@ def test_a_reader_refuses_a_named_pipe_without_blocking(tmp_path):
     t.join(30)
     assert not t.is_alive(), "opening a named pipe blocked"
     assert "is a named pipe (FIFO); only regular files can be read" in got["error"]
+
+
+# -- folders that cannot be listed --------------------------------------------------------
+
+
+def _unlistable(monkeypatch, folder: Path) -> None:
+    """An injected fault: os.scandir of ``folder`` fails as for a folder without read permission
+    (the tests run as root, who may list any folder)."""
+    real = os.scandir
+
+    def scandir(path="."):
+        if os.path.realpath(os.fspath(path)) == os.path.realpath(folder):
+            raise PermissionError(13, "Permission denied", os.fspath(path))
+        return real(path)
+
+    monkeypatch.setattr(os, "scandir", scandir)
+
+
+def test_a_folder_that_cannot_be_listed_is_reported_and_its_outputs_are_kept(tmp_path, monkeypatch):
+    from test_bad_inputs import PATTERN, load, pcm16, run, stem, write_wav
+
+    from twinpass.io.store import OutputStore
+    from twinpass.job import prepare
+
+    root = tmp_path / "archive"
+    a, b = stem("a") + ".wav", stem("b") + ".wav"
+    write_wav(root, a, pcm16(1000))
+    write_wav(root, b, pcm16(1000, seed=1))
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN})
+    assert {o.relpath: o.status for o in run(cfg).outcomes} == {a: "complete", b: "complete"}
+    before = OutputStore.open(cfg.store_location, mode="r").read("b/b_20260301T000000")
+
+    _unlistable(monkeypatch, root / "b")
+    disc = discover(cfg)
+    assert [e.relpath for e in disc.files] == [a]
+    (folder,) = disc.invalid
+    assert folder.path == "b/" and "this folder cannot be listed (Permission denied)" in folder.reason
+    assert "make the folder readable" in folder.remedy and '[archive] exclude = ["b/**"]' in folder.remedy
+
+    plan = prepare(cfg, OutputStore.open(cfg.store_location, mode="r")).plan
+    assert plan.removed == ()
+    gone = plan.file(b)
+    assert gone.status == "invalid" and "its folder b/ cannot be listed" in gone.reason
+    assert "its output is kept" in gone.reason and gone.remedy == folder.remedy
+    assert plan.file(a).status == "unchanged"
+
+    res = run(cfg)
+    assert {o.relpath: o.status for o in res.outcomes if o.status != "skipped"} == {}
+    assert {p.relpath for p in res.invalid} == {"b/", b}
+    after = OutputStore.open(cfg.store_location, mode="r")
+    np.testing.assert_array_equal(after.read("b/b_20260301T000000"), before)
+    assert b in after.file_records()
+
+
+def test_an_unlistable_folder_left_out_by_exclude_is_not_reported(tmp_path, monkeypatch):
+    root = tmp_path / "archive"
+    npy(root, "a/x.npy", 100)
+    npy(root, "private/y.npy", 100)
+    _unlistable(monkeypatch, root / "private")
+    cfg = job(tmp_path, include=("**/*.npy",), exclude=("private/**",), sample_rate_hz=100.0)
+    disc = discover(cfg)
+    assert [e.relpath for e in disc.files] == ["a/x.npy"] and disc.invalid == ()
+    assert discover(job(tmp_path, include=("**/*.npy",), sample_rate_hz=100.0)).invalid[0].path == "private/"
+
+
+def test_an_archive_root_that_cannot_be_listed_raises(tmp_path, monkeypatch):
+    root = tmp_path / "archive"
+    npy(root, "x.npy", 100)
+    _unlistable(monkeypatch, root)
+    with pytest.raises(ArchiveError, match="cannot be listed \\(Permission denied\\)"):
+        discover(job(tmp_path, include=("*.npy",), sample_rate_hz=100.0))

@@ -14,7 +14,9 @@ incomplete same fingerprint and design, output not complete: resume (blocks
 neighbour  unchanged itself, but its output near a file join depends on input
            that changed: recompute the given spans
 removed    a record whose input is no longer in the archive
-invalid    reported by discovery or segment building; not processed
+invalid    reported by discovery or segment building; not processed (also a record
+           under a folder discovery could not list, reported as ``FOLDER/``: its
+           output is kept, it is not taken as removed)
 ========== ==================================================================
 
 Neighbours. A block is filtered with a halo of ``halo`` samples (the filter's effective
@@ -532,6 +534,22 @@ def make_plan(
                 reason=inv.reason, record=rec, frames=0 if rec is None else int(rec.frames), remedy=inv.remedy,
             )
         )
+    # A folder discovery could not list (reported as "FOLDER/"): files recorded under it are
+    # unknown, not gone; their outputs are kept and they are reported with the folder's remedy.
+    unlisted = [inv for inv in invalid if inv.path.endswith("/")]
+    for path, rec in sorted(records.items()):
+        if path in present or any(b.relpath == path for b in bad):
+            continue
+        folder = next((inv for inv in unlisted if path.startswith(inv.path)), None)
+        if folder is not None:
+            bad.append(
+                FilePlan(
+                    relpath=path, stream=None, segment=rec.segment, status="invalid",
+                    reason=f"not examined: its folder {folder.path} cannot be listed, so whether it changed or "
+                    "was removed is unknown; its output is kept as it is",
+                    record=rec, frames=int(rec.frames), remedy=folder.remedy,
+                )
+            )
     known = present | {b.relpath for b in bad}
     removed = tuple(
         FilePlan(

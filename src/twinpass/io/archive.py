@@ -9,7 +9,9 @@ Glob syntax: ``*`` (any text without ``/``), ``?`` (one character but ``/``), ``
 folders, none included). A folder that is one recording (named ``*.zarr`` or holding
 Zarr metadata) is a candidate like a file and is not searched further. Symbolic links to
 folders are followed once (no loops). The output store, the manifest and anything reached
-through a link into the output store are never taken as input. Only regular files (after
+through a link into the output store are never taken as input. A folder that cannot be
+listed is reported (as ``FOLDER/``), and the files recorded under it are not taken as
+removed. Only regular files (after
 following symbolic links) are opened: a named pipe, socket, device or broken link that the
 globs select is reported invalid without being opened. Paths are sorted, so discovery is
 deterministic.
@@ -276,9 +278,13 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
 
     Only regular files (after following symbolic links) and folders holding one recording
     are candidates; a named pipe, socket, device or broken link that the globs select is
-    reported instead, without being opened.
+    reported instead, without being opened. A folder that cannot be listed (permissions, an
+    I/O error) is reported as one entry whose path is the folder's with a trailing ``/``
+    (unless ``[archive] exclude`` leaves out everything below it); the planner keeps the
+    outputs of files recorded under it instead of calling them removed.
 
-    Raises :class:`ArchiveError` when the archive root is not a readable folder.
+    Raises :class:`ArchiveError` when the archive root is not a readable folder or cannot be
+    listed.
     """
     root = cfg.archive_root
     if not root.is_dir():
@@ -297,7 +303,37 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
     found: list[str] = []
     refused: list[InvalidFile] = []
     seen_dirs: set[str] = set()
-    for dirpath, dirnames, filenames in os.walk(root, followlinks=True):
+
+    def unlisted(err: OSError) -> None:
+        """A folder os.walk cannot list: reported (its files are unknown, not gone)."""
+        folder = str(err.filename) if err.filename is not None else str(root)
+        real = os.path.realpath(folder)
+        if real == os.path.realpath(root):
+            raise ArchiveError(
+                f"archive root {root} cannot be listed ({err.strerror or err}); make it readable by the "
+                "user running twinpass",
+                path=str(root),
+            )
+        if any(_inside(real, f) for f in fenced):
+            return
+        try:
+            rel = Path(folder).relative_to(root).as_posix()
+        except ValueError:
+            rel = folder
+        # a NUL cannot be in a file name: only patterns excluding everything below match these
+        if all(any(rx.match(probe) for rx in exclude) for probe in (f"{rel}/\0", f"{rel}/\0/\0")):
+            return
+        refused.append(
+            InvalidFile(
+                rel + "/",
+                f"this folder cannot be listed ({err.strerror or err}): the files in it were not examined, "
+                "and outputs of files recorded there are kept as they are",
+                f'make the folder readable (and searchable) for the user running twinpass, or leave it out '
+                f'with [archive] exclude = ["{rel}/**"]',
+            )
+        )
+
+    for dirpath, dirnames, filenames in os.walk(root, onerror=unlisted, followlinks=True):
         real = os.path.realpath(dirpath)
         if real in seen_dirs or any(_inside(real, f) for f in fenced):
             dirnames[:] = []
