@@ -583,3 +583,41 @@ def test_an_archive_root_that_cannot_be_listed_raises(tmp_path, monkeypatch):
     _unlistable(monkeypatch, root)
     with pytest.raises(ArchiveError, match="cannot be listed \\(Permission denied\\)"):
         discover(job(tmp_path, include=("*.npy",), sample_rate_hz=100.0))
+
+
+# -- names that are not UTF-8 ---------------------------------------------------------------
+
+
+@pytest.mark.skipif(os.name == "nt", reason="Windows file names are always Unicode")
+def test_a_name_that_is_not_utf8_is_reported_with_a_rename_remedy(tmp_path, capsys):
+    from test_bad_inputs import write_config
+
+    from twinpass import cli
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+
+    root = tmp_path / "archive"
+    npy(root, "good/x.npy", 100)
+    folder = os.fsdecode(os.path.join(os.fsencode(root), b"s\xff"))  # a Latin-1 name, surrogate-escaped
+    npy(Path(folder), "x.npy", 100)
+    npy(root, "good/" + os.fsdecode(b"caf\xe9.npy"), 100)
+    cfg = job(tmp_path, include=("**/*.npy",), sample_rate_hz=100.0)
+    disc = discover(cfg)
+    assert [e.relpath for e in disc.files] == ["good/x.npy"]
+    bad = {b.path: b for b in disc.invalid}
+    assert set(bad) == {"s\\xff/x.npy", "good/caf\\xe9.npy"}
+    assert "the folder name 's\\xff' is not valid UTF-8" in bad["s\\xff/x.npy"].reason
+    assert bad["s\\xff/x.npy"].remedy.startswith("rename the folder to a UTF-8 name")
+    assert "the file name 'caf\\xe9.npy' is not valid UTF-8" in bad["good/caf\\xe9.npy"].reason
+    for b in bad.values():
+        b.message().encode("utf-8")  # printable and storable
+
+    # a plan and a run (carry mode too) go through and name the files
+    for mode in ("halo", "carry"):
+        config = write_config(tmp_path, name=f"{mode}.toml", archive={"include": ["**/*.npy"], "sample_rate_hz": 100.0},
+                              output={"store": f"out/{mode}.zarr"}, processing={"mode": mode})
+        assert cli.main(["plan", str(config), "--json"]) == 0
+        assert "s\\\\xff/x.npy" in capsys.readouterr().out  # JSON escapes the backslash
+        res = run_job(load_config(config), scheduler="threads", workers=1)
+        assert {o.relpath: o.status for o in res.outcomes} == {"good/x.npy": "complete"}
+        assert {p.relpath for p in res.invalid} == set(bad)

@@ -13,7 +13,8 @@ through a link into the output store are never taken as input. A folder that can
 listed is reported (as ``FOLDER/``), and the files recorded under it are not taken as
 removed. Only regular files (after
 following symbolic links) are opened: a named pipe, socket, device or broken link that the
-globs select is reported invalid without being opened. Paths are sorted, so discovery is
+globs select is reported invalid without being opened, and so is a path that is not valid
+UTF-8 (it could not name an output array). Paths are sorted, so discovery is
 deterministic.
 
 Each candidate is opened read-only with the reader the registry picks for it, to learn
@@ -261,6 +262,37 @@ def _not_regular(path: str, rel: str) -> InvalidFile | None:
     return InvalidFile(rel, f"is {kind}{link}, not a regular file", _REMEDY_NOT_REGULAR)
 
 
+def _shown(rel: str) -> str:
+    """``rel`` as printable text: bytes of a name that are not UTF-8 written as ``\\xNN``."""
+    return rel.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+
+
+def _not_utf8(rel: str) -> InvalidFile | None:
+    """Why a path whose name is not UTF-8 (surrogate-escaped by the OS layer) is refused, or ``None``."""
+    try:
+        rel.encode("utf-8")
+        return None
+    except UnicodeEncodeError:
+        pass
+    parts = rel.split("/")
+    k = next(i for i, p in enumerate(parts) if not _encodes(p))
+    what = "file" if k == len(parts) - 1 else "folder"
+    return InvalidFile(
+        _shown(rel),
+        f"the {what} name '{_shown(parts[k])}' is not valid UTF-8 (the bytes shown as \\xNN); output "
+        "array names, the store's records and reports need UTF-8 text",
+        f"rename the {what} to a UTF-8 name (e.g. with convmv), or leave it out with [archive] exclude",
+    )
+
+
+def _encodes(text: str) -> bool:
+    try:
+        text.encode("utf-8")
+        return True
+    except UnicodeEncodeError:
+        return False
+
+
 def list_archive(cfg: JobConfig) -> list[str]:
     """Relative POSIX paths of the candidate input files of ``cfg``'s archive, sorted.
 
@@ -278,7 +310,8 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
 
     Only regular files (after following symbolic links) and folders holding one recording
     are candidates; a named pipe, socket, device or broken link that the globs select is
-    reported instead, without being opened. A folder that cannot be listed (permissions, an
+    reported instead, without being opened, and so is a path whose name is not UTF-8 (shown
+    with its odd bytes as ``\\xNN``). A folder that cannot be listed (permissions, an
     I/O error) is reported as one entry whose path is the folder's with a trailing ``/``
     (unless ``[archive] exclude`` leaves out everything below it); the planner keeps the
     outputs of files recorded under it instead of calling them removed.
@@ -347,7 +380,11 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
                 # a folder holding one recording (e.g. a Zarr array): a candidate, never descended
                 real_dir = os.path.realpath(os.path.join(dirpath, name))
                 if _selected(rel, include, exclude) and not any(_inside(real_dir, f) for f in fenced):
-                    found.append(rel)
+                    bad = _not_utf8(rel)
+                    if bad is not None:
+                        refused.append(bad)
+                    else:
+                        found.append(rel)
                 continue
             keep.append(name)
         dirnames[:] = keep
@@ -358,7 +395,7 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
             real_file = os.path.realpath(os.path.join(dirpath, name))
             if real_file in skip_files or any(_inside(real_file, f) for f in fenced):
                 continue
-            bad = _not_regular(os.path.join(dirpath, name), rel)
+            bad = _not_utf8(rel) or _not_regular(os.path.join(dirpath, name), rel)
             if bad is not None:
                 refused.append(bad)
                 continue
