@@ -520,3 +520,19 @@ def test_cli_missing_config_and_bad_value_exit_2(tmp_path, capsys, command):
     assert cli.main(args) == 2
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and "[output] dtype = 'float16' is not one of: float32, float64" in err
+
+
+def test_plain_riff_over_4_gib_with_wrapped_sizes_is_left_out_unless_asked(tmp_path):
+    from test_readers import _wrapped_riff
+
+    root = tmp_path / "archive"
+    rel = stem("huge") + ".wav"
+    (root / rel).parent.mkdir(parents=True)
+    frames, _head, _tail = _wrapped_riff(root / rel)  # sparse: no 4 GiB written
+    expect = {rel: (["over 4 GiB", "declares", "wrapped at 4 GiB", f"lose most of the {frames} frames"],
+                    ["rewrite the file as RF64", '[archive] wrapped_sizes = "read"', REMEDY_EXCLUDE])}
+    _check_reported(invalid_by_path(load(tmp_path, archive={"name_pattern": PATTERN})), expect)
+    assert "reader option" not in invalid_by_path(load(tmp_path, archive={"name_pattern": PATTERN}))[rel].reason
+    disc = discover(load(tmp_path, archive={"name_pattern": PATTERN, "wrapped_sizes": "read"}))
+    assert [(f.relpath, f.frames) for f in disc.files] == [(rel, frames)]
+    assert any(w.startswith(rel + ": ") and f"read all {frames} whole frames" in w for w in disc.warnings)

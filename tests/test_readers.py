@@ -175,6 +175,55 @@ def test_rf64_data_beyond_4_gib(tmp_path):
         assert not rec.read(2**30, 2**30 + 10).any()
 
 
+def _wrapped_riff(path: Path, ch: int = 2, extra_frames: int = 10_000) -> tuple[int, np.ndarray, np.ndarray]:
+    """A plain RIFF file over 4 GiB written the way a writer without RF64 leaves it: its RIFF and
+    data sizes wrapped modulo 2**32. Sparse (header, truncate), known samples at both ends.
+    Returns the real frame count, the first 100 and the last 100 frames."""
+    frames = (2**32 + extra_frames * 2 * ch) // (2 * ch)
+    nbytes = frames * 2 * ch
+    fmt = fmt_chunk(PCM, ch, 48000, 16)
+    header = riff([fmt, chunk(b"data", b"", size=nbytes % 2**32)], riff_size=(4 + len(fmt) + 8 + nbytes) % 2**32)
+    head, tail = _ints("int16", (100, ch)), _ints("int16", (100, ch))
+    with open(path, "wb") as f:
+        f.write(header + head.astype("<i2").tobytes())
+        f.truncate(len(header) + nbytes)
+        f.seek(len(header) + (frames - 100) * 2 * ch)
+        f.write(tail.astype("<i2").tobytes())
+    return frames, head, tail
+
+
+def test_plain_riff_over_4_gib_with_wrapped_sizes_is_refused(tmp_path):
+    path = tmp_path / "wrapped.wav"
+    frames, _head, _tail = _wrapped_riff(path)
+    with pytest.raises(CorruptInputError) as e:
+        open_recording(path, format="wav")
+    msg = str(e.value)
+    for text in ("plain RIFF WAVE file of", "over 4 GiB", "data chunk at byte 36 is the last chunk but declares",
+                 "= 10000 frames", "wrapped at 4 GiB", f"lose most of the {frames} frames",
+                 "Rewrite the file as RF64 (or W64)", 'wrapped_sizes="read"'):
+        assert text in msg, (text, msg)
+
+
+def test_plain_riff_over_4_gib_read_to_its_end_when_asked(tmp_path):
+    path = tmp_path / "wrapped.wav"
+    frames, head, tail = _wrapped_riff(path)
+    with open_recording(path, format="wav", options={"wrapped_sizes": "read"}) as rec:
+        assert rec.info.frames == frames
+        assert np.array_equal(rec.read(0, 100), head / 32768.0)
+        assert np.array_equal(rec.read(frames - 100, frames), tail / 32768.0)
+        (warning,) = rec.info.warnings
+        assert f"read all {frames} whole frames up to the end of the file" in warning
+    with pytest.raises(ConfigError, match="wrapped_sizes='yes'"):
+        open_recording(path, format="wav", options={"wrapped_sizes": "yes"})
+
+
+def test_plain_riff_under_4_gib_with_trailing_bytes_is_only_a_warning(tmp_path):
+    x = _ints("int16", (300, 2))
+    blob = riff([fmt_chunk(PCM, 2, 8000, 16), chunk(b"data", x.astype("<i2").tobytes())]) + bytes(1000)
+    with open_recording(_write(tmp_path / "tail.wav", blob)) as rec:
+        assert rec.info.frames == 300 and "1000 bytes after the end of the RIFF chunk" in rec.info.warnings[0]
+
+
 def test_extensible_pcm16_matches_scipy(tmp_path):
     # Microsoft "Multiple channel audio data and WAVE files": WAVEFORMATEXTENSIBLE, cbSize 22,
     # dwChannelMask (0x33 = FL|FR|BL|BR), SubFormat KSDATAFORMAT_SUBTYPE_PCM.

@@ -83,6 +83,9 @@ class ArchiveConfig:
     """fast (size + first and last MiB) | full (every byte)."""
     truncated: str = "error"
     """WAV data chunk shorter than its header claims: error | warn (read whole frames)."""
+    wrapped_sizes: str = "error"
+    """Plain RIFF WAV over 4 GiB whose 32-bit sizes wrapped (data the last chunk, ending before
+    the file): error | read (the data runs to the end of the file)."""
 
 
 @dataclass(frozen=True)
@@ -221,6 +224,7 @@ _CHOICES: dict[tuple[str, str], tuple[str, ...]] = {
     ("processing", "nonfinite"): ("fail", "split", "interpolate"),
     ("archive", "fingerprint"): ("fast", "full"),
     ("archive", "truncated"): ("error", "warn"),
+    ("archive", "wrapped_sizes"): ("error", "read"),
     ("output", "dtype"): ("float32", "float64"),
     ("output", "compression"): ("none", "lz4", "zstd"),
 }

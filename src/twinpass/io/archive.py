@@ -131,7 +131,7 @@ from twinpass.core.nonfinite import (
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
-from twinpass.io.readers._common import TRUNCATED_HINT
+from twinpass.io.readers._common import TRUNCATED_HINT, WRAPPED_HINT, WRAPPED_REWRITE
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
@@ -632,6 +632,8 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
         opts: dict[str, Any] = {}
         if "truncated" in accepted:
             opts["truncated"] = cfg.archive.truncated
+        if "wrapped_sizes" in accepted and cfg.archive.wrapped_sizes != "error":
+            opts["wrapped_sizes"] = cfg.archive.wrapped_sizes
         with open_recording(abspath, format=reader.name, options=opts) as rec:
             info, spec = rec.info, rec.spec
         if info.sample_rate_hz is None and cfg.archive.sample_rate_hz is not None and "sample_rate_hz" in accepted:
@@ -645,6 +647,12 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
             # the reader's hint names its own option; the remedy names the configuration key
             text = text.replace(f"; {TRUNCATED_HINT}", "")
             remedy = f"set {_CONFIG_TRUNCATED} to filter the whole frames that are present, or " + remedy
+        if WRAPPED_HINT in text:
+            text = text.replace(f". {WRAPPED_REWRITE}; {WRAPPED_HINT}", "")
+            remedy = (
+                'rewrite the file as RF64 (or W64), or set [archive] wrapped_sizes = "read" to read every '
+                "whole frame up to the end of the file, or " + _REMEDY_EXCLUDE
+            )
         raise _Bad(f"cannot be opened: {text}", remedy) from None
     if info.frames <= 0:
         raise _Bad("holds no samples (0 frames)", "remove it or leave it out with [archive] exclude")

@@ -35,6 +35,13 @@ TRUNCATED_HINT = 'to read up to the last whole frame set the reader option trunc
 (:mod:`twinpass.io.archive`) gives the configuration key in its remedy instead."""
 
 
+WRAPPED_HINT = 'to read every whole frame up to the end of the file set the reader option wrapped_sizes="read"'
+"""The last clause of the WAV reader's error for a plain RIFF file over 4 GiB whose 32-bit sizes
+wrapped (after "; "); discovery gives the configuration key in its remedy instead."""
+WRAPPED_MODES = ("error", "read")
+WRAPPED_REWRITE = "Rewrite the file as RF64 (or W64)"
+
+
 def is_url(path: str) -> bool:
     """True for ``scheme://...`` locations, which are passed through untouched."""
     return "://" in path

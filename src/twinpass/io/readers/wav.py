@@ -27,6 +27,11 @@ Reader options
 header claims (or not a whole number of frames) is an error by default; with ``"warn"`` the
 recording ends at the last whole frame and ``RecordingInfo.warnings`` says so.
 ``sample_rate_hz``: optional; must agree with the header's rate.
+``wrapped_sizes``: ``"error"`` (default) or ``"read"``. A plain RIFF file (not RF64/BW64) larger
+than 4 GiB whose ``data`` chunk is the last chunk and ends, by its 32-bit size, before the end of
+the file most likely had its sizes wrapped at 4 GiB by a writer that did not switch to RF64:
+reading the declared size would lose most samples, so this is an error by default; with
+``"read"`` the data runs to the end of the file (its whole frames) and a warning says so.
 
 Start time
 ----------
@@ -46,10 +51,13 @@ import uuid
 from dataclasses import dataclass, field
 from typing import Any, BinaryIO
 
-from ...errors import CorruptInputError, UnsupportedFormatError
+from ...errors import ConfigError, CorruptInputError, UnsupportedFormatError
 from ._common import (
     TRUNCATED_HINT,
     UTC,
+    WRAPPED_HINT,
+    WRAPPED_MODES,
+    WRAPPED_REWRITE,
     Codec,
     FileReader,
     InterleavedRecording,
@@ -110,8 +118,12 @@ def _printable(cid: bytes) -> bool:
     return len(cid) == 4 and all(0x20 <= c <= 0x7E for c in cid)
 
 
-def _walk(path: str, fh: BinaryIO, size: int) -> _Layout:
-    """Walk the RIFF/RF64/BW64 chunks; return where fmt, data and bext are."""
+def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout:
+    """Walk the RIFF/RF64/BW64 chunks; return where fmt, data and bext are.
+
+    ``wrapped``: what to do with a plain RIFF file over 4 GiB whose sizes wrapped (module
+    documentation, option ``wrapped_sizes``).
+    """
     head = pread(fh, 0, 12)
     if len(head) < 12:
         if head[:4] in (b"RIFF", b"RF64", b"BW64"):
@@ -235,7 +247,10 @@ def _walk(path: str, fh: BinaryIO, size: int) -> _Layout:
                 path=path,
             )
     data_end = lay.data_offset + lay.data_size
-    if riff_end > size and data_end <= size:
+    trailing = size - (data_end + (lay.data_size & 1))
+    if rid == b"RIFF" and size > _U32_MAX and trailing > 0 and data_end + (lay.data_size & 1) + 8 > walk_end:
+        _wrapped_sizes(path, lay, size, riff_size, trailing, wrapped)
+    elif riff_end > size and data_end <= size:
         lay.warnings.append(
             f"the RIFF size at byte 4 says {riff_end} bytes but the file has {size}; "
             "the data chunk is complete"
@@ -243,6 +258,38 @@ def _walk(path: str, fh: BinaryIO, size: int) -> _Layout:
     elif riff_end < size - 1:
         lay.warnings.append(f"{size - riff_end} bytes after the end of the RIFF chunk (byte {riff_end}) ignored")
     return lay
+
+
+def _wrapped_sizes(path: str, lay: _Layout, size: int, riff_size: int, trailing: int, mode: str) -> None:
+    """A plain RIFF file over 4 GiB whose last chunk, data, ends before the file: raise, or
+    (``mode == "read"``) let the data run to the end of the file."""
+    align = max(lay.block_align, 1)
+    whole = (size - lay.data_offset) // align
+    declared = lay.data_size // align
+    wraps = (size - lay.data_offset - lay.data_size) % (1 << 32) in (0, 1)
+    why = (
+        "consistent with 32-bit sizes that wrapped at 4 GiB (a writer that did not switch to RF64)"
+        if wraps
+        else "most likely its 32-bit sizes could not hold the real ones (a plain RIFF file cannot describe more "
+        "than 4 GiB)"
+    )
+    what = (
+        f"a plain RIFF WAVE file of {size} bytes (over 4 GiB), whose data chunk at byte {lay.data_chunk} is the "
+        f"last chunk but declares {lay.data_size} bytes = {declared} frames (RIFF size {riff_size} at byte 4): "
+        f"{trailing} bytes follow its declared end, {why}"
+    )
+    if mode == "error":
+        raise CorruptInputError(
+            f"{path}: {what}; reading the declared size would lose most of the {whole} frames in the file. "
+            f"{WRAPPED_REWRITE}; {WRAPPED_HINT}",
+            path=path,
+        )
+    lay.data_size = whole * align
+    rest = (size - lay.data_offset) % align
+    lay.warnings.append(
+        f"{what}; read all {whole} whole frames up to the end of the file"
+        + (f" (the last {rest} bytes, less than a frame, ignored)" if rest else "")
+    )
 
 
 def _parse_fmt(path: str, lay: _Layout, pos: int, body: bytes, csize: int) -> None:
@@ -347,12 +394,17 @@ class WavReader(FileReader):
 
     name = "wav"
     suffixes = (".wav", ".wave", ".bwf", ".rf64")
-    options = ("truncated", "sample_rate_hz")
+    options = ("truncated", "sample_rate_hz", "wrapped_sizes")
 
     def _open_file(self, path: str, fh: BinaryIO, size: int, options: dict[str, Any]) -> InterleavedRecording:
         mode = truncated_mode(path, options)
         rate_opt = option_rate(path, options)
-        lay = _walk(path, fh, size)
+        wrapped = options.get("wrapped_sizes", "error")
+        if wrapped not in WRAPPED_MODES:
+            raise ConfigError(
+                f"{path}: option wrapped_sizes={wrapped!r} is not one of {', '.join(map(repr, WRAPPED_MODES))}"
+            )
+        lay = _walk(path, fh, size, wrapped)
         info, codec = _describe(path, lay, size, mode, rate_opt)
         spec = ReaderSpec.create(self.name, path, options)
         return InterleavedRecording(info, spec, fh, codec, lay.data_offset)
