@@ -536,3 +536,26 @@ def test_plain_riff_over_4_gib_with_wrapped_sizes_is_left_out_unless_asked(tmp_p
     disc = discover(load(tmp_path, archive={"name_pattern": PATTERN, "wrapped_sizes": "read"}))
     assert [(f.relpath, f.frames) for f in disc.files] == [(rel, frames)]
     assert any(w.startswith(rel + ": ") and f"read all {frames} whole frames" in w for w in disc.warnings)
+
+
+def test_a_name_clash_keeps_the_file_that_already_owns_the_output(tmp_path):
+    root = tmp_path / "archive"
+    owner, newcomer = stem("cl_ash") + ".wav", stem("cl ash") + ".wav"  # "cl ash" sorts first
+    write_wav(root, owner, pcm16(300))
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN})
+    assert {o.relpath: o.status for o in run(cfg).outcomes} == {owner: "complete"}
+    name = stem("cl_ash")
+    before = OutputStore.open(cfg.store_location, mode="r").read(name)
+
+    write_wav(root, newcomer, pcm16(300, seed=3))
+    res = run(cfg)
+    assert {o.relpath: o.status for o in res.outcomes} == {owner: "skipped"}
+    (bad,) = res.invalid
+    assert bad.relpath == newcomer
+    assert f"output array name {name!r} clashes with that of {owner}" in bad.reason
+    assert "which the output store already records as the source" in bad.reason and "rename the file" in bad.remedy
+    store = OutputStore.open(cfg.store_location, mode="r")
+    np.testing.assert_array_equal(store.read(name), before)
+    assert store.file_records()[owner].array_name == name and newcomer not in store.file_records()
+    # without a store's records the first by path is kept, as before
+    assert {b.path for b in discover(cfg).invalid} == {owner}

@@ -112,7 +112,9 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
     """
     read_cache = getattr(store, "read_scan_cache", None)
     cache = read_cache() if read_cache is not None else {}
-    disc = discover(cfg, scan_cache=cache)
+    records = store.file_records()
+    owners = {rec.array_name: rec.source for rec in records.values() if rec.array_name}
+    disc = discover(cfg, scan_cache=cache, owners=owners)
     segments, invalid = disc.segments()
     rates = {s.sample_rate_hz for s in segments}
     designs, design_errors = designs_for(cfg, rates)
@@ -130,7 +132,7 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         segments = keep
     digests = {fs: design_digest_for(d, cfg) for fs, d in designs.items()}
     halos = {fs: d.effective_length for fs, d in designs.items()}
-    plan = make_plan(segments, invalid, store.file_records(), digests, halos, force=force)
+    plan = make_plan(segments, invalid, records, digests, halos, force=force)
     if disc.scans != cache and hasattr(store, "write_scan_cache") and getattr(store, "read_only", True) is False:
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]

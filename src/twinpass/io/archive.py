@@ -66,8 +66,9 @@ header, zero frames, a missing sample rate, an unparsable start time or one outs
 years 1 to 9999 once taken to UTC, a path the pattern
 does not match, a second file with the same (stream, start time), a path that cannot name
 an output array (a hidden ``.name`` component, the reserved ``_twinpass`` prefix) or whose
-array name clashes with an earlier file's (``a b.wav`` and ``a_b.wav`` both give ``a_b``;
-``a.wav`` and ``a/b.wav`` would nest one array in the other), and a manifest row naming a
+array name clashes with another file's (``a b.wav`` and ``a_b.wav`` both give ``a_b``;
+``a.wav`` and ``a/b.wav`` would nest one array in the other: the file the output store
+already records as the array's source is kept, else the first by path), and a manifest row naming a
 path outside the root becomes an :class:`~twinpass.core.segments.InvalidFile` (path,
 reason, remedy) and is left out. So does a file whose examination fails in a way not
 foreseen here (the reason names the error). Problems of the configuration itself (unreadable
@@ -901,17 +902,26 @@ def _output_name(rel: str) -> str:
         raise _Bad(f"cannot name its output: {e}", _REMEDY_RENAME) from None
 
 
-def _split_name_clashes(entries: list[FileEntry]) -> tuple[list[FileEntry], list[InvalidFile]]:
-    """Keep the first file (by path) of each output array name; report the others.
+def _split_name_clashes(
+    entries: list[FileEntry], owners: Mapping[str, str] | None = None
+) -> tuple[list[FileEntry], list[InvalidFile]]:
+    """Keep one file of each output array name; report the others.
 
     Two files clash when they map to the same array name (characters outside
     ``[A-Za-z0-9._-/]`` become ``_`` and the suffix is dropped) or when one name is a folder
     of the other (``a.wav`` and ``a/b.wav``): the second would overwrite or break the first.
+    A file that ``owners`` (output array name -> the input path the store records as its
+    source) names as the source of its own array is kept first; then files go by path.
     """
+    owners = owners or {}
+
+    def owns(e: FileEntry) -> bool:
+        return owners.get(array_name(e.relpath)) == e.relpath
+
     taken: dict[str, str] = {}
     keep: list[FileEntry] = []
     bad: list[InvalidFile] = []
-    for e in sorted(entries, key=lambda e: e.relpath):
+    for e in sorted(entries, key=lambda e: (not owns(e), e.relpath)):
         name = array_name(e.relpath)
         parts = name.split("/")
         parents = ["/".join(parts[:i]) for i in range(1, len(parts))]
@@ -920,10 +930,15 @@ def _split_name_clashes(entries: list[FileEntry]) -> tuple[list[FileEntry], list
             prefix = name + "/"
             other = next((src for n, src in taken.items() if n.startswith(prefix)), None)
         if other is not None:
+            held = (
+                f", which the output store already records as the source of {array_name(other)!r}"
+                if owners.get(array_name(other)) == other
+                else ""
+            )
             bad.append(
                 InvalidFile(
                     e.relpath,
-                    f"its output array name {name!r} clashes with that of {other} ({array_name(other)!r}): "
+                    f"its output array name {name!r} clashes with that of {other} ({array_name(other)!r}){held}: "
                     "suffixes are dropped and characters outside A-Z a-z 0-9 . _ - become _",
                     _REMEDY_RENAME,
                 )
@@ -1015,7 +1030,11 @@ def _examine_file(
 
 
 def discover(
-    cfg: JobConfig, *, fingerprints: bool = True, scan_cache: Mapping[str, Mapping[str, Any]] | None = None
+    cfg: JobConfig,
+    *,
+    fingerprints: bool = True,
+    scan_cache: Mapping[str, Mapping[str, Any]] | None = None,
+    owners: Mapping[str, str] | None = None,
 ) -> Discovery:
     """Find the archive's input files, open each read-only and assign stream and start time.
 
@@ -1031,6 +1050,10 @@ def discover(
     scan_cache : mapping, optional
         :attr:`Discovery.scans` of an earlier discovery, by relative path: a float file whose
         entry still holds (see "Scan cache" in the module documentation) is not read again.
+    owners : mapping, optional
+        Output array name -> the input path the output store records as its source. When
+        two files would write one array, the one that already owns it is kept (otherwise the
+        first by path), so a new file cannot evict an existing output.
 
     Returns
     -------
@@ -1077,7 +1100,7 @@ def discover(
         entries.append(entry)
     valid, dups = _split_duplicates(entries)
     invalid.extend(dups)
-    valid, clashes = _split_name_clashes(valid)
+    valid, clashes = _split_name_clashes(valid, owners)
     invalid.extend(clashes)
     if manifest is not None:
         listed = set(rels) | {b.path for b in invalid}
