@@ -973,8 +973,6 @@ def _examine(
     warnings, its scan cache entry (or ``None``) and whether it was read for the scan.
     """
     abspath = str(root / rel)
-    scan_entry = None
-    was_scanned = False
     try:
         return _examine_file(cfg, abspath, rel, manifest, pattern, fingerprints, cache)
     except Exception as e:  # one file's unforeseen failure must not stop discovery of the others
@@ -984,7 +982,7 @@ def _examine(
                 f"examining it failed unexpectedly: {type(e).__name__}: {_strip_path(str(e), abspath)}",
                 f"{_REMEDY_EXCLUDE}; please report this error to the twinpass developers",
             ),
-            [], scan_entry, was_scanned,
+            [], None, False,
         )
 
 
