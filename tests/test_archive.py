@@ -621,3 +621,28 @@ def test_a_name_that_is_not_utf8_is_reported_with_a_rename_remedy(tmp_path, caps
         res = run_job(load_config(config), scheduler="threads", workers=1)
         assert {o.relpath: o.status for o in res.outcomes} == {"good/x.npy": "complete"}
         assert {p.relpath for p in res.invalid} == set(bad)
+
+
+def test_name_clashes_match_their_definition_on_random_paths():
+    # Two files clash when their output array names are equal or one name is a folder of
+    # the other. Kept files must be clash-free and every refused file must clash with a
+    # kept one (a brute-force check of that definition, over all pairs).
+    import random
+    from types import SimpleNamespace
+
+    from twinpass.io.archive import _split_name_clashes
+    from twinpass.io.store_util import array_name
+
+    def clash(a: str, b: str) -> bool:
+        return a == b or a.startswith(b + "/") or b.startswith(a + "/")
+
+    rng = random.Random(7)
+    parts = ["a", "b", "a b", "a_b", "c"]
+    for _ in range(200):
+        paths = sorted({"/".join(rng.choice(parts) for _ in range(rng.randint(1, 3))) + rng.choice([".wav", ".npy"])
+                        for _ in range(rng.randint(2, 12))})
+        keep, bad = _split_name_clashes([SimpleNamespace(relpath=p) for p in paths])
+        kept = [array_name(e.relpath) for e in keep]
+        assert not any(clash(x, y) for i, x in enumerate(kept) for y in kept[i + 1:]), paths
+        assert all(any(clash(array_name(b.path), k) for k in kept) for b in bad), paths
+        assert len(keep) + len(bad) == len(paths)

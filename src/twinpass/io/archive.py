@@ -918,17 +918,15 @@ def _split_name_clashes(
     def owns(e: FileEntry) -> bool:
         return owners.get(array_name(e.relpath)) == e.relpath
 
-    taken: dict[str, str] = {}
+    taken: dict[str, str] = {}  # array name -> its file
+    below: dict[str, str] = {}  # folder of taken array names -> the first file taken below it
     keep: list[FileEntry] = []
     bad: list[InvalidFile] = []
     for e in sorted(entries, key=lambda e: (not owns(e), e.relpath)):
         name = array_name(e.relpath)
         parts = name.split("/")
         parents = ["/".join(parts[:i]) for i in range(1, len(parts))]
-        other = taken.get(name) or next((taken[p] for p in parents if p in taken), None)
-        if other is None:
-            prefix = name + "/"
-            other = next((src for n, src in taken.items() if n.startswith(prefix)), None)
+        other = taken.get(name) or next((taken[p] for p in parents if p in taken), None) or below.get(name)
         if other is not None:
             held = (
                 f", which the output store already records as the source of {array_name(other)!r}"
@@ -945,6 +943,8 @@ def _split_name_clashes(
             )
             continue
         taken[name] = e.relpath
+        for p in parents:
+            below.setdefault(p, e.relpath)
         keep.append(e)
     order = {e.relpath: i for i, e in enumerate(entries)}
     return sorted(keep, key=lambda e: order[e.relpath]), bad
