@@ -309,6 +309,19 @@ def _parse_time(text: str | None) -> _dt.datetime | None:
     return t if t.tzinfo is not None else t.replace(tzinfo=_dt.timezone.utc)
 
 
+def _old_ends(members: Mapping[str, list[FileRecord]]) -> dict[str, tuple[str, str]]:
+    """First and last member (source paths) of each recorded segment whose members all have
+    recorded start times. By the start times, not by the sums of the frames: joins allow half
+    a sample each, so times drift from those sums along a long segment, but their order does not."""
+    out: dict[str, tuple[str, str]] = {}
+    for segment, recs in members.items():
+        starts = [_parse_time(r.start_time) for r in recs]
+        if recs and all(t is not None for t in starts):
+            order = sorted(zip(starts, (r.source for r in recs)))
+            out[segment] = (order[0][1], order[-1][1])
+    return out
+
+
 def _segment_start(segment_id: str | None) -> _dt.datetime | None:
     """Start time encoded in a segment id ``stream@ISO``; ``None`` when there is none."""
     if not segment_id or "@" not in segment_id:
@@ -342,12 +355,14 @@ class _SegmentPlanner:
         seg: Segment,
         records: Mapping[str, FileRecord],
         members: Mapping[str, list[FileRecord]],
+        old_ends: Mapping[str, tuple[str, str]],
         digest: str,
         halo: int,
         force: bool,
     ) -> None:
         self.seg = seg
         self.members = members
+        self.old_ends = old_ends
         self.halo = int(halo)
         self.recs = [records.get(f.relpath) for f in seg.files]
         self.own = [_own_status(r, f, digest, force) for r, f in zip(self.recs, seg.files)]
@@ -380,12 +395,9 @@ class _SegmentPlanner:
         members = self.members.get(rec.segment, [rec])
         if len(members) == 1:
             return True, True
-        starts = [_parse_time(r.start_time) for r in members]
-        if all(t is not None for t in starts):
-            # By the members' own start times: joins allow half a sample each, so times
-            # drift from the sum of the frames along a long segment, but their order does not.
-            order = sorted(zip(starts, (r.source for r in members)))
-            return order[0][1] == rec.source, order[-1][1] == rec.source
+        ends = self.old_ends.get(rec.segment)
+        if ends is not None:
+            return ends[0] == rec.source, ends[1] == rec.source
         t0 = _segment_start(rec.segment)
         if t0 is None:
             return True, True
@@ -513,13 +525,14 @@ def make_plan(
     for rec in records.values():
         if rec.segment is not None:
             members[rec.segment].append(rec)
+    old_ends = _old_ends(members)
     files: list[FilePlan] = []
     notes: list[str] = []
     present: set[str] = set()
     for seg in segments:
         digest = _lookup(design_digests, seg.sample_rate_hz, "design digest", seg)
         halo = _lookup(halos, seg.sample_rate_hz, "halo", seg)
-        files.extend(_SegmentPlanner(seg, records, members, digest, halo, force).run())
+        files.extend(_SegmentPlanner(seg, records, members, old_ends, digest, halo, force).run())
         present.update(seg.relpaths)
         if seg.break_kind == "layout":
             notes.append(f"stream {seg.stream}: new segment {seg.id}: {seg.break_reason}")
