@@ -355,6 +355,18 @@ def test_truncated_file_is_read_to_its_last_whole_frame_when_asked(tmp_path):
     disc = discover(cfg)
     assert [f.relpath for f in disc.files] == [rel] and disc.files[0].frames == 999
     assert any(w.startswith(rel + ": ") and "999" in w for w in disc.warnings)
+    # The finding reaches the user: in the plan, in the run's lines and in the status.
+    from twinpass.job import prepare
+    from twinpass.status import collect_status, format_status
+
+    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    assert any(n.startswith(rel + ": ") and "999" in n for n in prepare(cfg, store).plan.notes)
+    lines: list[str] = []
+    res = run_job(cfg, log_fn=lines.append)
+    assert [o.status for o in res.outcomes] == ["complete"]
+    assert any(line.startswith(f"note: {rel}: ") and "999" in line for line in lines), lines
+    text = format_status(collect_status(OutputStore.open(cfg.store_location, mode="r")))
+    assert "notes of the last run: 1" in text and rel in text.split("notes of the last run: 1")[1]
 
 
 def test_riff_size_larger_than_the_file_is_a_warning_only(tmp_path):

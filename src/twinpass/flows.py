@@ -372,6 +372,8 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             logger.error("left out %s: %s; %s", bad.relpath, bad.reason, bad.remedy)
         for fp in prep.plan.removed:
             logger.warning("%s: %s", fp.relpath, fp.reason)
+        for note in prep.plan.notes:
+            logger.warning("note: %s", note)
         busy = [w for w in prep.work if w.has_work]
         if head is not None:
             start = head.client_start
@@ -395,7 +397,8 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             if start is not None:
                 done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
                 outcomes.extend(done)
-        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed))
+        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
+                           list(prep.plan.notes))
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
     report_path = None
     if report:

@@ -132,7 +132,7 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         segments = keep
     digests = {fs: design_digest_for(d, cfg) for fs, d in designs.items()}
     halos = {fs: d.effective_length for fs, d in designs.items()}
-    plan = make_plan(segments, invalid, records, digests, halos, force=force)
+    plan = make_plan(segments, invalid, records, digests, halos, force=force, notes=disc.warnings)
     if disc.scans != cache and hasattr(store, "write_scan_cache") and getattr(store, "read_only", True) is False:
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]
@@ -149,6 +149,8 @@ class RunResult:
     designs: dict[float, Design]
     removed: list[FilePlan] = field(default_factory=list)
     """Files the store has outputs of that are no longer in the archive."""
+    notes: list[str] = field(default_factory=list)
+    """The plan's notes (:attr:`twinpass.core.plan.Plan.notes`)."""
 
     @property
     def failed(self) -> list[str]:
@@ -186,7 +188,8 @@ def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
                       "failed": result.failed},
                      details={"left_out": {b.relpath: f"{b.reason}; {b.remedy}" if b.remedy else b.reason
                                            for b in result.invalid},
-                              "gone": [r.relpath for r in result.removed]})
+                              "gone": [r.relpath for r in result.removed],
+                              "notes": list(result.notes)})
 
 
 def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None]) -> list[FileOutcome]:
@@ -247,6 +250,8 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             say(f"invalid: {bad.relpath}: {bad.reason}; {bad.remedy}")
         for fp in prep.plan.removed:
             say(f"{fp.relpath}: {fp.reason}")
+        for note in prep.plan.notes:
+            say(f"note: {note}")
         begin_run(store, prep)
         outcomes: list[FileOutcome] = []
         busy = [w for w in prep.work if w.has_work]
@@ -272,7 +277,8 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
                     except BaseException:  # Ctrl-C: stop the drivers before the cluster closes
                         _stop_drivers(pool, drivers, client)
                         raise
-        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed))
+        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
+                           list(prep.plan.notes))
         finish_run(store, result, cfg)
     return result
 

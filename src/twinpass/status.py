@@ -68,6 +68,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     details = store.read_run_details(str(runs[-1].get("run_id"))) if runs else {}
     left_out = {str(k): str(v) for k, v in (details.get("left_out") or {}).items()}
     gone = {str(r) for r in details.get("gone") or []}
+    notes = [str(n) for n in details.get("notes") or []]
     for f in files:
         src = str(f["source"])
         f["input"] = ("left out at the last run: " + left_out[src] if src in left_out
@@ -83,7 +84,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
             "runs_total": int(root.get("runs_total", len(runs))),
-            "left_out": left_out, "gone": sorted(gone)}
+            "left_out": left_out, "gone": sorted(gone), "notes": notes}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -135,7 +136,8 @@ def format_status(status: dict[str, Any]) -> str:
     for title, entries in (("left out by the last run (invalid input; an output made earlier is kept as it was)",
                             [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
                            ("outputs whose input is no longer in the archive (kept as they were)",
-                            list(status.get("gone") or []))):
+                            list(status.get("gone") or [])),
+                           ("notes of the last run", list(status.get("notes") or []))):
         if entries:
             lines.append(f"{title}: {len(entries)}")
             lines += [f"  {e}" for e in entries[:LISTED]]

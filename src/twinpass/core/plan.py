@@ -222,7 +222,8 @@ class Plan:
     halos: Mapping[float, int] = field(default_factory=dict)
     """Halo in samples per sample rate (Hz), as given to :func:`make_plan`."""
     notes: tuple[str, ...] = ()
-    """Things worth a look that are not errors (rate or channel changes inside a stream)."""
+    """Things worth a look that are not errors: discovery's findings (a file read up to its
+    last whole frame, NaN runs filled...) and rate or channel changes inside a stream."""
 
     def all_files(self) -> tuple[FilePlan, ...]:
         """Valid, removed and invalid file plans, in that order."""
@@ -499,6 +500,7 @@ def make_plan(
     design_digests: Mapping[float, str],
     halos: Mapping[float, int],
     force: bool = False,
+    notes: Sequence[str] = (),
 ) -> Plan:
     """Decide what a run must compute.
 
@@ -516,6 +518,9 @@ def make_plan(
         Halo per sample rate, samples (the design's effective length).
     force : bool
         Recompute every valid file (status ``changed``, reason ``"forced"``).
+    notes : sequence of str
+        Findings of discovery worth a look (e.g. a truncated file read up to its last whole
+        frame); they open :attr:`Plan.notes`.
 
     Returns
     -------
@@ -527,7 +532,7 @@ def make_plan(
             members[rec.segment].append(rec)
     old_ends = _old_ends(members)
     files: list[FilePlan] = []
-    notes: list[str] = []
+    notes = list(notes)
     present: set[str] = set()
     for seg in segments:
         digest = _lookup(design_digests, seg.sample_rate_hz, "design digest", seg)
