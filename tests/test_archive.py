@@ -646,3 +646,19 @@ def test_name_clashes_match_their_definition_on_random_paths():
         assert not any(clash(x, y) for i, x in enumerate(kept) for y in kept[i + 1:]), paths
         assert all(any(clash(array_name(b.path), k) for k in kept) for b in bad), paths
         assert len(keep) + len(bad) == len(paths)
+
+
+def test_files_selected_but_for_the_letter_case_are_noted(tmp_path):
+    # Field recorders often name files A001.WAV; "**/*.wav" matches case exactly, so such
+    # files are not selected, and discovery says so rather than leaving them out silently.
+    root = tmp_path / "archive"
+    wav(root, "s1/s1_20240501T000000.wav", 800)
+    wav(root, "s1/s1_20240501T000010.WAV", 800)
+    wav(root, "s2/skip/x.WAV", 800)
+    disc = discover(job(tmp_path, include=("**/*.wav",), exclude=("s2/skip/**",), sample_rate_hz=8000.0))
+    assert [f.relpath for f in disc.files] == ["s1/s1_20240501T000000.wav"]
+    (note,) = [w for w in disc.warnings if "letter case" in w]
+    assert note.startswith("1 file(s) match [archive] include but for the letter case") and "s1_20240501T000010.WAV" in note
+    assert "x.WAV" not in note  # excluded anyway
+    disc = discover(job(tmp_path, include=("**/*.wav", "**/*.WAV"), exclude=("s2/skip/**",)))
+    assert len(disc.files) == 2 and not [w for w in disc.warnings if "letter case" in w]

@@ -9,7 +9,9 @@ Glob syntax: ``*`` (any text without ``/``), ``?`` (one character but ``/``), ``
 folders, none included). A folder that is one recording (named ``*.zarr`` or holding
 Zarr metadata) is a candidate like a file and is not searched further. Symbolic links to
 folders are followed once (no loops). The output store, the manifest and anything reached
-through a link into the output store are never taken as input. A folder that cannot be
+through a link into the output store are never taken as input. Globs match letter case
+exactly; files that one would select but for the case (``A.WAV`` against ``**/*.wav``) are
+noted, not selected. A folder that cannot be
 listed is reported (as ``FOLDER/``), and the files recorded under it are not taken as
 removed. Only regular files (after
 following symbolic links) are opened: a named pipe, socket, device or broken link that the
@@ -118,7 +120,7 @@ from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
-from typing import Any
+from typing import Any, NamedTuple
 
 from twinpass.config import JobConfig
 from twinpass.core.nonfinite import (
@@ -145,6 +147,7 @@ __all__ = [
     "discover",
     "list_archive",
     "walk_archive",
+    "ArchiveListing",
     "read_manifest",
 ]
 
@@ -302,12 +305,25 @@ def list_archive(cfg: JobConfig) -> list[str]:
 
     Raises :class:`ArchiveError` when the archive root is not a readable folder.
     """
-    return walk_archive(cfg)[0]
+    return walk_archive(cfg).found
 
 
-def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
-    """The candidate input files of ``cfg``'s archive (relative POSIX paths, sorted) and the
-    paths matching the globs that cannot be taken as input, each with the reason.
+class ArchiveListing(NamedTuple):
+    """What :func:`walk_archive` found."""
+
+    found: list[str]
+    """Candidate input files (relative POSIX paths, sorted)."""
+    refused: list[InvalidFile]
+    """Paths the globs select that cannot be taken as input, each with the reason."""
+    case_only: list[str]
+    """Paths an include glob would select but for the letter case (``A.WAV`` against
+    ``**/*.wav``), sorted: not selected, and worth a note."""
+
+
+def walk_archive(cfg: JobConfig) -> ArchiveListing:
+    """The candidate input files of ``cfg``'s archive (relative POSIX paths, sorted), the
+    paths matching the globs that cannot be taken as input, each with the reason, and the
+    paths that the globs would select but for the letter case (see :class:`ArchiveListing`).
 
     Only regular files (after following symbolic links) and folders holding one recording
     are candidates; a named pipe, socket, device or broken link that the globs select is
@@ -329,6 +345,7 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
         )
     include = [compile_glob(p) for p in cfg.archive.include]
     exclude = [compile_glob(p) for p in cfg.archive.exclude]
+    include_any_case = [re.compile(rx.pattern, rx.flags | re.IGNORECASE) for rx in include]
     store = cfg.store_location
     fenced = [] if "://" in store else [os.path.realpath(store)]
     manifest = cfg.manifest_path
@@ -336,7 +353,13 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
 
     found: list[str] = []
     refused: list[InvalidFile] = []
+    case_only: list[str] = []
     seen_dirs: set[str] = set()
+
+    def by_case_only(rel: str) -> None:
+        """Note ``rel`` if an include glob selects it but for the letter case (and no exclude does)."""
+        if any(rx.match(rel) for rx in include_any_case) and not any(rx.match(rel) for rx in exclude):
+            case_only.append(_shown(rel))
 
     def unlisted(err: OSError) -> None:
         """A folder os.walk cannot list: reported (its files are unknown, not gone)."""
@@ -386,12 +409,15 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
                         refused.append(bad)
                     else:
                         found.append(rel)
+                elif not any(_inside(real_dir, f) for f in fenced):
+                    by_case_only(rel)
                 continue
             keep.append(name)
         dirnames[:] = keep
         for name in sorted(filenames):
             rel = name if rel_dir == "." else f"{rel_dir}/{name}"
             if not _selected(rel, include, exclude):
+                by_case_only(rel)
                 continue
             real_file = os.path.realpath(os.path.join(dirpath, name))
             if real_file in skip_files or any(_inside(real_file, f) for f in fenced):
@@ -401,7 +427,7 @@ def walk_archive(cfg: JobConfig) -> tuple[list[str], list[InvalidFile]]:
                 refused.append(bad)
                 continue
             found.append(rel)
-    return sorted(found), sorted(refused, key=lambda b: b.path)
+    return ArchiveListing(sorted(found), sorted(refused, key=lambda b: b.path), sorted(case_only))
 
 
 # -- name patterns -----------------------------------------------------------
@@ -1073,10 +1099,16 @@ def discover(
     if cfg.manifest_path is not None:
         manifest, conflicts = read_manifest(cfg.manifest_path)
         invalid.extend(conflicts)
-    rels, refused = walk_archive(cfg)
+    rels, refused, case_only = walk_archive(cfg)
     invalid.extend(b for b in refused if b.path not in {i.path for i in invalid})
     entries: list[FileEntry] = []
     warnings: list[str] = []
+    if case_only:
+        shown = ", ".join(case_only[:5]) + (f" and {len(case_only) - 5} more" if len(case_only) > 5 else "")
+        warnings.append(
+            f"{len(case_only)} file(s) match [archive] include but for the letter case and were not selected: "
+            f"{shown}; globs match case exactly: add patterns for them (e.g. \"**/*.WAV\") to include them"
+        )
     cache = scan_cache or {}
     scans: dict[str, dict[str, Any]] = {}
     scanned: list[str] = []
