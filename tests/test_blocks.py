@@ -67,6 +67,11 @@ def test_halos_alone_over_the_budget_are_refused_with_carry_mode_as_remedy(block
     carry = choose_layout(sample_rate_hz=FS, channels=8, halo=0, block_seconds=block_seconds,
                           chunk_seconds=None, memory_budget_mib=16.0)
     assert _window_bytes(carry, 8) <= 16 * 2**20
+    # where carrying is no option (an FIR design, or pieces between holes), it is not offered
+    with pytest.raises(ConfigError) as err:
+        choose_layout(sample_rate_hz=FS, channels=8, halo=1_000_000, block_seconds=block_seconds,
+                      chunk_seconds=None, memory_budget_mib=16.0, carry=False)
+    assert "raise memory_budget_mib" in str(err.value) and "carry" not in str(err.value)
 
 
 GRID = list(itertools.product(

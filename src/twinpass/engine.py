@@ -531,6 +531,7 @@ def _layout(seg: SegmentWork, design: Design, cfg: JobConfig) -> Layout:
         block_seconds=cfg.processing.block_seconds,
         chunk_seconds=cfg.output.chunk_seconds,
         memory_budget_mib=cfg.processing.memory_budget_mib,
+        carry=not design.is_fir and not seg.holes,  # pieces between holes always use halos
     )
 
 

@@ -65,6 +65,7 @@ def choose_layout(
     block_seconds: float | None,
     chunk_seconds: float | None,
     memory_budget_mib: float,
+    carry: bool = True,
 ) -> Layout:
     """Pick block and chunk lengths.
 
@@ -88,6 +89,9 @@ def choose_layout(
         Budget for one block's working memory (MiB); the window (block + 2 halos, samples)
         times channels times ``BYTES_PER_WINDOW_SAMPLE`` must fit. The returned layout
         always fits.
+    carry : bool
+        Whether the state-carrying mode, which needs no halos, could filter this signal (an
+        IIR design, no pieces left out): the error for halos that do not fit names it.
 
     Returns
     -------
@@ -109,12 +113,13 @@ def choose_layout(
 
     def too_long(setting: str, value: float, samples: int, made: str) -> ConfigError:
         """The error for a setting whose shortest block (``samples``) does not fit."""
-        remedy = (f"lower {setting.split()[-1]} (at most {cap / sample_rate_hz:.3g} s here)" if cap > 0
-                  else CARRY_REMEDY)
+        remedies = ([f"lower {setting.split()[-1]} (at most {cap / sample_rate_hz:.3g} s here)"] if cap > 0
+                    else [CARRY_REMEDY] if carry else [])
         need = (samples + 2 * halo) * per_sample / 2**20
         return ConfigError(
             f"{setting} = {value:g} makes {made}; {halos} one block needs about {need:.3g} MiB, above "
-            f"[processing] memory_budget_mib = {memory_budget_mib:g}: {remedy} or raise memory_budget_mib"
+            f"[processing] memory_budget_mib = {memory_budget_mib:g}: "
+            + " or ".join([*remedies, "raise memory_budget_mib"])
         )
 
     if block_seconds is not None:
@@ -124,7 +129,8 @@ def choose_layout(
     elif cap <= 0:
         raise ConfigError(
             f"{halos}, the halos alone need about {2 * halo * per_sample / 2**20:.3g} MiB, above [processing] "
-            f"memory_budget_mib = {memory_budget_mib:g}, so no block fits: raise memory_budget_mib or {CARRY_REMEDY}"
+            f"memory_budget_mib = {memory_budget_mib:g}, so no block fits: raise memory_budget_mib"
+            + (f" or {CARRY_REMEDY}" if carry else "")
         )
     else:
         block = min(max(HALOS_PER_BLOCK * halo, MIN_BLOCK_SAMPLES), cap)
