@@ -662,3 +662,25 @@ def test_files_selected_but_for_the_letter_case_are_noted(tmp_path):
     assert "x.WAV" not in note  # excluded anyway
     disc = discover(job(tmp_path, include=("**/*.wav", "**/*.WAV"), exclude=("s2/skip/**",)))
     assert len(disc.files) == 2 and not [w for w in disc.warnings if "letter case" in w]
+
+
+def test_absent_chunks_of_a_zarr_input_are_noted(tmp_path):
+    # Zarr reads an absent chunk as the fill value (what zarr-python itself returns below);
+    # that is how Zarr stores chunks equal to it, but also what a chunk lost in a copy gives,
+    # so discovery notes it.
+    import shutil
+
+    import zarr
+
+    root = tmp_path / "archive"
+    arr = zarr.create_array(store=str(root / "site" / "a.zarr"), shape=(400, 2), dtype="float32", chunks=(100, 2))
+    arr[:] = np.ones((400, 2), dtype="float32")
+    arr.attrs.update({"sample_rate_hz": 100.0, "start_time": "2024-05-01T00:00:00Z"})
+    disc = discover(job(tmp_path, include=("**/*.zarr",)))
+    assert [f.relpath for f in disc.files] == ["site/a.zarr"] and disc.warnings == ()
+    shutil.rmtree(root / "site" / "a.zarr" / "c" / "2")  # the third chunk's files
+    assert np.all(zarr.open_array(str(root / "site" / "a.zarr"), mode="r")[200:300] == 0.0)
+    disc = discover(job(tmp_path, include=("**/*.zarr",)))
+    assert [f.relpath for f in disc.files] == ["site/a.zarr"]
+    (note,) = disc.warnings
+    assert note.startswith("site/a.zarr: 1 of its 4 chunks are absent and read as the fill value 0.0"), note

@@ -118,7 +118,7 @@ import math
 import stat
 from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path, PurePosixPath
 from typing import Any, NamedTuple
 
@@ -662,11 +662,13 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
         if "wrapped_sizes" in accepted and cfg.archive.wrapped_sizes != "error":
             opts["wrapped_sizes"] = cfg.archive.wrapped_sizes
         with open_recording(abspath, format=reader.name, options=opts) as rec:
-            info, spec = rec.info, rec.spec
+            info, spec, found = rec.info, rec.spec, rec.survey()
         if info.sample_rate_hz is None and cfg.archive.sample_rate_hz is not None and "sample_rate_hz" in accepted:
             opts["sample_rate_hz"] = cfg.archive.sample_rate_hz
             with open_recording(abspath, format=reader.name, options=opts) as rec:
                 info, spec = rec.info, rec.spec
+        if found:
+            info = replace(info, warnings=(*info.warnings, *found))
     except (TwinpassError, OSError) as e:
         text = _strip_path(str(e), abspath)
         remedy = _REMEDY_EXCLUDE

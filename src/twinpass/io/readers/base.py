@@ -87,6 +87,12 @@ class Recording(abc.ABC):
         when the range is outside [0, frames] or the data cannot be read.
         """
 
+    def survey(self) -> tuple[str, ...]:
+        """Findings worth a note that opening does not look for, because they cost more than
+        reading a header (e.g. chunks of a Zarr array that are absent). Asked once per file
+        when an archive is examined, not at every block; none by default."""
+        return ()
+
     def close(self) -> None:  # pragma: no cover - default no-op
         """Release file handles."""
 

@@ -68,6 +68,16 @@ class ZarrRecording(WindowRecording):
             ) from exc
         return self._codec.to_float(block).reshape(stop - start, self.info.channels)
 
+    def survey(self) -> tuple[str, ...]:
+        """A note when chunks of the array are absent: they read as its fill value, which is
+        how Zarr stores chunks that equal it, but also what a lost or uncopied chunk gives."""
+        total, present = int(self._array.nchunks), int(self._array.nchunks_initialized)
+        if present >= total:
+            return ()
+        fill = np.asarray(self._array.fill_value).item()
+        return (f"{total - present} of its {total} chunks are absent and read as the fill value "
+                f"{fill!r}; if the array was written in full, check that it was copied whole",)
+
 
 class ZarrReader(Reader):
     """One array of a Zarr store, read-only and lazy."""
