@@ -483,3 +483,42 @@ def test_status_names_the_inputs_the_last_run_left_out_or_found_gone(tmp_path):
     text = format_status(status)
     assert "left out by the last run (invalid input; an output made earlier is kept as it was): 2" in text
     assert f"  {files.relpaths[2]}" in text
+
+
+def test_a_segment_stopped_by_its_callback_leaves_no_blocks_running(tmp_path):
+    # When the caller's block callback raises, the segment ends with that error, and its
+    # blocks not yet run are cancelled: a retry must not run them beside these.
+    import json as _json
+    import os
+
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.engine import dask_client, run_segment
+    from twinpass.io.store import OutputStore
+    from twinpass.job import prepare
+
+    write_stream(tmp_path / "archive", "deck", make_signal(12000, 1, 200.0, seed=6), 200.0, [2000] * 6)
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")},
+                                   processing={"block_seconds": 2.0}))
+    os.environ["TWINPASS_FAULTS"] = _json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.2}])
+    try:
+        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        prep = prepare(cfg, store)
+        (seg,) = [w for w in prep.work if w.has_work]
+        with dask_client("threads", 2) as client:
+            def refuse(done, total, res):
+                raise RuntimeError("callback refused")
+
+            with pytest.raises(RuntimeError, match="callback refused"):
+                run_segment(seg, prep.designs[seg.sample_rate_hz], cfg, store, client, on_block=refuse)
+            def active(dask_scheduler):
+                return sum(ts.state in ("waiting", "queued", "no-worker", "processing")
+                           for ts in dask_scheduler.tasks.values())
+
+            deadline = time.monotonic() + 60.0  # let whatever still runs finish
+            while client.run_on_scheduler(active) and time.monotonic() < deadline:
+                time.sleep(0.05)
+        # Blocks written: those finished before the stop and the two running then, not all 30.
+        chunks = [f for f in Path(cfg.store_location).glob("deck/*/c/**/*") if f.is_file()]
+        assert len(chunks) <= 6, len(chunks)
+    finally:
+        os.environ.pop("TWINPASS_FAULTS", None)

@@ -722,3 +722,28 @@ def test_the_command_sends_its_flow_runs_heartbeats_itself_once(first_run, prefe
     assert beat.resource.get("prefect.resource.name") == prefect_client.read_flow_run(run_id).name
     assert sorted((r.role, r.id) for r in beat.related if r.role == "flow") == \
         sorted((r.role, r.id) for r in ref.related if r.role == "flow")
+
+
+def test_a_follower_whose_progress_callback_fails_waits_for_its_driver(npy_archive, tmp_path, monkeypatch):
+    # A segment task follows a driver begun before the flow run. When its callback fails
+    # (the dashboard refusing a progress update, say), the task fails only once the driver
+    # has ended: a retry must not run the segment beside a driver still writing it.
+    cfg_path = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
+                                                       "seconds": 0.05}]))
+    head = HeadStart.begin(load_config(cfg_path))
+    with head.held():
+        seg_id = sorted(head.segments)[0]
+        early = head.take_segment(seg_id)
+
+        def refuse(done, total, res):
+            raise RuntimeError("progress update refused")
+
+        with pytest.raises(RuntimeError, match="progress update refused"):
+            early.follow(refuse)
+        assert early.join(0)  # the driver had ended when the error came
+        for other in sorted(head.segments):
+            head.take_segment(other).follow()
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    tables = [store.read_block_table(a, figures=False, seams=False) for a in store.list_arrays()]
+    assert tables and all(t.counts().get("pending", 0) == 0 for t in tables)  # every block recorded

@@ -973,6 +973,12 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
     except BaseException:
         with contextlib.suppress(Exception):  # keep what finished; the first error is the one to report
             recorder.flush()
+        # Blocks nobody will record: cancelled, so that a retry of the segment does not run
+        # beside them (those already running finish unrecorded, and the retry redoes them).
+        for fut in futures:
+            if not fut.done():
+                with contextlib.suppress(Exception):
+                    fut.cancel()
         raise
     finally:
         errors.close()

@@ -228,7 +228,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         now = time.monotonic()
         if done < total and now - last[0] >= PROGRESS_INTERVAL_S:  # 100 % is set once the segment ends
             last[0] = now
-            update_progress_artifact(artifact_id, 100.0 * done / max(total, 1))
+            _show_progress(artifact_id, 100.0 * done / max(total, 1), logger)
 
     try:
         if early is not None:  # begun before the flow run: follow it (a retry runs as usual)
@@ -242,7 +242,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         raise
     finally:
         block_errors.close()
-    update_progress_artifact(artifact_id, 100.0)
+    _show_progress(artifact_id, 100.0, logger)
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:
         if o.status == "complete":
@@ -259,6 +259,16 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
                                     "the same figures): see `twinpass status` or the report")
         raise BlockFailedError(f"segment {seg.segment_id}: {names}")
     return outcomes
+
+
+def _show_progress(artifact_id: Any, percent: float, logger: Any) -> None:
+    """Update a segment's progress artifact; a failed update is logged, never fatal: the
+    blocks and their records do not depend on the dashboard."""
+    try:
+        update_progress_artifact(artifact_id, percent)
+    except Exception as e:
+        logger.warning("could not update the progress shown on the dashboard (%s: %s); the segment goes on",
+                       type(e).__name__, e)
 
 
 @task(name="skip-unchanged", cache_policy=NO_CACHE)

@@ -97,14 +97,23 @@ class EarlySegment:
 
         Returns the driver's outcomes (as :func:`~twinpass.engine.run_segment` returns
         them) or raises what the driver raised. Events that came before the call are
-        passed on first, in order.
+        passed on first, in order. If ``on_block`` raises an exception, it is called no
+        more, but this still waits for the driver to end before raising that exception: a
+        retry of the segment must not run beside a driver still writing it. (An interrupt,
+        Ctrl-C, is not held back: stopping the run stops the driver.)
         """
+        failed: Exception | None = None
         while (event := self._events.get()) is not _END:
-            if on_block is not None:
-                on_block(*event)
+            if on_block is not None and failed is None:
+                try:
+                    on_block(*event)
+                except Exception as e:  # raised once the driver has ended
+                    failed = e
         self._thread.join()
         if self._error is not None:
             raise self._error
+        if failed is not None:
+            raise failed
         assert self._outcomes is not None
         return self._outcomes
 
