@@ -522,3 +522,23 @@ def test_a_segment_stopped_by_its_callback_leaves_no_blocks_running(tmp_path):
         assert len(chunks) <= 6, len(chunks)
     finally:
         os.environ.pop("TWINPASS_FAULTS", None)
+
+
+def test_changing_the_output_sample_type_refilters_the_files(tmp_path):
+    # [output] dtype decides the values written; a rerun after changing it rewrites every
+    # file in the new type (compared with the float64 run's own values rounded to float32).
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.io.store import OutputStore
+
+    files = write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, 200.0, seed=8), 200.0, [2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}, output={"dtype": "float64"}))
+    assert run_job(cfg).ok
+    wide = {a: OutputStore.open(cfg.store_location, mode="r").read(a, 0, 2000) for a in files.arrays}
+    cfg32 = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}, output={"dtype": "float32"}))
+    res = run_job(cfg32)
+    assert res.ok and [o.status for o in res.outcomes] == ["complete", "complete"]
+    store = OutputStore.open(cfg.store_location, mode="r")
+    for a in files.arrays:
+        narrow = store.read(a, 0, 2000)
+        assert narrow.dtype == np.float32 and np.array_equal(narrow, wide[a].astype(np.float32))
+    assert all(r.complete and r.dtype == "float32" for r in store.file_records().values())

@@ -132,7 +132,8 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         segments = keep
     digests = {fs: design_digest_for(d, cfg) for fs, d in designs.items()}
     halos = {fs: d.effective_length for fs, d in designs.items()}
-    plan = make_plan(segments, invalid, records, digests, halos, force=force, notes=disc.warnings)
+    plan = make_plan(segments, invalid, records, digests, halos, force=force, notes=disc.warnings,
+                     out_dtype=cfg.output.dtype)
     if disc.scans != cache and hasattr(store, "write_scan_cache") and getattr(store, "read_only", True) is False:
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]

@@ -6,8 +6,8 @@ each sample rate. Every file gets one status:
 
 ========== ==================================================================
 new        no record in the store: filter the whole file
-changed    fingerprint, frame count or design digest differs (or ``force``):
-           filter the whole file
+changed    fingerprint, frame count, design digest or output sample type differs
+           (or ``force``): filter the whole file
 unchanged  same fingerprint and design, output complete: nothing to do
 incomplete same fingerprint and design, output not complete: resume (blocks
            already marked done are kept)
@@ -330,7 +330,8 @@ def _segment_start(segment_id: str | None) -> _dt.datetime | None:
     return _parse_time(segment_id.rpartition("@")[2])
 
 
-def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool) -> tuple[str, str]:
+def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool,
+                out_dtype: str | None = None) -> tuple[str, str]:
     """Status of a file judged on its own content: new, changed, incomplete or unchanged."""
     if force:
         return "changed", "forced"
@@ -343,6 +344,8 @@ def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool) ->
         return "changed", f"frame count changed ({rec.frames} -> {entry.frames})"
     if rec.design_digest != digest:
         return "changed", "filter design or processing settings changed"
+    if out_dtype is not None and rec.dtype is not None and rec.dtype != out_dtype:
+        return "changed", f"output sample type changed ({rec.dtype} -> {out_dtype})"
     if not rec.complete:
         return "incomplete", "output incomplete: resume (blocks already done are kept)"
     return "unchanged", "same fingerprint and design; output complete"
@@ -360,13 +363,14 @@ class _SegmentPlanner:
         digest: str,
         halo: int,
         force: bool,
+        out_dtype: str | None = None,
     ) -> None:
         self.seg = seg
         self.members = members
         self.old_ends = old_ends
         self.halo = int(halo)
         self.recs = [records.get(f.relpath) for f in seg.files]
-        self.own = [_own_status(r, f, digest, force) for r, f in zip(self.recs, seg.files)]
+        self.own = [_own_status(r, f, digest, force, out_dtype) for r, f in zip(self.recs, seg.files)]
         self.spans: list[list[Span]] = [[] for _ in seg.files]
         self.causes: list[list[str]] = [[] for _ in seg.files]
 
@@ -501,6 +505,7 @@ def make_plan(
     halos: Mapping[float, int],
     force: bool = False,
     notes: Sequence[str] = (),
+    out_dtype: str | None = None,
 ) -> Plan:
     """Decide what a run must compute.
 
@@ -521,6 +526,9 @@ def make_plan(
     notes : sequence of str
         Findings of discovery worth a look (e.g. a truncated file read up to its last whole
         frame); they open :attr:`Plan.notes`.
+    out_dtype : str, optional
+        The output sample type asked for (``[output] dtype``); a file whose output has
+        another is ``changed``.
 
     Returns
     -------
@@ -537,7 +545,7 @@ def make_plan(
     for seg in segments:
         digest = _lookup(design_digests, seg.sample_rate_hz, "design digest", seg)
         halo = _lookup(halos, seg.sample_rate_hz, "halo", seg)
-        files.extend(_SegmentPlanner(seg, records, members, old_ends, digest, halo, force).run())
+        files.extend(_SegmentPlanner(seg, records, members, old_ends, digest, halo, force, out_dtype).run())
         present.update(seg.relpaths)
         if seg.break_kind == "layout":
             notes.append(f"stream {seg.stream}: new segment {seg.id}: {seg.break_reason}")

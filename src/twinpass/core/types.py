@@ -150,3 +150,5 @@ class FileRecord:
     start_time: str | None = None
     """The file's start time when it was filtered (ISO 8601, as the array's ``start_time``
     attribute holds it); None when unknown."""
+    dtype: str | None = None
+    """Sample type of the output array (e.g. ``"float32"``); None when unknown."""

@@ -1492,6 +1492,7 @@ class OutputStore:
                 segment=None if a.get("segment") is None else str(a["segment"]),
                 array_name=name,
                 start_time=None if a.get("start_time") is None else str(a["start_time"]),
+                dtype=str(arr.dtype),
             )
         return out
 
