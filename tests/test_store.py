@@ -1002,3 +1002,29 @@ def test_a_stale_lock_is_removed_by_one_run_at_a_time(store: OutputStore, tmp_pa
             assert json.loads(lock_path.read_text())["run_id"] == "new"
     assert "clearing" in caplog.text and "taker" in caplog.text and "recovering a stale lock" in caplog.text
     assert not guard_path.exists() and not lock_path.exists()
+
+
+@pytest.mark.parametrize("linked", ["hard link", "symbolic link", "none"])
+def test_a_synced_chunk_write_reaches_the_disk_however_the_file_is_linked(tmp_path: Path, monkeypatch, linked: str):
+    # A chunk file shared with a snapshot (another hard link) or reached through a symbolic
+    # link is replaced rather than written through; asked to sync, it is synced all the same.
+    # (The syncs are counted around the store's own helper; the writes are real.)
+    synced: list[int] = []
+    real = store_module._data_sync
+    monkeypatch.setattr(store_module, "_data_sync", lambda fd: (synced.append(fd), real(fd)))
+    chunk = tmp_path / "c" / "0"
+    chunk.parent.mkdir()
+    if linked == "symbolic link":
+        target = tmp_path / "elsewhere"
+        target.write_bytes(b"old")
+        chunk.symlink_to(target)
+    else:
+        chunk.write_bytes(b"old")
+        if linked == "hard link":
+            os.link(chunk, tmp_path / "snapshot")
+    store_module._overwrite_file(chunk, b"new", sync=True)
+    assert chunk.read_bytes() == b"new" and len(synced) == 1
+    if linked == "hard link":
+        assert (tmp_path / "snapshot").read_bytes() == b"old"  # the snapshot keeps its data
+    if linked == "symbolic link":
+        assert not chunk.is_symlink() and (tmp_path / "elsewhere").read_bytes() == b"old"
