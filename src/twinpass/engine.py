@@ -35,6 +35,7 @@ import contextlib
 import logging
 import threading
 import time
+import uuid
 import traceback
 import weakref
 from dataclasses import dataclass, field
@@ -784,7 +785,7 @@ def shares_this_machine(client: Any) -> bool:
 
 def submit_jobs(jobs: list[BlockJob], client: Any) -> list[tuple[Any, BlockJob]]:
     """Submit block jobs to ``client``; (future, job) pairs for :func:`run_jobs`."""
-    stamp = time.time_ns()
+    stamp = uuid.uuid4().hex  # keys unique to this call: Dask gives a known key the result it has
     return [(client.submit(run_block, j, pure=False, retries=j.retries,
                            key=f"twinpass-block-{j.array_name}-{j.block_index}-{stamp}"), j)
             for j in jobs]

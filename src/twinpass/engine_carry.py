@@ -82,6 +82,7 @@ import logging
 import re
 import threading
 import time
+import uuid
 import traceback
 import zlib
 import dataclasses
@@ -730,8 +731,9 @@ def _run_tasks(client: Any, fn: Callable[..., Any], calls: list[tuple[Any, ...]]
     from distributed import as_completed
 
     batches = _batches(calls, batch_samples)
+    stamp = uuid.uuid4().hex  # keys unique to this call: Dask gives a known key the result it has
     futures = [client.submit(_run_batch, fn, batch, pure=False, retries=retries,
-                             key=f"twinpass-carry-{label}-{batch[0][0].piece.index}-{time.time_ns()}")
+                             key=f"twinpass-carry-{label}-{batch[0][0].piece.index}-{stamp}")
                for batch in batches]
     by_key = {f.key: batch for f, batch in zip(futures, batches)}
     for fut in as_completed(futures):
