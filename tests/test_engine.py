@@ -542,3 +542,17 @@ def test_changing_the_output_sample_type_refilters_the_files(tmp_path):
         narrow = store.read(a, 0, 2000)
         assert narrow.dtype == np.float32 and np.array_equal(narrow, wide[a].astype(np.float32))
     assert all(r.complete and r.dtype == "float32" for r in store.file_records().values())
+
+
+def test_a_block_lost_with_its_workers_is_recorded_with_a_remedy():
+    # distributed raises KilledWorker for a task whose workers died more often than it
+    # allows (often killed for lack of memory); the recorded text says what to do.
+    from distributed.scheduler import KilledWorker
+
+    from twinpass.engine import lost_task_error
+
+    from types import SimpleNamespace
+
+    text = lost_task_error(KilledWorker("twinpass-block-x-0-1", SimpleNamespace(address="tcp://127.0.0.1:1"), 3))
+    assert text.startswith("KilledWorker: ") and "memory_budget_mib" in text and "rerun" in text
+    assert lost_task_error(ValueError("odd")) == "ValueError: odd"

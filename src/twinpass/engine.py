@@ -114,8 +114,9 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
             out[lo - a : hi - a] = part
         filled += hi - lo
     if filled != b - a or out is None:
-        raise InputError(f"segment window [{a}, {b}) is not covered by its files (read {filled} samples); "
-                         "rerun so that the plan is made afresh")
+        files = ", ".join(src.spec.path for src in sources[:3]) + (" ..." if len(sources) > 3 else "")
+        raise InputError(f"segment window [{a}, {b}) is not covered by its files ({files}: read {filled} "
+                         "samples); rerun so that the plan is made afresh")
     return out
 
 
@@ -873,7 +874,12 @@ def lost_task_error(exc: BaseException) -> str:
     """
     if isinstance(exc, (concurrent.futures.CancelledError, asyncio.CancelledError)):
         return f"{CANCELLED}: the run was stopped before this block finished; the next run does it"
-    return f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__
+    text = f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__
+    if type(exc).__name__ == "KilledWorker":  # distributed's: the workers running it died, again and again
+        text += ("; the workers running this block died each time (often the system ending them for lack "
+                 "of memory): lower [processing] memory_budget_mib or the number of workers, check the "
+                 "system log for out-of-memory kills, and rerun")
+    return text
 
 
 class BlockErrorLog:

@@ -895,9 +895,11 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     if errors:
         first = min(errors)
         reason = errors[first].splitlines()[0]
+        at = pieces[first]
+        where = f"block {at.block_index} of {at.array_name}, " if at.array_name else ""
         msg = (f"carry mode: the filter state could not be carried past piece {first} of segment "
-               f"{seg.segment_id} ({pieces[first].kind}, samples [{pieces[first].start - n}, "
-               f"{pieces[first].stop - n}) of the segment): {reason}; rerun to resume (finished steps are kept)")
+               f"{seg.segment_id} ({where}{at.kind}, samples [{at.start - n}, "
+               f"{at.stop - n}) of the segment): {reason}; rerun to resume (finished steps are kept)")
         if was_cancelled(reason):
             msg = f"{reason} (carry mode: finished steps are kept)"
         for p in blocks:
