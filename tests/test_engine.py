@@ -173,6 +173,15 @@ def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
     todo = {rel: store.read_block_table(array_name(rel), figures=False, seams=False).todo().size for rel in records}
     assert sum(todo.values()) > 0, todo  # stopped: blocks were left, not run to the end
     assert all(todo[rel] == 0 for rel, rec in records.items() if rec.complete), (records, todo)
+    # The status shows the stopped blocks as cancelled, not as failures of their checks.
+    from twinpass.status import all_passed, collect_status, format_status
+
+    status = collect_status(store)
+    t = status["totals"]
+    assert t["blocks_cancelled"] > 0 and t["blocks_failed"] == 0 and t["checks_failed"] == 0, t
+    assert all(f["checks"] != "fail" and not f["errors"] for f in status["files"]), status["files"]
+    assert "cancelled (a run was stopped; the next run does them)" in format_status(status)
+    assert not all_passed(status)
 
     assert run_job(load_config(cfg)).ok
     g = open_store(tmp_path / "out.zarr")

@@ -46,6 +46,7 @@ import numpy as np
 from . import allocator, faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
+from .core.checks import CANCELLED, was_cancelled  # noqa: F401  (also for the flow and carry modules)
 from .core.blocks import Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
@@ -855,14 +856,6 @@ class _CancelledBlockNotice(logging.Filter):
 
 # Installed wherever this module is imported, worker processes included (they import it to run blocks).
 logging.getLogger("distributed.worker.state_machine").addFilter(_CancelledBlockNotice())
-
-CANCELLED = "cancelled"
-"""How the error text of a block whose task was cancelled begins (the run was stopped meanwhile)."""
-
-
-def was_cancelled(error: str | None) -> bool:
-    """Whether a block's recorded error text says its task was cancelled (see :func:`lost_task_error`)."""
-    return bool(error) and str(error).startswith(CANCELLED)
 
 
 def lost_task_error(exc: BaseException) -> str:

@@ -44,10 +44,12 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
             t = store.read_block_table(name, figures=True, seams=False)
             counts = t.counts()
             summary = _checks.summarise(t.figures) if t.figures is not None else {}
-            errors = {str(k): v.splitlines()[0] for k, v in t.errors.items()}
-            grade = _checks.grade_file(t.status.tolist())
+            # Blocks cancelled when a run was stopped are not done, but nothing failed in them.
+            cancelled = {int(k) for k, v in t.errors.items() if _checks.was_cancelled(v)}
+            errors = {str(k): v.splitlines()[0] for k, v in t.errors.items() if int(k) not in cancelled}
+            grade = _checks.grade_file([None if i in cancelled else s for i, s in enumerate(t.status.tolist())])
         except StoreError:
-            counts, summary, errors, grade = {}, {}, {}, "incomplete"
+            counts, summary, errors, grade, cancelled = {}, {}, {}, "incomplete", set()
         n = sum(counts.values())
         done = counts.get("pass", 0) + counts.get("warn", 0)
         files.append({
@@ -55,7 +57,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
             "segment": attrs.get("segment"), "start_time": attrs.get("start_time"),
             "blocks": n, "blocks_done": done, "blocks_pending": counts.get("pending", 0),
             "blocks_warn": counts.get("warn", 0), "blocks_fail": counts.get("fail", 0),
-            "blocks_error": counts.get("error", 0), "checks": grade,
+            "blocks_error": counts.get("error", 0) - len(cancelled), "blocks_cancelled": len(cancelled),
+            "checks": grade,
             "complete": attrs.get("complete") is True,
             "edge_zone_samples": attrs.get("edge_zone_samples"),
             "worst": {k: _worst(summary, k) for k in ("passband_dev_db", "phase_deg", "stopband_att_db",
@@ -80,6 +83,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
         "blocks": sum(f["blocks"] for f in files),
         "blocks_done": sum(f["blocks_done"] for f in files),
         "blocks_failed": sum(f["blocks_fail"] + f["blocks_error"] for f in files),
+        "blocks_cancelled": sum(f["blocks_cancelled"] for f in files),
         "checks_failed": sum(f["checks"] == "fail" for f in files),
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
@@ -122,8 +126,10 @@ def format_status(status: dict[str, Any]) -> str:
         lines.append(r if isinstance(r, str) else "  " + line(r))
     t = status["totals"]
     lines.append(f"files: {t['files']} ({t['complete']} complete, {t['incomplete']} incomplete); "
-                 f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed; "
-                 f"files with failed checks: {t['checks_failed']}")
+                 f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed"
+                 + (f", {t['blocks_cancelled']} cancelled (a run was stopped; the next run does them)"
+                    if t.get("blocks_cancelled") else "")
+                 + f"; files with failed checks: {t['checks_failed']}")
     last = status.get("last_run")
     if last:
         counts = last.get("counts") or {}

@@ -724,6 +724,17 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
 _BY_NAME = {name: code for code, name in STATUS_NAMES.items()}
 
 
+CANCELLED = "cancelled"
+"""How the error text of a block whose task was cancelled begins (the run was stopped
+meanwhile; see ``twinpass.engine.lost_task_error``)."""
+
+
+def was_cancelled(error: str | None) -> bool:
+    """Whether a block's recorded error text says its task was cancelled: the block is not
+    done, but nothing failed in it."""
+    return bool(error) and str(error).startswith(CANCELLED)
+
+
 def grade_file(statuses: Iterable[int | str | None]) -> str:
     """Status of a file from its blocks' statuses.
 
