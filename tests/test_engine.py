@@ -565,3 +565,14 @@ def test_a_block_lost_with_its_workers_is_recorded_with_a_remedy():
     text = lost_task_error(KilledWorker("twinpass-block-x-0-1", SimpleNamespace(address="tcp://127.0.0.1:1"), 3))
     assert text.startswith("KilledWorker: ") and "memory_budget_mib" in text and "rerun" in text
     assert lost_task_error(ValueError("odd")) == "ValueError: odd"
+
+
+def test_a_tls_scheduler_address_without_tls_settings_is_a_configuration_error():
+    # distributed refuses a tls:// address when no TLS settings are configured; the command
+    # says what to set instead of showing that library's TypeError.
+    from twinpass.engine import dask_client
+
+    with pytest.raises(ConfigError, match="distributed.comm.tls") as err:
+        with dask_client("tls://127.0.0.1:1"):
+            pass
+    assert "tls://127.0.0.1:1" in str(err.value) and "--scheduler" in str(err.value)

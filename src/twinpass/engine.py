@@ -328,6 +328,11 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
         except (OSError, asyncio.TimeoutError) as e:
             raise ConfigError(f"cannot reach the Dask scheduler at {scheduler} ({e}); start it, or set "
                               "[engine] scheduler (or --scheduler) to threads or processes") from None
+        except (TypeError, ValueError) as e:  # distributed's answer to an address it cannot use as given
+            tls = ("; a tls:// address needs Dask's TLS settings (distributed.comm.tls: ca-file, and the "
+                   "client's cert and key) in its configuration or environment") if scheduler.startswith("tls://") else ""
+            raise ConfigError(f"cannot connect to the Dask scheduler at {scheduler} ({e}){tls}; or set [engine] "
+                              "scheduler (or --scheduler) to threads or processes") from None
         try:
             yield client
         finally:
