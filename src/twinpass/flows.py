@@ -297,7 +297,7 @@ def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, duratio
         rows.append({"file": bad.relpath, "status": "invalid", "blocks": 0, "blocks run": 0,
                      "blocks not done": 0, "seconds": 0.0, "worst passband dev (dB)": None,
                      "worst phase (deg)": None, "stopband att (dB)": None,
-                     "seam mismatch": f"{bad.reason}; {bad.remedy}"})
+                     "seam mismatch": bad.explained})
     create_table_artifact(rows, key=ARTIFACT_FILES, description=f"twinpass run {result.run_id}")
 
 
@@ -379,7 +379,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             logger.warning("removed %d partial chunk file(s) left by an interrupted run", cleaned)
         prep = prepare(cfg, store, force=force) if head is None else head.prep
         for bad in prep.invalid:
-            logger.error("left out %s: %s; %s", bad.relpath, bad.reason, bad.remedy)
+            logger.error("left out %s: %s", bad.relpath, bad.explained)
         for fp in prep.plan.removed:
             logger.warning("%s: %s", fp.relpath, fp.reason)
         for note in prep.plan.notes:

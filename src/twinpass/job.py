@@ -187,8 +187,7 @@ def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
     store.append_run({"run_id": result.run_id, "start": result.started, "end": result.ended,
                       "counts": result.counts(), "config_digest": cfg.digest(),
                       "failed": result.failed},
-                     details={"left_out": {b.relpath: f"{b.reason}; {b.remedy}" if b.remedy else b.reason
-                                           for b in result.invalid},
+                     details={"left_out": {b.relpath: b.explained for b in result.invalid},
                               "gone": [r.relpath for r in result.removed],
                               "notes": list(result.notes)})
 
@@ -248,7 +247,7 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             say(f"removed {n} partial chunk file(s) left by an interrupted run")
         prep = prepare(cfg, store, force=force)
         for bad in prep.invalid:
-            say(f"invalid: {bad.relpath}: {bad.reason}; {bad.remedy}")
+            say(f"invalid: {bad.relpath}: {bad.explained}")
         for fp in prep.plan.removed:
             say(f"{fp.relpath}: {fp.reason}")
         for note in prep.plan.notes:

@@ -182,6 +182,11 @@ class FilePlan:
     """What to do, for invalid files."""
 
     @property
+    def explained(self) -> str:
+        """The reason, then the remedy when there is one (``"reason; remedy"``)."""
+        return self.reason if not self.remedy else f"{self.reason}; {self.remedy}"
+
+    @property
     def redo_frames(self) -> int:
         """Samples per channel to compute (an upper bound when :attr:`resume`)."""
         if self.redo is None:
@@ -610,8 +615,7 @@ def format_plan(plan: Plan) -> str:
     header = ("STATUS", "STREAM", "FILE", "REDO (samples)", "REASON")
     rows = []
     for fp in plan.all_files():
-        reason = fp.reason if not fp.remedy else f"{fp.reason}; {fp.remedy}"
-        rows.append((fp.status, fp.stream or "-", fp.relpath, _redo_text(fp), reason))
+        rows.append((fp.status, fp.stream or "-", fp.relpath, _redo_text(fp), fp.explained))
     widths = [max(len(r[i]) for r in [header, *rows]) for i in range(4)]
     lines = []
     for r in [header, *rows]:
