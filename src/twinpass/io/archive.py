@@ -115,7 +115,6 @@ import datetime as _dt
 import os
 import re
 import math
-import stat
 from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
@@ -134,7 +133,7 @@ from twinpass.core.nonfinite import (
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
-from twinpass.io.readers._common import TRUNCATED_HINT, WRAPPED_HINT, WRAPPED_REWRITE
+from twinpass.io.readers._common import TRUNCATED_HINT, WRAPPED_HINT, WRAPPED_REWRITE, file_kind
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
@@ -224,13 +223,6 @@ def _selected(rel: str, include: list[re.Pattern[str]], exclude: list[re.Pattern
     return any(rx.match(rel) for rx in include) and not any(rx.match(rel) for rx in exclude)
 
 
-_KINDS = (
-    (stat.S_ISFIFO, "a named pipe (FIFO)"),
-    (stat.S_ISSOCK, "a socket"),
-    (stat.S_ISCHR, "a character device"),
-    (stat.S_ISBLK, "a block device"),
-    (stat.S_ISDIR, "a folder"),
-)
 _REMEDY_NOT_REGULAR = (
     "only regular files (or links to them) are read: put the recording there as a regular file, "
     "or leave the path out with [archive] exclude"
@@ -259,9 +251,9 @@ def _not_regular(path: str, rel: str) -> InvalidFile | None:
     except OSError as e:
         what = "a symbolic link that cannot be followed" if os.path.islink(path) else "cannot be examined"
         return InvalidFile(rel, f"{what} ({e.strerror or e})", _REMEDY_EXCLUDE)
-    if stat.S_ISREG(st.st_mode):
+    kind = file_kind(st.st_mode)
+    if kind is None:
         return None
-    kind = next((name for test, name in _KINDS if test(st.st_mode)), "not a regular file")
     link = " (reached through a symbolic link)" if os.path.islink(path) else ""
     return InvalidFile(rel, f"is {kind}{link}, not a regular file", _REMEDY_NOT_REGULAR)
 

@@ -30,6 +30,23 @@ from .base import Reader, ReaderSpec, Recording, RecordingInfo
 UTC = _dt.timezone.utc
 
 TRUNCATED_MODES = ("error", "warn")
+
+_KINDS = (
+    (stat.S_ISFIFO, "a named pipe (FIFO)"),
+    (stat.S_ISSOCK, "a socket"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+    (stat.S_ISDIR, "a folder"),
+)
+
+
+def file_kind(mode: int) -> str | None:
+    """What a file of ``st_mode`` ``mode`` is when it is not a regular file (``"a named pipe
+    (FIFO)"``, ``"a folder"``...); ``None`` for a regular file, the only kind readers open."""
+    if stat.S_ISREG(mode):
+        return None
+    return next((name for test, name in _KINDS if test(mode)), "not a regular file")
+
 TRUNCATED_HINT = 'to read up to the last whole frame set the reader option truncated="warn"'
 """The last clause of a reader's error for a file cut short (after "; "); discovery
 (:mod:`twinpass.io.archive`) gives the configuration key in its remedy instead."""
@@ -68,14 +85,17 @@ def check_options(reader: Reader, path: str, options: Mapping[str, Any] | None) 
     return opts
 
 
+def choice_option(path: str, options: Mapping[str, Any], name: str, choices: tuple[str, ...]) -> str:
+    """Reader option ``name``: one of ``choices``, the first by default."""
+    mode = options.get(name, choices[0])
+    if mode not in choices:
+        raise ConfigError(f"{path}: option {name}={mode!r} is not one of {', '.join(map(repr, choices))}")
+    return str(mode)
+
+
 def truncated_mode(path: str, options: Mapping[str, Any]) -> str:
     """The ``truncated`` option: ``"error"`` (default) or ``"warn"``."""
-    mode = options.get("truncated", "error")
-    if mode not in TRUNCATED_MODES:
-        raise ConfigError(
-            f"{path}: option truncated={mode!r} is not one of {', '.join(map(repr, TRUNCATED_MODES))}"
-        )
-    return str(mode)
+    return choice_option(path, options, "truncated", TRUNCATED_MODES)
 
 
 def positive_rate(value: Any, where: str) -> float | None:
@@ -278,10 +298,8 @@ def open_binary(path: str) -> tuple[BinaryIO, int]:
         raise InputError(f"{path}: cannot be opened for reading ({exc.strerror or exc})", path=path) from None
     try:
         st = os.fstat(fd)
-        if not stat.S_ISREG(st.st_mode):
-            kind = "a directory" if stat.S_ISDIR(st.st_mode) else (
-                "a named pipe (FIFO)" if stat.S_ISFIFO(st.st_mode) else "not a regular file (a socket or device)"
-            )
+        kind = file_kind(st.st_mode)
+        if kind is not None:
             raise InputError(f"{path}: is {kind}; only regular files can be read", path=path)
         if hasattr(os, "set_blocking"):
             os.set_blocking(fd, True)

@@ -51,12 +51,13 @@ import uuid
 from dataclasses import dataclass, field
 from typing import Any, BinaryIO
 
-from ...errors import ConfigError, CorruptInputError, UnsupportedFormatError
+from ...errors import CorruptInputError, UnsupportedFormatError
 from ._common import (
     TRUNCATED_HINT,
     UTC,
     WRAPPED_HINT,
     WRAPPED_MODES,
+    choice_option,
     WRAPPED_REWRITE,
     Codec,
     FileReader,
@@ -399,12 +400,7 @@ class WavReader(FileReader):
     def _open_file(self, path: str, fh: BinaryIO, size: int, options: dict[str, Any]) -> InterleavedRecording:
         mode = truncated_mode(path, options)
         rate_opt = option_rate(path, options)
-        wrapped = options.get("wrapped_sizes", "error")
-        if wrapped not in WRAPPED_MODES:
-            raise ConfigError(
-                f"{path}: option wrapped_sizes={wrapped!r} is not one of {', '.join(map(repr, WRAPPED_MODES))}"
-            )
-        lay = _walk(path, fh, size, wrapped)
+        lay = _walk(path, fh, size, choice_option(path, options, "wrapped_sizes", WRAPPED_MODES))
         info, codec = _describe(path, lay, size, mode, rate_opt)
         spec = ReaderSpec.create(self.name, path, options)
         return InterleavedRecording(info, spec, fh, codec, lay.data_offset)
