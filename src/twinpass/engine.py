@@ -46,7 +46,7 @@ import numpy as np
 from . import allocator, faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
-from .core.checks import CANCELLED, was_cancelled  # noqa: F401  (also for the flow and carry modules)
+from .core.checks import CANCELLED, was_cancelled
 from .core.blocks import Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask

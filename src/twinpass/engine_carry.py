@@ -97,6 +97,7 @@ from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.blocks import Layout, choose_layout
 from .core.carry import carry_states, steady_state, transition_matrix
+from .core.checks import was_cancelled
 from .core.types import Design
 from .engine import (
     ERROR,
@@ -113,7 +114,6 @@ from .engine import (
     read_segment_window,
     record_result,
     segment_edge_samples,
-    was_cancelled,
 )
 from .errors import ConfigError, KernelError, TwinpassError
 from .io.store import array_metadata, write_rows

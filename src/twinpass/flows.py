@@ -47,6 +47,7 @@ from prefect.states import Completed, Failed
 from prefect.utilities.annotations import quote
 
 from .config import JobConfig, load_config
+from .core.checks import was_cancelled
 from .core.design import format_report
 from .core.plan import fingerprint_changed
 from .engine import (
@@ -57,7 +58,6 @@ from .engine import (
     retry_delays,
     run_segment,
     warm_compiled_loops,
-    was_cancelled,
 )
 from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError
 from .headstart import HeadStart, claim

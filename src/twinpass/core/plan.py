@@ -568,8 +568,9 @@ def make_plan(
     # A folder discovery could not list (reported as "FOLDER/"): files recorded under it are
     # unknown, not gone; their outputs are kept and they are reported with the folder's remedy.
     unlisted = [inv for inv in invalid if inv.path.endswith("/")]
-    for path, rec in sorted(records.items()):
-        if path in present or any(b.relpath == path for b in bad):
+    reported = {b.relpath for b in bad}
+    for path, rec in sorted(records.items()) if unlisted else ():
+        if path in present or path in reported:
             continue
         folder = next((inv for inv in unlisted if path.startswith(inv.path)), None)
         if folder is not None:

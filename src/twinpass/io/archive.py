@@ -265,11 +265,8 @@ def _shown(rel: str) -> str:
 
 def _not_utf8(rel: str) -> InvalidFile | None:
     """Why a path whose name is not UTF-8 (surrogate-escaped by the OS layer) is refused, or ``None``."""
-    try:
-        rel.encode("utf-8")
+    if _encodes(rel):
         return None
-    except UnicodeEncodeError:
-        pass
     parts = rel.split("/")
     k = next(i for i, p in enumerate(parts) if not _encodes(p))
     what = "file" if k == len(parts) - 1 else "folder"
