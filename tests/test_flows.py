@@ -220,6 +220,9 @@ def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archiv
     assert cli.main(["run", str(cfg), "--no-report"]) == 1
     out = capsys.readouterr().out
     assert f"failed: {bad}" in out and "complete 5, skipped (unchanged) 0, failed 1" in out, out
+    # Blocks run, the failed segment's too: 3 files x 4 blocks per stream, and the retry
+    # reruns the one block not done.
+    assert f"blocks run {2 * FILES_PER_STREAM * BLOCKS_PER_FILE + 1}" in out, out
 
     run = _flow_run_of(prefect_client, cfg)
     assert run.state.is_failed()

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 from . import _prefect_env  # noqa: F401  (must precede the prefect import)
 
+import collections
 import contextlib
 import dataclasses
 import re
@@ -82,6 +83,9 @@ _CLIENTS_LOCK = threading.Lock()
 _PREPARED: set[tuple[str, str]] = set()
 # Head starts whose running segments the segment tasks follow, by client key.
 _HEADS: dict[str, HeadStart] = {}
+# Blocks run per output array by every attempt of a segment task, by (client key, segment
+# id): the run's summary counts them for a segment whose task failed, too.
+_RAN: dict[tuple[str, str], collections.Counter[str]] = {}
 
 PROGRESS_INTERVAL_S = 3.0
 """Seconds between updates of a segment's progress artifact on the dashboard (and one at the
@@ -152,6 +156,8 @@ def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterato
             _CLIENTS.pop(key, None)
             _HEADS.pop(key, None)
             _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
+            for k in [k for k in _RAN if k[0] == key]:
+                del _RAN[k]
 
 
 def _as_resume(seg: SegmentWork) -> SegmentWork:
@@ -201,6 +207,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     mark = (client_key, seg.segment_id)
     with _CLIENTS_LOCK:  # the run's cluster and head start, both or neither: the flow body drops them together
         client, head, retry = _CLIENTS.get(client_key), _HEADS.get(client_key), mark in _PREPARED
+        ran = _RAN.setdefault(mark, collections.Counter())
     if client is None:  # the flow body has closed the run's cluster: the run is being stopped
         raise RunStoppedError.before_start(seg.segment_id)
     # Taken first thing: a driver a stopped head start gave up is refused (RunStoppedError),
@@ -218,6 +225,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
 
     def on_block(done: int, total: int, res: Any) -> None:
+        ran[res.array_name] += 1
         # Blocks are submitted only after every file of the segment is prepared.
         if done == 1:
             with _CLIENTS_LOCK:
@@ -449,7 +457,9 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             if state.is_completed() and isinstance(value, list):
                 outs = value
             else:
-                outs = _outcomes_from_store(store, w)
+                with _CLIENTS_LOCK:
+                    ran = dict(_RAN.get((key, w.segment_id), {}))
+                outs = _outcomes_from_store(store, w, ran)
                 bad = [o.relpath for o in outs if o.status == "failed"]
                 logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
                              state.message or state.name, ", ".join(bad))
@@ -491,10 +501,12 @@ def preload(scheduler: str | None) -> None:
         warm_compiled_loops()
 
 
-def _outcomes_from_store(store: OutputStore, seg: SegmentWork) -> list[FileOutcome]:
+def _outcomes_from_store(store: OutputStore, seg: SegmentWork,
+                         ran: dict[str, int] | None = None) -> list[FileOutcome]:
     """Per-file outcomes of a segment whose task failed, read back from the store.
 
-    A file counts as complete only when the store marks it complete for its current
+    ``ran`` maps an output array to the blocks the segment's task attempts ran for it
+    (recorded, whatever their status). A file counts as complete only when the store marks it complete for its current
     input (same fingerprint) and every block is done. When the task failed but no file
     looks failed by that measure (the failure came from outside the blocks), every file
     the segment had to compute counts as failed.
@@ -508,13 +520,14 @@ def _outcomes_from_store(store: OutputStore, seg: SegmentWork) -> list[FileOutco
             t = store.read_block_table(f.array_name, figures=False, seams=False)
             attrs = store.array_attrs(f.array_name)
         except Exception:
-            out.append(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "failed"))
+            out.append(FileOutcome(f.relpath, f.array_name, 0, (ran or {}).get(f.array_name, 0), 0, 0, "failed"))
             continue
         c = t.counts()
         done = c["pass"] + c["warn"]
         current = not fingerprint_changed(attrs.get("source_fingerprint"), f.fingerprint)[0]
         ok = done == t.n_blocks and attrs.get("complete") is True and current
-        out.append(FileOutcome(f.relpath, f.array_name, t.n_blocks, 0, done, t.n_blocks - done,
+        out.append(FileOutcome(f.relpath, f.array_name, t.n_blocks, (ran or {}).get(f.array_name, 0), done,
+                               t.n_blocks - done,
                                "complete" if ok else "failed", errors=dict(t.errors)))
     if not any(o.status == "failed" for o in out):
         out = [o if o.status == "skipped" else dataclasses.replace(o, status="failed") for o in out]
