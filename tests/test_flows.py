@@ -750,3 +750,35 @@ def test_a_follower_whose_progress_callback_fails_waits_for_its_driver(npy_archi
     store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
     tables = [store.read_block_table(a, figures=False, seams=False) for a in store.list_arrays()]
     assert tables and all(t.counts().get("pending", 0) == 0 for t in tables)  # every block recorded
+
+
+def test_a_head_start_whose_second_driver_cannot_start_stops_the_first(npy_archive, tmp_path, monkeypatch):
+    # Injected fault: the second segment's driver fails to start (as when no thread can be
+    # started). begin() raises, and before it returns the first driver has ended and the
+    # lock is released: no block is left running on a closed cluster, none is left pending
+    # as if still running, and no file is marked complete unless it is.
+    import twinpass.headstart as headstart_module
+
+    cfg_path = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
+                                                       "seconds": 0.1}]))
+    made: list = []
+
+    class FailingSecond(headstart_module.EarlySegment):
+        def __init__(self, *args, **kwargs):
+            if made:
+                raise RuntimeError("can't start new thread")
+            super().__init__(*args, **kwargs)
+            made.append(self)
+
+    monkeypatch.setattr(headstart_module, "EarlySegment", FailingSecond)
+    with pytest.raises(RuntimeError, match="can't start new thread"):
+        HeadStart.begin(load_config(cfg_path))
+    assert len(made) == 1 and made[0].join(0), "the first driver still runs after begin() raised"
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="a")
+    with store.lock("next-run"):  # released: the next run can take it
+        pass
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    tables = [store.read_block_table(a, figures=False, seams=False) for a in store.list_arrays()]
+    assert tables and all(t.counts()["pending"] == 0 for t in tables), [t.counts() for t in tables]

@@ -201,8 +201,10 @@ class HeadStart:
             begin_run(store, prep)
             if head.client_start is not None:
                 head._client = CancellableClient(head.client_start.client())
-                head.segments = {w.segment_id: EarlySegment(w, prep, store, head._client, watch) for w in busy}
-                head._drivers = list(head.segments.values())
+                for w in busy:  # one by one: if a later driver cannot start, close() stops those running
+                    driver = EarlySegment(w, prep, store, head._client, watch)
+                    head.segments[w.segment_id] = driver
+                    head._drivers.append(driver)
             head._lock = held.pop_all()  # held from now on until release() or withdraw()
         return head
 
