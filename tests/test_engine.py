@@ -533,6 +533,62 @@ def test_a_segment_stopped_by_its_callback_leaves_no_blocks_running(tmp_path):
         os.environ.pop("TWINPASS_FAULTS", None)
 
 
+@pytest.mark.parametrize("mode", ["halo", "carry"])
+def test_blocks_of_a_run_whose_lock_was_taken_over_write_nothing(tmp_path, mode):
+    # A later run has taken the store's run lock over (it judged this run's command dead, as
+    # after kill -9 with workers on a cluster of their own). Each block writes only while
+    # the lock holds its run's token: the blocks after the takeover write nothing, are
+    # recorded as not done with the holder named, and are not retried.
+    import json as _json
+    import os
+    import socket
+
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.engine import dask_client, run_segment
+    from twinpass.io.store import BlockStatus, OutputStore
+    from twinpass.job import prepare
+
+    write_stream(tmp_path / "archive", "deck", make_signal(12000, 1, 200.0, seed=6), 200.0, [2000] * 6)
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")},
+                                   processing={"block_seconds": 2.0, "mode": mode}, engine={"retries": 2}))
+    lock_path = Path(cfg.store_location) / ".twinpass-lock"
+    os.environ["TWINPASS_FAULTS"] = _json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.05}])
+    try:
+        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        with store.lock("first") as first:
+            prep = prepare(cfg, store)
+            (seg,) = [w for w in prep.work if w.has_work]
+
+            def take_over(done, total, res):
+                if done == 3:
+                    lock_path.write_text(_json.dumps({"pid": os.getpid(), "host": socket.gethostname(),
+                                                      "run_id": "later", "started": first.started,
+                                                      "token": "later-token"}))
+
+            with dask_client("threads", 2) as client:
+                outcomes = run_segment(seg, prep.designs[seg.sample_rate_hz], cfg, store, client,
+                                       on_block=take_over)
+        assert _json.loads(lock_path.read_text())["run_id"] == "later"  # left as found
+    finally:
+        os.environ.pop("TWINPASS_FAULTS", None)
+    assert all(o.status == "failed" for o in outcomes)
+    refused = {}
+    for o in outcomes:
+        table = store.read_block_table(o.array_name, figures=False, seams=False)
+        for i, err in table.errors.items():
+            if "not written" in err:
+                refused[(o.array_name, i)] = err
+    assert len(refused) >= 20, len(refused)  # blocks of 30 coming after the takeover
+    assert all("held by run later" in e and "Traceback" not in e for e in refused.values())
+    written = {(o.array_name, i) for o in outcomes
+               for i, st in enumerate(store.read_block_table(o.array_name, figures=False, seams=False).status)
+               if st == BlockStatus.PASS}
+    assert written, "no block was written before the takeover"
+    chunk = {o.array_name: Path(cfg.store_location) / o.array_name / "c" for o in outcomes}
+    assert all((chunk[name] / str(i) / "0").is_file() for name, i in written)  # one 400-frame chunk a block
+    assert not any((chunk[name] / str(i) / "0").exists() for name, i in refused)  # nothing written for these
+
+
 def test_changing_the_output_sample_type_refilters_the_files(tmp_path):
     # [output] dtype decides the values written; a rerun after changing it rewrites every
     # file in the new type (compared with the float64 run's own values rounded to float32).

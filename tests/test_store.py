@@ -23,7 +23,7 @@ import pytest
 import zarr
 from zarr.storage import LocalStore
 
-from twinpass.errors import StoreError, StoreLockedError, UnsafePathError
+from twinpass.errors import RunStoppedError, StoreError, StoreLockedError, UnsafePathError
 from twinpass.io.store import (
     BlockRecord,
     BlockStatus,
@@ -580,6 +580,29 @@ def test_stale_lock_is_recovered_with_a_warning(store: OutputStore, tmp_path: Pa
     with pytest.raises(StoreLockedError, match="far"):
         with store.lock("new"):
             pass
+
+
+@pytest.mark.parametrize("where", ["local", "memory"])
+def test_a_block_fenced_by_a_lock_another_run_took_writes_nothing(tmp_path: Path, where: str):
+    # A block task still running for a command that was killed (on a cluster of its own)
+    # carries the token of the lock that command held. Once a later run has taken the lock
+    # over, the old task's write is refused and the later run's data is left as it is.
+    location = str(tmp_path / "out.zarr") if where == "local" else f"memory://fence-{uuid.uuid4().hex}.zarr"
+    store = OutputStore.open(location)
+    _prepare(store)
+    with store.lock("old") as old:
+        assert store.lock_token == old.token
+        write_block_data(location, NAME, 0, np.full((40, 3), 1.0), fence=old.token)  # its own lock: written
+    assert store.lock_token == ""
+    with store.lock("new") as new:
+        write_block_data(location, NAME, 0, np.full((40, 3), 2.0), fence=new.token)
+        with pytest.raises(RunStoppedError, match=r"block \[0, 40\) not written.*held by run new"):
+            write_block_data(location, NAME, 0, np.full((40, 3), 9.0), fence=old.token)
+    with pytest.raises(RunStoppedError, match="it is not held"):
+        write_block_data(location, NAME, 40, np.full((40, 3), 9.0), fence=old.token)
+    data = store.read(NAME)
+    np.testing.assert_array_equal(data[:40], 2.0)
+    assert not np.any(data[40:] == 9.0)
 
 
 def test_partial_files_are_cleaned(store: OutputStore, tmp_path: Path):

@@ -51,7 +51,7 @@ from .core.blocks import Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.types import Design
-from .errors import ConfigError, InputError, StoreError, TwinpassError
+from .errors import ConfigError, InputError, RunStoppedError, StoreError, TwinpassError
 from .io.readers.base import ReaderSpec
 
 log = logging.getLogger("twinpass.engine")
@@ -183,6 +183,9 @@ class BlockJob:
     sync: bool = True
     """Sync the output to disk in the task (``[output] sync``), before it returns. False also
     when the driver syncs it instead, before recording the block (see :func:`run_jobs`)."""
+    fence: str = ""
+    """The run lock's token; the output is written only while the store's lock holds it
+    (see :func:`~twinpass.io.store.write_block_data`). Empty: written unchecked."""
 
 
 @dataclass
@@ -277,13 +280,16 @@ def run_block(job: BlockJob) -> BlockResult:
                 from .io.store import write_block_data
 
                 write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
-                                 y.astype(job.out_dtype), sync=job.sync)
+                                 y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
             return BlockResult(job.array_name, job.block_index, status, figs, seams, None,
                                attempt + 1, time.perf_counter() - t0, wlen)
         except Exception as exc:  # a block failure must never stop the others
             last = f"{type(exc).__name__}: {exc}"
             if not isinstance(exc, TwinpassError):
                 last += "\n" + traceback.format_exc(limit=4)
+            if isinstance(exc, RunStoppedError):  # another run holds the store: no retry can write
+                return BlockResult(job.array_name, job.block_index, ERROR, None, None, last, attempt + 1,
+                                   time.perf_counter() - t0, 0)
             if attempt < job.retries:
                 time.sleep(delays[attempt])
     return BlockResult(job.array_name, job.block_index, ERROR, None, None, last,
@@ -707,6 +713,7 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
                 out_dtype=cfg.output.dtype, seam_samples=k, check_response=bool(every) and i % every == 0,
                 checks_cfg=cfg.checks, retries=cfg.engine.retries,
                 retry_backoff_seconds=cfg.engine.retry_backoff_seconds, holes=seg.holes, sync=sync_in_task,
+                fence=getattr(store, "lock_token", ""),
             ))
     return jobs
 

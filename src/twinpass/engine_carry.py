@@ -115,7 +115,7 @@ from .engine import (
     record_result,
     segment_edge_samples,
 )
-from .errors import ConfigError, KernelError, TwinpassError
+from .errors import ConfigError, KernelError, RunStoppedError, TwinpassError
 from .io.store import array_metadata, write_rows
 from .io.store_util import RESERVED_PREFIX, json_safe, local_path
 
@@ -297,6 +297,8 @@ class PieceJob:
     seam_samples: int = 0
     sync: bool = True
     """Sync the output to disk before the block counts as done (``[output] sync``)."""
+    fence: str = ""
+    """The run lock's token (see :attr:`twinpass.engine.BlockJob.fence`)."""
 
 
 def _to_cm(state: np.ndarray) -> np.ndarray:
@@ -350,6 +352,8 @@ def _with_retries(job: PieceJob, work: Callable[[], T]) -> tuple[T | None, str |
             last = f"{type(exc).__name__}: {exc}"
             if not isinstance(exc, TwinpassError):
                 last += "\n" + traceback.format_exc(limit=4)
+            if isinstance(exc, RunStoppedError):  # another run holds the store: no retry can write
+                return None, last, attempt + 1
             if attempt < job.retries:
                 time.sleep(job.retry_backoff_seconds * 2**attempt)
     return None, last, job.retries + 1
@@ -447,7 +451,7 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
         from .io.store import write_block_data
 
         write_block_data(job.store_location, p.array_name, p.start - job.edge_samples - p.file_offset,
-                         y.astype(job.out_dtype), sync=job.sync)
+                         y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
         return BlockResult(p.array_name, p.block_index, status, figs, seams, None, 1, 0.0, window.shape[0])
 
     res, err, attempts = _with_retries(job, work)
@@ -837,7 +841,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
         ranges = _read_ranges(p, n, seg.frames, cfg.processing.edge, before)
         return PieceJob(p, seg.frames, n, cfg.processing.edge, seg.channels, _sources_for(sources, ranges), sos,
                         retries, cfg.engine.retry_backoff_seconds, before=before,
-                        store_location=store.location, **extra)
+                        store_location=store.location, fence=getattr(store, "lock_token", ""), **extra)
 
     def is_core(i: int) -> bool:
         return 0 <= i < m and pieces[i].kind == "core"

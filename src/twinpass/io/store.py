@@ -52,7 +52,7 @@ from zarr.core.metadata.v3 import ArrayV3Metadata
 from zarr.storage import FsspecStore, LocalStore, MemoryStore, StorePath
 
 from ..core.types import FileRecord
-from ..errors import StoreError, UnsafePathError
+from ..errors import RunStoppedError, StoreError, UnsafePathError
 from . import store_lock
 from .store_lock import LockInfo
 from .store_util import (
@@ -271,7 +271,8 @@ def _members(group: zarr.Group) -> list[tuple[str, Any]]:
         return list(group.members())
 
 
-def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, sync: bool = True) -> None:
+def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, sync: bool = True,
+                     fence: str = "") -> None:
     """Write one block's output into its array (safe from worker threads and processes).
 
     Parameters
@@ -288,12 +289,19 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, 
     sync : bool
         In a local store, return only once the chunks are on the disk (see
         :func:`_overwrite_file`).
+    fence : str
+        The token of the run lock the writing run holds (:attr:`OutputStore.lock_token`);
+        when given, nothing is written unless the store's lock still holds it. A block task
+        left running on a cluster of its own after its command was killed then cannot
+        overwrite what a later run, which took the lock over, has written.
 
     Raises
     ------
     StoreError
         Missing array, wrong shape, a region off the chunk grid, or a failed write
         (e.g. no space left on device).
+    RunStoppedError
+        ``fence`` is given and the store's lock no longer holds it.
     """
     check_name(name)
     data = np.asarray(data)
@@ -318,6 +326,8 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, 
             f"{name}: block region [{start}, {stop}) is not aligned to the {chunk}-sample chunks; "
             "blocks must write whole chunks (or end at the array's end) so that no two blocks share a chunk"
         )
+    if fence:
+        _check_fence(location, fence, f"{name} block [{start}, {stop})")
     with write_errors(f"{name} block [{start}, {stop}) in {location}"):
         root = local_path(location)
         encode = _chunk_encoder(arr) if root is not None else None
@@ -325,6 +335,27 @@ def write_block_data(location: str, name: str, start: int, data: np.ndarray, *, 
             arr[start:stop, :] = data.astype(arr.dtype, copy=False)
         else:
             _write_local_chunks(root / name, arr, encode, start, data, in_place=True, sync=sync)
+
+
+def _lock_file_at(location: str) -> store_lock.LockFile:
+    """The run lock object of the store at ``location``."""
+    root = local_path(location)
+    if root is not None:
+        return store_lock.LocalLockFile(root)
+    fs, fs_root = _url_fs(location)
+    return store_lock.FsspecLockFile(fs, fs_root, location)
+
+
+def _check_fence(location: str, token: str, what: str) -> None:
+    """Raise :class:`RunStoppedError` unless the store's run lock holds ``token``."""
+    raw = _lock_file_at(location).read()
+    holder = store_lock.LockInfo.parse(raw) if raw is not None else None
+    if holder is None or holder.token != token:
+        now = f"it is held by {holder.describe()}" if holder is not None else "it is not held"
+        raise RunStoppedError(
+            f"{what} not written: the run lock of {location} is no longer this run's ({now}); another run "
+            "took the store over (this run's command was judged dead, or the lock was removed by hand). "
+            "Nothing was written; the run holding the lock does this block")
 
 
 def sync_block_data(location: str, name: str, start: int, stop: int) -> None:
@@ -707,6 +738,9 @@ class OutputStore:
         self._store = store
         self._root = root
         self._mutex = threading.RLock()
+        self.lock_token = ""
+        """Token of the run lock this object holds (:meth:`lock`), else empty; block tasks
+        pass it to :func:`write_block_data` as their fence."""
         self._handles: collections.OrderedDict[str, _TableHandles] = collections.OrderedDict()
         """Open block-table arrays per output array, for :meth:`record_block` (driver only), the
         :data:`_NODES_KEPT` most recently used; dropped by every method that rewrites a table
@@ -779,10 +813,7 @@ class OutputStore:
     # -- locking and clean-up -------------------------------------------------
 
     def _lock_file(self) -> store_lock.LockFile:
-        if self.local_root is not None:
-            return store_lock.LocalLockFile(self.local_root)
-        fs, root = _url_fs(self.location)
-        return store_lock.FsspecLockFile(fs, root, self.location)
+        return _lock_file_at(self.location)
 
     @contextlib.contextmanager
     def lock(self, run_id: str) -> Iterator[LockInfo]:
@@ -796,9 +827,11 @@ class OutputStore:
         self._writable()
         lock_file = self._lock_file()
         info = store_lock.acquire(lock_file, run_id)
+        self.lock_token = info.token
         try:
             yield info
         finally:
+            self.lock_token = ""
             store_lock.release(lock_file, info)
 
     def clean_partials(self) -> int:
