@@ -327,6 +327,7 @@ def _halo_of(config: Path) -> dict[str, Any]:
     from twinpass.core.blocks import choose_layout
     from twinpass.core.kernel import block_window
     from twinpass.engine import segment_block_samples, segment_edge_samples
+    from twinpass.errors import ConfigError
     from twinpass.job import prepare
 
     class NoRecords:
@@ -346,16 +347,23 @@ def _halo_of(config: Path) -> dict[str, Any]:
     k = cfg.checks.seam_samples
     for w in prep.work:
         d = prep.designs[w.sample_rate_hz]
-        lay = choose_layout(sample_rate_hz=w.sample_rate_hz, channels=w.channels, halo=d.effective_length,
-                            block_seconds=cfg.processing.block_seconds, chunk_seconds=cfg.output.chunk_seconds,
-                            memory_budget_mib=cfg.processing.memory_budget_mib)
-        # The engine's own choice (engine.run_segment): carry mode has no halos.
-        carry = (cfg.processing.mode != "halo" and not getattr(w, "holes", ())
-                 and use_carry(d, segment_block_samples(w, lay), cfg))
+        # The engine's own choice (engine.run_segment): carry mode has no halos; it also takes
+        # a segment whose blocks with halos do not fit the memory budget.
+        may_carry = cfg.processing.mode != "halo" and not getattr(w, "holes", ())
+        try:
+            lay = choose_layout(sample_rate_hz=w.sample_rate_hz, channels=w.channels, halo=d.effective_length,
+                                block_seconds=cfg.processing.block_seconds, chunk_seconds=cfg.output.chunk_seconds,
+                                memory_budget_mib=cfg.processing.memory_budget_mib)
+        except ConfigError:
+            if not may_carry or (d.is_fir and cfg.processing.mode == "auto"):
+                raise
+            lay = None
+        carry = lay is None or (may_carry and use_carry(d, segment_block_samples(w, lay), cfg))
         info = layouts.setdefault(f"{w.sample_rate_hz:g} Hz x {w.channels} ch", {
-            "family": d.family, "order": d.order, "sections": d.n_sections, "halo": lay.halo,
-            "block_samples": lay.block_samples, "nominal_overhead": 2 * lay.halo / lay.block_samples,
-            "carry_segments": 0})
+            "family": d.family, "order": d.order, "sections": d.n_sections, "carry_segments": 0})
+        if lay is not None:
+            info.update(halo=lay.halo, block_samples=lay.block_samples,
+                        nominal_overhead=2 * lay.halo / lay.block_samples)
         if carry:
             info["carry_segments"] += 1
             continue
@@ -771,7 +779,9 @@ def tables(res: dict[str, Any]) -> str:
                     f"{sf['first_run_s']:.1f} s against {sf['baseline_s']:.1f} s = {sf['vs_baseline']:.2f}x "
                     f"({sf['per_file_ms']:.0f} ms per file, start-up included) |")
     for name, h in res["probes"].get("halo", {}).items():
-        lay = "; ".join(f"{k}: {v['family']} {v['sections']} sections, halo {v['halo']}, block {v['block_samples']}"
+        lay = "; ".join(f"{k}: {v['family']} {v['sections']} sections"
+                        + (f", halo {v['halo']}, block {v['block_samples']}" if "halo" in v else
+                           ", blocks with halos over the memory budget")
                         + (f", {v['carry_segments']} segment(s) in carry mode" if v.get("carry_segments") else "")
                         for k, v in h["layouts"].items())
         value = "-" if h["overhead"] is None else f"{100 * h['overhead']:.1f} %"
