@@ -233,6 +233,26 @@ def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     assert "blok_seconds" in r.stderr and "[processing]" in r.stderr
 
 
+@pytest.mark.skipif(sys.platform != "linux", reason="names that are not UTF-8 are a POSIX file system's")
+def test_a_flow_run_from_a_folder_whose_name_is_not_utf8_is_refused_before_it_starts(tmp_path: Path) -> None:
+    # Prefect sends a flow run's parameters as UTF-8 JSON (RFC 8259 section 8.1: JSON text
+    # exchanged between systems is UTF-8); a folder name that is not UTF-8 cannot be sent.
+    # The command exits 2 naming the path and the remedies, before it takes the store's
+    # lock or writes anything; the engine alone (--no-flow) runs there as usual.
+    folder = Path(os.fsdecode(os.fsencode(str(tmp_path)) + b"/site-\xff"))
+    folder.mkdir()
+    cfg = mixed_archive(folder)
+    env = {**cli_env(), "PREFECT_API_URL": "http://127.0.0.1:9/api"}  # never reached
+    r = subprocess.run([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-report"], capture_output=True,
+                       text=True, errors="backslashreplace", env=env, timeout=600)
+    assert r.returncode == 2, r.stderr
+    assert "site-\\xff" in r.stderr and "not UTF-8" in r.stderr and "--no-flow" in r.stderr, r.stderr
+    assert "Traceback" not in r.stderr and not (folder / "out.zarr").exists()
+    r = subprocess.run([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-flow", "--no-report"],
+                       capture_output=True, text=True, errors="backslashreplace", env=env, timeout=600)
+    assert r.returncode == 0, r.stderr
+
+
 def test_run_in_process_leaves_the_garbage_collector_on(tmp_path: Path) -> None:
     # The run command pauses the cyclic collector only while it imports its modules.
     import gc

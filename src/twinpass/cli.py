@@ -241,6 +241,31 @@ def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | 
     return True
 
 
+def _check_utf8_paths(paths: dict[str, str | None]) -> None:
+    """Refuse, before anything starts, a path the Prefect flow could not send to its API.
+
+    Prefect sends a flow run's parameters, logs and artifacts as UTF-8 JSON; a path with a
+    name that is not UTF-8 (kept by Python as surrogate escapes) cannot be encoded, and the
+    flow call would fail with a bare encoding error.
+
+    Raises
+    ------
+    ConfigError
+        Naming the path and what to do.
+    """
+    for what, path in paths.items():
+        if path is None:
+            continue
+        try:
+            path.encode("utf-8")
+        except UnicodeEncodeError:
+            shown = path.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+            raise ConfigError(
+                f"the {what} {shown} has a name that is not UTF-8 text; a Prefect flow run sends its "
+                "parameters, logs and artifacts as UTF-8, so it cannot name it. Rename the folder (or file) "
+                "to a UTF-8 name, or run the engine alone with --no-flow") from None
+
+
 def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str | None, workers: int | None,
               report: bool, progress: _ProgressBar, config_block: str | None = None) -> int:
     from . import flows
@@ -253,6 +278,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     # what the flow call would load after it and, unless the run has begun (it has its
     # cluster), start its local Dask cluster (a saved block's scheduler and workers are not
     # known yet).
+    if cfg is not None:
+        _check_utf8_paths({"configuration file": str(Path(config_path).resolve()) if config_path else None,
+                           "archive root": str(cfg.archive_root), "output store": cfg.store_location})
     run_scheduler = scheduler or (cfg.engine.scheduler if cfg is not None else None)
     run_workers = workers or (cfg.engine.workers if cfg is not None else None)
     head = False
