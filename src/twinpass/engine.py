@@ -672,8 +672,11 @@ def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any
             store.update_attrs(fw.array_name, design_digest=digest)
         status = np.asarray(table.status)
         todo = {i for i in range(len(spans)) if status[i] not in DONE}
-        if isinstance(fw.action, tuple):
-            redo = blocks_touching(spans, fw.action)
+        redo = blocks_touching(spans, fw.action) if isinstance(fw.action, tuple) else []
+        if not fresh:  # blocks recorded done whose chunk files have gone since: run again
+            lost = getattr(store, "absent_chunks", lambda _name: ())(fw.array_name)
+            redo = sorted(set(redo) | {i for i in blocks_touching(spans, list(lost)) if status[i] in DONE})
+        if redo:
             _set_pending(store, fw.array_name, status, redo)
             todo |= set(redo)
         todo_by_file[fw.array_name] = sorted(todo)

@@ -52,6 +52,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
             counts, summary, errors, grade, cancelled = {}, {}, {}, "incomplete", set()
         n = sum(counts.values())
         done = counts.get("pass", 0) + counts.get("warn", 0)
+        marked = attrs.get("complete") is True
+        lost = store.absent_chunks(name) if marked else ()
         files.append({
             "name": name, "source": attrs.get("source"), "stream": attrs.get("stream"),
             "segment": attrs.get("segment"), "start_time": attrs.get("start_time"),
@@ -59,7 +61,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
             "blocks_warn": counts.get("warn", 0), "blocks_fail": counts.get("fail", 0),
             "blocks_error": counts.get("error", 0) - len(cancelled), "blocks_cancelled": len(cancelled),
             "checks": grade,
-            "complete": attrs.get("complete") is True,
+            "complete": marked and not lost,
+            "chunks_missing": [list(span) for span in lost],
             "edge_zone_samples": attrs.get("edge_zone_samples"),
             "worst": {k: _worst(summary, k) for k in ("passband_dev_db", "phase_deg", "stopband_att_db",
                                                       "seam_mismatch", "clipped", "nonfinite_out")},
@@ -139,6 +142,14 @@ def format_status(status: dict[str, Any]) -> str:
     for f in status["files"]:
         for b, msg in f["errors"].items():
             lines.append(f"  error {f['name']} block {b}: {msg}")
+    lost = [f for f in status["files"] if f.get("chunks_missing")]
+    if lost:
+        lines.append(f"outputs with chunk files missing (deleted or lost since written; they would read as zeros; "
+                     f"the next run reruns their blocks): {len(lost)}")
+        lines += [f"  {f['name']}: frames " + ", ".join(f"[{a}, {b})" for a, b in f["chunks_missing"])
+                  for f in lost[:LISTED]]
+        if len(lost) > LISTED:
+            lines.append(f"  ... and {len(lost) - LISTED} more (twinpass status --json lists them all)")
     for title, entries in (("left out by the last run (invalid input; an output made earlier is kept as it was)",
                             [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
                            ("outputs whose input is no longer in the archive (kept as they were)",

@@ -10,7 +10,8 @@ changed    fingerprint, frame count, design digest or output sample type differs
            (or ``force``): filter the whole file
 unchanged  same fingerprint and design, output complete: nothing to do
 incomplete same fingerprint and design, output not complete: resume (blocks
-           already marked done are kept)
+           already marked done are kept); or output complete but some of its chunk
+           files missing (:attr:`FileRecord.absent`): rerun the blocks they held
 neighbour  unchanged itself, but its output near a file join depends on input
            that changed: recompute the given spans
 removed    a record whose input is no longer in the archive
@@ -471,7 +472,11 @@ class _SegmentPlanner:
             status, reason = self.own[k]
             redo: Redo = None
             resume = False
-            spans = _merge(self.spans[k])
+            rec = self.recs[k]
+            lost = _merge(rec.absent) if rec is not None and status == "unchanged" else ()
+            spans = _merge([*self.spans[k], *lost])
+            if lost:
+                self.causes[k].append(_lost_text(lost))
             why = "; ".join(self.causes[k])
             if status in ("new", "changed"):
                 redo = "all"
@@ -479,6 +484,8 @@ class _SegmentPlanner:
                 redo, resume = "all", not spans
                 if spans:
                     reason = f"output incomplete, and {why}: recompute the whole file"
+            elif lost and spans == lost:  # only chunks lost: rerun their blocks, keep the rest
+                status, redo, resume, reason = "incomplete", spans, True, f"{why}: their blocks are rerun"
             elif spans:
                 status, redo, reason = "neighbour", spans, why
             out.append(
@@ -488,6 +495,14 @@ class _SegmentPlanner:
                 )
             )
         return out
+
+
+def _lost_text(lost: tuple[Span, ...]) -> str:
+    """What to say of a complete output whose chunk files are missing (frame spans ``lost``)."""
+    frames = sum(b - a for a, b in lost)
+    where = ", ".join(f"[{a}, {b})" for a, b in lost[:3]) + (f" and {len(lost) - 3} more" if len(lost) > 3 else "")
+    return (f"output chunk files missing for {frames} frames at {where} (deleted or lost since they were "
+            "written; they would read as zeros)")
 
 
 def _lookup(table: Mapping[float, Any], fs: float, what: str, seg: Segment) -> Any:

@@ -152,3 +152,6 @@ class FileRecord:
     attribute holds it); None when unknown."""
     dtype: str | None = None
     """Sample type of the output array (e.g. ``"float32"``); None when unknown."""
+    absent: tuple[tuple[int, int], ...] = ()
+    """Frame spans [start, stop) of a complete output whose chunk files are missing or empty
+    (deleted or lost since they were written); checked in local stores only."""

@@ -1530,18 +1530,48 @@ class OutputStore:
             a = arr.attrs.asdict()
             if not all(k in a for k in REQUIRED_ATTRS):
                 continue
+            complete = a.get("complete") is True
             out[str(a["source"])] = FileRecord(
                 source=str(a["source"]),
                 source_fingerprint=dict(a["source_fingerprint"] or {}),
                 design_digest=str(a["design_digest"]),
-                complete=a.get("complete") is True,
+                complete=complete,
                 frames=int(arr.shape[0]),
                 segment=None if a.get("segment") is None else str(a["segment"]),
                 array_name=name,
                 start_time=None if a.get("start_time") is None else str(a["start_time"]),
                 dtype=str(arr.dtype),
+                absent=self._absent_chunks(name, arr) if complete else (),
             )
         return out
+
+    def absent_chunks(self, name: str) -> tuple[tuple[int, int], ...]:
+        """Frame spans [start, stop) of output array ``name`` whose chunk files are missing or
+        empty (local stores; elsewhere nothing is checked and the result is empty)."""
+        arr = self._node(name)
+        return self._absent_chunks(name, arr) if isinstance(arr, zarr.Array) else ()
+
+    def _absent_chunks(self, name: str, arr: zarr.Array) -> tuple[tuple[int, int], ...]:
+        # Every chunk of an output array is written (write_empty_chunks), so a chunk file
+        # that is missing or empty was lost after it was written: reading it would give the
+        # fill value (zeros) without a word. One stat per chunk.
+        if self.local_root is None or len(arr.shape) != 2 or arr.chunks[1] != arr.shape[1]:
+            return ()
+        frames, chunk = int(arr.shape[0]), int(arr.chunks[0])
+        folder = self.local_root / name
+        spans: list[tuple[int, int]] = []
+        for i in range(-(-frames // chunk)):
+            try:
+                present = os.stat(folder / arr.metadata.encode_chunk_key((i, 0))).st_size > 0
+            except OSError:
+                present = False
+            if not present:
+                a, b = i * chunk, min(frames, (i + 1) * chunk)
+                if spans and spans[-1][1] == a:
+                    spans[-1] = (spans[-1][0], b)
+                else:
+                    spans.append((a, b))
+        return tuple(spans)
 
     def remove_file(self, name: str) -> bool:
         """Delete an output array and its block table; return whether the array existed."""
