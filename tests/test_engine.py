@@ -623,6 +623,25 @@ def test_a_block_lost_with_its_workers_is_recorded_with_a_remedy():
     assert lost_task_error(ValueError("odd")) == "ValueError: odd"
 
 
+def test_a_block_whose_scheduler_went_away_is_recorded_failed_not_cancelled():
+    # distributed's client cancels every future when it loses its scheduler, with a
+    # FutureCancelledError of reason "scheduler-connection-lost" (distributed.client,
+    # Client._reconnect; "scheduler-restart" after Client.restart). Such a block failed:
+    # it is not one the run cancelled itself when stopped, and its text says what to check.
+    import concurrent.futures
+
+    from distributed.client import FutureCancelledError
+
+    from twinpass.core.checks import was_cancelled
+    from twinpass.engine import lost_task_error
+
+    for reason in ("scheduler-connection-lost", "scheduler-restart"):
+        text = lost_task_error(FutureCancelledError("twinpass-block-x-0-1", reason, "lost"))
+        assert not was_cancelled(text) and text.startswith("SchedulerLost:") and "--scheduler" in text, text
+    assert was_cancelled(lost_task_error(FutureCancelledError("twinpass-block-x-0-1", None)))  # the run's own
+    assert was_cancelled(lost_task_error(concurrent.futures.CancelledError()))
+
+
 def test_a_tls_scheduler_address_without_tls_settings_is_a_configuration_error():
     # distributed refuses a tls:// address when no TLS settings are configured; the command
     # says what to set instead of showing that library's TypeError.

@@ -873,14 +873,24 @@ class _CancelledBlockNotice(logging.Filter):
 logging.getLogger("distributed.worker.state_machine").addFilter(_CancelledBlockNotice())
 
 
+SCHEDULER_LOST_REASONS = frozenset({"scheduler-connection-lost", "scheduler-restart"})
+"""Reasons distributed gives when it cancels a client's futures because their scheduler went away."""
+
+
 def lost_task_error(exc: BaseException) -> str:
     """The error text recorded for a block whose Dask task raised ``exc`` instead of a result.
 
     A cancelled task (the run was stopped: Ctrl-C, a run begun before its flow run and not
-    taken over) gets a text beginning with :data:`CANCELLED`; anything else (a worker lost
-    more often than the scheduler allows) gets the exception's type and message.
+    taken over) gets a text beginning with :data:`CANCELLED`; a task cancelled because the
+    client lost its scheduler counts as failed, with what to check; anything else (a worker
+    lost more often than the scheduler allows) gets the exception's type and message.
     """
     if isinstance(exc, (concurrent.futures.CancelledError, asyncio.CancelledError)):
+        # distributed cancels every future of a client whose scheduler went away, naming why
+        if getattr(exc, "reason", None) in SCHEDULER_LOST_REASONS:
+            return ("SchedulerLost: the connection to the Dask scheduler was lost before this block finished (the "
+                    "scheduler stopped, restarted or became unreachable); check it ([engine] scheduler or "
+                    "--scheduler) and rerun: the next run does this block")
         return f"{CANCELLED}: the run was stopped before this block finished; the next run does it"
     text = f"{type(exc).__name__}: {exc}".strip() or type(exc).__name__
     if type(exc).__name__ == "KilledWorker":  # distributed's: the workers running it died, again and again
