@@ -225,6 +225,27 @@ def test_an_unchanged_rerun_does_not_load_the_dask_scheduler(tmp_path: Path) -> 
     assert r.stdout.strip().splitlines()[-1] == "False"
 
 
+def test_a_run_that_leaves_inputs_out_exits_3_until_they_are_excluded(tmp_path: Path) -> None:
+    # Exit statuses as the command's documentation states them: 3 when the run finished
+    # with no file failed but inputs left out; `status --require-complete` fails while the
+    # last run left inputs out; excluding the file in [archive] exclude ends both.
+    cfg = mixed_archive(tmp_path)
+    bad = tmp_path / "archive" / "beta" / "beta_20260301T000200.npy"
+    bad.write_bytes(b"\x93NUMPY not really")
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
+    assert r.returncode == 3, r.stdout + r.stderr
+    assert "invalid 1" in r.stdout and "beta/beta_20260301T000200.npy" in r.stderr
+    r = _twinpass("status", str(cfg), "--require-complete")
+    assert r.returncode == 1 and "1 input(s) left out by the last run" in r.stderr, r.stderr
+    assert "beta/beta_20260301T000200.npy" in r.stdout
+    cfg.write_text(cfg.read_text().replace('include = ["**/*.wav", "**/*.npy", "**/*.raw"]',
+                                           'include = ["**/*.wav", "**/*.npy", "**/*.raw"]\n'
+                                           'exclude = ["beta/beta_20260301T000200.npy"]'))
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
+    assert r.returncode == 0 and "invalid 0" in r.stdout, r.stdout + r.stderr
+    assert _twinpass("status", str(cfg), "--require-complete").returncode == 0
+
+
 def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)
     cfg.write_text(cfg.read_text().replace("[processing]", "[processing]\nblok_seconds = 3"))

@@ -589,6 +589,46 @@ def test_blocks_of_a_run_whose_lock_was_taken_over_write_nothing(tmp_path, mode)
     assert not any((chunk[name] / str(i) / "0").exists() for name, i in refused)  # nothing written for these
 
 
+def test_failed_files_and_interrupted_runs_are_recorded_for_status(tmp_path):
+    # The store keeps why each file of the last run failed, and a run stopped before its
+    # end (Ctrl-C) is recorded as such, so that `twinpass status` never shows the run
+    # before it as the last one.
+    import json as _json
+    import os
+
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.io.store import OutputStore
+    from twinpass.status import collect_status, format_status, shortfalls
+
+    files = write_stream(tmp_path / "archive", "deck", make_signal(12000, 1, 200.0, seed=6), 200.0, [4000] * 3)
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")},
+                                   processing={"block_seconds": 2.0}, engine={"retries": 0}))
+    os.environ["TWINPASS_FAULTS"] = _json.dumps([{"action": "raise", "file": files.arrays[1], "block": 3}])
+    try:
+        res = run_job(cfg)
+    finally:
+        os.environ.pop("TWINPASS_FAULTS", None)
+    assert res.failed == [files.relpaths[1]] and res.exit_status() == 1
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    assert list(status["failed_inputs"]) == [files.relpaths[1]]
+    assert "InjectedFault" in status["failed_inputs"][files.relpaths[1]]
+    text = format_status(status)
+    assert "failed at the last run (the next run tries them again): 1" in text and "InjectedFault" in text
+    assert "1 input(s) failed at the last run" in shortfalls(status)
+
+    def stop(segment_id, done, total, res):
+        if done == 2:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        run_job(cfg, force=True, on_block=stop)
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    assert status["runs_total"] == 2 and status["last_run"]["interrupted"] is True
+    assert "(stopped before its end; the next run does the rest)" in format_status(status)
+    assert run_job(cfg).ok
+    assert "interrupted" not in collect_status(OutputStore.open(cfg.store_location, mode="r"))["last_run"]
+
+
 def test_changing_the_output_sample_type_refilters_the_files(tmp_path):
     # [output] dtype decides the values written; a rerun after changing it rewrites every
     # file in the new type (compared with the float64 run's own values rounded to float32).

@@ -624,6 +624,8 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     assert f"blocks {6 * BLOCKS_PER_FILE}/{6 * BLOCKS_PER_FILE}" not in text, text
     records = _file_records_honest(str(tmp_path / "out.zarr"))
     assert not all(records.values()), records
+    root = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_root_info()
+    assert root["runs"][-1].get("interrupted") is True, root["runs"]  # the stopped run is the last recorded
     state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
     assert state.is_completed(), state.message
     assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())

@@ -39,6 +39,7 @@ __all__ = [
     "CHANNELS",
     "STREAMS",
     "TRUNCATED_STREAM",
+    "DEMO_TRUNCATED_FILE",
     "START_TIME",
     "MODE_VERTICAL_HZ",
     "MODE_LATERAL_HZ",
@@ -63,6 +64,8 @@ TRUNCATED_STREAM = "abutment-west"
 """The stream holding the single truncated file."""
 START_TIME = _dt.datetime(2026, 3, 1, tzinfo=_dt.timezone.utc)
 """Time of the first sample of the archive."""
+DEMO_TRUNCATED_FILE = f"{TRUNCATED_STREAM}/{TRUNCATED_STREAM}_{START_TIME:%Y%m%dT%H%M%S}.wav"
+"""Archive path of the truncated file, which every demo run leaves out on purpose."""
 MODE_VERTICAL_HZ = 2.3
 """First vertical bending mode of the deck, Hz (channel z)."""
 MODE_LATERAL_HZ = 3.1

@@ -64,7 +64,7 @@ from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStopped
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
-from .job import Prepared, RunResult, begin_run, finish_run, now_iso, prepare
+from .job import Prepared, RunResult, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -401,20 +401,30 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             start = None
         if start is None:
             close_early_client()  # nothing to filter here: a cluster the command started is not needed
-        # Closed on the way out: a head start stops its drivers before its cluster closes.
-        with contextlib.closing(head or start) if start is not None else contextlib.nullcontext():
-            design_task(quote(prep))
-            if head is None:
-                begin_run(store, prep)
-            unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
-            idle = [w for w in prep.work if not w.has_work]
-            outcomes: list[FileOutcome] = [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped")
-                                           for w in idle for f in w.files]
-            if unchanged:
-                skip_unchanged(quote(unchanged))
-            if start is not None:
-                done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
-                outcomes.extend(done)
+        outcomes: list[FileOutcome] = []
+        begun = head is not None
+        try:
+            # Closed on the way out: a head start stops its drivers before its cluster closes.
+            with contextlib.closing(head or start) if start is not None else contextlib.nullcontext():
+                design_task(quote(prep))
+                if head is None:
+                    begin_run(store, prep)
+                    begun = True
+                unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
+                idle = [w for w in prep.work if not w.has_work]
+                outcomes += [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped")
+                             for w in idle for f in w.files]
+                if unchanged:
+                    skip_unchanged(quote(unchanged))
+                if start is not None:
+                    done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
+                    outcomes.extend(done)
+        except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
+            if begun:
+                finish_interrupted_run(store, RunResult(run_id, started, now_iso(), outcomes, prep.invalid,
+                                                        prep.designs, list(prep.plan.removed),
+                                                        list(prep.plan.notes)), cfg)
+            raise
         result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
                            list(prep.plan.notes))
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))

@@ -42,7 +42,7 @@ from .config import JobConfig
 from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .errors import RunStoppedError
 from .io.store import OutputStore
-from .job import Prepared, begin_run, now_iso, prepare
+from .job import Prepared, RunResult, begin_run, finish_interrupted_run, now_iso, prepare
 
 log = logging.getLogger(__name__)
 
@@ -303,6 +303,11 @@ def withdraw() -> None:
         if not head._drivers_ended():
             log.warning("no flow run took over run %s; stopping it: its unfinished blocks are recorded as not "
                         "done, and the next run of the same configuration finishes them", head.run_id)
+        head.close()  # the drivers have ended: the run is recorded as interrupted, then the lock released
+        prep = head.prep
+        finish_interrupted_run(head.store, RunResult(head.run_id, head.started, now_iso(), [], prep.invalid,
+                                                     prep.designs, list(prep.plan.removed), list(prep.plan.notes)),
+                               head.cfg)
         head.release()
 
 

@@ -6,6 +6,7 @@ The Prefect flow (:mod:`twinpass.flows`) calls the same steps as tasks; the CLI'
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import importlib.metadata
 import logging
@@ -152,10 +153,27 @@ class RunResult:
     """Files the store has outputs of that are no longer in the archive."""
     notes: list[str] = field(default_factory=list)
     """The plan's notes (:attr:`twinpass.core.plan.Plan.notes`)."""
+    interrupted: bool = False
+    """The run was stopped (Ctrl-C) before its end: ``outcomes`` holds the segments that had
+    finished; the others' finished blocks are kept, and the next run does the rest."""
 
     @property
     def failed(self) -> list[str]:
         return [o.relpath for o in self.outcomes if o.status == "failed"]
+
+    def failure_reasons(self) -> dict[str, str]:
+        """Why each failed file failed: the first line of its first recorded error."""
+        out = {}
+        for o in self.outcomes:
+            if o.status == "failed":
+                first = next((str(e) for _, e in sorted(o.errors.items()) if e), "")
+                out[o.relpath] = first.splitlines()[0] if first else "checks failed (see its block table)"
+        return out
+
+    def exit_status(self) -> int:
+        """The command's exit status: 1 some files failed, 3 none failed but inputs were left
+        out (invalid input, or no filter for their sample rate), 0 otherwise."""
+        return 1 if self.failed else 3 if self.invalid else 0
 
     def counts(self) -> dict[str, int]:
         c: dict[str, int] = {"complete": 0, "failed": 0, "skipped": 0, "invalid": len(self.invalid)}
@@ -184,12 +202,26 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
 def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
     """Record the run: its entry, and in its own record the files it left out (invalid:
     reason and remedy) and the outputs whose input is gone (see ``twinpass status``)."""
-    store.append_run({"run_id": result.run_id, "start": result.started, "end": result.ended,
-                      "counts": result.counts(), "config_digest": cfg.digest(),
-                      "failed": result.failed},
-                     details={"left_out": {b.relpath: b.explained for b in result.invalid},
-                              "gone": [r.relpath for r in result.removed],
-                              "notes": list(result.notes)})
+    entry = {"run_id": result.run_id, "start": result.started, "end": result.ended,
+             "counts": result.counts(), "config_digest": cfg.digest(), "failed": result.failed}
+    if result.interrupted:
+        entry["interrupted"] = True
+    store.append_run(entry, details={"left_out": {b.relpath: b.explained for b in result.invalid},
+                                     "gone": [r.relpath for r in result.removed],
+                                     "notes": list(result.notes),
+                                     "failed": result.failure_reasons()})
+
+
+def finish_interrupted_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
+    """Record a run stopped before its end (Ctrl-C) as interrupted; never raises.
+
+    Called on the way out of an interrupted run, still holding the lock, so that the
+    store's last run is this one and ``twinpass status`` does not show the run before it.
+    """
+    try:
+        finish_run(store, dataclasses.replace(result, ended=now_iso(), interrupted=True), cfg)
+    except Exception:  # the interruption is what the caller reports
+        log.warning("the interrupted run %s could not be recorded in the store", result.run_id, exc_info=True)
 
 
 def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None]) -> list[FileOutcome]:
@@ -235,7 +267,6 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         Per-file outcomes; a segment whose driver raised has its files ``"failed"`` with
         the error under block index -1, and the other segments still run.
     """
-    from .engine import dask_client
 
     say = log_fn or log.info
     run_id = uuid.uuid4().hex[:12]
@@ -258,29 +289,43 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         for w in prep.work:
             if not w.has_work:
                 outcomes.extend(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") for f in w.files)
-        if busy:
-            with dask_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as dask:
-                client = CancellableClient(dask)
-
-                def one(w: SegmentWork) -> list[FileOutcome]:
-                    cb = None if on_block is None else (lambda d, t, r, sid=w.segment_id: on_block(sid, d, t, r))
-                    try:
-                        return run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
-                    except Exception as e:  # one segment's trouble (e.g. its store arrays) must not stop the others
-                        return segment_failed(w, e, say)
-
-                with ThreadPoolExecutor(max_workers=4) as pool:
-                    drivers = [pool.submit(one, w) for w in busy]
-                    try:
-                        for d in drivers:
-                            outcomes.extend(d.result())
-                    except BaseException:  # Ctrl-C: stop the drivers before the cluster closes
-                        _stop_drivers(pool, drivers, client)
-                        raise
+        try:
+            _run_busy(busy, prep, cfg, store, outcomes, scheduler, workers, on_block, say)
+        except BaseException:  # Ctrl-C: the run is recorded as interrupted, then the interrupt goes on
+            finish_interrupted_run(store, RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs,
+                                                    list(prep.plan.removed), list(prep.plan.notes)), cfg)
+            raise
         result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
                            list(prep.plan.notes))
         finish_run(store, result, cfg)
     return result
+
+
+def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: OutputStore,
+              outcomes: list[FileOutcome], scheduler: str | None, workers: int | None,
+              on_block: Callable[[str, int, int, Any], None] | None, say: Callable[[str], None]) -> None:
+    """Run the segments with work on a Dask cluster, adding their outcomes to ``outcomes``."""
+    if not busy:
+        return
+    from .engine import dask_client  # imports distributed: only when there is work
+    with dask_client(scheduler or cfg.engine.scheduler, workers or cfg.engine.workers) as dask:
+        client = CancellableClient(dask)
+
+        def one(w: SegmentWork) -> list[FileOutcome]:
+            cb = None if on_block is None else (lambda d, t, r, sid=w.segment_id: on_block(sid, d, t, r))
+            try:
+                return run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
+            except Exception as e:  # one segment's trouble (e.g. its store arrays) must not stop the others
+                return segment_failed(w, e, say)
+
+        with ThreadPoolExecutor(max_workers=4) as pool:
+            drivers = [pool.submit(one, w) for w in busy]
+            try:
+                for d in drivers:
+                    outcomes.extend(d.result())
+            except BaseException:  # Ctrl-C: stop the drivers before the cluster closes
+                _stop_drivers(pool, drivers, client)
+                raise
 
 
 __all__ = ["Prepared", "RunResult", "designs_for", "prepare", "run_job", "segment_work", "segment_failed",

@@ -75,6 +75,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     left_out = {str(k): str(v) for k, v in (details.get("left_out") or {}).items()}
     gone = {str(r) for r in details.get("gone") or []}
     notes = [str(n) for n in details.get("notes") or []]
+    failed_inputs = {str(k): str(v) for k, v in (details.get("failed") or {}).items()}
     for f in files:
         src = str(f["source"])
         f["input"] = ("left out at the last run: " + left_out[src] if src in left_out
@@ -91,7 +92,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
             "runs_total": int(root.get("runs_total", len(runs))),
-            "left_out": left_out, "gone": sorted(gone), "notes": notes}
+            "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -136,8 +137,9 @@ def format_status(status: dict[str, Any]) -> str:
     last = status.get("last_run")
     if last:
         counts = last.get("counts") or {}
+        stopped = " (stopped before its end; the next run does the rest)" if last.get("interrupted") else ""
         lines.append(f"runs recorded: {status.get('runs_total', 1)}; last {last.get('run_id')} "
-                     f"{last.get('start')} to {last.get('end') or '-'}: "
+                     f"{last.get('start')} to {last.get('end') or '-'}{stopped}: "
                      + ", ".join(f"{k} {v}" for k, v in counts.items()))
     for f in status["files"]:
         for b, msg in f["errors"].items():
@@ -150,7 +152,9 @@ def format_status(status: dict[str, Any]) -> str:
                   for f in lost[:LISTED]]
         if len(lost) > LISTED:
             lines.append(f"  ... and {len(lost) - LISTED} more (twinpass status --json lists them all)")
-    for title, entries in (("left out by the last run (invalid input; an output made earlier is kept as it was)",
+    for title, entries in (("failed at the last run (the next run tries them again)",
+                            [f"{k}: {v}" for k, v in sorted((status.get("failed_inputs") or {}).items())]),
+                           ("left out by the last run (invalid input; an output made earlier is kept as it was)",
                             [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
                            ("outputs whose input is no longer in the archive (kept as they were)",
                             list(status.get("gone") or [])),
@@ -164,9 +168,28 @@ def format_status(status: dict[str, Any]) -> str:
 
 
 def all_passed(status: dict[str, Any]) -> bool:
-    """Every file complete and no block failed its checks."""
+    """Every file complete, no block failed its checks, and the last run left no input out
+    and failed none (see :func:`shortfalls`)."""
+    return not shortfalls(status)
+
+
+def shortfalls(status: dict[str, Any]) -> list[str]:
+    """What keeps the archive's output from being complete with passed checks, one phrase each
+    (empty when nothing does)."""
     t = status["totals"]
-    return t["files"] > 0 and t["incomplete"] == 0 and t["checks_failed"] == 0 and t["blocks_failed"] == 0
+    out = []
+    if t["files"] == 0:
+        out.append("the store holds no output file")
+    if t["incomplete"]:
+        out.append(f"{t['incomplete']} file(s) incomplete")
+    if t["checks_failed"] or t["blocks_failed"]:
+        out.append(f"{t['checks_failed']} file(s) with failed checks or blocks")
+    if status.get("failed_inputs"):
+        out.append(f"{len(status['failed_inputs'])} input(s) failed at the last run")
+    if status.get("left_out"):
+        out.append(f"{len(status['left_out'])} input(s) left out by the last run (exclude them in [archive] "
+                   "exclude if that is intended)")
+    return out
 
 
-__all__ = ["open_target", "collect_status", "format_status", "all_passed"]
+__all__ = ["open_target", "collect_status", "format_status", "all_passed", "shortfalls"]
