@@ -464,11 +464,13 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             value = fut.result(raise_on_failure=False)
             secs = time.perf_counter() - t0
             state = fut.state
+            with _CLIENTS_LOCK:
+                ran = dict(_RAN.get((key, w.segment_id), {}))
             if state.is_completed() and isinstance(value, list):
-                outs = value
+                # Blocks run by every attempt: a retry's own outcomes count only its own.
+                outs = [dataclasses.replace(o, blocks_run=max(o.blocks_run, ran.get(o.array_name, 0)))
+                        for o in value]
             else:
-                with _CLIENTS_LOCK:
-                    ran = dict(_RAN.get((key, w.segment_id), {}))
                 outs = _outcomes_from_store(store, w, ran)
                 bad = [o.relpath for o in outs if o.status == "failed"]
                 logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
