@@ -786,3 +786,43 @@ def test_a_head_start_whose_second_driver_cannot_start_stops_the_first(npy_archi
     assert not all(records.values()), records
     tables = [store.read_block_table(a, figures=False, seams=False) for a in store.list_arrays()]
     assert tables and all(t.counts()["pending"] == 0 for t in tables), [t.counts() for t in tables]
+
+
+def test_dashboard_progress_never_holds_up_the_blocks(monkeypatch, caplog):
+    # Injected fault: the Prefect API hangs on a progress update (as Prefect's client does,
+    # retrying for about a minute, when the server went away). show() returns at once while
+    # the sender waits; the sender then passes on only the latest percentage; a failing
+    # update is logged once and the rest are dropped; close() after a failure returns.
+    release = threading.Event()
+    sent: list[float] = []
+
+    def hanging_update(artifact_id, percent):
+        if not sent:
+            release.wait(60)
+        sent.append(percent)
+
+    monkeypatch.setattr(flows, "update_progress_artifact", hanging_update)
+    progress = flows.DashboardProgress("artifact", logging.getLogger("twinpass.test"))
+    progress.show(10.0)
+    poll(lambda: progress._latest, lambda latest: latest is None, "the sender taking the first update")
+    progress.show(20.0)  # both while the first update hangs
+    progress.show(30.0)
+    release.set()
+    poll(lambda: list(sent), lambda s: len(s) == 2, "the latest update sent")
+    progress.close(ended=True)
+    assert sent == [10.0, 30.0, 100.0]
+
+    def failing_update(artifact_id, percent):
+        sent.append(percent)
+        raise RuntimeError("server gone")
+
+    sent.clear()
+    monkeypatch.setattr(flows, "update_progress_artifact", failing_update)
+    caplog.set_level(logging.WARNING, logger="twinpass.test")
+    progress = flows.DashboardProgress("artifact", logging.getLogger("twinpass.test"))
+    progress.show(50.0)
+    poll(lambda: list(sent), lambda s: len(s) == 1, "the failing update")
+    progress.show(60.0)
+    progress.close(ended=True)
+    assert sent == [50.0] and not progress._thread.is_alive()
+    assert len([r for r in caplog.records if "could not update the progress" in r.getMessage()]) == 1

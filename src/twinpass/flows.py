@@ -27,6 +27,7 @@ from . import _prefect_env  # noqa: F401  (must precede the prefect import)
 
 import collections
 import contextlib
+import contextvars
 import dataclasses
 import re
 import threading
@@ -219,7 +220,8 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     design = prep.designs[seg.sample_rate_hz]
     todo = [f.relpath for f in seg.files if f.action != "skip"]
     logger.info("segment %s: %d file(s) to filter: %s", seg.segment_id, len(todo), ", ".join(todo))
-    artifact_id = create_progress_artifact(0.0, description=f"blocks of segment {seg.segment_id}")
+    progress = DashboardProgress(create_progress_artifact(0.0, description=f"blocks of segment {seg.segment_id}"),
+                                 logger)
     last = [time.monotonic()]
     block_errors = BlockErrorLog(seg.segment_id, logger)
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
@@ -236,13 +238,14 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         now = time.monotonic()
         if done < total and now - last[0] >= PROGRESS_INTERVAL_S:  # 100 % is set once the segment ends
             last[0] = now
-            _show_progress(artifact_id, 100.0 * done / max(total, 1), logger)
+            progress.show(100.0 * done / max(total, 1))
 
     try:
         if early is not None:  # begun before the flow run: follow it (a retry runs as usual)
             outcomes = early.follow(on_block)
         else:
             outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block, log_blocks=False)
+        progress.close(ended=True)
     except Exception as exc:
         if getattr(client, "status", "running") in ("closing", "closed"):  # the flow body stopped the run
             raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped while this segment ran "
@@ -250,7 +253,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         raise
     finally:
         block_errors.close()
-    _show_progress(artifact_id, 100.0, logger)
+        progress.close(ended=False)  # the segment raised: a pending update is dropped
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:
         if o.status == "complete":
@@ -269,14 +272,66 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     return outcomes
 
 
-def _show_progress(artifact_id: Any, percent: float, logger: Any) -> None:
-    """Update a segment's progress artifact; a failed update is logged, never fatal: the
-    blocks and their records do not depend on the dashboard."""
-    try:
-        update_progress_artifact(artifact_id, percent)
-    except Exception as e:
-        logger.warning("could not update the progress shown on the dashboard (%s: %s); the segment goes on",
-                       type(e).__name__, e)
+class DashboardProgress:
+    """A segment's progress artifact, updated from a thread of its own.
+
+    The blocks never wait on the Prefect API: :meth:`show` only notes the latest
+    percentage, and the sender thread passes on the latest one it finds (older ones are
+    dropped). Prefect's client retries a failed request for about a minute, so an update to
+    a server that went away would otherwise hold up the segment's driver that long for each
+    block. After a failed update the rest are dropped, with one warning. The thread runs in
+    a copy of the task's context (Prefect's settings and run context live there).
+    """
+
+    CLOSE_WAIT_S = 10.0
+    """Seconds :meth:`close` waits for the final update before going on without it."""
+
+    def __init__(self, artifact_id: Any, logger: Any) -> None:
+        self.artifact_id = artifact_id
+        self._logger = logger
+        self._latest: float | None = None
+        self._closed = False
+        self._failed = False
+        self._cv = threading.Condition()
+        context = contextvars.copy_context()
+        self._thread = threading.Thread(target=context.run, args=(self._send,), daemon=True,
+                                        name="twinpass-dashboard-progress")
+        self._thread.start()
+
+    def show(self, percent: float) -> None:
+        """Note ``percent`` (0-100) for the sender; returns at once."""
+        with self._cv:
+            self._latest = float(percent)
+            self._cv.notify()
+
+    def close(self, *, ended: bool, wait_s: float | None = None) -> None:
+        """Stop the sender, first showing 100 % if the segment ``ended`` (else dropping any
+        pending update), and wait for it up to ``wait_s`` seconds (default
+        :attr:`CLOSE_WAIT_S`). Only the first call counts."""
+        with self._cv:
+            if self._closed:
+                return
+            self._latest = 100.0 if ended else None
+            self._closed = True
+            self._cv.notify()
+        self._thread.join(self.CLOSE_WAIT_S if wait_s is None else wait_s)
+
+    def _send(self) -> None:
+        while True:
+            with self._cv:
+                while self._latest is None and not self._closed:
+                    self._cv.wait()
+                if self._latest is None:
+                    return
+                percent, self._latest = self._latest, None
+            if self._failed:
+                continue
+            try:
+                update_progress_artifact(self.artifact_id, percent)
+            except Exception as e:  # the blocks and their records do not depend on the dashboard
+                self._failed = True
+                self._logger.warning("could not update the progress shown on the dashboard (%s: %s); the segment "
+                                     "goes on without it", type(e).__name__, e)
 
 
 @task(name="skip-unchanged", cache_policy=NO_CACHE)
