@@ -283,3 +283,61 @@ def test_the_report_passes_over_inputs_gone_since_they_were_filtered(tmp_path: P
         p.unlink()
     assert _largest_transient(cfg, store, names) is None
     assert write_report(cfg, tmp_path / "report.html").is_file()
+
+
+def _run_small_job(folder: Path, response: dict | None = None) -> Path:
+    """Three files of one 200 Hz stream filtered into ``folder/out.zarr``; the config's path."""
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+
+    write_stream(folder / "archive", "deck", make_signal(6000, 2, 200.0, seed=3), 200.0, [2000, 2000, 2000])
+    path = write_config(folder, response=response)
+    assert run_job(load_config(path)).ok
+    return path
+
+
+def test_the_report_draws_the_design_the_outputs_were_filtered_with(tmp_path: Path) -> None:
+    # The configuration's passband is changed after the run and not rerun: the report draws
+    # the design recorded with the outputs, not the configuration's, and says they differ.
+    from conftest import BANDPASS, write_config
+    from twinpass.config import load_config
+    from twinpass.core.design import design_filter, per_pass_response
+    from twinpass.io.store import OutputStore
+    from twinpass.report_data import output_designs, write_report
+    from twinpass.status import collect_status
+
+    _run_small_job(tmp_path)
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    names = store.list_arrays()
+    recorded = store.array_attrs(names[0])["filter"]
+    changed = dict(BANDPASS, cutoff_hz=[5.0, 30.0])
+    cfg = load_config(write_config(tmp_path, response=changed))
+
+    designs, unrecorded = output_designs(cfg, store, collect_status(store)["files"])
+    assert len(designs) == 1 and not unrecorded
+    drawn = designs[0].design
+    f = np.linspace(0.0, 100.0, 2001)
+    # Reference: scipy.signal.sosfreqz of the SOS recorded with the outputs.
+    _, h_recorded = signal.sosfreqz(np.asarray(recorded["sos"]), worN=f, fs=200.0)
+    np.testing.assert_allclose(per_pass_response(drawn, f), h_recorded, rtol=1e-12, atol=1e-14)
+    assert drawn.effective_length == recorded["effective_length_samples"]
+    assert designs[0].spec is not None and designs[0].spec["cutoff_hz"] == [2.0, 40.0]
+    # The configuration's design now is another response (so drawing it would be wrong).
+    _, h_now = signal.sosfreqz(design_filter(cfg.response, 200.0, 1e-9).sos, worN=f, fs=200.0)
+    assert np.max(np.abs(np.abs(h_now) - np.abs(h_recorded))) > 0.1
+
+    text = write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8")
+    plain = html.unescape(text)
+    assert 0 < text.index('<div class="notices">') < text.index("<h2>Summary</h2>")
+    assert "The configuration now asks for a bandpass response (butterworth family), order 2 per pass, cutoff 5-30 Hz" \
+        in plain
+    assert "were filtered with a bandpass response (butterworth family), order 2 per pass, cutoff 2-40 Hz" in plain
+    assert "rerun to refilter" in plain
+    assert f"effective length {recorded['effective_length_samples']} samples" in plain
+    for caution in report.DEFAULT_CAUTIONS:  # the cautions stay
+        assert html.escape(caution) in text
+
+    # Unchanged configuration: no notice.
+    same = write_report(load_config(write_config(tmp_path, response=BANDPASS)), tmp_path / "same.html")
+    assert '<div class="notices">' not in same.read_text(encoding="utf-8")

@@ -3,11 +3,12 @@
 Figures are drawn with matplotlib's Agg renderer and embedded as base64 PNG images;
 styles are inline; the file loads nothing from anywhere and needs no JavaScript.
 
-Sections: summary, cautions, filter design (per design: overall response against the
-spec mask beside the per-pass response, overall zero phase against the per-pass phase,
-two-pass impulse response with its effective length, the design report table), the
-per-block check map, before/after overlays around the largest transient, and the file
-table.
+Sections: notices (such as a configuration that no longer asks for the design the
+outputs were filtered with), summary, cautions, filter design (per design: what it was
+used for, overall response against the spec mask beside the per-pass response, overall
+zero phase against the per-pass phase, two-pass impulse response with its effective
+length, the design report table), the per-block check map, before/after overlays
+around the largest transient, and the file table.
 
 Conventions: frequencies in Hz, levels in dB (overall level ``20 log10 |H|^2``), times
 in seconds.
@@ -40,7 +41,8 @@ from twinpass.core.kernel import autocorrelation
 from twinpass.core.types import Design
 from twinpass.errors import TwinpassError
 
-__all__ = ["DEFAULT_CAUTIONS", "STATUS_COLORS", "render_report", "response_figure_png", "two_pass_impulse"]
+__all__ = ["DEFAULT_CAUTIONS", "STATUS_COLORS", "UNRECORDED_KIND", "render_report", "response_figure_png",
+           "two_pass_impulse"]
 
 DEFAULT_CAUTIONS: tuple[str, ...] = (
     "The filtering is non-causal: running the filter forward and then backward cancels the "
@@ -63,6 +65,10 @@ STATUS_COLORS: dict[str, str] = {
     "error": "#6a1b9a",
 }
 """Fill colours of the block check map, by block status."""
+
+UNRECORDED_KIND = "unrecorded"
+"""``ResponseSpec.kind`` of a design rebuilt from recorded coefficients whose response spec
+is not known: drawn without a spec mask."""
 
 IMPULSE_PLOT_MAX: int = 1 << 18
 """Longest single-pass impulse response computed for the plot (samples per side)."""
@@ -447,6 +453,7 @@ figcaption{font-size:.9em;color:#455a64}
 .cautions{background:#fff8e1;border-left:5px solid #f9a825;padding:.6em 1.2em}
 .status{display:inline-block;padding:0 .5em;border-radius:3px;color:#fff}
 .muted{color:#757575}
+.notices{background:#ffebee;border-left:5px solid #c62828;padding:.6em 1.2em;font-weight:600}
 """
 
 
@@ -507,6 +514,9 @@ def _value_html(value: Any, depth: int = 0) -> str:
 
 def _design_label(design: Design) -> str:
     spec = design.spec
+    if spec.kind == UNRECORDED_KIND:
+        return (f"{design.family}, order {design.order} per pass, {design.sample_rate_hz:g} Hz sample rate "
+                "(response spec not recorded)")
     return (f"{spec.kind} {design.family}, order {design.order} per pass, "
             f"{design.sample_rate_hz:g} Hz sample rate")
 
@@ -584,6 +594,8 @@ def render_report(
     overlays: list[dict[str, Any]],
     title: str,
     cautions: list[str],
+    notices: Sequence[str] = (),
+    design_notes: Sequence[str] = (),
 ) -> Path:
     """Write the run report as one self-contained HTML file.
 
@@ -611,6 +623,12 @@ def render_report(
         Page title.
     cautions : list of str
         Cautions shown after :data:`DEFAULT_CAUTIONS` (duplicates dropped).
+    notices : sequence of str
+        Shown first, above the summary, in a box of their own (e.g. the configuration no
+        longer asks for the design the outputs were filtered with).
+    design_notes : sequence of str
+        One per design (where missing, none): what the design was used for and where it
+        comes from, shown under the design's heading.
 
     Returns
     -------
@@ -629,6 +647,10 @@ def render_report(
         f"<title>{_esc(title)}</title><style>{_CSS}</style></head><body>",
         f"<h1>{_esc(title)}</h1>",
         f'<p class="muted">Written {_esc(_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC"))}.</p>',
+    ]
+    if notices:
+        parts.append('<div class="notices"><ul>' + "".join(f"<li>{_esc(n)}</li>" for n in notices) + "</ul></div>")
+    parts += [
         "<h2>Summary</h2>",
         _summary(designs, files, blocks),
         "<h2>Cautions</h2>",
@@ -646,6 +668,8 @@ def render_report(
         parts.append('<p class="muted">No designs.</p>')
     for i, design in enumerate(designs):
         parts.append(f"<h3>Design {i + 1}: {_esc(_design_label(design))}</h3>")
+        if i < len(design_notes) and design_notes[i]:
+            parts.append(f"<p>{_esc(design_notes[i])}</p>")
         parts.append("<h4>Overall response</h4>")
         parts.append(_img(_png(_response_figure(design)), "overall and per-pass response",
                           "Overall two-pass gain |H|^2 against the spec mask (green: allowed ripple band; "
