@@ -341,3 +341,49 @@ def test_the_report_draws_the_design_the_outputs_were_filtered_with(tmp_path: Pa
     # Unchanged configuration: no notice.
     same = write_report(load_config(write_config(tmp_path, response=BANDPASS)), tmp_path / "same.html")
     assert '<div class="notices">' not in same.read_text(encoding="utf-8")
+
+
+def _colour_pixels(png: bytes, colour: str) -> int:
+    rgb = np.asarray([int(colour[i:i + 2], 16) for i in (1, 3, 5)]) / 255.0
+    pixels = mpimg.imread(io.BytesIO(png), format="png")[..., :3]
+    return int(np.sum(np.all(np.abs(pixels - rgb) < 2.0 / 255.0, axis=-1)))
+
+
+def test_the_report_shows_blocks_of_a_stopped_run_as_cancelled(tmp_path: Path) -> None:
+    # Blocks whose tasks were cancelled when a run was stopped are recorded as the engine
+    # records them (status error, the text of twinpass.engine.lost_task_error for a
+    # cancelled task): not done, nothing failed. Reference: twinpass.status.collect_status,
+    # which `twinpass status` prints, counts them as cancelled and not as failed.
+    import concurrent.futures
+
+    from twinpass.config import load_config
+    from twinpass.core.checks import ERROR
+    from twinpass.engine import lost_task_error
+    from twinpass.io.store import BlockRecord, OutputStore
+    from twinpass.report_data import write_report
+    from twinpass.status import collect_status
+
+    cfg = load_config(_run_small_job(tmp_path))
+    store = OutputStore.open(cfg.store_location, mode="a")
+    text = lost_task_error(concurrent.futures.CancelledError())
+    stopped = 0
+    for name in store.list_arrays():
+        n = store.read_block_table(name, figures=False, seams=False).n_blocks
+        store.record_blocks(name, [BlockRecord(i, ERROR, None, None, text) for i in range(n)])
+        stopped += n
+    totals = collect_status(OutputStore.open(cfg.store_location, mode="r"))["totals"]
+    assert totals["blocks_cancelled"] == stopped and totals["blocks_failed"] == 0
+
+    page = write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8")
+    assert f"cancelled: {stopped}</span>" in page and "error: 0</span>" in page
+    assert "a run was stopped before they finished" in page
+    # The block map: the cancelled colour fills the bars; the error colour is only in the
+    # legend, where it takes no more pixels than the pending colour (no block is pending).
+    parsed = _Collector()
+    parsed.feed(page)
+    pngs = [base64.b64decode(src.split(",", 1)[1]) for src in parsed.images]
+    block_map = next(p for p in pngs if _colour_pixels(p, report.STATUS_COLORS["cancelled"]) > 0)
+    cancelled = _colour_pixels(block_map, report.STATUS_COLORS["cancelled"])
+    error = _colour_pixels(block_map, report.STATUS_COLORS["error"])
+    pending = _colour_pixels(block_map, report.STATUS_COLORS["pending"])
+    assert 0 < error <= 1.5 * pending and cancelled > 10 * error, (cancelled, error, pending)

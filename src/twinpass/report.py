@@ -63,8 +63,11 @@ STATUS_COLORS: dict[str, str] = {
     "fail": "#c62828",
     "pending": "#9e9e9e",
     "error": "#6a1b9a",
+    "cancelled": "#00838f",
 }
-"""Fill colours of the block check map, by block status."""
+"""Fill colours of the block check map, by block status. ``cancelled``: the block's task was
+cancelled because a run was stopped (recorded as an error whose text says so); it is not
+done, nothing failed in it, and the next run does it."""
 
 UNRECORDED_KIND = "unrecorded"
 """``ResponseSpec.kind`` of a design rebuilt from recorded coefficients whose response spec
@@ -537,6 +540,7 @@ _FILE_COLUMNS: tuple[tuple[str, str], ...] = (
     ("stream", "Stream"),
     ("blocks_done", "Blocks done"),
     ("blocks_failed", "Blocks failed"),
+    ("blocks_cancelled", "Blocks cancelled"),
     ("worst", "Worst figures"),
     ("edge_zones", "Edge zones"),
     ("complete", "Complete"),
@@ -562,7 +566,7 @@ def _file_table(files: Sequence[Mapping[str, Any]]) -> str:
                 cells.append(f'<td class="num">{_esc(_fmt(value))} / {_esc(_fmt(f.get("blocks_total")))}</td>')
             elif key == "worst":
                 cells.append(f"<td>{_worst_html(value)}</td>")
-            elif key in ("blocks_done", "blocks_failed"):
+            elif key in ("blocks_done", "blocks_failed", "blocks_cancelled"):
                 cells.append(f'<td class="num">{_esc(_fmt(value))}</td>')
             else:
                 cells.append(f"<td>{_value_html(value)}</td>")
@@ -580,8 +584,10 @@ def _summary(designs: Sequence[Design], files: Sequence[Mapping[str, Any]], bloc
         for n, c in counts.items()
     )
     complete = sum(1 for f in files if f.get("complete"))
+    stopped = (f'<p>{counts["cancelled"]} block(s) cancelled: a run was stopped before they finished. They are '
+               "not done, nothing failed in them, and the next run does them.</p>" if counts["cancelled"] else "")
     return (f"<p>{len(designs)} design(s), {len(files)} file(s) ({complete} complete), "
-            f"{len(blocks)} block(s).</p><p>{badges}</p>")
+            f"{len(blocks)} block(s).</p><p>{badges}</p>{stopped}")
 
 
 def render_report(
@@ -616,7 +622,7 @@ def render_report(
     blocks : list of dict
         Check map entries: ``stream``, ``file``, ``start_time_s`` (s since the earliest
         start, or absolute epoch seconds), ``duration_s`` (s), ``status`` (a status code
-        or pass/warn/fail/pending/error).
+        or pass/warn/fail/pending/error/cancelled).
     overlays : list of dict
         ``file``, ``t`` (s), ``before`` and ``after`` (1-D, same length as ``t``).
     title : str
@@ -693,7 +699,9 @@ def render_report(
     parts.append("<h2>Block check map</h2>")
     if blocks:
         parts.append(_img(_png(_block_map_figure(blocks)), "block check map",
-                          "Each rectangle is one block of one stream, coloured by the outcome of its checks."))
+                          "Each rectangle is one block of one stream, coloured by the outcome of its checks; "
+                          "cancelled: a run was stopped before the block finished (not done, nothing failed; "
+                          "the next run does it)."))
     else:
         parts.append('<p class="muted">No blocks recorded.</p>')
 

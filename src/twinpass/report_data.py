@@ -312,6 +312,7 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
     for f in status["files"]:
         files.append({"file": f["source"], "stream": f["stream"], "blocks_done": f["blocks_done"],
                       "blocks_total": f["blocks"], "blocks_failed": f["blocks_fail"] + f["blocks_error"],
+                      "blocks_cancelled": f["blocks_cancelled"],
                       "worst": f["worst"], "edge_zones": f["edge_zone_samples"], "complete": f["complete"],
                       "checks": f["checks"]})
         attrs = store.array_attrs(f["name"])
@@ -321,9 +322,12 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
             t = store.read_block_table(f["name"], figures=False, seams=False)
         except Exception:
             continue
-        for (s, e), st in zip(t.span.tolist(), t.status.tolist()):
+        # As in `twinpass status`: a block cancelled when a run was stopped is recorded as an
+        # error whose text says so; it is not done, but nothing failed in it.
+        cancelled = {int(k) for k, v in t.errors.items() if _checks.was_cancelled(v)}
+        for i, ((s, e), st) in enumerate(zip(t.span.tolist(), t.status.tolist())):
             blocks.append({"stream": f["stream"], "file": f["source"], "start_time_s": t0 + s / fs,
-                           "duration_s": (e - s) / fs, "status": int(st)})
+                           "duration_s": (e - s) / fs, "status": "cancelled" if i in cancelled else int(st)})
     overlay = _largest_transient(cfg, store, [f["name"] for f in status["files"]])
     path = Path(output) if output else default_report_path(cfg)
     return render_report(
