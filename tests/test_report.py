@@ -387,3 +387,54 @@ def test_the_report_shows_blocks_of_a_stopped_run_as_cancelled(tmp_path: Path) -
     error = _colour_pixels(block_map, report.STATUS_COLORS["error"])
     pending = _colour_pixels(block_map, report.STATUS_COLORS["pending"])
     assert 0 < error <= 1.5 * pending and cancelled > 10 * error, (cancelled, error, pending)
+
+
+@pytest.fixture(scope="module")
+def demo_report(tmp_path_factory: pytest.TempPathFactory) -> tuple[str, dict]:
+    """The demo archive (one hour), run with the engine, and its report."""
+    from twinpass.config import load_config
+    from twinpass.demo import write_demo_archive
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import write_report
+    from twinpass.status import collect_status
+
+    folder = tmp_path_factory.mktemp("demo")
+    cfg = load_config(write_demo_archive(folder, hours=1))
+    result = run_job(cfg)
+    assert result.ok and len(result.invalid) == 1
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    return write_report(cfg, folder / "report.html").read_text(encoding="utf-8"), status
+
+
+def test_the_report_names_the_input_the_run_left_out_and_why(demo_report: tuple[str, dict]) -> None:
+    # Reference: the demo archive's abutment-west file is cut short mid-frame on purpose, and
+    # twinpass.status.collect_status (what `twinpass status` prints) records it left out
+    # with its reason and remedy; the report lists the same, escaped as HTML.
+    page, status = demo_report
+    (relpath, why), = status["left_out"].items()
+    assert relpath.startswith("abutment-west/")
+    parsed = _Collector()
+    parsed.feed(page)
+    assert "Left out, failed or missing" in parsed.headings
+    section = page[page.index("<h2>Left out, failed or missing</h2>"):page.index("<h2>Before and after")]
+    assert "Inputs left out by the last run" in section
+    assert html.escape(f"{relpath}: {why}") in section
+    assert "truncated" in why and '[archive] truncated = "warn"' in why
+    assert '"warn"' not in section  # quotes escaped
+
+
+def test_report_lists_are_capped_and_escaped(tmp_path: Path) -> None:
+    # Huge archives: each list shows report.LISTED entries and counts the rest; entries are
+    # text, escaped as HTML (reference: html.escape of the standard library).
+    entries = [f"deck/rec_{i:05d}.wav: <cut short> & left out" for i in range(report.LISTED + 7)]
+    out = report.render_report(tmp_path / "r.html", design_reports=[], designs=[], files=[], blocks=[], overlays=[],
+                               title="lists", cautions=[], listed=[("Inputs left out by the last run", entries),
+                                                                   ("Notes of the last run", [])])
+    text = out.read_text(encoding="utf-8")
+    assert f"Inputs left out by the last run: {len(entries)}" in text and "Notes of the last run" not in text
+    assert html.escape(entries[report.LISTED - 1]) in text and html.escape(entries[report.LISTED]) not in text
+    assert "... and 7 more" in text and "<cut short>" not in text
+    empty = report.render_report(tmp_path / "e.html", design_reports=[], designs=[], files=[], blocks=[], overlays=[],
+                                 title="none", cautions=[], listed=[("Notes of the last run", [])])
+    assert "Nothing left out, failed, gone or missing" in empty.read_text(encoding="utf-8")

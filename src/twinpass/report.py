@@ -7,8 +7,8 @@ Sections: notices (such as a configuration that no longer asks for the design th
 outputs were filtered with), summary, cautions, filter design (per design: what it was
 used for, overall response against the spec mask beside the per-pass response, overall
 zero phase against the per-pass phase, two-pass impulse response with its effective
-length, the design report table), the per-block check map, before/after overlays
-around the largest transient, and the file table.
+length, the design report table), the per-block check map, inputs left out, failed or
+missing, before/after overlays around the largest transient, and the file table.
 
 Conventions: frequencies in Hz, levels in dB (overall level ``20 log10 |H|^2``), times
 in seconds.
@@ -41,7 +41,7 @@ from twinpass.core.kernel import autocorrelation
 from twinpass.core.types import Design
 from twinpass.errors import TwinpassError
 
-__all__ = ["DEFAULT_CAUTIONS", "STATUS_COLORS", "UNRECORDED_KIND", "render_report", "response_figure_png",
+__all__ = ["DEFAULT_CAUTIONS", "LISTED", "STATUS_COLORS", "UNRECORDED_KIND", "render_report", "response_figure_png",
            "two_pass_impulse"]
 
 DEFAULT_CAUTIONS: tuple[str, ...] = (
@@ -72,6 +72,9 @@ done, nothing failed in it, and the next run does it."""
 UNRECORDED_KIND = "unrecorded"
 """``ResponseSpec.kind`` of a design rebuilt from recorded coefficients whose response spec
 is not known: drawn without a spec mask."""
+
+LISTED = 50
+"""Entries shown under each heading of the report's lists (the rest are counted)."""
 
 IMPULSE_PLOT_MAX: int = 1 << 18
 """Longest single-pass impulse response computed for the plot (samples per side)."""
@@ -590,6 +593,23 @@ def _summary(designs: Sequence[Design], files: Sequence[Mapping[str, Any]], bloc
             f"{len(blocks)} block(s).</p><p>{badges}</p>{stopped}")
 
 
+def _listed_html(sections: Sequence[tuple[str, Sequence[str]]]) -> str:
+    """Titled lists, each capped at :data:`LISTED` entries with a count of the rest."""
+    parts = []
+    for title, entries in sections:
+        if not entries:
+            continue
+        parts.append(f"<h3>{_esc(title)}: {len(entries)}</h3><ul>")
+        parts += [f"<li>{_esc(e)}</li>" for e in entries[:LISTED]]
+        if len(entries) > LISTED:
+            parts.append(f'<li class="muted">... and {len(entries) - LISTED} more '
+                         "(<code>twinpass status --json</code> lists them all)</li>")
+        parts.append("</ul>")
+    if not parts:
+        return '<p class="muted">Nothing left out, failed, gone or missing, and no notes, at the last run.</p>'
+    return "".join(parts)
+
+
 def render_report(
     path: str | os.PathLike[str],
     *,
@@ -602,6 +622,7 @@ def render_report(
     cautions: list[str],
     notices: Sequence[str] = (),
     design_notes: Sequence[str] = (),
+    listed: Sequence[tuple[str, Sequence[str]]] | None = None,
 ) -> Path:
     """Write the run report as one self-contained HTML file.
 
@@ -635,6 +656,10 @@ def render_report(
     design_notes : sequence of str
         One per design (where missing, none): what the design was used for and where it
         comes from, shown under the design's heading.
+    listed : sequence of (title, entries), optional
+        The section "Left out, failed or missing" (inputs left out, failed, gone, missing
+        chunks, notes), each list capped at :data:`LISTED` with a count of the rest; omitted
+        when None.
 
     Returns
     -------
@@ -704,6 +729,10 @@ def render_report(
                           "the next run does it)."))
     else:
         parts.append('<p class="muted">No blocks recorded.</p>')
+
+    if listed is not None:
+        parts.append("<h2>Left out, failed or missing</h2>")
+        parts.append(_listed_html(listed))
 
     parts.append("<h2>Before and after filtering</h2>")
     if not overlays:

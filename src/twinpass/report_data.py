@@ -274,6 +274,32 @@ def design_notices(cfg: JobConfig, designs: Sequence[OutputDesign]) -> list[str]
     return notices
 
 
+def _frames(spans: Sequence[Sequence[int]]) -> str:
+    return ", ".join(f"[{a}, {b})" for a, b in spans)
+
+
+def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
+    """The report's "Left out, failed or missing" lists from :func:`collect_status`'s result:
+    inputs the last run left out (reason; remedy), inputs that failed (reason) and blocks that
+    failed (first line of the error), outputs whose input is gone, outputs with chunk files
+    missing (frame spans [start, stop)), and the last run's notes."""
+    files = status.get("files") or []
+    failed = status.get("failed_inputs") or {}
+    return [
+        ("Inputs left out by the last run (invalid input; an output made earlier is kept as it was)",
+         [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
+        ("Inputs that failed in the last run", [f"{k}: {v}" for k, v in sorted(failed.items())]),
+        ("Blocks that failed (the next run tries them again)",
+         [f"{f['source']} block {b}: {msg}" for f in files for b, msg in sorted((f.get("errors") or {}).items(),
+                                                                                key=lambda e: int(e[0]))]),
+        ("Outputs whose input is no longer in the archive (kept as they were)", list(status.get("gone") or [])),
+        ("Outputs with chunk files missing (deleted or lost since written; they would read as zeros; the next "
+         "run reruns their blocks)",
+         [f"{f['source']}: frames {_frames(f['chunks_missing'])}" for f in files if f.get("chunks_missing")]),
+        ("Notes of the last run", list(status.get("notes") or [])),
+    ]
+
+
 class _ReadOnce:
     """A read-only :class:`OutputStore` whose block tables and array attributes are read once.
 
@@ -334,4 +360,5 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
         path, design_reports=[d.report for d in designs], designs=designs, files=files, blocks=blocks,
         overlays=[overlay] if overlay else [], title=f"twinpass report: {Path(cfg.source).name}",
         cautions=list(DEFAULT_CAUTIONS), notices=design_notices(cfg, used) + unrecorded, design_notes=[d.note() for d in used],
+        listed=attention_lists(status),
     )
