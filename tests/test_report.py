@@ -283,3 +283,158 @@ def test_the_report_passes_over_inputs_gone_since_they_were_filtered(tmp_path: P
         p.unlink()
     assert _largest_transient(cfg, store, names) is None
     assert write_report(cfg, tmp_path / "report.html").is_file()
+
+
+def _run_small_job(folder: Path, response: dict | None = None) -> Path:
+    """Three files of one 200 Hz stream filtered into ``folder/out.zarr``; the config's path."""
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+
+    write_stream(folder / "archive", "deck", make_signal(6000, 2, 200.0, seed=3), 200.0, [2000, 2000, 2000])
+    path = write_config(folder, response=response)
+    assert run_job(load_config(path)).ok
+    return path
+
+
+def test_the_report_draws_the_design_the_outputs_were_filtered_with(tmp_path: Path) -> None:
+    # The configuration's passband is changed after the run and not rerun: the report draws
+    # the design recorded with the outputs, not the configuration's, and says they differ.
+    from conftest import BANDPASS, write_config
+    from twinpass.config import load_config
+    from twinpass.core.design import design_filter, per_pass_response
+    from twinpass.io.store import OutputStore
+    from twinpass.report_data import output_designs, write_report
+    from twinpass.status import collect_status
+
+    _run_small_job(tmp_path)
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    names = store.list_arrays()
+    recorded = store.array_attrs(names[0])["filter"]
+    changed = dict(BANDPASS, cutoff_hz=[5.0, 30.0])
+    cfg = load_config(write_config(tmp_path, response=changed))
+
+    designs, unrecorded = output_designs(cfg, store, collect_status(store)["files"])
+    assert len(designs) == 1 and not unrecorded
+    drawn = designs[0].design
+    f = np.linspace(0.0, 100.0, 2001)
+    # Reference: scipy.signal.sosfreqz of the SOS recorded with the outputs.
+    _, h_recorded = signal.sosfreqz(np.asarray(recorded["sos"]), worN=f, fs=200.0)
+    np.testing.assert_allclose(per_pass_response(drawn, f), h_recorded, rtol=1e-12, atol=1e-14)
+    assert drawn.effective_length == recorded["effective_length_samples"]
+    assert designs[0].spec is not None and designs[0].spec["cutoff_hz"] == [2.0, 40.0]
+    # The configuration's design now is another response (so drawing it would be wrong).
+    _, h_now = signal.sosfreqz(design_filter(cfg.response, 200.0, 1e-9).sos, worN=f, fs=200.0)
+    assert np.max(np.abs(np.abs(h_now) - np.abs(h_recorded))) > 0.1
+
+    text = write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8")
+    plain = html.unescape(text)
+    assert 0 < text.index('<div class="notices">') < text.index("<h2>Summary</h2>")
+    assert "The configuration now asks for a bandpass response (butterworth family), order 2 per pass, cutoff 5-30 Hz" \
+        in plain
+    assert "were filtered with a bandpass response (butterworth family), order 2 per pass, cutoff 2-40 Hz" in plain
+    assert "rerun to refilter" in plain
+    assert f"effective length {recorded['effective_length_samples']} samples" in plain
+    for caution in report.DEFAULT_CAUTIONS:  # the cautions stay
+        assert html.escape(caution) in text
+
+    # Unchanged configuration: no notice.
+    same = write_report(load_config(write_config(tmp_path, response=BANDPASS)), tmp_path / "same.html")
+    assert '<div class="notices">' not in same.read_text(encoding="utf-8")
+
+
+def _colour_pixels(png: bytes, colour: str) -> int:
+    rgb = np.asarray([int(colour[i:i + 2], 16) for i in (1, 3, 5)]) / 255.0
+    pixels = mpimg.imread(io.BytesIO(png), format="png")[..., :3]
+    return int(np.sum(np.all(np.abs(pixels - rgb) < 2.0 / 255.0, axis=-1)))
+
+
+def test_the_report_shows_blocks_of_a_stopped_run_as_cancelled(tmp_path: Path) -> None:
+    # Blocks whose tasks were cancelled when a run was stopped are recorded as the engine
+    # records them (status error, the text of twinpass.engine.lost_task_error for a
+    # cancelled task): not done, nothing failed. Reference: twinpass.status.collect_status,
+    # which `twinpass status` prints, counts them as cancelled and not as failed.
+    import concurrent.futures
+
+    from twinpass.config import load_config
+    from twinpass.core.checks import ERROR
+    from twinpass.engine import lost_task_error
+    from twinpass.io.store import BlockRecord, OutputStore
+    from twinpass.report_data import write_report
+    from twinpass.status import collect_status
+
+    cfg = load_config(_run_small_job(tmp_path))
+    store = OutputStore.open(cfg.store_location, mode="a")
+    text = lost_task_error(concurrent.futures.CancelledError())
+    stopped = 0
+    for name in store.list_arrays():
+        n = store.read_block_table(name, figures=False, seams=False).n_blocks
+        store.record_blocks(name, [BlockRecord(i, ERROR, None, None, text) for i in range(n)])
+        stopped += n
+    totals = collect_status(OutputStore.open(cfg.store_location, mode="r"))["totals"]
+    assert totals["blocks_cancelled"] == stopped and totals["blocks_failed"] == 0
+
+    page = write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8")
+    assert f"cancelled: {stopped}</span>" in page and "error: 0</span>" in page
+    assert "a run was stopped before they finished" in page
+    # The block map: the cancelled colour fills the bars; the error colour is only in the
+    # legend, where it takes no more pixels than the pending colour (no block is pending).
+    parsed = _Collector()
+    parsed.feed(page)
+    pngs = [base64.b64decode(src.split(",", 1)[1]) for src in parsed.images]
+    block_map = next(p for p in pngs if _colour_pixels(p, report.STATUS_COLORS["cancelled"]) > 0)
+    cancelled = _colour_pixels(block_map, report.STATUS_COLORS["cancelled"])
+    error = _colour_pixels(block_map, report.STATUS_COLORS["error"])
+    pending = _colour_pixels(block_map, report.STATUS_COLORS["pending"])
+    assert 0 < error <= 1.5 * pending and cancelled > 10 * error, (cancelled, error, pending)
+
+
+@pytest.fixture(scope="module")
+def demo_report(tmp_path_factory: pytest.TempPathFactory) -> tuple[str, dict]:
+    """The demo archive (one hour), run with the engine, and its report."""
+    from twinpass.config import load_config
+    from twinpass.demo import write_demo_archive
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import write_report
+    from twinpass.status import collect_status
+
+    folder = tmp_path_factory.mktemp("demo")
+    cfg = load_config(write_demo_archive(folder, hours=1))
+    result = run_job(cfg)
+    assert result.ok and len(result.invalid) == 1
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    return write_report(cfg, folder / "report.html").read_text(encoding="utf-8"), status
+
+
+def test_the_report_names_the_input_the_run_left_out_and_why(demo_report: tuple[str, dict]) -> None:
+    # Reference: the demo archive's abutment-west file is cut short mid-frame on purpose, and
+    # twinpass.status.collect_status (what `twinpass status` prints) records it left out
+    # with its reason and remedy; the report lists the same, escaped as HTML.
+    page, status = demo_report
+    (relpath, why), = status["left_out"].items()
+    assert relpath.startswith("abutment-west/")
+    parsed = _Collector()
+    parsed.feed(page)
+    assert "Left out, failed or missing" in parsed.headings
+    section = page[page.index("<h2>Left out, failed or missing</h2>"):page.index("<h2>Before and after")]
+    assert "Inputs left out by the last run" in section
+    assert html.escape(f"{relpath}: {why}") in section
+    assert "truncated" in why and '[archive] truncated = "warn"' in why
+    assert '"warn"' not in section  # quotes escaped
+
+
+def test_report_lists_are_capped_and_escaped(tmp_path: Path) -> None:
+    # Huge archives: each list shows report.LISTED entries and counts the rest; entries are
+    # text, escaped as HTML (reference: html.escape of the standard library).
+    entries = [f"deck/rec_{i:05d}.wav: <cut short> & left out" for i in range(report.LISTED + 7)]
+    out = report.render_report(tmp_path / "r.html", design_reports=[], designs=[], files=[], blocks=[], overlays=[],
+                               title="lists", cautions=[], listed=[("Inputs left out by the last run", entries),
+                                                                   ("Notes of the last run", [])])
+    text = out.read_text(encoding="utf-8")
+    assert f"Inputs left out by the last run: {len(entries)}" in text and "Notes of the last run" not in text
+    assert html.escape(entries[report.LISTED - 1]) in text and html.escape(entries[report.LISTED]) not in text
+    assert "... and 7 more" in text and "<cut short>" not in text
+    empty = report.render_report(tmp_path / "e.html", design_reports=[], designs=[], files=[], blocks=[], overlays=[],
+                                 title="none", cautions=[], listed=[("Notes of the last run", [])])
+    assert "Nothing left out, failed, gone or missing" in empty.read_text(encoding="utf-8")

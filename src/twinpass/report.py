@@ -3,11 +3,12 @@
 Figures are drawn with matplotlib's Agg renderer and embedded as base64 PNG images;
 styles are inline; the file loads nothing from anywhere and needs no JavaScript.
 
-Sections: summary, cautions, filter design (per design: overall response against the
-spec mask beside the per-pass response, overall zero phase against the per-pass phase,
-two-pass impulse response with its effective length, the design report table), the
-per-block check map, before/after overlays around the largest transient, and the file
-table.
+Sections: notices (such as a configuration that no longer asks for the design the
+outputs were filtered with), summary, cautions, filter design (per design: what it was
+used for, overall response against the spec mask beside the per-pass response, overall
+zero phase against the per-pass phase, two-pass impulse response with its effective
+length, the design report table), the per-block check map, inputs left out, failed or
+missing, before/after overlays around the largest transient, and the file table.
 
 Conventions: frequencies in Hz, levels in dB (overall level ``20 log10 |H|^2``), times
 in seconds.
@@ -40,7 +41,8 @@ from twinpass.core.kernel import autocorrelation
 from twinpass.core.types import Design
 from twinpass.errors import TwinpassError
 
-__all__ = ["DEFAULT_CAUTIONS", "STATUS_COLORS", "render_report", "response_figure_png", "two_pass_impulse"]
+__all__ = ["DEFAULT_CAUTIONS", "LISTED", "STATUS_COLORS", "UNRECORDED_KIND", "render_report", "response_figure_png",
+           "two_pass_impulse"]
 
 DEFAULT_CAUTIONS: tuple[str, ...] = (
     "The filtering is non-causal: running the filter forward and then backward cancels the "
@@ -61,8 +63,18 @@ STATUS_COLORS: dict[str, str] = {
     "fail": "#c62828",
     "pending": "#9e9e9e",
     "error": "#6a1b9a",
+    "cancelled": "#00838f",
 }
-"""Fill colours of the block check map, by block status."""
+"""Fill colours of the block check map, by block status. ``cancelled``: the block's task was
+cancelled because a run was stopped (recorded as an error whose text says so); it is not
+done, nothing failed in it, and the next run does it."""
+
+UNRECORDED_KIND = "unrecorded"
+"""``ResponseSpec.kind`` of a design rebuilt from recorded coefficients whose response spec
+is not known: drawn without a spec mask."""
+
+LISTED = 50
+"""Entries shown under each heading of the report's lists (the rest are counted)."""
 
 IMPULSE_PLOT_MAX: int = 1 << 18
 """Longest single-pass impulse response computed for the plot (samples per side)."""
@@ -447,6 +459,7 @@ figcaption{font-size:.9em;color:#455a64}
 .cautions{background:#fff8e1;border-left:5px solid #f9a825;padding:.6em 1.2em}
 .status{display:inline-block;padding:0 .5em;border-radius:3px;color:#fff}
 .muted{color:#757575}
+.notices{background:#ffebee;border-left:5px solid #c62828;padding:.6em 1.2em;font-weight:600}
 """
 
 
@@ -507,6 +520,9 @@ def _value_html(value: Any, depth: int = 0) -> str:
 
 def _design_label(design: Design) -> str:
     spec = design.spec
+    if spec.kind == UNRECORDED_KIND:
+        return (f"{design.family}, order {design.order} per pass, {design.sample_rate_hz:g} Hz sample rate "
+                "(response spec not recorded)")
     return (f"{spec.kind} {design.family}, order {design.order} per pass, "
             f"{design.sample_rate_hz:g} Hz sample rate")
 
@@ -527,6 +543,7 @@ _FILE_COLUMNS: tuple[tuple[str, str], ...] = (
     ("stream", "Stream"),
     ("blocks_done", "Blocks done"),
     ("blocks_failed", "Blocks failed"),
+    ("blocks_cancelled", "Blocks cancelled"),
     ("worst", "Worst figures"),
     ("edge_zones", "Edge zones"),
     ("complete", "Complete"),
@@ -552,7 +569,7 @@ def _file_table(files: Sequence[Mapping[str, Any]]) -> str:
                 cells.append(f'<td class="num">{_esc(_fmt(value))} / {_esc(_fmt(f.get("blocks_total")))}</td>')
             elif key == "worst":
                 cells.append(f"<td>{_worst_html(value)}</td>")
-            elif key in ("blocks_done", "blocks_failed"):
+            elif key in ("blocks_done", "blocks_failed", "blocks_cancelled"):
                 cells.append(f'<td class="num">{_esc(_fmt(value))}</td>')
             else:
                 cells.append(f"<td>{_value_html(value)}</td>")
@@ -570,8 +587,27 @@ def _summary(designs: Sequence[Design], files: Sequence[Mapping[str, Any]], bloc
         for n, c in counts.items()
     )
     complete = sum(1 for f in files if f.get("complete"))
+    stopped = (f'<p>{counts["cancelled"]} block(s) cancelled: a run was stopped before they finished. They are '
+               "not done, nothing failed in them, and the next run does them.</p>" if counts["cancelled"] else "")
     return (f"<p>{len(designs)} design(s), {len(files)} file(s) ({complete} complete), "
-            f"{len(blocks)} block(s).</p><p>{badges}</p>")
+            f"{len(blocks)} block(s).</p><p>{badges}</p>{stopped}")
+
+
+def _listed_html(sections: Sequence[tuple[str, Sequence[str]]]) -> str:
+    """Titled lists, each capped at :data:`LISTED` entries with a count of the rest."""
+    parts = []
+    for title, entries in sections:
+        if not entries:
+            continue
+        parts.append(f"<h3>{_esc(title)}: {len(entries)}</h3><ul>")
+        parts += [f"<li>{_esc(e)}</li>" for e in entries[:LISTED]]
+        if len(entries) > LISTED:
+            parts.append(f'<li class="muted">... and {len(entries) - LISTED} more '
+                         "(<code>twinpass status --json</code> lists them all)</li>")
+        parts.append("</ul>")
+    if not parts:
+        return '<p class="muted">Nothing left out, failed, gone or missing, and no notes, at the last run.</p>'
+    return "".join(parts)
 
 
 def render_report(
@@ -584,6 +620,9 @@ def render_report(
     overlays: list[dict[str, Any]],
     title: str,
     cautions: list[str],
+    notices: Sequence[str] = (),
+    design_notes: Sequence[str] = (),
+    listed: Sequence[tuple[str, Sequence[str]]] | None = None,
 ) -> Path:
     """Write the run report as one self-contained HTML file.
 
@@ -604,13 +643,23 @@ def render_report(
     blocks : list of dict
         Check map entries: ``stream``, ``file``, ``start_time_s`` (s since the earliest
         start, or absolute epoch seconds), ``duration_s`` (s), ``status`` (a status code
-        or pass/warn/fail/pending/error).
+        or pass/warn/fail/pending/error/cancelled).
     overlays : list of dict
         ``file``, ``t`` (s), ``before`` and ``after`` (1-D, same length as ``t``).
     title : str
         Page title.
     cautions : list of str
         Cautions shown after :data:`DEFAULT_CAUTIONS` (duplicates dropped).
+    notices : sequence of str
+        Shown first, above the summary, in a box of their own (e.g. the configuration no
+        longer asks for the design the outputs were filtered with).
+    design_notes : sequence of str
+        One per design (where missing, none): what the design was used for and where it
+        comes from, shown under the design's heading.
+    listed : sequence of (title, entries), optional
+        The section "Left out, failed or missing" (inputs left out, failed, gone, missing
+        chunks, notes), each list capped at :data:`LISTED` with a count of the rest; omitted
+        when None.
 
     Returns
     -------
@@ -629,6 +678,10 @@ def render_report(
         f"<title>{_esc(title)}</title><style>{_CSS}</style></head><body>",
         f"<h1>{_esc(title)}</h1>",
         f'<p class="muted">Written {_esc(_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC"))}.</p>',
+    ]
+    if notices:
+        parts.append('<div class="notices"><ul>' + "".join(f"<li>{_esc(n)}</li>" for n in notices) + "</ul></div>")
+    parts += [
         "<h2>Summary</h2>",
         _summary(designs, files, blocks),
         "<h2>Cautions</h2>",
@@ -646,6 +699,8 @@ def render_report(
         parts.append('<p class="muted">No designs.</p>')
     for i, design in enumerate(designs):
         parts.append(f"<h3>Design {i + 1}: {_esc(_design_label(design))}</h3>")
+        if i < len(design_notes) and design_notes[i]:
+            parts.append(f"<p>{_esc(design_notes[i])}</p>")
         parts.append("<h4>Overall response</h4>")
         parts.append(_img(_png(_response_figure(design)), "overall and per-pass response",
                           "Overall two-pass gain |H|^2 against the spec mask (green: allowed ripple band; "
@@ -669,9 +724,15 @@ def render_report(
     parts.append("<h2>Block check map</h2>")
     if blocks:
         parts.append(_img(_png(_block_map_figure(blocks)), "block check map",
-                          "Each rectangle is one block of one stream, coloured by the outcome of its checks."))
+                          "Each rectangle is one block of one stream, coloured by the outcome of its checks; "
+                          "cancelled: a run was stopped before the block finished (not done, nothing failed; "
+                          "the next run does it)."))
     else:
         parts.append('<p class="muted">No blocks recorded.</p>')
+
+    if listed is not None:
+        parts.append("<h2>Left out, failed or missing</h2>")
+        parts.append(_listed_html(listed))
 
     parts.append("<h2>Before and after filtering</h2>")
     if not overlays:

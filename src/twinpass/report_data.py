@@ -2,19 +2,24 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
-from .config import JobConfig
+from .config import JobConfig, _section
 from .core import checks as _checks
-from .core.design import design_filter
+from .core.design import design_filter, response_report
+from .core.types import Design, ResponseSpec
 from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
-from .report import DEFAULT_CAUTIONS, render_report
+from .report import DEFAULT_CAUTIONS, UNRECORDED_KIND, render_report
 from .status import collect_status
 
 OVERLAY_SECONDS = 4.0
@@ -77,6 +82,224 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
     return None
 
 
+_SPEC_FIELDS: tuple[tuple[str, str, str], ...] = (
+    ("passband_hz", "passband", " Hz"),
+    ("stopband_hz", "stopband", " Hz"),
+    ("passband_ripple_db", "ripple", " dB"),
+    ("stopband_attenuation_db", "attenuation", " dB"),
+    ("order", "order", " per pass"),
+    ("cutoff_hz", "cutoff", " Hz"),
+    ("notch_hz", "notch", " Hz"),
+    ("notch_width_hz", "notch width", " Hz"),
+    ("notch_q", "notch Q", ""),
+)
+
+
+def describe_response(spec: Mapping[str, Any], tolerance: float | None = None) -> str:
+    """One line naming a response spec (a ``ResponseSpec.to_dict()``): kind, family, edges in
+    Hz, overall ripple and attenuation in dB, order, cutoff or notch, and the tolerance."""
+    parts = [f"a {spec.get('kind')} response ({spec.get('family')} family)"]
+    for key, label, unit in _SPEC_FIELDS:
+        v = spec.get(key)
+        if v is None:
+            continue
+        text = "-".join(f"{float(x):g}" for x in v) if isinstance(v, (list, tuple)) else f"{v:g}"
+        parts.append(f"{label} {text}{unit}" + (f" ({spec.get('cutoff_means')})" if key == "cutoff_hz" else ""))
+    if tolerance is not None:
+        parts.append(f"tolerance {tolerance:g}")
+    return ", ".join(parts)
+
+
+def _describe_filter(design: Design) -> str:
+    return (f"{design.family}, order {design.order} per pass at {design.sample_rate_hz:g} Hz, "
+            f"effective length {design.effective_length} samples")
+
+
+def _same_filter(design: Design, recorded: Design) -> bool:
+    """Whether two designs filter alike: the same coefficients (exactly) and tolerance."""
+    mine, theirs = (design.sos, recorded.sos) if recorded.sos is not None else (design.taps, recorded.taps)
+    return (mine is not None and theirs is not None and np.shape(mine) == np.shape(theirs)
+            and bool(np.array_equal(mine, theirs)) and float(design.tolerance) == float(recorded.tolerance))
+
+
+@dataclass
+class OutputDesign:
+    """A design the store's outputs were filtered with, and the outputs it served."""
+
+    design: Design
+    sources: list[str] = field(default_factory=list)
+    """Inputs (relative paths) whose outputs were filtered with it."""
+    spec: dict[str, Any] | None = None
+    """The response spec it was designed from, where known (``ResponseSpec.to_dict()``)."""
+    recorded: bool = True
+    """False: the store recorded no design for these outputs (drawn from the configuration)."""
+
+    def note(self) -> str:
+        """What the design was used for and where the report's figures of it come from."""
+        n = len(self.sources)
+        used = f"Filtered {n} output(s) at {self.design.sample_rate_hz:g} Hz (e.g. {self.sources[0]})."
+        if not self.recorded:
+            return (f"{used} The store recorded no design for these outputs (written by an older twinpass): "
+                    "drawn from the configuration as it is now, which may not be what they were filtered with.")
+        if self.spec is None:
+            return (f"{used} Drawn from the coefficients recorded with the outputs; the response spec they were "
+                    "designed from was not recorded, so no spec mask is drawn.")
+        return (f"{used} Drawn from the coefficients recorded with the outputs, designed from "
+                f"{describe_response(self.spec, self.design.tolerance)} (the spec recorded in the store; "
+                "designing from it again gives exactly the recorded coefficients).")
+
+
+def _recorded_spec(root: Mapping[str, Any]) -> ResponseSpec | None:
+    """The response spec of the store's last run (root ``spec.response``), None if unusable."""
+    doc = (root.get("spec") or {}).get("response") if isinstance(root.get("spec"), Mapping) else None
+    if not isinstance(doc, Mapping):
+        return None
+    try:
+        return cast(ResponseSpec, _section("the store's recorded specification", "response", doc, ResponseSpec))
+    except TwinpassError:
+        return None
+
+
+def _recorded_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | None) -> tuple[Design, bool]:
+    """The design an output was filtered with, from its ``filter`` attribute; (design, spec known?).
+
+    The drawn response always comes from the recorded coefficients. The store records the
+    response spec only for its last run (root attributes), so that spec is attached (for the
+    mask and the design report) only when designing from it again at ``fs`` with the
+    recorded tolerance gives exactly the recorded coefficients: then it is the spec these
+    outputs were designed from. Otherwise the design is drawn without a mask.
+    """
+    sos = np.asarray(filt["sos"], dtype=np.float64) if filt.get("sos") is not None else None
+    taps = np.asarray(filt["taps"], dtype=np.float64) if sos is None else None
+    recorded = Design(spec=ResponseSpec(kind=cast(Any, UNRECORDED_KIND), family=cast(Any, str(filt.get("family"))),
+                                        order=int(filt.get("order", 0))),
+                      family=str(filt.get("family")), sample_rate_hz=float(fs), order=int(filt.get("order", 0)),
+                      sos=sos, taps=taps, effective_length=int(filt["effective_length_samples"]),
+                      tolerance=float(filt["tolerance"]))
+    if spec is not None:
+        try:
+            again = design_filter(spec, fs, recorded.tolerance)
+        except TwinpassError:
+            again = None
+        if again is not None and _same_filter(again, recorded) and again.effective_length == recorded.effective_length:
+            return again, True
+    try:
+        report = response_report(recorded)
+    except (TwinpassError, ValueError, ArithmeticError):
+        report = {"family": recorded.family, "order_per_pass": recorded.order, "sample_rate_hz": float(fs),
+                  "effective_length_samples": recorded.effective_length, "tolerance": recorded.tolerance}
+    report["response_spec"] = "not recorded"
+    return dataclasses.replace(recorded, report=report), False
+
+
+def output_designs(cfg: JobConfig, store: Any,
+                   files: Sequence[Mapping[str, Any]]) -> tuple[list[OutputDesign], list[str]]:
+    """Each distinct design the store's outputs were filtered with, in order of sample rate,
+    and notices of outputs whose design cannot be shown.
+
+    Outputs are grouped by their recorded design digest, and digests whose coefficients and
+    tolerance are the same (they differ only in edge handling or version) are shown as one.
+    Outputs with no recorded design (older stores) fall back to the configuration's design
+    as it is now, marked as such (and named in a notice).
+    """
+    spec = _recorded_spec(store.read_root_info())
+    by_digest: dict[tuple[float, str | None], list[str]] = {}
+    filters: dict[tuple[float, str | None], Mapping[str, Any]] = {}
+    for f in files:
+        attrs = store.array_attrs(f["name"])
+        fs = float(attrs["sample_rate_hz"])
+        filt = attrs.get("filter")
+        usable = (isinstance(filt, Mapping) and ("sos" in filt or "taps" in filt)
+                  and "tolerance" in filt and "effective_length_samples" in filt)
+        key = (fs, str(attrs.get("design_digest")) if usable else None)
+        by_digest.setdefault(key, []).append(str(f["source"]))
+        if usable:
+            filters.setdefault(key, cast(Mapping[str, Any], filt))
+    out: dict[tuple[float, str], OutputDesign] = {}
+    notices: list[str] = []
+    for (fs, digest), sources in sorted(by_digest.items(), key=lambda kv: (kv[0][0], kv[0][1] is None)):
+        if digest is None:
+            try:
+                design = design_filter(cfg.response, fs, cfg.processing.tolerance)
+            except TwinpassError as e:
+                notices.append(f"{len(sources)} output(s) at {fs:g} Hz (e.g. {sources[0]}) have no design recorded "
+                               f"in the store, and the configuration's response cannot be designed at {fs:g} Hz "
+                               f"({e}): no design is drawn for them.")
+                continue
+            notices.append(f"{len(sources)} output(s) at {fs:g} Hz (e.g. {sources[0]}) have no design recorded in "
+                           "the store (written by an older twinpass): their design is drawn from the configuration "
+                           "as it is now, which may not be what they were filtered with.")
+            out[(fs, "configuration")] = OutputDesign(design, sources, cfg.response.to_dict(), recorded=False)
+            continue
+        filt = filters[(fs, digest)]
+        same = json.dumps([filt.get("sos"), filt.get("taps"), filt.get("tolerance")])
+        if (fs, same) in out:
+            out[(fs, same)].sources += sources
+            continue
+        design, known = _recorded_design(fs, filt, spec)
+        out[(fs, same)] = OutputDesign(design, list(sources), spec.to_dict() if known and spec else None)
+    return list(out.values()), notices
+
+
+def design_notices(cfg: JobConfig, designs: Sequence[OutputDesign]) -> list[str]:
+    """Notices for the top of the report: outputs filtered with more than one design, and
+    outputs filtered with a design other than the one the configuration asks for now."""
+    notices: list[str] = []
+    if sum(d.recorded for d in designs) > len({d.design.sample_rate_hz for d in designs if d.recorded}):
+        notices.append("The outputs were filtered with more than one design (for example, a run after a change "
+                       "to the configuration stopped before it refiltered them all): each design is drawn below "
+                       "with the outputs it served.")
+    asks = describe_response(cfg.response.to_dict(), cfg.processing.tolerance)
+    now: dict[float, Design | str] = {}
+    for d in designs:
+        if not d.recorded:
+            continue
+        fs = d.design.sample_rate_hz
+        if fs not in now:
+            try:
+                now[fs] = design_filter(cfg.response, fs, cfg.processing.tolerance)
+            except TwinpassError as e:
+                now[fs] = str(e)
+        current = now[fs]
+        if isinstance(current, Design) and _same_filter(current, d.design):
+            continue
+        made = (describe_response(d.spec, d.design.tolerance) + f" ({_describe_filter(d.design)})" if d.spec
+                else f"{_describe_filter(d.design)}, tolerance {d.design.tolerance:g} (its response spec was "
+                     "not recorded)")
+        wants = (f"{asks} ({_describe_filter(current)})" if isinstance(current, Design)
+                 else f"{asks}, which cannot be designed at {fs:g} Hz ({current})")
+        notices.append(f"The configuration now asks for {wants}; {len(d.sources)} output(s) at {fs:g} Hz were "
+                       f"filtered with {made}. The figures below show the design the outputs were filtered "
+                       "with; rerun to refilter them (twinpass run CONFIG).")
+    return notices
+
+
+def _frames(spans: Sequence[Sequence[int]]) -> str:
+    return ", ".join(f"[{a}, {b})" for a, b in spans)
+
+
+def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
+    """The report's "Left out, failed or missing" lists from :func:`collect_status`'s result:
+    inputs the last run left out (reason; remedy), inputs that failed (reason) and blocks that
+    failed (first line of the error), outputs whose input is gone, outputs with chunk files
+    missing (frame spans [start, stop)), and the last run's notes."""
+    files = status.get("files") or []
+    failed = status.get("failed_inputs") or {}
+    return [
+        ("Inputs left out by the last run (invalid input; an output made earlier is kept as it was)",
+         [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
+        ("Inputs that failed in the last run", [f"{k}: {v}" for k, v in sorted(failed.items())]),
+        ("Blocks that failed (the next run tries them again)",
+         [f"{f['source']} block {b}: {msg}" for f in files for b, msg in sorted((f.get("errors") or {}).items(),
+                                                                                key=lambda e: int(e[0]))]),
+        ("Outputs whose input is no longer in the archive (kept as they were)", list(status.get("gone") or [])),
+        ("Outputs with chunk files missing (deleted or lost since written; they would read as zeros; the next "
+         "run reruns their blocks)",
+         [f"{f['source']}: frames {_frames(f['chunks_missing'])}" for f in files if f.get("chunks_missing")]),
+        ("Notes of the last run", list(status.get("notes") or [])),
+    ]
+
+
 class _ReadOnce:
     """A read-only :class:`OutputStore` whose block tables and array attributes are read once.
 
@@ -109,12 +332,13 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
     """Render the HTML report of ``cfg``'s store; returns the written path."""
     store: Any = _ReadOnce(OutputStore.open(cfg.store_location, mode="r"))
     status = collect_status(store)
-    rates = sorted({float(store.array_attrs(f["name"])["sample_rate_hz"]) for f in status["files"]})
-    designs = [design_filter(cfg.response, fs, cfg.processing.tolerance) for fs in rates]
+    used, unrecorded = output_designs(cfg, store, status["files"])
+    designs = [d.design for d in used]
     files, blocks = [], []
     for f in status["files"]:
         files.append({"file": f["source"], "stream": f["stream"], "blocks_done": f["blocks_done"],
                       "blocks_total": f["blocks"], "blocks_failed": f["blocks_fail"] + f["blocks_error"],
+                      "blocks_cancelled": f["blocks_cancelled"],
                       "worst": f["worst"], "edge_zones": f["edge_zone_samples"], "complete": f["complete"],
                       "checks": f["checks"]})
         attrs = store.array_attrs(f["name"])
@@ -124,13 +348,17 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
             t = store.read_block_table(f["name"], figures=False, seams=False)
         except Exception:
             continue
-        for (s, e), st in zip(t.span.tolist(), t.status.tolist()):
+        # As in `twinpass status`: a block cancelled when a run was stopped is recorded as an
+        # error whose text says so; it is not done, but nothing failed in it.
+        cancelled = {int(k) for k, v in t.errors.items() if _checks.was_cancelled(v)}
+        for i, ((s, e), st) in enumerate(zip(t.span.tolist(), t.status.tolist())):
             blocks.append({"stream": f["stream"], "file": f["source"], "start_time_s": t0 + s / fs,
-                           "duration_s": (e - s) / fs, "status": int(st)})
+                           "duration_s": (e - s) / fs, "status": "cancelled" if i in cancelled else int(st)})
     overlay = _largest_transient(cfg, store, [f["name"] for f in status["files"]])
     path = Path(output) if output else default_report_path(cfg)
     return render_report(
         path, design_reports=[d.report for d in designs], designs=designs, files=files, blocks=blocks,
         overlays=[overlay] if overlay else [], title=f"twinpass report: {Path(cfg.source).name}",
-        cautions=list(DEFAULT_CAUTIONS),
+        cautions=list(DEFAULT_CAUTIONS), notices=design_notices(cfg, used) + unrecorded, design_notes=[d.note() for d in used],
+        listed=attention_lists(status),
     )
