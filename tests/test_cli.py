@@ -246,6 +246,23 @@ def test_a_run_that_leaves_inputs_out_exits_3_until_they_are_excluded(tmp_path: 
     assert _twinpass("status", str(cfg), "--require-complete").returncode == 0
 
 
+def test_a_configured_prefect_api_that_does_not_answer_stops_the_command_before_the_run(tmp_path: Path) -> None:
+    # A port nobody listens on (bound, never listening: connections are refused, RFC 793's
+    # reset for a closed port). The command exits 2 naming PREFECT_API_URL and the remedies,
+    # before it takes the store's lock or starts any block.
+    import socket
+
+    cfg = mixed_archive(tmp_path)
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        url = f"http://127.0.0.1:{sock.getsockname()[1]}/api"
+        r = subprocess.run([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-report"],
+                           capture_output=True, text=True, env=cli_env(PREFECT_API_URL=url), timeout=600)
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert url in r.stderr and "PREFECT_API_URL" in r.stderr and "--no-flow" in r.stderr, r.stderr
+    assert "Traceback" not in r.stderr and not (tmp_path / "out.zarr").exists()
+
+
 def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)
     cfg.write_text(cfg.read_text().replace("[processing]", "[processing]\nblok_seconds = 3"))

@@ -278,7 +278,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .errors import BlockFailedError
     from .headstart import withdraw
     from .heartbeats import prompt_heartbeats
-    from .prefect_server import prefect_api
+    from .prefect_server import check_api_reachable, configured_api, prefect_api
 
     # The configured Prefect API, else a temporary local server; while that starts, load
     # what the flow call would load after it and, unless the run has begun (it has its
@@ -287,6 +287,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     if cfg is not None:
         _check_utf8_paths({"configuration file": str(Path(config_path).resolve()) if config_path else None,
                            "archive root": str(cfg.archive_root), "output store": cfg.store_location})
+    api = configured_api()
+    if api is not None:  # a server that is down stops the command before the run begins
+        check_api_reachable(api)
     run_scheduler = scheduler or (cfg.engine.scheduler if cfg is not None else None)
     run_workers = workers or (cfg.engine.workers if cfg is not None else None)
     head = False

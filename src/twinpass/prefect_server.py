@@ -34,6 +34,7 @@ import sys
 import threading
 import time
 import urllib.error
+import urllib.parse
 import urllib.request
 from pathlib import Path
 from typing import Any, Callable, Iterator
@@ -261,6 +262,37 @@ class LocalPrefectServer:
         if self._at_exit:
             atexit.unregister(self.stop)
             self._at_exit = False
+
+
+def configured_api() -> str | None:
+    """The Prefect API URL the user configured (environment, profile or settings file), or None."""
+    from . import _prefect_env  # noqa: F401  (must precede the prefect import)
+
+    return _configured_api_url()
+
+
+def check_api_reachable(url: str, timeout: float = 5.0) -> None:
+    """Raise :class:`PrefectServerError` unless the Prefect API at ``url`` answers at all.
+
+    Any HTTP answer counts (an API asking for credentials answers too); no answer within
+    ``timeout`` seconds, a refused connection or an unknown host does not. Checked before a
+    run begins, so that a server that is down stops the command at once with what to do,
+    instead of after the run's blocks have started.
+    """
+    host = urllib.parse.urlsplit(url).hostname or ""
+    loopback = host in ("localhost", "::1") or host.startswith("127.")
+    opener = urllib.request.build_opener(*([urllib.request.ProxyHandler({})] if loopback else []))
+    try:
+        with opener.open(url.rstrip("/") + "/health", timeout=timeout):
+            return
+    except urllib.error.HTTPError:
+        return  # it answered
+    except (urllib.error.URLError, OSError, ValueError) as e:
+        reason = getattr(e, "reason", e)
+        raise PrefectServerError(
+            f"the Prefect API at {url} (PREFECT_API_URL) does not answer ({reason}); start that server "
+            "(prefect server start), correct PREFECT_API_URL (or unset it for a temporary local server), or run "
+            "the engine alone with --no-flow") from None
 
 
 def _free_port() -> int:  # pragma: no cover - used where sockets cannot be handed over (Windows)
