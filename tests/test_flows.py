@@ -585,6 +585,27 @@ def test_cli_serve_creates_the_scheduled_deployment(prefect_server, prefect_clie
     assert prefect_client.read_flow(dep.flow_id).name == flows.FLOW_NAME
 
 
+def test_saved_block_mistakes_are_configuration_errors(prefect_server, npy_archive, tmp_path):
+    # Prefect's rule for block names (lower case letters, digits and dashes) is checked
+    # before saving, and a run of a block name nobody saved stops before any flow run:
+    # both exit 2 with one line saying what to do, no traceback.
+    cfg = write_job(tmp_path, npy_archive)
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server})
+
+    def cli_run(*args):
+        return subprocess.run([sys.executable, "-m", "twinpass.cli", *args], env=env, cwd=tmp_path,
+                              capture_output=True, text=True, timeout=600)
+
+    r = cli_run("save", str(cfg), "--name", "Bad Name")
+    assert r.returncode == 2 and "lower case letters, digits and dashes" in r.stderr, r.stderr
+    assert "Traceback" not in r.stderr
+    name = f"never-saved-{uuid.uuid4().hex[:8]}"
+    r = cli_run("run", "--block", name, "--no-report")
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert f"no TwinpassJob block named '{name}'" in r.stderr and "twinpass save" in r.stderr, r.stderr
+    assert "Traceback" not in r.stderr + r.stdout and "Beginning flow run" not in r.stderr + r.stdout
+
+
 # ------------------------------------------------------------------------- CLI
 def test_cli_run_through_the_flow_on_a_fresh_prefect_home(npy_archive, tmp_path):
     """`twinpass run` with no server configured starts Prefect's temporary local server."""

@@ -15,6 +15,7 @@ import contextlib
 import json
 import logging
 import os
+import re
 import sys
 import threading
 import time
@@ -309,6 +310,8 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
             head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers,
                                                    progress=progress)
             with prefect_api(while_starting=while_starting):
+                if config_block is not None:  # a name with no saved block stops here, before any flow run
+                    flows.load_job(None, config_block)
                 flows.TERMINAL_PROGRESS = progress
                 try:
                     with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
@@ -447,6 +450,9 @@ def cmd_save(args: argparse.Namespace) -> int:
     early_start()
     from .prefect_blocks import TwinpassJob
 
+    if not args.name or not re.fullmatch(r"[a-z0-9-]+", args.name):  # Prefect's rule for block names
+        raise ConfigError(f"twinpass save: block name {args.name!r}: use lower case letters, digits and dashes "
+                          "only, e.g. deck-monitoring")
     block = TwinpassJob.from_file(args.config)
     with prefect_api():
         block.save(args.name, overwrite=True)

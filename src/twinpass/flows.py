@@ -375,13 +375,27 @@ def report_task(cfg: JobConfig) -> str:
     return str(path)
 
 
-def _load(config_path: str | None, config_block: str | None) -> JobConfig:
+def load_job(config_path: str | None, config_block: str | None) -> JobConfig:
+    """The run's configuration: a TOML file, or a saved :class:`~twinpass.prefect_blocks.TwinpassJob` block.
+
+    Raises
+    ------
+    ConfigError
+        Neither or both given, no block of that name on the Prefect server, or a bad
+        configuration.
+    """
     if config_path and config_block:
         raise ConfigError(f"give config_path ({config_path}) or config_block ({config_block}), not both")
     if config_block:
         from .prefect_blocks import TwinpassJob
 
-        return TwinpassJob.load(config_block).to_job_config()
+        try:
+            block = TwinpassJob.load(config_block)
+        except ValueError as e:  # Prefect's "Unable to find block document named ..."
+            raise ConfigError(f"no TwinpassJob block named {config_block!r} on the Prefect server ({e}); save one "
+                              f"with `twinpass save CONFIG --name {config_block}`, or list them with "
+                              "`prefect block ls`") from None
+        return block.to_job_config()
     if not config_path:
         raise ConfigError("no configuration: give config_path (a twinpass TOML file) or config_block "
                           "(the name of a saved TwinpassJob block)")
@@ -424,7 +438,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                  config_block: str | None, report: bool) -> Any:
     """The body of :func:`archive_run` (same parameters and result)."""
     logger = get_run_logger()
-    cfg = _load(config_path, config_block)
+    cfg = load_job(config_path, config_block)
     # A run the command line began before this flow run existed (twinpass.headstart), if it
     # is this one: its lock, preparation, root record, cluster and running segments.
     head = claim(cfg, force=force, scheduler=scheduler, workers=workers)
