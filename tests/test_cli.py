@@ -263,6 +263,29 @@ def test_a_configured_prefect_api_that_does_not_answer_stops_the_command_before_
     assert "Traceback" not in r.stderr and not (tmp_path / "out.zarr").exists()
 
 
+@pytest.mark.parametrize("workers", ["0", "-2", "two"])
+def test_workers_on_the_command_line_must_be_a_whole_number_of_at_least_one(tmp_path: Path, workers: str) -> None:
+    # argparse's own usage error (exit 2) naming the option: 0 used to fall back silently
+    # to the configured workers.
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("run", str(cfg), "--no-flow", "--workers", workers)
+    assert r.returncode == 2 and "--workers" in r.stderr, r.stderr
+    assert not (tmp_path / "out.zarr").exists()
+
+
+def test_output_to_a_reader_that_went_away_ends_quietly(tmp_path: Path) -> None:
+    # `twinpass design ... | head`: the reader closes the pipe before the output is written.
+    # No traceback; exit 141 (128 + SIGPIPE, what a shell reports for such a command: common
+    # practice).
+    cfg = mixed_archive(tmp_path)
+    p = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "design", str(cfg), "--fs", "100", "--json"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=cli_env())
+    assert p.stdout is not None and p.stderr is not None
+    p.stdout.close()
+    err = p.stderr.read().decode()
+    assert p.wait(timeout=600) == 141 and "Traceback" not in err, err
+
+
 def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)
     cfg.write_text(cfg.read_text().replace("[processing]", "[processing]\nblok_seconds = 3"))

@@ -462,6 +462,17 @@ def cmd_save(args: argparse.Namespace) -> int:
 
 
 # ------------------------------------------------------------------- parser
+def _at_least_one(text: str) -> int:
+    """A whole number >= 1 (argparse type)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"{value} is not at least 1")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="twinpass", description="Zero-phase filtering of large sensor archives.")
     p.add_argument("--version", action="version", version=f"twinpass {__version__}")
@@ -483,7 +494,7 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("run", help="filter the archive (through the Prefect flow unless --no-flow)")
     s.add_argument("config", nargs="?", help="the job configuration (TOML)")
     s.add_argument("--block", help="run a configuration saved on the Prefect server (twinpass save)")
-    s.add_argument("--workers", type=int, help="local Dask workers (default from the config)")
+    s.add_argument("--workers", type=_at_least_one, help="local Dask workers (default from the config)")
     s.add_argument("--scheduler", help="threads | processes | tcp://HOST:PORT (default from the config)")
     s.add_argument("--force", action="store_true", help="reprocess every file, changed or not")
     s.add_argument("--no-flow", action="store_true", help="run the engine alone, without Prefect")
@@ -590,6 +601,14 @@ def _main(argv: Sequence[str] | None) -> int:
     except KeyboardInterrupt:
         _eprint("twinpass: interrupted; finished blocks are kept, rerun to resume")
         return 130
+    except BrokenPipeError:
+        # The reader of the output went away (`twinpass design ... | head`): no traceback,
+        # and nothing more written to that pipe at exit (the Python documentation's advice
+        # on SIGPIPE); 141 = 128 + SIGPIPE, as a shell reports such a command.
+        with contextlib.suppress(OSError):
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        return 141
 
 
 if __name__ == "__main__":  # pragma: no cover
