@@ -115,6 +115,7 @@ def test_design_bad_spec_exits_nonzero_with_one_line(tmp_path: Path) -> None:
     assert r.returncode == 2
     lines = [ln for ln in r.stderr.strip().splitlines() if ln]
     assert len(lines) == 1 and "Nyquist" in lines[0]
+    assert f"{cfg}: [response] at 50 Hz" in lines[0]  # the file, the table and the rate it was asked for
 
 
 _EXIT_SCRIPT = """\

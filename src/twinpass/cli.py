@@ -129,8 +129,13 @@ def cmd_design(args: argparse.Namespace) -> int:
     from .config import load_config
     from .core.design import design_filter, format_report
 
+    from .errors import SpecError
+
     cfg = load_config(args.config)
-    d = design_filter(cfg.response, args.fs, cfg.processing.tolerance)
+    try:
+        d = design_filter(cfg.response, args.fs, cfg.processing.tolerance)
+    except SpecError as e:
+        raise type(e)(f"{cfg.source}: [response] at {args.fs:g} Hz: {e}") from None
     if args.json:
         r = dict(d.report)
         r.update(family=d.family, order=int(d.order), **d.coefficients(),

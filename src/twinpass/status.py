@@ -133,7 +133,7 @@ def format_status(status: dict[str, Any]) -> str:
                  f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed"
                  + (f", {t['blocks_cancelled']} cancelled (a run was stopped; the next run does them)"
                     if t.get("blocks_cancelled") else "")
-                 + f"; files with failed checks: {t['checks_failed']}")
+                 + f"; files with failed checks or blocks: {t['checks_failed']}")
     last = status.get("last_run")
     if last:
         counts = last.get("counts") or {}
