@@ -342,6 +342,19 @@ def test_the_report_draws_the_design_the_outputs_were_filtered_with(tmp_path: Pa
     same = write_report(load_config(write_config(tmp_path, response=BANDPASS)), tmp_path / "same.html")
     assert '<div class="notices">' not in same.read_text(encoding="utf-8")
 
+    # A run of the changed configuration that recorded its start (the store's root now names
+    # the new response) and stopped before it refiltered any file: each output recorded its
+    # own response, so the design they were filtered with keeps its spec (and mask).
+    from twinpass.job import begin_run, prepare
+
+    writer = OutputStore.open(str(tmp_path / "out.zarr"), mode="a", archive_root=cfg.archive_root)
+    with writer.lock("stopped-early"):
+        begin_run(writer, prepare(cfg, writer))
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    assert store.read_root_info()["spec"]["response"]["cutoff_hz"] == [5.0, 30.0]
+    designs, _ = output_designs(cfg, store, collect_status(store)["files"])
+    assert len(designs) == 1 and designs[0].spec is not None and designs[0].spec["cutoff_hz"] == [2.0, 40.0]
+
 
 def _colour_pixels(png: bytes, colour: str) -> int:
     rgb = np.asarray([int(colour[i:i + 2], 16) for i in (1, 3, 5)]) / 255.0

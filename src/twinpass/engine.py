@@ -588,6 +588,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
             "edge_samples": int(edge_samples),
             "tolerance": float(design.tolerance),
             "effective_length_samples": int(L),
+            "response": cfg.response.to_dict(),  # the overall response asked for, which the design meets
         },
         "design_digest": design_digest_for(design, cfg),
         "blocks": {"block_samples": layout.block_for(fw.frames), "chunk_samples": layout.chunk_for(fw.frames),

@@ -152,6 +152,11 @@ class OutputDesign:
 def _recorded_spec(root: Mapping[str, Any]) -> ResponseSpec | None:
     """The response spec of the store's last run (root ``spec.response``), None if unusable."""
     doc = (root.get("spec") or {}).get("response") if isinstance(root.get("spec"), Mapping) else None
+    return _parse_spec(doc)
+
+
+def _parse_spec(doc: Any) -> ResponseSpec | None:
+    """A recorded response spec (``ResponseSpec.to_dict()``), None if absent or unusable."""
     if not isinstance(doc, Mapping):
         return None
     try:
@@ -163,9 +168,10 @@ def _recorded_spec(root: Mapping[str, Any]) -> ResponseSpec | None:
 def _recorded_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | None) -> tuple[Design, bool]:
     """The design an output was filtered with, from its ``filter`` attribute; (design, spec known?).
 
-    The drawn response always comes from the recorded coefficients. The store records the
-    response spec only for its last run (root attributes), so that spec is attached (for the
-    mask and the design report) only when designing from it again at ``fs`` with the
+    The drawn response always comes from the recorded coefficients. ``spec`` is the response
+    spec recorded with the output (its ``filter.response``; outputs written before that was
+    recorded have only the store's last run's, in the root attributes). It is attached (for
+    the mask and the design report) only when designing from it again at ``fs`` with the
     recorded tolerance gives exactly the recorded coefficients: then it is the spec these
     outputs were designed from. Otherwise the design is drawn without a mask.
     """
@@ -236,8 +242,9 @@ def output_designs(cfg: JobConfig, store: Any,
         if (fs, same) in out:
             out[(fs, same)].sources += sources
             continue
-        design, known = _recorded_design(fs, filt, spec)
-        out[(fs, same)] = OutputDesign(design, list(sources), spec.to_dict() if known and spec else None)
+        own = _parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
+        design, known = _recorded_design(fs, filt, own)
+        out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None)
     return list(out.values()), notices
 
 
