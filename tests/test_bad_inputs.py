@@ -511,6 +511,41 @@ def test_config_error_for_negative_fill_length():
         parse_config(_BASE + "[processing]\nmax_fill_samples = -3\n", source="job.toml")
 
 
+# Every number of the configuration is a finite quantity (the docstrings of the settings in
+# twinpass.config: times in seconds, sizes in MiB, levels in dB, ratios). TOML 1.0 spells NaN
+# and infinity as nan and inf; they are refused naming the table and the key.
+NONFINITE_SETTINGS = [
+    ("processing", "block_seconds", "nan"),
+    ("processing", "block_seconds", "inf"),
+    ("processing", "memory_budget_mib", "nan"),
+    ("processing", "memory_budget_mib", "inf"),
+    ("processing", "tolerance", "nan"),
+    ("processing", "carry_threshold", "nan"),
+    ("processing", "carry_threshold", "inf"),
+    ("output", "chunk_seconds", "nan"),
+    ("output", "chunk_seconds", "inf"),
+    ("engine", "retry_backoff_seconds", "nan"),
+    ("engine", "retry_backoff_seconds", "inf"),
+    ("flow", "retry_delay_seconds", "nan"),
+    ("flow", "retry_delay_seconds", "inf"),
+    ("checks", "passband_warn_db", "nan"),
+    ("checks", "passband_fail_db", "nan"),
+    ("checks", "phase_warn_deg", "nan"),
+    ("checks", "phase_fail_deg", "-inf"),
+    ("checks", "stopband_margin_db", "nan"),
+    ("checks", "coherence_min", "nan"),
+    ("archive", "sample_rate_hz", "inf"),
+]
+
+
+@pytest.mark.parametrize("table, key, value", NONFINITE_SETTINGS)
+def test_config_refuses_nan_and_infinite_numbers(table, key, value):
+    with pytest.raises(ConfigError) as e:
+        parse_config(_BASE + f"[{table}]\n{key} = {value}\n", source="job.toml")
+    msg = str(e.value)
+    assert msg.startswith(f"job.toml: [{table}] {key} = ") and "not a finite number" in msg, msg
+
+
 def test_cli_config_error_is_one_line_and_exit_status_2(tmp_path):
     config = tmp_path / "job.toml"
     config.write_text(_BASE + "[archive]\nroot = \"archive\"\nglob = \"*.wav\"\n")

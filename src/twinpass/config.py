@@ -1,7 +1,8 @@
 """The job configuration (TOML), validated into frozen dataclasses.
 
 Relative paths in a configuration are relative to the configuration file's folder.
-Unknown keys and wrong types are errors naming the file, the table and the key.
+Unknown keys, wrong types, numbers that are not finite (TOML's nan and inf) and values out
+of range are errors naming the file, the table and the key.
 
 Example::
 
@@ -31,6 +32,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -299,8 +301,30 @@ def _section(source: str, name: str, table: Any, cls: type) -> Any:
     return cls(**kwargs)
 
 
+def _nonfinite_setting(cfg: JobConfig) -> tuple[str, str, Any] | None:
+    """The first setting (table, key, value) holding a NaN or infinite number, if any.
+
+    Every number in the configuration (times in seconds, sizes in MiB, levels in dB,
+    ratios) is a finite quantity: NaN compares false with every limit, so it would slip
+    through the range checks below and poison the run.
+    """
+    for table in _SECTIONS:
+        obj = getattr(cfg, table)
+        for f in dataclasses.fields(obj):
+            value = getattr(obj, f.name)
+            items = value if isinstance(value, tuple) else (value,)
+            if any(isinstance(v, float) and not math.isfinite(v) for v in items):
+                return table, f.name, value
+    return None
+
+
 def _check_values(cfg: JobConfig) -> None:
     src = cfg.source
+    bad = _nonfinite_setting(cfg)
+    if bad is not None:
+        table, key, value = bad
+        raise ConfigError(f"{src}: [{table}] {key} = {value!r} is not a finite number; give a finite value "
+                          "(or leave the key out for its default)")
     p = cfg.processing
     if not (0.0 < p.tolerance < 1e-1):
         raise ConfigError(f"{src}: [processing] tolerance = {p.tolerance!r} must be in (0, 0.1), e.g. 1e-9")
