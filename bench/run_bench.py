@@ -353,7 +353,8 @@ def _halo_of(config: Path) -> dict[str, Any]:
         try:
             lay = choose_layout(sample_rate_hz=w.sample_rate_hz, channels=w.channels, halo=d.effective_length,
                                 block_seconds=cfg.processing.block_seconds, chunk_seconds=cfg.output.chunk_seconds,
-                                memory_budget_mib=cfg.processing.memory_budget_mib)
+                                memory_budget_mib=cfg.processing.memory_budget_mib,
+                                seam_samples=cfg.checks.seam_samples, response_checks=cfg.checks.every > 0)
         except ConfigError:
             if not may_carry or (d.is_fir and cfg.processing.mode == "auto"):
                 raise

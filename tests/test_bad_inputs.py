@@ -511,6 +511,88 @@ def test_config_error_for_negative_fill_length():
         parse_config(_BASE + "[processing]\nmax_fill_samples = -3\n", source="job.toml")
 
 
+# Every number of the configuration is a finite quantity (the docstrings of the settings in
+# twinpass.config: times in seconds, sizes in MiB, levels in dB, ratios). TOML 1.0 spells NaN
+# and infinity as nan and inf; they are refused naming the table and the key.
+NONFINITE_SETTINGS = [
+    ("processing", "block_seconds", "nan"),
+    ("processing", "block_seconds", "inf"),
+    ("processing", "memory_budget_mib", "nan"),
+    ("processing", "memory_budget_mib", "inf"),
+    ("processing", "tolerance", "nan"),
+    ("processing", "carry_threshold", "nan"),
+    ("processing", "carry_threshold", "inf"),
+    ("output", "chunk_seconds", "nan"),
+    ("output", "chunk_seconds", "inf"),
+    ("engine", "retry_backoff_seconds", "nan"),
+    ("engine", "retry_backoff_seconds", "inf"),
+    ("flow", "retry_delay_seconds", "nan"),
+    ("flow", "retry_delay_seconds", "inf"),
+    ("checks", "passband_warn_db", "nan"),
+    ("checks", "passband_fail_db", "nan"),
+    ("checks", "phase_warn_deg", "nan"),
+    ("checks", "phase_fail_deg", "-inf"),
+    ("checks", "stopband_margin_db", "nan"),
+    ("checks", "coherence_min", "nan"),
+    ("archive", "sample_rate_hz", "inf"),
+]
+
+
+@pytest.mark.parametrize("table, key, value", NONFINITE_SETTINGS)
+def test_config_refuses_nan_and_infinite_numbers(table, key, value):
+    with pytest.raises(ConfigError) as e:
+        parse_config(_BASE + f"[{table}]\n{key} = {value}\n", source="job.toml")
+    msg = str(e.value)
+    assert msg.startswith(f"job.toml: [{table}] {key} = ") and "not a finite number" in msg, msg
+
+
+# Valid ranges as the settings' docstrings in twinpass.config and README "Checks, status and
+# report" state them: seam_samples >= 0 (0 = seam check off), coherence_min in [0, 1], the
+# passband and phase thresholds >= 0 with warn <= fail (grade() warns above the first and fails
+# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0.
+OUT_OF_RANGE = [
+    ("checks", "seam_samples = -3", "seam_samples = -3", "0 turns the seam check off"),
+    ("checks", "coherence_min = 2.0", "coherence_min = 2.0", "[0, 1]"),
+    ("checks", "coherence_min = -0.1", "coherence_min = -0.1", "[0, 1]"),
+    ("checks", "passband_fail_db = -1.0", "passband_fail_db = -1.0", ">= 0"),
+    ("checks", "passband_warn_db = -1.0", "passband_warn_db = -1.0", ">= 0"),
+    ("checks", "phase_fail_deg = -20.0", "phase_fail_deg = -20.0", ">= 0"),
+    ("checks", "passband_warn_db = 4.0", "passband_warn_db = 4.0", "must not exceed passband_fail_db = 3.0"),
+    ("checks", "phase_warn_deg = 30.0", "phase_warn_deg = 30.0", "must not exceed phase_fail_deg = 20.0"),
+    ("checks", "phase_warn_deg = -5.0", "phase_warn_deg = -5.0", ">= 0"),
+    ("checks", "stopband_margin_db = -1.0", "stopband_margin_db = -1.0", ">= 0"),
+    ("flow", "retries = -1", "retries = -1", ">= 0"),
+    ("flow", "retry_delay_seconds = -5.0", "retry_delay_seconds = -5.0", ">= 0"),
+    ("engine", "retry_backoff_seconds = -0.5", "retry_backoff_seconds = -0.5", ">= 0"),
+    ("processing", "carry_threshold = 0.0", "carry_threshold = 0.0", "> 0"),
+    ("processing", "carry_threshold = -1.0", "carry_threshold = -1.0", "> 0"),
+    ("archive", "sample_rate_hz = 0.0", "sample_rate_hz = 0.0", "> 0"),
+]
+
+
+@pytest.mark.parametrize("table, lines, named, rule", OUT_OF_RANGE)
+def test_config_refuses_values_out_of_their_documented_range(table, lines, named, rule):
+    with pytest.raises(ConfigError) as e:
+        parse_config(_BASE + f"[{table}]\n{lines}\n", source="job.toml")
+    msg = str(e.value)
+    assert msg.startswith(f"job.toml: [{table}] {named} ") and rule in msg and "\n" not in msg, msg
+
+
+@pytest.mark.parametrize("table, lines", [
+    ("checks", "seam_samples = 0"),
+    ("checks", "coherence_min = 0.0"),
+    ("checks", "coherence_min = 1.0"),
+    ("checks", "passband_warn_db = 0.0\npassband_fail_db = 0.0"),
+    ("checks", "phase_warn_deg = 20.0"),
+    ("checks", "stopband_margin_db = 0.0"),
+    ("flow", "retries = 0\nretry_delay_seconds = 0.0"),
+    ("engine", "retry_backoff_seconds = 0.0"),
+    ("processing", "carry_threshold = 0.01"),
+])
+def test_config_accepts_the_ends_of_the_documented_ranges(table, lines):
+    parse_config(_BASE + f"[{table}]\n{lines}\n", source="job.toml")
+
+
 def test_cli_config_error_is_one_line_and_exit_status_2(tmp_path):
     config = tmp_path / "job.toml"
     config.write_text(_BASE + "[archive]\nroot = \"archive\"\nglob = \"*.wav\"\n")

@@ -7,12 +7,16 @@ References:
 * Tiling and balance are integer facts checked with Python's own arithmetic: the spans of a
   file cover ``range(frames)`` once, in order, and the fewest blocks of at most
   ``block_samples`` that cover ``frames`` samples number ``ceil(frames / block_samples)``.
+* The shortest block is the documented rule of ``shortest_block``: the largest of 64 samples,
+  twice ``[checks] seam_samples`` and, with response checks, 4 Welch segments of 64 samples
+  (256); the remedies a refusal states are fed back into ``choose_layout`` and must work.
 """
 
 from __future__ import annotations
 
 import itertools
 import math
+import re
 
 import pytest
 
@@ -22,6 +26,7 @@ from twinpass.core.blocks import (
     MIN_BLOCK_SAMPLES,
     Layout,
     choose_layout,
+    shortest_block,
 )
 from twinpass.errors import ConfigError
 
@@ -77,28 +82,32 @@ def test_halos_alone_over_the_budget_are_refused_with_carry_mode_as_remedy(block
 GRID = list(itertools.product(
     [1, 8],                          # channels
     [0, 100, 3000, 40_000],          # halo (samples)
-    [None, 0.5, 20.0, 70.0],         # block_seconds
+    [None, 0.1, 0.5, 20.0, 70.0],    # block_seconds
     [None, 0.3, 7.0, 60.0],          # chunk_seconds
-    [1.0, 16.0, 256.0],              # memory_budget_mib
+    [0.01, 1.0, 16.0, 256.0],        # memory_budget_mib
+    [False, True],                   # response checks (with 8 seam samples)
 ))
 
 
-@pytest.mark.parametrize("channels,halo,block_seconds,chunk_seconds,budget", GRID)
-def test_layout_fits_the_budget_in_whole_chunks(channels, halo, block_seconds, chunk_seconds, budget):
+@pytest.mark.parametrize("channels,halo,block_seconds,chunk_seconds,budget,checks", GRID)
+def test_layout_fits_the_budget_in_whole_chunks(channels, halo, block_seconds, chunk_seconds, budget, checks):
     kw = dict(channels=channels, halo=halo, block_seconds=block_seconds, chunk_seconds=chunk_seconds,
-              memory_budget_mib=budget)
+              memory_budget_mib=budget, seam_samples=8 if checks else 0, response_checks=checks)
     layout = _layout_or_error(**kw)
     fits_per_sample = int(budget * 2**20 // (channels * BYTES_PER_WINDOW_SAMPLE))
     chunk = None if chunk_seconds is None else round(chunk_seconds * FS)
+    floor = 256 if checks else 64
     if layout is None:
         # Refused only when no block fits: the halos alone, one chunk with its halos, or the
-        # hand-set block (before rounding) with its halos exceed the budget.
+        # hand-set block (before rounding) with its halos exceed the budget; or no block of
+        # whole chunks at least the shortest block long fits; or the hand-set block is shorter.
         smallest = chunk or 1
         hand = round(block_seconds * FS) if block_seconds is not None else 0
-        assert 2 * halo + max(smallest, hand) > fits_per_sample, kw
+        longest = (fits_per_sample - 2 * halo) // smallest * smallest  # longest whole-chunk block that fits
+        assert 2 * halo + max(smallest, hand) > fits_per_sample or longest < floor or 0 < hand < floor, kw
         return
     assert _window_bytes(layout, channels) <= budget * 2**20, kw
-    assert layout.halo == halo and layout.block_samples >= 1
+    assert layout.halo == halo and layout.block_samples >= floor
     assert layout.balanced == (block_seconds is None)
     if chunk is None:
         assert layout.chunk_samples == layout.block_samples
@@ -163,3 +172,74 @@ def test_unbalanced_blocks_are_full_with_a_remainder():
     assert [b - a for a, b in layout.spans(2001)] == [1000, 1000, 1]
     balanced = Layout(block_samples=1000, chunk_samples=1000, halo=10, balanced=True)
     assert [b - a for a, b in balanced.spans(2001)] == [667, 667, 667]
+
+
+# -- the shortest block -------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("seam_samples, checks, floor", [(0, False, 64), (8, False, 64), (8, True, 256),
+                                                         (200, True, 400), (500, False, 1000)])
+def test_shortest_block_is_the_largest_need(seam_samples, checks, floor):
+    assert shortest_block(seam_samples, checks)[0] == floor
+
+
+@pytest.mark.parametrize("rate", [200.0, 44_100.0])
+@pytest.mark.parametrize("block_seconds", [1e-4, 0.001])
+@pytest.mark.parametrize("seam_samples, checks", [(8, True), (8, False), (300, False)])
+@pytest.mark.parametrize("halo", [0, 670])
+def test_blocks_set_by_hand_below_the_shortest_block_are_refused_with_the_shortest_that_works(
+        rate, block_seconds, seam_samples, checks, halo):
+    floor = max(64, 2 * seam_samples, 256 if checks else 0)
+    kw = dict(sample_rate_hz=rate, channels=2, halo=halo, chunk_seconds=None, memory_budget_mib=256.0,
+              seam_samples=seam_samples, response_checks=checks, source="job.toml")
+    if round(block_seconds * rate) >= floor:
+        assert choose_layout(block_seconds=block_seconds, **kw).block_samples == round(block_seconds * rate)
+        return
+    with pytest.raises(ConfigError) as err:
+        choose_layout(block_seconds=block_seconds, **kw)
+    message = str(err.value)
+    assert message.startswith(f"job.toml: [processing] block_seconds = {block_seconds:g} makes blocks of "
+                              f"{max(1, round(block_seconds * rate))} samples"), message
+    found = re.search(r"set block_seconds to at least ([0-9.e+-]+) s \((\d+) samples\)", message)
+    assert found and int(found[2]) == floor, message
+    # the value named (rounded up to 4 significant digits) works; one sample less does not
+    shortest = float(found[1])
+    assert choose_layout(block_seconds=shortest, **kw).block_samples == floor
+    with pytest.raises(ConfigError):
+        choose_layout(block_seconds=(floor - 1) / rate, **kw)
+
+
+@pytest.mark.parametrize("budget", [0.001, 0.01])
+@pytest.mark.parametrize("halo, carry", [(0, True), (30, True), (30, False)])
+@pytest.mark.parametrize("chunk_seconds", [None, 0.9])
+def test_a_budget_below_the_shortest_block_is_refused_with_the_budget_that_works(budget, halo, carry, chunk_seconds):
+    # 2 channels at 1 kHz with response checks: blocks of at least 256 samples; 0.01 MiB fits
+    # 10485 / 80 - 2 halos = 131 or 71 samples, 0.001 MiB 13 or none.
+    kw = dict(sample_rate_hz=FS, channels=2, halo=halo, block_seconds=None, chunk_seconds=chunk_seconds,
+              carry=carry, seam_samples=8, response_checks=True, source="job.toml")
+    with pytest.raises(ConfigError) as err:
+        choose_layout(memory_budget_mib=budget, **kw)
+    message = str(err.value)
+    assert message.startswith("job.toml: ") and f"[processing] memory_budget_mib = {budget:g}" in message, message
+    assert ('mode = "carry"' in message) == (carry and halo > 0), message
+    found = re.search(r"raise memory_budget_mib (?:\()?to at least ([0-9.e+-]+) MiB", message)
+    assert found, message
+    found_budget = float(found[1])
+    layout = choose_layout(memory_budget_mib=found_budget, **kw)
+    assert layout.block_samples >= 256 and _window_bytes(layout, 2) <= found_budget * 2**20
+
+
+def test_chunks_that_round_blocks_below_the_shortest_block_are_refused_with_chunks_that_work():
+    # 2 channels, halos of 10: 0.025 MiB fits 327 - 20 = 307 samples, one chunk of 200; two
+    # do not fit, so blocks would be 200 samples, below 256 (response checks).
+    kw = dict(sample_rate_hz=200.0, channels=2, halo=10, block_seconds=None, memory_budget_mib=0.025,
+              seam_samples=8, response_checks=True)
+    with pytest.raises(ConfigError) as err:
+        choose_layout(chunk_seconds=1.0, **kw)
+    message = str(err.value)
+    assert "memory_budget_mib = 0.025" in message and "chunk_seconds = 1" in message, message
+    found = re.search(r"set chunk_seconds from ([0-9.]+) to ([0-9.]+) s", message)
+    assert found, message
+    for chunk_seconds in (float(found[1]), float(found[2])):
+        layout = choose_layout(chunk_seconds=chunk_seconds, **kw)
+        assert layout.block_samples >= 256 and _window_bytes(layout, 2) <= 0.025 * 2**20

@@ -295,6 +295,34 @@ def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     assert "blok_seconds" in r.stderr and "[processing]" in r.stderr
 
 
+@pytest.mark.parametrize("table, key", [("processing", "block_seconds"), ("processing", "memory_budget_mib"),
+                                        ("output", "chunk_seconds")])
+def test_nan_block_and_chunk_lengths_are_exit_2(tmp_path: Path, table: str, key: str) -> None:
+    # A length in seconds or a budget in MiB is a finite number (config.py docstrings); TOML's
+    # nan is refused by plan, naming the file, the table and the key, before any run.
+    cfg = mixed_archive(tmp_path)
+    assert _twinpass("plan", str(cfg)).returncode == 0
+    text = cfg.read_text().replace("block_seconds = 30.0\n", "")
+    cfg.write_text(text.replace(f"[{table}]\n", f"[{table}]\n{key} = nan\n"))
+    r = _twinpass("plan", str(cfg))
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert f"{cfg}: [{table}] {key} = nan is not a finite number" in r.stderr
+
+
+@pytest.mark.parametrize("setting, named", [("seam_samples = -3", "seam_samples = -3"),
+                                             ("coherence_min = 2.0", "coherence_min = 2.0"),
+                                             ("passband_fail_db = -1.0", "passband_fail_db = -1.0")])
+def test_checks_thresholds_out_of_range_are_exit_2(tmp_path: Path, setting: str, named: str) -> None:
+    # README "Checks, status and report": seam_samples >= 0, coherence_min in [0, 1],
+    # passband_fail_db >= 0. Values outside are refused by plan, not met as
+    # an internal store error or as every block failing at run time.
+    cfg = mixed_archive(tmp_path)
+    cfg.write_text(cfg.read_text() + f"\n[checks]\n{setting}\n")
+    r = _twinpass("plan", str(cfg))
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert f"{cfg}: [checks] {named} " in r.stderr
+
+
 @pytest.mark.skipif(sys.platform != "linux", reason="names that are not UTF-8 are a POSIX file system's")
 def test_a_flow_run_from_a_folder_whose_name_is_not_utf8_is_refused_before_it_starts(tmp_path: Path) -> None:
     # Prefect sends a flow run's parameters as UTF-8 JSON (RFC 8259 section 8.1: JSON text

@@ -393,6 +393,33 @@ def test_blocks_set_by_hand_beyond_the_memory_budget_fail_their_segment_with_a_r
         assert o.array_name not in g or g[o.array_name].attrs.get("complete") is not True
 
 
+@pytest.mark.parametrize("processing, named, remedy", [
+    # 0.0001 s at 200 Hz rounds to 1 sample; with response checks blocks need at least
+    # 4 x 64 = 256 samples (1.28 s at 200 Hz), in halo and carry mode alike.
+    ({"block_seconds": 0.0001}, "[processing] block_seconds = 0.0001", "at least 1.28 s (256 samples)"),
+    ({"block_seconds": 0.0001, "mode": "carry"}, "[processing] block_seconds = 0.0001",
+     "at least 1.28 s (256 samples)"),
+    # 0.001 MiB fits 1048 B / (2 ch x 40 B) = 13 samples without halos: not even a carried block
+    # of 256 samples, which needs 256 x 80 B = 0.01953 MiB.
+    ({"block_seconds": None, "memory_budget_mib": 0.001, "mode": "auto"}, "[processing] memory_budget_mib = 0.001",
+     "raise memory_budget_mib to at least 0.01954 MiB"),
+])
+def test_blocks_shorter_than_the_checks_need_are_refused_before_any_block_runs(tmp_path, processing, named,
+                                                                               remedy):
+    # Such settings would make blocks of one sample or a few, and a run that never ends;
+    # the segment is refused instead, naming the configuration file, the key and the value
+    # that works, and nothing of it is written.
+    x = make_signal(6000, 2, FS, seed=12)
+    write_stream(tmp_path / "archive", "deck", x, FS, 2)
+    cfg = write_config(tmp_path, processing=processing)
+    res = run_job(load_config(cfg))
+    assert not res.ok and {o.status for o in res.outcomes} == {"failed"}
+    assert all(o.blocks_run == 0 for o in res.outcomes)
+    for o in res.outcomes:
+        message = " ".join(o.errors.values())
+        assert f"{cfg}: {named} " in message and remedy in message, message
+
+
 def test_halos_beyond_the_memory_budget_are_carried_in_auto_mode_and_refused_in_halo_mode(tmp_path):
     # 2 channels and the 670-sample halo of BANDPASS: the halos alone need
     # 2 x 670 x 2 x 40 B = 107200 B, above 0.1 MiB (104858 B), so no block with halos fits.

@@ -1,7 +1,8 @@
 """The job configuration (TOML), validated into frozen dataclasses.
 
 Relative paths in a configuration are relative to the configuration file's folder.
-Unknown keys and wrong types are errors naming the file, the table and the key.
+Unknown keys, wrong types, numbers that are not finite (TOML's nan and inf) and values out
+of range are errors naming the file, the table and the key.
 
 Example::
 
@@ -31,6 +32,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -59,6 +61,7 @@ class ProcessingConfig:
     ``carry_threshold`` times the block length, or no block with its halos fits
     ``memory_budget_mib`` (IIR only)."""
     carry_threshold: float = 1.0
+    """Halo length / block length (a ratio > 0) above which ``mode = "auto"`` carries states."""
     nonfinite: str = "fail"
     """Policy for NaN/Inf runs in float input: fail | split | interpolate."""
     max_fill_samples: int = 0
@@ -78,7 +81,7 @@ class ArchiveConfig:
     manifest: str | None = None
     """CSV with columns path, stream, start_time (ISO 8601)."""
     sample_rate_hz: float | None = None
-    """Sample rate for formats that do not store one (NPY)."""
+    """Sample rate (Hz, > 0) for formats that do not store one (NPY)."""
     fingerprint: str = "fast"
     """fast (size + first and last MiB) | full (every byte)."""
     truncated: str = "error"
@@ -119,7 +122,7 @@ class EngineConfig:
     retries: int = 2
     """Extra attempts for a failing block."""
     retry_backoff_seconds: float = 0.5
-    """First retry delay; doubles on each further attempt."""
+    """First retry delay (seconds, >= 0); doubles on each further attempt."""
 
 
 @dataclass(frozen=True)
@@ -127,19 +130,24 @@ class ChecksConfig:
     """Per-block checks and their thresholds."""
 
     every: int = 1
-    """Run the response checks on every Nth block (1 = all, 0 = off). Integrity and seam
-    checks always run."""
+    """Run the response checks on every Nth block (1 = all, 0 = off). Integrity checks
+    always run, and seam checks unless ``seam_samples = 0``."""
     seam_samples: int = 8
-    """Samples computed beyond each block edge and compared with the neighbour."""
+    """Samples (>= 0) computed beyond each block edge and compared with the neighbour; 0
+    turns the seam check off."""
     passband_warn_db: float = 0.5
-    """Passband deviation beyond the designed ripple (plus estimator error) that warns."""
+    """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that
+    warns; at most ``passband_fail_db``."""
     passband_fail_db: float = 3.0
+    """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that fails."""
     phase_warn_deg: float = 5.0
+    """Passband phase magnitude (degrees, >= 0) that warns; at most ``phase_fail_deg``."""
     phase_fail_deg: float = 20.0
+    """Passband phase magnitude (degrees, >= 0) that fails."""
     stopband_margin_db: float = 10.0
-    """How far the measured stopband attenuation may fall short of the spec before failing."""
+    """How far (dB, >= 0) the measured stopband attenuation may fall short of the spec before failing."""
     coherence_min: float = 0.9
-    """Frequency bins below this coherence are not used by the response check."""
+    """Frequency bins below this coherence (in [0, 1]) are not used by the response check."""
 
 
 @dataclass(frozen=True)
@@ -149,8 +157,9 @@ class FlowConfig:
     same figures)."""
 
     retries: int = 1
+    """Retries of a failing segment task (>= 0)."""
     retry_delay_seconds: float = 5.0
-    """Delay before the first retry of a segment task; later retries back off (x2, x4...)."""
+    """Delay (seconds, >= 0) before the first retry of a segment task; later retries back off (x2, x4...)."""
 
 
 @dataclass(frozen=True)
@@ -299,8 +308,70 @@ def _section(source: str, name: str, table: Any, cls: type) -> Any:
     return cls(**kwargs)
 
 
+def _nonfinite_setting(cfg: JobConfig) -> tuple[str, str, Any] | None:
+    """The first setting (table, key, value) holding a NaN or infinite number, if any.
+
+    Every number in the configuration (times in seconds, sizes in MiB, levels in dB,
+    ratios) is a finite quantity: NaN compares false with every limit, so it would slip
+    through the range checks below and poison the run.
+    """
+    for table in _SECTIONS:
+        obj = getattr(cfg, table)
+        for f in dataclasses.fields(obj):
+            value = getattr(obj, f.name)
+            items = value if isinstance(value, tuple) else (value,)
+            if any(isinstance(v, float) and not math.isfinite(v) for v in items):
+                return table, f.name, value
+    return None
+
+
+def _require(src: str, table: str, key: str, value: Any, ok: bool, rule: str) -> None:
+    """Raise a :class:`ConfigError` naming ``[table] key`` and ``rule`` (what to give) unless ``ok``."""
+    if not ok:
+        raise ConfigError(f"{src}: [{table}] {key} = {value!r} {rule}")
+
+
+def _check_ranges(cfg: JobConfig) -> None:
+    """Ranges of the settings whose values outside them are meaningless, or crash or poison
+    the run (every block failing its checks without a hint); see the settings' docstrings."""
+    src, c, fl = cfg.source, cfg.checks, cfg.flow
+    _require(src, "processing", "carry_threshold", cfg.processing.carry_threshold,
+             cfg.processing.carry_threshold > 0, "must be > 0 (halo length / block length above which "
+             "mode = \"auto\" carries filter states), e.g. 1.0")
+    rate = cfg.archive.sample_rate_hz
+    _require(src, "archive", "sample_rate_hz", rate, rate is None or rate > 0,
+             "must be > 0 (Hz), the sample rate of the recordings that store none")
+    _require(src, "engine", "retry_backoff_seconds", cfg.engine.retry_backoff_seconds,
+             cfg.engine.retry_backoff_seconds >= 0, "must be >= 0 (seconds before the first retry of a block)")
+    _require(src, "flow", "retries", fl.retries, fl.retries >= 0, "must be >= 0 (0 = no retries of a segment)")
+    _require(src, "flow", "retry_delay_seconds", fl.retry_delay_seconds, fl.retry_delay_seconds >= 0,
+             "must be >= 0 (seconds before the first retry of a segment)")
+    _require(src, "checks", "seam_samples", c.seam_samples, c.seam_samples >= 0,
+             "must be >= 0 (samples compared beyond each block edge; 0 turns the seam check off)")
+    _require(src, "checks", "coherence_min", c.coherence_min, 0.0 <= c.coherence_min <= 1.0,
+             "must be in [0, 1] (a coherence), e.g. 0.9")
+    _require(src, "checks", "stopband_margin_db", c.stopband_margin_db, c.stopband_margin_db >= 0,
+             "must be >= 0 (dB the measured stopband attenuation may fall short of the spec)")
+    # grade(): a block warns above the warn threshold and fails above the fail threshold, so
+    # both are allowances >= 0 and the warning comes first (or with the failure, when equal).
+    for quantity, unit in (("passband", "db"), ("phase", "deg")):
+        warn_key, fail_key = f"{quantity}_warn_{unit}", f"{quantity}_fail_{unit}"
+        warn, fail = getattr(c, warn_key), getattr(c, fail_key)
+        for key, value in ((warn_key, warn), (fail_key, fail)):
+            _require(src, "checks", key, value, value >= 0,
+                     f"must be >= 0 ({'dB' if unit == 'db' else 'degrees'} of {quantity} deviation allowed)")
+        _require(src, "checks", warn_key, warn, warn <= fail,
+                 f"must not exceed {fail_key} = {fail!r}: a block warns above the first and fails above "
+                 "the second; lower the warn threshold or raise the fail threshold")
+
+
 def _check_values(cfg: JobConfig) -> None:
     src = cfg.source
+    bad = _nonfinite_setting(cfg)
+    if bad is not None:
+        table, key, value = bad
+        raise ConfigError(f"{src}: [{table}] {key} = {value!r} is not a finite number; give a finite value "
+                          "(or leave the key out for its default)")
     p = cfg.processing
     if not (0.0 < p.tolerance < 1e-1):
         raise ConfigError(f"{src}: [processing] tolerance = {p.tolerance!r} must be in (0, 0.1), e.g. 1e-9")
@@ -323,6 +394,7 @@ def _check_values(cfg: JobConfig) -> None:
         )
     if cfg.checks.every < 0:
         raise ConfigError(f"{src}: [checks] every must be >= 0 (0 turns response checks off)")
+    _check_ranges(cfg)
     if cfg.output.chunk_seconds is not None and cfg.output.chunk_seconds <= 0:
         raise ConfigError(f"{src}: [output] chunk_seconds must be > 0")
     if p.max_fill_samples < 0:

@@ -546,6 +546,9 @@ def _layout(seg: SegmentWork, design: Design, cfg: JobConfig) -> Layout:
         chunk_seconds=cfg.output.chunk_seconds,
         memory_budget_mib=cfg.processing.memory_budget_mib,
         carry=not design.is_fir and not seg.holes,  # pieces between holes always use halos
+        seam_samples=cfg.checks.seam_samples,
+        response_checks=cfg.checks.every > 0,
+        source=cfg.source,
     )
 
 

@@ -202,6 +202,9 @@ def carry_layout(seg: SegmentWork, cfg: JobConfig) -> Layout:
         block_seconds=cfg.processing.block_seconds,
         chunk_seconds=cfg.output.chunk_seconds,
         memory_budget_mib=cfg.processing.memory_budget_mib,
+        seam_samples=cfg.checks.seam_samples,
+        response_checks=cfg.checks.every > 0,
+        source=cfg.source,
     )
 
 
