@@ -16,6 +16,7 @@ import signal
 import subprocess
 import sys
 import threading
+import time
 import uuid
 from pathlib import Path
 from types import SimpleNamespace
@@ -47,6 +48,7 @@ from prefect_fixtures import (
 from twinpass import cli, flows
 from twinpass.core.blocks import blocks_touching
 from twinpass.config import load_config
+from twinpass.core.checks import CANCELLED
 from twinpass.errors import ConfigError, RunStoppedError, StoreLockedError
 from twinpass.headstart import HeadStart, offer, withdraw
 from twinpass.io.store import BlockStatus, OutputStore
@@ -649,6 +651,130 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     assert not all(records.values()), records
     root = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_root_info()
     assert root["runs"][-1].get("interrupted") is True, root["runs"]  # the stopped run is the last recorded
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
+    assert state.is_completed(), state.message
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
+def _job_in_short_blocks(folder: Path, archive: Path) -> Path:
+    """A job for the test archive in 3 s blocks (14 per file, each delayed by the tests that
+    stop it; 300 samples, above the shortest block the response check allows), so that a run
+    stopped early has most of its blocks submitted and not run."""
+    cfg = write_job(folder, archive, flow_retries=1)
+    cfg.write_text(cfg.read_text(encoding="utf-8").replace("block_seconds = 10.0", "block_seconds = 3.0"),
+                   encoding="utf-8")
+    return cfg
+
+
+def _flow_run_of_block(client, block: str):
+    """The (single) flow run whose config_block parameter is ``block``, once it is final."""
+    runs = poll(lambda: [r for r in client.read_flow_runs(limit=200) if r.parameters.get("config_block") == block],
+                lambda rs: len(rs) == 1 and rs[0].state is not None and rs[0].state.is_final(),
+                f"the flow run of block {block}")
+    return runs[0]
+
+
+def test_ctrl_c_during_a_flow_run_without_a_head_start_cancels_its_blocks_before_the_cluster_closes(
+        prefect_server, prefect_client, npy_archive, tmp_path, monkeypatch):
+    # `twinpass run --block NAME` runs the flow body from the start (no run begun before the
+    # flow run): its segment tasks drive their blocks on the cluster the body starts. Ctrl-C
+    # (SIGINT) once the first block is recorded, each block delayed 0.2 s so that most are
+    # still to run: the blocks not finished are cancelled before the cluster closes, so each
+    # is recorded as cancelled (not failed), no segment task is retried, the command ends
+    # with status 130, no file is marked complete with a block not done, and the next run
+    # finishes the job. Output: scipy.signal.sosfiltfilt of the whole segment.
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    cfg = _job_in_short_blocks(tmp_path, npy_archive)
+    block = f"tp-stop-{uuid.uuid4().hex[:8]}"
+    assert cli.main(["save", str(cfg), "--name", block]) == 0
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server,
+                    "TWINPASS_FAULTS": json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.2}])})
+    code, text, out = interrupt_cli(["run", "--block", block, "--no-report"], env, tmp_path / "run.err",
+                                    "blocks 1/", cwd=tmp_path)  # a segment's first block is recorded
+    assert code == 130, text + out
+    assert "twinpass: interrupted; finished blocks are kept, rerun to resume" in text
+    assert "failed after" not in text and "Traceback" not in text, text
+    assert "Retrying" not in text and "Retries are exhausted" not in text, text
+    assert "IOLoop is closed" not in text, text
+
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    errors = [e for rel in records for e in store.read_block_table(array_name(rel), figures=False,
+                                                                   seams=False).errors.values()]
+    assert all(e.startswith(CANCELLED) for e in errors), errors
+    assert store.read_root_info()["runs"][-1].get("interrupted") is True
+
+    run = _flow_run_of_block(prefect_client, block)
+    segs = runs_of(final_task_runs(prefect_client, run.id, expected=3), flows.filter_segment)
+    assert segs and all(t.run_count == 1 for t in segs), [(t.name, t.state.name, t.run_count) for t in segs]
+    assert all(t.state.is_completed() or "stopped" in (t.state.message or "") for t in segs), \
+        [(t.name, t.state.name, t.state.message) for t in segs]
+
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
+    assert state.is_completed(), state.message
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
+def test_ctrl_c_in_a_flow_run_without_a_head_start_stops_its_segments_before_the_cluster_closes(
+        prefect_client, npy_archive, tmp_path, monkeypatch, caplog):
+    # A flow run called from Python runs its body from the start (no run begun before the
+    # flow run). Ctrl-C (SIGINT to the main thread, where the flow body waits on its segment
+    # tasks) comes as the first block is recorded, and that segment's driver is slow to go
+    # on (held in the progress callback until its cluster has closed, at most a few
+    # seconds): the run cancels its blocks until every segment's driver has returned, and
+    # only then closes the cluster. So the blocks not finished are recorded as cancelled,
+    # not failed, no segment task is retried, nothing is marked complete falsely, and the
+    # next run finishes the job. Output: scipy.signal.sosfiltfilt of the whole segment.
+    import distributed
+
+    cfg = _job_in_short_blocks(tmp_path, npy_archive)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
+                                                       "seconds": 0.2}]))
+    first = threading.Event()
+
+    def slow_first_block(segment: str, done: int, total: int, result: object) -> None:
+        if first.is_set():
+            return
+        first.set()
+        client = distributed.default_client()
+        signal.pthread_kill(threading.main_thread().ident, signal.SIGINT)  # Ctrl-C
+        loop = client.loop.asyncio_loop
+        for _ in range(50):  # a slow driver: until the cluster is gone, or 5 s
+            if client.status == "closed" and loop.is_closed():
+                break
+            time.sleep(0.1)
+
+    monkeypatch.setattr(flows, "TERMINAL_PROGRESS", slow_first_block)
+    caplog.set_level(logging.INFO)
+    with pytest.raises(KeyboardInterrupt):
+        flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert first.is_set()
+    failures = [r.getMessage() for r in caplog.records if re.match(r"block \d+ of .* failed", r.getMessage())]
+    assert failures == [], failures  # cancelled blocks are not failures (one line per segment counts them)
+    stopped = [r.getMessage() for r in caplog.records if "cancelled before they finished" in r.getMessage()]
+    assert 1 <= len(stopped) <= len(STREAMS), stopped
+
+    store = OutputStore.open(str(tmp_path / "out.zarr"), mode="r")
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    errors = [e for rel in records for e in store.read_block_table(array_name(rel), figures=False,
+                                                                   seams=False).errors.values()]
+    assert errors and all(e.startswith(CANCELLED) for e in errors), sorted(set(errors))
+    assert store.read_root_info()["runs"][-1].get("interrupted") is True
+    run = _flow_run_of(prefect_client, cfg)
+    segs = runs_of(final_task_runs(prefect_client, run.id, expected=3), flows.filter_segment)
+    assert len(segs) == len(STREAMS), [(t.name, t.state.name) for t in segs]
+    assert all(t.run_count == 1 for t in segs), [(t.name, t.state.name, t.run_count) for t in segs]
+    assert all(t.state.is_completed() or "stopped" in (t.state.message or "") for t in segs), \
+        [(t.name, t.state.name, t.state.message) for t in segs]
+
+    monkeypatch.delenv("TWINPASS_FAULTS")
+    monkeypatch.setattr(flows, "TERMINAL_PROGRESS", None)
     state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
     assert state.is_completed(), state.message
     assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())

@@ -816,6 +816,27 @@ STOP_POLL_S = 0.1
 """Seconds between rounds of cancelling the drivers' blocks while a stopped run waits for them."""
 
 
+def _cancel_ignoring_errors(client: Any, futures: list[Any]) -> None:
+    with contextlib.suppress(Exception):
+        client.cancel(futures)
+
+
+def cancel_soon(futures: list[Any]) -> None:
+    """Ask for the unfinished ``futures`` to be cancelled, without waiting and without raising.
+
+    For a driver giving up on its blocks because of an error: the request goes out from a
+    thread of its own, since distributed's cancel waits on the client's event loop, which
+    may have stopped under a client being closed. A client already closing or closed is not
+    asked (its blocks end with its cluster).
+    """
+    with contextlib.suppress(Exception):
+        pending = [f for f in futures if not f.done()]
+        client = pending[0].client if pending else None
+        if client is not None and getattr(client, "status", None) == "running":
+            threading.Thread(target=_cancel_ignoring_errors, args=(client, pending), name="twinpass-cancel",
+                             daemon=True).start()
+
+
 class CancellableClient:
     """The cluster's client as the segment drivers see it: the blocks they submit can all be cancelled.
 
@@ -838,11 +859,12 @@ class CancellableClient:
         return fut
 
     def cancel_all(self) -> None:
-        """Cancel every block submitted so far that has not finished."""
+        """Cancel every block submitted so far that has not finished (a client no longer
+        running is not asked; an error is ignored: the next round asks again)."""
         with self._guard:
             pending = [f for f in self._futures if not f.done()]
-        if pending:
-            self._client.cancel(pending)
+        if pending and getattr(self._client, "status", "running") == "running":
+            _cancel_ignoring_errors(self._client, pending)
 
     def cancel_until(self, ended: Callable[[float], bool]) -> None:
         """Cancel the unfinished blocks, round after round, until the drivers have returned.
@@ -1004,10 +1026,7 @@ def run_jobs(submitted: list[tuple[Any, BlockJob]], store: Any, *,
             recorder.flush()
         # Blocks nobody will record: cancelled, so that a retry of the segment does not run
         # beside them (those already running finish unrecorded, and the retry redoes them).
-        for fut in futures:
-            if not fut.done():
-                with contextlib.suppress(Exception):
-                    fut.cancel()
+        cancel_soon(futures)
         raise
     finally:
         errors.close()
@@ -1123,8 +1142,7 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     try:
         spans_by_file, _ = prepare_segment(seg, design, cfg, store, layout, edge_samples, on_file=submit_file)
     except BaseException:
-        with contextlib.suppress(Exception):  # nothing is recorded for these blocks; stop them
-            client.cancel([f for f, _ in submitted])
+        cancel_soon([f for f, _ in submitted])  # nothing is recorded for these blocks; stop them
         raise
     run_count = run_jobs(submitted, store, on_block=on_block, sync_before_record=sync_here,
                          segment_id=seg.segment_id, log_blocks=log_blocks)

@@ -11,6 +11,11 @@ lock, preparation, cluster, segment drivers); the flow body takes it over, and e
 segment task follows its running driver. Other callers (deployments, Python) run the body
 from the start.
 
+Ctrl-C (or an error leaving the body while segment tasks run) stops the run in this order:
+no segment task starts or is retried any more (each ends with ``RunStoppedError``), the
+run's blocks are cancelled until every task driving or following a segment has returned
+(its unfinished blocks recorded as cancelled), and only then does the cluster close.
+
 :func:`build_deployment` / :func:`serve_deployment` turn the flow into a scheduled
 deployment (cron expression in a given time zone) served by this process.
 
@@ -54,6 +59,7 @@ from .core.design import format_report
 from .core.plan import fingerprint_changed
 from .engine import (
     BlockErrorLog,
+    CancellableClient,
     ClientStart,
     FileOutcome,
     SegmentWork,
@@ -75,18 +81,60 @@ ARTIFACT_DESIGN = "twinpass-design"
 ARTIFACT_FILES = "twinpass-files"
 ARTIFACT_REPORT = "twinpass-report"
 
-# Dask clients shared by the segment tasks of one flow run, by key (tasks run in threads
-# of the flow's process; a client is not passed as a task parameter).
-_CLIENTS: dict[str, Any] = {}
 _CLIENTS_LOCK = threading.Lock()
 # (client key, segment id) of segments whose files a first attempt has prepared in the
 # store (their block tables are current): a retry resumes them instead of starting over.
 _PREPARED: set[tuple[str, str]] = set()
-# Head starts whose running segments the segment tasks follow, by client key.
-_HEADS: dict[str, HeadStart] = {}
 # Blocks run per output array by every attempt of a segment task, by (client key, segment
 # id): the run's summary counts them for a segment whose task failed, too.
 _RAN: dict[tuple[str, str], collections.Counter[str]] = {}
+
+
+@dataclasses.dataclass
+class _RunCluster:
+    """The cluster the segment tasks of one flow run share, and the tasks using it.
+
+    Tasks run in threads of the flow's process; the client is not passed as a task
+    parameter but found here by key. ``drivers`` counts the tasks between
+    :meth:`enter` and :meth:`leave` (those driving or following a segment's blocks); once
+    ``stopping`` is set no task enters, so that :meth:`stop` can wait for those inside.
+    """
+
+    client: CancellableClient
+    head: HeadStart | None = None
+    """The head start whose running segments the tasks follow, if any."""
+    stopping: bool = False
+    drivers: int = 0
+    left: threading.Condition = dataclasses.field(default_factory=lambda: threading.Condition(_CLIENTS_LOCK))
+
+    def enter(self) -> bool:
+        """Count a task in (call holding ``_CLIENTS_LOCK``); False when the run is stopping."""
+        if self.stopping:
+            return False
+        self.drivers += 1
+        return True
+
+    def leave(self) -> None:
+        """Count a task out (it touches the cluster no more)."""
+        with _CLIENTS_LOCK:
+            self.drivers -= 1
+            self.left.notify_all()
+
+    def _drivers_ended(self, timeout: float = 0.0) -> bool:
+        """Whether every task counted in has left, waiting up to ``timeout`` seconds for it."""
+        with self.left:
+            return self.left.wait_for(lambda: self.drivers == 0, timeout)
+
+    def stop(self) -> None:
+        """Refuse tasks from now on and cancel the run's blocks, round after round, until
+        every task inside has returned (each records its unfinished blocks as cancelled)."""
+        with _CLIENTS_LOCK:
+            self.stopping = True
+        self.client.cancel_until(self._drivers_ended)
+
+
+# The clusters of the flow runs of this process, by key.
+_RUNS: dict[str, _RunCluster] = {}
 
 PROGRESS_INTERVAL_S = 3.0
 """Seconds between updates of a segment's progress artifact on the dashboard (and one at the
@@ -143,19 +191,27 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 @contextlib.contextmanager
 def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterator[str]:
     """Register the started client (and the head start whose drivers the tasks follow) for
-    the segment tasks under a new key, for the ``with`` block; the caller closes them."""
+    the segment tasks under a new key, for the ``with`` block; the caller closes them.
+
+    Left with an exception (Ctrl-C included), the run is stopped first (:meth:`_RunCluster.stop`):
+    no task starts or retries its segment any more, and the blocks are cancelled until
+    every task driving or following one has returned, so that the caller closes the
+    cluster under none of them.
+    """
     key = uuid.uuid4().hex
     try:
-        client = start.client()
+        client = head.client if head is not None and head.client is not None else CancellableClient(start.client())
+        run = _RunCluster(client, head)
         with _CLIENTS_LOCK:
-            _CLIENTS[key] = client
-            if head is not None:
-                _HEADS[key] = head
-        yield key
+            _RUNS[key] = run
+        try:
+            yield key
+        except BaseException:
+            run.stop()
+            raise
     finally:
         with _CLIENTS_LOCK:
-            _CLIENTS.pop(key, None)
-            _HEADS.pop(key, None)
+            _RUNS.pop(key, None)
             _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
             for k in [k for k in _RAN if k[0] == key]:
                 del _RAN[k]
@@ -190,7 +246,7 @@ def design_task(prep: Prepared) -> dict[str, Any]:
 def _worth_retrying(task: Any, task_run: Any, state: Any) -> bool:
     """Retry a failed segment unless only checks failed (the same blocks give the same
     figures), the configuration does not suit it (e.g. blocks too large for the memory
-    budget) or the run was stopped (its cluster is closing)."""
+    budget) or the run was stopped (Ctrl-C: its blocks are being cancelled)."""
     return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError, RunStoppedError))
 
 
@@ -203,14 +259,32 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     prepared the segment's files (and invalidated the blocks a neighbour's change reaches),
     their block tables are current, so a retry resumes every file instead of resetting it.
     """
+    mark = (client_key, seg.segment_id)
+    with _CLIENTS_LOCK:
+        run, retry = _RUNS.get(client_key), mark in _PREPARED
+        entered = run is not None and run.enter()
+        ran = _RAN.setdefault(mark, collections.Counter())
+    if run is None or not entered:  # the flow body is stopping the run, or has closed its cluster
+        raise RunStoppedError.before_start(seg.segment_id)
+    try:
+        return _filter_segment(seg, prep, store, run, retry, mark, ran)
+    except RunStoppedError:
+        raise
+    except Exception as exc:
+        if run.stopping:  # whatever went wrong, the run is stopping: the segment is not retried
+            raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped while this segment ran "
+                                  f"({type(exc).__name__}); finished blocks are kept; rerun to finish it") from exc
+        raise
+    finally:
+        run.leave()
+
+
+def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _RunCluster, retry: bool,
+                    mark: tuple[str, str], ran: collections.Counter[str]) -> list[FileOutcome]:
+    """The body of :func:`filter_segment` for a task counted in on the run's cluster."""
     logger = get_run_logger()
     cfg = prep.cfg
-    mark = (client_key, seg.segment_id)
-    with _CLIENTS_LOCK:  # the run's cluster and head start, both or neither: the flow body drops them together
-        client, head, retry = _CLIENTS.get(client_key), _HEADS.get(client_key), mark in _PREPARED
-        ran = _RAN.setdefault(mark, collections.Counter())
-    if client is None:  # the flow body has closed the run's cluster: the run is being stopped
-        raise RunStoppedError.before_start(seg.segment_id)
+    client, head = run.client, run.head
     # Taken first thing: a driver a stopped head start gave up is refused (RunStoppedError),
     # so that the segment does not start again on a cluster being closed.
     early = head.take_segment(seg.segment_id) if head is not None else None
@@ -246,11 +320,6 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         else:
             outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block, log_blocks=False)
         progress.close(ended=True)
-    except Exception as exc:
-        if getattr(client, "status", "running") in ("closing", "closed"):  # the flow body stopped the run
-            raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped while this segment ran "
-                                  f"({type(exc).__name__}); finished blocks are kept; rerun to finish it") from exc
-        raise
     finally:
         block_errors.close()
         progress.close(ended=False)  # the segment raised: a pending update is dropped
@@ -262,9 +331,10 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         names = "; ".join(f"{o.relpath} ({o.blocks_failed} block(s) not done: "
                           f"{next(iter(o.errors.values()), 'checks failed').splitlines()[0]})" for o in failed)
         reasons = [str(e) for o in failed for e in o.errors.values()]
-        if reasons and all(was_cancelled(r) for r in reasons):
-            raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before {len(reasons)} block(s) "
-                                  "finished; they are recorded as not done; rerun to finish them")
+        if run.stopping or (reasons and all(was_cancelled(r) for r in reasons)):
+            raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before "
+                                  f"{sum(o.blocks_failed for o in failed)} block(s) finished; they are recorded as "
+                                  "not done; rerun to finish them")
         if not any(o.errors for o in failed):  # every block ran; only their checks failed
             raise ChecksFailedError(f"segment {seg.segment_id}: {names}; not retried (the same blocks give "
                                     "the same figures): see `twinpass status` or the report")

@@ -208,6 +208,11 @@ class HeadStart:
             head._lock = held.pop_all()  # held from now on until release() or withdraw()
         return head
 
+    @property
+    def client(self) -> CancellableClient | None:
+        """The cluster's client as the drivers use it (None when there are no blocks to run)."""
+        return self._client
+
     def matches(self, cfg: JobConfig, force: bool, scheduler: str | None, workers: int | None) -> bool:
         """Whether a flow call with these settings is the run this head start began."""
         return (cfg.digest() == self.cfg.digest() and bool(force) == self.force
