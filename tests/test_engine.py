@@ -521,7 +521,8 @@ def test_status_names_the_inputs_the_last_run_left_out_or_found_gone(tmp_path):
     assert f"  {files.relpaths[2]}" in text
 
 
-def test_a_segment_stopped_by_its_callback_leaves_no_blocks_running(tmp_path):
+@pytest.mark.parametrize("mode", ["halo", "carry"])
+def test_a_segment_stopped_by_its_callback_leaves_no_blocks_running(tmp_path, mode):
     # When the caller's block callback raises, the segment ends with that error, and its
     # blocks not yet run are cancelled: a retry must not run them beside these.
     import json as _json
@@ -534,7 +535,7 @@ def test_a_segment_stopped_by_its_callback_leaves_no_blocks_running(tmp_path):
 
     write_stream(tmp_path / "archive", "deck", make_signal(12000, 1, 200.0, seed=6), 200.0, [2000] * 6)
     cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")},
-                                   processing={"block_seconds": 2.0}))
+                                   processing={"block_seconds": 2.0, "mode": mode}))
     os.environ["TWINPASS_FAULTS"] = _json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 0.2}])
     try:
         store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)

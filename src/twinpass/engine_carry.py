@@ -107,6 +107,7 @@ from .engine import (
     ProgressFn,
     SegmentWork,
     SourceSlice,
+    cancel_soon,
     design_digest_for,
     finish_segment,
     lost_task_error,
@@ -743,14 +744,20 @@ def _run_tasks(client: Any, fn: Callable[..., Any], calls: list[tuple[Any, ...]]
                              key=f"twinpass-carry-{label}-{batch[0][0].piece.index}-{stamp}")
                for batch in batches]
     by_key = {f.key: batch for f, batch in zip(futures, batches)}
-    for fut in as_completed(futures):
-        batch = by_key[fut.key]
-        try:
-            results = fut.result()
-        except Exception as exc:  # worker lost repeatedly, cancelled...
-            results = [lost_task_error(exc)] * len(batch)
-        fut.release()
-        yield from zip(batch, results)
+    finished = False
+    try:
+        for fut in as_completed(futures):
+            batch = by_key[fut.key]
+            try:
+                results = fut.result()
+            except Exception as exc:  # worker lost repeatedly, cancelled...
+                results = [lost_task_error(exc)] * len(batch)
+            fut.release()
+            yield from zip(batch, results)
+        finished = True
+    finally:
+        if not finished:  # the caller gave up (an error, Ctrl-C): the tasks nobody will record are cancelled
+            cancel_soon(futures)
 
 
 def _run_state_step(client: Any, record: CarryRecord, fn: Callable[..., dict[str, Any]],
