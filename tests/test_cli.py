@@ -287,6 +287,20 @@ def test_output_to_a_reader_that_went_away_ends_quietly(tmp_path: Path) -> None:
     assert p.wait(timeout=600) == 141 and "Traceback" not in err, err
 
 
+def test_plan_names_the_segments_no_block_layout_fits(tmp_path: Path) -> None:
+    # 0.5 s blocks at 100 Hz are 50 samples, shorter than the response check needs (the
+    # README's shortest block): the plan says so for each segment with work and exits 2,
+    # as the run would fail those segments.
+    cfg = mixed_archive(tmp_path)
+    cfg.write_text(cfg.read_text().replace("block_seconds = 30.0", "block_seconds = 0.5"))
+    r = _twinpass("plan", str(cfg))
+    assert r.returncode == 2, r.stdout + r.stderr
+    lines = [ln for ln in r.stdout.splitlines() if ln.startswith("cannot run segment ")]
+    assert len(lines) == 4 and all("block_seconds" in ln for ln in lines), r.stdout  # alpha x2, beta, gamma
+    r = _twinpass("plan", str(cfg), "--json")
+    assert r.returncode == 2 and len(json.loads(r.stdout)["problems"]) == 4
+
+
 def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)
     cfg.write_text(cfg.read_text().replace("[processing]", "[processing]\nblok_seconds = 3"))

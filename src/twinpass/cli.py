@@ -163,12 +163,29 @@ def cmd_plan(args: argparse.Namespace) -> int:
     except StoreError:
         store = None  # no store yet: everything is new
     prep = prepare(cfg, store if store is not None else _EmptyStore(), force=args.force)
+    problems = _layout_problems(prep)
     if args.json:
         print(json.dumps({"files": prep.plan.to_json(), "totals": prep.plan.totals(),
-                          "notes": list(prep.plan.notes)}, indent=2))
+                          "notes": list(prep.plan.notes), "problems": problems}, indent=2))
     else:
         print(format_plan(prep.plan))
-    return 0
+        for segment, message in problems.items():
+            print(f"cannot run segment {segment}: {message}")
+    return 2 if problems else 0
+
+
+def _layout_problems(prep: Any) -> dict[str, str]:
+    """Segments with work whose blocks no layout fits, by segment id: what to change."""
+    from .engine import segment_mode
+
+    problems = {}
+    for w in prep.work:
+        if w.has_work:
+            try:
+                segment_mode(w, prep.designs[w.sample_rate_hz], prep.cfg)
+            except ConfigError as e:
+                problems[w.segment_id] = str(e)
+    return problems
 
 
 class _EmptyStore:

@@ -1111,21 +1111,12 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     no halos) unless it has holes.
     """
     t0 = time.perf_counter()
-    if cfg.processing.mode != "halo" and not seg.holes:  # pieces between holes use halos
-        from .engine_carry import run_segment_carry, use_carry  # it imports this module
+    mode, layout = segment_mode(seg, design, cfg, carry_layout=False)
+    if mode == "carry":
+        from .engine_carry import run_segment_carry  # it imports this module
 
-        try:
-            layout = _layout(seg, design, cfg)
-        except ConfigError:
-            # No block with its halos fits the memory budget; carry mode needs no halos
-            # (and refuses an FIR design in mode "carry").
-            if design.is_fir and cfg.processing.mode == "auto":
-                raise
-            return run_segment_carry(seg, design, cfg, store, client, on_block=on_block, log_blocks=log_blocks)
-        if use_carry(design, segment_block_samples(seg, layout), cfg):
-            return run_segment_carry(seg, design, cfg, store, client, on_block=on_block, log_blocks=log_blocks)
-    else:
-        layout = _layout(seg, design, cfg)
+        return run_segment_carry(seg, design, cfg, store, client, on_block=on_block, log_blocks=log_blocks)
+    assert layout is not None
     edge_samples = segment_edge_samples(seg.frames, design, cfg)
     # Workers on this machine leave syncing their output to this thread, which waits on the
     # disk while they compute; workers elsewhere sync their own.
@@ -1147,6 +1138,42 @@ def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cl
     run_count = run_jobs(submitted, store, on_block=on_block, sync_before_record=sync_here,
                          segment_id=seg.segment_id, log_blocks=log_blocks)
     return finish_segment(seg, design, cfg, store, layout, edge_samples, spans_by_file, run_count, t0)
+
+
+def segment_mode(seg: SegmentWork, design: Design, cfg: JobConfig, *,
+                 carry_layout: bool = True) -> tuple[str, Layout | None]:
+    """How a segment runs: ``("halo", layout)`` or ``("carry", layout)``, as :func:`run_segment` decides.
+
+    ``[processing] mode = "carry"``, or ``"auto"`` with a halo longer than
+    ``carry_threshold`` blocks or with no block whose halos fit ``memory_budget_mib``, gives
+    carry mode (IIR designs, segments without holes: the pieces between holes use halos).
+    With ``carry_layout`` False the carry layout is not computed (None: carry mode computes
+    its own).
+
+    Raises
+    ------
+    ConfigError
+        No layout works for the segment (blocks too long for the memory budget, or too
+        short for the checks), or carry mode asked of an FIR design; the message names the
+        settings to change.
+    """
+    if cfg.processing.mode != "halo" and not seg.holes:
+        from .engine_carry import carry_layout as carry_blocks
+        from .engine_carry import use_carry  # it imports this module
+
+        try:
+            layout = _layout(seg, design, cfg)
+        except ConfigError:
+            # No block with its halos fits the memory budget; carry mode needs no halos
+            # (and refuses an FIR design in mode "carry").
+            if design.is_fir and cfg.processing.mode == "auto":
+                raise
+            use_carry(design, 1, cfg)  # an FIR design in mode "carry" is refused here
+            return "carry", carry_blocks(seg, cfg) if carry_layout else None
+        if use_carry(design, segment_block_samples(seg, layout), cfg):
+            return "carry", carry_blocks(seg, cfg) if carry_layout else None
+        return "halo", layout
+    return "halo", _layout(seg, design, cfg)
 
 
 class _MutableTable:
