@@ -286,6 +286,18 @@ def _coerce(where: str, value: Any, tp: Any) -> Any:
     return value
 
 
+def parse_response(table: Any, source: str) -> ResponseSpec:
+    """A ``[response]`` table (as ``ResponseSpec.to_dict()`` gives one) read with the same
+    key and type checks as a configuration file; ``source`` names where it came from.
+
+    Raises
+    ------
+    ConfigError
+        Naming ``source``, the table and the key.
+    """
+    return _section(source, "response", table, ResponseSpec)
+
+
 def _section(source: str, name: str, table: Any, cls: type) -> Any:
     if not isinstance(table, Mapping):
         raise ConfigError(f"{source}: [{name}] must be a table")

@@ -12,7 +12,7 @@ from typing import Any, cast
 
 import numpy as np
 
-from .config import JobConfig, _section
+from .config import JobConfig, parse_response
 from .core import checks as _checks
 from .core.design import design_filter, response_report
 from .core.types import Design, ResponseSpec
@@ -160,7 +160,7 @@ def _parse_spec(doc: Any) -> ResponseSpec | None:
     if not isinstance(doc, Mapping):
         return None
     try:
-        return cast(ResponseSpec, _section("the store's recorded specification", "response", doc, ResponseSpec))
+        return parse_response(doc, "the store's recorded specification")
     except TwinpassError:
         return None
 
