@@ -355,3 +355,30 @@ def test_output_chunk_files_lost_since_they_were_written_are_rewritten(tmp_path,
     res = run_job(cfg)
     assert res.ok and _blocks_run(res)[files.arrays[0]] == 2
     assert chunk_files(cfg.store_location) == before
+
+
+def test_a_file_rerun_after_a_block_length_change_is_seam_checked_against_its_neighbours_own_blocks(tmp_path):
+    # block_seconds applies to files written from then on (README): unchanged neighbours keep
+    # the blocks they were written in, and the seam checks of a file rerun under the new
+    # length compare with those blocks (here the rerun comes from a lost chunk file). Before,
+    # the neighbours were numbered with the new length and failed seams they did not have.
+    # Reference: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass.io.store import OutputStore
+    from twinpass.status import collect_status, shortfalls
+
+    frames = [4000, 4000, 4000]
+    x = make_signal(sum(frames), 1, FS, seed=21)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, frames)
+    cfg_path = write_config(tmp_path, processing={"block_seconds": 2.0})
+    assert run_job(load_config(cfg_path)).ok
+    cfg_path.write_text(cfg_path.read_text().replace("block_seconds = 2.0", "block_seconds = 6.0"))
+    cfg = load_config(cfg_path)
+    (Path(cfg.store_location) / files.arrays[1] / "c" / "2" / "0").unlink()
+    res = run_job(cfg)
+    assert res.ok and res.exit_status() == 0, res.failure_reasons()
+    assert _blocks_run(res)[files.arrays[0]] == 0 and _blocks_run(res)[files.arrays[2]] == 0
+    assert not shortfalls(collect_status(OutputStore.open(cfg.store_location, mode="r")))
+    g = open_store(cfg.store_location)
+    filt = g[files.arrays[0]].attrs["filter"]
+    y = np.concatenate(read_output(cfg.store_location, files.arrays))
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))

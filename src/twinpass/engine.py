@@ -656,10 +656,16 @@ def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any
     todo_by_file: dict[str, list[int]] = {}
     columns = list(_checks.FIGURES)
     for fw in seg.files:
+        if fw.action == "skip":
+            # An unchanged file keeps the blocks it was written in (a later block_seconds or
+            # chunk_seconds applies to files written from then on): the seam checks of its
+            # neighbours compare with those blocks.
+            old = _stored_table(store, fw.array_name)
+            spans_by_file[fw.array_name] = ([(int(a), int(b)) for a, b in old.span] if old is not None
+                                            else layout.spans(fw.frames))
+            continue
         spans = layout.spans(fw.frames)
         spans_by_file[fw.array_name] = spans
-        if fw.action == "skip":
-            continue
         attrs = file_attrs(seg, fw, design, cfg, layout, edge_samples)
         if mode is not None:
             attrs["blocks"]["mode"] = mode
