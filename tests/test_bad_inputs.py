@@ -236,6 +236,14 @@ def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
                   [REMEDY_EXCLUDE])}
 
 
+def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
+    # 400 frames at 1e-30 Hz would last 4e32 s: past year 9999, where Python's datetime ends.
+    rel = stem("sidecarrate") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 1e-30\n')
+    return {rel: (["400 frames at 1e-30 Hz", "would end after year 9999"], ["check the sample rate"])}
+
+
 def bad_nan_run_fail_policy(root: Path) -> Expect:
     rel = stem("nanfail") + ".wav"
     x = noise(1000, 2).astype(np.float32)
@@ -283,6 +291,7 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_raw_without_sidecar,
     bad_sidecar_frames_contradict_size,
     bad_sidecar_dtype_contradicts_size,
+    bad_sidecar_rate_far_too_low,
     bad_nan_run_fail_policy,
     bad_overlap,
     bad_hidden_output_name,

@@ -885,6 +885,22 @@ def _identify(
     return rel, None
 
 
+def _check_end_time(start: _dt.datetime | None, info: Any) -> None:
+    """:class:`_Bad` when the file's end (``start + frames / sample rate``) leaves the years
+    1 to 9999: a sample rate far too low for the file (its header, sidecar or
+    ``[archive] sample_rate_hz``)."""
+    rate, frames = info.sample_rate_hz, int(info.frames)
+    if start is None or not rate or rate <= 0:
+        return
+    try:
+        start + _dt.timedelta(seconds=frames / float(rate))
+    except OverflowError:
+        raise _Bad(
+            f"{frames} frames at {float(rate):g} Hz from {start.isoformat()} would end after year 9999",
+            "check the sample rate (the file's header or sidecar, or [archive] sample_rate_hz)",
+        ) from None
+
+
 def _split_duplicates(entries: list[FileEntry]) -> tuple[list[FileEntry], list[InvalidFile]]:
     """Keep the first file (by path) of each (stream, start time); report the others."""
     first: dict[tuple[str, _dt.datetime], str] = {}
@@ -1019,6 +1035,7 @@ def _examine_file(
         _output_name(rel)
         info, spec = _open_info(cfg, abspath)
         stream, start = _identify(cfg, rel, info, manifest, pattern)
+        _check_end_time(start, info)
         fp = None
         if fingerprints:
             try:
