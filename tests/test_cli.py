@@ -200,6 +200,8 @@ def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     assert {f["stream"] for f in st["files"]} == {"alpha", "beta", "gamma"}
     r = _twinpass("status", str(tmp_path / "out.zarr"))
     assert "stream alpha" in r.stdout and r.returncode == 0
+    r = _twinpass("status", str(tmp_path / "out.zarr" / "alpha"))  # a group inside the store
+    assert r.returncode == 2 and f"give the store itself: twinpass status {tmp_path / 'out.zarr'}" in r.stderr, r.stderr
     report = tmp_path / "twinpass-report.html"
     assert report.is_file()
     html = report.read_text()

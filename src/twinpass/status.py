@@ -12,6 +12,7 @@ from typing import Any
 from .config import load_config
 from .core import checks as _checks
 from .errors import StoreError
+from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
 
 
@@ -21,6 +22,12 @@ def open_target(target: str) -> tuple[OutputStore, str]:
     if p.is_file() and p.suffix.lower() == ".toml":
         cfg = load_config(p)
         return OutputStore.open(cfg.store_location, mode="r"), cfg.store_location
+    if "://" not in target and p.is_dir() and not (p / RESERVED).is_dir():
+        # A group inside a store reads like a store of its own, with no block tables: refuse it.
+        store_root = next((q for q in p.resolve().parents if (q / RESERVED).is_dir()), None)
+        if store_root is not None:
+            raise StoreError(f"{target} is a group inside the output store {store_root}, not a store; give the "
+                             f"store itself: twinpass status {store_root}")
     return OutputStore.open(target, mode="r"), target
 
 
