@@ -82,12 +82,6 @@ ARTIFACT_FILES = "twinpass-files"
 ARTIFACT_REPORT = "twinpass-report"
 
 _CLIENTS_LOCK = threading.Lock()
-# (client key, segment id) of segments whose files a first attempt has prepared in the
-# store (their block tables are current): a retry resumes them instead of starting over.
-_PREPARED: set[tuple[str, str]] = set()
-# Blocks run per output array by every attempt of a segment task, by (client key, segment
-# id): the run's summary counts them for a segment whose task failed, too.
-_RAN: dict[tuple[str, str], collections.Counter[str]] = {}
 
 
 @dataclasses.dataclass
@@ -106,6 +100,12 @@ class _RunCluster:
     stopping: bool = False
     drivers: int = 0
     left: threading.Condition = dataclasses.field(default_factory=lambda: threading.Condition(_CLIENTS_LOCK))
+    prepared: set[str] = dataclasses.field(default_factory=set)
+    """Segments whose files a first attempt has prepared in the store (their block tables are
+    current): a retry resumes them instead of starting over."""
+    ran: dict[str, collections.Counter[str]] = dataclasses.field(default_factory=dict)
+    """Blocks run per output array by every attempt of a segment's task, by segment id: the
+    run's summary counts them for a segment whose task failed or was retried, too."""
 
     def enter(self) -> bool:
         """Count a task in (call holding ``_CLIENTS_LOCK``); False when the run is stopping."""
@@ -212,9 +212,6 @@ def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterato
     finally:
         with _CLIENTS_LOCK:
             _RUNS.pop(key, None)
-            _PREPARED.difference_update({k for k in _PREPARED if k[0] == key})
-            for k in [k for k in _RAN if k[0] == key]:
-                del _RAN[k]
 
 
 def _as_resume(seg: SegmentWork) -> SegmentWork:
@@ -259,15 +256,14 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
     prepared the segment's files (and invalidated the blocks a neighbour's change reaches),
     their block tables are current, so a retry resumes every file instead of resetting it.
     """
-    mark = (client_key, seg.segment_id)
     with _CLIENTS_LOCK:
-        run, retry = _RUNS.get(client_key), mark in _PREPARED
-        entered = run is not None and run.enter()
-        ran = _RAN.setdefault(mark, collections.Counter())
-    if run is None or not entered:  # the flow body is stopping the run, or has closed its cluster
-        raise RunStoppedError.before_start(seg.segment_id)
+        run = _RUNS.get(client_key)
+        if run is None or not run.enter():  # the flow body is stopping the run, or has closed its cluster
+            raise RunStoppedError.before_start(seg.segment_id)
+        retry = seg.segment_id in run.prepared
+        ran = run.ran.setdefault(seg.segment_id, collections.Counter())
     try:
-        return _filter_segment(seg, prep, store, run, retry, mark, ran)
+        return _filter_segment(seg, prep, store, run, retry, ran)
     except RunStoppedError:
         raise
     except Exception as exc:
@@ -280,7 +276,7 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
 
 
 def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _RunCluster, retry: bool,
-                    mark: tuple[str, str], ran: collections.Counter[str]) -> list[FileOutcome]:
+                    ran: collections.Counter[str]) -> list[FileOutcome]:
     """The body of :func:`filter_segment` for a task counted in on the run's cluster."""
     logger = get_run_logger()
     cfg = prep.cfg
@@ -305,7 +301,7 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
         # Blocks are submitted only after every file of the segment is prepared.
         if done == 1:
             with _CLIENTS_LOCK:
-                _PREPARED.add(mark)
+                run.prepared.add(seg.segment_id)
         if terminal is not None:
             terminal(seg.segment_id, done, total, res)
         block_errors.block(res)
@@ -604,7 +600,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             secs = time.perf_counter() - t0
             state = fut.state
             with _CLIENTS_LOCK:
-                ran = dict(_RAN.get((key, w.segment_id), {}))
+                ran = dict(_RUNS[key].ran.get(w.segment_id, {}))
             if state.is_completed() and isinstance(value, list):
                 # Blocks run by every attempt: a retry's own outcomes count only its own.
                 outs = [dataclasses.replace(o, blocks_run=max(o.blocks_run, ran.get(o.array_name, 0)))
