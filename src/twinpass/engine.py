@@ -39,7 +39,7 @@ import uuid
 import traceback
 import weakref
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterator
+from typing import Any, Callable, Iterator, TypeVar
 
 import numpy as np
 
@@ -253,47 +253,64 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
     return x, y, seams, we - ws
 
 
-def run_block(job: BlockJob) -> BlockResult:
-    """Filter, check and write one block, retrying with backoff. Never raises for block errors.
+T = TypeVar("T")
 
-    An attempt that raises is retried ``job.retries`` times after the waits of
-    :func:`retry_delays`; the last error (type, message and, for errors that are not
-    twinpass's own, a short traceback) is returned with status ``ERROR``.
+
+def with_retries(work: Callable[[], T], retries: int, first_delay_s: float) -> tuple[T | None, str | None, int]:
+    """Run ``work``, retrying it ``retries`` times after the waits of :func:`retry_delays`.
+
+    Returns ``(result, None, attempts)``, or ``(None, error, attempts)`` when every attempt
+    raised: the last error's type and message and, for errors that are not twinpass's own,
+    a short traceback. A :class:`RunStoppedError` (another run holds the store) is not
+    retried: no retry could write. Never raises for an ``Exception``.
     """
-    t0 = time.perf_counter()
-    delays = retry_delays(job.retries, job.retry_backoff_seconds)
+    delays = retry_delays(retries, first_delay_s)
     last = ""
-    for attempt in range(job.retries + 1):
+    for attempt in range(retries + 1):
         try:
-            tamper = faults.apply(job.array_name, job.block_index)
-            x, y, seams, wlen = _filter_block(job, tamper)
-            keep = ~hole_mask(job.core[0], job.core[1], job.holes) if job.holes else None
-            if keep is None or keep.all():
-                figs = _checks.block_figures(
-                    x, y, job.design, job.checks_cfg, out_dtype=job.out_dtype, response=job.check_response
-                )
-            else:  # levels and integrity outside the holes; no response estimate across pieces
-                figs = _checks.block_figures(x[keep], y[keep], job.design, job.checks_cfg,
-                                             out_dtype=job.out_dtype, response=False)
-            status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
-            if job.write:
-                from .io.store import write_block_data
-
-                write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
-                                 y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
-            return BlockResult(job.array_name, job.block_index, status, figs, seams, None,
-                               attempt + 1, time.perf_counter() - t0, wlen)
+            return work(), None, attempt + 1
         except Exception as exc:  # a block failure must never stop the others
             last = f"{type(exc).__name__}: {exc}"
             if not isinstance(exc, TwinpassError):
                 last += "\n" + traceback.format_exc(limit=4)
-            if isinstance(exc, RunStoppedError):  # another run holds the store: no retry can write
-                return BlockResult(job.array_name, job.block_index, ERROR, None, None, last, attempt + 1,
-                                   time.perf_counter() - t0, 0)
-            if attempt < job.retries:
+            if isinstance(exc, RunStoppedError):
+                return None, last, attempt + 1
+            if attempt < retries:
                 time.sleep(delays[attempt])
-    return BlockResult(job.array_name, job.block_index, ERROR, None, None, last,
-                       job.retries + 1, time.perf_counter() - t0, 0)
+    return None, last, retries + 1
+
+
+def run_block(job: BlockJob) -> BlockResult:
+    """Filter, check and write one block, retrying with backoff (:func:`with_retries`).
+    Never raises for block errors: the last error is returned with status ``ERROR``."""
+    t0 = time.perf_counter()
+
+    def attempt() -> tuple[int, np.ndarray, np.ndarray, int]:
+        tamper = faults.apply(job.array_name, job.block_index)
+        x, y, seams, wlen = _filter_block(job, tamper)
+        keep = ~hole_mask(job.core[0], job.core[1], job.holes) if job.holes else None
+        if keep is None or keep.all():
+            figs = _checks.block_figures(
+                x, y, job.design, job.checks_cfg, out_dtype=job.out_dtype, response=job.check_response
+            )
+        else:  # levels and integrity outside the holes; no response estimate across pieces
+            figs = _checks.block_figures(x[keep], y[keep], job.design, job.checks_cfg,
+                                         out_dtype=job.out_dtype, response=False)
+        status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
+        if job.write:
+            from .io.store import write_block_data
+
+            write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
+                             y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
+        return status, figs, seams, wlen
+
+    out, err, attempts = with_retries(attempt, job.retries, job.retry_backoff_seconds)
+    if out is None:
+        return BlockResult(job.array_name, job.block_index, ERROR, None, None, err, attempts,
+                           time.perf_counter() - t0, 0)
+    status, figs, seams, wlen = out
+    return BlockResult(job.array_name, job.block_index, status, figs, seams, None, attempts,
+                       time.perf_counter() - t0, wlen)
 
 
 # ----------------------------------------------------------------------- clients

@@ -83,7 +83,6 @@ import re
 import threading
 import time
 import uuid
-import traceback
 import zlib
 import dataclasses
 from dataclasses import dataclass
@@ -115,8 +114,9 @@ from .engine import (
     read_segment_window,
     record_result,
     segment_edge_samples,
+    with_retries,
 )
-from .errors import ConfigError, KernelError, RunStoppedError, TwinpassError
+from .errors import ConfigError, KernelError
 from .io.store import array_metadata, write_rows
 from .io.store_util import RESERVED_PREFIX, json_safe, local_path
 
@@ -347,20 +347,9 @@ def _fault_flags(job: PieceJob) -> set[str]:
 
 
 def _with_retries(job: PieceJob, work: Callable[[], T]) -> tuple[T | None, str | None, int]:
-    """Run ``work`` with ``job.retries`` extra attempts and doubling backoff; never raises."""
-    last = ""
-    for attempt in range(job.retries + 1):
-        try:
-            return work(), None, attempt + 1
-        except Exception as exc:  # a piece failure must never stop the others
-            last = f"{type(exc).__name__}: {exc}"
-            if not isinstance(exc, TwinpassError):
-                last += "\n" + traceback.format_exc(limit=4)
-            if isinstance(exc, RunStoppedError):  # another run holds the store: no retry can write
-                return None, last, attempt + 1
-            if attempt < job.retries:
-                time.sleep(job.retry_backoff_seconds * 2**attempt)
-    return None, last, job.retries + 1
+    """Run ``work`` with ``job.retries`` extra attempts and doubling backoff; never raises
+    (:func:`twinpass.engine.with_retries`)."""
+    return with_retries(work, job.retries, job.retry_backoff_seconds)
 
 
 def _zero_state_final(sos: np.ndarray, u: np.ndarray) -> np.ndarray:
