@@ -556,12 +556,9 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                     outcomes.extend(done)
         except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
             if begun:
-                finish_interrupted_run(store, RunResult(run_id, started, now_iso(), outcomes, prep.invalid,
-                                                        prep.designs, list(prep.plan.removed),
-                                                        list(prep.plan.notes)), cfg)
+                finish_interrupted_run(store, RunResult.ending_now(run_id, started, prep, outcomes), cfg)
             raise
-        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
-                           list(prep.plan.notes))
+        result = RunResult.ending_now(run_id, started, prep, outcomes)
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
     report_path = None
     if report:

@@ -309,10 +309,7 @@ def withdraw() -> None:
             log.warning("no flow run took over run %s; stopping it: its unfinished blocks are recorded as not "
                         "done, and the next run of the same configuration finishes them", head.run_id)
         head.close()  # the drivers have ended: the run is recorded as interrupted, then the lock released
-        prep = head.prep
-        finish_interrupted_run(head.store, RunResult(head.run_id, head.started, now_iso(), [], prep.invalid,
-                                                     prep.designs, list(prep.plan.removed), list(prep.plan.notes)),
-                               head.cfg)
+        finish_interrupted_run(head.store, RunResult.ending_now(head.run_id, head.started, head.prep, []), head.cfg)
         head.release()
 
 

@@ -157,6 +157,12 @@ class RunResult:
     """The run was stopped (Ctrl-C) before its end: ``outcomes`` holds the segments that had
     finished; the others' finished blocks are kept, and the next run does the rest."""
 
+    @classmethod
+    def ending_now(cls, run_id: str, started: str, prep: Prepared, outcomes: list[FileOutcome]) -> RunResult:
+        """The result of the run ``run_id`` of ``prep`` ending now with ``outcomes``."""
+        return cls(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
+                   list(prep.plan.notes))
+
     @property
     def failed(self) -> list[str]:
         return [o.relpath for o in self.outcomes if o.status == "failed"]
@@ -292,11 +298,9 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         try:
             _run_busy(busy, prep, cfg, store, outcomes, scheduler, workers, on_block, say)
         except BaseException:  # Ctrl-C: the run is recorded as interrupted, then the interrupt goes on
-            finish_interrupted_run(store, RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs,
-                                                    list(prep.plan.removed), list(prep.plan.notes)), cfg)
+            finish_interrupted_run(store, RunResult.ending_now(run_id, started, prep, outcomes), cfg)
             raise
-        result = RunResult(run_id, started, now_iso(), outcomes, prep.invalid, prep.designs, list(prep.plan.removed),
-                           list(prep.plan.notes))
+        result = RunResult.ending_now(run_id, started, prep, outcomes)
         finish_run(store, result, cfg)
     return result
 
