@@ -13,6 +13,7 @@ References:
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import hashlib
 import os
@@ -124,6 +125,19 @@ def test_pattern_fields():
     for bad in ("{station}_{start:%Y}", "{start:%Y%Q}", "{stream", "{start:%Y}{start:%m}"):
         with pytest.raises(ConfigError, match="name_pattern"):
             NamePattern(bad)
+
+
+@pytest.mark.parametrize("archive, names", [
+    ({"name_pattern": "{stream}/{start:%Q}"}, "[archive] name_pattern"),
+    ({"include": ("/",)}, "[archive] glob pattern"),
+    ({"include": ("**/*.npy",), "exclude": ("./",)}, "[archive] glob pattern"),
+])
+def test_malformed_patterns_name_the_configuration_file(tmp_path, archive, names):
+    npy(tmp_path / "archive", "s/a.npy", 100)
+    cfg = dataclasses.replace(job(tmp_path, **archive), source=str(tmp_path / "job.toml"))
+    with pytest.raises(ConfigError) as e:
+        discover(cfg)
+    assert str(e.value).startswith(f"{tmp_path / 'job.toml'}: {names}")
 
 
 def test_pattern_without_stream_uses_parent_folder(tmp_path):

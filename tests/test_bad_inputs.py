@@ -494,7 +494,8 @@ _BASE = '[response]\nkind = "lowpass"\npassband_hz = [10.0]\nstopband_hz = [20.0
         ("[processing]\nmax_fill_samples = \"ten\"\n", ["[processing] max_fill_samples", "whole number", "'ten'"]),
         ("[processing]\nmax_fill_samples = 2.5\n", ["[processing] max_fill_samples", "whole number"]),
         ("[processing]\nnonfinite = \"zero\"\n", ["[processing] nonfinite = 'zero'", "fail, split, interpolate"]),
-        ("[archive]\ninclude = \"*.wav\"\n", ["[archive] include", "expected a list"]),
+        ("[archive]\ninclude = 3\n", ["[archive] include", "expected a list", "3"]),
+        ("[archive]\nexclude = [\"a\", 1]\n", ["[archive] exclude[1]", "expected a string"]),
         ("[engine]\nworkers = 0\n", ["[engine] workers must be >= 1"]),
         ("[processing]\ntolerance = 0.5\n", ["[processing] tolerance", "(0, 0.1)"]),
         ("[processing\n", ["not valid TOML"]),
@@ -507,6 +508,25 @@ def test_config_errors_name_table_and_key(extra, expected):
     assert msg.startswith("job.toml: ") and "\n" not in msg
     for text in expected:
         assert text in msg
+
+
+@pytest.mark.parametrize("one, listed", [
+    ('[response]\nkind = "lowpass"\norder = 4\ncutoff_hz = 10.0\n',
+     '[response]\nkind = "lowpass"\norder = 4\ncutoff_hz = [10.0]\n'),
+    (_BASE.replace("[10.0]", "10.0").replace("[20.0]", "20"), _BASE),
+    (_BASE + '[archive]\ninclude = "**/*.wav"\n', _BASE + '[archive]\ninclude = ["**/*.wav"]\n'),
+])
+def test_config_single_value_is_a_list_of_one(one, listed):
+    """A single band edge (``cutoff_hz = 10.0`` for a low-pass) or a single glob reads as the
+    list of one it means, with the same settings digest (no rerun for the spelling)."""
+    a, b = parse_config(one, source="job.toml"), parse_config(listed, source="job.toml")
+    assert a.to_dict() == b.to_dict() and a.digest() == b.digest()
+
+
+def test_config_single_edge_for_a_band_names_the_two_edges():
+    text = _BASE.replace('kind = "lowpass"', 'kind = "bandpass"').replace("[10.0]", "10.0")
+    with pytest.raises(ConfigError, match=r"job.toml: \[response\] passband_hz.*needs 2"):
+        parse_config(text, source="job.toml")
 
 
 def test_config_error_for_inconsistent_response():

@@ -260,12 +260,21 @@ def _coerce(where: str, value: Any, tp: Any) -> Any:
                 return _coerce(where, value, a)
             except ConfigError as e:
                 errors.append(str(e))
+        if len(errors) == 1:  # one type besides None: its own message says what is expected
+            raise ConfigError(errors[0])
         names = " or ".join(_type_name(a) for a in args if a is not type(None))
         raise ConfigError(f"{where}: expected {names}, got {value!r}")
     if origin is tuple:
-        if not isinstance(value, (list, tuple)):
-            raise ConfigError(f"{where}: expected a list, got {value!r}")
         elem = args[0] if args else Any
+        if not isinstance(value, (list, tuple)):
+            # One value where a list is expected is a list of one (``cutoff_hz = 10.0`` for a
+            # low-pass, ``include = "**/*.wav"``); anything else is named with the list form.
+            if elem is not Any and len(args) == 2 and args[1] is Ellipsis:
+                try:
+                    return (_coerce(where, value, elem),)
+                except ConfigError:
+                    pass
+            raise ConfigError(f"{where}: expected a list, got {value!r}")
         return tuple(_coerce(f"{where}[{i}]", v, elem) for i, v in enumerate(value))
     if tp is float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):

@@ -119,7 +119,7 @@ from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path, PurePosixPath
-from typing import Any, NamedTuple
+from typing import Any, Callable, NamedTuple, TypeVar
 
 from twinpass.config import JobConfig
 from twinpass.core.nonfinite import (
@@ -137,6 +137,8 @@ from twinpass.io.readers._common import TRUNCATED_HINT, WRAPPED_HINT, WRAPPED_RE
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
+
+_T = TypeVar("_T")
 
 __all__ = [
     "Discovery",
@@ -309,6 +311,14 @@ class ArchiveListing(NamedTuple):
     ``**/*.wav``), sorted: not selected, and worth a note."""
 
 
+def _from_config(cfg: JobConfig, compile_setting: Callable[[str], _T], setting: str) -> _T:
+    """``compile_setting(setting)``; a :class:`ConfigError` names the configuration file first."""
+    try:
+        return compile_setting(setting)
+    except ConfigError as e:
+        raise ConfigError(f"{cfg.source}: {e}") from None
+
+
 def walk_archive(cfg: JobConfig) -> ArchiveListing:
     """The candidate input files of ``cfg``'s archive (relative POSIX paths, sorted), the
     paths matching the globs that cannot be taken as input, each with the reason, and the
@@ -332,8 +342,8 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
             "point it at the folder holding the recordings",
             path=str(root),
         )
-    include = [compile_glob(p) for p in cfg.archive.include]
-    exclude = [compile_glob(p) for p in cfg.archive.exclude]
+    include = [_from_config(cfg, compile_glob, p) for p in cfg.archive.include]
+    exclude = [_from_config(cfg, compile_glob, p) for p in cfg.archive.exclude]
     include_any_case = [re.compile(rx.pattern, rx.flags | re.IGNORECASE) for rx in include]
     store = cfg.store_location
     fenced = [] if "://" in store else [os.path.realpath(store)]
@@ -1101,7 +1111,7 @@ def discover(
         The name pattern or a glob pattern is malformed.
     """
     root = cfg.archive_root
-    pattern = NamePattern(cfg.archive.name_pattern) if cfg.archive.name_pattern else None
+    pattern = _from_config(cfg, NamePattern, cfg.archive.name_pattern) if cfg.archive.name_pattern else None
     manifest: dict[str, _Row] | None = None
     invalid: list[InvalidFile] = []
     if cfg.manifest_path is not None:
