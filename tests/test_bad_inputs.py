@@ -576,11 +576,12 @@ def test_config_refuses_nan_and_infinite_numbers(table, key, value):
 
 
 # Valid ranges as the settings' docstrings in twinpass.config and README "Checks, status and
-# report" state them: seam_samples >= 0 (0 = seam check off), coherence_min in [0, 1], the
+# report" state them: seam_samples in [0, 4096] (0 = seam check off), coherence_min in [0, 1], the
 # passband and phase thresholds >= 0 with warn <= fail (grade() warns above the first and fails
 # above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0.
 OUT_OF_RANGE = [
     ("checks", "seam_samples = -3", "seam_samples = -3", "0 turns the seam check off"),
+    ("checks", "seam_samples = 4097", "seam_samples = 4097", "[0, 4096]"),
     ("checks", "coherence_min = 2.0", "coherence_min = 2.0", "[0, 1]"),
     ("checks", "coherence_min = -0.1", "coherence_min = -0.1", "[0, 1]"),
     ("checks", "passband_fail_db = -1.0", "passband_fail_db = -1.0", ">= 0"),
@@ -593,7 +594,7 @@ OUT_OF_RANGE = [
     ("flow", "retries = -1", "retries = -1", ">= 0"),
     ("flow", "retry_delay_seconds = -5.0", "retry_delay_seconds = -5.0", ">= 0"),
     ("engine", "retry_backoff_seconds = -0.5", "retry_backoff_seconds = -0.5", ">= 0"),
-    ("processing", "carry_threshold = 0.0", "carry_threshold = 0.0", "> 0"),
+    ("processing", "carry_threshold = 0.0", "carry_threshold = 0.0", 'set mode = "carry" or "halo"'),
     ("processing", "carry_threshold = -1.0", "carry_threshold = -1.0", "> 0"),
     ("archive", "sample_rate_hz = 0.0", "sample_rate_hz = 0.0", "> 0"),
 ]
@@ -609,6 +610,7 @@ def test_config_refuses_values_out_of_their_documented_range(table, lines, named
 
 @pytest.mark.parametrize("table, lines", [
     ("checks", "seam_samples = 0"),
+    ("checks", "seam_samples = 4096"),
     ("checks", "coherence_min = 0.0"),
     ("checks", "coherence_min = 1.0"),
     ("checks", "passband_warn_db = 0.0\npassband_fail_db = 0.0"),

@@ -125,6 +125,12 @@ class EngineConfig:
     """First retry delay (seconds, >= 0); doubles on each further attempt."""
 
 
+MAX_SEAM_SAMPLES = 4096
+"""Largest ``[checks] seam_samples``: each block keeps four seam tables of this many samples
+per channel (float64) until its neighbours are compared, outside the memory budget; a seam
+mismatch shows within a few samples of the edge."""
+
+
 @dataclass(frozen=True)
 class ChecksConfig:
     """Per-block checks and their thresholds."""
@@ -133,8 +139,8 @@ class ChecksConfig:
     """Run the response checks on every Nth block (1 = all, 0 = off). Integrity checks
     always run, and seam checks unless ``seam_samples = 0``."""
     seam_samples: int = 8
-    """Samples (>= 0) computed beyond each block edge and compared with the neighbour; 0
-    turns the seam check off."""
+    """Samples (0 to :data:`MAX_SEAM_SAMPLES`) computed beyond each block edge and compared
+    with the neighbour; 0 turns the seam check off."""
     passband_warn_db: float = 0.5
     """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that
     warns; at most ``passband_fail_db``."""
@@ -358,7 +364,8 @@ def _check_ranges(cfg: JobConfig) -> None:
     src, c, fl = cfg.source, cfg.checks, cfg.flow
     _require(src, "processing", "carry_threshold", cfg.processing.carry_threshold,
              cfg.processing.carry_threshold > 0, "must be > 0 (halo length / block length above which "
-             "mode = \"auto\" carries filter states), e.g. 1.0")
+             "mode = \"auto\" carries filter states), e.g. 1.0; to carry always or never, set "
+             "mode = \"carry\" or \"halo\" instead")
     rate = cfg.archive.sample_rate_hz
     _require(src, "archive", "sample_rate_hz", rate, rate is None or rate > 0,
              "must be > 0 (Hz), the sample rate of the recordings that store none")
@@ -367,8 +374,9 @@ def _check_ranges(cfg: JobConfig) -> None:
     _require(src, "flow", "retries", fl.retries, fl.retries >= 0, "must be >= 0 (0 = no retries of a segment)")
     _require(src, "flow", "retry_delay_seconds", fl.retry_delay_seconds, fl.retry_delay_seconds >= 0,
              "must be >= 0 (seconds before the first retry of a segment)")
-    _require(src, "checks", "seam_samples", c.seam_samples, c.seam_samples >= 0,
-             "must be >= 0 (samples compared beyond each block edge; 0 turns the seam check off)")
+    _require(src, "checks", "seam_samples", c.seam_samples, 0 <= c.seam_samples <= MAX_SEAM_SAMPLES,
+             f"must be in [0, {MAX_SEAM_SAMPLES}] (samples compared beyond each block edge; 0 turns the seam "
+             "check off), e.g. 8")
     _require(src, "checks", "coherence_min", c.coherence_min, 0.0 <= c.coherence_min <= 1.0,
              "must be in [0, 1] (a coherence), e.g. 0.9")
     _require(src, "checks", "stopband_margin_db", c.stopband_margin_db, c.stopband_margin_db >= 0,
