@@ -22,6 +22,7 @@ import pytest
 
 from twinpass.core.blocks import (
     BYTES_PER_WINDOW_SAMPLE,
+    CHUNK_FLOOR_SAMPLES,
     HALOS_PER_BLOCK,
     MIN_BLOCK_SAMPLES,
     Layout,
@@ -207,6 +208,27 @@ def test_blocks_set_by_hand_below_the_shortest_block_are_refused_with_the_shorte
     assert choose_layout(block_seconds=shortest, **kw).block_samples == floor
     with pytest.raises(ConfigError):
         choose_layout(block_seconds=(floor - 1) / rate, **kw)
+
+
+@pytest.mark.parametrize("rate", [100.0, 44_100.0])
+@pytest.mark.parametrize("chunk_seconds", [1e-5, 0.001, 0.25])
+@pytest.mark.parametrize("block_seconds", [None, 60.0])
+def test_chunks_below_the_shortest_chunk_are_refused_with_the_shortest_that_works(rate, chunk_seconds, block_seconds):
+    kw = dict(sample_rate_hz=rate, channels=2, halo=100, block_seconds=block_seconds, memory_budget_mib=256.0,
+              source="job.toml")
+    chunk = max(1, round(chunk_seconds * rate))
+    if chunk >= CHUNK_FLOOR_SAMPLES:
+        assert choose_layout(chunk_seconds=chunk_seconds, **kw).chunk_samples == chunk
+        return
+    with pytest.raises(ConfigError) as err:
+        choose_layout(chunk_seconds=chunk_seconds, **kw)
+    message = str(err.value)
+    assert message.startswith(f"job.toml: [output] chunk_seconds = {chunk_seconds:g} makes chunks of {chunk} "
+                              "samples"), message
+    shortest = float(re.search(r"set chunk_seconds to at least ([0-9.e+-]+) s", message)[1])
+    assert choose_layout(chunk_seconds=shortest, **kw).chunk_samples >= CHUNK_FLOOR_SAMPLES
+    with pytest.raises(ConfigError):
+        choose_layout(chunk_seconds=(CHUNK_FLOOR_SAMPLES - 1) / rate, **kw)
 
 
 @pytest.mark.parametrize("budget", [0.001, 0.01])

@@ -17,6 +17,9 @@ MIN_BLOCK_SAMPLES = 65536
 BLOCK_FLOOR_SAMPLES = 64
 """No layout has block cores shorter than this (samples): each block costs a task, a table
 row and chunk files, so shorter blocks make a run that never ends rather than a copy."""
+CHUNK_FLOOR_SAMPLES = BLOCK_FLOOR_SAMPLES
+"""No ``[output] chunk_seconds`` makes chunks shorter than this (samples): every chunk is a
+file of the store, so a hundredth of a sample per chunk second would mean millions of files."""
 HALOS_PER_BLOCK = 24
 """Automatic blocks are at least this many halos long where the memory budget allows it:
 halo overhead 2/24 (8.3 %) or less,
@@ -145,7 +148,8 @@ def choose_layout(
         No block fits the memory budget: ``block_seconds`` asks for blocks whose window does
         not fit, one chunk of ``chunk_seconds`` with its halos does not fit, the halos alone
         do not fit, or not even a block of :func:`shortest_block` samples fits. Or
-        ``block_seconds`` asks for blocks shorter than :func:`shortest_block` at this rate.
+        ``block_seconds`` asks for blocks shorter than :func:`shortest_block` at this rate,
+        or ``chunk_seconds`` for chunks shorter than :data:`CHUNK_FLOOR_SAMPLES`.
     """
     budget = memory_budget_mib * 2**20
     per_sample = channels * BYTES_PER_WINDOW_SAMPLE  # bytes per window sample, all channels
@@ -183,6 +187,13 @@ def choose_layout(
             + (f" or {CARRY_REMEDY}" if carry and halo else "") + remedy
         )
 
+    if chunk is not None and chunk < CHUNK_FLOOR_SAMPLES:
+        raise ConfigError(
+            f"{at}[output] chunk_seconds = {chunk_seconds:g} makes chunks of {chunk} samples at {sample_rate_hz:g} "
+            f"Hz, below the shortest chunk of {CHUNK_FLOOR_SAMPLES} samples (each chunk is a file of its own): "
+            f"set chunk_seconds to at least {_rounded(CHUNK_FLOOR_SAMPLES / sample_rate_hz)} s, or leave it out "
+            "for one chunk per block"
+        )
     if block_seconds is not None:
         block = max(1, int(round(block_seconds * sample_rate_hz)))
         if block < floor:
