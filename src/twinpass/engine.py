@@ -554,19 +554,27 @@ class FileOutcome:
     summary: dict[str, Any] = field(default_factory=dict)
 
 
-def _layout(seg: SegmentWork, design: Design, cfg: JobConfig) -> Layout:
+def segment_layout(seg: SegmentWork, cfg: JobConfig, halo: int, carry: bool = True) -> Layout:
+    """The block layout of ``seg`` under ``cfg`` with halos of ``halo`` samples (0 in carry
+    mode); ``carry`` says whether carry mode could filter the segment instead (for the error
+    when no halo-mode block fits). See :func:`~twinpass.core.blocks.choose_layout`."""
     return choose_layout(
         sample_rate_hz=seg.sample_rate_hz,
         channels=seg.channels,
-        halo=design.effective_length,
+        halo=halo,
         block_seconds=cfg.processing.block_seconds,
         chunk_seconds=cfg.output.chunk_seconds,
         memory_budget_mib=cfg.processing.memory_budget_mib,
-        carry=not design.is_fir and not seg.holes,  # pieces between holes always use halos
+        carry=carry,
         seam_samples=cfg.checks.seam_samples,
         response_checks=cfg.checks.every > 0,
         source=cfg.source,
     )
+
+
+def _layout(seg: SegmentWork, design: Design, cfg: JobConfig) -> Layout:
+    """The halo-mode layout of ``seg`` (pieces between holes always use halos)."""
+    return segment_layout(seg, cfg, design.effective_length, carry=not design.is_fir and not seg.holes)
 
 
 def segment_block_samples(seg: SegmentWork, layout: Layout) -> int:

@@ -94,7 +94,7 @@ from scipy import signal
 from . import faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
-from .core.blocks import Layout, choose_layout
+from .core.blocks import Layout
 from .core.carry import carry_states, steady_state, transition_matrix
 from .core.checks import was_cancelled
 from .core.types import Design
@@ -114,6 +114,7 @@ from .engine import (
     read_segment_window,
     record_result,
     segment_edge_samples,
+    segment_layout,
     with_retries,
 )
 from .errors import ConfigError, KernelError
@@ -195,18 +196,8 @@ def use_carry(design: Design, halo_block_samples: int, cfg: JobConfig) -> bool:
 
 
 def carry_layout(seg: SegmentWork, cfg: JobConfig) -> Layout:
-    """The block layout of carry mode: :func:`~twinpass.core.blocks.choose_layout` with no halo."""
-    return choose_layout(
-        sample_rate_hz=seg.sample_rate_hz,
-        channels=seg.channels,
-        halo=0,
-        block_seconds=cfg.processing.block_seconds,
-        chunk_seconds=cfg.output.chunk_seconds,
-        memory_budget_mib=cfg.processing.memory_budget_mib,
-        seam_samples=cfg.checks.seam_samples,
-        response_checks=cfg.checks.every > 0,
-        source=cfg.source,
-    )
+    """The block layout of carry mode: :func:`~twinpass.engine.segment_layout` with no halo."""
+    return segment_layout(seg, cfg, halo=0)
 
 
 # ----------------------------------------------------------------------------- pieces
