@@ -112,6 +112,7 @@ from __future__ import annotations
 
 import csv
 import datetime as _dt
+import functools
 import os
 import re
 import math
@@ -1001,6 +1002,31 @@ def _examine_threads(n_files: int) -> int:
     return max(1, min(_EXAMINE_THREADS, os.cpu_count() or 1, n_files))
 
 
+_Examined = tuple[FileEntry | InvalidFile, list[str], dict[str, Any] | None, bool]
+
+
+def _contained(examine: Callable[..., _Examined]) -> Callable[..., _Examined]:
+    """``examine(cfg, root, rel, ...)`` with its unforeseen exceptions turned into the file's
+    :class:`InvalidFile`: one file's failure must not stop discovery of the others."""
+
+    @functools.wraps(examine)
+    def contained(cfg: JobConfig, root: Path, rel: str, *rest: Any) -> _Examined:
+        try:
+            return examine(cfg, root, rel, *rest)
+        except Exception as e:
+            return (
+                InvalidFile(
+                    rel,
+                    f"examining it failed unexpectedly: {type(e).__name__}: {_strip_path(str(e), str(root / rel))}",
+                    f"{_REMEDY_EXCLUDE}; please report this error to the twinpass developers",
+                ),
+                [], None, False,
+            )
+
+    return contained
+
+
+@_contained
 def _examine(
     cfg: JobConfig,
     root: Path,
@@ -1009,36 +1035,13 @@ def _examine(
     pattern: NamePattern | None,
     fingerprints: bool,
     cache: Mapping[str, Mapping[str, Any]],
-) -> tuple[FileEntry | InvalidFile, list[str], dict[str, Any] | None, bool]:
+) -> _Examined:
     """Open, identify, fingerprint and (float files) scan one input file.
 
     Returns the file's entry (or the :class:`InvalidFile` that says why it is refused), its
     warnings, its scan cache entry (or ``None``) and whether it was read for the scan.
     """
     abspath = str(root / rel)
-    try:
-        return _examine_file(cfg, abspath, rel, manifest, pattern, fingerprints, cache)
-    except Exception as e:  # one file's unforeseen failure must not stop discovery of the others
-        return (
-            InvalidFile(
-                rel,
-                f"examining it failed unexpectedly: {type(e).__name__}: {_strip_path(str(e), abspath)}",
-                f"{_REMEDY_EXCLUDE}; please report this error to the twinpass developers",
-            ),
-            [], None, False,
-        )
-
-
-def _examine_file(
-    cfg: JobConfig,
-    abspath: str,
-    rel: str,
-    manifest: dict[str, _Row] | None,
-    pattern: NamePattern | None,
-    fingerprints: bool,
-    cache: Mapping[str, Mapping[str, Any]],
-) -> tuple[FileEntry | InvalidFile, list[str], dict[str, Any] | None, bool]:
-    """:func:`_examine` but for unforeseen exceptions, which propagate."""
     scan_entry = None
     was_scanned = False
     try:
