@@ -9,6 +9,7 @@ reference library), and a rerun after a failure must write the same bytes.
 from __future__ import annotations
 
 import dataclasses
+import datetime as dt
 import json
 import math
 import shutil
@@ -140,6 +141,35 @@ def test_carry_mode_equals_whole_segment_two_pass(tmp_path, client, response, ed
         assert set(np.asarray(table.status).tolist()) <= {1, 2}
         seam = table.figures[..., FIGURE_INDEX["seam_mismatch"]]
         assert np.isfinite(seam).all()
+        assert seam.max() <= SEAM_FACTOR * filt["tolerance"]
+
+
+def test_carry_pieces_no_longer_than_the_seam_samples_inside_a_segment(tmp_path, client):
+    """A 1-sample last block of a file, and files of 1, 3 and 8 samples (at most [checks]
+    seam_samples = 8) between longer ones: the seam state of such a piece is its carried
+    start state. Reference: scipy.signal.sosfiltfilt on the whole segment."""
+    lengths = [2001, 1, 3, 8, 900]
+    x = make_signal(sum(lengths), 2, FS, seed=7)
+    (tmp_path / "archive" / "deck").mkdir(parents=True)
+    rows, offset, arrays = ["path,stream,start_time"], 0, []
+    for i, n in enumerate(lengths):  # contiguous files whose starts are not whole seconds: a manifest
+        np.save(tmp_path / "archive" / "deck" / f"deck_{i}.npy", x[offset: offset + n])
+        start = dt.datetime(2024, 5, 1, tzinfo=dt.timezone.utc) + dt.timedelta(seconds=offset / FS)
+        rows.append(f"deck/deck_{i}.npy,deck,{start.isoformat()}")
+        arrays.append(f"deck/deck_{i}")
+        offset += n
+    (tmp_path / "archive" / "manifest.csv").write_text("\n".join(rows) + "\n")
+    write_config(tmp_path, processing={"block_seconds": 5.0, "mode": "carry"},  # blocks of 1000 samples
+                 archive={"manifest": "archive/manifest.csv"})
+    outcomes, store = _run(tmp_path, client)
+    assert [o.status for o in outcomes] == ["complete"] * len(lengths), [(o.relpath, o.errors) for o in outcomes]
+    out = OutputStore.open(str(store), mode="r")
+    filt = out.array_attrs(arrays[0])["filter"]
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype="odd", padlen=int(filt["edge_samples"]))
+    y = np.concatenate(read_output(store, arrays))
+    assert np.abs(y - ref).max() <= filt["tolerance"] * np.abs(x).max()
+    for a in arrays:  # the seams across the short pieces were compared, and agree
+        seam = out.read_block_table(a).figures[..., FIGURE_INDEX["seam_mismatch"]]
         assert seam.max() <= SEAM_FACTOR * filt["tolerance"]
 
 

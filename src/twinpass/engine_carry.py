@@ -305,7 +305,10 @@ def _pass(sos: np.ndarray, u: np.ndarray, state: np.ndarray) -> tuple[np.ndarray
     """One forward pass over channel-major ``u`` (channels, samples) from ``state``.
 
     Returns the output (channels, samples) and the final state (n_sections, 2, channels).
+    No samples leave the state as it is (``sosfilt`` refuses an empty input with a state).
     """
+    if u.shape[1] == 0:
+        return np.empty(u.shape, dtype=np.result_type(u, state, np.float64)), np.array(state, dtype=np.float64)
     y, zf = signal.sosfilt(sos, u, axis=-1, zi=_to_cm(state))
     return y, np.ascontiguousarray(np.moveaxis(zf, 1, 2))
 
