@@ -226,6 +226,24 @@ def test_butterworth_twice_is_half_at_per_pass_cutoff() -> None:
         assert abs(h[0]) ** 2 == pytest.approx(0.5, abs=1e-12)
 
 
+@pytest.mark.parametrize("family, per_pass_db, within_db", [
+    ("butterworth", -3.0103, 0.01),  # scipy.signal.butter: -3 dB (half power) at Wn
+    ("chebyshev1", -1.0, 0.01),      # scipy.signal.cheby1: Wn is where the gain first drops below -rp
+    ("elliptic", -1.0, 0.01),        # scipy.signal.ellip: as cheby1
+    ("chebyshev2", -40.0, 0.01),     # scipy.signal.cheby2: Wn is where the gain first reaches -rs
+    ("fir", -6.0206, 0.1),           # scipy.signal.firwin: a windowed ideal response, about 0.5 at the cutoff
+])
+def test_per_pass_cutoff_means_scipy_critical_frequency_doubled(family: str, per_pass_db: float,
+                                                                within_db: float) -> None:
+    # README "How the response is specified": with cutoff_means = "per-pass" the overall gain
+    # at the cutoff is twice (in dB) the per-pass gain scipy.signal's design function gives
+    # at its critical frequency (references in the parameters). Reference: sosfreqz/freqz.
+    spec = ResponseSpec(kind="lowpass", family=family, order=201 if family == "fir" else 4, cutoff_hz=(10.0,),
+                        cutoff_means="per-pass", passband_ripple_db=2.0, stopband_attenuation_db=80.0)
+    design = design_filter(spec, FS)
+    assert scipy_overall_db(design, np.array([10.0]))[0] == pytest.approx(2 * per_pass_db, abs=2 * within_db)
+
+
 def test_overall_3db_correction_matches_published_factor() -> None:
     # D. A. Winter, Biomechanics and Motor Control of Human Movement, 4th ed., 2009 (from
     # memory): a 2nd-order low-pass run twice is corrected with the factor 0.802, i.e. the
