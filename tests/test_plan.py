@@ -65,15 +65,29 @@ def chain(names_frames: list[tuple[str, int]], *, start_s: float = 0.0, stream: 
     return out
 
 
-def records_for(segments: list[Segment], *, complete: bool = True, times: bool = True) -> dict[str, FileRecord]:
-    """Records as a finished run over ``segments`` would leave them (``times`` False: as stores
-    written before records kept their files' start times)."""
+def records_for(segments: list[Segment], *, complete: bool = True, times: bool = True,
+                joins: bool = True) -> dict[str, FileRecord]:
+    """Records as a finished run over ``segments`` would leave them (``joins`` False: as stores
+    written before records kept the files each was filtered next to; ``times`` False: before
+    they kept their files' start times)."""
+    def neighbours(seg: Segment, k: int) -> tuple[str | None, str | None] | None:
+        if not joins:
+            return None
+        return (seg.files[k - 1].relpath if k else None,
+                seg.files[k + 1].relpath if k + 1 < len(seg.files) else None)
+
     return {
         f.relpath: FileRecord(f.relpath, dict(f.fingerprint or {}), DIGEST, complete, f.frames, seg.id,
-                              start_time=f.start_time.isoformat() if times and f.start_time else None)
+                              start_time=f.start_time.isoformat() if times and f.start_time else None,
+                              joins=neighbours(seg, k))
         for seg in segments
-        for f in seg.files
+        for k, f in enumerate(seg.files)
     }
+
+
+RECORD_KINDS = pytest.mark.parametrize("times, joins", [(True, True), (True, False), (False, False)],
+                                       ids=["records-with-joins", "records-with-times", "records-without"])
+"""Records as the store writes them now, and as stores written before kept them."""
 
 
 def plan_for(entries: list[FileEntry], records: dict[str, FileRecord], **kw):
@@ -97,7 +111,12 @@ def outputs(segments: list[Segment], data: dict[str, np.ndarray]) -> dict[str, n
 
 def assert_plan_covers(plan, old_segs, new_segs, old_data, new_data):
     """The redo spans of each file not redone whole are exactly its samples whose scipy output changed."""
-    before, after = outputs(old_segs, old_data), outputs(new_segs, new_data)
+    assert_redo_exact(plan, outputs(old_segs, old_data), outputs(new_segs, new_data))
+
+
+def assert_redo_exact(plan, before: dict[str, np.ndarray], after: dict[str, np.ndarray]) -> None:
+    """The redo spans of each file not redone whole are exactly its samples whose output
+    ``before`` (as stored) differs from ``after`` (as it must be now)."""
     assert TAPS[0] != 0.0  # reach exactly M - 1
     for fp in plan.files:
         if fp.relpath not in before or fp.redo == "all":
@@ -235,13 +254,13 @@ def test_first_run_new_then_unchanged():
     assert plan2.totals()["samples"] == 0 and plan2.segments_with_work() == ()
 
 
-@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
-def test_append_recomputes_end_of_previous_file(times):
+@RECORD_KINDS
+def test_append_recomputes_end_of_previous_file(times, joins):
     # DESIGN: appending tomorrow's file recomputes the end of today's (edge-extended before)
     old = chain([("day1", 1000), ("day2", 1000)])
     new = chain([("day1", 1000), ("day2", 1000), ("day3", 800)])
     old_segs, _ = build_segments(old)
-    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times, joins=joins))
     by = {f.relpath: f for f in plan.files}
     assert by["day1"].status == "unchanged" and by["day1"].redo is None
     assert by["day2"].status == "neighbour" and by["day2"].redo == ((1000 - HALO, 1000),)
@@ -285,12 +304,12 @@ def test_change_reaches_past_a_file_shorter_than_the_halo():
     assert_plan_covers(plan, segs, new_segs, old_data, new_data)
 
 
-@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
-def test_prepended_file_touches_only_the_next_start(times):
+@RECORD_KINDS
+def test_prepended_file_touches_only_the_next_start(times, joins):
     old = chain([("b", 1000), ("c", 1000)], start_s=10.0)
     new = chain([("a", 1000), ("b", 1000), ("c", 1000)])
     old_segs, _ = build_segments(old)
-    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times, joins=joins))
     by = {f.relpath: f for f in plan.files}
     assert (by["a"].status, by["b"].status, by["c"].status) == ("new", "neighbour", "unchanged")
     assert by["b"].redo == ((0, HALO),)
@@ -298,45 +317,73 @@ def test_prepended_file_touches_only_the_next_start(times):
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
 
-@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
-def test_removed_middle_file_changes_ends_of_both_neighbours(times):
+@RECORD_KINDS
+def test_removed_middle_file_changes_ends_of_both_neighbours(times, joins):
     old = chain([("a", 1000), ("b", 500), ("c", 1000)])
     old_segs, _ = build_segments(old)
     new = [old[0], old[2]]
-    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times, joins=joins))
     assert [s.relpaths for s in new_segs] == [("a",), ("c",)]
     by = {f.relpath: f for f in plan.all_files()}
     assert by["b"].status == "removed" and by["b"] in plan.removed
     assert by["a"].status == "neighbour" and by["a"].redo == ((1000 - HALO, 1000),)
     assert by["c"].status == "neighbour" and by["c"].redo == ((0, HALO),)
-    assert "ends after a" in by["a"].reason and "no longer in it: b" in by["a"].reason
+    assert "ends after a" in by["a"].reason
+    assert ("with b after it" if joins else "no longer in it: b") in by["a"].reason
     data = signals(old)
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
 
-@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
-def test_removed_last_file_changes_end_of_previous(times):
+@RECORD_KINDS
+def test_removed_last_file_changes_end_of_previous(times, joins):
     old = chain([("a", 1000), ("b", 500)])
     old_segs, _ = build_segments(old)
-    plan, new_segs = plan_for([old[0]], records_for(old_segs, times=times))
+    plan, new_segs = plan_for([old[0]], records_for(old_segs, times=times, joins=joins))
     assert plan.file("a").redo == ((1000 - HALO, 1000),)
     assert plan.file("b").status == "removed"
     data = signals(old)
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
 
-@pytest.mark.parametrize("times", [True, False], ids=["records-with-times", "records-without"])
-def test_files_joined_by_a_corrected_start_time(times):
+@RECORD_KINDS
+def test_files_joined_by_a_corrected_start_time(times, joins):
     # same contents; a corrected start time closes the gap between a and c
     old = [entry("a", 0.0, 1000), entry("c", 15.0, 1000)]
     old_segs, _ = build_segments(old)
     new = [old[0], entry("c", 10.0, 1000)]
-    plan, new_segs = plan_for(new, records_for(old_segs, times=times))
+    plan, new_segs = plan_for(new, records_for(old_segs, times=times, joins=joins))
     assert [s.relpaths for s in new_segs] == [("a", "c")]
     assert plan.file("a").redo == ((1000 - HALO, 1000),) and plan.file("c").redo == ((0, HALO),)
-    assert "a and c are now joined" in plan.file("c").reason
+    assert ("c is now preceded by a" if joins else "a and c are now joined") in plan.file("c").reason
     data = signals(old)
     assert_plan_covers(plan, old_segs, new_segs, data, data)
+
+
+@pytest.mark.parametrize("away", ["c", "b"])
+def test_a_file_back_after_a_run_without_it_has_its_joins_refiltered(away):
+    # Run 1 filters a, b, c joined; run 2 runs without one of them (excluded, moved away,
+    # invalid for a while) and refilters its neighbours' ends as segment ends; it comes back
+    # unchanged, its record still that of run 1. Reference: scipy.signal.filtfilt on the
+    # segments of each run: the redo spans are exactly the samples whose output differs
+    # from what the store holds after run 2.
+    files = chain([("a", 1000), ("b", 500), ("c", 1000)])
+    segs1, _ = build_segments(files)
+    segs2, _ = build_segments([f for f in files if f.relpath != away])
+    records = {**records_for(segs1), **records_for(segs2)}
+    plan, segs3 = plan_for(files, records)
+    assert [s.relpaths for s in segs3] == [("a", "b", "c")]
+    data = signals(files)
+    stored = {**outputs(segs1, data), **outputs(segs2, data)}
+    assert_redo_exact(plan, stored, outputs(segs3, data))
+    # The file back was filtered next to the same files as now: its output stands.
+    by = {f.relpath: f for f in plan.files}
+    if away == "c":
+        assert [by[x].redo for x in "abc"] == [None, ((500 - HALO, 500),), None]
+        assert by["b"].reason == "b is now followed by c (it was filtered as the segment's end)"
+    else:
+        assert [by[x].redo for x in "abc"] == [((1000 - HALO, 1000),), None, ((0, HALO),)]
+        assert by["c"].reason == "c is now preceded by b (it was filtered as the segment's start)"
+    assert all(f.status in ("unchanged", "neighbour") for f in plan.files)
 
 
 def test_start_times_drifting_along_a_segment_leave_an_unchanged_archive_unchanged():

@@ -596,6 +596,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
                edge_samples: int) -> dict[str, Any]:
     """The array attributes of one output file (see the store layout)."""
     L = design.effective_length
+    k = next(i for i, f in enumerate(seg.files) if f.relpath == fw.relpath)
     zone_start = min(fw.frames, max(0, L - fw.seg_offset))
     zone_end = min(fw.frames, max(0, L - (seg.frames - fw.seg_offset - fw.frames)))
     return {
@@ -604,6 +605,8 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
         "source_fingerprint": fw.fingerprint,
         "stream": seg.stream,
         "segment": seg.segment_id,
+        "joins": {"previous": seg.files[k - 1].relpath if k > 0 else None,
+                  "next": seg.files[k + 1].relpath if k + 1 < len(seg.files) else None},
         "start_time": fw.start_time,
         "edge_zone_samples": [int(zone_start), int(zone_end)],
         "filled_spans": [list(sp) for sp in fw.filled_spans],
@@ -1076,7 +1079,8 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         for fw in seg.files:
             if fw.action == "skip":
                 a = file_attrs(seg, fw, design, cfg, layout, edge_samples)
-                store.update_attrs(fw.array_name, segment=a["segment"], edge_zone_samples=a["edge_zone_samples"])
+                store.update_attrs(fw.array_name, segment=a["segment"], joins=a["joins"],
+                                   edge_zone_samples=a["edge_zone_samples"])
     # An unchanged file whose block fails a seam now is reported (and rerun next time).
     checked = touched | seam_pass(seg, store, spans_by_file, touched, design, cfg)
     if cfg.output.sync and checked:

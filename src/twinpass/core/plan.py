@@ -433,7 +433,12 @@ class _SegmentPlanner:
     def _check_joins(self, k: int) -> None:
         """Invalidate the joins of file ``k`` whose neighbour changed by membership."""
         f, rec = self.seg.files[k], self.recs[k]
-        if self._dirty(k) or rec is None or rec.segment is None or f.start_time is None:
+        if self._dirty(k) or rec is None:
+            return
+        if rec.joins is not None:
+            self._check_recorded_joins(k, rec.joins)
+            return
+        if rec.segment is None or f.start_time is None:
             return
         was_first, was_last = self._old_position(k)
         off = self.seg.offsets[k]
@@ -458,6 +463,30 @@ class _SegmentPlanner:
                     f"{self.seg.files[a].relpath} and {self.seg.files[b].relpath} are now joined "
                     "(they were not neighbours before)",
                 )
+
+    def _check_recorded_joins(self, k: int, joins: tuple[str | None, str | None]) -> None:
+        """Invalidate the output on file ``k``'s side of each of its joins whose neighbour is
+        not the one it was filtered next to (``joins``: previous and next source paths, None at
+        a segment's start or end). Judged by each file's own record, so that a file back after
+        a run without it (excluded, moved away, invalid for a while) is not taken for a member
+        of the segment that went on without it; the other side of the join is judged by the
+        other file's record (its output may still be that of the same neighbours)."""
+        f, seg = self.seg.files[k], self.seg
+        n = len(seg.files)
+        for side, j, was in (("start", k - 1, joins[0]), ("end", k + 1, joins[1])):
+            now = seg.files[j].relpath if 0 <= j < n else None
+            if now == was or (now is not None and self._dirty(j)):  # a changed neighbour covers the join
+                continue
+            word, other = ("preceded", "before") if side == "start" else ("followed", "after")
+            if now is None:
+                why = (f"the segment now {'starts at' if side == 'start' else 'ends after'} {f.relpath} "
+                       f"(it was filtered with {was} {other} it)")
+            elif was is None:
+                why = f"{f.relpath} is now {word} by {now} (it was filtered as the segment's {side})"
+            else:
+                why = f"{f.relpath} is now {word} by {now} (it was filtered with {was} {other} it)"
+            x = seg.offsets[k] + (0 if side == "start" else f.frames)
+            self._invalidate(*((x, x + self.halo) if side == "start" else (x - self.halo, x)), None, why)
 
     def run(self) -> list[FilePlan]:
         seg = self.seg

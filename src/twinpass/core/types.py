@@ -155,3 +155,7 @@ class FileRecord:
     absent: tuple[tuple[int, int], ...] = ()
     """Frame spans [start, stop) of a complete output whose chunk files are missing or empty
     (deleted or lost since they were written); checked in local stores only."""
+    joins: tuple[str | None, str | None] | None = None
+    """The files this one was filtered next to: the previous and the next file of its segment
+    (source paths; None at a segment's start or end), as the last run that wrote or checked
+    its output saw them; None when not recorded (outputs written before it was)."""

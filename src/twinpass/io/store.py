@@ -1542,6 +1542,7 @@ class OutputStore:
                 start_time=None if a.get("start_time") is None else str(a["start_time"]),
                 dtype=str(arr.dtype),
                 absent=self._absent_chunks(name, arr) if complete else (),
+                joins=_joins(a.get("joins")),
             )
         return out
 
@@ -1743,3 +1744,14 @@ class OutputStore:
                 if isinstance(run, dict) and run.get("run_id"):
                     found.setdefault(str(run["run_id"]), dict(run))
         return sorted(found.values(), key=lambda r: (str(r.get("start") or ""), str(r["run_id"])))
+
+
+def _joins(value: Any) -> tuple[str | None, str | None] | None:
+    """The recorded ``joins`` attribute (``{"previous": ..., "next": ...}``) as a pair, or
+    None when absent or malformed (the planner then judges joins by the segment ids)."""
+    if not isinstance(value, dict) or not {"previous", "next"} <= set(value):
+        return None
+    prev, nxt = value["previous"], value["next"]
+    if not all(v is None or isinstance(v, str) for v in (prev, nxt)):
+        return None
+    return prev, nxt
