@@ -118,6 +118,38 @@ def test_a_file_back_after_a_run_without_it_is_joined_again(tmp_path, away):
     assert np.max(np.abs(y - _reference(files.concat, filt))) <= filt["tolerance"] * np.max(np.abs(x))
 
 
+def test_a_corrected_manifest_updates_the_outputs_without_refiltering(tmp_path):
+    # A recorder clock found an hour off, and the stream renamed, in the manifest: the
+    # outputs' attributes follow, no block runs, and the values stay those of scipy.
+    x = make_signal(24000, 1, FS, seed=9)
+    (tmp_path / "archive").mkdir()
+    for i in range(2):
+        np.save(tmp_path / "archive" / f"f{i}.npy", x[12000 * i: 12000 * (i + 1)])
+
+    def manifest(stream: str, hour: int) -> None:
+        (tmp_path / "archive" / "manifest.csv").write_text(
+            f"path,stream,start_time\nf0.npy,{stream},2026-03-01T{hour:02d}:00:00Z\n"
+            f"f1.npy,{stream},2026-03-01T{hour:02d}:01:00Z\n")
+
+    manifest("pier", 12)
+    cfg = write_config(tmp_path, archive={"manifest": "archive/manifest.csv"})
+    assert run_job(load_config(cfg)).counts()["complete"] == 2
+    before = read_output(tmp_path / "out.zarr", ["f0", "f1"])
+    manifest("pier-east", 13)
+    again = run_job(load_config(cfg))
+    assert again.ok and again.counts()["blocks_run"] == 0
+    g = open_store(tmp_path / "out.zarr")
+    assert [g[a].attrs["start_time"] for a in ("f0", "f1")] == ["2026-03-01T13:00:00+00:00",
+                                                                "2026-03-01T13:01:00+00:00"]
+    assert {g[a].attrs["stream"] for a in ("f0", "f1")} == {"pier-east"}
+    assert {g[a].attrs["segment"] for a in ("f0", "f1")} == {"pier-east@2026-03-01T13:00:00+00:00"}
+    for old, new in zip(before, read_output(tmp_path / "out.zarr", ["f0", "f1"])):
+        np.testing.assert_array_equal(old, new)
+    filt = g["f0"].attrs["filter"]
+    y = np.concatenate(before)
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
 def test_default_checks_pass_and_figures_are_recorded(tmp_path):
     x = make_signal(24000, 2, FS, seed=3)
     files = write_stream(tmp_path / "archive", "pier", x, FS, 2)

@@ -14,6 +14,7 @@ References:
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import json
 
@@ -384,6 +385,18 @@ def test_a_file_back_after_a_run_without_it_has_its_joins_refiltered(away):
         assert [by[x].redo for x in "abc"] == [((1000 - HALO, 1000),), None, ((0, HALO),)]
         assert by["c"].reason == "c is now preceded by b (it was filtered as the segment's start)"
     assert all(f.status in ("unchanged", "neighbour") for f in plan.files)
+
+
+def test_a_corrected_clock_or_stream_name_is_noted_and_nothing_refiltered():
+    # The whole stream an hour later, or renamed: the same samples next to the same files.
+    old = chain([("a", 1000), ("b", 500)])
+    old_segs, _ = build_segments(old)
+    for new in (chain([("a", 1000), ("b", 500)], start_s=3600.0), chain([("a", 1000), ("b", 500)], stream="s2")):
+        records = {k: dataclasses.replace(r, stream="s1") for k, r in records_for(old_segs).items()}
+        plan, _ = plan_for(new, records)
+        assert [(f.status, f.redo) for f in plan.files] == [("unchanged", None)] * 2
+        moved = "start time changed" if new[0].stream == "s1" else "stream changed (s1 -> s2)"
+        assert all(moved in f.reason and "its attributes are updated" in f.reason for f in plan.files)
 
 
 def test_start_times_drifting_along_a_segment_leave_an_unchanged_archive_unchanged():

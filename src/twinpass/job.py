@@ -198,11 +198,30 @@ def now_iso() -> str:
 
 
 def begin_run(store: OutputStore, prep: Prepared) -> None:
-    """Root provenance before any block runs."""
+    """Root provenance before any block runs, and where unchanged files now sit."""
     store.set_root_info({"response": prep.cfg.response.to_dict(),
                          "processing": prep.cfg.to_dict()["processing"],
                          "designs": {f"{fs:g}": d.report for fs, d in prep.designs.items()}},
                         library_versions())
+    update_placement(store, prep)
+
+
+def update_placement(store: OutputStore, prep: Prepared) -> None:
+    """Rewrite the ``stream``, ``start_time`` and ``segment`` attributes of the outputs of
+    unchanged files whose stream or start time changed without their samples (a manifest or
+    a file name corrected; the plan's reason says so). Their values stand, so no block runs
+    for them; a join the change moves is refiltered as the plan says."""
+    records = {fp.relpath: fp.record for fp in prep.plan.files if fp.record is not None}
+    for w in prep.work:
+        for fw in w.files:
+            rec = records.get(fw.relpath)
+            if fw.action != "skip" or rec is None:
+                continue
+            now = {"stream": w.stream, "start_time": fw.start_time, "segment": w.segment_id}
+            was = {"stream": rec.stream, "start_time": rec.start_time, "segment": rec.segment}
+            moved = {key: value for key, value in now.items() if value != was[key]}
+            if moved:
+                store.update_attrs(fw.array_name, **moved)
 
 
 def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:

@@ -354,7 +354,24 @@ def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool,
         return "changed", f"output sample type changed ({rec.dtype} -> {out_dtype})"
     if not rec.complete:
         return "incomplete", "output incomplete: resume (blocks already done are kept)"
+    moved = _identity_change(rec, entry)
+    if moved:
+        return "unchanged", f"same fingerprint and design; output complete; {moved}: its attributes are updated"
     return "unchanged", "same fingerprint and design; output complete"
+
+
+def _identity_change(rec: FileRecord, entry: Any) -> str:
+    """What changed of where a file sits (its stream, its start time: a manifest or a file
+    name corrected) since its output was written, or "". Its samples are the same; where the
+    change moves a join, the planner refilters that join, and the run updates the output's
+    attributes."""
+    changes = []
+    if rec.stream is not None and rec.stream != entry.stream:
+        changes.append(f"stream changed ({rec.stream} -> {entry.stream})")
+    if rec.start_time is not None and _parse_time(rec.start_time) != entry.start_time:
+        now = "none" if entry.start_time is None else entry.start_time.isoformat()
+        changes.append(f"start time changed ({rec.start_time} -> {now})")
+    return "; ".join(changes)
 
 
 class _SegmentPlanner:

@@ -155,6 +155,8 @@ class FileRecord:
     absent: tuple[tuple[int, int], ...] = ()
     """Frame spans [start, stop) of a complete output whose chunk files are missing or empty
     (deleted or lost since they were written); checked in local stores only."""
+    stream: str | None = None
+    """The stream the file was filtered in; None when not recorded."""
     joins: tuple[str | None, str | None] | None = None
     """The files this one was filtered next to: the previous and the next file of its segment
     (source paths; None at a segment's start or end), as the last run that wrote or checked

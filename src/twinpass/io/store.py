@@ -1542,6 +1542,7 @@ class OutputStore:
                 start_time=None if a.get("start_time") is None else str(a["start_time"]),
                 dtype=str(arr.dtype),
                 absent=self._absent_chunks(name, arr) if complete else (),
+                stream=a["stream"] if isinstance(a.get("stream"), str) else None,
                 joins=_joins(a.get("joins")),
             )
         return out
