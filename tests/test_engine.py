@@ -9,6 +9,7 @@ blocks are scheduled.
 from __future__ import annotations
 
 import logging
+import shutil
 import time
 from pathlib import Path
 
@@ -148,6 +149,38 @@ def test_a_corrected_manifest_updates_the_outputs_without_refiltering(tmp_path):
     filt = g["f0"].attrs["filter"]
     y = np.concatenate(before)
     assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
+@pytest.mark.parametrize("mode", ["halo", "carry"])
+def test_a_partial_rerun_keeps_the_blocks_a_file_was_written_in(tmp_path, mode):
+    # block_seconds (and chunk_seconds, compression) apply to files written whole from then
+    # on: after a change, a new file next to an old one reruns only the old file's blocks its
+    # halo reaches, in the old blocks and chunks, and a lost chunk of an old file reruns its
+    # own block alone. Reference: scipy.signal.sosfiltfilt on the whole segment.
+    x = make_signal(36000, 2, FS, seed=13)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, [12000, 12000, 12000])
+    last = files.paths[2].relative_to(tmp_path / "archive").as_posix()
+    cfg = write_config(tmp_path, processing={"block_seconds": 10.0, "mode": mode},  # blocks of 2000
+                       archive={"exclude": [last]})
+    assert run_job(load_config(cfg)).ok
+    write_config(tmp_path, processing={"block_seconds": 25.0, "mode": mode},  # blocks of 5000
+                 output={"compression": "zstd"})
+    appended = run_job(load_config(cfg))
+    assert appended.ok
+    runs = {o.array_name: o.blocks_run for o in appended.outcomes}
+    g = open_store(tmp_path / "out.zarr")
+    a0, a1, a2 = files.arrays
+    assert runs.get(a0, 0) == 0 and 1 <= runs[a1] <= 2  # the halo (670) reaches 1 block of 2000
+    assert g[a1].chunks == (2000, 2) and g[a1].attrs["blocks"]["block_samples"] == 2000
+    assert g[a2].chunks == (5000, 2)
+    shutil.rmtree(tmp_path / "out.zarr" / a0 / "c" / "3")  # one chunk of the old file lost
+    repaired = run_job(load_config(cfg))
+    assert repaired.ok and {o.array_name: o.blocks_run for o in repaired.outcomes if o.blocks_run} == {a0: 1}
+    g = open_store(tmp_path / "out.zarr")
+    assert all(g[a].attrs["complete"] is True for a in files.arrays)
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    filt = g[a0].attrs["filter"]
+    assert np.max(np.abs(y - _reference(files.concat, filt))) <= filt["tolerance"] * np.max(np.abs(x))
 
 
 def test_default_checks_pass_and_figures_are_recorded(tmp_path):

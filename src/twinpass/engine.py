@@ -47,7 +47,7 @@ from . import allocator, faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.checks import CANCELLED, was_cancelled
-from .core.blocks import Layout, blocks_touching, choose_layout
+from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.types import Design
@@ -653,6 +653,30 @@ def _set_pending(store: Any, name: str, status: np.ndarray, indices: list[int]) 
         store.invalidate_blocks(name, idx)
 
 
+def _kept_layout(store: Any, fw: FileWork, seg: SegmentWork, layout: Layout,
+                 cfg: JobConfig) -> tuple[list[tuple[int, int]], int, str] | None:
+    """The blocks, chunk length and compression an output was written in, for part of it to
+    be rerun in them (a neighbour's change, a resume, lost chunks): ``block_seconds``,
+    ``chunk_seconds`` and ``compression`` apply to files written whole from then on, and
+    the rest of the file keeps its values. None when the array or its table is missing or
+    of another length, or its blocks with their halos no longer fit the memory budget: the
+    file is then written whole in the current layout."""
+    table = _stored_table(store, fw.array_name)
+    stored = getattr(store, "stored_layout", lambda _name: None)(fw.array_name)
+    if table is None or stored is None or not len(table.span):
+        return None
+    spans = [(int(a), int(b)) for a, b in table.span]
+    chunk, compression = stored
+    if spans[0][0] != 0 or spans[-1][1] != fw.frames or any(b <= a for a, b in spans):
+        return None
+    if (spans, chunk, compression) == (layout.spans(fw.frames), layout.chunk_for(fw.frames), cfg.output.compression):
+        return None  # nothing to keep: the current layout
+    window = max(b - a for a, b in spans) + 2 * layout.halo  # as choose_layout counts it
+    if window * seg.channels * BYTES_PER_WINDOW_SAMPLE > cfg.processing.memory_budget_mib * 2**20:
+        return None
+    return spans, chunk, compression
+
+
 def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, layout: Layout,
                     edge_samples: int, *, mode: str | None = None,
                     on_file: Callable[[str, list[tuple[int, int]], list[int]], None] | None = None,
@@ -692,18 +716,22 @@ def prepare_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any
             spans_by_file[fw.array_name] = ([(int(a), int(b)) for a, b in old.span] if old is not None
                                             else layout.spans(fw.frames))
             continue
-        spans = layout.spans(fw.frames)
+        fresh = fw.action == "all"
+        kept = None if fresh else _kept_layout(store, fw, seg, layout, cfg)
+        spans, chunk, compression = kept or (layout.spans(fw.frames), layout.chunk_for(fw.frames),
+                                             cfg.output.compression)
         spans_by_file[fw.array_name] = spans
         attrs = file_attrs(seg, fw, design, cfg, layout, edge_samples)
+        if kept:
+            attrs["blocks"].update(block_samples=max(b - a for a, b in spans), chunk_samples=chunk)
         if mode is not None:
             attrs["blocks"]["mode"] = mode
         digest = attrs["design_digest"]
-        fresh = fw.action == "all"
         if fresh:
             attrs["design_digest"] = RESETTING_DIGEST  # module notes, point 2
         table = store.prepare_file(
             fw.array_name, frames=fw.frames, channels=seg.channels, dtype=cfg.output.dtype,
-            chunk_samples=layout.chunk_for(fw.frames), compression=cfg.output.compression, attrs=attrs,
+            chunk_samples=chunk, compression=compression, attrs=attrs,
             spans=spans, n_figures_columns=columns, seam_samples=cfg.checks.seam_samples, keep_done=not fresh,
         )
         if fresh:

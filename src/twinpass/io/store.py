@@ -1306,6 +1306,14 @@ class OutputStore:
 
     # -- block tables ---------------------------------------------------------
 
+    def stored_layout(self, name: str) -> tuple[int, str] | None:
+        """Chunk length (samples) and ``[output] compression`` of the existing output array
+        ``name``, or None when there is none (or it is not an array)."""
+        node = self._node(check_name(name))
+        if not isinstance(node, zarr.Array) or len(node.chunks) != 2:
+            return None
+        return int(node.chunks[0]), _compression_of(node)
+
     def read_block_table(self, name: str, *, figures: bool = True, seams: bool = True) -> BlockTable:
         """The block table of ``name``; ``figures``/``seams`` False skip reading those arrays."""
         with self._mutex:
