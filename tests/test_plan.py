@@ -26,7 +26,7 @@ from scipy import signal
 
 from twinpass.core.plan import STATUSES, fingerprint_changed, format_plan, make_plan
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
-from twinpass.core.types import FileRecord
+from twinpass.core.types import RESETTING_DIGEST, FileRecord
 from twinpass.errors import ArchiveError
 from twinpass.io.readers.base import ReaderSpec, RecordingInfo
 
@@ -475,6 +475,18 @@ def test_incomplete_is_resumed():
     b = plan.file("b")
     assert (b.status, b.redo, b.resume) == ("incomplete", "all", True)
     assert plan.file("a").status == "unchanged"
+
+
+def test_a_rewrite_cut_short_is_planned_whole_and_said_so():
+    # An output being written anew carries the resetting digest until its table is reset
+    # (twinpass.engine, module notes): planned whole again, not as a design change.
+    files = chain([("a", 100), ("b", 100)])
+    segs, _ = build_segments(files)
+    recs = records_for(segs)
+    recs["b"] = dataclasses.replace(recs["b"], design_digest=RESETTING_DIGEST, complete=False)
+    plan, _ = plan_for(files, recs)
+    assert (plan.file("b").status, plan.file("b").redo) == ("changed", "all")
+    assert plan.file("b").reason == "a run stopped while writing its output anew: written whole again"
 
 
 def test_design_digest_and_frame_changes_make_files_changed():

@@ -50,7 +50,7 @@ from .core.checks import CANCELLED, was_cancelled
 from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
-from .core.types import Design
+from .core.types import RESETTING_DIGEST, Design
 from .errors import ConfigError, InputError, RunStoppedError, StoreError, TwinpassError
 from .io.readers.base import ReaderSpec
 
@@ -60,8 +60,6 @@ PENDING, PASS, WARN, FAIL, ERROR = 0, 1, 2, 3, 4
 STATUS_NAMES = {PENDING: "pending", PASS: "pass", WARN: "warn", FAIL: "fail", ERROR: "error"}
 DONE = (PASS, WARN)
 
-RESETTING_DIGEST = "resetting"
-"""Design digest a file carries while its block table is being reset (see the module notes)."""
 
 
 # --------------------------------------------------------------------------- jobs

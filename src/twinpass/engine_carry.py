@@ -62,7 +62,7 @@ tables are prepared and finished by the halo mode's own
 killed between any two driver writes is as safe as there (see the crash-safety notes of
 :mod:`twinpass.engine`): blocks a neighbour's change reaches are set pending before any file
 records its new input, and a file recomputed from scratch carries
-:data:`twinpass.engine.RESETTING_DIGEST` until its block table is reset.
+:data:`twinpass.core.types.RESETTING_DIGEST` until its block table is reset.
 
 Seams. With exact carrying a block's output equals the whole-segment output, so the
 samples beyond its edges are its neighbours' own samples. The seam check still tests the

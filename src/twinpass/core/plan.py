@@ -55,7 +55,7 @@ from dataclasses import dataclass, field
 from typing import Any, Iterable, Mapping, Sequence
 
 from twinpass.core.segments import InvalidFile, Segment
-from twinpass.core.types import FileRecord
+from twinpass.core.types import RESETTING_DIGEST, FileRecord
 from twinpass.errors import ArchiveError
 
 __all__ = [
@@ -348,6 +348,8 @@ def _own_status(rec: FileRecord | None, entry: Any, digest: str, force: bool,
         return "changed", why
     if int(rec.frames) != entry.frames:
         return "changed", f"frame count changed ({rec.frames} -> {entry.frames})"
+    if rec.design_digest == RESETTING_DIGEST:
+        return "changed", "a run stopped while writing its output anew: written whole again"
     if rec.design_digest != digest:
         return "changed", "filter design or processing settings changed"
     if out_dtype is not None and rec.dtype is not None and rec.dtype != out_dtype:

@@ -131,6 +131,12 @@ class Design:
         return hashlib.sha256(blob).hexdigest()
 
 
+RESETTING_DIGEST = "resetting"
+"""Design digest an output carries while it is being written anew, until its block table is
+reset (:mod:`twinpass.engine`, module notes): no design has it, so a rewrite cut short is
+planned again whole."""
+
+
 @dataclass(frozen=True)
 class FileRecord:
     """What the output store remembers of one input file (used by the planner).
