@@ -134,7 +134,13 @@ from twinpass.core.nonfinite import (
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
-from twinpass.io.readers._common import TRUNCATED_HINT, WRAPPED_HINT, WRAPPED_REWRITE, file_kind
+from twinpass.io.readers._common import (
+    HEADER_REWRITE,
+    TRUNCATED_HINT,
+    WRAPPED_HINT,
+    WRAPPED_REWRITE,
+    file_kind,
+)
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
@@ -682,6 +688,10 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
                 'rewrite the file as RF64 (or W64), or set [archive] wrapped_sizes = "read" to read every '
                 "whole frame up to the end of the file, or " + _REMEDY_EXCLUDE
             )
+        if f"; {HEADER_REWRITE}" in text:
+            # the reader names the sizes to write: that is the remedy
+            text, _, sizes = text.partition(f"; {HEADER_REWRITE}")
+            remedy = f"{HEADER_REWRITE}{sizes}, or leave it out with [archive] exclude"
         raise _Bad(f"cannot be opened: {text}", remedy) from None
     if info.frames <= 0:
         raise _Bad("holds no samples (0 frames)", "remove it or leave it out with [archive] exclude")

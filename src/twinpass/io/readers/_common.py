@@ -56,6 +56,9 @@ WRAPPED_HINT = 'to read every whole frame up to the end of the file set the read
 """The last clause of the WAV reader's error for a plain RIFF file over 4 GiB whose 32-bit sizes
 wrapped (after "; "); discovery gives the configuration key in its remedy instead."""
 WRAPPED_MODES = ("error", "read")
+HEADER_REWRITE = "rewrite its header with the real sizes"
+"""The start of the WAV reader's remedy for a data chunk whose size field says 0 while frames
+follow it (after "; "); discovery makes it the remedy."""
 WRAPPED_REWRITE = "Rewrite the file as RF64 (or W64)"
 
 
