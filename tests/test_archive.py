@@ -528,6 +528,66 @@ def test_a_reader_refuses_a_named_pipe_without_blocking(tmp_path):
     assert "is a named pipe (FIFO); only regular files can be read" in got["error"]
 
 
+# -- files this user may not read ---------------------------------------------------------
+
+_DISCOVER_INVALID = """
+import json, sys
+from twinpass.config import load_config
+from twinpass.io.archive import discover
+print(json.dumps({b.path: [b.reason, b.remedy] for b in discover(load_config(sys.argv[1])).invalid}))
+"""
+
+
+def test_files_without_read_permission_are_told_to_be_made_readable(tmp_path):
+    # A file, a raw file's sidecar and a Zarr store's metadata with mode 000: nothing in them
+    # is damaged, so the remedy is permission, not repair. Discovery runs in a process that
+    # file modes apply to (root ignores them: drop the capabilities that let it).
+    import json
+    import shutil
+    import subprocess
+    import sys
+
+    import zarr
+    from test_bad_inputs import pcm16, write_config, write_wav
+
+    from twinpass.config import load_config
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(1000))
+    write_wav(root, "ok.wav", pcm16(1000, seed=1))
+    (root / "r.bin").write_bytes(pcm16(1000).tobytes())
+    (root / "r.bin.toml").write_text('dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
+    zarr.create_array(str(root / "z.zarr"), shape=(1000,), chunks=(500,), dtype="int16", zarr_format=3,
+                      attributes={"sample_rate_hz": 100.0})[:] = pcm16(1000)[:, 0]
+    config = write_config(tmp_path, archive={"include": ["**/*.wav", "**/*.bin", "**/*.zarr"]})
+    found = discover(load_config(config))
+    assert not found.invalid and len(found.files) == 4
+    locked = [root / "a.wav", root / "r.bin.toml", root / "z.zarr" / "zarr.json"]
+    prefix: list[str] = []
+    if os.geteuid() == 0:
+        if not shutil.which("setpriv"):
+            pytest.skip("running as root without setpriv: file modes cannot be made to apply")
+        prefix = ["setpriv", "--bounding-set", "-dac_override,-dac_read_search"]
+    for p in locked:
+        p.chmod(0)
+    try:
+        res = subprocess.run([*prefix, sys.executable, "-c", _DISCOVER_INVALID, str(config)],
+                             capture_output=True, text=True, timeout=300)
+    finally:
+        for p in locked:
+            p.chmod(0o644)
+    assert res.returncode == 0, res.stderr[-2000:]
+    invalid = json.loads(res.stdout.strip().splitlines()[-1])
+    assert sorted(invalid) == ["a.wav", "r.bin", "z.zarr"], invalid
+    for path, what in (("a.wav", "file"), ("r.bin", "sidecar"), ("z.zarr", "store")):
+        reason, remedy = invalid[path]
+        assert "Permission denied" in reason and "repair" not in remedy + reason, (path, reason, remedy)
+        assert remedy == (f"make the {what} readable by the user running twinpass, or leave it out with "
+                          "[archive] exclude"), (path, remedy)
+    assert invalid["a.wav"][0] == "cannot be opened for reading (Permission denied)"
+    assert str(root / "r.bin.toml") in invalid["r.bin"][0] and "zarr.json" in invalid["z.zarr"][0]
+
+
 # -- folders that cannot be listed --------------------------------------------------------
 
 

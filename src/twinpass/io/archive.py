@@ -136,6 +136,7 @@ from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
 from twinpass.io.readers._common import (
     HEADER_REWRITE,
+    READABLE,
     TRUNCATED_HINT,
     WRAPPED_HINT,
     WRAPPED_REWRITE,
@@ -692,7 +693,11 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
             # the reader names the sizes to write: that is the remedy
             text, _, sizes = text.partition(f"; {HEADER_REWRITE}")
             remedy = f"{HEADER_REWRITE}{sizes}, or leave it out with [archive] exclude"
-        raise _Bad(f"cannot be opened: {text}", remedy) from None
+        if text.endswith(READABLE) and "; make " in text:
+            # a file, sidecar or store this user may not read: nothing to repair in it
+            text, _, whom = text.rpartition("; make ")
+            remedy = f"make {whom}, or leave it out with [archive] exclude"
+        raise _Bad(text if text.startswith("cannot be opened") else f"cannot be opened: {text}", remedy) from None
     if info.frames <= 0:
         raise _Bad("holds no samples (0 frames)", "remove it or leave it out with [archive] exclude")
     if info.sample_rate_hz is None:

@@ -62,6 +62,11 @@ follow it (after "; "); discovery makes it the remedy."""
 WRAPPED_REWRITE = "Rewrite the file as RF64 (or W64)"
 
 
+READABLE = "readable by the user running twinpass"
+"""The end of a reader's error for a file it may not read, after "; make ...": the remedy
+(discovery gives it as such)."""
+
+
 def is_url(path: str) -> bool:
     """True for ``scheme://...`` locations, which are passed through untouched."""
     return "://" in path
@@ -297,6 +302,10 @@ def open_binary(path: str) -> tuple[BinaryIO, int]:
         raise InputError(f"{path}: no such file", path=path) from None
     except IsADirectoryError:
         raise InputError(f"{path}: is a directory, not a file", path=path) from None
+    except PermissionError as exc:
+        raise InputError(
+            f"{path}: cannot be opened for reading ({exc.strerror or exc}); make the file {READABLE}", path=path
+        ) from None
     except OSError as exc:
         raise InputError(f"{path}: cannot be opened for reading ({exc.strerror or exc})", path=path) from None
     try:

@@ -18,6 +18,7 @@ import numpy as np
 
 from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
 from ._common import (
+    READABLE,
     Codec,
     WindowRecording,
     check_options,
@@ -162,6 +163,12 @@ class ZarrReader(Reader):
     @staticmethod
     def _open_error(zarr: Any, store: str, arr_path: str, exc: Exception) -> InputError:
         shown = f"{store}#{arr_path}" if arr_path else store
+        if isinstance(exc, PermissionError):
+            return InputError(
+                f"{shown}: {exc.filename or 'a file of the store'} cannot be opened for reading "
+                f"({exc.strerror or exc}); make the store {READABLE}",
+                path=store,
+            )
         try:
             group = zarr.open_group(store=store, path=arr_path or None, mode="r")
             names = [k for k, v in group.members(max_depth=None) if isinstance(v, zarr.Array)]
