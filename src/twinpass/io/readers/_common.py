@@ -56,6 +56,18 @@ WRAPPED_HINT = 'to read every whole frame up to the end of the file set the read
 """The last clause of the WAV reader's error for a plain RIFF file over 4 GiB whose 32-bit sizes
 wrapped (after "; "); discovery gives the configuration key in its remedy instead."""
 WRAPPED_MODES = ("error", "read")
+CONFIG_HINTS = {
+    TRUNCATED_HINT: 'to read up to the last whole frame set [archive] truncated = "warn"',
+    WRAPPED_HINT: 'to read every whole frame up to the end of the file set [archive] wrapped_sizes = "read"',
+}
+"""Each reader-option hint above as the configuration key a job sets it with."""
+
+
+def with_config_keys(text: str) -> str:
+    """``text`` (a reader's error) with its reader-option hints naming the configuration keys."""
+    for hint, key in CONFIG_HINTS.items():
+        text = text.replace(hint, key)
+    return text
 HEADER_REWRITE = "rewrite its header with the real sizes"
 """The start of the WAV reader's remedy for a data chunk whose size field says 0 while frames
 follow it (after "; "); discovery makes it the remedy."""
