@@ -838,6 +838,31 @@ def test_zarr_2d_with_attributes(tmp_path):
             assert np.array_equal(rec.read(a_, b_), x[a_:b_] / 32768.0)
 
 
+def test_damaged_zarr_chunks_are_named_by_key_and_frames(tmp_path):
+    # Chunk keys as zarr-python stores them: format 3 "c/<row>/<col>" (default chunk key
+    # encoding), format 2 "<row>" for a 1-D array. A chunk file overwritten with bytes that no
+    # codec decodes must be named, not the whole window read.
+    x = RNG.normal(0, 0.3, (12000, 2)).astype("float32")
+    store = tmp_path / "v3.zarr"
+    zarr.create_array(store, shape=x.shape, chunks=(1000, 1), dtype="float32", zarr_format=3)[:] = x
+    for key in ("c/5/1", "c/7/0"):
+        (store / key).write_bytes(b"not a zstd frame")
+    with open_recording(store, options={"sample_rate_hz": 100}) as rec:
+        assert np.array_equal(rec.read(0, 5000), x[:5000].astype(np.float64))  # the rest reads
+        with pytest.raises(CorruptInputError) as err:
+            rec.read(2500, 12000)
+    msg = str(err.value)
+    assert f"{store}: frames [2500, 12000) cannot be read: chunks c/5/1 (frames 5000-6000), " in msg, msg
+    assert "c/7/0 (frames 7000-8000) of the store are damaged" in msg and "c/6/" not in msg, msg
+
+    v2 = tmp_path / "v2.zarr"
+    zarr.create_array(v2, shape=(3000,), chunks=(999,), dtype="int16", zarr_format=2)[:] = np.arange(3000)
+    (v2 / "1").write_bytes(b"garbage")
+    with open_recording(v2, options={"sample_rate_hz": 100}) as rec, pytest.raises(CorruptInputError) as err:
+        rec.read(0, 3000)
+    assert "frames [0, 3000) cannot be read: chunk 1 (frames 999-1998) of the store is damaged (" in str(err.value)
+
+
 def test_zarr_array_inside_group(tmp_path):
     x = RNG.normal(0, 1, 500).astype("float32")
     store = tmp_path / "g.zarr"
