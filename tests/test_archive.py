@@ -321,7 +321,8 @@ def test_fingerprint_fast_and_full(tmp_path):
     assert changed and "digest" in why
     # a new modification time: fast sees it, full compares content only
     os.utime(p, ns=(stat.st_atime_ns, stat.st_mtime_ns + 10**9))
-    assert fingerprint_changed(fast, fingerprint_file(p, "fast")) == (True, "modification time changed")
+    changed, why = fingerprint_changed(fast, fingerprint_file(p, "fast"))
+    assert changed and why.startswith("modification time changed, same first and last MiB"), why
     again = fingerprint_file(p, "full")
     assert not fingerprint_changed(again | {"mtime_ns": 0}, again)[0]
     # a new size: both see it
@@ -526,6 +527,45 @@ def test_a_reader_refuses_a_named_pipe_without_blocking(tmp_path):
     t.join(30)
     assert not t.is_alive(), "opening a named pipe blocked"
     assert "is a named pipe (FIFO); only regular files can be read" in got["error"]
+
+
+def test_a_touched_file_is_unchanged_when_its_digest_covers_every_byte(tmp_path):
+    # Same bytes, new modification time (touch): a file hashed whole (under 2 MiB in fast
+    # mode) is unchanged and nothing is refiltered; new bytes are "content changed", even
+    # though the modification time changed too. A file hashed in part (fast mode, 2 MiB or
+    # more) still counts a new modification time as a change.
+    from test_bad_inputs import PATTERN, load, pcm16, run, stem, write_wav
+
+    from twinpass.io.store import OutputStore
+    from twinpass.job import prepare
+
+    root = tmp_path / "archive"
+    small = [stem("s", dt.datetime(2026, 3, 1, 0, 0, 10 * i)) + ".wav" for i in range(3)]
+    for i, rel in enumerate(small):
+        write_wav(root, rel, pcm16(1000, seed=i))  # 10 s each at 100 Hz: one segment
+    big = stem("b") + ".wav"
+    write_wav(root, big, pcm16(1_100_000, seed=9))  # 2.2 MB: hashed in part in fast mode
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN})
+    assert {o.status for o in run(cfg).outcomes} == {"complete"}
+
+    def plan():
+        return prepare(cfg, OutputStore.open(cfg.store_location, mode="r")).plan
+
+    def touch(rel):
+        st = (root / rel).stat()
+        os.utime(root / rel, ns=(st.st_atime_ns, st.st_mtime_ns + 5 * 10**9))
+
+    touch(small[1])
+    touch(big)
+    got = {f.relpath: (f.status, f.reason) for f in plan().files}
+    assert {rel: got[rel][0] for rel in small} == dict.fromkeys(small, "unchanged"), got
+    assert got[big][0] == "changed" and got[big][1].startswith("modification time changed, same first and last"), got
+    data = bytearray((root / small[1]).read_bytes())
+    data[-1] ^= 0x01
+    (root / small[1]).write_bytes(bytes(data))
+    touch(small[1])
+    fp = plan().file(small[1])
+    assert (fp.status, fp.reason) == ("changed", "content changed (digest differs)")
 
 
 # -- files this user may not read ---------------------------------------------------------
