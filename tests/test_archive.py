@@ -321,7 +321,8 @@ def test_fingerprint_fast_and_full(tmp_path):
     assert changed and "digest" in why
     # a new modification time: fast sees it, full compares content only
     os.utime(p, ns=(stat.st_atime_ns, stat.st_mtime_ns + 10**9))
-    assert fingerprint_changed(fast, fingerprint_file(p, "fast")) == (True, "modification time changed")
+    changed, why = fingerprint_changed(fast, fingerprint_file(p, "fast"))
+    assert changed and why.startswith("modification time changed, same first and last MiB"), why
     again = fingerprint_file(p, "full")
     assert not fingerprint_changed(again | {"mtime_ns": 0}, again)[0]
     # a new size: both see it
@@ -526,6 +527,105 @@ def test_a_reader_refuses_a_named_pipe_without_blocking(tmp_path):
     t.join(30)
     assert not t.is_alive(), "opening a named pipe blocked"
     assert "is a named pipe (FIFO); only regular files can be read" in got["error"]
+
+
+def test_a_touched_file_is_unchanged_when_its_digest_covers_every_byte(tmp_path):
+    # Same bytes, new modification time (touch): a file hashed whole (under 2 MiB in fast
+    # mode) is unchanged and nothing is refiltered; new bytes are "content changed", even
+    # though the modification time changed too. A file hashed in part (fast mode, 2 MiB or
+    # more) still counts a new modification time as a change.
+    from test_bad_inputs import PATTERN, load, pcm16, run, stem, write_wav
+
+    from twinpass.io.store import OutputStore
+    from twinpass.job import prepare
+
+    root = tmp_path / "archive"
+    small = [stem("s", dt.datetime(2026, 3, 1, 0, 0, 10 * i)) + ".wav" for i in range(3)]
+    for i, rel in enumerate(small):
+        write_wav(root, rel, pcm16(1000, seed=i))  # 10 s each at 100 Hz: one segment
+    big = stem("b") + ".wav"
+    write_wav(root, big, pcm16(1_100_000, seed=9))  # 2.2 MB: hashed in part in fast mode
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN})
+    assert {o.status for o in run(cfg).outcomes} == {"complete"}
+
+    def plan():
+        return prepare(cfg, OutputStore.open(cfg.store_location, mode="r")).plan
+
+    def touch(rel):
+        st = (root / rel).stat()
+        os.utime(root / rel, ns=(st.st_atime_ns, st.st_mtime_ns + 5 * 10**9))
+
+    touch(small[1])
+    touch(big)
+    got = {f.relpath: (f.status, f.reason) for f in plan().files}
+    assert {rel: got[rel][0] for rel in small} == dict.fromkeys(small, "unchanged"), got
+    assert got[big][0] == "changed" and got[big][1].startswith("modification time changed, same first and last"), got
+    data = bytearray((root / small[1]).read_bytes())
+    data[-1] ^= 0x01
+    (root / small[1]).write_bytes(bytes(data))
+    touch(small[1])
+    fp = plan().file(small[1])
+    assert (fp.status, fp.reason) == ("changed", "content changed (digest differs)")
+
+
+# -- files this user may not read ---------------------------------------------------------
+
+_DISCOVER_INVALID = """
+import json, sys
+from twinpass.config import load_config
+from twinpass.io.archive import discover
+print(json.dumps({b.path: [b.reason, b.remedy] for b in discover(load_config(sys.argv[1])).invalid}))
+"""
+
+
+def test_files_without_read_permission_are_told_to_be_made_readable(tmp_path):
+    # A file, a raw file's sidecar and a Zarr store's metadata with mode 000: nothing in them
+    # is damaged, so the remedy is permission, not repair. Discovery runs in a process that
+    # file modes apply to (root ignores them: drop the capabilities that let it).
+    import json
+    import shutil
+    import subprocess
+    import sys
+
+    import zarr
+    from test_bad_inputs import pcm16, write_config, write_wav
+
+    from twinpass.config import load_config
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(1000))
+    write_wav(root, "ok.wav", pcm16(1000, seed=1))
+    (root / "r.bin").write_bytes(pcm16(1000).tobytes())
+    (root / "r.bin.toml").write_text('dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
+    zarr.create_array(str(root / "z.zarr"), shape=(1000,), chunks=(500,), dtype="int16", zarr_format=3,
+                      attributes={"sample_rate_hz": 100.0})[:] = pcm16(1000)[:, 0]
+    config = write_config(tmp_path, archive={"include": ["**/*.wav", "**/*.bin", "**/*.zarr"]})
+    found = discover(load_config(config))
+    assert not found.invalid and len(found.files) == 4
+    locked = [root / "a.wav", root / "r.bin.toml", root / "z.zarr" / "zarr.json"]
+    prefix: list[str] = []
+    if os.geteuid() == 0:
+        if not shutil.which("setpriv"):
+            pytest.skip("running as root without setpriv: file modes cannot be made to apply")
+        prefix = ["setpriv", "--bounding-set", "-dac_override,-dac_read_search"]
+    for p in locked:
+        p.chmod(0)
+    try:
+        res = subprocess.run([*prefix, sys.executable, "-c", _DISCOVER_INVALID, str(config)],
+                             capture_output=True, text=True, timeout=300)
+    finally:
+        for p in locked:
+            p.chmod(0o644)
+    assert res.returncode == 0, res.stderr[-2000:]
+    invalid = json.loads(res.stdout.strip().splitlines()[-1])
+    assert sorted(invalid) == ["a.wav", "r.bin", "z.zarr"], invalid
+    for path, what in (("a.wav", "file"), ("r.bin", "sidecar"), ("z.zarr", "store")):
+        reason, remedy = invalid[path]
+        assert "Permission denied" in reason and "repair" not in remedy + reason, (path, reason, remedy)
+        assert remedy == (f"make the {what} readable by the user running twinpass, or leave it out with "
+                          "[archive] exclude"), (path, remedy)
+    assert invalid["a.wav"][0] == "cannot be opened for reading (Permission denied)"
+    assert str(root / "r.bin.toml") in invalid["r.bin"][0] and "zarr.json" in invalid["z.zarr"][0]
 
 
 # -- folders that cannot be listed --------------------------------------------------------

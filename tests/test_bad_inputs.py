@@ -208,6 +208,18 @@ def bad_empty_data_chunk(root: Path) -> Expect:
     return {rel: (["holds no whole frame", "the recording is empty"], [REMEDY_EXCLUDE])}
 
 
+def bad_zero_data_size_before_samples(root: Path) -> Expect:
+    # A recording whose header was never finished: data size 0, the samples after it.
+    rel = stem("unfinished") + ".wav"
+    fmt = fmt_chunk(PCM, 1, RATE, 16)
+    put(root, rel, riff([fmt, chunk(b"data", b"", size=0)]) + pcm16(400).tobytes())
+    at = 12 + len(fmt) + 4
+    return {rel: ([f"declares 0 bytes (size field of the chunk at byte {at})", "800 bytes = 400 whole frames",
+                   "the size field looks wrong"],
+                  [f"rewrite its header with the real sizes (data size 800 at byte {at}, RIFF size {at + 4 + 800 - 8} "
+                   "at byte 4)", REMEDY_EXCLUDE])}
+
+
 def bad_zero_byte_raw(root: Path) -> Expect:
     rel = stem("emptyraw") + ".bin"
     put(root, rel, b"")
@@ -287,6 +299,7 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_zero_byte_wav,
     bad_zero_byte_npy,
     bad_empty_data_chunk,
+    bad_zero_data_size_before_samples,
     bad_zero_byte_raw,
     bad_raw_without_sidecar,
     bad_sidecar_frames_contradict_size,

@@ -550,6 +550,26 @@ def test_block_error_lines_name_attempts_only_where_counted(caplog):
     ]
 
 
+def test_blocks_failing_alike_are_logged_once_per_file(caplog):
+    # The same error in many blocks of a file (a file that cannot be read) is one line and a
+    # count; another file, or another error, still has its own line.
+    from twinpass.engine import ERROR, BlockErrorLog, BlockResult
+
+    errors = BlockErrorLog("north-0", logging.getLogger("twinpass.test-block-errors"))
+    with caplog.at_level(logging.ERROR, logger="twinpass.test-block-errors"):
+        for i in (0, 1, 2, 5, 6, 9):
+            errors.block(BlockResult("a", i, ERROR, error="InputError: a.wav: unreadable\ntrace", attempts=1))
+        errors.block(BlockResult("a", 7, ERROR, error="OSError: disk full", attempts=1))
+        errors.block(BlockResult("b", 3, ERROR, error="InputError: a.wav: unreadable", attempts=1))
+        errors.close()
+    assert [r.getMessage() for r in caplog.records] == [
+        "block 0 of a failed after 1 attempt(s): InputError: a.wav: unreadable",
+        "block 7 of a failed after 1 attempt(s): OSError: disk full",
+        "block 3 of b failed after 1 attempt(s): InputError: a.wav: unreadable",
+        "5 more block(s) of a failed with the same error: blocks 1-2, 5-6, 9",
+    ]
+
+
 def test_run_job_says_which_outputs_lost_their_input(tmp_path):
     # An output whose input left the archive is out of date; the run says so, as the flow does.
     from conftest import make_signal, write_config, write_stream
@@ -578,6 +598,48 @@ def test_a_file_rewritten_with_another_shape_during_a_run_is_named(tmp_path):
     with pytest.raises(InputError, match="changed while this run used it") as err:
         read_segment_window(sources, 0, 100, 2)
     assert str(path) in str(err.value) and "1000 frames x 3 channel(s)" in str(err.value)
+
+
+def test_a_file_cut_short_during_a_run_names_the_setting_and_is_said_once(tmp_path, caplog):
+    # Blocks reopen their files; a WAV cut short after the run planned it fails each of its
+    # blocks alike. The error names the configuration key that reads such a file, and the
+    # log and the status say it once for the file, with the blocks it stands for.
+    from conftest import write_config
+    from twinpass.engine import dask_client, run_segment
+    from twinpass.io.store import OutputStore
+    from twinpass.job import prepare
+    from twinpass.status import collect_status, format_status
+
+    name = "deck/deck_20260301T000000"
+    path = tmp_path / "archive" / f"{name}.wav"
+    path.parent.mkdir(parents=True)
+    x = (np.random.default_rng(3).standard_normal((4000, 2)) * 8000).astype(np.int16)
+    scipy.io.wavfile.write(path, 200, x)  # 20 s at 200 Hz: 10 blocks of 2 s
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")},
+                                   processing={"block_seconds": 2.0, "mode": "halo"}, engine={"retries": 0},
+                                   checks={"seam_samples": 0}))
+    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    prep = prepare(cfg, store)
+    (seg,) = prep.work
+    with open(path, "r+b") as f:
+        f.truncate(44 + 4 * 1000)  # 1000 of the 4000 frames left
+    with dask_client("threads", 1) as client, caplog.at_level(logging.ERROR, logger="twinpass.engine"):
+        (outcome,) = run_segment(seg, prep.designs[200.0], cfg, store, client)
+    assert outcome.status == "failed" and outcome.blocks_failed == 10
+    for error in outcome.errors.values():
+        assert f"{name}.wav: the file changed while this run used it" in error, error
+        assert '[archive] truncated = "warn"' in error and "reader option" not in error, error
+    lines = [r.getMessage() for r in caplog.records if "deck" in r.getMessage()]
+    assert len(lines) == 2, lines
+    assert "failed after 1 attempt(s)" in lines[0] and '[archive] truncated = "warn"' in lines[0], lines
+    shown = int(lines[0].split()[1])  # the block logged first; the others are counted
+    rest = sorted(set(range(10)) - {shown})
+    assert lines[1].startswith(f"9 more block(s) of {name} failed with the same error: blocks "), lines
+    assert [int(b) for part in lines[1].rpartition("blocks ")[2].split(", ")
+            for b in (range(int(part.split("-")[0]), int(part.split("-")[-1]) + 1))] == rest, lines
+    text = format_status(collect_status(OutputStore.open(cfg.store_location, mode="r")))
+    errors = [line for line in text.splitlines() if line.startswith("  error ")]
+    assert len(errors) == 1 and errors[0].startswith(f"  error {name} blocks 0-9: "), errors
 
 
 def test_status_names_the_inputs_the_last_run_left_out_or_found_gone(tmp_path):

@@ -546,6 +546,13 @@ def test_fingerprint_comparison_rules():
     full = _fp("x", mode="full") | {"whole": True}
     assert not fingerprint_changed(full, full | {"mtime_ns": 2})[0]
     assert fingerprint_changed(full, full | {"digest": "y"})[0]
+    # a digest of every byte decides alone: a new modification time with it is no change,
+    # and new bytes are named as such whatever the modification time
+    small = _fp("x", mode="fast")  # whole: True
+    assert fingerprint_changed(small, small | {"mtime_ns": 2}) == (False, "same size and digest (of every byte)")
+    assert fingerprint_changed(small, small | {"mtime_ns": 2, "digest": "y"}) == (
+        True, "content changed (digest differs)")
+    assert fingerprint_changed(fast, fast | {"mtime_ns": 2, "digest": "y"}) == (True, "content changed (digest differs)")
     # across modes: only whole-file digests compare
     assert fingerprint_changed(fast, full)[0]
     assert not fingerprint_changed(_fp("x", mode="fast"), _fp("x", mode="full"))[0]

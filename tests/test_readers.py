@@ -329,6 +329,39 @@ def test_truncated_data_chunk_with_warn_reads_whole_frames(tmp_path):
             rec.read(0, 501)
 
 
+def test_zero_data_size_followed_by_frames_names_the_sizes_to_write(tmp_path):
+    # A recorder writes its header with sizes 0 and fills them in when it closes the file; one
+    # that stopped first leaves 0 in the data chunk's size field (Microsoft "Multiple channel
+    # audio data and WAVE files": ckSize at byte 4 of a chunk; RIFF size = file size - 8).
+    x = _ints("int16", (1000, 2))
+    fmt = fmt_chunk(PCM, 2, 1000, 16)
+    samples = x.astype("<i2").tobytes()
+    good = riff([fmt, chunk(b"data", samples)])
+    path = _write(tmp_path / "open.wav", riff([fmt, chunk(b"data", b"", size=0)]) + samples + b"\1\2")
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(path, options={"truncated": "warn"})
+    msg = str(err.value)
+    at = 12 + len(fmt) + 4  # the data chunk's size field
+    assert f"declares 0 bytes (size field of the chunk at byte {at})" in msg, msg
+    assert "4002 bytes = 1000 whole frames of 4 bytes follow it to the end of the file" in msg, msg
+    assert "the size field looks wrong" in msg and "recording is empty" not in msg, msg
+    riff_size = struct.unpack("<I", good[4:8])[0]
+    assert f"data size 4000 at byte {at}, RIFF size {riff_size} at byte 4, and cut the last 2 bytes" in msg, msg
+    # with the sizes written as the message says, the file reads in full
+    fixed = bytearray(path.read_bytes()[:-2])
+    fixed[at:at + 4], fixed[4:8] = struct.pack("<I", 4000), struct.pack("<I", riff_size)
+    with open_recording(_write(tmp_path / "fixed.wav", bytes(fixed))) as rec:
+        assert np.array_equal(rec.read(0, 1000), x / 32768.0)
+
+
+def test_zero_data_size_followed_by_a_chunk_is_an_empty_recording(tmp_path):
+    # A data chunk that really is empty, with a LIST chunk after it: no sizes to rewrite.
+    path = _write(tmp_path / "empty.wav", riff([fmt_chunk(PCM, 2, 1000, 16), chunk(b"data", b""),
+                                                chunk(b"LIST", b"INFOISFT" + struct.pack("<I", 4) + b"abc\0")]))
+    with pytest.raises(CorruptInputError, match="holds no whole frame .*the recording is empty"):
+        open_recording(path)
+
+
 @pytest.mark.parametrize(
     ("tag", "label"), [(MULAW, r"0x0007 \(mu-law\)"), (ALAW, r"0x0006 \(A-law\)"), (ADPCM, r"0x0002 .*ADPCM")]
 )
@@ -803,6 +836,31 @@ def test_zarr_2d_with_attributes(tmp_path):
         assert rec.info.start_time == dt.datetime(2022, 1, 2, 3, 4, 5, tzinfo=UTC)
         for a_, b_ in _windows(1000):
             assert np.array_equal(rec.read(a_, b_), x[a_:b_] / 32768.0)
+
+
+def test_damaged_zarr_chunks_are_named_by_key_and_frames(tmp_path):
+    # Chunk keys as zarr-python stores them: format 3 "c/<row>/<col>" (default chunk key
+    # encoding), format 2 "<row>" for a 1-D array. A chunk file overwritten with bytes that no
+    # codec decodes must be named, not the whole window read.
+    x = RNG.normal(0, 0.3, (12000, 2)).astype("float32")
+    store = tmp_path / "v3.zarr"
+    zarr.create_array(store, shape=x.shape, chunks=(1000, 1), dtype="float32", zarr_format=3)[:] = x
+    for key in ("c/5/1", "c/7/0"):
+        (store / key).write_bytes(b"not a zstd frame")
+    with open_recording(store, options={"sample_rate_hz": 100}) as rec:
+        assert np.array_equal(rec.read(0, 5000), x[:5000].astype(np.float64))  # the rest reads
+        with pytest.raises(CorruptInputError) as err:
+            rec.read(2500, 12000)
+    msg = str(err.value)
+    assert f"{store}: frames [2500, 12000) cannot be read: chunks c/5/1 (frames 5000-6000), " in msg, msg
+    assert "c/7/0 (frames 7000-8000) of the store are damaged" in msg and "c/6/" not in msg, msg
+
+    v2 = tmp_path / "v2.zarr"
+    zarr.create_array(v2, shape=(3000,), chunks=(999,), dtype="int16", zarr_format=2)[:] = np.arange(3000)
+    (v2 / "1").write_bytes(b"garbage")
+    with open_recording(v2, options={"sample_rate_hz": 100}) as rec, pytest.raises(CorruptInputError) as err:
+        rec.read(0, 3000)
+    assert "frames [0, 3000) cannot be read: chunk 1 (frames 999-1998) of the store is damaged (" in str(err.value)
 
 
 def test_zarr_array_inside_group(tmp_path):

@@ -47,11 +47,12 @@ from . import allocator, faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.checks import CANCELLED, was_cancelled
-from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, blocks_touching, choose_layout
+from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, block_list, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.types import RESETTING_DIGEST, Design
 from .errors import ConfigError, InputError, RunStoppedError, StoreError, TwinpassError
+from .io.readers._common import with_config_keys
 from .io.readers.base import ReaderSpec
 
 log = logging.getLogger("twinpass.engine")
@@ -95,7 +96,16 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
         hi = min(b, src.seg_offset + src.frames)
         if lo >= hi:
             continue
-        with src.spec.open() as rec:
+        try:
+            opened = src.spec.open()
+        except InputError as exc:  # it opened when the run planned it
+            raise type(exc)(
+                f"{src.spec.path}: the file changed while this run used it: "
+                f"{with_config_keys(str(exc)).removeprefix(f'{src.spec.path}: ')}; its blocks are recorded as "
+                "not done: rerun to filter it afresh",
+                path=src.spec.path,
+            ) from None
+        with opened as rec:
             if (rec.info.frames, rec.info.channels) != (src.frames, channels):
                 raise InputError(
                     f"{src.spec.path}: the file changed while this run used it: it now holds {rec.info.frames} "
@@ -987,12 +997,13 @@ def lost_task_error(exc: BaseException) -> str:
 
 
 class BlockErrorLog:
-    """Logs the blocks of one segment recorded ``ERROR``: each failed block in a line of its
-    own, the cancelled ones in a single line.
+    """Logs the blocks of one segment recorded ``ERROR``: each failure of a file in a line of
+    its own, the further blocks of that file failing with the same error in one line, and the
+    cancelled ones in a single line.
 
-    Stopping a run cancels every block not finished; a line for each would bury the
-    failures that matter. Call :meth:`block` with each block result and :meth:`close` once
-    the segment's results are in.
+    Stopping a run cancels every block not finished, and a file that cannot be read fails
+    every block alike; a line for each would bury the failures that matter. Call
+    :meth:`block` with each block result and :meth:`close` once the segment's results are in.
 
     Parameters
     ----------
@@ -1008,6 +1019,8 @@ class BlockErrorLog:
         self.segment_id = segment_id
         self.log = logger
         self.cancelled = 0
+        self.repeats: dict[tuple[str, str], list[int]] = {}
+        """(array name, first line of the error) logged -> the blocks failing alike since."""
 
     def block(self, res: BlockResult) -> None:
         """Log ``res`` if it failed (naming its attempts where counted); count it if it was cancelled."""
@@ -1016,14 +1029,28 @@ class BlockErrorLog:
         first = (res.error or "").splitlines()[0] if res.error else ""
         if was_cancelled(first):
             self.cancelled += 1
-        elif res.attempts:
+        elif (res.array_name, first) in self.repeats:
+            self.repeats[res.array_name, first].append(res.block_index)
+        else:
+            self.repeats[res.array_name, first] = []
+            self._failed(res, first)
+
+    def _failed(self, res: BlockResult, first: str) -> None:
+        assert self.log is not None
+        if res.attempts:
             self.log.error("block %d of %s failed after %d attempt(s): %s", res.block_index, res.array_name,
                            res.attempts, first)
         else:
             self.log.error("block %d of %s failed: %s", res.block_index, res.array_name, first)
 
     def close(self) -> None:
-        """Log the cancelled blocks counted so far, in one line (nothing if none)."""
+        """Log the blocks that failed as one logged before them, a line per file and error, and
+        the cancelled blocks counted so far, in one line (nothing if none)."""
+        for (name, _first), blocks in self.repeats.items():
+            if blocks and self.log is not None:
+                self.log.error("%d more block(s) of %s failed with the same error: %s", len(blocks), name,
+                               block_list(blocks))
+        self.repeats = {}
         if self.cancelled and self.log is not None:
             where = f"segment {self.segment_id}: " if self.segment_id else ""
             self.log.warning("%s%d block(s) cancelled before they finished (the run was stopped); they are "

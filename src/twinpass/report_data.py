@@ -20,7 +20,7 @@ from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
 from .report import DEFAULT_CAUTIONS, UNRECORDED_KIND, render_report
-from .status import collect_status
+from .status import collect_status, error_groups
 
 OVERLAY_SECONDS = 4.0
 """Width of the before/after overlay around the largest transient (s)."""
@@ -297,8 +297,7 @@ def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
          [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
         ("Inputs that failed in the last run", [f"{k}: {v}" for k, v in sorted(failed.items())]),
         ("Blocks that failed (the next run tries them again)",
-         [f"{f['source']} block {b}: {msg}" for f in files for b, msg in sorted((f.get("errors") or {}).items(),
-                                                                                key=lambda e: int(e[0]))]),
+         [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]),
         ("Outputs whose input is no longer in the archive (kept as they were)", list(status.get("gone") or [])),
         ("Outputs with chunk files missing (deleted or lost since written; they would read as zeros; the next "
          "run reruns their blocks)",

@@ -7,10 +7,12 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
+from collections.abc import Mapping
 from typing import Any
 
 from .config import load_config
 from .core import checks as _checks
+from .core.blocks import block_list
 from .errors import StoreError
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
@@ -33,6 +35,15 @@ def open_target(target: str) -> tuple[OutputStore, str]:
 
 LISTED = 20
 """Files listed by name under each note of the status table (``--json`` has them all)."""
+
+
+def error_groups(errors: Mapping[str, str]) -> list[tuple[str, str]]:
+    """A file's block errors (block index -> error), the blocks failing with the same error
+    together: ``[(blocks, error)]`` in block order, ``blocks`` as :func:`block_list` says them."""
+    alike: dict[str, list[int]] = {}
+    for b, msg in sorted(errors.items(), key=lambda e: int(e[0])):
+        alike.setdefault(msg, []).append(int(b))
+    return [(block_list(blocks), msg) for msg, blocks in alike.items()]
 
 
 def _worst(summary: dict[str, Any], key: str) -> Any:
@@ -149,8 +160,8 @@ def format_status(status: dict[str, Any]) -> str:
                      f"{last.get('start')} to {last.get('end') or '-'}{stopped}: "
                      + ", ".join(f"{k} {v}" for k, v in counts.items()))
     for f in status["files"]:
-        for b, msg in f["errors"].items():
-            lines.append(f"  error {f['name']} block {b}: {msg}")
+        for blocks, msg in error_groups(f["errors"]):
+            lines.append(f"  error {f['name']} {blocks}: {msg}")
     lost = [f for f in status["files"] if f.get("chunks_missing")]
     if lost:
         lines.append(f"outputs with chunk files missing (deleted or lost since written; they would read as zeros; "

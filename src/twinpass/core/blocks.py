@@ -239,3 +239,15 @@ def blocks_touching(spans: list[tuple[int, int]], redo: tuple[tuple[int, int], .
         if any(s < b and a < e for a, b in redo):
             out.append(i)
     return out
+
+
+def block_list(indices: list[int]) -> str:
+    """Block indices for a message: ``"block 4"``, ``"blocks 0-9"``, ``"blocks 1-3, 7"``."""
+    runs: list[list[int]] = []
+    for i in sorted(set(indices)):
+        if runs and i == runs[-1][1] + 1:
+            runs[-1][1] = i
+        else:
+            runs.append([i, i])
+    text = ", ".join(str(a) if a == b else f"{a}-{b}" for a, b in runs)
+    return f"block {text}" if len(runs) == 1 and runs[0][0] == runs[0][1] else f"blocks {text}"

@@ -97,10 +97,14 @@ def fingerprint_changed(old: Mapping[str, Any] | None, new: Mapping[str, Any] | 
 
     Notes
     -----
-    Fast mode: changed when size, modification time or digest differ. Full mode: when
-    size or digest differ (the modification time is not used). Fingerprints taken in
-    different modes compare their digests only when both cover the whole file (small
-    files); otherwise the file counts as changed.
+    Changed when the size or the digest differ (the digest is compared first, so a file whose
+    bytes changed is said to have changed content, whatever its modification time). A digest
+    that covers every byte (``full`` mode, and files under 2 MiB in ``fast`` mode) decides
+    alone: a new modification time with the same bytes (``touch``, a copy) is no change. A
+    digest of part of the file (``fast`` mode, larger files: the first and last MiB) cannot
+    see the middle, so there a new modification time counts as a change. Fingerprints taken
+    in different modes compare their digests only when both cover the whole file; otherwise
+    the file counts as changed.
 
     Then ``decoding`` (how the file decodes to samples: sample format, byte order, gain,
     offset, header bytes, rate, start time..., see ``twinpass.io.fingerprint.decoding_of``):
@@ -116,19 +120,21 @@ def fingerprint_changed(old: Mapping[str, Any] | None, new: Mapping[str, Any] | 
     if old.get("algorithm") != new.get("algorithm"):
         return True, f"fingerprint algorithm changed ({old.get('algorithm')} -> {new.get('algorithm')})"
     mode_old, mode_new = old.get("mode"), new.get("mode")
-    if mode_old != mode_new:
-        if not (old.get("whole") and new.get("whole")):
-            return True, f"fingerprint mode changed ({mode_old} -> {mode_new}); the file is compared afresh"
-    elif mode_new == "fast" and old.get("mtime_ns") != new.get("mtime_ns"):
-        return True, "modification time changed"
+    whole = bool(old.get("whole") and new.get("whole"))
+    if mode_old != mode_new and not whole:
+        return True, f"fingerprint mode changed ({mode_old} -> {mode_new}); the file is compared afresh"
     if old["digest"] != new["digest"]:
         return True, "content changed (digest differs)"
+    partial = mode_old == mode_new == "fast" and not whole
+    if partial and old.get("mtime_ns") != new.get("mtime_ns"):
+        return True, ("modification time changed, same first and last MiB (fast mode hashes no more of a file "
+                      'this large; [archive] fingerprint = "full" compares every byte)')
     decoded = _decoding_changed(old, new)
     if decoded is not None:
         return True, decoded
-    if mode_old == mode_new == "fast":
+    if partial:
         return False, "same size, modification time and digest"
-    return False, "same size and digest"
+    return False, "same size and digest (of every byte)"
 
 
 def _decoding_changed(old: Mapping[str, Any], new: Mapping[str, Any]) -> str | None:

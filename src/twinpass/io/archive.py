@@ -134,7 +134,14 @@ from twinpass.core.nonfinite import (
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
-from twinpass.io.readers._common import TRUNCATED_HINT, WRAPPED_HINT, WRAPPED_REWRITE, file_kind
+from twinpass.io.readers._common import (
+    HEADER_REWRITE,
+    READABLE,
+    TRUNCATED_HINT,
+    WRAPPED_HINT,
+    WRAPPED_REWRITE,
+    file_kind,
+)
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_util import array_name
@@ -682,7 +689,15 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
                 'rewrite the file as RF64 (or W64), or set [archive] wrapped_sizes = "read" to read every '
                 "whole frame up to the end of the file, or " + _REMEDY_EXCLUDE
             )
-        raise _Bad(f"cannot be opened: {text}", remedy) from None
+        if f"; {HEADER_REWRITE}" in text:
+            # the reader names the sizes to write: that is the remedy
+            text, _, sizes = text.partition(f"; {HEADER_REWRITE}")
+            remedy = f"{HEADER_REWRITE}{sizes}, or leave it out with [archive] exclude"
+        if text.endswith(READABLE) and "; make " in text:
+            # a file, sidecar or store this user may not read: nothing to repair in it
+            text, _, whom = text.rpartition("; make ")
+            remedy = f"make {whom}, or leave it out with [archive] exclude"
+        raise _Bad(text if text.startswith("cannot be opened") else f"cannot be opened: {text}", remedy) from None
     if info.frames <= 0:
         raise _Bad("holds no samples (0 frames)", "remove it or leave it out with [archive] exclude")
     if info.sample_rate_hz is None:

@@ -6,7 +6,9 @@ A fingerprint says whether an input file changed since its output was written:
   the last MiB;
 * ``full``: size and a BLAKE2b digest of every byte (read in 1 MiB chunks).
 
-Files under 2 MiB are hashed whole in both modes (``whole`` is then true). Folders that
+Files under 2 MiB are hashed whole in both modes (``whole`` is then true), and a digest of
+every byte decides alone: the modification time of such a file is kept but not compared, so
+``touch`` or a copy that keeps the bytes does not make it changed. Folders that
 hold one recording (Zarr arrays) are fingerprinted by their file list (fast) or by every
 byte of every file (full). The comparison rules live in
 :func:`twinpass.core.plan.fingerprint_changed` (re-exported here).

@@ -56,7 +56,27 @@ WRAPPED_HINT = 'to read every whole frame up to the end of the file set the read
 """The last clause of the WAV reader's error for a plain RIFF file over 4 GiB whose 32-bit sizes
 wrapped (after "; "); discovery gives the configuration key in its remedy instead."""
 WRAPPED_MODES = ("error", "read")
+CONFIG_HINTS = {
+    TRUNCATED_HINT: 'to read up to the last whole frame set [archive] truncated = "warn"',
+    WRAPPED_HINT: 'to read every whole frame up to the end of the file set [archive] wrapped_sizes = "read"',
+}
+"""Each reader-option hint above as the configuration key a job sets it with."""
+
+
+def with_config_keys(text: str) -> str:
+    """``text`` (a reader's error) with its reader-option hints naming the configuration keys."""
+    for hint, key in CONFIG_HINTS.items():
+        text = text.replace(hint, key)
+    return text
+HEADER_REWRITE = "rewrite its header with the real sizes"
+"""The start of the WAV reader's remedy for a data chunk whose size field says 0 while frames
+follow it (after "; "); discovery makes it the remedy."""
 WRAPPED_REWRITE = "Rewrite the file as RF64 (or W64)"
+
+
+READABLE = "readable by the user running twinpass"
+"""The end of a reader's error for a file it may not read, after "; make ...": the remedy
+(discovery gives it as such)."""
 
 
 def is_url(path: str) -> bool:
@@ -294,6 +314,10 @@ def open_binary(path: str) -> tuple[BinaryIO, int]:
         raise InputError(f"{path}: no such file", path=path) from None
     except IsADirectoryError:
         raise InputError(f"{path}: is a directory, not a file", path=path) from None
+    except PermissionError as exc:
+        raise InputError(
+            f"{path}: cannot be opened for reading ({exc.strerror or exc}); make the file {READABLE}", path=path
+        ) from None
     except OSError as exc:
         raise InputError(f"{path}: cannot be opened for reading ({exc.strerror or exc})", path=path) from None
     try:

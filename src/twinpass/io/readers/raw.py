@@ -35,8 +35,9 @@ from typing import Any, BinaryIO
 
 import numpy as np
 
-from ...errors import CorruptInputError, UnsupportedFormatError
+from ...errors import CorruptInputError, InputError, UnsupportedFormatError
 from ._common import (
+    READABLE,
     Codec,
     FileReader,
     InterleavedRecording,
@@ -100,6 +101,10 @@ def _load_sidecar(path: str, side: str) -> dict[str, Any]:
     try:
         with open(side, "rb") as f:
             text = f.read(_SIDECAR_MAX_BYTES + 1)
+    except PermissionError as exc:
+        raise InputError(
+            f"{path}: cannot read its sidecar {side} ({exc.strerror or exc}); make the sidecar {READABLE}", path=path
+        ) from None
     except OSError as exc:
         raise CorruptInputError(f"{path}: cannot read its sidecar {side} ({exc})", path=path) from None
     if len(text) > _SIDECAR_MAX_BYTES:

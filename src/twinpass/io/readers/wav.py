@@ -33,6 +33,11 @@ the file most likely had its sizes wrapped at 4 GiB by a writer that did not swi
 reading the declared size would lose most samples, so this is an error by default; with
 ``"read"`` the data runs to the end of the file (its whole frames) and a warning says so.
 
+A ``data`` chunk whose size field says 0 while whole frames, not a chunk, follow it to the end
+of the file is the header of a recorder that stopped before it wrote the real sizes: an error
+naming the sizes to write, whatever the options (``truncated`` is for data shorter than its
+size, ``wrapped_sizes`` for files over 4 GiB).
+
 Start time
 ----------
 From a ``bext`` chunk (EBU Tech 3285) when present: ``TimeReference`` counts samples since
@@ -53,6 +58,7 @@ from typing import Any, BinaryIO
 
 from ...errors import CorruptInputError, UnsupportedFormatError
 from ._common import (
+    HEADER_REWRITE,
     TRUNCATED_HINT,
     UTC,
     WRAPPED_HINT,
@@ -107,6 +113,7 @@ class _Layout:
     data_chunk: int = -1
     data_offset: int = -1
     data_size: int = 0
+    data_size_at: int = -1
     bext: bytes | None = None
     warnings: list[str] = field(default_factory=list)
 
@@ -196,13 +203,15 @@ def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout
                 lay.warnings.append(msg + "; the rest of the file was ignored")
                 break
             raise CorruptInputError(msg, path=path)
-        if rid != b"RIFF" and csize == _U32_MAX:
+        in_ds64 = rid != b"RIFF" and csize == _U32_MAX
+        if in_ds64:
             csize = ds64_data if cid == b"data" and ds64_data is not None else table.get(cid, csize)
         body = pos + 8
         end = body + csize
         if cid == b"data":
             if lay.data_offset < 0:
                 lay.data_chunk, lay.data_offset, lay.data_size = pos, body, csize
+                lay.data_size_at = 28 if in_ds64 else pos + 4  # ds64: RIFF size, then data size
                 if end > size:
                     break  # truncated data: judged once fmt is known
                 if end > riff_end:
@@ -258,7 +267,40 @@ def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout
         )
     elif riff_end < size - 1:
         lay.warnings.append(f"{size - riff_end} bytes after the end of the RIFF chunk (byte {riff_end}) ignored")
+    if lay.data_size == 0:
+        _zero_data_size(path, fh, lay, size)
     return lay
+
+
+def _zero_data_size(path: str, fh: BinaryIO, lay: _Layout, size: int) -> None:
+    """A data chunk declaring 0 bytes, followed by whole frames up to the end of the file
+    rather than by another chunk: the sizes a recorder writes before it starts and fills in
+    when it closes the file, left as they were (it stopped first). Raises, naming the sizes to
+    write; a data chunk that is really empty (nothing after it, or a chunk) is left to the
+    caller, which reports an empty recording."""
+    align = max(lay.block_align, 1)
+    follow = size - lay.data_offset
+    frames = follow // align
+    if frames == 0:
+        return
+    nxt = pread(fh, lay.data_offset, 8)
+    if _printable(nxt[:4]) and lay.data_offset + 8 + struct.unpack("<I", nxt[4:])[0] <= size:
+        return  # a chunk follows the empty data chunk
+    data = frames * align
+    rest = follow - data
+    riff = lay.data_offset + data + (data & 1) - 8
+    where = "in the ds64 chunk" if lay.data_size_at == 28 else "of the chunk"
+    riff_at = "at byte 4" if lay.container == "RIFF" else "in the ds64 chunk at byte 20"
+    raise CorruptInputError(
+        f"{path}: the data chunk at byte {lay.data_chunk} declares 0 bytes (size field {where} at byte "
+        f"{lay.data_size_at}), but {follow} bytes = {frames} whole frames of {align} bytes follow it to the "
+        "end of the file: the size field looks wrong (a recorder that stopped before writing the real sizes "
+        f"leaves 0 there); {HEADER_REWRITE} (data size {data} at byte {lay.data_size_at}, "
+        f"RIFF size {riff} {riff_at}"
+        + (f", and cut the last {rest} bytes, less than a frame" if rest else "")
+        + ")",
+        path=path,
+    )
 
 
 def _wrapped_sizes(path: str, lay: _Layout, size: int, riff_size: int, trailing: int, mode: str) -> None:

@@ -18,6 +18,7 @@ import numpy as np
 
 from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
 from ._common import (
+    READABLE,
     Codec,
     WindowRecording,
     check_options,
@@ -31,6 +32,8 @@ from ._common import (
 from .base import Reader, ReaderSpec, RecordingInfo
 
 _MARKERS = ("zarr.json", ".zarray", ".zgroup")
+_NAMED = 5
+"""Damaged chunks named in an error (the rest are counted)."""
 
 
 def split_location(path: str) -> tuple[str, str]:
@@ -61,12 +64,36 @@ class ZarrRecording(WindowRecording):
             block = np.asarray(self._array[start:stop])
         except Exception as exc:  # a damaged chunk: codec and store errors vary (a missing chunk reads
             # as the array's fill value: Zarr writes none for chunks that equal it)
-            raise CorruptInputError(
-                f"{self.info.path}: frames [{start}, {stop}) cannot be read "
-                f"({type(exc).__name__}: {exc}); a chunk of the store is damaged",
-                path=self.info.path,
-            ) from exc
+            raise self._damage(start, stop, exc) from exc
         return self._codec.to_float(block).reshape(stop - start, self.info.channels)
+
+    def _damage(self, start: int, stop: int, exc: Exception) -> CorruptInputError:
+        """The error for frames [start, stop) that failed with ``exc``, naming the chunks (store
+        key and frames; shards, in a sharded array) that fail when read one at a time."""
+        a = self._array
+        grid = tuple(int(n) for n in (getattr(a, "shards", None) or a.chunks))
+        cols = -(-int(a.shape[1]) // grid[1]) if len(grid) == 2 else 1
+        bad: list[str] = []
+        first: Exception = exc
+        for row in range(start // grid[0], -(-stop // grid[0])):
+            lo, hi = row * grid[0], min((row + 1) * grid[0], self.info.frames)
+            for col in range(cols):
+                at = (row,) if len(grid) == 1 else (row, col)
+                try:
+                    a[tuple(slice(c * n, (c + 1) * n) for c, n in zip(at, grid))]
+                except Exception as one:
+                    first = first if bad else one
+                    bad.append(f"{a.metadata.encode_chunk_key(at)} (frames {lo}-{hi})")
+        if not bad:
+            what = "a chunk of the store is damaged"
+        else:
+            more = f" and {len(bad) - _NAMED} more" if len(bad) > _NAMED else ""
+            what = (f"chunk {bad[0]} of the store is damaged" if len(bad) == 1
+                    else f"chunks {', '.join(bad[:_NAMED])}{more} of the store are damaged")
+        return CorruptInputError(
+            f"{self.info.path}: frames [{start}, {stop}) cannot be read: {what} ({type(first).__name__}: {first})",
+            path=self.info.path,
+        )
 
     def survey(self) -> tuple[str, ...]:
         """A note when chunks of the array are absent: they read as its fill value, which is
@@ -162,6 +189,12 @@ class ZarrReader(Reader):
     @staticmethod
     def _open_error(zarr: Any, store: str, arr_path: str, exc: Exception) -> InputError:
         shown = f"{store}#{arr_path}" if arr_path else store
+        if isinstance(exc, PermissionError):
+            return InputError(
+                f"{shown}: {exc.filename or 'a file of the store'} cannot be opened for reading "
+                f"({exc.strerror or exc}); make the store {READABLE}",
+                path=store,
+            )
         try:
             group = zarr.open_group(store=store, path=arr_path or None, mode="r")
             names = [k for k, v in group.members(max_depth=None) if isinstance(v, zarr.Array)]
