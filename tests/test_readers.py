@@ -354,6 +354,24 @@ def test_zero_data_size_followed_by_frames_names_the_sizes_to_write(tmp_path):
         assert np.array_equal(rec.read(0, 1000), x / 32768.0)
 
 
+@pytest.mark.parametrize("data_size", [0, 4000])
+def test_zero_riff_size_names_the_sizes_to_write(tmp_path, data_size):
+    # A recorder that stopped before closing the file may leave the RIFF size at 0 as well
+    # (Microsoft "Multiple channel audio data and WAVE files": RIFF size = file size - 8).
+    x = _ints("int16", (1000, 2))
+    fmt = fmt_chunk(PCM, 2, 1000, 16)
+    samples = x.astype("<i2").tobytes()
+    good = riff([fmt, chunk(b"data", samples)])
+    blob = bytearray(riff([fmt, chunk(b"data", b"", size=data_size)]) + samples)
+    blob[4:8] = struct.pack("<I", 0)
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(_write(tmp_path / "open.wav", bytes(blob)))
+    msg = str(err.value)
+    riff_size = struct.unpack("<I", good[4:8])[0]
+    assert "rewrite its header with the real sizes" in msg and f"RIFF size {riff_size} at byte 4" in msg, msg
+    assert "recorder that stopped" in msg and "the header is damaged" not in msg, msg
+
+
 def test_zero_data_size_followed_by_a_chunk_is_an_empty_recording(tmp_path):
     # A data chunk that really is empty, with a LIST chunk after it: no sizes to rewrite.
     path = _write(tmp_path / "empty.wav", riff([fmt_chunk(PCM, 2, 1000, 16), chunk(b"data", b""),

@@ -179,13 +179,17 @@ def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout
         if riff_size == _U32_MAX:
             riff_size = riff64
         pos = 20 + ds_size + (ds_size & 1)
-    if riff_size < 4:
+    # A RIFF size of 0: left unwritten, like the data size, by a recorder that stopped before
+    # it closed the file. The chunks are walked to the end of the file, and the sizes to write
+    # are named below.
+    riff_unwritten = rid == b"RIFF" and riff_size == 0
+    if riff_size < 4 and not riff_unwritten:
         raise CorruptInputError(
             f"{path}: the RIFF size at byte 4 is {riff_size}; the header is damaged "
             "(it should be the file size minus 8)",
             path=path,
         )
-    riff_end = 8 + riff_size
+    riff_end = size if riff_unwritten else 8 + riff_size
     walk_end = min(riff_end, size)
 
     for _ in range(_MAX_CHUNKS):
@@ -269,6 +273,13 @@ def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout
         lay.warnings.append(f"{size - riff_end} bytes after the end of the RIFF chunk (byte {riff_end}) ignored")
     if lay.data_size == 0:
         _zero_data_size(path, fh, lay, size)
+    if riff_unwritten and lay.data_size:
+        raise CorruptInputError(
+            f"{path}: the RIFF size at byte 4 is 0 while the data chunk at byte {lay.data_chunk} declares "
+            f"{lay.data_size} bytes: the size field looks left unwritten (a recorder that stopped before "
+            f"writing the real sizes leaves 0 there); {HEADER_REWRITE} (RIFF size {size - 8} at byte 4)",
+            path=path,
+        )
     return lay
 
 
