@@ -373,6 +373,23 @@ def test_end_extension_longer_than_the_halo_reads_across_several_files(tmp_path)
     assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
 
 
+def test_a_local_clusters_closing_heartbeat_race_is_not_logged(caplog):
+    # distributed's local workers may log "Failed to communicate with scheduler during
+    # heartbeat" with a traceback when the cluster closes under them (a known race of
+    # distributed's LocalCluster shutdown): not logged while twinpass closes its cluster;
+    # other worker errors are, and the message is again once the cluster is closed.
+    from twinpass.engine import _quiet_worker_heartbeats
+
+    worker = logging.getLogger("distributed.worker")
+    with caplog.at_level(logging.ERROR, logger="distributed.worker"):
+        with _quiet_worker_heartbeats():
+            worker.error("Failed to communicate with scheduler during heartbeat.")
+            worker.error("Compute Failed")
+        worker.error("Failed to communicate with scheduler during heartbeat.")
+    assert [r.getMessage() for r in caplog.records] == [
+        "Compute Failed", "Failed to communicate with scheduler during heartbeat."]
+
+
 def test_local_clusters_poll_their_monitors_rarely():
     # The local cluster twinpass starts for "threads" runs without a dashboard, Dask's
     # profiler and disk monitor, and polls memory and the host each second or two.

@@ -392,10 +392,31 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     try:
         yield client
     finally:
-        client.close()
-        cluster.close()
+        with _quiet_worker_heartbeats():
+            client.close()
+            cluster.close()
         if not processes:
             allocator.release_free_memory()
+
+
+class _ClosingHeartbeat(logging.Filter):
+    """Drops the error a local worker logs, with its traceback, when its heartbeat meets a
+    scheduler that is closing (a known race of closing a local cluster in distributed; the
+    run's work is over by then, so it says nothing about the run)."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return not str(record.msg).startswith("Failed to communicate with scheduler during heartbeat")
+
+
+@contextlib.contextmanager
+def _quiet_worker_heartbeats() -> Iterator[None]:
+    """While a local cluster closes, its in-process workers' heartbeat errors are not logged."""
+    worker_log, quiet = logging.getLogger("distributed.worker"), _ClosingHeartbeat()
+    worker_log.addFilter(quiet)
+    try:
+        yield
+    finally:
+        worker_log.removeFilter(quiet)
 
 
 class ClientStart:
