@@ -130,6 +130,20 @@ def test_overall_response_matches_forward_backward_filtering_of_tones(family: st
         assert np.max(np.abs(y[core] - gain * x[core])) < 1e-6
 
 
+def test_fir_response_of_long_taps_matches_scipy_freqz() -> None:
+    # Reference: scipy.signal.freqz (Horner's rule at the given frequencies).
+    fs = 48000.0
+    spec = ResponseSpec(
+        kind="bandpass", family="fir", order=20000, cutoff_hz=(1000.0, 1100.0),
+        cutoff_means="per-pass", max_taps=200001,
+    )
+    design = design_filter(spec, fs)
+    rng = np.random.default_rng(3)
+    f = np.concatenate([[0.0, 1050.0, fs / 2], rng.uniform(0.0, fs / 2, 500)])
+    expected = signal.freqz(design.taps, 1.0, worN=f, fs=fs)[1]
+    assert np.max(np.abs(per_pass_response(design, f) - expected)) < 1e-11
+
+
 # ----------------------------------------------------------------------------- minimum orders
 
 

@@ -367,10 +367,37 @@ def _validate_notch(spec: ResponseSpec, nyq: float) -> None:
 def _per_pass(sos: np.ndarray | None, taps: np.ndarray | None, freqs: np.ndarray, fs: float) -> np.ndarray:
     if sos is not None:
         _, h = signal.sosfreqz(sos, worN=freqs, fs=fs)
-    else:
-        assert taps is not None
-        _, h = signal.freqz(taps, 1.0, worN=freqs, fs=fs)
-    return np.asarray(h, dtype=complex)
+        return np.asarray(h, dtype=complex)
+    assert taps is not None
+    return _fir_response(taps, freqs, fs)
+
+
+def _fir_response(taps: np.ndarray, freqs: np.ndarray, fs: float) -> np.ndarray:
+    """Response ``sum_n taps[n] exp(-2j pi f n / fs)`` of FIR taps at frequencies ``freqs`` (Hz, 1-D).
+
+    The tap index is split as ``n = a B + b`` with blocks of ``B ~ sqrt(M)`` of the M taps, so
+    the sum is ``sum_a exp(-j w a B) (E @ taps[aB:aB + B])`` with ``E[:, b] = exp(-j w b)``:
+    M multiply-adds per frequency in one matrix product and about ``2 sqrt(M)`` complex
+    exponentials, where Horner's rule (``scipy.signal.freqz`` at given frequencies) makes
+    M passes over the frequencies. Each exponent is computed directly, not by repeated
+    multiplication.
+    """
+    taps = np.asarray(taps, dtype=float)
+    w = 2.0 * math.pi * np.asarray(freqs, dtype=float) / fs
+    block = max(1, math.isqrt(taps.size))
+    n_blocks = -(-taps.size // block)
+    table = np.zeros(n_blocks * block)
+    table[: taps.size] = taps
+    table = table.reshape(n_blocks, block).T  # table[b, a] = taps[a * block + b]
+    inner_n = np.arange(block, dtype=float)
+    outer_n = np.arange(n_blocks, dtype=float) * block
+    out = np.empty(w.shape, dtype=complex)
+    chunk = max(1, 2**20 // max(block, n_blocks))
+    for start in range(0, w.size, chunk):
+        wc = w[start : start + chunk, None]
+        partial = np.exp(-1j * wc * inner_n) @ table
+        out[start : start + chunk] = np.sum(partial * np.exp(-1j * wc * outer_n), axis=1)
+    return out
 
 
 def per_pass_response(design: Design, freqs_hz: Any) -> np.ndarray:
