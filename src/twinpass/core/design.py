@@ -584,7 +584,10 @@ def _crossings(
 ) -> list[float]:
     """Frequencies (Hz) where the overall gain crosses ``level_db``, refined by ``brentq``.
 
-    ``per_pass_db`` is the per-pass gain (dB) already evaluated on ``grid`` (Hz).
+    ``per_pass_db`` is the per-pass gain (dB) already evaluated on ``grid`` (Hz). A grid
+    point lying on the level (a cutoff placed there) may change sign between the grid's
+    evaluation and a single one by rounding; when the single evaluations of a bracket's ends
+    then agree in sign, the end nearer the level is the crossing.
     """
     g = 2.0 * per_pass_db - level_db
     g = np.where(np.isfinite(g), g, -1e3)
@@ -595,7 +598,12 @@ def _crossings(
 
     out = [float(grid[i]) for i in np.nonzero(g == 0.0)[0]]
     for i in np.nonzero((g[:-1] * g[1:]) < 0.0)[0]:
-        out.append(float(optimize.brentq(fun, grid[i], grid[i + 1], xtol=1e-12, rtol=1e-14)))
+        a, b = float(grid[i]), float(grid[i + 1])
+        fa, fb = fun(a), fun(b)
+        if fa * fb > 0.0:
+            out.append(a if abs(fa) <= abs(fb) else b)
+        else:
+            out.append(float(optimize.brentq(fun, a, b, xtol=1e-12, rtol=1e-14)))
     return sorted(out)
 
 
