@@ -145,6 +145,21 @@ def test_fir_response_of_long_taps_matches_scipy_freqz() -> None:
     assert np.max(np.abs(per_pass_response(design, f) - expected)) < 1e-11
 
 
+@pytest.mark.parametrize("fs", [1000.0, 48000.0])
+def test_sos_response_matches_scipy_sosfreqz(fs: float) -> None:
+    # Reference: scipy.signal.sosfreqz. Poles within 1e-4 of the unit circle at 48 kHz.
+    spec = ResponseSpec(
+        kind="bandpass", family="elliptic", order=8, cutoff_hz=(10.0, 200.0),
+        passband_ripple_db=0.5, stopband_attenuation_db=60.0,
+    )
+    design = design_filter(spec, fs)
+    rng = np.random.default_rng(4)
+    f = np.concatenate([[0.0, 10.0, 200.0, fs / 2], rng.uniform(0.0, fs / 2, 500), rng.uniform(5.0, 250.0, 500)])
+    expected = signal.sosfreqz(design.sos, worN=f, fs=fs)[1]
+    got = per_pass_response(design, f)
+    assert np.all(np.abs(got - expected) <= 1e-9 * np.abs(expected) + 1e-15)
+
+
 # ----------------------------------------------------------------------------- narrow features
 
 NARROW = {
