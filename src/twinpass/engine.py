@@ -32,6 +32,7 @@ from __future__ import annotations
 import asyncio
 import concurrent.futures
 import contextlib
+import functools
 import logging
 import threading
 import time
@@ -567,6 +568,17 @@ class SegmentWork:
     def has_work(self) -> bool:
         return any(f.action != "skip" for f in self.files)
 
+    def joins(self, relpath: str) -> tuple[str | None, str | None]:
+        """The previous and next file (source paths; None at the segment's ends) of the file
+        ``relpath`` of this segment."""
+        k = self._positions[relpath]
+        return (self.files[k - 1].relpath if k > 0 else None,
+                self.files[k + 1].relpath if k + 1 < len(self.files) else None)
+
+    @functools.cached_property
+    def _positions(self) -> dict[str, int]:
+        return {f.relpath: k for k, f in enumerate(self.files)}
+
 
 @dataclass
 class FileOutcome:
@@ -625,7 +637,6 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
                edge_samples: int) -> dict[str, Any]:
     """The array attributes of one output file (see the store layout)."""
     L = design.effective_length
-    k = next(i for i, f in enumerate(seg.files) if f.relpath == fw.relpath)
     zone_start = min(fw.frames, max(0, L - fw.seg_offset))
     zone_end = min(fw.frames, max(0, L - (seg.frames - fw.seg_offset - fw.frames)))
     return {
@@ -634,8 +645,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
         "source_fingerprint": fw.fingerprint,
         "stream": seg.stream,
         "segment": seg.segment_id,
-        "joins": {"previous": seg.files[k - 1].relpath if k > 0 else None,
-                  "next": seg.files[k + 1].relpath if k + 1 < len(seg.files) else None},
+        "joins": dict(zip(("previous", "next"), seg.joins(fw.relpath))),
         "start_time": fw.start_time,
         "edge_zone_samples": [int(zone_start), int(zone_end)],
         "filled_spans": [list(sp) for sp in fw.filled_spans],
