@@ -628,8 +628,13 @@ def _coherence_lost(bins: np.ndarray, coherent: np.ndarray) -> np.ndarray:
         return (bins >= MIN_CANDIDATE_BINS) & (coherent < COHERENT_FRACTION_MIN * bins)
 
 
-def _edge_modes(sos: np.ndarray, n: int) -> np.ndarray:
-    """Real basis (n, columns) of what input outside ``n`` samples adds to a two-pass output.
+_MODE_FLOOR: float = 1e-18
+"""A pole's power ``|p|^t`` below this (relative to 1 at the block's edge) is left out of the
+fit of :func:`_edge_modes`: far below float64's resolution of the output."""
+
+
+def _edge_modes(sos: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """(rows, basis): what input outside ``n`` samples can add to a two-pass output.
 
     The two-pass impulse response ``g(m) = g(-m)`` of sections with simple poles ``p``
     (inside the unit circle) is, for ``m >= 1``, a sum ``sum_p R_p p^m`` (partial fractions of
@@ -637,13 +642,19 @@ def _edge_modes(sos: np.ndarray, n: int) -> np.ndarray:
     therefore adds a combination of ``p^t`` to samples ``t >= 0``, and input after the last
     one a combination of ``p^(n - 1 - t)``: the real and imaginary parts of those powers,
     one column per pole and end. Initial states and end extensions are such input too.
+    ``rows`` are the samples within reach of an end (where some ``|p|^t`` is at least
+    :data:`_MODE_FLOOR`); ``basis`` (rows, columns) holds the powers there.
     """
     _, poles, _ = signal.sos2zpk(sos)
-    poles = poles[(np.abs(poles) > 1e-12) & (poles.imag >= 0.0)]
-    t = np.arange(n, dtype=np.float64)[:, None]
-    powers = np.exp(t * np.log(poles.astype(complex))[None, :])  # p^t, decaying (|p| < 1)
-    left = np.concatenate([powers.real, powers.imag[:, poles.imag > 0.0]], axis=1)
-    return np.concatenate([left, left[::-1]], axis=1)
+    poles = poles[(np.abs(poles) > 1e-12) & (poles.imag >= 0.0)].astype(complex)
+    slowest = float(np.max(np.abs(poles))) if poles.size else 0.0
+    reach = n if slowest >= 1.0 else min(n, 1 + math.ceil(math.log(_MODE_FLOOR) / math.log(max(slowest, 1e-300))))
+    rows = np.unique(np.concatenate([np.arange(reach), np.arange(n - reach, n)]))
+    columns = []
+    for t in (rows, n - 1 - rows):
+        powers = np.exp(t[:, None] * np.log(poles)[None, :])  # p^t, decaying (|p| < 1)
+        columns += [powers.real, powers.imag[:, poles.imag > 0.0]]
+    return rows, np.concatenate(columns, axis=1)
 
 
 def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
@@ -656,9 +667,11 @@ def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksCon
     n = x.shape[0]
     if design.sos is not None:
         own = signal.sosfiltfilt(design.sos, xl, axis=0, padtype=None)
-        modes = _edge_modes(np.asarray(design.sos, dtype=np.float64), n)
-        fit, *_ = np.linalg.lstsq(modes, yl - own, rcond=None)
-        figures[lost] = _estimated_figures(xl, yl - modes @ fit, design, cfg)
+        rows, modes = _edge_modes(np.asarray(design.sos, dtype=np.float64), n)
+        fit, *_ = np.linalg.lstsq(modes, yl[rows] - own[rows], rcond=None)
+        cleaned = yl.copy()
+        cleaned[rows] -= modes @ fit
+        figures[lost] = _estimated_figures(xl, cleaned, design, cfg)
         return figures
     reach = np.asarray(design.taps).size - 1  # an FIR's outside input reaches M - 1 samples in
     if segment_length(n - 2 * reach - 1, design):
