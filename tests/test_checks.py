@@ -96,12 +96,24 @@ def col(figures: np.ndarray, name: str) -> np.ndarray:
 # ----------------------------------------------------------------------------- estimate
 
 
-@pytest.mark.parametrize("detrend, difference", [("constant", False), ("linear", False), ("linear", True)])
+def _window_weighted_line(segment: np.ndarray) -> np.ndarray:
+    """``segment`` minus its least-squares line weighted by the Hann window (numpy.polyfit,
+    whose weights multiply the residuals, so they are the window's square root)."""
+    t = np.arange(segment.shape[-1], dtype=np.float64)
+    root = np.sqrt(signal.get_window("hann", t.size))
+    flat = segment.reshape(-1, t.size)
+    fitted = [np.polyval(np.polyfit(t, row, 1, w=root), t) for row in flat]
+    return segment - np.reshape(fitted, segment.shape)
+
+
+@pytest.mark.parametrize("detrend, difference",
+                         [("constant", False), ("linear", False), ("linear", True), ("weighted", False)])
 def test_transfer_estimate_agrees_with_scipy_csd_welch(detrend: str, difference: bool) -> None:
     # Reference: scipy.signal.csd / welch / coherence / spectrogram called directly with the
     # documented parameters (Hann window, 50 % overlap, the same detrend, density), on the
-    # first differences (numpy.diff) when the estimate is asked for them. A ramp under both
-    # signals makes a wrong or missing linear detrend show.
+    # first differences (numpy.diff) when the estimate is asked for them; the window-weighted
+    # line as a detrend callable built on numpy.polyfit. A ramp under both signals makes a
+    # wrong or missing line removal show.
     design = lowpass_butterworth()
     x, y = block(design, core=20001, channels=2, seed=3)  # segments do not fill the block exactly
     ramp = np.linspace(0.0, 300.0, x.shape[0])[:, None] * [1.0, -0.5]
@@ -110,7 +122,8 @@ def test_transfer_estimate_agrees_with_scipy_csd_welch(detrend: str, difference:
     est = checks.transfer_estimate(x, y, FS, nperseg, detrend=detrend, difference=difference)
     if difference:
         x, y = np.diff(x, axis=0), np.diff(y, axis=0)
-    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2, axis=0, detrend=detrend)
+    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2, axis=0,
+              detrend=_window_weighted_line if detrend == "weighted" else detrend)
     f, pxy = signal.csd(x, y, **kw)
     _, pxx = signal.welch(x, **kw)
     _, pyy = signal.welch(y, **kw)
@@ -120,10 +133,20 @@ def test_transfer_estimate_agrees_with_scipy_csd_welch(detrend: str, difference:
     np.testing.assert_allclose(est.pxx, pxx, rtol=1e-9, atol=1e-13 * pxx.max())
     np.testing.assert_allclose(est.pyy, pyy, rtol=1e-9, atol=1e-13 * pyy.max())
     np.testing.assert_allclose(est.pxy, pxy, rtol=1e-9, atol=1e-13 * np.abs(pxy).max())
-    np.testing.assert_allclose(est.h, pxy / pxx, rtol=1e-6, atol=1e-12)
-    np.testing.assert_allclose(est.coherence, coh, rtol=1e-6, atol=1e-9)
+    # The window-weighted line leaves no 0 Hz content: its ratios there are rounding noise.
+    k = slice(1, None) if detrend == "weighted" else slice(None)
+    np.testing.assert_allclose(est.h[k], (pxy / pxx)[k], rtol=1e-6, atol=1e-12)
+    np.testing.assert_allclose(est.coherence[k], coh[k], rtol=1e-6, atol=1e-9)
     _, t, _ = signal.spectrogram(x[:, 0], fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2)
     assert est.segments == t.size
+    # Effective segments: (sum of the segments' periodograms)^2 / sum of their squares, the
+    # periodograms from scipy.signal.spectrogram with the same detrend; the smaller of input's
+    # and output's.
+    spread = []
+    for v in (x, y):
+        _, _, per = signal.spectrogram(v.T, **{**kw, "axis": -1})  # (channels, n_freqs, segments)
+        spread.append((per.sum(axis=-1) ** 2 / (per**2).sum(axis=-1)).T)
+    np.testing.assert_allclose(est.effective_segments[k], np.minimum(*spread)[k], rtol=1e-6)
     with pytest.raises(KernelError, match="detrend"):
         checks.transfer_estimate(x, y, FS, nperseg, detrend="quadratic")
 
@@ -344,6 +367,44 @@ def test_faults_next_to_a_step_still_fail(fault: str) -> None:
         y = signal.sosfilt(design.sos, x, axis=0)
     fig = checks.block_figures(x[s : s + core], y[s : s + core], design, CFG, out_dtype="float64")
     assert checks.grade(fig, design, CFG, design.tolerance) == FAIL
+
+
+def highpass_5hz() -> Design:
+    """Overall stopband below 1 Hz (60 dB), passband above 5 Hz (1 dB ripple) at 200 Hz."""
+    return _design(ResponseSpec(kind="highpass", passband_hz=(5.0,), stopband_hz=(1.0,), passband_ripple_db=1.0,
+                                stopband_attenuation_db=60.0), 200.0)
+
+
+def _highpass_blocks(leak: float = 0.0) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Three 20,000-sample blocks of unit white noise (two channels) and their
+    scipy.signal.sosfiltfilt output, plus ``leak`` times the input."""
+    design = highpass_5hz()
+    x = np.random.default_rng(4).standard_normal((120000, 2))
+    y = signal.sosfiltfilt(design.sos, x, axis=0, padlen=design.effective_length) + leak * x
+    return [(x[s : s + 20000], y[s : s + 20000]) for s in (30000, 50000, 70000)]
+
+
+def test_highpass_stopband_near_0_hz_is_measured() -> None:
+    # Reference: scipy.signal.sosfiltfilt output of white noise; spectra as scipy.signal.welch /
+    # csd take them. The stopband (below 1 Hz) lies where the first difference weakens the
+    # input by 40 dB or more, so only the estimate of the signals themselves measures it: the
+    # figure must be finite and meet the specification (60 dB, less the margin).
+    design = highpass_5hz()
+    for x, y in _highpass_blocks():
+        fig = checks.block_figures(x, y, design, CFG, out_dtype="float64")
+        att = col(fig, "stopband_att_db")
+        assert np.all(np.isfinite(att)) and np.all(att >= 60.0 - CFG.stopband_margin_db), att
+        assert checks.grade(fig, design, CFG, design.tolerance) == PASS
+
+
+def test_highpass_stopband_leak_fails() -> None:
+    # The same blocks with 1 % of the input added to the output (a 40 dB floor instead of 60 dB):
+    # a real leak in the stopband near 0 Hz must fail.
+    design = highpass_5hz()
+    for x, y in _highpass_blocks(leak=1e-2):
+        fig = checks.block_figures(x, y, design, CFG, out_dtype="float64")
+        assert np.all(col(fig, "stopband_att_db") < 45.0), col(fig, "stopband_att_db")
+        assert checks.grade(fig, design, CFG, design.tolerance) == FAIL
 
 
 def test_leakage_bound_covers_a_tone_anywhere_in_its_bin() -> None:

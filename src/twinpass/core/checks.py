@@ -13,22 +13,38 @@ The transfer estimate
 ---------------------
 Between the block input ``x`` and output ``y`` the frequency response is estimated with
 Welch-averaged spectra (``scipy.signal.csd`` / ``scipy.signal.welch``; Hann window, 50 %
-overlap, linear detrend per segment, one-sided density; long blocks spread
-:data:`MAX_SEGMENTS` segments evenly instead, see :func:`transfer_estimate`) of the first
-differences ``x[t + 1] - x[t]`` and ``y[t + 1] - y[t]``::
+overlap, one-sided density; long blocks spread :data:`MAX_SEGMENTS` segments evenly
+instead, see :func:`transfer_estimate`)::
 
     H(f) = Pxy(f) / Pxx(f)          coherence = |Pxy|^2 / (Pxx Pyy)
 
-The difference ``D = 1 - z^-1`` is prewhitening (Blackman & Tukey, from memory): applied to
-both signals it multiplies ``Pxx``, ``Pyy`` and ``Pxy`` by the same ``|D(f)|^2 =
-4 sin^2(pi f / fs)``, so ``H``, the coherence and ``Pxx / Pyy`` are those of ``x`` and ``y``,
-but the strong slow content of sensor records (offsets, drifts, steps, slow waves: about
-``|D|^2 ~ (2 pi f / fs)^2`` weaker) no longer leaks through the window's side lobes into
-the bins where the output is faint. The linear detrend removes what is left of a segment's
-ramp, whose end-to-end jump sets the Hann window's far leakage. The input's energy (below)
-is judged on ``Pxx / |D|^2``.
+Two estimates are formed on the same bins; both are unbiased for the same ``|H|^2`` where
+they are clear of leakage (below), so a real fault shows in both:
 
-and compared with the designed ``G(f)``:
+* the *plain* one, between ``x`` and ``y``, each segment losing its least-squares line
+  weighted by the window (``detrend="weighted"``). The window-weighted line removes an
+  offset or ramp exactly, and, unlike scipy's unweighted mean or line, is not pulled by the
+  segment's strong passband content, whose removal would add a windowed line (a high-pass
+  output's) of that size to the bins next to 0 Hz;
+* the *differenced* one, between the first differences ``x[t + 1] - x[t]`` and ``y[t + 1] -
+  y[t]``, each segment losing its (unweighted) least-squares line. The difference ``D = 1 -
+  z^-1`` is prewhitening (Blackman & Tukey, from memory): applied to both signals it
+  multiplies ``Pxx``, ``Pyy`` and ``Pxy`` by the same ``|D(f)|^2 = 4 sin^2(pi f / fs)``, so
+  ``H``, the coherence and ``Pxx / Pyy`` are those of ``x`` and ``y``, but the strong slow
+  content of sensor records (offsets, drifts, steps, slow waves: about ``|D|^2 ~ (2 pi f /
+  fs)^2`` weaker) no longer leaks through the window's side lobes into the bins where the
+  output is faint. Its input's energy is judged on ``Pxx / |D|^2``. The same factor buries
+  the input's own low-frequency bins, so it cannot measure a stopband near 0 Hz (a
+  high-pass's).
+
+The rule: a stopband bin takes the plain estimate's attenuation where that bin is usable
+in it (see below), otherwise the differenced one's where usable there, otherwise none; the
+passband figures (deviation, phase, bin counts) are the plain estimate's unless it fails
+the coherent-fraction rule (see :func:`grade`) and the differenced one does not. The
+differenced estimate is computed only for the channels where the plain one leaves a
+stopband bin unusable or fails that rule.
+
+The figures compare the chosen ``H`` with the designed ``G(f)``:
 
 * passband deviation: ``20 log10 |H| - 20 log10 G`` over *coherent* passband bins, the
   signed value of largest magnitude (dB);
@@ -75,8 +91,11 @@ Estimator bias and the error allowance
   came from input outside the segment, e.g. the ringing of a transient in the previous
   segment, is not coherent and would understate the attenuation), where the output and
   the input are each at least :data:`LEAKAGE_MARGIN_DB` above a bound on the Hann
-  window's leakage from the rest of their own spectrum, and where the output is within
-  :data:`NUMERIC_RANGE_DB` of its peak. The bound convolves the spectrum, laid out with
+  window's leakage from the rest of their own spectrum, where the output is within
+  :data:`NUMERIC_RANGE_DB` of its peak, and where input and output each spread their power
+  over at least :data:`MIN_EFFECTIVE_SEGMENTS` segments (a step or burst inside one segment
+  makes that segment's ratio, leakage included, the whole estimate, with a coherence near
+  1). The bound convolves the spectrum, laid out with
   its mirror image at negative frequencies, with the window's spectral side lobes at their
   largest over each bin (a tone anywhere in its bin), and doubles it (a component and its
   image adding in phase); a tone within a bin of 0 Hz can exceed it by a factor of about
@@ -201,6 +220,11 @@ INPUT_FLOOR_DB: float = 60.0
 """Bins whose input PSD is more than this below the input's peak PSD are not used."""
 LEAKAGE_MARGIN_DB: float = 10.0
 """A stopband bin's output must exceed the estimated window leakage by this much."""
+MIN_EFFECTIVE_SEGMENTS: float = 2.0
+"""A stopband bin counts only where its power is spread over at least about this many Welch
+segments (:attr:`TransferEstimate.effective_segments`), in input and output alike: the
+coherence of a bin that one segment dominates (a step or burst inside it) is near 1 whatever
+the output, and the ratio is that one segment's, leakage included."""
 NUMERIC_RANGE_DB: float = 200.0
 """A stopband bin's output must be within this range of the output's peak PSD."""
 RANDOM_ERROR_MAX: float = 0.01
@@ -249,6 +273,11 @@ class TransferEstimate:
     nperseg: int
     segments: int
     """Number of Welch segments averaged."""
+    effective_segments: np.ndarray | None = None
+    """Per bin, the smaller over input and output of ``(sum_i P_i)^2 / sum_i P_i^2`` (``P_i``:
+    segment ``i``'s periodogram): about the number of segments that carry the bin's power,
+    1 where a single segment does (see :data:`MIN_EFFECTIVE_SEGMENTS`); shape (n_freqs,
+    channels)."""
 
 
 def _as_2d(a: np.ndarray) -> np.ndarray:
@@ -303,9 +332,11 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         segment's largest amplitudes) bury bins far below the strongest one, so
         :func:`block_figures` uses them only where no stopband figure is measured. The
         averages are float64 either way.
-    detrend : {"constant", "linear"}
-        What each segment loses before the window, as scipy's ``detrend`` argument: its
-        mean, or its least-squares line.
+    detrend : {"constant", "linear", "weighted"}
+        What each segment loses before the window: its mean or its least-squares line, as
+        scipy's ``detrend`` argument, or (``"weighted"``) its least-squares line weighted by
+        the window (its residual is orthogonal to constants and lines under the window's
+        weights; see the module notes for why the response check uses it).
     difference : bool
         Estimate between the first differences ``x[t + 1] - x[t]`` and ``y[t + 1] - y[t]``
         (one sample fewer) instead of ``x`` and ``y``; each segment is differenced from
@@ -317,8 +348,9 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         ``h = Pxy / Pxx`` and coherence ``|Pxy|^2 / (Pxx Pyy)`` (0 where a PSD is 0). The
         spectra are the averages over segments of ``conj(X) Y``, ``|X|^2``, ``|Y|^2``
         (one-sided densities), the same numbers as ``scipy.signal.csd(x, y)`` and
-        ``scipy.signal.welch`` with these parameters (``detrend`` included; up to rounding),
-        but each segment is transformed only once, all channels together.
+        ``scipy.signal.welch`` with these parameters (``detrend`` included, as a callable
+        for ``"weighted"``; up to rounding), but each segment is transformed only once, all
+        channels together.
     """
     x2 = np.asarray(_as_2d(x), dtype=np.float64)
     y2 = np.asarray(_as_2d(y), dtype=np.float64)
@@ -333,8 +365,8 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         )
     if precision not in ("float64", "float32"):
         raise KernelError(f"transfer estimate: precision {precision!r} is not 'float64' or 'float32'.")
-    if detrend not in ("constant", "linear"):
-        raise KernelError(f"transfer estimate: detrend {detrend!r} is not 'constant' or 'linear'.")
+    if detrend not in ("constant", "linear", "weighted"):
+        raise KernelError(f"transfer estimate: detrend {detrend!r} is not 'constant', 'linear' or 'weighted'.")
     fs = float(sample_rate_hz)
     step, segments = _segment_plan(n_samples, nperseg, max_segments)
     window = _hann(nperseg)
@@ -343,11 +375,14 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
     pxx = np.empty((n_ch, nperseg // 2 + 1))
     pyy = np.empty_like(pxx)
     pxy = np.empty(pxx.shape, dtype=complex)
+    qxx, qyy = np.empty_like(pxx), np.empty_like(pxx)
     group = max(1, _GROUP_BYTES // (8 * nperseg))  # channels per group: bounds the buffers
     for c0 in range(0, n_ch, group):
         c = slice(c0, min(n_ch, c0 + group))
         _welch_sums(x2[:, c], y2[:, c], window, step, segments, pxx[c], pyy[c], pxy[c],
-                    np.dtype(precision).type, linear=detrend == "linear", difference=difference)
+                    np.dtype(precision).type, detrend=detrend, difference=difference, squares=(qxx[c], qyy[c]))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        spread = np.minimum(np.where(qxx > 0, pxx**2 / qxx, 0.0), np.where(qyy > 0, pyy**2 / qyy, 0.0))
     # Mean over segments; one-sided density: double every bin but 0 Hz (and Nyquist for an
     # even length).
     scale = 1.0 / (fs * float(np.sum(window * window)) * segments)
@@ -364,7 +399,7 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         denom = pxx * pyy
         coh = np.where(denom > 0, np.abs(pxy) ** 2 / np.where(denom > 0, denom, 1.0), 0.0)
     np.minimum(coh, 1.0, out=coh)
-    return TransferEstimate(f, h.T, coh.T, pxx.T, pyy.T, pxy.T, nperseg, int(segments))
+    return TransferEstimate(f, h.T, coh.T, pxx.T, pyy.T, pxy.T, nperseg, int(segments), spread.T)
 
 
 @lru_cache(maxsize=8)
@@ -376,31 +411,35 @@ def _hann(nperseg: int) -> np.ndarray:
 
 def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, segments: int,
                 sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray, dtype: type = np.float64, *,
-                linear: bool = False, difference: bool = False) -> None:
+                detrend: str = "constant", difference: bool = False,
+                squares: tuple[np.ndarray, np.ndarray] | None = None) -> None:
     """Sums over segments of ``|X|^2``, ``|Y|^2``, ``conj(X) Y`` into ``sxx``, ``syy``, ``sxy``.
 
     ``x``, ``y``: time-major (samples, channels); ``sxx`` ... channel-major (channels,
     n_freqs), float64. ``X``, ``Y``: rfft of each segment (``window.size`` samples, every
-    ``step`` samples) with its mean (``linear``: its least-squares line) removed, times the
-    window, transformed in ``dtype``; with ``difference`` the segment is the first difference
-    of ``window.size + 1`` samples
-    (float64, or float32 where :func:`block_figures` chooses it). Each segment is copied
-    channel-major once, so the transforms run along contiguous rows.
+    ``step`` samples) detrended as :func:`transfer_estimate`'s ``detrend`` says, times the
+    window, transformed in ``dtype`` (float64, or float32 where :func:`block_figures` chooses
+    it); with ``difference`` the segment is the first difference of ``window.size + 1``
+    samples. Each segment is copied channel-major once, so the transforms run along
+    contiguous rows. ``squares``, when given, receives the sums of ``|X|^4`` and ``|Y|^4``.
     """
     n = window.size
     n_ch = x.shape[1]
     w = window.astype(dtype)
+    linear = detrend == "linear"
+    line = _weighted_line(n, dtype) if detrend == "weighted" else None
     bx, by = np.empty((n_ch, n), dtype), np.empty((n_ch, n), dtype)
-    for a in (sxx, syy, sxy):
+    for a in (sxx, syy, sxy, *(squares or ())):
         a[...] = 0.0
     for start in range(0, segments * step, step):
-        if difference:
-            span = slice(start, start + n + 1)
-            segment_rows(np.diff(x[span], axis=0), 0, w, bx, linear=linear)
-            segment_rows(np.diff(y[span], axis=0), 0, w, by, linear=linear)
-        else:
-            segment_rows(x, start, w, bx, linear=linear)
-            segment_rows(y, start, w, by, linear=linear)
+        for v, buf in ((x, bx), (y, by)):
+            if difference:
+                segment_rows(np.diff(v[start : start + n + 1], axis=0), 0, w, buf, linear=linear)
+            else:
+                segment_rows(v, start, w, buf, linear=linear)
+            if line is not None:
+                fit, shape = line
+                buf -= (buf @ fit) @ shape
         for c0 in range(0, n_ch, _FFT_CHANNELS):
             c = slice(c0, min(n_ch, c0 + _FFT_CHANNELS))
             # ihfft with norm="forward" is conj(rfft) of real input: the conjugate the cross
@@ -408,6 +447,25 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
             cx = sp_fft.ihfft(bx[c], axis=1, norm="forward")
             sy = sp_fft.rfft(by[c], axis=1)
             spectra_sums(cx, sy, sxx[c], syy[c], sxy[c])
+            if squares is not None:
+                for z, q in zip((cx, sy), squares):
+                    q[c] += (z.real.astype(np.float64) ** 2 + z.imag.astype(np.float64) ** 2) ** 2
+
+
+@lru_cache(maxsize=8)
+def _weighted_line(nperseg: int, dtype: type) -> tuple[np.ndarray, np.ndarray]:
+    """(fit, shape) for the window-weighted line of a windowed segment ``b = w (v - mean)``.
+
+    The least-squares line ``a + c u`` (``u = t - (n - 1) / 2``) of ``v`` weighted by the
+    window ``w`` solves ``B^T W B [a, c] = B^T W v`` with ``B = [1, u]``; the right side is
+    ``B^T b`` up to the mean, which only shifts ``a``. So ``b @ fit`` (``fit = B (B^T W B)^-1``)
+    gives ``[a - mean, c]`` per row, and ``(b @ fit) @ shape`` (``shape = (W B)^T``) is the
+    windowed line ``w (a - mean + c u)``: ``b`` minus it is ``w (v - a - c u)``.
+    """
+    w = _hann(nperseg)
+    basis = np.stack([np.ones(nperseg), np.arange(nperseg) - 0.5 * (nperseg - 1)], axis=1)
+    fit = basis @ np.linalg.inv(basis.T @ (w[:, None] * basis))
+    return fit.astype(dtype), (w[:, None] * basis).T.astype(dtype)
 
 
 def _feature_scale_hz(design: Design) -> float:
@@ -550,22 +608,39 @@ def _prewhitener_gain(nperseg: int) -> np.ndarray:
     return 4.0 * np.sin(np.pi * np.arange(nperseg // 2 + 1) / nperseg) ** 2
 
 
-def _response_figures(
-    est: TransferEstimate, cfg: ChecksConfig, masks: tuple[np.ndarray, np.ndarray, np.ndarray]
-) -> np.ndarray:
-    """Shape (channels, 5): the columns ``_RESPONSE_FIGURES``; ``masks`` from :func:`_design_masks`.
+@dataclass(frozen=True)
+class _BinFigures:
+    """Response figures of one Welch estimate, before the two estimates are combined.
 
-    ``est`` is the estimate between the first differences of input and output (see the
-    module notes): ``h``, the coherence and ``pxx / pyy`` are those of the signals
-    themselves; the input's energy is judged on ``pxx / |D|^2``.
+    ``figures`` (channels, 5): the columns ``_RESPONSE_FIGURES``, the stopband column from
+    this estimate alone; ``att`` (n_freqs, channels): ``10 log10(Pxx / Pyy)`` where the bin
+    is a usable stopband bin (see the module notes), NaN elsewhere.
+    """
+
+    figures: np.ndarray
+    att: np.ndarray
+
+
+def _response_figures(
+    est: TransferEstimate, cfg: ChecksConfig, masks: tuple[np.ndarray, np.ndarray, np.ndarray], *,
+    differenced: bool,
+) -> _BinFigures:
+    """Figures of one estimate; ``masks`` from :func:`_design_masks`.
+
+    With ``differenced`` the estimate is between the first differences of input and output
+    (see the module notes): ``h``, the coherence and ``pxx / pyy`` are those of the signals
+    themselves, and the input's energy is judged on ``pxx / |D|^2``.
     """
     db, passband, stopband = masks
     pxx, pyy, h, coh = est.pxx, est.pyy, est.h, est.coherence
     out = np.full((pxx.shape[1], 5), np.nan)
+    att = np.full(pxx.shape, np.nan)
     n_d = est.segments / (1.0 + 2.0 * HANN_OVERLAP_CORRELATION**2)
-    gain = _prewhitener_gain(est.nperseg)[:, None]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        level_in = np.where(gain > 0.0, pxx / gain, 0.0)  # the input's own PSD (0 Hz: unknown)
+    level_in = pxx
+    if differenced:
+        gain = _prewhitener_gain(est.nperseg)[:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            level_in = np.where(gain > 0.0, pxx / gain, 0.0)  # the input's own PSD (0 Hz: unknown)
     peak_in = np.max(level_in, axis=0)
     live = peak_in > 0.0
     energetic = level_in >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
@@ -594,31 +669,60 @@ def _response_figures(
             & (pyy >= _leakage(pyy, est.nperseg) * margin)
             & (pxx >= _leakage(pxx, est.nperseg) * margin)
             & (pyy > peak_out * 10.0 ** (-NUMERIC_RANGE_DB / 10.0))
+            & (est.effective_segments >= MIN_EFFECTIVE_SEGMENTS)
+            & live
         )
-        for c in np.flatnonzero(live & usable.any(axis=0)):
-            sel = usable[:, c]
-            out[c, 2] = float(np.min(10.0 * np.log10(pxx[sel, c] / pyy[sel, c])))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            att = np.where(usable, 10.0 * np.log10(pxx / pyy), np.nan)
+        out[:, 2] = _stopband_minimum(att)
     out[~live] = np.nan  # no input: nothing measured
-    return out
+    return _BinFigures(out, att)
+
+
+def _stopband_minimum(att: np.ndarray) -> np.ndarray:
+    """Per column of ``att`` (n_freqs, channels), its smallest value other than NaN; NaN if none."""
+    measured = ~np.isnan(att)
+    return np.where(measured.any(axis=0), np.min(np.where(measured, att, np.inf), axis=0), np.nan)
 
 
 def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
     """Response figures (channels, 5) of time-major ``x`` -> ``y``; NaN when too short.
 
-    The Welch estimate runs between the first differences of input and output, each segment
-    with its least-squares line removed (module notes).
+    Two Welch estimates, each segment with its least-squares line removed: the plain one
+    between ``x`` and ``y``, and, for the channels where the plain one leaves a stopband
+    bin unmeasured or fails the coherent-fraction rule, the differenced one between their
+    first differences. They are combined by the rule of the module notes.
     """
     figures = np.full((x.shape[1], len(_RESPONSE_FIGURES)), np.nan)
-    nperseg = segment_length(x.shape[0] - 1, design)
+    nperseg = segment_length(x.shape[0] - 1, design)  # one length for both estimates: the same bins
     if not nperseg:
         return figures
     masks = _design_masks(design, nperseg)
-    # float32 transforms suffice for passband figures (relative errors near 1e-7); a
-    # stopband figure needs float64's range below the output's strongest bin.
-    precision = "float64" if masks[2].any() else "float32"
-    est = transfer_estimate(x, y, design.sample_rate_hz, nperseg, MAX_SEGMENTS, precision=precision,
-                            detrend="linear", difference=True)
-    return _response_figures(est, cfg, masks)
+    stopband = masks[2]
+
+    def estimate(xs: np.ndarray, ys: np.ndarray, differenced: bool) -> _BinFigures:
+        # float32 transforms suffice for passband figures (relative errors near 1e-7); a
+        # stopband figure needs float64's range below the output's strongest bin.
+        est = transfer_estimate(xs, ys, design.sample_rate_hz, nperseg, MAX_SEGMENTS,
+                                precision="float64" if stopband.any() else "float32",
+                                detrend="linear" if differenced else "weighted", difference=differenced)
+        return _response_figures(est, cfg, masks, differenced=differenced)
+
+    plain = estimate(x, y, False)
+    figures[...] = plain.figures
+    plain_lost = _coherence_lost(plain.figures[:, 3], plain.figures[:, 4])
+    unmeasured = np.any(stopband[:, None] & np.isnan(plain.att), axis=0)
+    again = np.flatnonzero(plain_lost | unmeasured)
+    if not again.size:
+        return figures
+    diff = estimate(x[:, again], y[:, again], True)
+    # Passband figures: the differenced estimate's where the plain one loses the coherence
+    # and the differenced one does not.
+    swap = plain_lost[again] & ~_coherence_lost(diff.figures[:, 3], diff.figures[:, 4])
+    figures[again[swap]] = diff.figures[swap]
+    # Stopband: per bin, the plain estimate where it is usable, else the differenced one.
+    figures[again, 2] = _stopband_minimum(np.where(np.isnan(plain.att[:, again]), diff.att, plain.att[:, again]))
+    return figures
 
 
 def _coherence_lost(bins: np.ndarray, coherent: np.ndarray) -> np.ndarray:
