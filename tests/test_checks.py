@@ -96,14 +96,34 @@ def col(figures: np.ndarray, name: str) -> np.ndarray:
 # ----------------------------------------------------------------------------- estimate
 
 
-def test_transfer_estimate_agrees_with_scipy_csd_welch() -> None:
+def _window_weighted_line(segment: np.ndarray) -> np.ndarray:
+    """``segment`` minus its least-squares line weighted by the Hann window (numpy.polyfit,
+    whose weights multiply the residuals, so they are the window's square root)."""
+    t = np.arange(segment.shape[-1], dtype=np.float64)
+    root = np.sqrt(signal.get_window("hann", t.size))
+    flat = segment.reshape(-1, t.size)
+    fitted = [np.polyval(np.polyfit(t, row, 1, w=root), t) for row in flat]
+    return segment - np.reshape(fitted, segment.shape)
+
+
+@pytest.mark.parametrize("detrend, difference",
+                         [("constant", False), ("linear", False), ("linear", True), ("weighted", False)])
+def test_transfer_estimate_agrees_with_scipy_csd_welch(detrend: str, difference: bool) -> None:
     # Reference: scipy.signal.csd / welch / coherence / spectrogram called directly with the
-    # documented parameters (Hann window, 50 % overlap, constant detrend, density).
+    # documented parameters (Hann window, 50 % overlap, the same detrend, density), on the
+    # first differences (numpy.diff) when the estimate is asked for them; the window-weighted
+    # line as a detrend callable built on numpy.polyfit. A ramp under both signals makes a
+    # wrong or missing line removal show.
     design = lowpass_butterworth()
     x, y = block(design, core=20001, channels=2, seed=3)  # segments do not fill the block exactly
+    ramp = np.linspace(0.0, 300.0, x.shape[0])[:, None] * [1.0, -0.5]
+    x, y = x + ramp, y + ramp
     nperseg = 512
-    est = checks.transfer_estimate(x, y, FS, nperseg)
-    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2, axis=0)
+    est = checks.transfer_estimate(x, y, FS, nperseg, detrend=detrend, difference=difference)
+    if difference:
+        x, y = np.diff(x, axis=0), np.diff(y, axis=0)
+    kw = dict(fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2, axis=0,
+              detrend=_window_weighted_line if detrend == "weighted" else detrend)
     f, pxy = signal.csd(x, y, **kw)
     _, pxx = signal.welch(x, **kw)
     _, pyy = signal.welch(y, **kw)
@@ -113,10 +133,22 @@ def test_transfer_estimate_agrees_with_scipy_csd_welch() -> None:
     np.testing.assert_allclose(est.pxx, pxx, rtol=1e-9, atol=1e-13 * pxx.max())
     np.testing.assert_allclose(est.pyy, pyy, rtol=1e-9, atol=1e-13 * pyy.max())
     np.testing.assert_allclose(est.pxy, pxy, rtol=1e-9, atol=1e-13 * np.abs(pxy).max())
-    np.testing.assert_allclose(est.h, pxy / pxx, rtol=1e-6, atol=1e-12)
-    np.testing.assert_allclose(est.coherence, coh, rtol=1e-6, atol=1e-9)
+    # The window-weighted line leaves no 0 Hz content: its ratios there are rounding noise.
+    k = slice(1, None) if detrend == "weighted" else slice(None)
+    np.testing.assert_allclose(est.h[k], (pxy / pxx)[k], rtol=1e-6, atol=1e-12)
+    np.testing.assert_allclose(est.coherence[k], coh[k], rtol=1e-6, atol=1e-9)
     _, t, _ = signal.spectrogram(x[:, 0], fs=FS, window="hann", nperseg=nperseg, noverlap=nperseg // 2)
     assert est.segments == t.size
+    # Effective segments: (sum of the segments' periodograms)^2 / sum of their squares, the
+    # periodograms from scipy.signal.spectrogram with the same detrend; the smaller of input's
+    # and output's.
+    spread = []
+    for v in (x, y):
+        _, _, per = signal.spectrogram(v.T, **{**kw, "axis": -1})  # (channels, n_freqs, segments)
+        spread.append((per.sum(axis=-1) ** 2 / (per**2).sum(axis=-1)).T)
+    np.testing.assert_allclose(est.effective_segments[k], np.minimum(*spread)[k], rtol=1e-6)
+    with pytest.raises(KernelError, match="detrend"):
+        checks.transfer_estimate(x, y, FS, nperseg, detrend="quadratic")
 
 
 def test_float32_transforms_agree_with_scipy_where_the_output_is_strong() -> None:
@@ -251,6 +283,152 @@ def test_response_false_leaves_response_figures_nan() -> None:
     fig = checks.block_figures(x, y, design, CFG, response=False)
     assert np.isnan(col(fig, "passband_dev_db")).all()
     assert np.isfinite(col(fig, "rms_out")).all()
+
+
+def _design(spec: ResponseSpec, fs: float) -> Design:
+    from twinpass.core.design import design_filter
+
+    return design_filter(spec, fs)
+
+
+def elliptic_narrow_lowpass() -> Design:
+    """Overall 2 Hz / 2.2 Hz, 0.1 dB / 120 dB at 1 kHz: effective length about 142,000 samples."""
+    return _design(ResponseSpec(kind="lowpass", family="elliptic", passband_hz=(2.0,), stopband_hz=(2.2,),
+                                passband_ripple_db=0.1, stopband_attenuation_db=120.0), 1000.0)
+
+
+def elliptic_lowpass_40() -> Design:
+    """Overall 40 Hz / 48 Hz, 0.1 dB / 100 dB at 997.3 Hz (poles close to the unit circle
+    near 40 Hz: a step response that rings for thousands of samples)."""
+    return _design(ResponseSpec(kind="lowpass", family="elliptic", passband_hz=(40.0,), stopband_hz=(48.0,),
+                                passband_ripple_db=0.1, stopband_attenuation_db=100.0), 997.3)
+
+
+def _stopband_ok(fig: np.ndarray, design: Design) -> bool:
+    att = col(fig, "stopband_att_db")
+    return bool(np.all(np.isnan(att) | (att >= design.spec.stopband_attenuation_db - CFG.stopband_margin_db)))
+
+
+@pytest.mark.parametrize("core", [2001, 5000])
+def test_strong_slow_sine_does_not_fail_the_stopband(core: int) -> None:
+    # Reference: scipy.signal.sosfiltfilt of a 0.3 Hz sine of amplitude 1000 on unit white
+    # noise. The sine passes and is 10^6 times the noise's amplitude; in a Hann-windowed
+    # segment of a few tenths of a second it is a large ramp or bow whose spectral tail
+    # (falling as 1/k^3 in amplitude, the Hann side lobes' rate, from memory) sits far above
+    # the output's true stopband level (120 dB under the noise). The figure must be the
+    # filter's attenuation or NaN (not measured), never that tail.
+    design = elliptic_narrow_lowpass()
+    n = 200000
+    t = np.arange(n) / design.sample_rate_hz
+    x = 1000.0 * np.sin(2 * np.pi * 0.3 * t) + np.random.default_rng(0).standard_normal(n)
+    y = signal.sosfiltfilt(design.sos, x, padlen=design.effective_length)
+    s = 100000
+    fig = checks.block_figures(x[s : s + core, None], y[s : s + core, None], design, CFG, out_dtype="float64")
+    assert _stopband_ok(fig, design), col(fig, "stopband_att_db")
+    assert checks.grade(fig, design, CFG, design.tolerance) == PASS
+
+
+def _stepped(design: Design, step_at: int, n: int = 40000, channels: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """An offset of 1000 with an 11 Hz sine and noise, stepping down by 300 at ``step_at``,
+    and its scipy.signal.sosfiltfilt output."""
+    t = np.arange(n) / design.sample_rate_hz
+    rng = np.random.default_rng(1)
+    x = 1000.0 + np.sin(2 * np.pi * 11.0 * t)[:, None] + 0.3 * rng.standard_normal((n, channels))
+    x[step_at:] -= 300.0
+    return x, signal.sosfiltfilt(design.sos, x, axis=0, padlen=design.effective_length)
+
+
+@pytest.mark.parametrize("offset", [-1, 0, 33, 1967, 2000])
+def test_step_near_or_inside_a_short_block_does_not_fail_it(offset: int) -> None:
+    # Reference: scipy.signal.sosfiltfilt. A step of 300 against a signal of about 1: just
+    # outside the block (offset -1, 2000) its ringing fills the block's output without any
+    # cause in the block's input; inside it (33, 1967) the smoothed step's tail in a Welch
+    # segment dwarfs the true stopband output. A correct output passes (or is not measured).
+    design = elliptic_lowpass_40()
+    s, core = 20000, 2000
+    x, y = _stepped(design, s + offset)
+    fig = checks.block_figures(x[s : s + core], y[s : s + core], design, CFG, out_dtype="float64")
+    assert _stopband_ok(fig, design), col(fig, "stopband_att_db")
+    assert checks.grade(fig, design, CFG, design.tolerance) == PASS
+
+
+@pytest.mark.parametrize("fault", ["swapped", "forward"])
+def test_faults_next_to_a_step_still_fail(fault: str) -> None:
+    # The same step just before a short block, with a wrong output: each channel given the
+    # other's correct output (the channels differ only in their noise), or a single causal
+    # pass (scipy.signal.sosfilt). Input outside the block can only add free responses of the
+    # filter's poles at the block's ends; these outputs differ by far more.
+    design = elliptic_lowpass_40()
+    s, core = 20000, 2000
+    x, y = _stepped(design, s - 1, channels=2)
+    if fault == "swapped":
+        y = y[:, ::-1]
+    else:
+        y = signal.sosfilt(design.sos, x, axis=0)
+    fig = checks.block_figures(x[s : s + core], y[s : s + core], design, CFG, out_dtype="float64")
+    assert checks.grade(fig, design, CFG, design.tolerance) == FAIL
+
+
+def highpass_5hz() -> Design:
+    """Overall stopband below 1 Hz (60 dB), passband above 5 Hz (1 dB ripple) at 200 Hz."""
+    return _design(ResponseSpec(kind="highpass", passband_hz=(5.0,), stopband_hz=(1.0,), passband_ripple_db=1.0,
+                                stopband_attenuation_db=60.0), 200.0)
+
+
+def _highpass_blocks(leak: float = 0.0) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Three 20,000-sample blocks of unit white noise (two channels) and their
+    scipy.signal.sosfiltfilt output, plus ``leak`` times the input."""
+    design = highpass_5hz()
+    x = np.random.default_rng(4).standard_normal((120000, 2))
+    y = signal.sosfiltfilt(design.sos, x, axis=0, padlen=design.effective_length) + leak * x
+    return [(x[s : s + 20000], y[s : s + 20000]) for s in (30000, 50000, 70000)]
+
+
+def test_highpass_stopband_near_0_hz_is_measured() -> None:
+    # Reference: scipy.signal.sosfiltfilt output of white noise; spectra as scipy.signal.welch /
+    # csd take them. The stopband (below 1 Hz) lies where the first difference weakens the
+    # input by 40 dB or more, so only the estimate of the signals themselves measures it: the
+    # figure must be finite and meet the specification (60 dB, less the margin).
+    design = highpass_5hz()
+    for x, y in _highpass_blocks():
+        fig = checks.block_figures(x, y, design, CFG, out_dtype="float64")
+        att = col(fig, "stopband_att_db")
+        assert np.all(np.isfinite(att)) and np.all(att >= 60.0 - CFG.stopband_margin_db), att
+        assert checks.grade(fig, design, CFG, design.tolerance) == PASS
+
+
+def test_highpass_stopband_leak_fails() -> None:
+    # The same blocks with 1 % of the input added to the output (a 40 dB floor instead of 60 dB):
+    # a real leak in the stopband near 0 Hz must fail.
+    design = highpass_5hz()
+    for x, y in _highpass_blocks(leak=1e-2):
+        fig = checks.block_figures(x, y, design, CFG, out_dtype="float64")
+        assert np.all(col(fig, "stopband_att_db") < 45.0), col(fig, "stopband_att_db")
+        assert checks.grade(fig, design, CFG, design.tolerance) == FAIL
+
+
+def test_leakage_bound_covers_a_tone_anywhere_in_its_bin() -> None:
+    # Reference: the one-sided periodogram of a Hann-windowed real tone (numpy.fft), tone
+    # frequencies spread over one bin, near 0 Hz (where the tone's image is close) and
+    # inside. Three or more bins from the tone and its image, every bin must stay within
+    # the bound computed from the periodogram itself; a tone within a bin of 0 Hz partly
+    # cancels against its own image in the main lobe, which hides up to a factor 3 of its
+    # power from the bound: still well inside the leakage margin (10 dB = factor 10).
+    assert 3.0 < 10.0 ** (checks.LEAKAGE_MARGIN_DB / 10.0)
+    nperseg = 256
+    window = signal.get_window("hann", nperseg)
+    t = np.arange(nperseg)
+    for centre in (1.0, 40.0):
+        for offset in np.linspace(-0.5, 0.5, 21):
+            f = centre + offset
+            for phase in (0.0, 0.7, 1.6):
+                power = np.abs(np.fft.rfft(window * np.cos(2 * np.pi * f * t / nperseg + phase))) ** 2
+                power[1:-1] *= 2.0  # one-sided
+                bound = checks._leakage(power[:, None], nperseg)[:, 0]
+                far = np.abs(np.arange(power.size) - abs(f)) >= 3.0
+                far &= np.abs(np.arange(power.size) + abs(f)) >= 3.0
+                factor = 1.0 if f >= 1.0 else 3.0
+                assert np.all(power[far] <= factor * bound[far] * (1 + 1e-9)), (f, phase)
 
 
 # ----------------------------------------------------------------------------- wrong blocks

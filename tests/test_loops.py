@@ -164,6 +164,15 @@ def test_welch_segment_loops_match_numpy(dtype: type) -> None:
     want = ((seg - seg.mean(axis=0)) * window.astype(np.float64)[:, None]).T
     tol = 1e-12 if dtype is np.float64 else 1e-5
     np.testing.assert_allclose(out, want, rtol=tol, atol=tol * np.abs(want).max())
+    # Linear detrend: scipy.signal.detrend(type="linear") removes each column's least-squares
+    # line; a steep ramp on top of the offsets shows a missing or wrong slope at once.
+    ramped = v + np.arange(3000)[:, None] * [0.5, -2.0, 1e-4, 0.0, 3.0]
+    seg = ramped[700:1724]
+    want = (signal.detrend(seg, axis=0, type="linear") * window.astype(np.float64)[:, None]).T
+    for impl in (loops.segment_rows, lambda *a, linear: loops._segment_rows_numpy(*a, linear)):
+        got = np.empty((5, 1024), dtype)
+        impl(ramped, 700, window, got, linear=True)
+        np.testing.assert_allclose(got, want, rtol=tol, atol=tol * np.abs(want).max())
     with pytest.raises(ValueError, match="outside"):
         loops.segment_rows(v, 2000, window, out)
     cx = np.conj(np.fft.rfft(out, axis=1))

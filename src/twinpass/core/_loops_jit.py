@@ -365,21 +365,33 @@ def _int24_jit(raw, scale, big_endian, out):  # type: ignore[no-untyped-def]
 
 
 @_jit
-def _segment_rows_jit(v, start, window, out):  # type: ignore[no-untyped-def]
-    # Mean over the segment in float64, then (v - mean) * window written channel-major in
-    # out's type; reads the time-major rows once for the mean and once for the copy.
+def _segment_rows_jit(v, start, window, out, linear):  # type: ignore[no-untyped-def]
+    # Mean (and, when linear, the least-squares slope about the segment's centre) over the
+    # segment in float64, then the residual times the window written channel-major in
+    # out's type; reads the time-major rows once for the sums and once for the copy.
     n = window.shape[0]
     nc = v.shape[1]
     mean = np.zeros(nc)
-    for i in range(start, start + n):
+    moment = np.zeros(nc)
+    centre = 0.5 * (n - 1)
+    for i in range(n):
+        u = i - centre
         for c in range(nc):
-            mean[c] += v[i, c]
+            a = v[start + i, c]
+            mean[c] += a
+            moment[c] += u * a
+    slope = np.zeros(nc)
+    if linear and n > 1:
+        spread = n * (n * n - 1.0) / 12.0  # sum of (i - centre)^2
+        for c in range(nc):
+            slope[c] = moment[c] / spread
     for c in range(nc):
         mean[c] /= n
     for i in range(n):
         w = window[i]
+        u = i - centre
         for c in range(nc):
-            out[c, i] = (v[start + i, c] - mean[c]) * w
+            out[c, i] = (v[start + i, c] - mean[c] - slope[c] * u) * w
 
 
 @_jit

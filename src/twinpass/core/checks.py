@@ -13,12 +13,38 @@ The transfer estimate
 ---------------------
 Between the block input ``x`` and output ``y`` the frequency response is estimated with
 Welch-averaged spectra (``scipy.signal.csd`` / ``scipy.signal.welch``; Hann window, 50 %
-overlap, constant detrend per segment, one-sided density; long blocks spread
-:data:`MAX_SEGMENTS` segments evenly instead, see :func:`transfer_estimate`)::
+overlap, one-sided density; long blocks spread :data:`MAX_SEGMENTS` segments evenly
+instead, see :func:`transfer_estimate`)::
 
     H(f) = Pxy(f) / Pxx(f)          coherence = |Pxy|^2 / (Pxx Pyy)
 
-and compared with the designed ``G(f)``:
+Two estimates are formed on the same bins; both are unbiased for the same ``|H|^2`` where
+they are clear of leakage (below), so a real fault shows in both:
+
+* the *plain* one, between ``x`` and ``y``, each segment losing its least-squares line
+  weighted by the window (``detrend="weighted"``). The window-weighted line removes an
+  offset or ramp exactly, and, unlike scipy's unweighted mean or line, is not pulled by the
+  segment's strong passband content, whose removal would add a windowed line (a high-pass
+  output's) of that size to the bins next to 0 Hz;
+* the *differenced* one, between the first differences ``x[t + 1] - x[t]`` and ``y[t + 1] -
+  y[t]``, each segment losing its (unweighted) least-squares line. The difference ``D = 1 -
+  z^-1`` is prewhitening (Blackman & Tukey, from memory): applied to both signals it
+  multiplies ``Pxx``, ``Pyy`` and ``Pxy`` by the same ``|D(f)|^2 = 4 sin^2(pi f / fs)``, so
+  ``H``, the coherence and ``Pxx / Pyy`` are those of ``x`` and ``y``, but the strong slow
+  content of sensor records (offsets, drifts, steps, slow waves: about ``|D|^2 ~ (2 pi f /
+  fs)^2`` weaker) no longer leaks through the window's side lobes into the bins where the
+  output is faint. Its input's energy is judged on ``Pxx / |D|^2``. The same factor buries
+  the input's own low-frequency bins, so it cannot measure a stopband near 0 Hz (a
+  high-pass's).
+
+The rule: a stopband bin takes the plain estimate's attenuation where that bin is usable
+in it (see below), otherwise the differenced one's where usable there, otherwise none; the
+passband figures (deviation, phase, bin counts) are the plain estimate's unless it fails
+the coherent-fraction rule (see :func:`grade`) and the differenced one does not. The
+differenced estimate is computed only for the channels where the plain one leaves a
+stopband bin unusable or fails that rule.
+
+The figures compare the chosen ``H`` with the designed ``G(f)``:
 
 * passband deviation: ``20 log10 |H| - 20 log10 G`` over *coherent* passband bins, the
   signed value of largest magnitude (dB);
@@ -63,12 +89,32 @@ Estimator bias and the error allowance
   allowance (none: the figures are NaN).
 * Stopband bins are used only where the coherence passes ``coherence_min`` (output that
   came from input outside the segment, e.g. the ringing of a transient in the previous
-  segment, is not coherent and would understate the attenuation), where the output is at
-  least :data:`LEAKAGE_MARGIN_DB` above the Hann window's leakage from the rest of the
-  output spectrum (estimated by convolving the output spectrum with the window's spectral
-  side lobes), and within :data:`NUMERIC_RANGE_DB` of the output's peak. A correct filter
-  whose stopband output is buried in leakage therefore reports NaN (not measured) rather
-  than a figure set by the estimator's own floor.
+  segment, is not coherent and would understate the attenuation), where the output and
+  the input are each at least :data:`LEAKAGE_MARGIN_DB` above a bound on the Hann
+  window's leakage from the rest of their own spectrum, where the output is within
+  :data:`NUMERIC_RANGE_DB` of its peak, and where input and output each spread their power
+  over at least :data:`MIN_EFFECTIVE_SEGMENTS` segments (a step or burst inside one segment
+  makes that segment's ratio, leakage included, the whole estimate, with a coherence near
+  1). The bound convolves the spectrum, laid out with
+  its mirror image at negative frequencies, with the window's spectral side lobes at their
+  largest over each bin (a tone anywhere in its bin), and doubles it (a component and its
+  image adding in phase); a tone within a bin of 0 Hz can exceed it by a factor of about
+  3, inside the margin. A correct filter whose stopband output is buried in leakage
+  therefore reports NaN (not measured) rather than a figure set by the estimator's own
+  floor.
+* Edges of the block. Input outside the block (a step just before it, the carried state,
+  an end extension) reaches into its output: for sections with simple poles ``p`` the
+  two-pass impulse response beyond its centre is ``sum_p R_p p^|m|``, so that input adds
+  only combinations of ``p^t`` from the first sample and ``p^(n - 1 - t)`` from the last
+  (:func:`_edge_modes`). When a channel fails the coherent-fraction rule (see
+  :func:`grade`), its figures are estimated again from the output minus the least-squares
+  fit of those free responses to the difference between the output and the design's
+  two-pass response to the block's own input (``scipy.signal.sosfiltfilt``, no padding).
+  A correct output then differs from that response only by the fitted part and is
+  coherent again; a wrong one (other channel's data, a causal pass) differs by far more
+  and still fails. For an FIR filter that input reaches ``M - 1`` samples into the block:
+  the figures are estimated again without them, and are NaN (not measured) for the
+  coherent fraction when nothing is left. The re-estimate runs only for such channels.
 
 With ``eps <= 0.01`` the random error is at most ``3 eps`` (three standard deviations):
 ``20 log10(1.03) = 0.26 dB`` and ``0.03 rad = 1.7 deg``. The grading allows
@@ -174,6 +220,11 @@ INPUT_FLOOR_DB: float = 60.0
 """Bins whose input PSD is more than this below the input's peak PSD are not used."""
 LEAKAGE_MARGIN_DB: float = 10.0
 """A stopband bin's output must exceed the estimated window leakage by this much."""
+MIN_EFFECTIVE_SEGMENTS: float = 2.0
+"""A stopband bin counts only where its power is spread over at least about this many Welch
+segments (:attr:`TransferEstimate.effective_segments`), in input and output alike: the
+coherence of a bin that one segment dominates (a step or burst inside it) is near 1 whatever
+the output, and the ratio is that one segment's, leakage included."""
 NUMERIC_RANGE_DB: float = 200.0
 """A stopband bin's output must be within this range of the output's peak PSD."""
 RANDOM_ERROR_MAX: float = 0.01
@@ -222,6 +273,11 @@ class TransferEstimate:
     nperseg: int
     segments: int
     """Number of Welch segments averaged."""
+    effective_segments: np.ndarray | None = None
+    """Per bin, the smaller over input and output of ``(sum_i P_i)^2 / sum_i P_i^2`` (``P_i``:
+    segment ``i``'s periodogram): about the number of segments that carry the bin's power,
+    1 where a single segment does (see :data:`MIN_EFFECTIVE_SEGMENTS`); shape (n_freqs,
+    channels)."""
 
 
 def _as_2d(a: np.ndarray) -> np.ndarray:
@@ -251,7 +307,8 @@ def _segment_plan(n_samples: int, nperseg: int, max_segments: int | None) -> tup
 
 
 def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, nperseg: int,
-                      max_segments: int | None = None, *, precision: str = "float64") -> TransferEstimate:
+                      max_segments: int | None = None, *, precision: str = "float64",
+                      detrend: str = "constant", difference: bool = False) -> TransferEstimate:
     """Welch estimate of the frequency response from ``x`` to ``y``.
 
     Parameters
@@ -261,7 +318,7 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
     sample_rate_hz : float
         Sample rate (Hz).
     nperseg : int
-        Segment length (samples); Hann window, constant detrend per segment.
+        Segment length (samples); Hann window.
     max_segments : int, optional
         Average at most this many segments. Segments start every ``nperseg - nperseg // 2``
         samples (half overlap, as scipy does) from the first sample; when that gives more
@@ -275,6 +332,15 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         segment's largest amplitudes) bury bins far below the strongest one, so
         :func:`block_figures` uses them only where no stopband figure is measured. The
         averages are float64 either way.
+    detrend : {"constant", "linear", "weighted"}
+        What each segment loses before the window: its mean or its least-squares line, as
+        scipy's ``detrend`` argument, or (``"weighted"``) its least-squares line weighted by
+        the window (its residual is orthogonal to constants and lines under the window's
+        weights; see the module notes for why the response check uses it).
+    difference : bool
+        Estimate between the first differences ``x[t + 1] - x[t]`` and ``y[t + 1] - y[t]``
+        (one sample fewer) instead of ``x`` and ``y``; each segment is differenced from
+        its own ``nperseg + 1`` samples, so nothing else of the block is copied.
 
     Returns
     -------
@@ -282,34 +348,41 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         ``h = Pxy / Pxx`` and coherence ``|Pxy|^2 / (Pxx Pyy)`` (0 where a PSD is 0). The
         spectra are the averages over segments of ``conj(X) Y``, ``|X|^2``, ``|Y|^2``
         (one-sided densities), the same numbers as ``scipy.signal.csd(x, y)`` and
-        ``scipy.signal.welch`` with these parameters (up to rounding), but each segment is
-        transformed only once, all channels together.
+        ``scipy.signal.welch`` with these parameters (``detrend`` included, as a callable
+        for ``"weighted"``; up to rounding), but each segment is transformed only once, all
+        channels together.
     """
     x2 = np.asarray(_as_2d(x), dtype=np.float64)
     y2 = np.asarray(_as_2d(y), dtype=np.float64)
     if x2.shape != y2.shape:
         raise KernelError(f"transfer estimate: input shape {x2.shape} and output shape {y2.shape} differ.")
     nperseg = int(nperseg)
-    if not 2 <= nperseg <= x2.shape[0]:
+    n_samples = x2.shape[0] - int(bool(difference))
+    if not 2 <= nperseg <= n_samples:
         raise KernelError(
-            f"transfer estimate: segment length {nperseg} must lie in [2, {x2.shape[0]}] samples "
-            "(the block length)."
+            f"transfer estimate: segment length {nperseg} must lie in [2, {n_samples}] samples "
+            "(the block length, one fewer for differences)."
         )
     if precision not in ("float64", "float32"):
         raise KernelError(f"transfer estimate: precision {precision!r} is not 'float64' or 'float32'.")
+    if detrend not in ("constant", "linear", "weighted"):
+        raise KernelError(f"transfer estimate: detrend {detrend!r} is not 'constant', 'linear' or 'weighted'.")
     fs = float(sample_rate_hz)
-    step, segments = _segment_plan(x2.shape[0], nperseg, max_segments)
+    step, segments = _segment_plan(n_samples, nperseg, max_segments)
     window = _hann(nperseg)
     n_ch = x2.shape[1]
     # Channel-major (channels, n_freqs) inside; the estimate holds the transposed views.
     pxx = np.empty((n_ch, nperseg // 2 + 1))
     pyy = np.empty_like(pxx)
     pxy = np.empty(pxx.shape, dtype=complex)
+    qxx, qyy = np.empty_like(pxx), np.empty_like(pxx)
     group = max(1, _GROUP_BYTES // (8 * nperseg))  # channels per group: bounds the buffers
     for c0 in range(0, n_ch, group):
         c = slice(c0, min(n_ch, c0 + group))
         _welch_sums(x2[:, c], y2[:, c], window, step, segments, pxx[c], pyy[c], pxy[c],
-                    np.dtype(precision).type)
+                    np.dtype(precision).type, detrend=detrend, difference=difference, squares=(qxx[c], qyy[c]))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        spread = np.minimum(np.where(qxx > 0, pxx**2 / qxx, 0.0), np.where(qyy > 0, pyy**2 / qyy, 0.0))
     # Mean over segments; one-sided density: double every bin but 0 Hz (and Nyquist for an
     # even length).
     scale = 1.0 / (fs * float(np.sum(window * window)) * segments)
@@ -326,7 +399,7 @@ def transfer_estimate(x: np.ndarray, y: np.ndarray, sample_rate_hz: float, npers
         denom = pxx * pyy
         coh = np.where(denom > 0, np.abs(pxy) ** 2 / np.where(denom > 0, denom, 1.0), 0.0)
     np.minimum(coh, 1.0, out=coh)
-    return TransferEstimate(f, h.T, coh.T, pxx.T, pyy.T, pxy.T, nperseg, int(segments))
+    return TransferEstimate(f, h.T, coh.T, pxx.T, pyy.T, pxy.T, nperseg, int(segments), spread.T)
 
 
 @lru_cache(maxsize=8)
@@ -337,24 +410,36 @@ def _hann(nperseg: int) -> np.ndarray:
 
 
 def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, segments: int,
-                sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray, dtype: type = np.float64) -> None:
+                sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray, dtype: type = np.float64, *,
+                detrend: str = "constant", difference: bool = False,
+                squares: tuple[np.ndarray, np.ndarray] | None = None) -> None:
     """Sums over segments of ``|X|^2``, ``|Y|^2``, ``conj(X) Y`` into ``sxx``, ``syy``, ``sxy``.
 
     ``x``, ``y``: time-major (samples, channels); ``sxx`` ... channel-major (channels,
     n_freqs), float64. ``X``, ``Y``: rfft of each segment (``window.size`` samples, every
-    ``step`` samples) with its mean removed, times the window, transformed in ``dtype``
-    (float64, or float32 where :func:`block_figures` chooses it). Each segment is copied
-    channel-major once, so the transforms run along contiguous rows.
+    ``step`` samples) detrended as :func:`transfer_estimate`'s ``detrend`` says, times the
+    window, transformed in ``dtype`` (float64, or float32 where :func:`block_figures` chooses
+    it); with ``difference`` the segment is the first difference of ``window.size + 1``
+    samples. Each segment is copied channel-major once, so the transforms run along
+    contiguous rows. ``squares``, when given, receives the sums of ``|X|^4`` and ``|Y|^4``.
     """
     n = window.size
     n_ch = x.shape[1]
     w = window.astype(dtype)
+    linear = detrend == "linear"
+    line = _weighted_line(n, dtype) if detrend == "weighted" else None
     bx, by = np.empty((n_ch, n), dtype), np.empty((n_ch, n), dtype)
-    for a in (sxx, syy, sxy):
+    for a in (sxx, syy, sxy, *(squares or ())):
         a[...] = 0.0
     for start in range(0, segments * step, step):
-        segment_rows(x, start, w, bx)
-        segment_rows(y, start, w, by)
+        for v, buf in ((x, bx), (y, by)):
+            if difference:
+                segment_rows(np.diff(v[start : start + n + 1], axis=0), 0, w, buf, linear=linear)
+            else:
+                segment_rows(v, start, w, buf, linear=linear)
+            if line is not None:
+                fit, shape = line
+                buf -= (buf @ fit) @ shape
         for c0 in range(0, n_ch, _FFT_CHANNELS):
             c = slice(c0, min(n_ch, c0 + _FFT_CHANNELS))
             # ihfft with norm="forward" is conj(rfft) of real input: the conjugate the cross
@@ -362,6 +447,25 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
             cx = sp_fft.ihfft(bx[c], axis=1, norm="forward")
             sy = sp_fft.rfft(by[c], axis=1)
             spectra_sums(cx, sy, sxx[c], syy[c], sxy[c])
+            if squares is not None:
+                for z, q in zip((cx, sy), squares):
+                    q[c] += (z.real.astype(np.float64) ** 2 + z.imag.astype(np.float64) ** 2) ** 2
+
+
+@lru_cache(maxsize=8)
+def _weighted_line(nperseg: int, dtype: type) -> tuple[np.ndarray, np.ndarray]:
+    """(fit, shape) for the window-weighted line of a windowed segment ``b = w (v - mean)``.
+
+    The least-squares line ``a + c u`` (``u = t - (n - 1) / 2``) of ``v`` weighted by the
+    window ``w`` solves ``B^T W B [a, c] = B^T W v`` with ``B = [1, u]``; the right side is
+    ``B^T b`` up to the mean, which only shifts ``a``. So ``b @ fit`` (``fit = B (B^T W B)^-1``)
+    gives ``[a - mean, c]`` per row, and ``(b @ fit) @ shape`` (``shape = (W B)^T``) is the
+    windowed line ``w (a - mean + c u)``: ``b`` minus it is ``w (v - a - c u)``.
+    """
+    w = _hann(nperseg)
+    basis = np.stack([np.ones(nperseg), np.arange(nperseg) - 0.5 * (nperseg - 1)], axis=1)
+    fit = basis @ np.linalg.inv(basis.T @ (w[:, None] * basis))
+    return fit.astype(dtype), (w[:, None] * basis).T.astype(dtype)
 
 
 def _feature_scale_hz(design: Design) -> float:
@@ -454,12 +558,17 @@ def _compute_design_masks(design: Design, nperseg: int) -> tuple[np.ndarray, np.
 
 @lru_cache(maxsize=8)
 def _leakage_kernel(nperseg: int) -> np.ndarray:
-    """Hann spectral window averaged over each bin, main lobe zeroed, sum 1; lags -n/2..n/2."""
+    """Hann spectral window's largest value over each bin, main lobe zeroed; lags -n/2..n/2.
+
+    Lag ``k`` holds the largest ``|W(f)|^2`` for ``f`` within half a bin of ``k`` bins,
+    relative to the window's total spectral power (the sum over bins of its mean over each
+    bin): the share of a tone's measured power that can leak ``k`` bins away wherever in
+    its bin the tone lies.
+    """
     w = signal.get_window(_WINDOW, nperseg)
     spectrum = np.abs(np.fft.fft(w, nperseg * OVERSAMPLE)) ** 2
-    spectrum = np.roll(spectrum, OVERSAMPLE // 2)  # bin k averages lags k - 1/2 .. k + 1/2
-    per_bin = spectrum.reshape(nperseg, OVERSAMPLE).mean(axis=1)
-    per_bin /= per_bin.sum()
+    spectrum = np.roll(spectrum, OVERSAMPLE // 2).reshape(nperseg, OVERSAMPLE)  # bin k: lags k -/+ 1/2
+    per_bin = spectrum.max(axis=1) / spectrum.mean(axis=1).sum()
     half = nperseg // 2
     kernel = np.concatenate([per_bin[-half:], per_bin[: half + 1]])  # lags -half..half
     kernel[half - _MAIN_LOBE_BINS : half + _MAIN_LOBE_BINS + 1] = 0.0
@@ -468,39 +577,73 @@ def _leakage_kernel(nperseg: int) -> np.ndarray:
 
 
 @lru_cache(maxsize=8)
-def _leakage_spectrum(nperseg: int) -> tuple[int, np.ndarray]:
-    """(FFT length, rfft of :func:`_leakage_kernel`) for a linear convolution with the bins."""
+def _leakage_spectrum(nperseg: int) -> np.ndarray:
+    """rfft of :func:`_leakage_kernel` laid out circularly over ``nperseg`` lags."""
     kernel = _leakage_kernel(nperseg)
-    n_fft = sp_fft.next_fast_len(nperseg // 2 + kernel.size, real=True)
-    spectrum = sp_fft.rfft(kernel, n_fft)
+    half = nperseg // 2
+    circular = np.zeros(nperseg)
+    circular[: nperseg - half] = kernel[half : half + nperseg - half]  # lags 0 .. n - half - 1
+    circular[nperseg - half :] = kernel[:half]  # lags -half .. -1
+    spectrum = sp_fft.rfft(circular)
     spectrum.setflags(write=False)
-    return n_fft, spectrum
+    return spectrum
 
 
 def _leakage(pyy: np.ndarray, nperseg: int) -> np.ndarray:
-    """Hann window leakage into each bin, per column of ``pyy`` (n_freqs, channels).
+    """Bound on the Hann window leakage into each bin, per column of ``pyy`` (n_freqs, channels).
 
-    ``scipy.signal.fftconvolve(pyy[:, c], _leakage_kernel(nperseg), mode="same")`` for every
-    column, with the kernel's spectrum computed once.
+    The one-sided spectrum is laid out over all ``nperseg`` bins (each bin also at its
+    mirror frequency, where a real signal's image lies) and convolved circularly with
+    :func:`_leakage_kernel`; the result is doubled, because a component and its image can
+    add in phase (``|a + b|^2 <= 2 |a|^2 + 2 |b|^2``).
     """
     n_bins = pyy.shape[0]
-    n_fft, spectrum = _leakage_spectrum(nperseg)
-    start = (_leakage_kernel(nperseg).size - 1) // 2  # centre of the full convolution
-    full = sp_fft.irfft(sp_fft.rfft(pyy, n_fft, axis=0) * spectrum[:, None], n_fft, axis=0)
-    return full[start : start + n_bins]
+    two_sided = np.concatenate([pyy, pyy[1 : nperseg - n_bins + 1][::-1]], axis=0)
+    spread = sp_fft.irfft(sp_fft.rfft(two_sided, axis=0) * _leakage_spectrum(nperseg)[:, None], nperseg, axis=0)
+    return 2.0 * spread[:n_bins]
+
+
+def _prewhitener_gain(nperseg: int) -> np.ndarray:
+    """``|D(f)|^2 = 4 sin^2(pi f / fs)`` of the first difference ``D = 1 - z^-1`` on the bins."""
+    return 4.0 * np.sin(np.pi * np.arange(nperseg // 2 + 1) / nperseg) ** 2
+
+
+@dataclass(frozen=True)
+class _BinFigures:
+    """Response figures of one Welch estimate, before the two estimates are combined.
+
+    ``figures`` (channels, 5): the columns ``_RESPONSE_FIGURES``, the stopband column from
+    this estimate alone; ``att`` (n_freqs, channels): ``10 log10(Pxx / Pyy)`` where the bin
+    is a usable stopband bin (see the module notes), NaN elsewhere.
+    """
+
+    figures: np.ndarray
+    att: np.ndarray
 
 
 def _response_figures(
-    est: TransferEstimate, cfg: ChecksConfig, masks: tuple[np.ndarray, np.ndarray, np.ndarray]
-) -> np.ndarray:
-    """Shape (channels, 5): the columns ``_RESPONSE_FIGURES``; ``masks`` from :func:`_design_masks`."""
+    est: TransferEstimate, cfg: ChecksConfig, masks: tuple[np.ndarray, np.ndarray, np.ndarray], *,
+    differenced: bool,
+) -> _BinFigures:
+    """Figures of one estimate; ``masks`` from :func:`_design_masks`.
+
+    With ``differenced`` the estimate is between the first differences of input and output
+    (see the module notes): ``h``, the coherence and ``pxx / pyy`` are those of the signals
+    themselves, and the input's energy is judged on ``pxx / |D|^2``.
+    """
     db, passband, stopband = masks
     pxx, pyy, h, coh = est.pxx, est.pyy, est.h, est.coherence
     out = np.full((pxx.shape[1], 5), np.nan)
+    att = np.full(pxx.shape, np.nan)
     n_d = est.segments / (1.0 + 2.0 * HANN_OVERLAP_CORRELATION**2)
-    peak_in = np.max(pxx, axis=0)
+    level_in = pxx
+    if differenced:
+        gain = _prewhitener_gain(est.nperseg)[:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            level_in = np.where(gain > 0.0, pxx / gain, 0.0)  # the input's own PSD (0 Hz: unknown)
+    peak_in = np.max(level_in, axis=0)
     live = peak_in > 0.0
-    energetic = pxx >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
+    energetic = level_in >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
     candidates = passband[:, None] & energetic
     with np.errstate(divide="ignore", invalid="ignore"):
         eps = np.sqrt(np.maximum(1.0 - coh, 0.0)) / (np.sqrt(coh) * math.sqrt(2.0 * n_d))
@@ -517,20 +660,130 @@ def _response_figures(
         out[c, 0] = dev[np.argmax(np.abs(dev))]
         out[c, 1] = phase[np.argmax(np.abs(phase))]
     if stopband.any():
-        leak = _leakage(pyy, est.nperseg)
+        margin = 10.0 ** (LEAKAGE_MARGIN_DB / 10.0)
         peak_out = np.max(pyy, axis=0)
         usable = (
             stopband[:, None]
             & energetic
             & gated
-            & (pyy >= leak * 10.0 ** (LEAKAGE_MARGIN_DB / 10.0))
+            & (pyy >= _leakage(pyy, est.nperseg) * margin)
+            & (pxx >= _leakage(pxx, est.nperseg) * margin)
             & (pyy > peak_out * 10.0 ** (-NUMERIC_RANGE_DB / 10.0))
+            & (est.effective_segments >= MIN_EFFECTIVE_SEGMENTS)
+            & live
         )
-        for c in np.flatnonzero(live & usable.any(axis=0)):
-            sel = usable[:, c]
-            out[c, 2] = float(np.min(10.0 * np.log10(pxx[sel, c] / pyy[sel, c])))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            att = np.where(usable, 10.0 * np.log10(pxx / pyy), np.nan)
+        out[:, 2] = _stopband_minimum(att)
     out[~live] = np.nan  # no input: nothing measured
-    return out
+    return _BinFigures(out, att)
+
+
+def _stopband_minimum(att: np.ndarray) -> np.ndarray:
+    """Per column of ``att`` (n_freqs, channels), its smallest value other than NaN; NaN if none."""
+    measured = ~np.isnan(att)
+    return np.where(measured.any(axis=0), np.min(np.where(measured, att, np.inf), axis=0), np.nan)
+
+
+def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
+    """Response figures (channels, 5) of time-major ``x`` -> ``y``; NaN when too short.
+
+    Two Welch estimates, each segment with its least-squares line removed: the plain one
+    between ``x`` and ``y``, and, for the channels where the plain one leaves a stopband
+    bin unmeasured or fails the coherent-fraction rule, the differenced one between their
+    first differences. They are combined by the rule of the module notes.
+    """
+    figures = np.full((x.shape[1], len(_RESPONSE_FIGURES)), np.nan)
+    nperseg = segment_length(x.shape[0] - 1, design)  # one length for both estimates: the same bins
+    if not nperseg:
+        return figures
+    masks = _design_masks(design, nperseg)
+    stopband = masks[2]
+
+    def estimate(xs: np.ndarray, ys: np.ndarray, differenced: bool) -> _BinFigures:
+        # float32 transforms suffice for passband figures (relative errors near 1e-7); a
+        # stopband figure needs float64's range below the output's strongest bin.
+        est = transfer_estimate(xs, ys, design.sample_rate_hz, nperseg, MAX_SEGMENTS,
+                                precision="float64" if stopband.any() else "float32",
+                                detrend="linear" if differenced else "weighted", difference=differenced)
+        return _response_figures(est, cfg, masks, differenced=differenced)
+
+    plain = estimate(x, y, False)
+    figures[...] = plain.figures
+    plain_lost = _coherence_lost(plain.figures[:, 3], plain.figures[:, 4])
+    unmeasured = np.any(stopband[:, None] & np.isnan(plain.att), axis=0)
+    again = np.flatnonzero(plain_lost | unmeasured)
+    if not again.size:
+        return figures
+    diff = estimate(x[:, again], y[:, again], True)
+    # Passband figures: the differenced estimate's where the plain one loses the coherence
+    # and the differenced one does not.
+    swap = plain_lost[again] & ~_coherence_lost(diff.figures[:, 3], diff.figures[:, 4])
+    figures[again[swap]] = diff.figures[swap]
+    # Stopband: per bin, the plain estimate where it is usable, else the differenced one.
+    figures[again, 2] = _stopband_minimum(np.where(np.isnan(plain.att[:, again]), diff.att, plain.att[:, again]))
+    return figures
+
+
+def _coherence_lost(bins: np.ndarray, coherent: np.ndarray) -> np.ndarray:
+    """Fewer than :data:`COHERENT_FRACTION_MIN` of at least :data:`MIN_CANDIDATE_BINS`
+    passband bins coherent (False where either count is NaN)."""
+    with np.errstate(invalid="ignore"):
+        return (bins >= MIN_CANDIDATE_BINS) & (coherent < COHERENT_FRACTION_MIN * bins)
+
+
+_MODE_FLOOR: float = 1e-18
+"""A pole's power ``|p|^t`` below this (relative to 1 at the block's edge) is left out of the
+fit of :func:`_edge_modes`: far below float64's resolution of the output."""
+
+
+def _edge_modes(sos: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """(rows, basis): what input outside ``n`` samples can add to a two-pass output.
+
+    The two-pass impulse response ``g(m) = g(-m)`` of sections with simple poles ``p``
+    (inside the unit circle) is, for ``m >= 1``, a sum ``sum_p R_p p^m`` (partial fractions of
+    ``H(z) H(1/z)``, whose polynomial part is a constant). Input before the first sample
+    therefore adds a combination of ``p^t`` to samples ``t >= 0``, and input after the last
+    one a combination of ``p^(n - 1 - t)``: the real and imaginary parts of those powers,
+    one column per pole and end. Initial states and end extensions are such input too.
+    ``rows`` are the samples within reach of an end (where some ``|p|^t`` is at least
+    :data:`_MODE_FLOOR`); ``basis`` (rows, columns) holds the powers there.
+    """
+    _, poles, _ = signal.sos2zpk(sos)
+    poles = poles[(np.abs(poles) > 1e-12) & (poles.imag >= 0.0)].astype(complex)
+    slowest = float(np.max(np.abs(poles))) if poles.size else 0.0
+    reach = n if slowest >= 1.0 else min(n, 1 + math.ceil(math.log(_MODE_FLOOR) / math.log(max(slowest, 1e-300))))
+    rows = np.unique(np.concatenate([np.arange(reach), np.arange(n - reach, n)]))
+    columns = []
+    for t in (rows, n - 1 - rows):
+        powers = np.exp(t[:, None] * np.log(poles)[None, :])  # p^t, decaying (|p| < 1)
+        columns += [powers.real, powers.imag[:, poles.imag > 0.0]]
+    return rows, np.concatenate(columns, axis=1)
+
+
+def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
+    """Response figures (channels, 5) of a block core, with the edge rule (module notes)."""
+    figures = _estimated_figures(x, y, design, cfg)
+    lost = np.flatnonzero(_coherence_lost(figures[:, 3], figures[:, 4]))
+    if not lost.size:
+        return figures
+    xl, yl = x[:, lost], y[:, lost]
+    n = x.shape[0]
+    if design.sos is not None:
+        own = signal.sosfiltfilt(design.sos, xl, axis=0, padtype=None)
+        rows, modes = _edge_modes(np.asarray(design.sos, dtype=np.float64), n)
+        fit, *_ = np.linalg.lstsq(modes, yl[rows] - own[rows], rcond=None)
+        cleaned = yl.copy()
+        cleaned[rows] -= modes @ fit
+        figures[lost] = _estimated_figures(xl, cleaned, design, cfg)
+        return figures
+    reach = np.asarray(design.taps).size - 1  # an FIR's outside input reaches M - 1 samples in
+    if segment_length(n - 2 * reach - 1, design):
+        inner = slice(reach, n - reach)
+        figures[lost] = _estimated_figures(xl[inner], yl[inner], design, cfg)
+    else:  # no sample of the output is the block's own: the coherence cannot tell
+        figures[np.ix_(lost, [3, 4])] = np.nan
+    return figures
 
 
 # ----------------------------------------------------------------------------- figures
@@ -617,19 +870,13 @@ def block_figures(
         ("peak_out", peak_out),
     ):
         figures[:, FIGURE_INDEX[name]] = value
-    if response and x.shape[0] > 0:
-        nperseg = segment_length(x.shape[0], design)
+    if response and x.shape[0] > 1:
         clean = np.flatnonzero((bad_in == 0) & (bad_out == 0))
-        if nperseg and clean.size:
+        if clean.size:
             if clean.size < n_ch:
                 x, y = x[:, clean], y[:, clean]
-            masks = _design_masks(design, nperseg)
-            # float32 transforms suffice for passband figures (relative errors near 1e-7);
-            # a stopband figure needs float64's range below the output's strongest bin.
-            precision = "float64" if masks[2].any() else "float32"
-            est = transfer_estimate(x, y, design.sample_rate_hz, nperseg, MAX_SEGMENTS, precision=precision)
             cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
-            figures[np.ix_(clean, cols)] = _response_figures(est, cfg, masks)
+            figures[np.ix_(clean, cols)] = _block_response(x, y, design, cfg)
     return figures
 
 
@@ -710,11 +957,7 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
         short = float(spec.stopband_attenuation_db) - _column(figures, "stopband_att_db")
         if _any_above(short, cfg.stopband_margin_db):
             return FAIL
-    bins = _column(figures, "passband_bins")
-    coherent = _column(figures, "coherent_bins")
-    with np.errstate(invalid="ignore"):
-        lost = (bins >= MIN_CANDIDATE_BINS) & (coherent < COHERENT_FRACTION_MIN * bins)
-    if np.any(lost):
+    if np.any(_coherence_lost(_column(figures, "passband_bins"), _column(figures, "coherent_bins"))):
         return FAIL
     if _any_above(_column(figures, "seam_mismatch"), SEAM_FACTOR * seam_scale(design, tolerance)):
         return FAIL

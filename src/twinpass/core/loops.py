@@ -66,8 +66,12 @@ def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool, out: np.ndarra
     return out
 
 
-def _segment_rows_numpy(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray) -> None:
+def _segment_rows_numpy(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray, linear: bool) -> None:
     rows = np.array(v[start : start + window.shape[0]].T, dtype=np.float64, order="C")
+    n = rows.shape[1]
+    if linear and n > 1:  # least-squares line about the segment's centre, one channel at a time
+        u = np.arange(n) - 0.5 * (n - 1)
+        rows -= (rows @ u)[:, None] / (n * (n * n - 1.0) / 12.0) * u
     rows -= rows.mean(axis=1, keepdims=True)  # the same sums whatever the channels around it
     rows *= window
     out[...] = rows
@@ -230,8 +234,9 @@ def int24_to_float(raw: np.ndarray, scale: float, *, big_endian: bool = False) -
     return _loop("int24")(raw, float(scale), bool(big_endian), out)
 
 
-def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray) -> np.ndarray:
-    """One Welch segment of time-major ``v``, mean removed and windowed, channel-major in ``out``.
+def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray, *,
+                 linear: bool = False) -> np.ndarray:
+    """One Welch segment of time-major ``v``, detrended and windowed, channel-major in ``out``.
 
     Parameters
     ----------
@@ -244,6 +249,10 @@ def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray)
     out : ndarray, float32 or float64, shape (channels, n), C-contiguous
         Receives ``(v[start + i, c] - mean_c) * window[i]`` at ``[c, i]``, where ``mean_c``
         is the segment's mean (computed in float64): scipy's constant detrend.
+    linear : bool
+        Remove the segment's least-squares line instead of its mean (scipy's linear
+        detrend): ``v - mean_c - slope_c * (i - (n - 1) / 2)`` with
+        ``slope_c = sum((i - (n - 1) / 2) v) / sum((i - (n - 1) / 2)^2)``.
 
     Returns
     -------
@@ -252,7 +261,7 @@ def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray)
     """
     if start < 0 or start + window.shape[0] > v.shape[0]:
         raise ValueError(f"segment [{start}, {start + window.shape[0]}) outside the {v.shape[0]} samples")
-    _loop("segment_rows")(v, int(start), window, out)
+    _loop("segment_rows")(v, int(start), window, out, bool(linear))
     return out
 
 
