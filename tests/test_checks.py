@@ -267,6 +267,27 @@ def test_correct_block_with_realistic_input_passes() -> None:
     assert checks.grade(fig, design, CFG, TOL) == PASS
 
 
+@pytest.mark.parametrize("side", ["start", "end"])
+@pytest.mark.parametrize("within", [100, 500])
+def test_an_event_after_silence_at_a_block_edge_is_not_failed(side: str, within: int) -> None:
+    # Exact zeros, then noise starting (or, mirrored, ending) `within` samples of the block's
+    # edge: one Welch segment carries all the passband power, so its coherence is near 1
+    # whatever the output; such bins are not assessed. The output is the correct two-pass
+    # result (scipy.signal.sosfiltfilt), which must not fail.
+    design = bandpass_elliptic()
+    pad, core = 3 * design.effective_length, 60000
+    n = core + 2 * pad
+    x = np.zeros(n)
+    rng = np.random.default_rng(11)
+    if side == "end":
+        x[pad + core - within:] = rng.standard_normal(n - (pad + core - within))
+    else:
+        x[: pad + within] = rng.standard_normal(pad + within)
+    y = two_pass(design, x)
+    fig = checks.block_figures(x[pad:-pad, None], y[pad:-pad, None], design, CFG)
+    assert checks.grade(fig, design, CFG, TOL) == PASS
+
+
 def test_short_block_is_not_measured() -> None:
     # Too short for a usable Welch segment: response figures are NaN and do not grade.
     design = bandpass_elliptic()

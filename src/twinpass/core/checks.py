@@ -50,7 +50,10 @@ that compute both.
 The figures compare the chosen ``H`` with the designed ``G(f)``:
 
 * passband deviation: ``20 log10 |H| - 20 log10 G`` over *coherent* passband bins, the
-  signed value of largest magnitude (dB);
+  signed value of largest magnitude (dB); a passband bin is a candidate only where the
+  input has energy and its power is spread over at least :data:`MIN_EFFECTIVE_SEGMENTS`
+  segments (one segment's coherence is near 1 whatever the output: an event after silence
+  at the block's edge);
 * phase: ``angle(H)`` over the same bins, the signed value of largest magnitude
   (degrees; zero-phase filtering means about 0);
 * stopband attenuation: ``10 log10(Pxx / Pyy)`` over stopband bins where the input has
@@ -224,7 +227,7 @@ INPUT_FLOOR_DB: float = 60.0
 LEAKAGE_MARGIN_DB: float = 10.0
 """A stopband bin's output must exceed the estimated window leakage by this much."""
 MIN_EFFECTIVE_SEGMENTS: float = 2.0
-"""A stopband bin counts only where its power is spread over at least about this many Welch
+"""A bin, passband or stopband, counts only where its power is spread over at least about this many Welch
 segments (:attr:`TransferEstimate.effective_segments`), in input and output alike: the
 coherence of a bin that one segment dominates (a step or burst inside it) is near 1 whatever
 the output, and the ratio is that one segment's, leakage included."""
@@ -648,6 +651,10 @@ def _response_figures(
     live = peak_in > 0.0
     energetic = level_in >= peak_in * 10.0 ** (-INPUT_FLOOR_DB / 10.0)
     candidates = passband[:, None] & energetic
+    if est.effective_segments is not None:
+        # A bin whose power one segment carries has a coherence near 1 whatever the output
+        # (an event starting or ending near the block's edge after silence): not a candidate.
+        candidates &= est.effective_segments >= MIN_EFFECTIVE_SEGMENTS
     with np.errstate(divide="ignore", invalid="ignore"):
         eps = np.sqrt(np.maximum(1.0 - coh, 0.0)) / (np.sqrt(coh) * math.sqrt(2.0 * n_d))
     gated = coh >= cfg.coherence_min
