@@ -214,7 +214,7 @@ def bad_zero_data_size_before_samples(root: Path) -> Expect:
     fmt = fmt_chunk(PCM, 1, RATE, 16)
     put(root, rel, riff([fmt, chunk(b"data", b"", size=0)]) + pcm16(400).tobytes())
     at = 12 + len(fmt) + 4
-    return {rel: ([f"declares 0 bytes (size field of the chunk at byte {at})", "800 bytes = 400 whole frames",
+    return {rel: ([f"declares 0 bytes (its size field at byte {at})", "800 bytes = 400 whole frames",
                    "the size field looks wrong"],
                   [f"rewrite its header with the real sizes (data size 800 at byte {at}, RIFF size {at + 4 + 800 - 8} "
                    "at byte 4)", REMEDY_EXCLUDE])}

@@ -342,7 +342,7 @@ def test_zero_data_size_followed_by_frames_names_the_sizes_to_write(tmp_path):
         open_recording(path, options={"truncated": "warn"})
     msg = str(err.value)
     at = 12 + len(fmt) + 4  # the data chunk's size field
-    assert f"declares 0 bytes (size field of the chunk at byte {at})" in msg, msg
+    assert f"declares 0 bytes (its size field at byte {at})" in msg, msg
     assert "4002 bytes = 1000 whole frames of 4 bytes follow it to the end of the file" in msg, msg
     assert "the size field looks wrong" in msg and "recording is empty" not in msg, msg
     riff_size = struct.unpack("<I", good[4:8])[0]

@@ -68,6 +68,8 @@ def with_config_keys(text: str) -> str:
     for hint, key in CONFIG_HINTS.items():
         text = text.replace(hint, key)
     return text
+
+
 HEADER_REWRITE = "rewrite its header with the real sizes"
 """The start of the WAV reader's remedy for a data chunk whose size field says 0 while frames
 follow it (after "; "); discovery makes it the remedy."""

@@ -300,10 +300,10 @@ def _zero_data_size(path: str, fh: BinaryIO, lay: _Layout, size: int) -> None:
     data = frames * align
     rest = follow - data
     riff = lay.data_offset + data + (data & 1) - 8
-    where = "in the ds64 chunk" if lay.data_size_at == 28 else "of the chunk"
+    where = "its size in the ds64 chunk" if lay.data_size_at == 28 else "its size field"
     riff_at = "at byte 4" if lay.container == "RIFF" else "in the ds64 chunk at byte 20"
     raise CorruptInputError(
-        f"{path}: the data chunk at byte {lay.data_chunk} declares 0 bytes (size field {where} at byte "
+        f"{path}: the data chunk at byte {lay.data_chunk} declares 0 bytes ({where} at byte "
         f"{lay.data_size_at}), but {follow} bytes = {frames} whole frames of {align} bytes follow it to the "
         "end of the file: the size field looks wrong (a recorder that stopped before writing the real sizes "
         f"leaves 0 there); {HEADER_REWRITE} (data size {data} at byte {lay.data_size_at}, "
