@@ -475,6 +475,10 @@ def test_incomplete_is_resumed():
     b = plan.file("b")
     assert (b.status, b.redo, b.resume) == ("incomplete", "all", True)
     assert plan.file("a").status == "unchanged"
+    # the whole file is counted, an upper bound the table says it is
+    assert plan.totals()["resumed"] == 1 and plan.totals()["samples"] == 100
+    assert "samples to compute: 100 per channel (at most: 1 resumed file(s) keep the blocks already done)" \
+        in format_plan(plan)
 
 
 def test_a_rewrite_cut_short_is_planned_whole_and_said_so():

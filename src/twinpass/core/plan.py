@@ -269,7 +269,7 @@ class Plan:
         dict
             ``files``: files per status (every status, zeros included); ``segments`` and
             ``segments_with_work``; ``samples``: samples per channel to compute (whole
-            files for resumed ones, so an upper bound); ``block_work_samples``: the same
+            files for resumed ones, so an upper bound); ``resumed``: how many files resume; ``block_work_samples``: the same
             plus a halo on each side of every run of consecutive samples to compute in a
             segment (file joins inside a segment do not break a run); an estimate of what
             the blocks read, in samples per channel.
@@ -297,6 +297,7 @@ class Plan:
             "segments": len(self.segments),
             "segments_with_work": len(per_segment),
             "samples": int(samples),
+            "resumed": sum(1 for fp in self.files if fp.redo == "all" and fp.resume),
             "block_work_samples": int(work),
         }
 
@@ -695,8 +696,10 @@ def format_plan(plan: Plan) -> str:
     lines.append("")
     lines.append(f"files: {counts or 'none'}")
     lines.append(f"segments: {t['segments']} ({t['segments_with_work']} with work)")
+    at_most = (f" (at most: {t['resumed']} resumed file(s) keep the blocks already done)"
+               if t["resumed"] else "")
     lines.append(
-        f"samples to compute: {t['samples']:,} per channel; "
+        f"samples to compute: {t['samples']:,} per channel{at_most}; "
         f"estimated block work including halos: {t['block_work_samples']:,}"
     )
     for note in plan.notes:
