@@ -135,6 +135,8 @@ from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segmen
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
 from twinpass.io.readers._common import (
+    CONFIG_TRUNCATED,
+    CONFIG_WRAPPED,
     HEADER_REWRITE,
     READABLE,
     TRUNCATED_HINT,
@@ -655,9 +657,6 @@ def _strip_path(message: str, abspath: str) -> str:
     return message
 
 
-_CONFIG_TRUNCATED = '[archive] truncated = "warn"'
-
-
 def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
     """RecordingInfo and ReaderSpec of one file, or :class:`_Bad`."""
     try:
@@ -682,11 +681,11 @@ def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
         if TRUNCATED_HINT in text:
             # the reader's hint names its own option; the remedy names the configuration key
             text = text.replace(f"; {TRUNCATED_HINT}", "")
-            remedy = f"set {_CONFIG_TRUNCATED} to filter the whole frames that are present, or " + remedy
+            remedy = f"set {CONFIG_TRUNCATED} to filter the whole frames that are present, or " + remedy
         if WRAPPED_HINT in text:
             text = text.replace(f". {WRAPPED_REWRITE}; {WRAPPED_HINT}", "")
             remedy = (
-                'rewrite the file as RF64 (or W64), or set [archive] wrapped_sizes = "read" to read every '
+                f"rewrite the file as RF64 (or W64), or set {CONFIG_WRAPPED} to read every "
                 "whole frame up to the end of the file, or " + _REMEDY_EXCLUDE
             )
         if f"; {HEADER_REWRITE}" in text:

@@ -56,9 +56,12 @@ WRAPPED_HINT = 'to read every whole frame up to the end of the file set the read
 """The last clause of the WAV reader's error for a plain RIFF file over 4 GiB whose 32-bit sizes
 wrapped (after "; "); discovery gives the configuration key in its remedy instead."""
 WRAPPED_MODES = ("error", "read")
+CONFIG_TRUNCATED = '[archive] truncated = "warn"'
+CONFIG_WRAPPED = '[archive] wrapped_sizes = "read"'
+"""The configuration settings that set those reader options for a job."""
 CONFIG_HINTS = {
-    TRUNCATED_HINT: 'to read up to the last whole frame set [archive] truncated = "warn"',
-    WRAPPED_HINT: 'to read every whole frame up to the end of the file set [archive] wrapped_sizes = "read"',
+    TRUNCATED_HINT: f"to read up to the last whole frame set {CONFIG_TRUNCATED}",
+    WRAPPED_HINT: f"to read every whole frame up to the end of the file set {CONFIG_WRAPPED}",
 }
 """Each reader-option hint above as the configuration key a job sets it with."""
 
