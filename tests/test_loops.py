@@ -169,9 +169,19 @@ def test_welch_segment_loops_match_numpy(dtype: type) -> None:
     ramped = v + np.arange(3000)[:, None] * [0.5, -2.0, 1e-4, 0.0, 3.0]
     seg = ramped[700:1724]
     want = (signal.detrend(seg, axis=0, type="linear") * window.astype(np.float64)[:, None]).T
-    for impl in (loops.segment_rows, lambda *a, linear: loops._segment_rows_numpy(*a, linear)):
+    for impl in (loops.segment_rows, lambda *a, linear: loops._segment_rows_numpy(*a, 1)):
         got = np.empty((5, 1024), dtype)
         impl(ramped, 700, window, got, linear=True)
+        np.testing.assert_allclose(got, want, rtol=tol, atol=tol * np.abs(want).max())
+    # Window-weighted line: numpy.polyfit with weights sqrt(window) (it minimises the sum of
+    # (w_i r_i)^2 for weights w_i) fits the line minimising sum(window_i r_i^2).
+    u = np.arange(1024) - 511.5
+    weights = np.sqrt(window.astype(np.float64))
+    line = np.stack([np.polyval(np.polyfit(u, seg[:, c], 1, w=weights), u) for c in range(5)], axis=1)
+    want = ((seg - line) * window.astype(np.float64)[:, None]).T
+    for impl in (loops.segment_rows, lambda *a, weighted: loops._segment_rows_numpy(*a, 2)):
+        got = np.empty((5, 1024), dtype)
+        impl(ramped, 700, window, got, weighted=True)
         np.testing.assert_allclose(got, want, rtol=tol, atol=tol * np.abs(want).max())
     with pytest.raises(ValueError, match="outside"):
         loops.segment_rows(v, 2000, window, out)

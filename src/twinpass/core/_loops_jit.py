@@ -365,33 +365,46 @@ def _int24_jit(raw, scale, big_endian, out):  # type: ignore[no-untyped-def]
 
 
 @_jit
-def _segment_rows_jit(v, start, window, out, linear):  # type: ignore[no-untyped-def]
-    # Mean (and, when linear, the least-squares slope about the segment's centre) over the
-    # segment in float64, then the residual times the window written channel-major in
-    # out's type; reads the time-major rows once for the sums and once for the copy.
+def _segment_rows_jit(v, start, window, out, trend):  # type: ignore[no-untyped-def]
+    # The segment's trend in float64 (trend 0: its mean; 1: its least-squares line about
+    # the segment's centre; 2: that line weighted by the window), then the residual times
+    # the window written channel-major in out's type; reads the time-major rows once for
+    # the sums and once for the copy.
     n = window.shape[0]
     nc = v.shape[1]
-    mean = np.zeros(nc)
-    moment = np.zeros(nc)
+    s0 = np.zeros(nc)
+    s1 = np.zeros(nc)
     centre = 0.5 * (n - 1)
+    w0 = 0.0
+    w1 = 0.0
+    w2 = 0.0
     for i in range(n):
         u = i - centre
+        q = np.float64(window[i]) if trend == 2 else 1.0
+        w0 += q
+        w1 += q * u
+        w2 += q * u * u
         for c in range(nc):
             a = v[start + i, c]
-            mean[c] += a
-            moment[c] += u * a
+            s0[c] += q * a
+            s1[c] += q * u * a
+    level = np.zeros(nc)
     slope = np.zeros(nc)
-    if linear and n > 1:
-        spread = n * (n * n - 1.0) / 12.0  # sum of (i - centre)^2
-        for c in range(nc):
-            slope[c] = moment[c] / spread
+    det = w0 * w2 - w1 * w1
     for c in range(nc):
-        mean[c] /= n
+        if trend == 1 and n > 1:
+            level[c] = s0[c] / n
+            slope[c] = s1[c] / (n * (n * n - 1.0) / 12.0)  # sum of (i - centre)^2
+        elif trend == 2 and n > 1 and det > 0.0:
+            level[c] = (w2 * s0[c] - w1 * s1[c]) / det
+            slope[c] = (w0 * s1[c] - w1 * s0[c]) / det
+        else:
+            level[c] = s0[c] / w0
     for i in range(n):
         w = window[i]
         u = i - centre
         for c in range(nc):
-            out[c, i] = (v[start + i, c] - mean[c] - slope[c] * u) * w
+            out[c, i] = (v[start + i, c] - level[c] - slope[c] * u) * w
 
 
 @_jit

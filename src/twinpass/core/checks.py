@@ -432,20 +432,16 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
     n = window.size
     n_ch = x.shape[1]
     w = window.astype(dtype)
-    linear = detrend == "linear"
-    line = _weighted_line(n, dtype) if detrend == "weighted" else None
+    linear, weighted = detrend == "linear", detrend == "weighted"
     bx, by = np.empty((n_ch, n), dtype), np.empty((n_ch, n), dtype)
     for a in (sxx, syy, sxy, *(squares or ())):
         a[...] = 0.0
     for start in range(0, segments * step, step):
         for v, buf in ((x, bx), (y, by)):
             if difference:
-                segment_rows(np.diff(v[start : start + n + 1], axis=0), 0, w, buf, linear=linear)
+                segment_rows(np.diff(v[start : start + n + 1], axis=0), 0, w, buf, linear=linear, weighted=weighted)
             else:
-                segment_rows(v, start, w, buf, linear=linear)
-            if line is not None:
-                fit, shape = line
-                buf -= (buf @ fit) @ shape
+                segment_rows(v, start, w, buf, linear=linear, weighted=weighted)
         for c0 in range(0, n_ch, _FFT_CHANNELS):
             c = slice(c0, min(n_ch, c0 + _FFT_CHANNELS))
             # ihfft with norm="forward" is conj(rfft) of real input: the conjugate the cross
@@ -456,22 +452,6 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
             if squares is not None:
                 for z, q in zip((cx, sy), squares):
                     q[c] += (z.real.astype(np.float64) ** 2 + z.imag.astype(np.float64) ** 2) ** 2
-
-
-@lru_cache(maxsize=8)
-def _weighted_line(nperseg: int, dtype: type) -> tuple[np.ndarray, np.ndarray]:
-    """(fit, shape) for the window-weighted line of a windowed segment ``b = w (v - mean)``.
-
-    The least-squares line ``a + c u`` (``u = t - (n - 1) / 2``) of ``v`` weighted by the
-    window ``w`` solves ``B^T W B [a, c] = B^T W v`` with ``B = [1, u]``; the right side is
-    ``B^T b`` up to the mean, which only shifts ``a``. So ``b @ fit`` (``fit = B (B^T W B)^-1``)
-    gives ``[a - mean, c]`` per row, and ``(b @ fit) @ shape`` (``shape = (W B)^T``) is the
-    windowed line ``w (a - mean + c u)``: ``b`` minus it is ``w (v - a - c u)``.
-    """
-    w = _hann(nperseg)
-    basis = np.stack([np.ones(nperseg), np.arange(nperseg) - 0.5 * (nperseg - 1)], axis=1)
-    fit = basis @ np.linalg.inv(basis.T @ (w[:, None] * basis))
-    return fit.astype(dtype), (w[:, None] * basis).T.astype(dtype)
 
 
 def _feature_scale_hz(design: Design) -> float:

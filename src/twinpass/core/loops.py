@@ -66,13 +66,20 @@ def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool, out: np.ndarra
     return out
 
 
-def _segment_rows_numpy(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray, linear: bool) -> None:
+def _segment_rows_numpy(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray, trend: int) -> None:
     rows = np.array(v[start : start + window.shape[0]].T, dtype=np.float64, order="C")
     n = rows.shape[1]
-    if linear and n > 1:  # least-squares line about the segment's centre, one channel at a time
-        u = np.arange(n) - 0.5 * (n - 1)
+    u = np.arange(n) - 0.5 * (n - 1)
+    if trend == 1 and n > 1:  # least-squares line about the segment's centre, one channel at a time
         rows -= (rows @ u)[:, None] / (n * (n * n - 1.0) / 12.0) * u
-    rows -= rows.mean(axis=1, keepdims=True)  # the same sums whatever the channels around it
+    weights = window.astype(np.float64)
+    w0, w1, w2 = weights.sum(), weights @ u, weights @ (u * u)
+    det = w0 * w2 - w1 * w1
+    if trend == 2 and n > 1 and det > 0.0:  # the least-squares line weighted by the window
+        s0, s1 = rows @ weights, rows @ (weights * u)
+        rows -= ((w2 * s0 - w1 * s1) / det)[:, None] + ((w0 * s1 - w1 * s0) / det)[:, None] * u
+    else:
+        rows -= rows.mean(axis=1, keepdims=True)  # the same sums whatever the channels around it
     rows *= window
     out[...] = rows
 
@@ -235,7 +242,7 @@ def int24_to_float(raw: np.ndarray, scale: float, *, big_endian: bool = False) -
 
 
 def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray, *,
-                 linear: bool = False) -> np.ndarray:
+                 linear: bool = False, weighted: bool = False) -> np.ndarray:
     """One Welch segment of time-major ``v``, detrended and windowed, channel-major in ``out``.
 
     Parameters
@@ -253,6 +260,11 @@ def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray,
         Remove the segment's least-squares line instead of its mean (scipy's linear
         detrend): ``v - mean_c - slope_c * (i - (n - 1) / 2)`` with
         ``slope_c = sum((i - (n - 1) / 2) v) / sum((i - (n - 1) / 2)^2)``.
+    weighted : bool
+        Remove the segment's least-squares line weighted by ``window`` instead (the line
+        ``a_c + b_c (i - (n - 1) / 2)`` minimising ``sum(window[i] (v - line)^2)``): an
+        offset or ramp is removed exactly, and the line is not pulled by the segment's
+        ends, where the window is small. Takes precedence over ``linear``.
 
     Returns
     -------
@@ -261,7 +273,7 @@ def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray,
     """
     if start < 0 or start + window.shape[0] > v.shape[0]:
         raise ValueError(f"segment [{start}, {start + window.shape[0]}) outside the {v.shape[0]} samples")
-    _loop("segment_rows")(v, int(start), window, out, bool(linear))
+    _loop("segment_rows")(v, int(start), window, out, 2 if weighted else 1 if linear else 0)
     return out
 
 
