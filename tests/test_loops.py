@@ -194,6 +194,15 @@ def test_welch_segment_loops_match_numpy(dtype: type) -> None:
     np.testing.assert_allclose(sums[1], np.abs(b) ** 2, rtol=1e-12)
     np.testing.assert_allclose(sums[2], a * b, rtol=1e-12)
     fallback = [np.ones((5, 513)), np.zeros((5, 513)), np.zeros((5, 513), dtype=complex)]
-    loops._spectra_sums_numpy(cx, sy, *fallback)
+    loops._spectra_sums_numpy(cx, sy, *fallback, np.zeros((0, 0)), np.zeros((0, 0)))
     for got, ref in zip(sums, fallback):
         np.testing.assert_allclose(got, ref, rtol=1e-12)
+    # With the fourth powers asked for, compiled and numpy loops alike: |X|^4 and |Y|^4
+    # (numpy.abs) added beside the same sums.
+    for impl in (loops.spectra_sums, lambda *a, squares: loops._spectra_sums_numpy(*a, *squares)):
+        fourth = (np.full((5, 513), 2.0), np.zeros((5, 513)))
+        again = [np.zeros((5, 513)), np.zeros((5, 513)), np.zeros((5, 513), dtype=complex)]
+        impl(cx, sy, *again, squares=fourth)
+        np.testing.assert_allclose(fourth[0], 2.0 + np.abs(a) ** 4, rtol=1e-12)
+        np.testing.assert_allclose(fourth[1], np.abs(b) ** 4, rtol=1e-12)
+        np.testing.assert_allclose(again[1], np.abs(b) ** 2, rtol=1e-12)

@@ -408,16 +408,23 @@ def _segment_rows_jit(v, start, window, out, trend):  # type: ignore[no-untyped-
 
 
 @_jit
-def _spectra_sums_jit(cx, sy, sxx, syy, sxy):  # type: ignore[no-untyped-def]
-    # cx = conj(X), sy = Y (rows = channels); sums in float64 whatever the spectra's type.
+def _spectra_sums_jit(cx, sy, sxx, syy, sxy, qxx, qyy):  # type: ignore[no-untyped-def]
+    # cx = conj(X), sy = Y (rows = channels); sums in float64 whatever the spectra's type;
+    # qxx and qyy (empty: not wanted) receive |X|^4 and |Y|^4.
     nc, nf = cx.shape
+    fourth = qxx.size > 0
     for c in range(nc):
         for k in range(nf):
             ar = np.float64(cx[c, k].real); ai = np.float64(cx[c, k].imag)
             br = np.float64(sy[c, k].real); bi = np.float64(sy[c, k].imag)
-            sxx[c, k] += ar * ar + ai * ai
-            syy[c, k] += br * br + bi * bi
+            px = ar * ar + ai * ai
+            py = br * br + bi * bi
+            sxx[c, k] += px
+            syy[c, k] += py
             sxy[c, k] += complex(ar * br - ai * bi, ar * bi + ai * br)
+            if fourth:
+                qxx[c, k] += px * px
+                qyy[c, k] += py * py
 
 
 def compile_cascade():  # type: ignore[no-untyped-def]

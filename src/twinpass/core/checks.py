@@ -448,10 +448,8 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
             # product needs comes out of the transform itself.
             cx = sp_fft.ihfft(bx[c], axis=1, norm="forward")
             sy = sp_fft.rfft(by[c], axis=1)
-            spectra_sums(cx, sy, sxx[c], syy[c], sxy[c])
-            if squares is not None:
-                for z, q in zip((cx, sy), squares):
-                    q[c] += (z.real.astype(np.float64) ** 2 + z.imag.astype(np.float64) ** 2) ** 2
+            spectra_sums(cx, sy, sxx[c], syy[c], sxy[c],
+                         None if squares is None else (squares[0][c], squares[1][c]))
 
 
 def _feature_scale_hz(design: Design) -> float:

@@ -85,11 +85,15 @@ def _segment_rows_numpy(v: np.ndarray, start: int, window: np.ndarray, out: np.n
 
 
 def _spectra_sums_numpy(cx: np.ndarray, sy: np.ndarray, sxx: np.ndarray, syy: np.ndarray,
-                        sxy: np.ndarray) -> None:
+                        sxy: np.ndarray, qxx: np.ndarray, qyy: np.ndarray) -> None:
     a, b = cx.astype(np.complex128), sy.astype(np.complex128)
-    sxx += a.real**2 + a.imag**2
-    syy += b.real**2 + b.imag**2
+    px, py = a.real**2 + a.imag**2, b.real**2 + b.imag**2
+    sxx += px
+    syy += py
     sxy += a * b
+    if qxx.size:
+        qxx += px**2
+        qyy += py**2
 
 
 # ----------------------------------------------------------------------------- compiled
@@ -277,11 +281,17 @@ def segment_rows(v: np.ndarray, start: int, window: np.ndarray, out: np.ndarray,
     return out
 
 
-def spectra_sums(cx: np.ndarray, sy: np.ndarray, sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray) -> None:
+_NO_SQUARES = np.zeros((0, 0))
+
+
+def spectra_sums(cx: np.ndarray, sy: np.ndarray, sxx: np.ndarray, syy: np.ndarray, sxy: np.ndarray,
+                 squares: tuple[np.ndarray, np.ndarray] | None = None) -> None:
     """Add one segment's auto and cross spectra to running float64 sums, per channel row.
 
     ``cx`` is ``conj(X)`` and ``sy`` is ``Y`` (complex64 or complex128, shape (channels,
     n_freqs)); adds ``|X|^2`` to ``sxx``, ``|Y|^2`` to ``syy`` (float64) and ``conj(X) Y``
-    to ``sxy`` (complex128), each product formed in float64.
+    to ``sxy`` (complex128), each product formed in float64; with ``squares`` (two float64
+    arrays like ``sxx``), ``|X|^4`` and ``|Y|^4`` to them.
     """
-    _loop("spectra_sums")(cx, sy, sxx, syy, sxy)
+    qxx, qyy = squares if squares is not None else (_NO_SQUARES, _NO_SQUARES)
+    _loop("spectra_sums")(cx, sy, sxx, syy, sxy, qxx, qyy)
