@@ -617,6 +617,35 @@ def test_a_file_rewritten_with_another_shape_during_a_run_is_named(tmp_path):
     assert str(path) in str(err.value) and "1000 frames x 3 channel(s)" in str(err.value)
 
 
+def test_a_file_cut_short_while_a_block_reads_it_says_it_changed_during_the_run(tmp_path, monkeypatch):
+    # An injected fault: the file is cut short right after a block opened it, so the reader's
+    # read comes up short. The error says the file changed during the run, not "reopen it".
+    from twinpass.engine import SourceSlice, read_segment_window
+    from twinpass.errors import CorruptInputError
+    from twinpass.io.readers.base import ReaderSpec
+    from twinpass.io.readers.registry import open_recording
+
+    path = tmp_path / "a.wav"
+    scipy.io.wavfile.write(path, 200, (np.random.default_rng(4).standard_normal((4000, 2)) * 8000).astype(np.int16))
+    with open_recording(str(path)) as rec:
+        spec = rec.spec
+    opened = ReaderSpec.open
+
+    def open_then_cut(self):  # type: ignore[no-untyped-def]
+        rec = opened(self)
+        with open(path, "r+b") as f:
+            f.truncate(44 + 4 * 1000)
+        return rec
+
+    monkeypatch.setattr(ReaderSpec, "open", open_then_cut)
+    with pytest.raises(CorruptInputError) as err:
+        read_segment_window((SourceSlice(spec, 0, 4000),), 0, 4000, 2)
+    msg = str(err.value)
+    assert msg.startswith(f"{path}: the file changed while this run used it: the file ends at byte "), msg
+    assert msg.endswith("; its blocks are recorded as not done: rerun to filter it afresh"), msg
+    assert "Reopen it" not in msg, msg
+
+
 def test_a_file_cut_short_during_a_run_names_the_setting_and_is_said_once(tmp_path, caplog):
     # Blocks reopen their files; a WAV cut short after the run planned it fails each of its
     # blocks alike. The error names the configuration key that reads such a file, and the

@@ -52,8 +52,8 @@ from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, block_list, blocks_tou
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.types import RESETTING_DIGEST, Design
-from .errors import ConfigError, InputError, RunStoppedError, StoreError, TwinpassError
-from .io.readers._common import with_config_keys
+from .errors import ConfigError, CorruptInputError, InputError, RunStoppedError, StoreError, TwinpassError
+from .io.readers._common import SHORT_READ_HINT, with_config_keys
 from .io.readers.base import ReaderSpec
 
 log = logging.getLogger("twinpass.engine")
@@ -74,6 +74,15 @@ class SourceSlice:
     frames: int
     fill: tuple[FillSpan, ...] = ()
     """Linear fills of the file's NaN/Inf runs (file samples), applied to every read."""
+
+
+def _changed_during_run(path: str, exc: InputError) -> InputError:
+    """The error for an input that opened or read as planned no longer: what its reader found,
+    with its options named as the configuration keys, and what follows for its blocks."""
+    found = with_config_keys(str(exc)).removeprefix(f"{path}: ").removesuffix(
+        f"; {SHORT_READ_HINT}")
+    return type(exc)(f"{path}: the file changed while this run used it: {found}; its blocks are recorded as "
+                     "not done: rerun to filter it afresh", path=path)
 
 
 def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channels: int) -> np.ndarray:
@@ -100,12 +109,7 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
         try:
             opened = src.spec.open()
         except InputError as exc:  # it opened when the run planned it
-            raise type(exc)(
-                f"{src.spec.path}: the file changed while this run used it: "
-                f"{with_config_keys(str(exc)).removeprefix(f'{src.spec.path}: ')}; its blocks are recorded as "
-                "not done: rerun to filter it afresh",
-                path=src.spec.path,
-            ) from None
+            raise _changed_during_run(src.spec.path, exc) from None
         with opened as rec:
             if (rec.info.frames, rec.info.channels) != (src.frames, channels):
                 raise InputError(
@@ -113,7 +117,10 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
                     f"frames x {rec.info.channels} channel(s), against {src.frames} x {channels} when the run "
                     "planned it; its blocks are recorded as not done: rerun to filter it afresh"
                 )
-            part = rec.read(lo - src.seg_offset, hi - src.seg_offset)
+            try:
+                part = rec.read(lo - src.seg_offset, hi - src.seg_offset)
+            except CorruptInputError as exc:  # cut short while this block read it
+                raise _changed_during_run(src.spec.path, exc) from None
         if src.fill:
             apply_fill(part, lo - src.seg_offset, src.fill)
         if (lo, hi) == (a, b) and part.dtype == np.float64 and part.flags.c_contiguous and part.flags.writeable:

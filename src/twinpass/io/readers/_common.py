@@ -73,6 +73,9 @@ def with_config_keys(text: str) -> str:
     return text
 
 
+SHORT_READ_HINT = "was it truncated or modified after opening? Reopen it"
+"""The last clause of a reader's error for a file that ended before bytes it was reading (after
+"; "); a run that planned the file says instead that it changed while the run used it."""
 HEADER_REWRITE = "rewrite its header with the real sizes"
 """The start of the WAV reader's remedy for a data chunk whose size field says 0 while frames
 follow it (after "; "); discovery makes it the remedy."""
@@ -299,7 +302,7 @@ def read_exact(fh: BinaryIO, path: str, offset: int, nbytes: int) -> np.ndarray:
         if n <= 0:
             raise CorruptInputError(
                 f"{path}: the file ends at byte {offset + got} but bytes up to {offset + nbytes} "
-                "were expected; was it truncated or modified after opening? Reopen it",
+                f"were expected; {SHORT_READ_HINT}",
                 path=path,
             )
         got += n
