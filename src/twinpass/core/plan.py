@@ -269,7 +269,8 @@ class Plan:
         dict
             ``files``: files per status (every status, zeros included); ``segments`` and
             ``segments_with_work``; ``samples``: samples per channel to compute (whole
-            files for resumed ones, so an upper bound); ``resumed``: how many files resume; ``block_work_samples``: the same
+            files for resumed ones, so an upper bound); ``resumed``: how many files resume
+            (redone whole but for their done blocks); ``block_work_samples``: the same
             plus a halo on each side of every run of consecutive samples to compute in a
             segment (file joins inside a segment do not break a run); an estimate of what
             the blocks read, in samples per channel.
