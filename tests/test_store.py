@@ -198,6 +198,22 @@ def test_output_array_and_attribute_documents_are_the_ones_zarr_writes(tmp_path:
     assert back[45, 0] == 2.0
 
 
+def test_attributes_already_held_are_not_written_again(store: OutputStore, tmp_path: Path):
+    # An unchanged file's placement is confirmed on every run that touches its segment: the
+    # same values leave its metadata document alone (not even renamed over); a changed one,
+    # or the same number of another JSON type, is written.
+    _prepare(store)
+    doc = tmp_path / "out.zarr" / NAME / "zarr.json"
+    store.update_attrs(NAME, segment="deck-north#1", joins=[None, "b.wav"], edge_zone_samples=12)
+    before = doc.stat().st_ino, doc.stat().st_mtime_ns
+    store.update_attrs(NAME, segment="deck-north#1", joins=(None, "b.wav"), edge_zone_samples=np.int64(12))
+    assert (doc.stat().st_ino, doc.stat().st_mtime_ns) == before
+    store.update_attrs(NAME, edge_zone_samples=12.0)
+    assert json.loads(doc.read_text())["attributes"]["edge_zone_samples"] == 12.0
+    store.update_attrs(NAME, segment="deck-north#2")
+    assert json.loads(doc.read_text())["attributes"]["segment"] == "deck-north#2"
+
+
 def test_block_table_reads_equal_zarrs_own_reads(store: OutputStore, tmp_path: Path):
     # Reference: zarr-python reading the same arrays. Local block tables are read by
     # twinpass from their chunk files: missing chunks (blocks not recorded) must read as

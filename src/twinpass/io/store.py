@@ -235,6 +235,11 @@ class BlockRecord:
     error: str | None = None
 
 
+def _same_json(a: Any, b: Any) -> bool:
+    """Whether two JSON values are the same document (``True`` is not ``1``, ``1`` not ``1.0``)."""
+    return json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
+
+
 def _contiguous(rows: list[int]) -> bool:
     return rows[-1] - rows[0] + 1 == len(rows)
 
@@ -1605,12 +1610,21 @@ class OutputStore:
         return sum(self.remove_file(n) for n in list(names))
 
     def update_attrs(self, name: str, **attrs: Any) -> None:
-        """Merge JSON-safe ``attrs`` into an array's attributes (not ``complete=True``: see set_complete)."""
+        """Merge JSON-safe ``attrs`` into an array's attributes (not ``complete=True``: see set_complete).
+
+        Nothing is written when every attribute already has its value (an unchanged file's
+        placement, confirmed on each run that touches its segment).
+        """
         self._writable()
         if attrs.get("complete"):
             raise StoreError(f"{name}: set complete only with set_complete(), which checks the block table")
+        node = self._array(name)
+        new = json_safe(attrs, f"{name} attributes")
+        held = node.metadata.attributes
+        if all(key in held and _same_json(held[key], value) for key, value in new.items()):
+            return
         with self._writing(f"{name} (attributes)"):
-            self._set_attributes(name, self._array(name), json_safe(attrs, f"{name} attributes"))
+            self._set_attributes(name, node, new)
 
     def read(self, name: str, start: int = 0, stop: int | None = None) -> np.ndarray:
         """Frames [start, stop) of an output array, shape (samples, channels)."""
