@@ -1377,8 +1377,3 @@ def seam_pass(seg: SegmentWork, store: Any, spans_by_file: dict[str, list[tuple[
     for name, recs in records.items():
         store.record_blocks(name, recs)
     return failed
-
-
-# Former private names, kept for callers that still use them.
-_record = record_result
-_seam_pass = seam_pass
