@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
+import conftest
 from conftest import block_status, make_signal, open_store, read_output, write_config, write_stream
 from twinpass import faults
 from twinpass.config import load_config
@@ -82,6 +83,37 @@ def test_a_block_that_keeps_failing_fails_only_its_file(tmp_path, inject):
     res2, blocks2 = _results(cfg)
     assert res2.ok and list(blocks2) == [(ARRAYS[1], 3)]
     assert open_store(cfg.store_location)[ARRAYS[1]].attrs["complete"] is True
+
+
+def test_a_block_failing_after_a_design_change_reads_as_nan_not_as_the_old_design(tmp_path, inject):
+    # A design change refilters every file in the blocks it was written in. A block that
+    # then fails must not keep the old design's values (which read like results): its
+    # frames read as NaN; the file's other blocks equal scipy.signal.sosfiltfilt with the
+    # new design over the whole stream (the reference), and the file is not complete.
+    cfg = _archive(tmp_path, engine={"retries": 0})
+    assert run_job(cfg).ok
+    old = read_output(cfg.store_location, ARRAYS)[1]
+    narrower = {**conftest.BANDPASS, "cutoff_hz": [3.0, 30.0]}
+    cfg2 = load_config(write_config(tmp_path / "run", archive={"root": str(tmp_path / "archive")},
+                                    response=narrower, engine={"retries": 0}))
+    inject([{"action": "raise", "file": ARRAYS[1], "block": 3}])
+    res = run_job(cfg2)
+    assert res.failed == ["deck/deck_20260301T000040.npy"]
+    g = open_store(cfg2.store_location)
+    assert g[ARRAYS[1]].attrs["complete"] is False
+    filt = g[ARRAYS[1]].attrs["filter"]
+    x = make_signal(sum(FRAMES), 2, FS, seed=21)
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=filt["edge"],
+                                   padlen=filt["edge_samples"])[FRAMES[0] : FRAMES[0] + FRAMES[1]]
+    y = read_output(cfg2.store_location, ARRAYS)[1]
+    assert np.all(np.isnan(y[3000:4000])) and not np.isnan(old[3000:4000]).any()
+    kept = np.r_[0:3000, 4000:FRAMES[1]]
+    assert np.max(np.abs(y[kept] - ref[kept])) <= filt["tolerance"] * np.max(np.abs(x))
+    # the next run writes the block and completes the file
+    inject([])
+    assert run_job(cfg2).ok
+    y = read_output(cfg2.store_location, ARRAYS)[1]
+    assert np.max(np.abs(y - ref)) <= filt["tolerance"] * np.max(np.abs(x))
 
 
 def test_a_block_whose_chunk_never_lands_is_an_error_and_the_others_are_recorded(tmp_path, monkeypatch):

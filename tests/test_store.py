@@ -109,7 +109,9 @@ def test_layout_matches_zarr_v3_metadata(tmp_path: Path, compression: str, cname
     assert meta["shape"] == [100, 3]
     assert meta["data_type"] == "float32"
     assert meta["chunk_grid"] == {"name": "regular", "configuration": {"chunk_shape": [20, 3]}}
-    assert meta["fill_value"] == 0.0
+    # Frames no block wrote read as NaN; the v3 specification's "fill_value" section writes
+    # a floating-point NaN as the JSON string "NaN".
+    assert meta["fill_value"] == "NaN"
     assert meta["dimension_names"] == ["time", "channel"]
     blosc = [c for c in meta["codecs"] if c["name"] == "blosc"]
     if cname is None:
@@ -179,7 +181,7 @@ def test_output_array_and_attribute_documents_are_the_ones_zarr_writes(tmp_path:
     theirs = tmp_path / "ref.zarr" / NAME / "zarr.json"
     attrs = json.loads(ours.read_text())["attributes"]
     arr = ref.create_array(NAME, shape=(100, 3), dtype="float32", chunks=(20, 3),
-                           compressors=store_module._compressors(compression), fill_value=0,
+                           compressors=store_module._compressors(compression), fill_value=float("nan"),
                            dimension_names=("time", "channel"), attributes=attrs)
     assert json.loads(ours.read_text()) == json.loads(theirs.read_text())
     # the parent group made on the way, as Zarr makes it
@@ -256,7 +258,7 @@ def test_arrays_for_block_writes_are_made_from_their_documents(store: OutputStor
     _prepare(store)
     ours = store_module._writable_array(store.location, NAME)
     theirs = zarr.open_array(LocalStore(tmp_path / "out.zarr"), path=NAME, mode="r+")
-    assert ours.metadata == theirs.metadata
+    assert repr(ours.metadata) == repr(theirs.metadata)  # by value: the NaN fill value is unequal to itself
     assert ours.path == theirs.path and ours.chunks == theirs.chunks
     with pytest.raises(StoreError, match="not found"):
         write_block_data(store.location, "deck-north", 0, np.zeros((20, 3)))  # a group, not an array
@@ -379,7 +381,7 @@ def test_misaligned_writes_are_refused(store: OutputStore):
         write_block_data(store.location, NAME, 0, np.zeros((40, 2)))
     with pytest.raises(StoreError, match="not found"):
         write_block_data(store.location, "deck-north/missing", 0, np.zeros((20, 3)))
-    np.testing.assert_array_equal(store.read(NAME), np.zeros((100, 3), np.float32))
+    np.testing.assert_array_equal(store.read(NAME), np.full((100, 3), np.nan, np.float32))  # unwritten: fill
 
 
 # -- block tables -----------------------------------------------------------------
@@ -430,7 +432,7 @@ def test_resume_keeps_done_blocks_only_when_nothing_changed(store: OutputStore):
     np.testing.assert_array_equal(store.read(NAME, 0, 40), data0)
     # other chunking: the array is recreated, old data gone
     _prepare(store, chunk=10, spans=[(0, 60), (60, 100)])
-    np.testing.assert_array_equal(store.read(NAME), np.zeros((100, 3), np.float32))
+    np.testing.assert_array_equal(store.read(NAME), np.full((100, 3), np.nan, np.float32))  # unwritten: fill
 
 
 def test_arrays_compressed_with_byte_shuffle_are_kept(store: OutputStore):

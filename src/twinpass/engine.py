@@ -1193,6 +1193,10 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
             summary[f"blocks_{name}"] = int(np.sum(st == code))
         store.set_complete(fw.array_name, ok, summary)
+        if not ok and np.isin(st, (PENDING, ERROR)).any():
+            # Values an earlier design or join left in blocks not written now would read
+            # as results: they read as NaN until a run writes them.
+            store.clear_unwritten(fw.array_name)
         outcomes.append(FileOutcome(
             fw.relpath, fw.array_name, len(spans), run_count.get(fw.array_name, 0),
             int(np.sum(finished)), int(np.sum(~finished)),

@@ -6,7 +6,8 @@ Layout (zarr_format 3)::
                                       runs_total}}: runs = the latest RUNS_IN_ROOT run entries
       <stream>/<file stem>            one array per input file, shape (samples, channels),
                                       chunks (chunk_samples, channels), dimension_names
-                                      ["time", "channel"], fill_value 0
+                                      ["time", "channel"], fill_value NaN (0 in stores
+                                      written before: frames no block wrote read so)
       _twinpass/blocks/<array name>/  block table of that file (group; attribute "errors")
         status   int8    (n_blocks,)                         0 pending 1 pass 2 warn 3 fail 4 error
         span     int64   (n_blocks, 2)                       [start, stop) in file frames
@@ -694,7 +695,8 @@ def _array_metadata(frames: int, channels: int, dtype: str, chunk_samples: int, 
     """Zarr metadata of an output array with no attributes; kept, since the files of an
     archive mostly share it."""
     return array_metadata(shape=(frames, channels), dtype=dtype, chunks=(chunk_samples, channels),
-                          compressors=_compressors(compression), fill_value=0, dimension_names=DIMENSION_NAMES)
+                          compressors=_compressors(compression), fill_value=float("nan"),
+                          dimension_names=DIMENSION_NAMES)
 
 
 @lru_cache(maxsize=64)
@@ -1587,6 +1589,38 @@ class OutputStore:
                 else:
                     spans.append((a, b))
         return tuple(spans)
+
+    def clear_unwritten(self, name: str) -> list[tuple[int, int]]:
+        """Delete the data chunks of the blocks of ``name`` that are pending or in error, so
+        that their frames read as the fill value (NaN) instead of what an earlier run, or an
+        interrupted write, left there; return their frame spans [start, stop).
+
+        For an output that stays incomplete: a block refiltered with another design, or
+        after a neighbour changed, that then failed would otherwise keep the old values,
+        which a reader of the array cannot tell from results. Blocks that passed, or that
+        failed only their checks (their values are this run's), keep their data.
+        """
+        self._writable()
+        table = self.read_block_table(name, figures=False, seams=False)
+        arr = self._array(name)
+        chunk = int(arr.chunks[0])
+        keep = [int(s) for s in (*_DONE, BlockStatus.FAIL)]
+        spans = [(int(a), int(b)) for st, (a, b) in zip(table.status, table.span) if int(st) not in keep]
+        keys = [f"{name}/{arr.metadata.encode_chunk_key((c, 0))}"
+                for a, b in spans for c in range(a // chunk, -(-b // chunk))]
+        if not keys:
+            return spans
+        with self._writing(f"{name} (clearing {len(spans)} block(s) not written)"):
+            if self.local_root is not None:
+                for key in keys:
+                    (self.local_root / key).unlink(missing_ok=True)
+            else:
+                fs, root = _url_fs(self.location)
+                for key in keys:
+                    path = root.rstrip("/") + "/" + key
+                    if fs.exists(path):
+                        fs.rm(path)
+        return spans
 
     def remove_file(self, name: str) -> bool:
         """Delete an output array and its block table; return whether the array existed."""
