@@ -275,6 +275,38 @@ def changed_middle_file(tmp_path_factory):
     return root, files, x, shutil
 
 
+def test_outputs_name_the_runs_and_library_versions_that_wrote_them(tmp_path):
+    # Provenance per output: ``written_by`` lists the runs that wrote its blocks since it
+    # was last written whole, each with the library versions it ran with (as the installed
+    # packages' metadata gives them, importlib.metadata), and each run's record names them too.
+    from importlib import metadata
+
+    frames = [4000, 4000, 4000]
+    x = make_signal(sum(frames), 1, FS, seed=5)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, frames)
+    cfg = load_config(write_config(tmp_path, processing={"block_seconds": 2.0}))
+    first = run_job(cfg)
+    assert first.ok
+    g = open_store(cfg.store_location)
+    for a in files.arrays:
+        (entry,) = g[a].attrs["written_by"]
+        assert entry["run_id"] == first.run_id
+        assert entry["versions"]["scipy"] == metadata.version("scipy")
+        assert entry["versions"]["numba"] == metadata.version("numba")
+    record = g[f"_twinpass/runs/{first.run_id}"].attrs["run"]
+    assert record["versions"]["numpy"] == metadata.version("numpy")
+
+    # The last file rewritten: it is written whole by the new run; the middle file's blocks
+    # its halo reaches are rewritten, so it names both runs; the first file neither.
+    write_file(files.paths[2], make_signal(4000, 1, FS, seed=6), FS, "npy")
+    second = run_job(cfg)
+    assert second.ok and second.run_id != first.run_id
+    g = open_store(cfg.store_location)
+    runs = {a: [e["run_id"] for e in g[a].attrs["written_by"]] for a in files.arrays}
+    assert runs == {files.arrays[0]: [first.run_id], files.arrays[1]: [first.run_id, second.run_id],
+                    files.arrays[2]: [second.run_id]}
+
+
 def test_a_run_dying_between_any_two_driver_writes_resumes_correctly(tmp_path, monkeypatch, changed_middle_file):
     template, files, x, shutil = changed_middle_file
     # Count the driver's writes in an uninterrupted rerun of the change.

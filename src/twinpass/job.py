@@ -8,16 +8,13 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as _dt
-import importlib.metadata
 import logging
-import platform
 import traceback
 import uuid
 from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
-from . import __version__
 from .config import JobConfig
 from .core.design import design_filter, response_report
 from .core.plan import FilePlan, Plan, make_plan
@@ -34,25 +31,9 @@ from .engine import (
 from .errors import SpecError, TwinpassError
 from .io.archive import Discovery, discover
 from .io.store import OutputStore
-from .io.store_util import array_name
+from .io.store_util import array_name, library_versions
 
 log = logging.getLogger("twinpass.job")
-
-
-def library_versions() -> dict[str, str]:
-    """Versions of twinpass and the libraries whose numerics or formats matter."""
-    import dask
-    import numpy
-    import scipy
-    import zarr
-
-    out = {"twinpass": __version__, "python": platform.python_version(), "numpy": numpy.__version__,
-           "scipy": scipy.__version__, "dask": dask.__version__, "zarr": zarr.__version__}
-    try:
-        out["prefect"] = importlib.metadata.version("prefect")  # importing prefect costs seconds
-    except importlib.metadata.PackageNotFoundError:  # pragma: no cover - prefect is a dependency
-        pass
-    return out
 
 
 @dataclass
@@ -228,7 +209,8 @@ def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
     """Record the run: its entry, and in its own record the files it left out (invalid:
     reason and remedy) and the outputs whose input is gone (see ``twinpass status``)."""
     entry = {"run_id": result.run_id, "start": result.started, "end": result.ended,
-             "counts": result.counts(), "config_digest": cfg.digest(), "failed": result.failed}
+             "counts": result.counts(), "config_digest": cfg.digest(), "failed": result.failed,
+             "versions": library_versions()}
     if result.interrupted:
         entry["interrupted"] = True
     store.append_run(entry, details={"left_out": {b.relpath: b.explained for b in result.invalid},

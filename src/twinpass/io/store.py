@@ -236,6 +236,19 @@ class BlockRecord:
     error: str | None = None
 
 
+WRITTEN_BY_KEPT = 20
+"""Runs an output's ``written_by`` attribute names at most (the latest)."""
+
+
+def _written_by(kept: Any, run_id: str) -> list[dict[str, Any]]:
+    """An output's ``written_by`` attribute: the runs that wrote its blocks since it was last
+    written whole, oldest first, each ``{"run_id", "versions"}`` (:func:`library_versions`),
+    ending with ``run_id``; ``kept`` is the attribute as it was (None when the output is
+    written whole now)."""
+    earlier = [e for e in kept if isinstance(e, dict) and e.get("run_id") != run_id] if isinstance(kept, list) else []
+    return [*earlier, {"run_id": run_id, "versions": library_versions()}][-WRITTEN_BY_KEPT:]
+
+
 def _same_json(a: Any, b: Any) -> bool:
     """Whether two JSON values are the same document (``True`` is not ``1``, ``1`` not ``1.0``)."""
     return json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
@@ -748,6 +761,9 @@ class OutputStore:
         self.lock_token = ""
         """Token of the run lock this object holds (:meth:`lock`), else empty; block tasks
         pass it to :func:`write_block_data` as their fence."""
+        self.lock_run_id = ""
+        """Id of the run holding the lock through this object, else empty; outputs prepared
+        meanwhile name it in their ``written_by`` attribute."""
         self._handles: collections.OrderedDict[str, _TableHandles] = collections.OrderedDict()
         """Open block-table arrays per output array, for :meth:`record_block` (driver only), the
         :data:`_NODES_KEPT` most recently used; dropped by every method that rewrites a table
@@ -834,11 +850,11 @@ class OutputStore:
         self._writable()
         lock_file = self._lock_file()
         info = store_lock.acquire(lock_file, run_id)
-        self.lock_token = info.token
+        self.lock_token, self.lock_run_id = info.token, run_id
         try:
             yield info
         finally:
-            self.lock_token = ""
+            self.lock_token = self.lock_run_id = ""
             store_lock.release(lock_file, info)
 
     def clean_partials(self) -> int:
@@ -1203,6 +1219,10 @@ class OutputStore:
                 and node.chunks == (chunk_samples, channels)
                 and _compression_of(node) == compression
             )
+            table = self._matching_table(name, span_arr, columns, seam_samples, channels) if same else None
+            if self.lock_run_id:
+                kept = node.attrs.get("written_by") if table is not None and keep_done else None
+                meta["written_by"] = _written_by(kept, self.lock_run_id)
             if same:
                 self._set_attributes(name, node, meta, replace=True)  # first: one write, complete = False
             else:
@@ -1212,7 +1232,6 @@ class OutputStore:
                 self._delete(_table_path(name))
                 self._create_nodes({name: dataclasses.replace(
                     _array_metadata(frames, channels, dtype, chunk_samples, compression), attributes=meta)})
-            table = self._matching_table(name, span_arr, columns, seam_samples, channels) if same else None
             if table is not None and keep_done:
                 return self.read_block_table(name, figures=False, seams=False)
             if table is None or not self._reset_table(name, table):

@@ -12,10 +12,12 @@ import datetime as _dt
 import errno
 import math
 import os
+import platform
 import sys
 import posixpath
 import re
 from contextlib import contextmanager
+from functools import lru_cache
 from importlib import metadata
 from pathlib import Path, PurePath
 from typing import Any, Iterator
@@ -232,11 +234,20 @@ def sync_file_system(path: Path) -> None:
 
 
 def library_versions() -> dict[str, str | None]:
-    """Installed versions of twinpass and the libraries that shape its output (None if absent)."""
-    out: dict[str, str | None] = {}
-    for dist in ("twinpass", "numpy", "scipy", "dask", "zarr", "prefect"):
+    """Versions of twinpass, Python and the libraries that shape its output or its formats
+    (None for one not installed), read once per process from the installed packages'
+    metadata (nothing is imported)."""
+    return dict(_library_versions())
+
+
+@lru_cache(maxsize=1)
+def _library_versions() -> tuple[tuple[str, str | None], ...]:
+    from .. import __version__
+
+    out: dict[str, str | None] = {"twinpass": __version__, "python": platform.python_version()}
+    for dist in ("numpy", "scipy", "numba", "dask", "zarr", "prefect"):
         try:
             out[dist] = metadata.version(dist)
         except metadata.PackageNotFoundError:
             out[dist] = None
-    return out
+    return tuple(out.items())
