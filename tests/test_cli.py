@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import scipy.io.wavfile
 
-from conftest import cli_env, run_cli
+from conftest import cli_env, run_cli, write_config
 
 FS = 100
 
@@ -247,6 +247,32 @@ def test_a_run_that_leaves_inputs_out_exits_3_until_they_are_excluded(tmp_path: 
     r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
     assert r.returncode == 0 and "invalid 0" in r.stdout, r.stdout + r.stderr
     assert _twinpass("status", str(cfg), "--require-complete").returncode == 0
+
+
+def test_an_archive_where_no_file_matches_include_is_exit_2_naming_what_it_holds(tmp_path: Path) -> None:
+    # An archive root whose recordings the include globs miss (Zarr arrays with the default
+    # include; an unmounted share leaves an empty folder) must not be a quiet "0 files,
+    # exit 0": the command stops before the run with exit status 2, as documented for a
+    # bad configuration, naming the root, the globs and what the root holds.
+    import zarr
+
+    archive = tmp_path / "archive"
+    for name in ("a.zarr", "b.zarr"):
+        zarr.create_array(str(archive / "deck" / name), shape=(400, 1), dtype="float32", zarr_format=3)
+    (archive / "notes.txt").write_text("site log")
+    folder = tmp_path / "job"
+    folder.mkdir()
+    cfg = write_config(folder, archive={"root": str(archive), "include": ["**/*.wav"]})
+    for command in (["plan", str(cfg)], ["run", str(cfg), "--no-flow", "--no-report"]):
+        r = _twinpass(*command)
+        assert r.returncode == 2, r.stdout + r.stderr
+        assert str(archive) in r.stderr and "['**/*.wav']" in r.stderr, r.stderr
+        assert "2 *.zarr, 1 *.txt" in r.stderr and "**/*.zarr" in r.stderr, r.stderr
+    (archive / "notes.txt").unlink()
+    for path in sorted(archive.rglob("*"), reverse=True):
+        path.unlink() if path.is_file() else path.rmdir()
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
+    assert r.returncode == 2 and "it holds no files" in r.stderr, r.stderr
 
 
 def test_a_configured_prefect_api_that_does_not_answer_stops_the_command_before_the_run(tmp_path: Path) -> None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as _dt
 import logging
+import os
 import traceback
 import uuid
 from concurrent.futures import Future, ThreadPoolExecutor, wait
@@ -28,7 +29,7 @@ from .engine import (
     design_digest_for,
     run_segment,
 )
-from .errors import SpecError, TwinpassError
+from .errors import ArchiveError, SpecError, TwinpassError
 from .io.archive import Discovery, discover
 from .io.store import OutputStore
 from .io.store_util import array_name, library_versions
@@ -97,6 +98,8 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
     records = store.file_records()
     owners = {rec.array_name: rec.source for rec in records.values() if rec.array_name}
     disc = discover(cfg, scan_cache=cache, owners=owners)
+    if not disc.files and not disc.invalid:
+        raise ArchiveError(nothing_selected(cfg, disc, len(records)), path=str(cfg.archive_root))
     segments, invalid = disc.segments()
     rates = {s.sample_rate_hz for s in segments}
     designs, design_errors = designs_for(cfg, rates)
@@ -120,6 +123,44 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]
     return Prepared(cfg, disc, designs, design_errors, plan, work, list(plan.invalid))
+
+
+CENSUS_ENTRIES = 100_000
+"""Entries of the archive root looked at, at most, to say what it holds when nothing matched."""
+
+
+def nothing_selected(cfg: JobConfig, disc: Discovery, outputs: int) -> str:
+    """The error for an archive in which no path matches the include globs: what the root
+    holds (files by suffix; a ``.zarr`` folder counts as one), the globs, what to check."""
+    census: dict[str, int] = {}
+    seen = 0
+    for folder, dirs, files in os.walk(cfg.archive_root):
+        kept = []
+        for d in dirs:
+            if d.lower().endswith(".zarr"):
+                census["*.zarr"] = census.get("*.zarr", 0) + 1
+            else:
+                kept.append(d)
+        dirs[:] = kept
+        for f in files:
+            suffix = os.path.splitext(f)[1].lower()
+            key = f"*{suffix}" if suffix else "names without a suffix"
+            census[key] = census.get(key, 0) + 1
+        seen += len(files) + len(dirs)
+        if seen > CENSUS_ENTRIES:
+            break
+    if census:
+        top = sorted(census.items(), key=lambda kv: (-kv[1], kv[0]))
+        held = "it holds " + ", ".join(f"{n} {key}" for key, n in top[:8]) + (" and more" if len(top) > 8 else "")
+    else:
+        held = "it holds no files"
+    exclude = f", exclude = {list(cfg.archive.exclude)}" if cfg.archive.exclude else ""
+    earlier = (f" The store holds {outputs} output(s) of earlier runs; nothing was changed." if outputs else "")
+    notes = "".join(f" {w}." for w in disc.warnings)
+    return (f"no input file in the archive {cfg.archive_root} matches [archive] include = "
+            f"{list(cfg.archive.include)}{exclude} (in {cfg.source}): {held}. Check that the archive is there "
+            "(a mounted disk or share) and that include names the recordings' suffixes (globs match letter "
+            "case exactly; a Zarr array is a folder: \"**/*.zarr\")." + earlier + notes)
 
 
 @dataclass
