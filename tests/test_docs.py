@@ -1,15 +1,70 @@
-"""DEVELOPERS.md against the code it describes.
+"""README.md and DEVELOPERS.md against the code they describe.
 
-Reference: the files under ``src/twinpass`` are what the source tree holds; the document
-must name each of them.
+References: the configuration dataclasses (``twinpass.config``) and the files under
+``src/twinpass`` are what a configuration and the source tree accept and hold; the
+documents must name each of them, with the defaults the code uses.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import re
+import tomllib
 from pathlib import Path
+from typing import Any
+
+from twinpass.config import _SECTIONS
 
 ROOT = Path(__file__).resolve().parents[1]
+
+
+def _section(doc: str, title: str) -> str:
+    """The text of the ``## title`` section of ``doc`` (up to the next ``## `` heading)."""
+    m = re.search(rf"^## {re.escape(title)}\n(.*?)(?=^## |\Z)", doc, re.S | re.M)
+    assert m, f"no '## {title}' section"
+    return m.group(1)
+
+
+def _rows(text: str) -> list[list[str]]:
+    """The cells of every markdown table row in ``text`` (header and rule rows left out)."""
+    rows = []
+    for line in text.splitlines():
+        if line.startswith("|") and not re.fullmatch(r"\|[-:| ]+\|", line):
+            rows.append([c.strip() for c in re.split(r"(?<!\\)\|", line.strip().strip("|"))])
+    return [r for r in rows if r[0] not in ("key", "command")]
+
+
+def _reference_tables() -> dict[str, dict[str, list[str]]]:
+    """README "Configuration reference": {TOML table: {key: [default, unit, meaning]}}."""
+    ref = _section((ROOT / "README.md").read_text(encoding="utf-8"), "Configuration reference")
+    tables: dict[str, dict[str, list[str]]] = {}
+    for m in re.finditer(r"^### `\[(\w+)\]`\n(.*?)(?=^### |\Z)", ref, re.S | re.M):
+        tables[m.group(1)] = {r[0].strip("`"): r[1:] for r in _rows(m.group(2))}
+    return tables
+
+
+def _default(f: dataclasses.Field[Any]) -> Any:
+    value = f.default_factory() if f.default is dataclasses.MISSING else f.default  # type: ignore[misc]
+    return list(value) if isinstance(value, tuple) else value
+
+
+def test_every_configuration_key_is_in_the_reference_with_its_default() -> None:
+    # Source: the dataclasses twinpass.config validates a TOML file into (every key they
+    # accept, and the value a key left out takes).
+    tables = _reference_tables()
+    assert set(tables) == set(_SECTIONS), "one table per TOML table in README 'Configuration reference'"
+    for table, cls in _SECTIONS.items():
+        keys = {f.name: f for f in dataclasses.fields(cls)}
+        documented = tables[table]
+        assert set(documented) == set(keys), (
+            f"[{table}]: undocumented {sorted(set(keys) - set(documented))}, "
+            f"documented but unknown {sorted(set(documented) - set(keys))}"
+        )
+        for key, f in keys.items():
+            default, cell = _default(f), documented[key][0].replace("`", "")
+            if default is None:
+                continue  # "none" or what the code does instead, in words
+            assert tomllib.loads(f"v = {cell}")["v"] == default, f"[{table}] {key}: README default {cell!r}"
 
 
 def _layout_entries() -> tuple[set[str], set[str]]:
