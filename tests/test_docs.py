@@ -1,18 +1,21 @@
 """README.md and DEVELOPERS.md against the code they describe.
 
-References: the configuration dataclasses (``twinpass.config``) and the files under
-``src/twinpass`` are what a configuration and the source tree accept and hold; the
-documents must name each of them, with the defaults the code uses.
+References: the configuration dataclasses (``twinpass.config``), the command line's argparse
+parser (``twinpass.cli.build_parser``) and the files under ``src/twinpass`` are what a
+configuration, a command and the source tree accept and hold; the documents must name
+each of them, with the defaults the code uses.
 """
 
 from __future__ import annotations
 
+import argparse
 import dataclasses
 import re
 import tomllib
 from pathlib import Path
 from typing import Any
 
+from twinpass.cli import build_parser
 from twinpass.config import _SECTIONS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -65,6 +68,23 @@ def test_every_configuration_key_is_in_the_reference_with_its_default() -> None:
             if default is None:
                 continue  # "none" or what the code does instead, in words
             assert tomllib.loads(f"v = {cell}")["v"] == default, f"[{table}] {key}: README default {cell!r}"
+
+
+def _options(parser: argparse.ArgumentParser) -> set[str]:
+    return {o for a in parser._actions for o in a.option_strings if o not in ("-h", "--help")}
+
+
+def test_every_command_line_option_is_in_the_command_reference() -> None:
+    # Source: the argparse parser of the `twinpass` command (every option it accepts).
+    ref = _section((ROOT / "README.md").read_text(encoding="utf-8"), "Command reference")
+    rows = {re.match(r"`twinpass(?: (\w+))?", r[0]).group(1) or "": " ".join(r[1:]) for r in _rows(ref)}
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    commands = {"": parser, **sub.choices}
+    assert set(rows) == set(commands), f"commands in the reference: {sorted(rows)}; in the parser: {sorted(commands)}"
+    for name, p in commands.items():
+        missing = sorted(o for o in _options(p) if not re.search(rf"`{re.escape(o)}\b", rows[name]))
+        assert not missing, f"twinpass {name}: options missing from README 'Command reference': {missing}"
 
 
 def _layout_entries() -> tuple[set[str], set[str]]:
