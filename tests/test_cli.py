@@ -337,6 +337,20 @@ def test_unknown_config_key_is_exit_2(tmp_path: Path) -> None:
     assert "blok_seconds" in r.stderr and "[processing]" in r.stderr
 
 
+def test_carry_mode_with_an_fir_family_is_exit_2_before_the_run(tmp_path: Path) -> None:
+    # An FIR filter has no recursive state to carry (a transversal filter's state is its
+    # last M - 1 inputs, not a few numbers per section): a configuration asking for both
+    # is refused as a bad configuration (exit 2, documented), not failed file by file.
+    from conftest import LOWPASS_FIR, make_signal, write_stream
+
+    write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, 200.0, seed=3), 200.0, 2)
+    cfg = write_config(tmp_path, response=LOWPASS_FIR, processing={"mode": "carry"})
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert 'mode = "carry"' in r.stderr and 'family = "fir"' in r.stderr and str(cfg) in r.stderr, r.stderr
+    assert not (tmp_path / "out.zarr").exists()
+
+
 @pytest.mark.parametrize("table, key", [("processing", "block_seconds"), ("processing", "memory_budget_mib"),
                                         ("output", "chunk_seconds")])
 def test_nan_block_and_chunk_lengths_are_exit_2(tmp_path: Path, table: str, key: str) -> None:

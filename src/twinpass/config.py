@@ -428,6 +428,12 @@ def _check_values(cfg: JobConfig) -> None:
         raise ConfigError(f"{src}: [output] chunk_seconds must be > 0")
     if p.max_fill_samples < 0:
         raise ConfigError(f"{src}: [processing] max_fill_samples must be >= 0")
+    if p.mode == "carry" and cfg.response.family == "fir":
+        raise ConfigError(
+            f"{src}: [processing] mode = \"carry\" needs an IIR design, but [response] family = \"fir\": an FIR "
+            "filter has no recursive state to carry between blocks; use mode = \"auto\" or \"halo\", or an IIR "
+            "family (butterworth, chebyshev1, chebyshev2, elliptic)"
+        )
     if p.nonfinite == "interpolate" and p.max_fill_samples == 0:
         raise ConfigError(
             f"{src}: [processing] nonfinite = \"interpolate\" needs max_fill_samples > 0 "
