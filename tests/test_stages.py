@@ -31,7 +31,7 @@ import pytest
 import scipy.signal
 import zarr
 
-from conftest import make_signal, read_output, write_config, write_stream
+from conftest import cli_env, make_signal, read_output, run_cli, write_config, write_stream
 from twinpass.config import load_config
 from twinpass.errors import UnsafePathError
 from twinpass.io.archive import discover
@@ -233,6 +233,15 @@ def test_the_order_of_the_two_stages_does_not_change_the_result(work):
             _bound(notch, x))
         # ... and so do the two orders of the jobs, edge zones included
         assert np.max(np.abs(forward[stream] - backward[stream])) <= 2 * _bound(notch, x)
+
+
+def test_the_prefect_flow_runs_the_second_stage_alike(work):
+    # the command's default path: the Prefect flow on a temporary local server
+    folder, names = work
+    env = cli_env(PREFECT_HOME=str(folder / "prefect-home"))
+    proc = run_cli(["run", str(_stage2(folder)), "--no-report"], env=env)
+    assert "complete 6, skipped (unchanged) 0, failed 0, invalid 0" in proc.stdout, proc.stdout
+    _check_cascade(folder, names)
 
 
 def test_the_second_stage_store_may_not_be_the_first_stage_store(work):
