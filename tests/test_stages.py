@@ -211,6 +211,17 @@ def test_a_store_below_the_root_is_read_array_by_array_and_a_manifest_may_place_
     assert all(e.stream == "s1" for e in discover(cfg).files)
 
 
+def test_notes_say_when_no_glob_takes_the_arrays_and_when_the_earlier_job_is_running(work):
+    folder, names = work
+    plain = write_config(folder, response=NOTCH, archive={"root": "band.zarr", "name_pattern": None},
+                         output={"store": "notch.zarr"})  # include: the default "**/*.npy", "**/*.wav"
+    disc = discover(load_config(plain))
+    assert disc.files == () and any('set include = ["**"]' in w for w in disc.warnings), disc.warnings
+    (folder / "band.zarr" / ".twinpass-lock").write_text("{}")  # what a running job keeps there
+    disc = discover(load_config(_stage2(folder)))
+    assert len(disc.files) == 6 and any("half rewritten" in w for w in disc.warnings), disc.warnings
+
+
 def test_the_order_of_the_two_stages_does_not_change_the_result(work):
     folder, names = work
     _run(_stage2(folder))

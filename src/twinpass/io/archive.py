@@ -169,6 +169,7 @@ from twinpass.io.readers._common import (
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_input import array_attributes, is_output_store, output_arrays
+from twinpass.io.store_lock import LOCK_NAME
 from twinpass.io.store_util import array_name, check_name
 
 _T = TypeVar("_T")
@@ -369,7 +370,8 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     paths that the globs would select but for the letter case (see :class:`ArchiveListing`).
 
     Only regular files (after following symbolic links) and folders holding one recording
-    are candidates; a named pipe, socket, device or broken link that the globs select is
+    are candidates, and the arrays of an earlier job's output store (see "An output store as
+    input" in the module documentation; :attr:`ArchiveListing.arrays`); a named pipe, socket, device or broken link that the globs select is
     reported instead, without being opened, and so is a path whose name is not UTF-8 (shown
     with its odd bytes as ``\\xNN``). A folder that cannot be listed (permissions, an
     I/O error) is reported as one entry whose path is the folder's with a trailing ``/``
@@ -419,6 +421,12 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 arrays[ident] = (folder, name)
             else:
                 by_case_only(ident)
+        if names and os.path.exists(os.path.join(folder, LOCK_NAME)):
+            notes.append(
+                f"a run of the earlier job holds the output store {folder} ({LOCK_NAME} is there): an array it "
+                "rewrites while this job reads it may be read half rewritten; run this job again once that run "
+                "has ended (the arrays it rewrote are then filtered again)"
+            )
         if rel is None and names and not arrays:
             notes.append(
                 f"the archive root {root} is the output store of an earlier twinpass job, but [archive] include "
