@@ -414,20 +414,22 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         below the root, the whole store by its path."""
         names = output_arrays(folder)
         paths = [] if rel is None else [rel]
+        picked = 0
         for name in names:
             ident = name if rel is None else f"{rel}#{name}"
             if _selected_any([ident, *paths], include, exclude):
                 found.append(ident)
                 arrays[ident] = (folder, name)
+                picked += 1
             else:
                 by_case_only(ident)
-        if names and os.path.exists(os.path.join(folder, LOCK_NAME)):
+        if picked and os.path.exists(os.path.join(folder, LOCK_NAME)):
             notes.append(
                 f"a run of the earlier job holds the output store {folder} ({LOCK_NAME} is there): an array it "
                 "rewrites while this job reads it may be read half rewritten; run this job again once that run "
                 "has ended (the arrays it rewrote are then filtered again)"
             )
-        if rel is None and names and not arrays:
+        if rel is None and names and not picked:
             notes.append(
                 f"the archive root {root} is the output store of an earlier twinpass job, but [archive] include "
                 f"selects none of its {len(names)} arrays (named <stream>/<file stem>, without a suffix, e.g. "
