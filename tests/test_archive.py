@@ -755,7 +755,7 @@ def test_name_clashes_match_their_definition_on_random_paths():
     for _ in range(200):
         paths = sorted({"/".join(rng.choice(parts) for _ in range(rng.randint(1, 3))) + rng.choice([".wav", ".npy"])
                         for _ in range(rng.randint(2, 12))})
-        keep, bad = _split_name_clashes([SimpleNamespace(relpath=p) for p in paths])
+        keep, bad = _split_name_clashes([SimpleNamespace(relpath=p, output_name=None) for p in paths])
         kept = [array_name(e.relpath) for e in keep]
         assert not any(clash(x, y) for i, x in enumerate(kept) for y in kept[i + 1:]), paths
         assert all(any(clash(array_name(b.path), k) for k in kept) for b in bad), paths
@@ -776,6 +776,35 @@ def test_files_selected_but_for_the_letter_case_are_noted(tmp_path):
     assert "x.WAV" not in note  # excluded anyway
     disc = discover(job(tmp_path, include=("**/*.wav", "**/*.WAV"), exclude=("s2/skip/**",)))
     assert len(disc.files) == 2 and not [w for w in disc.warnings if "letter case" in w]
+
+
+@pytest.mark.parametrize("mode", ["fast", "full"])
+def test_a_zarr_input_rewritten_in_one_chunk_changes_in_those_samples_only(tmp_path, mode):
+    # Written and rewritten with zarr-python (chunks of 100 samples along time); which samples
+    # count as changed is a twinpass rule: the rows of chunks whose files changed.
+    import zarr
+
+    from twinpass.core.plan import changed_spans
+
+    path = tmp_path / "a.zarr"
+    arr = zarr.create_array(store=str(path), shape=(450, 2), dtype="float32", chunks=(100, 2))
+    arr[:] = np.random.default_rng(0).standard_normal((450, 2)).astype(np.float32)
+    arr.attrs.update(sample_rate_hz=10.0, complete=True)
+    for f in path.rglob("*"):  # written a minute ago: a rewrite now has another modification time
+        os.utime(f, ns=(f.stat().st_atime_ns, f.stat().st_mtime_ns - 60 * 10**9))
+    before = fingerprint_file(path, mode)
+    arr.attrs.update(complete=False, checks={"worst": 1.0})  # attributes are no samples
+    assert not fingerprint_changed(before, fingerprint_file(path, mode))[0]
+    arr[250:260] = 0.5
+    arr[420:] = -0.5
+    after = fingerprint_file(path, mode)
+    assert fingerprint_changed(before, after)[0]
+    assert changed_spans(before, after, 450) == ((200, 300), (400, 450))
+    arr[:] = 1.0
+    assert changed_spans(before, fingerprint_file(path, mode), 450) == ((0, 450),)
+    # another shape: the rows cannot be compared
+    zarr.create_array(store=str(path), shape=(450, 2), dtype="float32", chunks=(50, 2), overwrite=True)
+    assert changed_spans(before, fingerprint_file(path, mode), 450) is None
 
 
 def test_absent_chunks_of_a_zarr_input_are_noted(tmp_path):

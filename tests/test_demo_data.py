@@ -246,6 +246,12 @@ def test_example_configs_fit_their_scenarios() -> None:
     assert band.stopband_hz is not None and band.stopband_hz[1] < 48000 / 2
     notch = load_config(CONFIGS / "hydrophone-mains-notch.toml").response
     assert (notch.kind, notch.notch_hz, notch.notch_width_hz) == ("notch", 50.0, 2.0)
+    # twinpass rule: the notch stage reads the band stage's output store, so one store ends up
+    # both band-passed and notched (its arrays have no suffix: include takes every path)
+    notch_job = load_config(CONFIGS / "hydrophone-mains-notch.toml")
+    band_store = Path(load_config(CONFIGS / "hydrophone-band.toml").store_location)
+    assert notch_job.archive_root.resolve() == band_store.resolve()
+    assert notch_job.archive.include == ("**",)
 
     lab = load_config(CONFIGS / "lab-drift-highpass.toml")
     assert (lab.response.kind, lab.response.cutoff_hz) == ("highpass", (0.1,))

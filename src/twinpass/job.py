@@ -30,9 +30,9 @@ from .engine import (
     run_segment,
 )
 from .errors import ArchiveError, SpecError, TwinpassError
-from .io.archive import Discovery, discover
+from .io.archive import Discovery, discover, output_name
 from .io.store import OutputStore
-from .io.store_util import array_name, library_versions
+from .io.store_util import library_versions
 
 log = logging.getLogger("twinpass.job")
 
@@ -77,7 +77,7 @@ def segment_work(seg: Segment, plan: Plan) -> SegmentWork:
     for f, off in zip(seg.files, seg.offsets):
         fp = plans.get(f.relpath)
         files.append(FileWork(
-            relpath=f.relpath, array_name=array_name(f.relpath), spec=f.spec, frames=f.frames, seg_offset=off,
+            relpath=f.relpath, array_name=output_name(f), spec=f.spec, frames=f.frames, seg_offset=off,
             stream=seg.stream, start_time=None if f.start_time is None else f.start_time.isoformat(),
             fingerprint=f.fingerprint or {}, action="skip" if fp is None else _action(fp),
             full_scale=f.info.full_scale, fill=f.nonfinite_fill, filled_spans=f.filled_spans, nan_spans=f.holes,

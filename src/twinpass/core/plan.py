@@ -7,7 +7,10 @@ each sample rate. Every file gets one status:
 ========== ==================================================================
 new        no record in the store: filter the whole file
 changed    fingerprint, frame count, design digest or output sample type differs
-           (or ``force``): filter the whole file
+           (or ``force``): filter the whole file; but a Zarr input whose fingerprint
+           names the rows of chunks that changed (:func:`changed_spans`; an earlier
+           job's output rewritten near a join), its output otherwise current: filter
+           those samples and a halo on each side, here and in its neighbours
 unchanged  same fingerprint and design, output complete: nothing to do
 incomplete same fingerprint and design, output not complete: resume (blocks
            already marked done are kept); or output complete but some of its chunk
@@ -63,6 +66,7 @@ __all__ = [
     "FilePlan",
     "Plan",
     "Redo",
+    "changed_spans",
     "fingerprint_changed",
     "format_plan",
     "make_plan",
@@ -135,6 +139,39 @@ def fingerprint_changed(old: Mapping[str, Any] | None, new: Mapping[str, Any] | 
     if partial:
         return False, "same size, modification time and digest"
     return False, "same size and digest (of every byte)"
+
+
+def changed_spans(old: Mapping[str, Any] | None, new: Mapping[str, Any] | None, frames: int) -> tuple[Span, ...] | None:
+    """The frames of a Zarr array input whose chunks changed between two fingerprints.
+
+    Parameters
+    ----------
+    old, new : mapping or None
+        Fingerprints of the array as ``twinpass.io.fingerprint.fingerprint_file`` takes them
+        for Zarr arrays: ``meta`` (digest of the metadata without attributes), ``row_frames``
+        (samples per row of chunks along time) and ``rows`` (one digest per row).
+    frames : int
+        Samples per channel of the array now.
+
+    Returns
+    -------
+    tuple of (int, int) or None
+        Sorted, merged ``[start, stop)`` spans (samples) of the rows whose digests differ;
+        ``None`` when the fingerprints cannot say (not both row-wise, taken in different
+        modes, metadata, row length, row count or decoding changed, or no row differs): the
+        whole file then counts as changed.
+    """
+    if not old or not new:
+        return None
+    if any(old.get(k) != new.get(k) for k in ("algorithm", "mode", "meta", "row_frames")):
+        return None
+    was, now, step = old.get("rows"), new.get("rows"), new.get("row_frames")
+    if not isinstance(was, list) or not isinstance(now, list) or not isinstance(step, int) or step <= 0:
+        return None
+    if len(was) != len(now) or len(now) != -(-int(frames) // step) or _decoding_changed(old, new) is not None:
+        return None
+    spans = _merge((i * step, min(int(frames), (i + 1) * step)) for i, (a, b) in enumerate(zip(was, now)) if a != b)
+    return spans or None
 
 
 def _decoding_changed(old: Mapping[str, Any], new: Mapping[str, Any]) -> str | None:
@@ -404,11 +441,16 @@ class _SegmentPlanner:
         self.halo = int(halo)
         self.recs = [records.get(f.relpath) for f in seg.files]
         self.own = [_own_status(r, f, digest, force, out_dtype) for r, f in zip(self.recs, seg.files)]
+        self.part = [None if force else _changed_in_part(r, f, s, digest, out_dtype)
+                     for r, f, s in zip(self.recs, seg.files, self.own)]
+        """Per file: the spans of a changed Zarr input whose other rows of chunks are as its
+        output was filtered from (only those spans, with halos, are filtered again), else None."""
         self.spans: list[list[Span]] = [[] for _ in seg.files]
         self.causes: list[list[str]] = [[] for _ in seg.files]
 
     def _dirty(self, k: int) -> bool:
-        return self.own[k][0] in ("new", "changed")
+        """File ``k`` is filtered whole (new, or changed throughout)."""
+        return self.own[k][0] in ("new", "changed") and self.part[k] is None
 
     def _invalidate(self, a: int, b: int, cause_at: int | None, cause: str) -> None:
         """Mark the segment window [a, b) (clipped) for recomputation; skip file ``cause_at``."""
@@ -518,9 +560,14 @@ class _SegmentPlanner:
     def run(self) -> list[FilePlan]:
         seg = self.seg
         for k, f in enumerate(seg.files):
+            x0 = seg.offsets[k]
             if self._dirty(k):
-                x0 = seg.offsets[k]
                 self._invalidate(x0 - self.halo, x0 + f.frames + self.halo, k, f"{f.relpath} is {self.own[k][0]}")
+            for a, b in self.part[k] or ():
+                # the output within a halo of a changed sample depends on it, in this file and beyond
+                self._invalidate(x0 + a - self.halo, x0 + b + self.halo, k,
+                                 f"{f.relpath} changed in samples {_spans_text(self.part[k])}")
+                self.spans[k].append((max(0, a - self.halo), min(f.frames, b + self.halo)))
         for k in range(len(seg.files)):
             self._check_joins(k)
         out = []
@@ -534,7 +581,14 @@ class _SegmentPlanner:
             if lost:
                 self.causes[k].append(_lost_text(lost))
             why = "; ".join(self.causes[k])
-            if status in ("new", "changed"):
+            part = self.part[k]
+            if part is not None:
+                redo = "all" if spans == ((0, f.frames),) else spans
+                n = sum(b - a for a, b in part)
+                reason = (f"{reason}, in samples {_spans_text(part)} only ({n} of {f.frames}; the other rows of "
+                          f"chunks are as they were): those and {self.halo} samples on each side are filtered again"
+                          + (f"; {why}" if why else ""))
+            elif status in ("new", "changed"):
                 redo = "all"
             elif status == "incomplete":
                 redo, resume = "all", not spans
@@ -553,12 +607,30 @@ class _SegmentPlanner:
         return out
 
 
+def _spans_text(spans: Sequence[Span] | None) -> str:
+    """``[a, b), [c, d), [e, f) and N more``."""
+    spans = spans or ()
+    return ", ".join(f"[{a}, {b})" for a, b in spans[:3]) + (f" and {len(spans) - 3} more" if len(spans) > 3 else "")
+
+
 def _lost_text(lost: tuple[Span, ...]) -> str:
     """What to say of a complete output whose chunk files are missing (frame spans ``lost``)."""
     frames = sum(b - a for a, b in lost)
-    where = ", ".join(f"[{a}, {b})" for a, b in lost[:3]) + (f" and {len(lost) - 3} more" if len(lost) > 3 else "")
-    return (f"output chunk files missing for {frames} frames at {where} (deleted or lost since they were "
-            "written; they would read as zeros)")
+    return (f"output chunk files missing for {frames} frames at {_spans_text(lost)} (deleted or lost since they "
+            "were written; they would read as zeros)")
+
+
+def _changed_in_part(rec: FileRecord | None, entry: Any, own: tuple[str, str], digest: str,
+                     out_dtype: str | None) -> tuple[Span, ...] | None:
+    """The spans (samples) of a changed Zarr input that alone changed, when its output is
+    otherwise current (complete, same length, design and sample type), else ``None``: the
+    rows of chunks whose digests differ (:func:`changed_spans`), unless that is every one."""
+    if own[0] != "changed" or rec is None or not rec.complete or int(rec.frames) != entry.frames:
+        return None
+    if rec.design_digest != digest or (out_dtype is not None and rec.dtype is not None and rec.dtype != out_dtype):
+        return None
+    spans = changed_spans(rec.source_fingerprint, entry.fingerprint, entry.frames)
+    return None if spans is None or spans == ((0, entry.frames),) else spans
 
 
 def _lookup(table: Mapping[float, Any], fs: float, what: str, seg: Segment) -> Any:

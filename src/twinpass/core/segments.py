@@ -95,6 +95,9 @@ class FileEntry:
     nonfinite_fill: tuple[FillSpan, ...] = field(default=(), compare=False)
     """Per-channel linear fills of those runs (``[processing] nonfinite = "interpolate"``),
     with the finite neighbour values taken when the file was scanned; empty otherwise."""
+    output_name: str | None = field(default=None, compare=False)
+    """Name of the file's output array when it is not derived from :attr:`relpath` (an array
+    of an earlier job's output store keeps its path); ``None`` otherwise."""
 
     @property
     def holes(self) -> tuple[tuple[int, int], ...]:

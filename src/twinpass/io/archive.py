@@ -22,6 +22,27 @@ deterministic.
 Each candidate is opened read-only with the reader the registry picks for it, to learn
 frames, channels, sample rate (Hz) and sample format without reading samples.
 
+An output store as input
+------------------------
+A folder that is the output store of an earlier twinpass job (its root group has the
+``twinpass`` attribute, :mod:`twinpass.io.store_input`) holds one recording per output
+array, so a later job can filter that output again (one configuration is one overall
+response: a band-pass, then a mains notch, is two jobs). When the root is such a store,
+each array ``<stream>/<file stem>`` is a candidate under that path (``include = ["**"]``
+takes them all: the names have no suffix; a note says so when no glob selects any). A store
+found below the root gives candidates ``<store>#<stream>/<file stem>``
+(``stage1/band.zarr#s1/s1_0``), selected when an include glob matches the store's path or
+the identifier and no exclude glob matches either. The ``_twinpass`` group is never an
+input. An array's sample rate, start time and stream are its attributes (a manifest row
+naming the identifier overrides stream and start time; ``name_pattern`` does not apply),
+so the earlier job's streams and contiguous files are this job's streams and segments. An
+array whose ``complete`` attribute is not true is reported invalid, naming the array, until
+the earlier job finishes it. The output array keeps the array's path (below the root,
+prefixed with the store's own output name: its path without ``.zarr``). The store is only
+read; the output store of this job may not be it (:func:`~twinpass.io.store_util.check_outside_archive`).
+Zarr arrays are fingerprinted row by row of chunks (:mod:`twinpass.io.fingerprint`), so
+after the earlier job reruns, the planner refilters what it rewrote (with a halo), not more.
+
 Stream and start time
 ---------------------
 Taken from the first source that applies, per file:
@@ -111,6 +132,7 @@ read. Files with more than :data:`SCAN_CACHE_MAX_RUNS` runs are not kept.
 from __future__ import annotations
 
 import csv
+import json
 import datetime as _dt
 import functools
 import os
@@ -146,7 +168,9 @@ from twinpass.io.readers._common import (
 )
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
-from twinpass.io.store_util import array_name
+from twinpass.io.store_input import array_attributes, is_output_store, output_arrays
+from twinpass.io.store_lock import LOCK_NAME
+from twinpass.io.store_util import array_name, check_name
 
 _T = TypeVar("_T")
 
@@ -157,6 +181,7 @@ __all__ = [
     "compile_glob",
     "discover",
     "list_archive",
+    "output_name",
     "walk_archive",
     "ArchiveListing",
     "read_manifest",
@@ -232,7 +257,12 @@ def _is_array_store(path: str) -> bool:
 
 
 def _selected(rel: str, include: list[re.Pattern[str]], exclude: list[re.Pattern[str]]) -> bool:
-    return any(rx.match(rel) for rx in include) and not any(rx.match(rel) for rx in exclude)
+    return _selected_any([rel], include, exclude)
+
+
+def _selected_any(paths: list[str], include: list[re.Pattern[str]], exclude: list[re.Pattern[str]]) -> bool:
+    """An include glob matches one of ``paths`` and no exclude glob matches any."""
+    return any(rx.match(p) for p in paths for rx in include) and not any(rx.match(p) for p in paths for rx in exclude)
 
 
 _REMEDY_NOT_REGULAR = (
@@ -319,6 +349,11 @@ class ArchiveListing(NamedTuple):
     case_only: list[str]
     """Paths an include glob would select but for the letter case (``A.WAV`` against
     ``**/*.wav``), sorted: not selected, and worth a note."""
+    arrays: Mapping[str, tuple[str, str]] = {}
+    """The candidates that are arrays of an earlier job's output store: identifier ->
+    (the store's folder, the array's path in it). See "An output store as input"."""
+    notes: tuple[str, ...] = ()
+    """Findings worth a note (an output store whose arrays no include glob selects)."""
 
 
 def _from_config(cfg: JobConfig, compile_setting: Callable[[str], _T], setting: str) -> _T:
@@ -335,7 +370,8 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     paths that the globs would select but for the letter case (see :class:`ArchiveListing`).
 
     Only regular files (after following symbolic links) and folders holding one recording
-    are candidates; a named pipe, socket, device or broken link that the globs select is
+    are candidates, and the arrays of an earlier job's output store (see "An output store as
+    input" in the module documentation; :attr:`ArchiveListing.arrays`); a named pipe, socket, device or broken link that the globs select is
     reported instead, without being opened, and so is a path whose name is not UTF-8 (shown
     with its odd bytes as ``\\xNN``). A folder that cannot be listed (permissions, an
     I/O error) is reported as one entry whose path is the folder's with a trailing ``/``
@@ -364,11 +400,45 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     refused: list[InvalidFile] = []
     case_only: list[str] = []
     seen_dirs: set[str] = set()
+    arrays: dict[str, tuple[str, str]] = {}
+    notes: list[str] = []
 
     def by_case_only(rel: str) -> None:
         """Note ``rel`` if an include glob selects it but for the letter case (and no exclude does)."""
         if any(rx.match(rel) for rx in include_any_case) and not any(rx.match(rel) for rx in exclude):
             case_only.append(_shown(rel))
+
+    def take_store(folder: str, rel: str | None) -> None:
+        """The arrays of the output store at ``folder`` as candidates; ``rel`` is the store's
+        path (``None``: the store is the root). Globs select an array by its identifier or,
+        below the root, the whole store by its path."""
+        names = output_arrays(folder)
+        paths = [] if rel is None else [rel]
+        picked = 0
+        for name in names:
+            ident = name if rel is None else f"{rel}#{name}"
+            if _selected_any([ident, *paths], include, exclude):
+                found.append(ident)
+                arrays[ident] = (folder, name)
+                picked += 1
+            else:
+                by_case_only(ident)
+        if picked and os.path.exists(os.path.join(folder, LOCK_NAME)):
+            notes.append(
+                f"a run of the earlier job holds the output store {folder} ({LOCK_NAME} is there): an array it "
+                "rewrites while this job reads it may be read half rewritten; run this job again once that run "
+                "has ended (the arrays it rewrote are then filtered again)"
+            )
+        if rel is None and names and not picked:
+            notes.append(
+                f"the archive root {root} is the output store of an earlier twinpass job, but [archive] include "
+                f"selects none of its {len(names)} arrays (named <stream>/<file stem>, without a suffix, e.g. "
+                f'{names[0]}): set include = ["**"] to read them all'
+            )
+
+    if is_output_store(root) and not any(_inside(os.path.realpath(root), f) for f in fenced):
+        take_store(str(root), None)
+        return ArchiveListing(sorted(found), refused, sorted(case_only), arrays, tuple(notes))
 
     def unlisted(err: OSError) -> None:
         """A folder os.walk cannot list: reported (its files are unknown, not gone)."""
@@ -410,9 +480,16 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         for name in sorted(dirnames):
             rel = name if rel_dir == "." else f"{rel_dir}/{name}"
             if _is_array_store(os.path.join(dirpath, name)):
-                # a folder holding one recording (e.g. a Zarr array): a candidate, never descended
+                # a folder holding one recording (e.g. a Zarr array): a candidate, never descended;
+                # an earlier job's output store holds one recording per array
                 real_dir = os.path.realpath(os.path.join(dirpath, name))
-                if _selected(rel, include, exclude) and not any(_inside(real_dir, f) for f in fenced):
+                if is_output_store(real_dir) and not any(_inside(real_dir, f) for f in fenced):
+                    bad = _not_utf8(rel)
+                    if bad is None:
+                        take_store(os.path.join(dirpath, name), rel)
+                    elif _selected(rel, include, exclude):
+                        refused.append(bad)
+                elif _selected(rel, include, exclude) and not any(_inside(real_dir, f) for f in fenced):
                     bad = _not_utf8(rel)
                     if bad is not None:
                         refused.append(bad)
@@ -436,7 +513,8 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 refused.append(bad)
                 continue
             found.append(rel)
-    return ArchiveListing(sorted(found), sorted(refused, key=lambda b: b.path), sorted(case_only))
+    return ArchiveListing(sorted(found), sorted(refused, key=lambda b: b.path), sorted(case_only), arrays,
+                          tuple(notes))
 
 
 # -- name patterns -----------------------------------------------------------
@@ -657,10 +735,11 @@ def _strip_path(message: str, abspath: str) -> str:
     return message
 
 
-def _open_info(cfg: JobConfig, abspath: str) -> tuple[Any, Any]:
-    """RecordingInfo and ReaderSpec of one file, or :class:`_Bad`."""
+def _open_info(cfg: JobConfig, abspath: str, fmt: str | None = None) -> tuple[Any, Any]:
+    """RecordingInfo and ReaderSpec of one file (read by the reader named ``fmt``, else the
+    one the registry picks), or :class:`_Bad`."""
     try:
-        reader = reader_for(abspath)
+        reader = reader_for(abspath, fmt)
         accepted = tuple(getattr(reader, "options", ()))
         opts: dict[str, Any] = {}
         if "truncated" in accepted:
@@ -895,19 +974,26 @@ def _identify(
             f"not listed in the manifest {cfg.manifest_path}",
             "add a row (path, stream, start_time) for it, or leave it out with [archive] exclude",
         )
-    start = info.start_time
+    start = _stored_start(
+        info, "the start time stored in the file",
+        "correct the time in the file's header (or sidecar), name the start time with [archive] "
+        "name_pattern or a manifest, or leave the file out with [archive] exclude",
+    )
     if start is not None:
-        try:
-            start = _to_utc(start)
-        except _OutOfRange as e:
-            raise _Bad(
-                f"the start time stored in the file: {e}",
-                "correct the time in the file's header (or sidecar), name the start time with [archive] "
-                "name_pattern or a manifest, or leave the file out with [archive] exclude",
-            ) from None
         parent = PurePosixPath(rel).parent.as_posix()
         return (PurePosixPath(rel).name if parent == "." else parent), start
     return rel, None
+
+
+def _stored_start(info: Any, what: str, remedy: str) -> _dt.datetime | None:
+    """The start time the reader found in the file, in UTC (``None`` when it found none), or
+    :class:`_Bad` (``what``: where the time was read) when UTC leaves the years 1 to 9999."""
+    if info.start_time is None:
+        return None
+    try:
+        return _to_utc(info.start_time)
+    except _OutOfRange as e:
+        raise _Bad(f"{what}: {e}", remedy) from None
 
 
 def _check_end_time(start: _dt.datetime | None, info: Any) -> None:
@@ -960,6 +1046,66 @@ def _output_name(rel: str) -> str:
         raise _Bad(f"cannot name its output: {e}", _REMEDY_RENAME) from None
 
 
+_REMEDY_FINISH = (
+    "run the earlier job again until `twinpass status` shows the array complete, then run this one; "
+    "or leave it out with [archive] exclude"
+)
+
+
+def _stage_output_name(rel: str, array: str) -> str:
+    """The output array name of the array ``array`` of an earlier job's output store whose
+    identifier is ``rel``: the array's path as it is when the store is the archive root, else
+    the store's own output name (its path without ``.zarr``) followed by the array's path.
+    :class:`_Bad` when none can be made safely."""
+    try:
+        return check_name(array if rel == array else f"{array_name(rel[: -len(array) - 1])}/{array}")
+    except TwinpassError as e:
+        raise _Bad(f"cannot name its output: {e}", _REMEDY_RENAME) from None
+
+
+def _finished_array_attrs(where: tuple[str, str]) -> dict[str, Any]:
+    """The attributes of an array of an earlier job's output store, or :class:`_Bad` when the
+    earlier job has not finished it (its ``complete`` attribute is not true)."""
+    folder, array = where
+    attrs = array_attributes(os.path.join(folder, array))
+    if attrs.get("complete") is not True:
+        held = "absent" if "complete" not in attrs else json.dumps(attrs["complete"])
+        raise _Bad(
+            f"array {array} of the output store {folder} is not complete (its attribute complete is {held}): "
+            "the earlier job has not finished it (blocks pending or failed, or a run cut short), so its "
+            "samples are not final",
+            _REMEDY_FINISH,
+        )
+    return attrs
+
+
+def _identify_stage_array(
+    cfg: JobConfig, rel: str, info: Any, attrs: Mapping[str, Any], manifest: dict[str, _Row] | None
+) -> tuple[str, _dt.datetime | None]:
+    """Stream and start time of an array of an earlier job's output store: a manifest row
+    when one lists it, else the array's ``stream`` attribute and its start time (attribute
+    ``start_time``, read by the Zarr reader); :class:`_Bad` when they cannot be used."""
+    if manifest is not None and rel in manifest:
+        return _identify(cfg, rel, info, manifest, None)
+    stream = attrs.get("stream")
+    if not isinstance(stream, str) or not stream:
+        raise _Bad(
+            "its attribute stream is missing or not a name",
+            "name its stream and start time in a manifest ([archive] manifest), or leave it out with "
+            "[archive] exclude",
+        )
+    return stream, _stored_start(
+        info, "its attribute start_time", "name its start time in a manifest, or leave it out with [archive] exclude"
+    )
+
+
+def output_name(entry: FileEntry) -> str:
+    """The output array name of a discovered file: :attr:`FileEntry.output_name` when
+    discovery set one (an array of an earlier job's output store), else
+    :func:`~twinpass.io.store_util.array_name` of its relative path."""
+    return entry.output_name or array_name(entry.relpath)
+
+
 def _split_name_clashes(
     entries: list[FileEntry], owners: Mapping[str, str] | None = None
 ) -> tuple[list[FileEntry], list[InvalidFile]]:
@@ -974,27 +1120,28 @@ def _split_name_clashes(
     owners = owners or {}
 
     def owns(e: FileEntry) -> bool:
-        return owners.get(array_name(e.relpath)) == e.relpath
+        return owners.get(output_name(e)) == e.relpath
 
     taken: dict[str, str] = {}  # array name -> its file
-    below: dict[str, str] = {}  # folder of taken array names -> the first file taken below it
+    below: dict[str, str] = {}  # folder of taken array names -> the array name first taken below it
     keep: list[FileEntry] = []
     bad: list[InvalidFile] = []
     for e in sorted(entries, key=lambda e: (not owns(e), e.relpath)):
-        name = array_name(e.relpath)
+        name = output_name(e)
         parts = name.split("/")
         parents = ["/".join(parts[:i]) for i in range(1, len(parts))]
-        other = taken.get(name) or next((taken[p] for p in parents if p in taken), None) or below.get(name)
-        if other is not None:
+        other_name = name if name in taken else next((p for p in parents if p in taken), None) or below.get(name)
+        if other_name is not None:
+            other = taken[other_name]
             held = (
-                f", which the output store already records as the source of {array_name(other)!r}"
-                if owners.get(array_name(other)) == other
+                f", which the output store already records as the source of {other_name!r}"
+                if owners.get(other_name) == other
                 else ""
             )
             bad.append(
                 InvalidFile(
                     e.relpath,
-                    f"its output array name {name!r} clashes with that of {other} ({array_name(other)!r}){held}: "
+                    f"its output array name {name!r} clashes with that of {other} ({other_name!r}){held}: "
                     "suffixes are dropped and characters outside A-Z a-z 0-9 . _ - become _",
                     _REMEDY_RENAME,
                 )
@@ -1002,7 +1149,7 @@ def _split_name_clashes(
             continue
         taken[name] = e.relpath
         for p in parents:
-            below.setdefault(p, e.relpath)
+            below.setdefault(p, name)
         keep.append(e)
     order = {e.relpath: i for i, e in enumerate(entries)}
     return sorted(keep, key=lambda e: order[e.relpath]), bad
@@ -1049,19 +1196,29 @@ def _examine(
     pattern: NamePattern | None,
     fingerprints: bool,
     cache: Mapping[str, Mapping[str, Any]],
+    where: tuple[str, str] | None = None,
 ) -> _Examined:
     """Open, identify, fingerprint and (float files) scan one input file.
 
-    Returns the file's entry (or the :class:`InvalidFile` that says why it is refused), its
-    warnings, its scan cache entry (or ``None``) and whether it was read for the scan.
+    ``where`` is (the store's folder, the array's path) for an array of an earlier job's
+    output store (:attr:`ArchiveListing.arrays`). Returns the file's entry (or the
+    :class:`InvalidFile` that says why it is refused), its warnings, its scan cache entry (or
+    ``None``) and whether it was read for the scan.
     """
-    abspath = str(root / rel)
+    abspath = str(root / rel) if where is None else os.path.join(*where)
     scan_entry = None
     was_scanned = False
+    out_name = None
     try:
-        _output_name(rel)
-        info, spec = _open_info(cfg, abspath)
-        stream, start = _identify(cfg, rel, info, manifest, pattern)
+        if where is None:
+            _output_name(rel)
+            info, spec = _open_info(cfg, abspath)
+            stream, start = _identify(cfg, rel, info, manifest, pattern)
+        else:
+            out_name = _stage_output_name(rel, where[1])
+            attrs = _finished_array_attrs(where)
+            info, spec = _open_info(cfg, abspath, "zarr")
+            stream, start = _identify_stage_array(cfg, rel, info, attrs, manifest)
         _check_end_time(start, info)
         fp = None
         if fingerprints:
@@ -1084,8 +1241,18 @@ def _examine(
     notes = [f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings]
     if note:
         notes.append(f"{rel}: {note}")
-    entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills)
+    entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills,
+                      output_name=out_name)
     return entry, notes, scan_entry, was_scanned
+
+
+def _exists(root: Path, rel: str) -> bool:
+    """Whether the path ``rel`` (relative to ``root``) names a file, or an array of an output
+    store (``store.zarr#stream/stem``)."""
+    if (root / rel).exists():
+        return True
+    store, _, array = rel.partition("#")
+    return bool(array) and is_output_store(root / store) and array in output_arrays(root / store)
 
 
 def discover(
@@ -1134,10 +1301,11 @@ def discover(
     if cfg.manifest_path is not None:
         manifest, conflicts = read_manifest(cfg.manifest_path)
         invalid.extend(conflicts)
-    rels, refused, case_only = walk_archive(cfg)
+    listing = walk_archive(cfg)
+    rels, refused, case_only = listing.found, listing.refused, listing.case_only
     invalid.extend(b for b in refused if b.path not in {i.path for i in invalid})
     entries: list[FileEntry] = []
-    warnings: list[str] = []
+    warnings: list[str] = list(listing.notes)
     if case_only:
         shown = ", ".join(case_only[:5]) + (f" and {len(case_only) - 5} more" if len(case_only) > 5 else "")
         warnings.append(
@@ -1152,7 +1320,10 @@ def discover(
     # Opening, fingerprinting and scanning are reads and hashes that release the GIL:
     # a few threads overlap them (results are taken in listing order).
     with ThreadPoolExecutor(max_workers=_examine_threads(len(todo))) as pool:
-        looked = list(pool.map(lambda rel: _examine(cfg, root, rel, manifest, pattern, fingerprints, cache), todo))
+        looked = list(pool.map(
+            lambda rel: _examine(cfg, root, rel, manifest, pattern, fingerprints, cache, listing.arrays.get(rel)),
+            todo,
+        ))
     for rel, (entry, notes, scan_entry, was_scanned) in zip(todo, looked):
         if was_scanned:
             scanned.append(rel)
@@ -1182,7 +1353,7 @@ def discover(
                         "give paths relative to [archive] root, without '..', or move the file under the root",
                     )
                 )
-            elif not (root / rel).exists():
+            elif not _exists(root, rel):
                 invalid.append(
                     InvalidFile(
                         rel,

@@ -9,9 +9,21 @@ A fingerprint says whether an input file changed since its output was written:
 Files under 2 MiB are hashed whole in both modes (``whole`` is then true), and a digest of
 every byte decides alone: the modification time of such a file is kept but not compared, so
 ``touch`` or a copy that keeps the bytes does not make it changed. Folders that
-hold one recording (Zarr arrays) are fingerprinted by their file list (fast) or by every
-byte of every file (full). The comparison rules live in
+hold one recording are fingerprinted by their file list (fast) or by every byte of every
+file (full). The comparison rules live in
 :func:`twinpass.core.plan.fingerprint_changed` (re-exported here).
+
+Zarr arrays (a folder whose ``zarr.json`` is an array's, or that holds ``.zarray``) are
+fingerprinted row by row of chunks along time (algorithm :data:`ZARR_ALGORITHM`): ``meta``
+digests the array's metadata without its attributes (shape, data type, chunk grid, codecs,
+fill value: what decides the samples; attributes such as ``complete`` or ``checks`` do not)
+plus any file that is no chunk, and ``rows`` holds one short digest per row of chunks
+(``row_frames`` samples each; the files of its chunks with their sizes and, fast, their
+modification times or, full, their bytes; an absent chunk counts as one). ``digest`` covers
+both. So an array that an earlier twinpass job rewrote in part (the blocks near a changed
+neighbour) names the rows that changed, and the planner filters those frames again
+(:func:`twinpass.core.plan.changed_spans`) instead of the whole file. Arrays of more than
+:data:`MAX_ROWS` rows keep no ``rows`` (a change refilters the whole file).
 
 Bytes alone do not fix the samples a file decodes to: a raw file's sidecar (``NAME.toml``
 / ``NAME.json``) sets its dtype, byte order, gain, offset, header length, rate and start
@@ -26,20 +38,31 @@ change of how the file decodes makes it changed, with the fields that differ nam
 from __future__ import annotations
 
 import hashlib
+import json
 import math
 import os
 from pathlib import Path
-from typing import Any, BinaryIO, Mapping
+from typing import Any, BinaryIO, Mapping, NamedTuple
 
 from twinpass.core.plan import fingerprint_changed
 from twinpass.errors import ConfigError, InputError
 
-__all__ = ["CHUNK_BYTES", "ALGORITHM", "decoding_of", "fingerprint_file", "fingerprint_changed", "design_digest"]
+__all__ = [
+    "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "decoding_of", "fingerprint_file",
+    "fingerprint_changed", "design_digest",
+]
 
 CHUNK_BYTES = 1 << 20
 """Read size and the length of the head and tail hashed in fast mode (1 MiB)."""
 ALGORITHM = "blake2b-256"
+ZARR_ALGORITHM = "blake2b-256/zarr-rows"
+"""Algorithm name of the fingerprints of Zarr arrays, which digest rows of chunks apart."""
+MAX_ROWS = 10_000
+"""Most rows of chunks (along time) whose digests a Zarr array's fingerprint keeps."""
+_ROW_DIGEST_CHARS = 16
+"""Hex characters kept of each row's digest (64 bits)."""
 _WHOLE_BELOW = 2 * CHUNK_BYTES
+_ZARR_METADATA = frozenset({"zarr.json", ".zarray", ".zattrs", ".zgroup"})
 
 
 def _hash_file(fh: BinaryIO, size: int, whole: bool, h: Any) -> None:
@@ -60,6 +83,101 @@ def _tree_files(root: Path) -> list[tuple[str, os.stat_result]]:
             full = os.path.join(dirpath, name)
             out.append((Path(full).relative_to(root).as_posix(), os.stat(full)))
     return sorted(out)
+
+
+class _ZarrLayout(NamedTuple):
+    """What a Zarr array's metadata says of where its chunks lie."""
+
+    meta: dict[str, Any]
+    """The metadata document without attributes."""
+    frames: int
+    """Samples along time (the first dimension)."""
+    row_frames: int
+    """Samples along time per chunk (per shard, for a sharded array)."""
+    v2_keys: bool
+    """Chunk keys without the ``c`` prefix (format 2, or the ``v2`` key encoding)."""
+    separator: str
+
+
+def _zarr_layout(folder: Path) -> _ZarrLayout | None:
+    """The chunk layout of the Zarr array in ``folder``, or ``None`` when ``folder`` holds none
+    (or metadata this module cannot follow: it is then fingerprinted as a plain folder)."""
+    try:
+        if (folder / "zarr.json").is_file():
+            meta = json.loads((folder / "zarr.json").read_bytes())
+            if meta.get("node_type") != "array" or meta["chunk_grid"].get("name") != "regular":
+                return None
+            rows = int(meta["chunk_grid"]["configuration"]["chunk_shape"][0])
+            enc = meta.get("chunk_key_encoding") or {}
+            v2 = enc.get("name", "default") == "v2"
+            sep = str((enc.get("configuration") or {}).get("separator", "." if v2 else "/"))
+        elif (folder / ".zarray").is_file():
+            meta = json.loads((folder / ".zarray").read_bytes())
+            rows, v2, sep = int(meta["chunks"][0]), True, str(meta.get("dimension_separator") or ".")
+        else:
+            return None
+        frames = int(meta["shape"][0])
+    except (OSError, ValueError, TypeError, KeyError, IndexError, AttributeError):
+        return None
+    if rows <= 0 or frames < 0 or sep not in ("/", "."):
+        return None
+    meta = {k: v for k, v in meta.items() if k != "attributes"}
+    return _ZarrLayout(meta, frames, rows, v2, sep)
+
+
+def _row_of(key: str, layout: _ZarrLayout) -> int | None:
+    """The row (chunk index along time) of the chunk file ``key`` (POSIX path inside the
+    array's folder), or ``None`` when it is no chunk of the array."""
+    if not layout.v2_keys:
+        if not key.startswith("c" + layout.separator):
+            return None
+        key = key[2:]
+    first = key.split(layout.separator)[0]
+    if not first.isdigit():
+        return None
+    row = int(first)
+    return row if row * layout.row_frames < max(layout.frames, 1) else None
+
+
+def _fingerprint_zarr(p: Path, layout: _ZarrLayout, mode: str) -> dict[str, Any]:
+    """The row-wise fingerprint of the Zarr array in folder ``p`` (module notes)."""
+    whole = mode == "full"
+    n_rows = -(-layout.frames // layout.row_frames)
+    rows: list[Any] = [hashlib.blake2b(digest_size=32) for _ in range(n_rows)]
+    meta = hashlib.blake2b(digest_size=32)
+    meta.update(json.dumps(layout.meta, sort_keys=True, separators=(",", ":")).encode())
+    size, mtime_ns = 0, None
+    for rel, st in _tree_files(p):
+        if rel in _ZARR_METADATA:
+            continue
+        row = _row_of(rel, layout)
+        h = meta if row is None else rows[row]
+        h.update(f"{rel}\0{st.st_size}\0".encode())
+        if whole:
+            with open(p / rel, "rb") as fh:
+                _hash_file(fh, st.st_size, True, h)
+        else:
+            h.update(f"{st.st_mtime_ns}\0".encode())
+        size += st.st_size
+        mtime_ns = st.st_mtime_ns if mtime_ns is None else max(mtime_ns, st.st_mtime_ns)
+    row_digests = [h.hexdigest() for h in rows]
+    total = hashlib.blake2b(digest_size=32)
+    total.update(meta.digest())
+    for d in row_digests:
+        total.update(bytes.fromhex(d))
+    out: dict[str, Any] = {
+        "size": int(size),
+        "mtime_ns": int(p.stat().st_mtime_ns if mtime_ns is None else mtime_ns),
+        "mode": mode,
+        "algorithm": ZARR_ALGORITHM,
+        "whole": whole,
+        "digest": total.hexdigest(),
+        "meta": meta.hexdigest()[:_ROW_DIGEST_CHARS],
+        "row_frames": int(layout.row_frames),
+    }
+    if n_rows <= MAX_ROWS:
+        out["rows"] = [d[:_ROW_DIGEST_CHARS] for d in row_digests]
+    return out
 
 
 _PATH_FIELDS = frozenset({"sidecar", "store"})
@@ -123,7 +241,8 @@ def fingerprint_file(
         ``fast`` hashes the first and last MiB, ``full`` every byte (in 1 MiB chunks);
         files under 2 MiB are hashed whole either way. For a folder, ``fast`` hashes the
         list of its files with their sizes (the newest modification time is compared
-        separately) and ``full`` the names and every byte of its files.
+        separately) and ``full`` the names and every byte of its files; a Zarr array is
+        digested row by row of chunks (module notes).
     info : RecordingInfo, optional
         What the reader found in the file; adds ``decoding`` (:func:`decoding_of`) and, when
         the reader used a sidecar, ``sidecar`` (its file name).
@@ -133,7 +252,8 @@ def fingerprint_file(
     dict
         ``size`` (bytes; for a folder the sum over its files), ``mtime_ns`` (for a folder
         the newest of its files), ``mode``, ``algorithm``, ``whole`` (the digest covers
-        every byte) and ``digest`` (hex); with ``info`` also ``decoding`` (and ``sidecar``).
+        every byte) and ``digest`` (hex); for a Zarr array also ``meta``, ``row_frames``
+        (samples) and ``rows``; with ``info`` also ``decoding`` (and ``sidecar``).
         JSON-serialisable.
 
     Raises
@@ -147,8 +267,12 @@ def fingerprint_file(
         raise ConfigError(f"fingerprint mode {mode!r} is not one of: fast, full ([archive] fingerprint)")
     p = Path(path)
     h = hashlib.blake2b(digest_size=32)
+    out: dict[str, Any]
     try:
-        if p.is_dir():
+        layout = _zarr_layout(p) if p.is_dir() else None
+        if layout is not None:
+            out = _fingerprint_zarr(p, layout, mode)
+        elif p.is_dir():
             files = _tree_files(p)
             size = sum(st.st_size for _, st in files)
             mtime_ns = max((st.st_mtime_ns for _, st in files), default=p.stat().st_mtime_ns)
@@ -169,14 +293,15 @@ def fingerprint_file(
             f"{p}: cannot read it to take its fingerprint ({e.strerror}); check that it exists and is readable",
             path=str(p),
         ) from None
-    out: dict[str, Any] = {
-        "size": int(size),
-        "mtime_ns": int(mtime_ns),
-        "mode": mode,
-        "algorithm": ALGORITHM,
-        "whole": bool(whole),
-        "digest": h.hexdigest(),
-    }
+    if layout is None:
+        out = {
+            "size": int(size),
+            "mtime_ns": int(mtime_ns),
+            "mode": mode,
+            "algorithm": ALGORITHM,
+            "whole": bool(whole),
+            "digest": h.hexdigest(),
+        }
     if info is not None:
         out["decoding"] = decoding_of(info)
         side = (info.extra or {}).get("sidecar")

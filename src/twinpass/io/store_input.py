@@ -1,0 +1,86 @@
+"""An earlier job's output store read as the input archive of a later job (multi-stage filtering).
+
+A configuration holds one overall response, so a cascade (a band-pass, then a mains notch)
+is two jobs, the second reading the first one's output store. A folder is such a store when
+its root group's ``zarr.json`` holds the ``twinpass`` attribute (see :mod:`twinpass.io.store`).
+Its recordings are its output arrays, ``<stream>/<file stem>``: one per input file of the
+earlier job, time-major ``(samples, channels)``, with the attributes ``sample_rate_hz`` (Hz),
+``start_time`` (ISO 8601), ``stream`` and ``complete``. The bookkeeping group ``_twinpass``
+and hidden names are never recordings.
+
+Only metadata documents (``zarr.json``) are read here, with plain file reads: the store is
+never opened for writing, locked or modified.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+from .store_util import RESERVED_PREFIX
+
+__all__ = ["STORE_ATTRIBUTE", "array_attributes", "is_output_store", "output_arrays"]
+
+STORE_ATTRIBUTE = "twinpass"
+"""Attribute of an output store's root group that marks it as written by twinpass."""
+
+_METADATA = "zarr.json"
+
+
+def _node(folder: Path | str) -> dict[str, Any] | None:
+    """The Zarr v3 metadata document of ``folder`` (a JSON object), or ``None`` when it has
+    none or it cannot be read as one."""
+    try:
+        with open(os.path.join(folder, _METADATA), "rb") as fh:
+            doc = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    return doc if isinstance(doc, dict) else None
+
+
+def is_output_store(folder: Path | str) -> bool:
+    """Whether ``folder`` is a twinpass output store: a Zarr v3 group whose attributes hold
+    ``twinpass``."""
+    doc = _node(folder)
+    if doc is None or doc.get("node_type") != "group":
+        return False
+    attrs = doc.get("attributes")
+    return isinstance(attrs, dict) and isinstance(attrs.get(STORE_ATTRIBUTE), dict)
+
+
+def output_arrays(folder: Path | str) -> list[str]:
+    """Paths (POSIX, relative to the store root) of the arrays of the output store at
+    ``folder``, sorted; the ``_twinpass`` group, hidden names and folders that are no Zarr
+    node are left out. Symbolic links inside the store are not followed."""
+    found: list[str] = []
+    root = Path(folder)
+
+    def visit(path: Path, rel: str) -> None:
+        try:
+            names = sorted(e.name for e in os.scandir(path) if e.is_dir(follow_symlinks=False))
+        except OSError:
+            return
+        for name in names:
+            if name.startswith(".") or (not rel and name.startswith(RESERVED_PREFIX)):
+                continue
+            doc = _node(path / name)
+            if doc is None:
+                continue
+            child = f"{rel}/{name}" if rel else name
+            if doc.get("node_type") == "array":
+                found.append(child)
+            elif doc.get("node_type") == "group":
+                visit(path / name, child)
+
+    visit(root, "")
+    return found
+
+
+def array_attributes(folder: Path | str) -> dict[str, Any]:
+    """The attributes of the Zarr v3 array at ``folder`` (empty when it has none or its
+    metadata cannot be read)."""
+    doc = _node(folder)
+    attrs = None if doc is None else doc.get("attributes")
+    return dict(attrs) if isinstance(attrs, dict) else {}

@@ -1,0 +1,264 @@
+"""Multi-stage filtering: a later job reads an earlier job's output store as its archive.
+
+Stage 1 band-passes an invented archive (two streams of contiguous NPY files), stage 2
+notches the mains frequency out of stage 1's output store, both with the real engine
+(threads, real Zarr stores on disk).
+
+References:
+* Whole-signal result of the cascade: scipy.signal.sosfiltfilt(notch_sos,
+  scipy.signal.sosfiltfilt(bandpass_sos, x)) on each whole concatenated stream, with the
+  second-order sections, odd end extension and its length (``edge_samples``) that each
+  stage records in its outputs' ``filter`` attribute (README "How the response is
+  specified" / "Halos and the tolerance": a segment is end extended by point reflection).
+* Error bound: each stage is within its configured tolerance (1e-9) of its segment's
+  peak; stage 1's error reaches stage 2's output through the notch with a gain of at most
+  the l1 norm of the notch's two-pass impulse response (a linear filter's peak gain,
+  common practice), computed here with scipy.signal.sosfilt. The bound allows ten times
+  the sum.
+* Which arrays are inputs, what is left out and what a rerun recomputes are twinpass rules
+  (README "Input formats and scaling", the planner's statuses).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.signal
+import zarr
+
+from conftest import cli_env, make_signal, read_output, run_cli, write_config, write_stream
+from twinpass.config import load_config
+from twinpass.errors import UnsafePathError
+from twinpass.io.archive import discover
+from twinpass.io.store import OutputStore
+from twinpass.job import prepare, run_job
+
+FS = 200.0
+FILE_FRAMES = 4000
+"""20 s files: four 5 s blocks each, longer than either stage's halo."""
+STREAMS = {"s1": 1, "s2": 2}
+"""Stream name -> channels."""
+NOTCH = {"kind": "notch", "notch_hz": 50.0, "notch_width_hz": 2.0}
+TOLERANCE = 1e-9
+
+
+def _write_archive(root: Path) -> dict[str, list[str]]:
+    """Three contiguous files per stream; returns the stage-1 output array names per stream."""
+    names = {}
+    for seed, (stream, ch) in enumerate(STREAMS.items()):
+        x = make_signal(3 * FILE_FRAMES, ch, FS, seed=seed)
+        x += 0.1 * np.sin(2 * np.pi * 50.0 * np.arange(x.shape[0]) / FS)[:, None]  # mains hum
+        names[stream] = list(write_stream(root, stream, x, FS, 3).arrays)
+    return names
+
+
+def _stage1(folder: Path) -> Path:
+    return write_config(folder, output={"store": "band.zarr"})
+
+
+def _stage2(folder: Path, root: str = "band.zarr", **archive) -> Path:
+    """Stage 2 reads ``root`` (stage 1's store, relative to ``folder``) and writes notch.zarr."""
+    return write_config(folder, response=NOTCH, archive={"root": root, "include": ["**"], "name_pattern": None,
+                                                         **archive},
+                        output={"store": "notch.zarr"})
+
+
+def _run(config: Path):
+    res = run_job(load_config(config), scheduler="threads", workers=2)
+    assert not res.failed, res.failure_reasons()
+    return res
+
+
+def _tree(folder: Path) -> dict[str, tuple[int, int]]:
+    """Every file under ``folder`` with its size and modification time (ns)."""
+    return {p.relative_to(folder).as_posix(): (p.stat().st_size, p.stat().st_mtime_ns)
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="module")
+def staged(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, dict[str, list[str]]]:
+    """An archive filtered by stage 1 (band.zarr), read by nothing yet (copy it to change it)."""
+    folder = tmp_path_factory.mktemp("stages")
+    names = _write_archive(folder / "archive")
+    _run(_stage1(folder))
+    return folder, names
+
+
+@pytest.fixture
+def work(staged, tmp_path: Path) -> tuple[Path, dict[str, list[str]]]:
+    folder, names = staged
+    shutil.copytree(folder, tmp_path / "w", symlinks=True)
+    return tmp_path / "w", names
+
+
+def _two_pass(filt: dict, x: np.ndarray) -> np.ndarray:
+    """scipy.signal.sosfiltfilt of the whole stream with a stage's recorded coefficients and end extension."""
+    return scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype="odd", padlen=int(filt["edge_samples"]))
+
+
+def _bound(second: dict, x: np.ndarray) -> float:
+    """Ten times the tolerance of the two stages, the first one's passed on with the peak gain
+    (l1 norm of the two-pass impulse response) of the second, relative to the input's peak."""
+    impulse = np.zeros(4 * int(second["effective_length_samples"]) + 1)
+    impulse[impulse.size // 2] = 1.0
+    gain = float(np.sum(np.abs(scipy.signal.sosfiltfilt(np.asarray(second["sos"]), impulse, padtype=None))))
+    return 10 * TOLERANCE * (1 + gain) * float(np.max(np.abs(x)))
+
+
+def _check_cascade(folder: Path, names: dict[str, list[str]], first: str = "band.zarr",
+                   second: str = "notch.zarr") -> dict[str, np.ndarray]:
+    """Each stream of store ``second`` equals the whole-stream cascade of scipy.signal.sosfiltfilt
+    by the filter of store ``first``, then that of ``second``; returns the outputs per stream."""
+    out = {}
+    for stream, arrays in names.items():
+        x = np.concatenate([np.load(folder / "archive" / f"{a}.npy") for a in arrays])
+        one = zarr.open_group(str(folder / first), mode="r")[arrays[0]].attrs["filter"]
+        attrs = zarr.open_group(str(folder / second), mode="r")[arrays[0]].attrs.asdict()
+        # reference: two-pass filtering of the whole stream by each stage in turn, each with the
+        # coefficients and end extension its outputs record
+        ref = _two_pass(attrs["filter"], _two_pass(one, x))
+        y = np.concatenate(read_output(folder / second, arrays))
+        err = float(np.max(np.abs(y - ref)))
+        assert err <= _bound(attrs["filter"], x), (stream, err)
+        # stage 1's streams, start times and joins carry over: one segment per stream
+        assert attrs["stream"] == stream and attrs["segment"].startswith(f"{stream}@")
+        assert attrs["joins"] == {"previous": None, "next": arrays[1]}
+        assert attrs["source"] == arrays[0]
+        out[stream] = y
+    return out
+
+
+def test_a_second_stage_reads_the_first_stage_store_and_equals_the_cascade(work):
+    folder, names = work
+    before = _tree(folder / "band.zarr")
+    res = _run(_stage2(folder))
+    assert res.invalid == [] and sorted(o.relpath for o in res.outcomes) == sorted(sum(names.values(), []))
+    assert {o.status for o in res.outcomes} == {"complete"}
+    _check_cascade(folder, names)
+    # stage 2's arrays keep stage 1's names; the bookkeeping group was no input
+    assert sorted(OutputStore.open(str(folder / "notch.zarr"), mode="r").list_arrays()) == sorted(
+        sum(names.values(), []))
+    # the input store was only read
+    assert _tree(folder / "band.zarr") == before
+
+
+def test_an_incomplete_first_stage_array_is_left_out_naming_it_and_the_remedy(work):
+    folder, names = work
+    last = names["s2"][-1]
+    # what a stage-1 run cut short leaves: the array marked incomplete before its blocks are written
+    zarr.open_array(str(folder / "band.zarr" / last), mode="r+").attrs["complete"] = False
+    res = run_job(load_config(_stage2(folder)), scheduler="threads", workers=2)
+    assert [b.relpath for b in res.invalid] == [last]
+    why = res.invalid[0].explained
+    assert f"array {last} of the output store" in why and "not complete" in why
+    assert "run the earlier job again" in why
+    assert last not in OutputStore.open(str(folder / "notch.zarr"), mode="r").list_arrays()
+
+
+def test_a_first_stage_rerun_reruns_only_what_it_rewrote(work):
+    folder, names = work
+    _run(_stage2(folder))
+    # change the middle file of s1 (same length): stage 1 refilters it and its joins
+    middle = folder / "archive" / f"{names['s1'][1]}.npy"
+    np.save(middle, np.load(middle)[::-1].copy())
+    plan1 = prepare(load_config(_stage1(folder)), OutputStore.open(str(folder / "band.zarr"), mode="r")).plan
+    _run(_stage1(folder))
+    cfg2 = load_config(_stage2(folder))
+    plan2 = prepare(cfg2, OutputStore.open(str(folder / "notch.zarr"), mode="r")).plan
+    by = {fp.relpath: fp for fp in plan2.files}
+    first, mid, last = names["s1"]
+    halo1 = plan1.halos[FS]
+    halo2 = plan2.halos[FS]
+    block = 1000  # 5 s blocks at 200 Hz: stage 1 rewrote the blocks its halo reaches
+    assert plan1.file(f"{first}.npy").redo == ((FILE_FRAMES - halo1, FILE_FRAMES),)
+    assert by[mid].status == "changed" and by[mid].redo == "all"
+    # the neighbours changed only in stage 1's last / first block: those samples and stage 2's halo
+    assert by[first].status == "changed" and by[first].redo == ((FILE_FRAMES - block - halo2, FILE_FRAMES),)
+    assert by[last].status == "changed" and by[last].redo == ((0, block + halo2),)
+    assert {fp.status for fp in plan2.files if fp.stream == "s2"} == {"unchanged"}
+    assert plan2.removed == () and plan2.invalid == ()
+    res = _run(_stage2(folder))
+    ran = {o.relpath: o.blocks_run for o in res.outcomes}
+    assert ran[mid] == 4 and 0 < ran[first] < 4 and 0 < ran[last] < 4
+    assert all(ran[a] == 0 for a in names["s2"])
+    _check_cascade(folder, names)
+    # nothing changed since: nothing to do
+    again = prepare(cfg2, OutputStore.open(str(folder / "notch.zarr"), mode="r")).plan
+    assert {fp.status for fp in again.files} == {"unchanged"}
+
+
+def test_a_store_below_the_root_is_read_array_by_array_and_a_manifest_may_place_them(work):
+    folder, names = work
+    (folder / "stage1").mkdir()
+    (folder / "band.zarr").rename(folder / "stage1" / "band.zarr")
+    ident = f"band.zarr#{names['s2'][0]}"
+    (folder / "places.csv").write_text(f"path,stream,start_time\n{ident},s2-notched,2030-01-01T00:00:00Z\n")
+    cfg = load_config(_stage2(folder, root="stage1", include=["*.zarr"], manifest="places.csv"))
+    disc = discover(cfg)
+    got = {e.relpath: e for e in disc.files}
+    assert disc.invalid == ()
+    assert sorted(got) == sorted(f"band.zarr#{a}" for a in sum(names.values(), []))
+    assert got[f"band.zarr#{names['s1'][1]}"].stream == "s1"
+    assert got[f"band.zarr#{names['s1'][1]}"].output_name == f"band/{names['s1'][1]}"
+    assert got[ident].stream == "s2-notched" and got[ident].start_time.year == 2030
+    # an exclude glob over the identifiers leaves arrays out
+    cfg = load_config(_stage2(folder, root="stage1", include=["*.zarr"], exclude=["band.zarr#s2/**"]))
+    assert all(e.stream == "s1" for e in discover(cfg).files)
+
+
+def test_notes_say_when_no_glob_takes_the_arrays_and_when_the_earlier_job_is_running(work):
+    folder, names = work
+    plain = write_config(folder, response=NOTCH, archive={"root": "band.zarr", "name_pattern": None},
+                         output={"store": "notch.zarr"})  # include: the default "**/*.npy", "**/*.wav"
+    disc = discover(load_config(plain))
+    assert disc.files == () and any('set include = ["**"]' in w for w in disc.warnings), disc.warnings
+    (folder / "band.zarr" / ".twinpass-lock").write_text("{}")  # what a running job keeps there
+    disc = discover(load_config(_stage2(folder)))
+    assert len(disc.files) == 6 and any("half rewritten" in w for w in disc.warnings), disc.warnings
+
+
+def test_the_order_of_the_two_stages_does_not_change_the_result(work):
+    folder, names = work
+    _run(_stage2(folder))
+    forward = _check_cascade(folder, names)
+    # notch first on the raw archive, then the band-pass on the notch job's store
+    rev = folder / "rev"
+    rev.mkdir()
+    _run(write_config(rev, response=NOTCH, archive={"root": "../archive"}, output={"store": "notch.zarr"}))
+    _run(write_config(rev, archive={"root": "notch.zarr", "include": ["**"], "name_pattern": None},
+                      output={"store": "band.zarr"}))
+    (rev / "archive").symlink_to(folder / "archive")
+    backward = _check_cascade(rev, names, first="notch.zarr", second="band.zarr")
+    for stream, arrays in names.items():
+        x = np.concatenate([np.load(folder / "archive" / f"{a}.npy") for a in arrays])
+        band = zarr.open_group(str(folder / "band.zarr"), mode="r")[arrays[0]].attrs["filter"]
+        notch = zarr.open_group(str(folder / "notch.zarr"), mode="r")[arrays[0]].attrs["filter"]
+        # LTI filters commute; with an odd end extension (point symmetry about the end sample,
+        # which a zero-phase filter keeps) the edge zones agree too: scipy's two orders agree ...
+        assert np.max(np.abs(_two_pass(notch, _two_pass(band, x)) - _two_pass(band, _two_pass(notch, x)))) <= (
+            _bound(notch, x))
+        # ... and so do the two orders of the jobs, edge zones included
+        assert np.max(np.abs(forward[stream] - backward[stream])) <= 2 * _bound(notch, x)
+
+
+def test_the_prefect_flow_runs_the_second_stage_alike(work):
+    # the command's default path: the Prefect flow on a temporary local server
+    folder, names = work
+    env = cli_env(PREFECT_HOME=str(folder / "prefect-home"))
+    proc = run_cli(["run", str(_stage2(folder)), "--no-report"], env=env)
+    assert "complete 6, skipped (unchanged) 0, failed 0, invalid 0" in proc.stdout, proc.stdout
+    _check_cascade(folder, names)
+
+
+def test_the_second_stage_store_may_not_be_the_first_stage_store(work):
+    # guard: passes before and after store inputs existed (the store would be its own archive)
+    folder, _ = work
+    config = write_config(folder, response=NOTCH, archive={"root": "band.zarr", "include": ["**"]},
+                          output={"store": "band.zarr"})
+    with pytest.raises(UnsafePathError, match="is the archive root"):
+        run_job(load_config(config), scheduler="threads", workers=1)
