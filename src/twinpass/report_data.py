@@ -288,8 +288,9 @@ def _frames(spans: Sequence[Sequence[int]]) -> str:
 def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
     """The report's "Left out, failed or missing" lists from :func:`collect_status`'s result:
     inputs the last run left out (reason; remedy), inputs that failed (reason) and blocks that
-    failed (first line of the error), outputs whose input is gone, outputs with chunk files
-    missing (frame spans [start, stop)), and the last run's notes."""
+    failed (first line of the error, or the figures that failed their checks), outputs whose
+    input is gone, outputs with chunk files missing (frame spans [start, stop)), and the last
+    run's notes."""
     files = status.get("files") or []
     failed = status.get("failed_inputs") or {}
     return [
@@ -297,7 +298,8 @@ def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
          [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
         ("Inputs that failed in the last run", [f"{k}: {v}" for k, v in sorted(failed.items())]),
         ("Blocks that failed (the next run tries them again)",
-         [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]),
+         [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]
+         + [f"{k} {line}" for k, v in sorted((status.get("failed_blocks") or {}).items()) for line in v["blocks"]]),
         ("Outputs whose input is no longer in the archive (kept as they were)", list(status.get("gone") or [])),
         ("Outputs with chunk files missing (deleted or lost since written; they would read as zeros; the next "
          "run reruns their blocks)",
