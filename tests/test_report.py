@@ -451,3 +451,27 @@ def test_report_lists_are_capped_and_escaped(tmp_path: Path) -> None:
     empty = report.render_report(tmp_path / "e.html", design_reports=[], designs=[], files=[], blocks=[], overlays=[],
                                  title="none", cautions=[], listed=[("Notes of the last run", [])])
     assert "Nothing left out, failed, gone or missing" in empty.read_text(encoding="utf-8")
+
+
+def test_the_design_note_counts_complete_and_incomplete_outputs_apart(tmp_path: Path, inject) -> None:
+    # One of three files keeps failing a block (injected fault): its output is recorded with
+    # the design but not complete. Reference: twinpass.status.collect_status, which
+    # `twinpass status` prints, counts it as incomplete.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import output_designs, write_report
+    from twinpass.status import collect_status
+
+    files = write_stream(tmp_path / "archive", "deck", make_signal(6000, 2, 200.0, seed=3), 200.0, [2000] * 3)
+    inject([{"action": "raise", "file": files.arrays[1], "block": "*"}])
+    cfg = load_config(write_config(tmp_path, engine={"retries": 0}))
+    assert run_job(cfg).failed == [files.relpaths[1]]
+    store = OutputStore.open(cfg.store_location, mode="r")
+    status = collect_status(store)
+    assert status["totals"]["files"] == 3 and status["totals"]["complete"] == 2
+    text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
+    assert "Filtered 3 outputs at 200 Hz, 2 complete (e.g. " in text
+    designs, _ = output_designs(cfg, store, status["files"])
+    assert [(len(d.sources), d.complete) for d in designs] == [(3, 2)]

@@ -122,6 +122,14 @@ def _same_filter(design: Design, recorded: Design) -> bool:
             and bool(np.array_equal(mine, theirs)) and float(design.tolerance) == float(recorded.tolerance))
 
 
+def outputs_counted(n: int, complete: int, sample_rate_hz: float) -> str:
+    """``"10 outputs at 200 Hz, 7 complete"``: outputs counted with how many of them are complete."""
+    if n == 1:
+        return f"1 output at {sample_rate_hz:g} Hz, " + ("complete" if complete else "not complete")
+    state = "all complete" if complete == n else "none complete" if complete == 0 else f"{complete} complete"
+    return f"{n} outputs at {sample_rate_hz:g} Hz, {state}"
+
+
 @dataclass
 class OutputDesign:
     """A design the store's outputs were filtered with, and the outputs it served."""
@@ -133,11 +141,13 @@ class OutputDesign:
     """The response spec it was designed from, where known (``ResponseSpec.to_dict()``)."""
     recorded: bool = True
     """False: the store recorded no design for these outputs (drawn from the configuration)."""
+    complete: int = 0
+    """How many of those outputs are complete (every block done, see ``twinpass status``)."""
 
     def note(self) -> str:
         """What the design was used for and where the report's figures of it come from."""
-        n = len(self.sources)
-        used = f"Filtered {n} output(s) at {self.design.sample_rate_hz:g} Hz (e.g. {self.sources[0]})."
+        used = (f"Filtered {outputs_counted(len(self.sources), self.complete, self.design.sample_rate_hz)} "
+                f"(e.g. {self.sources[0]}).")
         if not self.recorded:
             return (f"{used} The store recorded no design for these outputs (written by an older twinpass): "
                     "drawn from the configuration as it is now, which may not be what they were filtered with.")
@@ -211,6 +221,7 @@ def output_designs(cfg: JobConfig, store: Any,
     spec = _recorded_spec(store.read_root_info())
     by_digest: dict[tuple[float, str | None], list[str]] = {}
     filters: dict[tuple[float, str | None], Mapping[str, Any]] = {}
+    complete = {str(f["source"]) for f in files if f.get("complete")}
     for f in files:
         attrs = store.array_attrs(f["name"])
         fs = float(attrs["sample_rate_hz"])
@@ -235,16 +246,19 @@ def output_designs(cfg: JobConfig, store: Any,
             notices.append(f"{len(sources)} output(s) at {fs:g} Hz (e.g. {sources[0]}) have no design recorded in "
                            "the store (written by an older twinpass): their design is drawn from the configuration "
                            "as it is now, which may not be what they were filtered with.")
-            out[(fs, "configuration")] = OutputDesign(design, sources, cfg.response.to_dict(), recorded=False)
+            out[(fs, "configuration")] = OutputDesign(design, sources, cfg.response.to_dict(), recorded=False,
+                                                      complete=len(complete.intersection(sources)))
             continue
         filt = filters[(fs, digest)]
         same = json.dumps([filt.get("sos"), filt.get("taps"), filt.get("tolerance")])
         if (fs, same) in out:
             out[(fs, same)].sources += sources
+            out[(fs, same)].complete += len(complete.intersection(sources))
             continue
         own = _parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
         design, known = _recorded_design(fs, filt, own)
-        out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None)
+        out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None,
+                                       complete=len(complete.intersection(sources)))
     return list(out.values()), notices
 
 
@@ -275,8 +289,8 @@ def design_notices(cfg: JobConfig, designs: Sequence[OutputDesign]) -> list[str]
                      "not recorded)")
         wants = (f"{asks} ({_describe_filter(current)})" if isinstance(current, Design)
                  else f"{asks}, which cannot be designed at {fs:g} Hz ({current})")
-        notices.append(f"The configuration now asks for {wants}; {len(d.sources)} output(s) at {fs:g} Hz were "
-                       f"filtered with {made}. The figures below show the design the outputs were filtered "
+        notices.append(f"The configuration now asks for {wants}; {outputs_counted(len(d.sources), d.complete, fs)}, "
+                       f"were filtered with {made}. The figures below show the design the outputs were filtered "
                        "with; rerun to refilter them (twinpass run CONFIG).")
     return notices
 
