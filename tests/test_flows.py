@@ -521,7 +521,7 @@ def test_output_to_an_fsspec_url(prefect_client, npy_archive, tmp_path, monkeypa
     summary = state.result()
     assert summary["store"] == url
     if scheme == "memory":
-        assert Path(summary["report"]) == tmp_path / "twinpass-report.html" and Path(summary["report"]).is_file()
+        assert Path(summary["report"]) == tmp_path / "out.report.html" and Path(summary["report"]).is_file()
     if scheme == "file":
         assert (tmp_path / "out.zarr" / "zarr.json").is_file()
     for stream in STREAMS:

@@ -475,3 +475,23 @@ def test_the_design_note_counts_complete_and_incomplete_outputs_apart(tmp_path: 
     assert "Filtered 3 outputs at 200 Hz, 2 complete (e.g. " in text
     designs, _ = output_designs(cfg, store, status["files"])
     assert [(len(d.sources), d.complete) for d in designs] == [(3, 2)]
+
+
+def test_two_stores_in_one_folder_keep_reports_of_their_own(tmp_path: Path) -> None:
+    # Two configurations whose stores sit side by side: each default report is named after
+    # its store, so the second does not overwrite the first (common practice: one output,
+    # one name).
+    from conftest import BANDPASS, write_config
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+    from twinpass.report_data import default_report_path, write_report
+
+    first = load_config(_run_small_job(tmp_path))
+    path = write_config(tmp_path, response=dict(BANDPASS, cutoff_hz=[5.0, 30.0]), output={"store": "narrow.zarr"})
+    second = load_config(path.rename(tmp_path / "narrow.toml"))
+    assert run_job(second).ok
+    a, b = write_report(first), write_report(second)
+    assert (a, b) == (tmp_path / "out.report.html", tmp_path / "narrow.report.html")
+    assert "twinpass report: twinpass.toml" in a.read_text(encoding="utf-8")
+    assert "twinpass report: narrow.toml" in b.read_text(encoding="utf-8")
+    assert default_report_path(first) == a and default_report_path(second) == b

@@ -535,7 +535,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("report", help="write the self-contained HTML report")
     s.add_argument("config")
-    s.add_argument("--output", help="HTML file to write (default: beside the store)")
+    s.add_argument("--output", help="HTML file to write (default: beside the store, named after it: "
+                   "STORE.zarr -> STORE.report.html)")
     s.set_defaults(func=cmd_report)
 
     s = sub.add_parser("demo", help="write the built-in demo archive and run the full flow on it")

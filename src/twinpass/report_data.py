@@ -26,12 +26,19 @@ OVERLAY_SECONDS = 4.0
 """Width of the before/after overlay around the largest transient (s)."""
 
 
+REPORT_SUFFIX = ".report.html"
+"""The default report of a store is named after it: ``filtered.zarr`` -> ``filtered.report.html``."""
+
+
 def default_report_path(cfg: JobConfig) -> Path:
-    """``twinpass-report.html`` beside a local store; in the working folder otherwise."""
+    """The store's name with :data:`REPORT_SUFFIX` for its suffix (``demo-out/filtered.zarr``
+    -> ``demo-out/filtered.report.html``): beside a local store, in the working folder for a
+    store at a URL. Stores side by side thus keep reports of their own."""
     loc = cfg.store_location
-    if "://" in loc:
-        return Path.cwd() / "twinpass-report.html"
-    return Path(loc).parent / "twinpass-report.html"
+    name = loc.rstrip("/").rsplit("/", 1)[-1] if "://" in loc else Path(loc).name
+    stem = (Path(name).stem if Path(name).suffix.lower() == ".zarr" else name) or "twinpass"
+    folder = Path.cwd() if "://" in loc else Path(loc).parent
+    return folder / f"{stem}{REPORT_SUFFIX}"
 
 
 def _epoch(iso: str | None) -> float | None:
