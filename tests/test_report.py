@@ -495,3 +495,14 @@ def test_two_stores_in_one_folder_keep_reports_of_their_own(tmp_path: Path) -> N
     assert "twinpass report: twinpass.toml" in a.read_text(encoding="utf-8")
     assert "twinpass report: narrow.toml" in b.read_text(encoding="utf-8")
     assert default_report_path(first) == a and default_report_path(second) == b
+
+
+def test_report_cautions_carry_each_caution_of_the_readme(rendered: tuple[Path, str]) -> None:
+    # Reference: the README's "Cautions" section; each of its cautions appears in the
+    # report's own Cautions section (edge zones and keeping the raw archive included).
+    _, text = rendered
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    theirs = readme.split("## Cautions", 1)[1].split("\n## ", 1)[0].lower()
+    ours = html.unescape(text.split("<h2>Cautions</h2>", 1)[1].split("<h2>", 1)[0]).lower()
+    for phrase in ("non-causal", "real-time alarms", "edge zone", "keep the raw archive", "local codes"):
+        assert phrase in theirs and phrase in ours, phrase

@@ -51,6 +51,11 @@ DEFAULT_CAUTIONS: tuple[str, ...] = (
     "Do not use the filtered output for onset or arrival-time picking, nor for real-time "
     "alarms or triggering: the pre-response moves apparent onsets earlier, and each output "
     "sample depends on input that comes after it.",
+    "Edge zones: near the ends of a segment (the start and end of a stream, both sides of a gap) "
+    "the output depends on how the signal was extended beyond them ([processing] edge); the "
+    "files table gives, per output, how many samples at each end that affects (edge zones).",
+    "Keep the raw archive: the filtered output is derived data, not a replacement for the "
+    "recordings; another response, a recheck or a later review needs the originals.",
     "For structural or medical safety decisions, defer to local codes and licensed practice: "
     "these checks show that the processing did what was asked, not that the data or the "
     "chosen response are fit for such a decision.",
