@@ -506,3 +506,30 @@ def test_report_cautions_carry_each_caution_of_the_readme(rendered: tuple[Path, 
     ours = html.unescape(text.split("<h2>Cautions</h2>", 1)[1].split("<h2>", 1)[0]).lower()
     for phrase in ("non-causal", "real-time alarms", "edge zone", "keep the raw archive", "local codes"):
         assert phrase in theirs and phrase in ours, phrase
+
+
+def test_the_overlay_draws_the_input_as_recorded_and_says_what_it_removes(tmp_path: Path) -> None:
+    # The input of the overlay is the file's own samples (reference: numpy.load of the NPY
+    # input); the figure draws input and output each less its window mean and the caption
+    # says so, with the means. Channels are counted from 0, as in twinpass's other messages.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import _largest_transient, write_report
+
+    x = make_signal(6000, 2, 200.0, seed=3) + 3.0  # an offset the band-pass removes
+    x[3500, 1] += 50.0  # the largest peak: channel 1 (the second column), frame 1500 of the second file
+    files = write_stream(tmp_path / "archive", "deck", x, 200.0, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    store = OutputStore.open(cfg.store_location, mode="r")
+    shown = _largest_transient(cfg, store, store.list_arrays())
+    assert shown is not None
+    a, z = 1500 - 400, 1500 + 400  # OVERLAY_SECONDS = 4 s at 200 Hz around the peak
+    assert shown["file"] == (f"{files.relpaths[1]} (channel 1, counted from 0; samples {a}-{z - 1}; t = 0 at the "
+                             "input's largest excursion)")
+    np.testing.assert_array_equal(shown["before"], np.load(files.paths[1])[a:z, 1])
+    text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
+    assert (f"Both traces are drawn less their mean over the window shown (input {np.mean(shown['before']):.4g}, "
+            f"output {np.mean(shown['after']):.4g}, in input units)") in text

@@ -51,7 +51,9 @@ def _epoch(iso: str | None) -> float | None:
 
 
 def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> dict[str, Any] | None:
-    """Input and output around the block input peak of the whole store (first channel peaking).
+    """Input and output around the block input peak of the whole store (first channel peaking),
+    as recorded (the report draws both less their mean over the window, and says so).
+    Channels are counted from 0, as in twinpass's messages; samples are the file's, inclusive.
 
     Files whose input can no longer be read (removed from the archive since, or unreadable
     now) are passed over for the next largest peak; None when no file has one.
@@ -84,8 +86,9 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
             continue
         after = store.read(name, a, z)[:, ch].astype(np.float64)
         t = (np.arange(a, z) - i) / fs
-        return {"file": f"{attrs['source']} (channel {ch}, samples {a}-{z}; t = 0 at the input's largest excursion)",
-                "t": t, "before": before - np.mean(before), "after": after}
+        return {"file": f"{attrs['source']} (channel {ch}, counted from 0; samples {a}-{z - 1}; t = 0 at the "
+                        "input's largest excursion)",
+                "t": t, "before": np.asarray(before, dtype=np.float64), "after": after}
     return None
 
 
