@@ -807,6 +807,22 @@ def test_a_zarr_input_rewritten_in_one_chunk_changes_in_those_samples_only(tmp_p
     assert changed_spans(before, fingerprint_file(path, mode), 450) is None
 
 
+def test_the_letter_case_note_suggests_globs_for_the_suffixes_found(tmp_path):
+    # Globs match case exactly (as POSIX fnmatch(3) without FNM_CASEFOLD, from memory): NPY
+    # files named *.NPY need a "**/*.NPY" pattern, not the WAV example of a field recorder.
+    root = tmp_path / "archive"
+    npy(root, "s1/s1_20240501T000000.npy", 800)
+    for rel in ("s1/s1_20240501T000010.NPY", "s2/s2_20240501T000000.Npy"):
+        (root / rel).parent.mkdir(parents=True, exist_ok=True)
+        with open(root / rel, "wb") as fh:  # numpy.save adds ".npy" to a name ending otherwise
+            np.save(fh, np.zeros((800, 1), dtype=np.float32))
+    disc = discover(job(tmp_path, include=("**/*.npy",), sample_rate_hz=8000.0))
+    (note,) = [w for w in disc.warnings if "letter case" in w]
+    assert '(e.g. "**/*.NPY", "**/*.Npy")' in note and "WAV" not in note
+    disc = discover(job(tmp_path, include=("**/*.npy", "**/*.NPY", "**/*.Npy"), sample_rate_hz=8000.0))
+    assert len(disc.files) == 3 and not [w for w in disc.warnings if "letter case" in w]
+
+
 def test_absent_chunks_of_a_zarr_input_are_noted(tmp_path):
     # Zarr reads an absent chunk as the fill value (what zarr-python itself returns below);
     # that is how Zarr stores chunks equal to it, but also what a chunk lost in a copy gives,

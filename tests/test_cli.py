@@ -202,7 +202,7 @@ def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     assert "stream alpha" in r.stdout and r.returncode == 0
     r = _twinpass("status", str(tmp_path / "out.zarr" / "alpha"))  # a group inside the store
     assert r.returncode == 2 and f"give the store itself: twinpass status {tmp_path / 'out.zarr'}" in r.stderr, r.stderr
-    report = tmp_path / "twinpass-report.html"
+    report = tmp_path / "out.report.html"  # named after the store, out.zarr
     assert report.is_file()
     html = report.read_text()
     assert html.count("data:image/png;base64,") >= 5

@@ -6,6 +6,7 @@ as the reference library; textbook order formulas; published Butterworth correct
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -554,3 +555,26 @@ def test_report_is_plain_json_and_formats(spec: ResponseSpec) -> None:
     text = format_report(report)
     assert report["kind"] in text and report["family"] in text
     assert "non-causal" in text
+
+
+def test_report_margins_show_rounding_as_zero_and_a_true_miss_as_negative() -> None:
+    # The demo's band-pass (elliptic, 1 dB / 60 dB overall at 200 Hz) meets its ripple exactly:
+    # the overall ripple measured independently (scipy.signal.sosfreqz on 2**18 points across
+    # the passband, squared: two passes) is 1 dB to within rounding, so its margin is shown as 0,
+    # never as a negative number for a spec the design meets.
+    spec = ResponseSpec(kind="bandpass", family="elliptic", passband_hz=(0.5, 30.0), stopband_hz=(0.1, 45.0),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    design = design_filter(spec, 200.0, tolerance=1e-9)
+    f = np.linspace(0.5, 30.0, 2**18)
+    _, h = signal.sosfreqz(design.sos, worN=f, fs=200.0)
+    overall_db = 2.0 * 20.0 * np.log10(np.abs(h))
+    assert overall_db.max() - overall_db.min() == pytest.approx(1.0, abs=1e-4)
+    report = design.report
+    assert report["passband_ripple_margin_db"] == 0.0 and report["stopband_attenuation_margin_db"] >= 0.0
+    ripple_line = next(line for line in format_report(report).splitlines() if "required / margin" in line)
+    assert ripple_line.split()[-4:] == ["1", "/", "0", "dB"], ripple_line
+    # The same filter against a spec asking for half that ripple misses it by about 0.5 dB:
+    # the margin stays negative.
+    tighter = dataclasses.replace(design, spec=dataclasses.replace(spec, passband_ripple_db=0.5))
+    missed = response_report(tighter)["passband_ripple_margin_db"]
+    assert missed == pytest.approx(0.5 - (overall_db.max() - overall_db.min()), abs=1e-3) and missed < -0.4

@@ -14,10 +14,14 @@ import conftest
 from conftest import block_status, make_signal, open_store, read_output, write_config, write_stream
 from twinpass import faults
 from twinpass.config import load_config
-from twinpass.core.checks import SEAM_FACTOR
+from twinpass.core.checks import ESTIMATOR_ERROR_DB, SEAM_FACTOR
+from twinpass.core.failures import SHOWN
 from twinpass.engine import ERROR, FAIL, PASS, WARN, retry_delays
 from twinpass.errors import ConfigError
+from twinpass.io.store import OutputStore
 from twinpass.job import run_job
+from twinpass.report_data import attention_lists
+from twinpass.status import collect_status, format_status
 
 FS = 200.0
 FRAMES = [8000, 6000, 8000]  # blocks of 1000 samples: 8 + 6 + 8
@@ -195,7 +199,6 @@ def test_with_local_workers_the_driver_syncs_each_block_before_recording_it(tmp_
     import os
     import threading
 
-    from twinpass.io.store import OutputStore
 
     if not hasattr(os, "fdatasync") or not os.path.isdir("/proc/self/fd"):
         pytest.skip("needs fdatasync and /proc/self/fd (Linux)")
@@ -228,7 +231,6 @@ def test_block_records_are_synced_before_any_file_is_marked_complete(tmp_path, m
     # Tables and attributes are replaced by rename, durable only once synced: every
     # completion flag must follow a sync of the file system that came after the file's
     # last block record, so that a power cut cannot keep the flag and lose the records.
-    from twinpass.io.store import OutputStore
 
     events: list[tuple[str, str]] = []
     real_sync, real_record, real_complete = OutputStore.sync_records, OutputStore.record_blocks, OutputStore.set_complete
@@ -400,7 +402,6 @@ def _deck_and_pier_with_full_disk(tmp_path, monkeypatch, refused):
     """Two streams of two files each; the store refuses to prepare the arrays ``refused``
     accepts (injected fault: no space left on device). Returns the job configuration."""
     from twinpass.errors import StoreError
-    from twinpass.io.store import OutputStore
 
     archive = tmp_path / "archive"
     write_stream(archive, "deck", make_signal(8000, 1, FS, seed=1), FS, 2)
@@ -441,3 +442,53 @@ def test_a_later_file_that_cannot_be_prepared_leaves_the_earlier_ones_unrecorded
     first_pier = "pier/pier_20260301T000000"
     assert open_store(cfg.store_location)[first_pier].attrs["complete"] is False
     assert not np.isin(block_status(cfg.store_location, first_pier), [PASS, WARN]).any()
+
+
+def test_a_file_failing_its_checks_is_reported_with_blocks_figures_limits_and_remedy(tmp_path, inject):
+    inject([{"action": "perturb", "file": ARRAYS[2], "block": 0}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 10.0, "mode": "halo"})
+    res = run_job(cfg)
+    reasons = res.failure_reasons()
+    bad = "deck/deck_20260301T000110.npy"
+    reason = reasons[bad]
+    assert "\n" not in reason  # one line per file in the command's output
+    # Blocks of 2000 frames (10 s at 200 Hz): block 0 is frames 0-1999, 0-10 s into the file.
+    assert "block 0 (frames 0-1,999, 0:00:00-0:00:10 into the file): passband deviation +6.0" in reason
+    # Each pass gains sqrt(2) in amplitude: 2x overall, 20*log10(2) = 6.02 dB (definition of the dB);
+    # the limit is [checks] passband_fail_db plus the estimator allowance (a Butterworth has no ripple).
+    assert f"limit {cfg.checks.passband_fail_db + ESTIMATOR_ERROR_DB:.3g} dB either way" in reason
+    # Its neighbour shares a seam with it: its failure is said to follow from block 0's.
+    assert "block 1 (frames 2,000-3,999" in reason and "seam mismatch" in reason
+    assert "following from the failed response check of block 0" in reason
+    assert "compare input and output at those frames and rerun" in reason
+    assert "checks failed (see its block table)" not in reason
+    # The previous file's last block shares a seam with it too, across the join.
+    assert "block 2 (frames 4,000-5,999, 0:00:20-0:00:30 into the file): seam mismatch" in (
+        reasons["deck/deck_20260301T000040.npy"])
+    assert "following from the failed response check of block 0 of deck/deck_20260301T000110.npy" in (
+        reasons["deck/deck_20260301T000040.npy"])
+    # `twinpass status` shows the reason recorded with the run.
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    assert status["failed_inputs"][bad] == reason
+    assert [line.split(":")[0] for line in status["failed_blocks"][bad]["blocks"]] == [
+        "block 0 (frames 0-1,999, 0", "block 1 (frames 2,000-3,999, 0"]
+    assert f"  {bad}: {reason}" in format_status(status)
+    # The HTML report's list of failed blocks names them with their figures too.
+    failed_blocks = dict(attention_lists(status))["Blocks that failed (the next run tries them again)"]
+    assert any(line.startswith(f"{bad} block 0 (frames 0-1,999") and "passband deviation +6.0" in line
+               for line in failed_blocks)
+
+
+def test_the_one_line_reason_names_a_few_blocks_and_status_lists_them_all(tmp_path, inject):
+    inject([{"action": "halo0", "file": ARRAYS[1], "block": "*"}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 5.0, "mode": "halo"})
+    res = run_job(cfg)
+    middle = "deck/deck_20260301T000040.npy"
+    reason = res.failure_reasons()[middle]
+    # Six blocks of 1000 frames, each filtered without its halo: every seam of the file fails.
+    assert reason.startswith("6 of 6 block(s) failed their checks: block 0 (frames 0-999, 0:00:00-0:00:05 ")
+    assert reason.count(": seam mismatch") == SHOWN and f"and {6 - SHOWN} more" in reason
+    assert "a seam mismatch that stays means the halo is too short" in reason
+    text = format_status(collect_status(OutputStore.open(cfg.store_location, mode="r")))
+    for i in range(6):
+        assert f"\n    block {i} (frames {1000 * i:,}-{1000 * i + 999:,}" in text

@@ -280,7 +280,9 @@ def test_a_segment_whose_checks_fail_is_not_retried(prefect_client, npy_archive,
     segs = runs_of(runs, flows.filter_segment)
     failed = next(t for t in segs if t.state.is_failed())
     assert "south" in failed.name and failed.run_count == 1, (failed.name, failed.run_count)
-    assert "checks failed" in failed.state.message and "not retried" in failed.state.message
+    assert "failed their checks" in failed.state.message and "not retried" in failed.state.message
+    # The message says which block failed and on what figure (+6.02 dB = 20 log10 2, the injected gain).
+    assert "block 2 (frames" in failed.state.message and "passband deviation +6" in failed.state.message
     assert [s.name for s in prefect_client.read_task_run_states(failed.id)].count("Retrying") == 0
     north = next(t for t in segs if "north" in t.name)
     assert north.state.is_completed()
@@ -519,7 +521,7 @@ def test_output_to_an_fsspec_url(prefect_client, npy_archive, tmp_path, monkeypa
     summary = state.result()
     assert summary["store"] == url
     if scheme == "memory":
-        assert Path(summary["report"]) == tmp_path / "twinpass-report.html" and Path(summary["report"]).is_file()
+        assert Path(summary["report"]) == tmp_path / "out.report.html" and Path(summary["report"]).is_file()
     if scheme == "file":
         assert (tmp_path / "out.zarr" / "zarr.json").is_file()
     for stream in STREAMS:

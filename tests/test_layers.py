@@ -8,7 +8,7 @@ import sys
 
 CORE = ["twinpass.core.design", "twinpass.core.kernel", "twinpass.core.effective", "twinpass.core.carry",
         "twinpass.core.blocks", "twinpass.core.segments", "twinpass.core.plan", "twinpass.core.checks",
-        "twinpass.core.types"]
+        "twinpass.core.types", "twinpass.core.failures"]
 
 
 def _loaded_after_import(modules: list[str]) -> set[str]:

@@ -451,3 +451,85 @@ def test_report_lists_are_capped_and_escaped(tmp_path: Path) -> None:
     empty = report.render_report(tmp_path / "e.html", design_reports=[], designs=[], files=[], blocks=[], overlays=[],
                                  title="none", cautions=[], listed=[("Notes of the last run", [])])
     assert "Nothing left out, failed, gone or missing" in empty.read_text(encoding="utf-8")
+
+
+def test_the_design_note_counts_complete_and_incomplete_outputs_apart(tmp_path: Path, inject) -> None:
+    # One of three files keeps failing a block (injected fault): its output is recorded with
+    # the design but not complete. Reference: twinpass.status.collect_status, which
+    # `twinpass status` prints, counts it as incomplete.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import output_designs, write_report
+    from twinpass.status import collect_status
+
+    files = write_stream(tmp_path / "archive", "deck", make_signal(6000, 2, 200.0, seed=3), 200.0, [2000] * 3)
+    inject([{"action": "raise", "file": files.arrays[1], "block": "*"}])
+    cfg = load_config(write_config(tmp_path, engine={"retries": 0}))
+    assert run_job(cfg).failed == [files.relpaths[1]]
+    store = OutputStore.open(cfg.store_location, mode="r")
+    status = collect_status(store)
+    assert status["totals"]["files"] == 3 and status["totals"]["complete"] == 2
+    text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
+    assert "Filtered 3 outputs at 200 Hz, 2 complete (e.g. " in text
+    designs, _ = output_designs(cfg, store, status["files"])
+    assert [(len(d.sources), d.complete) for d in designs] == [(3, 2)]
+
+
+def test_two_stores_in_one_folder_keep_reports_of_their_own(tmp_path: Path) -> None:
+    # Two configurations whose stores sit side by side: each default report is named after
+    # its store, so the second does not overwrite the first (common practice: one output,
+    # one name).
+    from conftest import BANDPASS, write_config
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+    from twinpass.report_data import default_report_path, write_report
+
+    first = load_config(_run_small_job(tmp_path))
+    path = write_config(tmp_path, response=dict(BANDPASS, cutoff_hz=[5.0, 30.0]), output={"store": "narrow.zarr"})
+    second = load_config(path.rename(tmp_path / "narrow.toml"))
+    assert run_job(second).ok
+    a, b = write_report(first), write_report(second)
+    assert (a, b) == (tmp_path / "out.report.html", tmp_path / "narrow.report.html")
+    assert "twinpass report: twinpass.toml" in a.read_text(encoding="utf-8")
+    assert "twinpass report: narrow.toml" in b.read_text(encoding="utf-8")
+    assert default_report_path(first) == a and default_report_path(second) == b
+
+
+def test_report_cautions_carry_each_caution_of_the_readme(rendered: tuple[Path, str]) -> None:
+    # Reference: the README's "Cautions" section; each of its cautions appears in the
+    # report's own Cautions section (edge zones and keeping the raw archive included).
+    _, text = rendered
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    theirs = readme.split("## Cautions", 1)[1].split("\n## ", 1)[0].lower()
+    ours = html.unescape(text.split("<h2>Cautions</h2>", 1)[1].split("<h2>", 1)[0]).lower()
+    for phrase in ("non-causal", "real-time alarms", "edge zone", "keep the raw archive", "local codes"):
+        assert phrase in theirs and phrase in ours, phrase
+
+
+def test_the_overlay_draws_the_input_as_recorded_and_says_what_it_removes(tmp_path: Path) -> None:
+    # The input of the overlay is the file's own samples (reference: numpy.load of the NPY
+    # input); the figure draws input and output each less its window mean and the caption
+    # says so, with the means. Channels are counted from 0, as in twinpass's other messages.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import _largest_transient, write_report
+
+    x = make_signal(6000, 2, 200.0, seed=3) + 3.0  # an offset the band-pass removes
+    x[3500, 1] += 50.0  # the largest peak: channel 1 (the second column), frame 1500 of the second file
+    files = write_stream(tmp_path / "archive", "deck", x, 200.0, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    store = OutputStore.open(cfg.store_location, mode="r")
+    shown = _largest_transient(cfg, store, store.list_arrays())
+    assert shown is not None
+    a, z = 1500 - 400, 1500 + 400  # OVERLAY_SECONDS = 4 s at 200 Hz around the peak
+    assert shown["file"] == (f"{files.relpaths[1]} (channel 1, counted from 0; samples {a}-{z - 1}; t = 0 at the "
+                             "input's largest excursion)")
+    np.testing.assert_array_equal(shown["before"], np.load(files.paths[1])[a:z, 1])
+    text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
+    assert (f"Both traces are drawn less their mean over the window shown (input {np.mean(shown['before']):.4g}, "
+            f"output {np.mean(shown['after']):.4g}, in input units)") in text

@@ -239,8 +239,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     c = res.counts()
     print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
           f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+    reasons = res.failure_reasons()
     for f in res.failed:
-        print(f"failed: {f}")
+        print(f"failed: {f}: {reasons[f]}")
     if not args.no_report:
         from .report_data import write_report
 
@@ -357,8 +358,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
         c = summary["counts"]
         print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
               f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+        reasons = summary.get("failed_reasons") or {}
         for f in summary.get("failed", []):
-            print(f"failed: {f}")
+            print(f"failed: {f}" + (f": {reasons[f]}" if reasons.get(f) else ""))
         for f in summary.get("invalid", []):
             print(f"left out (invalid input): {f}")
         if summary.get("report"):
@@ -533,7 +535,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("report", help="write the self-contained HTML report")
     s.add_argument("config")
-    s.add_argument("--output", help="HTML file to write (default: beside the store)")
+    s.add_argument("--output", help="HTML file to write (default: beside the store, named after it: "
+                   "STORE.zarr -> STORE.report.html)")
     s.set_defaults(func=cmd_report)
 
     s = sub.add_parser("demo", help="write the built-in demo archive and run the full flow on it")

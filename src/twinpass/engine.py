@@ -32,6 +32,7 @@ from __future__ import annotations
 import asyncio
 import concurrent.futures
 import contextlib
+import dataclasses
 import functools
 import logging
 import threading
@@ -48,6 +49,7 @@ from . import allocator, faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.checks import CANCELLED, was_cancelled
+from .core.failures import CheckFailures, FileBlocks, explain
 from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, block_list, blocks_touching, choose_layout
 from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
@@ -600,6 +602,8 @@ class FileOutcome:
     seconds: float = 0.0
     errors: dict[int, str] = field(default_factory=dict)
     summary: dict[str, Any] = field(default_factory=dict)
+    check_failures: CheckFailures | None = None
+    """Its blocks that failed their checks, in words (:func:`explain_check_failures`)."""
 
 
 def segment_layout(seg: SegmentWork, cfg: JobConfig, halo: int, carry: bool = True) -> Layout:
@@ -1202,7 +1206,35 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
             int(np.sum(finished)), int(np.sum(~finished)),
             "complete" if ok else "failed", elapsed, dict(table.errors), summary,
         ))
-    return outcomes
+    return with_check_failures(outcomes, seg, store, design, cfg)
+
+
+def explain_check_failures(seg: SegmentWork, store: Any, design: Design, cfg: JobConfig,
+                           relpaths: set[str]) -> dict[str, CheckFailures]:
+    """Why the blocks of the files ``relpaths`` of ``seg`` that failed their checks failed
+    (:func:`twinpass.core.failures.explain`), by source path; the block tables of those files
+    and of their neighbours in the segment are read (a table that cannot be read is passed over)."""
+    wanted = {k for k, fw in enumerate(seg.files) if fw.relpath in relpaths}
+    views: list[FileBlocks | None] = []
+    for k, fw in enumerate(seg.files):
+        view = None
+        if wanted & {k - 1, k, k + 1}:
+            try:
+                t = store.read_block_table(fw.array_name, seams=False)
+                view = FileBlocks(fw.relpath, np.asarray(t.status), np.asarray(t.span), t.figures)
+            except StoreError:
+                pass
+        views.append(view)
+    found = explain(views, design, cfg.checks, design.tolerance)
+    return {rel: found[rel] for rel in relpaths if rel in found}
+
+
+def with_check_failures(outcomes: list[FileOutcome], seg: SegmentWork, store: Any, design: Design,
+                        cfg: JobConfig) -> list[FileOutcome]:
+    """``outcomes`` of ``seg``, each failed one with its blocks' check failures in words."""
+    failed = {o.relpath for o in outcomes if o.status == "failed"}
+    found = explain_check_failures(seg, store, design, cfg, failed) if failed else {}
+    return [dataclasses.replace(o, check_failures=found[o.relpath]) if o.relpath in found else o for o in outcomes]
 
 
 def run_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, client: Any,

@@ -66,6 +66,7 @@ from .engine import (
     retry_delays,
     run_segment,
     warm_compiled_loops,
+    with_check_failures,
 )
 from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError
 from .headstart import HeadStart, claim
@@ -325,7 +326,9 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
             logger.info("%s complete: %d block(s) run, %d done", o.relpath, o.blocks_run, o.blocks_done)
     if failed:
         names = "; ".join(f"{o.relpath} ({o.blocks_failed} block(s) not done: "
-                          f"{next(iter(o.errors.values()), 'checks failed').splitlines()[0]})" for o in failed)
+                          + (next(iter(o.errors.values())).splitlines()[0] if o.errors
+                             else o.check_failures.summary if o.check_failures is not None else "checks failed")
+                          + ")" for o in failed)
         reasons = [str(e) for o in failed for e in o.errors.values()]
         if run.stopping or (reasons and all(was_cancelled(r) for r in reasons)):
             raise RunStoppedError(f"segment {seg.segment_id}: the run was stopped before "
@@ -564,6 +567,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     if report:
         report_path = report_task(quote(cfg))
     summary = {"run_id": run_id, "counts": result.counts(), "failed": failed_files,
+               "failed_reasons": result.failure_reasons(),
                "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path}
     if failed_files:
         return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}", data=summary)
@@ -603,7 +607,8 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
                 outs = [dataclasses.replace(o, blocks_run=max(o.blocks_run, ran.get(o.array_name, 0)))
                         for o in value]
             else:
-                outs = _outcomes_from_store(store, w, ran)
+                outs = with_check_failures(_outcomes_from_store(store, w, ran), w, store,
+                                           prep.designs[w.sample_rate_hz], cfg)
                 bad = [o.relpath for o in outs if o.status == "failed"]
                 logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
                              state.message or state.name, ", ".join(bad))

@@ -190,13 +190,25 @@ class RunResult:
         return [o.relpath for o in self.outcomes if o.status == "failed"]
 
     def failure_reasons(self) -> dict[str, str]:
-        """Why each failed file failed: the first line of its first recorded error."""
+        """Why each failed file failed, one line each: the first line of its first recorded
+        error, and its blocks that failed their checks (the first few, with figure, limit and
+        remedy; :class:`~twinpass.core.failures.CheckFailures`)."""
         out = {}
         for o in self.outcomes:
             if o.status == "failed":
                 first = next((str(e) for _, e in sorted(o.errors.items()) if e), "")
-                out[o.relpath] = first.splitlines()[0] if first else "checks failed (see its block table)"
+                parts = [first.splitlines()[0]] if first else []
+                if o.check_failures is not None:
+                    parts.append(o.check_failures.summary)
+                out[o.relpath] = "; also ".join(parts) or (f"{o.blocks_failed} block(s) not done; the next run does "
+                                                       "them (`twinpass status` shows the file's blocks)")
         return out
+
+    def failed_blocks(self) -> dict[str, dict[str, Any]]:
+        """Each failed file's blocks that failed their checks: ``{"blocks": [one line per
+        block], "remedy": text}`` by source path (files with such blocks only)."""
+        return {o.relpath: {"blocks": list(o.check_failures.blocks), "remedy": o.check_failures.remedy}
+                for o in self.outcomes if o.status == "failed" and o.check_failures is not None}
 
     def exit_status(self) -> int:
         """The command's exit status: 1 some files failed, 3 none failed but inputs were left
@@ -257,7 +269,8 @@ def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
     store.append_run(entry, details={"left_out": {b.relpath: b.explained for b in result.invalid},
                                      "gone": [r.relpath for r in result.removed],
                                      "notes": list(result.notes),
-                                     "failed": result.failure_reasons()})
+                                     "failed": result.failure_reasons(),
+                                     "failed_blocks": result.failed_blocks()})
 
 
 def finish_interrupted_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:

@@ -51,6 +51,11 @@ DEFAULT_CAUTIONS: tuple[str, ...] = (
     "Do not use the filtered output for onset or arrival-time picking, nor for real-time "
     "alarms or triggering: the pre-response moves apparent onsets earlier, and each output "
     "sample depends on input that comes after it.",
+    "Edge zones: near the ends of a segment (the start and end of a stream, both sides of a gap) "
+    "the output depends on how the signal was extended beyond them ([processing] edge); the "
+    "files table gives, per output, how many samples at each end that affects (edge zones).",
+    "Keep the raw archive: the filtered output is derived data, not a replacement for the "
+    "recordings; another response, a recheck or a later review needs the originals.",
     "For structural or medical safety decisions, defer to local codes and licensed practice: "
     "these checks show that the processing did what was asked, not that the data or the "
     "chosen response are fit for such a decision.",
@@ -412,26 +417,39 @@ def _lag_of_peak(before: np.ndarray, after: np.ndarray) -> int | None:
     return int(lags[int(np.argmax(np.abs(xc)))])
 
 
+def _window_mean(x: np.ndarray) -> float:
+    """Mean of the finite samples (0 when there is none)."""
+    finite = x[np.isfinite(x)]
+    return float(np.mean(finite)) if finite.size else 0.0
+
+
 def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
+    """The overlay of input and output, each less its mean over the window, and its caption.
+
+    The overlay compares the shape and timing of an event before and after filtering; an
+    offset the filter removes (a high-pass or band-pass) would otherwise part the traces, so
+    both are drawn less their window means, which the legend and caption state.
+    """
     t = np.asarray(entry["t"], dtype=np.float64)
-    before = np.asarray(entry["before"], dtype=np.float64)
-    after = np.asarray(entry["after"], dtype=np.float64)
+    raw_before = np.asarray(entry["before"], dtype=np.float64)
+    raw_after = np.asarray(entry["after"], dtype=np.float64)
+    mean_before, mean_after = _window_mean(raw_before), _window_mean(raw_after)
+    before, after = raw_before - mean_before, raw_after - mean_after
     fig = Figure(figsize=(12, 3.8))
     ax = fig.subplots()
-    ax.plot(t, before, color="#9e9e9e", lw=1.0, label="before (input)")
-    ax.plot(t, after, color="#0d47a1", lw=1.0, label="after (zero-phase filtered)")
-    caption = ""
+    ax.plot(t, before, color="#9e9e9e", lw=1.0, label="before (input, less its window mean)")
+    ax.plot(t, after, color="#0d47a1", lw=1.0, label="after (zero-phase filtered, less its window mean)")
+    caption = (f"Both traces are drawn less their mean over the window shown (input {mean_before:.4g}, output "
+               f"{mean_after:.4g}, in input units), so that an offset the filter removes does not part them. ")
     if before.size and np.any(np.isfinite(before)):
         i = int(np.nanargmax(np.abs(before)))
         ax.axvline(t[i], color="#c62828", ls="--", lw=0.8, label=f"largest |input| at {t[i]:.6g} s")
     lag = _lag_of_peak(before, after)
     if lag is not None and t.size > 1:
         dt = float(np.median(np.diff(t)))
-        caption = (f"Cross-correlation of output against input peaks at a lag of {lag} samples "
-                   f"({lag * dt:.3g} s): no time shift." if lag == 0 else
-                   f"Cross-correlation of output against input peaks at a lag of {lag} samples "
-                   f"({lag * dt:.3g} s).")
-    ax.set_title(f"Before and after around the largest transient: {entry.get('file', '')}")
+        caption += (f"Cross-correlation of output against input peaks at a lag of {lag} samples "
+                    f"({lag * dt:.3g} s)" + (": no time shift." if lag == 0 else "."))
+    ax.set_title(f"Before and after around the largest transient\n{entry.get('file', '')}", fontsize=10)
     ax.set_xlabel("Time (s)")
     ax.set_ylabel("Amplitude (input units)")
     ax.grid(True, alpha=0.3)
@@ -645,7 +663,8 @@ def render_report(
         start, or absolute epoch seconds), ``duration_s`` (s), ``status`` (a status code
         or pass/warn/fail/pending/error/cancelled).
     overlays : list of dict
-        ``file``, ``t`` (s), ``before`` and ``after`` (1-D, same length as ``t``).
+        ``file``, ``t`` (s), ``before`` and ``after`` (1-D, same length as ``t``; drawn each
+        less its mean over the window, as the caption says).
     title : str
         Page title.
     cautions : list of str

@@ -26,12 +26,19 @@ OVERLAY_SECONDS = 4.0
 """Width of the before/after overlay around the largest transient (s)."""
 
 
+REPORT_SUFFIX = ".report.html"
+"""The default report of a store is named after it: ``filtered.zarr`` -> ``filtered.report.html``."""
+
+
 def default_report_path(cfg: JobConfig) -> Path:
-    """``twinpass-report.html`` beside a local store; in the working folder otherwise."""
+    """The store's name with :data:`REPORT_SUFFIX` for its suffix (``demo-out/filtered.zarr``
+    -> ``demo-out/filtered.report.html``): beside a local store, in the working folder for a
+    store at a URL. Stores side by side thus keep reports of their own."""
     loc = cfg.store_location
-    if "://" in loc:
-        return Path.cwd() / "twinpass-report.html"
-    return Path(loc).parent / "twinpass-report.html"
+    name = loc.rstrip("/").rsplit("/", 1)[-1] if "://" in loc else Path(loc).name
+    stem = (Path(name).stem if Path(name).suffix.lower() == ".zarr" else name) or "twinpass"
+    folder = Path.cwd() if "://" in loc else Path(loc).parent
+    return folder / f"{stem}{REPORT_SUFFIX}"
 
 
 def _epoch(iso: str | None) -> float | None:
@@ -44,7 +51,9 @@ def _epoch(iso: str | None) -> float | None:
 
 
 def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> dict[str, Any] | None:
-    """Input and output around the block input peak of the whole store (first channel peaking).
+    """Input and output around the block input peak of the whole store (first channel peaking),
+    as recorded (the report draws both less their mean over the window, and says so).
+    Channels are counted from 0, as in twinpass's messages; samples are the file's, inclusive.
 
     Files whose input can no longer be read (removed from the archive since, or unreadable
     now) are passed over for the next largest peak; None when no file has one.
@@ -77,8 +86,9 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
             continue
         after = store.read(name, a, z)[:, ch].astype(np.float64)
         t = (np.arange(a, z) - i) / fs
-        return {"file": f"{attrs['source']} (channel {ch}, samples {a}-{z}; t = 0 at the input's largest excursion)",
-                "t": t, "before": before - np.mean(before), "after": after}
+        return {"file": f"{attrs['source']} (channel {ch}, counted from 0; samples {a}-{z - 1}; t = 0 at the "
+                        "input's largest excursion)",
+                "t": t, "before": np.asarray(before, dtype=np.float64), "after": after}
     return None
 
 
@@ -122,6 +132,14 @@ def _same_filter(design: Design, recorded: Design) -> bool:
             and bool(np.array_equal(mine, theirs)) and float(design.tolerance) == float(recorded.tolerance))
 
 
+def outputs_counted(n: int, complete: int, sample_rate_hz: float) -> str:
+    """``"10 outputs at 200 Hz, 7 complete"``: outputs counted with how many of them are complete."""
+    if n == 1:
+        return f"1 output at {sample_rate_hz:g} Hz, " + ("complete" if complete else "not complete")
+    state = "all complete" if complete == n else "none complete" if complete == 0 else f"{complete} complete"
+    return f"{n} outputs at {sample_rate_hz:g} Hz, {state}"
+
+
 @dataclass
 class OutputDesign:
     """A design the store's outputs were filtered with, and the outputs it served."""
@@ -133,11 +151,13 @@ class OutputDesign:
     """The response spec it was designed from, where known (``ResponseSpec.to_dict()``)."""
     recorded: bool = True
     """False: the store recorded no design for these outputs (drawn from the configuration)."""
+    complete: int = 0
+    """How many of those outputs are complete (every block done, see ``twinpass status``)."""
 
     def note(self) -> str:
         """What the design was used for and where the report's figures of it come from."""
-        n = len(self.sources)
-        used = f"Filtered {n} output(s) at {self.design.sample_rate_hz:g} Hz (e.g. {self.sources[0]})."
+        used = (f"Filtered {outputs_counted(len(self.sources), self.complete, self.design.sample_rate_hz)} "
+                f"(e.g. {self.sources[0]}).")
         if not self.recorded:
             return (f"{used} The store recorded no design for these outputs (written by an older twinpass): "
                     "drawn from the configuration as it is now, which may not be what they were filtered with.")
@@ -211,6 +231,7 @@ def output_designs(cfg: JobConfig, store: Any,
     spec = _recorded_spec(store.read_root_info())
     by_digest: dict[tuple[float, str | None], list[str]] = {}
     filters: dict[tuple[float, str | None], Mapping[str, Any]] = {}
+    complete = {str(f["source"]) for f in files if f.get("complete")}
     for f in files:
         attrs = store.array_attrs(f["name"])
         fs = float(attrs["sample_rate_hz"])
@@ -235,16 +256,19 @@ def output_designs(cfg: JobConfig, store: Any,
             notices.append(f"{len(sources)} output(s) at {fs:g} Hz (e.g. {sources[0]}) have no design recorded in "
                            "the store (written by an older twinpass): their design is drawn from the configuration "
                            "as it is now, which may not be what they were filtered with.")
-            out[(fs, "configuration")] = OutputDesign(design, sources, cfg.response.to_dict(), recorded=False)
+            out[(fs, "configuration")] = OutputDesign(design, sources, cfg.response.to_dict(), recorded=False,
+                                                      complete=len(complete.intersection(sources)))
             continue
         filt = filters[(fs, digest)]
         same = json.dumps([filt.get("sos"), filt.get("taps"), filt.get("tolerance")])
         if (fs, same) in out:
             out[(fs, same)].sources += sources
+            out[(fs, same)].complete += len(complete.intersection(sources))
             continue
         own = _parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
         design, known = _recorded_design(fs, filt, own)
-        out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None)
+        out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None,
+                                       complete=len(complete.intersection(sources)))
     return list(out.values()), notices
 
 
@@ -275,8 +299,8 @@ def design_notices(cfg: JobConfig, designs: Sequence[OutputDesign]) -> list[str]
                      "not recorded)")
         wants = (f"{asks} ({_describe_filter(current)})" if isinstance(current, Design)
                  else f"{asks}, which cannot be designed at {fs:g} Hz ({current})")
-        notices.append(f"The configuration now asks for {wants}; {len(d.sources)} output(s) at {fs:g} Hz were "
-                       f"filtered with {made}. The figures below show the design the outputs were filtered "
+        notices.append(f"The configuration now asks for {wants}; {outputs_counted(len(d.sources), d.complete, fs)}, "
+                       f"were filtered with {made}. The figures below show the design the outputs were filtered "
                        "with; rerun to refilter them (twinpass run CONFIG).")
     return notices
 
@@ -288,8 +312,9 @@ def _frames(spans: Sequence[Sequence[int]]) -> str:
 def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
     """The report's "Left out, failed or missing" lists from :func:`collect_status`'s result:
     inputs the last run left out (reason; remedy), inputs that failed (reason) and blocks that
-    failed (first line of the error), outputs whose input is gone, outputs with chunk files
-    missing (frame spans [start, stop)), and the last run's notes."""
+    failed (first line of the error, or the figures that failed their checks), outputs whose
+    input is gone, outputs with chunk files missing (frame spans [start, stop)), and the last
+    run's notes."""
     files = status.get("files") or []
     failed = status.get("failed_inputs") or {}
     return [
@@ -297,7 +322,8 @@ def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
          [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
         ("Inputs that failed in the last run", [f"{k}: {v}" for k, v in sorted(failed.items())]),
         ("Blocks that failed (the next run tries them again)",
-         [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]),
+         [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]
+         + [f"{k} {line}" for k, v in sorted((status.get("failed_blocks") or {}).items()) for line in v["blocks"]]),
         ("Outputs whose input is no longer in the archive (kept as they were)", list(status.get("gone") or [])),
         ("Outputs with chunk files missing (deleted or lost since written; they would read as zeros; the next "
          "run reruns their blocks)",

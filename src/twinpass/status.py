@@ -13,6 +13,7 @@ from typing import Any
 from .config import load_config
 from .core import checks as _checks
 from .core.blocks import block_list
+from .core.failures import SHOWN
 from .errors import StoreError
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
@@ -94,6 +95,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     gone = {str(r) for r in details.get("gone") or []}
     notes = [str(n) for n in details.get("notes") or []]
     failed_inputs = {str(k): str(v) for k, v in (details.get("failed") or {}).items()}
+    failed_blocks = {str(k): {"blocks": [str(b) for b in v.get("blocks") or []], "remedy": str(v.get("remedy") or "")}
+                     for k, v in (details.get("failed_blocks") or {}).items() if isinstance(v, Mapping)}
     for f in files:
         src = str(f["source"])
         f["input"] = ("left out at the last run: " + left_out[src] if src in left_out
@@ -110,7 +113,8 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
             "runs_total": int(root.get("runs_total", len(runs))),
-            "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs}
+            "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs,
+            "failed_blocks": failed_blocks}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -119,6 +123,17 @@ def _fmt(v: Any, spec: str = ".3g") -> str:
     if isinstance(v, float):
         return format(v, spec)
     return str(v)
+
+
+def _block_lines(failed: Mapping[str, Any] | None) -> str:
+    """A failed file's blocks that failed their checks, one indented line each (leading
+    newlines), when the file's one-line reason names only some of them; else ""."""
+    blocks = list((failed or {}).get("blocks") or [])
+    if len(blocks) <= SHOWN:
+        return ""
+    more = (f"\n    ... and {len(blocks) - LISTED} more (twinpass status --json lists them all)"
+            if len(blocks) > LISTED else "")
+    return "".join(f"\n    {b}" for b in blocks[:LISTED]) + more
 
 
 def format_status(status: dict[str, Any]) -> str:
@@ -170,8 +185,10 @@ def format_status(status: dict[str, Any]) -> str:
                   for f in lost[:LISTED]]
         if len(lost) > LISTED:
             lines.append(f"  ... and {len(lost) - LISTED} more (twinpass status --json lists them all)")
+    failed_blocks = status.get("failed_blocks") or {}
     for title, entries in (("failed at the last run (the next run tries them again)",
-                            [f"{k}: {v}" for k, v in sorted((status.get("failed_inputs") or {}).items())]),
+                            [f"{k}: {v}" + _block_lines(failed_blocks.get(k))
+                             for k, v in sorted((status.get("failed_inputs") or {}).items())]),
                            ("left out by the last run (invalid input; an output made earlier is kept as it was)",
                             [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
                            ("outputs whose input is no longer in the archive (kept as they were)",

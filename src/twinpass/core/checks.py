@@ -169,6 +169,8 @@ __all__ = [
     "block_figures",
     "grade",
     "grade_file",
+    "Finding",
+    "findings",
     "summarise",
     "seam_mismatch",
     "SEAM_FACTOR",
@@ -886,11 +888,6 @@ def _column(figures: np.ndarray, name: str) -> np.ndarray:
     return np.atleast_2d(np.asarray(figures, dtype=np.float64))[:, FIGURE_INDEX[name]]
 
 
-def _any_above(values: np.ndarray, limit: float) -> bool:
-    v = values[~np.isnan(values)]
-    return bool(np.any(v > limit))
-
-
 def seam_scale(design: Design, tolerance: float) -> float:
     """The relative agreement two filterings of one signal can reach: the larger of the
     tolerance and the design's float64 rounding estimate (from its report when there)."""
@@ -898,6 +895,96 @@ def seam_scale(design: Design, tolerance: float) -> float:
     if rounding is None:
         rounding = rounding_estimate(sos=design.sos, taps=design.taps)
     return max(float(tolerance), float(rounding))
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One rule of :func:`grade` that a block's figures break, on its worst channel."""
+
+    figure: str
+    """The figure the rule judges (a name in :data:`FIGURES`; ``coherent_bins`` for the
+    coherent-fraction rule)."""
+    value: float
+    """The worst channel's figure (its unit: see :data:`FIGURES`)."""
+    limit: float
+    """The rule's limit in the same unit: the largest value allowed (for ``stopband_att_db``
+    and ``coherent_bins``, the smallest)."""
+    channel: int
+    """The worst channel, counted from 0 (the column of the time-major output)."""
+    status: int
+    """:data:`WARN` or :data:`FAIL`."""
+    of: float | None = None
+    """``coherent_bins`` only: the passband bins with input energy on that channel."""
+
+    @property
+    def response(self) -> bool:
+        """Whether the response check (not the integrity or seam check) found it."""
+        return self.figure in _RESPONSE_FIGURES
+
+    def describe(self) -> str:
+        """The finding in words, e.g. ``"passband deviation +6.04 dB on channel 0, limit 3.3 dB
+        either way"`` (channels counted from 0)."""
+        on = f" on channel {self.channel}"
+        if self.figure in ("nonfinite_in", "nonfinite_out", "clipped"):
+            what = {"nonfinite_in": "non-finite input sample(s)", "nonfinite_out": "non-finite output sample(s)",
+                    "clipped": "output sample(s) beyond the output type's range"}[self.figure]
+            return f"{self.value:,.0f} {what}{on}"
+        if self.figure == "passband_dev_db":
+            return f"passband deviation {self.value:+.3g} dB{on}, limit {self.limit:.3g} dB either way"
+        if self.figure == "phase_deg":
+            return f"passband phase {self.value:+.3g} deg{on}, limit {self.limit:.3g} deg either way"
+        if self.figure == "stopband_att_db":
+            return f"stopband attenuation {self.value:.3g} dB{on}, at least {self.limit:.3g} dB needed"
+        if self.figure == "coherent_bins":
+            return (f"output not explained by its input{on} (coherent passband bins {self.value:.0f} of "
+                    f"{self.of:.0f}, at least {self.limit:.3g} needed)")
+        return f"seam mismatch {self.value:.2g} of the segment's input peak{on}, limit {self.limit:.2g}"
+
+
+def _worst(values: np.ndarray, above: float, status: int, figure: str, *, sign: float = 1.0,
+           judged: np.ndarray | None = None) -> list[Finding]:
+    """A :class:`Finding` for the channel whose ``judged`` (default ``values``) exceeds
+    ``above`` the most (NaN: not measured), or none; ``sign`` -1 judges ``-values``."""
+    judged = sign * values if judged is None else judged
+    over = np.where(np.isnan(judged), -np.inf, judged)
+    if not np.any(over > above):
+        return []
+    ch = int(np.argmax(over))
+    return [Finding(figure, float(values[ch]), sign * above, ch, status)]
+
+
+def findings(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: float) -> list[Finding]:
+    """The rules of :func:`grade` that a block's figures break, each on its worst channel.
+
+    Parameters are those of :func:`grade`; a rule with a warn and a fail limit gives one
+    finding, at the fail limit when it is beyond it, else at the warn limit. Empty when the
+    block passes.
+    """
+    found: list[Finding] = []
+    for name in ("nonfinite_in", "nonfinite_out"):
+        found += _worst(_column(figures, name), 0.0, FAIL, name)
+    found += _worst(_column(figures, "clipped"), 0.0, WARN, "clipped")
+    spec = design.spec
+    base = float(spec.passband_ripple_db or 0.0) / 2.0 + ESTIMATOR_ERROR_DB
+    dev = _column(figures, "passband_dev_db")
+    found += (_worst(dev, base + cfg.passband_fail_db, FAIL, "passband_dev_db", judged=np.abs(dev))
+              or _worst(dev, base + cfg.passband_warn_db, WARN, "passband_dev_db", judged=np.abs(dev)))
+    phase = _column(figures, "phase_deg")
+    found += (_worst(phase, cfg.phase_fail_deg, FAIL, "phase_deg", judged=np.abs(phase))
+              or _worst(phase, cfg.phase_warn_deg, WARN, "phase_deg", judged=np.abs(phase)))
+    if spec.stopband_attenuation_db is not None:
+        needed = float(spec.stopband_attenuation_db) - cfg.stopband_margin_db
+        found += _worst(_column(figures, "stopband_att_db"), -needed, FAIL, "stopband_att_db", sign=-1.0)
+    bins, coherent = _column(figures, "passband_bins"), _column(figures, "coherent_bins")
+    lost = _coherence_lost(bins, coherent)
+    if np.any(lost):
+        shortfall = np.where(lost, COHERENT_FRACTION_MIN * bins - coherent, -np.inf)
+        ch = int(np.argmax(shortfall))
+        found.append(Finding("coherent_bins", float(coherent[ch]), COHERENT_FRACTION_MIN * float(bins[ch]), ch, FAIL,
+                             of=float(bins[ch])))
+    found += _worst(_column(figures, "seam_mismatch"), SEAM_FACTOR * seam_scale(design, tolerance), FAIL,
+                    "seam_mismatch")
+    return found
 
 
 def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: float) -> int:
@@ -935,32 +1022,7 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
           design whose rounding exceeds the tolerance cannot agree more closely; its report
           says so).
     """
-    status = PASS
-    if _any_above(_column(figures, "nonfinite_in"), 0) or _any_above(_column(figures, "nonfinite_out"), 0):
-        return FAIL
-    if _any_above(_column(figures, "clipped"), 0):
-        status = WARN
-    spec = design.spec
-    base = float(spec.passband_ripple_db or 0.0) / 2.0 + ESTIMATOR_ERROR_DB
-    dev = np.abs(_column(figures, "passband_dev_db"))
-    if _any_above(dev, base + cfg.passband_fail_db):
-        return FAIL
-    if _any_above(dev, base + cfg.passband_warn_db):
-        status = WARN
-    phase = np.abs(_column(figures, "phase_deg"))
-    if _any_above(phase, cfg.phase_fail_deg):
-        return FAIL
-    if _any_above(phase, cfg.phase_warn_deg):
-        status = WARN
-    if spec.stopband_attenuation_db is not None:
-        short = float(spec.stopband_attenuation_db) - _column(figures, "stopband_att_db")
-        if _any_above(short, cfg.stopband_margin_db):
-            return FAIL
-    if np.any(_coherence_lost(_column(figures, "passband_bins"), _column(figures, "coherent_bins"))):
-        return FAIL
-    if _any_above(_column(figures, "seam_mismatch"), SEAM_FACTOR * seam_scale(design, tolerance)):
-        return FAIL
-    return status
+    return max((f.status for f in findings(figures, design, cfg, tolerance)), default=PASS)
 
 
 _BY_NAME = {name: code for code, name in STATUS_NAMES.items()}

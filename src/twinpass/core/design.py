@@ -1199,6 +1199,14 @@ def _num(x: Any) -> float | None:
     return v if math.isfinite(v) else None
 
 
+def _margin(db: float) -> float | None:
+    """A margin to the spec (dB, negative: missed) as reported: one within the verification's
+    own slack (``|margin| <= SPEC_SLACK_DB``, rounding of the measured response) is 0.0, the
+    spec met exactly; a larger miss stays negative."""
+    v = _num(db)
+    return 0.0 if v is not None and abs(v) <= SPEC_SLACK_DB else v
+
+
 def _jsonable(value: Any) -> Any:
     if isinstance(value, dict):
         return {str(k): _jsonable(v) for k, v in value.items()}
@@ -1231,7 +1239,8 @@ def response_report(design: Design) -> dict[str, Any]:
     ``n_sections`` / ``n_taps``, ``sample_rate_hz``, ``edges`` (per-pass and overall gain in
     dB at each band edge, cutoff or notch frequency; ``None`` for -infinity),
     ``passband_ripple_db`` / ``stopband_attenuation_db`` achieved overall with their
-    ``*_required_db`` and ``*_margin_db`` (tolerance mode, else ``None``),
+    ``*_required_db`` and ``*_margin_db`` (tolerance mode, else ``None``; a margin within
+    :data:`SPEC_SLACK_DB` of 0 is 0.0, negative only for a true miss),
     ``overall_minus3db_hz`` / ``overall_minus6db_hz`` (-3.0103 / -6.0206 dB crossings, Hz;
     the overall -6.0206 dB points are the per-pass -3.0103 dB points), ``notch_width_hz`` (notch: achieved overall -3 dB width),
     ``max_pole_radius`` (IIR, else ``None``), ``cost_per_sample``,
@@ -1258,8 +1267,8 @@ def response_report(design: Design) -> dict[str, Any]:
     if spec.mode == "tolerance":
         r, a = _measure(sos, taps, spec, fs)
         ripple, attenuation = _num(r), _num(a)
-        ripple_margin = _num(float(spec.passband_ripple_db) - r)
-        attenuation_margin = _num(a - float(spec.stopband_attenuation_db))
+        ripple_margin = _margin(float(spec.passband_ripple_db) - r)
+        attenuation_margin = _margin(a - float(spec.stopband_attenuation_db))
     halo = int(design.effective_length)
     seconds = halo / fs
     rounding = rounding_estimate(sos=sos, taps=taps)

@@ -1255,6 +1255,13 @@ def _exists(root: Path, rel: str) -> bool:
     return bool(array) and is_output_store(root / store) and array in output_arrays(root / store)
 
 
+def _case_globs(names: list[str]) -> str:
+    """Example include globs for files selected but for the letter case: one per suffix
+    found (``"**/*.NPY"``), at most three; a file's own path when none has a suffix."""
+    suffixes = sorted({PurePosixPath(n).suffix for n in names} - {""})
+    return ", ".join(f'"**/*{sfx}"' for sfx in suffixes[:3]) if suffixes else f'"{names[0]}"'
+
+
 def discover(
     cfg: JobConfig,
     *,
@@ -1310,7 +1317,8 @@ def discover(
         shown = ", ".join(case_only[:5]) + (f" and {len(case_only) - 5} more" if len(case_only) > 5 else "")
         warnings.append(
             f"{len(case_only)} file(s) match [archive] include but for the letter case and were not selected: "
-            f"{shown}; globs match case exactly: add patterns for them (e.g. \"**/*.WAV\") to include them"
+            f"{shown}; globs match case exactly: add patterns for them (e.g. {_case_globs(case_only)}) to "
+            "include them"
         )
     cache = scan_cache or {}
     scans: dict[str, dict[str, Any]] = {}

@@ -1,0 +1,180 @@
+"""Blocks that failed their checks, in words: which blocks, which figure against which limit,
+and what to do.
+
+The figures and limits are those of :func:`twinpass.core.checks.findings` (the rules of
+:func:`~twinpass.core.checks.grade`). A seam mismatch is measured where two neighbouring
+blocks overlap (the last block of a file and the first of the next file of its segment are
+neighbours too); when a block fails only its seam next to a block that failed for another
+reason (a wrong response, non-finite output), the seam failure follows from that block and
+is said so. Block indices count from 0 in each file; frames are the file's own, inclusive.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from twinpass.core.checks import FAIL, Finding, findings
+from twinpass.core.types import Design
+
+if TYPE_CHECKING:  # the configuration module is not part of the numeric core
+    from twinpass.config import ChecksConfig
+
+SHOWN = 3
+"""Failed blocks named in a file's one-line summary; the rest are counted."""
+
+RERUN = "the next `twinpass run` runs failed blocks again"
+
+
+@dataclass(frozen=True)
+class FileBlocks:
+    """What the explanation needs of one file's block table."""
+
+    label: str
+    """The file as messages name it (its path relative to the archive root)."""
+    status: np.ndarray
+    """Block status codes, shape (n_blocks,) (:data:`twinpass.core.checks.STATUS_NAMES`)."""
+    span: np.ndarray
+    """[start, stop) of each block in file frames, shape (n_blocks, 2)."""
+    figures: np.ndarray | None
+    """Figures, shape (n_blocks, channels, len(FIGURES)); None when not recorded."""
+
+
+@dataclass(frozen=True)
+class CheckFailures:
+    """A file's blocks that failed their checks, in words."""
+
+    blocks: list[str]
+    """One line per failed block, in block order."""
+    remedy: str
+    """What to look at and what to do."""
+    summary: str
+    """One line: how many blocks failed, the first :data:`SHOWN` (causes first), the count
+    of the rest, and the remedy."""
+
+
+@dataclass(frozen=True)
+class _Failed:
+    index: int
+    text: str
+    kinds: frozenset[str]
+    """``response``, ``integrity``, ``seam``, ``follows`` (a seam failure next to a block
+    failing for another reason) or ``unexplained`` (figures within the limits now)."""
+
+
+def _clock(seconds: float) -> str:
+    """``h:mm:ss`` (with a fraction when there is one, to the millisecond)."""
+    whole = int(seconds)
+    h, rest = divmod(whole, 3600)
+    m, s = divmod(rest, 60)
+    frac = f"{seconds - whole:.3f}".rstrip("0").rstrip(".")[1:] if seconds - whole >= 0.0005 else ""
+    return f"{h}:{m:02d}:{s:02d}{frac}"
+
+
+def _where(fb: FileBlocks, i: int, sample_rate_hz: float) -> str:
+    a, b = (int(v) for v in fb.span[i])
+    return (f"block {i} (frames {a:,}-{b - 1:,}, {_clock(a / sample_rate_hz)}-{_clock(b / sample_rate_hz)} "
+            "into the file)")
+
+
+def _failing(fb: FileBlocks | None, i: int, design: Design, cfg: ChecksConfig, tolerance: float) -> list[Finding]:
+    if fb is None or fb.figures is None or int(fb.status[i]) != FAIL:
+        return []
+    return [f for f in findings(fb.figures[i], design, cfg, tolerance) if f.status == FAIL]
+
+
+def _neighbours(files: Sequence[FileBlocks | None], k: int, i: int) -> list[tuple[FileBlocks, int]]:
+    """(file, block) of the blocks sharing a seam with block ``i`` of file ``k``."""
+    fb, prev, nxt = files[k], files[k - 1] if k > 0 else None, files[k + 1] if k + 1 < len(files) else None
+    assert fb is not None
+    out = []
+    if i > 0:
+        out.append((fb, i - 1))
+    elif prev is not None and len(prev.status):
+        out.append((prev, len(prev.status) - 1))
+    if i + 1 < len(fb.status):
+        out.append((fb, i + 1))
+    elif nxt is not None and len(nxt.status):
+        out.append((nxt, 0))
+    return out
+
+
+_REMEDIES = {
+    "response": "compare input and output at those frames and rerun; a failure that comes back with the same "
+                "figures comes from the input there, not from the run",
+    "integrity": "look at the input at those frames and at [processing] nonfinite, then rerun",
+    "seam": "rerun; a seam mismatch that stays means the halo is too short for this filter (see the design "
+            "report's effective length)",
+    "follows": "a seam failure that follows from another block's failure passes once that block does",
+    "unexplained": "rerun (the figures recorded are within the limits now)",
+}
+_ORDER = ("response", "integrity", "seam", "unexplained", "follows")
+_CAUSE = {"response": "response check", "integrity": "integrity check"}
+
+
+def _kind(f: Finding) -> str:
+    return "response" if f.response else "seam" if f.figure == "seam_mismatch" else "integrity"
+
+
+def explain(files: Sequence[FileBlocks | None], design: Design, cfg: ChecksConfig,
+            tolerance: float) -> dict[str, CheckFailures]:
+    """Why the failed blocks of a segment's files failed.
+
+    Parameters
+    ----------
+    files : sequence of FileBlocks or None
+        The segment's files in time order; None for a file whose table is not at hand (it
+        is neither explained nor named as a neighbour).
+    design : Design
+        The filter the blocks were graded against (its sample rate gives the times).
+    cfg : ChecksConfig
+        The thresholds.
+    tolerance : float
+        Relative blockwise tolerance (see :func:`twinpass.core.checks.grade`).
+
+    Returns
+    -------
+    dict
+        ``label -> CheckFailures`` for each file with a block whose status is ``FAIL``
+        (blocks that raised an error are reported by their error, not here).
+    """
+    fs = float(design.sample_rate_hz)
+    out: dict[str, CheckFailures] = {}
+    for k, fb in enumerate(files):
+        if fb is None or not np.any(np.asarray(fb.status) == FAIL):
+            continue
+        failed: list[_Failed] = []
+        for i in np.flatnonzero(np.asarray(fb.status) == FAIL).tolist():
+            found = _failing(fb, i, design, cfg, tolerance)
+            kinds = {_kind(f) for f in found}
+            if len(kinds) > 1:
+                kinds.discard("seam")  # its own seams follow from its other failure
+            text = "; ".join(f.describe() for f in found) or "failed its checks"
+            if kinds == {"seam"}:
+                causes = []
+                for other, j in _neighbours(files, k, i):
+                    cause = {_kind(f) for f in _failing(other, j, design, cfg, tolerance)} - {"seam"}
+                    if cause:
+                        check = _CAUSE["response" if "response" in cause else "integrity"]
+                        causes.append(f"the failed {check} of block {j}" + ("" if other is fb else f" of {other.label}"))
+                if causes:
+                    kinds = {"follows"}
+                    text += f", following from {' and '.join(causes)}"
+            failed.append(_Failed(i, f"{_where(fb, i, fs)}: {text}", frozenset(kinds or {"unexplained"})))
+        rank = {"response": 0, "integrity": 0, "seam": 1, "unexplained": 1, "follows": 2}
+        first = sorted(failed, key=lambda f: (min(rank[kd] for kd in f.kinds), f.index))
+        present = set().union(*(f.kinds for f in failed))
+        remedy = "; ".join(_REMEDIES[kd] for kd in _ORDER if kd in present) + f"; {RERUN}"
+        n = len(failed)
+        shown = "; ".join(f.text for f in first[:SHOWN])
+        more = f"; and {n - SHOWN} more (`twinpass status` lists them)" if n > SHOWN else ""
+        out[fb.label] = CheckFailures(
+            blocks=[f.text for f in failed], remedy=remedy,
+            summary=f"{n} of {len(fb.status)} block(s) failed their checks: {shown}{more}. What to do: {remedy}")
+    return out
+
+
+__all__ = ["FileBlocks", "CheckFailures", "explain", "SHOWN"]
