@@ -768,9 +768,10 @@ def check_sos(sos: np.ndarray) -> float:
     if radius > POLE_RADIUS_LIMIT:
         raise DesignError(
             f"the designed filter is badly conditioned: largest pole radius {radius:.15g} is "
-            f"within {1.0 - radius:.3g} of 1 (limit 1e-9), so its halo would be impractically long "
-            "and rounding dominates; raise the cutoff relative to the sample rate, lower the order, "
-            "widen the transition band, use family 'fir', or use the carry-state mode."
+            f"within {1.0 - radius:.3g} of 1 (limit 1e-9), so float64 rounding would dominate its "
+            "output and its halo would be impractically long; the limit holds in every processing "
+            "mode (carrying states does not lift it): raise the cutoff relative to the sample rate "
+            "(decimate first), lower the order, widen the transition band, or use family 'fir'."
         )
     return radius
 
