@@ -716,3 +716,31 @@ def test_report_is_plain_json_and_formats(spec: ResponseSpec) -> None:
     text = format_report(report)
     assert report["kind"] in text and report["family"] in text
     assert "non-causal" in text
+
+
+# ----------------------------------------------------------------------------- README: scipy's padlen
+
+
+def test_readme_default_padlen_matches_scipy_for_an_odd_order_design() -> None:
+    # README "Halos and the tolerance" names scipy's default padlen for a 3rd-order
+    # Butterworth (two sections, one first-order) and for four second-order sections.
+    # Reference: scipy.signal.sosfiltfilt itself, whose default must equal an explicit
+    # padlen of that many samples; and twinpass's end extension with edge_samples set to
+    # it must then reproduce scipy's default output, as the README says.
+    from pathlib import Path
+
+    from twinpass.core.kernel import filtfilt_window
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    odd = int(re.search(r"(\d+) for a 3rd-order Butterworth", readme).group(1))
+    four = int(re.search(r"(\d+) for four second-order sections", readme).group(1))
+    x = np.random.default_rng(5).standard_normal(4000)
+    for order, padlen in ((3, odd), (8, four)):
+        design = design_filter(ResponseSpec(kind="lowpass", family="butterworth", order=order, cutoff_hz=(30.0,),
+                                            cutoff_means="per-pass"), 200.0)
+        default = signal.sosfiltfilt(design.sos, x)
+        assert np.array_equal(default, signal.sosfiltfilt(design.sos, x, padlen=padlen)), (order, padlen)
+        assert not np.array_equal(default, signal.sosfiltfilt(design.sos, x, padlen=padlen + 3)), (order, padlen)
+        ours = filtfilt_window(x, sos=design.sos, core_start=0, core_stop=x.size, at_start=True, at_end=True,
+                               edge="odd", edge_samples=padlen)
+        np.testing.assert_allclose(ours, default, rtol=0, atol=1e-12)
