@@ -718,6 +718,40 @@ def test_report_is_plain_json_and_formats(spec: ResponseSpec) -> None:
     assert "non-causal" in text
 
 
+def test_notch_rounding_stays_within_the_default_tolerance() -> None:
+    # A 50 Hz notch 0.2 Hz wide at 48 kHz: its float64 rounding, measured against
+    # np.longdouble in test_effective, is at most 7.6e-11 of full scale (a tone exactly at
+    # the notch), below the default tolerance 1e-9: no caution, and the seam limit stays the
+    # tolerance's (README "Checks, status and report": the seam check).
+    from twinpass.core.checks import seam_scale
+
+    design = design_filter(ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=0.2), 48000.0)
+    assert "Caution" not in design.report["statement"]
+    assert seam_scale(design, 1e-9) == 1e-9
+
+
+@pytest.mark.parametrize("spec, fs, tol, remedy, not_remedy", [
+    # A notch: poles at 50 Hz, far from z = 1 (scipy.signal.sos2zpk); only a wider notch or
+    # a lower sample rate moves them off the unit circle (1 - r is about pi * width / fs).
+    (ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=0.2), 48000.0, 1e-11,
+     "Widen the notch", "Raise the cutoff"),
+    # A narrow band-pass at 100 Hz: likewise, its band is what to widen.
+    (ResponseSpec(kind="bandpass", family="butterworth", order=4, cutoff_hz=(99.0, 101.0)), 48000.0, 1e-13,
+     "Widen the narrowest band", "Raise the cutoff"),
+    # A low-pass with its edge 0.01 Hz below Nyquist: poles near z = -1.
+    (ResponseSpec(kind="lowpass", family="butterworth", order=4, cutoff_hz=(499.99,)), 1000.0, 1e-12,
+     "Lower the band edge near Nyquist", "decimate"),
+    # A high-pass at 2e-6 of the sample rate: poles near z = 1 (guard: the remedy was right
+    # for it before and must stay so).
+    (ResponseSpec(kind="highpass", family="butterworth", order=2, cutoff_hz=(0.002,)), 1000.0, 1e-9,
+     "Raise the cutoff", "Widen"),
+])
+def test_rounding_caution_names_a_remedy_that_fits_the_design(spec, fs, tol, remedy, not_remedy) -> None:
+    statement = design_filter(spec, fs, tolerance=tol).report["statement"]
+    assert "Caution: float64 rounding" in statement
+    assert remedy in statement and not_remedy not in statement, statement
+
+
 # ----------------------------------------------------------------------------- README: scipy's padlen
 
 

@@ -37,7 +37,13 @@ from typing import Any
 import numpy as np
 from scipy import optimize, signal
 
-from twinpass.core.effective import dominant_pole_radius, effective_length, rounding_estimate
+from twinpass.core.effective import (
+    dominant_pole_radius,
+    effective_length,
+    pole_near_edge,
+    rounding_dominant_pole,
+    rounding_estimate,
+)
 from twinpass.core.types import FAMILIES, KINDS, Design, ResponseSpec
 from twinpass.errors import DesignError, SpecError
 
@@ -1300,6 +1306,31 @@ def _named_edges(design: Design) -> list[tuple[str, float]]:
     return sorted(edges, key=lambda e: e[1])
 
 
+def _rounding_remedy(design: Design) -> str:
+    """What moves the poles that dominate the rounding estimate away from the unit circle.
+
+    Their distance from it is about pi times the width of the feature they shape over the
+    sample rate: a notch or narrow band away from 0 Hz and Nyquist is widened (or the rate
+    lowered); a cutoff near 0 Hz is raised relative to the rate (decimating first); an edge
+    near Nyquist is lowered relative to it ("near" as in
+    :func:`~twinpass.core.effective.pole_near_edge`).
+    """
+    if design.spec.kind == "notch":
+        return "Widen the notch (notch_width_hz, or a lower notch_q) or lower the sample rate (decimate first)"
+    if design.sos is None:
+        return "Use fewer taps (a wider transition band)"
+    pole = rounding_dominant_pole(design.sos)
+    hz = abs(math.atan2(pole.imag, pole.real)) * design.sample_rate_hz / (2.0 * math.pi)
+    if not pole_near_edge(pole):
+        return (
+            f"Widen the narrowest band or transition (poles at {hz:.6g} Hz) or lower the sample "
+            "rate (decimate first)"
+        )
+    if pole.real >= 0.0:
+        return f"Raise the cutoff near 0 Hz (poles at {hz:.3g} Hz) or lower the sample rate (decimate first)"
+    return f"Lower the band edge near Nyquist (poles at {hz:.6g} Hz) or raise the sample rate"
+
+
 def response_report(design: Design) -> dict[str, Any]:
     """JSON-serialisable summary of what the design achieves (plain Python types, no NaN).
 
@@ -1348,7 +1379,7 @@ def response_report(design: Design) -> dict[str, Any]:
         statement += (
             f" Caution: float64 rounding in this design is estimated at {rounding:.2g} of full scale, "
             f"above the tolerance: blocks agree with filtering the whole signal at once only to about "
-            "that. Raise the cutoff relative to the sample rate (decimate first), or raise the tolerance."
+            f"that. {_rounding_remedy(design)}, or raise the tolerance."
         )
     report: dict[str, Any] = {
         "kind": spec.kind,
