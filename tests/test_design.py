@@ -9,6 +9,10 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import re
+import warnings
+from dataclasses import replace
+from decimal import Decimal, localcontext
 
 import numpy as np
 import pytest
@@ -29,7 +33,7 @@ from twinpass.core.design import (
     response_report,
     validate_spec,
 )
-from twinpass.core.types import ResponseSpec
+from twinpass.core.types import Design, ResponseSpec
 from twinpass.errors import DesignError, SpecError
 from test_effective import brute_force_lengths, definition_slack
 
@@ -146,19 +150,174 @@ def test_fir_response_of_long_taps_matches_scipy_freqz() -> None:
     assert np.max(np.abs(per_pass_response(design, f) - expected)) < 1e-11
 
 
-@pytest.mark.parametrize("fs", [1000.0, 48000.0])
-def test_sos_response_matches_scipy_sosfreqz(fs: float) -> None:
-    # Reference: scipy.signal.sosfreqz. Poles within 1e-4 of the unit circle at 48 kHz.
-    spec = ResponseSpec(
-        kind="bandpass", family="elliptic", order=8, cutoff_hz=(10.0, 200.0),
-        passband_ripple_db=0.5, stopband_attenuation_db=60.0,
-    )
-    design = design_filter(spec, fs)
-    rng = np.random.default_rng(4)
-    f = np.concatenate([[0.0, 10.0, 200.0, fs / 2], rng.uniform(0.0, fs / 2, 500), rng.uniform(5.0, 250.0, 500)])
-    expected = signal.sosfreqz(design.sos, worN=f, fs=fs)[1]
+# Reference: the same float64 coefficients evaluated in 60-digit decimal arithmetic (Python's
+# decimal module; each float converted exactly by Decimal(float), cos and sin by their Taylor
+# series, pi to 80 digits, a published constant). float64 rounding of the evaluation itself
+# is what this measures; the coefficients' own rounding is common to both.
+_PI = Decimal("3.1415926535897932384626433832795028841971693993751058209749445923078164062862")
+
+
+def _decimal_cos_sin(x: Decimal) -> tuple[Decimal, Decimal]:
+    c = s = Decimal(0)
+    term = Decimal(1)
+    for n in range(400):
+        if n % 4 == 0:
+            c += term
+        elif n % 4 == 1:
+            s += term
+        elif n % 4 == 2:
+            c -= term
+        else:
+            s -= term
+        term = term * x / (n + 1)
+        if abs(term) < Decimal(10) ** -75:
+            break
+    return c, s
+
+
+def exact_sos_response(sos: np.ndarray, f_hz: float, fs: float) -> complex:
+    """Per-pass response of ``sos`` at ``f_hz`` from its exact coefficients (60 digits)."""
+    with localcontext() as ctx:
+        ctx.prec = 60
+        w = -2 * _PI * Decimal(float(f_hz)) / Decimal(float(fs))
+        c1, s1 = _decimal_cos_sin(w)
+        c2, s2 = _decimal_cos_sin(2 * w)
+        hr, hi = Decimal(1), Decimal(0)
+        for row in np.asarray(sos, dtype=float):
+            b0, b1, b2, a0, a1, a2 = (Decimal(float(v)) for v in row)
+            nr, ni = b0 + b1 * c1 + b2 * c2, b1 * s1 + b2 * s2
+            dr, di = a0 + a1 * c1 + a2 * c2, a1 * s1 + a2 * s2
+            mag = dr * dr + di * di
+            qr, qi = (nr * dr + ni * di) / mag, (ni * dr - nr * di) / mag
+            hr, hi = hr * qr - hi * qi, hr * qi + hi * qr
+        return complex(float(hr), float(hi))
+
+
+def exact_overall_db(sos: np.ndarray, f_hz: float, fs: float) -> float:
+    return 40.0 * math.log10(abs(exact_sos_response(sos, f_hz, fs)))
+
+
+def exact_extreme_db(sos: np.ndarray, fs: float, lo: float, hi: float, sign: int) -> float:
+    """Largest (sign=1) or smallest (sign=-1) exact overall gain (dB) over [lo, hi] Hz: 160
+    points (logarithmic from lo, or from 1e-9 of Nyquist when lo is 0 Hz), the best refined
+    with scipy.optimize.minimize_scalar (bounded) between its neighbours."""
+    f = np.geomspace(max(lo, fs * 5e-10), hi, 160)
+    v = np.array([sign * exact_overall_db(sos, x, fs) for x in f])
+    i = int(np.argmax(v))
+    res = minimize_scalar(lambda x: -sign * exact_overall_db(sos, x, fs),
+                          bounds=(f[max(i - 1, 0)], f[min(i + 1, f.size - 1)]), method="bounded",
+                          options={"xatol": 1e-12 * hi})
+    return sign * max(float(v[i]), -float(res.fun))
+
+
+RESPONSE_CASES = {
+    # Sections with poles and zeros near z = 1 (cutoffs far below the sample rate) or z = -1
+    # (near Nyquist), where the plain polynomial in z^-1 cancels; and one ordinary design.
+    "Butterworth high-pass 0.05 Hz at 10 kHz": lambda: (signal.butter(4, 0.05, "highpass", fs=1e4, output="sos"), 1e4),
+    "Butterworth low-pass 0.05 Hz at 48 kHz": lambda: (signal.butter(2, 0.05, "lowpass", fs=48e3, output="sos"), 48e3),
+    "Chebyshev I high-pass 0.05 Hz at 10 kHz": lambda: (signal.cheby1(2, 0.5, 0.05, "highpass", fs=1e4, output="sos"), 1e4),
+    "Chebyshev II high-pass 0.02 Hz at 10 kHz": lambda: (signal.cheby2(2, 20, 0.02, "highpass", fs=1e4, output="sos"), 1e4),
+    "Butterworth band-stop 0.05-0.5 Hz at 10 kHz": lambda: (signal.butter(3, (0.05, 0.5), "bandstop", fs=1e4, output="sos"), 1e4),
+    "Butterworth low-pass 4999.95 Hz at 10 kHz": lambda: (signal.butter(4, 4999.95, "lowpass", fs=1e4, output="sos"), 1e4),
+    "Butterworth high-pass 4999.95 Hz at 10 kHz": lambda: (signal.butter(3, 4999.95, "highpass", fs=1e4, output="sos"), 1e4),
+    "notch 50 Hz at 48 kHz": lambda: (signal.tf2sos(*signal.iirnotch(50.0, 400.0, fs=48e3)), 48e3),
+    "elliptic band-pass 10-200 Hz at 48 kHz": lambda: (
+        signal.ellip(8, 0.25, 30, (10.0, 200.0), "bandpass", fs=48e3, output="sos"), 48e3),
+}
+
+
+def response_case(name: str) -> tuple[np.ndarray, float]:
+    with warnings.catch_warnings():  # scipy's BadCoefficients for the tiny numerators
+        warnings.simplefilter("ignore", signal.BadCoefficients)
+        sos, fs = RESPONSE_CASES[name]()
+    return np.asarray(sos), fs
+
+
+@pytest.mark.parametrize("name", list(RESPONSE_CASES))
+def test_sos_response_matches_exact_evaluation_down_to_1e_7_of_the_sample_rate(name: str) -> None:
+    # Reference: exact_sos_response (decimal arithmetic, above), on f / fs from 1e-7 to 1/2 and
+    # as close to Nyquist, plus 0 Hz, fs / 4 and Nyquist themselves. The float64 evaluation
+    # must agree to 1e-12 of each value (the 1e-60 absolute term covers exact zeros at
+    # Nyquist, which the reference's 80-digit pi leaves at about 1e-70).
+    sos, fs = response_case(name)
+    design = Design(spec=ResponseSpec(kind="lowpass", order=2, cutoff_hz=(1.0,)), family="butterworth",
+                    sample_rate_hz=fs, order=2, sos=np.asarray(sos), taps=None, effective_length=0, tolerance=1e-9)
+    ratios = np.geomspace(1e-7, 0.25, 60)
+    f = np.concatenate([[0.0, fs / 4, fs / 2], fs * ratios, fs / 2 - fs * ratios])
+    expected = np.array([exact_sos_response(sos, x, fs) for x in f])
     got = per_pass_response(design, f)
-    assert np.all(np.abs(got - expected) <= 1e-9 * np.abs(expected) + 1e-15)
+    err = np.abs(got - expected)
+    assert np.all(err <= 1e-12 * np.abs(expected) + 1e-60), (name, float(np.max(err / np.abs(expected))))
+
+
+def test_plain_polynomial_evaluation_misses_where_low_cutoff_designs_are_checked() -> None:
+    # Guard on the reference: scipy.signal.sosfreqz, which sums b0 + b1 z^-1 + b2 z^-2 in
+    # float64, misses the exact value of a 0.05 Hz high-pass at 10 kHz by far more than
+    # 1e-12 near its cutoff, so the test above can tell the two evaluations apart (passes on
+    # both the old and the new code).
+    sos, fs = response_case("Butterworth high-pass 0.05 Hz at 10 kHz")
+    f = np.array([0.01, 0.05, 0.2])
+    expected = np.array([exact_sos_response(sos, x, fs) for x in f])
+    plain = signal.sosfreqz(sos, worN=f, fs=fs)[1]
+    assert np.max(np.abs(plain - expected) / np.abs(expected)) > 1e-8
+
+
+def test_low_cutoff_overall_3db_design_is_accepted_and_exact() -> None:
+    # A 4th-order Butterworth high-pass, -3.0103 dB overall at 0.05 Hz, at 10 kHz: its float64
+    # coefficients put the exact overall gain (exact_overall_db) within the 1e-6 dB the
+    # design allows of 10 log10(0.5) (half power, textbook).
+    spec = ResponseSpec(kind="highpass", family="butterworth", order=4, cutoff_hz=(0.05,))
+    design = design_filter(spec, 1e4)
+    assert abs(exact_overall_db(design.sos, 0.05, 1e4) - 10 * math.log10(0.5)) <= 1e-6
+
+
+LOW_CUT_TOLERANCE = {
+    "chebyshev1": dict(passband_hz=(0.05,), stopband_hz=(0.01,)),
+    "chebyshev2": dict(passband_hz=(0.1,), stopband_hz=(0.02,)),
+}
+
+
+@pytest.mark.parametrize("family", list(LOW_CUT_TOLERANCE))
+def test_low_cutoff_equiripple_designs_meet_the_spec_when_measured_exactly(family: str) -> None:
+    # High-pass, overall ripple 1 dB and attenuation 40 dB with edges at 0.01 to 0.1 Hz at
+    # 10 kHz. The design must be accepted at an order near scipy's minimum (cheb1ord /
+    # cheb2ord for the halved figures: 2), and its exact response (exact_extreme_db) meet the
+    # spec within the 1e-6 dB the design allows. Chebyshev II at order 2 misses by 1.4e-6 dB
+    # measured exactly (its float64 coefficients), so order 3 is right there.
+    fs = 1e4
+    spec = ResponseSpec(kind="highpass", family=family, passband_ripple_db=1.0, stopband_attenuation_db=40.0,
+                        **LOW_CUT_TOLERANCE[family])
+    order, _ = {"chebyshev1": signal.cheb1ord, "chebyshev2": signal.cheb2ord}[family](
+        spec.passband_hz[0], spec.stopband_hz[0], 0.5, 20.0, fs=fs)
+    design = design_filter(spec, fs)
+    assert order <= design.order <= order + 1
+    (p,), (s,) = spec.passband_hz, spec.stopband_hz
+    ripple = exact_extreme_db(design.sos, fs, p, fs / 2, 1) - exact_extreme_db(design.sos, fs, p, fs / 2, -1)
+    attenuation = -exact_extreme_db(design.sos, fs, 0.0, s, 1)
+    assert ripple <= 1.0 + 1e-6 and attenuation >= 40.0 - 1e-6, (ripple, attenuation)
+    assert design.report["passband_ripple_db"] == pytest.approx(ripple, abs=1e-8)
+
+
+def test_auto_considers_low_cutoff_chebyshev_designs() -> None:
+    # The Chebyshev I design above meets the spec at order 2 (one section, 10 multiply-adds
+    # per sample by the module's cost model); auto must not pick a costlier Butterworth.
+    spec = ResponseSpec(kind="highpass", family="auto", passband_ripple_db=1.0, stopband_attenuation_db=40.0,
+                        **LOW_CUT_TOLERANCE["chebyshev1"])
+    design = design_filter(spec, 1e4)
+    chebyshev = design_filter(replace(spec, family="chebyshev1"), 1e4)
+    assert design.report["cost_per_sample"] <= chebyshev.report["cost_per_sample"] == 10.0
+
+
+def test_cutoff_refusal_prints_the_difference_it_refuses() -> None:
+    # 0.01 Hz at 48 kHz: rounding the sections' coefficients to float64 moves the overall
+    # gain at the cutoff by about 5e-5 dB, beyond the 1e-6 dB allowed. The message must show
+    # both figures to enough digits to differ, and the target as 10 log10(0.5) (textbook).
+    spec = ResponseSpec(kind="lowpass", family="butterworth", order=2, cutoff_hz=(0.01,))
+    with pytest.raises(DesignError) as info:
+        design_filter(spec, 48e3)
+    got, target = (float(x) for x in re.findall(r"(-\d+\.\d+) dB", str(info.value))[:2])
+    assert target == pytest.approx(10 * math.log10(0.5), abs=1e-9)
+    assert abs(got - target) > 1e-6
 
 
 # ----------------------------------------------------------------------------- narrow features
@@ -477,8 +636,11 @@ def test_unstable_and_badly_conditioned_designs_raise_design_error() -> None:
     # bilinear transform a 2nd-order Butterworth's pole radius is 1 - sqrt(2) * pi * fc / fs
     # to first order (from memory; scipy.signal.sos2zpk of this design gives 4.44e-11).
     spec = ResponseSpec(kind="lowpass", family="butterworth", order=2, cutoff_hz=(1e-8,))
-    with pytest.raises(DesignError, match="badly conditioned"):
+    with pytest.raises(DesignError, match="badly conditioned") as info:
         design_filter(spec, FS)
+    # The design is refused before any processing mode applies, so the remedies must hold
+    # whatever [processing] mode says: carrying states is no way out (README "Long filters").
+    assert "every processing mode" in str(info.value) and "use the carry" not in str(info.value)
 
 
 # ----------------------------------------------------------------------------- auto, rates, report
@@ -578,3 +740,65 @@ def test_report_margins_show_rounding_as_zero_and_a_true_miss_as_negative() -> N
     tighter = dataclasses.replace(design, spec=dataclasses.replace(spec, passband_ripple_db=0.5))
     missed = response_report(tighter)["passband_ripple_margin_db"]
     assert missed == pytest.approx(0.5 - (overall_db.max() - overall_db.min()), abs=1e-3) and missed < -0.4
+
+
+def test_notch_rounding_stays_within_the_default_tolerance() -> None:
+    # A 50 Hz notch 0.2 Hz wide at 48 kHz: its float64 rounding, measured against
+    # np.longdouble in test_effective, is at most 7.6e-11 of full scale (a tone exactly at
+    # the notch), below the default tolerance 1e-9: no caution, and the seam limit stays the
+    # tolerance's (README "Checks, status and report": the seam check).
+    from twinpass.core.checks import seam_scale
+
+    design = design_filter(ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=0.2), 48000.0)
+    assert "Caution" not in design.report["statement"]
+    assert seam_scale(design, 1e-9) == 1e-9
+
+
+@pytest.mark.parametrize("spec, fs, tol, remedy, not_remedy", [
+    # A notch: poles at 50 Hz, far from z = 1 (scipy.signal.sos2zpk); only a wider notch or
+    # a lower sample rate moves them off the unit circle (1 - r is about pi * width / fs).
+    (ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=0.2), 48000.0, 1e-11,
+     "Widen the notch", "Raise the cutoff"),
+    # A narrow band-pass at 100 Hz: likewise, its band is what to widen.
+    (ResponseSpec(kind="bandpass", family="butterworth", order=4, cutoff_hz=(99.0, 101.0)), 48000.0, 1e-13,
+     "Widen the narrowest band", "Raise the cutoff"),
+    # A low-pass with its edge 0.01 Hz below Nyquist: poles near z = -1.
+    (ResponseSpec(kind="lowpass", family="butterworth", order=4, cutoff_hz=(499.99,)), 1000.0, 1e-12,
+     "Lower the band edge near Nyquist", "decimate"),
+    # A high-pass at 2e-6 of the sample rate: poles near z = 1 (guard: the remedy was right
+    # for it before and must stay so).
+    (ResponseSpec(kind="highpass", family="butterworth", order=2, cutoff_hz=(0.002,)), 1000.0, 1e-9,
+     "Raise the cutoff", "Widen"),
+])
+def test_rounding_caution_names_a_remedy_that_fits_the_design(spec, fs, tol, remedy, not_remedy) -> None:
+    statement = design_filter(spec, fs, tolerance=tol).report["statement"]
+    assert "Caution: float64 rounding" in statement
+    assert remedy in statement and not_remedy not in statement, statement
+
+
+# ----------------------------------------------------------------------------- README: scipy's padlen
+
+
+def test_readme_default_padlen_matches_scipy_for_an_odd_order_design() -> None:
+    # README "Halos and the tolerance" names scipy's default padlen for a 3rd-order
+    # Butterworth (two sections, one first-order) and for four second-order sections.
+    # Reference: scipy.signal.sosfiltfilt itself, whose default must equal an explicit
+    # padlen of that many samples; and twinpass's end extension with edge_samples set to
+    # it must then reproduce scipy's default output, as the README says.
+    from pathlib import Path
+
+    from twinpass.core.kernel import filtfilt_window
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    odd = int(re.search(r"(\d+) for a 3rd-order Butterworth", readme).group(1))
+    four = int(re.search(r"(\d+) for four second-order sections", readme).group(1))
+    x = np.random.default_rng(5).standard_normal(4000)
+    for order, padlen in ((3, odd), (8, four)):
+        design = design_filter(ResponseSpec(kind="lowpass", family="butterworth", order=order, cutoff_hz=(30.0,),
+                                            cutoff_means="per-pass"), 200.0)
+        default = signal.sosfiltfilt(design.sos, x)
+        assert np.array_equal(default, signal.sosfiltfilt(design.sos, x, padlen=padlen)), (order, padlen)
+        assert not np.array_equal(default, signal.sosfiltfilt(design.sos, x, padlen=padlen + 3)), (order, padlen)
+        ours = filtfilt_window(x, sos=design.sos, core_start=0, core_stop=x.size, at_start=True, at_end=True,
+                               edge="odd", edge_samples=padlen)
+        np.testing.assert_allclose(ours, default, rtol=0, atol=1e-12)

@@ -256,3 +256,43 @@ def test_rounding_estimate_bounds_float64_against_extended_precision(name: str, 
     assert err < estimate, (name, err, estimate)
     if estimate > ROUNDING_FLOOR * np.finfo(np.float64).eps:
         assert err > estimate / 100, (name, err, estimate)
+
+
+NOTCHES = {
+    # The notches of twinpass's own design (kind "notch"), poles at the notch frequency.
+    "50 Hz, 0.2 Hz wide, at 48 kHz": (50.0, 0.2, 48000.0),
+    "50 Hz, 2 Hz wide, at 48 kHz": (50.0, 2.0, 48000.0),
+    "1 kHz, 0.5 Hz wide, at 48 kHz": (1000.0, 0.5, 48000.0),
+}
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).eps > 1e-18, reason="needs an extended-precision long double")
+@pytest.mark.parametrize("name", list(NOTCHES))
+def test_rounding_estimate_of_notches_follows_the_pole_angle(name: str) -> None:
+    # Reference: the same two-pass filtering in np.longdouble (as above), on (a) hum at the
+    # notch frequency with noise, a step and a slow sine, and (b) a full-scale tone exactly
+    # at the notch frequency, whose period is a whole number of samples: its rounding
+    # repeats with the tone and gathers at the resonance, the worst input measured for
+    # notches. Poles far from z = 1 amplify rounding far less than (1 - r)**-1.5, so the
+    # estimate must bound both differences and stay within 30 times the larger (the former
+    # (1 - r)**-1.5 law was 66 to 1300 times above it).
+    from twinpass.core.design import design_filter
+    from twinpass.core.effective import rounding_estimate
+    from twinpass.core.types import ResponseSpec
+
+    f0, width, fs = NOTCHES[name]
+    sos = design_filter(ResponseSpec(kind="notch", notch_hz=f0, notch_width_hz=width), fs).sos
+    n = 600_000
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(1)
+    signals = {
+        "hum, noise, step": 0.3 * np.sin(2 * np.pi * f0 * t) + 0.1 * rng.standard_normal(n)
+        + 0.5 * (t > t[n // 2]) + 0.2 * np.sin(2 * np.pi * 0.3 * t),
+        "tone at the notch": np.sin(2 * np.pi * f0 * t + 0.3),
+    }
+    errors = {
+        k: float(np.max(np.abs(_two_pass(sos, x, np.float64) - _two_pass(sos, x, np.longdouble))) / np.max(np.abs(x)))
+        for k, x in signals.items()
+    }
+    estimate = rounding_estimate(sos=sos)
+    assert max(errors.values()) <= estimate <= 30 * max(errors.values()), (name, errors, estimate)

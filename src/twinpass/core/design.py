@@ -27,6 +27,7 @@ much, since block halos, start-up and memory traffic are not part of the model.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from collections.abc import Callable, Iterable, Sequence
@@ -36,7 +37,13 @@ from typing import Any
 import numpy as np
 from scipy import optimize, signal
 
-from twinpass.core.effective import dominant_pole_radius, effective_length, rounding_estimate
+from twinpass.core.effective import (
+    dominant_pole_radius,
+    effective_length,
+    pole_near_edge,
+    rounding_dominant_pole,
+    rounding_estimate,
+)
 from twinpass.core.types import FAMILIES, KINDS, Design, ResponseSpec
 from twinpass.errors import DesignError, SpecError
 
@@ -87,6 +94,8 @@ _FIR_GRID_PER_RIPPLE = 16
 """An FIR of M taps is sampled at least this many times per ``fs / M`` Hz (its ripple spacing)."""
 _GRID_STEPS_PER_DISTANCE = 16
 """Near a pole or zero the grid step is at most 1/16 of the distance to it on the unit circle."""
+_SECTIONS_AT_ONCE = 2**9
+"""Up to this many (frequency, section) pairs are evaluated in one 2-D array, more section by section."""
 _ZOOM_POINTS = 17
 """Points per bracket and round of the local re-evaluation of an extremum."""
 _ZOOM_ROUNDS = 4
@@ -385,17 +394,74 @@ def _per_pass(sos: np.ndarray | None, taps: np.ndarray | None, freqs: np.ndarray
     return _fir_response(taps, freqs, fs)
 
 
+def _shifted_coefficients(b0: float, b1: float, b2: float, u0: float) -> tuple[float, float, float]:
+    """Coefficients of ``b0 + b1 u + b2 u^2`` in powers of ``u - u0`` for ``u0 = +1`` or ``-1``.
+
+    ``B(u) = B(u0) + B'(u0) (u - u0) + b2 (u - u0)^2`` with ``B(u0) = b0 + u0 b1 + b2`` and
+    ``B'(u0) = b1 + 2 u0 b2``. Each is summed by ``math.fsum`` (correctly rounded; ``2 b2``
+    and the sign changes are exact), so a section with roots near ``u0``, whose ``B(u0)`` is
+    a small difference of nearly equal coefficients, keeps it to the last bit.
+    """
+    return math.fsum((b0, u0 * b1, b2)), math.fsum((b1, 2.0 * u0 * b2)), b2
+
+
+@functools.lru_cache(maxsize=64)
+def _shifted_sections(raw: bytes) -> tuple[np.ndarray, np.ndarray]:
+    """Sections (float64 bytes of an (n, 6) array) expanded about u = 1 and about u = -1.
+
+    Returns two arrays of shape (6, n): rows are the numerator's then the denominator's
+    coefficients of ``(u - u0)^0``, ``^1``, ``^2`` (:func:`_shifted_coefficients`).
+    Cached: the design loops evaluate one set of sections many times.
+    """
+    sos = np.frombuffer(raw, dtype=float).reshape(-1, 6)
+    tables = []
+    for u0 in (1.0, -1.0):
+        rows = [
+            _shifted_coefficients(*row[:3], u0) + _shifted_coefficients(*row[3:], u0)
+            for row in sos.tolist()
+        ]
+        tables.append(np.array(rows, dtype=float).T.copy())
+    return tables[0], tables[1]
+
+
 def _sos_response(sos: np.ndarray, freqs: np.ndarray, fs: float) -> np.ndarray:
     """Response of second-order sections at frequencies ``freqs`` (Hz, 1-D).
 
-    The product over sections of ``(b0 + b1 z^-1 + b2 z^-2) / (a0 + a1 z^-1 + a2 z^-2)`` at
-    ``z = exp(2j pi f / fs)``, what ``scipy.signal.sosfreqz`` computes, without its per-call
-    overhead (which dominated the many short evaluations that refine band extremes).
+    The product over sections of ``(b0 + b1 u + b2 u^2) / (a0 + a1 u + a2 u^2)`` at
+    ``u = z^-1 = exp(-2j pi f / fs)``, what ``scipy.signal.sosfreqz`` computes, evaluated so
+    that it stays accurate near 0 Hz and Nyquist. There the plain polynomial cancels: a
+    section with roots near ``z = 1`` (a cutoff far below the sample rate) has coefficients
+    summing to nearly zero, and summing them at ``u`` close to 1 loses the digits that make
+    the response (float64 put a 0.05 Hz high-pass at 10 kHz 3e-6 dB off). Instead each
+    quadratic is expanded about ``u0 = 1`` for ``f < fs / 4`` and about ``u0 = -1`` above
+    (:func:`_shifted_coefficients`, correctly rounded sums of the coefficients) and
+    evaluated in ``d = u - u0``, which is computed without cancellation from ``x = f / fs``
+    (or ``y = 1/2 - f / fs`` near Nyquist, with ``fs / 2 - f`` exact there):
+    ``u - 1 = -2j sin(pi x) exp(-j pi x)`` and ``u + 1 = -2j sin(pi y) exp(j pi y)``.
+    Each section is then correct to a few units of float64 rounding relative to its value
+    (the polynomial's own conditioning at ``u`` apart) down to ``f / fs`` of 1e-7 and below.
     """
-    zi = np.exp(-2j * math.pi * np.asarray(freqs, dtype=float) / fs)
-    h = np.ones(zi.shape, dtype=complex)
-    for b0, b1, b2, a0, a1, a2 in np.asarray(sos, dtype=float):
-        h *= (b0 + zi * (b1 + zi * b2)) / (a0 + zi * (a1 + zi * a2))
+    f = np.asarray(freqs, dtype=float)
+    fs = float(fs)
+    about_plus, about_minus = _shifted_sections(np.ascontiguousarray(sos, dtype=float).tobytes())
+    h = np.empty(f.shape, dtype=complex)
+    low = f < fs / 4.0
+    for where, table, sign in ((low, about_plus, -1.0), (~low, about_minus, 1.0)):
+        if not np.any(where):
+            continue
+        fw = f[where]
+        x = fw / fs if sign < 0 else (fs / 2.0 - fw) / fs
+        s, c = np.sin(math.pi * x), np.cos(math.pi * x)
+        d = sign * 2.0 * s * s - 2j * s * c  # -2j sin(pi x) exp(-+j pi x)
+        if d.size * table.shape[1] <= _SECTIONS_AT_ONCE:  # few points: one 2-D pass
+            dd = d[:, None]
+            num = table[0] + dd * (table[1] + dd * table[2])
+            h[where] = np.prod(num / (table[3] + dd * (table[4] + dd * table[5])), axis=1)
+            continue
+        hw = np.ones(d.shape, dtype=complex)
+        for k0, k1, k2, m0, m1, m2 in table.T.tolist():
+            hw *= (k0 + d * (k1 + d * k2)) / (m0 + d * (m1 + d * m2))
+        h[where] = hw
     return h
 
 
@@ -708,9 +774,10 @@ def check_sos(sos: np.ndarray) -> float:
     if radius > POLE_RADIUS_LIMIT:
         raise DesignError(
             f"the designed filter is badly conditioned: largest pole radius {radius:.15g} is "
-            f"within {1.0 - radius:.3g} of 1 (limit 1e-9), so its halo would be impractically long "
-            "and rounding dominates; raise the cutoff relative to the sample rate, lower the order, "
-            "widen the transition band, use family 'fir', or use the carry-state mode."
+            f"within {1.0 - radius:.3g} of 1 (limit 1e-9), so float64 rounding would dominate its "
+            "output and its halo would be impractically long; the limit holds in every processing "
+            "mode (carrying states does not lift it): raise the cutoff relative to the sample rate "
+            "(decimate first), lower the order, widen the transition band, or use family 'fir'."
         )
     return radius
 
@@ -801,8 +868,8 @@ def _iir_tolerance(spec: ResponseSpec, family: str, fs: float) -> tuple[np.ndarr
         order += 1
     raise DesignError(
         f"the {family} {spec.kind} misses the overall spec at every order up to max_order="
-        f"{spec.max_order} (last: ripple {last[0]:.4g} dB for {spec.passband_ripple_db:g}, "
-        f"attenuation {last[1]:.4g} dB for {spec.stopband_attenuation_db:g}); order "
+        f"{spec.max_order} (last: ripple {last[0]:.9g} dB for {spec.passband_ripple_db:g}, "
+        f"attenuation {last[1]:.9g} dB for {spec.stopband_attenuation_db:g}); order "
         f"{spec.max_order + 1} or more is needed: raise max_order, widen the transition band, "
         "or use family 'fir'."
     )
@@ -864,15 +931,30 @@ def _design_edges_for_overall_3db(kind: str, cutoffs: Sequence[float], p3: float
 
 
 def _check_cutoffs(sos: np.ndarray | None, taps: np.ndarray | None, cutoffs: Sequence[float], fs: float, family: str) -> None:
+    """Require the overall gain at each cutoff (Hz) within ``CUTOFF_SLACK_DB`` of -3.0103 dB.
+
+    The message prints the gain and the target to 1e-9 dB and the distance between them, so
+    a miss just beyond the slack reads as one. An IIR design's edges are placed from the
+    exact prototype (:func:`_design_edges_for_overall_3db`), so its miss is what rounding its
+    coefficients to float64 did; that grows as the cutoff falls relative to the sample rate.
+    """
     h = _per_pass(sos, taps, np.asarray(cutoffs, dtype=float), fs)
     overall_db = 2.0 * _db_amplitude(h)
     miss = np.abs(overall_db - HALF_POWER_DB)
     if not np.all(miss <= CUTOFF_SLACK_DB):
         worst = int(np.argmax(miss))
+        if taps is not None:
+            remedy = "use more taps (a higher order) or cutoff_means='per-pass'"
+        else:
+            remedy = (
+                "its float64 coefficients cannot place it closer at this cutoff relative to the "
+                "sample rate; raise the cutoff or lower the sample rate (decimate first), use "
+                "cutoff_means='per-pass', or a different family"
+            )
         raise DesignError(
             f"the {family} design puts the overall gain at {cutoffs[worst]:g} Hz at "
-            f"{overall_db[worst]:.6g} dB instead of -3.0103 dB; use cutoff_means='per-pass', "
-            "more taps, or a different family."
+            f"{overall_db[worst]:.9f} dB instead of {HALF_POWER_DB:.9f} dB ({miss[worst]:.2g} dB "
+            f"off, more than the {CUTOFF_SLACK_DB:g} dB allowed); {remedy}."
         )
 
 
@@ -977,7 +1059,7 @@ def _fir_tolerance(spec: ResponseSpec, fs: float) -> np.ndarray:
         if n_taps > spec.max_taps:
             raise DesignError(
                 f"the FIR {spec.kind} still misses the overall spec at {failed} taps (ripple "
-                f"{figures[0]:.4g} dB for {spec.passband_ripple_db:g}, attenuation {figures[1]:.4g} "
+                f"{figures[0]:.9g} dB for {spec.passband_ripple_db:g}, attenuation {figures[1]:.9g} "
                 f"dB for {spec.stopband_attenuation_db:g}); more than max_taps={spec.max_taps} "
                 "are needed: raise max_taps, widen the transition band, or use an IIR family."
             )
@@ -1232,6 +1314,31 @@ def _named_edges(design: Design) -> list[tuple[str, float]]:
     return sorted(edges, key=lambda e: e[1])
 
 
+def _rounding_remedy(design: Design) -> str:
+    """What moves the poles that dominate the rounding estimate away from the unit circle.
+
+    Their distance from it is about pi times the width of the feature they shape over the
+    sample rate: a notch or narrow band away from 0 Hz and Nyquist is widened (or the rate
+    lowered); a cutoff near 0 Hz is raised relative to the rate (decimating first); an edge
+    near Nyquist is lowered relative to it ("near" as in
+    :func:`~twinpass.core.effective.pole_near_edge`).
+    """
+    if design.spec.kind == "notch":
+        return "Widen the notch (notch_width_hz, or a lower notch_q) or lower the sample rate (decimate first)"
+    if design.sos is None:
+        return "Use fewer taps (a wider transition band)"
+    pole = rounding_dominant_pole(design.sos)
+    hz = abs(math.atan2(pole.imag, pole.real)) * design.sample_rate_hz / (2.0 * math.pi)
+    if not pole_near_edge(pole):
+        return (
+            f"Widen the narrowest band or transition (poles at {hz:.6g} Hz) or lower the sample "
+            "rate (decimate first)"
+        )
+    if pole.real >= 0.0:
+        return f"Raise the cutoff near 0 Hz (poles at {hz:.3g} Hz) or lower the sample rate (decimate first)"
+    return f"Lower the band edge near Nyquist (poles at {hz:.6g} Hz) or raise the sample rate"
+
+
 def response_report(design: Design) -> dict[str, Any]:
     """JSON-serialisable summary of what the design achieves (plain Python types, no NaN).
 
@@ -1281,7 +1388,7 @@ def response_report(design: Design) -> dict[str, Any]:
         statement += (
             f" Caution: float64 rounding in this design is estimated at {rounding:.2g} of full scale, "
             f"above the tolerance: blocks agree with filtering the whole signal at once only to about "
-            "that. Raise the cutoff relative to the sample rate (decimate first), or raise the tolerance."
+            f"that. {_rounding_remedy(design)}, or raise the tolerance."
         )
     report: dict[str, Any] = {
         "kind": spec.kind,
