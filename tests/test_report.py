@@ -535,3 +535,31 @@ def test_the_overlay_draws_the_input_as_recorded_and_says_what_it_removes(tmp_pa
     text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
     assert (f"Both traces are drawn less their mean over the window shown (input {np.mean(shown['before']):.4g}, "
             f"output {np.mean(shown['after']):.4g}, in input units)") in text
+
+
+def test_the_report_says_which_runs_and_library_versions_wrote_the_outputs(tmp_path: Path) -> None:
+    # Provenance as the installed packages' metadata gives it (importlib.metadata): the last
+    # run, its versions, and outputs whose blocks were written with other versions. The
+    # older version is written into one output's record by hand (an injected fault standing
+    # for a store filtered before an upgrade).
+    from importlib import metadata
+
+    import zarr
+
+    from twinpass.config import load_config
+    from twinpass.report_data import write_report
+
+    cfg = load_config(_run_small_job(tmp_path))
+    g = zarr.open_group(str(cfg.store_location), mode="r")
+    run_id = g["_twinpass/runs"].group_keys().__next__()
+    text = html.unescape(write_report(cfg).read_text(encoding="utf-8"))
+    assert "<h2>Provenance</h2>" in text and run_id in text
+    assert f"scipy {metadata.version('scipy')}" in text and f"numba {metadata.version('numba')}" in text
+    assert "Outputs written with other versions</th><td>none" in text
+
+    name = "deck/deck_20260301T000010"
+    arr = zarr.open_array(str(cfg.store_location), path=name, mode="r+")
+    entry = arr.attrs["written_by"][0]
+    arr.attrs["written_by"] = [{**entry, "versions": {**entry["versions"], "scipy": "1.0.0"}}]
+    text = html.unescape(write_report(cfg).read_text(encoding="utf-8"))
+    assert f"1: {name}: scipy 1.0.0 (now {metadata.version('scipy')})" in text

@@ -641,6 +641,7 @@ def render_report(
     notices: Sequence[str] = (),
     design_notes: Sequence[str] = (),
     listed: Sequence[tuple[str, Sequence[str]]] | None = None,
+    provenance: Sequence[tuple[str, str]] = (),
 ) -> Path:
     """Write the run report as one self-contained HTML file.
 
@@ -679,6 +680,9 @@ def render_report(
         The section "Left out, failed or missing" (inputs left out, failed, gone, missing
         chunks, notes), each list capped at :data:`LISTED` with a count of the rest; omitted
         when None.
+    provenance : sequence of (label, text)
+        The section "Provenance" (store, last run, library versions, outputs written with
+        other versions); omitted when empty.
 
     Returns
     -------
@@ -762,6 +766,10 @@ def render_report(
 
     parts.append("<h2>Files</h2>")
     parts.append(_file_table(files))
+    if provenance:
+        parts.append("<h2>Provenance</h2><table>"
+                     + "".join(f"<tr><th>{_esc(k)}</th><td>{_esc(v)}</td></tr>" for k, v in provenance)
+                     + "</table>")
     parts.append("</body></html>")
 
     text = "\n".join(parts)

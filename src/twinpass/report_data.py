@@ -360,6 +360,43 @@ class _ReadOnce:
         return self._attrs[name]
 
 
+def provenance(store: Any, names: Sequence[str]) -> list[tuple[str, str]]:
+    """Rows (label, text) saying which runs and library versions wrote the store's outputs:
+    the store, its last run, that run's versions, and the outputs whose ``written_by`` names
+    other versions (or none, for outputs written before outputs recorded their runs)."""
+    info = store.read_root_info()
+    runs = [r for r in info.get("runs") or [] if isinstance(r, Mapping)]
+    last = runs[-1] if runs else {}
+    rows = [("Store", str(store.location))]
+    if last:
+        stopped = ", stopped before its end" if last.get("interrupted") else ""
+        rows.append(("Last run", f"{last.get('run_id')}, {last.get('start')} to {last.get('end')}{stopped}; "
+                                 f"configuration digest {last.get('config_digest')}"))
+    now = last.get("versions") or info.get("versions") or {}
+    if isinstance(now, Mapping) and now:
+        rows.append(("Library versions", ", ".join(f"{k} {v}" for k, v in now.items())))
+    other: list[str] = []
+    unrecorded = 0
+    for name in names:
+        entries = [e for e in store.array_attrs(name).get("written_by") or [] if isinstance(e, Mapping)]
+        if not entries:
+            unrecorded += 1
+            continue
+        differ = sorted({f"{k} {v} (now {now.get(k)})" for e in entries
+                         for k, v in (e.get("versions") or {}).items() if now.get(k) != v})
+        if differ:
+            other.append(f"{name}: {', '.join(differ)}")
+    if other:
+        shown = "; ".join(other[:5]) + (f"; and {len(other) - 5} more" if len(other) > 5 else "")
+        rows.append(("Outputs written with other versions", f"{len(other)}: {shown}"))
+    elif names and unrecorded < len(names):
+        rows.append(("Outputs written with other versions", "none"))
+    if unrecorded:
+        rows.append(("Outputs without a record of their runs",
+                     f"{unrecorded} (written before outputs recorded them; see the store's run records)"))
+    return rows
+
+
 def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
     """Render the HTML report of ``cfg``'s store; returns the written path."""
     store: Any = _ReadOnce(OutputStore.open(cfg.store_location, mode="r"))
@@ -392,5 +429,5 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
         path, design_reports=[d.report for d in designs], designs=designs, files=files, blocks=blocks,
         overlays=[overlay] if overlay else [], title=f"twinpass report: {Path(cfg.source).name}",
         cautions=list(DEFAULT_CAUTIONS), notices=design_notices(cfg, used) + unrecorded, design_notes=[d.note() for d in used],
-        listed=attention_lists(status),
+        listed=attention_lists(status), provenance=provenance(store, [f["name"] for f in status["files"]]),
     )
