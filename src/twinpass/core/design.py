@@ -73,7 +73,7 @@ POLE_RADIUS_LIMIT: float = 1.0 - 1e-9
 """Designs with a pole radius above this are rejected as badly conditioned."""
 SPEC_SLACK_DB: float = 1e-6
 """Rounding slack (dB) allowed when checking a design against the overall spec."""
-CUTOFF_SLACK_DB: float = 1e-6
+CUTOFF_SLACK_DB: float = 1e-3
 """Largest accepted distance (dB) of the overall gain from -3.0103 dB at a corrected cutoff."""
 FIR_PREFERENCE: float = 0.5
 """``auto`` takes FIR only if its cost is below this fraction of the best IIR cost."""
