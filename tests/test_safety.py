@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import builtins
 import contextlib
+import dataclasses
 import errno
 import io
 import logging
@@ -206,6 +207,40 @@ def test_stale_lock_of_a_dead_process_is_recovered(tmp_path, caplog):
     assert any("recovering a stale lock" in r.getMessage() and "crashed-run" in r.getMessage()
                for r in caplog.records)
     assert not lock.exists()
+
+
+def test_status_names_a_run_that_died_holding_the_lock_and_one_still_writing(tmp_path):
+    # A run killed mid-way (kill -9, a machine going down) leaves its lock and no run record:
+    # `twinpass status` must say so (the last recorded run is an earlier one), and
+    # `--require-complete` must not pass while a run holds the lock, dead or alive.
+    import json
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    cfg = load(tmp_path)
+    assert _complete(run(cfg)) == {"a.wav": "complete"}
+    config = cfg.source
+    lock = Path(cfg.store_location) / LOCK_NAME
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    lock.write_bytes(LockInfo(pid=dead.pid, host=socket.gethostname(), run_id="killed-run",
+                              started="2026-03-01T00:00:00+00:00", token="t").to_bytes())
+    out = run_cli(["status", str(config)]).stdout
+    assert "run killed-run (pid" in out and "stopped without ending" in out, out
+    r = run_cli(["status", str(config), "--require-complete"], check=False)
+    assert r.returncode == 1 and "left the store's lock" in r.stderr, r.stderr
+    held = json.loads(run_cli(["status", str(config), "--json"]).stdout)["lock"]
+    assert held["run_id"] == "killed-run" and held["state"] == "gone"
+
+    lock.write_bytes(LockInfo.new("live-run").to_bytes())  # this test's own process: alive
+    out = run_cli(["status", str(config)]).stdout
+    assert "run live-run (pid" in out and "is writing to the store now" in out, out
+    lock.write_bytes(dataclasses.replace(LockInfo.new("far-run"), host="another-host").to_bytes())
+    out = run_cli(["status", str(config)]).stdout
+    assert "holds the store's lock from another host" in out, out
+    lock.unlink()
+    r = run_cli(["status", str(config), "--require-complete"], check=False)
+    assert r.returncode == 0 and "store's lock" not in r.stdout and "writing" not in r.stdout, r.stdout + r.stderr
 
 
 # -- names stay inside the store -----------------------------------------------------------

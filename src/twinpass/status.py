@@ -112,6 +112,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
         "checks_failed": sum(f["checks"] == "fail" for f in files),
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
+            "lock": store.lock_holder(),
             "runs_total": int(root.get("runs_total", len(runs))),
             "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs,
             "failed_blocks": failed_blocks}
@@ -174,12 +175,15 @@ def format_status(status: dict[str, Any]) -> str:
         lines.append(f"runs recorded: {status.get('runs_total', 1)}; last {last.get('run_id')} "
                      f"{last.get('start')} to {last.get('end') or '-'}{stopped}: "
                      + ", ".join(f"{k} {v}" for k, v in counts.items()))
+    held = lock_line(status.get("lock"))
+    if held:
+        lines.append(held)
     for f in status["files"]:
         for blocks, msg in error_groups(f["errors"]):
             lines.append(f"  error {f['name']} {blocks}: {msg}")
     lost = [f for f in status["files"] if f.get("chunks_missing")]
     if lost:
-        lines.append(f"outputs with chunk files missing (deleted or lost since written; they would read as zeros; "
+        lines.append(f"outputs with chunk files missing (deleted or lost since written; they would read as the fill value; "
                      f"the next run reruns their blocks): {len(lost)}")
         lines += [f"  {f['name']}: frames " + ", ".join(f"[{a}, {b})" for a, b in f["chunks_missing"])
                   for f in lost[:LISTED]]
@@ -202,6 +206,23 @@ def format_status(status: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def lock_line(lock: Mapping[str, Any] | None) -> str:
+    """What the store's run lock says, in one line ("" when no run holds it)."""
+    if not lock:
+        return ""
+    if lock.get("state") == "unreadable":
+        return (f"the store's lock {lock.get('where')} cannot be read (a run may have been killed while taking "
+                "it); if no run is using the store, delete it")
+    who = f"run {lock.get('run_id')} (pid {lock.get('pid')} on host {lock.get('host')}, started {lock.get('started')})"
+    if lock.get("state") == "running":
+        return f"{who} is writing to the store now: its files may be incomplete until it ends"
+    if lock.get("state") == "gone":
+        return (f"{who} stopped without ending (killed, or its machine went down) and left the store's lock: "
+                "its unfinished files stay incomplete; the next run takes the lock over and finishes them")
+    return (f"{who} holds the store's lock from another host: it is running there, or stopped without ending "
+            f"(check that host; if it is not running, delete {lock.get('where')})")
+
+
 def all_passed(status: dict[str, Any]) -> bool:
     """Every file complete, no block failed its checks, and the last run left no input out
     and failed none (see :func:`shortfalls`)."""
@@ -221,10 +242,14 @@ def shortfalls(status: dict[str, Any]) -> list[str]:
         out.append(f"{t['checks_failed']} file(s) with failed checks or blocks")
     if status.get("failed_inputs"):
         out.append(f"{len(status['failed_inputs'])} input(s) failed at the last run")
+    lock = status.get("lock")
+    if lock:
+        out.append("a run is writing to the store now" if lock.get("state") == "running"
+                   else "a run stopped without ending and left the store's lock")
     if status.get("left_out"):
         out.append(f"{len(status['left_out'])} input(s) left out by the last run (exclude them in [archive] "
                    "exclude if that is intended)")
     return out
 
 
-__all__ = ["open_target", "collect_status", "format_status", "all_passed", "shortfalls"]
+__all__ = ["open_target", "collect_status", "format_status", "all_passed", "shortfalls", "lock_line"]

@@ -34,6 +34,7 @@ import json
 import os
 import re
 import shutil
+import socket
 import threading
 import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
@@ -837,6 +838,28 @@ class OutputStore:
 
     def _lock_file(self) -> store_lock.LockFile:
         return _lock_file_at(self.location)
+
+    def lock_holder(self) -> dict[str, Any] | None:
+        """Who holds the store's run lock now, or None (a read; works on a read-only store).
+
+        ``{"run_id", "pid", "host", "started", "state"}`` with ``state`` ``"running"`` (its
+        process is alive on this host), ``"gone"`` (its process on this host has ended
+        without releasing the lock: killed, or crashed), ``"elsewhere"`` (held from another
+        host: this one cannot tell), or ``"unreadable"`` (the lock file cannot be parsed;
+        the other fields are None).
+        """
+        lock = self._lock_file()
+        raw = lock.read()
+        if raw is None:
+            return None
+        holder = LockInfo.parse(raw)
+        if holder is None:
+            return {"run_id": None, "pid": None, "host": None, "started": None, "state": "unreadable",
+                    "where": lock.where}
+        state = ("elsewhere" if holder.host != socket.gethostname()
+                 else "gone" if holder.is_stale() else "running")
+        return {"run_id": holder.run_id, "pid": holder.pid, "host": holder.host, "started": holder.started,
+                "state": state, "where": lock.where}
 
     @contextlib.contextmanager
     def lock(self, run_id: str) -> Iterator[LockInfo]:
