@@ -43,6 +43,7 @@ from twinpass.core.effective import (
     pole_near_edge,
     rounding_dominant_pole,
     rounding_estimate,
+    zeros_and_poles,
 )
 from twinpass.core.types import FAMILIES, KINDS, Design, ResponseSpec
 from twinpass.errors import DesignError, SpecError
@@ -539,7 +540,7 @@ def _pole_zero_grid(sos: np.ndarray, fs: float) -> np.ndarray:
     ``1 - r`` of the unit circle is sampled at least 16 times across its narrowest
     resonance (about ``(1 - r) fs / pi`` Hz wide), at a cost logarithmic in ``1 / (1 - r)``.
     """
-    zeros, poles, _ = signal.sos2zpk(sos)
+    zeros, poles = zeros_and_poles(sos)
     points = np.concatenate([np.asarray(poles, dtype=complex), np.asarray(zeros, dtype=complex)])
     theta = np.abs(np.angle(points))
     distance = np.maximum(np.abs(1.0 - np.abs(points)), 1.0 - POLE_RADIUS_LIMIT)

@@ -9,6 +9,7 @@ absolute input value.
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 from scipy import signal, special
@@ -24,6 +25,7 @@ __all__ = [
     "ROUNDING_FLOOR",
     "NEAR_EDGE_RATIO",
     "pole_near_edge",
+    "zeros_and_poles",
 ]
 
 ERROR_FACTOR: float = 10.0
@@ -51,6 +53,17 @@ def _check_sos(sos: np.ndarray) -> np.ndarray:
     return sos
 
 
+def zeros_and_poles(sos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Zeros and poles of second-order sections (``scipy.signal.sos2zpk``), without scipy's
+    ``BadCoefficients`` warning: the tiny numerators of very low or very narrow designs only
+    concern the zeros' accuracy, and twinpass judges a design's conditioning itself
+    (:func:`twinpass.core.design.check_sos`)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", signal.BadCoefficients)
+        zeros, poles, _ = signal.sos2zpk(sos)
+    return zeros, poles
+
+
 def dominant_pole_radius(sos: np.ndarray) -> float:
     """Largest pole magnitude of a cascade of second-order sections.
 
@@ -66,7 +79,7 @@ def dominant_pole_radius(sos: np.ndarray) -> float:
         A value >= 1 means the filter is unstable or marginally stable.
     """
     sos = _check_sos(sos)
-    _, poles, _ = signal.sos2zpk(sos)
+    _, poles = zeros_and_poles(sos)
     return float(np.max(np.abs(poles))) if poles.size else 0.0
 
 
@@ -164,7 +177,7 @@ def rounding_estimate(*, sos: np.ndarray | None = None, taps: np.ndarray | None 
 
 def _pole_multiplicity(sos: np.ndarray, radius: float) -> int:
     """Number of poles within one ``1 - radius`` of the dominant radius (margin for repeats)."""
-    _, poles, _ = signal.sos2zpk(sos)
+    _, poles = zeros_and_poles(sos)
     band = max(1.0 - radius, 1e-12)
     return max(1, int(np.count_nonzero(np.abs(poles) >= radius - band)))
 
