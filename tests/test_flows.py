@@ -246,6 +246,39 @@ def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archiv
     check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
 
 
+def test_inputs_left_out_end_the_flow_run_in_a_completed_state_of_its_own_naming_them(prefect_client, npy_archive,
+                                                                                    tmp_path):
+    # Four new files of one stream cut short (an NPY file's header gives the array's shape, and
+    # its data must follow in full: numpy's NPY format specification, version 1.0), so they
+    # are left out and the rest is filtered: the flow run does not end in the plain
+    # "Completed" of a clean run (a served deployment has no exit status to tell them apart)
+    # but in a COMPLETED-type state of its own name, as Prefect's state model allows, whose
+    # message names how many were left out and the first three with their reasons.
+    import shutil
+
+    from prefect.client.schemas.objects import StateType
+
+    archive = Path(shutil.copytree(npy_archive, tmp_path / "archive"))
+    cut = [file_relpath("north", k) for k in range(FILES_PER_STREAM, FILES_PER_STREAM + 4)]
+    for k, rel in enumerate(cut, start=FILES_PER_STREAM):
+        path = write_file(archive, "north", k, seed=90 + k)
+        path.write_bytes(path.read_bytes()[:5000])
+    cfg = write_job(tmp_path, archive)
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.type == StateType.COMPLETED and state.name == flows.STATE_LEFT_OUT, (state.name, state.message)
+    summary = state.result()
+    assert sorted(summary["invalid"]) == cut and summary["counts"]["complete"] == len(ALL_FILES), summary
+
+    run = poll(lambda: prefect_client.read_flow_run(flow_run_id(state)),
+               lambda r: r.state is not None and r.state.is_final(), "the final state of the flow run")
+    assert run.state.type == StateType.COMPLETED and run.state.name == "LeftOut", run.state
+    message = run.state.message
+    assert message.startswith("4 input(s) left out"), message
+    assert sum(rel in message for rel in cut) == 3 and "and 1 more" in message, message
+    assert message.count("NPY header claims") == 3, message  # each named with its reason
+    assert f"twinpass status {tmp_path / 'out.zarr'}" in message, message
+
+
 def test_a_segment_whose_blocks_do_not_fit_the_memory_budget_is_not_retried(prefect_client, npy_archive, tmp_path):
     # Blocks set by hand (block_seconds) whose window exceeds [processing] memory_budget_mib
     # fail their segment with a message naming both settings; running it again cannot help,

@@ -4,7 +4,8 @@
 segment with work (each wraps the engine's Dask work for its blocks) -> finalise ->
 report. Unchanged files are not run; one ``skip-unchanged`` task run, in state
 "Skipped", lists them. A failed segment never stops the others; the flow ends Failed
-naming the failed files, Completed otherwise. Every future is resolved.
+naming the failed files, else in state ``LeftOut`` (type COMPLETED, :data:`STATE_LEFT_OUT`)
+naming the inputs left out, if any, else Completed. Every future is resolved.
 
 ``twinpass run`` begins the run before the flow run exists (:mod:`twinpass.headstart`:
 lock, preparation, cluster, segment drivers); the flow body takes it over, and each
@@ -81,6 +82,11 @@ FLOW_NAME = "twinpass-archive-run"
 ARTIFACT_DESIGN = "twinpass-design"
 ARTIFACT_FILES = "twinpass-files"
 ARTIFACT_REPORT = "twinpass-report"
+STATE_LEFT_OUT = "LeftOut"
+"""Name of the final state (of type COMPLETED) of a flow run in which no file failed but input
+files were left out (invalid input, or no filter for their sample rate): the dashboard shows
+it apart from a clean run's ``Completed``, and automations can match it (event
+``prefect.flow-run.LeftOut``). The command exits 3 for such a run."""
 
 _CLIENTS_LOCK = threading.Lock()
 
@@ -497,7 +503,9 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
     dict
         ``run_id``, ``counts`` (files per status, ``blocks_run``), ``failed`` and ``invalid``
         (input paths), ``store`` and ``report`` (path or None). When files fail the flow
-        ends Failed, naming them, with this summary as the state's data.
+        ends Failed, naming them, with this summary as the state's data; when none failed
+        but inputs were left out, in a COMPLETED state named ``LeftOut`` (:data:`STATE_LEFT_OUT`)
+        whose message names them.
     """
     with flow_heartbeats():  # only when the caller asked for them (see twinpass.heartbeats)
         return _archive_run(config_path, force, scheduler, workers, config_block, report)
@@ -571,7 +579,29 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path}
     if failed_files:
         return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}", data=summary)
+    if prep.invalid:
+        return Completed(name=STATE_LEFT_OUT, message=left_out_message(prep, cfg), data=summary)
     return summary
+
+
+LEFT_OUT_NAMED = 3
+"""Inputs left out that the message of a flow run in state :data:`STATE_LEFT_OUT` names, with their reasons."""
+REASON_CHARS = 200
+"""Characters of each reason shown there (the rest is in ``twinpass status``)."""
+
+
+def left_out_message(prep: Prepared, cfg: JobConfig) -> str:
+    """The message of a flow run that left inputs out: how many, the first few with their
+    reasons (shortened to :data:`REASON_CHARS`), and where the full list is."""
+    named = []
+    for bad in prep.invalid[:LEFT_OUT_NAMED]:
+        reason = bad.reason if len(bad.reason) <= REASON_CHARS else bad.reason[:REASON_CHARS - 3] + "..."
+        named.append(f"{bad.relpath} ({reason})")
+    more = len(prep.invalid) - len(named)
+    return (f"{len(prep.invalid)} input(s) left out, not filtered: " + "; ".join(named)
+            + (f"; and {more} more" if more > 0 else "")
+            + f". `twinpass status {cfg.store_location}` lists them with the remedy (a file left out on purpose "
+            "belongs in [archive] exclude)")
 
 
 def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore, start: ClientStart,
@@ -762,6 +792,6 @@ def serve_deployment(deployment: "RunnerDeployment") -> None:
     serve(deployment)
 
 
-__all__ = ["ARTIFACT_DESIGN", "ARTIFACT_FILES", "ARTIFACT_REPORT", "FLOW_NAME", "archive_run", "build_deployment",
-           "design_task", "filter_segment", "finalize_task", "preload", "report_task", "schedule",
-           "serve_deployment", "skip_unchanged"]
+__all__ = ["ARTIFACT_DESIGN", "ARTIFACT_FILES", "ARTIFACT_REPORT", "FLOW_NAME", "STATE_LEFT_OUT", "archive_run",
+           "build_deployment", "design_task", "filter_segment", "finalize_task", "left_out_message", "preload",
+           "report_task", "schedule", "serve_deployment", "skip_unchanged"]
