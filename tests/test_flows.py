@@ -279,6 +279,51 @@ def test_inputs_left_out_end_the_flow_run_in_a_completed_state_of_its_own_naming
     assert f"twinpass status {tmp_path / 'out.zarr'}" in message, message
 
 
+def test_a_report_that_cannot_be_written_after_the_flow_run_keeps_the_runs_outcome(prefect_client, npy_archive,
+                                                                                  tmp_path, monkeypatch, capsys):
+    # The report's path is taken by a folder (POSIX rename(2): a file cannot replace a
+    # directory), found after every block is filtered and the run recorded: the command
+    # exits 0 as documented for a run whose files are all done (not 2, "stopped before it
+    # began"), prints the summary and then one error line naming the report; the flow run
+    # ends Completed, its message naming the report, and the write-report task run Failed.
+    cfg = write_job(tmp_path, npy_archive)
+    report = tmp_path / "out.report.html"  # the report's default path beside out.zarr
+    report.mkdir()
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    assert cli.main(["run", str(cfg)]) == 0
+    captured = capsys.readouterr()
+    assert f"complete {len(ALL_FILES)}, skipped (unchanged) 0, failed 0, invalid 0" in captured.out, captured.out
+    last = captured.err.strip().splitlines()[-1]
+    assert last.startswith(f"twinpass: error: {report}: cannot write the report") and "twinpass report" in last, \
+        captured.err
+
+    run = _flow_run_of(prefect_client, cfg)
+    assert run.state.is_completed() and "the report was not written" in run.state.message, run.state
+    assert str(report) in run.state.message, run.state.message
+    runs = final_task_runs(prefect_client, run.id, expected=5)
+    assert runs_of(runs, flows.finalize_task)[0].state.is_completed()
+    assert runs_of(runs, flows.report_task)[0].state.is_failed()
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+
+
+def test_a_per_file_table_the_dashboard_refuses_leaves_the_recorded_run_completed(prefect_client, npy_archive,
+                                                                                 tmp_path, monkeypatch, caplog):
+    # Injected fault: the API call that publishes the per-file table artifact fails (the
+    # server went away) after the run is recorded in the store. The flow run still ends
+    # Completed, a warning names the table, and the store holds every file complete.
+    def refused(*args, **kwargs):
+        raise ConnectionError("injected: the Prefect API did not answer")
+
+    monkeypatch.setattr(flows, "create_table_artifact", refused)
+    caplog.set_level(logging.WARNING)
+    cfg = write_job(tmp_path, npy_archive)
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed() and state.name == "Completed", (state.name, state.message)
+    warned = [r.getMessage() for r in caplog.records if "could not publish the per-file table" in r.getMessage()]
+    assert len(warned) == 1 and "injected: the Prefect API did not answer" in warned[0], warned
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+
+
 def test_a_segment_whose_blocks_do_not_fit_the_memory_budget_is_not_retried(prefect_client, npy_archive, tmp_path):
     # Blocks set by hand (block_seconds) whose window exceeds [processing] memory_budget_mib
     # fail their segment with a message naming both settings; running it again cannot help,

@@ -420,7 +420,8 @@ def skip_unchanged(relpaths: list[str]) -> Any:
 
 @task(name="finalize-run", cache_policy=NO_CACHE)
 def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, durations: dict[str, float]) -> None:
-    """Record the run in the store and publish the per-file table."""
+    """Record the run in the store and publish the per-file table (a table that cannot be
+    published is logged as a warning: the run's outcome is in its records)."""
     finish_run(store, result, cfg)
     rows = []
     for o in result.outcomes:
@@ -436,18 +437,53 @@ def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, duratio
                      "blocks not done": 0, "seconds": 0.0, "worst passband dev (dB)": None,
                      "worst phase (deg)": None, "stopband att (dB)": None,
                      "seam mismatch": bad.explained})
-    create_table_artifact(rows, key=ARTIFACT_FILES, description=f"twinpass run {result.run_id}")
+    with _dashboard_only(f"the per-file table of run {result.run_id}"):
+        create_table_artifact(rows, key=ARTIFACT_FILES, description=f"twinpass run {result.run_id}")
+
+
+@contextlib.contextmanager
+def _dashboard_only(what: str) -> Iterator[None]:
+    """Log an error in the ``with`` block (creating an artifact) as a warning naming ``what``
+    instead of raising it: the run's records are written, and the dashboard's copy of them
+    must not change its outcome."""
+    try:
+        yield
+    except Exception as e:
+        get_run_logger().warning("could not publish %s on the dashboard (%s: %s); the run's records in the "
+                                 "store stand (`twinpass status`)", what, type(e).__name__, e)
 
 
 @task(name="write-report", cache_policy=NO_CACHE)
-def report_task(cfg: JobConfig) -> str:
-    """Write the HTML report beside the store and link it on the dashboard."""
-    from .report_data import write_report
+def report_task(cfg: JobConfig) -> Any:
+    """Write the HTML report beside the store and link it on the dashboard; returns its path.
 
-    path = write_report(cfg)
-    create_link_artifact(Path(path).resolve().as_uri(), link_text="twinpass report", key=ARTIFACT_REPORT,
-                         description="Self-contained HTML report")
+    A report that cannot be written ends the task run Failed, its message saying why and
+    what to do (:func:`~twinpass.report_data.report_failure`); the flow body reports it
+    without changing the run's outcome.
+    """
+    from .report_data import report_failure, write_report
+
+    try:
+        path = write_report(cfg)
+    except Exception as e:
+        get_run_logger().debug("the report was not written", exc_info=True)
+        return Failed(message=report_failure(cfg, e))
+    with _dashboard_only(f"the link to the report {path}"):
+        create_link_artifact(Path(path).resolve().as_uri(), link_text="twinpass report", key=ARTIFACT_REPORT,
+                             description="Self-contained HTML report")
     return str(path)
+
+
+def _write_report(cfg: JobConfig) -> tuple[str | None, str | None]:
+    """Run :func:`report_task` after the run is recorded: (the report's path, None), or
+    (None, what went wrong and what to do) when it was not written, logged as a warning."""
+    written = report_task(quote(cfg), return_state=True)
+    value = written.result(raise_on_failure=False)
+    if written.is_completed() and isinstance(value, str):
+        return value, None
+    problem = written.message or f"{type(value).__name__}: {value}"
+    get_run_logger().warning("the report was not written: %s", problem)
+    return None, problem
 
 
 def load_job(config_path: str | None, config_block: str | None) -> JobConfig:
@@ -502,7 +538,9 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
     -------
     dict
         ``run_id``, ``counts`` (files per status, ``blocks_run``), ``failed`` and ``invalid``
-        (input paths), ``store`` and ``report`` (path or None). When files fail the flow
+        (input paths), ``store``, ``report`` (path or None) and ``report_error`` (why the
+        report asked for could not be written, and what to do; None if it was, or if none
+        was asked for: the run's outcome stands either way, and the state's message says so). When files fail the flow
         ends Failed, naming them, with this summary as the state's data; when none failed
         but inputs were left out, in a COMPLETED state named ``LeftOut`` (:data:`STATE_LEFT_OUT`)
         whose message names them.
@@ -571,16 +609,19 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
-    report_path = None
-    if report:
-        report_path = report_task(quote(cfg))
+    # The run is recorded: a report that cannot be written is said, and changes nothing else.
+    report_path, report_error = _write_report(cfg) if report else (None, None)
     summary = {"run_id": run_id, "counts": result.counts(), "failed": failed_files,
                "failed_reasons": result.failure_reasons(),
-               "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path}
+               "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path,
+               "report_error": report_error}
+    also = f"; the report was not written: {report_error}" if report_error else ""
     if failed_files:
-        return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}", data=summary)
+        return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}{also}", data=summary)
     if prep.invalid:
-        return Completed(name=STATE_LEFT_OUT, message=left_out_message(prep, cfg), data=summary)
+        return Completed(name=STATE_LEFT_OUT, message=left_out_message(prep, cfg) + also, data=summary)
+    if report_error:
+        return Completed(message=f"the report was not written: {report_error}", data=summary)
     return summary
 
 

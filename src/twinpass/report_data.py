@@ -41,6 +41,20 @@ def default_report_path(cfg: JobConfig) -> Path:
     return folder / f"{stem}{REPORT_SUFFIX}"
 
 
+def report_failure(cfg: JobConfig, exc: BaseException) -> str:
+    """What to say when the report of a run that has finished could not be written (``exc``
+    raised by :func:`write_report`): the report's path and the cause, that the run stands,
+    and how to write the report once the cause is fixed."""
+    path = str(default_report_path(cfg))
+    detail = str(exc) if isinstance(exc, TwinpassError) else f"cannot make the report ({type(exc).__name__}: {exc})"
+    if path not in detail:
+        detail = f"{path}: {detail}"
+    config = cfg.source if Path(cfg.source).is_file() else "CONFIG"
+    return (f"{detail.rstrip('.')}. The run itself is finished and recorded (`twinpass status "
+            f"{cfg.store_location}`); once that is fixed, write the report with `twinpass report {config}` "
+            "(add --output FILE to write it elsewhere).")
+
+
 def _epoch(iso: str | None) -> float | None:
     if not iso:
         return None
