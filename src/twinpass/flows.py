@@ -31,7 +31,6 @@ from __future__ import annotations
 
 from . import _prefect_env  # noqa: F401  (must precede the prefect import)
 
-import collections
 import contextlib
 import contextvars
 import dataclasses
@@ -73,7 +72,7 @@ from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStopped
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
-from .job import Prepared, RunResult, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
+from .job import Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -102,6 +101,10 @@ class _RunCluster:
     """
 
     client: CancellableClient
+    tally: RunTally
+    """Blocks run by every attempt of each segment's task, and the outcomes of its last
+    attempt: the run's summary counts them for a segment whose task failed or was retried,
+    and the record of a stopped run is made of them."""
     head: HeadStart | None = None
     """The head start whose running segments the tasks follow, if any."""
     stopping: bool = False
@@ -110,9 +113,6 @@ class _RunCluster:
     prepared: set[str] = dataclasses.field(default_factory=set)
     """Segments whose files a first attempt has prepared in the store (their block tables are
     current): a retry resumes them instead of starting over."""
-    ran: dict[str, collections.Counter[str]] = dataclasses.field(default_factory=dict)
-    """Blocks run per output array by every attempt of a segment's task, by segment id: the
-    run's summary counts them for a segment whose task failed or was retried, too."""
 
     def enter(self) -> bool:
         """Count a task in (call holding ``_CLIENTS_LOCK``); False when the run is stopping."""
@@ -196,7 +196,7 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 
 
 @contextlib.contextmanager
-def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterator[str]:
+def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None = None) -> Iterator[str]:
     """Register the started client (and the head start whose drivers the tasks follow) for
     the segment tasks under a new key, for the ``with`` block; the caller closes them.
 
@@ -208,7 +208,7 @@ def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterato
     key = uuid.uuid4().hex
     try:
         client = head.client if head is not None and head.client is not None else CancellableClient(start.client())
-        run = _RunCluster(client, head)
+        run = _RunCluster(client, tally, head)
         with _CLIENTS_LOCK:
             _RUNS[key] = run
         try:
@@ -268,9 +268,8 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         if run is None or not run.enter():  # the flow body is stopping the run, or has closed its cluster
             raise RunStoppedError.before_start(seg.segment_id)
         retry = seg.segment_id in run.prepared
-        ran = run.ran.setdefault(seg.segment_id, collections.Counter())
     try:
-        return _filter_segment(seg, prep, store, run, retry, ran)
+        return _filter_segment(seg, prep, store, run, retry)
     except RunStoppedError:
         raise
     except Exception as exc:
@@ -282,8 +281,8 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         run.leave()
 
 
-def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _RunCluster, retry: bool,
-                    ran: collections.Counter[str]) -> list[FileOutcome]:
+def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _RunCluster,
+                    retry: bool) -> list[FileOutcome]:
     """The body of :func:`filter_segment` for a task counted in on the run's cluster."""
     logger = get_run_logger()
     cfg = prep.cfg
@@ -304,7 +303,8 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
 
     def on_block(done: int, total: int, res: Any) -> None:
-        ran[res.array_name] += 1
+        if early is None:  # a driver begun before the flow run counts its own blocks
+            run.tally.block(seg.segment_id, res)
         # Blocks are submitted only after every file of the segment is prepared.
         if done == 1:
             with _CLIENTS_LOCK:
@@ -326,6 +326,7 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
     finally:
         block_errors.close()
         progress.close(ended=False)  # the segment raised: a pending update is dropped
+    run.tally.ended(seg.segment_id, outcomes)
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:
         if o.status == "complete":
@@ -586,6 +587,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         if start is None:
             close_early_client()  # nothing to filter here: a cluster the command started is not needed
         outcomes: list[FileOutcome] = []
+        tally = head.tally if head is not None else RunTally()
         begun = head is not None
         try:
             # Closed on the way out: a head start stops its drivers before its cluster closes.
@@ -601,11 +603,11 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 if unchanged:
                     skip_unchanged(quote(unchanged))
                 if start is not None:
-                    done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
+                    done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head)
                     outcomes.extend(done)
         except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
-            if begun:
-                finish_interrupted_run(store, RunResult.ending_now(run_id, started, prep, outcomes), cfg)
+            if begun:  # every driver has returned (the cluster is closed): what they did is in the tally
+                finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
@@ -646,10 +648,12 @@ def left_out_message(prep: Prepared, cfg: JobConfig) -> str:
 
 
 def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore, start: ClientStart,
-                     head: HeadStart | None = None) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
+                     tally: RunTally, head: HeadStart | None = None
+                     ) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
     """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file).
 
-    With a head start, each task follows its segment's running driver instead of starting one.
+    ``tally`` sees every block and every task's outcomes as they come. With a head start,
+    each task follows its segment's running driver instead of starting one.
     """
     logger = get_run_logger()
     cfg = prep.cfg
@@ -660,7 +664,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
         retries=cfg.flow.retries,
         retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
     )
-    with _shared_client(start, head) as key:
+    with _shared_client(start, tally, head) as key:
         futures = []
         for w in busy:
             futures.append((w, time.perf_counter(),
@@ -671,8 +675,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             value = fut.result(raise_on_failure=False)
             secs = time.perf_counter() - t0
             state = fut.state
-            with _CLIENTS_LOCK:
-                ran = dict(_RUNS[key].ran.get(w.segment_id, {}))
+            ran = tally.ran(w.segment_id)
             if state.is_completed() and isinstance(value, list):
                 # Blocks run by every attempt: a retry's own outcomes count only its own.
                 outs = [dataclasses.replace(o, blocks_run=max(o.blocks_run, ran.get(o.array_name, 0)))
