@@ -225,6 +225,26 @@ def chunk_files(store: Path | str) -> dict[str, bytes]:
     return out
 
 
+def stopped_run_counts(store: Path | str, files: int) -> dict[str, int]:
+    """The counts of the store's last run, a run stopped before its end into a store no run
+    wrote before, checked against what the store itself shows done (``twinpass status``'s
+    totals, read from the block tables and completion flags): blocks run = blocks done
+    (no block failed in these runs), files complete alike, and the other ``files`` of the
+    archive unfinished, none failed."""
+    from twinpass.io.store import OutputStore
+    from twinpass.status import collect_status
+
+    status = collect_status(OutputStore.open(str(store), mode="r"))
+    run, totals = status["last_run"], status["totals"]
+    assert run.get("interrupted") is True, run
+    counts = run["counts"]
+    assert totals["blocks_failed"] == 0, totals
+    assert counts["blocks_run"] == totals["blocks_done"], (counts, totals)
+    assert counts["complete"] == totals["complete"], (counts, totals)
+    assert counts["unfinished"] == files - totals["complete"] and counts["failed"] == 0, (counts, totals)
+    return counts
+
+
 # ------------------------------------------------------------------ subprocesses
 def cli_env(**extra: str) -> dict[str, str]:
     """Environment for running ``python -m twinpass.cli`` in a subprocess."""

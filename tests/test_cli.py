@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import scipy.io.wavfile
 
-from conftest import cli_env, run_cli, write_config
+from conftest import cli_env, make_signal, run_cli, write_config, write_stream
 
 FS = 100
 
@@ -247,6 +247,31 @@ def test_a_run_that_leaves_inputs_out_exits_3_until_they_are_excluded(tmp_path: 
     r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
     assert r.returncode == 0 and "invalid 0" in r.stdout, r.stdout + r.stderr
     assert _twinpass("status", str(cfg), "--require-complete").returncode == 0
+
+
+@pytest.mark.parametrize("left_out", [False, True])
+def test_a_report_that_cannot_be_written_after_the_run_keeps_the_runs_exit_status(tmp_path: Path,
+                                                                                  left_out: bool) -> None:
+    # The report's path is taken by a folder (POSIX rename(2): a file cannot replace a
+    # directory), found only after every block is filtered and recorded. The exit status
+    # is the run's own, as the command's documentation gives it (0 clean, 3 inputs left
+    # out), not 2 ("stopped before it began"); the summary is printed, then one error line
+    # naming the report's path and how to write it later; the store's records agree.
+    write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, 200.0, seed=3), 200.0, 2)
+    cfg = write_config(tmp_path)
+    if left_out:  # an NPY file whose header is cut off (numpy's NPY format: magic, version, header)
+        (tmp_path / "archive" / "deck" / "deck_20260301T000020.npy").write_bytes(b"\x93NUMPY not really")
+    report = tmp_path / "out.report.html"  # the report's default path beside out.zarr
+    report.mkdir()
+    r = _twinpass("run", str(cfg), "--no-flow")
+    assert r.returncode == (3 if left_out else 0), r.stdout + r.stderr
+    assert f"complete 2, skipped (unchanged) 0, failed 0, invalid {int(left_out)}; blocks run" in r.stdout, r.stdout
+    assert f"store: {tmp_path / 'out.zarr'}" in r.stdout, r.stdout
+    last = r.stderr.strip().splitlines()[-1]
+    assert last.startswith(f"twinpass: error: {report}: cannot write the report"), r.stderr
+    assert f"twinpass report {cfg}" in last and "Traceback" not in r.stderr, r.stderr
+    r = _twinpass("status", str(cfg), "--require-complete")
+    assert r.returncode == (1 if left_out else 0), r.stdout + r.stderr
 
 
 def test_an_archive_where_no_file_matches_include_is_exit_2_naming_what_it_holds(tmp_path: Path) -> None:

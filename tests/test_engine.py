@@ -242,7 +242,7 @@ def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
     whole segment."""
     import json
 
-    from conftest import cli_env, interrupt_cli
+    from conftest import cli_env, interrupt_cli, stopped_run_counts
     from twinpass.io.store import OutputStore
     from twinpass.io.store_util import array_name
 
@@ -270,6 +270,16 @@ def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
     assert all(f["checks"] != "fail" and not f["errors"] for f in status["files"]), status["files"]
     assert "cancelled (a run was stopped; the next run does them)" in format_status(status)
     assert not all_passed(status)
+    # The stopped run's record counts what it did, as the store shows it (a block was recorded
+    # before the stop); the status and the report's provenance table say so.
+    from twinpass.report_data import provenance
+
+    c = stopped_run_counts(tmp_path / "out.zarr", files=2)
+    assert c["blocks_run"] >= 1
+    said = (f"complete {c['complete']}, failed 0, skipped 0, invalid 0, unfinished {c['unfinished']}, "
+            f"blocks_run {c['blocks_run']}")
+    assert said in format_status(status), format_status(status)
+    assert said in dict(provenance(store, [array_name(rel) for rel in records]))["Last run"]
 
     assert run_job(load_config(cfg)).ok
     g = open_store(tmp_path / "out.zarr")

@@ -26,7 +26,7 @@ from urllib.request import url2pathname
 import pytest
 
 pytest.register_assert_rewrite("prefect_fixtures")  # helpers with asserts, loaded as a plug-in too
-from conftest import interrupt_cli
+from conftest import interrupt_cli, stopped_run_counts
 from prefect_fixtures import (
     FILE_FRAMES,
     FILES_PER_STREAM,
@@ -246,6 +246,84 @@ def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archiv
     check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
 
 
+def test_inputs_left_out_end_the_flow_run_in_a_completed_state_of_its_own_naming_them(prefect_client, npy_archive,
+                                                                                    tmp_path):
+    # Four new files of one stream cut short (an NPY file's header gives the array's shape, and
+    # its data must follow in full: numpy's NPY format specification, version 1.0), so they
+    # are left out and the rest is filtered: the flow run does not end in the plain
+    # "Completed" of a clean run (a served deployment has no exit status to tell them apart)
+    # but in a COMPLETED-type state of its own name, as Prefect's state model allows, whose
+    # message names how many were left out and the first three with their reasons.
+    import shutil
+
+    from prefect.client.schemas.objects import StateType
+
+    archive = Path(shutil.copytree(npy_archive, tmp_path / "archive"))
+    cut = [file_relpath("north", k) for k in range(FILES_PER_STREAM, FILES_PER_STREAM + 4)]
+    for k, rel in enumerate(cut, start=FILES_PER_STREAM):
+        path = write_file(archive, "north", k, seed=90 + k)
+        path.write_bytes(path.read_bytes()[:5000])
+    cfg = write_job(tmp_path, archive)
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.type == StateType.COMPLETED and state.name == flows.STATE_LEFT_OUT, (state.name, state.message)
+    summary = state.result()
+    assert sorted(summary["invalid"]) == cut and summary["counts"]["complete"] == len(ALL_FILES), summary
+
+    run = poll(lambda: prefect_client.read_flow_run(flow_run_id(state)),
+               lambda r: r.state is not None and r.state.is_final(), "the final state of the flow run")
+    assert run.state.type == StateType.COMPLETED and run.state.name == "LeftOut", run.state
+    message = run.state.message
+    assert message.startswith("4 input(s) left out"), message
+    assert sum(rel in message for rel in cut) == 3 and "and 1 more" in message, message
+    assert message.count("NPY header claims") == 3, message  # each named with its reason
+    assert f"twinpass status {tmp_path / 'out.zarr'}" in message, message
+
+
+def test_a_report_that_cannot_be_written_after_the_flow_run_keeps_the_runs_outcome(prefect_client, npy_archive,
+                                                                                  tmp_path, monkeypatch, capsys):
+    # The report's path is taken by a folder (POSIX rename(2): a file cannot replace a
+    # directory), found after every block is filtered and the run recorded: the command
+    # exits 0 as documented for a run whose files are all done (not 2, "stopped before it
+    # began"), prints the summary and then one error line naming the report; the flow run
+    # ends Completed, its message naming the report, and the write-report task run Failed.
+    cfg = write_job(tmp_path, npy_archive)
+    report = tmp_path / "out.report.html"  # the report's default path beside out.zarr
+    report.mkdir()
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    assert cli.main(["run", str(cfg)]) == 0
+    captured = capsys.readouterr()
+    assert f"complete {len(ALL_FILES)}, skipped (unchanged) 0, failed 0, invalid 0" in captured.out, captured.out
+    last = captured.err.strip().splitlines()[-1]
+    assert last.startswith(f"twinpass: error: {report}: cannot write the report") and "twinpass report" in last, \
+        captured.err
+
+    run = _flow_run_of(prefect_client, cfg)
+    assert run.state.is_completed() and "the report was not written" in run.state.message, run.state
+    assert str(report) in run.state.message, run.state.message
+    runs = final_task_runs(prefect_client, run.id, expected=5)
+    assert runs_of(runs, flows.finalize_task)[0].state.is_completed()
+    assert runs_of(runs, flows.report_task)[0].state.is_failed()
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+
+
+def test_a_per_file_table_the_dashboard_refuses_leaves_the_recorded_run_completed(prefect_client, npy_archive,
+                                                                                 tmp_path, monkeypatch, caplog):
+    # Injected fault: the API call that publishes the per-file table artifact fails (the
+    # server went away) after the run is recorded in the store. The flow run still ends
+    # Completed, a warning names the table, and the store holds every file complete.
+    def refused(*args, **kwargs):
+        raise ConnectionError("injected: the Prefect API did not answer")
+
+    monkeypatch.setattr(flows, "create_table_artifact", refused)
+    caplog.set_level(logging.WARNING)
+    cfg = write_job(tmp_path, npy_archive)
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed() and state.name == "Completed", (state.name, state.message)
+    warned = [r.getMessage() for r in caplog.records if "could not publish the per-file table" in r.getMessage()]
+    assert len(warned) == 1 and "injected: the Prefect API did not answer" in warned[0], warned
+    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
+
+
 def test_a_segment_whose_blocks_do_not_fit_the_memory_budget_is_not_retried(prefect_client, npy_archive, tmp_path):
     # Blocks set by hand (block_seconds) whose window exceeds [processing] memory_budget_mib
     # fail their segment with a message naming both settings; running it again cannot help,
@@ -356,6 +434,17 @@ def _file_records_honest(store_location: str) -> dict[str, bool]:
             table = store.read_block_table(array_name(rel), figures=False, seams=False)
             assert table.todo().size == 0, (rel, table.status)
     return {rel: rec.complete for rel, rec in records.items()}
+
+
+def _next_run_finishes(cfg: Path, archive: Path, store: Path) -> None:
+    """The next run of ``cfg`` (it takes the store's lock) completes the job: every file
+    complete with every block done, and each stream's output equal to scipy.signal.sosfiltfilt
+    of the whole segment (:func:`prefect_fixtures.check_against_sosfiltfilt`)."""
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed(), state.message
+    assert all(_file_records_honest(str(store)).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(str(store), archive, stream)
 
 
 def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy_archive, tmp_path, monkeypatch):
@@ -481,17 +570,14 @@ def test_a_run_begun_but_not_taken_over_stops_without_marking_anything_complete(
     errors = [e for rel in records for e in store.read_block_table(array_name(rel), figures=False,
                                                                    seams=False).errors.values()]
     assert errors and all(e.startswith("cancelled: the run was stopped") for e in errors), errors
+    stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))  # its counts: what the store shows done
     engine_logs = [r for r in caplog.records if r.name == "twinpass.engine"]
     assert not [r for r in engine_logs if r.levelno >= logging.ERROR], [r.getMessage() for r in engine_logs]
     summaries = [r.getMessage() for r in engine_logs if "cancelled before they finished" in r.getMessage()]
     assert 1 <= len(summaries) <= len(STREAMS), summaries
     assert sum(int(m.split(": ")[1].split()[0]) for m in summaries) == len(errors)
     monkeypatch.delenv("TWINPASS_FAULTS")
-    state = flows.archive_run(config_path=str(cfg_path), report=False, return_state=True)  # takes the lock
-    assert state.is_completed(), state.message
-    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
-    for stream in STREAMS:
-        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+    _next_run_finishes(cfg_path, npy_archive, tmp_path / "out.zarr")
 
 
 def test_a_run_begun_for_other_settings_is_stopped_and_the_flow_run_starts_afresh(prefect_client, npy_archive,
@@ -653,11 +739,8 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     assert not all(records.values()), records
     root = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_root_info()
     assert root["runs"][-1].get("interrupted") is True, root["runs"]  # the stopped run is the last recorded
-    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
-    assert state.is_completed(), state.message
-    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
-    for stream in STREAMS:
-        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+    stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))  # its counts: what the store shows done
+    _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
 
 
 def _job_in_short_blocks(folder: Path, archive: Path) -> Path:
@@ -708,6 +791,8 @@ def test_ctrl_c_during_a_flow_run_without_a_head_start_cancels_its_blocks_before
                                                                    seams=False).errors.values()]
     assert all(e.startswith(CANCELLED) for e in errors), errors
     assert store.read_root_info()["runs"][-1].get("interrupted") is True
+    # Its counts are what the store shows done (a block was recorded before the stop).
+    assert stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))["blocks_run"] >= 1
 
     run = _flow_run_of_block(prefect_client, block)
     segs = runs_of(final_task_runs(prefect_client, run.id, expected=3), flows.filter_segment)
@@ -715,11 +800,7 @@ def test_ctrl_c_during_a_flow_run_without_a_head_start_cancels_its_blocks_before
     assert all(t.state.is_completed() or "stopped" in (t.state.message or "") for t in segs), \
         [(t.name, t.state.name, t.state.message) for t in segs]
 
-    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
-    assert state.is_completed(), state.message
-    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
-    for stream in STREAMS:
-        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+    _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
 
 
 def test_ctrl_c_in_a_flow_run_without_a_head_start_stops_its_segments_before_the_cluster_closes(
@@ -768,6 +849,8 @@ def test_ctrl_c_in_a_flow_run_without_a_head_start_stops_its_segments_before_the
                                                                    seams=False).errors.values()]
     assert errors and all(e.startswith(CANCELLED) for e in errors), sorted(set(errors))
     assert store.read_root_info()["runs"][-1].get("interrupted") is True
+    # Its counts are what the store shows done (a block was recorded before the stop).
+    assert stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))["blocks_run"] >= 1
     run = _flow_run_of(prefect_client, cfg)
     segs = runs_of(final_task_runs(prefect_client, run.id, expected=3), flows.filter_segment)
     assert len(segs) == len(STREAMS), [(t.name, t.state.name) for t in segs]
@@ -777,11 +860,43 @@ def test_ctrl_c_in_a_flow_run_without_a_head_start_stops_its_segments_before_the
 
     monkeypatch.delenv("TWINPASS_FAULTS")
     monkeypatch.setattr(flows, "TERMINAL_PROGRESS", None)
-    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)  # takes the lock
-    assert state.is_completed(), state.message
-    assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
-    for stream in STREAMS:
-        check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+    _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
+
+
+def test_ctrl_c_in_a_flow_run_that_took_over_a_head_start_records_what_the_run_did(
+        prefect_client, npy_archive, tmp_path, monkeypatch):
+    # The run is begun before its flow run (as the command does) and the flow run takes it
+    # over; Ctrl-C (SIGINT to the main thread, where the flow body waits on its segment
+    # tasks) comes as a task follows the first recorded block, each block delayed 0.2 s so
+    # that most are still to run. The stopped run's record counts the blocks it ran and
+    # the files it completed and left unfinished, as the store's block tables and completion
+    # flags show them; the next run finishes the job (output: scipy.signal.sosfiltfilt of
+    # the whole segment).
+    cfg = _job_in_short_blocks(tmp_path, npy_archive)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "sleep", "file": "*", "block": "*",
+                                                       "seconds": 0.2}]))
+    first = threading.Event()
+
+    def stop_at_first_block(segment: str, done: int, total: int, result: object) -> None:
+        if not first.is_set():
+            first.set()
+            signal.pthread_kill(threading.main_thread().ident, signal.SIGINT)  # Ctrl-C
+
+    monkeypatch.setattr(flows, "TERMINAL_PROGRESS", stop_at_first_block)  # a follower shows its blocks here
+    offer(HeadStart.begin(load_config(cfg)))
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    finally:
+        withdraw()  # a head start the flow run did not take (none, if it went as intended)
+    assert first.is_set()
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    assert stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))["blocks_run"] >= 1
+
+    monkeypatch.delenv("TWINPASS_FAULTS")
+    monkeypatch.setattr(flows, "TERMINAL_PROGRESS", None)
+    _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
 
 
 @pytest.mark.parametrize(("scheduler", "loops_loaded"), [("threads", True), ("processes", False)])

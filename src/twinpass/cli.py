@@ -4,7 +4,9 @@ Commands: ``design``, ``plan``, ``run``, ``status``, ``report``, ``demo``, ``ser
 Exit status: 0 success; 1 some files failed or are incomplete; 2 bad configuration or input
 (nothing run); 3 ``run`` finished, no file failed, but input files were left out (invalid
 input, or no filter for their sample rate: listed with reasons; exclude them in
-``[archive] exclude`` if that is intended); 130 interrupted.
+``[archive] exclude`` if that is intended); 130 interrupted. A report that ``run`` cannot
+write after the run is recorded is an error line after the summary, and the run's own
+status stands.
 """
 
 from __future__ import annotations
@@ -23,7 +25,7 @@ from pathlib import Path
 from typing import Any, Iterator, Sequence
 
 from . import __version__
-from .errors import ConfigError, TwinpassError
+from .errors import ConfigError, ReportNotWrittenError, TwinpassError
 from .startup import start_up_imports
 
 EXIT_LEFT_OUT = 3
@@ -242,11 +244,17 @@ def cmd_run(args: argparse.Namespace) -> int:
     reasons = res.failure_reasons()
     for f in res.failed:
         print(f"failed: {f}: {reasons[f]}")
-    if not args.no_report:
-        from .report_data import write_report
+    unwritten = None
+    if not args.no_report:  # the run is recorded: a report that cannot be written does not change its status
+        from .report_data import report_failure, write_report
 
-        print(f"report: {write_report(cfg)}")
+        try:
+            print(f"report: {write_report(cfg)}")
+        except Exception as e:
+            unwritten = ReportNotWrittenError(report_failure(cfg, e), res.exit_status())
     print(f"store: {cfg.store_location}")
+    if unwritten is not None:
+        raise unwritten
     return res.exit_status()
 
 
@@ -367,9 +375,13 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
             print(f"report: {summary['report']}")
         print(f"store: {summary['store']}")
     if state.is_completed():
-        return EXIT_LEFT_OUT if isinstance(summary, dict) and summary.get("invalid") else 0
-    print(f"run ended {state.name}: {state.message}")
-    return 1
+        code = EXIT_LEFT_OUT if isinstance(summary, dict) and summary.get("invalid") else 0
+    else:
+        print(f"run ended {state.name}: {state.message}")
+        code = 1
+    if isinstance(summary, dict) and summary.get("report_error"):
+        raise ReportNotWrittenError(summary["report_error"], code)
+    return code
 
 
 def cmd_status(args: argparse.Namespace) -> int:
@@ -620,6 +632,9 @@ def _main(argv: Sequence[str] | None) -> int:
         os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
     try:
         return int(args.func(args) or 0)
+    except ReportNotWrittenError as e:  # after the run's summary: the run's own status stands
+        _eprint(f"twinpass: error: {e}")
+        return e.exit_status
     except TwinpassError as e:
         _eprint(f"twinpass: error: {e}")
         return 2

@@ -598,7 +598,8 @@ class FileOutcome:
     blocks_done: int
     blocks_failed: int
     status: str
-    """"complete", "failed", "skipped"."""
+    """"complete", "failed", "skipped"; "unfinished" in the record of a run stopped before its
+    end (:class:`twinpass.job.RunTally`)."""
     seconds: float = 0.0
     errors: dict[int, str] = field(default_factory=dict)
     summary: dict[str, Any] = field(default_factory=dict)

@@ -90,5 +90,17 @@ class RunStoppedError(BlockFailedError):
         return cls(f"segment {segment_id}: the run was stopped before this segment started; rerun to finish it")
 
 
+class ReportNotWrittenError(TwinpassError):
+    """The HTML report could not be written after a run whose outputs and records stand.
+
+    ``exit_status`` is the run's own exit status (0, 1 or 3), which the command keeps: the
+    report is made from the store and can be written again later (``twinpass report``).
+    """
+
+    def __init__(self, message: str, exit_status: int) -> None:
+        super().__init__(message)
+        self.exit_status = exit_status
+
+
 class InjectedFault(TwinpassError):
     """Raised by the fault-injection switch (tests only)."""

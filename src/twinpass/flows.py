@@ -4,7 +4,8 @@
 segment with work (each wraps the engine's Dask work for its blocks) -> finalise ->
 report. Unchanged files are not run; one ``skip-unchanged`` task run, in state
 "Skipped", lists them. A failed segment never stops the others; the flow ends Failed
-naming the failed files, Completed otherwise. Every future is resolved.
+naming the failed files, else in state ``LeftOut`` (type COMPLETED, :data:`STATE_LEFT_OUT`)
+naming the inputs left out, if any, else Completed. Every future is resolved.
 
 ``twinpass run`` begins the run before the flow run exists (:mod:`twinpass.headstart`:
 lock, preparation, cluster, segment drivers); the flow body takes it over, and each
@@ -30,7 +31,6 @@ from __future__ import annotations
 
 from . import _prefect_env  # noqa: F401  (must precede the prefect import)
 
-import collections
 import contextlib
 import contextvars
 import dataclasses
@@ -72,7 +72,7 @@ from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStopped
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
-from .job import Prepared, RunResult, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
+from .job import Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -81,6 +81,11 @@ FLOW_NAME = "twinpass-archive-run"
 ARTIFACT_DESIGN = "twinpass-design"
 ARTIFACT_FILES = "twinpass-files"
 ARTIFACT_REPORT = "twinpass-report"
+STATE_LEFT_OUT = "LeftOut"
+"""Name of the final state (of type COMPLETED) of a flow run in which no file failed but input
+files were left out (invalid input, or no filter for their sample rate): the dashboard shows
+it apart from a clean run's ``Completed``, and automations can match it (event
+``prefect.flow-run.LeftOut``). The command exits 3 for such a run."""
 
 _CLIENTS_LOCK = threading.Lock()
 
@@ -96,6 +101,10 @@ class _RunCluster:
     """
 
     client: CancellableClient
+    tally: RunTally
+    """Blocks run by every attempt of each segment's task, and the outcomes of its last
+    attempt: the run's summary counts them for a segment whose task failed or was retried,
+    and the record of a stopped run is made of them."""
     head: HeadStart | None = None
     """The head start whose running segments the tasks follow, if any."""
     stopping: bool = False
@@ -104,9 +113,6 @@ class _RunCluster:
     prepared: set[str] = dataclasses.field(default_factory=set)
     """Segments whose files a first attempt has prepared in the store (their block tables are
     current): a retry resumes them instead of starting over."""
-    ran: dict[str, collections.Counter[str]] = dataclasses.field(default_factory=dict)
-    """Blocks run per output array by every attempt of a segment's task, by segment id: the
-    run's summary counts them for a segment whose task failed or was retried, too."""
 
     def enter(self) -> bool:
         """Count a task in (call holding ``_CLIENTS_LOCK``); False when the run is stopping."""
@@ -190,7 +196,7 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 
 
 @contextlib.contextmanager
-def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterator[str]:
+def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None = None) -> Iterator[str]:
     """Register the started client (and the head start whose drivers the tasks follow) for
     the segment tasks under a new key, for the ``with`` block; the caller closes them.
 
@@ -202,7 +208,7 @@ def _shared_client(start: ClientStart, head: HeadStart | None = None) -> Iterato
     key = uuid.uuid4().hex
     try:
         client = head.client if head is not None and head.client is not None else CancellableClient(start.client())
-        run = _RunCluster(client, head)
+        run = _RunCluster(client, tally, head)
         with _CLIENTS_LOCK:
             _RUNS[key] = run
         try:
@@ -262,9 +268,8 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         if run is None or not run.enter():  # the flow body is stopping the run, or has closed its cluster
             raise RunStoppedError.before_start(seg.segment_id)
         retry = seg.segment_id in run.prepared
-        ran = run.ran.setdefault(seg.segment_id, collections.Counter())
     try:
-        return _filter_segment(seg, prep, store, run, retry, ran)
+        return _filter_segment(seg, prep, store, run, retry)
     except RunStoppedError:
         raise
     except Exception as exc:
@@ -276,8 +281,8 @@ def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_
         run.leave()
 
 
-def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _RunCluster, retry: bool,
-                    ran: collections.Counter[str]) -> list[FileOutcome]:
+def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _RunCluster,
+                    retry: bool) -> list[FileOutcome]:
     """The body of :func:`filter_segment` for a task counted in on the run's cluster."""
     logger = get_run_logger()
     cfg = prep.cfg
@@ -298,7 +303,8 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
 
     def on_block(done: int, total: int, res: Any) -> None:
-        ran[res.array_name] += 1
+        if early is None:  # a driver begun before the flow run counts its own blocks
+            run.tally.block(seg.segment_id, res)
         # Blocks are submitted only after every file of the segment is prepared.
         if done == 1:
             with _CLIENTS_LOCK:
@@ -320,6 +326,7 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
     finally:
         block_errors.close()
         progress.close(ended=False)  # the segment raised: a pending update is dropped
+    run.tally.ended(seg.segment_id, outcomes)
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:
         if o.status == "complete":
@@ -414,7 +421,8 @@ def skip_unchanged(relpaths: list[str]) -> Any:
 
 @task(name="finalize-run", cache_policy=NO_CACHE)
 def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, durations: dict[str, float]) -> None:
-    """Record the run in the store and publish the per-file table."""
+    """Record the run in the store and publish the per-file table (a table that cannot be
+    published is logged as a warning: the run's outcome is in its records)."""
     finish_run(store, result, cfg)
     rows = []
     for o in result.outcomes:
@@ -430,18 +438,53 @@ def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, duratio
                      "blocks not done": 0, "seconds": 0.0, "worst passband dev (dB)": None,
                      "worst phase (deg)": None, "stopband att (dB)": None,
                      "seam mismatch": bad.explained})
-    create_table_artifact(rows, key=ARTIFACT_FILES, description=f"twinpass run {result.run_id}")
+    with _dashboard_only(f"the per-file table of run {result.run_id}"):
+        create_table_artifact(rows, key=ARTIFACT_FILES, description=f"twinpass run {result.run_id}")
+
+
+@contextlib.contextmanager
+def _dashboard_only(what: str) -> Iterator[None]:
+    """Log an error in the ``with`` block (creating an artifact) as a warning naming ``what``
+    instead of raising it: the run's records are written, and the dashboard's copy of them
+    must not change its outcome."""
+    try:
+        yield
+    except Exception as e:
+        get_run_logger().warning("could not publish %s on the dashboard (%s: %s); the run's records in the "
+                                 "store stand (`twinpass status`)", what, type(e).__name__, e)
 
 
 @task(name="write-report", cache_policy=NO_CACHE)
-def report_task(cfg: JobConfig) -> str:
-    """Write the HTML report beside the store and link it on the dashboard."""
-    from .report_data import write_report
+def report_task(cfg: JobConfig) -> Any:
+    """Write the HTML report beside the store and link it on the dashboard; returns its path.
 
-    path = write_report(cfg)
-    create_link_artifact(Path(path).resolve().as_uri(), link_text="twinpass report", key=ARTIFACT_REPORT,
-                         description="Self-contained HTML report")
+    A report that cannot be written ends the task run Failed, its message saying why and
+    what to do (:func:`~twinpass.report_data.report_failure`); the flow body reports it
+    without changing the run's outcome.
+    """
+    from .report_data import report_failure, write_report
+
+    try:
+        path = write_report(cfg)
+    except Exception as e:
+        get_run_logger().debug("the report was not written", exc_info=True)
+        return Failed(message=report_failure(cfg, e))
+    with _dashboard_only(f"the link to the report {path}"):
+        create_link_artifact(Path(path).resolve().as_uri(), link_text="twinpass report", key=ARTIFACT_REPORT,
+                             description="Self-contained HTML report")
     return str(path)
+
+
+def _write_report(cfg: JobConfig) -> tuple[str | None, str | None]:
+    """Run :func:`report_task` after the run is recorded: (the report's path, None), or
+    (None, what went wrong and what to do) when it was not written, logged as a warning."""
+    written = report_task(quote(cfg), return_state=True)
+    value = written.result(raise_on_failure=False)
+    if written.is_completed() and isinstance(value, str):
+        return value, None
+    problem = written.message or f"{type(value).__name__}: {value}"
+    get_run_logger().warning("the report was not written: %s", problem)
+    return None, problem
 
 
 def load_job(config_path: str | None, config_block: str | None) -> JobConfig:
@@ -496,8 +539,12 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
     -------
     dict
         ``run_id``, ``counts`` (files per status, ``blocks_run``), ``failed`` and ``invalid``
-        (input paths), ``store`` and ``report`` (path or None). When files fail the flow
-        ends Failed, naming them, with this summary as the state's data.
+        (input paths), ``store``, ``report`` (path or None) and ``report_error`` (why the
+        report asked for could not be written, and what to do; None if it was, or if none
+        was asked for: the run's outcome stands either way, and the state's message says so). When files fail the flow
+        ends Failed, naming them, with this summary as the state's data; when none failed
+        but inputs were left out, in a COMPLETED state named ``LeftOut`` (:data:`STATE_LEFT_OUT`)
+        whose message names them.
     """
     with flow_heartbeats():  # only when the caller asked for them (see twinpass.heartbeats)
         return _archive_run(config_path, force, scheduler, workers, config_block, report)
@@ -540,6 +587,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         if start is None:
             close_early_client()  # nothing to filter here: a cluster the command started is not needed
         outcomes: list[FileOutcome] = []
+        tally = head.tally if head is not None else RunTally()
         begun = head is not None
         try:
             # Closed on the way out: a head start stops its drivers before its cluster closes.
@@ -555,30 +603,57 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 if unchanged:
                     skip_unchanged(quote(unchanged))
                 if start is not None:
-                    done, failed_files, durations = _filter_segments(busy, prep, store, start, head)
+                    done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head)
                     outcomes.extend(done)
         except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
-            if begun:
-                finish_interrupted_run(store, RunResult.ending_now(run_id, started, prep, outcomes), cfg)
+            if begun:  # every driver has returned (the cluster is closed): what they did is in the tally
+                finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
         finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
-    report_path = None
-    if report:
-        report_path = report_task(quote(cfg))
+    # The run is recorded: a report that cannot be written is said, and changes nothing else.
+    report_path, report_error = _write_report(cfg) if report else (None, None)
     summary = {"run_id": run_id, "counts": result.counts(), "failed": failed_files,
                "failed_reasons": result.failure_reasons(),
-               "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path}
+               "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path,
+               "report_error": report_error}
+    also = f"; the report was not written: {report_error}" if report_error else ""
     if failed_files:
-        return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}", data=summary)
+        return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}{also}", data=summary)
+    if prep.invalid:
+        return Completed(name=STATE_LEFT_OUT, message=left_out_message(prep, cfg) + also, data=summary)
+    if report_error:
+        return Completed(message=f"the report was not written: {report_error}", data=summary)
     return summary
 
 
+LEFT_OUT_NAMED = 3
+"""Inputs left out that the message of a flow run in state :data:`STATE_LEFT_OUT` names, with their reasons."""
+REASON_CHARS = 200
+"""Characters of each reason shown there (the rest is in ``twinpass status``)."""
+
+
+def left_out_message(prep: Prepared, cfg: JobConfig) -> str:
+    """The message of a flow run that left inputs out: how many, the first few with their
+    reasons (shortened to :data:`REASON_CHARS`), and where the full list is."""
+    named = []
+    for bad in prep.invalid[:LEFT_OUT_NAMED]:
+        reason = bad.reason if len(bad.reason) <= REASON_CHARS else bad.reason[:REASON_CHARS - 3] + "..."
+        named.append(f"{bad.relpath} ({reason})")
+    more = len(prep.invalid) - len(named)
+    return (f"{len(prep.invalid)} input(s) left out, not filtered: " + "; ".join(named)
+            + (f"; and {more} more" if more > 0 else "")
+            + f". `twinpass status {cfg.store_location}` lists them with the remedy (a file left out on purpose "
+            "belongs in [archive] exclude)")
+
+
 def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore, start: ClientStart,
-                     head: HeadStart | None = None) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
+                     tally: RunTally, head: HeadStart | None = None
+                     ) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
     """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file).
 
-    With a head start, each task follows its segment's running driver instead of starting one.
+    ``tally`` sees every block and every task's outcomes as they come. With a head start,
+    each task follows its segment's running driver instead of starting one.
     """
     logger = get_run_logger()
     cfg = prep.cfg
@@ -589,7 +664,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
         retries=cfg.flow.retries,
         retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
     )
-    with _shared_client(start, head) as key:
+    with _shared_client(start, tally, head) as key:
         futures = []
         for w in busy:
             futures.append((w, time.perf_counter(),
@@ -600,8 +675,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             value = fut.result(raise_on_failure=False)
             secs = time.perf_counter() - t0
             state = fut.state
-            with _CLIENTS_LOCK:
-                ran = dict(_RUNS[key].ran.get(w.segment_id, {}))
+            ran = tally.ran(w.segment_id)
             if state.is_completed() and isinstance(value, list):
                 # Blocks run by every attempt: a retry's own outcomes count only its own.
                 outs = [dataclasses.replace(o, blocks_run=max(o.blocks_run, ran.get(o.array_name, 0)))
@@ -762,6 +836,6 @@ def serve_deployment(deployment: "RunnerDeployment") -> None:
     serve(deployment)
 
 
-__all__ = ["ARTIFACT_DESIGN", "ARTIFACT_FILES", "ARTIFACT_REPORT", "FLOW_NAME", "archive_run", "build_deployment",
-           "design_task", "filter_segment", "finalize_task", "preload", "report_task", "schedule",
-           "serve_deployment", "skip_unchanged"]
+__all__ = ["ARTIFACT_DESIGN", "ARTIFACT_FILES", "ARTIFACT_REPORT", "FLOW_NAME", "STATE_LEFT_OUT", "archive_run",
+           "build_deployment", "design_task", "filter_segment", "finalize_task", "left_out_message", "preload",
+           "report_task", "schedule", "serve_deployment", "skip_unchanged"]

@@ -42,7 +42,7 @@ from .config import JobConfig
 from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .errors import RunStoppedError
 from .io.store import OutputStore
-from .job import Prepared, RunResult, begin_run, finish_interrupted_run, now_iso, prepare
+from .job import Prepared, RunTally, begin_run, finish_interrupted_run, now_iso, prepare
 
 log = logging.getLogger(__name__)
 
@@ -57,12 +57,15 @@ class EarlySegment:
 
     The driver's block events wait in a queue until a task follows the segment
     (:meth:`follow`); ``watch``, when given, also sees each of them at once, in the
-    driver's thread (the terminal's progress bar, which need not wait for the flow run).
+    driver's thread (the terminal's progress bar, which need not wait for the flow run), and
+    ``tally`` (the run's :class:`~twinpass.job.RunTally`) counts them and notes the
+    driver's outcomes.
     """
 
     def __init__(self, seg: SegmentWork, prep: Prepared, store: OutputStore, client: Any,
-                 watch: WatchFn | None = None) -> None:
+                 watch: WatchFn | None = None, tally: RunTally | None = None) -> None:
         self.seg = seg
+        self._tally = tally if tally is not None else RunTally()
         self.watched = watch is not None
         """Whether a watcher has seen the driver's blocks already (a follower need not show them again)."""
         self._watch = watch
@@ -74,6 +77,7 @@ class EarlySegment:
         self._thread.start()
 
     def _event(self, done: int, total: int, res: Any) -> None:
+        self._tally.block(self.seg.segment_id, res)
         self._events.put((done, total, res))
         if self._watch is not None:
             try:
@@ -87,6 +91,7 @@ class EarlySegment:
             # for a driver never followed, log_unfollowed() does.
             self._outcomes = run_segment(self.seg, prep.designs[self.seg.sample_rate_hz], prep.cfg, store, client,
                                          on_block=self._event, log_blocks=False)
+            self._tally.ended(self.seg.segment_id, self._outcomes)
         except BaseException as e:  # handed to the follower
             self._error = e
         finally:
@@ -153,6 +158,9 @@ class HeadStart:
         The cluster, when there are blocks to run.
     segments : dict
         :class:`EarlySegment` by segment id, one per segment with work, until its task takes it.
+    tally : RunTally
+        The blocks and outcomes of the run's drivers (these, and those of the flow run's
+        tasks), for the record of a run stopped before its end.
     """
 
     cfg: JobConfig
@@ -166,6 +174,7 @@ class HeadStart:
     prep: Prepared
     client_start: ClientStart | None
     segments: dict[str, EarlySegment] = field(default_factory=dict)
+    tally: RunTally = field(default_factory=RunTally)
     _drivers: list[EarlySegment] = field(default_factory=list)
     _client: CancellableClient | None = None
     _lock: contextlib.ExitStack = field(default_factory=contextlib.ExitStack)
@@ -202,7 +211,7 @@ class HeadStart:
             if head.client_start is not None:
                 head._client = CancellableClient(head.client_start.client())
                 for w in busy:  # one by one: if a later driver cannot start, close() stops those running
-                    driver = EarlySegment(w, prep, store, head._client, watch)
+                    driver = EarlySegment(w, prep, store, head._client, watch, head.tally)
                     head.segments[w.segment_id] = driver
                     head._drivers.append(driver)
             head._lock = held.pop_all()  # held from now on until release() or withdraw()
@@ -309,7 +318,7 @@ def withdraw() -> None:
             log.warning("no flow run took over run %s; stopping it: its unfinished blocks are recorded as not "
                         "done, and the next run of the same configuration finishes them", head.run_id)
         head.close()  # the drivers have ended: the run is recorded as interrupted, then the lock released
-        finish_interrupted_run(head.store, RunResult.ending_now(head.run_id, head.started, head.prep, []), head.cfg)
+        finish_interrupted_run(head.store, head.tally.result(head.run_id, head.started, head.prep), head.cfg)
         head.release()
 
 

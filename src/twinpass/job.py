@@ -6,10 +6,12 @@ The Prefect flow (:mod:`twinpass.flows`) calls the same steps as tasks; the CLI'
 
 from __future__ import annotations
 
+import collections
 import dataclasses
 import datetime as _dt
 import logging
 import os
+import threading
 import traceback
 import uuid
 from concurrent.futures import Future, ThreadPoolExecutor, wait
@@ -17,6 +19,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from .config import JobConfig
+from .core.checks import was_cancelled
 from .core.design import design_filter, response_report
 from .core.plan import FilePlan, Plan, make_plan
 from .core.segments import InvalidFile, Segment
@@ -176,8 +179,9 @@ class RunResult:
     notes: list[str] = field(default_factory=list)
     """The plan's notes (:attr:`twinpass.core.plan.Plan.notes`)."""
     interrupted: bool = False
-    """The run was stopped (Ctrl-C) before its end: ``outcomes`` holds the segments that had
-    finished; the others' finished blocks are kept, and the next run does the rest."""
+    """The run was stopped (Ctrl-C) before its end: ``outcomes`` are what it did until then
+    (:meth:`RunTally.result`), files it did not finish ``"unfinished"``; their finished
+    blocks are kept, and the next run does the rest."""
 
     @classmethod
     def ending_now(cls, run_id: str, started: str, prep: Prepared, outcomes: list[FileOutcome]) -> RunResult:
@@ -216,7 +220,11 @@ class RunResult:
         return 1 if self.failed else 3 if self.invalid else 0
 
     def counts(self) -> dict[str, int]:
+        """Files per status (``complete``, ``failed``, ``skipped``, ``invalid``, and for an
+        interrupted run ``unfinished``) and ``blocks_run``, the blocks the run ran."""
         c: dict[str, int] = {"complete": 0, "failed": 0, "skipped": 0, "invalid": len(self.invalid)}
+        if self.interrupted:
+            c["unfinished"] = 0
         for o in self.outcomes:
             c[o.status] = c.get(o.status, 0) + 1
         c["blocks_run"] = sum(o.blocks_run for o in self.outcomes)
@@ -225,6 +233,71 @@ class RunResult:
     @property
     def ok(self) -> bool:
         return not self.failed
+
+
+class RunTally:
+    """What a run's segment drivers report while they run, for the record of a run stopped
+    before its end (their outcomes never reach the code that waited for them).
+
+    Fed from the drivers' threads: :meth:`block` with each block the engine has recorded
+    in the store (its per-block callback), :meth:`ended` with a driver's outcomes when it
+    returns (a stopped run's drivers return too, their unfinished blocks recorded as
+    cancelled). Thread-safe.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._ran: dict[str, collections.Counter[str]] = {}
+        self._ended: dict[str, list[FileOutcome]] = {}
+
+    def block(self, segment_id: str, res: Any) -> None:
+        """Count a recorded block of ``segment_id`` (a ``BlockResult``) as run, unless its task was
+        cancelled (the run was stopped: nothing ran, or what ran was not recorded)."""
+        if was_cancelled(res.error):
+            return
+        with self._lock:
+            self._ran.setdefault(segment_id, collections.Counter())[res.array_name] += 1
+
+    def ran(self, segment_id: str) -> dict[str, int]:
+        """Blocks run so far for ``segment_id`` (every attempt), by output array."""
+        with self._lock:
+            return dict(self._ran.get(segment_id, {}))
+
+    def ended(self, segment_id: str, outcomes: list[FileOutcome]) -> None:
+        """Note the outcomes a driver of ``segment_id`` returned (a later attempt's replace them)."""
+        with self._lock:
+            self._ended[segment_id] = list(outcomes)
+
+    def outcomes(self, prep: Prepared) -> list[FileOutcome]:
+        """Per-file outcomes of the run so far, every file of ``prep`` once.
+
+        A segment whose driver returned has its outcomes, each with the blocks counted here
+        as run, and a file that failed only because its blocks were cancelled (no block
+        failed its checks or raised) counted ``"unfinished"``. The files with work of a
+        segment whose driver did not return (not started, or raised) are ``"unfinished"``
+        with the blocks counted here; files without work are ``"skipped"``.
+        """
+        out: list[FileOutcome] = []
+        for w in prep.work:
+            ran = self.ran(w.segment_id)
+            with self._lock:
+                ended = self._ended.get(w.segment_id)
+            if ended is None:
+                out += [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") if f.action == "skip"
+                        else FileOutcome(f.relpath, f.array_name, 0, ran.get(f.array_name, 0), 0, 0, "unfinished")
+                        for f in w.files]
+                continue
+            for o in ended:
+                stopped = (o.status == "failed" and o.check_failures is None and not o.summary.get("blocks_fail")
+                           and all(was_cancelled(e) for e in o.errors.values()))
+                out.append(dataclasses.replace(o, blocks_run=ran.get(o.array_name, 0),
+                                               status="unfinished" if stopped else o.status))
+        return out
+
+    def result(self, run_id: str, started: str, prep: Prepared) -> RunResult:
+        """The result of the run ``run_id`` of ``prep`` stopped now (:meth:`outcomes`), for
+        :func:`finish_interrupted_run`."""
+        return RunResult.ending_now(run_id, started, prep, self.outcomes(prep))
 
 
 def now_iso() -> str:
@@ -350,10 +423,11 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         for w in prep.work:
             if not w.has_work:
                 outcomes.extend(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") for f in w.files)
+        tally = RunTally()
         try:
-            _run_busy(busy, prep, cfg, store, outcomes, scheduler, workers, on_block, say)
+            _run_busy(busy, prep, cfg, store, outcomes, scheduler, workers, on_block, say, tally)
         except BaseException:  # Ctrl-C: the run is recorded as interrupted, then the interrupt goes on
-            finish_interrupted_run(store, RunResult.ending_now(run_id, started, prep, outcomes), cfg)
+            finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
         finish_run(store, result, cfg)
@@ -362,8 +436,10 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
 
 def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: OutputStore,
               outcomes: list[FileOutcome], scheduler: str | None, workers: int | None,
-              on_block: Callable[[str, int, int, Any], None] | None, say: Callable[[str], None]) -> None:
-    """Run the segments with work on a Dask cluster, adding their outcomes to ``outcomes``."""
+              on_block: Callable[[str, int, int, Any], None] | None, say: Callable[[str], None],
+              tally: RunTally) -> None:
+    """Run the segments with work on a Dask cluster, adding their outcomes to ``outcomes``;
+    ``tally`` sees each block and each driver's outcomes as they come."""
     if not busy:
         return
     from .engine import dask_client  # imports distributed: only when there is work
@@ -371,11 +447,17 @@ def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: Ou
         client = CancellableClient(dask)
 
         def one(w: SegmentWork) -> list[FileOutcome]:
-            cb = None if on_block is None else (lambda d, t, r, sid=w.segment_id: on_block(sid, d, t, r))
+            def cb(done: int, total: int, res: Any) -> None:
+                tally.block(w.segment_id, res)
+                if on_block is not None:
+                    on_block(w.segment_id, done, total, res)
+
             try:
-                return run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
+                outs = run_segment(w, prep.designs[w.sample_rate_hz], cfg, store, client, on_block=cb)
             except Exception as e:  # one segment's trouble (e.g. its store arrays) must not stop the others
-                return segment_failed(w, e, say)
+                outs = segment_failed(w, e, say)
+            tally.ended(w.segment_id, outs)
+            return outs
 
         with ThreadPoolExecutor(max_workers=4) as pool:
             drivers = [pool.submit(one, w) for w in busy]
@@ -387,5 +469,5 @@ def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: Ou
                 raise
 
 
-__all__ = ["Prepared", "RunResult", "designs_for", "prepare", "run_job", "segment_work", "segment_failed",
+__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "prepare", "run_job", "segment_work", "segment_failed",
            "library_versions", "response_report"]

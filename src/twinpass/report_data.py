@@ -41,6 +41,20 @@ def default_report_path(cfg: JobConfig) -> Path:
     return folder / f"{stem}{REPORT_SUFFIX}"
 
 
+def report_failure(cfg: JobConfig, exc: BaseException) -> str:
+    """What to say when the report of a run that has finished could not be written (``exc``
+    raised by :func:`write_report`): the report's path and the cause, that the run stands,
+    and how to write the report once the cause is fixed."""
+    path = str(default_report_path(cfg))
+    detail = str(exc) if isinstance(exc, TwinpassError) else f"cannot make the report ({type(exc).__name__}: {exc})"
+    if path not in detail:
+        detail = f"{path}: {detail}"
+    config = cfg.source if Path(cfg.source).is_file() else "CONFIG"
+    return (f"{detail.rstrip('.')}. The run itself is finished and recorded (`twinpass status "
+            f"{cfg.store_location}`); once that is fixed, write the report with `twinpass report {config}` "
+            "(add --output FILE to write it elsewhere).")
+
+
 def _epoch(iso: str | None) -> float | None:
     if not iso:
         return None
@@ -362,7 +376,7 @@ class _ReadOnce:
 
 def provenance(store: Any, names: Sequence[str]) -> list[tuple[str, str]]:
     """Rows (label, text) saying which runs and library versions wrote the store's outputs:
-    the store, its last run, that run's versions, and the outputs whose ``written_by`` names
+    the store, its last run (with its counts of files and blocks), that run's versions, and the outputs whose ``written_by`` names
     other versions (or none, for outputs written before outputs recorded their runs)."""
     info = store.read_root_info()
     runs = [r for r in info.get("runs") or [] if isinstance(r, Mapping)]
@@ -370,8 +384,10 @@ def provenance(store: Any, names: Sequence[str]) -> list[tuple[str, str]]:
     rows = [("Store", str(store.location))]
     if last:
         stopped = ", stopped before its end" if last.get("interrupted") else ""
+        counts = last.get("counts") or {}
+        done = "".join(f"{k} {v}, " for k, v in counts.items()) if isinstance(counts, Mapping) else ""
         rows.append(("Last run", f"{last.get('run_id')}, {last.get('start')} to {last.get('end')}{stopped}; "
-                                 f"configuration digest {last.get('config_digest')}"))
+                                 f"{done}configuration digest {last.get('config_digest')}"))
     now = last.get("versions") or info.get("versions") or {}
     if isinstance(now, Mapping) and now:
         rows.append(("Library versions", ", ".join(f"{k} {v}" for k, v in now.items())))
