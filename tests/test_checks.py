@@ -528,6 +528,31 @@ def test_seam_mismatch_edge_cases() -> None:
         checks.seam_mismatch(np.zeros(3), np.zeros(4), 1.0)
 
 
+# ------------------------------------------------------- designs without a stated attenuation
+
+
+def test_segments_resolve_a_fixed_order_band_and_a_notch_band() -> None:
+    # The 4 Hz passband of a fixed-order band-pass (48-52 Hz) and the rejected band of a 2 Hz
+    # notch (overall level at or below -REJECTION_DB) hold graded bins of a long block. The
+    # band edges come from scipy.signal.sosfreqz of the design's sections (|H|^2 of one
+    # pass, squared for two), independently of the check's own grid.
+    from twinpass.core.design import design_filter
+
+    for spec, passband in ((ResponseSpec(kind="bandpass", family="butterworth", order=2, cutoff_hz=(48.0, 52.0)), True),
+                           (ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=2.0), False)):
+        design = design_filter(spec, 1000.0)
+        nperseg = checks.segment_length(1 << 20, design)
+        masks = checks._design_masks(design, nperseg)
+        bins = masks.passband if passband else masks.stopband
+        f, h = signal.sosfreqz(design.sos, worN=np.fft.rfftfreq(nperseg, 1e-3), fs=1000.0)
+        level = 20.0 * np.log10(np.abs(h) ** 2 + 1e-300)
+        assert bins.sum() >= 2, (spec.kind, nperseg)
+        if passband:
+            assert np.all(level[bins] >= -3.02)
+        else:
+            assert np.all(level[bins] <= -checks.REJECTION_DB + 0.01)
+
+
 # ----------------------------------------------------------------------------- integrity
 
 
@@ -616,6 +641,16 @@ def test_grading_thresholds_follow_the_configuration() -> None:
     ]
     for values, expected in cases:
         assert checks.grade(_figures(**values), design, CFG, TOL) == expected, values
+
+
+def test_designs_without_a_stated_attenuation_are_graded_on_rejection() -> None:
+    # Product rule: a fixed-order design states no attenuation; its stopband figure (rejection
+    # bins and power gates) fails below REJECTION_DB less the configured margin.
+    design = lowpass_butterworth()
+    assert design.spec.stopband_attenuation_db is None
+    limit = checks.REJECTION_DB - CFG.stopband_margin_db
+    assert checks.grade(_figures(stopband_att_db=limit + 0.1), design, CFG, TOL) == PASS
+    assert checks.grade(_figures(stopband_att_db=limit - 0.1), design, CFG, TOL) == FAIL
 
 
 def test_grade_file() -> None:
