@@ -58,8 +58,8 @@ The figures compare the chosen ``H`` with the designed ``G(f)``:
   (degrees; zero-phase filtering means about 0);
 * stopband attenuation: ``10 log10(Pxx / Pyy)`` over stopband bins where the input has
   energy (within :data:`INPUT_FLOOR_DB` of its peak PSD) and the output is measurable
-  (coherent with the input and above the estimator's leakage, see below); the smallest
-  value (dB).
+  (coherent with the input and above the estimator's leakage, see below), and the figures
+  of the two power gates (below); the smallest value (dB).
 
 Passband bins are those where the designed overall level is within the designed ripple
 of 0 dB (``passband_ripple_db``; -3.0103 dB when the response has no ripple figure, i.e.
@@ -72,6 +72,32 @@ window's whole main lobe around the bin (2 bins either side), and not within
 (fixed-order and notch designs: their stopband bins are *rejection bins*). :func:`grade`
 fails a stopband figure below ``required - stopband_margin_db``. Levels are taken on a grid
 :data:`OVERSAMPLE` times finer than the bins, so narrow notches are not skipped.
+
+The two power gates compare how much power the output holds with the most a correct output
+can hold, so that an unfiltered or wrongly filtered block fails wherever its input has
+power the design removes, even where no bin can be graded (a narrow notch, a band
+narrower than the bins resolve):
+
+* the Welch gate, on the plain estimate: a correct output's power is at most ``U = sum_k
+  B_k Pxx_k`` over all bins, ``B_k`` the largest designed power gain ``G(f)^2`` over the
+  main lobe around bin ``k``. The window spreads the power of each frequency ``f`` of the
+  input over the bins, those whose main lobe holds ``f`` taking all but about 5e-4 of it
+  (the energy of the Hann window's side lobes, computed), and each of those has ``B_k >=
+  G(f)^2``: so ``U`` is at least what the design passes, but for that share. The output's measured
+  power ``M`` counts ``coherence * Pyy`` (the power its input explains) over bins spread
+  over at least :data:`MIN_EFFECTIVE_SEGMENTS` segments, so output that input outside a
+  segment left (the tail of a step's response) does not count;
+* the slow gate, over the whole block: the energies of input and output in a
+  two-dimensional slow subspace (a smooth taper over the block and the tapered line) are
+  compared with the design's largest gain over the band they cover (a few bins of the
+  whole block) plus the taper's leakage (:func:`_slow_gate`); it sees offsets, drifts and
+  the slowest waves that the per-segment lines remove from the Welch estimate, which is
+  where a high-pass output left unfiltered differs, and applies to designs that remove that
+  band (high-pass and band-pass).
+
+A gate shows a fault where ``M`` exceeds its bound by more than :data:`GATE_SLACK`; its
+figure is then ``10 log10((P - U) / (M - U))`` (``P`` the input's power): the attenuation of
+the power the design removes that the output achieved, 0 dB for an unfiltered block.
 
 A passband bin is *coherent* when its coherence is at least ``ChecksConfig.coherence_min``
 and the normalised random error of ``|H|`` (Bendat & Piersol, *Random Data*, chapter on
@@ -121,8 +147,8 @@ Estimator bias and the error allowance
   two-pass impulse response beyond its centre is ``sum_p R_p p^|m|``, so that input adds
   only combinations of ``p^t`` from the first sample and ``p^(n - 1 - t)`` from the last
   (:func:`_edge_modes`). When a channel fails the coherent-fraction rule (see
-  :func:`grade`) or its stopband figure is short of what the grading accepts, its figures
-  are estimated again from the output minus the least-squares
+  :func:`grade`) or its stopband figure (bins and gates alike) is short of what the grading
+  accepts, its figures are estimated again from the output minus the least-squares
   fit of those free responses to the difference between the output and the design's
   two-pass response to the block's own input (``scipy.signal.sosfiltfilt``, no padding).
   A correct output then differs from that response only by the fitted part and is
@@ -142,6 +168,19 @@ as a passband deviation, a phase, a missing stopband attenuation or a loss of co
 beyond these allowances, wherever the block's input has power in the bands that tell right
 from wrong.
 
+What the check cannot see: a band where right and wrong differ but the input has no power,
+or power more than :data:`INPUT_FLOOR_DB` below its strongest spectral peak (a noise floor
+under a strong tone); a band narrower than the bins resolve, unless it holds a fair share of
+the power the output may hold (the Welch gate shows a fault only beyond :data:`GATE_SLACK`
+of it): segments are at most a quarter of the block and :data:`MAX_NPERSEG`, so a 2 Hz
+notch's rejected band (30 dB down, 0.23 Hz wide) holds bins only with segments of 32768
+samples, blocks of about two minutes at 1 kHz, and never at 48 kHz, where a wrong notch
+fails only if the hum is a large part of the block's power; content between the slow
+gate's band (a few bins of the whole block) and about four bins of a segment, which only
+the Welch gate sees; and a wrong output that still removes most of what the design removes
+(it is graded like a stopband, on what it leaves). An event that one segment carries (a
+block silent but for a burst at its edge, a lone step) is not assessed in the bins it
+dominates.
 """
 
 from __future__ import annotations
@@ -156,7 +195,7 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage, signal
 
-from twinpass.core.loops import channel_stats, segment_rows, spectra_sums
+from twinpass.core.loops import channel_stats, chunked_stats, segment_rows, spectra_sums
 from twinpass.core.design import HALF_POWER_DB, overall_level_grid, overall_response
 from twinpass.core.effective import rounding_estimate
 from twinpass.core.types import Design
@@ -280,6 +319,10 @@ factor 5 is headroom for floating-point rounding in the recursions. Compare floa
 outputs, before any cast to the output type."""
 
 _MAIN_LOBE_BINS = 2
+GATE_SLACK: float = 0.25
+"""A power gate (see the module notes) shows a fault only where the output's power exceeds
+the most a correct output holds by more than this share (+0.97 dB): room for the estimate's
+own errors (input from outside a segment, rounding)."""
 _RESPONSE_FIGURES = ("passband_dev_db", "phase_deg", "stopband_att_db", "passband_bins", "coherent_bins")
 _WINDOW = "hann"
 
@@ -533,7 +576,7 @@ def _bands(design: Design) -> tuple[tuple[float, float], ...]:
     (:func:`~twinpass.core.design.overall_level_grid`, which resolves narrow notches).
     Only bands between two edges count (a band reaching 0 Hz or Nyquist ends at a spec edge,
     which :data:`SEGMENT_CYCLES` resolves; a finer resolution there would cost more than the
-    check leaves to gain). Passbands lose :data:`EDGE_ALLOWANCE_BINS` bins at each edge and
+    gates leave to gain). Passbands lose :data:`EDGE_ALLOWANCE_BINS` bins at each edge and
     want :data:`BAND_CYCLES` periods of their width; stopbands lose only the main lobe and
     want :data:`STOPBAND_CYCLES`. Cached by content, as :func:`_design_masks`.
     """
@@ -598,6 +641,7 @@ class _Masks:
 
 
 _MASK_CACHE: dict[Any, Any] = {}
+_SLOW_CACHE: dict[Any, Any] = {}
 _MASK_CACHE_SIZE = 32
 
 
@@ -704,11 +748,13 @@ class _BinFigures:
 
     ``figures`` (channels, 5): the columns ``_RESPONSE_FIGURES``, the stopband column from
     this estimate's stopband bins alone; ``att`` (n_freqs, channels): ``10 log10(Pxx / Pyy)``
-    where the bin is a usable stopband bin (see the module notes), NaN elsewhere.
+    where the bin is a usable stopband bin (see the module notes), NaN elsewhere; ``gate``
+    (channels,): the power gate's figure (:func:`_gate_attenuation`), NaN where it passes.
     """
 
     figures: np.ndarray
     att: np.ndarray
+    gate: np.ndarray
 
 
 def _response_figures(
@@ -769,7 +815,28 @@ def _response_figures(
             att = np.where(usable, 10.0 * np.log10(pxx / pyy), np.nan)
         out[:, 2] = _stopband_minimum(att)
     out[~live] = np.nan  # no input: nothing measured
-    return _BinFigures(out, att)
+    # The power gate counts the output's power that its input explains (coherence times Pyy),
+    # in bins whose power is spread over several segments: output that input outside a
+    # segment left (the tail of a step's response) is not explained, nor decided by one segment.
+    spread = est.effective_segments >= MIN_EFFECTIVE_SEGMENTS
+    explained = np.sum(np.where(spread, coh * pyy, 0.0), axis=0)
+    gate = _gate_attenuation(np.sum(pxx, axis=0), masks.bound @ pxx, explained)
+    return _BinFigures(out, att, np.where(live, gate, np.nan))
+
+
+def _gate_attenuation(power_in: np.ndarray, passed: np.ndarray, power_out: np.ndarray) -> np.ndarray:
+    """The power gate's figure per channel (dB): how much of the power the design removes the
+    output lacks, where the output holds more than a correct one can.
+
+    ``power_in`` and ``power_out`` are the powers of input and output, ``passed`` the most a
+    correct output can hold of them (same units; see the module notes). Where ``power_out >
+    (1 + GATE_SLACK) passed``, the figure is ``10 log10((power_in - passed) / (power_out -
+    passed))``: 0 dB for an output that removed nothing of what it should; elsewhere NaN
+    (nothing wrong shown).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        value = 10.0 * np.log10((power_in - passed) / (power_out - passed))
+    return np.where((power_out > (1.0 + GATE_SLACK) * passed) & (power_in > passed), value, np.nan)
 
 
 def _stopband_minimum(att: np.ndarray) -> np.ndarray:
@@ -778,7 +845,20 @@ def _stopband_minimum(att: np.ndarray) -> np.ndarray:
     return np.where(measured.any(axis=0), np.min(np.where(measured, att, np.inf), axis=0), np.nan)
 
 
-def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
+_Sums = tuple[tuple[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
+"""Sums of squares and sums over runs of input and output per channel (see :func:`_slow_gate`)."""
+
+
+def _sums(x: np.ndarray, y: np.ndarray) -> _Sums:
+    """:data:`_Sums` of ``x`` and ``y``."""
+    chunk = _slow_chunk(x.shape[0])
+    _, ssx, _, rx = chunked_stats(x, chunk)
+    _, ssy, _, ry = chunked_stats(y, chunk)
+    return (ssx, ssy), (rx, ry)
+
+
+def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig,
+                       sums: _Sums | None = None) -> np.ndarray:
     """Response figures (channels, 5) of time-major ``x`` -> ``y``; NaN when too short.
 
     Two Welch estimates, each segment with its least-squares line removed: the plain one
@@ -806,6 +886,7 @@ def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: Checks
 
     plain = estimate(x, y, False)
     figures[...] = plain.figures
+    figures[:, 2] = np.fmin(plain.figures[:, 2], plain.gate)
     plain_lost = _coherence_lost(plain.figures[:, 3], plain.figures[:, 4])
     # The differenced estimate where the plain one leaves the verdict open: its coherence
     # lost, or the stopband short of what it must reach, or a stated attenuation not
@@ -824,8 +905,117 @@ def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: Checks
         figures[again[swap]] = diff.figures[swap]
         # Stopband: per bin, the plain estimate where it is usable, else the differenced one.
         bins = _stopband_minimum(np.where(np.isnan(plain.att[:, again]), diff.att, plain.att[:, again]))
-        figures[again, 2] = bins
+        figures[again, 2] = np.fmin(bins, plain.gate[again])
+    figures[:, 2] = np.fmin(figures[:, 2], _slow_gate(design, x, y, sums))
     return figures
+
+
+SLOW_TAPER_POWER: int = 3
+"""The slow gate's taper over the whole block is ``(1 - u^2)^SLOW_TAPER_POWER`` for ``u`` from -1
+to 1 (its spectrum falls as ``1/f^4``)."""
+SLOW_BANDS: tuple[float, ...] = (2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
+"""Candidate widths of the slow band, in bins of the whole block (``fs / samples`` Hz)."""
+SLOW_RUNS: int = 4096
+"""The slow gate weighs the block in runs of ``samples // SLOW_RUNS`` rows (at least one),
+summed in the pass that takes the levels."""
+SLOW_STAIR_LEAKAGE: float = 2e-3
+"""Added to the taper's leakage (amplitude) for the staircase the runs make of it."""
+SLOW_GAIN_MAX: float = 0.3
+"""The slow gate is skipped where the design passes more than this (amplitude, plus the
+taper's leakage) of the slowest content: it could not tell right from wrong there."""
+
+
+@lru_cache(maxsize=1)
+def _slow_leakage() -> np.ndarray:
+    """Per width in :data:`SLOW_BANDS`, the largest root share of energy the slow basis
+    functions (see :func:`_slow_gate`) hold beyond it (amplitude; computed once on 4096
+    samples, zero-padded 64 times: the shares hardly depend on the block length)."""
+    n, pad = 4096, 64
+    u = (np.arange(n) - 0.5 * (n - 1)) / (0.5 * n)
+    w = (1.0 - u * u) ** SLOW_TAPER_POWER
+    basis = np.stack([w, w * u], axis=1)
+    power = np.abs(np.fft.rfft(basis, n * pad, axis=0)) ** 2
+    power[1:] *= 2.0
+    total = power.sum(axis=0)
+    beyond = [power[int(m * pad) :].sum(axis=0) / total for m in SLOW_BANDS]
+    return np.sqrt(np.max(beyond, axis=1))
+
+
+def _slow_chunk(n: int) -> int:
+    """Rows per run whose sums the slow gate weighs alike (:data:`SLOW_RUNS` runs at least)."""
+    return max(1, int(n) // SLOW_RUNS)
+
+
+def _slow_energy(n: int, runs: np.ndarray) -> np.ndarray:
+    """Energies in the slow subspace per channel, from the sums over runs of
+    :func:`_slow_chunk` rows (:func:`~twinpass.core.loops.chunked_stats`).
+
+    Each run is weighed by the taper at its centre: ``w = (1 - u^2)^SLOW_TAPER_POWER`` and
+    ``w u`` with ``u = (t - (n - 1) / 2) / (n / 2)``, a staircase through the smooth taper
+    (its extra leakage, below 1e-3 in amplitude with :data:`SLOW_RUNS` runs or more, is in
+    :data:`SLOW_STAIR_LEAKAGE`); the energy is the sum of the two projections' squares, each
+    divided by its basis function's squared norm (the two are orthogonal by symmetry).
+    """
+    chunk = _slow_chunk(n)
+    first = np.arange(runs.shape[0]) * chunk
+    count = np.minimum(first + chunk, n) - first
+    u = (first + 0.5 * (count - 1) - 0.5 * (n - 1)) / (0.5 * n)
+    w = (1.0 - u * u) ** SLOW_TAPER_POWER
+    basis = np.stack([w, w * u])  # (2, runs)
+    norms = (basis * basis) @ count
+    return np.sum((basis @ runs) ** 2 / norms[:, None], axis=0)
+
+
+def _slow_gate(design: Design, x: np.ndarray, y: np.ndarray, sums: _Sums | None = None) -> np.ndarray:
+    """The slow gate's figure per channel of time-major ``x`` -> ``y`` (dB; NaN where it
+    passes or does not apply, see :func:`_slow_band`).
+
+    ``sums`` (:func:`_sums`), when given, holds the sums of squares of ``x`` and ``y`` and
+    their sums over runs of :func:`_slow_chunk` rows, taken with their levels.
+
+    The energies ``E`` of input and output in the slow subspace (spanned by the taper ``w``
+    over the whole block and by ``w u``, a tapered line; :func:`_slow_energy`) are compared:
+    of the input's content within the slow band (``0 .. m fs / n`` Hz for ``n`` samples) a
+    correct output holds at most the design's largest gain ``G_b`` there, and of its own
+    content beyond the band the subspace picks up at most the taper's leakage ``s``
+    (:func:`_slow_leakage`); so ``E_y <= 2 (G_b |x| + s |y|)^2`` (``|.|``: the norm over the
+    block), the bound passed to :func:`_gate_attenuation` with ``E_x`` as the input's power.
+    Input outside the block is taken to be like the block's own, which the edge rule
+    (:func:`_block_response`) makes so where it is not.
+    """
+    n = x.shape[0]
+    band = _slow_band(design, n)
+    if band is None:
+        return np.full(x.shape[1], np.nan)
+    (ssx, ssy), runs = sums if sums is not None and sums[1][0].shape[0] else _sums(x, y)
+    gain, leak = band
+    ex, ey = (_slow_energy(n, r) for r in runs)
+    bound = 2.0 * (gain * np.sqrt(ssx) + leak * np.sqrt(ssy)) ** 2
+    return _gate_attenuation(ex, bound, ey)
+
+
+def _slow_band(design: Design, n: int) -> tuple[float, float] | None:
+    """(``G_b``, ``s``) of :func:`_slow_gate` for blocks of ``n`` samples, or None where the
+    gate does not apply (their sum at least :data:`SLOW_GAIN_MAX`, or fewer than 2 samples).
+
+    The band width ``m`` (bins of the block, ``fs / n`` Hz) is the one of :data:`SLOW_BANDS`
+    with the least ``G_b + s``; ``G_b`` is the largest designed amplitude ``G(f)`` from 0 Hz to
+    ``m fs / n`` (sampled on 257 points; designs that reject slow content rise steadily there).
+    """
+
+    def compute() -> tuple[float, float] | None:
+        if n < 2:
+            return None
+        fs = float(design.sample_rate_hz)
+        bands = np.asarray(SLOW_BANDS)
+        f = np.linspace(0.0, min(bands[-1] * fs / n, fs / 2.0), 257)
+        peak = np.maximum.accumulate(overall_response(design, f))
+        gain = peak[np.minimum(np.searchsorted(f, bands * fs / n), f.size - 1)]
+        leak = _slow_leakage() + SLOW_STAIR_LEAKAGE
+        best = int(np.argmin(gain + leak))
+        return None if gain[best] + leak[best] >= SLOW_GAIN_MAX else (float(gain[best]), float(leak[best]))
+
+    return _cached(_design_key(design, int(n)), compute, _SLOW_CACHE)
 
 
 def _stopband_short(att: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
@@ -870,9 +1060,11 @@ def _edge_modes(sos: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
     return rows, np.concatenate(columns, axis=1)
 
 
-def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
-    """Response figures (channels, 5) of a block core, with the edge rule (module notes)."""
-    figures = _estimated_figures(x, y, design, cfg)
+def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig,
+                    sums: _Sums | None = None) -> np.ndarray:
+    """Response figures (channels, 5) of a block core, with the edge rule (module notes);
+    ``sums`` of ``x`` and ``y`` as :func:`_sums` gives them, when already computed."""
+    figures = _estimated_figures(x, y, design, cfg, sums)
     lost = np.flatnonzero(_coherence_lost(figures[:, 3], figures[:, 4]) | _stopband_short(figures[:, 2], design, cfg))
     if not lost.size:
         return figures
@@ -898,19 +1090,23 @@ def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksCon
 # ----------------------------------------------------------------------------- figures
 
 
-def _finite_stats(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(non-finite count, RMS of finite samples, peak |finite sample|) per channel.
+def _finite_stats(a: np.ndarray, chunk: int) -> tuple[np.ndarray, ...]:
+    """(non-finite count, RMS of finite samples, peak |finite sample|, sum of squares, sums
+    over runs of ``chunk`` rows, none when ``chunk`` is 0) per channel.
 
-    One pass over the time-major array (:func:`twinpass.core.loops.channel_stats`); RMS and
+    One pass over the time-major array (:func:`twinpass.core.loops.chunked_stats`); RMS and
     peak are NaN for a channel without any finite sample.
     """
-    n_bad, sum_sq, peak = channel_stats(a)
+    if chunk:
+        n_bad, sum_sq, peak, runs = chunked_stats(a, chunk)
+    else:
+        (n_bad, sum_sq, peak), runs = channel_stats(a), np.zeros((0, a.shape[1]))
     n_ok = a.shape[0] - n_bad
     with np.errstate(invalid="ignore", divide="ignore"):
         rms = np.sqrt(sum_sq / n_ok)
     rms = np.where(n_ok > 0, rms, np.nan)
     peak = np.where(n_ok > 0, peak, np.nan)
-    return n_bad, rms, peak
+    return n_bad, rms, peak, sum_sq, runs
 
 
 def block_figures(
@@ -960,8 +1156,9 @@ def block_figures(
         )
     n_ch = x.shape[1]
     figures = np.full((n_ch, len(FIGURES)), np.nan)
-    bad_in, rms_in, peak_in = _finite_stats(x)
-    bad_out, rms_out, peak_out = _finite_stats(y)
+    chunk = _slow_chunk(x.shape[0]) if response and _slow_band(design, x.shape[0]) else 0
+    bad_in, rms_in, peak_in, ss_in, runs_in = _finite_stats(x, chunk)
+    bad_out, rms_out, peak_out, ss_out, runs_out = _finite_stats(y, chunk)
     dt = np.dtype(out_dtype)
     limit = float(np.finfo(dt).max) if dt.kind == "f" else float(np.iinfo(dt).max)
     if not np.any(peak_out > limit):  # NaN peaks (no finite sample) compare False
@@ -984,8 +1181,9 @@ def block_figures(
         if clean.size:
             if clean.size < n_ch:
                 x, y = x[:, clean], y[:, clean]
+            sums = ((ss_in[clean], ss_out[clean]), (runs_in[:, clean], runs_out[:, clean]))
             cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
-            figures[np.ix_(clean, cols)] = _block_response(x, y, design, cfg)
+            figures[np.ix_(clean, cols)] = _block_response(x, y, design, cfg, sums)
     return figures
 
 
