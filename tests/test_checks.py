@@ -8,6 +8,7 @@ filters, built here independently of twinpass's own designer).
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 
@@ -528,6 +529,144 @@ def test_seam_mismatch_edge_cases() -> None:
         checks.seam_mismatch(np.zeros(3), np.zeros(4), 1.0)
 
 
+# ------------------------------------------------------- designs without a stated attenuation
+
+
+def _sensor_record(n: int, fs: float, seed: int, *, swell_hz: float | None = None,
+                   creep: float = 0.5) -> np.ndarray:
+    """An invented sensor record, shape (n, 1): broadband noise, 50 Hz mains hum with its
+    150 Hz harmonic, a 120 Hz machine tone, 3.1 Hz and 17 Hz structural modes, a creep that
+    levels off over a minute (``creep`` at most), an optional slow swell at ``swell_hz``
+    (amplitude 0.1), and no steps (the cases add theirs)."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / fs
+    x = 0.05 * rng.standard_normal(n) + 0.3 * np.sin(2 * np.pi * 50.0 * t + 0.4)
+    x += 0.05 * np.sin(2 * np.pi * 150.0 * t) + 0.1 * np.sin(2 * np.pi * 120.0 * t + 1.0)
+    x += 0.2 * np.sin(2 * np.pi * 3.1 * t) + 0.1 * np.sin(2 * np.pi * 17.0 * t + 1.0)
+    x += creep * (1.0 - np.exp(-t / 60.0))
+    if swell_hz is not None:
+        x += 0.1 * np.sin(2 * np.pi * swell_hz * t)
+    return x[:, None]
+
+
+# Each case: the response, sample rate (Hz), block (samples), samples of record before the
+# block, the signal's extra arguments, and a wrong filter built with scipy.signal alone.
+_NARROW_CASES = {
+    # configs/hydrophone-mains-notch.toml's response; wrong: the notch at 60 Hz
+    # (scipy.signal.iirnotch, Q 30: 2 Hz wide per pass).
+    "notch-50Hz-2Hz": (ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=2.0), 1000.0, 65536, 40000, {},
+                       lambda fs: signal.tf2sos(*signal.iirnotch(60.0, 30.0, fs=fs))),
+    # Fixed-order Butterworth band-stop, 4 per pass, overall -3 dB at 45 and 55 Hz; wrong:
+    # the same band-stop at 115-125 Hz (scipy.signal.butter).
+    "bandstop-45-55Hz": (ResponseSpec(kind="bandstop", family="butterworth", order=4, cutoff_hz=(45.0, 55.0)),
+                         1000.0, 65536, 40000, {},
+                         lambda fs: signal.butter(4, (115.0, 125.0), "bandstop", output="sos", fs=fs)),
+    # Fixed-order Butterworth band-pass, 2 per pass, overall -3 dB at 48 and 52 Hz; wrong:
+    # the band-pass at 118-122 Hz (scipy.signal.butter).
+    "bandpass-48-52Hz": (ResponseSpec(kind="bandpass", family="butterworth", order=2, cutoff_hz=(48.0, 52.0)),
+                         1000.0, 65536, 40000, {},
+                         lambda fs: signal.butter(2, (118.0, 122.0), "bandpass", output="sos", fs=fs)),
+    # configs/lab-drift-highpass.toml's design and block: 0.1 Hz, 4 per pass, at 10 kHz, 60 s
+    # blocks, the block a minute into the record while the creep still rises; wrong: the
+    # cutoff a hundred times too low (scipy.signal.butter at 0.001 Hz).
+    "lab-highpass-0.1Hz": (ResponseSpec(kind="highpass", family="butterworth", order=4, cutoff_hz=(0.1,)),
+                           10000.0, 600000, 600000, {"creep": 2.0},
+                           lambda fs: signal.butter(4, 0.001, "highpass", output="sos", fs=fs)),
+    # A tolerance high-pass whose stopband (below 0.5 Hz) holds a 0.38 Hz swell; wrong: the
+    # stopband edge ten times too low (scipy.signal.cheby2 at 0.05 Hz).
+    "highpass-tolerance": (ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(2.0,), stopband_hz=(0.5,),
+                                        passband_ripple_db=1.0, stopband_attenuation_db=40.0),
+                           1000.0, 65536, 40000, {"swell_hz": 0.38},
+                           lambda fs: signal.cheby2(4, 20.0, 0.05, "highpass", output="sos", fs=fs)),
+}
+
+
+@functools.lru_cache(maxsize=2)
+def _narrow_case(name: str) -> tuple[Design, np.ndarray, dict[str, np.ndarray], slice]:
+    """(design, record, outputs by kind, block) of a case of :data:`_NARROW_CASES`.
+
+    The record has a step of 0.4 just before the block and one of -0.3 in its middle; the
+    outputs are the correct two-pass result (scipy.signal.sosfiltfilt with the design's
+    sections over the whole record), the record itself (unfiltered) and the wrong filter's
+    two-pass result.
+    """
+    from twinpass.core.design import design_filter
+
+    spec, fs, core, before, extra, wrong = _NARROW_CASES[name]
+    design = design_filter(spec, fs)
+    x = _sensor_record(before + core + 20000, fs, seed=5, **extra)
+    x[before - 20:] += 0.4
+    x[before + core // 2:] -= 0.3
+    outputs = {"correct": signal.sosfiltfilt(design.sos, x, axis=0), "unfiltered": x,
+               "wrong band": signal.sosfiltfilt(wrong(fs), x, axis=0)}
+    return design, x, outputs, slice(before, before + core)
+
+
+@pytest.mark.parametrize("kind", ["unfiltered", "wrong band"])
+@pytest.mark.parametrize("name", list(_NARROW_CASES))
+def test_wrong_outputs_of_narrow_and_fixed_order_designs_fail(name: str, kind: str) -> None:
+    # An unfiltered block and a block filtered in the wrong band, whose input has power in
+    # the bands that tell them from the correct output (the hum in a notch's band, the tones
+    # and noise around a narrow band, the creep and steps below a high-pass's cutoff, a
+    # swell in its stopband), must fail, and on what the design removes: the stopband figure
+    # (rejection bins and power gates) below what the grading accepts (REJECTION_DB, or the
+    # stated attenuation, less the margin; product rule).
+    design, x, outputs, core = _narrow_case(name)
+    fig = checks.block_figures(x[core], outputs[kind][core], design, CFG, out_dtype="float64")
+    required = design.spec.stopband_attenuation_db or checks.REJECTION_DB
+    assert col(fig, "stopband_att_db")[0] < required - CFG.stopband_margin_db, fig
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+
+
+@pytest.mark.parametrize("name", list(_NARROW_CASES))
+def test_correct_outputs_of_narrow_and_fixed_order_designs_pass(name: str) -> None:
+    # Guard (passes before and after the rejection bins and gates came): the correct output
+    # (scipy.signal.sosfiltfilt over the whole record, a step just before the block and one
+    # inside it) passes.
+    design, x, outputs, core = _narrow_case(name)
+    fig = checks.block_figures(x[core], outputs["correct"][core], design, CFG, out_dtype="float64")
+    assert checks.grade(fig, design, CFG, TOL) == PASS, fig
+
+
+def test_segments_resolve_a_fixed_order_band_and_a_notch_band() -> None:
+    # The 4 Hz passband of a fixed-order band-pass (48-52 Hz) and the rejected band of a 2 Hz
+    # notch (overall level at or below -REJECTION_DB) hold graded bins of a long block. The
+    # band edges come from scipy.signal.sosfreqz of the design's sections (|H|^2 of one
+    # pass, squared for two), independently of the check's own grid.
+    from twinpass.core.design import design_filter
+
+    for spec, passband in ((ResponseSpec(kind="bandpass", family="butterworth", order=2, cutoff_hz=(48.0, 52.0)), True),
+                           (ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=2.0), False)):
+        design = design_filter(spec, 1000.0)
+        nperseg = checks.segment_length(1 << 20, design)
+        masks = checks._design_masks(design, nperseg)
+        bins = masks.passband if passband else masks.stopband
+        f, h = signal.sosfreqz(design.sos, worN=np.fft.rfftfreq(nperseg, 1e-3), fs=1000.0)
+        level = 20.0 * np.log10(np.abs(h) ** 2 + 1e-300)
+        assert bins.sum() >= 2, (spec.kind, nperseg)
+        if passband:
+            assert np.all(level[bins] >= -3.02)
+        else:
+            assert np.all(level[bins] <= -checks.REJECTION_DB + 0.01)
+
+
+def test_power_gate_ignores_a_step_response_outlasting_its_segment() -> None:
+    # Guard (passes before and after): a band-pass reaching down to 0.5 Hz rings for seconds
+    # after a step; in a short block the step's response fills segments whose input holds
+    # no step. That output is not explained by the segment's input and must not count as
+    # power a correct output cannot hold (the correct output: scipy.signal.sosfiltfilt).
+    from twinpass.core.design import design_filter
+
+    design = design_filter(ResponseSpec(kind="bandpass", family="butterworth", order=4, cutoff_hz=(0.5, 40.0)), 1000.0)
+    pad, core = 3 * design.effective_length, 5000
+    for height in (40.0, 300.0):
+        x = np.random.default_rng(1).standard_normal((core + 2 * pad, 2))
+        x[pad + 100:] += height
+        y = signal.sosfiltfilt(design.sos, x, axis=0)
+        fig = checks.block_figures(x[pad : pad + core], y[pad : pad + core], design, CFG, out_dtype="float64")
+        assert checks.grade(fig, design, CFG, TOL) == PASS, (height, fig)
+
+
 # ----------------------------------------------------------------------------- integrity
 
 
@@ -616,6 +755,16 @@ def test_grading_thresholds_follow_the_configuration() -> None:
     ]
     for values, expected in cases:
         assert checks.grade(_figures(**values), design, CFG, TOL) == expected, values
+
+
+def test_designs_without_a_stated_attenuation_are_graded_on_rejection() -> None:
+    # Product rule: a fixed-order design states no attenuation; its stopband figure (rejection
+    # bins and power gates) fails below REJECTION_DB less the configured margin.
+    design = lowpass_butterworth()
+    assert design.spec.stopband_attenuation_db is None
+    limit = checks.REJECTION_DB - CFG.stopband_margin_db
+    assert checks.grade(_figures(stopband_att_db=limit + 0.1), design, CFG, TOL) == PASS
+    assert checks.grade(_figures(stopband_att_db=limit - 0.1), design, CFG, TOL) == FAIL
 
 
 def test_grade_file() -> None:

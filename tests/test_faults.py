@@ -351,6 +351,33 @@ def test_a_block_with_a_wrong_response_fails_the_response_check(tmp_path, inject
     assert st[3] == FAIL
 
 
+NARROW_BANDPASS = {"kind": "bandpass", "family": "butterworth", "order": 2, "cutoff_hz": [48.0, 52.0]}
+"""Overall -3 dB at 48 and 52 Hz, 2nd order per pass: a band a few Welch bins wide at first sight."""
+
+
+def test_a_narrow_band_pass_with_a_wrong_response_on_every_block_is_not_complete(tmp_path, inject):
+    # Every block of every file filtered with the first section's numerator times sqrt(2)
+    # (+6 dB overall, the "perturb" fault): neighbouring blocks agree at their seams, so only
+    # the response check can tell. Its passband bins measure 20*log10(2) = 6.02 dB too much
+    # (definition of the dB), every block fails, no file is complete and
+    # `status --require-complete` exits 1.
+    inject([{"action": "perturb", "file": "*", "block": "*"}])
+    cfg = _archive(tmp_path, response=NARROW_BANDPASS, processing={"block_seconds": 20.0, "mode": "halo"})
+    res = run_job(cfg)
+    assert sorted(res.failed) == sorted(f"{a}.npy" for a in ARRAYS)
+    g = open_store(cfg.store_location)
+    for name in ARRAYS:
+        assert g[name].attrs["complete"] is False
+        assert np.all(block_status(cfg.store_location, name) == FAIL)
+        table = g[f"_twinpass/blocks/{name}"]
+        columns = list(table["figures"].attrs["columns"])
+        dev = np.asarray(table["figures"][:])[:, :, columns.index("passband_dev_db")]
+        np.testing.assert_allclose(dev, 20 * np.log10(2.0), atol=0.5)
+    status = conftest.run_cli(["status", str(tmp_path / "run" / "twinpass.toml"), "--require-complete"],
+                              check=False)
+    assert status.returncode == 1, status.stdout + status.stderr
+
+
 def test_fault_rules_are_checked():
     with pytest.raises(ConfigError, match="unknown action 'explode'"):
         faults.parse_rules('[{"action": "explode"}]')

@@ -119,8 +119,29 @@ def test_channel_stats_match_numpy() -> None:
     np.testing.assert_allclose(ss, np.sum(clean**2, axis=0), rtol=1e-12)
     np.testing.assert_array_equal(peak, np.max(np.abs(clean), axis=0))
     assert peak[5] == 50.0 and peak[4] == 0.0
-    for got, ref in zip((bad, ss, peak), loops._stats_numpy(a)):
+    for got, ref in zip((bad, ss, peak), loops._stats_numpy(a, 0)[:3]):
         np.testing.assert_allclose(got, ref, rtol=1e-12)
+
+
+@pytest.mark.parametrize("chunk", [1, 7, 64, 5000])
+def test_chunked_stats_match_numpy(chunk: int) -> None:
+    # Reference: numpy sums of each run of `chunk` rows (numpy.add.reduceat), squares and
+    # magnitudes over the finite samples; the last run holds the rows left over.
+    rng = np.random.default_rng(6)
+    a = rng.standard_normal((4999, 5)) * [1.0, 1e3, 1e-3, 1.0, 5.0] + [0.0, 7.0, 0.0, -300.0, 0.0]
+    a[17, 3] = np.nan
+    bad, ss, peak, runs = loops.chunked_stats(a, chunk)
+    clean = np.where(np.isfinite(a), a, 0.0)
+    want = np.add.reduceat(clean, np.arange(0, a.shape[0], chunk), axis=0)
+    assert runs.shape == (-(-a.shape[0] // chunk), 5)
+    np.testing.assert_allclose(runs, want, rtol=1e-11, atol=1e-9 * np.abs(clean).max())
+    np.testing.assert_array_equal(bad, [0, 0, 0, 1, 0])
+    np.testing.assert_allclose(ss, np.sum(clean**2, axis=0), rtol=1e-12)
+    np.testing.assert_array_equal(peak, np.max(np.abs(clean), axis=0))
+    for got, ref in zip((bad, ss, peak, runs), loops._stats_numpy(a, chunk)):
+        np.testing.assert_allclose(got, ref, rtol=1e-11, atol=1e-9 * np.abs(clean).max())
+    with pytest.raises(ValueError, match="chunk"):
+        loops.chunked_stats(a, 0)
 
 
 @pytest.mark.parametrize("big_endian", [False, True])

@@ -151,7 +151,8 @@ class ChecksConfig:
     phase_fail_deg: float = 20.0
     """Passband phase magnitude (degrees, >= 0) that fails."""
     stopband_margin_db: float = 10.0
-    """How far (dB, >= 0) the measured stopband attenuation may fall short of the spec before failing."""
+    """How far (dB, >= 0) the measured stopband attenuation may fall short of the spec (of
+    ``twinpass.core.checks.REJECTION_DB`` for designs that state none) before failing."""
     coherence_min: float = 0.9
     """Frequency bins below this coherence (in [0, 1]) are not used by the response check."""
 

@@ -318,34 +318,62 @@ def _cascade_jit(sos, x, z, out, reverse):  # type: ignore[no-untyped-def]
 
 
 @_jit
-def _stats_jit(a):  # type: ignore[no-untyped-def]
+def _stats_jit(a, chunk):  # type: ignore[no-untyped-def]
     # Fast pass without a branch per sample; a non-finite sum means some channel holds a
     # NaN/Inf (or squares overflow), and only then the careful pass counts and skips them.
+    # With chunk > 0 the sums over runs of chunk rows are added up too.
     n, nc = a.shape
     ss = np.zeros(nc)
     peak = np.zeros(nc)
-    for i in range(n):
-        for c in range(nc):
-            v = a[i, c]
-            ss[c] += v * v
-            m = abs(v)
-            peak[c] = m if m > peak[c] else peak[c]
+    runs = np.zeros(((n + chunk - 1) // chunk if chunk > 0 else 0, nc))
+    if chunk > 0:  # one channel at a time over each run, whose rows stay in the L1 cache;
+        # four rows side by side, so the sums do not wait on each other
+        for r in range(runs.shape[0]):
+            lo, hi = r * chunk, min(n, (r + 1) * chunk)
+            top = lo + (hi - lo) // 4 * 4
+            for c in range(nc):
+                t0 = t1 = t2 = t3 = 0.0
+                q0 = q1 = q2 = q3 = 0.0
+                p = peak[c]
+                for i in range(lo, top, 4):
+                    x0 = a[i, c]; x1 = a[i + 1, c]; x2 = a[i + 2, c]; x3 = a[i + 3, c]
+                    t0 += x0; t1 += x1; t2 += x2; t3 += x3
+                    q0 += x0 * x0; q1 += x1 * x1; q2 += x2 * x2; q3 += x3 * x3
+                    p = max(p, max(max(abs(x0), abs(x1)), max(abs(x2), abs(x3))))
+                for i in range(top, hi):
+                    x0 = a[i, c]
+                    t0 += x0
+                    q0 += x0 * x0
+                    p = max(p, abs(x0))
+                runs[r, c] = (t0 + t1) + (t2 + t3)
+                ss[c] += (q0 + q1) + (q2 + q3)
+                peak[c] = p
+    else:
+        for i in range(n):
+            for c in range(nc):
+                x = a[i, c]
+                ss[c] += x * x
+                m = abs(x)
+                peak[c] = m if m > peak[c] else peak[c]
     bad = np.zeros(nc)
     if np.all(np.isfinite(ss)):
-        return bad, ss, peak
+        return bad, ss, peak, runs
     ss[:] = 0.0
     peak[:] = 0.0
+    runs[:, :] = 0.0
     for i in range(n):
         for c in range(nc):
-            v = a[i, c]
-            if np.isfinite(v):
-                ss[c] += v * v
-                m = abs(v)
+            x = a[i, c]
+            if np.isfinite(x):
+                ss[c] += x * x
+                m = abs(x)
                 if m > peak[c]:
                     peak[c] = m
+                if chunk > 0:
+                    runs[i // chunk, c] += x
             else:
                 bad[c] += 1.0
-    return bad, ss, peak
+    return bad, ss, peak, runs
 
 
 @_jit

@@ -42,10 +42,10 @@ in it (see below), otherwise the differenced one's where usable there, otherwise
 passband figures (deviation, phase, bin counts) are the plain estimate's unless it fails
 the coherent-fraction rule (see :func:`grade`) and the differenced one does not. The
 differenced estimate is computed only for the channels where the plain one fails that
-rule, or leaves a graded stopband (the response states an attenuation) unmeasured or short
-of the spec: a stopband the plain one measures as met is taken as it is, since a real
-fault shows in the bins it measures, and the check costs about twice as much on blocks
-that compute both.
+rule, leaves the stopband figure short of what it must reach, or leaves a stated
+attenuation unmeasured: a stopband the plain one measures as met is taken as it is, since
+a real fault shows in the bins it measures, and the check costs about twice as much on
+blocks that compute both.
 
 The figures compare the chosen ``H`` with the designed ``G(f)``:
 
@@ -58,16 +58,46 @@ The figures compare the chosen ``H`` with the designed ``G(f)``:
   (degrees; zero-phase filtering means about 0);
 * stopband attenuation: ``10 log10(Pxx / Pyy)`` over stopband bins where the input has
   energy (within :data:`INPUT_FLOOR_DB` of its peak PSD) and the output is measurable
-  (coherent with the input and above the estimator's leakage, see below); the smallest
-  value (dB).
+  (coherent with the input and above the estimator's leakage, see below), and the figures
+  of the two power gates (below); the smallest value (dB).
 
 Passband bins are those where the designed overall level is within the designed ripple
 of 0 dB (``passband_ripple_db``; -3.0103 dB when the response has no ripple figure, i.e.
-fixed-order and notch designs); stopband bins are those where it is at or below
-``-stopband_attenuation_db`` (only when the response states an attenuation). Both sets
-leave out every bin closer than :data:`EDGE_ALLOWANCE_BINS` bins to a band edge, to 0 Hz
-and to the Nyquist frequency (the edges are found on a grid :data:`OVERSAMPLE` times finer
-than the bins, so narrow notches are not skipped).
+fixed-order and notch designs), leaving out every bin closer than
+:data:`EDGE_ALLOWANCE_BINS` bins to a band edge, to 0 Hz and to the Nyquist frequency.
+Stopband bins are those where the designed level is at or below ``-required`` over the
+window's whole main lobe around the bin (2 bins either side), and not within
+:data:`EDGE_ALLOWANCE_BINS` bins of 0 Hz or Nyquist; ``required`` is the response's
+``stopband_attenuation_db``, or :data:`REJECTION_DB` (30 dB) for designs that state none
+(fixed-order and notch designs: their stopband bins are *rejection bins*). :func:`grade`
+fails a stopband figure below ``required - stopband_margin_db``. Levels are taken on a grid
+:data:`OVERSAMPLE` times finer than the bins, so narrow notches are not skipped.
+
+The two power gates compare how much power the output holds with the most a correct output
+can hold, so that an unfiltered or wrongly filtered block fails wherever its input has
+power the design removes, even where no bin can be graded (a narrow notch, a band
+narrower than the bins resolve):
+
+* the Welch gate, on the plain estimate: a correct output's power is at most ``U = sum_k
+  B_k Pxx_k`` over all bins, ``B_k`` the largest designed power gain ``G(f)^2`` over the
+  main lobe around bin ``k``. The window spreads the power of each frequency ``f`` of the
+  input over the bins, those whose main lobe holds ``f`` taking all but about 5e-4 of it
+  (the energy of the Hann window's side lobes, computed), and each of those has ``B_k >=
+  G(f)^2``: so ``U`` is at least what the design passes, but for that share. The output's measured
+  power ``M`` counts ``coherence * Pyy`` (the power its input explains) over bins spread
+  over at least :data:`MIN_EFFECTIVE_SEGMENTS` segments, so output that input outside a
+  segment left (the tail of a step's response) does not count;
+* the slow gate, over the whole block: the energies of input and output in a
+  two-dimensional slow subspace (a smooth taper over the block and the tapered line) are
+  compared with the design's largest gain over the band they cover (a few bins of the
+  whole block) plus the taper's leakage (:func:`_slow_gate`); it sees offsets, drifts and
+  the slowest waves that the per-segment lines remove from the Welch estimate, which is
+  where a high-pass output left unfiltered differs, and applies to designs that remove that
+  band (high-pass and band-pass).
+
+A gate shows a fault where ``M`` exceeds its bound by more than :data:`GATE_SLACK`; its
+figure is then ``10 log10((P - U) / (M - U))`` (``P`` the input's power): the attenuation of
+the power the design removes that the output achieved, 0 dB for an unfiltered block.
 
 A passband bin is *coherent* when its coherence is at least ``ChecksConfig.coherence_min``
 and the normalised random error of ``|H|`` (Bendat & Piersol, *Random Data*, chapter on
@@ -88,11 +118,15 @@ Estimator bias and the error allowance
   equiripple designs are flattened by up to about half their height and transition bands
   are smeared; hence the edge allowance and the ``ripple / 2`` term in the grading.
 * The segment length (:func:`segment_length`) is :data:`SEGMENT_CYCLES` periods of the
-  smallest spectral feature of the design (lowest band edge, narrowest transition band or
-  notch width, distance of the top edge to Nyquist), a power of two of at least
-  :data:`MIN_NPERSEG` samples, capped at a quarter of the block so that at least seven
-  segments are averaged. A capped segment resolves less: fewer bins survive the edge
-  allowance (none: the figures are NaN).
+  smallest spectral feature of the spec (lowest band edge, narrowest transition band or
+  notch width, distance of the top edge to Nyquist), and long enough that each band of the
+  designed response between two edges holds graded bins (:data:`BAND_CYCLES` periods of a
+  passband's width, :data:`STOPBAND_CYCLES` of a stopband's: a fixed-order band-pass's
+  passband, a notch's rejected band), a power of two of at least :data:`MIN_NPERSEG`
+  samples, capped at :data:`MAX_NPERSEG` and at a quarter of the block so that at least
+  seven segments are averaged. A capped segment resolves less: fewer bins survive the edge
+  allowance (none: the figures are NaN). Long segments are averaged fewer times
+  (:data:`SEGMENT_BUDGET`), so that the transforms cost about the same whatever the design.
 * Stopband bins are used only where the coherence passes ``coherence_min`` (output that
   came from input outside the segment, e.g. the ringing of a transient in the previous
   segment, is not coherent and would understate the attenuation), where the output and
@@ -113,12 +147,13 @@ Estimator bias and the error allowance
   two-pass impulse response beyond its centre is ``sum_p R_p p^|m|``, so that input adds
   only combinations of ``p^t`` from the first sample and ``p^(n - 1 - t)`` from the last
   (:func:`_edge_modes`). When a channel fails the coherent-fraction rule (see
-  :func:`grade`), its figures are estimated again from the output minus the least-squares
+  :func:`grade`) or its stopband figure (bins and gates alike) is short of what the grading
+  accepts, its figures are estimated again from the output minus the least-squares
   fit of those free responses to the difference between the output and the design's
   two-pass response to the block's own input (``scipy.signal.sosfiltfilt``, no padding).
   A correct output then differs from that response only by the fitted part and is
-  coherent again; a wrong one (other channel's data, a causal pass) differs by far more
-  and still fails. For an FIR filter that input reaches ``M - 1`` samples into the block:
+  coherent again; a wrong one (other channel's data, a causal pass, an unfiltered block)
+  differs by far more and still fails. For an FIR filter that input reaches ``M - 1`` samples into the block:
   the figures are estimated again without them, and are NaN (not measured) for the
   coherent fraction when nothing is left. The re-estimate runs only for such channels.
 
@@ -128,9 +163,24 @@ With ``eps <= 0.01`` the random error is at most ``3 eps`` (three standard devia
 bounds the phase error and lies below the default ``phase_warn_deg`` of 5 deg.
 
 The figures are tests of the processing, not calibrations: an unfiltered, wrongly filtered
-(different cutoff, a single forward pass, swapped channels) or corrupted block shows as a
-passband deviation, a phase, a missing stopband attenuation or a loss of coherence far
-beyond these allowances.
+(different cutoff or band, a single forward pass, swapped channels) or corrupted block shows
+as a passband deviation, a phase, a missing stopband attenuation or a loss of coherence far
+beyond these allowances, wherever the block's input has power in the bands that tell right
+from wrong.
+
+What the check cannot see: a band where right and wrong differ but the input has no power,
+or power more than :data:`INPUT_FLOOR_DB` below its strongest spectral peak (a noise floor
+under a strong tone); a band narrower than the bins resolve, unless it holds a fair share of
+the power the output may hold (the Welch gate shows a fault only beyond :data:`GATE_SLACK`
+of it): segments are at most a quarter of the block and :data:`MAX_NPERSEG`, so a 2 Hz
+notch's rejected band (30 dB down, 0.23 Hz wide) holds bins only with segments of 32768
+samples, blocks of about two minutes at 1 kHz, and never at 48 kHz, where a wrong notch
+fails only if the hum is a large part of the block's power; content between the slow
+gate's band (a few bins of the whole block) and about four bins of a segment, which only
+the Welch gate sees; and a wrong output that still removes most of what the design removes
+(it is graded like a stopband, on what it leaves). An event that one segment carries (a
+block silent but for a burst at its edge, a lone step) is not assessed in the bins it
+dominates.
 """
 
 from __future__ import annotations
@@ -145,8 +195,8 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage, signal
 
-from twinpass.core.loops import channel_stats, segment_rows, spectra_sums
-from twinpass.core.design import HALF_POWER_DB, overall_response
+from twinpass.core.loops import channel_stats, chunked_stats, segment_rows, spectra_sums
+from twinpass.core.design import HALF_POWER_DB, overall_level_grid, overall_response
 from twinpass.core.effective import rounding_estimate
 from twinpass.core.types import Design
 from twinpass.errors import KernelError, TwinpassError
@@ -211,13 +261,27 @@ PENDING, PASS, WARN, FAIL, ERROR = 0, 1, 2, 3, 4
 STATUS_NAMES: dict[int, str] = {PENDING: "pending", PASS: "pass", WARN: "warn", FAIL: "fail", ERROR: "error"}
 
 SEGMENT_CYCLES: float = 8.0
-"""Welch segment length in periods of the design's smallest spectral feature."""
+"""Welch segment length in periods of the design's smallest spec feature (edge, transition
+band, notch width)."""
+BAND_CYCLES: float = 16.0
+"""Welch segment length in periods of the width of a passband (or stated stopband) between
+two edges: 16 bins across it, 8 of them clear of the :data:`EDGE_ALLOWANCE_BINS` on either
+side."""
+STOPBAND_CYCLES: float = 6.0
+"""Welch segment length in periods of the width of a stopband between two edges (a band-stop's
+or notch's rejected band): its bins lose only the window's main lobe (2 bins) at each edge, so
+6 bins across leave 2."""
+REJECTION_DB: float = 30.0
+"""Designs that state no attenuation (fixed-order and notch designs) are graded on their
+rejection bins: bins where the designed overall level is at or below ``-REJECTION_DB`` over
+the window's whole main lobe. They fail below ``REJECTION_DB - stopband_margin_db``."""
 MIN_NPERSEG: int = 256
 """Shortest Welch segment aimed for (samples)."""
 MIN_USABLE_NPERSEG: int = 64
 """Below this segment length (samples) the response is not measured."""
 MAX_NPERSEG: int = 1 << 18
-"""Longest Welch segment (samples); bounds the cost of the check."""
+"""Longest Welch segment (samples); bounds the memory of the spectra (about 50 bytes per bin
+and channel)."""
 MIN_SEGMENTS: int = 4
 """The segment is at most ``block length / MIN_SEGMENTS`` (7 segments at 50 % overlap)."""
 EDGE_ALLOWANCE_BINS: int = 4
@@ -257,6 +321,10 @@ factor 5 is headroom for floating-point rounding in the recursions. Compare floa
 outputs, before any cast to the output type."""
 
 _MAIN_LOBE_BINS = 2
+GATE_SLACK: float = 0.25
+"""A power gate (see the module notes) shows a fault only where the output's power exceeds
+the most a correct output holds by more than this share (+0.97 dB): room for the estimate's
+own errors (input from outside a segment, rounding)."""
 _RESPONSE_FIGURES = ("passband_dev_db", "phase_deg", "stopband_att_db", "passband_bins", "coherent_bins")
 _WINDOW = "hann"
 
@@ -298,6 +366,19 @@ MAX_SEGMENTS: int = 16
 segments evenly over the block instead of overlapping them by half, which bounds the cost of
 the check per block (the estimate's random error depends on the number of segments, about
 1/sqrt(segments) relative, not on the block length)."""
+
+SEGMENT_BUDGET: int = 16 * 16384
+"""Samples per channel and signal the Welch segments of one estimate hold at most, where more
+than 7 segments fit: long segments are averaged fewer times (:func:`_segments_for`), so a
+design that needs them (a narrow notch) costs about as much as the others."""
+
+
+def _segments_for(nperseg: int) -> int:
+    """Segments averaged with segments of ``nperseg`` samples: :data:`MAX_SEGMENTS`, fewer where
+    they would exceed :data:`SEGMENT_BUDGET`, but at least 7 (what a segment of a quarter block
+    gives at half overlap)."""
+    return max(7, min(MAX_SEGMENTS, SEGMENT_BUDGET // max(1, int(nperseg))))
+
 
 _GROUP_BYTES: int = 1 << 23
 """Largest segment buffer (bytes) per signal: more channels than fit are estimated in groups."""
@@ -454,8 +535,8 @@ def _welch_sums(x: np.ndarray, y: np.ndarray, window: np.ndarray, step: int, seg
                          None if squares is None else (squares[0][c], squares[1][c]))
 
 
-def _feature_scale_hz(design: Design) -> float:
-    """Smallest spectral feature of the design (Hz): lowest edge, narrowest transition..."""
+def _spec_features(design: Design) -> list[float]:
+    """Widths (Hz) the spec names: band edges, transition bands, notch width, Nyquist distance."""
     spec = design.spec
     nyq = design.sample_rate_hz / 2.0
     edges: list[float] = []
@@ -472,19 +553,65 @@ def _feature_scale_hz(design: Design) -> float:
             widths.append(float(width))
     if edges:
         widths.append(nyq - max(edges))
-    scales = [v for v in edges + widths if math.isfinite(v) and v > 0]
-    return min(scales) if scales else design.sample_rate_hz / MIN_NPERSEG
+    return [v for v in edges + widths if math.isfinite(v) and v > 0]
+
+
+def _required_db(design: Design) -> float:
+    """Attenuation (dB) the stopband bins are graded against: the spec's, else :data:`REJECTION_DB`."""
+    attenuation = design.spec.stopband_attenuation_db
+    return float(attenuation) if attenuation is not None else REJECTION_DB
+
+
+def _pass_level_db(design: Design) -> float:
+    """Overall level (dB) at or above which a frequency is in the passband."""
+    spec = design.spec
+    ripple = spec.passband_ripple_db if spec.mode == "tolerance" else None
+    return -float(ripple) if ripple is not None else HALF_POWER_DB
+
+
+def _bands(design: Design) -> tuple[tuple[float, float], ...]:
+    """(width in Hz, cycles) of the bands of the designed response the segment must resolve.
+
+    A band is a run of frequencies where the designed overall level is in the passband (at
+    or above :func:`_pass_level_db`) or in the stopband (at or below minus
+    :func:`_required_db`), found on the design's verification grid
+    (:func:`~twinpass.core.design.overall_level_grid`, which resolves narrow notches).
+    Only bands between two edges count (a band reaching 0 Hz or Nyquist ends at a spec edge,
+    which :data:`SEGMENT_CYCLES` resolves; a finer resolution there would cost more than the
+    gates leave to gain). Passbands lose :data:`EDGE_ALLOWANCE_BINS` bins at each edge and
+    want :data:`BAND_CYCLES` periods of their width; stopbands lose only the main lobe and
+    want :data:`STOPBAND_CYCLES`. Cached by content, as :func:`_design_masks`.
+    """
+    return _cached(_design_key(design, "bands"), lambda: _band_widths(design))
+
+
+def _band_widths(design: Design) -> tuple[tuple[float, float], ...]:
+    f, level_db = overall_level_grid(design)
+    bands: list[tuple[float, float]] = []
+    for inside, passband in ((level_db >= _pass_level_db(design) - 0.01, True),
+                             (level_db <= -_required_db(design) + 0.01, False)):
+        step = np.diff(np.concatenate([[0], inside.astype(np.int8), [0]]))
+        firsts, lasts = np.flatnonzero(step == 1), np.flatnonzero(step == -1) - 1
+        inner = (firsts > 0) & (lasts < f.size - 1)
+        widths = f[lasts[inner]] - f[firsts[inner]]
+        bands += [(float(w), BAND_CYCLES if passband else STOPBAND_CYCLES) for w in widths if w > 0.0]
+    return tuple(bands)
 
 
 def segment_length(n_samples: int, design: Design) -> int:
     """Welch segment length (samples) for a block of ``n_samples``; 0 = too short to measure.
 
-    :data:`SEGMENT_CYCLES` periods of the design's smallest spectral feature, rounded up
+    The longest of :data:`SEGMENT_CYCLES` periods of the design's smallest spec feature
+    (lowest edge, narrowest transition band or notch width, distance of the top edge to
+    Nyquist) and the periods each band of the designed response wants (:func:`_bands`: a
+    fixed-order band-pass's passband, a band-stop's, notch's or high-pass's stopband), rounded up
     to a power of two, at least :data:`MIN_NPERSEG`, at most :data:`MAX_NPERSEG` and
     ``n_samples // MIN_SEGMENTS`` (made even).
     """
     fs = float(design.sample_rate_hz)
-    target = SEGMENT_CYCLES * fs / _feature_scale_hz(design)
+    cycles = [SEGMENT_CYCLES / w for w in _spec_features(design)]
+    cycles += [c / w for w, c in _bands(design)]
+    target = fs * max(cycles) if cycles else float(MIN_NPERSEG)
     n = 1 << max(0, math.ceil(math.log2(max(target, 1.0))))
     n = min(max(n, MIN_NPERSEG), MAX_NPERSEG, int(n_samples) // MIN_SEGMENTS)
     n -= n % 2
@@ -498,48 +625,71 @@ def _eroded(mask: np.ndarray, width: int) -> np.ndarray:
     return ndimage.binary_erosion(mask, structure=np.ones(2 * width + 1, dtype=bool), border_value=0)
 
 
-_MASK_CACHE: dict[tuple[str, int], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+@dataclass(frozen=True)
+class _Masks:
+    """What the design makes of each Welch bin of one segment length (read-only arrays, n_freqs).
+
+    ``db``: designed overall level at the bin (dB); ``passband`` / ``stopband``: the bins
+    graded as such (see the module notes; without a stated attenuation the stopband bins are
+    the rejection bins); ``bound``: the largest designed power gain ``G(f)^2`` over the
+    window's main lobe around the bin (``f`` within :data:`_MAIN_LOBE_BINS` bins), which
+    bounds what a correct filter passes of the power the bin holds.
+    """
+
+    db: np.ndarray
+    passband: np.ndarray
+    stopband: np.ndarray
+    bound: np.ndarray
+
+
+_MASK_CACHE: dict[Any, Any] = {}
+_SLOW_CACHE: dict[Any, Any] = {}
 _MASK_CACHE_SIZE = 32
 
 
-def _design_masks(design: Design, nperseg: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(designed level in dB, passband mask, stopband mask) on the Welch bins of ``nperseg``.
-
-    Cached by content (coefficients, spec, sample rate), not by object: every block task
-    receives its own copy of the design.
-    """
-    key = (design.digest({"spec": design.spec.to_dict(), "fs": float(design.sample_rate_hz)}), int(nperseg))
-    hit = _MASK_CACHE.get(key)
+def _cached(key: Any, compute: Any, cache: dict[Any, Any] = _MASK_CACHE) -> Any:
+    """``compute()``, kept under ``key`` in a small cache of design-derived tables (keyed by
+    content, not by object: every block task receives its own copy of the design)."""
+    hit = cache.get(key)
     if hit is None:
-        hit = _compute_design_masks(design, int(nperseg))
-        if len(_MASK_CACHE) >= _MASK_CACHE_SIZE:
-            _MASK_CACHE.pop(next(iter(_MASK_CACHE)), None)
-        _MASK_CACHE[key] = hit
+        hit = compute()
+        if len(cache) >= _MASK_CACHE_SIZE:
+            cache.pop(next(iter(cache)), None)
+        cache[key] = hit
     return hit
 
 
-def _compute_design_masks(design: Design, nperseg: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _design_key(design: Design, *extra: Any) -> tuple[Any, ...]:
+    return (design.digest({"spec": design.spec.to_dict(), "fs": float(design.sample_rate_hz)}), *extra)
+
+
+def _design_masks(design: Design, nperseg: int) -> _Masks:
+    """The bins' designed levels, masks and gain bounds for segments of ``nperseg`` (cached)."""
+    return _cached(_design_key(design, "masks", int(nperseg)), lambda: _compute_design_masks(design, int(nperseg)))
+
+
+def _compute_design_masks(design: Design, nperseg: int) -> _Masks:
     fs = float(design.sample_rate_hz)
     n_bins = nperseg // 2 + 1
     fine = np.linspace(0.0, fs / 2.0, (n_bins - 1) * OVERSAMPLE + 1)
     with np.errstate(divide="ignore"):
         level_db = 20.0 * np.log10(overall_response(design, fine))
-    spec = design.spec
-    ripple = spec.passband_ripple_db if spec.mode == "tolerance" else None
-    pass_level = -float(ripple) if ripple is not None else HALF_POWER_DB
-    pass_fine = level_db >= pass_level - 0.01
     allowance = EDGE_ALLOWANCE_BINS * OVERSAMPLE
-    passband = _eroded(pass_fine, allowance)[::OVERSAMPLE]
-    if spec.stopband_attenuation_db is not None:
-        stop_fine = level_db <= -float(spec.stopband_attenuation_db) + 0.01
-        stopband = _eroded(stop_fine, allowance)[::OVERSAMPLE]
-    else:
-        stopband = np.zeros(n_bins, dtype=bool)
-    for a in (passband, stopband):
-        a.setflags(write=False)
+    passband = _eroded(level_db >= _pass_level_db(design) - 0.01, allowance)[::OVERSAMPLE]
+    # The largest level over the main lobe around each bin, the spectrum mirrored at 0 Hz and
+    # Nyquist as a real signal's is.
+    lobe = _MAIN_LOBE_BINS * OVERSAMPLE
+    mirrored = np.concatenate([level_db[lobe:0:-1], level_db, level_db[-2 : -lobe - 2 : -1]])
+    top_db = ndimage.maximum_filter1d(mirrored, 2 * lobe + 1)[lobe:-lobe][::OVERSAMPLE]
+    # Stopband bins: the whole main lobe at or below the required level, clear of 0 Hz and Nyquist.
+    stopband = top_db <= -_required_db(design) + 0.01
+    stopband[:EDGE_ALLOWANCE_BINS] = False
+    stopband[-EDGE_ALLOWANCE_BINS:] = False
+    bound = 10.0 ** (top_db / 10.0)
     db = level_db[::OVERSAMPLE].copy()
-    db.setflags(write=False)
-    return db, passband, stopband
+    for a in (db, passband, stopband, bound):
+        a.setflags(write=False)
+    return _Masks(db, passband, stopband, bound)
 
 
 @lru_cache(maxsize=8)
@@ -599,17 +749,18 @@ class _BinFigures:
     """Response figures of one Welch estimate, before the two estimates are combined.
 
     ``figures`` (channels, 5): the columns ``_RESPONSE_FIGURES``, the stopband column from
-    this estimate alone; ``att`` (n_freqs, channels): ``10 log10(Pxx / Pyy)`` where the bin
-    is a usable stopband bin (see the module notes), NaN elsewhere.
+    this estimate's stopband bins alone; ``att`` (n_freqs, channels): ``10 log10(Pxx / Pyy)``
+    where the bin is a usable stopband bin (see the module notes), NaN elsewhere; ``gate``
+    (channels,): the power gate's figure (:func:`_gate_attenuation`), NaN where it passes.
     """
 
     figures: np.ndarray
     att: np.ndarray
+    gate: np.ndarray
 
 
 def _response_figures(
-    est: TransferEstimate, cfg: ChecksConfig, masks: tuple[np.ndarray, np.ndarray, np.ndarray], *,
-    differenced: bool,
+    est: TransferEstimate, cfg: ChecksConfig, masks: _Masks, *, differenced: bool,
 ) -> _BinFigures:
     """Figures of one estimate; ``masks`` from :func:`_design_masks`.
 
@@ -617,7 +768,7 @@ def _response_figures(
     (see the module notes): ``h``, the coherence and ``pxx / pyy`` are those of the signals
     themselves, and the input's energy is judged on ``pxx / |D|^2``.
     """
-    db, passband, stopband = masks
+    db, passband, stopband = masks.db, masks.passband, masks.stopband
     pxx, pyy, h, coh = est.pxx, est.pyy, est.h, est.coherence
     out = np.full((pxx.shape[1], 5), np.nan)
     att = np.full(pxx.shape, np.nan)
@@ -666,7 +817,28 @@ def _response_figures(
             att = np.where(usable, 10.0 * np.log10(pxx / pyy), np.nan)
         out[:, 2] = _stopband_minimum(att)
     out[~live] = np.nan  # no input: nothing measured
-    return _BinFigures(out, att)
+    # The power gate counts the output's power that its input explains (coherence times Pyy),
+    # in bins whose power is spread over several segments: output that input outside a
+    # segment left (the tail of a step's response) is not explained, nor decided by one segment.
+    spread = est.effective_segments >= MIN_EFFECTIVE_SEGMENTS
+    explained = np.sum(np.where(spread, coh * pyy, 0.0), axis=0)
+    gate = _gate_attenuation(np.sum(pxx, axis=0), masks.bound @ pxx, explained)
+    return _BinFigures(out, att, np.where(live, gate, np.nan))
+
+
+def _gate_attenuation(power_in: np.ndarray, passed: np.ndarray, power_out: np.ndarray) -> np.ndarray:
+    """The power gate's figure per channel (dB): how much of the power the design removes the
+    output lacks, where the output holds more than a correct one can.
+
+    ``power_in`` and ``power_out`` are the powers of input and output, ``passed`` the most a
+    correct output can hold of them (same units; see the module notes). Where ``power_out >
+    (1 + GATE_SLACK) passed``, the figure is ``10 log10((power_in - passed) / (power_out -
+    passed))``: 0 dB for an output that removed nothing of what it should; elsewhere NaN
+    (nothing wrong shown).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        value = 10.0 * np.log10((power_in - passed) / (power_out - passed))
+    return np.where((power_out > (1.0 + GATE_SLACK) * passed) & (power_in > passed), value, np.nan)
 
 
 def _stopband_minimum(att: np.ndarray) -> np.ndarray:
@@ -675,7 +847,20 @@ def _stopband_minimum(att: np.ndarray) -> np.ndarray:
     return np.where(measured.any(axis=0), np.min(np.where(measured, att, np.inf), axis=0), np.nan)
 
 
-def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
+_Sums = tuple[tuple[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
+"""Sums of squares and sums over runs of input and output per channel (see :func:`_slow_gate`)."""
+
+
+def _sums(x: np.ndarray, y: np.ndarray) -> _Sums:
+    """:data:`_Sums` of ``x`` and ``y``."""
+    chunk = _slow_chunk(x.shape[0])
+    _, ssx, _, rx = chunked_stats(x, chunk)
+    _, ssy, _, ry = chunked_stats(y, chunk)
+    return (ssx, ssy), (rx, ry)
+
+
+def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig,
+                       sums: _Sums | None = None) -> np.ndarray:
     """Response figures (channels, 5) of time-major ``x`` -> ``y``; NaN when too short.
 
     Two Welch estimates, each segment with its least-squares line removed: the plain one
@@ -689,41 +874,156 @@ def _estimated_figures(x: np.ndarray, y: np.ndarray, design: Design, cfg: Checks
     if not nperseg:
         return figures
     masks = _design_masks(design, nperseg)
-    stopband = masks[2]
+    stopband = masks.stopband
+    attenuation = design.spec.stopband_attenuation_db
 
     def estimate(xs: np.ndarray, ys: np.ndarray, differenced: bool) -> _BinFigures:
-        # float32 transforms suffice for passband figures (relative errors near 1e-7); a
-        # stopband figure needs float64's range below the output's strongest bin.
-        est = transfer_estimate(xs, ys, design.sample_rate_hz, nperseg, MAX_SEGMENTS,
-                                precision="float64" if stopband.any() else "float32",
+        # float32 transforms suffice for passband figures (relative errors near 1e-7) and for
+        # rejection bins (graded some 20 dB down); a stated attenuation needs float64's range
+        # below the output's strongest bin.
+        est = transfer_estimate(xs, ys, design.sample_rate_hz, nperseg, _segments_for(nperseg),
+                                precision="float64" if attenuation is not None and stopband.any() else "float32",
                                 detrend="linear" if differenced else "weighted", difference=differenced)
         return _response_figures(est, cfg, masks, differenced=differenced)
 
     plain = estimate(x, y, False)
     figures[...] = plain.figures
+    figures[:, 2] = np.fmin(plain.figures[:, 2], plain.gate)
     plain_lost = _coherence_lost(plain.figures[:, 3], plain.figures[:, 4])
     # The differenced estimate where the plain one leaves the verdict open: its coherence
-    # lost, or a graded stopband not measured or short of the spec (its unmeasured bins may
-    # be leakage the differenced one sees past). A stopband the plain one measures as met is
-    # taken as it is: a real fault shows in the bins it measures (twice the check's cost on
-    # every block otherwise).
-    attenuation = design.spec.stopband_attenuation_db
-    if attenuation is None or not stopband.any():
-        open_stop = np.zeros(x.shape[1], dtype=bool)
-    else:
-        with np.errstate(invalid="ignore"):
-            open_stop = ~(plain.figures[:, 2] >= float(attenuation) - cfg.stopband_margin_db)
+    # lost, or the stopband short of what it must reach, or a stated attenuation not
+    # measured (its unmeasured bins may be leakage the differenced one sees past). A
+    # stopband the plain one measures as met is taken as it is: a real fault shows in the
+    # bins it measures (twice the check's cost on every block otherwise).
+    open_stop = _stopband_short(figures[:, 2], design, cfg)
+    if attenuation is not None and stopband.any():
+        open_stop |= np.isnan(figures[:, 2])
     again = np.flatnonzero(plain_lost | open_stop)
-    if not again.size:
-        return figures
-    diff = estimate(x[:, again], y[:, again], True)
-    # Passband figures: the differenced estimate's where the plain one loses the coherence
-    # and the differenced one does not.
-    swap = plain_lost[again] & ~_coherence_lost(diff.figures[:, 3], diff.figures[:, 4])
-    figures[again[swap]] = diff.figures[swap]
-    # Stopband: per bin, the plain estimate where it is usable, else the differenced one.
-    figures[again, 2] = _stopband_minimum(np.where(np.isnan(plain.att[:, again]), diff.att, plain.att[:, again]))
+    if again.size:
+        diff = estimate(x[:, again], y[:, again], True)
+        # Passband figures: the differenced estimate's where the plain one loses the
+        # coherence and the differenced one does not.
+        swap = plain_lost[again] & ~_coherence_lost(diff.figures[:, 3], diff.figures[:, 4])
+        figures[again[swap]] = diff.figures[swap]
+        # Stopband: per bin, the plain estimate where it is usable, else the differenced one.
+        bins = _stopband_minimum(np.where(np.isnan(plain.att[:, again]), diff.att, plain.att[:, again]))
+        figures[again, 2] = np.fmin(bins, plain.gate[again])
+    figures[:, 2] = np.fmin(figures[:, 2], _slow_gate(design, x, y, sums))
     return figures
+
+
+SLOW_TAPER_POWER: int = 3
+"""The slow gate's taper over the whole block is ``(1 - u^2)^SLOW_TAPER_POWER`` for ``u`` from -1
+to 1 (its spectrum falls as ``1/f^4``)."""
+SLOW_BANDS: tuple[float, ...] = (2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
+"""Candidate widths of the slow band, in bins of the whole block (``fs / samples`` Hz)."""
+SLOW_RUNS: int = 4096
+"""The slow gate weighs the block in runs of ``samples // SLOW_RUNS`` rows (at least one),
+summed in the pass that takes the levels."""
+SLOW_STAIR_LEAKAGE: float = 2e-3
+"""Added to the taper's leakage (amplitude) for the staircase the runs make of it."""
+SLOW_GAIN_MAX: float = 0.3
+"""The slow gate is skipped where the design passes more than this (amplitude, plus the
+taper's leakage) of the slowest content: it could not tell right from wrong there."""
+
+
+@lru_cache(maxsize=1)
+def _slow_leakage() -> np.ndarray:
+    """Per width in :data:`SLOW_BANDS`, the largest root share of energy the slow basis
+    functions (see :func:`_slow_gate`) hold beyond it (amplitude; computed once on 4096
+    samples, zero-padded 64 times: the shares hardly depend on the block length)."""
+    n, pad = 4096, 64
+    u = (np.arange(n) - 0.5 * (n - 1)) / (0.5 * n)
+    w = (1.0 - u * u) ** SLOW_TAPER_POWER
+    basis = np.stack([w, w * u], axis=1)
+    power = np.abs(np.fft.rfft(basis, n * pad, axis=0)) ** 2
+    power[1:] *= 2.0
+    total = power.sum(axis=0)
+    beyond = [power[int(m * pad) :].sum(axis=0) / total for m in SLOW_BANDS]
+    return np.sqrt(np.max(beyond, axis=1))
+
+
+def _slow_chunk(n: int) -> int:
+    """Rows per run whose sums the slow gate weighs alike (:data:`SLOW_RUNS` runs at least)."""
+    return max(1, int(n) // SLOW_RUNS)
+
+
+def _slow_energy(n: int, runs: np.ndarray) -> np.ndarray:
+    """Energies in the slow subspace per channel, from the sums over runs of
+    :func:`_slow_chunk` rows (:func:`~twinpass.core.loops.chunked_stats`).
+
+    Each run is weighed by the taper at its centre: ``w = (1 - u^2)^SLOW_TAPER_POWER`` and
+    ``w u`` with ``u = (t - (n - 1) / 2) / (n / 2)``, a staircase through the smooth taper
+    (its extra leakage, below 1e-3 in amplitude with :data:`SLOW_RUNS` runs or more, is in
+    :data:`SLOW_STAIR_LEAKAGE`); the energy is the sum of the two projections' squares, each
+    divided by its basis function's squared norm (the two are orthogonal by symmetry).
+    """
+    chunk = _slow_chunk(n)
+    first = np.arange(runs.shape[0]) * chunk
+    count = np.minimum(first + chunk, n) - first
+    u = (first + 0.5 * (count - 1) - 0.5 * (n - 1)) / (0.5 * n)
+    w = (1.0 - u * u) ** SLOW_TAPER_POWER
+    basis = np.stack([w, w * u])  # (2, runs)
+    norms = (basis * basis) @ count
+    return np.sum((basis @ runs) ** 2 / norms[:, None], axis=0)
+
+
+def _slow_gate(design: Design, x: np.ndarray, y: np.ndarray, sums: _Sums | None = None) -> np.ndarray:
+    """The slow gate's figure per channel of time-major ``x`` -> ``y`` (dB; NaN where it
+    passes or does not apply, see :func:`_slow_band`).
+
+    ``sums`` (:func:`_sums`), when given, holds the sums of squares of ``x`` and ``y`` and
+    their sums over runs of :func:`_slow_chunk` rows, taken with their levels.
+
+    The energies ``E`` of input and output in the slow subspace (spanned by the taper ``w``
+    over the whole block and by ``w u``, a tapered line; :func:`_slow_energy`) are compared:
+    of the input's content within the slow band (``0 .. m fs / n`` Hz for ``n`` samples) a
+    correct output holds at most the design's largest gain ``G_b`` there, and of its own
+    content beyond the band the subspace picks up at most the taper's leakage ``s``
+    (:func:`_slow_leakage`); so ``E_y <= 2 (G_b |x| + s |y|)^2`` (``|.|``: the norm over the
+    block), the bound passed to :func:`_gate_attenuation` with ``E_x`` as the input's power.
+    Input outside the block is taken to be like the block's own, which the edge rule
+    (:func:`_block_response`) makes so where it is not.
+    """
+    n = x.shape[0]
+    band = _slow_band(design, n)
+    if band is None:
+        return np.full(x.shape[1], np.nan)
+    (ssx, ssy), runs = sums if sums is not None and sums[1][0].shape[0] else _sums(x, y)
+    gain, leak = band
+    ex, ey = (_slow_energy(n, r) for r in runs)
+    bound = 2.0 * (gain * np.sqrt(ssx) + leak * np.sqrt(ssy)) ** 2
+    return _gate_attenuation(ex, bound, ey)
+
+
+def _slow_band(design: Design, n: int) -> tuple[float, float] | None:
+    """(``G_b``, ``s``) of :func:`_slow_gate` for blocks of ``n`` samples, or None where the
+    gate does not apply (their sum at least :data:`SLOW_GAIN_MAX`, or fewer than 2 samples).
+
+    The band width ``m`` (bins of the block, ``fs / n`` Hz) is the one of :data:`SLOW_BANDS`
+    with the least ``G_b + s``; ``G_b`` is the largest designed amplitude ``G(f)`` from 0 Hz to
+    ``m fs / n`` (sampled on 257 points; designs that reject slow content rise steadily there).
+    """
+
+    def compute() -> tuple[float, float] | None:
+        if n < 2:
+            return None
+        fs = float(design.sample_rate_hz)
+        bands = np.asarray(SLOW_BANDS)
+        f = np.linspace(0.0, min(bands[-1] * fs / n, fs / 2.0), 257)
+        peak = np.maximum.accumulate(overall_response(design, f))
+        gain = peak[np.minimum(np.searchsorted(f, bands * fs / n), f.size - 1)]
+        leak = _slow_leakage() + SLOW_STAIR_LEAKAGE
+        best = int(np.argmin(gain + leak))
+        return None if gain[best] + leak[best] >= SLOW_GAIN_MAX else (float(gain[best]), float(leak[best]))
+
+    return _cached(_design_key(design, int(n)), compute, _SLOW_CACHE)
+
+
+def _stopband_short(att: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
+    """Stopband figures (dB) below what :func:`grade` accepts (False where NaN)."""
+    with np.errstate(invalid="ignore"):
+        return att < _required_db(design) - cfg.stopband_margin_db
 
 
 def _coherence_lost(bins: np.ndarray, coherent: np.ndarray) -> np.ndarray:
@@ -762,10 +1062,12 @@ def _edge_modes(sos: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
     return rows, np.concatenate(columns, axis=1)
 
 
-def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig) -> np.ndarray:
-    """Response figures (channels, 5) of a block core, with the edge rule (module notes)."""
-    figures = _estimated_figures(x, y, design, cfg)
-    lost = np.flatnonzero(_coherence_lost(figures[:, 3], figures[:, 4]))
+def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksConfig,
+                    sums: _Sums | None = None) -> np.ndarray:
+    """Response figures (channels, 5) of a block core, with the edge rule (module notes);
+    ``sums`` of ``x`` and ``y`` as :func:`_sums` gives them, when already computed."""
+    figures = _estimated_figures(x, y, design, cfg, sums)
+    lost = np.flatnonzero(_coherence_lost(figures[:, 3], figures[:, 4]) | _stopband_short(figures[:, 2], design, cfg))
     if not lost.size:
         return figures
     xl, yl = x[:, lost], y[:, lost]
@@ -790,19 +1092,23 @@ def _block_response(x: np.ndarray, y: np.ndarray, design: Design, cfg: ChecksCon
 # ----------------------------------------------------------------------------- figures
 
 
-def _finite_stats(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(non-finite count, RMS of finite samples, peak |finite sample|) per channel.
+def _finite_stats(a: np.ndarray, chunk: int) -> tuple[np.ndarray, ...]:
+    """(non-finite count, RMS of finite samples, peak |finite sample|, sum of squares, sums
+    over runs of ``chunk`` rows, none when ``chunk`` is 0) per channel.
 
-    One pass over the time-major array (:func:`twinpass.core.loops.channel_stats`); RMS and
+    One pass over the time-major array (:func:`twinpass.core.loops.chunked_stats`); RMS and
     peak are NaN for a channel without any finite sample.
     """
-    n_bad, sum_sq, peak = channel_stats(a)
+    if chunk:
+        n_bad, sum_sq, peak, runs = chunked_stats(a, chunk)
+    else:
+        (n_bad, sum_sq, peak), runs = channel_stats(a), np.zeros((0, a.shape[1]))
     n_ok = a.shape[0] - n_bad
     with np.errstate(invalid="ignore", divide="ignore"):
         rms = np.sqrt(sum_sq / n_ok)
     rms = np.where(n_ok > 0, rms, np.nan)
     peak = np.where(n_ok > 0, peak, np.nan)
-    return n_bad, rms, peak
+    return n_bad, rms, peak, sum_sq, runs
 
 
 def block_figures(
@@ -852,8 +1158,9 @@ def block_figures(
         )
     n_ch = x.shape[1]
     figures = np.full((n_ch, len(FIGURES)), np.nan)
-    bad_in, rms_in, peak_in = _finite_stats(x)
-    bad_out, rms_out, peak_out = _finite_stats(y)
+    chunk = _slow_chunk(x.shape[0]) if response and _slow_band(design, x.shape[0]) else 0
+    bad_in, rms_in, peak_in, ss_in, runs_in = _finite_stats(x, chunk)
+    bad_out, rms_out, peak_out, ss_out, runs_out = _finite_stats(y, chunk)
     dt = np.dtype(out_dtype)
     limit = float(np.finfo(dt).max) if dt.kind == "f" else float(np.iinfo(dt).max)
     if not np.any(peak_out > limit):  # NaN peaks (no finite sample) compare False
@@ -876,8 +1183,9 @@ def block_figures(
         if clean.size:
             if clean.size < n_ch:
                 x, y = x[:, clean], y[:, clean]
+            sums = ((ss_in[clean], ss_out[clean]), (runs_in[:, clean], runs_out[:, clean]))
             cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
-            figures[np.ix_(clean, cols)] = _block_response(x, y, design, cfg)
+            figures[np.ix_(clean, cols)] = _block_response(x, y, design, cfg, sums)
     return figures
 
 
@@ -972,9 +1280,8 @@ def findings(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: 
     phase = _column(figures, "phase_deg")
     found += (_worst(phase, cfg.phase_fail_deg, FAIL, "phase_deg", judged=np.abs(phase))
               or _worst(phase, cfg.phase_warn_deg, WARN, "phase_deg", judged=np.abs(phase)))
-    if spec.stopband_attenuation_db is not None:
-        needed = float(spec.stopband_attenuation_db) - cfg.stopband_margin_db
-        found += _worst(_column(figures, "stopband_att_db"), -needed, FAIL, "stopband_att_db", sign=-1.0)
+    needed = _required_db(design) - cfg.stopband_margin_db  # the spec's, else the rejection level
+    found += _worst(_column(figures, "stopband_att_db"), -needed, FAIL, "stopband_att_db", sign=-1.0)
     bins, coherent = _column(figures, "passband_bins"), _column(figures, "coherent_bins")
     lost = _coherence_lost(bins, coherent)
     if np.any(lost):
@@ -995,7 +1302,8 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
     figures : ndarray, shape (channels, len(FIGURES))
         As from :func:`block_figures` (with ``seam_mismatch`` filled when computed).
     design : Design
-        The filter; its spec gives the ripple (dB) and stopband attenuation (dB).
+        The filter; its spec gives the ripple (dB) and stopband attenuation (dB, else
+        :data:`REJECTION_DB`).
     cfg : ChecksConfig
         Thresholds.
     tolerance : float
@@ -1014,7 +1322,9 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
           ``... + passband_fail_db``: fail (``ripple`` is the spec's overall passband
           ripple, 0 when not given);
         * ``|phase_deg| > phase_warn_deg``: warn; ``> phase_fail_deg``: fail;
-        * ``stopband_att_db < stopband_attenuation_db - stopband_margin_db``: fail;
+        * ``stopband_att_db < required - stopband_margin_db``: fail, ``required`` being the
+          spec's ``stopband_attenuation_db`` or, for designs that state none,
+          :data:`REJECTION_DB`;
         * fewer than ``COHERENT_FRACTION_MIN`` of at least ``MIN_CANDIDATE_BINS`` passband
           bins with input energy coherent: fail (the output is not a linear function of
           the input);

@@ -55,6 +55,7 @@ __all__ = [
     "response_report",
     "format_report",
     "overall_response",
+    "overall_level_grid",
     "per_pass_response",
     "cost_per_sample",
     "check_sos",
@@ -522,6 +523,18 @@ def overall_response(design: Design, freqs_hz: Any) -> np.ndarray:
     phase).
     """
     return np.abs(per_pass_response(design, freqs_hz)) ** 2
+
+
+def overall_level_grid(design: Design) -> tuple[np.ndarray, np.ndarray]:
+    """The overall level on the grid that verifies the design: (frequencies in Hz, level in dB).
+
+    The grid (increasing, 0 Hz to Nyquist) follows the design as its verification does:
+    linear and logarithmic over the band, crowding around every pole and zero (IIR), or at
+    least 16 points per ripple spacing (FIR), so narrow notches and bands are resolved. The
+    level is ``20 log10 |H(f)|^2`` of the two passes (``-inf`` at a zero of the response).
+    """
+    f, h = _grid_response(design.sos, design.taps, design.sample_rate_hz)
+    return f, 2.0 * _db_amplitude(h)
 
 
 def _db_amplitude(h: np.ndarray) -> np.ndarray:

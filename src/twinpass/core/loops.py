@@ -30,7 +30,8 @@ from typing import Any, Callable
 import numpy as np
 from scipy import signal
 
-__all__ = ["jit_enabled", "sos_cascade", "channel_stats", "int24_to_float", "segment_rows", "spectra_sums"]
+__all__ = ["jit_enabled", "sos_cascade", "channel_stats", "chunked_stats", "int24_to_float", "segment_rows",
+           "spectra_sums"]
 
 # ----------------------------------------------------------------------------- numpy
 
@@ -45,11 +46,15 @@ def _cascade_numpy(sos: np.ndarray, x: np.ndarray, z: np.ndarray, out: np.ndarra
     z[...] = zf
 
 
-def _stats_numpy(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _stats_numpy(a: np.ndarray, chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     finite = np.isfinite(a)
     bad = np.count_nonzero(~finite, axis=0).astype(np.float64)
     clean = np.where(finite, a, 0.0)
-    return bad, np.sum(clean * clean, axis=0), np.max(np.abs(clean), axis=0, initial=0.0)
+    if chunk > 0 and a.shape[0]:
+        runs = np.add.reduceat(clean, np.arange(0, a.shape[0], chunk), axis=0)
+    else:
+        runs = np.zeros((0, a.shape[1]))
+    return bad, np.sum(clean * clean, axis=0), np.max(np.abs(clean), axis=0, initial=0.0), runs
 
 
 def _int24_numpy(raw: np.ndarray, scale: float, big_endian: bool, out: np.ndarray | None = None) -> np.ndarray:
@@ -221,7 +226,17 @@ def channel_stats(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     peak : ndarray, float64
         Largest magnitude among the finite samples (0 when there is none).
     """
-    return _loop("stats")(np.ascontiguousarray(a, dtype=np.float64))
+    return _loop("stats")(np.ascontiguousarray(a, dtype=np.float64), 0)[:3]
+
+
+def chunked_stats(a: np.ndarray, chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`channel_stats` and, in the same pass, the sums of the finite samples over runs of
+    ``chunk`` rows: ``(nonfinite, sum_squares, peak, runs)``, ``runs`` of shape
+    (ceil(samples / chunk), channels), the last run holding the rows left over."""
+    if chunk < 1:
+        raise ValueError(f"chunk must be at least one row, not {chunk}")
+    bad, ss, peak, runs = _loop("stats")(np.ascontiguousarray(a, dtype=np.float64), int(chunk))
+    return bad, ss, peak, runs
 
 
 def int24_to_float(raw: np.ndarray, scale: float, *, big_endian: bool = False) -> np.ndarray:
