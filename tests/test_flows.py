@@ -358,6 +358,20 @@ def _file_records_honest(store_location: str) -> dict[str, bool]:
     return {rel: rec.complete for rel, rec in records.items()}
 
 
+def _job_done(store_location: str, archive: Path) -> None:
+    """Every file is complete, and each stream's output is scipy.signal.sosfiltfilt of the whole segment."""
+    assert all(_file_records_honest(store_location).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(store_location, archive, stream)
+
+
+def _next_run_finishes_the_job(cfg: Path, archive: Path) -> None:
+    """A flow run of ``cfg`` (store ``out.zarr`` beside it) takes the lock and does the job (:func:`_job_done`)."""
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_completed(), state.message
+    _job_done(str(cfg.parent / "out.zarr"), archive)
+
+
 def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy_archive, tmp_path, monkeypatch):
     # The command line begins the run (lock, preparation, cluster, segment drivers) before
     # the flow run exists; the flow run takes it over: same run id, every block run once on
@@ -782,6 +796,90 @@ def test_ctrl_c_in_a_flow_run_without_a_head_start_stops_its_segments_before_the
     assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
     for stream in STREAMS:
         check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
+
+
+def test_ctrl_c_while_the_command_waits_for_its_cluster_ends_it_with_the_run_recorded_as_stopped(
+        prefect_client, npy_archive, tmp_path, monkeypatch, capsys):
+    # Ctrl-C (SIGINT to the main thread) while `twinpass run`, beginning the run before its
+    # flow run, waits for its local Dask cluster to start: the start is held (an injected
+    # fault: a slow start) until the interrupt has reached the waiting command, so the run
+    # is stopped while the start still goes on. The command ends with status 130 and says
+    # so, as on any other Ctrl-C (README, "Running, scheduling and the dashboard"): no flow
+    # run starts, the store records the run as stopped before its end, the cluster whose
+    # start was under way is closed once started, and the lock is released, so the next
+    # run does the whole job. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass import engine
+
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    main_thread = threading.main_thread().ident
+    real_local_cluster = engine._local_cluster
+    clusters: list = []
+    interrupted_while_waiting: list[bool] = []
+
+    def waiting_for_cluster() -> bool:
+        """Whether the command's main thread is in ClientStart.client, waiting for the start."""
+        frame = sys._current_frames().get(main_thread)
+        while frame is not None and frame.f_code is not engine.ClientStart.client.__code__:
+            frame = frame.f_back
+        return frame is not None
+
+    def slow_start(workers, processes):  # the first start: held until Ctrl-C has reached the waiting command
+        if not interrupted_while_waiting:
+            deadline = time.monotonic() + 60
+            while not waiting_for_cluster() and time.monotonic() < deadline:
+                time.sleep(0.01)
+            interrupted_while_waiting.append(waiting_for_cluster())
+            signal.pthread_kill(main_thread, signal.SIGINT)  # Ctrl-C
+            while waiting_for_cluster() and time.monotonic() < deadline:
+                time.sleep(0.01)
+        clusters.append(real_local_cluster(workers, processes))
+        return clusters[-1]
+
+    monkeypatch.setattr(engine, "_local_cluster", slow_start)
+    code = cli.main(["run", str(cfg), "--no-report"])
+    err = capsys.readouterr().err
+    assert interrupted_while_waiting == [True]
+    assert code == 130, err
+    assert "twinpass: interrupted; finished blocks are kept, rerun to resume" in err, err
+    assert [r for r in prefect_client.read_flow_runs(limit=200)
+            if r.parameters.get("config_path") == str(cfg.resolve())] == []  # no flow run began
+    assert clusters and all(c.status.name == "closed" for c in clusters)
+    runs = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert len(runs) == 1 and runs[0].get("interrupted") is True, runs
+    assert runs[0]["counts"]["blocks_run"] == 0 and not any(_file_records_honest(str(tmp_path / "out.zarr")).values())
+
+    monkeypatch.setattr(engine, "_local_cluster", real_local_cluster)
+    _next_run_finishes_the_job(cfg, npy_archive)
+
+
+def test_an_unexpected_error_beginning_the_run_is_a_warning_and_the_flow_run_does_the_job(
+        prefect_client, npy_archive, tmp_path, monkeypatch, caplog):
+    # The local Dask cluster of the run the command begins before its flow run fails to
+    # start (an injected fault, an error that is not twinpass's own); the flow run starts
+    # the run afresh on a cluster of its own, and the command says on the terminal, as a
+    # warning naming the error, that it did. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass import engine
+
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    real_local_cluster = engine._local_cluster
+    failed: list[bool] = []
+
+    def failing_first_start(workers, processes):
+        if not failed:
+            failed.append(True)
+            raise RuntimeError("injected: no cluster today")
+        return real_local_cluster(workers, processes)
+
+    monkeypatch.setattr(engine, "_local_cluster", failing_first_start)
+    caplog.set_level(logging.WARNING, logger="twinpass.cli")
+    assert cli.main(["run", str(cfg), "--no-report"]) == 0
+    warned = [r for r in caplog.records if r.name == "twinpass.cli" and r.levelno == logging.WARNING]
+    assert len(warned) == 1 and "RuntimeError: injected: no cluster today" in warned[0].getMessage(), warned
+    assert "starts it afresh" in warned[0].getMessage()
+    assert failed == [True] and _flow_run_of(prefect_client, cfg).state.is_completed()
+    _job_done(str(tmp_path / "out.zarr"), npy_archive)
 
 
 @pytest.mark.parametrize(("scheduler", "loops_loaded"), [("threads", True), ("processes", False)])

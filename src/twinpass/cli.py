@@ -259,16 +259,37 @@ def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | 
 
     See :mod:`twinpass.headstart`. A failure here (a locked store, an unusable archive, or
     an error of twinpass's own) is left to the flow run, which meets it again at the same
-    step and reports it on the dashboard as usual.
+    step and reports it on the dashboard as usual; an unexpected one is logged as a warning
+    first. Ctrl-C is never left to the flow run: the interrupt goes on (exit status 130),
+    also when an error in the clean-up after it took its place.
     """
     from .headstart import HeadStart, offer
 
     try:
         offer(HeadStart.begin(cfg, force=force, scheduler=scheduler, workers=workers, watch=progress))
-    except Exception as e:  # the flow run reports it
+    except TwinpassError as e:  # the flow run meets it again and reports it
         logging.getLogger(__name__).debug("the run was not begun before its flow run: %s", e, exc_info=True)
         return False
+    except Exception as e:
+        if _follows_interrupt(e):
+            raise KeyboardInterrupt from e
+        logging.getLogger(__name__).warning(  # with its traceback: a fault to report if the flow run does not meet it
+            "the run could not be begun before its flow run (%s: %s); the flow run starts it afresh",
+            type(e).__name__, e, exc_info=True)
+        return False
     return True
+
+
+def _follows_interrupt(error: BaseException) -> bool:
+    """Whether ``error`` was raised while a KeyboardInterrupt (Ctrl-C) was being handled."""
+    seen: set[int] = set()
+    cause: BaseException | None = error
+    while cause is not None and id(cause) not in seen:
+        if isinstance(cause, KeyboardInterrupt):
+            return True
+        seen.add(id(cause))
+        cause = cause.__context__
+    return False
 
 
 def _check_utf8_paths(paths: dict[str, str | None]) -> None:
