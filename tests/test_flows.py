@@ -882,6 +882,62 @@ def test_an_unexpected_error_beginning_the_run_is_a_warning_and_the_flow_run_doe
     _job_done(str(tmp_path / "out.zarr"), npy_archive)
 
 
+def test_a_prefect_server_lost_mid_run_leaves_the_run_its_own_exit_status_and_report(npy_archive, tmp_path,
+                                                                                  monkeypatch):
+    # `twinpass run` against a configured Prefect server (a real one, Prefect's own
+    # application) that is killed once the flow body runs (a segment task has begun), while
+    # every block waits (an injected fault holds them until the server is gone). The blocks
+    # then finish and the store records the run; the flow run's end cannot reach the server.
+    # The run goes on without the dashboard, saying so; the command exits with the status the
+    # run earned (0: every file done, README "Exit statuses"), prints the run's counts and
+    # writes the HTML report, says in one line that the server stopped answering, and prints
+    # no traceback. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass.prefect_server import LocalPrefectServer
+
+    home = tmp_path / "prefect-home"
+    monkeypatch.setenv("PREFECT_HOME", str(home))  # the server's own database, not the session server's
+    server = LocalPrefectServer()
+    server.start()
+    go = tmp_path / "go"
+    cfg = write_job(tmp_path, npy_archive)
+    try:
+        url = server.wait_ready()
+        env = flow_env({"PREFECT_HOME": str(home), "PREFECT_API_URL": url,
+                        "PREFECT_CLIENT_MAX_RETRIES": "0",  # Prefect's retries of a lost server: about a minute
+                        "TWINPASS_FAULTS": json.dumps([{"action": "hold", "file": "*", "block": "*",
+                                                        "path": str(go), "seconds": 120}])})
+        err_path = tmp_path / "run.err"
+        with open(err_path, "w") as err:
+            proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "run", str(cfg)], env=env, cwd=tmp_path,
+                                    stdout=subprocess.PIPE, stderr=err, text=True)
+        try:
+            poll(lambda: err_path.read_text(), lambda text: "file(s) to filter" in text or proc.poll() is not None,
+                 "a segment task's start")
+            server.process.kill()  # the server is lost, abruptly
+            server.process.wait()
+            go.touch()  # the blocks go on
+            out, _ = proc.communicate(timeout=300)
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait()
+    finally:
+        go.touch()
+        server.stop()
+    text = err_path.read_text()
+    assert proc.returncode == 0, out + text
+    assert "Traceback" not in out + text, out + text
+    lost = [line for line in text.splitlines() if "stopped answering" in line]
+    assert len(lost) == 1 and url in lost[0] and "dashboard" in lost[0], text
+    assert re.search(r"could not show .* on the dashboard: the Prefect server does not answer", text), text
+    assert "complete 6, skipped (unchanged) 0, failed 0, invalid 0" in out, out
+    report = tmp_path / "out.report.html"
+    assert f"report: {report}" in out and report.is_file(), out
+    (run,) = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert not run.get("interrupted") and run["counts"]["complete"] == 6, run
+    _job_done(str(tmp_path / "out.zarr"), npy_archive)
+
+
 @pytest.mark.parametrize(("scheduler", "loops_loaded"), [("threads", True), ("processes", False)])
 def test_preload_loads_what_the_first_flow_call_and_block_would(tmp_path, scheduler, loops_loaded):
     # In a fresh interpreter: Prefect's flow engine and the encoders its parameter
