@@ -319,7 +319,7 @@ def test_a_per_file_table_the_dashboard_refuses_leaves_the_recorded_run_complete
     cfg = write_job(tmp_path, npy_archive)
     state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
     assert state.is_completed() and state.name == "Completed", (state.name, state.message)
-    warned = [r.getMessage() for r in caplog.records if "could not publish the per-file table" in r.getMessage()]
+    warned = [r.getMessage() for r in caplog.records if "could not show the per-file table" in r.getMessage()]
     assert len(warned) == 1 and "injected: the Prefect API did not answer" in warned[0], warned
     assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
 
@@ -436,15 +436,20 @@ def _file_records_honest(store_location: str) -> dict[str, bool]:
     return {rel: rec.complete for rel, rec in records.items()}
 
 
-def _next_run_finishes(cfg: Path, archive: Path, store: Path) -> None:
-    """The next run of ``cfg`` (it takes the store's lock) completes the job: every file
-    complete with every block done, and each stream's output equal to scipy.signal.sosfiltfilt
-    of the whole segment (:func:`prefect_fixtures.check_against_sosfiltfilt`)."""
+def _job_done(store_location: str, archive: Path) -> None:
+    """Every file is complete, and each stream's output is scipy.signal.sosfiltfilt of the
+    whole segment (:func:`prefect_fixtures.check_against_sosfiltfilt`)."""
+    assert all(_file_records_honest(store_location).values())
+    for stream in STREAMS:
+        check_against_sosfiltfilt(store_location, archive, stream)
+
+
+def _next_run_finishes(cfg: Path, archive: Path, store: Path | None = None) -> None:
+    """The next run of ``cfg`` (it takes the store's lock; store ``out.zarr`` beside it
+    unless given) completes the job (:func:`_job_done`)."""
     state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
     assert state.is_completed(), state.message
-    assert all(_file_records_honest(str(store)).values())
-    for stream in STREAMS:
-        check_against_sosfiltfilt(str(store), archive, stream)
+    _job_done(str(store if store is not None else cfg.parent / "out.zarr"), archive)
 
 
 def test_a_run_begun_before_its_flow_run_is_taken_over_by_it(prefect_client, npy_archive, tmp_path, monkeypatch):
@@ -897,6 +902,146 @@ def test_ctrl_c_in_a_flow_run_that_took_over_a_head_start_records_what_the_run_d
     monkeypatch.delenv("TWINPASS_FAULTS")
     monkeypatch.setattr(flows, "TERMINAL_PROGRESS", None)
     _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
+
+
+def test_ctrl_c_while_the_command_waits_for_its_cluster_ends_it_with_the_run_recorded_as_stopped(
+        prefect_client, npy_archive, tmp_path, monkeypatch, capsys):
+    # Ctrl-C (SIGINT to the main thread) while `twinpass run`, beginning the run before its
+    # flow run, waits for its local Dask cluster to start: the start is held (an injected
+    # fault: a slow start) until the interrupt has reached the waiting command, so the run
+    # is stopped while the start still goes on. The command ends with status 130 and says
+    # so, as on any other Ctrl-C (README, "Running, scheduling and the dashboard"): no flow
+    # run starts, the store records the run as stopped before its end, the cluster whose
+    # start was under way is closed once started, and the lock is released, so the next
+    # run does the whole job. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass import engine
+
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    main_thread = threading.main_thread().ident
+    real_local_cluster = engine._local_cluster
+    clusters: list = []
+    interrupted_while_waiting: list[bool] = []
+
+    def waiting_for_cluster() -> bool:
+        """Whether the command's main thread is in ClientStart.client, waiting for the start."""
+        frame = sys._current_frames().get(main_thread)
+        while frame is not None and frame.f_code is not engine.ClientStart.client.__code__:
+            frame = frame.f_back
+        return frame is not None
+
+    def slow_start(workers, processes):  # the first start: held until Ctrl-C has reached the waiting command
+        if not interrupted_while_waiting:
+            deadline = time.monotonic() + 60
+            while not waiting_for_cluster() and time.monotonic() < deadline:
+                time.sleep(0.01)
+            interrupted_while_waiting.append(waiting_for_cluster())
+            signal.pthread_kill(main_thread, signal.SIGINT)  # Ctrl-C
+            while waiting_for_cluster() and time.monotonic() < deadline:
+                time.sleep(0.01)
+        clusters.append(real_local_cluster(workers, processes))
+        return clusters[-1]
+
+    monkeypatch.setattr(engine, "_local_cluster", slow_start)
+    code = cli.main(["run", str(cfg), "--no-report"])
+    err = capsys.readouterr().err
+    assert interrupted_while_waiting == [True]
+    assert code == 130, err
+    assert "twinpass: interrupted; finished blocks are kept, rerun to resume" in err, err
+    assert [r for r in prefect_client.read_flow_runs(limit=200)
+            if r.parameters.get("config_path") == str(cfg.resolve())] == []  # no flow run began
+    assert clusters and all(c.status.name == "closed" for c in clusters)
+    runs = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert len(runs) == 1 and runs[0].get("interrupted") is True, runs
+    assert runs[0]["counts"]["blocks_run"] == 0 and not any(_file_records_honest(str(tmp_path / "out.zarr")).values())
+
+    monkeypatch.setattr(engine, "_local_cluster", real_local_cluster)
+    _next_run_finishes(cfg, npy_archive)
+
+
+def test_an_unexpected_error_beginning_the_run_is_a_warning_and_the_flow_run_does_the_job(
+        prefect_client, npy_archive, tmp_path, monkeypatch, caplog):
+    # The local Dask cluster of the run the command begins before its flow run fails to
+    # start (an injected fault, an error that is not twinpass's own); the flow run starts
+    # the run afresh on a cluster of its own, and the command says on the terminal, as a
+    # warning naming the error, that it did. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass import engine
+
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    real_local_cluster = engine._local_cluster
+    failed: list[bool] = []
+
+    def failing_first_start(workers, processes):
+        if not failed:
+            failed.append(True)
+            raise RuntimeError("injected: no cluster today")
+        return real_local_cluster(workers, processes)
+
+    monkeypatch.setattr(engine, "_local_cluster", failing_first_start)
+    caplog.set_level(logging.WARNING, logger="twinpass.cli")
+    assert cli.main(["run", str(cfg), "--no-report"]) == 0
+    warned = [r for r in caplog.records if r.name == "twinpass.cli" and r.levelno == logging.WARNING]
+    assert len(warned) == 1 and "RuntimeError: injected: no cluster today" in warned[0].getMessage(), warned
+    assert "starts it afresh" in warned[0].getMessage()
+    assert failed == [True] and _flow_run_of(prefect_client, cfg).state.is_completed()
+    _job_done(str(tmp_path / "out.zarr"), npy_archive)
+
+
+def test_a_prefect_server_lost_mid_run_leaves_the_run_its_own_exit_status_and_report(npy_archive, tmp_path,
+                                                                                  monkeypatch):
+    # `twinpass run` against a configured Prefect server (a real one, Prefect's own
+    # application) that is killed once the flow body runs (a segment task has begun), while
+    # every block waits (an injected fault holds them until the server is gone). The blocks
+    # then finish and the store records the run; the flow run's end cannot reach the server.
+    # The run goes on without the dashboard, saying so; the command exits with the status the
+    # run earned (0: every file done, README "Exit statuses"), prints the run's counts and
+    # writes the HTML report, says in one line that the server stopped answering, and prints
+    # no traceback. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from twinpass.prefect_server import LocalPrefectServer
+
+    home = tmp_path / "prefect-home"
+    monkeypatch.setenv("PREFECT_HOME", str(home))  # the server's own database, not the session server's
+    server = LocalPrefectServer()
+    server.start()
+    go = tmp_path / "go"
+    cfg = write_job(tmp_path, npy_archive)
+    try:
+        url = server.wait_ready()
+        env = flow_env({"PREFECT_HOME": str(home), "PREFECT_API_URL": url,
+                        "PREFECT_CLIENT_MAX_RETRIES": "0",  # Prefect's retries of a lost server: about a minute
+                        "TWINPASS_FAULTS": json.dumps([{"action": "hold", "file": "*", "block": "*",
+                                                        "path": str(go), "seconds": 120}])})
+        err_path = tmp_path / "run.err"
+        with open(err_path, "w") as err:
+            proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "run", str(cfg)], env=env, cwd=tmp_path,
+                                    stdout=subprocess.PIPE, stderr=err, text=True)
+        try:
+            poll(lambda: err_path.read_text(), lambda text: "file(s) to filter" in text or proc.poll() is not None,
+                 "a segment task's start")
+            server.process.kill()  # the server is lost, abruptly
+            server.process.wait()
+            go.touch()  # the blocks go on
+            out, _ = proc.communicate(timeout=300)
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait()
+    finally:
+        go.touch()
+        server.stop()
+    text = err_path.read_text()
+    assert proc.returncode == 0, out + text
+    assert "Traceback" not in out + text, out + text
+    lost = [line for line in text.splitlines() if "stopped answering" in line]
+    assert len(lost) == 1 and url in lost[0] and "dashboard" in lost[0], text
+    assert re.search(r"could not show .* on the dashboard: the Prefect server does not answer", text), text
+    assert "complete 6, skipped (unchanged) 0, failed 0, invalid 0" in out, out
+    report = tmp_path / "out.report.html"
+    assert f"report: {report}" in out and report.is_file(), out
+    (run,) = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert not run.get("interrupted") and run["counts"]["complete"] == 6, run
+    _job_done(str(tmp_path / "out.zarr"), npy_archive)
 
 
 @pytest.mark.parametrize(("scheduler", "loops_loaded"), [("threads", True), ("processes", False)])

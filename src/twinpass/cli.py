@@ -22,7 +22,7 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Iterator, Sequence
+from typing import Any, Callable, Iterator, Sequence
 
 from . import __version__
 from .errors import ConfigError, ReportNotWrittenError, TwinpassError
@@ -267,16 +267,37 @@ def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | 
 
     See :mod:`twinpass.headstart`. A failure here (a locked store, an unusable archive, or
     an error of twinpass's own) is left to the flow run, which meets it again at the same
-    step and reports it on the dashboard as usual.
+    step and reports it on the dashboard as usual; an unexpected one is logged as a warning
+    first. Ctrl-C is never left to the flow run: the interrupt goes on (exit status 130),
+    also when an error in the clean-up after it took its place.
     """
     from .headstart import HeadStart, offer
 
     try:
         offer(HeadStart.begin(cfg, force=force, scheduler=scheduler, workers=workers, watch=progress))
-    except Exception as e:  # the flow run reports it
+    except TwinpassError as e:  # the flow run meets it again and reports it
         logging.getLogger(__name__).debug("the run was not begun before its flow run: %s", e, exc_info=True)
         return False
+    except Exception as e:
+        if _follows_interrupt(e):
+            raise KeyboardInterrupt from e
+        logging.getLogger(__name__).warning(  # with its traceback: a fault to report if the flow run does not meet it
+            "the run could not be begun before its flow run (%s: %s); the flow run starts it afresh",
+            type(e).__name__, e, exc_info=True)
+        return False
     return True
+
+
+def _follows_interrupt(error: BaseException) -> bool:
+    """Whether ``error`` was raised while a KeyboardInterrupt (Ctrl-C) was being handled."""
+    seen: set[int] = set()
+    cause: BaseException | None = error
+    while cause is not None and id(cause) not in seen:
+        if isinstance(cause, KeyboardInterrupt):
+            return True
+        seen.add(id(cause))
+        cause = cause.__context__
+    return False
 
 
 def _check_utf8_paths(paths: dict[str, str | None]) -> None:
@@ -310,6 +331,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .errors import BlockFailedError
     from .headstart import withdraw
     from .heartbeats import prompt_heartbeats
+    from .job import now_iso
     from .prefect_server import check_api_reachable, configured_api, prefect_api
 
     # The configured Prefect API, else a temporary local server; while that starts, load
@@ -325,6 +347,8 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     run_scheduler = scheduler or (cfg.engine.scheduler if cfg is not None else None)
     run_workers = workers or (cfg.engine.workers if cfg is not None else None)
     head = False
+    since = now_iso()  # the run's record in the store begins at or after this
+    lost: Exception | None = None  # the Prefect API's error, when the server stopped answering
 
     def while_starting() -> None:
         if not head:
@@ -340,40 +364,40 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
             # instead of 0.6 s.
             head = cfg is not None and _head_start(cfg, force=force, scheduler=scheduler, workers=workers,
                                                    progress=progress)
-            with prefect_api(while_starting=while_starting):
+            with prefect_api(while_starting=while_starting) as api_url:
                 if config_block is not None:  # a name with no saved block stops here, before any flow run
-                    flows.load_job(None, config_block)
+                    cfg = flows.load_job(None, config_block)
                 flows.TERMINAL_PROGRESS = progress
                 try:
-                    with prompt_heartbeats():  # heartbeats that do not hold up the end of the run
+                    # Heartbeats that do not hold up the end of the run; a lost server explained in one line.
+                    with prompt_heartbeats(), _without_tracebacks_of(flows.server_unreachable):
                         state = flows.archive_run(
                             config_path=None if config_path is None else str(Path(config_path).resolve()),
                             config_block=config_block, force=force, scheduler=scheduler, workers=workers,
                             report=report, return_state=True)
+                except Exception as e:
+                    if not flows.server_unreachable(e):
+                        raise
+                    lost = e  # the store tells how the run ended
                 finally:
                     flows.TERMINAL_PROGRESS = None
-                try:
-                    summary = state.result(raise_on_failure=False)
-                except Exception as e:  # the result could not be read back
-                    summary = e
+                if lost is None:
+                    try:
+                        summary = state.result(raise_on_failure=False)
+                    except Exception as e:  # the result could not be read back
+                        summary = e
+                    if flows.server_unreachable(summary):
+                        lost = summary
     finally:
         withdraw()  # a head start the flow run did not take (a failed server start, Ctrl-C): stop it
         flows.close_early_client()  # likewise a cluster started early
         progress.close(count=sys.exc_info()[0] is None)  # an interrupted run's count would mislead
+    if lost is not None:
+        return _after_server_lost(cfg, since, lost, api_url, report=report)
     if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):
-        c = summary["counts"]
-        print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
-              f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
-        reasons = summary.get("failed_reasons") or {}
-        for f in summary.get("failed", []):
-            print(f"failed: {f}" + (f": {reasons[f]}" if reasons.get(f) else ""))
-        for f in summary.get("invalid", []):
-            print(f"left out (invalid input): {f}")
-        if summary.get("report"):
-            print(f"report: {summary['report']}")
-        print(f"store: {summary['store']}")
+        _print_summary(summary)
     if state.is_completed():
         code = EXIT_LEFT_OUT if isinstance(summary, dict) and summary.get("invalid") else 0
     else:
@@ -382,6 +406,97 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     if isinstance(summary, dict) and summary.get("report_error"):
         raise ReportNotWrittenError(summary["report_error"], code)
     return code
+
+
+@contextlib.contextmanager
+def _without_tracebacks_of(matches: Callable[[object], bool]) -> Iterator[None]:
+    """While active, Prefect's flow and task run log lines keep their message but lose the
+    traceback of an exception ``matches(exception)`` accepts (one the command explains itself)."""
+
+    def strip(record: logging.LogRecord) -> bool:
+        if record.exc_info and matches(record.exc_info[1]):
+            record.exc_info = record.exc_text = None
+        return True
+
+    loggers = [logging.getLogger(name) for name in ("prefect.flow_runs", "prefect.task_runs")]
+    for lg in loggers:
+        lg.addFilter(strip)
+    try:
+        yield
+    finally:
+        for lg in loggers:
+            lg.removeFilter(strip)
+
+
+def _print_summary(summary: dict[str, Any]) -> None:
+    """Print a flow run's summary (see :func:`twinpass.flows.archive_run`): counts, failed and left-out files, paths."""
+    c = summary["counts"]
+    print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
+          f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+    reasons = summary.get("failed_reasons") or {}
+    for f in summary.get("failed", []):
+        print(f"failed: {f}" + (f": {reasons[f]}" if reasons.get(f) else ""))
+    for f in summary.get("invalid", []):
+        print(f"left out (invalid input): {f}")
+    if summary.get("report"):
+        print(f"report: {summary['report']}")
+    print(f"store: {summary['store']}")
+
+
+def _after_server_lost(cfg: Any, since: str, error: Exception, api_url: str | None, *, report: bool) -> int:
+    """End a flow command whose Prefect server stopped answering (``error``): the exit status
+    the run earned, from its record in the store (README "Exit statuses").
+
+    A run recorded as finished (begun at or after ``since``, ISO 8601 UTC, and not stopped
+    before its end) gets its summary printed and, with ``report``, its HTML report (written
+    here unless the flow run got to it); otherwise the run did not finish, and the
+    status is 1 (files incomplete). Either way one line on stderr says what happened.
+    """
+    global _server_lost
+    _server_lost = True
+    server = f"the Prefect server at {api_url}" if api_url else "the Prefect server"
+    why = f"{type(error).__name__}: {error}"
+    entry, details = _run_recorded_since(cfg, since) if cfg is not None else (None, {})
+    if entry is None or entry.get("interrupted"):
+        _eprint(f"twinpass: {server} stopped answering before the run finished ({why}); finished blocks are "
+                "kept: rerun once the server answers again (or run the engine alone with --no-flow) to do the rest")
+        return 1
+    summary = {"counts": entry["counts"], "failed": list(entry.get("failed") or []),
+               "failed_reasons": dict(details.get("failed") or {}), "invalid": list(details.get("left_out") or {}),
+               "store": cfg.store_location, "report": _report_after(cfg, str(entry.get("end", ""))) if report else None}
+    _print_summary(summary)
+    _eprint(f"twinpass: {server} stopped answering before the flow run ended ({why}); the run finished and is "
+            "recorded in the store (twinpass status shows it), but the dashboard lacks the run's end; see why that "
+            "server stopped before the next run")
+    return 1 if summary["failed"] else EXIT_LEFT_OUT if summary["invalid"] else 0
+
+
+def _report_after(cfg: Any, ended: str) -> str:
+    """The path of ``cfg``'s HTML report at its default place, written now unless the flow
+    run wrote it after the run ``ended`` (ISO 8601)."""
+    import datetime as dt
+
+    from .report_data import default_report_path, write_report
+
+    path = default_report_path(cfg)
+    with contextlib.suppress(OSError, ValueError):
+        if path.stat().st_mtime >= dt.datetime.fromisoformat(ended).timestamp():
+            return str(path)
+    return str(write_report(cfg))
+
+
+def _run_recorded_since(cfg: Any, since: str) -> tuple[dict[str, Any] | None, dict[str, Any]]:
+    """The store's last run entry and its details, if that run began at or after ``since`` (else None, {})."""
+    from .io.store import OutputStore
+
+    try:
+        store = OutputStore.open(cfg.store_location, mode="r", archive_root=cfg.archive_root)
+        runs = store.read_root_info().get("runs") or []
+        if not runs or str(runs[-1].get("start", "")) < since:
+            return None, {}
+        return dict(runs[-1]), store.read_run_details(str(runs[-1].get("run_id")))
+    except TwinpassError:  # no store, or none readable: nothing recorded
+        return None, {}
 
 
 def cmd_status(args: argparse.Namespace) -> int:
@@ -577,6 +692,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 _exit_code: int | None = None
 """The command's exit status once :func:`main` has returned it (the command line only)."""
+_server_lost = False
+"""The flow run's Prefect server stopped answering (:func:`_after_server_lost`)."""
 
 
 def _end_without_finalizing() -> None:
@@ -610,7 +727,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the ``twinpass`` command with ``argv`` (default: the command line); return the exit status.
 
     Called with the command line (``argv`` None), the process ends without finalising the
-    interpreter once every exit handler has run (see :func:`_end_without_finalizing`).
+    interpreter once every exit handler has run (see :func:`_end_without_finalizing`). When
+    the Prefect server stopped answering, it ends at once instead: at the interpreter's exit
+    Prefect would try to send it each event still queued (about 7 s each) before the exit
+    handlers run, and nothing they do can reach it (the temporary server, if any, is
+    stopped already).
     """
     global _exit_code
     if argv is None:
@@ -618,6 +739,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     code = _main(argv)
     if argv is None:
         _exit_code = code
+        if _server_lost:
+            _end_without_finalizing()
     return code
 
 

@@ -434,7 +434,13 @@ class ClientStart:
     (about 0.2-0.3 s of interpreter time, 1-2 s with worker processes) overlaps other work.
 
     The constructor returns at once; :meth:`client` waits for the client (and raises what
-    starting it raised); :meth:`close` closes it (safe to repeat, and after a failed start).
+    starting it raised); :meth:`close` closes it (safe to repeat, after a failed start, and
+    while the start still goes on: it waits for the start to end, then closes what it
+    started).
+
+    Waiting is on an event the start sets when it ends, not on the start's thread: a
+    ``Thread.join`` interrupted by Ctrl-C can leave the thread marked as ended while it
+    still runs (Python 3.11's ``threading``), and a later join then returns at once.
 
     Parameters
     ----------
@@ -449,6 +455,11 @@ class ClientStart:
         self._client: Any = None
         self._error: BaseException | None = None
         self._closed = False
+        self._ended = threading.Event()
+        """Set when the start has ended, with a client or an error."""
+        self._abandoned = False
+        """:meth:`close` was interrupted while it waited: the start's thread closes what it started."""
+        self._state_lock = threading.Lock()
         self._thread = threading.Thread(target=self._enter, name="twinpass-dask-start", daemon=True)
         self._thread.start()
 
@@ -457,10 +468,15 @@ class ClientStart:
             self._client = self._cm.__enter__()
         except BaseException as e:  # handed to the caller by client()
             self._error = e
+        with self._state_lock:
+            self._ended.set()
+            abandoned = self._abandoned
+        if abandoned:
+            self._exit()
 
     def client(self) -> Any:
         """The started :class:`distributed.Client` (waits for the start)."""
-        self._thread.join()
+        self._ended.wait()
         if self._error is not None:
             raise self._error
         if self._closed:
@@ -468,11 +484,28 @@ class ClientStart:
         return self._client
 
     def close(self) -> None:
-        """Close the client and its local cluster (waits for the start first)."""
-        self._thread.join()
-        if self._closed:
-            return
-        self._closed = True
+        """Close the client and its local cluster (waits for the start first).
+
+        Interrupted while it waits for the start (Ctrl-C again), it raises that interrupt
+        and leaves the closing to the start's thread, once the start has ended.
+        """
+        with self._state_lock:
+            if self._closed:
+                return
+            self._closed = True
+        try:
+            self._ended.wait()
+        except BaseException:
+            with self._state_lock:
+                ended = self._ended.is_set()
+                self._abandoned = not ended
+            if ended:
+                self._exit()
+            raise
+        self._exit()
+
+    def _exit(self) -> None:
+        """Leave :func:`dask_client` after a start that ended (nothing to close after a failed one)."""
         if self._error is None:
             self._cm.__exit__(None, None, None)
 

@@ -9,7 +9,8 @@ changed while workers run; a missing or empty file means no rules)::
      {"action": "kill-once", "file": "*", "block": 0},
      {"action": "halo0", "file": "*", "block": 2},
      {"action": "perturb", "file": "*", "block": 2},
-     {"action": "sleep", "file": "*", "block": "*", "seconds": 0.2}]
+     {"action": "sleep", "file": "*", "block": "*", "seconds": 0.2},
+     {"action": "hold", "file": "*", "block": "*", "path": "/tmp/go", "seconds": 120}]
 
 ``file`` is a shell-style pattern matched against the output array name (the input's
 path relative to the archive root, without its suffix); ``block`` is a block index of
@@ -21,7 +22,9 @@ the block is killed with SIGKILL, as by the kernel's out-of-memory killer or an
 operator), ``halo0`` (the block is filtered with no halo: a wrong result near its edges
 that the seam check must catch), ``perturb`` (the first section's numerator, or the FIR
 taps, times sqrt(2): +3 dB per pass, +6 dB overall, a wrong response the response check
-must catch), ``sleep`` (``seconds`` of delay before the block runs).
+must catch), ``sleep`` (``seconds`` of delay before the block runs), ``hold`` (the block
+waits until a file exists at ``path``, at most ``seconds`` if given: a test lets the blocks
+go on once it has done what it must do while they wait).
 
 "-once" rules record that they fired as marker files in ``TWINPASS_FAULTS_STATE`` (a
 folder; required for -once rules), so a rule fires once across threads, processes and
@@ -45,7 +48,7 @@ ENV = "TWINPASS_FAULTS"
 ENV_FILE = "TWINPASS_FAULTS_FILE"
 ENV_STATE = "TWINPASS_FAULTS_STATE"
 
-ACTIONS = ("raise", "raise-once", "kill", "kill-once", "halo0", "perturb", "sleep")
+ACTIONS = ("raise", "raise-once", "kill", "kill-once", "halo0", "perturb", "sleep", "hold")
 
 
 @dataclass(frozen=True)
@@ -56,6 +59,7 @@ class FaultRule:
     file: str = "*"
     block: int | str = "*"
     seconds: float = 0.0
+    path: str = ""
 
     def matches(self, name: str, block: int) -> bool:
         return fnmatch.fnmatch(name, self.file) and (self.block == "*" or int(self.block) == block)
@@ -93,6 +97,9 @@ def parse_rules(text: str, where: str = ENV) -> list[FaultRule]:
             raise ConfigError(f"{where}: rule {n} has unknown action {rule.action!r}; use one of {', '.join(ACTIONS)}")
         if rule.block != "*" and not (isinstance(rule.block, int) and not isinstance(rule.block, bool)):
             raise ConfigError(f"{where}: rule {n} block = {rule.block!r}: use a block index or \"*\"")
+        if rule.action == "hold" and not rule.path:
+            raise ConfigError(f"{where}: rule {n} (hold) needs a \"path\", the file whose existence lets "
+                              "the block go on")
         rules.append(rule)
     return rules
 
@@ -145,6 +152,13 @@ def _kill_self() -> None:
     os._exit(137)  # pragma: no cover - platforms without SIGKILL
 
 
+def _hold(rule: FaultRule, poll_s: float = 0.05) -> None:
+    """Wait until a file exists at ``rule.path`` (at most ``rule.seconds`` when positive)."""
+    deadline = time.monotonic() + rule.seconds if rule.seconds > 0 else None
+    while not os.path.exists(rule.path) and (deadline is None or time.monotonic() < deadline):
+        time.sleep(poll_s)
+
+
 def apply(name: str, block: int) -> set[str]:
     """Fire the rules matching (array ``name``, ``block``); return numeric tamper flags."""
     flags: set[str] = set()
@@ -154,6 +168,8 @@ def apply(name: str, block: int) -> set[str]:
         act = rule.action
         if act == "sleep":
             time.sleep(rule.seconds)
+        elif act == "hold":
+            _hold(rule)
         elif act in ("halo0", "perturb"):
             flags.add(act)
         elif act.endswith("-once") and not _first_time(rule, name, block):

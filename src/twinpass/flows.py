@@ -41,6 +41,7 @@ import uuid
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterator
 
+import httpx
 from prefect import flow, get_run_logger, task
 from prefect.artifacts import (
     create_link_artifact,
@@ -50,6 +51,7 @@ from prefect.artifacts import (
     update_progress_artifact,
 )
 from prefect.cache_policies import NO_CACHE
+from prefect.runtime import flow_run as flow_run_runtime
 from prefect.states import Completed, Failed
 from prefect.utilities.annotations import quote
 
@@ -88,6 +90,44 @@ it apart from a clean run's ``Completed``, and automations can match it (event
 ``prefect.flow-run.LeftOut``). The command exits 3 for such a run."""
 
 _CLIENTS_LOCK = threading.Lock()
+
+
+def server_unreachable(error: object) -> bool:
+    """Whether ``error`` says the Prefect API stopped answering: no connection, a timeout or a
+    broken exchange (httpx's transport errors), or a server error (HTTP status 500-599)."""
+    if isinstance(error, httpx.TransportError):
+        return True
+    return isinstance(error, httpx.HTTPStatusError) and error.response.status_code >= 500
+
+
+_UNPUBLISHED: set[str] = set()
+"""Flow runs (ids) whose dashboard artifacts are no longer sent: the server stopped answering."""
+
+
+def _publish(what: str, create: Any, *args: Any, **kwargs: Any) -> Any:
+    """``create(*args, **kwargs)``, an artifact showing ``what`` on the dashboard, in a task;
+    returns what ``create`` returns (None when not created).
+
+    The run's records are in the store, not on the dashboard: an artifact the server refuses
+    is a warning and the run goes on, its outcome unchanged; when the Prefect server does not
+    answer at all (after Prefect's own retries), the flow run's later artifacts are not tried
+    either (each would wait for the same retries).
+    """
+    run_id = str(flow_run_runtime.id)
+    if run_id in _UNPUBLISHED:
+        return None
+    try:
+        return create(*args, **kwargs)
+    except Exception as e:
+        if server_unreachable(e):
+            _UNPUBLISHED.add(run_id)
+            get_run_logger().warning("could not show %s on the dashboard: the Prefect server does not answer "
+                                     "(%s: %s); the run goes on, and its records are in the store",
+                                     what, type(e).__name__, e)
+        else:
+            get_run_logger().warning("could not show %s on the dashboard (%s: %s); the run's records in the "
+                                     "store stand (`twinpass status`)", what, type(e).__name__, e)
+        return None
 
 
 @dataclasses.dataclass
@@ -243,7 +283,8 @@ def design_task(prep: Prepared) -> dict[str, Any]:
     for fs, err in prep.design_errors.items():
         logger.error("no design for %g Hz: %s", fs, err)
         parts += [f"## {fs:g} Hz: no design", "", err, ""]
-    create_markdown_artifact("\n".join(parts), key=ARTIFACT_DESIGN, description="Overall and per-pass response")
+    _publish("the design report", create_markdown_artifact, "\n".join(parts), key=ARTIFACT_DESIGN,
+             description="Overall and per-pass response")
     return {f"{fs:g}": d.report for fs, d in prep.designs.items()}
 
 
@@ -296,8 +337,8 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
     design = prep.designs[seg.sample_rate_hz]
     todo = [f.relpath for f in seg.files if f.action != "skip"]
     logger.info("segment %s: %d file(s) to filter: %s", seg.segment_id, len(todo), ", ".join(todo))
-    progress = DashboardProgress(create_progress_artifact(0.0, description=f"blocks of segment {seg.segment_id}"),
-                                 logger)
+    progress = DashboardProgress(_publish(f"the progress of segment {seg.segment_id}", create_progress_artifact, 0.0,
+                                          description=f"blocks of segment {seg.segment_id}"), logger)
     last = [time.monotonic()]
     block_errors = BlockErrorLog(seg.segment_id, logger)
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
@@ -355,8 +396,9 @@ class DashboardProgress:
     percentage, and the sender thread passes on the latest one it finds (older ones are
     dropped). Prefect's client retries a failed request for about a minute, so an update to
     a server that went away would otherwise hold up the segment's driver that long for each
-    block. After a failed update the rest are dropped, with one warning. The thread runs in
-    a copy of the task's context (Prefect's settings and run context live there).
+    block. After a failed update the rest are dropped, with one warning; with no artifact
+    (``artifact_id`` None: it could not be created) none is sent. The thread runs in a copy
+    of the task's context (Prefect's settings and run context live there).
     """
 
     CLOSE_WAIT_S = 10.0
@@ -367,7 +409,7 @@ class DashboardProgress:
         self._logger = logger
         self._latest: float | None = None
         self._closed = False
-        self._failed = False
+        self._failed = artifact_id is None  # not created: nothing to update
         self._cv = threading.Condition()
         context = contextvars.copy_context()
         self._thread = threading.Thread(target=context.run, args=(self._send,), daemon=True,
@@ -438,20 +480,8 @@ def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, duratio
                      "blocks not done": 0, "seconds": 0.0, "worst passband dev (dB)": None,
                      "worst phase (deg)": None, "stopband att (dB)": None,
                      "seam mismatch": bad.explained})
-    with _dashboard_only(f"the per-file table of run {result.run_id}"):
-        create_table_artifact(rows, key=ARTIFACT_FILES, description=f"twinpass run {result.run_id}")
-
-
-@contextlib.contextmanager
-def _dashboard_only(what: str) -> Iterator[None]:
-    """Log an error in the ``with`` block (creating an artifact) as a warning naming ``what``
-    instead of raising it: the run's records are written, and the dashboard's copy of them
-    must not change its outcome."""
-    try:
-        yield
-    except Exception as e:
-        get_run_logger().warning("could not publish %s on the dashboard (%s: %s); the run's records in the "
-                                 "store stand (`twinpass status`)", what, type(e).__name__, e)
+    _publish("the per-file table", create_table_artifact, rows, key=ARTIFACT_FILES,
+             description=f"twinpass run {result.run_id}")
 
 
 @task(name="write-report", cache_policy=NO_CACHE)
@@ -469,9 +499,8 @@ def report_task(cfg: JobConfig) -> Any:
     except Exception as e:
         get_run_logger().debug("the report was not written", exc_info=True)
         return Failed(message=report_failure(cfg, e))
-    with _dashboard_only(f"the link to the report {path}"):
-        create_link_artifact(Path(path).resolve().as_uri(), link_text="twinpass report", key=ARTIFACT_REPORT,
-                             description="Self-contained HTML report")
+    _publish("the report's link", create_link_artifact, Path(path).resolve().as_uri(), link_text="twinpass report",
+             key=ARTIFACT_REPORT, description="Self-contained HTML report")
     return str(path)
 
 

@@ -195,6 +195,11 @@ class HeadStart:
         TwinpassError
             What the flow body would raise at these steps (a locked or unusable store, an
             unreadable archive...); nothing is left held.
+        KeyboardInterrupt
+            Ctrl-C; once the run's root provenance is recorded (waiting for the cluster,
+            starting the drivers), the run is recorded as stopped before its end, as the
+            flow body records it. Nothing is left held: a cluster still starting is closed
+            once its start ends.
         """
         run_id, started = uuid.uuid4().hex[:12], now_iso()
         scheduler, workers = scheduler or cfg.engine.scheduler, int(workers or cfg.engine.workers)
@@ -208,12 +213,16 @@ class HeadStart:
                        ClientStart(scheduler, workers) if busy else None)
             held.callback(head.close)  # runs before the lock is released
             begin_run(store, prep)
-            if head.client_start is not None:
-                head._client = CancellableClient(head.client_start.client())
-                for w in busy:  # one by one: if a later driver cannot start, close() stops those running
-                    driver = EarlySegment(w, prep, store, head._client, watch, head.tally)
-                    head.segments[w.segment_id] = driver
-                    head._drivers.append(driver)
+            try:
+                if head.client_start is not None:
+                    head._client = CancellableClient(head.client_start.client())
+                    for w in busy:  # one by one: if a later driver cannot start, close() stops those running
+                        driver = EarlySegment(w, prep, store, head._client, watch, head.tally)
+                        head.segments[w.segment_id] = driver
+                        head._drivers.append(driver)
+            except KeyboardInterrupt:  # Ctrl-C: recorded as stopped before its end, as a run of the flow would be
+                head.stop_interrupted()
+                raise
             head._lock = held.pop_all()  # held from now on until release() or withdraw()
         return head
 
@@ -280,6 +289,11 @@ class HeadStart:
         """:meth:`close`, then release the run lock (safe to repeat)."""
         self._lock.close()
 
+    def stop_interrupted(self) -> None:
+        """:meth:`close`, then record the run as stopped before its end (call it while the run lock is held)."""
+        self.close()
+        finish_interrupted_run(self.store, self.tally.result(self.run_id, self.started, self.prep), self.cfg)
+
 
 _pending: HeadStart | None = None
 _pending_lock = threading.Lock()
@@ -317,8 +331,7 @@ def withdraw() -> None:
         if not head._drivers_ended():
             log.warning("no flow run took over run %s; stopping it: its unfinished blocks are recorded as not "
                         "done, and the next run of the same configuration finishes them", head.run_id)
-        head.close()  # the drivers have ended: the run is recorded as interrupted, then the lock released
-        finish_interrupted_run(head.store, head.tally.result(head.run_id, head.started, head.prep), head.cfg)
+        head.stop_interrupted()  # the drivers have ended: the run is recorded as interrupted, then the lock released
         head.release()
 
 
