@@ -601,6 +601,30 @@ def test_a_run_begun_for_other_settings_is_stopped_and_the_flow_run_starts_afres
         check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, stream)
 
 
+def test_a_wait_for_a_driver_cut_short_by_ctrl_c_does_not_take_it_for_ended(npy_archive, tmp_path, monkeypatch):
+    # On Python 3.11, a Thread.join that Ctrl-C interrupts can mark the thread stopped while
+    # it still runs (CPython issue 90882, from memory); a stopping run that took such a
+    # driver for ended would release the store's lock under it. Every block is held until a
+    # file exists; Ctrl-C (SIGINT to this thread) comes while the test waits for the driver.
+    gate = tmp_path / "go"
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "hold", "file": "*", "block": "*",
+                                                       "path": str(gate), "seconds": 120}]))
+    head = HeadStart.begin(load_config(write_job(tmp_path, npy_archive)))
+    try:
+        driver = head.segments[next(iter(head.segments))]
+        timer = threading.Timer(0.3, signal.pthread_kill, (threading.main_thread().ident, signal.SIGINT))
+        timer.start()
+        with pytest.raises(KeyboardInterrupt):
+            driver.join()  # held: only the interrupt ends this wait
+        timer.join()
+        assert not driver.join(0), "a driver whose blocks are held was taken for ended"
+    finally:
+        gate.touch()
+        offer(head)
+        withdraw()  # the drivers end once their blocks are let go; the lock is released
+    assert driver.join(0)
+
+
 @pytest.mark.parametrize("scheme", ["memory", "file"])
 def test_output_to_an_fsspec_url(prefect_client, npy_archive, tmp_path, monkeypatch, scheme):
     monkeypatch.chdir(tmp_path)  # a report of a non-local store goes to the working folder

@@ -72,6 +72,9 @@ class EarlySegment:
         self._events: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self._outcomes: list[FileOutcome] | None = None
         self._error: BaseException | None = None
+        self._ended = threading.Event()
+        """Set once the driver has ended. Waited on instead of the thread: on Python 3.11 a
+        ``Thread.join`` interrupted by Ctrl-C can mark the thread stopped while it still runs."""
         self._thread = threading.Thread(target=self._drive, args=(prep, store, client),
                                         name=f"twinpass-early-{seg.segment_id}"[:60], daemon=True)
         self._thread.start()
@@ -96,6 +99,7 @@ class EarlySegment:
             self._error = e
         finally:
             self._events.put(_END)
+            self._ended.set()
 
     def follow(self, on_block: ProgressFn | None = None) -> list[FileOutcome]:
         """Wait for the driver, calling ``on_block`` in this thread for each of its blocks.
@@ -114,7 +118,7 @@ class EarlySegment:
                     on_block(*event)
                 except Exception as e:  # raised once the driver has ended
                     failed = e
-        self._thread.join()
+        self._ended.wait()
         if self._error is not None:
             raise self._error
         if failed is not None:
@@ -136,8 +140,7 @@ class EarlySegment:
 
     def join(self, timeout: float | None = None) -> bool:
         """Wait for the driver to end (at most ``timeout`` seconds); whether it has ended."""
-        self._thread.join(timeout)
-        return not self._thread.is_alive()
+        return self._ended.wait(timeout)
 
 
 @dataclass
