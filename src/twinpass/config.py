@@ -53,7 +53,8 @@ class ProcessingConfig:
     edge_samples: int | str = "auto"
     """Length of the end extension in samples, or "auto" (the effective length, capped)."""
     block_seconds: float | None = None
-    """Core length of a block in seconds; None = automatic (at least 24 halos and 65536 samples, within memory_budget_mib)."""
+    """Core length of a block in seconds; None = automatic (the longer of 24 halos and 65536 samples, less where
+    memory_budget_mib fits less, then cut equal within each file)."""
     memory_budget_mib: float = 256.0
     """Upper bound on one block's working memory (window + output, float64), MiB."""
     mode: str = "auto"
