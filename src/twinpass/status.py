@@ -17,6 +17,7 @@ from .core.failures import SHOWN
 from .errors import StoreError
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
+from .io.store_lock import LockInfo
 
 
 def open_target(target: str) -> tuple[OutputStore, str]:
@@ -213,7 +214,8 @@ def lock_line(lock: Mapping[str, Any] | None) -> str:
     if lock.get("state") == "unreadable":
         return (f"the store's lock {lock.get('where')} cannot be read (a run may have been killed while taking "
                 "it); if no run is using the store, delete it")
-    who = f"run {lock.get('run_id')} (pid {lock.get('pid')} on host {lock.get('host')}, started {lock.get('started')})"
+    who = LockInfo(pid=int(lock["pid"]), host=str(lock["host"]), run_id=str(lock["run_id"]),
+                   started=str(lock["started"]), token="").describe()
     if lock.get("state") == "running":
         return f"{who} is writing to the store now: its files may be incomplete until it ends"
     if lock.get("state") == "gone":
