@@ -13,7 +13,8 @@ segment task follows its running driver. Other callers (deployments, Python) run
 from the start.
 
 Ctrl-C (or an error leaving the body while segment tasks run) stops the run in this order:
-no segment task starts or is retried any more (each ends with ``RunStoppedError``), the
+no segment task starts or is retried any more (each ends in state Cancelled, its message
+that of the ``RunStoppedError`` that says what was left undone), the
 run's blocks are cancelled until every task driving or following a segment has returned
 (its unfinished blocks recorded as cancelled), and only then does the cluster close.
 
@@ -52,7 +53,7 @@ from prefect.artifacts import (
 )
 from prefect.cache_policies import NO_CACHE
 from prefect.runtime import flow_run as flow_run_runtime
-from prefect.states import Completed, Failed
+from prefect.states import Cancelled, Completed, Failed
 from prefect.utilities.annotations import quote
 
 from .config import JobConfig, load_config
@@ -290,20 +291,32 @@ def design_task(prep: Prepared) -> dict[str, Any]:
 
 def _worth_retrying(task: Any, task_run: Any, state: Any) -> bool:
     """Retry a failed segment unless only checks failed (the same blocks give the same
-    figures), the configuration does not suit it (e.g. blocks too large for the memory
-    budget) or the run was stopped (Ctrl-C: its blocks are being cancelled)."""
-    return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError, RunStoppedError))
+    figures) or the configuration does not suit it (e.g. blocks too large for the memory
+    budget). A segment of a stopped run ends Cancelled, which is never retried."""
+    return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError))
 
 
 @task(name="filter-segment", cache_policy=NO_CACHE, retries=1, retry_delay_seconds=5.0,
       retry_condition_fn=_worth_retrying)
-def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_key: str) -> list[FileOutcome]:
+def filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, client_key: str) -> Any:
     """Run every block a segment needs on the shared Dask client; fail naming failed files.
+
+    Returns the segment's :class:`FileOutcome` list, or a Cancelled state when the run was
+    stopped (Ctrl-C, a cancelled flow run) before the segment finished: its message says
+    what was left undone, and the dashboard shows the task cancelled, not failed.
 
     A retry reruns only the blocks that are not yet done: once a first attempt has
     prepared the segment's files (and invalidated the blocks a neighbour's change reaches),
     their block tables are current, so a retry resumes every file instead of resetting it.
     """
+    try:
+        return _run_segment_task(seg, prep, store, client_key)
+    except RunStoppedError as stopped:
+        return Cancelled(message=str(stopped))
+
+
+def _run_segment_task(seg: SegmentWork, prep: Prepared, store: OutputStore, client_key: str) -> list[FileOutcome]:
+    """The body of :func:`filter_segment`; :class:`RunStoppedError` when the run was stopped."""
     with _CLIENTS_LOCK:
         run = _RUNS.get(client_key)
         if run is None or not run.enter():  # the flow body is stopping the run, or has closed its cluster
