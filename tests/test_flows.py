@@ -378,6 +378,33 @@ def test_locked_store_exits_2_naming_the_lock(prefect_server, npy_archive, tmp_p
     assert "twinpass: error:" in err and "another-run" in err, err
 
 
+def test_a_stale_lock_recovered_by_the_command_is_said_in_the_flow_runs_log(prefect_client, npy_archive, tmp_path,
+                                                                           monkeypatch):
+    # A run killed without releasing the store's lock (kill -9, a machine going down) leaves
+    # it behind; the next run recovers it. The dashboard is where a scheduled run is watched,
+    # so the flow run's own log says so, naming the run that left it, as the terminal does.
+    import socket
+
+    from prefect.client.schemas.filters import LogFilter, LogFilterFlowRunId
+
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")
+    OutputStore.open(str(tmp_path / "out.zarr"), mode="a", archive_root=npy_archive)
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    (tmp_path / "out.zarr" / ".twinpass-lock").write_text(json.dumps(
+        {"pid": dead.pid, "host": socket.gethostname(), "run_id": "killed-run", "started": "2026-03-01T00:00:00+00:00"}))
+    assert cli.main(["run", str(cfg), "--no-report"]) == 0
+    run = _flow_run_of(prefect_client, cfg)
+    logs = poll(lambda: [lg.message for lg in prefect_client.read_logs(
+                    log_filter=LogFilter(flow_run_id=LogFilterFlowRunId(any_=[run.id])))],
+                lambda msgs: any("stale lock" in m for m in msgs), "the flow run's stale-lock line")
+    line = next(m for m in logs if "stale lock" in m)
+    assert "killed-run" in line and "no longer running" in line, line
+    assert not (tmp_path / "out.zarr" / ".twinpass-lock").exists()
+    check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
+
+
 # ------------------------------------------------------------------ execution
 def test_distributed_scheduler_address_from_inside_the_task(prefect_client, npy_archive, tmp_path):
     from distributed import Client, LocalCluster

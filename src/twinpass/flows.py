@@ -609,6 +609,8 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     durations: dict[str, float] = {}
     failed_files: list[str] = []
     with held:
+        for gone in store.stale_locks_recovered:  # said on the terminal by the store; here on the dashboard
+            logger.warning("recovered a stale lock on the output store: %s is no longer running", gone.describe())
         cleaned = store.clean_partials() if head is None else head.cleaned
         if cleaned:
             logger.warning("removed %d partial chunk file(s) left by an interrupted run", cleaned)

@@ -765,6 +765,9 @@ class OutputStore:
         self.lock_run_id = ""
         """Id of the run holding the lock through this object, else empty; outputs prepared
         meanwhile name it in their ``written_by`` attribute."""
+        self.stale_locks_recovered: list[LockInfo] = []
+        """Holders of stale locks (their runs gone without releasing them) that :meth:`lock`
+        removed, for the run to say so in its own log."""
         self._handles: collections.OrderedDict[str, _TableHandles] = collections.OrderedDict()
         """Open block-table arrays per output array, for :meth:`record_block` (driver only), the
         :data:`_NODES_KEPT` most recently used; dropped by every method that rewrites a table
@@ -872,7 +875,8 @@ class OutputStore:
         """
         self._writable()
         lock_file = self._lock_file()
-        info = store_lock.acquire(lock_file, run_id)
+        self.stale_locks_recovered = []
+        info = store_lock.acquire(lock_file, run_id, self.stale_locks_recovered)
         self.lock_token, self.lock_run_id = info.token, run_id
         try:
             yield info

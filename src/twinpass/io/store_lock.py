@@ -173,8 +173,11 @@ class FsspecLockFile:
             pass
 
 
-def acquire(lock: LockFile, run_id: str) -> LockInfo:
-    """Take the lock for ``run_id``; recover a stale one; else raise :class:`StoreLockedError`."""
+def acquire(lock: LockFile, run_id: str, recovered: list[LockInfo] | None = None) -> LockInfo:
+    """Take the lock for ``run_id``; recover a stale one; else raise :class:`StoreLockedError`.
+
+    The holders of stale locks removed on the way are appended to ``recovered`` (when given),
+    so that the caller can say so where its user looks (a flow run's log)."""
     info = LockInfo.new(run_id)
     for _ in range(ATTEMPTS):
         if lock.create(info.to_bytes()):
@@ -193,15 +196,17 @@ def acquire(lock: LockFile, run_id: str) -> LockInfo:
                 f"output store is locked by {holder.describe()}: {lock.where}; wait for that run to finish, "
                 f"or if it is no longer running, delete {lock.where} and rerun"
             )
-        _remove_stale(lock, raw, holder)
+        if _remove_stale(lock, raw, holder) and recovered is not None:
+            recovered.append(holder)
     raise StoreLockedError(
         f"output store lock {lock.where} keeps changing hands, or another run is taking it over "
         f"({lock.where}{TAKEOVER_SUFFIX}): retry later; if no other run is starting, delete both and rerun"
     )
 
 
-def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> None:
-    """Remove the lock judged stale (``raw``, held by ``holder``) if it is still that one.
+def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> bool:
+    """Remove the lock judged stale (``raw``, held by ``holder``) if it is still that one;
+    whether this call removed it.
 
     The check and the removal happen while holding the takeover guard: without it, a run
     that judged the same stale lock could check, let another remove it and take the lock,
@@ -217,7 +222,7 @@ def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> None:
             guard.remove()
         else:
             time.sleep(0.05)  # another run is taking the lock over (or is writing the guard)
-        return
+        return False
     try:
         if lock.read() == raw:
             log.warning(
@@ -225,6 +230,8 @@ def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> None:
                 holder.describe(), lock.where,
             )
             lock.remove()
+            return True
+        return False
     finally:
         guard.remove()
 
