@@ -702,14 +702,23 @@ def test_deployable_module_exposes_the_flow():
     assert set(loaded.parameters.properties) >= {"config_path", "config_block", "force", "scheduler", "workers"}
 
 
-def test_cli_serve_creates_the_scheduled_deployment(prefect_server, prefect_client, npy_archive, tmp_path):
+@pytest.mark.parametrize("source", ["file", "block"])
+def test_cli_serve_creates_the_scheduled_deployment(prefect_server, prefect_client, npy_archive, tmp_path, source):
     from prefect.client.schemas.filters import DeploymentFilter, DeploymentFilterName
 
     cfg = write_job(tmp_path, npy_archive)
-    name = "tp-weekday-mornings"
+    name = f"tp-weekday-mornings-{source}"
     env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server})
+    if source == "block":  # a configuration saved on the server, read by each scheduled run
+        block = f"tp-served-{uuid.uuid4().hex[:8]}"
+        saved = subprocess.run([sys.executable, "-m", "twinpass.cli", "save", str(cfg), "--name", block],
+                               env=env, cwd=tmp_path, capture_output=True, text=True, timeout=600)
+        assert saved.returncode == 0, saved.stdout + saved.stderr
+        what, expected = ["--block", block], {"config_block": block}
+    else:
+        what, expected = [str(cfg)], {"config_path": str(cfg.resolve())}
     with open(tmp_path / "serve.log", "w") as log:
-        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "serve", str(cfg), "--cron", "30 2 * * 1-5",
+        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "serve", *what, "--cron", "30 2 * * 1-5",
                                  "--timezone", "Europe/Berlin", "--name", name],
                                 env=env, cwd=tmp_path, stdout=log, stderr=subprocess.STDOUT)
     try:
@@ -727,7 +736,7 @@ def test_cli_serve_creates_the_scheduled_deployment(prefect_server, prefect_clie
     (dep,) = deps
     (sched,) = dep.schedules
     assert (sched.schedule.cron, sched.schedule.timezone) == ("30 2 * * 1-5", "Europe/Berlin")
-    assert dep.parameters == {"config_path": str(cfg.resolve())}
+    assert dep.parameters == expected
     assert prefect_client.read_flow(dep.flow_id).name == flows.FLOW_NAME
 
 
@@ -750,6 +759,14 @@ def test_saved_block_mistakes_are_configuration_errors(prefect_server, npy_archi
     assert r.returncode == 2, r.stdout + r.stderr
     assert f"no TwinpassJob block named '{name}'" in r.stderr and "twinpass save" in r.stderr, r.stderr
     assert "Traceback" not in r.stderr + r.stdout and "Beginning flow run" not in r.stderr + r.stdout
+    # Serving a block nobody saved stops at once, not at its first scheduled run; so does
+    # serving both a file and a block, or neither.
+    for args in (["--block", name], [str(cfg), "--block", name], []):
+        r = cli_run("serve", *args, "--cron", "30 2 * * *")
+        assert r.returncode == 2, (args, r.stdout + r.stderr)
+        assert "Traceback" not in r.stderr + r.stdout, r.stderr
+        assert (f"no TwinpassJob block named '{name}'" if len(args) == 2
+                else "either a configuration file or --block NAME") in r.stderr, (args, r.stderr)
 
 
 # ------------------------------------------------------------------------- CLI

@@ -586,9 +586,14 @@ def cmd_compile(args: argparse.Namespace) -> int:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
+    if (args.config is None) == (args.block is None):
+        raise ConfigError("twinpass serve: give either a configuration file or --block NAME (a saved TwinpassJob)")
     from . import flows  # sets twinpass's Prefect defaults before prefect is imported
 
-    deployment = flows.build_deployment(args.config, cron=args.cron, timezone=args.timezone, name=args.name)
+    if args.block is not None:  # a name with no saved block stops here, not at the first scheduled run
+        flows.load_job(None, args.block)
+    deployment = flows.build_deployment(args.config, cron=args.cron, timezone=args.timezone, name=args.name,
+                                        config_block=args.block)
     flows.serve_deployment(deployment)
     return 0
 
@@ -677,7 +682,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(func=cmd_compile)
 
     s = sub.add_parser("serve", help="serve a scheduled deployment of the flow (needs a Prefect server)")
-    s.add_argument("config")
+    s.add_argument("config", nargs="?", help="the job configuration (TOML)")
+    s.add_argument("--block", help="serve a configuration saved on the Prefect server (twinpass save)")
     s.add_argument("--cron", required=True, help='cron expression, e.g. "30 2 * * *"')
     s.add_argument("--timezone", default=None, help="IANA time zone of the cron expression (default UTC)")
     s.add_argument("--name", default="nightly", help="deployment name")
