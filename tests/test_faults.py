@@ -388,6 +388,32 @@ def test_fault_rules_are_checked():
     assert faults.parse_rules('[{"action": "sleep", "seconds": 0.1, "block": 2}]')[0].matches("x", 2)
 
 
+def test_a_hold_rule_keeps_its_block_waiting_until_its_file_exists_or_its_seconds_pass(tmp_path, inject):
+    # The "hold" fault lets a test act while blocks wait (stop a server, press Ctrl-C): the
+    # block must not go on before the file appears, must go on once it does, and with
+    # "seconds" must not wait past them.
+    import threading
+
+    go = tmp_path / "go"
+    inject([{"action": "hold", "file": "deck/x", "block": 1, "path": str(go)}])
+    assert faults.apply("deck/x", 0) == set()  # another block is not held
+    released = threading.Event()
+    waiter = threading.Thread(target=lambda: (faults.apply("deck/x", 1), released.set()), daemon=True)
+    waiter.start()
+    assert not released.wait(0.5)  # still held: no file yet
+    go.touch()
+    assert released.wait(30)  # the file lets it go on
+    waiter.join(30)
+    go.unlink()
+    inject([{"action": "hold", "file": "*", "block": "*", "path": str(go), "seconds": 0.2}])
+    bounded = threading.Thread(target=faults.apply, args=("deck/x", 3), daemon=True)
+    bounded.start()
+    bounded.join(30)
+    assert not bounded.is_alive() and not go.exists()  # gave up waiting after its seconds
+    with pytest.raises(ConfigError, match=r"needs a \"path\""):
+        faults.parse_rules('[{"action": "hold", "block": 1}]')
+
+
 def test_reference_check_of_the_faulty_run_uses_scipy(tmp_path, inject):
     """After a retried fault the segment still equals scipy.signal.sosfiltfilt over the whole segment."""
     inject([{"action": "raise-once", "file": "*", "block": 1}])
