@@ -306,6 +306,42 @@ def test_a_report_that_cannot_be_written_after_the_flow_run_keeps_the_runs_outco
     assert all(_file_records_honest(str(tmp_path / "out.zarr")).values())
 
 
+def test_a_report_that_cannot_be_written_after_a_run_with_a_failed_file_is_said_once(prefect_client, npy_archive,
+                                                                                    tmp_path, monkeypatch, capsys):
+    # A file fails (injected fault, no retries) and the report's path is taken by a folder:
+    # the command exits 1 (a file failed), its "run ended" line names the failed file, and
+    # the report's failure is said once, in the last line, not also in the line before.
+    bad = file_relpath("north", 0)
+    cfg = write_job(tmp_path, npy_archive, engine_retries=0, flow_retries=0)
+    monkeypatch.setenv("TWINPASS_FAULTS", json.dumps([{"action": "raise", "file": array_name(bad), "block": 1}]))
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    report = tmp_path / "out.report.html"
+    report.mkdir()
+    assert cli.main(["run", str(cfg)]) == 1
+    captured = capsys.readouterr()
+    ended = [line for line in captured.out.splitlines() if line.startswith("run ended Failed")]
+    assert len(ended) == 1 and bad in ended[0] and "report" not in ended[0], captured.out
+    said = (captured.out + captured.err).count(f"{report}: cannot write the report")
+    assert said == 1 and captured.err.strip().splitlines()[-1].startswith("twinpass: error:"), captured
+
+
+def test_the_demo_whose_report_cannot_be_written_still_ends_as_a_demo(prefect_client, tmp_path, monkeypatch, capsys):
+    # `twinpass demo` with its report's path taken by a folder: the run stands, so the demo
+    # still prints its closing lines (time, exit status, what to try next) and exits 0 (its
+    # one truncated file is left out on purpose), then says in its last line that the report
+    # was not written.
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")  # main() sets it when unset; keep the env as it was
+    folder = tmp_path / "demo"
+    report = folder / "filtered.report.html"
+    report.mkdir(parents=True)
+    assert cli.main(["demo", str(folder), "--hours", "1"]) == 0
+    captured = capsys.readouterr()
+    assert "demo finished in" in captured.out and "(exit status 0;" in captured.out, captured.out
+    assert "next: run the same command again" in captured.out, captured.out
+    last = captured.err.strip().splitlines()[-1]
+    assert last.startswith(f"twinpass: error: {report}: cannot write the report"), captured.err
+
+
 def test_a_per_file_table_the_dashboard_refuses_leaves_the_recorded_run_completed(prefect_client, npy_archive,
                                                                                  tmp_path, monkeypatch, caplog):
     # Injected fault: the API call that publishes the per-file table artifact fails (the

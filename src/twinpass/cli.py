@@ -398,13 +398,16 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):
         _print_summary(summary)
+    report_error = summary.get("report_error") if isinstance(summary, dict) else None
     if state.is_completed():
         code = EXIT_LEFT_OUT if isinstance(summary, dict) and summary.get("invalid") else 0
     else:
-        print(f"run ended {state.name}: {state.message}")
+        # The report's failure is the command's last line (below), not also part of this one.
+        message = (state.message or "").removesuffix(f"{flows.REPORT_UNWRITTEN}{report_error}")
+        print(f"run ended {state.name}: {message}")
         code = 1
-    if isinstance(summary, dict) and summary.get("report_error"):
-        raise ReportNotWrittenError(summary["report_error"], code)
+    if report_error:
+        raise ReportNotWrittenError(report_error, code)
     return code
 
 
@@ -543,17 +546,28 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from .config import load_config
 
     cfg = load_config(config)
-    rc = _run_flow(cfg, str(config), force=False, scheduler=None, workers=None, report=True,
-                   progress=_ProgressBar())
+    unwritten: ReportNotWrittenError | None = None
+    try:
+        rc = _run_flow(cfg, str(config), force=False, scheduler=None, workers=None, report=True,
+                       progress=_ProgressBar())
+    except ReportNotWrittenError as e:  # the run stands: its closing lines, then the report's error
+        unwritten, rc = e, e.exit_status
     if rc == EXIT_LEFT_OUT and _left_out_by_last_run(cfg) == {DEMO_TRUNCATED_FILE}:
         rc = 0  # the one file the demo leaves out on purpose
-    print(f"demo finished in {time.perf_counter() - t0:.1f} s (exit status {rc}; the truncated file is left out "
+    _demo_closing_lines(config, rc, time.perf_counter() - t0)
+    if unwritten is not None:
+        raise ReportNotWrittenError(str(unwritten), rc)
+    return rc
+
+
+def _demo_closing_lines(config: Path, rc: int, seconds: float) -> None:
+    """What the demo prints once its run has ended: its time and status, and what to try next."""
+    print(f"demo finished in {seconds:.1f} s (exit status {rc}; the truncated file is left out "
           "on purpose and reported above)")
     print("next: run the same command again to see unchanged files skipped;")
     print(f"      twinpass status {config}    (per-file table)")
     print("      prefect server start         (dashboard at http://127.0.0.1:4200; then set")
     print("      PREFECT_API_URL=http://127.0.0.1:4200/api and rerun to watch the run there)")
-    return rc
 
 
 def _left_out_by_last_run(cfg: Any) -> set[str]:

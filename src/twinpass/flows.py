@@ -661,7 +661,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                "failed_reasons": result.failure_reasons(),
                "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path,
                "report_error": report_error}
-    also = f"; the report was not written: {report_error}" if report_error else ""
+    also = f"{REPORT_UNWRITTEN}{report_error}" if report_error else ""
     if failed_files:
         return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}{also}", data=summary)
     if prep.invalid:
@@ -670,6 +670,9 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         return Completed(message=f"the report was not written: {report_error}", data=summary)
     return summary
 
+
+REPORT_UNWRITTEN = "; the report was not written: "
+"""What a flow run's message adds, followed by the reason, when its report could not be written."""
 
 LEFT_OUT_NAMED = 3
 """Inputs left out that the message of a flow run in state :data:`STATE_LEFT_OUT` names, with their reasons."""
