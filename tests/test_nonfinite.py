@@ -256,6 +256,22 @@ def test_policy_fail_leaves_the_file_out_naming_the_run(tmp_path):
     assert 'nonfinite = "split"' in bad.remedy and "max_fill_samples >= 40" in bad.remedy
 
 
+@pytest.mark.parametrize("at", [slice(0, 3), slice(1995, 2000)])
+def test_policy_fail_does_not_offer_interpolation_for_a_run_at_an_end_of_the_file(tmp_path, at):
+    # "interpolate" refuses a run reaching the file's first or last sample (no finite
+    # neighbour on that side; test_policy_interpolate_refuses_long_or_end_runs), so the
+    # remedy of "fail" for such a file offers only what would work.
+    rel, x = _nan_archive(tmp_path)
+    x[at, 1] = np.nan
+    _float_wav(tmp_path / "archive", rel, x)
+    (bad,) = discover(load(tmp_path, archive={"name_pattern": PATTERN})).invalid
+    assert 'nonfinite = "split"' in bad.remedy and "trim or repair the file" in bad.remedy, bad.remedy
+    assert "max_fill_samples" not in bad.remedy, bad.remedy
+    # ...and what it offers works: "split" keeps the file.
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN}, processing={"nonfinite": "split"})
+    assert [e.relpath for e in discover(cfg).files] == [rel]
+
+
 def test_policy_split_keeps_the_file_with_its_runs(tmp_path):
     rel, _x = _nan_archive(tmp_path)
     disc = discover(load(tmp_path, archive={"name_pattern": PATTERN}, processing={"nonfinite": "split"}))

@@ -891,12 +891,13 @@ def _judge_nonfinite(
     summary = _runs_summary(runs)
     longest = max(b - a for _c, a, b in runs)
     if policy == "fail":
-        raise _Bad(
-            summary,
-            'set [processing] nonfinite = "split" (the finite pieces are filtered separately and '
-            'the output is NaN there) or "interpolate" with max_fill_samples >= '
-            f"{longest} (linear fill), or repair the file",
-        )
+        split = ('set [processing] nonfinite = "split" (the finite pieces are filtered separately and '
+                 "the output is NaN there)")
+        if any(a <= 0 or b >= info.frames for _c, a, b in runs):  # no finite sample on one side to fill from
+            raise _Bad(summary, f"{split}, or trim or repair the file (\"interpolate\" cannot fill a run that "
+                                "reaches the file's first or last sample)")
+        raise _Bad(summary, f'{split} or "interpolate" with max_fill_samples >= {longest} (linear fill), '
+                            "or repair the file")
     if policy == "split":
         return union, (), (
             f"{summary}: the samples on either side are filtered as separate pieces; "
