@@ -152,6 +152,33 @@ def test_contiguity_within_half_a_sample(shift_samples, joined):
         assert "gap" in segs[1].break_reason and "a.npy" in segs[1].break_reason
 
 
+@pytest.mark.parametrize("fs, shift_us, joined, noted", [
+    (1e6, 1, True, True),      # one sample at 1 MHz: within the 1 us resolution of start times
+    (1e6, 0, True, False),
+    (2e6, 1, True, True),      # two samples at 2 MHz
+    (2e6, 3, False, False),    # beyond the resolution: a gap
+    (4e5, 2, False, False),    # 0.4 MHz: 2 us is 0.8 samples, beyond half a sample: a gap
+    (4e5, 1, True, False),     # 0.4 samples: within half a sample, no note
+])
+def test_joins_above_500_khz_within_the_start_times_resolution_are_named(fs, shift_us, joined, noted):
+    # Start times are datetimes, resolved to 1 us (Python's datetime); above 500 kHz a sample
+    # is shorter than that, so a join is made within 1 us, and each join made more than half a
+    # sample from contiguous is named in a note of the plan.
+    frames = int(fs * 0.01)  # 10 ms
+    start_b = 0.01 + shift_us * 1e-6
+    a = entry("a.npy", 0.0, frames, fs=fs)
+    b = entry("b.npy", start_b, frames, fs=fs)
+    segs, bad = build_segments([a, b])
+    assert bad == []
+    assert (len(segs) == 1) == joined, [s.relpaths for s in segs]
+    notes = [n for s in segs for n in s.join_notes]
+    assert bool(notes) == noted, notes
+    if noted:
+        assert "b.npy joined to a.npy" in notes[0] and "resolution (1 us)" in notes[0], notes
+        plan = make_plan(segs, bad, {}, {fs: DIGEST}, {fs: HALO})
+        assert any("b.npy joined to a.npy" in n for n in plan.notes), plan.notes
+
+
 def test_gap_starts_new_segment_and_ids_are_stable():
     # twinpass rule: a gap starts a new segment; id = stream@ISO start of its first file
     files = chain([("a.npy", 1000), ("b.npy", 1000)]) + [entry("c.npy", 30.0, 1000)]

@@ -697,6 +697,7 @@ def make_plan(
         present.update(seg.relpaths)
         if seg.break_kind == "layout":
             notes.append(f"stream {seg.stream}: new segment {seg.id}: {seg.break_reason}")
+        notes.extend(f"stream {seg.stream}: {note}" for note in seg.join_notes)
     bad: list[FilePlan] = []
     for inv in invalid:
         if inv.path in present or any(b.relpath == inv.path for b in bad):

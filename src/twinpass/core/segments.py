@@ -175,6 +175,10 @@ class Segment:
     holes: tuple[tuple[int, int], ...] = ()
     """Spans ``[start, stop)`` in segment coordinates left out of filtering (unfilled
     non-finite runs of its files); sorted, merged. The output is NaN there."""
+    join_notes: tuple[str, ...] = ()
+    """Joins of this segment whose files' start times are more than half a sample from
+    contiguous, joined because the start times' resolution (1 us) cannot tell them apart
+    at this rate (above 500 kHz): a gap or overlap of a sample or so there goes unseen."""
 
     def pieces(self) -> list[tuple[int, int]]:
         """Spans ``[start, stop)`` between :attr:`holes`, each filtered as a signal of its own."""
@@ -260,7 +264,8 @@ def _mismatch(prev: FileEntry, nxt: FileEntry) -> list[str]:
     return what
 
 
-def _make_segment(stream: str, files: list[FileEntry], why: tuple[str | None, str | None]) -> Segment:
+def _make_segment(stream: str, files: list[FileEntry], why: tuple[str | None, str | None],
+                  join_notes: list[str] | None = None) -> Segment:
     offsets = []
     holes: list[tuple[int, int]] = []
     total = 0
@@ -281,6 +286,7 @@ def _make_segment(stream: str, files: list[FileEntry], why: tuple[str | None, st
         break_kind=why[0],
         break_reason=why[1],
         holes=tuple(merge_runs(holes)),
+        join_notes=tuple(join_notes or ()),
     )
 
 
@@ -297,6 +303,7 @@ def _stream_segments(stream: str, files: list[FileEntry]) -> tuple[list[Segment]
 
     run: list[FileEntry] = []
     run_why: tuple[str | None, str | None] = (None, None)
+    run_notes: list[str] = []
     for f in timed:
         if not run:
             run = [f]
@@ -329,12 +336,20 @@ def _stream_segments(stream: str, files: list[FileEntry]) -> tuple[list[Segment]
         elif off > tol:
             why = ("gap", gap)
         else:
+            if abs(off) > 0.5:  # within the start times' resolution, not within half a sample
+                run_notes.append(
+                    f"{f.relpath} joined to {prev.relpath} although its start time is {off:+.2f} samples from "
+                    f"contiguous: at {prev.sample_rate_hz:g} Hz the start times' resolution (1 us) is "
+                    f"{_DATETIME_RESOLUTION_S * prev.sample_rate_hz:g} samples, so a gap or overlap of that size "
+                    "cannot be told from rounding; if the recorder may drop or repeat samples there, give the "
+                    "files different streams, or check the join in the output"
+                )
             run.append(f)
             continue
-        segments.append(_make_segment(stream, run, run_why))
-        run, run_why = [f], why
+        segments.append(_make_segment(stream, run, run_why, run_notes))
+        run, run_why, run_notes = [f], why, []
     if run:
-        segments.append(_make_segment(stream, run, run_why))
+        segments.append(_make_segment(stream, run, run_why, run_notes))
     for f in untimed:
         segments.append(_make_segment(stream, [f], ("untimed", "no start time: the file is a segment of its own")))
     return segments, invalid
