@@ -505,8 +505,10 @@ def test_a_file_failing_its_checks_is_reported_with_blocks_figures_limits_and_re
     bad = "deck/deck_20260301T000110.npy"
     reason = reasons[bad]
     assert "\n" not in reason  # one line per file in the command's output
-    # Blocks of 2000 frames (10 s at 200 Hz): block 0 is frames 0-1999, 0-10 s into the file.
-    assert "block 0 (frames 0-1,999, 0:00:00-0:00:10 into the file): passband deviation +6.0" in reason
+    # Blocks of 2000 frames (10 s at 200 Hz): block 0 is frames 0-1999, 0-10 s into the file,
+    # which starts at 2026-03-01T00:01:10Z (its name), so 00:01:10-00:01:20 UTC.
+    assert ("block 0 (frames 0-1,999, 0:00:00-0:00:10 into the file, 2026-03-01 00:01:10-00:01:20 UTC): "
+            "passband deviation +6.0") in reason
     # Each pass gains sqrt(2) in amplitude: 2x overall, 20*log10(2) = 6.02 dB (definition of the dB);
     # the limit is [checks] passband_fail_db plus the estimator allowance (a Butterworth has no ripple).
     assert f"limit {cfg.checks.passband_fail_db + ESTIMATOR_ERROR_DB:.3g} dB either way" in reason
@@ -516,7 +518,8 @@ def test_a_file_failing_its_checks_is_reported_with_blocks_figures_limits_and_re
     assert "compare input and output at those frames and rerun" in reason
     assert "checks failed (see its block table)" not in reason
     # The previous file's last block shares a seam with it too, across the join.
-    assert "block 2 (frames 4,000-5,999, 0:00:20-0:00:30 into the file): seam mismatch" in (
+    assert "block 2 (frames 4,000-5,999, 0:00:20-0:00:30 into the file, 2026-03-01 00:01:00-00:01:10 UTC): " \
+        "seam mismatch" in (
         reasons["deck/deck_20260301T000040.npy"])
     assert "following from the failed response check of block 0 of deck/deck_20260301T000110.npy" in (
         reasons["deck/deck_20260301T000040.npy"])
@@ -530,6 +533,19 @@ def test_a_file_failing_its_checks_is_reported_with_blocks_figures_limits_and_re
     failed_blocks = dict(attention_lists(status))["Blocks that failed (the next run tries them again)"]
     assert any(line.startswith(f"{bad} block 0 (frames 0-1,999") and "passband deviation +6.0" in line
                for line in failed_blocks)
+
+
+def test_block_times_are_given_in_utc_across_midnight_and_to_the_millisecond():
+    # Reference: Python's datetime arithmetic (timedelta added to an aware datetime, then
+    # astimezone(UTC)); a start given at +01:00 is shown in UTC.
+    import datetime as dt
+
+    from twinpass.core import failures
+
+    start = dt.datetime(2026, 3, 1, 23, 59, 50, tzinfo=dt.timezone(dt.timedelta(hours=1)))
+    assert failures._wall(start, 0.0, 10.0) == "2026-03-01 22:59:50-23:00:00 UTC"
+    late = dt.datetime(2026, 3, 1, 23, 59, 50, tzinfo=dt.timezone.utc)
+    assert failures._wall(late, 5.25, 20.0) == "2026-03-01 23:59:55.250 to 2026-03-02 00:00:10 UTC"
 
 
 def test_the_one_line_reason_names_a_few_blocks_and_status_lists_them_all(tmp_path, inject):

@@ -33,6 +33,7 @@ import asyncio
 import concurrent.futures
 import contextlib
 import dataclasses
+import datetime as _dt
 import functools
 import logging
 import threading
@@ -1255,7 +1256,8 @@ def explain_check_failures(seg: SegmentWork, store: Any, design: Design, cfg: Jo
         if wanted & {k - 1, k, k + 1}:
             try:
                 t = store.read_block_table(fw.array_name, seams=False)
-                view = FileBlocks(fw.relpath, np.asarray(t.status), np.asarray(t.span), t.figures)
+                start = _dt.datetime.fromisoformat(fw.start_time) if fw.start_time else None
+                view = FileBlocks(fw.relpath, np.asarray(t.status), np.asarray(t.span), t.figures, start)
             except StoreError:
                 pass
         views.append(view)

@@ -11,6 +11,7 @@ is said so. Block indices count from 0 in each file; frames are the file's own, 
 
 from __future__ import annotations
 
+import datetime as _dt
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
@@ -41,6 +42,9 @@ class FileBlocks:
     """[start, stop) of each block in file frames, shape (n_blocks, 2)."""
     figures: np.ndarray | None
     """Figures, shape (n_blocks, channels, len(FIGURES)); None when not recorded."""
+    start: _dt.datetime | None = None
+    """Time of the file's first sample (timezone-aware), when known: blocks are then also
+    named by the times they cover."""
 
 
 @dataclass(frozen=True)
@@ -74,10 +78,26 @@ def _clock(seconds: float) -> str:
     return f"{h}:{m:02d}:{s:02d}{frac}"
 
 
+def _wall(start: _dt.datetime, a_s: float, b_s: float) -> str:
+    """The times ``a_s`` to ``b_s`` seconds after ``start``, in UTC: ``YYYY-mm-dd HH:MM:SS``
+    (to the millisecond when there is a fraction), the end's date left out on the same day
+    (``HH:MM:SS-HH:MM:SS``), else ``... to YYYY-mm-dd HH:MM:SS``."""
+    def at(seconds: float) -> _dt.datetime:
+        return (start + _dt.timedelta(seconds=seconds)).astimezone(_dt.timezone.utc)
+
+    def hms(t: _dt.datetime) -> str:
+        return t.strftime("%H:%M:%S") + (f".{t.microsecond // 1000:03d}" if t.microsecond >= 500 else "")
+
+    t0, t1 = at(a_s), at(b_s)
+    end = f"-{hms(t1)}" if t1.date() == t0.date() else f" to {t1:%Y-%m-%d} {hms(t1)}"
+    return f"{t0:%Y-%m-%d} {hms(t0)}{end} UTC"
+
+
 def _where(fb: FileBlocks, i: int, sample_rate_hz: float) -> str:
     a, b = (int(v) for v in fb.span[i])
-    return (f"block {i} (frames {a:,}-{b - 1:,}, {_clock(a / sample_rate_hz)}-{_clock(b / sample_rate_hz)} "
-            "into the file)")
+    a_s, b_s = a / sample_rate_hz, b / sample_rate_hz
+    wall = "" if fb.start is None else f", {_wall(fb.start, a_s, b_s)}"
+    return f"block {i} (frames {a:,}-{b - 1:,}, {_clock(a_s)}-{_clock(b_s)} into the file{wall})"
 
 
 def _failing(fb: FileBlocks | None, i: int, design: Design, cfg: ChecksConfig, tolerance: float) -> list[Finding]:
