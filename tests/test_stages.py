@@ -24,6 +24,9 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import socket
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -36,6 +39,7 @@ from twinpass.config import load_config
 from twinpass.errors import UnsafePathError
 from twinpass.io.archive import discover
 from twinpass.io.store import OutputStore
+from twinpass.io.store_lock import LockInfo
 from twinpass.job import prepare, run_job
 
 FS = 200.0
@@ -211,15 +215,30 @@ def test_a_store_below_the_root_is_read_array_by_array_and_a_manifest_may_place_
     assert all(e.stream == "s1" for e in discover(cfg).files)
 
 
-def test_notes_say_when_no_glob_takes_the_arrays_and_when_the_earlier_job_is_running(work):
+def test_no_glob_taking_the_arrays_is_noted_and_a_running_earlier_job_leaves_its_arrays_out(work):
     folder, names = work
     plain = write_config(folder, response=NOTCH, archive={"root": "band.zarr", "name_pattern": None},
                          output={"store": "notch.zarr"})  # include: the default "**/*.npy", "**/*.wav"
     disc = discover(load_config(plain))
     assert disc.files == () and any('set include = ["**"]' in w for w in disc.warnings), disc.warnings
-    (folder / "band.zarr" / ".twinpass-lock").write_text("{}")  # what a running job keeps there
+    # A run of the first job holding its store (this process stands for it, on this host):
+    # every array is left out, naming the run, since any may be rewritten while read.
+    lock = folder / "band.zarr" / ".twinpass-lock"
+    lock.write_text(LockInfo.new("stage1-live").to_bytes().decode())
     disc = discover(load_config(_stage2(folder)))
-    assert len(disc.files) == 6 and any("half rewritten" in w for w in disc.warnings), disc.warnings
+    assert disc.files == () and len(disc.invalid) == 6, (disc.files, disc.invalid)
+    assert all("being written by run stage1-live" in b.reason and "once that run has ended" in b.remedy
+               for b in disc.invalid), disc.invalid
+    # A lock whose holder is gone (kill -9): arrays the earlier job completed are read, with a note.
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    lock.write_text(json.dumps({"pid": dead.pid, "host": socket.gethostname(), "run_id": "killed",
+                                "started": "2026-03-01T00:00:00+00:00"}))
+    disc = discover(load_config(_stage2(folder)))
+    assert len(disc.files) == 6 and any("no longer running" in w for w in disc.warnings), disc.warnings
+    # A lock that cannot be parsed (being written) counts as held.
+    lock.write_text("{")
+    assert discover(load_config(_stage2(folder))).files == ()
 
 
 def test_the_order_of_the_two_stages_does_not_change_the_result(work):

@@ -169,7 +169,7 @@ from twinpass.io.readers._common import (
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_input import array_attributes, is_output_store, output_arrays
-from twinpass.io.store_lock import LOCK_NAME
+from twinpass.io.store_lock import LOCK_NAME, LockInfo
 from twinpass.io.store_util import array_name, check_name
 
 _T = TypeVar("_T")
@@ -415,19 +415,27 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         names = output_arrays(folder)
         paths = [] if rel is None else [rel]
         picked = 0
+        writing = _writing_run(folder)
         for name in names:
             ident = name if rel is None else f"{rel}#{name}"
-            if _selected_any([ident, *paths], include, exclude):
+            if not _selected_any([ident, *paths], include, exclude):
+                by_case_only(ident)
+            elif writing is not None:  # it may rewrite any array while this job reads it
+                refused.append(InvalidFile(
+                    ident,
+                    f"the output store {folder} is being written by {writing} of the earlier job, which may "
+                    "rewrite this array while this job reads it",
+                    "run this job again once that run has ended (`twinpass status` on that store names a run "
+                    f"holding it); if no run is using that store, delete {os.path.join(folder, LOCK_NAME)}",
+                ))
+            else:
                 found.append(ident)
                 arrays[ident] = (folder, name)
                 picked += 1
-            else:
-                by_case_only(ident)
         if picked and os.path.exists(os.path.join(folder, LOCK_NAME)):
             notes.append(
-                f"a run of the earlier job holds the output store {folder} ({LOCK_NAME} is there): an array it "
-                "rewrites while this job reads it may be read half rewritten; run this job again once that run "
-                "has ended (the arrays it rewrote are then filtered again)"
+                f"the output store {folder} holds the lock of a run of the earlier job that is no longer running "
+                f"({LOCK_NAME}; its next run recovers it): arrays that run left unfinished are left out"
             )
         if rel is None and names and not picked:
             notes.append(
@@ -1245,6 +1253,23 @@ def _examine(
     entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills,
                       output_name=out_name)
     return entry, notes, scan_entry, was_scanned
+
+
+def _writing_run(folder: str) -> str | None:
+    """The run of an earlier job holding the lock of the output store at ``folder`` (its
+    description), or ``None`` when no lock is there or its holder is gone (stale). A lock
+    that cannot be read, or whose holder is on another host, counts as held."""
+    try:
+        with open(os.path.join(folder, LOCK_NAME), "rb") as fh:
+            raw = fh.read()
+    except FileNotFoundError:
+        return None
+    except OSError as e:
+        return f"a run whose lock cannot be read ({e.strerror or e})"
+    holder = LockInfo.parse(raw)
+    if holder is None:
+        return "a run whose lock cannot be read (it may be being written)"
+    return None if holder.is_stale() else holder.describe()
 
 
 def _exists(root: Path, rel: str) -> bool:
