@@ -6,6 +6,8 @@ schedulers are real. Whole-signal references come from ``scipy.signal.sosfiltfil
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pytest
 import scipy.signal
@@ -118,6 +120,60 @@ def test_a_block_failing_after_a_design_change_reads_as_nan_not_as_the_old_desig
     assert run_job(cfg2).ok
     y = read_output(cfg2.store_location, ARRAYS)[1]
     assert np.max(np.abs(y - ref)) <= filt["tolerance"] * np.max(np.abs(x))
+
+
+@pytest.mark.parametrize("change", ["same size", "appended"])
+def test_an_input_rewritten_while_the_run_reads_it_leaves_no_file_of_its_segment_complete(tmp_path, inject, change):
+    # A recorder still writing a file, or an earlier job rerunning: after the run planned
+    # the segment (fingerprints taken), the middle file is rewritten while a block of the
+    # first file is held (the "hold" fault). Its neighbours read it across the joins, so no
+    # file of the segment may be marked complete; each says the input changed. The next run
+    # filters the new contents: scipy.signal.sosfiltfilt of the whole new stream (reference).
+    import os
+    import threading
+
+    go = tmp_path / "go"
+    cfg = _archive(tmp_path, engine={"retries": 0})
+    inject([{"action": "hold", "file": ARRAYS[0], "block": 0, "path": str(go), "seconds": 120}])
+    done: list = []
+    runner = threading.Thread(target=lambda: done.append(run_job(cfg)), daemon=True)
+    runner.start()
+    middle = tmp_path / "archive" / f"{ARRAYS[1]}.npy"
+    store_array = tmp_path / "run" / "out.zarr" / ARRAYS[2] / "zarr.json"
+    deadline = time.monotonic() + 120
+    while not store_array.exists() and time.monotonic() < deadline:  # planned: its outputs are made
+        time.sleep(0.05)
+    assert store_array.exists()
+    x = make_signal(sum(FRAMES), 2, FS, seed=21)
+    new = x[FRAMES[0]:FRAMES[0] + FRAMES[1]] * 0.5
+    if change == "appended":
+        new = np.concatenate([new, new[:10]])
+    before = middle.stat().st_mtime_ns
+    np.save(middle, new.astype(np.load(middle).dtype))
+    os.utime(middle, ns=(before + 1_000_000_000, before + 1_000_000_000))  # a new time even on coarse clocks
+    go.touch()
+    runner.join(300)
+    (res,) = done
+    assert sorted(res.failed) == sorted(f"{a}.npy" for a in ARRAYS), res.failed
+    reasons = res.failure_reasons()
+    assert "the file changed while this run read it" in reasons[f"{ARRAYS[1]}.npy"], reasons
+    assert "input(s) of its segment changed while this run read them" in reasons[f"{ARRAYS[0]}.npy"], reasons
+    assert all(open_store(cfg.store_location)[a].attrs["complete"] is False for a in ARRAYS)
+
+    inject([])
+    res2 = run_job(cfg)
+    assert not res2.failed, res2.failure_reasons()
+    x[FRAMES[0]:FRAMES[0] + FRAMES[1]] *= 0.5
+    if change == "appended":  # 10 samples longer, it now overlaps the third file, which is left out
+        x = np.concatenate([x[:FRAMES[0] + FRAMES[1]], x[FRAMES[0]:FRAMES[0] + 10]])
+        assert [b.relpath for b in res2.invalid] == [f"{ARRAYS[2]}.npy"] and "overlaps" in res2.invalid[0].reason
+    kept = ARRAYS if change == "same size" else ARRAYS[:2]
+    g = open_store(cfg.store_location)
+    assert all(g[a].attrs["complete"] is True for a in kept)
+    filt = g[ARRAYS[0]].attrs["filter"]
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=filt["edge"], padlen=filt["edge_samples"])
+    y = np.concatenate(read_output(cfg.store_location, kept))
+    assert y.shape == ref.shape and np.max(np.abs(y - ref)) <= filt["tolerance"] * np.max(np.abs(x))
 
 
 def test_a_block_whose_chunk_never_lands_is_an_error_and_the_others_are_recorded(tmp_path, monkeypatch):

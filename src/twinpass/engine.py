@@ -56,6 +56,7 @@ from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.types import RESETTING_DIGEST, Design
 from .errors import ConfigError, CorruptInputError, InputError, RunStoppedError, StoreError, TwinpassError
+from .io.fingerprint import changed_since
 from .io.readers._common import SHORT_READ_HINT, with_config_keys
 from .io.readers.base import ReaderSpec
 
@@ -1219,6 +1220,7 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         store.sync_records()
     outcomes = []
     elapsed = time.perf_counter() - t0
+    moved = inputs_changed_during_run(seg) if checked else {}
     for fw in seg.files:
         spans = spans_by_file[fw.array_name]
         if fw.array_name not in checked:
@@ -1228,6 +1230,10 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         st = np.asarray(table.status)
         finished = np.isin(st, DONE)
         ok = bool(np.all(finished))
+        errors = dict(table.errors)
+        if moved:  # its blocks, or their halos, may have read the input half rewritten
+            ok = False
+            errors[-1] = _moved_message(fw.relpath, moved)
         summary = _checks.summarise(table.figures)
         for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
             summary[f"blocks_{name}"] = int(np.sum(st == code))
@@ -1239,9 +1245,32 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         outcomes.append(FileOutcome(
             fw.relpath, fw.array_name, len(spans), run_count.get(fw.array_name, 0),
             int(np.sum(finished)), int(np.sum(~finished)),
-            "complete" if ok else "failed", elapsed, dict(table.errors), summary,
+            "complete" if ok else "failed", elapsed, errors, summary,
         ))
     return with_check_failures(outcomes, seg, store, design, cfg)
+
+
+def inputs_changed_during_run(seg: SegmentWork) -> dict[str, str]:
+    """The input files of ``seg`` that changed since the run planned them (fingerprint
+    taken at discovery), with how: :func:`twinpass.io.fingerprint.changed_since`."""
+    out = {}
+    for fw in seg.files:
+        how = changed_since(fw.spec.path, fw.fingerprint)
+        if how is not None:
+            out[fw.relpath] = how
+    return out
+
+
+def _moved_message(relpath: str, moved: dict[str, str]) -> str:
+    """Why ``relpath`` is not marked complete: inputs of its segment (``moved``: path -> how)
+    changed while the run read them."""
+    outcome = ("the output is not marked complete, since it may mix samples from before and after the change: "
+               "rerun to filter the new contents")
+    if set(moved) == {relpath}:
+        return f"the file changed while this run read it ({moved[relpath]}); {outcome}"
+    which = "; ".join(f"{rel}: {how}" for rel, how in sorted(moved.items()))
+    return (f"input(s) of its segment changed while this run read them ({which}); its blocks read them across "
+            f"the joins, so {outcome}")
 
 
 def explain_check_failures(seg: SegmentWork, store: Any, design: Design, cfg: JobConfig,

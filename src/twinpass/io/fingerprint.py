@@ -48,7 +48,7 @@ from twinpass.core.plan import fingerprint_changed
 from twinpass.errors import ConfigError, InputError
 
 __all__ = [
-    "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "decoding_of", "fingerprint_file",
+    "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "changed_since", "decoding_of", "fingerprint_file",
     "fingerprint_changed", "design_digest",
 ]
 
@@ -308,6 +308,51 @@ def fingerprint_file(
         if side:
             out["sidecar"] = os.path.basename(str(side))
     return out
+
+
+def _size_and_mtime(p: Path) -> tuple[int, int]:
+    """``size`` and ``mtime_ns`` of ``p`` as :func:`fingerprint_file` takes them."""
+    if not p.is_dir():
+        st = p.stat()
+        return int(st.st_size), int(st.st_mtime_ns)
+    skip = _ZARR_METADATA if _zarr_layout(p) is not None else frozenset()
+    files = [(rel, st) for rel, st in _tree_files(p) if rel not in skip]
+    size = sum(st.st_size for _, st in files)
+    return int(size), int(max((st.st_mtime_ns for _, st in files), default=p.stat().st_mtime_ns))
+
+
+_BYTE_FIELDS = ("size", "mtime_ns", "mode", "algorithm", "whole", "digest")
+
+
+def changed_since(path: str | os.PathLike[str], planned: Mapping[str, Any] | None) -> str | None:
+    """How the input at ``path`` changed since its fingerprint ``planned`` was taken, or
+    ``None`` when it did not: a run checks this before marking outputs complete, so that an
+    input rewritten while the run read it (a recorder still writing it, an earlier job's
+    rerun) does not leave an output marked complete that mixes old and new samples.
+
+    Cheap when nothing changed (a ``stat``, or a walk of a folder's files): the bytes are
+    fingerprinted again only when the size is the same and the modification time is not,
+    and then compared by :func:`fingerprint_changed`'s rules (so a ``touch`` of a file whose
+    digest covers every byte is no change).
+    """
+    if not planned or "size" not in planned or "mtime_ns" not in planned:
+        return None
+    p = Path(path)
+    try:
+        size, mtime_ns = _size_and_mtime(p)
+    except OSError as e:
+        return f"it can no longer be read ({e.strerror or e})"
+    if size != planned["size"]:
+        return f"its size is now {size:,} bytes, against {int(planned['size']):,} when the run planned it"
+    if mtime_ns == planned["mtime_ns"]:
+        return None
+    try:
+        now = fingerprint_file(p, str(planned.get("mode", "fast")))
+    except InputError as e:
+        return str(e)
+    changed, why = fingerprint_changed({k: planned[k] for k in _BYTE_FIELDS if k in planned},
+                                       {k: now[k] for k in _BYTE_FIELDS if k in now})
+    return why if changed else None
 
 
 def design_digest(design: Any, edge: str, edge_samples: int | str, package_version: str) -> str:
