@@ -819,3 +819,79 @@ def test_seam_limit_widens_to_the_rounding_of_a_design_that_cannot_meet_the_tole
     ordinary = bandpass_elliptic()
     assert rounding_estimate(sos=ordinary.sos) < TOL / 100
     assert "Caution" not in design_filter(ordinary.spec, ordinary.sample_rate_hz, tolerance=TOL).report["statement"]
+
+
+# ----------------------------------------------------------------------------- blocks with holes
+
+SPLIT_SPECS = {
+    "lowpass": ResponseSpec(kind="lowpass", passband_hz=(20.0,), stopband_hz=(40.0,), passband_ripple_db=1.0,
+                            stopband_attenuation_db=60.0),
+    "bandpass": ResponseSpec(kind="bandpass", passband_hz=(0.5, 30.0), stopband_hz=(0.1, 45.0),
+                             passband_ripple_db=1.0, stopband_attenuation_db=60.0),
+    "notch": ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=2.0),
+    "highpass": ResponseSpec(kind="highpass", passband_hz=(5.0,), stopband_hz=(1.0,), passband_ripple_db=1.0,
+                             stopband_attenuation_db=60.0),
+}
+SPLIT_FS = 200.0
+
+
+def _split_block(design: Design, gain: float, holes: list[tuple[int, int]], n: int = 12000):
+    """A block with holes whose pieces are each filtered as their own signal by
+    scipy.signal.sosfiltfilt (odd extension of min(effective length, piece - 1) samples, as the
+    README states), with the first section's numerator times ``gain`` (sqrt(2): +6 dB overall)."""
+    rng = np.random.default_rng(3)
+    t = np.arange(n)[:, None] / SPLIT_FS
+    x = 0.3 * rng.standard_normal((n, 2)) + 0.2 * np.sin(2 * np.pi * 2.3 * t) + 0.2 * np.sin(2 * np.pi * 50 * t) + 0.1
+    hole = np.zeros(n, dtype=bool)
+    for a, b in holes:
+        hole[a:b] = True
+    x[hole] = np.nan
+    sos = np.array(design.sos)
+    sos[0, :3] *= gain
+    y = np.full_like(x, np.nan)
+    edges = [0] + [e for a, b in holes for e in (a, b)] + [n]
+    for a, b in ((a, b) for a, b in zip(edges[::2], edges[1::2]) if b > a):
+        y[a:b] = signal.sosfiltfilt(sos, x[a:b], axis=0, padtype="odd", padlen=min(design.effective_length, b - a - 1))
+    return x, y, hole
+
+
+@pytest.mark.parametrize("kind", sorted(SPLIT_SPECS))
+def test_a_block_with_holes_is_graded_on_its_pieces(kind: str) -> None:
+    # Correct per-piece outputs (scipy.signal.sosfiltfilt on each finite piece) pass; the same
+    # with +6 dB overall fail, their passband deviation being the one scipy.signal.sosfreqz
+    # gives for the changed section (|H'|^2 / |H|^2 = 2: 20 log10 2 = 6.02 dB).
+    from twinpass.core.design import design_filter
+
+    design = design_filter(SPLIT_SPECS[kind], SPLIT_FS)
+    holes = [(3000, 3001), (7000, 7050), (11900, 11905)]
+    x, y, hole = _split_block(design, 1.0, holes)
+    figs, examined = checks.split_block_figures(x, y, hole, design, CFG, out_dtype="float64")
+    assert examined and checks.grade(figs, design, CFG, design.tolerance) == PASS
+    assert np.all(figs[:, FIGURE_INDEX["passband_bins"]] >= checks.MIN_CANDIDATE_BINS)
+    assert np.all(figs[:, FIGURE_INDEX["nonfinite_in"]] == 0)
+    x, y, hole = _split_block(design, math.sqrt(2.0), holes)
+    figs, examined = checks.split_block_figures(x, y, hole, design, CFG, out_dtype="float64")
+    assert examined and checks.grade(figs, design, CFG, design.tolerance) == FAIL
+    wrong = np.array(design.sos)
+    wrong[0, :3] *= math.sqrt(2.0)
+    f = np.array([10.0])
+    _, h = signal.sosfreqz(design.sos, f, fs=SPLIT_FS)
+    _, hw = signal.sosfreqz(wrong, f, fs=SPLIT_FS)
+    expected_db = 20.0 * math.log10(abs(hw[0]) ** 2 / abs(h[0]) ** 2)
+    assert figs[:, FIGURE_INDEX["passband_dev_db"]] == pytest.approx(expected_db, abs=0.5)
+
+
+def test_a_block_whose_pieces_are_all_too_short_is_not_examined() -> None:
+    # Pieces of 199 samples hold fewer than four Welch segments of 64 samples (the shortest the
+    # check measures; common practice: at least four averaged segments).
+    from twinpass.core.design import design_filter
+
+    design = design_filter(SPLIT_SPECS["lowpass"], SPLIT_FS)
+    holes = [(a, a + 1) for a in range(199, 2000, 200)]
+    x, y, hole = _split_block(design, math.sqrt(2.0), holes, n=2000)
+    assert checks.measurable_pieces(hole, design) == []
+    figs, examined = checks.split_block_figures(x, y, hole, design, CFG, out_dtype="float64")
+    assert not examined
+    assert np.all(np.isnan(figs[:, FIGURE_INDEX["passband_dev_db"]]))
+    assert checks.measurable_pieces(np.zeros(checks.SPLIT_MIN_PIECE, dtype=bool), design) == [(0, checks.SPLIT_MIN_PIECE)]
+    assert checks.measurable_pieces(np.zeros(checks.SPLIT_MIN_PIECE - 1, dtype=bool), design) == []

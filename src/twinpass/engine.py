@@ -308,15 +308,18 @@ def run_block(job: BlockJob) -> BlockResult:
     def attempt() -> tuple[int, np.ndarray, np.ndarray, int]:
         tamper = faults.apply(job.array_name, job.block_index)
         x, y, seams, wlen = _filter_block(job, tamper)
-        keep = ~hole_mask(job.core[0], job.core[1], job.holes) if job.holes else None
-        if keep is None or keep.all():
+        hole = hole_mask(job.core[0], job.core[1], job.holes) if job.holes else None
+        examined = True
+        if hole is None or not hole.any():
             figs = _checks.block_figures(
                 x, y, job.design, job.checks_cfg, out_dtype=job.out_dtype, response=job.check_response
             )
-        else:  # levels and integrity outside the holes; no response estimate across pieces
-            figs = _checks.block_figures(x[keep], y[keep], job.design, job.checks_cfg,
-                                         out_dtype=job.out_dtype, response=False)
+        else:  # the response of each finite piece long enough; integrity and levels outside the holes
+            figs, examined = _checks.split_block_figures(x, y, hole, job.design, job.checks_cfg,
+                                                         out_dtype=job.out_dtype, response=job.check_response)
         status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
+        if not examined:  # no piece long enough to measure: not a pass on no evidence (see split_unchecked)
+            status = max(status, WARN)
         if job.write:
             from .io.store import write_block_data
 
@@ -1400,7 +1403,66 @@ def segment_mode(seg: SegmentWork, design: Design, cfg: JobConfig, *,
         if use_carry(design, segment_block_samples(seg, layout), cfg):
             return "carry", carry_blocks(seg, cfg) if carry_layout else None
         return "halo", layout
+    if cfg.processing.mode != "halo" and not design.is_fir:  # holes: carry mode cannot run it
+        try:
+            return "halo", _layout(seg, design, cfg)
+        except ConfigError as e:
+            raise ConfigError(f"{str(e).rstrip('.')}. This{HOLES_FORCE_HALOS[4:]}; remedies: {HOLES_REMEDIES}") from None
     return "halo", _layout(seg, design, cfg)
+
+
+HOLES_FORCE_HALOS = ('this segment holds NaN/Inf runs (nonfinite = "split"), which carry mode does not '
+                     "handle, so it runs with halos")
+"""Why a segment with holes runs in halo mode whatever ``[processing] mode`` says."""
+HOLES_REMEDIES = ('interpolate short holes with [processing] nonfinite = "interpolate" (max_fill_samples), '
+                  "raise [processing] memory_budget_mib, or repair the file")
+"""What to do when such a segment's haloed blocks do not fit the memory budget."""
+
+
+def segment_notes(seg: SegmentWork, design: Design, cfg: JobConfig) -> list[str]:
+    """Notes on how a segment with holes (``nonfinite = "split"``) runs, for the plan and run
+    output (empty for segments without holes or without work, and for segments no layout fits,
+    which are reported as errors instead).
+
+    * ``mode = "carry"`` asked of an IIR design: the segment runs with halos
+      (:data:`HOLES_FORCE_HALOS`); ``"auto"`` is named only where it would have carried.
+    * Blocks due a response check (``[checks] every``) whose finite pieces between holes are
+      all shorter than :data:`~twinpass.core.checks.SPLIT_MIN_PIECE` samples: their response
+      cannot be measured, so they are graded warn, never pass on no evidence (block indices
+      of the layout a fresh file gets).
+    """
+    if not seg.holes or not seg.has_work:
+        return []
+    try:
+        _, layout = segment_mode(seg, design, cfg, carry_layout=False)
+    except ConfigError:
+        return []
+    assert layout is not None
+    notes = []
+    if not design.is_fir and cfg.processing.mode != "halo":
+        from .engine_carry import use_carry  # it imports this module
+
+        if cfg.processing.mode == "carry" or use_carry(design, segment_block_samples(seg, layout), cfg):
+            notes.append(f"stream {seg.stream} segment {seg.segment_id}: [processing] mode = "
+                         f"\"{cfg.processing.mode}\" asked for carry mode, but {HOLES_FORCE_HALOS} "
+                         f"({layout.halo:,} samples each side)")
+    every = cfg.checks.every
+    if every <= 0:
+        return notes
+    for fw in seg.files:
+        if fw.action == "skip":
+            continue
+        blind = []
+        for i, (a, b) in enumerate(layout.spans(fw.frames)):
+            hole = hole_mask(fw.seg_offset + a, fw.seg_offset + b, seg.holes)
+            if i % every == 0 and hole.any() and not _checks.measurable_pieces(hole, design):
+                blind.append(i)
+        if blind:
+            notes.append(f"{fw.relpath}: response not checked in {block_list(blind)} (graded warn): "
+                         f"every finite piece between their NaN/Inf runs (nonfinite = \"split\") is shorter than "
+                         f"the {_checks.SPLIT_MIN_PIECE} samples the response check needs; integrity and seams "
+                         f"are still checked (interpolate short runs with nonfinite = \"interpolate\" to check them)")
+    return notes
 
 
 class _MutableTable:

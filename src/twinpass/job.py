@@ -31,6 +31,7 @@ from .engine import (
     SegmentWork,
     design_digest_for,
     run_segment,
+    segment_notes,
 )
 from .errors import ArchiveError, SpecError, TwinpassError
 from .io.archive import Discovery, discover, output_name
@@ -125,6 +126,9 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
     if disc.scans != cache and hasattr(store, "write_scan_cache") and getattr(store, "read_only", True) is False:
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]
+    notes = [n for w in work for n in segment_notes(w, designs[w.sample_rate_hz], cfg)]
+    if notes:
+        plan = dataclasses.replace(plan, notes=tuple(plan.notes) + tuple(notes))
     return Prepared(cfg, disc, designs, design_errors, plan, work, list(plan.invalid))
 
 

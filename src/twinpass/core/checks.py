@@ -217,6 +217,9 @@ __all__ = [
     "transfer_estimate",
     "segment_length",
     "block_figures",
+    "split_block_figures",
+    "measurable_pieces",
+    "SPLIT_MIN_PIECE",
     "grade",
     "grade_file",
     "Finding",
@@ -1187,6 +1190,91 @@ def block_figures(
             cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
             figures[np.ix_(clean, cols)] = _block_response(x, y, design, cfg, sums)
     return figures
+
+
+SPLIT_MIN_PIECE: int = MIN_USABLE_NPERSEG * MIN_SEGMENTS + 1
+"""Shortest finite piece (samples) of a block with holes that the response check can measure:
+:func:`segment_length` of one less must be non-zero."""
+
+
+def measurable_pieces(hole: np.ndarray, design: Design) -> list[tuple[int, int]]:
+    """The runs of a block outside its holes that the response check can measure.
+
+    ``hole`` is a boolean mask over the block's core samples (True inside a NaN/Inf run
+    that ``nonfinite = "split"`` cut out). Returns ``[(start, stop))`` sample spans of the
+    core, in order, of the finite pieces whose Welch segment length
+    (:func:`segment_length`) is non-zero: at least :data:`SPLIT_MIN_PIECE` samples.
+    """
+    step = np.diff(np.concatenate([[0], (~np.asarray(hole, dtype=bool)).astype(np.int8), [0]]))
+    starts, stops = np.flatnonzero(step == 1), np.flatnonzero(step == -1)
+    return [(int(a), int(b)) for a, b in zip(starts, stops) if segment_length(int(b - a) - 1, design)]
+
+
+def _worst_of_pieces(parts: list[np.ndarray]) -> np.ndarray:
+    """Response figures (channels, 5) of several pieces of one block, the worst per channel:
+    the deviation and phase of largest magnitude, the smallest attenuation, and the bin
+    counts of the piece that falls furthest short of the coherent-fraction rule (among
+    pieces with at least :data:`MIN_CANDIDATE_BINS` passband bins; else the piece with the
+    most bins). NaN where no piece measured a figure."""
+    stack = np.stack(parts)  # (pieces, channels, 5)
+    out = np.full(stack.shape[1:], np.nan)
+    with np.errstate(invalid="ignore"):
+        for col in (0, 1):
+            mag = np.where(np.isnan(stack[..., col]), -np.inf, np.abs(stack[..., col]))
+            pick = np.argmax(mag, axis=0)
+            out[:, col] = np.take_along_axis(stack[..., col], pick[None], axis=0)[0]
+        att = stack[..., 2]
+        out[:, 2] = np.where(np.all(np.isnan(att), axis=0), np.nan,
+                             np.nanmin(np.where(np.isnan(att), np.inf, att), axis=0))
+        bins, coherent = stack[..., 3], stack[..., 4]
+        shortfall = np.where(bins >= MIN_CANDIDATE_BINS, COHERENT_FRACTION_MIN * bins - coherent, -np.inf)
+        most = np.where(np.isnan(bins), -np.inf, bins)
+        pick = np.where(np.isfinite(shortfall).any(axis=0), np.argmax(shortfall, axis=0), np.argmax(most, axis=0))
+    out[:, 3] = np.take_along_axis(bins, pick[None], axis=0)[0]
+    out[:, 4] = np.take_along_axis(coherent, pick[None], axis=0)[0]
+    return out
+
+
+def split_block_figures(x_core: np.ndarray, y_core: np.ndarray, hole: np.ndarray, design: Design,
+                        cfg: ChecksConfig, *, out_dtype: str | np.dtype = "float32",
+                        response: bool = True) -> tuple[np.ndarray, bool]:
+    """Check figures of a block with holes (``nonfinite = "split"``), one row per channel.
+
+    Each finite piece between holes was filtered as a signal of its own, so the response is
+    estimated on each piece separately, on those long enough for the Welch estimate
+    (:func:`measurable_pieces`), and the block takes the worst figures of its pieces
+    (:func:`_worst_of_pieces`); integrity and levels are those of all samples outside the
+    holes. Input from beyond a piece's ends (its end extension at a hole, the neighbouring
+    block at the core's edges) is handled by the edge rule as for any block.
+
+    Parameters
+    ----------
+    x_core, y_core : ndarray, shape (samples, channels)
+        The block's input and output over its core, time-major, NaN inside the holes.
+    hole : ndarray of bool, shape (samples,)
+        True inside a hole.
+    design, cfg, out_dtype, response
+        As for :func:`block_figures`.
+
+    Returns
+    -------
+    (figures, examined)
+        ``figures`` as :func:`block_figures` gives them; ``examined`` is False when the
+        response was asked for but no piece is long enough to measure it (the response
+        figures are then NaN: not measured), else True.
+    """
+    keep = ~np.asarray(hole, dtype=bool)
+    x, y = _as_2d(x_core), _as_2d(y_core)
+    figures = block_figures(x[keep], y[keep], design, cfg, out_dtype=out_dtype, response=False)
+    if not response:
+        return figures, True
+    spans = measurable_pieces(hole, design)
+    if not spans:
+        return figures, False
+    cols = [FIGURE_INDEX[k] for k in _RESPONSE_FIGURES]
+    parts = [block_figures(x[a:b], y[a:b], design, cfg, out_dtype=out_dtype)[:, cols] for a, b in spans]
+    figures[:, cols] = _worst_of_pieces(parts)
+    return figures, True
 
 
 # ----------------------------------------------------------------------------- grading
