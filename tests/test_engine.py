@@ -234,6 +234,37 @@ def test_identical_bytes_for_every_scheduler_and_worker_count(tmp_path, process_
         assert chunk_files(store) == ref_chunks, key
 
 
+def test_ctrl_c_ends_the_command_even_when_a_block_never_returns(tmp_path):
+    """A block stuck in a read that never returns (a stalled network mount; here the "hold"
+    fault with no file to wait for): Ctrl-C must still end the command, with exit status 130
+    and a line saying it ended without that block, instead of waiting for it forever (at
+    exit Python waits for every thread of its thread pools). Nothing is marked complete that
+    is not, and the next run finishes the job: scipy.signal.sosfiltfilt over the whole segment."""
+    import json
+
+    from conftest import cli_env, interrupt_cli
+    from twinpass.io.store import OutputStore
+
+    x = make_signal(16000, 1, FS, seed=8)
+    files = write_stream(tmp_path / "archive", "deck", x, FS, 2)
+    cfg = write_config(tmp_path, processing={"block_seconds": 10.0, "mode": "halo"})
+    env = cli_env(TWINPASS_FAULTS=json.dumps([{"action": "hold", "file": files.arrays[1], "block": 0,
+                                               "path": str(tmp_path / "never")}]))
+    code, text, out = interrupt_cli(["run", str(cfg), "--no-flow", "--no-report"], env, tmp_path / "run.err",
+                                    "blocks ", timeout=90)
+    assert code == 130 and "twinpass: interrupted" in text, text + out
+    assert "did not stop within" in text and "recorded as not done" in text, text
+    records = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").file_records()
+    assert records[f"{files.arrays[1]}.npy"].complete is False, records
+
+    assert run_job(load_config(cfg)).ok
+    g = open_store(tmp_path / "out.zarr")
+    filt = g[files.arrays[0]].attrs["filter"]
+    y = np.concatenate(read_output(tmp_path / "out.zarr", files.arrays))
+    # Reference: scipy.signal.sosfiltfilt on the whole segment (see _reference).
+    assert np.max(np.abs(y - _reference(x, filt))) <= filt["tolerance"] * np.max(np.abs(x))
+
+
 def test_ctrl_c_stops_the_engine_command_and_the_next_run_finishes(tmp_path):
     """SIGINT while `twinpass run --no-flow` filters (each block delayed 0.5 s): the command
     stops its blocks instead of running the rest, exits 130 saying so, logs the stopped

@@ -761,7 +761,31 @@ def main(argv: Sequence[str] | None = None) -> int:
         _exit_code = code
         if _server_lost:
             _end_without_finalizing()
+        if code == EXIT_INTERRUPTED and _blocks_still_running(STOP_GRACE_S):
+            _eprint(f"twinpass: blocks still running did not stop within {STOP_GRACE_S:.0f} s (a read or write "
+                    "that does not return?); ending without them: they are recorded as not done, and the next "
+                    "run does them")
+            _end_without_finalizing()
     return code
+
+
+EXIT_INTERRUPTED = 130
+"""Exit status of a command stopped by Ctrl-C (128 + SIGINT, as a shell reports it)."""
+STOP_GRACE_S = 5.0
+"""Seconds an interrupted command waits for its running blocks to end before it ends without them."""
+
+
+def _blocks_still_running(grace_s: float) -> int:
+    """Blocks this process still runs after waiting up to ``grace_s`` seconds for them to end
+    (0 when the engine was never loaded). At the interpreter's exit Python waits for every
+    thread of its thread pools, so one block stuck in a read would hold the command forever."""
+    engine = sys.modules.get("twinpass.engine")
+    if engine is None:
+        return 0
+    deadline = time.monotonic() + grace_s
+    while engine.blocks_running() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    return int(engine.blocks_running())
 
 
 def _main(argv: Sequence[str] | None) -> int:
@@ -783,7 +807,7 @@ def _main(argv: Sequence[str] | None) -> int:
         return 2
     except KeyboardInterrupt:
         _eprint("twinpass: interrupted; finished blocks are kept, rerun to resume")
-        return 130
+        return EXIT_INTERRUPTED
     except BrokenPipeError:
         # The reader of the output went away (`twinpass design ... | head`): no traceback,
         # and nothing more written to that pipe at exit (the Python documentation's advice

@@ -300,6 +300,16 @@ def with_retries(work: Callable[[], T], retries: int, first_delay_s: float) -> t
     return None, last, retries + 1
 
 
+_RUNNING_LOCK = threading.Lock()
+_blocks_running = 0
+
+
+def blocks_running() -> int:
+    """Blocks this process is running now (:func:`run_block` calls in its own threads; blocks
+    of worker processes are not counted)."""
+    return _blocks_running
+
+
 def run_block(job: BlockJob) -> BlockResult:
     """Filter, check and write one block, retrying with backoff (:func:`with_retries`).
     Never raises for block errors: the last error is returned with status ``ERROR``."""
@@ -327,7 +337,14 @@ def run_block(job: BlockJob) -> BlockResult:
                              y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
         return status, figs, seams, wlen
 
-    out, err, attempts = with_retries(attempt, job.retries, job.retry_backoff_seconds)
+    global _blocks_running
+    with _RUNNING_LOCK:
+        _blocks_running += 1
+    try:
+        out, err, attempts = with_retries(attempt, job.retries, job.retry_backoff_seconds)
+    finally:
+        with _RUNNING_LOCK:
+            _blocks_running -= 1
     if out is None:
         return BlockResult(job.array_name, job.block_index, ERROR, None, None, err, attempts,
                            time.perf_counter() - t0, 0)
@@ -407,11 +424,27 @@ def dask_client(scheduler: str = "threads", workers: int = 2) -> Iterator[Any]:
     try:
         yield client
     finally:
+        # Blocks still running when the run is over were cancelled (a stopped run) and are
+        # stuck: not worth waiting long for.
+        wait_s = CLUSTER_CLOSE_STOPPED_S if blocks_running() else CLUSTER_CLOSE_S
         with _quiet_worker_heartbeats():
             client.close()
-            cluster.close()
+            try:
+                cluster.close(timeout=wait_s)
+            except (TimeoutError, asyncio.TimeoutError):  # a block that never returns (a stalled read)
+                log.warning("the local Dask cluster did not close within %.0f s: a block is still running (a read "
+                            "or write that does not return?); going on without it", wait_s)
         if not processes:
             allocator.release_free_memory()
+
+
+CLUSTER_CLOSE_S = 20.0
+"""Seconds a local Dask cluster is given to close after a run. Closing waits for the blocks
+its workers run; a block stuck in a read or write that never returns (a stalled network
+mount) would otherwise hold the command forever."""
+CLUSTER_CLOSE_STOPPED_S = 5.0
+"""The same when blocks of this process are still running then (a stopped run: they were
+cancelled, and what still runs is stuck)."""
 
 
 class _ClosingHeartbeat(logging.Filter):
@@ -1234,8 +1267,8 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         finished = np.isin(st, DONE)
         ok = bool(np.all(finished))
         errors = dict(table.errors)
-        if moved:  # its blocks, or their halos, may have read the input half rewritten
-            ok = False
+        if moved and ok:  # its blocks, or their halos, may have read the input half rewritten
+            ok = False  # (blocks that failed say so themselves)
             errors[-1] = _moved_message(fw.relpath, moved)
         summary = _checks.summarise(table.figures)
         for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
