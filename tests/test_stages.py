@@ -229,6 +229,7 @@ def test_no_glob_taking_the_arrays_is_noted_and_a_running_earlier_job_leaves_its
     assert disc.files == () and len(disc.invalid) == 6, (disc.files, disc.invalid)
     assert all("being written by run stage1-live" in b.reason and "once that run has ended" in b.remedy
                for b in disc.invalid), disc.invalid
+    assert not any("include" in w for w in disc.warnings), disc.warnings  # the globs did select them
     # A lock whose holder is gone (kill -9): arrays the earlier job completed are read, with a note.
     dead = subprocess.Popen([sys.executable, "-c", "pass"])
     dead.wait()

@@ -414,13 +414,14 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         below the root, the whole store by its path."""
         names = output_arrays(folder)
         paths = [] if rel is None else [rel]
-        picked = 0
+        picked = held = 0
         writing = _writing_run(folder)
         for name in names:
             ident = name if rel is None else f"{rel}#{name}"
             if not _selected_any([ident, *paths], include, exclude):
                 by_case_only(ident)
             elif writing is not None:  # it may rewrite any array while this job reads it
+                held += 1
                 refused.append(InvalidFile(
                     ident,
                     f"the output store {folder} is being written by {writing} of the earlier job, which may "
@@ -437,7 +438,7 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 f"the output store {folder} holds the lock of a run of the earlier job that is no longer running "
                 f"({LOCK_NAME}; its next run recovers it): arrays that run left unfinished are left out"
             )
-        if rel is None and names and not picked:
+        if rel is None and names and not picked and not held:
             notes.append(
                 f"the archive root {root} is the output store of an earlier twinpass job, but [archive] include "
                 f"selects none of its {len(names)} arrays (named <stream>/<file stem>, without a suffix, e.g. "
