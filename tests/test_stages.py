@@ -151,6 +151,28 @@ def test_a_second_stage_reads_the_first_stage_store_and_equals_the_cascade(work)
     assert _tree(folder / "band.zarr") == before
 
 
+def test_a_first_stage_array_with_a_lost_chunk_file_is_left_out_until_the_first_stage_rewrites_it(work):
+    # A chunk file of a complete stage-1 array deleted (lost since written): read, its frames
+    # would be the fill value (NaN), which "interpolate" would even fill with a straight
+    # line. It is left out naming the frames and the remedy; after stage 1 runs again (it
+    # rewrites lost chunks, as `twinpass status` says), stage 2 equals the whole-stream cascade.
+    folder, names = work
+    middle = names["s1"][1]
+    chunks = sorted((folder / "band.zarr" / middle / "c").rglob("*"))
+    lost = next(p for p in chunks if p.is_file())
+    lost.unlink()
+    cfg = load_config(_stage2(folder))
+    disc = discover(cfg)
+    (bad,) = disc.invalid
+    assert bad.path == middle and "chunk files of frames [" in bad.reason and "missing or empty" in bad.reason
+    assert "run the earlier job again" in bad.remedy
+    assert sorted(e.relpath for e in disc.files) == sorted(a for a in sum(names.values(), []) if a != middle)
+    _run(_stage1(folder))
+    assert lost.exists()
+    _run(_stage2(folder))
+    _check_cascade(folder, names)
+
+
 def test_an_incomplete_first_stage_array_is_left_out_naming_it_and_the_remedy(work):
     folder, names = work
     last = names["s2"][-1]

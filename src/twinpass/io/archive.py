@@ -168,7 +168,7 @@ from twinpass.io.readers._common import (
 )
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
-from twinpass.io.store_input import array_attributes, is_output_store, output_arrays
+from twinpass.io.store_input import absent_chunk_frames, array_attributes, is_output_store, output_arrays
 from twinpass.io.store_lock import LOCK_NAME, LockInfo
 from twinpass.io.store_util import array_name, check_name
 
@@ -1085,6 +1085,16 @@ def _finished_array_attrs(where: tuple[str, str]) -> dict[str, Any]:
             "the earlier job has not finished it (blocks pending or failed, or a run cut short), so its "
             "samples are not final",
             _REMEDY_FINISH,
+        )
+    lost = absent_chunk_frames(os.path.join(folder, array))
+    if lost:
+        shown = ", ".join(f"[{a}, {b})" for a, b in lost[:5]) + (f" and {len(lost) - 5} more" if len(lost) > 5 else "")
+        raise _Bad(
+            f"array {array} of the output store {folder} is marked complete but the chunk files of frames {shown} "
+            "are missing or empty (deleted or lost since the earlier job wrote them): they would read as its fill "
+            "value, not as samples",
+            "run the earlier job again (it writes the missing blocks again; `twinpass status` on its store lists "
+            "them), then this one",
         )
     return attrs
 

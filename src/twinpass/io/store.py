@@ -56,6 +56,7 @@ from zarr.storage import FsspecStore, LocalStore, MemoryStore, StorePath
 from ..core.types import FileRecord
 from ..errors import RunStoppedError, StoreError, UnsafePathError
 from . import store_lock
+from .store_input import absent_chunk_frames
 from .store_lock import LockInfo
 from .store_util import (
     RESERVED_PREFIX,
@@ -1617,24 +1618,10 @@ class OutputStore:
     def _absent_chunks(self, name: str, arr: zarr.Array) -> tuple[tuple[int, int], ...]:
         # Every chunk of an output array is written (write_empty_chunks), so a chunk file
         # that is missing or empty was lost after it was written: reading it would give the
-        # fill value (zeros) without a word. One stat per chunk.
+        # fill value without a word. One stat per chunk.
         if self.local_root is None or len(arr.shape) != 2 or arr.chunks[1] != arr.shape[1]:
             return ()
-        frames, chunk = int(arr.shape[0]), int(arr.chunks[0])
-        folder = self.local_root / name
-        spans: list[tuple[int, int]] = []
-        for i in range(-(-frames // chunk)):
-            try:
-                present = os.stat(folder / arr.metadata.encode_chunk_key((i, 0))).st_size > 0
-            except OSError:
-                present = False
-            if not present:
-                a, b = i * chunk, min(frames, (i + 1) * chunk)
-                if spans and spans[-1][1] == a:
-                    spans[-1] = (spans[-1][0], b)
-                else:
-                    spans.append((a, b))
-        return tuple(spans)
+        return tuple(absent_chunk_frames(self.local_root / name))
 
     def clear_unwritten(self, name: str) -> list[tuple[int, int]]:
         """Delete the data chunks of the blocks of ``name`` that are pending or in error, so

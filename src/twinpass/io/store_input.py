@@ -21,7 +21,7 @@ from typing import Any
 
 from .store_util import RESERVED_PREFIX
 
-__all__ = ["STORE_ATTRIBUTE", "array_attributes", "is_output_store", "output_arrays"]
+__all__ = ["STORE_ATTRIBUTE", "absent_chunk_frames", "array_attributes", "is_output_store", "output_arrays"]
 
 STORE_ATTRIBUTE = "twinpass"
 """Attribute of an output store's root group that marks it as written by twinpass."""
@@ -84,3 +84,35 @@ def array_attributes(folder: Path | str) -> dict[str, Any]:
     doc = _node(folder)
     attrs = None if doc is None else doc.get("attributes")
     return dict(attrs) if isinstance(attrs, dict) else {}
+
+
+def absent_chunk_frames(folder: Path | str) -> list[tuple[int, int]]:
+    """Frame spans ``[start, stop)`` of the output array at ``folder`` whose chunk files are
+    missing or empty: lost after they were written (twinpass writes every chunk of an output),
+    so they would read as the fill value. Empty when the metadata is not that of a 2-D array
+    chunked along time only (not a twinpass output), or cannot be read."""
+    doc = _node(folder)
+    try:
+        frames, channels = (int(v) for v in doc["shape"])  # type: ignore[index]
+        rows, across = (int(v) for v in doc["chunk_grid"]["configuration"]["chunk_shape"])  # type: ignore[index]
+        encoding = doc.get("chunk_key_encoding") or {}  # type: ignore[union-attr]
+        sep = str((encoding.get("configuration") or {}).get("separator", "/"))
+        name = encoding.get("name", "default")
+    except (TypeError, KeyError, ValueError):
+        return []
+    if across != channels or rows <= 0 or name not in ("default", "v2"):
+        return []
+    spans: list[tuple[int, int]] = []
+    for i in range(-(-frames // rows)):
+        key = f"c{sep}{i}{sep}0" if name == "default" else f"{i}{sep}0"
+        try:
+            present = os.stat(os.path.join(folder, *key.split("/"))).st_size > 0
+        except OSError:
+            present = False
+        if not present:
+            a, b = i * rows, min(frames, (i + 1) * rows)
+            if spans and spans[-1][1] == a:
+                spans[-1] = (spans[-1][0], b)
+            else:
+                spans.append((a, b))
+    return spans
