@@ -21,13 +21,15 @@ References:
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 import os
 import shutil
 import socket
 import subprocess
 import sys
-from pathlib import Path
+from pathlib import Path, PurePosixPath
+from typing import Any
 
 import numpy as np
 import pytest
@@ -41,6 +43,7 @@ from twinpass.io.archive import discover
 from twinpass.io.store import OutputStore
 from twinpass.io.store_lock import LockInfo
 from twinpass.job import prepare, run_job
+from twinpass.status import collect_status, format_status
 
 FS = 200.0
 FILE_FRAMES = 4000
@@ -304,3 +307,104 @@ def test_the_second_stage_store_may_not_be_the_first_stage_store(work):
                           output={"store": "band.zarr"})
     with pytest.raises(UnsafePathError, match="is the archive root"):
         run_job(load_config(config), scheduler="threads", workers=1)
+
+
+def _start_of(rel: str) -> dt.datetime:
+    """The start time an archive path names (conftest's NAME_PATTERN, UTC)."""
+    stamp = PurePosixPath(rel).stem.rsplit("_", 1)[1]
+    return dt.datetime.strptime(stamp, "%Y%m%dT%H%M%S").replace(tzinfo=dt.timezone.utc)
+
+
+def _streams_now(archive: Path) -> list[list[str]]:
+    """The archive's segments as they are now, found here independently of twinpass: per stream
+    folder, the files in time order, a new segment wherever a file does not start where the
+    one before it ends (every file holds FILE_FRAMES samples at FS); array names."""
+    out = []
+    for folder in sorted(p for p in archive.iterdir() if p.is_dir()):
+        rels = sorted((p.relative_to(archive).as_posix() for p in folder.glob("*.npy")), key=_start_of)
+        run: list[str] = []
+        for rel in rels:
+            if run and _start_of(rel) != _start_of(run[-1] + ".npy") + dt.timedelta(seconds=FILE_FRAMES / FS):
+                out.append(run)
+                run = []
+            run.append(rel[:-len(".npy")])
+        out.append(run)
+    return out
+
+
+def _check_cascade_now(folder: Path) -> None:
+    """Every present input's stage-2 output equals scipy.signal.sosfiltfilt by stage 2's filter
+    of scipy.signal.sosfiltfilt by stage 1's filter of its whole segment as the archive now
+    holds it (filters and end extensions as the stores' ``filter`` attributes record them)."""
+    one, two = (zarr.open_group(str(folder / s), mode="r") for s in ("band.zarr", "notch.zarr"))
+    for arrays in _streams_now(folder / "archive"):
+        x = np.concatenate([np.load(folder / "archive" / f"{a}.npy") for a in arrays])
+        second = two[arrays[0]].attrs["filter"]
+        ref = _two_pass(second, _two_pass(one[arrays[0]].attrs["filter"], x))
+        err = float(np.max(np.abs(np.concatenate(read_output(folder / "notch.zarr", arrays)) - ref)))
+        assert err <= _bound(second, x), (arrays, err)
+        assert all(two[a].attrs["complete"] is True and "input_gone" not in two[a].attrs for a in arrays)
+
+
+def _gone(store: Path, array: str) -> Any:
+    return zarr.open_array(str(store / array), mode="r").attrs.get("input_gone")
+
+
+@pytest.mark.parametrize("change", ["delete", "rename", "move"])
+def test_a_first_stage_input_gone_is_marked_and_left_out_of_the_second_stage(work, change):
+    # A stage-1 input deleted, renamed (to a later start: the same samples now follow the
+    # stream's last file) or moved to a stream of its own: stage 1 keeps its old output but
+    # marks it, stage 2 no longer joins those samples into the stream, and every present
+    # input's stage-2 output equals the whole-stream cascade (reference: scipy.signal.sosfiltfilt
+    # twice, module notes). Which outputs are kept and reported is a twinpass rule (README
+    # "Filtering in stages").
+    folder, names = work
+    _run(_stage2(folder))
+    first, mid, last = names["s1"]
+    src = folder / "archive" / f"{mid}.npy"
+    if change == "delete":
+        src.unlink()
+    elif change == "rename":  # 60 s later: right after the last file
+        later = _start_of(f"{last}.npy") + dt.timedelta(seconds=FILE_FRAMES / FS)
+        src.rename(src.with_name(f"s1_{later:%Y%m%dT%H%M%S}.npy"))
+    else:
+        (folder / "archive" / "s3").mkdir()
+        src.rename(folder / "archive" / "s3" / src.name.replace("s1_", "s3_"))
+    one = _run(_stage1(folder))
+    assert [r.relpath for r in one.removed] == [f"{mid}.npy"]
+    gone = _gone(folder / "band.zarr", mid)
+    assert gone is not None and gone["since"] and f"{mid}.npy" in gone["reason"]
+    assert zarr.open_array(str(folder / "band.zarr" / mid), mode="r").attrs["complete"] is True  # kept
+    status = format_status(collect_status(OutputStore.open(str(folder / "band.zarr"), mode="r")))
+    assert f"{mid}.npy (since {gone['since']})" in status and "input gone" in status
+    two = run_job(load_config(_stage2(folder)), scheduler="threads", workers=2)
+    # nothing is wrong with the marked array: no input left out, exit status 0; one note names it
+    assert two.invalid == [] and not two.failed and two.exit_status() == 0
+    assert [r.relpath for r in two.removed] == [mid]
+    assert sum(mid in n and "input_gone" in n for n in two.notes) == 1
+    assert _gone(folder / "notch.zarr", mid) is not None  # stage 2's own output of it: kept, marked
+    _check_cascade_now(folder)
+
+
+def test_a_first_stage_input_back_unchanged_is_unmarked_and_joined_again(work):
+    # The middle file moved away for a while, then back as it was: stage 1 skips it (its
+    # samples are current) and only unmarks it; stage 2 reads it again, and both stages join it
+    # to its neighbours as before (reference: the whole-stream cascade, module notes).
+    folder, names = work
+    _run(_stage2(folder))
+    mid = names["s1"][1]
+    src = folder / "archive" / f"{mid}.npy"
+    src.rename(folder / "aside.npy")
+    _run(_stage1(folder))
+    _run(_stage2(folder))
+    assert _gone(folder / "band.zarr", mid) is not None and _gone(folder / "notch.zarr", mid) is not None
+    _check_cascade_now(folder)
+    (folder / "aside.npy").rename(src)
+    back = _run(_stage1(folder))
+    assert {o.relpath: o.status for o in back.outcomes}[f"{mid}.npy"] == "skipped"
+    assert _gone(folder / "band.zarr", mid) is None
+    again = _run(_stage2(folder))
+    assert again.removed == [] and again.invalid == []
+    assert _gone(folder / "notch.zarr", mid) is None
+    _check_cascade_now(folder)
+    _check_cascade(folder, names)

@@ -21,9 +21,9 @@ from typing import Any, Callable
 from .config import JobConfig
 from .core.checks import was_cancelled
 from .core.design import design_filter, response_report
-from .core.plan import FilePlan, Plan, make_plan
+from .core.plan import FilePlan, Plan, fingerprint_changed, make_plan
 from .core.segments import InvalidFile, Segment
-from .core.types import Design
+from .core.types import Design, FileRecord
 from .engine import (
     CancellableClient,
     FileOutcome,
@@ -36,6 +36,7 @@ from .engine import (
 from .errors import ArchiveError, SpecError, TwinpassError
 from .io.archive import Discovery, discover, output_name
 from .io.store import OutputStore
+from .io.store_input import INPUT_GONE
 from .io.store_util import library_versions
 
 log = logging.getLogger("twinpass.job")
@@ -315,6 +316,7 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
                          "designs": {f"{fs:g}": d.report for fs, d in prep.designs.items()}},
                         library_versions())
     update_placement(store, prep)
+    mark_inputs_gone(store, prep)
 
 
 def update_placement(store: OutputStore, prep: Prepared) -> None:
@@ -333,6 +335,46 @@ def update_placement(store: OutputStore, prep: Prepared) -> None:
             moved = {key: value for key, value in now.items() if value != was[key]}
             if moved:
                 store.update_attrs(fw.array_name, **moved)
+
+
+def _same_content_now(rec: FileRecord, prep: Prepared) -> str | None:
+    """A new input of ``prep`` whose fingerprint matches the one ``rec`` was filtered from
+    (the file renamed or moved to another stream), or ``None``."""
+    new = {fp.relpath for fp in prep.plan.files if fp.record is None}
+    for entry in prep.discovery.files:
+        if entry.relpath in new and entry.fingerprint and rec.source_fingerprint:
+            if not fingerprint_changed(rec.source_fingerprint, entry.fingerprint)[0]:
+                return entry.relpath
+    return None
+
+
+def mark_inputs_gone(store: OutputStore, prep: Prepared) -> None:
+    """Mark the outputs of inputs no longer in the archive, and unmark those whose input is back.
+
+    An output of a removed input (:attr:`~twinpass.core.plan.Plan.removed`: deleted, renamed,
+    moved to another stream, or left out by ``[archive] exclude``) keeps its samples, but they
+    are no longer part of any stream: its neighbours are refiltered as segment ends. It gets
+    the attribute ``input_gone`` (:data:`~twinpass.io.store_input.INPUT_GONE`: since this run,
+    and why), once, so that a later job reading this store leaves it out. An output whose input
+    is in the archive again (to be skipped as unchanged, or refiltered) loses the mark before
+    any block runs.
+    """
+    for fp in prep.plan.removed:
+        rec = fp.record
+        if rec is None or rec.array_name is None or rec.gone_since is not None:
+            continue
+        why = (f"its input {fp.relpath} is no longer in the archive (deleted, renamed, moved to another stream, "
+               "or left out by [archive] exclude); the samples are kept as they were, but no stream of the "
+               "archive holds them any more")
+        twin = _same_content_now(rec, prep)
+        if twin is not None:
+            why += f"; the input {twin}, with the same content, is filtered as a new file"
+        store.update_attrs(rec.array_name, **{INPUT_GONE: {"since": now_iso(), "run_id": store.lock_run_id or None,
+                                                           "reason": why}})
+    for fp in prep.plan.files:
+        rec = fp.record
+        if rec is not None and rec.array_name is not None and rec.gone_since is not None:
+            store.drop_attrs(rec.array_name, INPUT_GONE)
 
 
 def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:

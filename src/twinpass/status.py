@@ -15,6 +15,7 @@ from .core import checks as _checks
 from .core.blocks import block_list
 from .core.failures import SHOWN
 from .errors import StoreError
+from .io.store_input import gone_since
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
 from .io.store_lock import LockInfo
@@ -87,13 +88,15 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
             "worst": {k: _worst(summary, k) for k in ("passband_dev_db", "phase_deg", "stopband_att_db",
                                                       "seam_mismatch", "clipped", "nonfinite_out")},
             "errors": errors,
+            "input_gone_since": gone_since(attrs),
         })
     files.sort(key=lambda f: (str(f["stream"]), str(f["start_time"] or ""), f["name"]))
     root = store.read_root_info()
     runs = root.get("runs", [])
     details = store.read_run_details(str(runs[-1].get("run_id"))) if runs else {}
     left_out = {str(k): str(v) for k, v in (details.get("left_out") or {}).items()}
-    gone = {str(r) for r in details.get("gone") or []}
+    # the last run's list, and every output marked input_gone (by that run or an earlier one)
+    gone = {str(r) for r in details.get("gone") or []} | {str(f["source"]) for f in files if f["input_gone_since"]}
     notes = [str(n) for n in details.get("notes") or []]
     failed_inputs = {str(k): str(v) for k, v in (details.get("failed") or {}).items()}
     failed_blocks = {str(k): {"blocks": [str(b) for b in v.get("blocks") or []], "remedy": str(v.get("remedy") or "")}
@@ -127,6 +130,11 @@ def _fmt(v: Any, spec: str = ".3g") -> str:
     return str(v)
 
 
+def _gone_line(source: str, since: Mapping[str, str | None]) -> str:
+    """One output whose input is gone: its source, and since when it is marked so (when it is)."""
+    return source + (f" (since {since[source]})" if since.get(source) else "")
+
+
 def _block_lines(failed: Mapping[str, Any] | None) -> str:
     """A failed file's blocks that failed their checks, one indented line each (leading
     newlines), when the file's one-line reason names only some of them; else ""."""
@@ -153,7 +161,8 @@ def format_status(status: dict[str, Any]) -> str:
             ez = f["edge_zone_samples"] or [0, 0]
             rows.append((f["name"], f"{f['blocks_done']}/{f['blocks']}", str(f["blocks_fail"] + f["blocks_error"]),
                          f["checks"], _fmt(w["passband_dev_db"]), _fmt(w["phase_deg"]), _fmt(w["stopband_att_db"]),
-                         _fmt(w["seam_mismatch"], ".1e"), f"{ez[0]}/{ez[1]}", "yes" if f["complete"] else "NO"))
+                         _fmt(w["seam_mismatch"], ".1e"), f"{ez[0]}/{ez[1]}",
+                         ("yes" if f["complete"] else "NO") + (", input gone" if f.get("input_gone_since") else "")))
     table = [header] + [r for r in rows if isinstance(r, tuple)]
     widths = [max(len(r[i]) for r in table) for i in range(len(header))]
 
@@ -191,13 +200,15 @@ def format_status(status: dict[str, Any]) -> str:
         if len(lost) > LISTED:
             lines.append(f"  ... and {len(lost) - LISTED} more (twinpass status --json lists them all)")
     failed_blocks = status.get("failed_blocks") or {}
+    since = {str(f["source"]): f.get("input_gone_since") for f in status["files"]}
     for title, entries in (("failed at the last run (the next run tries them again)",
                             [f"{k}: {v}" + _block_lines(failed_blocks.get(k))
                              for k, v in sorted((status.get("failed_inputs") or {}).items())]),
                            ("left out by the last run (invalid input; an output made earlier is kept as it was)",
                             [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
-                           ("outputs whose input is no longer in the archive (kept as they were)",
-                            list(status.get("gone") or [])),
+                           ("outputs whose input is no longer in the archive (kept as they were, marked "
+                            "input_gone: a later job reading this store leaves them out)",
+                            [_gone_line(src, since) for src in status.get("gone") or []]),
                            ("notes of the last run", list(status.get("notes") or []))):
         if entries:
             lines.append(f"{title}: {len(entries)}")

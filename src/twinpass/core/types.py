@@ -167,3 +167,6 @@ class FileRecord:
     """The files this one was filtered next to: the previous and the next file of its segment
     (source paths; None at a segment's start or end), as the last run that wrote or checked
     its output saw them; None when not recorded (outputs written before it was)."""
+    gone_since: str | None = None
+    """When the store marked this output as that of an input no longer in the archive (ISO
+    8601; attribute ``input_gone`` of the array); None when it is not marked."""

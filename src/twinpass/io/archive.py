@@ -37,7 +37,11 @@ input. An array's sample rate, start time and stream are its attributes (a manif
 naming the identifier overrides stream and start time; ``name_pattern`` does not apply),
 so the earlier job's streams and contiguous files are this job's streams and segments. An
 array whose ``complete`` attribute is not true is reported invalid, naming the array, until
-the earlier job finishes it. The output array keeps the array's path (below the root,
+the earlier job finishes it. An array marked ``input_gone`` (the kept output of an input the
+earlier job no longer has: deleted, renamed, moved to another stream or excluded there) is no
+recording of that job's archive: it is left out without being reported invalid, with one
+note per store naming such arrays, so this job's plan finds its input gone (its neighbours
+are refiltered as segment ends, and an output made of it earlier is kept and marked alike). The output array keeps the array's path (below the root,
 prefixed with the store's own output name: its path without ``.zarr``). The store is only
 read; the output store of this job may not be it (:func:`~twinpass.io.store_util.check_outside_archive`).
 Zarr arrays are fingerprinted row by row of chunks (:mod:`twinpass.io.fingerprint`), so
@@ -168,7 +172,14 @@ from twinpass.io.readers._common import (
 )
 from twinpass.io.readers.registry import open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
-from twinpass.io.store_input import absent_chunk_frames, array_attributes, is_output_store, output_arrays
+from twinpass.io.store_input import (
+    INPUT_GONE,
+    absent_chunk_frames,
+    array_attributes,
+    gone_since,
+    is_output_store,
+    output_arrays,
+)
 from twinpass.io.store_lock import LOCK_NAME, LockInfo
 from twinpass.io.store_util import array_name, check_name
 
@@ -415,6 +426,7 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         names = output_arrays(folder)
         paths = [] if rel is None else [rel]
         picked = held = 0
+        orphans: list[str] = []
         writing = _writing_run(folder)
         for name in names:
             ident = name if rel is None else f"{rel}#{name}"
@@ -429,16 +441,26 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                     "run this job again once that run has ended (`twinpass status` on that store names a run "
                     f"holding it); if no run is using that store, delete {os.path.join(folder, LOCK_NAME)}",
                 ))
+            elif gone_since(array_attributes(os.path.join(folder, name))) is not None:
+                orphans.append(ident)
             else:
                 found.append(ident)
                 arrays[ident] = (folder, name)
                 picked += 1
+        if orphans:
+            shown = ", ".join(orphans[:3]) + (f" and {len(orphans) - 3} more" if len(orphans) > 3 else "")
+            notes.append(
+                f"{len(orphans)} array(s) of the output store {folder} are kept outputs of inputs the earlier job "
+                f"no longer has (attribute {INPUT_GONE}: deleted, renamed, moved or excluded there), so they are not "
+                f"recordings of it and are not read: {shown}; "
+                "outputs this job made of them are kept and reported as no longer in the archive"
+            )
         if picked and os.path.exists(os.path.join(folder, LOCK_NAME)):
             notes.append(
                 f"the output store {folder} holds the lock of a run of the earlier job that is no longer running "
                 f"({LOCK_NAME}; its next run recovers it): arrays that run left unfinished are left out"
             )
-        if rel is None and names and not picked and not held:
+        if rel is None and names and not picked and not held and not orphans:
             notes.append(
                 f"the archive root {root} is the output store of an earlier twinpass job, but [archive] include "
                 f"selects none of its {len(names)} arrays (named <stream>/<file stem>, without a suffix, e.g. "

@@ -19,7 +19,8 @@ Layout (zarr_format 3)::
       .twinpass-lock                  present while a run writes (local stores)
 
 Array attributes are plain JSON (see :func:`json_safe`); ``complete`` is True only once every
-block is written and has passed. One process (the driver) writes attributes and block tables;
+block is written and has passed. ``input_gone`` (:data:`~twinpass.io.store_input.INPUT_GONE`) marks a
+kept output whose input is no longer in the archive, until the input is back. One process (the driver) writes attributes and block tables;
 block tasks write data regions only, through :func:`write_block_data`, in whole chunks.
 """
 
@@ -56,7 +57,7 @@ from zarr.storage import FsspecStore, LocalStore, MemoryStore, StorePath
 from ..core.types import FileRecord
 from ..errors import RunStoppedError, StoreError, UnsafePathError
 from . import store_lock
-from .store_input import absent_chunk_frames
+from .store_input import absent_chunk_frames, gone_since
 from .store_lock import LockInfo
 from .store_util import (
     RESERVED_PREFIX,
@@ -1606,6 +1607,7 @@ class OutputStore:
                 absent=self._absent_chunks(name, arr) if complete else (),
                 stream=a["stream"] if isinstance(a.get("stream"), str) else None,
                 joins=_joins(a.get("joins")),
+                gone_since=gone_since(a),
             )
         return out
 
@@ -1692,6 +1694,19 @@ class OutputStore:
             return
         with self._writing(f"{name} (attributes)"):
             self._set_attributes(name, node, new)
+
+    def drop_attrs(self, name: str, *keys: str) -> None:
+        """Remove the attributes ``keys`` of an output array (nothing is written when it holds
+        none of them); ``complete`` cannot be removed."""
+        self._writable()
+        if "complete" in keys:
+            raise StoreError(f"{name}: the complete attribute is set with set_complete(), not removed")
+        node = self._array(name)
+        held = node.metadata.attributes
+        if not any(key in held for key in keys):
+            return
+        with self._writing(f"{name} (attributes)"):
+            self._set_attributes(name, node, {k: v for k, v in held.items() if k not in keys}, replace=True)
 
     def read(self, name: str, start: int = 0, stop: int | None = None) -> np.ndarray:
         """Frames [start, stop) of an output array, shape (samples, channels)."""

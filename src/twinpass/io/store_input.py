@@ -6,7 +6,10 @@ its root group's ``zarr.json`` holds the ``twinpass`` attribute (see :mod:`twinp
 Its recordings are its output arrays, ``<stream>/<file stem>``: one per input file of the
 earlier job, time-major ``(samples, channels)``, with the attributes ``sample_rate_hz`` (Hz),
 ``start_time`` (ISO 8601), ``stream`` and ``complete``. The bookkeeping group ``_twinpass``
-and hidden names are never recordings.
+and hidden names are never recordings, and neither is an array that holds the attribute
+``input_gone`` (:data:`INPUT_GONE`): the kept output of an input the earlier job no longer
+has (deleted, renamed, moved to another stream or excluded); its samples no longer belong to
+any of that job's streams.
 
 Only metadata documents (``zarr.json``) are read here, with plain file reads: the store is
 never opened for writing, locked or modified.
@@ -17,14 +20,20 @@ from __future__ import annotations
 import json
 import os
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping
 
 from .store_util import RESERVED_PREFIX
 
-__all__ = ["STORE_ATTRIBUTE", "absent_chunk_frames", "array_attributes", "is_output_store", "output_arrays"]
+__all__ = ["INPUT_GONE", "STORE_ATTRIBUTE", "absent_chunk_frames", "array_attributes", "gone_since",
+           "is_output_store", "output_arrays"]
 
 STORE_ATTRIBUTE = "twinpass"
 """Attribute of an output store's root group that marks it as written by twinpass."""
+
+INPUT_GONE = "input_gone"
+"""Attribute of an output array whose input is no longer in the archive: ``{"since": ISO 8601
+time of the run that first found it gone, "run_id": that run, "reason": why, in words}``. The
+array's samples are kept as they were; the run that finds the input back removes it."""
 
 _METADATA = "zarr.json"
 
@@ -116,3 +125,14 @@ def absent_chunk_frames(folder: Path | str) -> list[tuple[int, int]]:
             else:
                 spans.append((a, b))
     return spans
+
+
+def gone_since(attrs: Mapping[str, Any]) -> str | None:
+    """When the output array with attributes ``attrs`` was marked as the output of an input that
+    is no longer in the archive (the ``since`` of :data:`INPUT_GONE`, ISO 8601), or ``None``
+    when it is not marked. A mark without a readable time counts as marked (``"unknown"``)."""
+    mark = attrs.get(INPUT_GONE)
+    if mark is None:
+        return None
+    since = mark.get("since") if isinstance(mark, Mapping) else None
+    return since if isinstance(since, str) and since else "unknown"
