@@ -805,6 +805,24 @@ def test_saved_block_mistakes_are_configuration_errors(prefect_server, npy_archi
                 else "either a configuration file or --block NAME") in r.stderr, (args, r.stderr)
 
 
+def test_a_setup_mistake_through_the_flow_is_one_line_without_a_traceback(prefect_server, npy_archive, tmp_path):
+    # A misspelt archive root, and a store inside the archive: through the flow, as without
+    # it, the command exits 2 with one line naming the key and the remedy; Prefect's own log
+    # lines about the failed flow run stay (the dashboard shows them), without a traceback.
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server})
+    cfg = write_job(tmp_path, npy_archive)
+    bad_root = tmp_path / "bad-root.toml"
+    bad_root.write_text(cfg.read_text().replace(npy_archive.as_posix(), npy_archive.as_posix() + "-typo"))
+    inside = write_job(tmp_path, npy_archive, store=(npy_archive / "out.zarr").as_posix(), name="inside.toml")
+    for path, said in ((bad_root, "is not a folder"), (inside, "inside")):
+        r = subprocess.run([sys.executable, "-m", "twinpass.cli", "run", str(path), "--no-report"], env=env,
+                           cwd=tmp_path, capture_output=True, text=True, timeout=600)
+        assert r.returncode == 2, r.stdout + r.stderr
+        assert "Traceback" not in r.stdout + r.stderr, r.stderr
+        ours = [line for line in r.stderr.splitlines() if line.startswith("twinpass: error:")]
+        assert len(ours) == 1 and said in ours[0], r.stderr
+
+
 # ------------------------------------------------------------------------- CLI
 def test_cli_run_through_the_flow_on_a_fresh_prefect_home(npy_archive, tmp_path):
     """`twinpass run` with no server configured starts Prefect's temporary local server."""

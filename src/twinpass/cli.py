@@ -370,7 +370,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
                 flows.TERMINAL_PROGRESS = progress
                 try:
                     # Heartbeats that do not hold up the end of the run; a lost server explained in one line.
-                    with prompt_heartbeats(), _without_tracebacks_of(flows.server_unreachable):
+                    with prompt_heartbeats(), _without_tracebacks_of(_explained_here):
                         state = flows.archive_run(
                             config_path=None if config_path is None else str(Path(config_path).resolve()),
                             config_block=config_block, force=force, scheduler=scheduler, workers=workers,
@@ -409,6 +409,17 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     if report_error:
         raise ReportNotWrittenError(report_error, code)
     return code
+
+
+def _explained_here(error: object) -> bool:
+    """Whether the flow command explains ``error`` in a line of its own, so that Prefect's log
+    line about it needs no traceback: a lost Prefect server, or a bad configuration, input or
+    store (exit status 2, as without the flow)."""
+    from . import flows
+    from .errors import BlockFailedError
+
+    return flows.server_unreachable(error) or (isinstance(error, TwinpassError)
+                                               and not isinstance(error, BlockFailedError))
 
 
 @contextlib.contextmanager
