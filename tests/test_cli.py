@@ -202,8 +202,16 @@ def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     assert "stream alpha" in r.stdout and r.returncode == 0
     r = _twinpass("status", str(tmp_path / "out.zarr" / "alpha"))  # a group inside the store
     assert r.returncode == 2 and f"give the store itself: twinpass status {tmp_path / 'out.zarr'}" in r.stderr, r.stderr
+    r = _twinpass("status", str(tmp_path / "twinpass-typo.toml"))  # a configuration path mistyped
+    assert r.returncode == 2 and "twinpass-typo.toml" in r.stderr and "not found" in r.stderr, r.stderr
+    assert "output store" not in r.stderr, r.stderr  # the configuration is what is missing
     report = tmp_path / "out.report.html"  # named after the store, out.zarr
     assert report.is_file()
+    # The report is for handing on: the permissions of any new file under the umask (the
+    # test's subprocesses inherit this process's umask), not those of a private temporary file.
+    umask = os.umask(0o022)
+    os.umask(umask)
+    assert report.stat().st_mode & 0o777 == 0o666 & ~umask, oct(report.stat().st_mode)
     html = report.read_text()
     assert html.count("data:image/png;base64,") >= 5
     # a second run skips everything

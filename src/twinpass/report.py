@@ -628,6 +628,13 @@ def _listed_html(sections: Sequence[tuple[str, Sequence[str]]]) -> str:
     return "".join(parts)
 
 
+def _umask() -> int:
+    """The process's file mode creation mask (read by setting it and putting it back)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def render_report(
     path: str | os.PathLike[str],
     *,
@@ -779,6 +786,9 @@ def render_report(
         fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=out.parent)
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
+        # mkstemp makes the file readable by its owner alone; the report is for handing on,
+        # so it gets the permissions any new file gets under the process's umask.
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, out)
     except OSError as exc:
         if tmp is not None:

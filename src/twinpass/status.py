@@ -24,8 +24,8 @@ from .io.store_lock import LockInfo
 def open_target(target: str) -> tuple[OutputStore, str]:
     """Open the store named by ``target``: a config file (its [output] store) or a store path/URL."""
     p = Path(target)
-    if p.is_file() and p.suffix.lower() == ".toml":
-        cfg = load_config(p)
+    if p.suffix.lower() == ".toml" and "://" not in target and not p.is_dir():
+        cfg = load_config(p)  # a missing file is said as a missing configuration, not a missing store
         return OutputStore.open(cfg.store_location, mode="r"), cfg.store_location
     if "://" not in target and p.is_dir() and not (p / RESERVED).is_dir():
         # A group inside a store reads like a store of its own, with no block tables: refuse it.
