@@ -274,6 +274,8 @@ def test_example_configs_can_be_designed(name: str, sample_rate_hz: float) -> No
     cfg = load_config(CONFIGS / f"{name}.toml")
     design = design_filter(cfg.response, sample_rate_hz, cfg.processing.tolerance)
     assert design.effective_length > 0
+    # A shipped example promises only what float64 can keep: no rounding caution in its report.
+    assert design.report["rounding_estimate"] <= cfg.processing.tolerance, design.report["statement"]
     if name == "lab-drift-highpass":
         # The comments promise a halo longer than one block, so "auto" carries filter state.
         assert cfg.processing.block_seconds is not None
