@@ -563,6 +563,9 @@ def warm_compiled_loops(notice_after_s: float = 3.0) -> bool:
     """
     from .core import loops
 
+    if not _WARMING.acquire(blocking=False):  # another thread loads them, and gives the notice
+        with _WARMING:
+            return loops.jit_enabled()
     timer = threading.Timer(notice_after_s, log.warning, args=(COMPILE_NOTICE,))
     timer.daemon = True
     timer.start()
@@ -570,6 +573,12 @@ def warm_compiled_loops(notice_after_s: float = 3.0) -> bool:
         return loops.jit_enabled()
     finally:
         timer.cancel()
+        _WARMING.release()
+
+
+_WARMING = threading.Lock()
+"""Held by the thread loading the compiled loops (:func:`warm_compiled_loops`): a flow
+command loads them from two threads at once, and the notice is said once."""
 
 
 _LOCAL_CLUSTER_CONFIG = {
