@@ -1276,9 +1276,10 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
         finished = np.isin(st, DONE)
         ok = bool(np.all(finished))
         errors = dict(table.errors)
-        if moved and ok:  # its blocks, or their halos, may have read the input half rewritten
-            ok = False  # (blocks that failed say so themselves)
-            errors[-1] = _moved_message(fw.relpath, moved)
+        if moved:  # its blocks, or their halos, may have read the input half rewritten
+            ok = False
+            if not errors:  # (blocks that could not read it say so themselves)
+                errors[-1] = _moved_message(fw.relpath, moved)
         summary = _checks.summarise(table.figures)
         for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
             summary[f"blocks_{name}"] = int(np.sum(st == code))
