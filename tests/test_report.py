@@ -530,7 +530,7 @@ def test_the_overlay_draws_the_input_as_recorded_and_says_what_it_removes(tmp_pa
     assert shown is not None
     a, z = 1500 - 400, 1500 + 400  # OVERLAY_SECONDS = 4 s at 200 Hz around the peak
     assert shown["file"] == (f"{files.relpaths[1]} (channel 1, counted from 0; samples {a}-{z - 1}; t = 0 at the "
-                             "input's largest excursion)")
+                             "input's largest excursion from its mean over the window shown)")
     np.testing.assert_array_equal(shown["before"], np.load(files.paths[1])[a:z, 1])
     text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
     assert (f"Both traces are drawn less their mean over the window shown (input {np.mean(shown['before']):.4g}, "
@@ -563,3 +563,43 @@ def test_the_report_says_which_runs_and_library_versions_wrote_the_outputs(tmp_p
     arr.attrs["written_by"] = [{**entry, "versions": {**entry["versions"], "scipy": "1.0.0"}}]
     text = html.unescape(write_report(cfg).read_text(encoding="utf-8"))
     assert f"1: {name}: scipy 1.0.0 (now {metadata.version('scipy')})" in text
+
+
+def test_the_overlay_puts_t0_and_its_marker_on_one_sample_of_a_drifting_input(tmp_path: Path) -> None:
+    # A drifting input (a slow sine of large amplitude, as a temperature drift) with a modest
+    # event: the title's t = 0 and the red marker must name the same sample, the largest
+    # |input - mean over the window shown| (reference: numpy argmax of that, computed here on
+    # the file's own samples, numpy.load of the NPY input).
+    from conftest import write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import _largest_transient
+
+    fs = 200.0
+    n = 6000
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(5)
+    # Its crest at 18.75 s (frame 1750 of the second file) makes the peak block [1000, 2000) of
+    # that file; the block's largest excursion from its median is at frame 1000, inside the file.
+    drift = 2.0 + 6.0 * np.sin(2 * np.pi * 0.03 * t - 1.963)
+    x = np.stack([drift + 0.05 * rng.standard_normal(n), 0.1 * rng.standard_normal(n)], axis=1)
+    x[2300, 0] += 1.5  # an event riding on the drift
+    files = write_stream(tmp_path / "archive", "deck", x, fs, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    store = OutputStore.open(cfg.store_location, mode="r")
+    shown = _largest_transient(cfg, store, store.list_arrays())
+    assert shown is not None
+    m = re.search(r"samples (\d+)-(\d+); t = 0 at the input's largest excursion from its mean over the window "
+                  r"shown\)", shown["file"])
+    assert m is not None, shown["file"]
+    a, z = int(m.group(1)), int(m.group(2)) + 1
+    k = files.relpaths.index(shown["file"].split(" ")[0])
+    raw = np.load(files.paths[k])[a:z, 0].astype(np.float64)
+    np.testing.assert_array_equal(shown["before"], raw)
+    j = int(np.argmax(np.abs(raw - raw.mean())))
+    assert shown["t"][j] == 0.0  # t = 0 at that sample
+    fig, _ = report._overlay_figure(shown)
+    markers = [ln for ln in fig.axes[0].get_lines() if str(ln.get_label()).startswith("largest |input")]
+    assert len(markers) == 1 and markers[0].get_xdata()[0] == 0.0  # the marker too

@@ -41,8 +41,8 @@ from twinpass.core.kernel import autocorrelation
 from twinpass.core.types import Design
 from twinpass.errors import TwinpassError
 
-__all__ = ["DEFAULT_CAUTIONS", "LISTED", "STATUS_COLORS", "UNRECORDED_KIND", "render_report", "response_figure_png",
-           "two_pass_impulse"]
+__all__ = ["DEFAULT_CAUTIONS", "LISTED", "STATUS_COLORS", "UNRECORDED_KIND", "largest_excursion", "render_report",
+           "response_figure_png", "two_pass_impulse"]
 
 DEFAULT_CAUTIONS: tuple[str, ...] = (
     "The filtering is non-causal: running the filter forward and then backward cancels the "
@@ -423,6 +423,31 @@ def _window_mean(x: np.ndarray) -> float:
     return float(np.mean(finite)) if finite.size else 0.0
 
 
+def largest_excursion(x: np.ndarray) -> int | None:
+    """Index of the input's largest excursion: the sample of largest ``|x - mean|``, the mean
+    taken over the finite samples of ``x`` (NaN/Inf samples are passed over).
+
+    This is the one definition the overlay uses: the report's data puts t = 0 there and the
+    overlay draws its marker there, both over the window shown, each trace drawn less that
+    same mean.
+
+    Parameters
+    ----------
+    x : ndarray, shape (samples,)
+        One channel of input (input units).
+
+    Returns
+    -------
+    int or None
+        The index into ``x`` (the first one on ties); None when no sample is finite.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    finite = np.isfinite(x)
+    if not finite.any():
+        return None
+    return int(np.argmax(np.where(finite, np.abs(x - _window_mean(x)), -np.inf)))
+
+
 def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
     """The overlay of input and output, each less its mean over the window, and its caption.
 
@@ -441,9 +466,10 @@ def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
     ax.plot(t, after, color="#0d47a1", lw=1.0, label="after (zero-phase filtered, less its window mean)")
     caption = (f"Both traces are drawn less their mean over the window shown (input {mean_before:.4g}, output "
                f"{mean_after:.4g}, in input units), so that an offset the filter removes does not part them. ")
-    if before.size and np.any(np.isfinite(before)):
-        i = int(np.nanargmax(np.abs(before)))
-        ax.axvline(t[i], color="#c62828", ls="--", lw=0.8, label=f"largest |input| at {t[i]:.6g} s")
+    i = largest_excursion(raw_before)
+    if i is not None:
+        ax.axvline(t[i], color="#c62828", ls="--", lw=0.8,
+                   label=f"largest |input - window mean| at {t[i]:.6g} s")
     lag = _lag_of_peak(before, after)
     if lag is not None and t.size > 1:
         dt = float(np.median(np.diff(t)))

@@ -19,7 +19,7 @@ from .core.types import Design, ResponseSpec
 from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
-from .report import DEFAULT_CAUTIONS, UNRECORDED_KIND, render_report
+from .report import DEFAULT_CAUTIONS, UNRECORDED_KIND, largest_excursion, render_report
 from .status import collect_status, error_groups
 
 OVERLAY_SECONDS = 4.0
@@ -64,9 +64,28 @@ def _epoch(iso: str | None) -> float | None:
     return t.timestamp()
 
 
+def _excursion_window(rec: Any, start: int, stop: int, ch: int, half: int) -> tuple[int, int, int, np.ndarray]:
+    """The overlay's window of one channel: ``(a, z, i, x)``, samples ``[a, z)`` of the file
+    (``x`` their values) and ``i``, the file sample of the input's largest excursion
+    (:func:`twinpass.report.largest_excursion`) within that same window.
+
+    The window (``half`` samples either side, clipped to the file) is centred on the largest
+    excursion of the block ``[start, stop)``; ``i`` is then looked for again within the window,
+    from the window's own mean, as the overlay draws it. On a drifting input the two differ
+    and ``i`` need not be the window's centre, but it is always the sample the overlay's
+    marker shows, so its t = 0 and its marker agree.
+    """
+    x = rec.read(start, stop)[:, ch]
+    centre = start + (largest_excursion(x) or 0)
+    a, z = max(0, centre - half), min(rec.info.frames, centre + half)
+    x = rec.read(a, z)[:, ch]
+    return a, z, a + (largest_excursion(x) or 0), x
+
+
 def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> dict[str, Any] | None:
     """Input and output around the block input peak of the whole store (first channel peaking),
-    as recorded (the report draws both less their mean over the window, and says so).
+    as recorded (the report draws both less their mean over the window, and says so), t = 0
+    at the input's largest excursion from that mean (:func:`_excursion_window`).
     Channels are counted from 0, as in twinpass's messages; samples are the file's, inclusive.
 
     Files whose input can no longer be read (removed from the archive since, or unreadable
@@ -91,17 +110,14 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
         src = cfg.archive_root / attrs["source"]
         try:
             with open_recording(str(src)) as rec:
-                x = rec.read(int(span[0]), int(span[1]))[:, ch]
-                i = int(span[0]) + int(np.argmax(np.abs(x - np.median(x))))
-                half = int(OVERLAY_SECONDS * fs / 2)
-                a, z = max(0, i - half), min(rec.info.frames, i + half)
-                before = rec.read(a, z)[:, ch]
+                a, z, i, before = _excursion_window(rec, int(span[0]), int(span[1]), ch,
+                                                    int(OVERLAY_SECONDS * fs / 2))
         except (TwinpassError, OSError):
             continue
         after = store.read(name, a, z)[:, ch].astype(np.float64)
         t = (np.arange(a, z) - i) / fs
         return {"file": f"{attrs['source']} (channel {ch}, counted from 0; samples {a}-{z - 1}; t = 0 at the "
-                        "input's largest excursion)",
+                        "input's largest excursion from its mean over the window shown)",
                 "t": t, "before": np.asarray(before, dtype=np.float64), "after": after}
     return None
 
