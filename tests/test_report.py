@@ -603,3 +603,37 @@ def test_the_overlay_puts_t0_and_its_marker_on_one_sample_of_a_drifting_input(tm
     fig, _ = report._overlay_figure(shown)
     markers = [ln for ln in fig.axes[0].get_lines() if str(ln.get_label()).startswith("largest |input")]
     assert len(markers) == 1 and markers[0].get_xdata()[0] == 0.0  # the marker too
+
+
+def test_the_report_and_status_show_the_limits_the_blocks_are_graded_against(tmp_path: Path) -> None:
+    # Reference: the README's [checks] defaults and rule (a stopband fails below the spec's
+    # stopband_attenuation_db less stopband_margin_db, 10 dB: 60 - 10 = 50 dB; the passband
+    # deviation warns beyond ripple / 2 + 0.3 dB + passband_warn_db 0.5 dB = 1.05 dB). The
+    # report (parsed with html.parser via the page text) and `twinpass status` state them
+    # per design, and say why a figure short of the spec can pass.
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.report_data import write_report
+    from twinpass.status import collect_status, format_status
+
+    response = {"kind": "lowpass", "passband_hz": [20.0], "stopband_hz": [40.0], "passband_ripple_db": 0.5,
+                "stopband_attenuation_db": 60.0}
+    cfg = load_config(_run_small_job(tmp_path, response))
+    text = html.unescape(write_report(cfg).read_text(encoding="utf-8"))
+    section = text.split("<h4>Check limits</h4>", 1)[1].split("<h4>", 1)[0]
+    rows = {re.sub(r"<[^>]+>", "|", r).strip("|").split("||")[0]: re.sub(r"<[^>]+>", "|", r).strip("|").split("||")
+            for r in section.split("<tr>")[2:]}
+    assert rows["stopband attenuation"][1:4] == ["dB", "-", "below 50"]
+    assert rows["passband deviation"][1:4] == ["dB", "beyond ±1.05", "beyond ±3.55"]
+    assert rows["passband phase"][1:4] == ["degrees", "beyond ±5", "beyond ±20"]
+    assert rows["seam mismatch"][3].startswith("above 1e-08")  # 10 x the tolerance 1e-9
+    assert "stopband_margin_db 10 dB" in rows["stopband attenuation"][4]
+    assert "below the nominal spec but above that limit therefore passes" in section
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    (entry,) = status["limits"]["designs"]
+    by = {r["figure"]: r for r in entry["limits"]}
+    assert entry["sample_rate_hz"] == 200.0 and entry["outputs"] == 3
+    assert (by["stopband_att_db"]["fail"], by["stopband_att_db"]["unit"]) == (pytest.approx(50.0), "dB")
+    assert by["passband_dev_db"]["warn"] == pytest.approx(1.05)
+    assert "last run recorded" in status["limits"]["checks_from"]
+    assert "stopband attenuation fail below 50 dB" in format_status(status)

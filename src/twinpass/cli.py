@@ -507,13 +507,21 @@ def cmd_status(args: argparse.Namespace) -> int:
     from .status import collect_status, format_status, open_target, shortfalls
 
     store, _ = open_target(args.target)
-    st = collect_status(store)
+    st = collect_status(store, _configured_checks(args.target))
     print(json.dumps(st, indent=2) if args.json else format_status(st))
     missing = shortfalls(st) if args.require_complete else []
     if missing:
         _eprint("not complete: " + "; ".join(missing))
         return 1
     return 0
+
+
+def _configured_checks(target: str) -> Any:
+    """The ``[checks]`` of a configuration given as ``twinpass status``'s target (None for a store)."""
+    from .config import load_config
+
+    p = Path(target)
+    return load_config(p).checks if p.is_file() and p.suffix.lower() == ".toml" else None
 
 
 def cmd_report(args: argparse.Namespace) -> int:

@@ -12,15 +12,16 @@ from typing import Any, cast
 
 import numpy as np
 
-from .config import JobConfig, parse_response
+from .config import JobConfig
 from .core import checks as _checks
 from .core.design import design_filter, response_report
 from .core.types import Design, ResponseSpec
 from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
-from .report import DEFAULT_CAUTIONS, UNRECORDED_KIND, largest_excursion, render_report
-from .status import collect_status, error_groups
+from .report import DEFAULT_CAUTIONS, largest_excursion, render_report
+from .status import (collect_status, design_limits, error_groups, parse_spec, root_spec, run_checks, stored_design,
+                     usable_filter)
 
 OVERLAY_SECONDS = 4.0
 """Width of the before/after overlay around the largest transient (s)."""
@@ -199,22 +200,6 @@ class OutputDesign:
                 "designing from it again gives exactly the recorded coefficients).")
 
 
-def _recorded_spec(root: Mapping[str, Any]) -> ResponseSpec | None:
-    """The response spec of the store's last run (root ``spec.response``), None if unusable."""
-    doc = (root.get("spec") or {}).get("response") if isinstance(root.get("spec"), Mapping) else None
-    return _parse_spec(doc)
-
-
-def _parse_spec(doc: Any) -> ResponseSpec | None:
-    """A recorded response spec (``ResponseSpec.to_dict()``), None if absent or unusable."""
-    if not isinstance(doc, Mapping):
-        return None
-    try:
-        return parse_response(doc, "the store's recorded specification")
-    except TwinpassError:
-        return None
-
-
 def _recorded_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | None) -> tuple[Design, bool]:
     """The design an output was filtered with, from its ``filter`` attribute; (design, spec known?).
 
@@ -225,13 +210,7 @@ def _recorded_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | No
     recorded tolerance gives exactly the recorded coefficients: then it is the spec these
     outputs were designed from. Otherwise the design is drawn without a mask.
     """
-    sos = np.asarray(filt["sos"], dtype=np.float64) if filt.get("sos") is not None else None
-    taps = np.asarray(filt["taps"], dtype=np.float64) if sos is None else None
-    recorded = Design(spec=ResponseSpec(kind=cast(Any, UNRECORDED_KIND), family=cast(Any, str(filt.get("family"))),
-                                        order=int(filt.get("order", 0))),
-                      family=str(filt.get("family")), sample_rate_hz=float(fs), order=int(filt.get("order", 0)),
-                      sos=sos, taps=taps, effective_length=int(filt["effective_length_samples"]),
-                      tolerance=float(filt["tolerance"]))
+    recorded = stored_design(fs, filt)
     if spec is not None:
         try:
             again = design_filter(spec, fs, recorded.tolerance)
@@ -258,7 +237,7 @@ def output_designs(cfg: JobConfig, store: Any,
     Outputs with no recorded design (older stores) fall back to the configuration's design
     as it is now, marked as such (and named in a notice).
     """
-    spec = _recorded_spec(store.read_root_info())
+    spec = root_spec(store.read_root_info())
     by_digest: dict[tuple[float, str | None], list[str]] = {}
     filters: dict[tuple[float, str | None], Mapping[str, Any]] = {}
     complete = {str(f["source"]) for f in files if f.get("complete")}
@@ -266,8 +245,7 @@ def output_designs(cfg: JobConfig, store: Any,
         attrs = store.array_attrs(f["name"])
         fs = float(attrs["sample_rate_hz"])
         filt = attrs.get("filter")
-        usable = (isinstance(filt, Mapping) and ("sos" in filt or "taps" in filt)
-                  and "tolerance" in filt and "effective_length_samples" in filt)
+        usable = usable_filter(filt)
         key = (fs, str(attrs.get("design_digest")) if usable else None)
         by_digest.setdefault(key, []).append(str(f["source"]))
         if usable:
@@ -295,7 +273,7 @@ def output_designs(cfg: JobConfig, store: Any,
             out[(fs, same)].sources += sources
             out[(fs, same)].complete += len(complete.intersection(sources))
             continue
-        own = _parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
+        own = parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
         design, known = _recorded_design(fs, filt, own)
         out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None,
                                        complete=len(complete.intersection(sources)))
@@ -432,9 +410,11 @@ def provenance(store: Any, names: Sequence[str]) -> list[tuple[str, str]]:
 def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
     """Render the HTML report of ``cfg``'s store; returns the written path."""
     store: Any = _ReadOnce(OutputStore.open(cfg.store_location, mode="r"))
-    status = collect_status(store)
+    status = collect_status(store, cfg.checks)
     used, unrecorded = output_designs(cfg, store, status["files"])
     designs = [d.design for d in used]
+    checks, checks_from = run_checks(store.read_root_info(), cfg.checks)
+    limits = [design_limits(d.design, checks) for d in used]
     files, blocks = [], []
     for f in status["files"]:
         files.append({"file": f["source"], "stream": f["stream"], "blocks_done": f["blocks_done"],
@@ -462,4 +442,5 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
         overlays=[overlay] if overlay else [], title=f"twinpass report: {Path(cfg.source).name}",
         cautions=list(DEFAULT_CAUTIONS), notices=design_notices(cfg, used) + unrecorded, design_notes=[d.note() for d in used],
         listed=attention_lists(status), provenance=provenance(store, [f["name"] for f in status["files"]]),
+        limits=limits, limits_from=checks_from,
     )
