@@ -895,3 +895,53 @@ def test_a_block_whose_pieces_are_all_too_short_is_not_examined() -> None:
     assert np.all(np.isnan(figs[:, FIGURE_INDEX["passband_dev_db"]]))
     assert checks.measurable_pieces(np.zeros(checks.SPLIT_MIN_PIECE, dtype=bool), design) == [(0, checks.SPLIT_MIN_PIECE)]
     assert checks.measurable_pieces(np.zeros(checks.SPLIT_MIN_PIECE - 1, dtype=bool), design) == []
+
+
+def test_the_limits_shown_are_the_limits_grading_uses():
+    # Reference: the README's configuration reference ([checks] defaults: passband_warn_db 0.5,
+    # passband_fail_db 3.0, phase_warn_deg 5, phase_fail_deg 20, stopband_margin_db 10) and its
+    # rule "fails below the spec's stopband_attenuation_db less stopband_margin_db"; the
+    # passband allowance ripple / 2 + 0.3 dB is the grade() docstring's. Each limit is then
+    # put through grade(): a figure just inside passes (or warns), just outside warns or fails.
+    from twinpass.core.design import design_filter
+
+    spec = ResponseSpec(kind="lowpass", passband_hz=(20.0,), stopband_hz=(40.0,), passband_ripple_db=0.5,
+                        stopband_attenuation_db=60.0)
+    design = design_filter(spec, 500.0)
+    cfg = ChecksConfig()
+    tol = design.tolerance
+    lim = checks.grading_limits(design, cfg, tol)
+    assert lim["stopband_att_db"].fail == pytest.approx(60.0 - 10.0)
+    assert lim["stopband_att_db"].unit == "dB" and lim["stopband_att_db"].below
+    assert lim["passband_dev_db"].warn == pytest.approx(0.25 + 0.3 + 0.5)
+    assert lim["passband_dev_db"].fail == pytest.approx(0.25 + 0.3 + 3.0)
+    assert (lim["phase_deg"].warn, lim["phase_deg"].fail) == (5.0, 20.0)
+    assert lim["seam_mismatch"].unit == "relative"
+
+    def graded(**values: float) -> int:
+        row = np.full((1, len(FIGURES)), np.nan)
+        for k, v in values.items():
+            row[0, FIGURE_INDEX[k]] = v
+        return checks.grade(row, design, cfg, tol)
+
+    eps = 1e-6
+    stop = lim["stopband_att_db"].fail
+    assert graded(stopband_att_db=58.65) == PASS  # short of the 60 dB spec, inside the limit
+    assert graded(stopband_att_db=stop + eps) == PASS and graded(stopband_att_db=stop - eps) == FAIL
+    for name in ("passband_dev_db", "phase_deg"):
+        warn, fail = lim[name].warn, lim[name].fail
+        for sign in (1.0, -1.0):  # either way
+            assert graded(**{name: sign * (warn - eps)}) == PASS
+            assert graded(**{name: sign * (warn + eps)}) == WARN
+            assert graded(**{name: sign * (fail - eps)}) == WARN
+            assert graded(**{name: sign * (fail + eps)}) == FAIL
+    seam = lim["seam_mismatch"].fail
+    assert graded(seam_mismatch=seam * (1 - 1e-6)) == PASS and graded(seam_mismatch=seam * (1 + 1e-6)) == FAIL
+    share = lim["coherent_bins"].fail
+    assert graded(passband_bins=100.0, coherent_bins=100.0 * share) == PASS
+    assert graded(passband_bins=100.0, coherent_bins=100.0 * share - 1.0) == FAIL
+    assert graded(nonfinite_out=0.0) == PASS and graded(nonfinite_out=1.0) == FAIL
+    assert graded(clipped=1.0) == WARN
+    # A design that states no attenuation is graded against the rejection level instead.
+    fixed = design_filter(ResponseSpec(kind="lowpass", family="butterworth", order=4, cutoff_hz=(20.0,)), 500.0)
+    assert checks.grading_limits(fixed, cfg, tol)["stopband_att_db"].fail == pytest.approx(30.0 - 10.0)

@@ -276,7 +276,9 @@ def test_first_run_new_then_unchanged():
     assert [(f.status, f.redo) for f in plan.files] == [("new", "all"), ("new", "all")]
     t = plan.totals()
     assert t["files"]["new"] == 2 and t["samples"] == 2000
-    assert t["block_work_samples"] == 2000 + 2 * HALO  # one run over the joined segment, halo each side
+    # One run over the joined segment; its halos would lie beyond the segment's ends, where
+    # there is nothing to read.
+    assert t["block_work_samples"] == 2000
     plan2, _ = plan_for(files, records_for(segs))
     assert [(f.status, f.redo) for f in plan2.files] == [("unchanged", None)] * 2
     assert plan2.totals()["samples"] == 0 and plan2.segments_with_work() == ()
@@ -295,7 +297,7 @@ def test_append_recomputes_end_of_previous_file(times, joins):
     assert "day3" in by["day2"].reason
     assert by["day3"].status == "new" and by["day3"].redo == "all"
     assert plan.totals()["samples"] == HALO + 800
-    assert plan.totals()["block_work_samples"] == HALO + 800 + 2 * HALO
+    assert plan.totals()["block_work_samples"] == HALO + 800 + HALO  # a halo before; none past the end
     data = signals(new)
     assert_plan_covers(plan, old_segs, new_segs, data, data)
 
@@ -588,3 +590,41 @@ def test_fingerprint_comparison_rules():
     assert fingerprint_changed(fast, full)[0]
     assert not fingerprint_changed(_fp("x", mode="fast"), _fp("x", mode="full"))[0]
     assert fingerprint_changed(None, full) == (True, "no fingerprint to compare with")
+
+
+# -- the estimate against what a run reads ----------------------------------------
+
+
+@pytest.mark.parametrize("mode", ["halo", "carry"])
+def test_the_plans_block_work_is_what_the_runs_blocks_read(tmp_path, mode):
+    # Reference: the windows the engine's block tasks report reading (BlockResult.window_samples,
+    # the same count bench/run_bench.py's halo section makes from block_reach), summed over a
+    # real run on Dask with a real Zarr store. Halo mode reads a halo each side of every block
+    # (clipped at the segment's ends); carry mode reads no halo, only the seam samples before
+    # each block but the first.
+    from conftest import make_signal, write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.engine import segment_reads
+    from twinpass.job import prepare, run_job
+
+    x = make_signal(6000, 2, 200.0, seed=7)
+    write_stream(tmp_path / "archive", "deck", x, 200.0, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")},
+                                   processing={"mode": mode, "block_seconds": 4.0}))
+
+    class NoRecords:
+        def file_records(self):
+            return {}
+
+    prep = prepare(cfg, NoRecords())
+    reads = {w.segment_id: segment_reads(w, prep.designs[w.sample_rate_hz], cfg) for w in prep.work}
+    assert [r.mode for r in reads.values()] == [mode]
+    estimate = prep.plan.totals(reads)
+    read: list[int] = []
+    assert run_job(cfg, on_block=lambda _seg, _done, _total, res: read.append(res.window_samples)).ok
+    blocks = sum(len(spans) for r in reads.values() for spans in r.spans.values())
+    assert len(read) == blocks > 3  # every block ran, several per file
+    assert estimate["block_work_samples"] == sum(read)
+    assert estimate["carry_segments"] == (mode == "carry")
+    if mode == "carry":
+        assert sum(read) == 6000 + (blocks - 1) * cfg.checks.seam_samples  # no halo at all

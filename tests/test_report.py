@@ -530,7 +530,7 @@ def test_the_overlay_draws_the_input_as_recorded_and_says_what_it_removes(tmp_pa
     assert shown is not None
     a, z = 1500 - 400, 1500 + 400  # OVERLAY_SECONDS = 4 s at 200 Hz around the peak
     assert shown["file"] == (f"{files.relpaths[1]} (channel 1, counted from 0; samples {a}-{z - 1}; t = 0 at the "
-                             "input's largest excursion)")
+                             "input's largest excursion from its mean over the window shown)")
     np.testing.assert_array_equal(shown["before"], np.load(files.paths[1])[a:z, 1])
     text = html.unescape(write_report(cfg, tmp_path / "report.html").read_text(encoding="utf-8"))
     assert (f"Both traces are drawn less their mean over the window shown (input {np.mean(shown['before']):.4g}, "
@@ -563,3 +563,77 @@ def test_the_report_says_which_runs_and_library_versions_wrote_the_outputs(tmp_p
     arr.attrs["written_by"] = [{**entry, "versions": {**entry["versions"], "scipy": "1.0.0"}}]
     text = html.unescape(write_report(cfg).read_text(encoding="utf-8"))
     assert f"1: {name}: scipy 1.0.0 (now {metadata.version('scipy')})" in text
+
+
+def test_the_overlay_puts_t0_and_its_marker_on_one_sample_of_a_drifting_input(tmp_path: Path) -> None:
+    # A drifting input (a slow sine of large amplitude, as a temperature drift) with a modest
+    # event: the title's t = 0 and the red marker must name the same sample, the largest
+    # |input - mean over the window shown| (reference: numpy argmax of that, computed here on
+    # the file's own samples, numpy.load of the NPY input).
+    from conftest import write_config, write_stream
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.job import run_job
+    from twinpass.report_data import _largest_transient
+
+    fs = 200.0
+    n = 6000
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(5)
+    # Its crest at 18.75 s (frame 1750 of the second file) makes the peak block [1000, 2000) of
+    # that file; the block's largest excursion from its median is at frame 1000, inside the file.
+    drift = 2.0 + 6.0 * np.sin(2 * np.pi * 0.03 * t - 1.963)
+    x = np.stack([drift + 0.05 * rng.standard_normal(n), 0.1 * rng.standard_normal(n)], axis=1)
+    x[2300, 0] += 1.5  # an event riding on the drift
+    files = write_stream(tmp_path / "archive", "deck", x, fs, [2000, 2000, 2000])
+    cfg = load_config(write_config(tmp_path, archive={"root": str(tmp_path / "archive")}))
+    assert run_job(cfg).ok
+    store = OutputStore.open(cfg.store_location, mode="r")
+    shown = _largest_transient(cfg, store, store.list_arrays())
+    assert shown is not None
+    m = re.search(r"samples (\d+)-(\d+); t = 0 at the input's largest excursion from its mean over the window "
+                  r"shown\)", shown["file"])
+    assert m is not None, shown["file"]
+    a, z = int(m.group(1)), int(m.group(2)) + 1
+    k = files.relpaths.index(shown["file"].split(" ")[0])
+    raw = np.load(files.paths[k])[a:z, 0].astype(np.float64)
+    np.testing.assert_array_equal(shown["before"], raw)
+    j = int(np.argmax(np.abs(raw - raw.mean())))
+    assert shown["t"][j] == 0.0  # t = 0 at that sample
+    fig, _ = report._overlay_figure(shown)
+    markers = [ln for ln in fig.axes[0].get_lines() if str(ln.get_label()).startswith("largest |input")]
+    assert len(markers) == 1 and markers[0].get_xdata()[0] == 0.0  # the marker too
+
+
+def test_the_report_and_status_show_the_limits_the_blocks_are_graded_against(tmp_path: Path) -> None:
+    # Reference: the README's [checks] defaults and rule (a stopband fails below the spec's
+    # stopband_attenuation_db less stopband_margin_db, 10 dB: 60 - 10 = 50 dB; the passband
+    # deviation warns beyond ripple / 2 + 0.3 dB + passband_warn_db 0.5 dB = 1.05 dB). The
+    # report (parsed with html.parser via the page text) and `twinpass status` state them
+    # per design, and say why a figure short of the spec can pass.
+    from twinpass.config import load_config
+    from twinpass.io.store import OutputStore
+    from twinpass.report_data import write_report
+    from twinpass.status import collect_status, format_status
+
+    response = {"kind": "lowpass", "passband_hz": [20.0], "stopband_hz": [40.0], "passband_ripple_db": 0.5,
+                "stopband_attenuation_db": 60.0}
+    cfg = load_config(_run_small_job(tmp_path, response))
+    text = html.unescape(write_report(cfg).read_text(encoding="utf-8"))
+    section = text.split("<h4>Check limits</h4>", 1)[1].split("<h4>", 1)[0]
+    rows = {re.sub(r"<[^>]+>", "|", r).strip("|").split("||")[0]: re.sub(r"<[^>]+>", "|", r).strip("|").split("||")
+            for r in section.split("<tr>")[2:]}
+    assert rows["stopband attenuation"][1:4] == ["dB", "-", "below 50"]
+    assert rows["passband deviation"][1:4] == ["dB", "beyond ±1.05", "beyond ±3.55"]
+    assert rows["passband phase"][1:4] == ["degrees", "beyond ±5", "beyond ±20"]
+    assert rows["seam mismatch"][3].startswith("above 1e-08")  # 10 x the tolerance 1e-9
+    assert "stopband_margin_db 10 dB" in rows["stopband attenuation"][4]
+    assert "below the nominal spec but above that limit therefore passes" in section
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    (entry,) = status["limits"]["designs"]
+    by = {r["figure"]: r for r in entry["limits"]}
+    assert entry["sample_rate_hz"] == 200.0 and entry["outputs"] == 3
+    assert (by["stopband_att_db"]["fail"], by["stopband_att_db"]["unit"]) == (pytest.approx(50.0), "dB")
+    assert by["passband_dev_db"]["warn"] == pytest.approx(1.05)
+    assert "last run recorded" in status["limits"]["checks_from"]
+    assert "stopband attenuation fail below 50 dB" in format_status(status)

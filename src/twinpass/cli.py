@@ -165,29 +165,30 @@ def cmd_plan(args: argparse.Namespace) -> int:
     except StoreError:
         store = None  # no store yet: everything is new
     prep = prepare(cfg, store if store is not None else _EmptyStore(), force=args.force)
-    problems = _layout_problems(prep)
+    reads, problems = _segment_reads(prep)
     if args.json:
-        print(json.dumps({"files": prep.plan.to_json(), "totals": prep.plan.totals(),
+        print(json.dumps({"files": prep.plan.to_json(), "totals": prep.plan.totals(reads),
                           "notes": list(prep.plan.notes), "problems": problems}, indent=2))
     else:
-        print(format_plan(prep.plan))
+        print(format_plan(prep.plan, reads))
         for segment, message in problems.items():
             print(f"cannot run segment {segment}: {message}")
     return 2 if problems else 0
 
 
-def _layout_problems(prep: Any) -> dict[str, str]:
-    """Segments with work whose blocks no layout fits, by segment id: what to change."""
-    from .engine import segment_mode
+def _segment_reads(prep: Any) -> tuple[dict[str, Any], dict[str, str]]:
+    """How the engine runs each segment with work (``SegmentReads`` by segment id), and the
+    segments whose blocks no layout fits, by segment id: what to change."""
+    from .engine import segment_reads
 
-    problems = {}
+    reads, problems = {}, {}
     for w in prep.work:
         if w.has_work:
             try:
-                segment_mode(w, prep.designs[w.sample_rate_hz], prep.cfg)
+                reads[w.segment_id] = segment_reads(w, prep.designs[w.sample_rate_hz], prep.cfg)
             except ConfigError as e:
                 problems[w.segment_id] = str(e)
-    return problems
+    return reads, problems
 
 
 class _EmptyStore:
@@ -517,13 +518,21 @@ def cmd_status(args: argparse.Namespace) -> int:
     from .status import collect_status, format_status, open_target, shortfalls
 
     store, _ = open_target(args.target)
-    st = collect_status(store)
+    st = collect_status(store, _configured_checks(args.target))
     print(json.dumps(st, indent=2) if args.json else format_status(st))
     missing = shortfalls(st) if args.require_complete else []
     if missing:
         _eprint("not complete: " + "; ".join(missing))
         return 1
     return 0
+
+
+def _configured_checks(target: str) -> Any:
+    """The ``[checks]`` of a configuration given as ``twinpass status``'s target (None for a store)."""
+    from .config import load_config
+
+    p = Path(target)
+    return load_config(p).checks if p.is_file() and p.suffix.lower() == ".toml" else None
 
 
 def cmd_report(args: argparse.Namespace) -> int:

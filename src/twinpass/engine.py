@@ -52,8 +52,9 @@ from .core import checks as _checks
 from .core.checks import CANCELLED, was_cancelled
 from .core.failures import CheckFailures, FileBlocks, explain
 from .core.blocks import BYTES_PER_WINDOW_SAMPLE, Layout, block_list, blocks_touching, choose_layout
-from .core.kernel import block_window, filtfilt_window, resolve_edge_samples
+from .core.kernel import block_reach, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
+from .core.plan import SegmentReads
 from .core.types import RESETTING_DIGEST, Design
 from .errors import ConfigError, CorruptInputError, InputError, RunStoppedError, StoreError, TwinpassError
 from .io.fingerprint import changed_since
@@ -139,37 +140,6 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
         raise InputError(f"segment window [{a}, {b}) is not covered by its files ({files}: read {filled} "
                          "samples); rerun so that the plan is made afresh")
     return out
-
-
-def block_reach(start: int, stop: int, segment_frames: int, halo: int, seam_samples: int,
-                edge_samples: int) -> tuple[int, int, int, int, bool, bool]:
-    """Samples a block computes and reads, in segment samples.
-
-    Parameters
-    ----------
-    start, stop : int
-        The block core [start, stop).
-    segment_frames : int
-        Samples in the segment.
-    halo : int
-        Halo per side (samples).
-    seam_samples : int
-        Outputs computed beyond each core edge for the seam check.
-    edge_samples : int
-        Resolved end-extension length (samples).
-
-    Returns
-    -------
-    xs, xe : int
-        Outputs computed: the core plus up to ``seam_samples`` on each side.
-    ws, we : int
-        Input window read (see :func:`twinpass.core.kernel.block_window`).
-    at_start, at_end : bool
-        The window touches the segment's first / last sample.
-    """
-    xs, xe = max(0, start - seam_samples), min(segment_frames, stop + seam_samples)
-    ws, we, at_start, at_end = block_window(xs, xe, segment_frames, halo, edge_samples)
-    return xs, xe, ws, we, at_start, at_end
 
 
 @dataclass(frozen=True)
@@ -1452,6 +1422,27 @@ def segment_mode(seg: SegmentWork, design: Design, cfg: JobConfig, *,
         except ConfigError as e:
             raise ConfigError(f"{str(e).rstrip('.')}. This{HOLES_FORCE_HALOS[4:]}; remedies: {HOLES_REMEDIES}") from None
     return "halo", _layout(seg, design, cfg)
+
+
+def segment_reads(seg: SegmentWork, design: Design, cfg: JobConfig) -> SegmentReads:
+    """How :func:`run_segment` runs ``seg``'s blocks, for the plan's estimate of what they
+    read (:meth:`twinpass.core.plan.Plan.totals`): the mode and layout of
+    :func:`segment_mode`, the seam samples and the end extension.
+
+    Blocks are those of the current layout (a file rerun in part keeps the blocks it was
+    written in, which may differ); a segment with NaN/Inf holes reads its pieces between
+    the holes, which this counts as one window per block.
+
+    Raises
+    ------
+    ConfigError
+        As :func:`segment_mode`.
+    """
+    mode, layout = segment_mode(seg, design, cfg)
+    assert layout is not None  # segment_mode computes the carry layout by default
+    return SegmentReads(mode=mode, halo=layout.halo if mode == "halo" else 0, seam_samples=cfg.checks.seam_samples,
+                        edge_samples=segment_edge_samples(seg.frames, design, cfg),
+                        spans={fw.relpath: layout.spans(fw.frames) for fw in seg.files})
 
 
 HOLES_FORCE_HALOS = ('this segment holds NaN/Inf runs (nonfinite = "split"), which carry mode does not '

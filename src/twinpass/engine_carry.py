@@ -95,7 +95,7 @@ from . import faults
 from .config import ChecksConfig, JobConfig
 from .core import checks as _checks
 from .core.blocks import Layout
-from .core.carry import carry_states, steady_state, transition_matrix
+from .core.carry import carry_states, seam_before, steady_state, transition_matrix
 from .core.checks import was_cancelled
 from .core.types import Design
 from .engine import (
@@ -841,7 +841,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
 
     def seam_len(i: int) -> int:
         """Seam samples shared by core piece ``i`` and the core piece after it."""
-        return min(k, pieces[i].length) if is_core(i) and is_core(i + 1) else 0
+        return seam_before(pieces[i].length if is_core(i) and is_core(i + 1) else None, k)
 
     errors: dict[int, str] = {}
     t0 = time.perf_counter()

@@ -313,6 +313,7 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
     """Root provenance before any block runs, and where unchanged files now sit."""
     store.set_root_info({"response": prep.cfg.response.to_dict(),
                          "processing": prep.cfg.to_dict()["processing"],
+                         "checks": prep.cfg.to_dict()["checks"],
                          "designs": {f"{fs:g}": d.report for fs, d in prep.designs.items()}},
                         library_versions())
     update_placement(store, prep)

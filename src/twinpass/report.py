@@ -6,7 +6,7 @@ styles are inline; the file loads nothing from anywhere and needs no JavaScript.
 Sections: notices (such as a configuration that no longer asks for the design the
 outputs were filtered with), summary, cautions, filter design (per design: what it was
 used for, overall response against the spec mask beside the per-pass response, overall
-zero phase against the per-pass phase, two-pass impulse response with its effective
+zero phase against the per-pass phase, the limits its blocks are graded against, two-pass impulse response with its effective
 length, the design report table), the per-block check map, inputs left out, failed or
 missing, before/after overlays around the largest transient, and the file table.
 
@@ -34,15 +34,15 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 from scipy import signal
 
-from twinpass.core.checks import STATUS_NAMES
+from twinpass.core.checks import LIMITS_EXPLAINED, STATUS_NAMES
 from twinpass.core.design import HALF_AMPLITUDE_DB, HALF_POWER_DB, overall_response, per_pass_response
 from twinpass.core.design import _bands as _spec_bands
 from twinpass.core.kernel import autocorrelation
-from twinpass.core.types import Design
+from twinpass.core.types import UNRECORDED_KIND, Design
 from twinpass.errors import TwinpassError
 
-__all__ = ["DEFAULT_CAUTIONS", "LISTED", "STATUS_COLORS", "UNRECORDED_KIND", "render_report", "response_figure_png",
-           "two_pass_impulse"]
+__all__ = ["DEFAULT_CAUTIONS", "LISTED", "STATUS_COLORS", "UNRECORDED_KIND", "largest_excursion", "render_report",
+           "response_figure_png", "two_pass_impulse"]
 
 DEFAULT_CAUTIONS: tuple[str, ...] = (
     "The filtering is non-causal: running the filter forward and then backward cancels the "
@@ -73,10 +73,6 @@ STATUS_COLORS: dict[str, str] = {
 """Fill colours of the block check map, by block status. ``cancelled``: the block's task was
 cancelled because a run was stopped (recorded as an error whose text says so); it is not
 done, nothing failed in it, and the next run does it."""
-
-UNRECORDED_KIND = "unrecorded"
-"""``ResponseSpec.kind`` of a design rebuilt from recorded coefficients whose response spec
-is not known: drawn without a spec mask."""
 
 LISTED = 50
 """Entries shown under each heading of the report's lists (the rest are counted)."""
@@ -423,6 +419,31 @@ def _window_mean(x: np.ndarray) -> float:
     return float(np.mean(finite)) if finite.size else 0.0
 
 
+def largest_excursion(x: np.ndarray) -> int | None:
+    """Index of the input's largest excursion: the sample of largest ``|x - mean|``, the mean
+    taken over the finite samples of ``x`` (NaN/Inf samples are passed over).
+
+    This is the one definition the overlay uses: the report's data puts t = 0 there and the
+    overlay draws its marker there, both over the window shown, each trace drawn less that
+    same mean.
+
+    Parameters
+    ----------
+    x : ndarray, shape (samples,)
+        One channel of input (input units).
+
+    Returns
+    -------
+    int or None
+        The index into ``x`` (the first one on ties); None when no sample is finite.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    finite = np.isfinite(x)
+    if not finite.any():
+        return None
+    return int(np.argmax(np.where(finite, np.abs(x - _window_mean(x)), -np.inf)))
+
+
 def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
     """The overlay of input and output, each less its mean over the window, and its caption.
 
@@ -441,9 +462,10 @@ def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
     ax.plot(t, after, color="#0d47a1", lw=1.0, label="after (zero-phase filtered, less its window mean)")
     caption = (f"Both traces are drawn less their mean over the window shown (input {mean_before:.4g}, output "
                f"{mean_after:.4g}, in input units), so that an offset the filter removes does not part them. ")
-    if before.size and np.any(np.isfinite(before)):
-        i = int(np.nanargmax(np.abs(before)))
-        ax.axvline(t[i], color="#c62828", ls="--", lw=0.8, label=f"largest |input| at {t[i]:.6g} s")
+    i = largest_excursion(raw_before)
+    if i is not None:
+        ax.axvline(t[i], color="#c62828", ls="--", lw=0.8,
+                   label=f"largest |input - window mean| at {t[i]:.6g} s")
     lag = _lag_of_peak(before, after)
     if lag is not None and t.size > 1:
         dt = float(np.median(np.diff(t)))
@@ -568,6 +590,29 @@ _FILE_COLUMNS: tuple[tuple[str, str], ...] = (
 )
 
 
+_LIMIT_UNITS: dict[str, str] = {"dB": "dB", "deg": "degrees", "relative": "relative to the segment's input peak",
+                                "samples": "samples (count)", "fraction": "fraction of the passband bins with input energy"}
+
+
+def _limits_html(rules: Sequence[Mapping[str, Any]] | None, source: str) -> str:
+    """One design's check limits (``Limit.to_dict()`` rows) as a table, with where the
+    ``[checks]`` settings come from and why a figure short of the spec can pass."""
+    if rules is None:
+        return ('<p class="muted">Check limits not shown: the response spec these outputs were designed from was not '
+                "recorded, so the passband and stopband limits they were graded against are not known.</p>")
+    head = "".join(f"<th>{_esc(h)}</th>" for h in ("Figure", "Unit", "Warns", "Fails", "How the limit is made"))
+    rows = []
+    for r in rules:
+        side = "below " if r.get("below") else "beyond ±" if r.get("either_way") else "above "
+        cells = [_esc(r.get("label")), _esc(_LIMIT_UNITS.get(str(r.get("unit")), r.get("unit")))]
+        cells += [_esc(f"{side}{_fmt(r.get(k), 4)}") if r.get(k) is not None else "-" for k in ("warn", "fail")]
+        cells.append(_esc(r.get("basis")))
+        rows.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    return (f"<p>The limits each block's figures are graded against (pass / warn / fail; from {_esc(source)}). "
+            "NaN figures are not measured and not graded.</p>"
+            f"<table><tr>{head}</tr>{''.join(rows)}</table><p>{_esc(LIMITS_EXPLAINED)}</p>")
+
+
 def _file_table(files: Sequence[Mapping[str, Any]]) -> str:
     if not files:
         return '<p class="muted">No files.</p>'
@@ -649,6 +694,8 @@ def render_report(
     design_notes: Sequence[str] = (),
     listed: Sequence[tuple[str, Sequence[str]]] | None = None,
     provenance: Sequence[tuple[str, str]] = (),
+    limits: Sequence[Sequence[Mapping[str, Any]] | None] = (),
+    limits_from: str = "the [checks] settings",
 ) -> Path:
     """Write the run report as one self-contained HTML file.
 
@@ -690,6 +737,12 @@ def render_report(
     provenance : sequence of (label, text)
         The section "Provenance" (store, last run, library versions, outputs written with
         other versions); omitted when empty.
+    limits : sequence
+        One per design (where missing, none shown): the limits its blocks are graded against,
+        ``Limit.to_dict()`` rows of :func:`twinpass.core.checks.grading_limits`, or None when
+        they are not known (the design's response spec was not recorded).
+    limits_from : str
+        Where the ``[checks]`` settings of the limits come from, in words.
 
     Returns
     -------
@@ -739,6 +792,9 @@ def render_report(
         parts.append(_img(_png(_phase_figure(design)), "phase",
                           "Forward-backward filtering cancels the phase: the overall phase is zero at "
                           "every frequency, while one pass alone shifts the phase."))
+        if i < len(limits):
+            parts.append("<h4>Check limits</h4>")
+            parts.append(_limits_html(limits[i], limits_from))
         parts.append("<h4>Impulse response</h4>")
         parts.append(_img(_png(_impulse_figure(design)), "two-pass impulse response",
                           "The two-pass impulse response is symmetric about t = 0: the response starts "

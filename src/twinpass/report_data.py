@@ -12,15 +12,16 @@ from typing import Any, cast
 
 import numpy as np
 
-from .config import JobConfig, parse_response
+from .config import JobConfig
 from .core import checks as _checks
 from .core.design import design_filter, response_report
 from .core.types import Design, ResponseSpec
 from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
-from .report import DEFAULT_CAUTIONS, UNRECORDED_KIND, render_report
-from .status import collect_status, error_groups
+from .report import DEFAULT_CAUTIONS, largest_excursion, render_report
+from .status import (collect_status, design_limits, error_groups, parse_spec, root_spec, run_checks, stored_design,
+                     usable_filter)
 
 OVERLAY_SECONDS = 4.0
 """Width of the before/after overlay around the largest transient (s)."""
@@ -64,9 +65,28 @@ def _epoch(iso: str | None) -> float | None:
     return t.timestamp()
 
 
+def _excursion_window(rec: Any, start: int, stop: int, ch: int, half: int) -> tuple[int, int, int, np.ndarray]:
+    """The overlay's window of one channel: ``(a, z, i, x)``, samples ``[a, z)`` of the file
+    (``x`` their values) and ``i``, the file sample of the input's largest excursion
+    (:func:`twinpass.report.largest_excursion`) within that same window.
+
+    The window (``half`` samples either side, clipped to the file) is centred on the largest
+    excursion of the block ``[start, stop)``; ``i`` is then looked for again within the window,
+    from the window's own mean, as the overlay draws it. On a drifting input the two differ
+    and ``i`` need not be the window's centre, but it is always the sample the overlay's
+    marker shows, so its t = 0 and its marker agree.
+    """
+    x = rec.read(start, stop)[:, ch]
+    centre = start + (largest_excursion(x) or 0)
+    a, z = max(0, centre - half), min(rec.info.frames, centre + half)
+    x = rec.read(a, z)[:, ch]
+    return a, z, a + (largest_excursion(x) or 0), x
+
+
 def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> dict[str, Any] | None:
     """Input and output around the block input peak of the whole store (first channel peaking),
-    as recorded (the report draws both less their mean over the window, and says so).
+    as recorded (the report draws both less their mean over the window, and says so), t = 0
+    at the input's largest excursion from that mean (:func:`_excursion_window`).
     Channels are counted from 0, as in twinpass's messages; samples are the file's, inclusive.
 
     Files whose input can no longer be read (removed from the archive since, or unreadable
@@ -91,17 +111,14 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
         src = cfg.archive_root / attrs["source"]
         try:
             with open_recording(str(src)) as rec:
-                x = rec.read(int(span[0]), int(span[1]))[:, ch]
-                i = int(span[0]) + int(np.argmax(np.abs(x - np.median(x))))
-                half = int(OVERLAY_SECONDS * fs / 2)
-                a, z = max(0, i - half), min(rec.info.frames, i + half)
-                before = rec.read(a, z)[:, ch]
+                a, z, i, before = _excursion_window(rec, int(span[0]), int(span[1]), ch,
+                                                    int(OVERLAY_SECONDS * fs / 2))
         except (TwinpassError, OSError):
             continue
         after = store.read(name, a, z)[:, ch].astype(np.float64)
         t = (np.arange(a, z) - i) / fs
         return {"file": f"{attrs['source']} (channel {ch}, counted from 0; samples {a}-{z - 1}; t = 0 at the "
-                        "input's largest excursion)",
+                        "input's largest excursion from its mean over the window shown)",
                 "t": t, "before": np.asarray(before, dtype=np.float64), "after": after}
     return None
 
@@ -183,22 +200,6 @@ class OutputDesign:
                 "designing from it again gives exactly the recorded coefficients).")
 
 
-def _recorded_spec(root: Mapping[str, Any]) -> ResponseSpec | None:
-    """The response spec of the store's last run (root ``spec.response``), None if unusable."""
-    doc = (root.get("spec") or {}).get("response") if isinstance(root.get("spec"), Mapping) else None
-    return _parse_spec(doc)
-
-
-def _parse_spec(doc: Any) -> ResponseSpec | None:
-    """A recorded response spec (``ResponseSpec.to_dict()``), None if absent or unusable."""
-    if not isinstance(doc, Mapping):
-        return None
-    try:
-        return parse_response(doc, "the store's recorded specification")
-    except TwinpassError:
-        return None
-
-
 def _recorded_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | None) -> tuple[Design, bool]:
     """The design an output was filtered with, from its ``filter`` attribute; (design, spec known?).
 
@@ -209,13 +210,7 @@ def _recorded_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | No
     recorded tolerance gives exactly the recorded coefficients: then it is the spec these
     outputs were designed from. Otherwise the design is drawn without a mask.
     """
-    sos = np.asarray(filt["sos"], dtype=np.float64) if filt.get("sos") is not None else None
-    taps = np.asarray(filt["taps"], dtype=np.float64) if sos is None else None
-    recorded = Design(spec=ResponseSpec(kind=cast(Any, UNRECORDED_KIND), family=cast(Any, str(filt.get("family"))),
-                                        order=int(filt.get("order", 0))),
-                      family=str(filt.get("family")), sample_rate_hz=float(fs), order=int(filt.get("order", 0)),
-                      sos=sos, taps=taps, effective_length=int(filt["effective_length_samples"]),
-                      tolerance=float(filt["tolerance"]))
+    recorded = stored_design(fs, filt)
     if spec is not None:
         try:
             again = design_filter(spec, fs, recorded.tolerance)
@@ -242,7 +237,7 @@ def output_designs(cfg: JobConfig, store: Any,
     Outputs with no recorded design (older stores) fall back to the configuration's design
     as it is now, marked as such (and named in a notice).
     """
-    spec = _recorded_spec(store.read_root_info())
+    spec = root_spec(store.read_root_info())
     by_digest: dict[tuple[float, str | None], list[str]] = {}
     filters: dict[tuple[float, str | None], Mapping[str, Any]] = {}
     complete = {str(f["source"]) for f in files if f.get("complete")}
@@ -250,8 +245,7 @@ def output_designs(cfg: JobConfig, store: Any,
         attrs = store.array_attrs(f["name"])
         fs = float(attrs["sample_rate_hz"])
         filt = attrs.get("filter")
-        usable = (isinstance(filt, Mapping) and ("sos" in filt or "taps" in filt)
-                  and "tolerance" in filt and "effective_length_samples" in filt)
+        usable = usable_filter(filt)
         key = (fs, str(attrs.get("design_digest")) if usable else None)
         by_digest.setdefault(key, []).append(str(f["source"]))
         if usable:
@@ -279,7 +273,7 @@ def output_designs(cfg: JobConfig, store: Any,
             out[(fs, same)].sources += sources
             out[(fs, same)].complete += len(complete.intersection(sources))
             continue
-        own = _parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
+        own = parse_spec(filt.get("response")) or spec  # recorded with the output itself, else the last run's
         design, known = _recorded_design(fs, filt, own)
         out[(fs, same)] = OutputDesign(design, list(sources), own.to_dict() if known and own else None,
                                        complete=len(complete.intersection(sources)))
@@ -416,9 +410,11 @@ def provenance(store: Any, names: Sequence[str]) -> list[tuple[str, str]]:
 def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
     """Render the HTML report of ``cfg``'s store; returns the written path."""
     store: Any = _ReadOnce(OutputStore.open(cfg.store_location, mode="r"))
-    status = collect_status(store)
+    status = collect_status(store, cfg.checks)
     used, unrecorded = output_designs(cfg, store, status["files"])
     designs = [d.design for d in used]
+    checks, checks_from = run_checks(store.read_root_info(), cfg.checks)
+    limits = [design_limits(d.design, checks) for d in used]
     files, blocks = [], []
     for f in status["files"]:
         files.append({"file": f["source"], "stream": f["stream"], "blocks_done": f["blocks_done"],
@@ -446,4 +442,5 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
         overlays=[overlay] if overlay else [], title=f"twinpass report: {Path(cfg.source).name}",
         cautions=list(DEFAULT_CAUTIONS), notices=design_notices(cfg, used) + unrecorded, design_notes=[d.note() for d in used],
         listed=attention_lists(status), provenance=provenance(store, [f["name"] for f in status["files"]]),
+        limits=limits, limits_from=checks_from,
     )

@@ -10,11 +10,17 @@ from pathlib import Path
 from collections.abc import Mapping
 from typing import Any
 
-from .config import load_config
+import dataclasses
+from typing import cast
+
+import numpy as np
+
+from .config import ChecksConfig, load_config, parse_response
 from .core import checks as _checks
+from .core.types import UNRECORDED_KIND, Design, ResponseSpec
 from .core.blocks import block_list
 from .core.failures import SHOWN
-from .errors import StoreError
+from .errors import StoreError, TwinpassError
 from .io.store_input import gone_since
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
@@ -54,8 +60,104 @@ def _worst(summary: dict[str, Any], key: str) -> Any:
     return None if v is None or (isinstance(v, float) and math.isnan(v)) else v
 
 
-def collect_status(store: OutputStore) -> dict[str, Any]:
-    """A JSON-ready status: {store, files: [...], totals: {...}}."""
+def parse_spec(doc: Any) -> ResponseSpec | None:
+    """A recorded response spec (``ResponseSpec.to_dict()``), None if absent or unusable."""
+    if not isinstance(doc, Mapping):
+        return None
+    try:
+        return parse_response(doc, "the store's recorded specification")
+    except TwinpassError:
+        return None
+
+
+def root_spec(root: Mapping[str, Any]) -> ResponseSpec | None:
+    """The response spec of the store's last run (root ``spec.response``), None if unusable."""
+    doc = (root.get("spec") or {}).get("response") if isinstance(root.get("spec"), Mapping) else None
+    return parse_spec(doc)
+
+
+def stored_design(fs: float, filt: Mapping[str, Any], spec: ResponseSpec | None = None) -> Design:
+    """The design an output's ``filter`` attribute records (coefficients, tolerance, effective
+    length), with ``spec`` for its response spec (None: one of kind :data:`UNRECORDED_KIND`)."""
+    sos = np.asarray(filt["sos"], dtype=np.float64) if filt.get("sos") is not None else None
+    taps = np.asarray(filt["taps"], dtype=np.float64) if sos is None else None
+    order = int(filt.get("order", 0))
+    unknown = ResponseSpec(kind=cast(Any, UNRECORDED_KIND), family=cast(Any, str(filt.get("family"))), order=order)
+    return Design(spec=spec or unknown, family=str(filt.get("family")), sample_rate_hz=float(fs), order=order,
+                  sos=sos, taps=taps, effective_length=int(filt["effective_length_samples"]),
+                  tolerance=float(filt["tolerance"]))
+
+
+def usable_filter(filt: Any) -> bool:
+    """Whether an output's ``filter`` attribute records a design (coefficients, tolerance, length)."""
+    return (isinstance(filt, Mapping) and ("sos" in filt or "taps" in filt)
+            and "tolerance" in filt and "effective_length_samples" in filt)
+
+
+def run_checks(root: Mapping[str, Any], configured: ChecksConfig | None = None) -> tuple[ChecksConfig, str]:
+    """The ``[checks]`` settings blocks were graded with, and where they come from: those the
+    store's last run recorded (root ``spec.checks``), else ``configured`` (the configuration
+    as it is now), else the defaults."""
+    doc = (root.get("spec") or {}).get("checks") if isinstance(root.get("spec"), Mapping) else None
+    if isinstance(doc, Mapping):
+        names = {f.name for f in dataclasses.fields(ChecksConfig)}
+        try:
+            return ChecksConfig(**{k: v for k, v in doc.items() if k in names}), "the [checks] settings the store's last run recorded"
+        except TypeError:
+            pass
+    if configured is not None:
+        return configured, "the configuration's [checks] (the store recorded none)"
+    return ChecksConfig(), "the default [checks] (the store recorded none; give the configuration for its own)"
+
+
+def design_limits(design: Design, checks: ChecksConfig) -> list[dict[str, Any]] | None:
+    """The limits a design's blocks are graded against (:func:`twinpass.core.checks.grading_limits`,
+    JSON-ready, one dict per rule); None when the design's response spec is not known."""
+    if design.spec.kind == UNRECORDED_KIND:
+        return None
+    return [lim.to_dict() for lim in _checks.grading_limits(design, checks, design.tolerance).values()]
+
+
+def _limits(store: OutputStore, files: list[dict[str, Any]], root: Mapping[str, Any],
+            configured: ChecksConfig | None) -> dict[str, Any]:
+    """``limits`` of :func:`collect_status`: per distinct recorded design (sample rate and
+    design digest), the outputs it served and its limits."""
+    checks, source = run_checks(root, configured)
+    last = root_spec(root)
+    designs: dict[tuple[float, str], dict[str, Any]] = {}
+    for f in files:
+        attrs = store.array_attrs(f["name"])
+        filt = attrs.get("filter")
+        if not usable_filter(filt):
+            continue
+        fs = float(attrs["sample_rate_hz"])
+        key = (fs, str(attrs.get("design_digest")))
+        if key not in designs:
+            spec = parse_spec(filt.get("response")) or last
+            limits = design_limits(stored_design(fs, filt, spec), checks)
+            designs[key] = {"sample_rate_hz": fs, "design_digest": key[1], "outputs": 0, "limits": limits,
+                            "note": None if limits is not None else
+                            "the response spec these outputs were designed from was not recorded"}
+        designs[key]["outputs"] += 1
+    return {"checks_from": source, "explained": _checks.LIMITS_EXPLAINED,
+            "designs": sorted(designs.values(), key=lambda d: (d["sample_rate_hz"], d["design_digest"]))}
+
+
+def limits_line(entry: Mapping[str, Any]) -> str:
+    """One design's limits in a line: ``"limits at 500 Hz: passband deviation warn beyond ±0.8 dB, ..."``."""
+    rules = entry.get("limits")
+    head = f"limits at {float(entry['sample_rate_hz']):g} Hz ({entry['outputs']} output(s))"
+    if not rules:
+        return f"{head}: not known ({entry.get('note')})"
+    shown = [r for r in rules if r["figure"] in ("passband_dev_db", "phase_deg", "stopband_att_db", "seam_mismatch")]
+    return f"{head}: " + "; ".join(f"{r['label']} {r['rule']}" for r in shown)
+
+
+def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> dict[str, Any]:
+    """A JSON-ready status: {store, files: [...], totals: {...}, limits: {...}, ...}.
+
+    ``limits``: the limits blocks are graded against, per recorded design (``checks`` is the
+    configuration's ``[checks]``, used where the store recorded none)."""
     files = []
     for name in store.list_arrays():
         attrs = store.array_attrs(name)
@@ -119,7 +221,7 @@ def collect_status(store: OutputStore) -> dict[str, Any]:
             "lock": store.lock_holder(),
             "runs_total": int(root.get("runs_total", len(runs))),
             "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs,
-            "failed_blocks": failed_blocks}
+            "failed_blocks": failed_blocks, "limits": _limits(store, files, root, checks)}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -185,6 +287,12 @@ def format_status(status: dict[str, Any]) -> str:
         lines.append(f"runs recorded: {status.get('runs_total', 1)}; last {last.get('run_id')} "
                      f"{last.get('start')} to {last.get('end') or '-'}{stopped}: "
                      + ", ".join(f"{k} {v}" for k, v in counts.items()))
+    limits = status.get("limits") or {}
+    for entry in limits.get("designs") or []:
+        lines.append(limits_line(entry))
+    if limits.get("designs"):
+        lines.append(f"  (from {limits.get('checks_from')}; twinpass status --json and the report give every limit "
+                     "and why a figure short of the spec can pass)")
     held = lock_line(status.get("lock"))
     if held:
         lines.append(held)

@@ -49,6 +49,7 @@ from twinpass.core.kernel import extend, unit_steady_state
 from twinpass.errors import KernelError
 
 __all__ = [
+    "seam_before",
     "steady_state",
     "zero_state_pass",
     "transition_matrix",
@@ -56,6 +57,21 @@ __all__ = [
     "filter_with_state",
     "carry_filtfilt",
 ]
+
+
+def seam_before(previous_core_samples: int | None, seam_samples: int) -> int:
+    """Samples a carry-mode block reads before its core for the seam check: the
+    ``seam_samples`` outputs before its start (its previous block's last ones), at most that
+    block's length; 0 for the segment's first block (``previous_core_samples`` None).
+
+    Parameters
+    ----------
+    previous_core_samples : int or None
+        Core length (samples) of the block just before in the segment; None when there is none.
+    seam_samples : int
+        ``[checks] seam_samples``.
+    """
+    return 0 if previous_core_samples is None else min(int(seam_samples), int(previous_core_samples))
 
 
 def _as_2d(x: np.ndarray) -> np.ndarray:

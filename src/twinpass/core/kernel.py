@@ -28,6 +28,7 @@ __all__ = [
     "extend",
     "filtfilt_window",
     "block_window",
+    "block_reach",
     "resolve_edge_samples",
     "autocorrelation",
     "unit_steady_state",
@@ -208,6 +209,37 @@ def block_window(
 
 _AUTOCORRELATION_CACHE_MAX_TAPS = 1 << 16
 """Longer responses (e.g. long IIR impulse responses for plots) are not cached."""
+
+
+def block_reach(start: int, stop: int, segment_frames: int, halo: int, seam_samples: int,
+                edge_samples: int) -> tuple[int, int, int, int, bool, bool]:
+    """Samples a block computes and reads, in segment samples.
+
+    Parameters
+    ----------
+    start, stop : int
+        The block core [start, stop).
+    segment_frames : int
+        Samples in the segment.
+    halo : int
+        Halo per side (samples).
+    seam_samples : int
+        Outputs computed beyond each core edge for the seam check.
+    edge_samples : int
+        Resolved end-extension length (samples).
+
+    Returns
+    -------
+    xs, xe : int
+        Outputs computed: the core plus up to ``seam_samples`` on each side.
+    ws, we : int
+        Input window read (see :func:`block_window`).
+    at_start, at_end : bool
+        The window touches the segment's first / last sample.
+    """
+    xs, xe = max(0, start - seam_samples), min(segment_frames, stop + seam_samples)
+    ws, we, at_start, at_end = block_window(xs, xe, segment_frames, halo, edge_samples)
+    return xs, xe, ws, we, at_start, at_end
 
 
 def _autocorrelation_of(h: np.ndarray) -> np.ndarray:

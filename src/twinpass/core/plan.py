@@ -65,6 +65,7 @@ __all__ = [
     "STATUSES",
     "FilePlan",
     "Plan",
+    "SegmentReads",
     "Redo",
     "changed_spans",
     "fingerprint_changed",
@@ -258,6 +259,47 @@ class FilePlan:
 
 
 @dataclass(frozen=True)
+class SegmentReads:
+    """How the engine runs a segment's blocks, for the plan's estimate of what they read.
+
+    The engine decides it (``twinpass.engine.segment_reads``) and passes it in; nothing here
+    reads files or stores.
+    """
+
+    mode: str
+    """``"halo"`` (each block reads its core, a halo on each side and the seam samples,
+    clipped at the segment's ends) or ``"carry"`` (filter states carried: each block reads
+    its core and the seam samples before it, no halo)."""
+    halo: int
+    """Halo per side (samples); 0 in carry mode."""
+    seam_samples: int
+    """``[checks] seam_samples``."""
+    edge_samples: int
+    """Resolved end-extension length (samples): a halo window touching a segment end is
+    widened to hold that many samples and one more."""
+    spans: Mapping[str, Sequence[Span]]
+    """Block cores ``[start, stop)`` in file frames, per file (relative path), every file of
+    the segment."""
+
+    def window(self, start: int, stop: int, segment_frames: int, previous_core: int | None) -> int:
+        """Samples per channel the block with core ``[start, stop)`` (segment samples) reads.
+
+        ``previous_core`` is the core length of the segment's block before it (None for the
+        first). Halo mode: :func:`~twinpass.core.kernel.block_reach`'s window; carry mode: the
+        core plus :func:`~twinpass.core.carry.seam_before`.
+        """
+        if self.mode == "carry":
+            from .carry import seam_before  # imported here: carry imports the kernel
+
+            return (stop - start) + seam_before(previous_core, self.seam_samples)
+        from .kernel import block_reach
+
+        _, _, ws, we, _, _ = block_reach(start, stop, segment_frames, self.halo, self.seam_samples,
+                                         self.edge_samples)
+        return we - ws
+
+
+@dataclass(frozen=True)
 class Plan:
     """The result of :func:`make_plan`."""
 
@@ -298,8 +340,15 @@ class Plan:
         """A JSON-ready list of every file: path, stream, segment, status, reason, redo, ..."""
         return [fp.to_dict() for fp in self.all_files()]
 
-    def totals(self) -> dict[str, Any]:
+    def totals(self, reads: Mapping[str, SegmentReads] | None = None) -> dict[str, Any]:
         """Counts and work estimates.
+
+        Parameters
+        ----------
+        reads : mapping, optional
+            How the engine runs each segment (by segment id), see :class:`SegmentReads`.
+            Segments it does not name are estimated from their halo alone (as if in halo
+            mode, one window per run of samples to compute).
 
         Returns
         -------
@@ -307,10 +356,15 @@ class Plan:
             ``files``: files per status (every status, zeros included); ``segments`` and
             ``segments_with_work``; ``samples``: samples per channel to compute (whole
             files for resumed ones, so an upper bound); ``resumed``: how many files resume
-            (redone whole but for their done blocks); ``block_work_samples``: the same
-            plus a halo on each side of every run of consecutive samples to compute in a
-            segment (file joins inside a segment do not break a run); an estimate of what
-            the blocks read, in samples per channel.
+            (redone whole but for their done blocks); ``block_work_samples``: an estimate
+            of what the blocks to run read, in samples per channel: for a segment in
+            ``reads``, the sum of the windows of its blocks whose cores hold samples to
+            compute (:meth:`SegmentReads.window`; every block of a resumed file, so an
+            upper bound); for another, each run of consecutive samples to compute (file
+            joins inside a segment do not break a run) with a halo on each side, clipped at
+            the segment's ends; ``carry_segments``: segments with work that ``reads`` runs
+            in carry mode (they also pass over their whole segment twice to carry the
+            filter states, which ``block_work_samples`` does not count).
         """
         counts = {s: 0 for s in STATUSES}
         for fp in self.all_files():
@@ -326,10 +380,17 @@ class Plan:
             off = seg.offsets[seg.index_of(fp.relpath)]
             spans = ((0, fp.frames),) if fp.redo == "all" else fp.redo
             per_segment[seg.id].extend((off + a, off + b) for a, b in spans)  # type: ignore[union-attr]
-        for sid, spans in per_segment.items():
-            halo = int(self.halos.get(by_id[sid].sample_rate_hz, 0))
-            for a, b in _merge(spans):
-                work += (b - a) + 2 * halo
+        carry = 0
+        for sid in per_segment:
+            seg = by_id[sid]
+            how = (reads or {}).get(sid)
+            if how is not None:
+                work += self._block_reads(seg, how)
+                carry += how.mode == "carry"
+                continue
+            halo = int(self.halos.get(seg.sample_rate_hz, 0))
+            for a, b in _merge(per_segment[sid]):
+                work += min(seg.frames, b + halo) - max(0, a - halo)
         return {
             "files": counts,
             "segments": len(self.segments),
@@ -337,7 +398,27 @@ class Plan:
             "samples": int(samples),
             "resumed": sum(1 for fp in self.files if fp.redo == "all" and fp.resume),
             "block_work_samples": int(work),
+            "carry_segments": carry,
         }
+
+    def _block_reads(self, seg: Segment, how: SegmentReads) -> int:
+        """Samples per channel the blocks to run of ``seg`` read (see :meth:`totals`)."""
+        from .blocks import blocks_touching
+
+        plans = {fp.relpath: fp for fp in self.for_segment(seg.id)}
+        total = 0
+        previous: int | None = None
+        for f, off in zip(seg.files, seg.offsets):
+            spans = list(how.spans.get(f.relpath, ()))
+            fp = plans.get(f.relpath)
+            redo = None if fp is None else fp.redo
+            todo = (set(range(len(spans))) if redo == "all"
+                    else set(blocks_touching(spans, redo)) if isinstance(redo, tuple) else set())
+            for i, (a, b) in enumerate(spans):
+                if i in todo:
+                    total += how.window(off + a, off + b, seg.frames, previous)
+                previous = b - a
+        return total
 
 
 # -- planning ----------------------------------------------------------------
@@ -755,8 +836,9 @@ def _redo_text(fp: FilePlan) -> str:
     return " ".join(spans)
 
 
-def format_plan(plan: Plan) -> str:
-    """The plan as a plain-text table (one row per file) followed by totals and notes."""
+def format_plan(plan: Plan, reads: Mapping[str, SegmentReads] | None = None) -> str:
+    """The plan as a plain-text table (one row per file) followed by totals and notes
+    (``reads``: see :meth:`Plan.totals`)."""
     header = ("STATUS", "STREAM", "FILE", "REDO (samples)", "REASON")
     rows = []
     for fp in plan.all_files():
@@ -765,7 +847,7 @@ def format_plan(plan: Plan) -> str:
     lines = []
     for r in [header, *rows]:
         lines.append("  ".join(c.ljust(w) for c, w in zip(r[:4], widths)) + "  " + r[4])
-    t = plan.totals()
+    t = plan.totals(reads)
     counts = ", ".join(f"{s} {n}" for s, n in t["files"].items() if n)
     lines.append("")
     lines.append(f"files: {counts or 'none'}")
@@ -774,8 +856,11 @@ def format_plan(plan: Plan) -> str:
                if t["resumed"] else "")
     lines.append(
         f"samples to compute: {t['samples']:,} per channel{at_most}; "
-        f"estimated block work including halos: {t['block_work_samples']:,}"
+        f"estimated block work (samples the blocks read, halos included): {t['block_work_samples']:,}"
     )
+    if t["carry_segments"]:
+        lines.append(f"{t['carry_segments']} segment(s) run in carry mode (no halos); each also passes over its "
+                     "whole segment twice to carry the filter states, not counted above")
     for note in plan.notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)

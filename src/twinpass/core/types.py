@@ -131,6 +131,11 @@ class Design:
         return hashlib.sha256(blob).hexdigest()
 
 
+UNRECORDED_KIND = "unrecorded"
+"""``ResponseSpec.kind`` of a design rebuilt from an output's recorded coefficients whose
+response spec is not known: the report draws it without a spec mask and shows no response
+limits for it."""
+
 RESETTING_DIGEST = "resetting"
 """Design digest an output carries while it is being written anew, until its block table is
 reset (:mod:`twinpass.engine`, module notes): no design has it, so a rewrite cut short is
