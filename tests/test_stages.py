@@ -315,13 +315,15 @@ def _start_of(rel: str) -> dt.datetime:
     return dt.datetime.strptime(stamp, "%Y%m%dT%H%M%S").replace(tzinfo=dt.timezone.utc)
 
 
-def _streams_now(archive: Path) -> list[list[str]]:
+def _streams_now(archive: Path, left_out: tuple[str, ...] = ()) -> list[list[str]]:
     """The archive's segments as they are now, found here independently of twinpass: per stream
-    folder, the files in time order, a new segment wherever a file does not start where the
-    one before it ends (every file holds FILE_FRAMES samples at FS); array names."""
+    folder, the files in time order (but those ``left_out``, array names), a new segment
+    wherever a file does not start where the one before it ends (every file holds FILE_FRAMES
+    samples at FS); array names."""
     out = []
     for folder in sorted(p for p in archive.iterdir() if p.is_dir()):
-        rels = sorted((p.relative_to(archive).as_posix() for p in folder.glob("*.npy")), key=_start_of)
+        rels = sorted((p.relative_to(archive).as_posix() for p in folder.glob("*.npy")
+                       if p.relative_to(archive).as_posix()[:-len(".npy")] not in left_out), key=_start_of)
         run: list[str] = []
         for rel in rels:
             if run and _start_of(rel) != _start_of(run[-1] + ".npy") + dt.timedelta(seconds=FILE_FRAMES / FS):
@@ -332,12 +334,13 @@ def _streams_now(archive: Path) -> list[list[str]]:
     return out
 
 
-def _check_cascade_now(folder: Path) -> None:
-    """Every present input's stage-2 output equals scipy.signal.sosfiltfilt by stage 2's filter
-    of scipy.signal.sosfiltfilt by stage 1's filter of its whole segment as the archive now
-    holds it (filters and end extensions as the stores' ``filter`` attributes record them)."""
+def _check_cascade_now(folder: Path, left_out: tuple[str, ...] = ()) -> None:
+    """Every present input's stage-2 output (but those ``left_out``) equals scipy.signal.sosfiltfilt
+    by stage 2's filter of scipy.signal.sosfiltfilt by stage 1's filter of its whole segment as
+    the archive now holds it (filters and end extensions as the stores' ``filter`` attributes
+    record them)."""
     one, two = (zarr.open_group(str(folder / s), mode="r") for s in ("band.zarr", "notch.zarr"))
-    for arrays in _streams_now(folder / "archive"):
+    for arrays in _streams_now(folder / "archive", left_out):
         x = np.concatenate([np.load(folder / "archive" / f"{a}.npy") for a in arrays])
         second = two[arrays[0]].attrs["filter"]
         ref = _two_pass(second, _two_pass(one[arrays[0]].attrs["filter"], x))
@@ -384,6 +387,33 @@ def test_a_first_stage_input_gone_is_marked_and_left_out_of_the_second_stage(wor
     assert sum(mid in n and "input_gone" in n for n in two.notes) == 1
     assert _gone(folder / "notch.zarr", mid) is not None  # stage 2's own output of it: kept, marked
     _check_cascade_now(folder)
+
+
+def test_a_first_stage_input_left_out_as_damaged_is_marked_until_it_is_repaired(work):
+    # The middle file damaged since stage 1 filtered it (not a NumPy file any more): stage 1
+    # leaves it out (exit status 3) and refilters its neighbours as segment ends, keeping its
+    # old output, which it marks as it marks the outputs of inputs gone; stage 2 leaves the
+    # marked array out, so it does not join samples stage 1 no longer places in any stream.
+    # Repaired, both stages read it again. Reference: the whole-stream cascade (module notes).
+    folder, names = work
+    _run(_stage2(folder))
+    mid = names["s1"][1]
+    src = folder / "archive" / f"{mid}.npy"
+    good = src.read_bytes()
+    src.write_bytes(b"not a numpy file")
+    one = run_job(load_config(_stage1(folder)), scheduler="threads", workers=2)
+    assert [b.relpath for b in one.invalid] == [f"{mid}.npy"] and one.exit_status() == 3
+    gone = _gone(folder / "band.zarr", mid)
+    assert gone is not None and "left out of this run" in gone["reason"], gone
+    two = run_job(load_config(_stage2(folder)), scheduler="threads", workers=2)
+    assert two.invalid == [] and not two.failed and [r.relpath for r in two.removed] == [mid]
+    _check_cascade_now(folder, left_out=(mid,))
+    src.write_bytes(good)
+    _run(_stage1(folder))
+    assert _gone(folder / "band.zarr", mid) is None
+    _run(_stage2(folder))
+    assert _gone(folder / "notch.zarr", mid) is None
+    _check_cascade(folder, names)
 
 
 def test_a_first_stage_input_back_unchanged_is_unmarked_and_joined_again(work):

@@ -350,7 +350,8 @@ def _same_content_now(rec: FileRecord, prep: Prepared) -> str | None:
 
 
 def mark_inputs_gone(store: OutputStore, prep: Prepared) -> None:
-    """Mark the outputs of inputs no longer in the archive, and unmark those whose input is back.
+    """Mark the outputs of inputs no longer in the archive or left out of this run (invalid),
+    and unmark those whose input is back.
 
     An output of a removed input (:attr:`~twinpass.core.plan.Plan.removed`: deleted, renamed,
     moved to another stream, or left out by ``[archive] exclude``) keeps its samples, but they
@@ -370,6 +371,14 @@ def mark_inputs_gone(store: OutputStore, prep: Prepared) -> None:
         twin = _same_content_now(rec, prep)
         if twin is not None:
             why += f"; the input {twin}, with the same content, is filtered as a new file"
+        store.update_attrs(rec.array_name, **{INPUT_GONE: {"since": now_iso(), "run_id": store.lock_run_id or None,
+                                                           "reason": why}})
+    for fp in prep.plan.invalid:  # left out of this run: its neighbours are refiltered as segment ends too
+        rec = fp.record
+        if rec is None or rec.array_name is None or rec.gone_since is not None:
+            continue
+        why = (f"its input {fp.relpath} is left out of this run ({fp.reason}); the samples are kept as they were "
+               "filtered before, but no stream of the archive holds them now")
         store.update_attrs(rec.array_name, **{INPUT_GONE: {"since": now_iso(), "run_id": store.lock_run_id or None,
                                                            "reason": why}})
     for fp in prep.plan.files:
