@@ -57,7 +57,7 @@ from zarr.storage import FsspecStore, LocalStore, MemoryStore, StorePath
 from ..core.types import FileRecord
 from ..errors import RunStoppedError, StoreError, UnsafePathError
 from . import store_lock
-from .store_input import absent_chunk_frames, gone_since
+from .store_input import absent_chunk_spans, gone_since
 from .store_lock import LockInfo
 from .store_util import (
     RESERVED_PREFIX,
@@ -1623,7 +1623,8 @@ class OutputStore:
         # fill value without a word. One stat per chunk.
         if self.local_root is None or len(arr.shape) != 2 or arr.chunks[1] != arr.shape[1]:
             return ()
-        return tuple(absent_chunk_frames(self.local_root / name))
+        return tuple(absent_chunk_spans(self.local_root / name, int(arr.shape[0]), int(arr.chunks[0]),
+                                        lambda i: arr.metadata.encode_chunk_key((i, 0))))
 
     def clear_unwritten(self, name: str) -> list[tuple[int, int]]:
         """Delete the data chunks of the blocks of ``name`` that are pending or in error, so

@@ -20,12 +20,12 @@ from __future__ import annotations
 import json
 import os
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Callable, Mapping
 
 from .store_util import RESERVED_PREFIX
 
-__all__ = ["INPUT_GONE", "STORE_ATTRIBUTE", "absent_chunk_frames", "array_attributes", "gone_since",
-           "is_output_store", "output_arrays"]
+__all__ = ["INPUT_GONE", "STORE_ATTRIBUTE", "absent_chunk_frames", "absent_chunk_spans", "array_attributes",
+           "gone_since", "is_output_store", "output_arrays"]
 
 STORE_ATTRIBUTE = "twinpass"
 """Attribute of an output store's root group that marks it as written by twinpass."""
@@ -111,11 +111,19 @@ def absent_chunk_frames(folder: Path | str) -> list[tuple[int, int]]:
         return []
     if across != channels or rows <= 0 or name not in ("default", "v2"):
         return []
+    return absent_chunk_spans(folder, frames, rows,
+                              lambda i: f"c{sep}{i}{sep}0" if name == "default" else f"{i}{sep}0")
+
+
+def absent_chunk_spans(folder: Path | str, frames: int, rows: int,
+                       key_of: Callable[[int], str]) -> list[tuple[int, int]]:
+    """Frame spans ``[start, stop)`` of an array in ``folder`` (``frames`` samples in chunks of
+    ``rows``) whose chunk file, ``key_of(chunk index)`` relative to ``folder``, is missing or
+    empty, neighbouring chunks merged. One ``stat`` per chunk."""
     spans: list[tuple[int, int]] = []
     for i in range(-(-frames // rows)):
-        key = f"c{sep}{i}{sep}0" if name == "default" else f"{i}{sep}0"
         try:
-            present = os.stat(os.path.join(folder, *key.split("/"))).st_size > 0
+            present = os.stat(os.path.join(folder, *key_of(i).split("/"))).st_size > 0
         except OSError:
             present = False
         if not present:
