@@ -197,8 +197,10 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
     runs = root.get("runs", [])
     details = store.read_run_details(str(runs[-1].get("run_id"))) if runs else {}
     left_out = {str(k): str(v) for k, v in (details.get("left_out") or {}).items()}
-    # the last run's list, and every output marked input_gone (by that run or an earlier one)
-    gone = {str(r) for r in details.get("gone") or []} | {str(f["source"]) for f in files if f["input_gone_since"]}
+    # the last run's list, and every output marked input_gone (by that run or an earlier one),
+    # but for inputs the last run left out (invalid now: listed as such)
+    gone = ({str(r) for r in details.get("gone") or []}
+            | {str(f["source"]) for f in files if f["input_gone_since"]}) - set(left_out)
     notes = [str(n) for n in details.get("notes") or []]
     failed_inputs = {str(k): str(v) for k, v in (details.get("failed") or {}).items()}
     failed_blocks = {str(k): {"blocks": [str(b) for b in v.get("blocks") or []], "remedy": str(v.get("remedy") or "")}
@@ -230,6 +232,13 @@ def _fmt(v: Any, spec: str = ".3g") -> str:
     if isinstance(v, float):
         return format(v, spec)
     return str(v)
+
+
+def _input_note(f: Mapping[str, Any]) -> str:
+    """What the COMPLETE column adds about an output's input: left out by the last run, or gone."""
+    if str(f.get("input") or "").startswith("left out"):
+        return ", input left out"
+    return ", input gone" if f.get("input_gone_since") else ""
 
 
 def _gone_line(source: str, since: Mapping[str, str | None]) -> str:
@@ -264,7 +273,7 @@ def format_status(status: dict[str, Any]) -> str:
             rows.append((f["name"], f"{f['blocks_done']}/{f['blocks']}", str(f["blocks_fail"] + f["blocks_error"]),
                          f["checks"], _fmt(w["passband_dev_db"]), _fmt(w["phase_deg"]), _fmt(w["stopband_att_db"]),
                          _fmt(w["seam_mismatch"], ".1e"), f"{ez[0]}/{ez[1]}",
-                         ("yes" if f["complete"] else "NO") + (", input gone" if f.get("input_gone_since") else "")))
+                         ("yes" if f["complete"] else "NO") + _input_note(f)))
     table = [header] + [r for r in rows if isinstance(r, tuple)]
     widths = [max(len(r[i]) for r in table) for i in range(len(header))]
 
