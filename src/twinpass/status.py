@@ -5,13 +5,11 @@ Reads only; safe to run while a job is writing (figures may lag the data).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 from collections.abc import Mapping
-from typing import Any
-
-import dataclasses
-from typing import cast
+from typing import Any, cast
 
 import numpy as np
 
@@ -102,7 +100,8 @@ def run_checks(root: Mapping[str, Any], configured: ChecksConfig | None = None) 
     if isinstance(doc, Mapping):
         names = {f.name for f in dataclasses.fields(ChecksConfig)}
         try:
-            return ChecksConfig(**{k: v for k, v in doc.items() if k in names}), "the [checks] settings the store's last run recorded"
+            recorded = ChecksConfig(**{k: v for k, v in doc.items() if k in names})
+            return recorded, "the [checks] settings the store's last run recorded"
         except TypeError:
             pass
     if configured is not None:
@@ -118,15 +117,15 @@ def design_limits(design: Design, checks: ChecksConfig) -> list[dict[str, Any]] 
     return [lim.to_dict() for lim in _checks.grading_limits(design, checks, design.tolerance).values()]
 
 
-def _limits(store: OutputStore, files: list[dict[str, Any]], root: Mapping[str, Any],
+def _limits(outputs: list[Mapping[str, Any]], root: Mapping[str, Any],
             configured: ChecksConfig | None) -> dict[str, Any]:
     """``limits`` of :func:`collect_status`: per distinct recorded design (sample rate and
-    design digest), the outputs it served and its limits."""
+    design digest), the outputs it served and its limits; ``outputs`` are the attributes of
+    the outputs listed."""
     checks, source = run_checks(root, configured)
     last = root_spec(root)
     designs: dict[tuple[float, str], dict[str, Any]] = {}
-    for f in files:
-        attrs = store.array_attrs(f["name"])
+    for attrs in outputs:
         filt = attrs.get("filter")
         if not usable_filter(filt):
             continue
@@ -159,10 +158,12 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
     ``limits``: the limits blocks are graded against, per recorded design (``checks`` is the
     configuration's ``[checks]``, used where the store recorded none)."""
     files = []
+    outputs = []  # the attributes of each output listed, for its design's limits
     for name in store.list_arrays():
         attrs = store.array_attrs(name)
         if "source" not in attrs:
             continue
+        outputs.append(attrs)
         try:
             t = store.read_block_table(name, figures=True, seams=False)
             counts = t.counts()
@@ -223,7 +224,7 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
             "lock": store.lock_holder(),
             "runs_total": int(root.get("runs_total", len(runs))),
             "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs,
-            "failed_blocks": failed_blocks, "limits": _limits(store, files, root, checks)}
+            "failed_blocks": failed_blocks, "limits": _limits(outputs, root, checks)}
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
