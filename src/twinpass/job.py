@@ -361,26 +361,25 @@ def mark_inputs_gone(store: OutputStore, prep: Prepared) -> None:
     is in the archive again (to be skipped as unchanged, or refiltered) loses the mark before
     any block runs.
     """
-    for fp in prep.plan.removed:
+    def unmarked(fp: FilePlan) -> bool:
         rec = fp.record
-        if rec is None or rec.array_name is None or rec.gone_since is not None:
-            continue
+        return rec is not None and rec.array_name is not None and rec.gone_since is None
+
+    marks: list[tuple[FilePlan, str]] = []
+    for fp in filter(unmarked, prep.plan.removed):
         why = (f"its input {fp.relpath} is no longer in the archive (deleted, renamed, moved to another stream, "
                "or left out by [archive] exclude); the samples are kept as they were, but no stream of the "
                "archive holds them any more")
-        twin = _same_content_now(rec, prep)
+        twin = _same_content_now(fp.record, prep)  # type: ignore[arg-type]
         if twin is not None:
             why += f"; the input {twin}, with the same content, is filtered as a new file"
-        store.update_attrs(rec.array_name, **{INPUT_GONE: {"since": now_iso(), "run_id": store.lock_run_id or None,
-                                                           "reason": why}})
-    for fp in prep.plan.invalid:  # left out of this run: its neighbours are refiltered as segment ends too
-        rec = fp.record
-        if rec is None or rec.array_name is None or rec.gone_since is not None:
-            continue
-        why = (f"its input {fp.relpath} is left out of this run ({fp.reason}); the samples are kept as they were "
-               "filtered before, but no stream of the archive holds them now")
-        store.update_attrs(rec.array_name, **{INPUT_GONE: {"since": now_iso(), "run_id": store.lock_run_id or None,
-                                                           "reason": why}})
+        marks.append((fp, why))
+    for fp in filter(unmarked, prep.plan.invalid):  # left out of this run: its neighbours are segment ends too
+        marks.append((fp, f"its input {fp.relpath} is left out of this run ({fp.reason}); the samples are kept as "
+                          "they were filtered before, but no stream of the archive holds them now"))
+    for fp, why in marks:
+        store.update_attrs(fp.record.array_name,  # type: ignore[union-attr]
+                           **{INPUT_GONE: {"since": now_iso(), "run_id": store.lock_run_id or None, "reason": why}})
     for fp in prep.plan.files:
         rec = fp.record
         if rec is not None and rec.array_name is not None and rec.gone_since is not None:
