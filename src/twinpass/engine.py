@@ -1420,7 +1420,8 @@ def segment_mode(seg: SegmentWork, design: Design, cfg: JobConfig, *,
         try:
             return "halo", _layout(seg, design, cfg)
         except ConfigError as e:
-            raise ConfigError(f"{str(e).rstrip('.')}. This{HOLES_FORCE_HALOS[4:]}; remedies: {HOLES_REMEDIES}") from None
+            cause = HOLES_FORCE_HALOS[0].upper() + HOLES_FORCE_HALOS[1:]
+            raise ConfigError(f"{str(e).rstrip('.')}. {cause}; remedies: {HOLES_REMEDIES}") from None
     return "halo", _layout(seg, design, cfg)
 
 

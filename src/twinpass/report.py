@@ -6,8 +6,8 @@ styles are inline; the file loads nothing from anywhere and needs no JavaScript.
 Sections: notices (such as a configuration that no longer asks for the design the
 outputs were filtered with), summary, cautions, filter design (per design: what it was
 used for, overall response against the spec mask beside the per-pass response, overall
-zero phase against the per-pass phase, the limits its blocks are graded against, two-pass impulse response with its effective
-length, the design report table), the per-block check map, inputs left out, failed or
+zero phase against the per-pass phase, the limits its blocks are graded against, two-pass
+impulse response with its effective length, the design report table), the per-block check map, inputs left out, failed or
 missing, before/after overlays around the largest transient, and the file table.
 
 Conventions: frequencies in Hz, levels in dB (overall level ``20 log10 |H|^2``), times
@@ -590,8 +590,10 @@ _FILE_COLUMNS: tuple[tuple[str, str], ...] = (
 )
 
 
-_LIMIT_UNITS: dict[str, str] = {"dB": "dB", "deg": "degrees", "relative": "relative to the segment's input peak",
-                                "samples": "samples (count)", "fraction": "fraction of the passband bins with input energy"}
+_LIMIT_UNITS: dict[str, str] = {
+    "dB": "dB", "deg": "degrees", "relative": "relative to the segment's input peak", "samples": "samples (count)",
+    "fraction": "fraction of the passband bins with input energy",
+}
 
 
 def _limits_html(rules: Sequence[Mapping[str, Any]] | None, source: str) -> str:

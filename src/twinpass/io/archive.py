@@ -41,8 +41,9 @@ the earlier job finishes it. An array marked ``input_gone`` (the kept output of 
 earlier job no longer has: deleted, renamed, moved to another stream or excluded there) is no
 recording of that job's archive: it is left out without being reported invalid, with one
 note per store naming such arrays, so this job's plan finds its input gone (its neighbours
-are refiltered as segment ends, and an output made of it earlier is kept and marked alike). The output array keeps the array's path (below the root,
-prefixed with the store's own output name: its path without ``.zarr``). The store is only
+are refiltered as segment ends, and an output made of it earlier is kept and marked alike).
+The output array keeps the array's path (below the root, prefixed with the store's own
+output name: its path without ``.zarr``). The store is only
 read; the output store of this job may not be it (:func:`~twinpass.io.store_util.check_outside_archive`).
 Zarr arrays are fingerprinted row by row of chunks (:mod:`twinpass.io.fingerprint`), so
 after the earlier job reruns, the planner refilters what it rewrote (with a halo), not more.

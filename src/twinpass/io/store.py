@@ -19,9 +19,9 @@ Layout (zarr_format 3)::
       .twinpass-lock                  present while a run writes (local stores)
 
 Array attributes are plain JSON (see :func:`json_safe`); ``complete`` is True only once every
-block is written and has passed. ``input_gone`` (:data:`~twinpass.io.store_input.INPUT_GONE`) marks a
-kept output whose input is no longer in the archive, until the input is back. One process (the driver) writes attributes and block tables;
-block tasks write data regions only, through :func:`write_block_data`, in whole chunks.
+block is written and has passed. ``input_gone`` (:data:`~twinpass.io.store_input.INPUT_GONE`)
+marks a kept output whose input is no longer in the archive, until the input is back. One
+process (the driver) writes attributes and block tables; block tasks write data regions only, through :func:`write_block_data`, in whole chunks.
 """
 
 from __future__ import annotations
