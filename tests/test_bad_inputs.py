@@ -600,7 +600,7 @@ OUT_OF_RANGE = [
     ("checks", "passband_fail_db = -1.0", "passband_fail_db = -1.0", ">= 0"),
     ("checks", "passband_warn_db = -1.0", "passband_warn_db = -1.0", ">= 0"),
     ("checks", "phase_fail_deg = -20.0", "phase_fail_deg = -20.0", ">= 0"),
-    ("checks", "passband_warn_db = 4.0", "passband_warn_db = 4.0", "must not exceed passband_fail_db = 3.0"),
+    ("checks", "passband_warn_db = 4.0", "passband_warn_db = 4.0", "must not exceed passband_fail_db = 1.0"),
     ("checks", "phase_warn_deg = 30.0", "phase_warn_deg = 30.0", "must not exceed phase_fail_deg = 20.0"),
     ("checks", "phase_warn_deg = -5.0", "phase_warn_deg = -5.0", ">= 0"),
     ("checks", "stopband_margin_db = -1.0", "stopband_margin_db = -1.0", ">= 0"),

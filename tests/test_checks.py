@@ -899,7 +899,7 @@ def test_a_block_whose_pieces_are_all_too_short_is_not_examined() -> None:
 
 def test_the_limits_shown_are_the_limits_grading_uses():
     # Reference: the README's configuration reference ([checks] defaults: passband_warn_db 0.5,
-    # passband_fail_db 3.0, phase_warn_deg 5, phase_fail_deg 20, stopband_margin_db 10) and its
+    # passband_fail_db 1.0, phase_warn_deg 5, phase_fail_deg 20, stopband_margin_db 10) and its
     # rule "fails below the spec's stopband_attenuation_db less stopband_margin_db"; the
     # passband allowance ripple / 2 + 0.3 dB is the grade() docstring's. Each limit is then
     # put through grade(): a figure just inside passes (or warns), just outside warns or fails.
@@ -914,7 +914,7 @@ def test_the_limits_shown_are_the_limits_grading_uses():
     assert lim["stopband_att_db"].fail == pytest.approx(60.0 - 10.0)
     assert lim["stopband_att_db"].unit == "dB" and lim["stopband_att_db"].below
     assert lim["passband_dev_db"].warn == pytest.approx(0.25 + 0.3 + 0.5)
-    assert lim["passband_dev_db"].fail == pytest.approx(0.25 + 0.3 + 3.0)
+    assert lim["passband_dev_db"].fail == pytest.approx(0.25 + 0.3 + 1.0)
     assert (lim["phase_deg"].warn, lim["phase_deg"].fail) == (5.0, 20.0)
     assert lim["seam_mismatch"].unit == "relative"
 

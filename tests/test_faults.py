@@ -437,6 +437,30 @@ def test_a_narrow_band_pass_with_a_wrong_response_on_every_block_is_not_complete
     assert status.returncode == 1, status.stdout + status.stderr
 
 
+@pytest.mark.parametrize("db", [-2.0, 2.0])
+def test_a_passband_gain_error_of_two_db_on_every_block_fails_either_way(tmp_path, inject, db):
+    # Every block filtered with the first section's numerator times 10**(db/40): db/2 dB per
+    # pass, db dB overall (definition of the dB), a processing fault as gross as a wrong
+    # calibration. The passband estimate measures it within its 0.3 dB allowance, beyond the
+    # default fail limit (a Butterworth has no ripple: 0.3 + [checks] passband_fail_db 1.0 dB,
+    # the README's configuration reference), too low or too high alike: no file is complete
+    # and `status --require-complete` exits 1.
+    inject([{"action": "perturb", "file": "*", "block": "*", "db": db}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 10.0, "mode": "halo"})
+    res = run_job(cfg)
+    assert sorted(res.failed) == sorted(f"{a}.npy" for a in ARRAYS)
+    g = open_store(cfg.store_location)
+    for name in ARRAYS:
+        table = g[f"_twinpass/blocks/{name}"]
+        columns = list(table["figures"].attrs["columns"])
+        dev = np.asarray(table["figures"][:])[:, :, columns.index("passband_dev_db")]
+        np.testing.assert_allclose(dev, db, atol=0.3)
+    assert all(f"passband deviation {db:+.2g}" in r for r in res.failure_reasons().values())
+    status = conftest.run_cli(["status", str(tmp_path / "run" / "twinpass.toml"), "--require-complete"],
+                              check=False)
+    assert status.returncode == 1, status.stdout + status.stderr
+
+
 def test_fault_rules_are_checked():
     with pytest.raises(ConfigError, match="unknown action 'explode'"):
         faults.parse_rules('[{"action": "explode"}]')
@@ -445,6 +469,14 @@ def test_fault_rules_are_checked():
     with pytest.raises(ConfigError, match="not valid JSON"):
         faults.parse_rules("[{")
     assert faults.parse_rules('[{"action": "sleep", "seconds": 0.1, "block": 2}]')[0].matches("x", 2)
+    with pytest.raises(ConfigError, match="only a \"perturb\" rule takes \"db\""):
+        faults.parse_rules('[{"action": "raise", "db": 3}]')
+    with pytest.raises(ConfigError, match="db = 'loud'"):
+        faults.parse_rules('[{"action": "perturb", "db": "loud"}]')
+    # 10**(db/40) per pass: 20*log10 of its square is db (definition of the dB).
+    assert 40 * np.log10(faults.perturb_factor({"perturb:-2.5"})) == pytest.approx(-2.5)
+    assert faults.perturb_factor({"perturb"}) == pytest.approx(np.sqrt(2.0))
+    assert faults.perturb_factor({"halo0"}) is None
 
 
 def test_a_hold_rule_keeps_its_block_waiting_until_its_file_exists_or_its_seconds_pass(tmp_path, inject):

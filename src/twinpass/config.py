@@ -145,8 +145,10 @@ class ChecksConfig:
     passband_warn_db: float = 0.5
     """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that
     warns; at most ``passband_fail_db``."""
-    passband_fail_db: float = 3.0
-    """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that fails."""
+    passband_fail_db: float = 1.0
+    """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that
+    fails: a correct filter's figures stay within the ripple and estimator allowances, so a
+    gain error of a dB or two in the passband (a processing fault) fails rather than warns."""
     phase_warn_deg: float = 5.0
     """Passband phase magnitude (degrees, >= 0) that warns; at most ``phase_fail_deg``."""
     phase_fail_deg: float = 20.0

@@ -208,12 +208,13 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
     k = job.seam_samples
     halo = 0 if "halo0" in tamper else job.halo
     sos, taps = job.design.sos, job.design.taps
-    if "perturb" in tamper:
+    gain = faults.perturb_factor(tamper)  # per pass: sqrt(2) (+6 dB overall) or the rule's db
+    if gain is not None:
         if sos is not None:
             sos = np.array(sos, dtype=np.float64)
-            sos[0, :3] *= np.sqrt(2.0)  # +3 dB per pass, +6 dB overall
+            sos[0, :3] *= gain
         elif taps is not None:
-            taps = np.asarray(taps, dtype=np.float64) * np.sqrt(2.0)
+            taps = np.asarray(taps, dtype=np.float64) * gain
     if job.holes:  # nonfinite = "split": each piece between holes is filtered as its own signal
         xs, xe = max(0, s - k), min(job.segment_frames, e + k)
         window, y_ext, wlen = filter_with_holes(

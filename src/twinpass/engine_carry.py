@@ -411,9 +411,10 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
         x = window[job.before :]
         u = np.ascontiguousarray(x.T)
         sos = job.sos
-        if "perturb" in tamper:
+        gain = faults.perturb_factor(tamper)  # per pass: sqrt(2) (+6 dB overall) or the rule's db
+        if gain is not None:
             sos = sos.copy()
-            sos[0, :3] *= np.sqrt(2.0)  # +3 dB per pass, +6 dB overall
+            sos[0, :3] *= gain
         start_f = steady_state(sos, u[:, 0]) if "halo0" in tamper else state_f
         y_f = _read_scratch(job.store_location, job.scratch) if job.scratch and not tamper else None
         if y_f is None:

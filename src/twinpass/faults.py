@@ -9,6 +9,7 @@ changed while workers run; a missing or empty file means no rules)::
      {"action": "kill-once", "file": "*", "block": 0},
      {"action": "halo0", "file": "*", "block": 2},
      {"action": "perturb", "file": "*", "block": 2},
+     {"action": "perturb", "file": "*", "block": "*", "db": -2.0},
      {"action": "sleep", "file": "*", "block": "*", "seconds": 0.2},
      {"action": "hold", "file": "*", "block": "*", "path": "/tmp/go", "seconds": 120}]
 
@@ -22,7 +23,7 @@ the block is killed with SIGKILL, as by the kernel's out-of-memory killer or an
 operator), ``halo0`` (the block is filtered with no halo: a wrong result near its edges
 that the seam check must catch), ``perturb`` (the first section's numerator, or the FIR
 taps, times sqrt(2): +3 dB per pass, +6 dB overall, a wrong response the response check
-must catch), ``sleep`` (``seconds`` of delay before the block runs), ``hold`` (the block
+must catch; with ``db``, times ``10 ** (db / 40)``: a gain error of ``db`` dB overall), ``sleep`` (``seconds`` of delay before the block runs), ``hold`` (the block
 waits until a file exists at ``path``, at most ``seconds`` if given: a test lets the blocks
 go on once it has done what it must do while they wait).
 
@@ -37,6 +38,7 @@ import dataclasses
 import fnmatch
 import hashlib
 import json
+import math
 import os
 import signal
 import time
@@ -60,6 +62,7 @@ class FaultRule:
     block: int | str = "*"
     seconds: float = 0.0
     path: str = ""
+    db: float | None = None
 
     def matches(self, name: str, block: int) -> bool:
         return fnmatch.fnmatch(name, self.file) and (self.block == "*" or int(self.block) == block)
@@ -97,6 +100,10 @@ def parse_rules(text: str, where: str = ENV) -> list[FaultRule]:
             raise ConfigError(f"{where}: rule {n} has unknown action {rule.action!r}; use one of {', '.join(ACTIONS)}")
         if rule.block != "*" and not (isinstance(rule.block, int) and not isinstance(rule.block, bool)):
             raise ConfigError(f"{where}: rule {n} block = {rule.block!r}: use a block index or \"*\"")
+        if rule.db is not None and (rule.action != "perturb" or isinstance(rule.db, bool)
+                                    or not isinstance(rule.db, (int, float)) or not math.isfinite(rule.db)):
+            raise ConfigError(f"{where}: rule {n} db = {rule.db!r}: only a \"perturb\" rule takes \"db\", "
+                              "a finite number (the overall gain error, dB)")
         if rule.action == "hold" and not rule.path:
             raise ConfigError(f"{where}: rule {n} (hold) needs a \"path\", the file whose existence lets "
                               "the block go on")
@@ -159,6 +166,18 @@ def _hold(rule: FaultRule, poll_s: float = 0.05) -> None:
         time.sleep(poll_s)
 
 
+def perturb_factor(flags: set[str]) -> float | None:
+    """The factor a ``perturb`` rule among ``flags`` (from :func:`apply`) puts on the first
+    section's numerator (or the FIR taps), once per pass: sqrt(2) (+6.02 dB overall), or
+    ``10 ** (db / 40)`` for a rule with ``db``; None when no such rule fired."""
+    for flag in flags:
+        if flag == "perturb":
+            return math.sqrt(2.0)
+        if flag.startswith("perturb:"):
+            return 10.0 ** (float(flag.split(":", 1)[1]) / 40.0)
+    return None
+
+
 def apply(name: str, block: int) -> set[str]:
     """Fire the rules matching (array ``name``, ``block``); return numeric tamper flags."""
     flags: set[str] = set()
@@ -170,6 +189,8 @@ def apply(name: str, block: int) -> set[str]:
             time.sleep(rule.seconds)
         elif act == "hold":
             _hold(rule)
+        elif act == "perturb" and rule.db is not None:
+            flags.add(f"perturb:{float(rule.db)!r}")
         elif act in ("halo0", "perturb"):
             flags.add(act)
         elif act.endswith("-once") and not _first_time(rule, name, block):

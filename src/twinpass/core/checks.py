@@ -1328,7 +1328,7 @@ class Finding:
         return self.figure in _RESPONSE_FIGURES
 
     def describe(self) -> str:
-        """The finding in words, e.g. ``"passband deviation +6.04 dB on channel 0, limit 3.3 dB
+        """The finding in words, e.g. ``"passband deviation +6.04 dB on channel 0, limit 1.3 dB
         either way"`` (channels counted from 0)."""
         on = f" on channel {self.channel}"
         if self.figure in ("nonfinite_in", "nonfinite_out", "clipped"):
@@ -1371,7 +1371,7 @@ class Limit:
     """How the limit is made, in words (spec, allowances, ``[checks]`` settings)."""
 
     def rule(self) -> str:
-        """The rule in words, e.g. ``"warn beyond ±0.8 dB, fail beyond ±3.3 dB"``."""
+        """The rule in words, e.g. ``"warn beyond ±0.8 dB, fail beyond ±1.3 dB"``."""
         unit = {"samples": "", "fraction": "", "relative": " (relative)"}.get(self.unit, f" {self.unit}")
         sign = "±" if self.either_way else ""
         word = "below" if self.below else "beyond" if self.either_way else "above"
