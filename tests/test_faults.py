@@ -6,6 +6,7 @@ schedulers are real. Whole-signal references come from ``scipy.signal.sosfiltfil
 
 from __future__ import annotations
 
+import re
 import time
 
 import numpy as np
@@ -459,6 +460,29 @@ def test_a_passband_gain_error_of_two_db_on_every_block_fails_either_way(tmp_pat
     status = conftest.run_cli(["status", str(tmp_path / "run" / "twinpass.toml"), "--require-complete"],
                               check=False)
     assert status.returncode == 1, status.stdout + status.stderr
+
+
+def test_blocks_graded_warn_are_named_by_the_run_and_counted_by_status(tmp_path, inject):
+    # A gain error of -1.05 dB overall (10**(-1.05/40) per pass, definition of the dB) lies
+    # between the default warn limit, 0.3 + [checks] passband_warn_db 0.5 = 0.8 dB, and the
+    # fail limit, 0.3 + passband_fail_db 1.0 = 1.3 dB (the README's configuration reference;
+    # a Butterworth has no ripple): every block warns, every file is complete, and the
+    # run's summary, `twinpass status` and `--require-complete` all say so.
+    inject([{"action": "perturb", "file": "*", "block": "*", "db": -1.05}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 10.0, "mode": "halo"})
+    toml = str(tmp_path / "run" / "twinpass.toml")
+    run = conftest.run_cli(["run", toml, "--no-flow", "--no-report"])
+    for name in ARRAYS:
+        assert np.all(block_status(cfg.store_location, name) == WARN)
+        line = next(x for x in run.stdout.splitlines() if x.startswith(f"warned: {name}.npy: "))
+        worst = re.search(r"block\(s\) graded warn \(worst of the file: passband deviation (\S+) dB", line)
+        assert worst and abs(float(worst.group(1)) + 1.05) <= ESTIMATOR_ERROR_DB, line
+    assert run.stdout.startswith("complete 3, skipped (unchanged) 0, failed 0")
+    status = conftest.run_cli(["status", toml, "--require-complete"])
+    assert "files with blocks graded warn (complete, see CHECKS): 3" in status.stdout
+    assert "complete, with 3 file(s) whose blocks were graded warn" in status.stderr
+    quiet = conftest.run_cli(["run", toml, "--no-flow", "--no-report"])  # nothing run: nothing said
+    assert "warned:" not in quiet.stdout
 
 
 def test_fault_rules_are_checked():

@@ -92,6 +92,7 @@ def test_first_run_completes_with_tasks_and_artifacts(first_run, prefect_client)
     assert state.is_completed(), state.message
     summary = state.result()
     assert summary["counts"]["complete"] == 6 and summary["counts"]["blocks_run"] == 6 * BLOCKS_PER_FILE
+    assert summary["warned"] == {}  # no block graded warn: the command prints no `warned:` line
 
     run_id = flow_run_id(state)
     runs = final_task_runs(prefect_client, run_id, expected=5)

@@ -245,6 +245,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     reasons = res.failure_reasons()
     for f in res.failed:
         print(f"failed: {f}: {reasons[f]}")
+    _print_warned(res.warnings())
     unwritten = None
     if not args.no_report:  # the run is recorded: a report that cannot be written does not change its status
         from .report_data import report_failure, write_report
@@ -443,6 +444,18 @@ def _without_tracebacks_of(matches: Callable[[object], bool]) -> Iterator[None]:
             lg.removeFilter(strip)
 
 
+WARNED_SHOWN = 10
+"""Files with warned blocks the run's summary names, one line each (``twinpass status`` has all)."""
+
+
+def _print_warned(warned: dict[str, str]) -> None:
+    """The run's complete files whose blocks warned, one line each (the first :data:`WARNED_SHOWN`)."""
+    for f in sorted(warned)[:WARNED_SHOWN]:
+        print(f"warned: {f}: {warned[f]}")
+    if len(warned) > WARNED_SHOWN:
+        print(f"warned: and {len(warned) - WARNED_SHOWN} more file(s) (`twinpass status` lists them)")
+
+
 def _print_summary(summary: dict[str, Any]) -> None:
     """Print a flow run's summary (see :func:`twinpass.flows.archive_run`): counts, failed and left-out files, paths."""
     c = summary["counts"]
@@ -453,6 +466,7 @@ def _print_summary(summary: dict[str, Any]) -> None:
         print(f"failed: {f}" + (f": {reasons[f]}" if reasons.get(f) else ""))
     for f in summary.get("invalid", []):
         print(f"left out (invalid input): {f}")
+    _print_warned(summary.get("warned") or {})
     if summary.get("report"):
         print(f"report: {summary['report']}")
     print(f"store: {summary['store']}")
@@ -524,6 +538,10 @@ def cmd_status(args: argparse.Namespace) -> int:
     if missing:
         _eprint("not complete: " + "; ".join(missing))
         return 1
+    warned = st["totals"].get("checks_warned")
+    if args.require_complete and warned:
+        _eprint(f"complete, with {warned} file(s) whose blocks were graded warn (counted as passed; their CHECKS "
+                "column and figures above say which)")
     return 0
 
 

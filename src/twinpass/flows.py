@@ -658,7 +658,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     # The run is recorded: a report that cannot be written is said, and changes nothing else.
     report_path, report_error = _write_report(cfg) if report else (None, None)
     summary = {"run_id": run_id, "counts": result.counts(), "failed": failed_files,
-               "failed_reasons": result.failure_reasons(),
+               "failed_reasons": result.failure_reasons(), "warned": result.warnings(),
                "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path,
                "report_error": report_error}
     also = f"{REPORT_UNWRITTEN}{report_error}" if report_error else ""

@@ -171,6 +171,22 @@ def nothing_selected(cfg: JobConfig, disc: Discovery, outputs: int) -> str:
             "case exactly; a Zarr array is a folder: \"**/*.zarr\")." + earlier + notes)
 
 
+def warned_line(summary: dict[str, Any]) -> str:
+    """One line for a complete file whose blocks warned, from its outcome's ``summary``
+    (``blocks``, ``blocks_warn`` and the worst figures of
+    :func:`~twinpass.core.checks.summarise`)."""
+    worst = []
+    if summary.get("passband_dev_db") is not None:
+        worst.append(f"passband deviation {summary['passband_dev_db']:+.2f} dB")
+    if summary.get("phase_deg") is not None:
+        worst.append(f"phase {summary['phase_deg']:+.2g} deg")
+    if summary.get("clipped"):
+        worst.append(f"{summary['clipped']:,} clipped output sample(s)")
+    figures = f" (worst of the file: {', '.join(worst)})" if worst else ""
+    return (f"{summary.get('blocks_warn')} of {summary.get('blocks')} block(s) graded warn{figures}; "
+            "complete all the same: `twinpass status` shows each figure against its limits")
+
+
 @dataclass
 class RunResult:
     run_id: str
@@ -212,6 +228,14 @@ class RunResult:
                 out[o.relpath] = "; also ".join(parts) or (f"{o.blocks_failed} block(s) not done; the next run does "
                                                        "them (`twinpass status` shows the file's blocks)")
         return out
+
+    def warnings(self) -> dict[str, str]:
+        """The complete files with blocks graded warn, each with one line: how many blocks,
+        and the worst passband deviation (dB), phase (degrees) and clipped samples among the
+        file's blocks (:func:`~twinpass.core.checks.summarise`). A warned block counts as
+        passed (the file is complete); the line says it all the same."""
+        return {o.relpath: warned_line(o.summary) for o in self.outcomes
+                if o.status == "complete" and int(o.summary.get("blocks_warn") or 0)}
 
     def failed_blocks(self) -> dict[str, dict[str, Any]]:
         """Each failed file's blocks that failed their checks: ``{"blocks": [one line per

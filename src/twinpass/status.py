@@ -219,6 +219,7 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
         "blocks_failed": sum(f["blocks_fail"] + f["blocks_error"] for f in files),
         "blocks_cancelled": sum(f["blocks_cancelled"] for f in files),
         "checks_failed": sum(f["checks"] == "fail" for f in files),
+        "checks_warned": sum(f["checks"] == "warn" for f in files),
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
             "lock": store.lock_holder(),
@@ -289,7 +290,9 @@ def format_status(status: dict[str, Any]) -> str:
                  f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed"
                  + (f", {t['blocks_cancelled']} cancelled (a run was stopped; the next run does them)"
                     if t.get("blocks_cancelled") else "")
-                 + f"; files with failed checks or blocks: {t['checks_failed']}")
+                 + f"; files with failed checks or blocks: {t['checks_failed']}"
+                 + (f"; files with blocks graded warn (complete, see CHECKS): {t['checks_warned']}"
+                    if t.get("checks_warned") else ""))
     last = status.get("last_run")
     if last:
         counts = last.get("counts") or {}
