@@ -650,6 +650,24 @@ def test_a_file_failing_its_checks_is_reported_with_blocks_figures_limits_and_re
                for line in failed_blocks)
 
 
+def test_seam_failures_next_to_a_block_graded_warn_name_that_block_as_their_cause(tmp_path, inject):
+    # One block filtered -1.05 dB overall (10**(-1.05/40) per pass, definition of the dB):
+    # its response only warns (between 0.8 and 1.3 dB, the README's defaults), but its
+    # output differs from its neighbours' by about 11 % at the seams they share, far beyond
+    # the seam limit: the block, its next block and the previous file's last block fail on
+    # their seams, and each says the warned block is the cause, not a halo too short.
+    inject([{"action": "perturb", "file": ARRAYS[2], "block": 0, "db": -1.05}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 10.0, "mode": "halo"})
+    reasons = run_job(cfg).failure_reasons()
+    own = reasons["deck/deck_20260301T000110.npy"]
+    assert "block 0 (frames 0-1,999" in own and "its response check graded warn: passband deviation -1." in own
+    assert "following from the response check of block 0, graded warn" in own
+    assert ("following from the response check of block 0 of deck/deck_20260301T000110.npy, graded warn"
+            in reasons["deck/deck_20260301T000040.npy"])
+    assert all("means the halo is too short" not in r for r in reasons.values()), reasons
+    assert "passes once that block's output is right" in reasons["deck/deck_20260301T000040.npy"]
+
+
 def test_block_times_are_given_in_utc_across_midnight_and_to_the_millisecond():
     # Reference: Python's datetime arithmetic (timedelta added to an aware datetime, then
     # astimezone(UTC)); a start given at +01:00 is shown in UTC.

@@ -1340,7 +1340,9 @@ class Finding:
         if self.figure == "phase_deg":
             return f"passband phase {self.value:+.3g} deg{on}, limit {self.limit:.3g} deg either way"
         if self.figure == "stopband_att_db":
-            return f"stopband attenuation {self.value:.3g} dB{on}, at least {self.limit:.3g} dB needed"
+            return (f"stopband attenuation {self.value:.3g} dB{on}, at least {self.limit:.3g} dB needed (in the "
+                    "stopband bins, or over the block where its output holds more power than the design passes, "
+                    "as a passband gain error makes it)")
         if self.figure == "coherent_bins":
             return (f"output not explained by its input{on} (coherent passband bins {self.value:.0f} of "
                     f"{self.of:.0f}, at least {self.limit:.3g} needed)")

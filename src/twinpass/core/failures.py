@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from twinpass.core.checks import FAIL, Finding, findings
+from twinpass.core.checks import FAIL, WARN, Finding, findings
 from twinpass.core.types import Design
 
 if TYPE_CHECKING:  # the configuration module is not part of the numeric core
@@ -106,6 +106,14 @@ def _failing(fb: FileBlocks | None, i: int, design: Design, cfg: ChecksConfig, t
     return [f for f in findings(fb.figures[i], design, cfg, tolerance) if f.status == FAIL]
 
 
+def _warned(fb: FileBlocks | None, i: int, design: Design, cfg: ChecksConfig, tolerance: float) -> list[Finding]:
+    """Block ``i``'s findings at the warn level other than seams (a block graded warn, or
+    one that failed on its seams alone: a wrong output graded warn makes its seams disagree)."""
+    if fb is None or fb.figures is None or int(fb.status[i]) not in (WARN, FAIL):
+        return []
+    return [f for f in findings(fb.figures[i], design, cfg, tolerance) if f.status == WARN and _kind(f) != "seam"]
+
+
 def _neighbours(files: Sequence[FileBlocks | None], k: int, i: int) -> list[tuple[FileBlocks, int]]:
     """(file, block) of the blocks sharing a seam with block ``i`` of file ``k``."""
     fb, prev, nxt = files[k], files[k - 1] if k > 0 else None, files[k + 1] if k + 1 < len(files) else None
@@ -123,12 +131,14 @@ def _neighbours(files: Sequence[FileBlocks | None], k: int, i: int) -> list[tupl
 
 
 _REMEDIES = {
-    "response": "compare input and output at those frames and rerun; a failure that comes back with the same "
-                "figures comes from the input there, not from the run",
+    "response": "compare input and output at those frames and rerun; a failure that a rerun repeats with the "
+                "same figures is no passing fault of the run: either the output there is wrong, or the input there "
+                "is one the check cannot judge (the report lists what it cannot see)",
     "integrity": "look at the input at those frames and at [processing] nonfinite, then rerun",
     "seam": "rerun; a seam mismatch that stays means the halo is too short for this filter (see the design "
             "report's effective length)",
-    "follows": "a seam failure that follows from another block's failure passes once that block does",
+    "follows": "a seam failure that follows from another block's failure or warning passes once that block's "
+               "output is right",
     "unexplained": "rerun (the figures recorded are within the limits now)",
 }
 _ORDER = ("response", "integrity", "seam", "unexplained", "follows")
@@ -173,13 +183,20 @@ def explain(files: Sequence[FileBlocks | None], design: Design, cfg: ChecksConfi
             if len(kinds) > 1:
                 kinds.discard("seam")  # its own seams follow from its other failure
             text = "; ".join(f.describe() for f in found) or "failed its checks"
-            if kinds == {"seam"}:
+            own = _warned(fb, i, design, cfg, tolerance) if kinds == {"seam"} else []
+            if own:  # its seams disagree because its own output is wrong, short of failing its check
+                kinds = {_kind(f) for f in own}
+                text += f"; its {_CAUSE['response' if 'response' in kinds else 'integrity']} graded warn: {'; '.join(f.describe() for f in own)}"
+            elif kinds == {"seam"}:
                 causes = []
                 for other, j in _neighbours(files, k, i):
+                    of = "" if other is fb else f" of {other.label}"
                     cause = {_kind(f) for f in _failing(other, j, design, cfg, tolerance)} - {"seam"}
-                    if cause:
-                        check = _CAUSE["response" if "response" in cause else "integrity"]
-                        causes.append(f"the failed {check} of block {j}" + ("" if other is fb else f" of {other.label}"))
+                    warned = {_kind(f) for f in _warned(other, j, design, cfg, tolerance)}
+                    if cause or warned:
+                        check = _CAUSE["response" if "response" in (cause or warned) else "integrity"]
+                        causes.append(f"the failed {check} of block {j}{of}" if cause
+                                      else f"the {check} of block {j}{of}, graded warn")
                 if causes:
                     kinds = {"follows"}
                     text += f", following from {' and '.join(causes)}"
