@@ -409,6 +409,15 @@ def test_a_block_with_a_wrong_response_fails_the_response_check(tmp_path, inject
     assert np.all(np.abs(np.delete(dev, 3, axis=0)) < 0.5)
     st = block_status(cfg.store_location, ARRAYS[2])
     assert st[3] == FAIL
+    # The failed block keeps the output this run computed, for comparison with its input (the
+    # README's output layout): with each pass's gain sqrt(2) it is twice the whole-stream
+    # scipy.signal.sosfiltfilt (linearity), where a block that raised would read NaN.
+    filt = open_store(cfg.store_location)[ARRAYS[2]].attrs["filter"]
+    x = make_signal(sum(FRAMES), 2, FS, seed=21)
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=filt["edge"],
+                                   padlen=filt["edge_samples"])[FRAMES[0] + FRAMES[1]:]
+    y = read_output(cfg.store_location, ARRAYS)[2]
+    np.testing.assert_allclose(y[6000:8000], 2.0 * ref[6000:8000], rtol=0, atol=1e-6 * np.max(np.abs(x)))
 
 
 NARROW_BANDPASS = {"kind": "bandpass", "family": "butterworth", "order": 2, "cutoff_hz": [48.0, 52.0]}
