@@ -785,6 +785,16 @@ def test_raw_round_trips(tmp_path, byte_order, dtype):
             assert np.allclose(rec.read(a, b), scaled[a:b] * gain + offset, rtol=0, atol=1e-12)
 
 
+def test_raw_gain_applies_to_full_scale_not_to_counts_as_the_readme_works_it(tmp_path):
+    # The README's worked example: int16 counts of 0.5 mV each need gain = 0.0005 * 32768 =
+    # 16.384 (the reader scales counts to full scale, count / 2**15, before the gain).
+    counts = _ints("int16", (200, 2))
+    path = _raw_case(tmp_path, counts.astype("<i2").tobytes(),
+                     {"dtype": "int16", "channels": 2, "sample_rate_hz": 100.0, "gain": 0.0005 * 32768})
+    with open_recording(path) as rec:
+        np.testing.assert_allclose(rec.read(0, 200), counts * 0.0005, rtol=1e-15, atol=0)
+
+
 def test_raw_sidecar_with_suffix_replaced_and_explicit(tmp_path):
     x = _ints("int16", (50, 2))
     (tmp_path / "r.dat").write_bytes(x.astype("<i2").tobytes())
