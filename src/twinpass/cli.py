@@ -533,6 +533,10 @@ def cmd_status(args: argparse.Namespace) -> int:
 
     store, _ = open_target(args.target)
     st = collect_status(store, _configured_checks(args.target))
+    if args.verify:
+        from .verify import verify_store
+
+        st["verified"] = verify_store(store, st["files"]).to_dict()
     print(json.dumps(st, indent=2) if args.json else format_status(st))
     missing = shortfalls(st) if args.require_complete else []
     if missing:
@@ -715,6 +719,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--require-complete", action="store_true",
                    help="exit 1 unless every file is complete with passed checks and the last run "
                         "left no input out and failed none")
+    s.add_argument("--verify", action="store_true",
+                   help="read every complete output back and compare each block's RMS and peak with those "
+                        "recorded when it was written (finds chunk files changed or damaged since)")
     s.set_defaults(func=cmd_status)
 
     s = sub.add_parser("report", help="write the self-contained HTML report")

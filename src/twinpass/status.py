@@ -23,6 +23,7 @@ from .io.store_input import gone_since
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
 from .io.store_lock import LockInfo
+from .verify import REMEDY
 
 
 def open_target(target: str) -> tuple[OutputStore, str]:
@@ -320,6 +321,18 @@ def format_status(status: dict[str, Any]) -> str:
                   for f in lost[:LISTED]]
         if len(lost) > LISTED:
             lines.append(f"  ... and {len(lost) - LISTED} more (twinpass status --json lists them all)")
+    verified = status.get("verified")
+    if verified:
+        damaged = verified.get("damaged") or {}
+        lines.append(f"verified: {verified['files']} complete output(s), {verified['blocks']} block(s), "
+                     f"{verified['samples']:,} samples read back against the levels recorded when written: "
+                     + (f"{len(damaged)} output(s) do not match" if damaged else "all match"))
+        for name, found in sorted(damaged.items())[:LISTED]:
+            lines += [f"  {name}: {line}" for line in found]
+        if len(damaged) > LISTED:
+            lines.append(f"  ... and {len(damaged) - LISTED} more (twinpass status --json lists them all)")
+        if damaged:
+            lines.append(f"  what to do: {REMEDY}")
     failed_blocks = status.get("failed_blocks") or {}
     since = {str(f["source"]): f.get("input_gone_since") for f in status["files"]}
     for title, entries in (("failed at the last run (the next run tries them again)",
@@ -383,6 +396,9 @@ def shortfalls(status: dict[str, Any]) -> list[str]:
     if status.get("left_out"):
         out.append(f"{len(status['left_out'])} input(s) left out by the last run (exclude them in [archive] "
                    "exclude if that is intended)")
+    damaged = (status.get("verified") or {}).get("damaged") or {}
+    if damaged:
+        out.append(f"{len(damaged)} output(s) whose stored samples no longer match what the run recorded")
     return out
 
 

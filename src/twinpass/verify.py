@@ -1,0 +1,161 @@
+"""Verify an output store's samples against the levels recorded when they were written.
+
+Every block records, when it is written, the RMS and the largest magnitude of its output's
+finite samples per channel (the ``rms_out`` and ``peak_out`` figures of its block table,
+computed in float64 before the cast to the output type). Reading the stored samples back and
+taking the same two figures tells whether the chunk files still hold what the run wrote: a
+chunk overwritten, swapped with another, truncated or damaged (a decoding error, or bits
+flipped in an uncompressed chunk that change a sample beyond the output type's rounding)
+shows as a mismatch, named by block, frames and channel. Chunk files that are missing are
+reported by ``twinpass status`` already (:meth:`twinpass.io.store.OutputStore.absent_chunks`)
+and are not read again here.
+
+The comparison allows for the cast: a float32 output's samples are the float64 results
+rounded to 24 significant bits, so its RMS and peak may differ from the recorded ones by a
+relative ``2**-24`` (:data:`FLOAT32_RTOL` allows four times that); float64 outputs allow
+:data:`FLOAT64_RTOL` for the order of summation. What it cannot see: a change within that
+rounding (a flipped low mantissa bit of a float32 sample), or a chunk replaced with samples
+of the same RMS and peak on every channel. Reads only; the store is opened read-only.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .core.checks import PASS, WARN
+from .errors import StoreError
+from .io.store import OutputStore
+
+FLOAT32_RTOL: float = 4.0 * 2.0**-24
+"""Relative difference allowed between a float32 output's stored and recorded RMS or peak."""
+FLOAT64_RTOL: float = 1e-9
+"""The same for float64 outputs (summation order only)."""
+SHOWN_PER_FILE: int = 3
+"""Mismatching blocks named per file in :attr:`Verification.damaged`; the count says the rest."""
+
+
+@dataclass
+class Verification:
+    """What :func:`verify_store` found."""
+
+    files: int = 0
+    """Outputs read (complete ones with every chunk file present)."""
+    blocks: int = 0
+    """Blocks compared."""
+    samples: int = 0
+    """Samples read (frames x channels)."""
+    damaged: dict[str, list[str]] = field(default_factory=dict)
+    """Per output array, one line per mismatching block (at most :data:`SHOWN_PER_FILE`,
+    then a line with the count of the rest)."""
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready."""
+        return {"files": self.files, "blocks": self.blocks, "samples": self.samples,
+                "damaged": {k: list(v) for k, v in self.damaged.items()}}
+
+
+def _levels(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(RMS, peak |value|) of the finite samples per channel of a time-major array; NaN
+    where a channel has none."""
+    a = np.asarray(a, dtype=np.float64)
+    finite = np.isfinite(a)
+    clean = np.where(finite, a, 0.0)
+    n = np.count_nonzero(finite, axis=0)
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):  # a damaged sample may be huge
+        rms = np.sqrt(np.sum(clean * clean, axis=0) / n)
+    peak = np.max(np.abs(clean), axis=0, initial=0.0)
+    return np.where(n > 0, rms, np.nan), np.where(n > 0, peak, np.nan)
+
+
+def _mismatch(stored: np.ndarray, recorded: np.ndarray, rtol: float, skip: np.ndarray) -> int | None:
+    """The first channel whose stored figure differs from the recorded one beyond ``rtol``
+    (NaN on one side only counts as a difference), or None."""
+    for c in range(recorded.shape[0]):
+        s, r = float(stored[c]), float(recorded[c])
+        if skip[c] or (np.isnan(s) and np.isnan(r)):
+            continue
+        if np.isnan(s) != np.isnan(r) or abs(s - r) > rtol * max(abs(r), abs(s)) + 1e-300:
+            return c
+    return None
+
+
+def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
+    """Compare each done block of output ``name`` with its recorded levels.
+
+    Returns
+    -------
+    (blocks, samples, lines)
+        Blocks compared, samples read, and one line per mismatching block naming its
+        frames, the channel and both figures (or the error reading it).
+    """
+    table = store.read_block_table(name, figures=True, seams=False)
+    if table.figures is None:
+        return 0, 0, []
+    columns = list(table.columns)
+    try:
+        rms_col, peak_col, clip_col = (columns.index(k) for k in ("rms_out", "peak_out", "clipped"))
+    except ValueError:  # a table without level figures: nothing to compare with
+        return 0, 0, []
+    blocks = samples = 0
+    lines: list[str] = []
+    for i, (status, (a, b)) in enumerate(zip(table.status.tolist(), table.span.tolist())):
+        if int(status) not in (PASS, WARN):
+            continue
+        where = f"block {i} (frames {int(a):,}-{int(b) - 1:,})"
+        try:
+            data = store.read(name, int(a), int(b))
+        except Exception as e:  # a chunk that does not decode: the file is damaged there
+            lines.append(f"{where}: cannot be read ({type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''})")
+            continue
+        blocks += 1
+        samples += int(data.size)
+        rtol = FLOAT32_RTOL if data.dtype == np.float32 else FLOAT64_RTOL
+        fig = np.asarray(table.figures[i], dtype=np.float64)
+        rms, peak = _levels(data)
+        skip = np.nan_to_num(fig[:, clip_col]) > 0  # values beyond the output type: stored as inf
+        for label, stored, col in (("RMS", rms, rms_col), ("peak", peak, peak_col)):
+            c = _mismatch(stored, fig[:, col], rtol, skip)
+            if c is not None:
+                lines.append(f"{where}: stored samples' {label} {stored[c]:.9g} on channel {c}, recorded "
+                             f"{fig[c, col]:.9g} when written")
+                break
+    return blocks, samples, lines
+
+
+def verify_store(store: OutputStore, files: Iterable[dict[str, Any]],
+                 progress: Callable[[str], None] | None = None) -> Verification:
+    """Verify the complete outputs among ``files`` (entries of
+    :func:`twinpass.status.collect_status`: ``name``, ``complete``); ``progress`` is called
+    with each name before it is read."""
+    out = Verification()
+    for f in files:
+        if not f.get("complete"):
+            continue  # not complete: status says why already
+        name = str(f["name"])
+        if progress is not None:
+            progress(name)
+        try:
+            blocks, samples, lines = verify_file(store, name)
+        except StoreError as e:
+            blocks, samples, lines = 0, 0, [f"its block table cannot be read: {e}"]
+        out.files += 1
+        out.blocks += blocks
+        out.samples += samples
+        if lines:
+            shown = lines[:SHOWN_PER_FILE]
+            if len(lines) > SHOWN_PER_FILE:
+                shown.append(f"and {len(lines) - SHOWN_PER_FILE} more block(s)")
+            out.damaged[name] = shown
+    return out
+
+
+REMEDY: str = ("these outputs' chunk files no longer hold what the run wrote (changed, swapped or damaged since): "
+               "restore the store from a copy, or delete each such output's folder in the store (<store>/<array "
+               "name>) and run again, which filters those files anew")
+"""What to do about outputs whose stored samples do not match their records."""
+
+__all__ = ["Verification", "verify_file", "verify_store", "FLOAT32_RTOL", "FLOAT64_RTOL", "REMEDY"]

@@ -1,0 +1,116 @@
+"""`twinpass status --verify`: stored samples read back against the levels recorded when written.
+
+Reference for the figures: the definitions of RMS (square root of the mean square) and peak
+(largest magnitude), computed here with numpy on the stored samples.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import numpy as np
+import pytest
+
+import conftest
+from conftest import make_signal, write_config, write_stream
+from twinpass.config import load_config
+from twinpass.io.store import OutputStore
+from twinpass.job import run_job
+from twinpass.status import collect_status, shortfalls
+from twinpass.verify import FLOAT32_RTOL, verify_store
+
+FS = 200.0
+FRAMES = [6000, 6000]  # blocks and chunks of 2000 frames: three per file
+ARRAYS = [f"deck/deck_20260301T{t}" for t in ("000000", "000030")]
+
+
+def _filtered(tmp_path, **output):
+    archive = tmp_path / "archive"
+    write_stream(archive, "deck", make_signal(sum(FRAMES), 2, FS, seed=5), FS, FRAMES)
+    cfg = load_config(write_config(tmp_path, processing={"block_seconds": 10.0},
+                                   output={"chunk_seconds": 10.0, **output}))
+    assert run_job(cfg).ok
+    return cfg
+
+
+def _status(cfg):
+    store = OutputStore.open(cfg.store_location, mode="r")
+    st = collect_status(store)
+    st["verified"] = verify_store(store, st["files"]).to_dict()
+    return st
+
+
+@pytest.mark.parametrize("output", [{"dtype": "float64", "compression": "none"},
+                                    {"dtype": "float32", "compression": "lz4"}])
+def test_an_untouched_store_verifies_without_a_false_alarm(tmp_path, output):
+    # float32 outputs are the float64 results rounded to 24 bits: their RMS and peak differ
+    # from the recorded ones by at most a relative 2**-24, inside FLOAT32_RTOL.
+    cfg = _filtered(tmp_path, **output)
+    st = _status(cfg)
+    assert st["verified"] == {"files": 2, "blocks": 6, "samples": 2 * sum(FRAMES), "damaged": {}}
+    assert not shortfalls(st)
+    assert FLOAT32_RTOL < 1e-6
+
+
+def test_swapped_chunk_files_are_named_by_block_with_both_figures(tmp_path):
+    cfg = _filtered(tmp_path)
+    folder = tmp_path / "out.zarr" / ARRAYS[0] / "c"
+    before = np.asarray(conftest.read_output(cfg.store_location, ARRAYS)[0])
+    a, b = folder / "0" / "0", folder / "2" / "0"
+    tmp = folder / "swap"
+    shutil.move(a, tmp)
+    shutil.move(b, a)
+    shutil.move(tmp, b)
+    st = _status(cfg)
+    lines = st["verified"]["damaged"][ARRAYS[0]]
+    assert [line.split(":")[0] for line in lines] == ["block 0 (frames 0-1,999)", "block 2 (frames 4,000-5,999)"]
+    # The stored block 0 now holds what block 2 held: its RMS (definition) is reported.
+    rms0 = float(np.sqrt(np.mean(before[4000:6000, 0] ** 2)))
+    assert f"stored samples' RMS {rms0:.9g} on channel 0" in lines[0]
+    assert ARRAYS[1] not in st["verified"]["damaged"]
+    assert "1 output(s) whose stored samples no longer match what the run recorded" in shortfalls(st)
+
+
+def test_a_flipped_exponent_bit_in_an_uncompressed_chunk_is_found(tmp_path):
+    cfg = _filtered(tmp_path)
+    chunk = tmp_path / "out.zarr" / ARRAYS[1] / "c" / "1" / "0"
+    raw = bytearray(chunk.read_bytes())
+    # float64 little-endian: byte 7 of a sample holds the sign and the exponent's high bits;
+    # flipping its bit 6 scales the sample by 2**+-512 (IEEE 754 binary64 layout).
+    raw[8 * 123 + 7] ^= 0x40
+    chunk.write_bytes(bytes(raw))
+    lines = _status(cfg)["verified"]["damaged"][ARRAYS[1]]
+    assert len(lines) == 1 and lines[0].startswith("block 1 (frames 2,000-3,999): stored samples'")
+
+
+def test_a_compressed_chunk_that_no_longer_decodes_is_named_and_the_command_fails(tmp_path):
+    cfg = _filtered(tmp_path, dtype="float32", compression="lz4")
+    chunk = tmp_path / "out.zarr" / ARRAYS[0] / "c" / "1" / "0"
+    raw = bytearray(chunk.read_bytes())
+    raw[len(raw) // 2 :] = b"\xff" * (len(raw) - len(raw) // 2)
+    chunk.write_bytes(bytes(raw))
+    toml = str(tmp_path / "twinpass.toml")
+    plain = conftest.run_cli(["status", toml, "--require-complete"])  # without --verify: not read
+    assert "verified:" not in plain.stdout
+    proc = conftest.run_cli(["status", toml, "--require-complete", "--verify"], check=False)
+    assert proc.returncode == 1, proc.stdout + proc.stderr
+    assert "verified: 2 complete output(s), 5 block(s)" in proc.stdout and "1 output(s) do not match" in proc.stdout
+    assert f"  {ARRAYS[0]}: block 1 (frames 2,000-3,999): cannot be read" in proc.stdout
+    assert "delete each such output's folder in the store" in proc.stdout
+    assert "whose stored samples no longer match" in proc.stderr
+    as_json = json.loads(conftest.run_cli(["status", toml, "--json", "--verify"]).stdout)
+    assert list(as_json["verified"]["damaged"]) == [ARRAYS[0]]
+
+
+def test_deleting_a_damaged_output_and_running_again_restores_it(tmp_path):
+    # The remedy the verification gives: the run filters a file whose output is gone anew.
+    cfg = _filtered(tmp_path)
+    good = conftest.read_output(cfg.store_location, ARRAYS)
+    chunk = tmp_path / "out.zarr" / ARRAYS[1] / "c" / "0" / "0"
+    chunk.write_bytes(chunk.read_bytes()[::-1])
+    assert ARRAYS[1] in _status(cfg)["verified"]["damaged"]
+    shutil.rmtree(tmp_path / "out.zarr" / ARRAYS[1])
+    assert run_job(cfg).ok
+    assert _status(cfg)["verified"]["damaged"] == {}
+    np.testing.assert_array_equal(conftest.read_output(cfg.store_location, ARRAYS)[1], good[1])
