@@ -806,3 +806,68 @@ def test_readme_default_padlen_matches_scipy_for_an_odd_order_design() -> None:
         ours = filtfilt_window(x, sos=design.sos, core_start=0, core_stop=x.size, at_start=True, at_end=True,
                                edge="odd", edge_samples=padlen)
         np.testing.assert_allclose(ours, default, rtol=0, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------- float64 rounding of long cascades
+
+
+def _longdouble_rounding(sos: np.ndarray, x: np.ndarray) -> float:
+    """Largest difference of two-pass scipy.signal.sosfilt in float64 from the same in
+    np.longdouble (x86-64 extended precision), relative to max |x|."""
+    def two_pass(s: np.ndarray, xs: np.ndarray) -> np.ndarray:
+        y = signal.sosfilt(s, xs)
+        return signal.sosfilt(s, y[::-1])[::-1]
+
+    exact = two_pass(sos.astype(np.longdouble), x.astype(np.longdouble))
+    return float(np.max(np.abs(two_pass(sos, x) - exact)) / np.max(np.abs(x)))
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).eps > 1e-18, reason="needs an extended-precision long double")
+def test_a_long_chebyshev1_cascade_gets_the_rounding_caution_and_a_remedy_for_cascades() -> None:
+    # A Chebyshev I low-pass of order 35 at 100 Hz, 1 kHz: its float64 rounding (measured
+    # against np.longdouble on a full-scale square wave, the reference above) is far above
+    # a 1e-9 tolerance, so the report cautions, its estimate covers the measurement, the
+    # remedy is to shorten the cascade (not to move poles), and the seam limit follows it.
+    from twinpass.core.checks import seam_scale
+
+    spec = ResponseSpec(kind="lowpass", family="chebyshev1", order=35, cutoff_hz=(100.0,), passband_ripple_db=0.1)
+    design = design_filter(spec, 1000.0, tolerance=1e-9)
+    t = np.arange(80_000)
+    measured = _longdouble_rounding(design.sos, np.sign(np.sin(2 * np.pi * t / 740.0 + 0.2)))
+    assert measured > 1e-9
+    assert measured < design.report["rounding_estimate"] < 100 * measured
+    statement = design.report["statement"]
+    assert "Caution: float64 rounding" in statement and "cascade of sections" in statement, statement
+    assert "'elliptic' or 'auto'" in statement and "Raise the cutoff" not in statement, statement
+    assert seam_scale(design, 1e-9) == design.report["rounding_estimate"]
+
+
+@pytest.mark.parametrize("spec", [
+    ResponseSpec(kind="lowpass", family="chebyshev1", order=40, cutoff_hz=(100.0,), passband_ripple_db=0.1),
+    ResponseSpec(kind="lowpass", family="chebyshev1", passband_hz=(100.0,), stopband_hz=(101.0,),
+                 passband_ripple_db=0.1, stopband_attenuation_db=100.0),
+])
+def test_a_cascade_whose_rounding_is_hopeless_is_refused_with_its_cause(spec: ResponseSpec) -> None:
+    # Chebyshev I low-passes at 100 Hz, 1 kHz of order 40 (fixed) and 60 (the minimum order
+    # for 100/101 Hz, 0.1/100 dB overall, scipy.signal.cheb1ord with 0.05/50 dB per pass):
+    # measured against np.longdouble their float64 rounding is 1.3e-7 and 1e-2 of full scale,
+    # at or above a 24-bit recording's resolution (2**-23 = 1.2e-7): refused, naming the
+    # cause and the families that reach the spec at a lower order.
+    assert spec.order == 40 or signal.cheb1ord(100.0, 101.0, 0.05, 50.0, fs=1000.0)[0] == 60
+    with pytest.raises(DesignError) as err:
+        design_filter(spec, 1000.0)
+    text = str(err.value)
+    assert "float64 rounding" in text and "cascade" in text and "lower the order" in text, text
+    assert "'elliptic' or 'auto'" in text, text
+
+
+def test_auto_meets_a_spec_whose_chebyshev1_cascade_is_refused() -> None:
+    # The same 100/101 Hz, 0.1/100 dB spec: scipy.signal.ellipord gives order 13 per pass
+    # (0.05/50 dB); `auto` takes it, with no rounding caution.
+    spec = ResponseSpec(kind="lowpass", family="auto", passband_hz=(100.0,), stopband_hz=(101.0,),
+                        passband_ripple_db=0.1, stopband_attenuation_db=100.0)
+    design = design_filter(spec, 1000.0)
+    assert design.family == "elliptic"
+    assert design.order == signal.ellipord(100.0, 101.0, 0.05, 50.0, fs=1000.0)[0]
+    assert "Caution" not in design.report["statement"]
+
