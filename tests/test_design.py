@@ -871,3 +871,51 @@ def test_auto_meets_a_spec_whose_chebyshev1_cascade_is_refused() -> None:
     assert design.order == signal.ellipord(100.0, 101.0, 0.05, 50.0, fs=1000.0)[0]
     assert "Caution" not in design.report["statement"]
 
+
+# ----------------------------------------------------------------------------- equiripple stopbands and rounding
+
+
+def test_chebyshev2_at_a_very_low_cutoff_is_designed_near_the_order_scipy_gives() -> None:
+    # A Chebyshev II high-pass, pass 0.5 Hz, stop 0.25 Hz at 48 kHz, 1/60 dB overall:
+    # scipy.signal.cheb2ord gives order 4 (0.5/30 dB per pass). Its stopband ripples at
+    # exactly the designed attenuation, and rounding its float64 coefficients lifts it a
+    # few 1e-6 dB above that, so the exact design misses by a hair at every order; designed
+    # 0.01 dB deeper per pass it meets the spec (order 4 or, where the deeper stopband
+    # costs passband, 5), not "raise max_order".
+    spec = ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(0.5,), stopband_hz=(0.25,),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    n = signal.cheb2ord(0.5, 0.25, 0.5, 30.0, fs=48000.0)[0]
+    assert n == 4
+    design = design_filter(spec, 48000.0)
+    assert n <= design.order <= n + 1
+    assert design.report["stopband_attenuation_margin_db"] >= 0.0
+    assert design.report["passband_ripple_margin_db"] >= 0.0
+
+
+def test_an_equiripple_design_that_met_the_spec_keeps_scipys_coefficients() -> None:
+    # A Chebyshev II high-pass, pass 10 Hz, stop 5 Hz at 1 kHz, 1/60 dB overall meets the spec
+    # at scipy.signal.cheb2ord's order: its coefficients are scipy.signal.cheby2's at the
+    # per-pass 30 dB, unchanged.
+    spec = ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(10.0,), stopband_hz=(5.0,),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    n, wn = signal.cheb2ord(10.0, 5.0, 0.5, 30.0, fs=1000.0)
+    design = design_filter(spec, 1000.0)
+    assert design.order == n
+    np.testing.assert_array_equal(design.sos, signal.cheby2(n, 30.0, wn, "highpass", fs=1000.0, output="sos"))
+
+
+def test_an_equiripple_miss_that_a_deeper_design_cannot_mend_names_rounding_not_max_order(monkeypatch) -> None:
+    # With no extra depth allowed (the margin set to 0 dB), the Chebyshev II high-pass above
+    # (0.5/0.25 Hz at 48 kHz) misses by coefficient rounding at the order scipy.signal.cheb2ord
+    # gives; the error says so and suggests decimating or another family, not a higher order.
+    import twinpass.core.design as design_module
+
+    monkeypatch.setattr(design_module, "STOPBAND_MARGIN_DB", 0.0)
+    spec = ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(0.5,), stopband_hz=(0.25,),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    with pytest.raises(DesignError) as err:
+        design_filter(spec, 48000.0)
+    text = str(err.value)
+    assert "at order 4" in text and "rounding" in text and "decimate first" in text, text
+    assert "max_order" not in text, text
+

@@ -89,6 +89,15 @@ SPEC_SLACK_DB: float = 1e-6
 """Rounding slack (dB) allowed when checking a design against the overall spec."""
 CUTOFF_SLACK_DB: float = 1e-3
 """Largest accepted distance (dB) of the overall gain from -3.0103 dB at a corrected cutoff."""
+EQUIRIPPLE_STOPBAND: tuple[str, ...] = ("chebyshev2", "elliptic")
+"""Families whose stopband ripples at exactly the designed attenuation."""
+ROUNDING_MISS_DB: float = 0.01
+"""A tolerance design of an ``EQUIRIPPLE_STOPBAND`` family that misses the overall
+attenuation by at most this (dB) misses by coefficient rounding: its stopband peaks sit at
+exactly the designed attenuation, and a higher order cannot lift them."""
+STOPBAND_MARGIN_DB: float = 0.01
+"""Per-pass attenuation (dB) added to such a design after a miss of at most
+``ROUNDING_MISS_DB`` (0.02 dB overall, twice the largest miss it answers)."""
 FIR_PREFERENCE: float = 0.5
 """``auto`` takes FIR only if its cost is below this fraction of the best IIR cost."""
 
@@ -885,12 +894,27 @@ def _iir_tolerance(spec: ResponseSpec, family: str, fs: float) -> tuple[np.ndarr
         )
     wn_arg = _edges_arg(np.atleast_1d(wn))
     last = (math.inf, -math.inf)
+    raised, margin = False, 0.0
     while order <= spec.max_order:
-        sos = _iir(family, order, wn_arg, spec.kind, rp, rs, fs)
+        sos = _iir(family, order, wn_arg, spec.kind, rp, rs + margin, fs)
         check_sos(sos)
         last = _measure(sos, None, spec, fs)
         if _meets(*last, spec):
             return sos, order
+        short = float(spec.stopband_attenuation_db) - last[1]
+        if family in EQUIRIPPLE_STOPBAND and 0.0 < short <= ROUNDING_MISS_DB:
+            if not raised:  # the same order again, its stopband a little deeper
+                raised, margin = True, STOPBAND_MARGIN_DB
+                continue
+            raise DesignError(
+                f"the {family} {spec.kind} misses the overall attenuation by {short:.3g} dB at order {order} "
+                f"({last[1]:.9g} dB for {spec.stopband_attenuation_db:g}) even designed for "
+                f"{STOPBAND_MARGIN_DB:g} dB more per pass: its stopband ripples at the designed attenuation, "
+                "and rounding its coefficients to float64 lifts it at these band edges relative to the "
+                "sample rate, which a higher order cannot help; lower the sample rate (decimate first) so "
+                "the band edges lie further from 0 Hz and Nyquist, or use family 'chebyshev1' or "
+                "'butterworth' (a stopband falling away from its edge) or 'fir'."
+            )
         order += 1
     raise DesignError(
         f"the {family} {spec.kind} misses the overall spec at every order up to max_order="
