@@ -919,3 +919,24 @@ def test_an_equiripple_miss_that_a_deeper_design_cannot_mend_names_rounding_not_
     assert "at order 4" in text and "rounding" in text and "decimate first" in text, text
     assert "max_order" not in text, text
 
+
+# ----------------------------------------------------------------------------- validation before the rate is known
+
+
+def test_a_notch_too_wide_before_the_rate_is_known_names_no_nyquist_figure(tmp_path) -> None:
+    # A 50 Hz notch of Q 0.2 is 250 Hz wide (width = f0 / Q, the definition of Q): it does not
+    # fit above 0 Hz at any sample rate, so the configuration is refused when read, without a
+    # Nyquist frequency (none is known yet); at a known rate a notch too wide for Nyquist
+    # names it (fs / 2).
+    from twinpass.config import load_config
+    from twinpass.errors import ConfigError
+
+    path = tmp_path / "job.toml"
+    path.write_text('[response]\nkind = "notch"\nnotch_hz = 50.0\nnotch_q = 0.2\n')
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    text = str(err.value)
+    assert "does not fit around notch_hz=50 above 0 Hz; use a width below 100 Hz" in text, text
+    assert "Nyquist" not in text and "e+14" not in text, text
+    with pytest.raises(SpecError, match=r"between 0 Hz and Nyquist 500 Hz; use a width below 100 Hz"):
+        validate_spec(ResponseSpec(kind="notch", notch_hz=450.0, notch_width_hz=150.0), 1000.0)

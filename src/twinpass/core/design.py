@@ -53,6 +53,7 @@ from twinpass.errors import DesignError, SpecError
 
 __all__ = [
     "validate_spec",
+    "validate_spec_without_rate",
     "design_filter",
     "design_for_rates",
     "response_report",
@@ -235,8 +236,24 @@ def validate_spec(spec: ResponseSpec, sample_rate_hz: float | None) -> None:
         notch without ``notch_hz`` or without exactly one of width and Q; an order above
         ``max_order``.
     """
-    fs = _check_sample_rate(sample_rate_hz)
-    nyq = fs / 2.0
+    _validate(spec, _check_sample_rate(sample_rate_hz) / 2.0)
+
+
+def validate_spec_without_rate(spec: ResponseSpec) -> None:
+    """Check what :func:`validate_spec` checks that holds at every sample rate.
+
+    The checks against the Nyquist frequency wait for a rate; no message names one.
+
+    Raises
+    ------
+    SpecError
+        As :func:`validate_spec`, but never for an edge at or above Nyquist.
+    """
+    _validate(spec, math.inf)
+
+
+def _validate(spec: ResponseSpec, nyq: float) -> None:
+    """:func:`validate_spec` at Nyquist frequency ``nyq`` (Hz; infinite: not known yet)."""
     if spec.kind not in KINDS:
         raise SpecError(f"kind={spec.kind!r} is not known; use one of {', '.join(KINDS)}.")
     if spec.family not in FAMILIES:
@@ -364,10 +381,8 @@ def _validate_notch(spec: ResponseSpec, nyq: float) -> None:
         )
     f0 = float(spec.notch_hz)
     if not math.isfinite(f0) or not 0.0 < f0 < nyq:
-        raise SpecError(
-            f"notch_hz={_fmt(spec.notch_hz)} must lie between 0 Hz and the Nyquist frequency "
-            f"{nyq:g} Hz."
-        )
+        upper = f"the Nyquist frequency {nyq:g} Hz" if math.isfinite(nyq) else "the Nyquist frequency"
+        raise SpecError(f"notch_hz={_fmt(spec.notch_hz)} must lie between 0 Hz and {upper}.")
     if (spec.notch_width_hz is None) == (spec.notch_q is None):
         raise SpecError(
             "a notch filter needs exactly one of notch_width_hz (overall -3 dB width, Hz) and "
@@ -388,10 +403,8 @@ def _validate_notch(spec: ResponseSpec, nyq: float) -> None:
         name = f"notch_width_hz={width:g}"
     limit = 2.0 * min(f0, nyq - f0)
     if not width < limit:
-        raise SpecError(
-            f"{name} does not fit around notch_hz={f0:g} between 0 Hz and Nyquist {nyq:g} Hz; "
-            f"use a width below {limit:g} Hz."
-        )
+        room = f"between 0 Hz and Nyquist {nyq:g} Hz" if nyq - f0 < f0 else "above 0 Hz"
+        raise SpecError(f"{name} does not fit around notch_hz={f0:g} {room}; use a width below {limit:g} Hz.")
     others = [
         n for n in ("passband_hz", "stopband_hz", "order", "cutoff_hz") if getattr(spec, n) is not None
     ]
