@@ -365,8 +365,30 @@ def test_rounding_estimate_of_ordinary_designs_is_the_analytic_one(name: str, so
 def test_measured_rounding_of_a_cascade_that_overflows_is_infinite() -> None:
     # A section with a pole pair at radius 1.05 (unstable, textbook criterion): float64
     # filtering grows as 1.05**n and overflows within 65536 samples (1.05**14600 > 1.8e308,
-    # float64's largest); the measurement says infinity rather than NaN.
-    from twinpass.core.effective import measured_rounding
+    # float64's largest); the measurement says infinity rather than NaN. Eight such sections:
+    # cascades shorter than MEASURED_MIN_SECTIONS are not measured.
+    from twinpass.core.effective import MEASURED_MIN_SECTIONS, measured_rounding
 
-    sos = np.array([[1.0, 0.0, 0.0, 1.0, -1.05 * 2 * np.cos(0.1), 1.05**2]])
+    sos = np.array([[1.0, 0.0, 0.0, 1.0, -1.05 * 2 * np.cos(0.1), 1.05**2]] * MEASURED_MIN_SECTIONS)
     assert measured_rounding(sos) == math.inf
+
+
+def test_short_cascades_are_not_measured_and_their_rounding_stays_near_the_analytic_estimate():
+    # Reference: the same two passes in numpy.longdouble (x86-64 extended precision), as
+    # measured_rounding does them, forced here for cascades under MEASURED_MIN_SECTIONS.
+    import twinpass.core.effective as eff
+    from scipy import signal
+
+    sos = signal.cheby1(14, 1.0, 10.0, fs=1000.0, output="sos")  # 7 sections
+    assert sos.shape[0] < eff.MEASURED_MIN_SECTIONS
+    assert eff.measured_rounding(sos) == 0.0
+    assert eff.rounding_estimate(sos=sos) == eff.analytic_rounding_estimate(sos=sos)
+    saved = eff.MEASURED_MIN_SECTIONS
+    try:
+        eff.MEASURED_MIN_SECTIONS = 0
+        eff._MEASURED.clear()
+        measured = eff.measured_rounding(sos)
+    finally:
+        eff.MEASURED_MIN_SECTIONS = saved
+        eff._MEASURED.clear()
+    assert measured < 2.0 * eff.analytic_rounding_estimate(sos=sos) < 1e-10
