@@ -821,6 +821,30 @@ def test_seam_limit_widens_to_the_rounding_of_a_design_that_cannot_meet_the_tole
     assert "Caution" not in design_filter(ordinary.spec, ordinary.sample_rate_hz, tolerance=TOL).report["statement"]
 
 
+def test_a_seam_failure_of_a_design_whose_rounding_exceeds_the_tolerance_does_not_blame_the_halo_alone() -> None:
+    # Three blocks failing on their seams alone (1e-3 of the input peak). For an ordinary
+    # design (Chebyshev I of order 8) the tolerance sets the seam limit and the remedy points
+    # at the halo; for a Chebyshev I of order 35, whose float64 rounding estimate (checked
+    # against np.longdouble in test_design) is above the tolerance, it names that rounding.
+    from twinpass.core.design import design_filter
+    from twinpass.core.failures import FileBlocks, explain
+
+    fig = np.zeros((3, 1, len(checks.FIGURES)))
+    fig[:, :, FIGURE_INDEX["seam_mismatch"]] = 1e-3
+    fig[:, :, FIGURE_INDEX["stopband_att_db"]] = 100.0
+    blocks = FileBlocks("s1/a.npy", np.array([FAIL, FAIL, FAIL]), np.array([[0, 100], [100, 200], [200, 300]]), fig)
+    remedies = {}
+    for order in (8, 35):
+        spec = ResponseSpec(kind="lowpass", family="chebyshev1", order=order, cutoff_hz=(100.0,), passband_ripple_db=0.1)
+        design = design_filter(spec, 1000.0, tolerance=TOL)
+        remedies[order] = explain([blocks], design, CFG, TOL)["s1/a.npy"].remedy
+    assert "means the halo is too short for this filter" in remedies[8], remedies[8]
+    assert "float64 rounding" not in remedies[8]
+    estimate = f"{checks.seam_scale(design, TOL):.2g}"
+    assert f"float64 rounding (estimated at {estimate} of full scale, above the tolerance 1e-09" in remedies[35]
+    assert "means the halo is too short" not in remedies[35], remedies[35]
+
+
 # ----------------------------------------------------------------------------- blocks with holes
 
 SPLIT_SPECS = {

@@ -806,3 +806,137 @@ def test_readme_default_padlen_matches_scipy_for_an_odd_order_design() -> None:
         ours = filtfilt_window(x, sos=design.sos, core_start=0, core_stop=x.size, at_start=True, at_end=True,
                                edge="odd", edge_samples=padlen)
         np.testing.assert_allclose(ours, default, rtol=0, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------- float64 rounding of long cascades
+
+
+def _longdouble_rounding(sos: np.ndarray, x: np.ndarray) -> float:
+    """Largest difference of two-pass scipy.signal.sosfilt in float64 from the same in
+    np.longdouble (x86-64 extended precision), relative to max |x|."""
+    def two_pass(s: np.ndarray, xs: np.ndarray) -> np.ndarray:
+        y = signal.sosfilt(s, xs)
+        return signal.sosfilt(s, y[::-1])[::-1]
+
+    exact = two_pass(sos.astype(np.longdouble), x.astype(np.longdouble))
+    return float(np.max(np.abs(two_pass(sos, x) - exact)) / np.max(np.abs(x)))
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).eps > 1e-18, reason="needs an extended-precision long double")
+def test_a_long_chebyshev1_cascade_gets_the_rounding_caution_and_a_remedy_for_cascades() -> None:
+    # A Chebyshev I low-pass of order 35 at 100 Hz, 1 kHz: its float64 rounding (measured
+    # against np.longdouble on a full-scale square wave, the reference above) is far above
+    # a 1e-9 tolerance, so the report cautions, its estimate covers the measurement, the
+    # remedy is to shorten the cascade (not to move poles), and the seam limit follows it.
+    from twinpass.core.checks import seam_scale
+
+    spec = ResponseSpec(kind="lowpass", family="chebyshev1", order=35, cutoff_hz=(100.0,), passband_ripple_db=0.1)
+    design = design_filter(spec, 1000.0, tolerance=1e-9)
+    t = np.arange(80_000)
+    measured = _longdouble_rounding(design.sos, np.sign(np.sin(2 * np.pi * t / 740.0 + 0.2)))
+    assert measured > 1e-9
+    assert measured < design.report["rounding_estimate"] < 100 * measured
+    statement = design.report["statement"]
+    assert "Caution: float64 rounding" in statement and "cascade of sections" in statement, statement
+    assert "'elliptic' or 'auto'" in statement and "Raise the cutoff" not in statement, statement
+    assert seam_scale(design, 1e-9) == design.report["rounding_estimate"]
+
+
+@pytest.mark.parametrize("spec", [
+    ResponseSpec(kind="lowpass", family="chebyshev1", order=40, cutoff_hz=(100.0,), passband_ripple_db=0.1),
+    ResponseSpec(kind="lowpass", family="chebyshev1", passband_hz=(100.0,), stopband_hz=(101.0,),
+                 passband_ripple_db=0.1, stopband_attenuation_db=100.0),
+])
+def test_a_cascade_whose_rounding_is_hopeless_is_refused_with_its_cause(spec: ResponseSpec) -> None:
+    # Chebyshev I low-passes at 100 Hz, 1 kHz of order 40 (fixed) and 60 (the minimum order
+    # for 100/101 Hz, 0.1/100 dB overall, scipy.signal.cheb1ord with 0.05/50 dB per pass):
+    # measured against np.longdouble their float64 rounding is 1.3e-7 and 1e-2 of full scale,
+    # at or above a 24-bit recording's resolution (2**-23 = 1.2e-7): refused, naming the
+    # cause and the families that reach the spec at a lower order.
+    assert spec.order == 40 or signal.cheb1ord(100.0, 101.0, 0.05, 50.0, fs=1000.0)[0] == 60
+    with pytest.raises(DesignError) as err:
+        design_filter(spec, 1000.0)
+    text = str(err.value)
+    assert "float64 rounding" in text and "cascade" in text and "lower the order" in text, text
+    assert "'elliptic' or 'auto'" in text, text
+
+
+def test_auto_meets_a_spec_whose_chebyshev1_cascade_is_refused() -> None:
+    # The same 100/101 Hz, 0.1/100 dB spec: scipy.signal.ellipord gives order 13 per pass
+    # (0.05/50 dB); `auto` takes it, with no rounding caution.
+    spec = ResponseSpec(kind="lowpass", family="auto", passband_hz=(100.0,), stopband_hz=(101.0,),
+                        passband_ripple_db=0.1, stopband_attenuation_db=100.0)
+    design = design_filter(spec, 1000.0)
+    assert design.family == "elliptic"
+    assert design.order == signal.ellipord(100.0, 101.0, 0.05, 50.0, fs=1000.0)[0]
+    assert "Caution" not in design.report["statement"]
+
+
+# ----------------------------------------------------------------------------- equiripple stopbands and rounding
+
+
+def test_chebyshev2_at_a_very_low_cutoff_is_designed_near_the_order_scipy_gives() -> None:
+    # A Chebyshev II high-pass, pass 0.5 Hz, stop 0.25 Hz at 48 kHz, 1/60 dB overall:
+    # scipy.signal.cheb2ord gives order 4 (0.5/30 dB per pass). Its stopband ripples at
+    # exactly the designed attenuation, and rounding its float64 coefficients lifts it a
+    # few 1e-6 dB above that, so the exact design misses by a hair at every order; designed
+    # 0.01 dB deeper per pass it meets the spec (order 4 or, where the deeper stopband
+    # costs passband, 5), not "raise max_order".
+    spec = ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(0.5,), stopband_hz=(0.25,),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    n = signal.cheb2ord(0.5, 0.25, 0.5, 30.0, fs=48000.0)[0]
+    assert n == 4
+    design = design_filter(spec, 48000.0)
+    assert n <= design.order <= n + 1
+    assert design.report["stopband_attenuation_margin_db"] >= 0.0
+    assert design.report["passband_ripple_margin_db"] >= 0.0
+
+
+def test_an_equiripple_design_that_met_the_spec_keeps_scipys_coefficients() -> None:
+    # A Chebyshev II high-pass, pass 10 Hz, stop 5 Hz at 1 kHz, 1/60 dB overall meets the spec
+    # at scipy.signal.cheb2ord's order: its coefficients are scipy.signal.cheby2's at the
+    # per-pass 30 dB, unchanged.
+    spec = ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(10.0,), stopband_hz=(5.0,),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    n, wn = signal.cheb2ord(10.0, 5.0, 0.5, 30.0, fs=1000.0)
+    design = design_filter(spec, 1000.0)
+    assert design.order == n
+    np.testing.assert_array_equal(design.sos, signal.cheby2(n, 30.0, wn, "highpass", fs=1000.0, output="sos"))
+
+
+def test_an_equiripple_miss_that_a_deeper_design_cannot_mend_names_rounding_not_max_order(monkeypatch) -> None:
+    # With no extra depth allowed (the margin set to 0 dB), the Chebyshev II high-pass above
+    # (0.5/0.25 Hz at 48 kHz) misses by coefficient rounding at the order scipy.signal.cheb2ord
+    # gives; the error says so and suggests decimating or another family, not a higher order.
+    import twinpass.core.design as design_module
+
+    monkeypatch.setattr(design_module, "STOPBAND_MARGIN_DB", 0.0)
+    spec = ResponseSpec(kind="highpass", family="chebyshev2", passband_hz=(0.5,), stopband_hz=(0.25,),
+                        passband_ripple_db=1.0, stopband_attenuation_db=60.0)
+    with pytest.raises(DesignError) as err:
+        design_filter(spec, 48000.0)
+    text = str(err.value)
+    assert "at order 4" in text and "rounding" in text and "decimate first" in text, text
+    assert "max_order" not in text, text
+
+
+# ----------------------------------------------------------------------------- validation before the rate is known
+
+
+def test_a_notch_too_wide_before_the_rate_is_known_names_no_nyquist_figure(tmp_path) -> None:
+    # A 50 Hz notch of Q 0.2 is 250 Hz wide (width = f0 / Q, the definition of Q): it does not
+    # fit above 0 Hz at any sample rate, so the configuration is refused when read, without a
+    # Nyquist frequency (none is known yet); at a known rate a notch too wide for Nyquist
+    # names it (fs / 2).
+    from twinpass.config import load_config
+    from twinpass.errors import ConfigError
+
+    path = tmp_path / "job.toml"
+    path.write_text('[response]\nkind = "notch"\nnotch_hz = 50.0\nnotch_q = 0.2\n')
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    text = str(err.value)
+    assert "does not fit around notch_hz=50 above 0 Hz; use a width below 100 Hz" in text, text
+    assert "Nyquist" not in text and "e+14" not in text, text
+    with pytest.raises(SpecError, match=r"between 0 Hz and Nyquist 500 Hz; use a width below 100 Hz"):
+        validate_spec(ResponseSpec(kind="notch", notch_hz=450.0, notch_width_hz=150.0), 1000.0)

@@ -311,3 +311,84 @@ def test_designs_with_tiny_numerators_do_not_print_scipys_coefficient_warning() 
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         design_filter(spec, 48000.0, tolerance=1e-9)
+
+
+# ----------------------------------------------------------------------------- long, sharp cascades
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).eps > 1e-18, reason="needs an extended-precision long double")
+@pytest.mark.parametrize("order", [28, 32, 35])
+def test_rounding_estimate_covers_long_chebyshev1_cascades(order: int) -> None:
+    # A Chebyshev I low-pass at 100 Hz, 1 kHz, 0.05 dB ripple per pass (scipy.signal.cheby1):
+    # its poles one at a time suggest float64 rounding at the floor (2.2e-12), but the cascade
+    # rounds far more. Reference: the same two-pass filtering by scipy.signal.sosfilt in
+    # np.longdouble (x86-64 extended precision), from steady state as scipy.signal.sosfiltfilt
+    # starts, on inputs unlike the estimate's probe: a full-scale square wave (the input that
+    # rounded most in the design's measurements) and noise with a slow sine. The estimate
+    # must bound both and stay within 100 times the larger (an estimate, not a loose bound).
+    from twinpass.core.effective import analytic_rounding_estimate, rounding_estimate
+
+    sos = signal.cheby1(order, 0.05, 100.0, fs=1000.0, output="sos")
+    n = 100_000
+    t = np.arange(n)
+    rng = np.random.default_rng(3)
+    inputs = {
+        "square": np.sign(np.sin(2 * np.pi * t / 740.0 + 0.2)),
+        "noise, sine": 0.4 * rng.standard_normal(n) + 0.4 * np.sin(t / 300.0),
+    }
+    errors = {
+        k: float(np.max(np.abs(_two_pass(sos, x, np.float64) - _two_pass(sos, x, np.longdouble))) / np.max(np.abs(x)))
+        for k, x in inputs.items()
+    }
+    estimate = rounding_estimate(sos=sos)
+    assert analytic_rounding_estimate(sos=sos) < max(errors.values())  # the poles alone miss it
+    assert max(errors.values()) < estimate < 100 * max(errors.values()), (order, errors, estimate)
+
+
+@pytest.mark.parametrize("name, sos", [
+    ("Butterworth low-pass, order 8", signal.butter(8, 100.0, fs=1000.0, output="sos")),
+    ("Chebyshev I low-pass, order 8", signal.cheby1(8, 0.05, 100.0, fs=1000.0, output="sos")),
+    ("Chebyshev II low-pass, order 24", signal.cheby2(24, 60.0, 100.0, fs=1000.0, output="sos")),
+    ("elliptic low-pass, order 12", signal.ellip(12, 0.05, 60.0, 100.0, fs=1000.0, output="sos")),
+    ("Butterworth high-pass at 2e-6 of the rate", signal.butter(2, 0.002, "highpass", fs=1000.0, output="sos")),
+])
+def test_rounding_estimate_of_ordinary_designs_is_the_analytic_one(name: str, sos: np.ndarray) -> None:
+    # Designs whose poles dominate their rounding keep the analytic estimate exactly (its
+    # calibration against extended precision is above); the cascade's measurement is
+    # below it for them.
+    from twinpass.core.effective import ROUNDING_SAFETY, analytic_rounding_estimate, measured_rounding, rounding_estimate
+
+    assert ROUNDING_SAFETY * measured_rounding(sos) < analytic_rounding_estimate(sos=sos), name
+    assert rounding_estimate(sos=sos) == analytic_rounding_estimate(sos=sos), name
+
+
+def test_measured_rounding_of_a_cascade_that_overflows_is_infinite() -> None:
+    # A section with a pole pair at radius 1.05 (unstable, textbook criterion): float64
+    # filtering grows as 1.05**n and overflows within 65536 samples (1.05**14600 > 1.8e308,
+    # float64's largest); the measurement says infinity rather than NaN. Eight such sections:
+    # cascades shorter than MEASURED_MIN_SECTIONS are not measured.
+    from twinpass.core.effective import MEASURED_MIN_SECTIONS, measured_rounding
+
+    sos = np.array([[1.0, 0.0, 0.0, 1.0, -1.05 * 2 * np.cos(0.1), 1.05**2]] * MEASURED_MIN_SECTIONS)
+    assert measured_rounding(sos) == math.inf
+
+
+def test_short_cascades_are_not_measured_and_their_rounding_stays_near_the_analytic_estimate():
+    # Reference: the same two passes in numpy.longdouble (x86-64 extended precision), as
+    # measured_rounding does them, forced here for cascades under MEASURED_MIN_SECTIONS.
+    import twinpass.core.effective as eff
+    from scipy import signal
+
+    sos = signal.cheby1(14, 1.0, 10.0, fs=1000.0, output="sos")  # 7 sections
+    assert sos.shape[0] < eff.MEASURED_MIN_SECTIONS
+    assert eff.measured_rounding(sos) == 0.0
+    assert eff.rounding_estimate(sos=sos) == eff.analytic_rounding_estimate(sos=sos)
+    saved = eff.MEASURED_MIN_SECTIONS
+    try:
+        eff.MEASURED_MIN_SECTIONS = 0
+        eff._MEASURED.clear()
+        measured = eff.measured_rounding(sos)
+    finally:
+        eff.MEASURED_MIN_SECTIONS = saved
+        eff._MEASURED.clear()
+    assert measured < 2.0 * eff.analytic_rounding_estimate(sos=sos) < 1e-10

@@ -444,12 +444,12 @@ def _check_values(cfg: JobConfig) -> None:
             "(the longest NaN/Inf run to fill, in samples)"
         )
     # The response must make sense before any sample rate is known; the Nyquist check
-    # waits for the archive's rates (a stand-in rate far above any edge skips it here).
-    from .core.design import validate_spec
+    # waits for the archive's rates.
+    from .core.design import validate_spec_without_rate
     from .errors import SpecError
 
     try:
-        validate_spec(cfg.response, 1e15)
+        validate_spec_without_rate(cfg.response)
     except SpecError as e:
         raise ConfigError(f"{src}: [response] {e}") from None
 

@@ -39,7 +39,10 @@ from scipy import optimize, signal
 
 from twinpass.core.effective import (
     dominant_pole_radius,
+    ROUNDING_SAFETY,
+    analytic_rounding_estimate,
     effective_length,
+    measured_rounding,
     pole_near_edge,
     rounding_dominant_pole,
     rounding_estimate,
@@ -50,6 +53,7 @@ from twinpass.errors import DesignError, SpecError
 
 __all__ = [
     "validate_spec",
+    "validate_spec_without_rate",
     "design_filter",
     "design_for_rates",
     "response_report",
@@ -62,6 +66,7 @@ __all__ = [
     "HALF_POWER_DB",
     "FIR_PREFERENCE",
     "HALF_AMPLITUDE_DB",
+    "ROUNDING_LIMIT",
 ]
 
 HALF_POWER_DB: float = 10.0 * math.log10(0.5)
@@ -73,10 +78,27 @@ IIR_FAMILIES: tuple[str, ...] = ("butterworth", "chebyshev1", "chebyshev2", "ell
 CUTOFF_MEANINGS: tuple[str, ...] = ("overall-3db", "per-pass")
 POLE_RADIUS_LIMIT: float = 1.0 - 1e-9
 """Designs with a pole radius above this are rejected as badly conditioned."""
+ROUNDING_LIMIT: float = 1e-6
+"""Designs whose cascade's measured rounding estimate (``ROUNDING_SAFETY`` times
+:func:`~twinpass.core.effective.measured_rounding`, of full scale) exceeds this are refused:
+with the estimate's tenfold headroom their rounding reaches 1e-7 of full scale on ordinary
+input, the resolution of a 24-bit recording (2**-23 = 1.2e-7) and twice a float32 output's
+(2**-24 = 6e-8), so the filter would add noise above the recording's own; and it grows by
+orders of magnitude with a few more orders (Chebyshev I low-pass, 100 Hz at 1 kHz: 2.3e-8 at
+order 32, 2.3e-6 at 40, 1.9e-4 at 48)."""
 SPEC_SLACK_DB: float = 1e-6
 """Rounding slack (dB) allowed when checking a design against the overall spec."""
 CUTOFF_SLACK_DB: float = 1e-3
 """Largest accepted distance (dB) of the overall gain from -3.0103 dB at a corrected cutoff."""
+EQUIRIPPLE_STOPBAND: tuple[str, ...] = ("chebyshev2", "elliptic")
+"""Families whose stopband ripples at exactly the designed attenuation."""
+ROUNDING_MISS_DB: float = 0.01
+"""A tolerance design of an ``EQUIRIPPLE_STOPBAND`` family that misses the overall
+attenuation by at most this (dB) misses by coefficient rounding: its stopband peaks sit at
+exactly the designed attenuation, and a higher order cannot lift them."""
+STOPBAND_MARGIN_DB: float = 0.01
+"""Per-pass attenuation (dB) added to such a design after a miss of at most
+``ROUNDING_MISS_DB`` (0.02 dB overall, twice the largest miss it answers)."""
 FIR_PREFERENCE: float = 0.5
 """``auto`` takes FIR only if its cost is below this fraction of the best IIR cost."""
 
@@ -214,8 +236,24 @@ def validate_spec(spec: ResponseSpec, sample_rate_hz: float | None) -> None:
         notch without ``notch_hz`` or without exactly one of width and Q; an order above
         ``max_order``.
     """
-    fs = _check_sample_rate(sample_rate_hz)
-    nyq = fs / 2.0
+    _validate(spec, _check_sample_rate(sample_rate_hz) / 2.0)
+
+
+def validate_spec_without_rate(spec: ResponseSpec) -> None:
+    """Check what :func:`validate_spec` checks that holds at every sample rate.
+
+    The checks against the Nyquist frequency wait for a rate; no message names one.
+
+    Raises
+    ------
+    SpecError
+        As :func:`validate_spec`, but never for an edge at or above Nyquist.
+    """
+    _validate(spec, math.inf)
+
+
+def _validate(spec: ResponseSpec, nyq: float) -> None:
+    """:func:`validate_spec` at Nyquist frequency ``nyq`` (Hz; infinite: not known yet)."""
     if spec.kind not in KINDS:
         raise SpecError(f"kind={spec.kind!r} is not known; use one of {', '.join(KINDS)}.")
     if spec.family not in FAMILIES:
@@ -343,10 +381,8 @@ def _validate_notch(spec: ResponseSpec, nyq: float) -> None:
         )
     f0 = float(spec.notch_hz)
     if not math.isfinite(f0) or not 0.0 < f0 < nyq:
-        raise SpecError(
-            f"notch_hz={_fmt(spec.notch_hz)} must lie between 0 Hz and the Nyquist frequency "
-            f"{nyq:g} Hz."
-        )
+        upper = f"the Nyquist frequency {nyq:g} Hz" if math.isfinite(nyq) else "the Nyquist frequency"
+        raise SpecError(f"notch_hz={_fmt(spec.notch_hz)} must lie between 0 Hz and {upper}.")
     if (spec.notch_width_hz is None) == (spec.notch_q is None):
         raise SpecError(
             "a notch filter needs exactly one of notch_width_hz (overall -3 dB width, Hz) and "
@@ -367,10 +403,8 @@ def _validate_notch(spec: ResponseSpec, nyq: float) -> None:
         name = f"notch_width_hz={width:g}"
     limit = 2.0 * min(f0, nyq - f0)
     if not width < limit:
-        raise SpecError(
-            f"{name} does not fit around notch_hz={f0:g} between 0 Hz and Nyquist {nyq:g} Hz; "
-            f"use a width below {limit:g} Hz."
-        )
+        room = f"between 0 Hz and Nyquist {nyq:g} Hz" if nyq - f0 < f0 else "above 0 Hz"
+        raise SpecError(f"{name} does not fit around notch_hz={f0:g} {room}; use a width below {limit:g} Hz.")
     others = [
         n for n in ("passband_hz", "stopband_hz", "order", "cutoff_hz") if getattr(spec, n) is not None
     ]
@@ -873,12 +907,27 @@ def _iir_tolerance(spec: ResponseSpec, family: str, fs: float) -> tuple[np.ndarr
         )
     wn_arg = _edges_arg(np.atleast_1d(wn))
     last = (math.inf, -math.inf)
+    raised, margin = False, 0.0
     while order <= spec.max_order:
-        sos = _iir(family, order, wn_arg, spec.kind, rp, rs, fs)
+        sos = _iir(family, order, wn_arg, spec.kind, rp, rs + margin, fs)
         check_sos(sos)
         last = _measure(sos, None, spec, fs)
         if _meets(*last, spec):
             return sos, order
+        short = float(spec.stopband_attenuation_db) - last[1]
+        if family in EQUIRIPPLE_STOPBAND and 0.0 < short <= ROUNDING_MISS_DB:
+            if not raised:  # the same order again, its stopband a little deeper
+                raised, margin = True, STOPBAND_MARGIN_DB
+                continue
+            raise DesignError(
+                f"the {family} {spec.kind} misses the overall attenuation by {short:.3g} dB at order {order} "
+                f"({last[1]:.9g} dB for {spec.stopband_attenuation_db:g}) even designed for "
+                f"{STOPBAND_MARGIN_DB:g} dB more per pass: its stopband ripples at the designed attenuation, "
+                "and rounding its coefficients to float64 lifts it at these band edges relative to the "
+                "sample rate, which a higher order cannot help; lower the sample rate (decimate first) so "
+                "the band edges lie further from 0 Hz and Nyquist, or use family 'chebyshev1' or "
+                "'butterworth' (a stopband falling away from its edge) or 'fir'."
+            )
         order += 1
     raise DesignError(
         f"the {family} {spec.kind} misses the overall spec at every order up to max_order="
@@ -1150,8 +1199,46 @@ def _fixed_family(spec: ResponseSpec) -> str:
     return "butterworth" if spec.family == "auto" else spec.family
 
 
+def _cascade_remedy(spec: ResponseSpec) -> str:
+    """What shortens a cascade whose rounding is too large (lower case, no final stop)."""
+    if spec.mode == "tolerance":
+        return (
+            "lower the order (widen the transition band or relax ripple or attenuation), or use "
+            "family 'elliptic' or 'auto', which reach the same spec at a far lower order"
+        )
+    return (
+        "lower the order, or give the response as a tolerance spec (passband_hz, stopband_hz, "
+        "passband_ripple_db, stopband_attenuation_db) with family 'elliptic' or 'auto', which "
+        "reach a given transition band at a far lower order"
+    )
+
+
+def _check_cascade_rounding(sos: np.ndarray, spec: ResponseSpec, family: str, order: int) -> None:
+    """Refuse a cascade whose measured float64 rounding estimate exceeds ``ROUNDING_LIMIT``.
+
+    Raises
+    ------
+    DesignError
+        Naming the cause (float64 rounding of a long, sharp cascade) and the remedies.
+    """
+    cascade = ROUNDING_SAFETY * measured_rounding(sos)
+    if cascade <= ROUNDING_LIMIT:
+        return
+    remedy = _cascade_remedy(spec)
+    raise DesignError(
+        f"the {family} {spec.kind} of order {order} per pass cannot be computed in float64: its "
+        f"cascade of {sos.shape[0]} sections is so long and sharp that float64 rounding grows to an "
+        f"estimated {cascade:.2g} of full scale (limit {ROUNDING_LIMIT:g}; measured by running both "
+        f"passes in float64 and in extended precision); {remedy}."
+    )
+
+
 def _candidate(spec: ResponseSpec, family: str, fs: float) -> tuple[np.ndarray | None, np.ndarray | None, int]:
-    """(sos, taps, order per pass) for one resolved family."""
+    """(sos, taps, order per pass) for one resolved family.
+
+    An IIR design (not a notch) whose cascade rounds beyond ``ROUNDING_LIMIT`` raises
+    :class:`~twinpass.errors.DesignError` (see :func:`_check_cascade_rounding`).
+    """
     if spec.kind == "notch":
         return _notch(spec, fs), None, 2
     if spec.mode == "tolerance":
@@ -1159,11 +1246,14 @@ def _candidate(spec: ResponseSpec, family: str, fs: float) -> tuple[np.ndarray |
             taps = _fir_tolerance(spec, fs)
             return None, taps, int(taps.size - 1)
         sos, order = _iir_tolerance(spec, family, fs)
+        _check_cascade_rounding(sos, spec, family, order)
         return sos, None, order
     if family == "fir":
         taps = _fir_fixed(spec, fs)
         return None, taps, int(taps.size - 1)
-    return _iir_fixed(spec, family, fs), None, int(spec.order or 0)
+    sos = _iir_fixed(spec, family, fs)
+    _check_cascade_rounding(sos, spec, family, int(spec.order or 0))
+    return sos, None, int(spec.order or 0)
 
 
 def _auto(spec: ResponseSpec, fs: float) -> tuple[str, np.ndarray | None, np.ndarray | None, int]:
@@ -1220,7 +1310,8 @@ def design_filter(spec: ResponseSpec, sample_rate_hz: float, tolerance: float = 
     SpecError
         Invalid spec, or the minimum order exceeds ``max_order`` (``max_taps`` for FIR).
     DesignError
-        The design is unstable, badly conditioned, or misses the overall spec.
+        The design is unstable, badly conditioned, rounds in float64 beyond
+        ``ROUNDING_LIMIT`` (a long, sharp cascade), or misses the overall spec.
 
     Notes
     -----
@@ -1329,7 +1420,8 @@ def _named_edges(design: Design) -> list[tuple[str, float]]:
 
 
 def _rounding_remedy(design: Design) -> str:
-    """What moves the poles that dominate the rounding estimate away from the unit circle.
+    """What lowers the rounding estimate: a shorter cascade when its measured rounding
+    dominates, else moving the poles that dominate it away from the unit circle.
 
     Their distance from it is about pi times the width of the feature they shape over the
     sample rate: a notch or narrow band away from 0 Hz and Nyquist is widened (or the rate
@@ -1341,6 +1433,9 @@ def _rounding_remedy(design: Design) -> str:
         return "Widen the notch (notch_width_hz, or a lower notch_q) or lower the sample rate (decimate first)"
     if design.sos is None:
         return "Use fewer taps (a wider transition band)"
+    if ROUNDING_SAFETY * measured_rounding(design.sos) > analytic_rounding_estimate(sos=design.sos):
+        remedy = _cascade_remedy(design.spec)
+        return f"The rounding comes from the length and sharpness of the cascade of sections: {remedy}"
     pole = rounding_dominant_pole(design.sos)
     hz = abs(math.atan2(pole.imag, pole.real)) * design.sample_rate_hz / (2.0 * math.pi)
     if not pole_near_edge(pole):

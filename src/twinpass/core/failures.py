@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from twinpass.core.checks import FAIL, WARN, Finding, findings
+from twinpass.core.checks import FAIL, WARN, Finding, findings, seam_scale
 from twinpass.core.types import Design
 
 if TYPE_CHECKING:  # the configuration module is not part of the numeric core
@@ -145,6 +145,17 @@ _ORDER = ("response", "integrity", "seam", "unexplained", "follows")
 _CAUSE = {"response": "response check", "integrity": "integrity check"}
 
 
+def _seam_remedy(design: Design, tolerance: float) -> str:
+    """The seam remedy: the halo, or the design's float64 rounding when its estimate exceeds
+    the tolerance (see :func:`twinpass.core.checks.seam_scale`)."""
+    scale = seam_scale(design, tolerance)
+    if scale <= float(tolerance):
+        return _REMEDIES["seam"]
+    return (f"rerun; a seam mismatch that stays means this filter's float64 rounding (estimated at "
+            f"{scale:.2g} of full scale, above the tolerance {float(tolerance):g}: see the design report's "
+            "caution and its remedies) is larger than estimated, or the halo is too short for it")
+
+
 def _kind(f: Finding) -> str:
     return "response" if f.response else "seam" if f.figure == "seam_mismatch" else "integrity"
 
@@ -204,7 +215,8 @@ def explain(files: Sequence[FileBlocks | None], design: Design, cfg: ChecksConfi
         rank = {"response": 0, "integrity": 0, "seam": 1, "unexplained": 1, "follows": 2}
         first = sorted(failed, key=lambda f: (min(rank[kd] for kd in f.kinds), f.index))
         present = set().union(*(f.kinds for f in failed))
-        remedy = "; ".join(_REMEDIES[kd] for kd in _ORDER if kd in present) + f"; {RERUN}"
+        remedies = {**_REMEDIES, "seam": _seam_remedy(design, tolerance)}
+        remedy = "; ".join(remedies[kd] for kd in _ORDER if kd in present) + f"; {RERUN}"
         n = len(failed)
         shown = "; ".join(f.text for f in first[:SHOWN])
         more = f"; and {n - SHOWN} more (`twinpass status` lists them)" if n > SHOWN else ""
