@@ -190,6 +190,30 @@ def test_second_run_on_a_locked_store_is_refused(tmp_path):
     assert not (Path(cfg.store_location) / LOCK_NAME).exists()  # released by its holder
 
 
+def test_locked_store_message_says_the_lock_is_recovered_and_when_to_delete_it(tmp_path):
+    from twinpass.errors import StoreLockedError
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    cfg = load(tmp_path)
+    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    lock = Path(cfg.store_location) / LOCK_NAME
+    with store.lock("holder-run"):  # held by this live process, on this host
+        with pytest.raises(StoreLockedError) as e:
+            run(cfg)
+    msg = str(e.value)
+    assert "recovered automatically" in msg and "no longer running" in msg, msg
+    assert "delete" not in msg.replace("no need to delete it", ""), msg  # no advice to delete it by hand
+    far = dataclasses.replace(LockInfo.new("far-run"), host="another-host.invalid")
+    lock.write_bytes(far.to_bytes())
+    with pytest.raises(StoreLockedError) as e:
+        run(cfg)
+    msg = str(e.value)
+    assert "far-run" in msg and "another host" in msg and "another-host.invalid" in msg, msg
+    assert f"Delete {lock} by hand only if another-host.invalid is gone" in msg, msg
+    assert lock.read_bytes() == far.to_bytes()  # a lock from another host is never taken over
+
+
 def test_stale_lock_of_a_dead_process_is_recovered(tmp_path, caplog):
     root = tmp_path / "archive"
     write_wav(root, "a.wav", pcm16(500))
@@ -238,6 +262,7 @@ def test_status_names_a_run_that_died_holding_the_lock_and_one_still_writing(tmp
     lock.write_bytes(dataclasses.replace(LockInfo.new("far-run"), host="another-host").to_bytes())
     out = run_cli(["status", str(config)]).stdout
     assert "holds the store's lock from another host" in out, out
+    assert "recovers the lock automatically" in out and "only if that host is gone for good" in out, out
     lock.unlink()
     r = run_cli(["status", str(config), "--require-complete"], check=False)
     assert r.returncode == 0 and "store's lock" not in r.stdout and "writing" not in r.stdout, r.stdout + r.stderr

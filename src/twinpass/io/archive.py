@@ -440,7 +440,9 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                     f"the output store {folder} is being written by {writing} of the earlier job, which may "
                     "rewrite this array while this job reads it",
                     "run this job again once that run has ended (`twinpass status` on that store names a run "
-                    f"holding it); if no run is using that store, delete {os.path.join(folder, LOCK_NAME)}",
+                    "holding it; a lock whose run is no longer running on this host does not hold this job back); "
+                    f"delete {os.path.join(folder, LOCK_NAME)} by hand only if it was taken on another host that "
+                    "is gone for good, or it cannot be read and no run is using that store",
                 ))
             elif gone_since(array_attributes(os.path.join(folder, name))) is not None:
                 orphans.append(ident)
