@@ -822,6 +822,7 @@ def test_a_setup_mistake_through_the_flow_is_one_line_without_a_traceback(prefec
         assert "Traceback" not in r.stdout + r.stderr, r.stderr
         ours = [line for line in r.stderr.splitlines() if line.startswith("twinpass: error:")]
         assert len(ours) == 1 and said in ours[0], r.stderr
+    assert not (tmp_path / "out.zarr").exists()  # the run could not begin: no store was created
 
 
 # ------------------------------------------------------------------------- CLI

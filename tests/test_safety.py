@@ -325,6 +325,19 @@ def test_store_may_not_overlap_the_archive(tmp_path, capsys, store, message):
     assert _snapshot(tmp_path) == before  # nothing created or touched
 
 
+@pytest.mark.parametrize("archive, said", [({"root": "missing"}, "is not a folder"),
+                                           ({"manifest": "archive/missing.csv"}, "manifest")])
+def test_a_run_that_cannot_begin_creates_no_store(tmp_path, capsys, archive, said):
+    write_wav(tmp_path / "archive", "a.wav", pcm16(300))
+    config = write_config(tmp_path, archive=archive)
+    before = _snapshot(tmp_path)
+    assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("twinpass: error: ") and said in err and err.count("\n") == 0, err
+    assert not Path(load_config(config).store_location).exists()
+    assert _snapshot(tmp_path) == before  # nothing created or touched
+
+
 def test_plan_refuses_a_store_inside_the_archive(tmp_path, capsys):
     write_wav(tmp_path / "archive", "a.wav", pcm16(300))
     config = write_config(tmp_path, output={"store": "archive/filtered.zarr"})

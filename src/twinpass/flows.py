@@ -75,7 +75,8 @@ from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStopped
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
-from .job import Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
+from .job import (Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso,
+                  open_run_store, prepare)
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -604,7 +605,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         run_id, started, store, held = head.run_id, head.started, head.store, head.held()
     else:
         run_id, started = uuid.uuid4().hex[:12], now_iso()
-        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        store = open_run_store(cfg)
         held = store.lock(run_id)
     durations: dict[str, float] = {}
     failed_files: list[str] = []
