@@ -190,6 +190,30 @@ def test_second_run_on_a_locked_store_is_refused(tmp_path):
     assert not (Path(cfg.store_location) / LOCK_NAME).exists()  # released by its holder
 
 
+def test_a_lock_that_cannot_be_removed_is_a_warning_and_the_run_stands(tmp_path, monkeypatch, capsys, caplog):
+    """Removing the lock raises EROFS (an injected fault): the run's own outcome stands, and the
+    warning names the lock file and says the next run recovers it."""
+    from twinpass.io import store_lock
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    config = write_config(tmp_path)
+    lock = Path(load_config(config).store_location) / LOCK_NAME
+
+    def read_only(self):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(self.path))
+
+    monkeypatch.setattr(store_lock.LocalLockFile, "remove", read_only)
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 0
+    out = capsys.readouterr().out
+    assert "complete 1," in out, out
+    err = "\n".join(r.getMessage() for r in caplog.records if r.name == "twinpass.store")
+    assert f"could not remove the output store lock {lock}" in err and "Read-only file system" in err, err
+    assert "the next run" in err and "recovers it automatically" in err, err
+    assert lock.is_file()  # left behind, as said
+
+
 def test_locked_store_message_says_the_lock_is_recovered_and_when_to_delete_it(tmp_path):
     from twinpass.errors import StoreLockedError
 

@@ -251,13 +251,26 @@ def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> bool:
 
 
 def release(lock: LockFile, info: LockInfo) -> None:
-    """Remove the lock if it is still held by ``info``; warn otherwise."""
-    raw = lock.read()
-    holder = None if raw is None else LockInfo.parse(raw)
-    if holder is not None and holder.token == info.token:
+    """Remove the lock if it is still held by ``info``; warn otherwise. Never raises.
+
+    A lock that cannot be read or removed (the store's file system gone read-only, an I/O
+    error) is left behind with a warning naming it: the run's own outcome, or the error that
+    ended it, is what the caller reports. Once this process has ended, the next run on this
+    host finds that lock stale and recovers it (:func:`acquire`).
+    """
+    try:
+        raw = lock.read()
+        holder = None if raw is None else LockInfo.parse(raw)
+        if holder is None or holder.token != info.token:
+            log.warning(
+                "output store lock %s was no longer held by %s at the end of the run; left as found",
+                lock.where, info.describe(),
+            )
+            return
         lock.remove()
-    else:
+    except Exception as e:  # any back end's error: the release must not replace the run's outcome
         log.warning(
-            "output store lock %s was no longer held by %s at the end of the run; left as found",
-            lock.where, info.describe(),
+            "could not remove the output store lock %s (%s: %s); it is left behind, and the next run "
+            "on host %s recovers it automatically once this process (pid %d) has ended",
+            lock.where, type(e).__name__, e, info.host, info.pid,
         )
