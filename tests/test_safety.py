@@ -238,6 +238,75 @@ def test_locked_store_message_says_the_lock_is_recovered_and_when_to_delete_it(t
     assert lock.read_bytes() == far.to_bytes()  # a lock from another host is never taken over
 
 
+def test_a_run_record_and_lock_that_cannot_be_written_end_the_run_with_the_stores_error(
+        tmp_path, monkeypatch, capsys, caplog):
+    """Injected faults: writing the run's record raises the store's own error, and removing
+    the lock raises EROFS. The command prints the run's summary, then that error (exit 2); the
+    lock is a warning."""
+    from twinpass.io import store_lock
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    config = write_config(tmp_path)
+    store_path = Path(load_config(config).store_location)
+
+    def unwritable_record(self, entry, details=None):
+        raise StoreError(f"cannot write the run record of {self.location}: Read-only file system; "
+                         "check that the store location is writable")
+
+    def read_only(self):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(self.path))
+
+    monkeypatch.setattr(OutputStore, "append_run", unwritable_record)
+    monkeypatch.setattr(store_lock.LocalLockFile, "remove", read_only)
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
+    out, err = capsys.readouterr()
+    assert "complete 1, skipped (unchanged) 0, failed 0" in out and f"store: {store_path}" in out, out
+    assert err.strip().splitlines()[-1] == (f"twinpass: error: cannot write the run record of {store_path}: "
+                                            "Read-only file system; check that the store location is writable"), err
+    assert "Traceback" not in err and "OSError" not in err, err
+    assert any(f"could not remove the output store lock {store_path / LOCK_NAME}" in r.getMessage()
+               for r in caplog.records)
+
+
+def test_a_store_gone_read_only_during_the_run_ends_with_its_summary_and_the_stores_error(
+        tmp_path, monkeypatch, capsys, caplog):
+    """A real read-only file system (a tmpfs remounted read-only once the run has begun, before
+    its blocks are written): the files fail naming it, the run's record and the lock's removal
+    fail too, and the command ends with the summary and the store's clear error, not the lock's."""
+    from twinpass import job
+
+    with tmpfs(tmp_path / "disk", "8m") as disk:
+        root = tmp_path / "archive"
+        write_wav(root, "a.wav", pcm16(500))
+        config = write_config(tmp_path, output={"store": str(disk / "out.zarr")})
+        real_begin = job.begin_run
+
+        def begin_then_read_only(store, prep):
+            real_begin(store, prep)
+            _mount("-o", "remount,ro", str(disk))
+
+        monkeypatch.setattr(job, "begin_run", begin_then_read_only)
+        try:
+            with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+                assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
+        finally:
+            _mount("-o", "remount,rw", str(disk))
+        out, err = capsys.readouterr()
+        assert "complete 0, skipped (unchanged) 0, failed 1" in out, out
+        assert "failed: a.wav: " in out and "Read-only file system" in out, out
+        last = err.strip().splitlines()[-1]
+        assert last.startswith("twinpass: error: cannot write") and "Read-only file system" in last, err
+        assert "writable" in last and "twinpass-lock" not in last and "Traceback" not in err, err
+        lock = disk / "out.zarr" / LOCK_NAME
+        assert any(f"could not remove the output store lock {lock}" in r.getMessage()
+                   and "recovers it" in r.getMessage() for r in caplog.records)
+        assert lock.is_file()
+        records = OutputStore.open(str(disk / "out.zarr"), mode="r").file_records()
+        assert not any(r.complete for r in records.values())  # nothing marked complete
+
+
 def test_stale_lock_of_a_dead_process_is_recovered(tmp_path, caplog):
     root = tmp_path / "archive"
     write_wav(root, "a.wav", pcm16(500))

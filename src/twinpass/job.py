@@ -33,7 +33,7 @@ from .engine import (
     run_segment,
     segment_notes,
 )
-from .errors import ArchiveError, SpecError, TwinpassError
+from .errors import ArchiveError, RunNotRecordedError, SpecError, TwinpassError
 from .io.archive import Discovery, check_archive_root, discover, output_name
 from .io.store import OutputStore
 from .io.store_input import INPUT_GONE
@@ -494,6 +494,14 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
     RunResult
         Per-file outcomes; a segment whose driver raised has its files ``"failed"`` with
         the error under block index -1, and the other segments still run.
+
+    Raises
+    ------
+    RunNotRecordedError
+        The blocks ended but the run could not be recorded in the store; its ``result``
+        holds the outcomes.
+    TwinpassError
+        The run could not begin (configuration, archive, a locked or unusable store).
     """
 
     say = log_fn or log.info
@@ -524,7 +532,10 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
-        finish_run(store, result, cfg)
+        try:
+            finish_run(store, result, cfg)
+        except TwinpassError as e:  # the store's own error, with the outcome the caller shows first
+            raise RunNotRecordedError(str(e), result) from e
     return result
 
 
