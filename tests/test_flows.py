@@ -415,6 +415,79 @@ def test_locked_store_exits_2_naming_the_lock(prefect_server, npy_archive, tmp_p
     assert "twinpass: error:" in err and "another-run" in err, err
 
 
+def test_a_run_that_cannot_be_recorded_ends_with_its_summary_and_the_stores_error(prefect_client, npy_archive,
+                                                                                  tmp_path, monkeypatch, capsys,
+                                                                                  caplog):
+    # Injected faults: the store refuses the run's record (its own error, as on a file system
+    # gone read-only) and the lock's removal raises EROFS. The flow run ends Failed naming the
+    # store's error; the command prints the run's summary, then that error (exit 2).
+    import errno
+
+    from twinpass.errors import StoreError
+    from twinpass.io import store_lock
+
+    cfg = write_job(tmp_path, npy_archive)
+    monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")
+    store_path = tmp_path / "out.zarr"
+    said = (f"cannot write the run record of {store_path}: Read-only file system; "
+            "check that the store location is writable")
+
+    def unwritable_record(self, entry, details=None):
+        raise StoreError(said)
+
+    def read_only(self):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(self.path))
+
+    monkeypatch.setattr(OutputStore, "append_run", unwritable_record)
+    monkeypatch.setattr(store_lock.LocalLockFile, "remove", read_only)
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        assert cli.main(["run", str(cfg), "--no-report"]) == 2
+    out, err = capsys.readouterr()
+    assert f"complete {len(ALL_FILES)}, skipped (unchanged) 0, failed 0" in out and f"store: {store_path}" in out, out
+    assert err.strip().splitlines()[-1] == f"twinpass: error: {said}", err
+    assert "Traceback" not in err and "OSError" not in out + err, err
+    assert any(f"could not remove the output store lock {store_path / '.twinpass-lock'}" in r.getMessage()
+               for r in caplog.records)
+    run = _flow_run_of(prefect_client, cfg)
+    assert run.state.is_failed() and run.state.message == flows.RUN_UNRECORDED + said, run.state.message
+
+
+def test_a_store_gone_read_only_mid_run_ends_the_flow_command_with_the_stores_error(prefect_client, npy_archive,
+                                                                                   tmp_path, monkeypatch, capsys):
+    # A real read-only file system (Linux mount(8): a tmpfs remounted read-only once the run
+    # has begun, before its blocks are written; root only): the command ends with the run's
+    # summary and the store's clear error, not with the lock's removal failing.
+    from test_safety import _mount, tmpfs
+    from twinpass import headstart
+
+    with tmpfs(tmp_path / "disk", "16m") as disk:
+        cfg = write_job(tmp_path, npy_archive, store=(disk / "out.zarr").as_posix())
+        monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")
+        for module in (flows, headstart):
+            real = module.begin_run
+
+            def begin_then_read_only(store, prep, real=real):
+                real(store, prep)
+                _mount("-o", "remount,ro", str(disk))
+
+            monkeypatch.setattr(module, "begin_run", begin_then_read_only)
+        try:
+            assert cli.main(["run", str(cfg), "--no-report"]) == 2
+        finally:
+            _mount("-o", "remount,rw", str(disk))
+        out, err = capsys.readouterr()
+        assert f"complete 0, skipped (unchanged) 0, failed {len(ALL_FILES)}" in out, out
+        assert "Read-only file system" in out and f"store: {disk / 'out.zarr'}" in out, out
+        last = err.strip().splitlines()[-1]
+        assert last.startswith("twinpass: error: cannot write") and "Read-only file system" in last, err
+        assert "writable" in last and "twinpass-lock" not in last and "OSError" not in last, err
+        assert (disk / "out.zarr" / ".twinpass-lock").is_file()  # left for the next run to recover
+        run = _flow_run_of(prefect_client, cfg)
+        assert run.state.is_failed() and run.state.message.startswith(flows.RUN_UNRECORDED), run.state.message
+        records = OutputStore.open(str(disk / "out.zarr"), mode="r").file_records()
+        assert not any(r.complete for r in records.values())  # nothing marked complete
+
+
 def test_a_stale_lock_recovered_by_the_command_is_said_in_the_flow_runs_log(prefect_client, npy_archive, tmp_path,
                                                                            monkeypatch):
     # A run killed without releasing the store's lock (kill -9, a machine going down) leaves
@@ -822,6 +895,7 @@ def test_a_setup_mistake_through_the_flow_is_one_line_without_a_traceback(prefec
         assert "Traceback" not in r.stdout + r.stderr, r.stderr
         ours = [line for line in r.stderr.splitlines() if line.startswith("twinpass: error:")]
         assert len(ours) == 1 and said in ours[0], r.stderr
+    assert not (tmp_path / "out.zarr").exists()  # the run could not begin: no store was created
 
 
 # ------------------------------------------------------------------------- CLI

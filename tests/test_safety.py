@@ -190,6 +190,123 @@ def test_second_run_on_a_locked_store_is_refused(tmp_path):
     assert not (Path(cfg.store_location) / LOCK_NAME).exists()  # released by its holder
 
 
+def test_a_lock_that_cannot_be_removed_is_a_warning_and_the_run_stands(tmp_path, monkeypatch, capsys, caplog):
+    """Removing the lock raises EROFS (an injected fault): the run's own outcome stands, and the
+    warning names the lock file and says the next run recovers it."""
+    from twinpass.io import store_lock
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    config = write_config(tmp_path)
+    lock = Path(load_config(config).store_location) / LOCK_NAME
+
+    def read_only(self):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(self.path))
+
+    monkeypatch.setattr(store_lock.LocalLockFile, "remove", read_only)
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 0
+    out = capsys.readouterr().out
+    assert "complete 1," in out, out
+    err = "\n".join(r.getMessage() for r in caplog.records if r.name == "twinpass.store")
+    assert f"could not remove the output store lock {lock}" in err and "Read-only file system" in err, err
+    assert "the next run" in err and "recovers it automatically" in err, err
+    assert lock.is_file()  # left behind, as said
+
+
+def test_locked_store_message_says_the_lock_is_recovered_and_when_to_delete_it(tmp_path):
+    from twinpass.errors import StoreLockedError
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    cfg = load(tmp_path)
+    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    lock = Path(cfg.store_location) / LOCK_NAME
+    with store.lock("holder-run"):  # held by this live process, on this host
+        with pytest.raises(StoreLockedError) as e:
+            run(cfg)
+    msg = str(e.value)
+    assert "recovered automatically" in msg and "no longer running" in msg, msg
+    assert "delete" not in msg.replace("no need to delete it", ""), msg  # no advice to delete it by hand
+    far = dataclasses.replace(LockInfo.new("far-run"), host="another-host.invalid")
+    lock.write_bytes(far.to_bytes())
+    with pytest.raises(StoreLockedError) as e:
+        run(cfg)
+    msg = str(e.value)
+    assert "far-run" in msg and "another host" in msg and "another-host.invalid" in msg, msg
+    assert f"Delete {lock} by hand only if another-host.invalid is gone" in msg, msg
+    assert lock.read_bytes() == far.to_bytes()  # a lock from another host is never taken over
+
+
+def test_a_run_record_and_lock_that_cannot_be_written_end_the_run_with_the_stores_error(
+        tmp_path, monkeypatch, capsys, caplog):
+    """Injected faults: writing the run's record raises the store's own error, and removing
+    the lock raises EROFS. The command prints the run's summary, then that error (exit 2); the
+    lock is a warning."""
+    from twinpass.io import store_lock
+
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    config = write_config(tmp_path)
+    store_path = Path(load_config(config).store_location)
+
+    def unwritable_record(self, entry, details=None):
+        raise StoreError(f"cannot write the run record of {self.location}: Read-only file system; "
+                         "check that the store location is writable")
+
+    def read_only(self):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(self.path))
+
+    monkeypatch.setattr(OutputStore, "append_run", unwritable_record)
+    monkeypatch.setattr(store_lock.LocalLockFile, "remove", read_only)
+    with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+        assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
+    out, err = capsys.readouterr()
+    assert "complete 1, skipped (unchanged) 0, failed 0" in out and f"store: {store_path}" in out, out
+    assert err.strip().splitlines()[-1] == (f"twinpass: error: cannot write the run record of {store_path}: "
+                                            "Read-only file system; check that the store location is writable"), err
+    assert "Traceback" not in err and "OSError" not in err, err
+    assert any(f"could not remove the output store lock {store_path / LOCK_NAME}" in r.getMessage()
+               for r in caplog.records)
+
+
+def test_a_store_gone_read_only_during_the_run_ends_with_its_summary_and_the_stores_error(
+        tmp_path, monkeypatch, capsys, caplog):
+    """A real read-only file system (a tmpfs remounted read-only once the run has begun, before
+    its blocks are written): the files fail naming it, the run's record and the lock's removal
+    fail too, and the command ends with the summary and the store's clear error, not the lock's."""
+    from twinpass import job
+
+    with tmpfs(tmp_path / "disk", "8m") as disk:
+        root = tmp_path / "archive"
+        write_wav(root, "a.wav", pcm16(500))
+        config = write_config(tmp_path, output={"store": str(disk / "out.zarr")})
+        real_begin = job.begin_run
+
+        def begin_then_read_only(store, prep):
+            real_begin(store, prep)
+            _mount("-o", "remount,ro", str(disk))
+
+        monkeypatch.setattr(job, "begin_run", begin_then_read_only)
+        try:
+            with caplog.at_level(logging.WARNING, logger="twinpass.store"):
+                assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
+        finally:
+            _mount("-o", "remount,rw", str(disk))
+        out, err = capsys.readouterr()
+        assert "complete 0, skipped (unchanged) 0, failed 1" in out, out
+        assert "failed: a.wav: " in out and "Read-only file system" in out, out
+        last = err.strip().splitlines()[-1]
+        assert last.startswith("twinpass: error: cannot write") and "Read-only file system" in last, err
+        assert "writable" in last and "twinpass-lock" not in last and "Traceback" not in err, err
+        lock = disk / "out.zarr" / LOCK_NAME
+        assert any(f"could not remove the output store lock {lock}" in r.getMessage()
+                   and "recovers it" in r.getMessage() for r in caplog.records)
+        assert lock.is_file()
+        records = OutputStore.open(str(disk / "out.zarr"), mode="r").file_records()
+        assert not any(r.complete for r in records.values())  # nothing marked complete
+
+
 def test_stale_lock_of_a_dead_process_is_recovered(tmp_path, caplog):
     root = tmp_path / "archive"
     write_wav(root, "a.wav", pcm16(500))
@@ -238,6 +355,7 @@ def test_status_names_a_run_that_died_holding_the_lock_and_one_still_writing(tmp
     lock.write_bytes(dataclasses.replace(LockInfo.new("far-run"), host="another-host").to_bytes())
     out = run_cli(["status", str(config)]).stdout
     assert "holds the store's lock from another host" in out, out
+    assert "recovers the lock automatically" in out and "only if that host is gone for good" in out, out
     lock.unlink()
     r = run_cli(["status", str(config), "--require-complete"], check=False)
     assert r.returncode == 0 and "store's lock" not in r.stdout and "writing" not in r.stdout, r.stdout + r.stderr
@@ -297,6 +415,19 @@ def test_store_may_not_overlap_the_archive(tmp_path, capsys, store, message):
     assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith("twinpass: error: ") and message in err and err.count("\n") == 0
+    assert _snapshot(tmp_path) == before  # nothing created or touched
+
+
+@pytest.mark.parametrize("archive, said", [({"root": "missing"}, "is not a folder"),
+                                           ({"manifest": "archive/missing.csv"}, "manifest")])
+def test_a_run_that_cannot_begin_creates_no_store(tmp_path, capsys, archive, said):
+    write_wav(tmp_path / "archive", "a.wav", pcm16(300))
+    config = write_config(tmp_path, archive=archive)
+    before = _snapshot(tmp_path)
+    assert cli.main(["run", str(config), "--no-flow", "--no-report"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("twinpass: error: ") and said in err and err.count("\n") == 0, err
+    assert not Path(load_config(config).store_location).exists()
     assert _snapshot(tmp_path) == before  # nothing created or touched
 
 

@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, Sequence
 
 from . import __version__
-from .errors import ConfigError, ReportNotWrittenError, TwinpassError
+from .errors import ConfigError, ReportNotWrittenError, RunNotRecordedError, TwinpassError
 from .startup import start_up_imports
 
 EXIT_LEFT_OUT = 3
@@ -237,15 +237,14 @@ def cmd_run(args: argparse.Namespace) -> int:
         with bar.over_logs():
             res = run_job(cfg, force=args.force, scheduler=args.scheduler, workers=args.workers, on_block=bar,
                           log_fn=say)
+    except RunNotRecordedError as e:  # what the run did, then the store's error (exit status 2)
+        if e.result is not None:
+            _print_result(e.result)
+            print(f"store: {cfg.store_location}")
+        raise
     finally:
         bar.close(count=sys.exc_info()[0] is None)
-    c = res.counts()
-    print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
-          f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
-    reasons = res.failure_reasons()
-    for f in res.failed:
-        print(f"failed: {f}: {reasons[f]}")
-    _print_warned(res.warnings())
+    _print_result(res)
     unwritten = None
     if not args.no_report:  # the run is recorded: a report that cannot be written does not change its status
         from .report_data import report_failure, write_report
@@ -258,6 +257,18 @@ def cmd_run(args: argparse.Namespace) -> int:
     if unwritten is not None:
         raise unwritten
     return res.exit_status()
+
+
+def _print_result(res: Any) -> None:
+    """The summary lines of a run of the engine alone (a :class:`twinpass.job.RunResult`):
+    counts, failed files with their reasons, warned files."""
+    c = res.counts()
+    print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
+          f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
+    reasons = res.failure_reasons()
+    for f in res.failed:
+        print(f"failed: {f}: {reasons[f]}")
+    _print_warned(res.warnings())
 
 
 def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None,
@@ -400,6 +411,8 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):
         _print_summary(summary)
+        if summary.get("unrecorded"):  # the run's blocks ended, its record could not be written
+            raise RunNotRecordedError(str(summary["unrecorded"]))
     report_error = summary.get("report_error") if isinstance(summary, dict) else None
     if state.is_completed():
         code = EXIT_LEFT_OUT if isinstance(summary, dict) and summary.get("invalid") else 0

@@ -63,6 +63,16 @@ class StoreLockedError(StoreError):
     """Another run holds the lock on the output store."""
 
 
+class RunNotRecordedError(StoreError):
+    """The run's blocks ended but its record could not be written to the store (the store's
+    file system went read-only or full meanwhile, say). ``result`` is the run's outcome
+    (a :class:`twinpass.job.RunResult`), for the command to show before the error."""
+
+    def __init__(self, message: str, result: object = None) -> None:
+        super().__init__(message)
+        self.result = result
+
+
 class UnsafePathError(StoreError):
     """A name derived from an input path would escape the store, or the store overlaps the inputs."""
 

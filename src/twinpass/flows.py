@@ -71,11 +71,12 @@ from .engine import (
     warm_compiled_loops,
     with_check_failures,
 )
-from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError
+from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError, TwinpassError
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
-from .job import Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
+from .job import (Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso,
+                  open_run_store, prepare)
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -586,7 +587,10 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         was asked for: the run's outcome stands either way, and the state's message says so). When files fail the flow
         ends Failed, naming them, with this summary as the state's data; when none failed
         but inputs were left out, in a COMPLETED state named ``LeftOut`` (:data:`STATE_LEFT_OUT`)
-        whose message names them.
+        whose message names them. When the blocks ended but the run could not be recorded in
+        the store (its file system gone read-only, say), the flow ends Failed, its message
+        :data:`RUN_UNRECORDED` and the store's error, with this summary (no report) and that
+        error under ``unrecorded`` as the state's data.
     """
     with flow_heartbeats():  # only when the caller asked for them (see twinpass.heartbeats)
         return _archive_run(config_path, force, scheduler, workers, config_block, report)
@@ -604,7 +608,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         run_id, started, store, held = head.run_id, head.started, head.store, head.held()
     else:
         run_id, started = uuid.uuid4().hex[:12], now_iso()
-        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        store = open_run_store(cfg)
         held = store.lock(run_id)
     durations: dict[str, float] = {}
     failed_files: list[str] = []
@@ -654,13 +658,20 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
-        finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
-    # The run is recorded: a report that cannot be written is said, and changes nothing else.
-    report_path, report_error = _write_report(cfg) if report else (None, None)
+        unrecorded: str | None = None
+        try:
+            finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
+        except TwinpassError as e:  # the store's own error: the run ends with it, its summary kept
+            unrecorded = str(e)
     summary = {"run_id": run_id, "counts": result.counts(), "failed": failed_files,
                "failed_reasons": result.failure_reasons(), "warned": result.warnings(),
-               "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": report_path,
-               "report_error": report_error}
+               "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": None,
+               "report_error": None}
+    if unrecorded is not None:  # no report: it would show the run recorded before this one
+        return Failed(message=f"{RUN_UNRECORDED}{unrecorded}", data={**summary, "unrecorded": unrecorded})
+    # The run is recorded: a report that cannot be written is said, and changes nothing else.
+    report_path, report_error = _write_report(cfg) if report else (None, None)
+    summary.update(report=report_path, report_error=report_error)
     also = f"{REPORT_UNWRITTEN}{report_error}" if report_error else ""
     if failed_files:
         return Failed(message=f"{len(failed_files)} file(s) failed: {', '.join(failed_files)}{also}", data=summary)
@@ -671,6 +682,9 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     return summary
 
 
+RUN_UNRECORDED = "the run could not be recorded in the output store: "
+"""What the message of a flow run whose record could not be written begins with, followed by
+the store's error; its state's data is the summary, with that error under ``unrecorded``."""
 REPORT_UNWRITTEN = "; the report was not written: "
 """What a flow run's message adds, followed by the reason, when its report could not be written."""
 
@@ -730,6 +744,11 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             else:
                 outs = with_check_failures(_outcomes_from_store(store, w, ran), w, store,
                                            prep.designs[w.sample_rate_hz], cfg)
+                # A file with no error or check failure of its own failed with its task: say why.
+                why = (f"{type(value).__name__}: {value}" if isinstance(value, BaseException)
+                       else state.message or state.name)
+                outs = [dataclasses.replace(o, errors={-1: why}) if o.status == "failed" and not any(o.errors.values())
+                        and o.check_failures is None else o for o in outs]
                 bad = [o.relpath for o in outs if o.status == "failed"]
                 logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
                              state.message or state.name, ", ".join(bad))

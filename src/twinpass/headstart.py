@@ -42,7 +42,7 @@ from .config import JobConfig
 from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .errors import RunStoppedError
 from .io.store import OutputStore
-from .job import Prepared, RunTally, begin_run, finish_interrupted_run, now_iso, prepare
+from .job import Prepared, RunTally, begin_run, finish_interrupted_run, now_iso, open_run_store, prepare
 
 log = logging.getLogger(__name__)
 
@@ -206,7 +206,7 @@ class HeadStart:
         """
         run_id, started = uuid.uuid4().hex[:12], now_iso()
         scheduler, workers = scheduler or cfg.engine.scheduler, int(workers or cfg.engine.workers)
-        store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+        store = open_run_store(cfg)
         with contextlib.ExitStack() as held:
             held.enter_context(store.lock(run_id))
             cleaned = store.clean_partials()

@@ -33,8 +33,8 @@ from .engine import (
     run_segment,
     segment_notes,
 )
-from .errors import ArchiveError, SpecError, TwinpassError
-from .io.archive import Discovery, discover, output_name
+from .errors import ArchiveError, RunNotRecordedError, SpecError, TwinpassError
+from .io.archive import Discovery, check_archive_root, discover, output_name
 from .io.store import OutputStore
 from .io.store_input import INPUT_GONE
 from .io.store_util import library_versions
@@ -329,6 +329,21 @@ class RunTally:
         return RunResult.ending_now(run_id, started, prep, self.outcomes(prep))
 
 
+def open_run_store(cfg: JobConfig) -> OutputStore:
+    """The output store a run of ``cfg`` writes, created if missing, once its archive is there.
+
+    Raises
+    ------
+    ArchiveError
+        The archive root is not a folder (or the configured manifest is not a file): the run
+        cannot begin, and nothing is created.
+    UnsafePathError, StoreError
+        As :meth:`OutputStore.open`.
+    """
+    check_archive_root(cfg)
+    return OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+
+
 def now_iso() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
@@ -479,12 +494,20 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
     RunResult
         Per-file outcomes; a segment whose driver raised has its files ``"failed"`` with
         the error under block index -1, and the other segments still run.
+
+    Raises
+    ------
+    RunNotRecordedError
+        The blocks ended but the run could not be recorded in the store; its ``result``
+        holds the outcomes.
+    TwinpassError
+        The run could not begin (configuration, archive, a locked or unusable store).
     """
 
     say = log_fn or log.info
     run_id = uuid.uuid4().hex[:12]
     started = now_iso()
-    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    store = open_run_store(cfg)
     with store.lock(run_id):
         n = store.clean_partials()
         if n:
@@ -509,7 +532,10 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
-        finish_run(store, result, cfg)
+        try:
+            finish_run(store, result, cfg)
+        except TwinpassError as e:  # the store's own error, with the outcome the caller shows first
+            raise RunNotRecordedError(str(e), result) from e
     return result
 
 
@@ -548,5 +574,5 @@ def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: Ou
                 raise
 
 
-__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "prepare", "run_job", "segment_work", "segment_failed",
-           "library_versions", "response_report"]
+__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "open_run_store", "prepare", "run_job", "segment_work",
+           "segment_failed", "library_versions", "response_report"]

@@ -367,7 +367,8 @@ def lock_line(lock: Mapping[str, Any] | None) -> str:
         return (f"{who} stopped without ending (killed, or its machine went down) and left the store's lock: "
                 "its unfinished files stay incomplete; the next run takes the lock over and finishes them")
     return (f"{who} holds the store's lock from another host: it is running there, or stopped without ending "
-            f"(check that host; if it is not running, delete {lock.get('where')})")
+            f"(a run started on {lock.get('host')} recovers the lock automatically once that process is no longer "
+            f"running; delete {lock.get('where')} by hand only if that host is gone for good)")
 
 
 def all_passed(status: dict[str, Any]) -> bool:

@@ -376,6 +376,26 @@ def _from_config(cfg: JobConfig, compile_setting: Callable[[str], _T], setting: 
         raise ConfigError(f"{cfg.source}: {e}") from None
 
 
+def check_archive_root(cfg: JobConfig) -> None:
+    """Raise :class:`ArchiveError` unless ``cfg``'s archive root is a folder (the first thing
+    a run needs, checked before it creates or locks anything), or its manifest, when one is
+    configured, a file."""
+    root = cfg.archive_root
+    if not root.is_dir():
+        raise ArchiveError(
+            f"archive root {root} is not a folder ([archive] root = {cfg.archive.root!r} in {cfg.source}); "
+            "point it at the folder holding the recordings",
+            path=str(root),
+        )
+    manifest = cfg.manifest_path
+    if manifest is not None and not manifest.is_file():
+        raise ArchiveError(
+            f"manifest {manifest}: not found or not a file ([archive] manifest = {cfg.archive.manifest!r} in "
+            f"{cfg.source}); point it at the CSV file listing the recordings",
+            path=str(manifest),
+        )
+
+
 def walk_archive(cfg: JobConfig) -> ArchiveListing:
     """The candidate input files of ``cfg``'s archive (relative POSIX paths, sorted), the
     paths matching the globs that cannot be taken as input, each with the reason, and the
@@ -393,13 +413,8 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     Raises :class:`ArchiveError` when the archive root is not a readable folder or cannot be
     listed.
     """
+    check_archive_root(cfg)
     root = cfg.archive_root
-    if not root.is_dir():
-        raise ArchiveError(
-            f"archive root {root} is not a folder ([archive] root = {cfg.archive.root!r} in {cfg.source}); "
-            "point it at the folder holding the recordings",
-            path=str(root),
-        )
     include = [_from_config(cfg, compile_glob, p) for p in cfg.archive.include]
     exclude = [_from_config(cfg, compile_glob, p) for p in cfg.archive.exclude]
     include_any_case = [re.compile(rx.pattern, rx.flags | re.IGNORECASE) for rx in include]
@@ -440,7 +455,9 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                     f"the output store {folder} is being written by {writing} of the earlier job, which may "
                     "rewrite this array while this job reads it",
                     "run this job again once that run has ended (`twinpass status` on that store names a run "
-                    f"holding it); if no run is using that store, delete {os.path.join(folder, LOCK_NAME)}",
+                    "holding it; a lock whose run is no longer running on this host does not hold this job back); "
+                    f"delete {os.path.join(folder, LOCK_NAME)} by hand only if it was taken on another host that "
+                    "is gone for good, or it cannot be read and no run is using that store",
                 ))
             elif gone_since(array_attributes(os.path.join(folder, name))) is not None:
                 orphans.append(ident)

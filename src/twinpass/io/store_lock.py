@@ -192,16 +192,30 @@ def acquire(lock: LockFile, run_id: str, recovered: list[LockInfo] | None = None
                 f"killed while taking it); if no run is using the store, delete {lock.where} and rerun"
             )
         if not holder.is_stale():
-            raise StoreLockedError(
-                f"output store is locked by {holder.describe()}: {lock.where}; wait for that run to finish, "
-                f"or if it is no longer running, delete {lock.where} and rerun"
-            )
+            raise StoreLockedError(locked_message(holder, lock.where))
         if _remove_stale(lock, raw, holder) and recovered is not None:
             recovered.append(holder)
     raise StoreLockedError(
         f"output store lock {lock.where} keeps changing hands, or another run is taking it over "
         f"({lock.where}{TAKEOVER_SUFFIX}): retry later; if no other run is starting, delete both and rerun"
     )
+
+
+def locked_message(holder: LockInfo, where: str) -> str:
+    """Why a run is refused while ``holder`` holds the lock ``where``, and what to do.
+
+    Only a holder on this host can be judged: once its process has ended, the next run here
+    recovers its lock automatically. A lock taken on another host is left alone, since this
+    one cannot see that host's processes; a run started there recovers it, so deleting it
+    by hand is only for a host that is gone.
+    """
+    said = f"output store is locked by {holder.describe()}: {where}; wait for that run to finish"
+    if holder.host == socket.gethostname():
+        return (f"{said}. Its lock is recovered automatically by the next run once that process is no longer "
+                "running: there is no need to delete it")
+    return (f"{said}. The lock was taken on another host, whose processes this one cannot check: a run "
+            f"started on {holder.host} recovers it automatically once that process is no longer running. "
+            f"Delete {where} by hand only if {holder.host} is gone for good and the run died with it")
 
 
 def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> bool:
@@ -237,13 +251,26 @@ def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> bool:
 
 
 def release(lock: LockFile, info: LockInfo) -> None:
-    """Remove the lock if it is still held by ``info``; warn otherwise."""
-    raw = lock.read()
-    holder = None if raw is None else LockInfo.parse(raw)
-    if holder is not None and holder.token == info.token:
+    """Remove the lock if it is still held by ``info``; warn otherwise. Never raises.
+
+    A lock that cannot be read or removed (the store's file system gone read-only, an I/O
+    error) is left behind with a warning naming it: the run's own outcome, or the error that
+    ended it, is what the caller reports. Once this process has ended, the next run on this
+    host finds that lock stale and recovers it (:func:`acquire`).
+    """
+    try:
+        raw = lock.read()
+        holder = None if raw is None else LockInfo.parse(raw)
+        if holder is None or holder.token != info.token:
+            log.warning(
+                "output store lock %s was no longer held by %s at the end of the run; left as found",
+                lock.where, info.describe(),
+            )
+            return
         lock.remove()
-    else:
+    except Exception as e:  # any back end's error: the release must not replace the run's outcome
         log.warning(
-            "output store lock %s was no longer held by %s at the end of the run; left as found",
-            lock.where, info.describe(),
+            "could not remove the output store lock %s (%s: %s); it is left behind, and the next run "
+            "on host %s recovers it automatically once this process (pid %d) has ended",
+            lock.where, type(e).__name__, e, info.host, info.pid,
         )
