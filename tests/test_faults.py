@@ -703,3 +703,30 @@ def test_the_one_line_reason_names_a_few_blocks_and_status_lists_them_all(tmp_pa
     text = format_status(collect_status(OutputStore.open(cfg.store_location, mode="r")))
     for i in range(6):
         assert f"\n    block {i} (frames {1000 * i:,}-{1000 * i + 999:,}" in text
+
+
+def test_blocks_done_only_after_a_retry_are_counted_and_said_not_failed(tmp_path, inject):
+    # Every block raises on its first attempt (injected) and passes on the retry within its
+    # task ([engine] retries = 2): every file completes and the run exits 0, but the retries
+    # are not silent: the run's summary says how many blocks succeeded only after a retry,
+    # the run's record counts them and `twinpass status` says it, as a warning, not a failure.
+    inject([{"action": "raise-once", "file": "*", "block": "*"}])
+    cfg = _archive(tmp_path, processing={"block_seconds": 5.0, "mode": "halo"})
+    blocks = sum(FRAMES) // 1000  # 5 s at 200 Hz: 1000-sample blocks, 8 + 6 + 8
+    toml = str(tmp_path / "run" / "twinpass.toml")
+    run = conftest.run_cli(["run", toml, "--no-flow", "--no-report"])
+    assert run.stdout.startswith("complete 3, skipped (unchanged) 0, failed 0"), run.stdout
+    said = [x for x in run.stdout.splitlines() if x.startswith("retried: ")]
+    assert said == [f"retried: {blocks} block(s) succeeded only after a retry: their input may be on a flaky "
+                    f"mount (in {', '.join(a + '.npy' for a in ARRAYS)})"], run.stdout
+    assert all(np.all(block_status(cfg.store_location, a) == PASS) for a in ARRAYS)
+
+    status = collect_status(OutputStore.open(cfg.store_location, mode="r"))
+    assert status["last_run"]["counts"]["blocks_retried"] == blocks
+    assert status["retried"] == {a + ".npy": n for a, n in zip(ARRAYS, (8, 6, 8))}
+    shown = conftest.run_cli(["status", toml, "--require-complete"])  # not a failure: exit 0
+    assert f"{blocks} block(s) succeeded only after a retry: their input may be on a flaky mount" in shown.stdout
+
+    quiet = conftest.run_cli(["run", toml, "--no-flow", "--no-report"])  # nothing run: nothing said
+    assert "retried:" not in quiet.stdout
+    assert "succeeded only after a retry" not in conftest.run_cli(["status", toml]).stdout

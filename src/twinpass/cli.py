@@ -261,7 +261,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 def _print_result(res: Any) -> None:
     """The summary lines of a run of the engine alone (a :class:`twinpass.job.RunResult`):
-    counts, failed files with their reasons, warned files."""
+    counts, failed files with their reasons, warned files, blocks done only after a retry."""
     c = res.counts()
     print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
           f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
@@ -269,6 +269,7 @@ def _print_result(res: Any) -> None:
     for f in res.failed:
         print(f"failed: {f}: {reasons[f]}")
     _print_warned(res.warnings())
+    _print_retried(res.retried())
 
 
 def _head_start(cfg: Any, *, force: bool, scheduler: str | None, workers: int | None,
@@ -469,6 +470,14 @@ def _print_warned(warned: dict[str, str]) -> None:
         print(f"warned: and {len(warned) - WARNED_SHOWN} more file(s) (`twinpass status` lists them)")
 
 
+def _print_retried(retried: dict[str, int]) -> None:
+    """The run's blocks done only after a failed attempt, in one line (none if there were none)."""
+    from .status import retried_line
+
+    if retried_line(retried):
+        print(f"retried: {retried_line(retried)}")
+
+
 def _print_summary(summary: dict[str, Any]) -> None:
     """Print a flow run's summary (see :func:`twinpass.flows.archive_run`): counts, failed and left-out files, paths."""
     c = summary["counts"]
@@ -480,6 +489,7 @@ def _print_summary(summary: dict[str, Any]) -> None:
     for f in summary.get("invalid", []):
         print(f"left out (invalid input): {f}")
     _print_warned(summary.get("warned") or {})
+    _print_retried(summary.get("retried") or {})
     if summary.get("report"):
         print(f"report: {summary['report']}")
     print(f"store: {summary['store']}")
@@ -505,6 +515,7 @@ def _after_server_lost(cfg: Any, since: str, error: Exception, api_url: str | No
         return 1
     summary = {"counts": entry["counts"], "failed": list(entry.get("failed") or []),
                "failed_reasons": dict(details.get("failed") or {}), "invalid": list(details.get("left_out") or {}),
+               "retried": dict(details.get("retried") or {}),
                "store": cfg.store_location, "report": _report_after(cfg, str(entry.get("end", ""))) if report else None}
     _print_summary(summary)
     _eprint(f"twinpass: {server} stopped answering before the flow run ended ({why}); the run finished and is "

@@ -656,6 +656,23 @@ class FileOutcome:
     summary: dict[str, Any] = field(default_factory=dict)
     check_failures: CheckFailures | None = None
     """Its blocks that failed their checks, in words (:func:`explain_check_failures`)."""
+    blocks_rerun: int = 0
+    """Runs counted in ``blocks_run`` of blocks an earlier attempt of the segment's task had
+    run already: ``blocks_run - blocks_rerun`` blocks of the file ran (:class:`twinpass.job.RunTally`)."""
+    blocks_retried: int = 0
+    """Blocks done only after a failed attempt: a retry within the block's task, or a later
+    attempt of the segment's task (:class:`twinpass.job.RunTally`)."""
+
+
+def file_summary(table: Any) -> dict[str, Any]:
+    """A file's check summary from its block table (read with figures): the worst figures
+    (:func:`~twinpass.core.checks.summarise`) and ``blocks_pass``, ``blocks_warn``,
+    ``blocks_fail`` and ``blocks_error``, the blocks of each status."""
+    st = np.asarray(table.status)
+    summary = _checks.summarise(table.figures)
+    for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
+        summary[f"blocks_{name}"] = int(np.sum(st == code))
+    return summary
 
 
 def segment_layout(seg: SegmentWork, cfg: JobConfig, halo: int, carry: bool = True) -> Layout:
@@ -1251,9 +1268,7 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
             ok = False
             if not errors:  # (blocks that could not read it say so themselves)
                 errors[-1] = _moved_message(fw.relpath, moved)
-        summary = _checks.summarise(table.figures)
-        for name, code in (("pass", PASS), ("warn", WARN), ("fail", FAIL), ("error", ERROR)):
-            summary[f"blocks_{name}"] = int(np.sum(st == code))
+        summary = file_summary(table)
         store.set_complete(fw.array_name, ok, summary)
         if not ok and np.isin(st, (PENDING, ERROR)).any():
             # Values an earlier design or join left in blocks not written now would read

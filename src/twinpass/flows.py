@@ -61,11 +61,13 @@ from .core.checks import was_cancelled
 from .core.design import format_report
 from .core.plan import fingerprint_changed
 from .engine import (
+    DONE,
     BlockErrorLog,
     CancellableClient,
     ClientStart,
     FileOutcome,
     SegmentWork,
+    file_summary,
     retry_delays,
     run_segment,
     warm_compiled_loops,
@@ -77,6 +79,7 @@ from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
 from .job import (Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso,
                   open_run_store, prepare)
+from .status import retried_line
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -351,9 +354,11 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
     design = prep.designs[seg.sample_rate_hz]
     todo = [f.relpath for f in seg.files if f.action != "skip"]
     logger.info("segment %s: %d file(s) to filter: %s", seg.segment_id, len(todo), ", ".join(todo))
+    shown = f"blocks of segment {seg.segment_id}" + (" not done before (retry)" if retry else "")
     progress = DashboardProgress(_publish(f"the progress of segment {seg.segment_id}", create_progress_artifact, 0.0,
-                                          description=f"blocks of segment {seg.segment_id}"), logger)
+                                          description=shown), logger)
     last = [time.monotonic()]
+    blocks_done = [0, 0]  # blocks recorded done (passed or warned), blocks to run
     block_errors = BlockErrorLog(seg.segment_id, logger)
     terminal = TERMINAL_PROGRESS if early is None or not early.watched else None  # else shown as they came
 
@@ -367,8 +372,10 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
         if terminal is not None:
             terminal(seg.segment_id, done, total, res)
         block_errors.block(res)
+        blocks_done[0] += res.status in DONE
+        blocks_done[1] = total
         now = time.monotonic()
-        if done < total and now - last[0] >= PROGRESS_INTERVAL_S:  # 100 % is set once the segment ends
+        if done < total and now - last[0] >= PROGRESS_INTERVAL_S:  # its share done is set once it ends
             last[0] = now
             progress.show(100.0 * done / max(total, 1))
 
@@ -377,11 +384,13 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
             outcomes = early.follow(on_block)
         else:
             outcomes = run_segment(seg, design, cfg, store, client, on_block=on_block, log_blocks=False)
-        progress.close(ended=True)
+    except BaseException as e:
+        progress.close(*progress_at_end(shown, *blocks_done, None, run.stopping or isinstance(e, RunStoppedError)))
+        raise
     finally:
         block_errors.close()
-        progress.close(ended=False)  # the segment raised: a pending update is dropped
     run.tally.ended(seg.segment_id, outcomes)
+    progress.close(*progress_at_end(shown, *blocks_done, outcomes, run.stopping))
     failed = [o for o in outcomes if o.status == "failed"]
     for o in outcomes:
         if o.status == "complete":
@@ -421,7 +430,8 @@ class DashboardProgress:
     def __init__(self, artifact_id: Any, logger: Any) -> None:
         self.artifact_id = artifact_id
         self._logger = logger
-        self._latest: float | None = None
+        self._latest: tuple[float, str | None] | None = None
+        """The update to send: percentage, and a new description (None: unchanged)."""
         self._closed = False
         self._failed = artifact_id is None  # not created: nothing to update
         self._cv = threading.Condition()
@@ -433,17 +443,18 @@ class DashboardProgress:
     def show(self, percent: float) -> None:
         """Note ``percent`` (0-100) for the sender; returns at once."""
         with self._cv:
-            self._latest = float(percent)
+            self._latest = (float(percent), None)
             self._cv.notify()
 
-    def close(self, *, ended: bool, wait_s: float | None = None) -> None:
-        """Stop the sender, first showing 100 % if the segment ``ended`` (else dropping any
-        pending update), and wait for it up to ``wait_s`` seconds (default
-        :attr:`CLOSE_WAIT_S`). Only the first call counts."""
+    def close(self, percent: float | None, description: str | None = None, *, wait_s: float | None = None) -> None:
+        """Stop the sender, first showing ``percent`` (0-100: the share of the segment's
+        blocks done at its end) and ``description`` if given (None: the artifact's own stays),
+        or with ``percent`` None dropping any pending update; wait for it up to ``wait_s``
+        seconds (default :attr:`CLOSE_WAIT_S`). Only the first call counts."""
         with self._cv:
             if self._closed:
                 return
-            self._latest = 100.0 if ended else None
+            self._latest = None if percent is None else (float(percent), description)
             self._closed = True
             self._cv.notify()
         self._thread.join(self.CLOSE_WAIT_S if wait_s is None else wait_s)
@@ -455,15 +466,39 @@ class DashboardProgress:
                     self._cv.wait()
                 if self._latest is None:
                     return
-                percent, self._latest = self._latest, None
+                (percent, description), self._latest = self._latest, None
             if self._failed:
                 continue
             try:
-                update_progress_artifact(self.artifact_id, percent)
+                update_progress_artifact(self.artifact_id, percent, description=description)
             except Exception as e:  # the blocks and their records do not depend on the dashboard
                 self._failed = True
                 self._logger.warning("could not update the progress shown on the dashboard (%s: %s); the segment "
                                      "goes on without it", type(e).__name__, e)
+
+
+def progress_at_end(shown: str, done: int, total: int, outcomes: list[FileOutcome] | None,
+                    stopping: bool) -> tuple[float, str | None]:
+    """What a segment's progress artifact shows once its task's attempt ends: (percentage,
+    description or None to keep the artifact's own).
+
+    The percentage is 100 when no file failed, else the share of the ``total`` blocks the
+    attempt had to run that are done (``done`` recorded passed or warned, less the blocks
+    its failed files have not done: a seam check may fail blocks after they ran). When the attempt raised (``outcomes`` None) or a file failed, the description
+    (``shown`` is the artifact's own) says failed, or stopped when the run was
+    (``stopping``) or every error of its failed files is a cancelled block.
+    """
+    failed = [o for o in outcomes or [] if o.status == "failed"]
+    if outcomes is not None and not failed:
+        return 100.0, None
+    if failed:
+        done = min(done, total - sum(o.blocks_failed for o in failed))
+    done = max(0, done)
+    percent = 100.0 * done / total if total else 0.0
+    reasons = [str(e) for o in failed for e in o.errors.values()]
+    if stopping or (reasons and all(was_cancelled(r) for r in reasons)):
+        return percent, f"{shown}: stopped, {done} of {total} done (the next run does the rest)"
+    return percent, f"{shown}: failed, {done} of {total} done"
 
 
 @task(name="skip-unchanged", cache_policy=NO_CACHE)
@@ -475,27 +510,71 @@ def skip_unchanged(relpaths: list[str]) -> Any:
                      data=relpaths)
 
 
-@task(name="finalize-run", cache_policy=NO_CACHE)
-def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, durations: dict[str, float]) -> None:
-    """Record the run in the store and publish the per-file table (a table that cannot be
-    published is logged as a warning: the run's outcome is in its records)."""
-    finish_run(store, result, cfg)
+FIGURE_COLUMNS = {"worst passband dev (dB)": "passband_dev_db", "worst phase (deg)": "phase_deg",
+                  "stopband att (dB)": "stopband_att_db", "seam mismatch": "seam_mismatch"}
+"""The per-file table's figure columns: the worst of the file's blocks (summary keys of
+:func:`~twinpass.core.checks.summarise`)."""
+
+
+def _recorded(store: OutputStore, o: FileOutcome) -> FileOutcome:
+    """An unchanged file's outcome with its blocks, blocks done and check summary as the
+    store recorded them when it was made complete (its ``checks`` attribute), when the
+    outcome has none; unreadable attributes leave it as it is."""
+    if o.status != "skipped" or o.summary:
+        return o
+    try:
+        summary = store.array_attrs(o.array_name).get("checks")
+    except Exception:
+        return o
+    if not isinstance(summary, dict) or "blocks" not in summary:
+        return o
+    blocks = int(summary["blocks"])
+    done = int(summary.get("blocks_pass") or 0) + int(summary.get("blocks_warn") or 0)
+    return dataclasses.replace(o, blocks=blocks, blocks_done=done, blocks_failed=blocks - done, summary=summary)
+
+
+def files_table(store: OutputStore, result: RunResult, durations: dict[str, float]) -> list[dict[str, Any]]:
+    """The rows of the per-file table artifact, one per file of the run, then one per input left out.
+
+    ``reason``: why a file failed (:meth:`~twinpass.job.RunResult.failure_reasons`) or was
+    left out (reason and remedy), in one line, as ``twinpass status`` says them. ``blocks``,
+    ``blocks done`` (passed or warned) and ``blocks not done``: the file's block table at
+    the run's end (an unchanged file's as recorded when it was made complete). ``blocks
+    run``: blocks of the file this run ran, each once however often a retry ran it again;
+    ``blocks retried``: those done only after a failed attempt
+    (:meth:`~twinpass.job.RunTally.retried`). The figures are the worst of the file's blocks.
+    """
+    reasons = result.failure_reasons()
     rows = []
-    for o in result.outcomes:
+    for o in (_recorded(store, o) for o in result.outcomes):
         s = o.summary or {}
+        reason = reasons.get(o.relpath) if o.status == "failed" else None
         rows.append({
-            "file": o.relpath, "status": o.status, "blocks": o.blocks, "blocks run": o.blocks_run,
-            "blocks not done": o.blocks_failed, "seconds": round(durations.get(o.relpath, 0.0), 2),
-            "worst passband dev (dB)": s.get("passband_dev_db"), "worst phase (deg)": s.get("phase_deg"),
-            "stopband att (dB)": s.get("stopband_att_db"), "seam mismatch": s.get("seam_mismatch"),
+            "file": o.relpath, "status": o.status, "reason": _one_line(reason), "blocks": o.blocks,
+            "blocks done": o.blocks_done, "blocks not done": o.blocks_failed,
+            "blocks run": o.blocks_run - o.blocks_rerun, "blocks retried": o.blocks_retried,
+            "seconds": round(durations.get(o.relpath, 0.0), 2),
+            **{column: s.get(key) for column, key in FIGURE_COLUMNS.items()},
         })
     for bad in result.invalid:
-        rows.append({"file": bad.relpath, "status": "invalid", "blocks": 0, "blocks run": 0,
-                     "blocks not done": 0, "seconds": 0.0, "worst passband dev (dB)": None,
-                     "worst phase (deg)": None, "stopband att (dB)": None,
-                     "seam mismatch": bad.explained})
-    _publish("the per-file table", create_table_artifact, rows, key=ARTIFACT_FILES,
-             description=f"twinpass run {result.run_id}")
+        rows.append({"file": bad.relpath, "status": "invalid", "reason": _one_line(bad.explained), "blocks": 0,
+                     "blocks done": 0, "blocks not done": 0, "blocks run": 0, "blocks retried": 0, "seconds": 0.0,
+                     **{column: None for column in FIGURE_COLUMNS}})
+    return rows
+
+
+def _one_line(text: str | None) -> str | None:
+    return None if text is None else " ".join(text.split())
+
+
+@task(name="finalize-run", cache_policy=NO_CACHE)
+def finalize_task(store: OutputStore, result: RunResult, cfg: JobConfig, durations: dict[str, float]) -> None:
+    """Record the run in the store and publish the per-file table (:func:`files_table`; a
+    table that cannot be published is logged as a warning: the run's outcome is in its records)."""
+    finish_run(store, result, cfg)
+    _publish("the per-file table", create_table_artifact, files_table(store, result, durations), key=ARTIFACT_FILES,
+             description=f"twinpass run {result.run_id}: one row per file; blocks as its block table records them "
+                         "(blocks run: each once, however often a retry ran it)")
 
 
 @task(name="write-report", cache_policy=NO_CACHE)
@@ -581,8 +660,9 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
     Returns
     -------
     dict
-        ``run_id``, ``counts`` (files per status, ``blocks_run``), ``failed`` and ``invalid``
-        (input paths), ``store``, ``report`` (path or None) and ``report_error`` (why the
+        ``run_id``, ``counts`` (files per status, ``blocks_run``, ``blocks_retried``), ``failed``
+        and ``invalid`` (input paths), ``retried`` (blocks done only after a failed attempt, by
+        input path), ``store``, ``report`` (path or None) and ``report_error`` (why the
         report asked for could not be written, and what to do; None if it was, or if none
         was asked for: the run's outcome stands either way, and the state's message says so). When files fail the flow
         ends Failed, naming them, with this summary as the state's data; when none failed
@@ -658,13 +738,15 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
+        if retried_line(result.retried()):
+            logger.warning(retried_line(result.retried()))
         unrecorded: str | None = None
         try:
             finalize_task(quote(store), quote(result), quote(cfg), quote(durations))
         except TwinpassError as e:  # the store's own error: the run ends with it, its summary kept
             unrecorded = str(e)
     summary = {"run_id": run_id, "counts": result.counts(), "failed": failed_files,
-               "failed_reasons": result.failure_reasons(), "warned": result.warnings(),
+               "failed_reasons": result.failure_reasons(), "warned": result.warnings(), "retried": result.retried(),
                "invalid": [b.relpath for b in prep.invalid], "store": cfg.store_location, "report": None,
                "report_error": None}
     if unrecorded is not None:  # no report: it would show the run recorded before this one
@@ -736,13 +818,11 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
             value = fut.result(raise_on_failure=False)
             secs = time.perf_counter() - t0
             state = fut.state
-            ran = tally.ran(w.segment_id)
             if state.is_completed() and isinstance(value, list):
                 # Blocks run by every attempt: a retry's own outcomes count only its own.
-                outs = [dataclasses.replace(o, blocks_run=max(o.blocks_run, ran.get(o.array_name, 0)))
-                        for o in value]
+                outs = tally.with_blocks(w.segment_id, value)
             else:
-                outs = with_check_failures(_outcomes_from_store(store, w, ran), w, store,
+                outs = with_check_failures(tally.with_blocks(w.segment_id, _outcomes_from_store(store, w)), w, store,
                                            prep.designs[w.sample_rate_hz], cfg)
                 # A file with no error or check failure of its own failed with its task: say why.
                 why = (f"{type(value).__name__}: {value}" if isinstance(value, BaseException)
@@ -790,15 +870,15 @@ def preload(scheduler: str | None) -> None:
         warm_compiled_loops()
 
 
-def _outcomes_from_store(store: OutputStore, seg: SegmentWork,
-                         ran: dict[str, int] | None = None) -> list[FileOutcome]:
-    """Per-file outcomes of a segment whose task failed, read back from the store.
+def _outcomes_from_store(store: OutputStore, seg: SegmentWork) -> list[FileOutcome]:
+    """Per-file outcomes of a segment whose task failed, read back from the store (blocks
+    run: 0; :meth:`~twinpass.job.RunTally.with_blocks` counts them).
 
-    ``ran`` maps an output array to the blocks the segment's task attempts ran for it
-    (recorded, whatever their status). A file counts as complete only when the store marks it complete for its current
-    input (same fingerprint) and every block is done. When the task failed but no file
-    looks failed by that measure (the failure came from outside the blocks), every file
-    the segment had to compute counts as failed.
+    Each file's blocks, blocks done and check summary are its block table's
+    (:func:`~twinpass.engine.file_summary`). A file counts as complete only when the store
+    marks it complete for its current input (same fingerprint) and every block is done.
+    When the task failed but no file looks failed by that measure (the failure came from
+    outside the blocks), every file the segment had to compute counts as failed.
     """
     out = []
     for f in seg.files:
@@ -806,18 +886,17 @@ def _outcomes_from_store(store: OutputStore, seg: SegmentWork,
             out.append(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped"))
             continue
         try:
-            t = store.read_block_table(f.array_name, figures=False, seams=False)
+            t = store.read_block_table(f.array_name, figures=True, seams=False)
             attrs = store.array_attrs(f.array_name)
         except Exception:
-            out.append(FileOutcome(f.relpath, f.array_name, 0, (ran or {}).get(f.array_name, 0), 0, 0, "failed"))
+            out.append(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "failed"))
             continue
         c = t.counts()
         done = c["pass"] + c["warn"]
         current = not fingerprint_changed(attrs.get("source_fingerprint"), f.fingerprint)[0]
         ok = done == t.n_blocks and attrs.get("complete") is True and current
-        out.append(FileOutcome(f.relpath, f.array_name, t.n_blocks, (ran or {}).get(f.array_name, 0), done,
-                               t.n_blocks - done,
-                               "complete" if ok else "failed", errors=dict(t.errors)))
+        out.append(FileOutcome(f.relpath, f.array_name, t.n_blocks, 0, done, t.n_blocks - done,
+                               "complete" if ok else "failed", errors=dict(t.errors), summary=file_summary(t)))
     if not any(o.status == "failed" for o in out):
         out = [o if o.status == "skipped" else dataclasses.replace(o, status="failed") for o in out]
     return out
@@ -903,5 +982,6 @@ def serve_deployment(deployment: "RunnerDeployment") -> None:
 
 
 __all__ = ["ARTIFACT_DESIGN", "ARTIFACT_FILES", "ARTIFACT_REPORT", "FLOW_NAME", "STATE_LEFT_OUT", "archive_run",
-           "build_deployment", "design_task", "filter_segment", "finalize_task", "left_out_message", "preload",
+           "build_deployment", "design_task", "files_table", "filter_segment", "finalize_task", "left_out_message",
+           "preload", "progress_at_end",
            "report_task", "schedule", "serve_deployment", "skip_unchanged"]

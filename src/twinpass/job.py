@@ -25,6 +25,7 @@ from .core.plan import FilePlan, Plan, fingerprint_changed, make_plan
 from .core.segments import InvalidFile, Segment
 from .core.types import Design, FileRecord
 from .engine import (
+    DONE,
     CancellableClient,
     FileOutcome,
     FileWork,
@@ -243,6 +244,11 @@ class RunResult:
         return {o.relpath: {"blocks": list(o.check_failures.blocks), "remedy": o.check_failures.remedy}
                 for o in self.outcomes if o.status == "failed" and o.check_failures is not None}
 
+    def retried(self) -> dict[str, int]:
+        """Files with blocks done only after a failed attempt (:meth:`RunTally.retried`): how
+        many blocks, by source path. Not failures; :func:`twinpass.status.retried_line` says them."""
+        return {o.relpath: o.blocks_retried for o in self.outcomes if o.blocks_retried}
+
     def exit_status(self) -> int:
         """The command's exit status: 1 some files failed, 3 none failed but inputs were left
         out (invalid input, or no filter for their sample rate), 0 otherwise."""
@@ -250,13 +256,16 @@ class RunResult:
 
     def counts(self) -> dict[str, int]:
         """Files per status (``complete``, ``failed``, ``skipped``, ``invalid``, and for an
-        interrupted run ``unfinished``) and ``blocks_run``, the blocks the run ran."""
+        interrupted run ``unfinished``), ``blocks_run``, the blocks the run ran (a block run
+        again by a retry of its segment's task counts again), and ``blocks_retried``, the
+        blocks done only after a failed attempt (:meth:`retried`)."""
         c: dict[str, int] = {"complete": 0, "failed": 0, "skipped": 0, "invalid": len(self.invalid)}
         if self.interrupted:
             c["unfinished"] = 0
         for o in self.outcomes:
             c[o.status] = c.get(o.status, 0) + 1
         c["blocks_run"] = sum(o.blocks_run for o in self.outcomes)
+        c["blocks_retried"] = sum(o.blocks_retried for o in self.outcomes)
         return c
 
     @property
@@ -278,19 +287,59 @@ class RunTally:
         self._lock = threading.Lock()
         self._ran: dict[str, collections.Counter[str]] = {}
         self._ended: dict[str, list[FileOutcome]] = {}
+        self._seen: dict[str, set[tuple[str, int]]] = {}
+        """Blocks (output array, block index) run so far, by segment."""
+        self._failed: dict[str, set[tuple[str, int]]] = {}
+        """Blocks recorded failed (error or failed checks) by an attempt of the segment's task."""
+        self._retried: dict[str, set[tuple[str, int]]] = {}
+        """Blocks done only after a failed attempt (see :meth:`retried`)."""
 
     def block(self, segment_id: str, res: Any) -> None:
         """Count a recorded block of ``segment_id`` (a ``BlockResult``) as run, unless its task was
-        cancelled (the run was stopped: nothing ran, or what ran was not recorded)."""
+        cancelled (the run was stopped: nothing ran, or what ran was not recorded); note it
+        as retried when it is done after a failed attempt (see :meth:`retried`)."""
         if was_cancelled(res.error):
             return
+        key = (res.array_name, int(res.block_index))
         with self._lock:
             self._ran.setdefault(segment_id, collections.Counter())[res.array_name] += 1
+            self._seen.setdefault(segment_id, set()).add(key)
+            failed = self._failed.setdefault(segment_id, set())
+            if res.status in DONE:
+                if res.attempts > 1 or key in failed:
+                    self._retried.setdefault(segment_id, set()).add(key)
+            else:
+                failed.add(key)
 
     def ran(self, segment_id: str) -> dict[str, int]:
         """Blocks run so far for ``segment_id`` (every attempt), by output array."""
         with self._lock:
             return dict(self._ran.get(segment_id, {}))
+
+    def _per_array(self, table: dict[str, set[tuple[str, int]]], segment_id: str) -> dict[str, int]:
+        with self._lock:
+            return dict(collections.Counter(name for name, _ in table.get(segment_id, ())))
+
+    def retried(self, segment_id: str) -> dict[str, int]:
+        """Blocks of ``segment_id`` done only after a failed attempt, by output array: the
+        block's task retried it (``BlockResult.attempts`` > 1), or an earlier attempt of the
+        segment's task recorded it failed. Done all the same, but a sign of trouble in
+        reaching the input or the store (a flaky mount, a worker lost)."""
+        return self._per_array(self._retried, segment_id)
+
+    def with_blocks(self, segment_id: str, outcomes: list[FileOutcome]) -> list[FileOutcome]:
+        """``outcomes`` of ``segment_id`` with the blocks counted here: ``blocks_run`` (every
+        attempt; at least what the outcome counts), ``blocks_rerun`` (runs of blocks run
+        before) and ``blocks_retried`` (:meth:`retried`)."""
+        ran, distinct = self.ran(segment_id), self._per_array(self._seen, segment_id)
+        retried = self.retried(segment_id)
+        out = []
+        for o in outcomes:
+            runs = max(o.blocks_run, ran.get(o.array_name, 0))
+            out.append(dataclasses.replace(o, blocks_run=runs,
+                                           blocks_rerun=max(0, runs - distinct.get(o.array_name, runs)),
+                                           blocks_retried=retried.get(o.array_name, 0)))
+        return out
 
     def ended(self, segment_id: str, outcomes: list[FileOutcome]) -> None:
         """Note the outcomes a driver of ``segment_id`` returned (a later attempt's replace them)."""
@@ -308,19 +357,17 @@ class RunTally:
         """
         out: list[FileOutcome] = []
         for w in prep.work:
-            ran = self.ran(w.segment_id)
             with self._lock:
                 ended = self._ended.get(w.segment_id)
             if ended is None:
-                out += [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") if f.action == "skip"
-                        else FileOutcome(f.relpath, f.array_name, 0, ran.get(f.array_name, 0), 0, 0, "unfinished")
-                        for f in w.files]
+                out += self.with_blocks(w.segment_id, [
+                    FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") if f.action == "skip"
+                    else FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "unfinished") for f in w.files])
                 continue
-            for o in ended:
+            for o in self.with_blocks(w.segment_id, [dataclasses.replace(o, blocks_run=0) for o in ended]):
                 stopped = (o.status == "failed" and o.check_failures is None and not o.summary.get("blocks_fail")
                            and all(was_cancelled(e) for e in o.errors.values()))
-                out.append(dataclasses.replace(o, blocks_run=ran.get(o.array_name, 0),
-                                               status="unfinished" if stopped else o.status))
+                out.append(dataclasses.replace(o, status="unfinished" if stopped else o.status))
         return out
 
     def result(self, run_id: str, started: str, prep: Prepared) -> RunResult:
@@ -437,7 +484,8 @@ def finish_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
                                      "gone": [r.relpath for r in result.removed],
                                      "notes": list(result.notes),
                                      "failed": result.failure_reasons(),
-                                     "failed_blocks": result.failed_blocks()})
+                                     "failed_blocks": result.failed_blocks(),
+                                     "retried": result.retried()})
 
 
 def finish_interrupted_run(store: OutputStore, result: RunResult, cfg: JobConfig) -> None:
@@ -562,7 +610,7 @@ def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: Ou
             except Exception as e:  # one segment's trouble (e.g. its store arrays) must not stop the others
                 outs = segment_failed(w, e, say)
             tally.ended(w.segment_id, outs)
-            return outs
+            return tally.with_blocks(w.segment_id, outs)
 
         with ThreadPoolExecutor(max_workers=4) as pool:
             drivers = [pool.submit(one, w) for w in busy]

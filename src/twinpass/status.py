@@ -204,6 +204,7 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
     gone = ({str(r) for r in details.get("gone") or []}
             | {str(f["source"]) for f in files if f["input_gone_since"]}) - set(left_out)
     notes = [str(n) for n in details.get("notes") or []]
+    retried = {str(k): int(v) for k, v in (details.get("retried") or {}).items()}
     failed_inputs = {str(k): str(v) for k, v in (details.get("failed") or {}).items()}
     failed_blocks = {str(k): {"blocks": [str(b) for b in v.get("blocks") or []], "remedy": str(v.get("remedy") or "")}
                      for k, v in (details.get("failed_blocks") or {}).items() if isinstance(v, Mapping)}
@@ -226,7 +227,23 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
             "lock": store.lock_holder(),
             "runs_total": int(root.get("runs_total", len(runs))),
             "left_out": left_out, "gone": sorted(gone), "notes": notes, "failed_inputs": failed_inputs,
-            "failed_blocks": failed_blocks, "limits": _limits(outputs, root, checks)}
+            "failed_blocks": failed_blocks, "retried": retried, "limits": _limits(outputs, root, checks)}
+
+
+RETRIED_SHOWN = 3
+"""Files :func:`retried_line` names (the rest are counted)."""
+
+
+def retried_line(retried: Mapping[str, int]) -> str:
+    """One line for the blocks done only after a failed attempt (``retried``: blocks by
+    source path, :meth:`twinpass.job.RunResult.retried`); "" when there were none."""
+    n = sum(int(v) for v in retried.values())
+    if not n:
+        return ""
+    named = sorted(retried)[:RETRIED_SHOWN]
+    more = len(retried) - len(named)
+    files = ", ".join(named) + (f" and {more} more file(s)" if more > 0 else "")
+    return f"{n} block(s) succeeded only after a retry: their input may be on a flaky mount (in {files})"
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -301,6 +318,8 @@ def format_status(status: dict[str, Any]) -> str:
         lines.append(f"runs recorded: {status.get('runs_total', 1)}; last {last.get('run_id')} "
                      f"{last.get('start')} to {last.get('end') or '-'}{stopped}: "
                      + ", ".join(f"{k} {v}" for k, v in counts.items()))
+        if retried_line(status.get("retried") or {}):
+            lines.append(f"  {retried_line(status['retried'])}")
     limits = status.get("limits") or {}
     for entry in limits.get("designs") or []:
         lines.append(limits_line(entry))
@@ -403,4 +422,4 @@ def shortfalls(status: dict[str, Any]) -> list[str]:
     return out
 
 
-__all__ = ["open_target", "collect_status", "format_status", "all_passed", "shortfalls", "lock_line"]
+__all__ = ["open_target", "collect_status", "format_status", "all_passed", "shortfalls", "lock_line", "retried_line"]
