@@ -871,6 +871,57 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
 
 
+def test_a_flow_run_of_the_command_cancelled_from_the_server_stops_the_run_and_ends_cancelled(
+        prefect_server, prefect_client, npy_archive, tmp_path):
+    # `twinpass run` against a Prefect server it did not start (its flow run has no runner),
+    # each block delayed 2 s (an injected fault) so that blocks still run or wait when the
+    # flow run begins, even on a loaded machine. Its flow run is cancelled through Prefect's client as the dashboard's Cancel and `prefect flow-run
+    # cancel` do it (state Cancelling, Prefect's cancellation protocol). The run stops as
+    # for Ctrl-C: the flow run ends Cancelled (not stuck in Cancelling), the command says it
+    # was cancelled from the server and exits 130, the lock is released, nothing is marked
+    # complete that is not, the run is recorded as stopped before its end, and the next run finishes the
+    # job. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from prefect.states import Cancelling
+
+    from twinpass.io.store_lock import LOCK_NAME
+
+    cfg = write_job(tmp_path, npy_archive)
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": prefect_server,
+                    "TWINPASS_FAULTS": json.dumps([{"action": "sleep", "file": "*", "block": "*", "seconds": 2.0}])})
+    err_path = tmp_path / "run.err"
+    with open(err_path, "w") as err:
+        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-report"], env=env,
+                                cwd=tmp_path, stdout=subprocess.PIPE, stderr=err, text=True)
+    try:
+        poll(lambda: err_path.read_text(), lambda text: "file(s) to filter" in text or proc.poll() is not None,
+             "a segment task's start")
+        assert proc.poll() is None, err_path.read_text()
+        (run,) = poll(lambda: [r for r in prefect_client.read_flow_runs(limit=200)
+                               if r.parameters.get("config_path") == str(cfg.resolve())],
+                      lambda rs: len(rs) == 1, f"the flow run of {cfg}")
+        prefect_client.set_flow_run_state(run.id, Cancelling(message="cancelled from the dashboard"))
+        final = poll(lambda: prefect_client.read_flow_run(run.id).state, lambda st: st is not None and st.is_final(),
+                     f"the end of flow run {run.id}")
+        out, _ = proc.communicate(timeout=240)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    text = err_path.read_text()
+    assert final.is_cancelled(), (final.name, final.message)
+    assert final.message.startswith(flows.CANCELLED_FROM_SERVER), final.message
+    assert proc.returncode == 130, out + text
+    assert "twinpass: the flow run was cancelled from the Prefect server; finished blocks are kept" in text, text
+    assert "Traceback" not in out + text and "run ended" not in out, out + text
+    assert not (tmp_path / "out.zarr" / LOCK_NAME).exists()  # released, not left for a later run to recover
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))  # recorded as stopped, counts as the store shows
+    segs = runs_of(final_task_runs(prefect_client, run.id, expected=3), flows.filter_segment)
+    assert segs and all(t.state.is_cancelled() for t in segs), [(t.name, t.state.name) for t in segs]
+    _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
+
+
 def _job_in_short_blocks(folder: Path, archive: Path) -> Path:
     """A job for the test archive in 3 s blocks (14 per file, each delayed by the tests that
     stop it; 300 samples, above the shortest block the response check allows), so that a run

@@ -17,6 +17,9 @@ no segment task starts or is retried any more (each ends in state Cancelled, its
 that of the ``RunStoppedError`` that says what was left undone), the
 run's blocks are cancelled until every task driving or following a segment has returned
 (its unfinished blocks recorded as cancelled), and only then does the cluster close.
+A flow run of ``twinpass run`` cancelled from the Prefect server (the dashboard's Cancel,
+``prefect flow-run cancel``) is stopped the same way (:mod:`twinpass.server_cancel`
+notices it) and ends Cancelled, the run recorded as stopped before its end.
 
 :func:`build_deployment` / :func:`serve_deployment` turn the flow into a scheduled
 deployment (cron expression in a given time zone) served by this process.
@@ -71,9 +74,10 @@ from .engine import (
     warm_compiled_loops,
     with_check_failures,
 )
-from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError
+from .errors import BlockFailedError, ChecksFailedError, ConfigError, FlowRunCancelledError, RunStoppedError
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
+from .server_cancel import CancelWatch, cancel_watch
 from .io.store import OutputStore
 from .job import Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
 
@@ -184,6 +188,34 @@ class _RunCluster:
 # The clusters of the flow runs of this process, by key.
 _RUNS: dict[str, _RunCluster] = {}
 
+
+class _StopRequest:
+    """A stop of one flow run asked from another thread (its flow run cancelled from the server).
+
+    :meth:`ask` stops the run's segments (:meth:`_RunCluster.stop`) if they run, else makes
+    them refuse to start once registered (:meth:`attach`); the flow body then ends the run
+    as stopped before its end.
+    """
+
+    def __init__(self) -> None:
+        self.asked = False
+        self._run: _RunCluster | None = None
+
+    def ask(self) -> None:
+        """Stop the run; returns once every segment task inside has returned."""
+        with _CLIENTS_LOCK:
+            self.asked = True
+            run = self._run
+        if run is not None:
+            run.stop()
+
+    def attach(self, run: _RunCluster) -> None:
+        """Register the run's cluster (call holding ``_CLIENTS_LOCK``); a stop asked already
+        refuses its tasks at once."""
+        self._run = run
+        if self.asked:
+            run.stopping = True
+
 PROGRESS_INTERVAL_S = 3.0
 """Seconds between updates of a segment's progress artifact on the dashboard (and one at the
 end). Each update costs the Prefect server about 12 ms of CPU, the run's own cores when the
@@ -237,14 +269,15 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 
 
 @contextlib.contextmanager
-def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None = None) -> Iterator[str]:
+def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None = None,
+                   stop: _StopRequest | None = None) -> Iterator[str]:
     """Register the started client (and the head start whose drivers the tasks follow) for
     the segment tasks under a new key, for the ``with`` block; the caller closes them.
 
     Left with an exception (Ctrl-C included), the run is stopped first (:meth:`_RunCluster.stop`):
     no task starts or retries its segment any more, and the blocks are cancelled until
     every task driving or following one has returned, so that the caller closes the
-    cluster under none of them.
+    cluster under none of them. ``stop``, when given, can stop the run from another thread.
     """
     key = uuid.uuid4().hex
     try:
@@ -252,6 +285,8 @@ def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None =
         run = _RunCluster(client, tally, head)
         with _CLIENTS_LOCK:
             _RUNS[key] = run
+            if stop is not None:
+                stop.attach(run)
         try:
             yield key
         except BaseException:
@@ -588,13 +623,48 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         but inputs were left out, in a COMPLETED state named ``LeftOut`` (:data:`STATE_LEFT_OUT`)
         whose message names them.
     """
-    with flow_heartbeats():  # only when the caller asked for them (see twinpass.heartbeats)
-        return _archive_run(config_path, force, scheduler, workers, config_block, report)
+    stop = _StopRequest()
+    # Heartbeats, and the watch for a cancel from the server: only when the caller asked for
+    # them (see twinpass.heartbeats and twinpass.server_cancel).
+    with flow_heartbeats(), cancel_watch(stop.ask) as watch:
+        try:
+            ended = _archive_run(config_path, force, scheduler, workers, config_block, report, stop, watch)
+        except FlowRunCancelledError as e:
+            return Cancelled(message=str(e))
+        except BaseException as e:
+            # A task refused by the server (Prefect's Abort) once the flow run is being cancelled:
+            # the server accepts no final state but Cancelled.
+            if isinstance(e, (KeyboardInterrupt, SystemExit)) or not watch.read_now():
+                raise
+            return Cancelled(message=f"{CANCELLED_FROM_SERVER}; the run was stopped before its end "
+                                     f"({type(e).__name__}: {e}); finished blocks are kept, rerun to finish the rest")
+        if watch.cancelled:  # too late to stop anything: the run is recorded, its outcome stands
+            summary = ended.data if hasattr(ended, "data") else ended
+            return Cancelled(message=f"{CANCELLED_FROM_SERVER} after the run was recorded; its outcome stands "
+                                     "(`twinpass status`)", data=summary)
+        return ended
+
+
+CANCELLED_FROM_SERVER = "the flow run was cancelled from the Prefect server"
+"""How the message of a flow run of the command line cancelled from the server begins."""
 
 
 def _archive_run(config_path: str | None, force: bool, scheduler: str | None, workers: int | None,
-                 config_block: str | None, report: bool) -> Any:
-    """The body of :func:`archive_run` (same parameters and result)."""
+                 config_block: str | None, report: bool, stop: _StopRequest | None = None,
+                 watch: CancelWatch | None = None) -> Any:
+    """The body of :func:`archive_run` (same parameters and result).
+
+    ``stop`` stops the run from another thread, and ``watch`` tells whether the flow run is
+    being cancelled from the server: the run then ends as stopped before its end (recorded
+    so in the store), raising :class:`FlowRunCancelledError`.
+    """
+    stop = stop if stop is not None else _StopRequest()
+    watch = watch if watch is not None else CancelWatch()
+
+    def cancelled() -> FlowRunCancelledError:
+        return FlowRunCancelledError(f"{CANCELLED_FROM_SERVER}; the run was stopped before its end: finished blocks "
+                                     "are kept, rerun to finish the rest")
+
     logger = get_run_logger()
     cfg = load_job(config_path, config_block)
     # A run the command line began before this flow run existed (twinpass.headstart), if it
@@ -647,8 +717,14 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 if unchanged:
                     skip_unchanged(quote(unchanged))
                 if start is not None:
-                    done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head)
+                    if stop.asked:
+                        raise cancelled()
+                    done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head, stop)
                     outcomes.extend(done)
+            # A cancel from the server stops the run until it is recorded as finished: the
+            # server would refuse the tasks that record it.
+            if stop.asked or watch.read_now():
+                raise cancelled()
         except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
             if begun:  # every driver has returned (the cluster is closed): what they did is in the tally
                 finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
@@ -695,12 +771,13 @@ def left_out_message(prep: Prepared, cfg: JobConfig) -> str:
 
 
 def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore, start: ClientStart,
-                     tally: RunTally, head: HeadStart | None = None
+                     tally: RunTally, head: HeadStart | None = None, stop: _StopRequest | None = None
                      ) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
     """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file).
 
     ``tally`` sees every block and every task's outcomes as they come. With a head start,
-    each task follows its segment's running driver instead of starting one.
+    each task follows its segment's running driver instead of starting one. ``stop``, when
+    given, can stop the segments from another thread (see :class:`_StopRequest`).
     """
     logger = get_run_logger()
     cfg = prep.cfg
@@ -711,7 +788,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
         retries=cfg.flow.retries,
         retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
     )
-    with _shared_client(start, tally, head) as key:
+    with _shared_client(start, tally, head, stop) as key:
         futures = []
         for w in busy:
             futures.append((w, time.perf_counter(),
@@ -731,8 +808,9 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
                 outs = with_check_failures(_outcomes_from_store(store, w, ran), w, store,
                                            prep.designs[w.sample_rate_hz], cfg)
                 bad = [o.relpath for o in outs if o.status == "failed"]
-                logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
-                             state.message or state.name, ", ".join(bad))
+                if not (stop is not None and stop.asked and state.is_cancelled()):  # a stop: said by the task
+                    logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
+                                 state.message or state.name, ", ".join(bad))
                 failed_files += bad
             for o in outs:
                 durations[o.relpath] = o.seconds or secs
