@@ -681,6 +681,8 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     with held:
         for gone in store.stale_locks_recovered:  # said on the terminal by the store; here on the dashboard
             logger.warning("recovered a stale lock on the output store: %s is no longer running", gone.describe())
+            _crash_flow_run_of(store, gone, run_id)
+        _note_flow_run(store)
         cleaned = store.clean_partials() if head is None else head.cleaned
         if cleaned:
             logger.warning("removed %d partial chunk file(s) left by an interrupted run", cleaned)
@@ -745,6 +747,53 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     if report_error:
         return Completed(message=f"the report was not written: {report_error}", data=summary)
     return summary
+
+
+def _api_url() -> str:
+    """The API URL of the Prefect server this flow run belongs to ("" when none is set)."""
+    from prefect.settings import PREFECT_API_URL
+
+    return str(PREFECT_API_URL.value() or "")
+
+
+def _note_flow_run(store: OutputStore) -> None:
+    """Note this flow run beside the store's run lock, for a run that may recover the lock
+    should this process die (see :func:`_crash_flow_run_of`); a note that cannot be written
+    is a warning."""
+    try:
+        store.note_flow_run(str(flow_run_runtime.id), _api_url())
+    except Exception as e:
+        get_run_logger().warning("could not note this flow run beside the store's lock (%s: %s); should this "
+                                 "process die, the next run cannot mark the flow run crashed", type(e).__name__, e)
+
+
+def _crash_flow_run_of(store: OutputStore, gone: Any, run_id: str) -> None:
+    """Set the flow run of ``gone`` (the holder of a stale lock this run recovered: a run
+    whose process died) to Crashed on the Prefect server, if it noted one on this same
+    server (same API URL) and it has not ended there; else leave it. A server that refuses
+    is a warning: the run goes on."""
+    from prefect import get_client
+    from prefect.states import Crashed
+
+    noted = store.noted_flow_run(gone.run_id)
+    if noted is None or not noted["api_url"] or noted["api_url"] != _api_url():
+        return
+    logger = get_run_logger()
+    try:
+        with get_client(sync_client=True) as client:
+            dead = client.read_flow_run(uuid.UUID(noted["flow_run_id"]))
+            if dead.state is None or dead.state.is_final():
+                return
+            client.set_flow_run_state(dead.id, Crashed(message=(
+                f"the process of twinpass {gone.describe()} ended before this flow run did; run {run_id} "
+                f"recovered its stale lock on the output store {store.location} (flow run "
+                f"{flow_run_runtime.id}); rerun to finish what it left")), force=True)
+    except Exception as e:
+        logger.warning("could not set flow run %s of %s to Crashed (%s: %s); the dashboard may keep showing it "
+                       "running", noted["flow_run_id"], gone.describe(), type(e).__name__, e)
+        return
+    logger.warning("set flow run %s (%s) of %s to Crashed: its process is gone", noted["flow_run_id"], dead.name,
+                   gone.describe())
 
 
 REPORT_UNWRITTEN = "; the report was not written: "
