@@ -634,7 +634,7 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         except BaseException as e:
             # A task refused by the server (Prefect's Abort) once the flow run is being cancelled:
             # the server accepts no final state but Cancelled.
-            if isinstance(e, (KeyboardInterrupt, SystemExit)) or not watch.read_now():
+            if isinstance(e, (KeyboardInterrupt, SystemExit)) or server_unreachable(e) or not watch.read_now():
                 raise
             return Cancelled(message=f"{CANCELLED_FROM_SERVER}; the run was stopped before its end "
                                      f"({type(e).__name__}: {e}); finished blocks are kept, rerun to finish the rest")

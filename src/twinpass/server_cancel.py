@@ -28,6 +28,9 @@ log = logging.getLogger(__name__)
 
 POLL_S = 3.0
 """Seconds between two readings of the flow run's state (each is one request to the server)."""
+READ_TIMEOUT_S = 10.0
+"""Seconds a reading waits for the server's answer; it is not retried (the next poll asks
+again), so that a server that stopped answering holds up no one for Prefect's retries."""
 
 _enabled: contextvars.ContextVar[bool] = contextvars.ContextVar("twinpass_server_cancels", default=False)
 
@@ -63,9 +66,11 @@ class CancelWatch:
 
     def _read(self) -> bool:
         from prefect import get_client
+        from prefect.settings import temporary_settings
 
         try:
-            with get_client(sync_client=True) as client:
+            with temporary_settings(updates={"client.max_retries": 0}), \
+                    get_client(sync_client=True, httpx_settings={"timeout": READ_TIMEOUT_S}) as client:
                 state = client.read_flow_run(self.flow_run_id).state
         except Exception:  # an unanswered poll must never fail the run
             log.debug("could not read the state of flow run %s", self.flow_run_id, exc_info=True)
@@ -121,4 +126,4 @@ def cancel_watch(on_cancel: Callable[[], None]) -> Iterator[CancelWatch]:
         done.set()
 
 
-__all__ = ["POLL_S", "CancelWatch", "cancel_watch", "server_cancels"]
+__all__ = ["POLL_S", "READ_TIMEOUT_S", "CancelWatch", "cancel_watch", "server_cancels"]
