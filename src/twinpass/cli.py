@@ -333,9 +333,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .errors import BlockFailedError
     from .headstart import withdraw
     from .heartbeats import prompt_heartbeats
-    from .server_cancel import server_cancels
     from .job import now_iso
     from .prefect_server import check_api_reachable, configured_api, prefect_api
+    from .server_cancel import server_cancels
 
     # The configured Prefect API, else a temporary local server; while that starts, load
     # what the flow call would load after it and, unless the run has begun (it has its

@@ -77,9 +77,9 @@ from .engine import (
 from .errors import BlockFailedError, ChecksFailedError, ConfigError, FlowRunCancelledError, RunStoppedError
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
-from .server_cancel import CancelWatch, cancel_watch
 from .io.store import OutputStore
 from .job import Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso, prepare
+from .server_cancel import CancelWatch, cancel_watch
 
 if TYPE_CHECKING:
     from prefect.deployments.runner import RunnerDeployment
@@ -215,6 +215,7 @@ class _StopRequest:
         self._run = run
         if self.asked:
             run.stopping = True
+
 
 PROGRESS_INTERVAL_S = 3.0
 """Seconds between updates of a segment's progress artifact on the dashboard (and one at the
