@@ -934,6 +934,42 @@ def test_a_flow_run_of_the_command_cancelled_from_the_server_stops_the_run_and_e
     _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
 
 
+def test_a_flow_run_cancelled_from_the_server_once_its_run_is_recorded_keeps_the_runs_outcome(
+        prefect_client, npy_archive, tmp_path, monkeypatch):
+    # A flow run watched for a cancel from the server (as `twinpass run` watches its own) is
+    # cancelled once its run is recorded, just before the report is written (the cancel is
+    # the injected fault, through Prefect's client, as the dashboard's Cancel does it). The
+    # server accepts no final state but Cancelled for it (Prefect's cancellation protocol):
+    # the flow run ends Cancelled (not stuck in Cancelling), its message saying the run's
+    # outcome stands, with the run's summary as its data; the run is recorded as finished,
+    # every file complete. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from prefect.runtime import flow_run as flow_run_runtime
+    from prefect.states import Cancelling
+
+    from twinpass.server_cancel import server_cancels
+
+    cfg = write_job(tmp_path, npy_archive)
+    write_report = flows._write_report
+
+    def cancelled_first(job):
+        prefect_client.set_flow_run_state(flow_run_runtime.id, Cancelling(message="cancelled from the dashboard"))
+        return write_report(job)
+
+    monkeypatch.setattr(flows, "_write_report", cancelled_first)
+    with server_cancels():
+        state = flows.archive_run(config_path=str(cfg), return_state=True)
+    assert state.is_cancelled(), (state.name, state.message)
+    assert state.message.startswith(f"{flows.CANCELLED_FROM_SERVER} after the run was recorded"), state.message
+    final = poll(lambda: prefect_client.read_flow_run(flow_run_id(state)).state, lambda st: st.is_final(),
+                 "the flow run's end")
+    assert final.is_cancelled(), (final.name, final.message)
+    summary = state.result(raise_on_failure=False)
+    assert summary["counts"]["complete"] == len(ALL_FILES) and summary["failed"] == [], summary
+    (run,) = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert not run.get("interrupted") and run["counts"]["complete"] == len(ALL_FILES), run
+    _job_done(str(tmp_path / "out.zarr"), npy_archive)
+
+
 def test_the_flow_run_of_a_killed_run_is_set_crashed_by_the_run_that_recovers_its_lock(
         prefect_server, prefect_client, npy_archive, tmp_path):
     # `twinpass run` against a Prefect server it did not start, its blocks held (an injected

@@ -633,13 +633,13 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         except FlowRunCancelledError as e:
             return Cancelled(message=str(e))
         except BaseException as e:
-            # A task refused by the server (Prefect's Abort) once the flow run is being cancelled:
-            # the server accepts no final state but Cancelled.
+            # An error ending a flow run that is being cancelled from the server: the server
+            # accepts no final state but Cancelled for it.
             if isinstance(e, (KeyboardInterrupt, SystemExit)) or server_unreachable(e) or not watch.read_now():
                 raise
             return Cancelled(message=f"{CANCELLED_FROM_SERVER}; the run was stopped before its end "
                                      f"({type(e).__name__}: {e}); finished blocks are kept, rerun to finish the rest")
-        if watch.cancelled:  # too late to stop anything: the run is recorded, its outcome stands
+        if watch.read_now():  # too late to stop anything: the run is recorded, its outcome stands
             summary = ended.data if hasattr(ended, "data") else ended
             return Cancelled(message=f"{CANCELLED_FROM_SERVER} after the run was recorded; its outcome stands "
                                      "(`twinpass status`)", data=summary)
@@ -724,8 +724,8 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                         raise cancelled()
                     done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head, stop)
                     outcomes.extend(done)
-            # A cancel from the server stops the run until it is recorded as finished: the
-            # server would refuse the tasks that record it.
+            # A cancel from the server stops the run until it is recorded as finished (the
+            # server accepts no final state but Cancelled for the flow run).
             if stop.asked or watch.read_now():
                 raise cancelled()
         except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
