@@ -8,6 +8,7 @@ real failures inside the real engine, switched on through ``TWINPASS_FAULTS``.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
@@ -20,6 +21,7 @@ import time
 import uuid
 from pathlib import Path
 from types import SimpleNamespace
+from typing import Iterator
 from urllib.parse import urlparse
 from urllib.request import url2pathname
 
@@ -1055,6 +1057,135 @@ def test_ctrl_c_during_a_flow_command_keeps_finished_blocks_and_marks_nothing_co
     assert root["runs"][-1].get("interrupted") is True, root["runs"]  # the stopped run is the last recorded
     stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))  # its counts: what the store shows done
     _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
+
+
+@contextlib.contextmanager
+def _command_running(cfg: Path, server: str, fault: dict, folder: Path) -> Iterator[tuple[subprocess.Popen, Path]]:
+    """`twinpass run CFG --no-report` against the Prefect ``server``, with the injected
+    ``fault``, from once a segment task has begun (in its stderr, kept in the file yielded
+    with the process); the process is killed on the way out if it still runs."""
+    env = flow_env({"PREFECT_HOME": PREFECT_HOME, "PREFECT_API_URL": server, "TWINPASS_FAULTS": json.dumps([fault])})
+    err_path = folder / "run.err"
+    with open(err_path, "w") as err:
+        proc = subprocess.Popen([sys.executable, "-m", "twinpass.cli", "run", str(cfg), "--no-report"], env=env,
+                                cwd=folder, stdout=subprocess.PIPE, stderr=err, text=True)
+    try:
+        poll(lambda: err_path.read_text(), lambda text: "file(s) to filter" in text or proc.poll() is not None,
+             "a segment task's start")
+        assert proc.poll() is None, err_path.read_text()
+        yield proc, err_path
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+
+
+def test_a_flow_run_of_the_command_cancelled_from_the_server_stops_the_run_and_ends_cancelled(
+        prefect_server, prefect_client, npy_archive, tmp_path):
+    # `twinpass run` against a Prefect server it did not start (its flow run has no runner),
+    # each block delayed 2 s (an injected fault) so that blocks still run or wait when the
+    # flow run begins, even on a loaded machine. Its flow run is cancelled through Prefect's
+    # client as the dashboard's Cancel and `prefect flow-run cancel` do it (state Cancelling,
+    # Prefect's cancellation protocol). The run stops as for Ctrl-C: the flow run ends
+    # Cancelled (not stuck in Cancelling), the command says it was cancelled from the server
+    # and exits 130, the lock is released, nothing is marked complete that is not, the run is
+    # recorded as stopped before its end, and the next run finishes the job. Output:
+    # scipy.signal.sosfiltfilt of the whole segment.
+    from prefect.states import Cancelling
+
+    from twinpass.io.store_lock import LOCK_NAME
+
+    cfg = write_job(tmp_path, npy_archive)
+    sleep = {"action": "sleep", "file": "*", "block": "*", "seconds": 2.0}
+    with _command_running(cfg, prefect_server, sleep, tmp_path) as (proc, err_path):
+        (run,) = poll(lambda: [r for r in prefect_client.read_flow_runs(limit=200)
+                               if r.parameters.get("config_path") == str(cfg.resolve())],
+                      lambda rs: len(rs) == 1, f"the flow run of {cfg}")
+        prefect_client.set_flow_run_state(run.id, Cancelling(message="cancelled from the dashboard"))
+        final = poll(lambda: prefect_client.read_flow_run(run.id).state, lambda st: st is not None and st.is_final(),
+                     f"the end of flow run {run.id}")
+        out, _ = proc.communicate(timeout=240)
+    text = err_path.read_text()
+    assert final.is_cancelled(), (final.name, final.message)
+    assert final.message.startswith(flows.CANCELLED_FROM_SERVER), final.message
+    assert proc.returncode == 130, out + text
+    assert "twinpass: the flow run was cancelled from the Prefect server; finished blocks are kept" in text, text
+    assert "Traceback" not in out + text and "run ended" not in out, out + text
+    assert not (tmp_path / "out.zarr" / LOCK_NAME).exists()  # released, not left for a later run to recover
+    records = _file_records_honest(str(tmp_path / "out.zarr"))
+    assert not all(records.values()), records
+    stopped_run_counts(tmp_path / "out.zarr", len(ALL_FILES))  # recorded as stopped, counts as the store shows
+    segs = runs_of(final_task_runs(prefect_client, run.id, expected=3), flows.filter_segment)
+    assert segs and all(t.state.is_cancelled() for t in segs), [(t.name, t.state.name) for t in segs]
+    _next_run_finishes(cfg, npy_archive, tmp_path / "out.zarr")
+
+
+def test_a_flow_run_cancelled_from_the_server_once_its_run_is_recorded_keeps_the_runs_outcome(
+        prefect_client, npy_archive, tmp_path, monkeypatch):
+    # A flow run watched for a cancel from the server (as `twinpass run` watches its own) is
+    # cancelled once its run is recorded, just before the report is written (the cancel is
+    # the injected fault, through Prefect's client, as the dashboard's Cancel does it). The
+    # server accepts no final state but Cancelled for it (Prefect's cancellation protocol):
+    # the flow run ends Cancelled (not stuck in Cancelling), its message saying the run's
+    # outcome stands, with the run's summary as its data; the run is recorded as finished,
+    # every file complete. Output: scipy.signal.sosfiltfilt of the whole segment.
+    from prefect.runtime import flow_run as flow_run_runtime
+    from prefect.states import Cancelling
+
+    from twinpass.server_cancel import server_cancels
+
+    cfg = write_job(tmp_path, npy_archive)
+    write_report = flows._write_report
+
+    def cancelled_first(job):
+        prefect_client.set_flow_run_state(flow_run_runtime.id, Cancelling(message="cancelled from the dashboard"))
+        return write_report(job)
+
+    monkeypatch.setattr(flows, "_write_report", cancelled_first)
+    with server_cancels():
+        state = flows.archive_run(config_path=str(cfg), return_state=True)
+    assert state.is_cancelled(), (state.name, state.message)
+    assert state.message.startswith(f"{flows.CANCELLED_FROM_SERVER} after the run was recorded"), state.message
+    final = poll(lambda: prefect_client.read_flow_run(flow_run_id(state)).state, lambda st: st.is_final(),
+                 "the flow run's end")
+    assert final.is_cancelled(), (final.name, final.message)
+    summary = state.result(raise_on_failure=False)
+    assert summary["counts"]["complete"] == len(ALL_FILES) and summary["failed"] == [], summary
+    (run,) = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_runs()
+    assert not run.get("interrupted") and run["counts"]["complete"] == len(ALL_FILES), run
+    _job_done(str(tmp_path / "out.zarr"), npy_archive)
+
+
+def test_the_flow_run_of_a_killed_run_is_set_crashed_by_the_run_that_recovers_its_lock(
+        prefect_server, prefect_client, npy_archive, tmp_path):
+    # `twinpass run` against a Prefect server it did not start, its blocks held (an injected
+    # fault), is killed (SIGKILL: no clean-up) once a segment task has begun: its flow run is
+    # left Running on the server. The next run of the same configuration, on the same server,
+    # recovers the dead run's stale lock and sets that flow run to Crashed, its message naming
+    # the recovery; it then finishes the job. Output: scipy.signal.sosfiltfilt of the whole
+    # segment.
+    from twinpass.io.store_lock import FLOW_RUN_SUFFIX, LOCK_NAME
+
+    cfg = write_job(tmp_path, npy_archive)
+    go = tmp_path / "go"
+    hold = {"action": "hold", "file": "*", "block": "*", "path": str(go), "seconds": 120}
+    try:
+        with _command_running(cfg, prefect_server, hold, tmp_path) as (proc, _):
+            proc.kill()
+            proc.communicate(timeout=60)
+    finally:
+        go.touch()
+    (dead,) = [r for r in prefect_client.read_flow_runs(limit=200)
+               if r.parameters.get("config_path") == str(cfg.resolve())]
+    assert dead.state.is_running(), dead.state  # nothing ended it
+    store = tmp_path / "out.zarr"
+    assert (store / LOCK_NAME).exists() and (store / (LOCK_NAME + FLOW_RUN_SUFFIX)).exists()
+
+    _next_run_finishes(cfg, npy_archive, store)
+    crashed = prefect_client.read_flow_run(dead.id).state
+    assert crashed.is_crashed(), (crashed.name, crashed.message)
+    assert "recovered its stale lock on the output store" in crashed.message, crashed.message
+    assert not (store / LOCK_NAME).exists() and not (store / (LOCK_NAME + FLOW_RUN_SUFFIX)).exists()
 
 
 def _job_in_short_blocks(folder: Path, archive: Path) -> Path:

@@ -600,6 +600,35 @@ def test_stale_lock_is_recovered_with_a_warning(store: OutputStore, tmp_path: Pa
             pass
 
 
+def test_the_flow_run_noted_beside_the_lock_outlives_a_dead_holder_and_goes_with_a_release(
+        store: OutputStore, tmp_path: Path):
+    # A run notes its flow run beside the lock it holds; a run that died leaves the note for the
+    # run recovering its lock, which reads it under the dead run's id only; a release removes it.
+    note_path = tmp_path / "out.zarr" / ".twinpass-lock.flow-run"
+    with pytest.raises(StoreError, match="holding the lock"):
+        store.note_flow_run("f-0", "http://127.0.0.1:1/api")
+    with store.lock("run-one"):
+        store.note_flow_run("f-1", "http://127.0.0.1:1/api")
+        assert store.noted_flow_run("run-one") == {"flow_run_id": "f-1", "api_url": "http://127.0.0.1:1/api"}
+        assert store.noted_flow_run("run-two") is None
+        assert store.list_arrays() == []  # the note is not taken for an array
+    assert not note_path.exists()
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    (tmp_path / "out.zarr" / ".twinpass-lock").write_text(json.dumps(
+        {"pid": dead.pid, "host": socket.gethostname(), "run_id": "old", "started": "2026-03-01T00:00:00+00:00"}))
+    note_path.write_text(json.dumps({"run_id": "old", "flow_run_id": "f-old", "api_url": "http://127.0.0.1:1/api"}))
+    with store.lock("new"):
+        assert [gone.run_id for gone in store.stale_locks_recovered] == ["old"]
+        assert store.noted_flow_run("old") == {"flow_run_id": "f-old", "api_url": "http://127.0.0.1:1/api"}
+        store.note_flow_run("f-new", "http://127.0.0.1:1/api")
+        assert store.noted_flow_run("old") is None and store.noted_flow_run("new")["flow_run_id"] == "f-new"
+    assert not note_path.exists()
+    note_path.write_text("{not json")
+    assert store.noted_flow_run("old") is None
+
+
 @pytest.mark.parametrize("where", ["local", "memory"])
 def test_a_block_fenced_by_a_lock_another_run_took_writes_nothing(tmp_path: Path, where: str):
     # A block task still running for a command that was killed (on a cluster of its own)

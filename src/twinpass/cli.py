@@ -4,9 +4,9 @@ Commands: ``design``, ``plan``, ``run``, ``status``, ``report``, ``demo``, ``ser
 Exit status: 0 success; 1 some files failed or are incomplete; 2 bad configuration or input
 (nothing run); 3 ``run`` finished, no file failed, but input files were left out (invalid
 input, or no filter for their sample rate: listed with reasons; exclude them in
-``[archive] exclude`` if that is intended); 130 interrupted. A report that ``run`` cannot
-write after the run is recorded is an error line after the summary, and the run's own
-status stands.
+``[archive] exclude`` if that is intended); 130 interrupted (Ctrl-C, or the flow run cancelled
+from the Prefect server). A report that ``run`` cannot write after the run is recorded is
+an error line after the summary, and the run's own status stands.
 """
 
 from __future__ import annotations
@@ -347,6 +347,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     from .heartbeats import prompt_heartbeats
     from .job import now_iso
     from .prefect_server import check_api_reachable, configured_api, prefect_api
+    from .server_cancel import server_cancels
 
     # The configured Prefect API, else a temporary local server; while that starts, load
     # what the flow call would load after it and, unless the run has begun (it has its
@@ -363,6 +364,7 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     head = False
     since = now_iso()  # the run's record in the store begins at or after this
     lost: Exception | None = None  # the Prefect API's error, when the server stopped answering
+    state: Any = None
 
     def while_starting() -> None:
         if not head:
@@ -383,8 +385,10 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
                     cfg = flows.load_job(None, config_block)
                 flows.TERMINAL_PROGRESS = progress
                 try:
-                    # Heartbeats that do not hold up the end of the run; a lost server explained in one line.
-                    with prompt_heartbeats(), _without_tracebacks_of(_explained_here):
+                    # Heartbeats that do not hold up the end of the run; a lost server explained in one
+                    # line; on a server others reach (a dashboard), a cancel from it stops the run.
+                    watched = server_cancels() if api is not None else contextlib.nullcontext()
+                    with prompt_heartbeats(), watched, _without_tracebacks_of(_explained_here):
                         state = flows.archive_run(
                             config_path=None if config_path is None else str(Path(config_path).resolve()),
                             config_block=config_block, force=force, scheduler=scheduler, workers=workers,
@@ -405,9 +409,14 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     finally:
         withdraw()  # a head start the flow run did not take (a failed server start, Ctrl-C): stop it
         flows.close_early_client()  # likewise a cluster started early
-        progress.close(count=sys.exc_info()[0] is None)  # an interrupted run's count would mislead
+        # An interrupted run's count would mislead, as would a cancelled one's.
+        progress.close(count=sys.exc_info()[0] is None and not (state is not None and state.is_cancelled()))
     if lost is not None:
         return _after_server_lost(cfg, since, lost, api_url, report=report)
+    if state.is_cancelled() and not isinstance(summary, dict):  # stopped before its end, as by Ctrl-C
+        _eprint("twinpass: the flow run was cancelled from the Prefect server; finished blocks are kept, rerun to "
+                "resume")
+        return EXIT_INTERRUPTED
     if isinstance(summary, TwinpassError) and not isinstance(summary, BlockFailedError):
         raise summary  # bad configuration, input or store: exit status 2, as without the flow
     if isinstance(summary, dict):
@@ -417,6 +426,9 @@ def _run_flow(cfg: Any, config_path: str | None, *, force: bool, scheduler: str 
     report_error = summary.get("report_error") if isinstance(summary, dict) else None
     if state.is_completed():
         code = EXIT_LEFT_OUT if isinstance(summary, dict) and summary.get("invalid") else 0
+    elif state.is_cancelled():  # cancelled once the run was recorded: the run's own status
+        _eprint(f"twinpass: {state.message}")
+        code = 1 if summary.get("failed") else EXIT_LEFT_OUT if summary.get("invalid") else 0
     else:
         # The report's failure is the command's last line (below), not also part of this one.
         message = (state.message or "").removesuffix(f"{flows.REPORT_UNWRITTEN}{report_error}")

@@ -100,6 +100,11 @@ class RunStoppedError(BlockFailedError):
         return cls(f"segment {segment_id}: the run was stopped before this segment started; rerun to finish it")
 
 
+class FlowRunCancelledError(TwinpassError):
+    """The run's Prefect flow run was cancelled from the server (the dashboard's Cancel,
+    ``prefect flow-run cancel``): the run was stopped before its end, as by Ctrl-C."""
+
+
 class ReportNotWrittenError(TwinpassError):
     """The HTML report could not be written after a run whose outputs and records stand.
 

@@ -17,6 +17,9 @@ no segment task starts or is retried any more (each ends in state Cancelled, its
 that of the ``RunStoppedError`` that says what was left undone), the
 run's blocks are cancelled until every task driving or following a segment has returned
 (its unfinished blocks recorded as cancelled), and only then does the cluster close.
+A flow run of ``twinpass run`` cancelled from the Prefect server (the dashboard's Cancel,
+``prefect flow-run cancel``) is stopped the same way (:mod:`twinpass.server_cancel`
+notices it) and ends Cancelled, the run recorded as stopped before its end.
 
 :func:`build_deployment` / :func:`serve_deployment` turn the flow into a scheduled
 deployment (cron expression in a given time zone) served by this process.
@@ -73,12 +76,14 @@ from .engine import (
     warm_compiled_loops,
     with_check_failures,
 )
-from .errors import BlockFailedError, ChecksFailedError, ConfigError, RunStoppedError, TwinpassError
+from .errors import (BlockFailedError, ChecksFailedError, ConfigError, FlowRunCancelledError, RunStoppedError,
+                     TwinpassError)
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
 from .job import (Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso,
                   open_run_store, prepare)
+from .server_cancel import CancelWatch, cancel_watch
 from .status import retried_line
 
 if TYPE_CHECKING:
@@ -188,6 +193,35 @@ class _RunCluster:
 # The clusters of the flow runs of this process, by key.
 _RUNS: dict[str, _RunCluster] = {}
 
+
+class _StopRequest:
+    """A stop of one flow run asked from another thread (its flow run cancelled from the server).
+
+    :meth:`ask` stops the run's segments (:meth:`_RunCluster.stop`) if they run, else makes
+    them refuse to start once registered (:meth:`attach`); the flow body then ends the run
+    as stopped before its end.
+    """
+
+    def __init__(self) -> None:
+        self.asked = False
+        self._run: _RunCluster | None = None
+
+    def ask(self) -> None:
+        """Stop the run; returns once every segment task inside has returned."""
+        with _CLIENTS_LOCK:
+            self.asked = True
+            run = self._run
+        if run is not None:
+            run.stop()
+
+    def attach(self, run: _RunCluster) -> None:
+        """Register the run's cluster (call holding ``_CLIENTS_LOCK``); a stop asked already
+        refuses its tasks at once."""
+        self._run = run
+        if self.asked:
+            run.stopping = True
+
+
 PROGRESS_INTERVAL_S = 3.0
 """Seconds between updates of a segment's progress artifact on the dashboard (and one at the
 end). Each update costs the Prefect server about 12 ms of CPU, the run's own cores when the
@@ -241,14 +275,15 @@ def _client_start(scheduler: str, workers: int) -> ClientStart:
 
 
 @contextlib.contextmanager
-def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None = None) -> Iterator[str]:
+def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None = None,
+                   stop: _StopRequest | None = None) -> Iterator[str]:
     """Register the started client (and the head start whose drivers the tasks follow) for
     the segment tasks under a new key, for the ``with`` block; the caller closes them.
 
     Left with an exception (Ctrl-C included), the run is stopped first (:meth:`_RunCluster.stop`):
     no task starts or retries its segment any more, and the blocks are cancelled until
     every task driving or following one has returned, so that the caller closes the
-    cluster under none of them.
+    cluster under none of them. ``stop``, when given, can stop the run from another thread.
     """
     key = uuid.uuid4().hex
     try:
@@ -256,6 +291,8 @@ def _shared_client(start: ClientStart, tally: RunTally, head: HeadStart | None =
         run = _RunCluster(client, tally, head)
         with _CLIENTS_LOCK:
             _RUNS[key] = run
+            if stop is not None:
+                stop.attach(run)
         try:
             yield key
         except BaseException:
@@ -672,13 +709,48 @@ def archive_run(config_path: str | None = None, force: bool = False, scheduler: 
         :data:`RUN_UNRECORDED` and the store's error, with this summary (no report) and that
         error under ``unrecorded`` as the state's data.
     """
-    with flow_heartbeats():  # only when the caller asked for them (see twinpass.heartbeats)
-        return _archive_run(config_path, force, scheduler, workers, config_block, report)
+    stop = _StopRequest()
+    # Heartbeats, and the watch for a cancel from the server: only when the caller asked for
+    # them (see twinpass.heartbeats and twinpass.server_cancel).
+    with flow_heartbeats(), cancel_watch(stop.ask) as watch:
+        try:
+            ended = _archive_run(config_path, force, scheduler, workers, config_block, report, stop, watch)
+        except FlowRunCancelledError as e:
+            return Cancelled(message=str(e))
+        except BaseException as e:
+            # An error ending a flow run that is being cancelled from the server: the server
+            # accepts no final state but Cancelled for it.
+            if isinstance(e, (KeyboardInterrupt, SystemExit)) or server_unreachable(e) or not watch.read_now():
+                raise
+            return Cancelled(message=f"{CANCELLED_FROM_SERVER}; the run was stopped before its end "
+                                     f"({type(e).__name__}: {e}); finished blocks are kept, rerun to finish the rest")
+        if watch.read_now():  # too late to stop anything: the run is recorded, its outcome stands
+            summary = ended.data if hasattr(ended, "data") else ended
+            return Cancelled(message=f"{CANCELLED_FROM_SERVER} after the run was recorded; its outcome stands "
+                                     "(`twinpass status`)", data=summary)
+        return ended
+
+
+CANCELLED_FROM_SERVER = "the flow run was cancelled from the Prefect server"
+"""How the message of a flow run of the command line cancelled from the server begins."""
 
 
 def _archive_run(config_path: str | None, force: bool, scheduler: str | None, workers: int | None,
-                 config_block: str | None, report: bool) -> Any:
-    """The body of :func:`archive_run` (same parameters and result)."""
+                 config_block: str | None, report: bool, stop: _StopRequest | None = None,
+                 watch: CancelWatch | None = None) -> Any:
+    """The body of :func:`archive_run` (same parameters and result).
+
+    ``stop`` stops the run from another thread, and ``watch`` tells whether the flow run is
+    being cancelled from the server: the run then ends as stopped before its end (recorded
+    so in the store), raising :class:`FlowRunCancelledError`.
+    """
+    stop = stop if stop is not None else _StopRequest()
+    watch = watch if watch is not None else CancelWatch()
+
+    def cancelled() -> FlowRunCancelledError:
+        return FlowRunCancelledError(f"{CANCELLED_FROM_SERVER}; the run was stopped before its end: finished blocks "
+                                     "are kept, rerun to finish the rest")
+
     logger = get_run_logger()
     cfg = load_job(config_path, config_block)
     # A run the command line began before this flow run existed (twinpass.headstart), if it
@@ -695,6 +767,8 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
     with held:
         for gone in store.stale_locks_recovered:  # said on the terminal by the store; here on the dashboard
             logger.warning("recovered a stale lock on the output store: %s is no longer running", gone.describe())
+            _crash_flow_run_of(store, gone, run_id)
+        _note_flow_run(store)
         cleaned = store.clean_partials() if head is None else head.cleaned
         if cleaned:
             logger.warning("removed %d partial chunk file(s) left by an interrupted run", cleaned)
@@ -731,8 +805,14 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 if unchanged:
                     skip_unchanged(quote(unchanged))
                 if start is not None:
-                    done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head)
+                    if stop.asked:
+                        raise cancelled()
+                    done, failed_files, durations = _filter_segments(busy, prep, store, start, tally, head, stop)
                     outcomes.extend(done)
+            # A cancel from the server stops the run until it is recorded as finished (the
+            # server accepts no final state but Cancelled for the flow run).
+            if stop.asked or watch.read_now():
+                raise cancelled()
         except BaseException:  # Ctrl-C (or an error ending the run): recorded as interrupted, then raised
             if begun:  # every driver has returned (the cluster is closed): what they did is in the tally
                 finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
@@ -767,6 +847,55 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
 RUN_UNRECORDED = "the run could not be recorded in the output store: "
 """What the message of a flow run whose record could not be written begins with, followed by
 the store's error; its state's data is the summary, with that error under ``unrecorded``."""
+
+
+def _api_url() -> str:
+    """The API URL of the Prefect server this flow run belongs to ("" when none is set)."""
+    from prefect.settings import PREFECT_API_URL
+
+    return str(PREFECT_API_URL.value() or "")
+
+
+def _note_flow_run(store: OutputStore) -> None:
+    """Note this flow run beside the store's run lock, for a run that may recover the lock
+    should this process die (see :func:`_crash_flow_run_of`); a note that cannot be written
+    is a warning."""
+    try:
+        store.note_flow_run(str(flow_run_runtime.id), _api_url())
+    except Exception as e:
+        get_run_logger().warning("could not note this flow run beside the store's lock (%s: %s); should this "
+                                 "process die, the next run cannot mark the flow run crashed", type(e).__name__, e)
+
+
+def _crash_flow_run_of(store: OutputStore, gone: Any, run_id: str) -> None:
+    """Set the flow run of ``gone`` (the holder of a stale lock this run recovered: a run
+    whose process died) to Crashed on the Prefect server, if it noted one on this same
+    server (same API URL) and it has not ended there; else leave it. A server that refuses
+    is a warning: the run goes on."""
+    from prefect import get_client
+    from prefect.states import Crashed
+
+    noted = store.noted_flow_run(gone.run_id)
+    if noted is None or not noted["api_url"] or noted["api_url"] != _api_url():
+        return
+    logger = get_run_logger()
+    try:
+        with get_client(sync_client=True) as client:
+            dead = client.read_flow_run(uuid.UUID(noted["flow_run_id"]))
+            if dead.state is None or dead.state.is_final():
+                return
+            client.set_flow_run_state(dead.id, Crashed(message=(
+                f"the process of twinpass {gone.describe()} ended before this flow run did; run {run_id} "
+                f"recovered its stale lock on the output store {store.location} (flow run "
+                f"{flow_run_runtime.id}); rerun to finish what it left")), force=True)
+    except Exception as e:
+        logger.warning("could not set flow run %s of %s to Crashed (%s: %s); the dashboard may keep showing it "
+                       "running", noted["flow_run_id"], gone.describe(), type(e).__name__, e)
+        return
+    logger.warning("set flow run %s (%s) of %s to Crashed: its process is gone", noted["flow_run_id"], dead.name,
+                   gone.describe())
+
+
 REPORT_UNWRITTEN = "; the report was not written: "
 """What a flow run's message adds, followed by the reason, when its report could not be written."""
 
@@ -791,12 +920,13 @@ def left_out_message(prep: Prepared, cfg: JobConfig) -> str:
 
 
 def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore, start: ClientStart,
-                     tally: RunTally, head: HeadStart | None = None
+                     tally: RunTally, head: HeadStart | None = None, stop: _StopRequest | None = None
                      ) -> tuple[list[FileOutcome], list[str], dict[str, float]]:
     """One filter-segment task per segment with work, all resolved: (outcomes, failed files, seconds per file).
 
     ``tally`` sees every block and every task's outcomes as they come. With a head start,
-    each task follows its segment's running driver instead of starting one.
+    each task follows its segment's running driver instead of starting one. ``stop``, when
+    given, can stop the segments from another thread (see :class:`_StopRequest`).
     """
     logger = get_run_logger()
     cfg = prep.cfg
@@ -807,7 +937,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
         retries=cfg.flow.retries,
         retry_delay_seconds=retry_delays(max(cfg.flow.retries, 1), cfg.flow.retry_delay_seconds),
     )
-    with _shared_client(start, tally, head) as key:
+    with _shared_client(start, tally, head, stop) as key:
         futures = []
         for w in busy:
             futures.append((w, time.perf_counter(),
@@ -830,8 +960,9 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
                 outs = [dataclasses.replace(o, errors={-1: why}) if o.status == "failed" and not any(o.errors.values())
                         and o.check_failures is None else o for o in outs]
                 bad = [o.relpath for o in outs if o.status == "failed"]
-                logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
-                             state.message or state.name, ", ".join(bad))
+                if not (stop is not None and stop.asked and state.is_cancelled()):  # a stop: said by the task
+                    logger.error("segment %s failed (%s); failed file(s): %s", w.segment_id,
+                                 state.message or state.name, ", ".join(bad))
                 failed_files += bad
             for o in outs:
                 durations[o.relpath] = o.seconds or secs

@@ -17,6 +17,7 @@ Layout (zarr_format 3)::
       _twinpass/scan/                 scan cache (group; attributes {"layout", "files"}): per input
                                       path, what discovery learnt about its NaN/Inf samples
       .twinpass-lock                  present while a run writes (local stores)
+      .twinpass-lock.flow-run         beside it, the Prefect flow run of the run writing (JSON)
 
 Array attributes are plain JSON (see :func:`json_safe`); ``complete`` is True only once every
 block is written and has passed. ``input_gone`` (:data:`~twinpass.io.store_input.INPUT_GONE`)
@@ -885,6 +886,18 @@ class OutputStore:
         finally:
             self.lock_token = self.lock_run_id = ""
             store_lock.release(lock_file, info)
+
+    def note_flow_run(self, flow_run_id: str, api_url: str) -> None:
+        """Note, beside the run lock this store holds, the Prefect flow run of the run holding
+        it and its server's API URL (see :func:`store_lock.note_flow_run`)."""
+        if not self.lock_run_id:
+            raise StoreError(f"output store {self.location}: a flow run is noted only by the run holding the lock")
+        store_lock.note_flow_run(self._lock_file(), self.lock_run_id, flow_run_id, api_url)
+
+    def noted_flow_run(self, run_id: str) -> dict[str, str] | None:
+        """The flow run noted for ``run_id`` (``flow_run_id``, ``api_url``), if that run noted one
+        and it is still there (a run that died holding the lock leaves it)."""
+        return store_lock.noted_flow_run(self._lock_file(), run_id)
 
     def clean_partials(self) -> int:
         """Delete ``*.partial`` files left by killed writers (local stores); return how many.

@@ -10,6 +10,10 @@ that found one stale lock cannot remove each other's new lock.
 Stores behind other fsspec file systems get the same object, created with
 ``pipe_file(mode="create")``: back ends with conditional writes make this atomic; on the
 others it is best effort (check, write, read back and compare the token).
+
+A run of the Prefect flow notes its flow run beside the lock (``<lock>.flow-run``,
+:func:`note_flow_run`), so that a run recovering the lock of a run whose process died can
+tell the Prefect server that flow run crashed.
 """
 
 from __future__ import annotations
@@ -250,8 +254,39 @@ def _remove_stale(lock: LockFile, raw: bytes, holder: LockInfo) -> bool:
         guard.remove()
 
 
+FLOW_RUN_SUFFIX = ".flow-run"
+"""Suffix of the object, beside the lock, naming the Prefect flow run of the run holding it."""
+
+
+def note_flow_run(lock: LockFile, run_id: str, flow_run_id: str, api_url: str) -> None:
+    """Record, beside the lock held by ``run_id``, its Prefect flow run and the API URL of that
+    flow run's server (JSON ``{run_id, flow_run_id, api_url}``), replacing an older note.
+
+    Call it holding the lock: only the lock's holder writes the note. A run recovering the
+    lock of a run that died (:func:`acquire`) finds there which flow run was left running.
+    """
+    note = lock.sibling(FLOW_RUN_SUFFIX)
+    note.remove()
+    note.create(json.dumps({"run_id": str(run_id), "flow_run_id": str(flow_run_id), "api_url": str(api_url)},
+                           sort_keys=True).encode())
+
+
+def noted_flow_run(lock: LockFile, run_id: str) -> dict[str, str] | None:
+    """The note :func:`note_flow_run` wrote for ``run_id`` (``flow_run_id``, ``api_url``), or
+    None when the note is missing, unreadable or another run's."""
+    raw = lock.sibling(FLOW_RUN_SUFFIX).read()
+    try:
+        d: Any = json.loads(raw.decode()) if raw is not None else None
+        if d is None or str(d["run_id"]) != str(run_id):
+            return None
+        return {"flow_run_id": str(d["flow_run_id"]), "api_url": str(d["api_url"])}
+    except (ValueError, KeyError, TypeError, UnicodeDecodeError):
+        return None
+
+
 def release(lock: LockFile, info: LockInfo) -> None:
-    """Remove the lock if it is still held by ``info``; warn otherwise. Never raises.
+    """Remove the lock if it is still held by ``info`` (and the note of its flow run); warn
+    otherwise. Never raises.
 
     A lock that cannot be read or removed (the store's file system gone read-only, an I/O
     error) is left behind with a warning naming it: the run's own outcome, or the error that
@@ -267,6 +302,8 @@ def release(lock: LockFile, info: LockInfo) -> None:
                 lock.where, info.describe(),
             )
             return
+        if noted_flow_run(lock, info.run_id) is not None:  # the run ended: its flow run is no one's concern
+            lock.sibling(FLOW_RUN_SUFFIX).remove()
         lock.remove()
     except Exception as e:  # any back end's error: the release must not replace the run's outcome
         log.warning(
