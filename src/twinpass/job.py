@@ -35,6 +35,7 @@ from .engine import (
 )
 from .errors import ArchiveError, SpecError, TwinpassError
 from .io.archive import Discovery, discover, output_name
+from .io.channels import LABEL_ATTRS
 from .io.store import OutputStore
 from .io.store_input import INPUT_GONE
 from .io.store_util import library_versions
@@ -86,6 +87,7 @@ def segment_work(seg: Segment, plan: Plan) -> SegmentWork:
             stream=seg.stream, start_time=None if f.start_time is None else f.start_time.isoformat(),
             fingerprint=f.fingerprint or {}, action="skip" if fp is None else _action(fp),
             full_scale=f.info.full_scale, fill=f.nonfinite_fill, filled_spans=f.filled_spans, nan_spans=f.holes,
+            channel_names=f.channel_names, units=f.units,
         ))
     return SegmentWork(seg.id, seg.stream, seg.sample_rate_hz, seg.channels, seg.frames, tuple(files),
                        holes=seg.holes)
@@ -347,19 +349,28 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
 def update_placement(store: OutputStore, prep: Prepared) -> None:
     """Rewrite the ``stream``, ``start_time`` and ``segment`` attributes of the outputs of
     unchanged files whose stream or start time changed without their samples (a manifest or
-    a file name corrected; the plan's reason says so). Their values stand, so no block runs
-    for them; a join the change moves is refiltered as the plan says."""
+    a file name corrected; the plan's reason says so), and their ``channel_names`` and
+    ``units`` where those changed (the configuration or a sidecar edited; a label given no
+    more is removed). Their values stand, so no block runs for them; a join the change moves
+    is refiltered as the plan says."""
     records = {fp.relpath: fp.record for fp in prep.plan.files if fp.record is not None}
     for w in prep.work:
         for fw in w.files:
             rec = records.get(fw.relpath)
             if fw.action != "skip" or rec is None:
                 continue
-            now = {"stream": w.stream, "start_time": fw.start_time, "segment": w.segment_id}
-            was = {"stream": rec.stream, "start_time": rec.start_time, "segment": rec.segment}
+            now = {"stream": w.stream, "start_time": fw.start_time, "segment": w.segment_id,
+                   "channel_names": fw.channel_names, "units": fw.units}
+            was = {"stream": rec.stream, "start_time": rec.start_time, "segment": rec.segment,
+                   "channel_names": rec.channel_names, "units": rec.units}
             moved = {key: value for key, value in now.items() if value != was[key]}
+            dropped = [key for key in LABEL_ATTRS if key in moved and moved[key] is None]
+            moved = {key: list(value) if isinstance(value, tuple) else value
+                     for key, value in moved.items() if key not in dropped}
             if moved:
                 store.update_attrs(fw.array_name, **moved)
+            if dropped:
+                store.drop_attrs(fw.array_name, *dropped)
 
 
 def _same_content_now(rec: FileRecord, prep: Prepared) -> str | None:
