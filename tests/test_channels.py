@@ -178,6 +178,8 @@ def test_changing_names_and_units_alone_reruns_no_block_and_updates_the_attribut
               "*": {"units": "mV"}}  # pier's names given no more; every other unit now mV
     res = _run(_config(folder, tables))
     assert _blocks_run(res) == 0 and res.counts()["skipped"] == 6 and res.exit_status() == 0
+    # every file's labels changed (deck-north's names and units, pier's names, all units): one note
+    assert [n for n in res.notes if n.startswith("channel names or units changed for 6 unchanged file(s)")]
     for array in arrays["deck-north"]:
         a = _attrs(store, array)
         assert a["channel_names"] == ["z", "y", "x"] and a["units"] == ["m/s^2", "m/s^2", "mV"]
@@ -191,7 +193,7 @@ def test_changing_names_and_units_alone_reruns_no_block_and_updates_the_attribut
             assert a[key] == was[key], (array, key)
         np.testing.assert_array_equal(np.asarray(zarr.open_group(str(store), mode="r")[array][:]), data[array])
     again = _run(_config(folder, tables))  # and the run after that changes nothing either
-    assert _blocks_run(again) == 0
+    assert _blocks_run(again) == 0 and not [n for n in again.notes if n.startswith("channel names")]
 
 
 # -- raw files and their sidecars ---------------------------------------------------------

@@ -74,7 +74,8 @@ class ProcessingConfig:
 
 
 CHANNELS_ANY_STREAM = "*"
-"""The ``[archive.channels]`` table that applies to every stream without a table of its own."""
+"""The ``[archive.channels]`` table that applies to every stream, for the keys (names, units)
+the stream's own table does not give."""
 
 
 @dataclass(frozen=True)

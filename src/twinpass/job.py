@@ -130,6 +130,7 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]
     notes = [n for w in work for n in segment_notes(w, designs[w.sample_rate_hz], cfg)]
+    notes += relabel_note(plan, work)
     if notes:
         plan = dataclasses.replace(plan, notes=tuple(plan.notes) + tuple(notes))
     return Prepared(cfg, disc, designs, design_errors, plan, work, list(plan.invalid))
@@ -346,6 +347,32 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
     mark_inputs_gone(store, prep)
 
 
+def _label_changes(fw: FileWork, rec: FileRecord) -> dict[str, tuple[str, ...] | None]:
+    """The labels (``channel_names``, ``units``) of ``fw`` that differ from those its output
+    holds (None: no longer given)."""
+    now = {"channel_names": fw.channel_names, "units": fw.units}
+    was = {"channel_names": rec.channel_names, "units": rec.units}
+    return {key: value for key, value in now.items() if value != was[key]}
+
+
+RELABEL_NAMED = 3
+"""Files named in the note on relabelled outputs (the rest are counted)."""
+
+
+def relabel_note(plan: Plan, work: list[SegmentWork]) -> list[str]:
+    """A note naming the unchanged files whose channel names or units changed (the
+    configuration or a sidecar edited): their outputs' attributes are rewritten, no block
+    runs for them (:func:`update_placement`). Empty when there are none."""
+    records = {fp.relpath: fp.record for fp in plan.files if fp.record is not None}
+    files = [fw.relpath for w in work for fw in w.files
+             if fw.action == "skip" and fw.relpath in records and _label_changes(fw, records[fw.relpath])]
+    if not files:
+        return []
+    more = f" and {len(files) - RELABEL_NAMED} more" if len(files) > RELABEL_NAMED else ""
+    return [f"channel names or units changed for {len(files)} unchanged file(s) ({', '.join(files[:RELABEL_NAMED])}"
+            f"{more}): their outputs' attributes channel_names and units are rewritten; nothing is refiltered"]
+
+
 def update_placement(store: OutputStore, prep: Prepared) -> None:
     """Rewrite the ``stream``, ``start_time`` and ``segment`` attributes of the outputs of
     unchanged files whose stream or start time changed without their samples (a manifest or
@@ -359,11 +386,10 @@ def update_placement(store: OutputStore, prep: Prepared) -> None:
             rec = records.get(fw.relpath)
             if fw.action != "skip" or rec is None:
                 continue
-            now = {"stream": w.stream, "start_time": fw.start_time, "segment": w.segment_id,
-                   "channel_names": fw.channel_names, "units": fw.units}
-            was = {"stream": rec.stream, "start_time": rec.start_time, "segment": rec.segment,
-                   "channel_names": rec.channel_names, "units": rec.units}
+            now = {"stream": w.stream, "start_time": fw.start_time, "segment": w.segment_id}
+            was = {"stream": rec.stream, "start_time": rec.start_time, "segment": rec.segment}
             moved = {key: value for key, value in now.items() if value != was[key]}
+            moved.update(_label_changes(fw, rec))
             dropped = [key for key in LABEL_ATTRS if key in moved and moved[key] is None]
             moved = {key: list(value) if isinstance(value, tuple) else value
                      for key, value in moved.items() if key not in dropped}
