@@ -174,7 +174,7 @@ def _toml_value(v: object) -> str | None:
     if isinstance(v, float) and not math.isfinite(v):
         return "nan" if math.isnan(v) else ("inf" if v > 0 else "-inf")
     if isinstance(v, list):
-        return "[" + ", ".join(str(i) for i in v) + "]"
+        return "[" + ", ".join(json.dumps(i) if isinstance(i, str) else str(i) for i in v) + "]"
     return json.dumps(v) if isinstance(v, str) else repr(v)
 
 
@@ -188,6 +188,8 @@ _plausible = {
     "gain": st.floats(-10, 10),
     "offset": st.floats(-10, 10),
     "frames": st.integers(1, 32),
+    "channel_names": st.lists(st.sampled_from(["a", "b", "c", "", " "]), max_size=4),
+    "units": st.sampled_from(["V", "m/s^2", ""]) | st.lists(st.sampled_from(["V", "mV", ""]), max_size=4),
 }
 _sidecar_changes = st.fixed_dictionaries(
     {},  # mostly plausible values, so that some sidecars open and their data is read

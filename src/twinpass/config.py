@@ -23,6 +23,10 @@ Example::
     root = "archive"
     include = ["**/*.wav"]
 
+    [archive.channels."deck-north"]  # one stream's channel names and units
+    names = ["vertical", "lateral", "longitudinal"]
+    units = "m/s^2"
+
     [output]
     store = "filtered.zarr"
 """
@@ -36,7 +40,7 @@ import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping, get_args, get_origin, get_type_hints
+from typing import Any, Callable, Mapping, get_args, get_origin, get_type_hints
 
 from .core.types import EDGE_MODES, FAMILIES, KINDS, ResponseSpec
 from .errors import ConfigError
@@ -69,6 +73,28 @@ class ProcessingConfig:
     """Longest NaN/Inf run filled by linear interpolation when ``nonfinite = "interpolate"``."""
 
 
+CHANNELS_ANY_STREAM = "*"
+"""The ``[archive.channels]`` table that applies to every stream, for the keys (names, units)
+the stream's own table does not give."""
+
+
+@dataclass(frozen=True)
+class StreamChannels:
+    """Channel names and units given for one stream (``[archive.channels."<stream>"]``)."""
+
+    stream: str
+    """The stream's name, or :data:`CHANNELS_ANY_STREAM` for every stream."""
+    names: tuple[str, ...] | None = None
+    """One name per channel, in the recordings' channel order; None when not given."""
+    units: str | tuple[str, ...] | None = None
+    """One unit for every channel (a string), one per channel (a tuple), or None."""
+
+    @property
+    def table(self) -> str:
+        """The TOML table that gave these, for messages: ``[archive.channels."deck-north"]``."""
+        return f"[archive.channels.{json.dumps(self.stream)}]"
+
+
 @dataclass(frozen=True)
 class ArchiveConfig:
     """Where the input recordings are and how they group into streams."""
@@ -90,6 +116,14 @@ class ArchiveConfig:
     wrapped_sizes: str = "error"
     """Plain RIFF WAV over 4 GiB whose 32-bit sizes wrapped (data the last chunk, ending before
     the file): error | read (the data runs to the end of the file)."""
+    channels: tuple[StreamChannels, ...] | None = None
+    """Channel names and units per stream (``[archive.channels."<stream>"]``, ``"*"`` for every
+    stream), written to the outputs' attributes; None when none are given."""
+
+    def channels_for(self, stream: str) -> tuple[StreamChannels | None, StreamChannels | None]:
+        """The stream's own ``[archive.channels]`` table and the ``"*"`` one (None where absent)."""
+        by_stream = {c.stream: c for c in self.channels or ()}
+        return by_stream.get(stream), by_stream.get(CHANNELS_ANY_STREAM)
 
 
 @dataclass(frozen=True)
@@ -331,12 +365,94 @@ def _section(source: str, name: str, table: Any, cls: type) -> Any:
     kwargs: dict[str, Any] = {}
     for key, value in table.items():
         where = f"{source}: [{name}] {key}"
-        v = _coerce(where, value, hints[key])
+        parse = _TABLE_PARSERS.get((name, key))
+        v = parse(source, value) if parse is not None else _coerce(where, value, hints[key])
         choices = _CHOICES.get((name, key))
         if choices is not None and v not in choices:
             raise ConfigError(f"{where} = {v!r} is not one of: {', '.join(choices)}")
         kwargs[key] = v
     return cls(**kwargs)
+
+
+_CHANNEL_KEYS = ("names", "units")
+
+
+def _label_list(where: str, value: Any, what: str, example: str) -> tuple[str, ...]:
+    """A non-empty list of non-empty strings (``what``: "name" or "unit") at ``where``."""
+    if not isinstance(value, list):
+        raise ConfigError(f"{where}: expected a list of strings, one {what} per channel, e.g. {example}; "
+                          f"got {value!r}")
+    if not value:
+        raise ConfigError(f"{where} is an empty list; give one {what} per channel, e.g. {example}, or leave "
+                          "the key out")
+    for i, v in enumerate(value):
+        if not isinstance(v, str):
+            raise ConfigError(f"{where}[{i}]: expected a string, got {v!r}; give one {what} per channel, "
+                              f"e.g. {example}")
+        if not v.strip():
+            raise ConfigError(f"{where}[{i}] is empty; give channel {i + 1} a {what}, e.g. {example}")
+    return tuple(value)
+
+
+def _parse_channels(source: str, table: Any) -> tuple[StreamChannels, ...]:
+    """``[archive.channels]``: a table per stream (or ``"*"``) with ``names`` and ``units``.
+
+    Raises
+    ------
+    ConfigError
+        Naming ``source``, the stream's table and the key, and what to give instead.
+    """
+    names_eg, units_eg = '["vertical", "lateral"]', '["m/s^2", "V"]'
+    if not isinstance(table, Mapping):
+        raise ConfigError(f'{source}: [archive] channels must be a table of streams, e.g. '
+                          f'[archive.channels."deck-north"] with names = {names_eg} and units = "m/s^2" '
+                          f'(the stream "{CHANNELS_ANY_STREAM}" for every stream); got {table!r}')
+    out = []
+    for stream, entry in table.items():
+        where = f"{source}: [archive.channels.{json.dumps(stream)}]"
+        if not stream.strip():
+            raise ConfigError(f"{where}: the stream name is empty; name a stream, or \"{CHANNELS_ANY_STREAM}\" "
+                              "for every stream")
+        if not isinstance(entry, Mapping):
+            raise ConfigError(f"{where} must be a table with names and/or units, e.g. names = {names_eg}; "
+                              f"got {entry!r}")
+        unknown = sorted(set(entry) - set(_CHANNEL_KEYS))
+        if unknown:
+            raise ConfigError(f"{where}: unknown key(s) {', '.join(unknown)}; known keys are: "
+                              f"{', '.join(_CHANNEL_KEYS)}")
+        if not entry:
+            raise ConfigError(f"{where} gives neither names nor units; give names = {names_eg} and/or "
+                              'units = "m/s^2", or remove the table')
+        names = None
+        if "names" in entry:
+            names = _label_list(f"{where} names", entry["names"], "name", names_eg)
+            seen: dict[str, int] = {}
+            for i, n in enumerate(names):
+                if n in seen:
+                    raise ConfigError(f"{where} names: {n!r} is given twice (channels {seen[n] + 1} and "
+                                      f"{i + 1}); give each channel its own name")
+                seen[n] = i
+        units: str | tuple[str, ...] | None = None
+        if "units" in entry:
+            value = entry["units"]
+            if isinstance(value, str):
+                if not value.strip():
+                    raise ConfigError(f'{where} units is empty; give a unit, e.g. "m/s^2", or leave the key out')
+                units = value
+            else:
+                if not isinstance(value, list):
+                    raise ConfigError(f'{where} units: expected a string (one unit for every channel, e.g. '
+                                      f'"m/s^2") or a list of strings (one per channel, e.g. {units_eg}); '
+                                      f"got {value!r}")
+                units = _label_list(f"{where} units", value, "unit", units_eg)
+        out.append(StreamChannels(stream, names, units))
+    return tuple(out)
+
+
+_TABLE_PARSERS: dict[tuple[str, str], Callable[[str, Any], Any]] = {
+    ("archive", "channels"): _parse_channels,
+}
+"""Keys whose value is a table of its own, read by their own parser instead of :func:`_coerce`."""
 
 
 def _nonfinite_setting(cfg: JobConfig) -> tuple[str, str, Any] | None:

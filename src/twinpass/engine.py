@@ -57,6 +57,7 @@ from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.plan import SegmentReads
 from .core.types import RESETTING_DIGEST, Design
 from .errors import ConfigError, CorruptInputError, InputError, RunStoppedError, StoreError, TwinpassError
+from .io.channels import ChannelLabels
 from .io.fingerprint import changed_since
 from .io.readers._common import SHORT_READ_HINT, with_config_keys
 from .io.readers.base import ReaderSpec
@@ -611,6 +612,14 @@ class FileWork:
     filled_spans: tuple[tuple[int, int], ...] = ()
     nan_spans: tuple[tuple[int, int], ...] = ()
     """File spans written as NaN (nonfinite = "split")."""
+    channel_names: tuple[str, ...] | None = None
+    """One name per channel (attribute ``channel_names``), or None when none is given."""
+    units: tuple[str, ...] | None = None
+    """One unit per channel (attribute ``units``), or None when none is given."""
+
+    def labels(self) -> dict[str, list[str]]:
+        """The attributes ``channel_names`` and ``units`` of the output, the given ones only."""
+        return ChannelLabels(self.channel_names, self.units).attrs()
 
 
 @dataclass(frozen=True)
@@ -730,6 +739,7 @@ def file_attrs(seg: SegmentWork, fw: FileWork, design: Design, cfg: JobConfig, l
         "edge_zone_samples": [int(zone_start), int(zone_end)],
         "filled_spans": [list(sp) for sp in fw.filled_spans],
         "nan_spans": [list(sp) for sp in fw.nan_spans],
+        **fw.labels(),
         "filter": {
             "family": design.family,
             "order": int(design.order),

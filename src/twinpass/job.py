@@ -36,6 +36,7 @@ from .engine import (
 )
 from .errors import ArchiveError, RunNotRecordedError, SpecError, TwinpassError
 from .io.archive import Discovery, check_archive_root, discover, output_name
+from .io.channels import LABEL_ATTRS
 from .io.store import OutputStore
 from .io.store_input import INPUT_GONE
 from .io.store_util import library_versions
@@ -87,6 +88,7 @@ def segment_work(seg: Segment, plan: Plan) -> SegmentWork:
             stream=seg.stream, start_time=None if f.start_time is None else f.start_time.isoformat(),
             fingerprint=f.fingerprint or {}, action="skip" if fp is None else _action(fp),
             full_scale=f.info.full_scale, fill=f.nonfinite_fill, filled_spans=f.filled_spans, nan_spans=f.holes,
+            channel_names=f.channel_names, units=f.units,
         ))
     return SegmentWork(seg.id, seg.stream, seg.sample_rate_hz, seg.channels, seg.frames, tuple(files),
                        holes=seg.holes)
@@ -129,6 +131,7 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         store.write_scan_cache(disc.scans)
     work = [segment_work(s, plan) for s in plan.segments]
     notes = [n for w in work for n in segment_notes(w, designs[w.sample_rate_hz], cfg)]
+    notes += relabel_note(plan, work)
     if notes:
         plan = dataclasses.replace(plan, notes=tuple(plan.notes) + tuple(notes))
     return Prepared(cfg, disc, designs, design_errors, plan, work, list(plan.invalid))
@@ -406,11 +409,39 @@ def begin_run(store: OutputStore, prep: Prepared) -> None:
     mark_inputs_gone(store, prep)
 
 
+def _label_changes(fw: FileWork, rec: FileRecord) -> dict[str, tuple[str, ...] | None]:
+    """The labels (``channel_names``, ``units``) of ``fw`` that differ from those its output
+    holds (None: no longer given)."""
+    now = {"channel_names": fw.channel_names, "units": fw.units}
+    was = {"channel_names": rec.channel_names, "units": rec.units}
+    return {key: value for key, value in now.items() if value != was[key]}
+
+
+RELABEL_NAMED = 3
+"""Files named in the note on relabelled outputs (the rest are counted)."""
+
+
+def relabel_note(plan: Plan, work: list[SegmentWork]) -> list[str]:
+    """A note naming the unchanged files whose channel names or units changed (the
+    configuration or a sidecar edited): their outputs' attributes are rewritten, no block
+    runs for them (:func:`update_placement`). Empty when there are none."""
+    records = {fp.relpath: fp.record for fp in plan.files if fp.record is not None}
+    files = [fw.relpath for w in work for fw in w.files
+             if fw.action == "skip" and fw.relpath in records and _label_changes(fw, records[fw.relpath])]
+    if not files:
+        return []
+    more = f" and {len(files) - RELABEL_NAMED} more" if len(files) > RELABEL_NAMED else ""
+    return [f"channel names or units changed for {len(files)} unchanged file(s) ({', '.join(files[:RELABEL_NAMED])}"
+            f"{more}): their outputs' attributes channel_names and units are rewritten; nothing is refiltered"]
+
+
 def update_placement(store: OutputStore, prep: Prepared) -> None:
     """Rewrite the ``stream``, ``start_time`` and ``segment`` attributes of the outputs of
     unchanged files whose stream or start time changed without their samples (a manifest or
-    a file name corrected; the plan's reason says so). Their values stand, so no block runs
-    for them; a join the change moves is refiltered as the plan says."""
+    a file name corrected; the plan's reason says so), and their ``channel_names`` and
+    ``units`` where those changed (the configuration or a sidecar edited; a label given no
+    more is removed). Their values stand, so no block runs for them; a join the change moves
+    is refiltered as the plan says."""
     records = {fp.relpath: fp.record for fp in prep.plan.files if fp.record is not None}
     for w in prep.work:
         for fw in w.files:
@@ -420,8 +451,14 @@ def update_placement(store: OutputStore, prep: Prepared) -> None:
             now = {"stream": w.stream, "start_time": fw.start_time, "segment": w.segment_id}
             was = {"stream": rec.stream, "start_time": rec.start_time, "segment": rec.segment}
             moved = {key: value for key, value in now.items() if value != was[key]}
+            moved.update(_label_changes(fw, rec))
+            dropped = [key for key in LABEL_ATTRS if key in moved and moved[key] is None]
+            moved = {key: list(value) if isinstance(value, tuple) else value
+                     for key, value in moved.items() if key not in dropped}
             if moved:
                 store.update_attrs(fw.array_name, **moved)
+            if dropped:
+                store.drop_attrs(fw.array_name, *dropped)
 
 
 def _same_content_now(rec: FileRecord, prep: Prepared) -> str | None:

@@ -98,6 +98,10 @@ class FileEntry:
     output_name: str | None = field(default=None, compare=False)
     """Name of the file's output array when it is not derived from :attr:`relpath` (an array
     of an earlier job's output store keeps its path); ``None`` otherwise."""
+    channel_names: tuple[str, ...] | None = field(default=None, compare=False)
+    """One name per channel for the output's attributes (``twinpass.io.channels``), or ``None``."""
+    units: tuple[str, ...] | None = field(default=None, compare=False)
+    """One unit per channel for the output's attributes, or ``None``."""
 
     @property
     def holes(self) -> tuple[tuple[int, int], ...]:

@@ -175,3 +175,7 @@ class FileRecord:
     gone_since: str | None = None
     """When the store marked this output as that of an input no longer in the archive (ISO
     8601; attribute ``input_gone`` of the array); None when it is not marked."""
+    channel_names: tuple[str, ...] | None = None
+    """The output's attribute ``channel_names`` (one name per channel); None when absent."""
+    units: tuple[str, ...] | None = None
+    """The output's attribute ``units`` (one unit per channel); None when absent."""

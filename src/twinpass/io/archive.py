@@ -160,6 +160,7 @@ from twinpass.core.nonfinite import (
 )
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
+from twinpass.io.channels import LabelMismatch, labels_for
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
 from twinpass.io.readers._common import (
     CONFIG_TRUNCATED,
@@ -1270,6 +1271,7 @@ def _examine(
     was_scanned = False
     out_name = None
     try:
+        attrs = None
         if where is None:
             _output_name(rel)
             info, spec = _open_info(cfg, abspath)
@@ -1279,6 +1281,10 @@ def _examine(
             attrs = _finished_array_attrs(where)
             info, spec = _open_info(cfg, abspath, "zarr")
             stream, start = _identify_stage_array(cfg, rel, info, attrs, manifest)
+        try:
+            labels = labels_for(cfg, stream, info.channels, own=info.extra, carried=attrs)
+        except LabelMismatch as e:
+            raise _Bad(e.reason, e.remedy) from None
         _check_end_time(start, info)
         fp = None
         if fingerprints:
@@ -1302,7 +1308,7 @@ def _examine(
     if note:
         notes.append(f"{rel}: {note}")
     entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills,
-                      output_name=out_name)
+                      output_name=out_name, channel_names=labels.names, units=labels.units)
     return entry, notes, scan_entry, was_scanned
 
 

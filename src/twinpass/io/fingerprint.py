@@ -184,6 +184,11 @@ _PATH_FIELDS = frozenset({"sidecar", "store"})
 """Fields of ``RecordingInfo.extra`` that hold where a file lies, not how it decodes (an
 archive moved elsewhere decodes alike)."""
 
+LABEL_FIELDS = frozenset({"channel_names", "units"})
+"""Fields of ``RecordingInfo.extra`` that label the channels (a sidecar's names and units):
+they are written to the outputs' attributes and change no sample, so they are not part of
+how a file decodes (editing them refilters nothing)."""
+
 
 def _plain(value: Any) -> Any:
     """``value`` as it reads back from JSON (tuples as lists, odd floats and objects as text)."""
@@ -212,7 +217,7 @@ def decoding_of(info: Any) -> dict[str, Any]:
         ``format``, ``sample_format``, ``channels``, ``sample_rate_hz`` (Hz), ``full_scale``,
         ``start_time`` (ISO 8601 or ``None``) and every field of ``info.extra`` but paths
         (raw: ``byte_order``, ``gain``, ``offset``, ``header_bytes``; WAV: container, format
-        tag, data offset...). The frame count is left out: the planner compares it apart.
+        tag, data offset...) and channel labels (:data:`LABEL_FIELDS`). The frame count is left out: the planner compares it apart.
     """
     out: dict[str, Any] = {
         "format": str(info.format),
@@ -223,7 +228,7 @@ def decoding_of(info: Any) -> dict[str, Any]:
         "start_time": None if info.start_time is None else info.start_time.isoformat(),
     }
     for key in sorted(info.extra or {}):
-        if key not in _PATH_FIELDS and key not in out:
+        if key not in _PATH_FIELDS and key not in LABEL_FIELDS and key not in out:
             out[str(key)] = _plain(info.extra[key])
     return out
 

@@ -1621,6 +1621,8 @@ class OutputStore:
                 stream=a["stream"] if isinstance(a.get("stream"), str) else None,
                 joins=_joins(a.get("joins")),
                 gone_since=gone_since(a),
+                channel_names=_labels(a.get("channel_names")),
+                units=_labels(a.get("units")),
             )
         return out
 
@@ -1863,6 +1865,13 @@ class OutputStore:
                 if isinstance(run, dict) and run.get("run_id"):
                     found.setdefault(str(run["run_id"]), dict(run))
         return sorted(found.values(), key=lambda r: (str(r.get("start") or ""), str(r["run_id"])))
+
+
+def _labels(value: Any) -> tuple[str, ...] | None:
+    """An array's ``channel_names`` or ``units`` attribute as a tuple, None when absent or not a list of strings."""
+    if isinstance(value, list) and all(isinstance(v, str) for v in value):
+        return tuple(value)
+    return None
 
 
 def _joins(value: Any) -> tuple[str | None, str | None] | None:

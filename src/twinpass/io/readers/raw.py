@@ -19,7 +19,15 @@ key                required  meaning
 ``gain``           no        ``y = x_scaled * gain + offset`` (default 1)
 ``offset``         no        (default 0)
 ``frames``         no        expected frame count, checked against the file size
+``channel_names``  no        one name per channel (distinct, not empty), e.g.
+                             ``["vertical", "lateral"]``
+``units``          no        one unit for every channel (``"m/s^2"``) or a list,
+                             one per channel
 =================  ========  ====================================================
+
+``channel_names`` and ``units`` label the outputs (they win over the configuration's
+``[archive.channels]``); they do not change how the file decodes, so editing them
+refilters nothing.
 
 ``x_scaled`` follows the usual convention: signed integers ``v / 2**(bits - 1)``,
 unsigned ``(v - 2**(bits - 1)) / 2**(bits - 1)``, floats as stored.
@@ -59,6 +67,8 @@ SIDECAR_KEYS = (
     "gain",
     "offset",
     "frames",
+    "channel_names",
+    "units",
 )
 _SIDECAR_MAX_BYTES = 1 << 20
 _EXAMPLE = 'dtype = "int16"\nchannels = 2\nsample_rate_hz = 1000.0'
@@ -147,6 +157,35 @@ def _float_key(doc: dict[str, Any], key: str, default: float, where: str) -> flo
     return float(v)
 
 
+def _labels(doc: dict[str, Any], channels: int, where: str) -> dict[str, tuple[str, ...]]:
+    """``channel_names`` and ``units`` of a sidecar, one per channel (a single unit repeated),
+    as the recording's ``extra`` holds them; only the keys the sidecar gives."""
+    out: dict[str, tuple[str, ...]] = {}
+    for key, what in (("channel_names", "name"), ("units", "unit")):
+        if key not in doc:
+            continue
+        value = doc[key]
+        if key == "units" and isinstance(value, str):
+            value = [value] * channels
+        shape = ("a list of strings, one name per channel" if key == "channel_names"
+                 else "a string (one unit for every channel) or a list of strings, one per channel")
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise CorruptInputError(f"{where}: {key} must be {shape}; got {doc[key]!r}")
+        if len(value) != channels:
+            raise CorruptInputError(
+                f"{where}: {key} lists {len(value)} {what}(s) but channels = {channels}; give one {what} per "
+                f"channel (or correct channels)"
+            )
+        empty = [i for i, v in enumerate(value) if not v.strip()]
+        if empty:
+            raise CorruptInputError(f"{where}: {key} is empty for channel {empty[0] + 1}; give every channel a {what}")
+        if key == "channel_names" and len(set(value)) < len(value):
+            twice = next(v for i, v in enumerate(value) if v in value[:i])
+            raise CorruptInputError(f"{where}: channel_names gives {twice!r} twice; give each channel its own name")
+        out[key] = tuple(value)
+    return out
+
+
 def _codec(doc: dict[str, Any], where: str, path: str) -> Codec:
     order_txt = doc.get("byte_order", "little")
     if order_txt not in ("little", "big"):
@@ -205,6 +244,7 @@ class RawReader(FileReader):
             expected = _int_key(doc, "frames", None, 1, where)
             rate = positive_rate(doc.get("sample_rate_hz"), where)
             start = parse_time(doc["start_time"], where) if "start_time" in doc else None
+            labels = _labels(doc, channels, where)
         except CorruptInputError as exc:
             exc.path = path
             raise
@@ -252,6 +292,7 @@ class RawReader(FileReader):
                 "byte_order": "little" if codec.byteorder == "<" else "big",
                 "gain": codec.gain,
                 "offset": codec.offset,
+                **labels,
             },
         )
         spec = ReaderSpec.create(self.name, path, opts)
