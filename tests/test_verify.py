@@ -114,3 +114,44 @@ def test_deleting_a_damaged_output_and_running_again_restores_it(tmp_path):
     assert run_job(cfg).ok
     assert _status(cfg)["verified"]["damaged"] == {}
     np.testing.assert_array_equal(conftest.read_output(cfg.store_location, ARRAYS)[1], good[1])
+
+
+def test_a_truncated_or_extended_chunk_file_is_named_by_its_size(tmp_path):
+    # A chunk cut short can still decode, into wrong samples whose RMS and peak may not
+    # change; its size no longer matches its Blosc header's compressed size (bytes 12-16 of
+    # the Blosc version-1 header), or for an uncompressed chunk its values' bytes
+    # (2000 frames x 2 channels x 8 bytes = 32,000 for float64).
+    cfg = _filtered(tmp_path, dtype="float32", compression="lz4")
+    chunk = tmp_path / "out.zarr" / ARRAYS[1] / "c" / "1" / "0"
+    raw = chunk.read_bytes()
+    chunk.write_bytes(raw[:-100])
+    lines = _status(cfg)["verified"]["damaged"][ARRAYS[1]]
+    assert (f"chunk file c/1/0 (frames 2,000-3,999): holds {len(raw) - 100:,} bytes, where its compression "
+            f"header says {len(raw):,} (truncated or extended since)") in lines
+    plain = tmp_path / "plain"
+    plain.mkdir()
+    cfg2 = _filtered(plain)
+    chunk = plain / "out.zarr" / ARRAYS[0] / "c" / "2" / "0"
+    chunk.write_bytes(chunk.read_bytes() + b"\0" * 8)
+    lines = _status(cfg2)["verified"]["damaged"][ARRAYS[0]]
+    assert "chunk file c/2/0 (frames 4,000-5,999): holds 32,008 bytes, where its values take 32,000" in lines
+
+
+def test_levels_below_the_float32_range_stored_as_zero_are_no_false_alarm(tmp_path):
+    # Carry mode continues a burst's decaying response into blocks of exact zeros: about
+    # 0.85**t for this 5 Hz low-pass at 200 Hz, far below float32's smallest value (1.4e-45,
+    # IEEE 754 binary32) after a few hundred samples, so a float32 output stores 0 there
+    # while the block recorded its float64 level.
+    archive = tmp_path / "archive"
+    x = np.zeros((20000, 1))
+    x[100:400, 0] = np.random.default_rng(3).standard_normal(300)
+    write_stream(archive, "q", x, FS, [20000])
+    cfg = load_config(write_config(tmp_path, response={"kind": "lowpass", "family": "butterworth", "order": 4,
+                                                       "cutoff_hz": 5.0},
+                                   processing={"block_seconds": 10.0, "mode": "carry"},
+                                   output={"dtype": "float32", "compression": "lz4"}))
+    assert run_job(cfg).ok
+    table = OutputStore.open(cfg.store_location, mode="r").read_block_table("q/q_20260301T000000")
+    peaks = np.asarray(table.figures)[:, 0, list(table.columns).index("peak_out")]
+    assert np.any((peaks > 0) & (peaks < 1e-45))  # such blocks exist in this run
+    assert _status(cfg)["verified"]["damaged"] == {}

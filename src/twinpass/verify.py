@@ -6,7 +6,10 @@ computed in float64 before the cast to the output type). Reading the stored samp
 taking the same two figures tells whether the chunk files still hold what the run wrote: a
 chunk overwritten, swapped with another, truncated or damaged (a decoding error, or bits
 flipped in an uncompressed chunk that change a sample beyond the output type's rounding)
-shows as a mismatch, named by block, frames and channel. Chunk files that are missing are
+shows as a mismatch, named by block, frames and channel. Each chunk file's size is checked
+too: an uncompressed chunk must hold exactly its values' bytes, a compressed one the size its
+compression header gives (a chunk truncated or extended since can still decode, into wrong
+samples of the same RMS and peak). Chunk files that are missing are
 reported by ``twinpass status`` already (:meth:`twinpass.io.store.OutputStore.absent_chunks`)
 and are not read again here.
 
@@ -14,14 +17,18 @@ The comparison allows for the cast: a float32 output's samples are the float64 r
 rounded to 24 significant bits, so its RMS and peak may differ from the recorded ones by a
 relative ``2**-24`` (:data:`FLOAT32_RTOL` allows four times that); float64 outputs allow
 :data:`FLOAT64_RTOL` for the order of summation. What it cannot see: a change within that
-rounding (a flipped low mantissa bit of a float32 sample), or a chunk replaced with samples
-of the same RMS and peak on every channel. Reads only; the store is opened read-only.
+rounding (a flipped low mantissa bit of a float32 sample), a chunk replaced by a valid one
+of the same size whose samples have the same RMS and peak on every channel (samples changed
+in sign or order), or a channel of a block with clipped samples (stored as infinity: that
+channel's levels are not compared). Reads only; the store is opened read-only.
 """
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -83,6 +90,37 @@ def _mismatch(stored: np.ndarray, recorded: np.ndarray, rtol: float, skip: np.nd
     return None
 
 
+BLOSC_HEADER_BYTES: int = 16
+"""Length of the header a Blosc (version 1 format) chunk begins with: version, codec version,
+flags and type size (a byte each), then the decoded size, block size and compressed size
+(little-endian 32-bit each)."""
+
+
+def _chunk_file_problem(path: Path, decoded: int, compressed: bool) -> str | None:
+    """What is wrong with the size of one chunk file (None when nothing is, or it is missing:
+    ``twinpass status`` reports missing chunk files itself). Uncompressed, its size must be
+    ``decoded`` bytes; compressed, its Blosc header must say ``decoded`` bytes decoded and the
+    file's own size compressed (a truncated or extended file can still decode, wrongly)."""
+    try:
+        size = path.stat().st_size
+        with open(path, "rb") as fh:
+            head = fh.read(BLOSC_HEADER_BYTES)
+    except OSError:
+        return None
+    if size == 0:
+        return None
+    if not compressed:
+        return None if size == decoded else f"holds {size:,} bytes, where its values take {decoded:,}"
+    if len(head) < BLOSC_HEADER_BYTES:
+        return f"holds {size:,} bytes, fewer than its compression header's {BLOSC_HEADER_BYTES}"
+    nbytes, _blocksize, cbytes = struct.unpack("<III", head[4:16])
+    if cbytes != size:
+        return f"holds {size:,} bytes, where its compression header says {cbytes:,} (truncated or extended since)"
+    if nbytes != decoded:
+        return f"its compression header says {nbytes:,} bytes decoded, where its values take {decoded:,}"
+    return None
+
+
 def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
     """Compare each done block of output ``name`` with its recorded levels.
 
@@ -102,6 +140,13 @@ def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
         return 0, 0, []
     blocks = samples = 0
     lines: list[str] = []
+    files = store.chunk_files(name)
+    if files is not None:
+        compressed = store.chunks_compressed(name)
+        for a, b, path, decoded in files:
+            problem = _chunk_file_problem(path, decoded, compressed)
+            if problem is not None:
+                lines.append(f"chunk file {'/'.join(path.parts[-3:])} (frames {a:,}-{b - 1:,}): {problem}")
     for i, (status, (a, b)) in enumerate(zip(table.status.tolist(), table.span.tolist())):
         if int(status) not in (PASS, WARN):
             continue
@@ -118,7 +163,11 @@ def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
         rms, peak = _levels(data)
         skip = np.nan_to_num(fig[:, clip_col]) > 0  # values beyond the output type: stored as inf
         for label, stored, col in (("RMS", rms, rms_col), ("peak", peak, peak_col)):
-            c = _mismatch(stored, fig[:, col], rtol, skip)
+            # The recorded figure as the output type holds it: a float32 output stores 0 where
+            # the float64 result was below float32's smallest value.
+            with np.errstate(over="ignore", under="ignore"):
+                recorded = fig[:, col].astype(data.dtype).astype(np.float64)
+            c = _mismatch(stored, recorded, rtol, skip)
             if c is not None:
                 lines.append(f"{where}: stored samples' {label} {stored[c]:.9g} on channel {c}, recorded "
                              f"{fig[c, col]:.9g} when written")

@@ -1641,6 +1641,25 @@ class OutputStore:
         return tuple(absent_chunk_spans(self.local_root / name, int(arr.shape[0]), int(arr.chunks[0]),
                                         lambda i: arr.metadata.encode_chunk_key((i, 0))))
 
+    def chunk_files(self, name: str) -> list[tuple[int, int, Path, int]] | None:
+        """The chunk files of output array ``name`` in a local store, in time order: (first
+        frame, stop frame, path, the bytes its values take decoded) for each; None when the
+        store is not local or the array is not chunked along time only."""
+        arr = self._node(name)
+        if self.local_root is None or not isinstance(arr, zarr.Array) or len(arr.shape) != 2 \
+                or arr.chunks[1] != arr.shape[1]:
+            return None
+        rows, frames = int(arr.chunks[0]), int(arr.shape[0])
+        decoded = rows * int(arr.shape[1]) * np.dtype(arr.dtype).itemsize
+        folder = self.local_root / name
+        return [(i * rows, min(frames, (i + 1) * rows),
+                 folder.joinpath(*arr.metadata.encode_chunk_key((i, 0)).split("/")), decoded)
+                for i in range(-(-frames // rows))]
+
+    def chunks_compressed(self, name: str) -> bool:
+        """Whether output array ``name``'s chunks are compressed (a Blosc codec after the bytes)."""
+        return len(tuple(self._array(name).metadata.codecs)) > 1
+
     def clear_unwritten(self, name: str) -> list[tuple[int, int]]:
         """Delete the data chunks of the blocks of ``name`` that are pending or in error, so
         that their frames read as the fill value (NaN) instead of what an earlier run, or an
