@@ -1281,10 +1281,12 @@ def _examine(
             attrs = _finished_array_attrs(where)
             info, spec = _open_info(cfg, abspath, "zarr")
             stream, start = _identify_stage_array(cfg, rel, info, attrs, manifest)
-        try:
-            labels = labels_for(cfg, stream, info.channels, own=info.extra, carried=attrs)
-        except LabelMismatch as e:
-            raise _Bad(e.reason, e.remedy) from None
+        # Labels change no sample: a list that does not fit leaves that label off the
+        # output (a note says so), and the file is filtered as usual.
+        mismatched: list[LabelMismatch] = []
+        labels = labels_for(cfg, stream, info.channels, own=info.extra, carried=attrs, problems=mismatched)
+        label_notes = [f"{e.reason}: its output gets no channel {e.what} "
+                       f"until this is corrected (the samples are filtered as usual); {e.remedy}" for e in mismatched]
         _check_end_time(start, info)
         fp = None
         if fingerprints:
@@ -1307,6 +1309,7 @@ def _examine(
     notes = [f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings]
     if note:
         notes.append(f"{rel}: {note}")
+    notes += [f"{rel}: {n}" for n in label_notes]
     entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills,
                       output_name=out_name, channel_names=labels.names, units=labels.units)
     return entry, notes, scan_entry, was_scanned

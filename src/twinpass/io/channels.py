@@ -44,11 +44,12 @@ class ChannelLabels:
 
 
 class LabelMismatch(Exception):
-    """Labels that do not fit the file's channels: why (``reason``) and what to do (``remedy``)."""
+    """Labels that do not fit the file's channels: which (``what``: ``"names"`` or
+    ``"units"``), why (``reason``) and what to do (``remedy``)."""
 
-    def __init__(self, reason: str, remedy: str) -> None:
+    def __init__(self, reason: str, remedy: str, what: str = "names") -> None:
         super().__init__(reason)
-        self.reason, self.remedy = reason, remedy
+        self.reason, self.remedy, self.what = reason, remedy, what
 
 
 def _from_config(cfg: JobConfig, table: StreamChannels, key: str, stream: str, channels: int) -> tuple[str, ...]:
@@ -65,6 +66,7 @@ def _from_config(cfg: JobConfig, table: StreamChannels, key: str, stream: str, c
             f"stream {stream!r} has {channels} channel(s), but {table.table} {key} in {cfg.source} lists "
             f"{len(value)}",
             f"list {channels} {what}(s) in {table.table} {key}, one per channel in the recordings' order{one}{shared}",
+            key,
         )
     return tuple(value)
 
@@ -83,12 +85,14 @@ def _carried(attrs: Mapping[str, Any], key: str, stream: str, channels: int) -> 
             f"its attribute {key} {held}, not one string per channel of its {channels} channel(s)",
             f"give the stream's {'names' if key == 'channel_names' else 'units'} in {table} (they take the "
             "place of the attribute), or leave the array out with [archive] exclude",
+            "names" if key == "channel_names" else "units",
         )
     return tuple(value)
 
 
 def labels_for(cfg: JobConfig, stream: str, channels: int, own: Mapping[str, Any] | None = None,
-               carried: Mapping[str, Any] | None = None) -> ChannelLabels:
+               carried: Mapping[str, Any] | None = None,
+               problems: list[LabelMismatch] | None = None) -> ChannelLabels:
     """The channel names and units of a file of ``stream`` with ``channels`` channels.
 
     Parameters
@@ -104,6 +108,9 @@ def labels_for(cfg: JobConfig, stream: str, channels: int, own: Mapping[str, Any
         and ``units``, one per channel, checked by its reader).
     carried : mapping, optional
         The attributes of an earlier job's output array read as this input.
+    problems : list, optional
+        When given, a key whose labels do not fit is left None and its
+        :class:`LabelMismatch` appended here instead of raised (the other key still applies).
 
     Returns
     -------
@@ -124,10 +131,16 @@ def labels_for(cfg: JobConfig, stream: str, channels: int, own: Mapping[str, Any
             continue
         table = next((t for t in (stream_table, any_table)
                       if t is not None and getattr(t, key) is not None), None)
-        if table is not None:
-            found[key] = _from_config(cfg, table, key, stream, channels)
-        else:
-            found[key] = None if carried is None else _carried(carried, attr, stream, channels)
+        try:
+            if table is not None:
+                found[key] = _from_config(cfg, table, key, stream, channels)
+            else:
+                found[key] = None if carried is None else _carried(carried, attr, stream, channels)
+        except LabelMismatch as e:
+            if problems is None:
+                raise
+            problems.append(e)
+            found[key] = None
     return ChannelLabels(found["names"], found["units"])
 
 

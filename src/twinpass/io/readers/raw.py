@@ -27,7 +27,8 @@ key                required  meaning
 
 ``channel_names`` and ``units`` label the outputs (they win over the configuration's
 ``[archive.channels]``); they do not change how the file decodes, so editing them
-refilters nothing.
+refilters nothing, and a mistake in them (a count other than ``channels``, an empty or
+repeated name) is a warning: the file is read as usual without the sidecar's labels.
 
 ``x_scaled`` follows the usual convention: signed integers ``v / 2**(bits - 1)``,
 unsigned ``(v - 2**(bits - 1)) / 2**(bits - 1)``, floats as stored.
@@ -244,7 +245,12 @@ class RawReader(FileReader):
             expected = _int_key(doc, "frames", None, 1, where)
             rate = positive_rate(doc.get("sample_rate_hz"), where)
             start = parse_time(doc["start_time"], where) if "start_time" in doc else None
-            labels = _labels(doc, channels, where)
+            try:  # labels change no sample: a mistake in them leaves the file filtered without them
+                labels, label_warnings = _labels(doc, channels, where), ()
+            except CorruptInputError as exc:
+                labels = {}
+                label_warnings = (f"{exc}; the sidecar's channel_names and units are not used until this is "
+                                  "corrected (the samples are read as usual)",)
         except CorruptInputError as exc:
             exc.path = path
             raise
@@ -294,6 +300,7 @@ class RawReader(FileReader):
                 "offset": codec.offset,
                 **labels,
             },
+            warnings=label_warnings,
         )
         spec = ReaderSpec.create(self.name, path, opts)
         return InterleavedRecording(info, spec, fh, codec, header)
