@@ -493,6 +493,21 @@ def test_integer_extremes_filter_to_finite_output_without_clipping(tmp_path):
         assert set(table.counts()) >= {"pass"} and table.counts()["warn"] == 0
 
 
+def test_output_beyond_the_float32_range_is_counted_clipped_without_a_python_warning(tmp_path, recwarn):
+    # float64 input near 1e40 (float32's largest finite value is 3.4e38, IEEE 754 binary32):
+    # a float32 output stores inf there, counted in the clipped figure (the block warns),
+    # and the cast says nothing on the terminal (no RuntimeWarning "overflow in cast").
+    from conftest import make_signal, write_config, write_stream
+
+    write_stream(tmp_path / "archive", "hot", make_signal(4000, 1, 200.0, seed=4) * 1e40, 200.0, 1)
+    cfg = load_config(write_config(tmp_path, output={"dtype": "float32", "compression": "none"}))
+    res = run_job(cfg)
+    assert res.counts()["complete"] == 1
+    table = OutputStore.open(cfg.store_location, mode="r").read_block_table("hot/hot_20260301T000000")
+    assert np.sum(table.figures[..., list(FIGURES).index("clipped")]) > 0
+    assert not [w for w in recwarn.list if "overflow encountered in cast" in str(w.message)]
+
+
 # -- configuration errors --------------------------------------------------------------
 
 _BASE = '[response]\nkind = "lowpass"\npassband_hz = [10.0]\nstopband_hz = [20.0]\n' \

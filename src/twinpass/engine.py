@@ -305,8 +305,10 @@ def run_block(job: BlockJob) -> BlockResult:
         if job.write:
             from .io.store import write_block_data
 
+            with np.errstate(over="ignore"):  # beyond the output type: counted as clipped, stored as inf
+                stored = y.astype(job.out_dtype)
             write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
-                             y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
+                             stored, sync=job.sync, fence=job.fence)
         return status, figs, seams, wlen
 
     global _blocks_running

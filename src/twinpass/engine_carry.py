@@ -438,8 +438,10 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
         status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
         from .io.store import write_block_data
 
+        with np.errstate(over="ignore"):  # beyond the output type: counted as clipped, stored as inf
+            stored = y.astype(job.out_dtype)
         write_block_data(job.store_location, p.array_name, p.start - job.edge_samples - p.file_offset,
-                         y.astype(job.out_dtype), sync=job.sync, fence=job.fence)
+                         stored, sync=job.sync, fence=job.fence)
         return BlockResult(p.array_name, p.block_index, status, figs, seams, None, 1, 0.0, window.shape[0])
 
     res, err, attempts = _with_retries(job, work)
