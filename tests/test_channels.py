@@ -334,3 +334,17 @@ def test_a_second_stage_configuration_wins_and_stage_one_relabels_follow_without
 def test_config_errors_name_the_stream_table_and_key(extra, expected):
     # one line starting with the file's name, holding each expected text (as every other key's)
     test_bad_inputs.test_config_errors_name_table_and_key(extra, expected)
+
+
+def test_status_shows_each_streams_labels_and_lists_them_per_file(work):
+    # The labels are those this test's configuration gives (TABLES); `twinpass status` says
+    # them on each stream's line and under channel_names / units per file in --json.
+    folder, arrays = work
+    config = _config(folder, TABLES)
+    _run(config)
+    text = run_cli(["status", str(config)]).stdout
+    assert "stream deck-north: vertical (m/s^2), lateral (m/s^2), longitudinal (m/s^2)" in text
+    assert "stream pier: north (V), east (V)" in text and "stream mast: channel 0 (V)" in text
+    files = {f["name"]: f for f in json.loads(run_cli(["status", str(config), "--json"]).stdout)["files"]}
+    assert files[arrays["pier"][0]]["channel_names"] == ["north", "east"]
+    assert files[arrays["mast"][0]]["units"] == ["V"] and files[arrays["mast"][0]]["channel_names"] is None

@@ -193,6 +193,8 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
                                                       "seam_mismatch", "clipped", "nonfinite_out")},
             "errors": errors,
             "input_gone_since": gone_since(attrs),
+            "channel_names": attrs.get("channel_names"),
+            "units": attrs.get("units"),
         })
     files.sort(key=lambda f: (str(f["stream"]), str(f["start_time"] or ""), f["name"]))
     root = store.read_root_info()
@@ -277,6 +279,21 @@ def _block_lines(failed: Mapping[str, Any] | None) -> str:
     return "".join(f"\n    {b}" for b in blocks[:LISTED]) + more
 
 
+def _labels_text(files: list[dict[str, Any]]) -> str:
+    """The channels of a stream's outputs as their labels say them (``": vertical (m/s^2),
+    lateral (m/s^2)"``), when every output of the stream has the same labels; else ""."""
+    labels = {(tuple(f.get("channel_names") or ()), tuple(f.get("units") or ())) for f in files}
+    if len(labels) != 1:
+        return ""
+    names, units = next(iter(labels))
+    if not names and not units:
+        return ""
+    n = max(len(names), len(units))
+    parts = [(names[i] if i < len(names) else f"channel {i}") + (f" ({units[i]})" if i < len(units) else "")
+             for i in range(n)]
+    return ": " + ", ".join(parts)
+
+
 def format_status(status: dict[str, Any]) -> str:
     """The status as a plain-text table grouped by stream."""
     header = ("FILE", "BLOCKS", "FAILED", "CHECKS", "PB DEV dB", "PHASE deg", "STOP dB", "SEAM", "EDGE ZONE", "COMPLETE")
@@ -286,7 +303,7 @@ def format_status(status: dict[str, Any]) -> str:
         by_stream.setdefault(str(f["stream"]), []).append(f)
     rows: list[tuple[str, ...] | str] = []
     for stream, files in by_stream.items():
-        rows.append(f"stream {stream}")
+        rows.append(f"stream {stream}" + _labels_text(files))
         for f in files:
             w = f["worst"]
             ez = f["edge_zone_samples"] or [0, 0]
