@@ -555,14 +555,17 @@ FIGURE_COLUMNS = {"worst passband dev (dB)": "passband_dev_db", "worst phase (de
 
 def _recorded(store: OutputStore, o: FileOutcome) -> FileOutcome:
     """An unchanged file's outcome with its blocks, blocks done and check summary as the
-    store recorded them when it was made complete (its ``checks`` attribute), when the
-    outcome has none; unreadable attributes leave it as it is."""
-    if o.status != "skipped" or o.summary:
+    store recorded them when it was made complete (its ``checks`` attribute: the outcome's
+    own summary when the plan's record gave it, else read from the store), when the outcome
+    has no block counts; unreadable attributes leave it as it is."""
+    if o.status != "skipped" or o.blocks:
         return o
-    try:
-        summary = store.array_attrs(o.array_name).get("checks")
-    except Exception:
-        return o
+    summary = o.summary or None
+    if summary is None:
+        try:
+            summary = store.array_attrs(o.array_name).get("checks")
+        except Exception:
+            return o
     if not isinstance(summary, dict) or "blocks" not in summary:
         return o
     blocks = int(summary["blocks"])
@@ -800,7 +803,10 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                     begun = True
                 unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
                 idle = [w for w in prep.work if not w.has_work]
-                outcomes += [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped")
+                # Unchanged files keep the check summary their record holds (the dashboard's table).
+                recorded = {fp.relpath: fp.record.checks for fp in prep.plan.files if fp.record is not None}
+                outcomes += [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped",
+                                         summary=dict(recorded.get(f.relpath) or {}))
                              for w in idle for f in w.files]
                 if unchanged:
                     skip_unchanged(quote(unchanged))

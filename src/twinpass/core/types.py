@@ -179,3 +179,6 @@ class FileRecord:
     """The output's attribute ``channel_names`` (one name per channel); None when absent."""
     units: tuple[str, ...] | None = None
     """The output's attribute ``units`` (one unit per channel); None when absent."""
+    checks: dict[str, Any] | None = None
+    """The output's attribute ``checks``: its blocks' counts and worst figures when it was last
+    marked (see ``twinpass.engine.finish_segment``); None when absent."""

@@ -1623,6 +1623,7 @@ class OutputStore:
                 gone_since=gone_since(a),
                 channel_names=_labels(a.get("channel_names")),
                 units=_labels(a.get("units")),
+                checks=a["checks"] if isinstance(a.get("checks"), dict) else None,
             )
         return out
 
