@@ -486,8 +486,9 @@ def _print_retried(retried: dict[str, int]) -> None:
     """The run's blocks done only after a failed attempt, in one line (none if there were none)."""
     from .status import retried_line
 
-    if retried_line(retried):
-        print(f"retried: {retried_line(retried)}")
+    line = retried_line(retried)
+    if line:
+        print(f"retried: {line}")
 
 
 def _print_summary(summary: dict[str, Any]) -> None:

@@ -824,8 +824,9 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 finish_interrupted_run(store, tally.result(run_id, started, prep), cfg)
             raise
         result = RunResult.ending_now(run_id, started, prep, outcomes)
-        if retried_line(result.retried()):
-            logger.warning(retried_line(result.retried()))
+        retried = retried_line(result.retried())
+        if retried:
+            logger.warning(retried)
         unrecorded: str | None = None
         try:
             finalize_task(quote(store), quote(result), quote(cfg), quote(durations))

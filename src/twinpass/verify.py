@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 
 from .core.checks import PASS, WARN
+from .core.loops import channel_stats
 from .errors import StoreError
 from .io.store import OutputStore
 
@@ -66,15 +67,13 @@ class Verification:
 
 
 def _levels(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(RMS, peak |value|) of the finite samples per channel of a time-major array; NaN
-    where a channel has none."""
-    a = np.asarray(a, dtype=np.float64)
-    finite = np.isfinite(a)
-    clean = np.where(finite, a, 0.0)
-    n = np.count_nonzero(finite, axis=0)
+    """(RMS, peak |value|) of the finite samples per channel of a time-major array, by the
+    pass the blocks' own figures use (:func:`twinpass.core.loops.channel_stats`); NaN where a
+    channel has none."""
+    bad, sum_squares, peak = channel_stats(a)
+    n = a.shape[0] - bad
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):  # a damaged sample may be huge
-        rms = np.sqrt(np.sum(clean * clean, axis=0) / n)
-    peak = np.max(np.abs(clean), axis=0, initial=0.0)
+        rms = np.sqrt(sum_squares / n)
     return np.where(n > 0, rms, np.nan), np.where(n > 0, peak, np.nan)
 
 
