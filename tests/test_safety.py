@@ -225,7 +225,14 @@ def test_locked_store_message_says_the_lock_is_recovered_and_when_to_delete_it(t
     with store.lock("holder-run"):  # held by this live process, on this host
         with pytest.raises(StoreLockedError) as e:
             run(cfg)
+        # the holder noted its Prefect flow run beside the lock: the refusal names it
+        store.note_flow_run("4a7b2c1d-0000-4000-8000-000000000001", "http://127.0.0.1:4200/api")
+        with pytest.raises(StoreLockedError) as named:
+            run(cfg)
     msg = str(e.value)
+    assert "Prefect flow run" not in msg, msg
+    assert ("(Prefect flow run 4a7b2c1d-0000-4000-8000-000000000001 on http://127.0.0.1:4200/api)"
+            in str(named.value)), str(named.value)
     assert "recovered automatically" in msg and "no longer running" in msg, msg
     assert "delete" not in msg.replace("no need to delete it", ""), msg  # no advice to delete it by hand
     far = dataclasses.replace(LockInfo.new("far-run"), host="another-host.invalid")

@@ -196,7 +196,11 @@ def acquire(lock: LockFile, run_id: str, recovered: list[LockInfo] | None = None
                 f"killed while taking it); if no run is using the store, delete {lock.where} and rerun"
             )
         if not holder.is_stale():
-            raise StoreLockedError(locked_message(holder, lock.where))
+            try:
+                flow_run = noted_flow_run(lock, holder.run_id)
+            except Exception:  # a note that cannot be read only leaves the flow run unnamed
+                flow_run = None
+            raise StoreLockedError(locked_message(holder, lock.where, flow_run))
         if _remove_stale(lock, raw, holder) and recovered is not None:
             recovered.append(holder)
     raise StoreLockedError(
@@ -205,15 +209,18 @@ def acquire(lock: LockFile, run_id: str, recovered: list[LockInfo] | None = None
     )
 
 
-def locked_message(holder: LockInfo, where: str) -> str:
-    """Why a run is refused while ``holder`` holds the lock ``where``, and what to do.
+def locked_message(holder: LockInfo, where: str, flow_run: dict[str, str] | None = None) -> str:
+    """Why a run is refused while ``holder`` holds the lock ``where``, and what to do;
+    ``flow_run``, the holder's note of its Prefect flow run (:func:`noted_flow_run`), names it.
 
     Only a holder on this host can be judged: once its process has ended, the next run here
     recovers its lock automatically. A lock taken on another host is left alone, since this
     one cannot see that host's processes; a run started there recovers it, so deleting it
     by hand is only for a host that is gone.
     """
-    said = f"output store is locked by {holder.describe()}: {where}; wait for that run to finish"
+    on = (f" (Prefect flow run {flow_run['flow_run_id']}" + (f" on {flow_run['api_url']})" if flow_run["api_url"]
+                                                             else ")")) if flow_run else ""
+    said = f"output store is locked by {holder.describe()}{on}: {where}; wait for that run to finish"
     if holder.host == socket.gethostname():
         return (f"{said}. Its lock is recovered automatically by the next run once that process is no longer "
                 "running: there is no need to delete it")
