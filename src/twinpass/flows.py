@@ -804,9 +804,9 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
                 unchanged = [f.relpath for w in prep.work for f in w.files if f.action == "skip"]
                 idle = [w for w in prep.work if not w.has_work]
                 # Unchanged files keep the check summary their record holds (the dashboard's table).
-                recorded = {fp.relpath: fp.record.checks for fp in prep.plan.files if fp.record is not None}
+                records = prep.plan.records()
                 outcomes += [FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped",
-                                         summary=dict(recorded.get(f.relpath) or {}))
+                                         summary=dict(getattr(records.get(f.relpath), "checks", None) or {}))
                              for w in idle for f in w.files]
                 if unchanged:
                     skip_unchanged(quote(unchanged))

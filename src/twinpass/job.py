@@ -425,7 +425,7 @@ def relabel_note(plan: Plan, work: list[SegmentWork]) -> list[str]:
     """A note naming the unchanged files whose channel names or units changed (the
     configuration or a sidecar edited): their outputs' attributes are rewritten, no block
     runs for them (:func:`update_placement`). Empty when there are none."""
-    records = {fp.relpath: fp.record for fp in plan.files if fp.record is not None}
+    records = plan.records()
     files = [fw.relpath for w in work for fw in w.files
              if fw.action == "skip" and fw.relpath in records and _label_changes(fw, records[fw.relpath])]
     if not files:
@@ -442,7 +442,7 @@ def update_placement(store: OutputStore, prep: Prepared) -> None:
     ``units`` where those changed (the configuration or a sidecar edited; a label given no
     more is removed). Their values stand, so no block runs for them; a join the change moves
     is refiltered as the plan says."""
-    records = {fp.relpath: fp.record for fp in prep.plan.files if fp.record is not None}
+    records = prep.plan.records()
     for w in prep.work:
         for fw in w.files:
             rec = records.get(fw.relpath)

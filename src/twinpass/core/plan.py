@@ -336,6 +336,10 @@ class Plan:
         busy = {fp.segment for fp in self.files if fp.redo is not None}
         return tuple(s for s in self.segments if s.id in busy)
 
+    def records(self) -> dict[str, FileRecord]:
+        """The store's record of each planned file that has one, by input path."""
+        return {fp.relpath: fp.record for fp in self.files if fp.record is not None}
+
     def to_json(self) -> list[dict[str, Any]]:
         """A JSON-ready list of every file: path, stream, segment, status, reason, redo, ..."""
         return [fp.to_dict() for fp in self.all_files()]
