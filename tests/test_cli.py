@@ -187,6 +187,23 @@ def test_plan_on_mixed_archive_with_gap(tmp_path: Path) -> None:
     assert "alpha/alpha_20260301T000500.wav" in r.stdout and "new" in r.stdout
 
 
+def test_plan_exits_as_the_run_would_for_inputs_left_out(tmp_path: Path) -> None:
+    # A file cut short mid-frame is left out by both; the plan says so with the run's exit
+    # status (3), before anything is filtered; without it both exit 0.
+    from twinpass.cli import EXIT_LEFT_OUT
+
+    cfg = mixed_archive(tmp_path)
+    assert _twinpass("plan", str(cfg)).returncode == 0
+    bad = tmp_path / "archive/alpha/alpha_20260301T000500.wav"
+    bad.write_bytes(bad.read_bytes()[:-1])  # 16-bit stereo: the last frame is cut short
+    r = _twinpass("plan", str(cfg))
+    assert r.returncode == EXIT_LEFT_OUT, r.stdout + r.stderr
+    assert "invalid" in r.stdout and "alpha/alpha_20260301T000500.wav" in r.stdout
+    assert _twinpass("plan", str(cfg), "--json").returncode == EXIT_LEFT_OUT
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report")
+    assert r.returncode == EXIT_LEFT_OUT, r.stdout + r.stderr
+
+
 @pytest.mark.slow
 def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)

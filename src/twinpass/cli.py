@@ -173,7 +173,8 @@ def cmd_plan(args: argparse.Namespace) -> int:
         print(format_plan(prep.plan, reads))
         for segment, message in problems.items():
             print(f"cannot run segment {segment}: {message}")
-    return 2 if problems else 0
+    # the status a run would end with for what the plan can tell: inputs left out
+    return 2 if problems else EXIT_LEFT_OUT if prep.plan.invalid else 0
 
 
 def _segment_reads(prep: Any) -> tuple[dict[str, Any], dict[str, str]]:
