@@ -298,6 +298,8 @@ def test_the_per_file_table_and_progress_say_what_the_store_holds(prefect_client
     assert (failed["blocks"], failed["blocks done"], failed["blocks not done"]) == (BLOCKS_PER_FILE,
                                                                                    BLOCKS_PER_FILE - 1, 1)
     assert failed["blocks run"] == BLOCKS_PER_FILE and failed["blocks retried"] == 0, failed
+    # the run's record counts the blocks as the table does: the block the retry ran again once
+    assert status["last_run"]["counts"]["blocks_run"] == sum(r["blocks run"] for r in rows.values()), rows
     for rel in ALL_FILES:
         row = rows[rel]
         blocks, done = _block_counts(store, array_name(rel))

@@ -260,14 +260,15 @@ class RunResult:
     def counts(self) -> dict[str, int]:
         """Files per status (``complete``, ``failed``, ``skipped``, ``invalid``, and for an
         interrupted run ``unfinished``), ``blocks_run``, the blocks the run ran (a block run
-        again by a retry of its segment's task counts again), and ``blocks_retried``, the
-        blocks done only after a failed attempt (:meth:`retried`)."""
+        again by a retry of its segment's task counts once, as in the flow run's per-file
+        table), and ``blocks_retried``, the blocks done only after a failed attempt
+        (:meth:`retried`)."""
         c: dict[str, int] = {"complete": 0, "failed": 0, "skipped": 0, "invalid": len(self.invalid)}
         if self.interrupted:
             c["unfinished"] = 0
         for o in self.outcomes:
             c[o.status] = c.get(o.status, 0) + 1
-        c["blocks_run"] = sum(o.blocks_run for o in self.outcomes)
+        c["blocks_run"] = sum(o.blocks_run - o.blocks_rerun for o in self.outcomes)
         c["blocks_retried"] = sum(o.blocks_retried for o in self.outcomes)
         return c
 
