@@ -352,6 +352,33 @@ def test_workers_on_the_command_line_must_be_a_whole_number_of_at_least_one(tmp_
     assert not (tmp_path / "out.zarr").exists()
 
 
+def test_a_scheduler_that_is_none_is_refused_before_the_run_locks_or_records_anything(tmp_path: Path) -> None:
+    # "thread" (for threads) is refused as [engine] scheduler is at load time: exit 2 naming
+    # --scheduler and what to give, whether or not there is work to do, and no run is recorded
+    # (a record would show a run stopped before its end, with every file unfinished).
+    from twinpass.config import load_config
+    from twinpass.errors import ConfigError
+    from twinpass.job import run_job
+
+    advice = "use threads, processes or an address like tcp://127.0.0.1:8786"  # as for [engine] scheduler
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("run", str(cfg), "--no-flow", "--no-report", "--scheduler", "thread")
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert f"--scheduler 'thread': {advice}" in r.stderr and "Traceback" not in r.stderr, r.stderr
+    assert not (tmp_path / "out.zarr").exists()
+    with pytest.raises(ConfigError, match="scheduler 'thread'"):  # the engine alone, from Python
+        run_job(load_config(cfg), scheduler="thread")
+    with pytest.raises(ConfigError, match="workers 0"):
+        run_job(load_config(cfg), workers=0)
+    assert not (tmp_path / "out.zarr").exists()
+    assert _twinpass("run", str(cfg), "--no-flow", "--no-report").returncode == 0
+    for extra in ([], ["--force"]):  # nothing to do, then everything to do
+        r = _twinpass("run", str(cfg), "--no-flow", "--no-report", "--scheduler", "thread", *extra)
+        assert r.returncode == 2 and advice in r.stderr, r.stdout + r.stderr
+    st = json.loads(_twinpass("status", str(cfg), "--json").stdout)
+    assert st["runs_total"] == 1 and not st["last_run"].get("interrupted"), st["last_run"]
+
+
 def test_output_to_a_reader_that_went_away_ends_quietly(tmp_path: Path) -> None:
     # `twinpass design ... | head`: the reader closes the pipe before the output is written.
     # No traceback; exit 141 (128 + SIGPIPE, what a shell reports for such a command: common

@@ -212,13 +212,15 @@ def cmd_run(args: argparse.Namespace) -> int:
 
         early_start()  # a temporary Prefect server (if one is needed) starts while this process prepares
     with start_up_imports(freeze=args.own_process):
-        from .config import load_config
+        from .config import SCHEDULER_ADVICE, load_config, scheduler_usable
 
         if args.no_flow:
             from . import job  # noqa: F401
         else:
             from . import flows  # noqa: F401
 
+    if args.scheduler is not None and not scheduler_usable(args.scheduler):  # before any lock or record
+        raise ConfigError(f"twinpass run: --scheduler {args.scheduler!r}: {SCHEDULER_ADVICE}")
     if args.block is not None:
         return _run_flow(None, None, force=args.force, scheduler=args.scheduler, workers=args.workers,
                          report=not args.no_report, progress=_ProgressBar(), config_block=args.block)

@@ -472,6 +472,32 @@ def _nonfinite_setting(cfg: JobConfig) -> tuple[str, str, Any] | None:
     return None
 
 
+SCHEDULER_ADVICE = "use threads, processes or an address like tcp://127.0.0.1:8786"
+"""What to give for a Dask scheduler (``[engine] scheduler``, ``--scheduler``) that is not one."""
+
+
+def scheduler_usable(value: str) -> bool:
+    """Whether ``value`` names a Dask scheduler twinpass can use: ``threads``, ``processes``
+    or an address (``tcp://HOST:PORT`` and the like: anything with ``://``)."""
+    return value in ("threads", "processes") or "://" in value
+
+
+def check_run_overrides(scheduler: str | None, workers: int | None) -> None:
+    """Refuse a run's ``scheduler`` and ``workers`` overrides (of ``[engine]``; None keeps
+    the configured value) that cannot run, before the run takes the store's lock or
+    records anything.
+
+    Raises
+    ------
+    ConfigError
+        Naming the override and what to give instead.
+    """
+    if scheduler is not None and not scheduler_usable(scheduler):
+        raise ConfigError(f"scheduler {scheduler!r}: {SCHEDULER_ADVICE}")
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise ConfigError(f"workers {workers!r}: give a whole number of at least 1 (local Dask workers)")
+
+
 def _require(src: str, table: str, key: str, value: Any, ok: bool, rule: str) -> None:
     """Raise a :class:`ConfigError` naming ``[table] key`` and ``rule`` (what to give) unless ``ok``."""
     if not ok:
@@ -537,10 +563,8 @@ def _check_values(cfg: JobConfig) -> None:
     if cfg.engine.retries < 0:
         raise ConfigError(f"{src}: [engine] retries must be >= 0")
     sch = cfg.engine.scheduler
-    if sch not in ("threads", "processes") and "://" not in sch:
-        raise ConfigError(
-            f"{src}: [engine] scheduler = {sch!r}: use threads, processes or an address like tcp://127.0.0.1:8786"
-        )
+    if not scheduler_usable(sch):
+        raise ConfigError(f"{src}: [engine] scheduler = {sch!r}: {SCHEDULER_ADVICE}")
     if cfg.checks.every < 0:
         raise ConfigError(f"{src}: [checks] every must be >= 0 (0 turns response checks off)")
     _check_ranges(cfg)

@@ -59,7 +59,7 @@ from prefect.runtime import flow_run as flow_run_runtime
 from prefect.states import Cancelled, Completed, Failed
 from prefect.utilities.annotations import quote
 
-from .config import JobConfig, load_config
+from .config import JobConfig, check_run_overrides, load_config
 from .core.checks import was_cancelled
 from .core.design import format_report
 from .core.plan import fingerprint_changed
@@ -756,6 +756,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
 
     logger = get_run_logger()
     cfg = load_job(config_path, config_block)
+    check_run_overrides(scheduler, workers)  # before the store is locked or the run recorded
     # A run the command line began before this flow run existed (twinpass.headstart), if it
     # is this one: its lock, preparation, root record, cluster and running segments.
     head = claim(cfg, force=force, scheduler=scheduler, workers=workers)

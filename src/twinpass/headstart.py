@@ -38,7 +38,7 @@ import uuid
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator
 
-from .config import JobConfig
+from .config import JobConfig, check_run_overrides
 from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .errors import RunStoppedError
 from .io.store import OutputStore
@@ -204,6 +204,7 @@ class HeadStart:
             flow body records it. Nothing is left held: a cluster still starting is closed
             once its start ends.
         """
+        check_run_overrides(scheduler, workers)
         run_id, started = uuid.uuid4().hex[:12], now_iso()
         scheduler, workers = scheduler or cfg.engine.scheduler, int(workers or cfg.engine.workers)
         store = open_run_store(cfg)

@@ -18,7 +18,7 @@ from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
-from .config import JobConfig
+from .config import JobConfig, check_run_overrides
 from .core.checks import was_cancelled
 from .core.design import design_filter, response_report
 from .core.plan import FilePlan, Plan, fingerprint_changed, make_plan
@@ -587,9 +587,11 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         The blocks ended but the run could not be recorded in the store; its ``result``
         holds the outcomes.
     TwinpassError
-        The run could not begin (configuration, archive, a locked or unusable store).
+        The run could not begin (configuration, archive, a locked or unusable store); a
+        ``scheduler`` or ``workers`` that cannot run is refused before anything is recorded.
     """
 
+    check_run_overrides(scheduler, workers)  # before the store is locked or the run recorded
     say = log_fn or log.info
     run_id = uuid.uuid4().hex[:12]
     started = now_iso()
