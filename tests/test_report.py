@@ -439,6 +439,22 @@ def test_the_report_names_the_input_the_run_left_out_and_why(demo_report: tuple[
     assert '"warn"' not in section  # quotes escaped
 
 
+def test_the_summaries_count_the_inputs_left_out_in_their_first_lines(demo_report: tuple[str, dict]) -> None:
+    # The report's Summary and the totals line of `twinpass status` count the input the
+    # demo's run left out (and the inputs it failed: none), not only the outputs made;
+    # twinpass.status.collect_status's list of left-out inputs is the reference count.
+    from twinpass.status import format_status
+
+    page, status = demo_report
+    assert len(status["left_out"]) == 1 and not status["failed_inputs"]
+    summary = page[page.index("<h2>Summary</h2>"):page.index("<h2>Cautions</h2>")]
+    first = summary[summary.index("<p>"):summary.index("</p>")]
+    assert "inputs left out by the last run: 1, failed: 0" in first, first
+    totals = next(line for line in format_status(status).splitlines() if line.startswith("files: "))
+    assert "inputs left out by the last run: 1, failed: 0" in totals, totals
+    assert status["totals"]["inputs_left_out"] == 1 and status["totals"]["inputs_failed"] == 0
+
+
 def test_report_lists_are_capped_and_escaped(tmp_path: Path) -> None:
     # Huge archives: each list shows report.LISTED entries and counts the rest; entries are
     # text, escaped as HTML (reference: html.escape of the standard library).

@@ -643,7 +643,10 @@ def _file_table(files: Sequence[Mapping[str, Any]]) -> str:
     return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
 
 
-def _summary(designs: Sequence[Design], files: Sequence[Mapping[str, Any]], blocks: Sequence[Mapping[str, Any]]) -> str:
+def _summary(designs: Sequence[Design], files: Sequence[Mapping[str, Any]], blocks: Sequence[Mapping[str, Any]],
+             left_out: int = 0, failed_inputs: int = 0) -> str:
+    """The summary: designs, output files, blocks, and the inputs the last run left out or
+    failed (``left_out``, ``failed_inputs``); then the blocks by status."""
     counts = {name: 0 for name in STATUS_COLORS}
     for b in blocks:
         counts[_status_name(b.get("status"))] += 1
@@ -654,8 +657,10 @@ def _summary(designs: Sequence[Design], files: Sequence[Mapping[str, Any]], bloc
     complete = sum(1 for f in files if f.get("complete"))
     stopped = (f'<p>{counts["cancelled"]} block(s) cancelled: a run was stopped before they finished. They are '
                "not done, nothing failed in them, and the next run does them.</p>" if counts["cancelled"] else "")
+    listed = _esc(' (listed below, under "Left out, failed or missing")') if left_out or failed_inputs else ""
     return (f"<p>{len(designs)} design(s), {len(files)} file(s) ({complete} complete), "
-            f"{len(blocks)} block(s).</p><p>{badges}</p>{stopped}")
+            f"{len(blocks)} block(s); inputs left out by the last run: {left_out}, failed: {failed_inputs}"
+            f"{listed}.</p><p>{badges}</p>{stopped}")
 
 
 def _listed_html(sections: Sequence[tuple[str, Sequence[str]]]) -> str:
@@ -698,6 +703,8 @@ def render_report(
     provenance: Sequence[tuple[str, str]] = (),
     limits: Sequence[Sequence[Mapping[str, Any]] | None] = (),
     limits_from: str = "the [checks] settings",
+    left_out: int = 0,
+    failed_inputs: int = 0,
 ) -> Path:
     """Write the run report as one self-contained HTML file.
 
@@ -745,6 +752,9 @@ def render_report(
         they are not known (the design's response spec was not recorded).
     limits_from : str
         Where the ``[checks]`` settings of the limits come from, in words.
+    left_out, failed_inputs : int
+        Inputs the last run left out (invalid, or no filter for their rate) and inputs it
+        failed, counted in the summary.
 
     Returns
     -------
@@ -768,7 +778,7 @@ def render_report(
         parts.append('<div class="notices"><ul>' + "".join(f"<li>{_esc(n)}</li>" for n in notices) + "</ul></div>")
     parts += [
         "<h2>Summary</h2>",
-        _summary(designs, files, blocks),
+        _summary(designs, files, blocks, left_out, failed_inputs),
         "<h2>Cautions</h2>",
         '<div class="cautions"><ul>',
     ]

@@ -442,5 +442,6 @@ def write_report(cfg: JobConfig, output: str | Path | None = None) -> Path:
         overlays=[overlay] if overlay else [], title=f"twinpass report: {Path(cfg.source).name}",
         cautions=list(DEFAULT_CAUTIONS), notices=design_notices(cfg, used) + unrecorded, design_notes=[d.note() for d in used],
         listed=attention_lists(status), provenance=provenance(store, [f["name"] for f in status["files"]]),
-        limits=limits, limits_from=checks_from,
+        limits=limits, limits_from=checks_from, left_out=len(status["left_out"]),
+        failed_inputs=len(status["failed_inputs"]),
     )

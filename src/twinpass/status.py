@@ -224,6 +224,8 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
         "blocks_cancelled": sum(f["blocks_cancelled"] for f in files),
         "checks_failed": sum(f["checks"] == "fail" for f in files),
         "checks_warned": sum(f["checks"] == "warn" for f in files),
+        "inputs_left_out": len(left_out),
+        "inputs_failed": len(failed_inputs),
     }
     return {"store": store.location, "files": files, "totals": totals, "last_run": runs[-1] if runs else None,
             "lock": store.lock_holder(),
@@ -246,6 +248,14 @@ def retried_line(retried: Mapping[str, int]) -> str:
     more = len(retried) - len(named)
     files = ", ".join(named) + (f" and {more} more file(s)" if more > 0 else "")
     return f"{n} block(s) succeeded only after a retry: their input may be on a flaky mount (in {files})"
+
+
+def inputs_left_out_text(totals: Mapping[str, Any]) -> str:
+    """The inputs the last run left out and those it failed, from :func:`collect_status`'s
+    ``totals``: ``"inputs left out by the last run: 8, failed: 0 (listed below)"``."""
+    left_out, failed = int(totals.get("inputs_left_out") or 0), int(totals.get("inputs_failed") or 0)
+    return (f"inputs left out by the last run: {left_out}, failed: {failed}"
+            + (" (listed below)" if left_out or failed else ""))
 
 
 def _fmt(v: Any, spec: str = ".3g") -> str:
@@ -322,6 +332,7 @@ def format_status(status: dict[str, Any]) -> str:
         lines.append(r if isinstance(r, str) else "  " + line(r))
     t = status["totals"]
     lines.append(f"files: {t['files']} ({t['complete']} complete, {t['incomplete']} incomplete); "
+                 + inputs_left_out_text(t) + "; "
                  f"blocks: {t['blocks_done']}/{t['blocks']} done, {t['blocks_failed']} failed"
                  + (f", {t['blocks_cancelled']} cancelled (a run was stopped; the next run does them)"
                     if t.get("blocks_cancelled") else "")
