@@ -118,6 +118,17 @@ def test_design_bad_spec_exits_nonzero_with_one_line(tmp_path: Path) -> None:
     assert f"{cfg}: [response] at 50 Hz" in lines[0]  # the file, the table and the rate it was asked for
 
 
+@pytest.mark.parametrize("fs", ["-5", "0", "nan", "inf", "fifty"])
+def test_design_refuses_a_sample_rate_that_is_none_naming_the_option(tmp_path: Path, fs: str) -> None:
+    # argparse's usage error (exit 2) names --fs, the value given on the command line; the
+    # configuration file, which holds no sample rate, is not blamed.
+    cfg = mixed_archive(tmp_path)
+    r = _twinpass("design", str(cfg), "--fs", fs)
+    assert r.returncode == 2, r.stdout + r.stderr
+    last = r.stderr.strip().splitlines()[-1]
+    assert "argument --fs" in last and fs in last and str(cfg) not in r.stderr, r.stderr
+
+
 _EXIT_SCRIPT = """\
 import atexit, sys
 from twinpass import cli

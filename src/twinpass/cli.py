@@ -16,6 +16,7 @@ import atexit
 import contextlib
 import json
 import logging
+import math
 import os
 import re
 import sys
@@ -725,6 +726,17 @@ def _at_least_one(text: str) -> int:
     return value
 
 
+def _sample_rate_hz(text: str) -> float:
+    """A sample rate in Hz: a finite number above 0 (argparse type)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number (the sample rate in Hz)") from None
+    if not (math.isfinite(value) and value > 0):
+        raise argparse.ArgumentTypeError(f"{text} is not a sample rate: give a finite number of Hz above 0")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="twinpass", description="Zero-phase filtering of large sensor archives.")
     p.add_argument("--version", action="version", version=f"twinpass {__version__}")
@@ -733,7 +745,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("design", help="design the filter for a sample rate and print the response report")
     s.add_argument("config")
-    s.add_argument("--fs", type=float, required=True, help="sample rate in Hz")
+    s.add_argument("--fs", type=_sample_rate_hz, required=True, help="sample rate in Hz")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_design)
 
