@@ -755,7 +755,7 @@ def test_name_clashes_match_their_definition_on_random_paths():
     for _ in range(200):
         paths = sorted({"/".join(rng.choice(parts) for _ in range(rng.randint(1, 3))) + rng.choice([".wav", ".npy"])
                         for _ in range(rng.randint(2, 12))})
-        keep, bad = _split_name_clashes([SimpleNamespace(relpath=p, output_name=None) for p in paths])
+        keep, bad = _split_name_clashes([SimpleNamespace(relpath=p, output_name=None, stream="s") for p in paths])
         kept = [array_name(e.relpath) for e in keep]
         assert not any(clash(x, y) for i, x in enumerate(kept) for y in kept[i + 1:]), paths
         assert all(any(clash(array_name(b.path), k) for k in kept) for b in bad), paths

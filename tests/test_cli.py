@@ -215,6 +215,28 @@ def test_plan_exits_as_the_run_would_for_inputs_left_out(tmp_path: Path) -> None
     assert r.returncode == EXIT_LEFT_OUT, r.stdout + r.stderr
 
 
+def test_a_rate_no_filter_suits_is_said_with_remedies_a_user_can_apply_and_keeps_the_stream(tmp_path: Path) -> None:
+    # At 200 Hz the Nyquist frequency is 100 Hz (half the sample rate, Nyquist-Shannon), so
+    # a 120 Hz band edge cannot be designed: the plan leaves the stream's files out in one
+    # sentence whose remedies apply to recordings that exist ([response], [archive] exclude),
+    # naming the stream the name pattern gives, also for a file that cannot be opened.
+    write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, 200.0, seed=2), 200.0, 2)
+    (tmp_path / "archive/deck/deck_20260301T000020.npy").write_bytes(b"\x93NUMPY not really")
+    cfg = write_config(tmp_path, response={"kind": "bandpass", "family": "butterworth", "order": 2,
+                                           "cutoff_hz": [2.0, 120.0]})
+    r = _twinpass("plan", str(cfg), "--json")
+    assert r.returncode == 3, r.stdout + r.stderr
+    files = {f["path"]: f for f in json.loads(r.stdout)["files"]}
+    assert {f["status"] for f in files.values()} == {"invalid"} and len(files) == 3, files
+    assert {f["stream"] for f in files.values()} == {"deck"}, files
+    refused = files["deck/deck_20260301T000000.npy"]
+    text = f"{refused['reason']}; {refused['remedy']}"
+    assert "Nyquist frequency 100 Hz" in text and ".;" not in text and "higher sample rate" not in text, text
+    assert "[response]" in refused["remedy"] and "[archive] exclude" in refused["remedy"], text
+    table = _twinpass("plan", str(cfg)).stdout
+    assert all(line.split()[1] == "deck" for line in table.splitlines() if line.startswith("invalid")), table
+
+
 @pytest.mark.slow
 def test_run_no_flow_then_status_and_report(tmp_path: Path) -> None:
     cfg = mixed_archive(tmp_path)

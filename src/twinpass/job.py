@@ -117,8 +117,9 @@ def prepare(cfg: JobConfig, store: OutputStore, *, force: bool = False) -> Prepa
         for s in segments:
             if s.sample_rate_hz in bad_rates:
                 invalid.extend(InvalidFile(f.relpath, f"no filter for {s.sample_rate_hz:g} Hz: "
-                                           f"{design_errors[s.sample_rate_hz]}",
-                                           "adjust [response] so it suits this sample rate, or exclude the stream")
+                                           f"{design_errors[s.sample_rate_hz].rstrip('.')}",
+                                           "adjust [response] so that it suits this rate, or leave these files "
+                                           "out with [archive] exclude", stream=s.stream)
                                for f in s.files)
             else:
                 keep.append(s)

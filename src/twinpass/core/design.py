@@ -166,8 +166,8 @@ def _check_edges(name: str, edges: Any, kind: str, nyquist: float) -> tuple[floa
             raise SpecError(f"{name}={_fmt(values)}: edge {v:g} Hz must be above 0 Hz.")
         if v >= nyquist:
             raise SpecError(
-                f"{name}={_fmt(values)}: edge {v:g} Hz is at or above the Nyquist frequency "
-                f"{nyquist:g} Hz (half the sample rate); lower it or use a higher sample rate."
+                f"{name}={_fmt(values)}: edge {v:g} Hz is not below the Nyquist frequency "
+                f"{nyquist:g} Hz (half the sample rate), as every edge must be."
             )
     if need == 2 and not values[0] < values[1]:
         raise SpecError(

@@ -790,7 +790,7 @@ def make_plan(
         rec = records.get(inv.path)
         bad.append(
             FilePlan(
-                relpath=inv.path, stream=None, segment=None if rec is None else rec.segment, status="invalid",
+                relpath=inv.path, stream=inv.stream, segment=None if rec is None else rec.segment, status="invalid",
                 reason=inv.reason, record=rec, frames=0 if rec is None else int(rec.frames), remedy=inv.remedy,
             )
         )

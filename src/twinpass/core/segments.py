@@ -67,6 +67,9 @@ class InvalidFile:
     """What is wrong, naming the place (header field, frame, other file)."""
     remedy: str
     """What the user can do (repair, rename, set a configuration key, exclude the file)."""
+    stream: str | None = None
+    """The stream the file belongs to, where that is known without using the file (its
+    name pattern or manifest row, or the segment of a rate no filter was designed for)."""
 
     def message(self) -> str:
         """One line: ``path: reason; remedy``."""

@@ -997,7 +997,7 @@ def _identify(
                 "write it like 2024-05-01T12:00:00Z (UTC when no offset is given)",
             ) from None
     if pattern is not None:
-        stem = str(PurePosixPath(rel).with_suffix("")) if PurePosixPath(rel).suffix else rel
+        stem = _stem(rel)
         try:
             got = pattern.match(stem)
         except _OutOfRange as e:
@@ -1016,10 +1016,7 @@ def _identify(
                 "rename the file, correct the pattern, or leave it out with [archive] exclude",
             )
         stream, start = got
-        if stream is None:
-            parent = PurePosixPath(rel).parent.as_posix()
-            stream = cfg.archive_root.name if parent == "." else parent
-        return stream, start
+        return (_folder_stream(cfg, rel) if stream is None else stream), start
     if manifest is not None:
         raise _Bad(
             f"not listed in the manifest {cfg.manifest_path}",
@@ -1034,6 +1031,31 @@ def _identify(
         parent = PurePosixPath(rel).parent.as_posix()
         return (PurePosixPath(rel).name if parent == "." else parent), start
     return rel, None
+
+
+def _stem(rel: str) -> str:
+    """A relative path without its last suffix, as a name pattern is matched against it."""
+    return str(PurePosixPath(rel).with_suffix("")) if PurePosixPath(rel).suffix else rel
+
+
+def _folder_stream(cfg: JobConfig, rel: str) -> str:
+    """The stream of a file whose name pattern has no ``{stream}`` field: its parent folder's
+    relative path (the archive root's own name for files at the root)."""
+    parent = PurePosixPath(rel).parent.as_posix()
+    return cfg.archive_root.name if parent == "." else parent
+
+
+def _named_stream(cfg: JobConfig, rel: str, manifest: dict[str, _Row] | None,
+                  pattern: NamePattern | None) -> str | None:
+    """The stream a file's manifest row or name gives (rules of :func:`_identify`), without
+    opening the file, for a file refused before it was identified; None when neither names
+    one (or the name does not match the pattern)."""
+    if manifest is not None and rel in manifest:
+        return manifest[rel].stream or None
+    m = pattern.regex.match(_stem(rel)) if pattern is not None else None
+    if pattern is None or m is None:
+        return None
+    return m.group("stream") if pattern.has_stream else _folder_stream(cfg, rel)
 
 
 def _stored_start(info: Any, what: str, remedy: str) -> _dt.datetime | None:
@@ -1076,7 +1098,7 @@ def _split_duplicates(entries: list[FileEntry]) -> tuple[list[FileEntry], list[I
                     e.relpath,
                     f"same stream {e.stream!r} and start time {e.start_time.isoformat()} as {first[key]}",
                     "keep one of the two files (or correct its name or manifest row), or exclude one with "
-                    "[archive] exclude",
+                    "[archive] exclude", e.stream,
                 )
             )
             continue
@@ -1204,7 +1226,7 @@ def _split_name_clashes(
                     e.relpath,
                     f"its output array name {name!r} clashes with that of {other} ({other_name!r}){held}: "
                     "suffixes are dropped and characters outside A-Z a-z 0-9 . _ - become _",
-                    _REMEDY_RENAME,
+                    _REMEDY_RENAME, e.stream,
                 )
             )
             continue
@@ -1305,7 +1327,8 @@ def _examine(
             scan_entry = _scan_entry(cfg, info, fp, runs, fills)
         union, fills, note = _judge_nonfinite(cfg, info, runs, fills)
     except _Bad as bad:
-        return InvalidFile(rel, bad.reason, bad.remedy), [], scan_entry, was_scanned
+        stream = _named_stream(cfg, rel, manifest, pattern) if where is None else None
+        return InvalidFile(rel, bad.reason, bad.remedy, stream), [], scan_entry, was_scanned
     notes = [f"{rel}: {_strip_path(w, abspath)}" for w in info.warnings]
     if note:
         notes.append(f"{rel}: {note}")
