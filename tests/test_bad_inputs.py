@@ -522,7 +522,7 @@ _BASE = '[response]\nkind = "lowpass"\npassband_hz = [10.0]\nstopband_hz = [20.0
         ("[processing]\nmax_fill_samples = \"ten\"\n", ["[processing] max_fill_samples", "whole number", "'ten'"]),
         ("[processing]\nmax_fill_samples = 2.5\n", ["[processing] max_fill_samples", "whole number"]),
         ("[processing]\nnonfinite = \"zero\"\n", ["[processing] nonfinite = 'zero'", "fail, split, interpolate"]),
-        ("[archive]\ninclude = 3\n", ["[archive] include", "expected a list", "3"]),
+        ("[archive]\ninclude = 3\n", ["[archive] include", "expected a string or a list of strings, got 3"]),
         ("[archive]\nexclude = [\"a\", 1]\n", ["[archive] exclude[1]", "expected a string"]),
         ("[engine]\nworkers = 0\n", ["[engine] workers must be >= 1"]),
         ("[processing]\ntolerance = 0.5\n", ["[processing] tolerance", "(0, 0.1)"]),
@@ -536,6 +536,22 @@ def test_config_errors_name_table_and_key(extra, expected):
     assert msg.startswith("job.toml: ") and "\n" not in msg
     for text in expected:
         assert text in msg
+
+
+@pytest.mark.parametrize("text, expected", [
+    (_BASE.replace("[10.0]", '"10"'), "[response] passband_hz: expected a number (Hz) or a list of numbers (Hz), "
+                                       "got '10'"),
+    (_BASE.replace("[20.0]", "true"), "[response] stopband_hz: expected a number (Hz) or a list of numbers (Hz), "
+                                       "got True"),
+    ('[response]\nkind = "lowpass"\norder = 4\ncutoff_hz = "10"\n',
+     "[response] cutoff_hz: expected a number (Hz) or a list of numbers (Hz), got '10'"),
+])
+def test_config_keys_taking_a_value_or_a_list_say_both(text, expected):
+    """A key that takes one value or a list of them (a band edge in Hz) names both forms
+    and the unit when given neither."""
+    with pytest.raises(ConfigError) as e:
+        parse_config(text, source="job.toml")
+    assert str(e.value) == f"job.toml: {expected}"
 
 
 @pytest.mark.parametrize("one, listed", [

@@ -287,6 +287,13 @@ def _type_name(tp: Any) -> str:
     return getattr(tp, "__name__", str(tp))
 
 
+_ELEMENT_NAMES: dict[Any, tuple[str, str]] = {float: ("a number", "numbers"), int: ("a whole number", "whole numbers"),
+                                              str: ("a string", "strings")}
+"""How an error names one value of a list key, and several."""
+_UNITS = {"hz": "Hz", "db": "dB", "seconds": "s"}
+"""Units of keys by the end of their name (``passband_hz``), named in the errors."""
+
+
 def _coerce(where: str, value: Any, tp: Any) -> Any:
     """Check ``value`` against the annotation ``tp``; return it normalised (lists -> tuples)."""
     origin = get_origin(tp)
@@ -312,12 +319,16 @@ def _coerce(where: str, value: Any, tp: Any) -> Any:
         elem = args[0] if args else Any
         if not isinstance(value, (list, tuple)):
             # One value where a list is expected is a list of one (``cutoff_hz = 10.0`` for a
-            # low-pass, ``include = "**/*.wav"``); anything else is named with the list form.
+            # low-pass, ``include = "**/*.wav"``); anything else is refused naming both forms.
             if elem is not Any and len(args) == 2 and args[1] is Ellipsis:
                 try:
                     return (_coerce(where, value, elem),)
                 except ConfigError:
-                    pass
+                    one, many = _ELEMENT_NAMES.get(elem, (_type_name(elem), f"{_type_name(elem)} values"))
+                    unit = _UNITS.get(where.rsplit("_", 1)[-1])
+                    unit = f" ({unit})" if unit else ""
+                    raise ConfigError(f"{where}: expected {one}{unit} or a list of {many}{unit}, "
+                                      f"got {value!r}") from None
             raise ConfigError(f"{where}: expected a list, got {value!r}")
         return tuple(_coerce(f"{where}[{i}]", v, elem) for i, v in enumerate(value))
     if tp is float:
