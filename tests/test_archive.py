@@ -227,6 +227,31 @@ def test_no_pattern_uses_format_start_time_or_own_stream(tmp_path):
     assert bad == [] and ("site/a.zarr", "site/b.zarr") in [s.relpaths for s in segs]
 
 
+def test_files_with_no_start_time_to_order_them_by_are_noted_once(tmp_path):
+    # Three contiguous-looking files with neither a name pattern, a manifest nor a start
+    # time of their own: each is a stream and segment of its own (rule 4 of discovery), and
+    # one note (not one per file) names them and the settings that would join them. A file
+    # with a stored start time (a Broadcast WAVE bext chunk, EBU Tech 3285) is not in it.
+    root = tmp_path / "archive"
+    for k in range(3):
+        npy(root, f"deck/part{k}.npy", 50, seed=k)
+    wav(root, "field/bw.wav", 400)
+    add_bext(root / "field/bw.wav", "2024-05-02", "06:30:00")
+    disc = discover(job(tmp_path, include=("**/*.npy", "**/*.wav"), sample_rate_hz=10.0))
+    assert {e.stream for e in disc.files} == {"deck/part0.npy", "deck/part1.npy", "deck/part2.npy", "field"}
+    notes = [w for w in disc.warnings if "no start time" in w]
+    assert len(notes) == 1, disc.warnings
+    assert notes[0].startswith("3 files have no start time (deck/part0.npy, deck/part1.npy, deck/part2.npy)")
+    assert "field/bw.wav" not in notes[0]
+    assert "[archive] name_pattern" in notes[0] and "[archive] manifest" in notes[0]
+    assert "a stream and a segment of its own" in notes[0]
+    # one such file alone, or a name pattern configured (it names the streams): no note
+    alone = discover(job(tmp_path, include=("deck/part0.npy", "**/*.wav"), sample_rate_hz=10.0))
+    assert not [w for w in alone.warnings if "no start time" in w], alone.warnings
+    named = discover(job(tmp_path, include=("**/*.npy",), name_pattern="{stream}/part{*}", sample_rate_hz=10.0))
+    assert not [w for w in named.warnings if "no start time" in w], named.warnings
+
+
 # -- include / exclude and the output store --------------------------------------------
 
 

@@ -143,7 +143,7 @@ import functools
 import os
 import re
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path, PurePosixPath
@@ -1085,6 +1085,26 @@ def _check_end_time(start: _dt.datetime | None, info: Any) -> None:
         ) from None
 
 
+UNORDERED_NAMED = 3
+"""Files the note of :func:`_unordered_note` names (the rest are counted)."""
+
+
+def _unordered_note(entries: Sequence[FileEntry]) -> list[str]:
+    """One note when several files are each a stream and a segment of their own for want of
+    a start time (rule 4 of "Stream and start time": no name pattern, no manifest, none
+    stored in the file); none otherwise."""
+    alone = [e.relpath for e in entries if e.start_time is None and e.stream == e.relpath]
+    if len(alone) < 2:
+        return []
+    named = ", ".join(alone[:UNORDERED_NAMED]) + (f" and {len(alone) - UNORDERED_NAMED} more"
+                                                  if len(alone) > UNORDERED_NAMED else "")
+    return [f"{len(alone)} files have no start time ({named}): [archive] name_pattern and manifest are not set and "
+            "the files store none, so each is a stream and a segment of its own, filtered alone with edge zones at "
+            "both of its ends; to join files that follow each other without a gap into one segment, set [archive] "
+            "name_pattern (e.g. \"{stream}/{stream}_{start:%Y%m%dT%H%M%S}\") or [archive] manifest so that each "
+            "file's stream and start time are known"]
+
+
 def _split_duplicates(entries: list[FileEntry]) -> tuple[list[FileEntry], list[InvalidFile]]:
     """Keep the first file (by path) of each (stream, start time); report the others."""
     first: dict[tuple[str, _dt.datetime], str] = {}
@@ -1451,6 +1471,8 @@ def discover(
             continue
         warnings.extend(notes)
         entries.append(entry)
+    if pattern is None and manifest is None:
+        warnings += _unordered_note(entries)
     valid, dups = _split_duplicates(entries)
     invalid.extend(dups)
     valid, clashes = _split_name_clashes(valid, owners)
