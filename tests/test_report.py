@@ -455,6 +455,26 @@ def test_the_summaries_count_the_inputs_left_out_in_their_first_lines(demo_repor
     assert status["totals"]["inputs_left_out"] == 1 and status["totals"]["inputs_failed"] == 0
 
 
+def test_the_status_tables_figure_columns_give_their_units(demo_report: tuple[str, dict]) -> None:
+    # Every column of figures names its unit (dB, degrees, a ratio, samples); the seam
+    # mismatch is relative to the segment's input peak (twinpass.core.checks.seam_mismatch)
+    # and the edge zone counts the file's samples at its start and end (the output's
+    # edge_zone_samples attribute), which the line under the table says.
+    from twinpass.status import format_status
+
+    page, status = demo_report
+    lines = format_status(status).splitlines()
+    header = next(line for line in lines if line.startswith("FILE"))
+    for column in ("PB DEV dB", "PHASE deg", "STOP dB", "SEAM rel", "EDGE ZONE samples"):
+        assert column in header, header
+    legend = next(line for line in lines if line.strip().startswith("(SEAM: "))
+    assert "relative to the segment's input peak" in legend and "EDGE ZONE: samples" in legend, legend
+    zones = {f["name"]: f["edge_zone_samples"] for f in status["files"]}
+    row = next(line for line in lines if line.strip().startswith(next(iter(zones)) + " "))
+    first = next(iter(zones.values()))
+    assert f"{first[0]}/{first[1]}" in row.split(), row
+
+
 def test_report_lists_are_capped_and_escaped(tmp_path: Path) -> None:
     # Huge archives: each list shows report.LISTED entries and counts the rest; entries are
     # text, escaped as HTML (reference: html.escape of the standard library).

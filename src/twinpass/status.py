@@ -304,9 +304,16 @@ def _labels_text(files: list[dict[str, Any]]) -> str:
     return ": " + ", ".join(parts)
 
 
+COLUMNS_EXPLAINED = ("SEAM: the largest mismatch where neighbouring blocks overlap, relative to the segment's input "
+                     "peak; EDGE ZONE: samples at the file's start / end within one effective filter length of its "
+                     "segment's ends, where the output depends on the end extension")
+"""What the status table's SEAM and EDGE ZONE columns hold, said under the table."""
+
+
 def format_status(status: dict[str, Any]) -> str:
     """The status as a plain-text table grouped by stream."""
-    header = ("FILE", "BLOCKS", "FAILED", "CHECKS", "PB DEV dB", "PHASE deg", "STOP dB", "SEAM", "EDGE ZONE", "COMPLETE")
+    header = ("FILE", "BLOCKS", "FAILED", "CHECKS", "PB DEV dB", "PHASE deg", "STOP dB", "SEAM rel",
+              "EDGE ZONE samples", "COMPLETE")
     lines = [f"store: {status['store']}"]
     by_stream: dict[str, list[dict[str, Any]]] = {}
     for f in status["files"]:
@@ -330,6 +337,8 @@ def format_status(status: dict[str, Any]) -> str:
     lines.append(line(header))
     for r in rows:
         lines.append(r if isinstance(r, str) else "  " + line(r))
+    if rows:
+        lines.append(f"  ({COLUMNS_EXPLAINED})")
     t = status["totals"]
     lines.append(f"files: {t['files']} ({t['complete']} complete, {t['incomplete']} incomplete); "
                  + inputs_left_out_text(t) + "; "
