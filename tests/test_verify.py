@@ -17,7 +17,7 @@ from conftest import make_signal, write_config, write_stream
 from twinpass.config import load_config
 from twinpass.io.store import OutputStore
 from twinpass.job import run_job
-from twinpass.status import collect_status, shortfalls
+from twinpass.status import collect_status, format_status, shortfalls
 from twinpass.verify import FLOAT32_RTOL, verify_store
 
 FS = 200.0
@@ -48,7 +48,10 @@ def test_an_untouched_store_verifies_without_a_false_alarm(tmp_path, output):
     # from the recorded ones by at most a relative 2**-24, inside FLOAT32_RTOL.
     cfg = _filtered(tmp_path, **output)
     st = _status(cfg)
-    assert st["verified"] == {"files": 2, "blocks": 6, "samples": 2 * sum(FRAMES), "damaged": {}}
+    # frames are samples per channel; values count every channel's (2 here)
+    assert st["verified"] == {"files": 2, "blocks": 6, "frames": sum(FRAMES), "values": 2 * sum(FRAMES),
+                              "damaged": {}}
+    assert f"{sum(FRAMES):,} frames ({2 * sum(FRAMES):,} values over all channels) read back" in format_status(st)
     assert not shortfalls(st)
     assert FLOAT32_RTOL < 1e-6
 

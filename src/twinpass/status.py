@@ -381,7 +381,8 @@ def format_status(status: dict[str, Any]) -> str:
     if verified:
         damaged = verified.get("damaged") or {}
         lines.append(f"verified: {verified['files']} complete output(s), {verified['blocks']} block(s), "
-                     f"{verified['samples']:,} samples read back against the levels recorded when written: "
+                     f"{verified['frames']:,} frames ({verified['values']:,} values over all channels) read back "
+                     "against the levels recorded when written: "
                      + (f"{len(damaged)} output(s) do not match" if damaged else "all match"))
         for name, found in sorted(damaged.items())[:LISTED]:
             lines += [f"  {name}: {line}" for line in found]

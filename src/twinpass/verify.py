@@ -54,15 +54,17 @@ class Verification:
     """Outputs read (complete ones with every chunk file present)."""
     blocks: int = 0
     """Blocks compared."""
-    samples: int = 0
-    """Samples read (frames x channels)."""
+    frames: int = 0
+    """Frames read (samples per channel, summed over the outputs)."""
+    values: int = 0
+    """Values read: frames x channels."""
     damaged: dict[str, list[str]] = field(default_factory=dict)
     """Per output array, one line per mismatching block (at most :data:`SHOWN_PER_FILE`,
     then a line with the count of the rest)."""
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready."""
-        return {"files": self.files, "blocks": self.blocks, "samples": self.samples,
+        return {"files": self.files, "blocks": self.blocks, "frames": self.frames, "values": self.values,
                 "damaged": {k: list(v) for k, v in self.damaged.items()}}
 
 
@@ -120,24 +122,25 @@ def _chunk_file_problem(path: Path, decoded: int, compressed: bool) -> str | Non
     return None
 
 
-def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
+def verify_file(store: OutputStore, name: str) -> tuple[int, int, int, list[str]]:
     """Compare each done block of output ``name`` with its recorded levels.
 
     Returns
     -------
-    (blocks, samples, lines)
-        Blocks compared, samples read, and one line per mismatching block naming its
-        frames, the channel and both figures (or the error reading it).
+    (blocks, frames, values, lines)
+        Blocks compared, frames read (samples per channel), values read (frames x
+        channels), and one line per mismatching block naming its frames, the channel and
+        both figures (or the error reading it).
     """
     table = store.read_block_table(name, figures=True, seams=False)
     if table.figures is None:
-        return 0, 0, []
+        return 0, 0, 0, []
     columns = list(table.columns)
     try:
         rms_col, peak_col, clip_col = (columns.index(k) for k in ("rms_out", "peak_out", "clipped"))
     except ValueError:  # a table without level figures: nothing to compare with
-        return 0, 0, []
-    blocks = samples = 0
+        return 0, 0, 0, []
+    blocks = frames = values = 0
     lines: list[str] = []
     files = store.chunk_files(name)
     if files is not None:
@@ -156,7 +159,8 @@ def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
             lines.append(f"{where}: cannot be read ({type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''})")
             continue
         blocks += 1
-        samples += int(data.size)
+        frames += int(data.shape[0])
+        values += int(data.size)
         rtol = FLOAT32_RTOL if data.dtype == np.float32 else FLOAT64_RTOL
         fig = np.asarray(table.figures[i], dtype=np.float64)
         rms, peak = _levels(data)
@@ -171,7 +175,7 @@ def verify_file(store: OutputStore, name: str) -> tuple[int, int, list[str]]:
                 lines.append(f"{where}: stored samples' {label} {stored[c]:.9g} on channel {c}, recorded "
                              f"{fig[c, col]:.9g} when written")
                 break
-    return blocks, samples, lines
+    return blocks, frames, values, lines
 
 
 def verify_store(store: OutputStore, files: Iterable[dict[str, Any]],
@@ -187,12 +191,13 @@ def verify_store(store: OutputStore, files: Iterable[dict[str, Any]],
         if progress is not None:
             progress(name)
         try:
-            blocks, samples, lines = verify_file(store, name)
+            blocks, frames, values, lines = verify_file(store, name)
         except StoreError as e:
-            blocks, samples, lines = 0, 0, [f"its block table cannot be read: {e}"]
+            blocks, frames, values, lines = 0, 0, 0, [f"its block table cannot be read: {e}"]
         out.files += 1
         out.blocks += blocks
-        out.samples += samples
+        out.frames += frames
+        out.values += values
         if lines:
             shown = lines[:SHOWN_PER_FILE]
             if len(lines) > SHOWN_PER_FILE:
