@@ -527,6 +527,44 @@ def test_a_slow_first_load_of_the_compiled_loops_is_announced(monkeypatch, caplo
     assert COMPILE_NOTICE not in caplog.text
 
 
+def test_files_failed_alike_by_the_configuration_are_said_once_with_what_to_fix(tmp_path, capsys):
+    # block_seconds = 0.0001 at 200 Hz makes blocks of 1 sample, below the shortest block
+    # the checks need (4 Welch segments of 64 samples: common practice), so every file of
+    # both streams fails with one configuration error. The run's summary, the status and
+    # the report say it once, naming the files, without the exception's class name, and
+    # say that rerunning alone does not help.
+    from twinpass import cli
+    from twinpass.io.store import OutputStore
+    from twinpass.report_data import attention_lists
+    from twinpass.status import collect_status, format_status
+
+    deck = write_stream(tmp_path / "archive", "deck", make_signal(4000, 1, FS, seed=1), FS, 2)
+    pier = write_stream(tmp_path / "archive", "pier", make_signal(4000, 1, FS, seed=2), FS, 2)
+    res = run_job(load_config(write_config(tmp_path, processing={"block_seconds": 0.0001})))
+    reasons = res.failure_reasons()
+    assert sorted(reasons) == sorted(deck.relpaths + pier.relpaths) and len(set(reasons.values())) == 1, reasons
+    reason = next(iter(reasons.values()))
+    assert "ConfigError" not in reason and "[processing] block_seconds = 0.0001" in reason, reason
+    from twinpass.errors import CONFIG_FAILED  # what the reason ends with: rerunning alone fails alike
+
+    assert reason.endswith(f"({CONFIG_FAILED})"), reason
+    cli._print_result(res)
+    failed = [line for line in capsys.readouterr().out.splitlines() if line.startswith("failed: ")]
+    assert failed == [f"failed: {', '.join(sorted(reasons)[:3])} and 1 more (4 files): {reason}"], failed
+    status = collect_status(OutputStore.open(str(tmp_path / "out.zarr"), mode="r"))
+    text = format_status(status)
+    assert text.count(reason) == 1 and f"  4 inputs, all for the same reason: {reason}" in text, text
+    assert all(f"\n    {path}\n" in text + "\n" for path in reasons), text
+    assert "once the configuration is fixed): 4" in text, text
+    (title, entries), = [(t, e) for t, e in attention_lists(status) if t.startswith("Inputs that failed")]
+    assert entries == [f"{', '.join(sorted(reasons))} (4 inputs): {reason}"], entries
+    # twinpass's own errors say what and where in their message; another keeps its type's name
+    from twinpass.errors import InputError, failure_text
+
+    assert failure_text(InputError("a.wav: unreadable")) == "a.wav: unreadable"
+    assert failure_text(KeyError("x")) == "KeyError: 'x'"
+
+
 def test_blocks_set_by_hand_beyond_the_memory_budget_fail_their_segment_with_a_remedy(tmp_path):
     # block_seconds is used as given, but a window that cannot fit [processing]
     # memory_budget_mib is refused before anything is written, naming both settings; the

@@ -269,9 +269,7 @@ def _print_result(res: Any) -> None:
     c = res.counts()
     print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
           f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
-    reasons = res.failure_reasons()
-    for f in res.failed:
-        print(f"failed: {f}: {reasons[f]}")
+    _print_failed(res.failure_reasons())
     _print_warned(res.warnings())
     _print_retried(res.retried())
 
@@ -474,6 +472,21 @@ def _without_tracebacks_of(matches: Callable[[object], bool]) -> Iterator[None]:
             lg.removeFilter(strip)
 
 
+FAILED_NAMED = 3
+"""Files one line of the run's summary names for a reason several files failed for (``twinpass
+status`` names them all)."""
+
+
+def _print_failed(reasons: dict[str, str]) -> None:
+    """The run's failed files (path -> reason), one line a reason: ``failed: PATH: REASON``,
+    or the first :data:`FAILED_NAMED` paths and a count of the rest when several failed alike."""
+    from .status import failure_groups, named_list
+
+    for paths, reason in failure_groups(reasons):
+        shown = paths[0] if len(paths) == 1 else f"{named_list(paths, FAILED_NAMED)} ({len(paths)} files)"
+        print(f"failed: {shown}" + (f": {reason}" if reason else ""))
+
+
 WARNED_SHOWN = 10
 """Files with warned blocks the run's summary names, one line each (``twinpass status`` has all)."""
 
@@ -501,8 +514,7 @@ def _print_summary(summary: dict[str, Any]) -> None:
     print(f"complete {c['complete']}, skipped (unchanged) {c['skipped']}, failed {c['failed']}, "
           f"invalid {c['invalid']}; blocks run {c['blocks_run']}")
     reasons = summary.get("failed_reasons") or {}
-    for f in summary.get("failed", []):
-        print(f"failed: {f}" + (f": {reasons[f]}" if reasons.get(f) else ""))
+    _print_failed({f: reasons.get(f) or "" for f in summary.get("failed", [])})
     for f in summary.get("invalid", []):
         print(f"left out (invalid input): {f}")
     _print_warned(summary.get("warned") or {})

@@ -119,3 +119,20 @@ class ReportNotWrittenError(TwinpassError):
 
 class InjectedFault(TwinpassError):
     """Raised by the fault-injection switch (tests only)."""
+
+
+CONFIG_FAILED = "a configuration error: every run fails these files alike until the configuration is fixed"
+"""Said after the message of a :class:`ConfigError` that failed files (a layout no block fits,
+say): running again without changing the configuration fails them the same way."""
+
+
+def failure_text(error: BaseException) -> str:
+    """How ``error`` is recorded as the reason files failed: twinpass's own errors by their
+    message, which names the place and what to do (a :class:`ConfigError` followed by
+    :data:`CONFIG_FAILED`); any other with its type's name, which the message alone may not
+    make clear (``KeyError: 'x'``)."""
+    if isinstance(error, ConfigError):
+        return f"{error} ({CONFIG_FAILED})"
+    if isinstance(error, TwinpassError):
+        return str(error)
+    return f"{type(error).__name__}: {error}"

@@ -77,7 +77,7 @@ from .engine import (
     with_check_failures,
 )
 from .errors import (BlockFailedError, ChecksFailedError, ConfigError, FlowRunCancelledError, RunStoppedError,
-                     TwinpassError)
+                     TwinpassError, failure_text)
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
@@ -963,8 +963,7 @@ def _filter_segments(busy: list[SegmentWork], prep: Prepared, store: OutputStore
                 outs = with_check_failures(tally.with_blocks(w.segment_id, _outcomes_from_store(store, w)), w, store,
                                            prep.designs[w.sample_rate_hz], cfg)
                 # A file with no error or check failure of its own failed with its task: say why.
-                why = (f"{type(value).__name__}: {value}" if isinstance(value, BaseException)
-                       else state.message or state.name)
+                why = failure_text(value) if isinstance(value, BaseException) else state.message or state.name
                 outs = [dataclasses.replace(o, errors={-1: why}) if o.status == "failed" and not any(o.errors.values())
                         and o.check_failures is None else o for o in outs]
                 bad = [o.relpath for o in outs if o.status == "failed"]

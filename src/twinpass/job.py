@@ -34,7 +34,7 @@ from .engine import (
     run_segment,
     segment_notes,
 )
-from .errors import ArchiveError, RunNotRecordedError, SpecError, TwinpassError
+from .errors import ArchiveError, RunNotRecordedError, SpecError, TwinpassError, failure_text
 from .io.archive import Discovery, check_archive_root, discover, output_name
 from .io.channels import LABEL_ATTRS
 from .io.store import OutputStore
@@ -541,7 +541,7 @@ def finish_interrupted_run(store: OutputStore, result: RunResult, cfg: JobConfig
 
 def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None]) -> list[FileOutcome]:
     """Outcomes of a segment whose driver raised: its files with work failed, naming the error."""
-    msg = f"{type(exc).__name__}: {exc}"
+    msg = failure_text(exc)
     if not isinstance(exc, TwinpassError):
         msg += "\n" + "".join(traceback.format_exception(exc, limit=6))
     say(f"segment {w.segment_id} failed: {msg.splitlines()[0]}")

@@ -20,8 +20,8 @@ from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
 from .report import DEFAULT_CAUTIONS, largest_excursion, render_report
-from .status import (collect_status, design_limits, error_groups, parse_spec, root_spec, run_checks, stored_design,
-                     usable_filter)
+from .status import (LISTED, collect_status, design_limits, error_groups, failure_groups, named_list, parse_spec,
+                     root_spec, run_checks, stored_design, usable_filter)
 
 OVERLAY_SECONDS = 4.0
 """Width of the before/after overlay around the largest transient (s)."""
@@ -328,7 +328,9 @@ def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
     return [
         ("Inputs left out by the last run (invalid input; an output made earlier is kept as it was)",
          [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
-        ("Inputs that failed in the last run", [f"{k}: {v}" for k, v in sorted(failed.items())]),
+        ("Inputs that failed in the last run, by reason",
+         [f"{paths[0] if len(paths) == 1 else named_list(paths, LISTED) + f' ({len(paths)} inputs)'}: {reason}"
+          for paths, reason in failure_groups(failed)]),
         ("Blocks that failed (the next run tries them again)",
          [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]
          + [f"{k} {line}" for k, v in sorted((status.get("failed_blocks") or {}).items()) for line in v["blocks"]]),

@@ -8,7 +8,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from pathlib import Path
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any, cast
 
 import numpy as np
@@ -18,7 +18,7 @@ from .core import checks as _checks
 from .core.types import UNRECORDED_KIND, Design, ResponseSpec
 from .core.blocks import block_list
 from .core.failures import SHOWN
-from .errors import StoreError, TwinpassError
+from .errors import CONFIG_FAILED, StoreError, TwinpassError
 from .io.store_input import gone_since
 from .io.store_util import RESERVED_PREFIX as RESERVED
 from .io.store import OutputStore
@@ -238,15 +238,30 @@ RETRIED_SHOWN = 3
 """Files :func:`retried_line` names (the rest are counted)."""
 
 
+def named_list(items: Sequence[str], shown: int, noun: str = "") -> str:
+    """The first ``shown`` of ``items`` and a count of the rest: ``"a, b, c and 5 more"``
+    (``noun``, e.g. ``" file(s)"``, follows the count)."""
+    more = len(items) - shown
+    return ", ".join(items[:shown]) + (f" and {more} more{noun}" if more > 0 else "")
+
+
+def failure_groups(failed: Mapping[str, str]) -> list[tuple[list[str], str]]:
+    """Failed inputs (path -> reason) failed for the same reason together: ``[(paths,
+    reason)]``, paths sorted, each group where its first path comes. One configuration
+    error fails every file of a segment, often of every segment, alike."""
+    alike: dict[str, list[str]] = {}
+    for path, reason in sorted(failed.items()):
+        alike.setdefault(reason, []).append(path)
+    return [(paths, reason) for reason, paths in alike.items()]
+
+
 def retried_line(retried: Mapping[str, int]) -> str:
     """One line for the blocks done only after a failed attempt (``retried``: blocks by
     source path, :meth:`twinpass.job.RunResult.retried`); "" when there were none."""
     n = sum(int(v) for v in retried.values())
     if not n:
         return ""
-    named = sorted(retried)[:RETRIED_SHOWN]
-    more = len(retried) - len(named)
-    files = ", ".join(named) + (f" and {more} more file(s)" if more > 0 else "")
+    files = named_list(sorted(retried), RETRIED_SHOWN, " file(s)")
     return f"{n} block(s) succeeded only after a retry: their input may be on a flaky mount (in {files})"
 
 
@@ -287,6 +302,23 @@ def _block_lines(failed: Mapping[str, Any] | None) -> str:
     more = (f"\n    ... and {len(blocks) - LISTED} more (twinpass status --json lists them all)"
             if len(blocks) > LISTED else "")
     return "".join(f"\n    {b}" for b in blocks[:LISTED]) + more
+
+
+def _failed_entries(failed: Mapping[str, str], failed_blocks: Mapping[str, Any]) -> list[str]:
+    """The status lines of the inputs the last run failed: ``path: reason`` (with the file's
+    failed blocks below it), and for a reason several inputs failed for, the reason once
+    with the inputs below it (the first :data:`LISTED`, then a count of the rest)."""
+    out = []
+    for paths, reason in failure_groups(failed):
+        if len(paths) == 1:
+            out.append(f"{paths[0]}: {reason}" + _block_lines(failed_blocks.get(paths[0])))
+            continue
+        more = (f"\n    ... and {len(paths) - LISTED} more (twinpass status --json lists them all)"
+                if len(paths) > LISTED else "")
+        out.append(f"{len(paths)} inputs, all for the same reason: {reason}"
+                   + "".join(f"\n    {p}" + _block_lines(failed_blocks.get(p)).replace("\n    ", "\n      ")
+                             for p in paths[:LISTED]) + more)
+    return out
 
 
 def _labels_text(files: list[dict[str, Any]]) -> str:
@@ -392,17 +424,18 @@ def format_status(status: dict[str, Any]) -> str:
             lines.append(f"  what to do: {REMEDY}")
     failed_blocks = status.get("failed_blocks") or {}
     since = {str(f["source"]): f.get("input_gone_since") for f in status["files"]}
-    for title, entries in (("failed at the last run (the next run tries them again)",
-                            [f"{k}: {v}" + _block_lines(failed_blocks.get(k))
-                             for k, v in sorted((status.get("failed_inputs") or {}).items())]),
-                           ("left out by the last run (invalid input; an output made earlier is kept as it was)",
-                            [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
-                           ("outputs whose input is no longer in the archive (kept as they were, marked "
-                            "input_gone: a later job reading this store leaves them out)",
-                            [_gone_line(src, since) for src in status.get("gone") or []]),
-                           ("notes of the last run", list(status.get("notes") or []))):
+    failed = status.get("failed_inputs") or {}
+    rerun = ("the next run tries them again" + ("; where a configuration error is the cause, once the configuration "
+                                                "is fixed" if any(CONFIG_FAILED in v for v in failed.values()) else ""))
+    for title, count, entries in ((f"failed at the last run ({rerun})", len(failed), _failed_entries(failed, failed_blocks)),
+                                  ("left out by the last run (invalid input; an output made earlier is kept as it was)",
+                                   None, [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
+                                  ("outputs whose input is no longer in the archive (kept as they were, marked "
+                                   "input_gone: a later job reading this store leaves them out)",
+                                   None, [_gone_line(src, since) for src in status.get("gone") or []]),
+                                  ("notes of the last run", None, list(status.get("notes") or []))):
         if entries:
-            lines.append(f"{title}: {len(entries)}")
+            lines.append(f"{title}: {len(entries) if count is None else count}")
             lines += [f"  {e}" for e in entries[:LISTED]]
             if len(entries) > LISTED:
                 lines.append(f"  ... and {len(entries) - LISTED} more (twinpass status --json lists them all)")
