@@ -40,6 +40,11 @@ def _window_bytes(layout: Layout, channels: int) -> int:
     return (layout.block_samples + 2 * layout.halo) * channels * BYTES_PER_WINDOW_SAMPLE
 
 
+def _samples(n: int) -> str:
+    """``n`` samples as English says them (singular for one)."""
+    return f"{n} sample" if n == 1 else f"{n} samples"
+
+
 def _layout_or_error(**kw) -> Layout | None:
     try:
         return choose_layout(sample_rate_hz=FS, **kw)
@@ -200,7 +205,7 @@ def test_blocks_set_by_hand_below_the_shortest_block_are_refused_with_the_shorte
         choose_layout(block_seconds=block_seconds, **kw)
     message = str(err.value)
     assert message.startswith(f"job.toml: [processing] block_seconds = {block_seconds:g} makes blocks of "
-                              f"{max(1, round(block_seconds * rate))} samples"), message
+                              f"{_samples(max(1, round(block_seconds * rate)))} at"), message
     found = re.search(r"set block_seconds to at least ([0-9.e+-]+) s \((\d+) samples\)", message)
     assert found and int(found[2]) == floor, message
     # the value named (rounded up to 4 significant digits) works; one sample less does not
@@ -223,8 +228,8 @@ def test_chunks_below_the_shortest_chunk_are_refused_with_the_shortest_that_work
     with pytest.raises(ConfigError) as err:
         choose_layout(chunk_seconds=chunk_seconds, **kw)
     message = str(err.value)
-    assert message.startswith(f"job.toml: [output] chunk_seconds = {chunk_seconds:g} makes chunks of {chunk} "
-                              "samples"), message
+    assert message.startswith(f"job.toml: [output] chunk_seconds = {chunk_seconds:g} makes chunks of "
+                              f"{_samples(chunk)} at"), message
     shortest = float(re.search(r"set chunk_seconds to at least ([0-9.e+-]+) s", message)[1])
     assert choose_layout(chunk_seconds=shortest, **kw).chunk_samples >= CHUNK_FLOOR_SAMPLES
     with pytest.raises(ConfigError):
@@ -265,3 +270,15 @@ def test_chunks_that_round_blocks_below_the_shortest_block_are_refused_with_chun
     for chunk_seconds in (float(found[1]), float(found[2])):
         layout = choose_layout(chunk_seconds=chunk_seconds, **kw)
         assert layout.block_samples >= 256 and _window_bytes(layout, 2) <= 0.025 * 2**20
+
+
+@pytest.mark.parametrize("block_seconds, chunk_seconds, said", [
+    (0.001, None, "makes blocks of 1 sample at 1000 Hz"),   # 0.001 s x 1000 Hz = 1 sample
+    (0.002, None, "makes blocks of 2 samples at 1000 Hz"),
+    (None, 0.001, "makes chunks of 1 sample at 1000 Hz"),
+])
+def test_a_refused_length_of_one_sample_is_said_in_the_singular(block_seconds, chunk_seconds, said):
+    with pytest.raises(ConfigError) as err:
+        choose_layout(sample_rate_hz=FS, channels=1, halo=0, block_seconds=block_seconds,
+                      chunk_seconds=chunk_seconds, memory_budget_mib=16.0)
+    assert said in str(err.value) and " 1 samples" not in str(err.value), str(err.value)

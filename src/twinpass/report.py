@@ -34,6 +34,7 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 from scipy import signal
 
+from twinpass.core.blocks import samples_text
 from twinpass.core.checks import LIMITS_EXPLAINED, STATUS_NAMES
 from twinpass.core.design import HALF_AMPLITUDE_DB, HALF_POWER_DB, overall_response, per_pass_response
 from twinpass.core.design import _bands as _spec_bands
@@ -469,7 +470,7 @@ def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
     lag = _lag_of_peak(before, after)
     if lag is not None and t.size > 1:
         dt = float(np.median(np.diff(t)))
-        caption += (f"Cross-correlation of output against input peaks at a lag of {lag} samples "
+        caption += (f"Cross-correlation of output against input peaks at a lag of {samples_text(lag)} "
                     f"({lag * dt:.3g} s)" + (": no time shift." if lag == 0 else "."))
     ax.set_title(f"Before and after around the largest transient\n{entry.get('file', '')}", fontsize=10)
     ax.set_xlabel("Time (s)")

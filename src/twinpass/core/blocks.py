@@ -82,6 +82,11 @@ def shortest_block(seam_samples: int = 0, response_checks: bool = False) -> tupl
     return max(needs, key=lambda need: need[0])
 
 
+def samples_text(n: int) -> str:
+    """``n`` samples in words, singular for one: ``"1 sample"``, ``"400 samples"``."""
+    return f"{n} sample" if abs(n) == 1 else f"{n} samples"
+
+
 def _rounded(value: float, up: bool = True) -> str:
     """``value`` (> 0) rounded up (or down) to 4 significant digits, as text: a lower (upper)
     limit stated this way is one that works."""
@@ -181,15 +186,15 @@ def choose_layout(
         """The error for a budget whose longest block core (``longest`` samples) is below the
         floor; ``remedy`` is one more remedy."""
         return ConfigError(
-            f"{at}[processing] memory_budget_mib = {memory_budget_mib:g} fits blocks of at most {longest} "
-            f"samples{made} {halos}, below the shortest block of {floor} samples at {sample_rate_hz:g} Hz "
+            f"{at}[processing] memory_budget_mib = {memory_budget_mib:g} fits blocks of at most "
+            f"{samples_text(longest)}{made} {halos}, below the shortest block of {floor} samples at {sample_rate_hz:g} Hz "
             f"({floor_why}): raise memory_budget_mib to at least {budget_for(whole)} MiB"
             + (f" or {CARRY_REMEDY}" if carry and halo else "") + remedy
         )
 
     if chunk is not None and chunk < CHUNK_FLOOR_SAMPLES:
         raise ConfigError(
-            f"{at}[output] chunk_seconds = {chunk_seconds:g} makes chunks of {chunk} samples at {sample_rate_hz:g} "
+            f"{at}[output] chunk_seconds = {chunk_seconds:g} makes chunks of {samples_text(chunk)} at {sample_rate_hz:g} "
             f"Hz, below the shortest chunk of {CHUNK_FLOOR_SAMPLES} samples (each chunk is a file of its own): "
             f"set chunk_seconds to at least {_rounded(CHUNK_FLOOR_SAMPLES / sample_rate_hz)} s, or leave it out "
             "for one chunk per block"
@@ -198,13 +203,13 @@ def choose_layout(
         block = max(1, int(round(block_seconds * sample_rate_hz)))
         if block < floor:
             raise ConfigError(
-                f"{at}[processing] block_seconds = {block_seconds:g} makes blocks of {block} samples at "
+                f"{at}[processing] block_seconds = {block_seconds:g} makes blocks of {samples_text(block)} at "
                 f"{sample_rate_hz:g} Hz, below the shortest block of {floor} samples ({floor_why}): set "
                 f"block_seconds to at least {_rounded(floor / sample_rate_hz)} s ({floor} samples), "
                 "or leave it out for automatic blocks"
             )
         if block > cap:
-            raise too_long("[processing] block_seconds", block_seconds, block, f"blocks of {block} samples")
+            raise too_long("[processing] block_seconds", block_seconds, block, f"blocks of {samples_text(block)}")
     elif cap <= 0 and halo:
         raise ConfigError(
             f"{at}{halos}, the halos alone need about {2 * halo * per_sample / 2**20:.3g} MiB, above [processing] "
@@ -219,13 +224,13 @@ def choose_layout(
         return Layout(block_samples=block, chunk_samples=block, halo=halo, balanced=block_seconds is None)
     if chunk > cap:  # blocks are whole chunks
         raise too_long("[output] chunk_seconds", chunk_seconds, chunk,
-                       f"chunks of {chunk} samples, and blocks of whole chunks")
+                       f"chunks of {samples_text(chunk)}, and blocks of whole chunks")
     up = -(-block // chunk) * chunk
     block = up if up <= cap else cap // chunk * chunk
     if block < floor:  # rounded down to whole chunks of [output] chunk_seconds; cap >= floor here
         # a chunk of floor to cap samples makes blocks of at least one chunk within the budget
         raise budget_too_small(
-            block, f" in whole chunks of {chunk} samples ([output] chunk_seconds = {chunk_seconds:g})",
+            block, f" in whole chunks of {samples_text(chunk)} ([output] chunk_seconds = {chunk_seconds:g})",
             f" or set chunk_seconds from {_rounded(floor / sample_rate_hz)} to "
             f"{_rounded(cap / sample_rate_hz, up=False)} s",
         )

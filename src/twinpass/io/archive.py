@@ -158,6 +158,7 @@ from twinpass.core.nonfinite import (
     join_channel_runs,
     union_runs,
 )
+from twinpass.core.blocks import samples_text
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.channels import LabelMismatch, labels_for
@@ -846,8 +847,8 @@ def _runs_summary(runs: list[ChannelRun]) -> str:
         return f"NaN/Inf at {describe_run(first)}"
     return (
         f"NaN/Inf at {describe_run(first)} and in {len(runs) - 1} more run(s) "
-        f"({len(union)} span(s) of samples, {sum(b - a for a, b in union)} samples in all; "
-        f"the longest run of one channel is {longest} samples)"
+        f"({len(union)} span(s) of samples, {samples_text(sum(b - a for a, b in union))} in all; "
+        f"the longest run of one channel is {samples_text(longest)})"
     )
 
 
