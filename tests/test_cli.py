@@ -626,3 +626,49 @@ def test_without_a_terminal_progress_is_a_line_now_and_then_and_the_final_count_
     bar.close()
     bar.close()  # nothing more
     assert term.text == "blocks 1/3\nblocks 3/3\n", term.text
+
+
+def test_the_progress_bar_says_its_total_is_so_far_until_every_segment_has_counted_its_blocks(monkeypatch):
+    # A segment counts its blocks once its files are prepared, so the total grows: told the
+    # segments to come, the bar calls its total the total so far while any has not counted
+    # its blocks, and the line that no longer says so erases the longer one (ECMA-48 EL).
+    from twinpass import cli
+
+    term = _Terminal(tty=True)
+    monkeypatch.setattr(sys, "stderr", term)
+    bar = cli._ProgressBar()
+    bar.expect(["a", "b"])
+    bar("a", 1, 2, None)
+    bar("b", 1, 1, None)
+    bar.close()
+    assert term.text == ("\rblocks [###############...............] 1/2 so far, 1 more segment(s) to come"
+                         "\r\x1b[K\rblocks [####################..........] 2/3"
+                         "\rblocks [####################..........] 2/3\n"), term.text
+    term = _Terminal(tty=False)
+    monkeypatch.setattr(sys, "stderr", term)
+    bar = cli._ProgressBar()
+    bar.expect(["a", "b"])
+    bar("a", 1, 2, None)
+    bar.close()  # "b" never counted its blocks (its segment failed first): the last line is the count alone
+    assert term.text == "blocks 1/2 so far, 1 more segment(s) to come\nblocks 1/2\n", term.text
+
+
+def test_a_run_tells_the_progress_bar_the_segments_to_come(tmp_path, monkeypatch):
+    # Two streams, two segments with blocks: at the first block only its own segment has
+    # counted its blocks, so the first line says one more segment is to come; the last
+    # gives the blocks the run ran, all of them.
+    from twinpass import cli
+    from twinpass.config import load_config
+    from twinpass.job import run_job
+
+    for seed, stream in enumerate(("deck", "pier")):
+        write_stream(tmp_path / "archive", stream, make_signal(4000, 1, 200.0, seed=seed), 200.0, 2)
+    term = _Terminal(tty=False)
+    monkeypatch.setattr(sys, "stderr", term)
+    bar = cli._ProgressBar()
+    res = run_job(load_config(write_config(tmp_path)), on_block=bar)
+    bar.close()
+    lines = term.text.splitlines()
+    assert lines[0].startswith("blocks 1/") and lines[0].endswith(" so far, 1 more segment(s) to come"), lines
+    n = res.counts()["blocks_run"]
+    assert lines[-1] == f"blocks {n}/{n}", lines

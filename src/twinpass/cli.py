@@ -23,7 +23,7 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterator, Sequence
+from typing import Any, Callable, Iterable, Iterator, Sequence
 
 from . import __version__
 from .errors import ConfigError, ReportNotWrittenError, RunNotRecordedError, TwinpassError
@@ -40,9 +40,11 @@ def _eprint(*a: Any) -> None:
 class _ProgressBar:
     """A one-line terminal progress bar for blocks (stderr; plain lines when not a TTY).
 
-    Called from the segments' driver threads as blocks are recorded. The total grows as
-    segments report theirs, so the bar's line is ended by :meth:`close` (after the run),
-    not when the blocks seen so far are all done. While :meth:`over_logs` is active, a log
+    Called from the segments' driver threads as blocks are recorded. A segment's total is
+    known once its files are prepared, so the total grows as segments report theirs: told
+    the segments to come (:meth:`expect`), the bar says its total is the total so far until
+    each has reported (``blocks 1/6 so far, 3 more segment(s) to come``). Its line is ended
+    by :meth:`close` (after the run), not when the blocks seen so far are all done. While :meth:`over_logs` is active, a log
     record (Prefect's, twinpass's) first clears the bar's line, so that the log line starts
     on a line of its own; the next block draws the bar again below it. Without a TTY it
     prints a line at most every 5 s, and the final count on :meth:`close`.
@@ -51,6 +53,8 @@ class _ProgressBar:
     def __init__(self) -> None:
         self.total: dict[str, int] = {}
         self.seen: dict[str, int] = {}
+        self.expected: set[str] = set()
+        self._after = ""  # the text drawn after the count on the bar's line, if any
         self.tty = sys.stderr.isatty()
         self._last = 0.0
         self._shown: tuple[int, int] | None = None
@@ -65,17 +69,30 @@ class _ProgressBar:
             if not self.tty:
                 if now - self._last > 5:
                     self._last = now
-                    self._shown = (d, t)
-                    _eprint(f"blocks {d}/{t}")
+                    self._shown, self._after = (d, t), self._to_come()
+                    _eprint(f"blocks {d}/{t}{self._after}")
                 return
-            self._draw(d, t)
+            self._draw(d, t, self._to_come())
             self._shown = (d, t)
 
-    @staticmethod
-    def _draw(done: int, total: int, end: str = "") -> None:
+    def expect(self, segments: Iterable[str]) -> None:
+        """The segments whose blocks are to run (their ids): until each has reported its
+        total, the total shown is the total so far, and the bar says so."""
+        with self._lock:
+            self.expected = set(segments)
+
+    def _to_come(self) -> str:
+        """What follows the count while expected segments have not reported their totals."""
+        pending = len(self.expected - set(self.total))
+        return f" so far, {pending} more segment(s) to come" if pending else ""
+
+    def _draw(self, done: int, total: int, after: str = "", end: str = "") -> None:
         width = 30
         fill = int(width * done / max(total, 1))
-        sys.stderr.write(f"\rblocks [{'#' * fill}{'.' * (width - fill)}] {done}/{total}{end}")
+        # After a line with ``after`` text, a shorter one first erases it ("\r" + ECMA-48 EL)
+        erase = "\r\033[K" if self._after and not after else ""
+        self._after = after
+        sys.stderr.write(f"{erase}\rblocks [{'#' * fill}{'.' * (width - fill)}] {done}/{total}{after}{end}")
         sys.stderr.flush()
 
     def clear_line(self) -> None:
@@ -85,6 +102,7 @@ class _ProgressBar:
                 sys.stderr.write("\r\033[K")
                 sys.stderr.flush()
                 self._shown = None
+                self._after = ""
 
     @contextlib.contextmanager
     def over_logs(self) -> Iterator[None]:
@@ -116,14 +134,16 @@ class _ProgressBar:
             d, t = sum(self.seen.values()), sum(self.total.values())
             if self.tty:
                 if count:
-                    self._draw(d, t, "\n")
+                    self._draw(d, t, end="\n")
                 elif self._shown is not None:
                     sys.stderr.write("\n")
                     sys.stderr.flush()
-            elif count and self._shown != (d, t):
+            elif count and (self._shown != (d, t) or self._after):
                 _eprint(f"blocks {d}/{t}")
             self.seen.clear()
             self.total.clear()
+            self.expected = set()
+            self._after = ""
             self._shown = None
 
 

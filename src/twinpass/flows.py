@@ -81,8 +81,8 @@ from .errors import (BlockFailedError, ChecksFailedError, ConfigError, FlowRunCa
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
-from .job import (Prepared, RunResult, RunTally, begin_run, finish_interrupted_run, finish_run, now_iso,
-                  open_run_store, prepare)
+from .job import (Prepared, RunResult, RunTally, begin_run, expect_segments, finish_interrupted_run, finish_run,
+                  now_iso, open_run_store, prepare)
 from .server_cancel import CancelWatch, cancel_watch
 from .status import retried_line
 
@@ -228,7 +228,8 @@ end). Each update costs the Prefect server about 12 ms of CPU, the run's own cor
 server is local: at one a second, four segments running together cost about 0.5 s per 10 s."""
 
 TERMINAL_PROGRESS: Any = None
-"""Optional ``callable(segment_id, done, total, result)`` the CLI sets for a terminal progress bar."""
+"""Optional ``callable(segment_id, done, total, result)`` the CLI sets for a terminal progress bar
+(told the segments to run first, when it has an ``expect`` method: :func:`twinpass.job.expect_segments`)."""
 
 
 _EARLY: ClientStart | None = None
@@ -784,6 +785,7 @@ def _archive_run(config_path: str | None, force: bool, scheduler: str | None, wo
         for note in prep.plan.notes:
             logger.warning("note: %s", note)
         busy = [w for w in prep.work if w.has_work]
+        expect_segments(TERMINAL_PROGRESS, busy)
         if head is not None:
             start = head.client_start
         elif busy:  # the cluster starts on its own thread while the design task and the run's records go

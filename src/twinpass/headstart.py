@@ -42,7 +42,8 @@ from .config import JobConfig, check_run_overrides
 from .engine import BlockErrorLog, CancellableClient, ClientStart, FileOutcome, ProgressFn, SegmentWork, run_segment
 from .errors import RunStoppedError
 from .io.store import OutputStore
-from .job import Prepared, RunTally, begin_run, finish_interrupted_run, now_iso, open_run_store, prepare
+from .job import (Prepared, RunTally, begin_run, expect_segments, finish_interrupted_run, now_iso, open_run_store,
+                  prepare)
 
 log = logging.getLogger(__name__)
 
@@ -217,6 +218,7 @@ class HeadStart:
                        ClientStart(scheduler, workers) if busy else None)
             held.callback(head.close)  # runs before the lock is released
             begin_run(store, prep)
+            expect_segments(watch, busy)
             try:
                 if head.client_start is not None:
                     head._client = CancellableClient(head.client_start.client())

@@ -550,6 +550,15 @@ def segment_failed(w: SegmentWork, exc: BaseException, say: Callable[[str], None
             for f in w.files]
 
 
+def expect_segments(progress: Any, busy: list[SegmentWork]) -> None:
+    """Tell ``progress`` (a block callback) the segments whose blocks are about to run, when it
+    has an ``expect(segment_ids)`` method (the terminal's progress bar does): it then knows
+    which segments have not reported their block totals yet."""
+    expect = getattr(progress, "expect", None)
+    if expect is not None:
+        expect([w.segment_id for w in busy])
+
+
 def _stop_drivers(pool: ThreadPoolExecutor, drivers: list[Future[Any]], client: CancellableClient) -> None:
     """Stop a run's segment drivers: segments not started are dropped, and the blocks of
     those running are cancelled until every driver has returned (each records its
@@ -572,7 +581,8 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
         Override ``[engine] scheduler`` / ``workers`` (see :func:`twinpass.engine.dask_client`).
     on_block : callable, optional
         ``on_block(segment_id, done, total, result)`` after each block (from driver threads,
-        one per segment running).
+        one per segment running); first told the segments to run if it can be
+        (:func:`expect_segments`).
     log_fn : callable, optional
         Receives one-line messages (invalid inputs, clean-up, failed segments).
 
@@ -615,6 +625,7 @@ def run_job(cfg: JobConfig, *, force: bool = False, scheduler: str | None = None
             if not w.has_work:
                 outcomes.extend(FileOutcome(f.relpath, f.array_name, 0, 0, 0, 0, "skipped") for f in w.files)
         tally = RunTally()
+        expect_segments(on_block, busy)
         try:
             _run_busy(busy, prep, cfg, store, outcomes, scheduler, workers, on_block, say, tally)
         except BaseException:  # Ctrl-C: the run is recorded as interrupted, then the interrupt goes on
@@ -663,5 +674,5 @@ def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: Ou
                 raise
 
 
-__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "open_run_store", "prepare", "run_job", "segment_work",
-           "segment_failed", "library_versions", "response_report"]
+__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "expect_segments", "open_run_store", "prepare", "run_job",
+           "segment_work", "segment_failed", "library_versions", "response_report"]
