@@ -573,6 +573,23 @@ def test_the_overlay_draws_the_input_as_recorded_and_says_what_it_removes(tmp_pa
             f"output {np.mean(shown['after']):.4g}, in input units)") in text
 
 
+def test_the_overlays_title_fits_in_its_figure(tmp_path: Path) -> None:
+    # A long file path and the window's description must not run off the image: the title's
+    # extent, as matplotlib's Agg renderer lays it out, lies within the figure's.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    t = np.arange(-400, 400) / 200.0
+    label = ("abutment-west-upper-deck/abutment-west-upper-deck_20260301T020000.wav (channel 2, counted from 0; "
+             "samples 273598-274397; t = 0 at the input's largest excursion from its mean over the window shown)")
+    fig, _ = report._overlay_figure({"file": label, "t": t, "before": np.sin(t), "after": np.sin(t)})
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    title = fig.axes[0].title
+    box = title.get_window_extent(canvas.get_renderer())
+    assert 0 <= box.x0 and box.x1 <= fig.bbox.width and box.y1 <= fig.bbox.height, (box, fig.bbox)
+    assert title.get_text().replace("\n", " ").endswith(label), title.get_text()
+
+
 def test_the_report_says_which_runs_and_library_versions_wrote_the_outputs(tmp_path: Path) -> None:
     # Provenance as the installed packages' metadata gives it (importlib.metadata): the last
     # run, its versions, and outputs whose blocks were written with other versions. The

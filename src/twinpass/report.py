@@ -24,6 +24,7 @@ import io
 import math
 import os
 import tempfile
+import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -445,6 +446,10 @@ def largest_excursion(x: np.ndarray) -> int | None:
     return int(np.argmax(np.where(finite, np.abs(x - _window_mean(x)), -np.inf)))
 
 
+OVERLAY_TITLE_CHARS = 120
+"""Characters per line of the overlay's title, which fit its 12 inch width at 10 points."""
+
+
 def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
     """The overlay of input and output, each less its mean over the window, and its caption.
 
@@ -472,7 +477,9 @@ def _overlay_figure(entry: Mapping[str, Any]) -> tuple[Figure, str]:
         dt = float(np.median(np.diff(t)))
         caption += (f"Cross-correlation of output against input peaks at a lag of {samples_text(lag)} "
                     f"({lag * dt:.3g} s)" + (": no time shift." if lag == 0 else "."))
-    ax.set_title(f"Before and after around the largest transient\n{entry.get('file', '')}", fontsize=10)
+    # Wrapped to the figure's width: the label names the file, channel, samples and t = 0
+    label = textwrap.fill(str(entry.get("file", "")), OVERLAY_TITLE_CHARS)
+    ax.set_title(f"Before and after around the largest transient\n{label}", fontsize=10)
     ax.set_xlabel("Time (s)")
     ax.set_ylabel("Amplitude (input units)")
     ax.grid(True, alpha=0.3)
