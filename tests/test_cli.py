@@ -297,7 +297,8 @@ def test_a_run_that_leaves_inputs_out_exits_3_until_they_are_excluded(tmp_path: 
     assert r.returncode == 3, r.stdout + r.stderr
     assert "invalid 1" in r.stdout and "beta/beta_20260301T000200.npy" in r.stderr
     r = _twinpass("status", str(cfg), "--require-complete")
-    assert r.returncode == 1 and "1 input(s) left out by the last run" in r.stderr, r.stderr
+    assert r.returncode == 1 and "1 input(s) left out by the last run (beta/beta_20260301T000200.npy;" in r.stderr, \
+        r.stderr
     assert "beta/beta_20260301T000200.npy" in r.stdout
     cfg.write_text(cfg.read_text().replace('include = ["**/*.wav", "**/*.npy", "**/*.raw"]',
                                            'include = ["**/*.wav", "**/*.npy", "**/*.raw"]\n'
@@ -672,3 +673,14 @@ def test_a_run_tells_the_progress_bar_the_segments_to_come(tmp_path, monkeypatch
     assert lines[0].startswith("blocks 1/") and lines[0].endswith(" so far, 1 more segment(s) to come"), lines
     n = res.counts()["blocks_run"]
     assert lines[-1] == f"blocks {n}/{n}", lines
+
+
+def test_require_complete_names_the_inputs_left_out_or_failed_up_to_a_few() -> None:
+    from twinpass.status import shortfalls
+
+    totals = {"files": 2, "incomplete": 0, "checks_failed": 0, "blocks_failed": 0}
+    left = {f"deck/deck_{k}.wav": "cannot be opened" for k in range(5)}
+    said = shortfalls({"totals": totals, "left_out": left, "failed_inputs": {"pier/p.wav": "disk gone"}})
+    assert said == ["1 input(s) failed at the last run (pier/p.wav)",
+                    "5 input(s) left out by the last run (deck/deck_0.wav, deck/deck_1.wav, deck/deck_2.wav and 2 "
+                    "more; exclude them in [archive] exclude if that is intended)"], said

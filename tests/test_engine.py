@@ -928,7 +928,7 @@ def test_failed_files_and_interrupted_runs_are_recorded_for_status(tmp_path):
     assert "InjectedFault" in status["failed_inputs"][files.relpaths[1]]
     text = format_status(status)
     assert "failed at the last run (the next run tries them again): 1" in text and "InjectedFault" in text
-    assert "1 input(s) failed at the last run" in shortfalls(status)
+    assert f"1 input(s) failed at the last run ({files.relpaths[1]})" in shortfalls(status)
 
     def stop(segment_id, done, total, res):
         if done == 2:

@@ -467,6 +467,10 @@ def all_passed(status: dict[str, Any]) -> bool:
     return not shortfalls(status)
 
 
+SHORTFALL_NAMED = 3
+"""Inputs a phrase of :func:`shortfalls` names (the rest are counted; the status lists them all)."""
+
+
 def shortfalls(status: dict[str, Any]) -> list[str]:
     """What keeps the archive's output from being complete with passed checks, one phrase each
     (empty when nothing does)."""
@@ -478,15 +482,17 @@ def shortfalls(status: dict[str, Any]) -> list[str]:
         out.append(f"{t['incomplete']} file(s) incomplete")
     if t["checks_failed"] or t["blocks_failed"]:
         out.append(f"{t['checks_failed']} file(s) with failed checks or blocks")
-    if status.get("failed_inputs"):
-        out.append(f"{len(status['failed_inputs'])} input(s) failed at the last run")
+    failed = sorted(status.get("failed_inputs") or {})
+    if failed:
+        out.append(f"{len(failed)} input(s) failed at the last run ({named_list(failed, SHORTFALL_NAMED)})")
     lock = status.get("lock")
     if lock:
         out.append("a run is writing to the store now" if lock.get("state") == "running"
                    else "a run stopped without ending and left the store's lock")
-    if status.get("left_out"):
-        out.append(f"{len(status['left_out'])} input(s) left out by the last run (exclude them in [archive] "
-                   "exclude if that is intended)")
+    left_out = sorted(status.get("left_out") or {})
+    if left_out:
+        out.append(f"{len(left_out)} input(s) left out by the last run ({named_list(left_out, SHORTFALL_NAMED)}; "
+                   "exclude them in [archive] exclude if that is intended)")
     damaged = (status.get("verified") or {}).get("damaged") or {}
     if damaged:
         out.append(f"{len(damaged)} output(s) whose stored samples no longer match what the run recorded")
