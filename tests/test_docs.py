@@ -119,3 +119,32 @@ def test_developers_layout_lists_every_module() -> None:
     assert not unlisted, f"modules missing from DEVELOPERS.md Layout: {unlisted}"
     gone = sorted(f for f in files if f.startswith("src/") and f not in modules)
     assert not gone, f"DEVELOPERS.md Layout lists modules that do not exist: {gone}"
+
+
+def test_readme_states_the_passband_limits_the_grading_uses(tmp_path: Path) -> None:
+    # Source: twinpass.core.checks.grading_limits, the rule a block's passband deviation is
+    # graded by (half the overall ripple + the estimator allowance + the [checks] figure),
+    # taken for the demo's own configuration at its rate; the README's worked example and its
+    # [checks] reference must give the same figures (0.5 + 0.3 + 0.5 = 1.3 dB and
+    # 0.5 + 0.3 + 1.0 = 1.8 dB for the demo's 1 dB ripple and the default [checks]).
+    from twinpass.config import load_config
+    from twinpass.core.checks import ESTIMATOR_ERROR_DB, grading_limits
+    from twinpass.core.design import design_filter
+    from twinpass.demo import SAMPLE_RATE_HZ, demo_config_text
+
+    path = tmp_path / "twinpass.toml"
+    path.write_text(demo_config_text(), encoding="utf-8")
+    cfg = load_config(path)
+    design = design_filter(cfg.response, SAMPLE_RATE_HZ, cfg.processing.tolerance)
+    limit = grading_limits(design, cfg.checks, cfg.processing.tolerance)["passband_dev_db"]
+    warn, fail = round(float(limit.warn), 9), round(float(limit.fail), 9)
+    assert (warn, fail) == (1.3, 1.8)
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    checks = " ".join(_section(readme, "Checks, status and report").split())
+    assert f"±{warn:g} dB" in checks and f"±{fail:g} dB" in checks
+    assert f"{ESTIMATOR_ERROR_DB:g} dB" in checks and "half the overall `passband_ripple_db`" in checks
+    table = _reference_tables()["checks"]
+    assert f"±{warn:g} dB" in table["passband_warn_db"][2] and f"±{fail:g} dB" in table["passband_fail_db"][2]
+    for cell in (table["passband_warn_db"][2], table["passband_fail_db"][2]):
+        assert f"{ESTIMATOR_ERROR_DB:g} dB" in cell and "half the overall" in cell
+    assert "beyond the designed ripple" not in readme
