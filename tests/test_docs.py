@@ -239,3 +239,21 @@ def test_readme_xarray_recipe_times_each_variable_from_its_own_file(recipe_folde
     assert second.dims == ("time", "channel") and second.shape == (HOUR_FRAMES, 3)
     assert second["time"].values[0] == np.datetime64(START.replace(tzinfo=None) + dt.timedelta(hours=1), "ns")
     np.testing.assert_array_equal(second.values, ns["g"]["deck-north/deck-north_20260301T010000"][:])
+
+
+def test_readme_channel_labels_example_is_a_configuration_for_a_stream_not_in_the_demo(tmp_path: Path) -> None:
+    # Source: twinpass.config (what the example parses into) and twinpass.demo (its streams,
+    # whose WAV files hold full-scale values in the channel order x, y, z, and carry no labels):
+    # the example labels a stream of its own, so it cannot be read as the demo's channels.
+    from twinpass.config import load_config
+    from twinpass.demo import STREAMS, TRUNCATED_STREAM
+
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    block = next(b for b in re.findall(r"^```toml\n(.*?)^```", readme, re.S | re.M) if "[archive.channels." in b)
+    path = tmp_path / "twinpass.toml"
+    path.write_text('[response]\nkind = "lowpass"\norder = 2\ncutoff_hz = 10.0\n\n' + block, encoding="utf-8")
+    channels = {c.stream: c for c in load_config(path).archive.channels or ()}
+    named = set(channels) - {"*"}
+    assert named and not named & {*STREAMS, TRUNCATED_STREAM}
+    for stream in named:
+        assert channels[stream].names and len(set(channels[stream].names)) == len(channels[stream].names)

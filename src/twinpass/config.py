@@ -23,8 +23,8 @@ Example::
     root = "archive"
     include = ["**/*.wav"]
 
-    [archive.channels."deck-north"]  # one stream's channel names and units
-    names = ["vertical", "lateral", "longitudinal"]
+    [archive.channels."mast-top"]    # one stream's channel names and units
+    names = ["north", "east", "up"]
     units = "m/s^2"
 
     [output]
@@ -91,7 +91,7 @@ class StreamChannels:
 
     @property
     def table(self) -> str:
-        """The TOML table that gave these, for messages: ``[archive.channels."deck-north"]``."""
+        """The TOML table that gave these, for messages: ``[archive.channels."mast-top"]``."""
         return f"[archive.channels.{json.dumps(self.stream)}]"
 
 
@@ -406,7 +406,7 @@ def _parse_channels(source: str, table: Any) -> tuple[StreamChannels, ...]:
     names_eg, units_eg = '["vertical", "lateral"]', '["m/s^2", "V"]'
     if not isinstance(table, Mapping):
         raise ConfigError(f'{source}: [archive] channels must be a table of streams, e.g. '
-                          f'[archive.channels."deck-north"] with names = {names_eg} and units = "m/s^2" '
+                          f'[archive.channels."mast-top"] with names = {names_eg} and units = "m/s^2" '
                           f'(the stream "{CHANNELS_ANY_STREAM}" for every stream); got {table!r}')
     out = []
     for stream, entry in table.items():
