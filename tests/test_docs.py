@@ -92,6 +92,12 @@ def test_every_command_line_option_is_in_the_command_reference() -> None:
     for name, p in commands.items():
         missing = sorted(o for o in _options(p) if not re.search(rf"`{re.escape(o)}\b", rows[name]))
         assert not missing, f"twinpass {name}: options missing from README 'Command reference': {missing}"
+        for a in p._actions:  # each default the parser takes (and its --help shows) is in the row too
+            if a.default not in (None, False, argparse.SUPPRESS) and not isinstance(a, argparse._SubParsersAction):
+                assert str(a.default) in rows[name], f"twinpass {name}: {a.dest} default {a.default!r} not in README"
+    # What --require-complete requires (twinpass.status.shortfalls): the lock and --verify's findings too.
+    assert "lock" in rows["status"] and "`--verify`" in rows["status"].split("--require-complete", 1)[1]
+    assert "temporary server" in rows["serve"] and "temporary server" in rows["save"]
 
 
 def _layout_entries() -> tuple[set[str], set[str]]:
