@@ -263,3 +263,20 @@ def test_readme_channel_labels_example_is_a_configuration_for_a_stream_not_in_th
     assert named and not named & {*STREAMS, TRUNCATED_STREAM}
     for stream in named:
         assert channels[stream].names and len(set(channels[stream].names)) == len(channels[stream].names)
+
+
+def test_readme_floor_of_the_design_report_and_its_notch_figure() -> None:
+    # Source: twinpass.core.design (REPORT_FLOOR_DB, and the notch of
+    # configs/hydrophone-mains-notch.toml designed at 48 kHz: its exact zero at 50 Hz computes
+    # to -378.9 dB overall), which the README's design-report paragraph quotes.
+    from twinpass.config import load_config
+    from twinpass.core.design import REPORT_FLOOR_DB, design_filter
+
+    cfg = load_config(ROOT / "configs" / "hydrophone-mains-notch.toml")
+    design = design_filter(cfg.response, 48000.0, cfg.processing.tolerance)
+    notch = next(e for e in design.report["edges"] if e["edge"] == "notch")
+    text = " ".join(_section((ROOT / "README.md").read_text(encoding="utf-8"),
+                             "How the response is specified").split())
+    assert f"`< {REPORT_FLOOR_DB:g}`" in text and f"below −{-REPORT_FLOOR_DB:g} dB" in text
+    assert f"−{-notch['overall_db']:.1f} dB overall for `configs/hydrophone-mains-notch.toml`" in text
+    assert "**second-order sections** (biquads" in text
