@@ -6,6 +6,7 @@ libraries); the design numbers are checked in test_design.py, here only the CLI 
 
 from __future__ import annotations
 
+import argparse
 import json
 import os
 import subprocess
@@ -18,6 +19,7 @@ import pytest
 import scipy.io.wavfile
 
 from conftest import cli_env, make_signal, run_cli, write_config, write_stream
+from twinpass.cli import build_parser
 
 FS = 100
 
@@ -684,3 +686,46 @@ def test_require_complete_names_the_inputs_left_out_or_failed_up_to_a_few() -> N
     assert said == ["1 input(s) failed at the last run (pier/p.wav)",
                     "5 input(s) left out by the last run (deck/deck_0.wav, deck/deck_1.wav, deck/deck_2.wav and 2 "
                     "more; exclude them in [archive] exclude if that is intended)"], said
+
+
+# ----------------------------------------------------------------------------- --help texts
+def _parsers() -> dict[str, argparse.ArgumentParser]:
+    """The `twinpass` parser ("") and each command's, by command name."""
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    return {"": parser, **sub.choices}
+
+
+def _help(parser: argparse.ArgumentParser, dest: str) -> str:
+    """The help of ``parser``'s argument ``dest`` as ``--help`` shows it (``%(default)s`` expanded)."""
+    action = next(a for a in parser._actions if a.dest == dest)
+    return " ".join(parser._get_formatter()._expand_help(action).split())
+
+
+def test_every_argument_says_what_it_is_and_shows_its_default() -> None:
+    # Source: the argparse parser of the `twinpass` command (every argument it accepts, and
+    # the value each takes when left out).
+    for name, parser in _parsers().items():
+        if name:
+            assert parser.description, f"twinpass {name} --help does not say what the command does"
+        for action in parser._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                continue
+            text = _help(parser, action.dest)
+            assert text, f"twinpass {name}: {action.option_strings or action.dest} has no help"
+            if action.default not in (None, False, argparse.SUPPRESS):
+                assert f"default {action.default}" in text, f"twinpass {name}: {action.dest} hides its default"
+
+
+def test_help_says_what_the_commands_need_and_refuse() -> None:
+    # Sources: twinpass.cli.cmd_run (refuses --block with --no-flow), twinpass.status.shortfalls
+    # (what --require-complete requires: a held lock fails it, and damage --verify finds), and
+    # twinpass serve without PREFECT_API_URL, which Prefect serves through a temporary server.
+    parsers = _parsers()
+    assert "--no-flow" in _help(parsers["run"], "block") and "--block" in _help(parsers["run"], "no_flow")
+    refused = _twinpass("run", "--block", "nightly-job", "--no-flow")
+    assert refused.returncode == 2 and "drop --no-flow" in refused.stderr, refused.stderr
+    required = _help(parsers["status"], "require_complete")
+    assert "lock" in required and "--verify" in required and "left no input out" in required
+    serve = " ".join(parsers["serve"].description.split())
+    assert "temporary local server" in serve and "needs a Prefect server" not in serve

@@ -23,6 +23,7 @@ from scipy.special import ellipk
 from twinpass.core.design import (
     FIR_PREFERENCE,
     HALF_POWER_DB,
+    REPORT_FLOOR_DB,
     check_sos,
     cost_per_sample,
     design_filter,
@@ -744,6 +745,30 @@ def test_report_margins_show_rounding_as_zero_and_a_true_miss_as_negative() -> N
     tighter = dataclasses.replace(design, spec=dataclasses.replace(spec, passband_ripple_db=0.5))
     missed = response_report(tighter)["passband_ripple_margin_db"]
     assert missed == pytest.approx(0.5 - (overall_db.max() - overall_db.min()), abs=1e-3) and missed < -0.4
+
+
+def test_report_text_shows_a_gain_below_what_float64_resolves_as_below_the_floor() -> None:
+    # Reference: scipy.signal.sos2zpk puts the notch's zeros on the unit circle at exactly 50 Hz
+    # (an exact zero of the gain), and scipy.signal.sosfreqz evaluates the two-pass gain there
+    # far below -300 dB: an amplitude ratio under 1e-15, a few float64 steps (2**-52) of a unit
+    # value, which only rounding produces. The text says "< -300"; the JSON keeps the number.
+    # Gains above the floor (the -3 dB points) print as numbers.
+    design = design_filter(ResponseSpec(kind="notch", notch_hz=50.0, notch_width_hz=2.0), 48000.0)
+    zeros, _, _ = signal.sos2zpk(design.sos)
+    assert np.allclose(np.abs(zeros), 1.0, atol=1e-12) and np.allclose(np.abs(np.angle(zeros)) * 48000.0 / (2 * np.pi), 50.0)
+    _, h = signal.sosfreqz(design.sos, worN=[50.0], fs=48000.0)
+    assert 2.0 * 20.0 * np.log10(np.abs(h[0])) < REPORT_FLOOR_DB == -300.0
+    report = design.report
+    notch = next(e for e in report["edges"] if e["edge"] == "notch")
+    assert isinstance(notch["overall_db"], float) and notch["overall_db"] < REPORT_FLOOR_DB
+    assert json.loads(json.dumps(report))["edges"] == report["edges"]
+    text = format_report(report)
+    row = next(line for line in text.splitlines() if line.split()[:2] == ["notch", "50"])
+    assert row.split()[-2:] == ["<", "-300"], row
+    assert f"{notch['per_pass_db']:.6g}" in row  # above the floor: the number
+    assert f"{notch['overall_db']:.6g}" not in text
+    low, high = report["overall_minus3db_hz"]
+    assert f"{low:.6g}, {high:.6g} Hz" in text
 
 
 def test_notch_rounding_stays_within_the_default_tolerance() -> None:

@@ -168,6 +168,26 @@ def test_inputs_on_a_read_only_file_system(tmp_path):
         assert _complete(res) == {r: "complete" for r in rels}
 
 
+def test_a_run_on_a_store_on_a_read_only_file_system_is_a_clear_error(tmp_path):
+    # An existing store on a file system mounted read-only (a tmpfs remounted so): the run
+    # cannot take its lock and says so in one line, exit 2, with the remedy, as for a new
+    # store in a read-only folder; status still reads the store.
+    root = tmp_path / "archive"
+    write_wav(root, "a.wav", pcm16(500))
+    with tmpfs(tmp_path / "disk", "8m") as disk:
+        config = write_config(tmp_path, output={"store": str(disk / "out.zarr")})
+        assert run_cli(["run", str(config), "--no-flow", "--no-report"]).returncode == 0
+        _mount("-o", "remount,ro", str(disk))
+        for args in (["--no-flow", "--no-report"], ["--no-flow", "--no-report", "--force"]):
+            proc = run_cli(["run", str(config), *args], check=False)
+            assert proc.returncode == 2, proc.stdout + proc.stderr
+            assert "Traceback" not in proc.stderr and "OSError" not in proc.stderr, proc.stderr
+            assert proc.stderr.strip().splitlines()[-1] == (
+                f"twinpass: error: cannot write the lock file {disk / 'out.zarr' / LOCK_NAME}: Read-only file "
+                "system; check that the store location is writable"), proc.stderr
+        assert run_cli(["status", str(config), "--require-complete"]).returncode == 0
+
+
 # -- one writer per store -----------------------------------------------------------------
 
 

@@ -18,6 +18,7 @@ import uuid
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
+import google_crc32c  # CRC-32C reference implementation (Zarr's own dependency)
 import numpy as np
 import pytest
 import zarr
@@ -121,6 +122,14 @@ def test_layout_matches_zarr_v3_metadata(tmp_path: Path, compression: str, cname
         assert len(blosc) == 1
         cfg = blosc[0]["configuration"]
         assert (cfg["cname"], cfg["clevel"], cfg["shuffle"]) == (cname, clevel, "bitshuffle")
+    # Zarr v3 crc32c codec specification: the last codec, four bytes of CRC-32C at the end of
+    # each chunk, little-endian, over the bytes before them.
+    assert meta["codecs"][-1] == {"name": "crc32c"}
+    data = _finish_block(store, 0)
+    for key in ("0", "1"):
+        raw = (root / NAME / "c" / key / "0").read_bytes()
+        assert raw[-4:] == google_crc32c.value(raw[:-4]).to_bytes(4, "little")
+    np.testing.assert_array_equal(zarr.open_array(str(root), path=NAME, mode="r")[0:40], data)  # Zarr checks them
     group_meta = _strict_json((root / "zarr.json").read_text())
     assert group_meta["zarr_format"] == 3 and group_meta["node_type"] == "group"
 
@@ -435,9 +444,27 @@ def test_resume_keeps_done_blocks_only_when_nothing_changed(store: OutputStore):
     np.testing.assert_array_equal(store.read(NAME), np.full((100, 3), np.nan, np.float32))  # unwritten: fill
 
 
+def test_chunk_checksum_is_crc32c_and_a_changed_chunk_is_refused_on_reading(store: OutputStore):
+    # CRC-32C (Castagnoli) check value: the checksum of the ASCII digits "123456789" is
+    # 0xE3069283 (RFC 3720, iSCSI, appendix B.4; from memory).
+    assert store_module.crc32c(b"123456789") == (0xE3069283).to_bytes(4, "little")
+    _prepare(store)
+    _finish_block(store, 0)
+    chunk = Path(store.location) / NAME / "c" / "1" / "0"
+    raw = bytearray(chunk.read_bytes())
+    raw[20] ^= 0x01
+    chunk.write_bytes(bytes(raw))
+    with pytest.raises(ValueError, match="checksum"):  # Zarr's own reader refuses it
+        zarr.open_array(store.location, path=NAME, mode="r")[20:40]
+    arr = zarr.open_array(store.location, path=NAME, mode="r")
+    with pytest.raises(StoreError, match=f"a chunk of {NAME} does not match its CRC-32C checksum"):
+        store_module._chunk_codec(arr)[1](bytes(raw))  # and so does twinpass's
+
+
 def test_arrays_compressed_with_byte_shuffle_are_kept(store: OutputStore):
-    # Arrays written with lz4 and byte shuffle (before bit shuffle became the default)
-    # still match "lz4": a resume keeps their finished blocks and data.
+    # Arrays written with lz4 and byte shuffle and without chunk checksums (before bit
+    # shuffle and the crc32c codec became the default) still match "lz4": a resume keeps
+    # their finished blocks and data.
     from zarr.codecs import BloscCodec, BloscShuffle
 
     _prepare(store)
@@ -452,8 +479,13 @@ def test_arrays_compressed_with_byte_shuffle_are_kept(store: OutputStore):
     byte_shuffled.attrs.update(old.attrs.asdict())
     del group[NAME]
     Path(store.location, NAME + "-copy").rename(Path(store.location, NAME))
+    store = OutputStore.open(store.location)  # as a later command opens it
     assert _prepare(store, keep_done=True).status.tolist() == [1, 0, 0]
     np.testing.assert_array_equal(store.read(NAME, 0, 40), data0)
+    # blocks written into it now are written as its codecs say: Zarr reads them
+    assert store.chunk_format(NAME) == (True, False)
+    data1 = _finish_block(store, 1)
+    np.testing.assert_array_equal(zarr.open_array(store.location, path=NAME, mode="r")[40:80], data1)
     # a different codec is not "lz4": the array is recreated
     assert _prepare(store, compression="zstd").status.tolist() == [0, 0, 0]
 

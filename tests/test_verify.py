@@ -34,6 +34,20 @@ def _filtered(tmp_path, **output):
     return cfg
 
 
+def _without_checksums(folder):
+    """Make the output in ``folder`` as versions before chunk checksums wrote it: the
+    ``crc32c`` codec gone from its metadata and the four checksum bytes from the end of each
+    chunk file."""
+    meta_file = folder / "zarr.json"
+    meta = json.loads(meta_file.read_text())
+    assert meta["codecs"][-1]["name"] == "crc32c"  # written with checksums (Zarr v3 codec name)
+    meta["codecs"].pop()
+    meta_file.write_text(json.dumps(meta))
+    for chunk in (folder / "c").rglob("*"):
+        if chunk.is_file():
+            chunk.write_bytes(chunk.read_bytes()[:-4])
+
+
 def _status(cfg):
     store = OutputStore.open(cfg.store_location, mode="r")
     st = collect_status(store)
@@ -75,8 +89,13 @@ def test_swapped_chunk_files_are_named_by_block_with_both_figures(tmp_path):
     assert "1 output(s) whose stored samples no longer match what the run recorded" in shortfalls(st)
 
 
-def test_a_flipped_exponent_bit_in_an_uncompressed_chunk_is_found(tmp_path):
+@pytest.mark.parametrize("checksums", [True, False])
+def test_a_flipped_exponent_bit_in_an_uncompressed_chunk_is_found(tmp_path, checksums):
+    # With chunk checksums (CRC-32C, the Zarr v3 crc32c codec) the chunk file is named;
+    # without them (outputs of earlier versions) its block's levels no longer match.
     cfg = _filtered(tmp_path)
+    if not checksums:
+        _without_checksums(tmp_path / "out.zarr" / ARRAYS[1])
     chunk = tmp_path / "out.zarr" / ARRAYS[1] / "c" / "1" / "0"
     raw = bytearray(chunk.read_bytes())
     # float64 little-endian: byte 7 of a sample holds the sign and the exponent's high bits;
@@ -84,11 +103,34 @@ def test_a_flipped_exponent_bit_in_an_uncompressed_chunk_is_found(tmp_path):
     raw[8 * 123 + 7] ^= 0x40
     chunk.write_bytes(bytes(raw))
     lines = _status(cfg)["verified"]["damaged"][ARRAYS[1]]
-    assert len(lines) == 1 and lines[0].startswith("block 1 (frames 2,000-3,999): stored samples'")
+    if checksums:
+        assert lines == ["chunk file c/1/0 (frames 2,000-3,999): does not match its CRC-32C checksum: changed "
+                         "since it was written (damaged, truncated or edited)"]
+    else:
+        assert len(lines) == 1 and lines[0].startswith("block 1 (frames 2,000-3,999): stored samples'")
 
 
-def test_a_compressed_chunk_that_no_longer_decodes_is_named_and_the_command_fails(tmp_path):
+def test_a_flip_within_float32_rounding_is_seen_only_through_the_checksum(tmp_path):
+    # The lowest mantissa bit of one float32 sample changes it by a relative 2**-23 at most
+    # (IEEE 754 binary32 layout), within what the levels allow for the cast; the chunk's
+    # CRC-32C sees it (a CRC detects every single-bit error: Castagnoli, Braeuer & Herrmann,
+    # IEEE Trans. Commun. 41(6), 1993, from memory).
+    cfg = _filtered(tmp_path, dtype="float32", compression="none")
+    chunk = tmp_path / "out.zarr" / ARRAYS[0] / "c" / "2" / "0"
+    raw = bytearray(chunk.read_bytes())
+    raw[4 * 77] ^= 0x01
+    chunk.write_bytes(bytes(raw))
+    lines = _status(cfg)["verified"]["damaged"][ARRAYS[0]]
+    assert len(lines) == 1 and "chunk file c/2/0 (frames 4,000-5,999): does not match its CRC-32C" in lines[0]
+    _without_checksums(tmp_path / "out.zarr" / ARRAYS[0])
+    assert _status(cfg)["verified"]["damaged"] == {}  # the levels alone cannot see it
+
+
+@pytest.mark.parametrize("checksums", [True, False])
+def test_a_compressed_chunk_that_no_longer_decodes_is_named_and_the_command_fails(tmp_path, checksums):
     cfg = _filtered(tmp_path, dtype="float32", compression="lz4")
+    if not checksums:
+        _without_checksums(tmp_path / "out.zarr" / ARRAYS[0])
     chunk = tmp_path / "out.zarr" / ARRAYS[0] / "c" / "1" / "0"
     raw = bytearray(chunk.read_bytes())
     raw[len(raw) // 2 :] = b"\xff" * (len(raw) - len(raw) // 2)
@@ -99,7 +141,11 @@ def test_a_compressed_chunk_that_no_longer_decodes_is_named_and_the_command_fail
     proc = conftest.run_cli(["status", toml, "--require-complete", "--verify"], check=False)
     assert proc.returncode == 1, proc.stdout + proc.stderr
     assert "verified: 2 complete output(s), 5 block(s)" in proc.stdout and "1 output(s) do not match" in proc.stdout
-    assert f"  {ARRAYS[0]}: block 1 (frames 2,000-3,999): cannot be read" in proc.stdout
+    if checksums:  # the chunk file is named; its block is not read again
+        assert f"  {ARRAYS[0]}: chunk file c/1/0 (frames 2,000-3,999): does not match its CRC-32C" in proc.stdout
+        assert "cannot be read" not in proc.stdout
+    else:
+        assert f"  {ARRAYS[0]}: block 1 (frames 2,000-3,999): cannot be read" in proc.stdout
     assert "delete each such output's folder in the store" in proc.stdout
     assert "whose stored samples no longer match" in proc.stderr
     as_json = json.loads(conftest.run_cli(["status", toml, "--json", "--verify"]).stdout)
@@ -119,25 +165,35 @@ def test_deleting_a_damaged_output_and_running_again_restores_it(tmp_path):
     np.testing.assert_array_equal(conftest.read_output(cfg.store_location, ARRAYS)[1], good[1])
 
 
-def test_a_truncated_or_extended_chunk_file_is_named_by_its_size(tmp_path):
+@pytest.mark.parametrize("checksums", [True, False])
+def test_a_truncated_or_extended_chunk_file_is_named_by_its_size(tmp_path, checksums):
     # A chunk cut short can still decode, into wrong samples whose RMS and peak may not
-    # change; its size no longer matches its Blosc header's compressed size (bytes 12-16 of
-    # the Blosc version-1 header), or for an uncompressed chunk its values' bytes
-    # (2000 frames x 2 channels x 8 bytes = 32,000 for float64).
+    # change. Its checksum (CRC-32C of the bytes before the last four) no longer matches; in
+    # an output without checksums its size no longer matches its Blosc header's compressed
+    # size (bytes 12-16 of the Blosc version-1 header), or for an uncompressed chunk its
+    # values' bytes (2000 frames x 2 channels x 8 bytes = 32,000 for float64).
+    def damaged(cfg, folder, name, cut):
+        if not checksums:
+            _without_checksums(folder / "out.zarr" / name)
+        raw = chunk_of(folder, name).read_bytes()
+        chunk_of(folder, name).write_bytes(cut(raw))
+        return _status(cfg)["verified"]["damaged"][name], len(raw)
+
+    def chunk_of(folder, name):
+        return folder / "out.zarr" / name / "c" / ("1" if name == ARRAYS[1] else "2") / "0"
+
+    crc = "does not match its CRC-32C checksum: changed since it was written (damaged, truncated or edited)"
     cfg = _filtered(tmp_path, dtype="float32", compression="lz4")
-    chunk = tmp_path / "out.zarr" / ARRAYS[1] / "c" / "1" / "0"
-    raw = chunk.read_bytes()
-    chunk.write_bytes(raw[:-100])
-    lines = _status(cfg)["verified"]["damaged"][ARRAYS[1]]
-    assert (f"chunk file c/1/0 (frames 2,000-3,999): holds {len(raw) - 100:,} bytes, where its compression "
-            f"header says {len(raw):,} (truncated or extended since)") in lines
+    lines, size = damaged(cfg, tmp_path, ARRAYS[1], lambda raw: raw[:-100])
+    assert lines == ["chunk file c/1/0 (frames 2,000-3,999): " + (crc if checksums else (
+        f"holds {size - 100:,} compressed bytes, where its compression header says {size:,} (truncated or "
+        "extended since)"))]
     plain = tmp_path / "plain"
     plain.mkdir()
     cfg2 = _filtered(plain)
-    chunk = plain / "out.zarr" / ARRAYS[0] / "c" / "2" / "0"
-    chunk.write_bytes(chunk.read_bytes() + b"\0" * 8)
-    lines = _status(cfg2)["verified"]["damaged"][ARRAYS[0]]
-    assert "chunk file c/2/0 (frames 4,000-5,999): holds 32,008 bytes, where its values take 32,000" in lines
+    lines, _ = damaged(cfg2, plain, ARRAYS[0], lambda raw: raw + b"\0" * 8)
+    assert lines == ["chunk file c/2/0 (frames 4,000-5,999): " + (
+        crc if checksums else "holds 32,008 bytes of values, where its values take 32,000")]
 
 
 def test_levels_below_the_float32_range_stored_as_zero_are_no_false_alarm(tmp_path):

@@ -769,72 +769,92 @@ def _sample_rate_hz(text: str) -> float:
     return value
 
 
+_CONFIG_HELP = "the job configuration (TOML)"
+
+
+def _command(sub: Any, name: str, text: str) -> argparse.ArgumentParser:
+    """The subcommand ``name``, saying ``text`` in ``twinpass --help`` and in its own ``--help``."""
+    return sub.add_parser(name, help=text, description=text)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="twinpass", description="Zero-phase filtering of large sensor archives.")
     p.add_argument("--version", action="version", version=f"twinpass {__version__}")
     p.add_argument("-v", "--verbose", action="store_true", help="more log output")
     sub = p.add_subparsers(dest="command", required=True)
 
-    s = sub.add_parser("design", help="design the filter for a sample rate and print the response report")
-    s.add_argument("config")
-    s.add_argument("--fs", type=_sample_rate_hz, required=True, help="sample rate in Hz")
-    s.add_argument("--json", action="store_true")
+    s = _command(sub, "design", "design the filter for a sample rate and print the response report")
+    s.add_argument("config", metavar="CONFIG", help=_CONFIG_HELP)
+    s.add_argument("--fs", type=_sample_rate_hz, required=True, metavar="HZ", help="sample rate in Hz")
+    s.add_argument("--json", action="store_true", help="print the report as JSON (for scripts)")
     s.set_defaults(func=cmd_design)
 
-    s = sub.add_parser("plan", help="show what a run would do, and why; runs nothing")
-    s.add_argument("config")
-    s.add_argument("--json", action="store_true")
+    s = _command(sub, "plan", "show what a run would do, and why; runs nothing")
+    s.add_argument("config", metavar="CONFIG", help=_CONFIG_HELP)
+    s.add_argument("--json", action="store_true", help="print the plan as JSON (for scripts)")
     s.add_argument("--force", action="store_true", help="plan as if every file changed")
     s.set_defaults(func=cmd_plan)
 
-    s = sub.add_parser("run", help="filter the archive (through the Prefect flow unless --no-flow)")
-    s.add_argument("config", nargs="?", help="the job configuration (TOML)")
-    s.add_argument("--block", help="run a configuration saved on the Prefect server (twinpass save)")
-    s.add_argument("--workers", type=_at_least_one, help="local Dask workers (default from the config)")
-    s.add_argument("--scheduler", help="threads | processes | tcp://HOST:PORT (default from the config)")
+    s = _command(sub, "run", "filter the archive (through the Prefect flow unless --no-flow)")
+    s.add_argument("config", nargs="?", metavar="CONFIG", help=_CONFIG_HELP + "; or --block instead")
+    s.add_argument("--block", metavar="NAME", help="run a configuration saved on the Prefect server (twinpass save) "
+                                                   "instead of CONFIG; needs the flow, so not with --no-flow")
+    s.add_argument("--workers", type=_at_least_one, metavar="N", help="local Dask workers (default from the config)")
+    s.add_argument("--scheduler", metavar="S",
+                   help="threads | processes | tcp://HOST:PORT (default from the config)")
     s.add_argument("--force", action="store_true", help="reprocess every file, changed or not")
-    s.add_argument("--no-flow", action="store_true", help="run the engine alone, without Prefect")
+    s.add_argument("--no-flow", action="store_true", help="run the engine alone, without Prefect (not with --block)")
     s.add_argument("--no-report", action="store_true", help="do not write the HTML report")
     s.set_defaults(func=cmd_run)
 
-    s = sub.add_parser("status", help="per-file status of an output store (TARGET: config or store)")
-    s.add_argument("target")
-    s.add_argument("--json", action="store_true")
+    s = _command(sub, "status", "per-file status of an output store")
+    s.add_argument("target", metavar="TARGET",
+                   help="a job configuration (TOML; its [output] store) or an output store (path or URL)")
+    s.add_argument("--json", action="store_true", help="print the status as JSON (for scripts)")
     s.add_argument("--require-complete", action="store_true",
-                   help="exit 1 unless every file is complete with passed checks and the last run "
-                        "left no input out and failed none")
+                   help="exit 1 unless the store holds output files, every one complete with passed checks "
+                        "(blocks graded warn count as passed), the last run left no input out and failed none, "
+                        "no run holds the store's lock (one writing now, or one that stopped without ending), "
+                        "and, with --verify, no output's stored samples changed since they were written")
     s.add_argument("--verify", action="store_true",
                    help="read every complete output back and compare each block's RMS and peak with those "
                         "recorded when it was written (finds chunk files changed or damaged since)")
     s.set_defaults(func=cmd_status)
 
-    s = sub.add_parser("report", help="write the self-contained HTML report")
-    s.add_argument("config")
-    s.add_argument("--output", help="HTML file to write (default: beside the store, named after it: "
-                   "STORE.zarr -> STORE.report.html)")
+    s = _command(sub, "report", "write the self-contained HTML report")
+    s.add_argument("config", metavar="CONFIG", help=_CONFIG_HELP)
+    s.add_argument("--output", metavar="FILE", help="HTML file to write (default: named after the store, "
+                   "STORE.zarr -> STORE.report.html, beside a local store, else in the working folder)")
     s.set_defaults(func=cmd_report)
 
-    s = sub.add_parser("demo", help="write the built-in demo archive and run the full flow on it")
-    s.add_argument("folder", nargs="?", default="twinpass-demo")
-    s.add_argument("--hours", type=int, default=3, help="hours of recording per stream (default 3)")
+    s = _command(sub, "demo", "write the built-in demo archive and run the full flow on it")
+    s.add_argument("folder", nargs="?", default="twinpass-demo", metavar="FOLDER",
+                   help="folder for the archive, its configuration and the output (default %(default)s)")
+    s.add_argument("--hours", type=int, default=3, metavar="N",
+                   help="hours of recording per stream (default %(default)s)")
     s.add_argument("--no-run", action="store_true", help="only write the archive and its configuration")
     s.set_defaults(func=cmd_demo)
 
-    s = sub.add_parser("compile", help="compile the filter loops for this machine ahead of the first run "
-                                       "(e.g. while building a container image)")
+    s = _command(sub, "compile", "compile the filter loops for this machine ahead of the first run "
+                                 "(e.g. while building a container image)")
     s.set_defaults(func=cmd_compile)
 
-    s = sub.add_parser("serve", help="serve a scheduled deployment of the flow (needs a Prefect server)")
-    s.add_argument("config", nargs="?", help="the job configuration (TOML)")
-    s.add_argument("--block", help="serve a configuration saved on the Prefect server (twinpass save)")
-    s.add_argument("--cron", required=True, help='cron expression, e.g. "30 2 * * *"')
-    s.add_argument("--timezone", default=None, help="IANA time zone of the cron expression (default UTC)")
-    s.add_argument("--name", default="nightly", help="deployment name")
+    s = _command(sub, "serve", "serve a scheduled deployment of the flow and run its scheduled runs here until "
+                               "stopped, on the Prefect server of PREFECT_API_URL or, without one, on a temporary "
+                               "local server (no dashboard; runs kept in the database under PREFECT_HOME)")
+    s.add_argument("config", nargs="?", metavar="CONFIG", help=_CONFIG_HELP + "; or --block instead")
+    s.add_argument("--block", metavar="NAME", help="serve a configuration saved on the Prefect server "
+                                                   "(twinpass save) instead of CONFIG")
+    s.add_argument("--cron", required=True, metavar="EXPR", help='cron expression, e.g. "30 2 * * *"')
+    s.add_argument("--timezone", default=None, metavar="TZ", help="IANA time zone of the cron expression (default UTC)")
+    s.add_argument("--name", default="nightly", metavar="NAME", help="deployment name (default %(default)s)")
     s.set_defaults(func=cmd_serve)
 
-    s = sub.add_parser("save", help="save a configuration to the Prefect server as a TwinpassJob block")
-    s.add_argument("config")
-    s.add_argument("--name", required=True, help="block name (lower case letters, digits and dashes)")
+    s = _command(sub, "save", "save a configuration to the Prefect server as a Twinpass Job block (without "
+                              "PREFECT_API_URL, into the database under PREFECT_HOME through a temporary server)")
+    s.add_argument("config", metavar="CONFIG", help=_CONFIG_HELP)
+    s.add_argument("--name", required=True, metavar="NAME",
+                   help="block name (lower case letters, digits and dashes)")
     s.set_defaults(func=cmd_save)
     return p
 

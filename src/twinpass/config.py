@@ -23,8 +23,8 @@ Example::
     root = "archive"
     include = ["**/*.wav"]
 
-    [archive.channels."deck-north"]  # one stream's channel names and units
-    names = ["vertical", "lateral", "longitudinal"]
+    [archive.channels."mast-top"]    # one stream's channel names and units
+    names = ["north", "east", "up"]
     units = "m/s^2"
 
     [output]
@@ -91,7 +91,7 @@ class StreamChannels:
 
     @property
     def table(self) -> str:
-        """The TOML table that gave these, for messages: ``[archive.channels."deck-north"]``."""
+        """The TOML table that gave these, for messages: ``[archive.channels."mast-top"]``."""
         return f"[archive.channels.{json.dumps(self.stream)}]"
 
 
@@ -177,12 +177,13 @@ class ChecksConfig:
     """Samples (0 to :data:`MAX_SEAM_SAMPLES`) computed beyond each block edge and compared
     with the neighbour; 0 turns the seam check off."""
     passband_warn_db: float = 0.5
-    """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that
-    warns; at most ``passband_fail_db``."""
+    """dB (>= 0) added to the passband allowance (half the overall ``passband_ripple_db``
+    plus the estimator's 0.3 dB): a block's passband deviation beyond the sum warns (1.3 dB
+    for a 1 dB ripple); at most ``passband_fail_db``."""
     passband_fail_db: float = 1.0
-    """Passband deviation (dB, >= 0) beyond the designed ripple (plus estimator error) that
-    fails: a correct filter's figures stay within the ripple and estimator allowances, so a
-    gain error of a dB or two in the passband (a processing fault) fails rather than warns."""
+    """dB (>= 0) added to the same allowance for failing (1.8 dB for a 1 dB ripple): a correct
+    filter's figures stay within the ripple and estimator allowances, so a gain error of a
+    dB or two in the passband (a processing fault) fails rather than warns."""
     phase_warn_deg: float = 5.0
     """Passband phase magnitude (degrees, >= 0) that warns; at most ``phase_fail_deg``."""
     phase_fail_deg: float = 20.0
@@ -416,7 +417,7 @@ def _parse_channels(source: str, table: Any) -> tuple[StreamChannels, ...]:
     names_eg, units_eg = '["vertical", "lateral"]', '["m/s^2", "V"]'
     if not isinstance(table, Mapping):
         raise ConfigError(f'{source}: [archive] channels must be a table of streams, e.g. '
-                          f'[archive.channels."deck-north"] with names = {names_eg} and units = "m/s^2" '
+                          f'[archive.channels."mast-top"] with names = {names_eg} and units = "m/s^2" '
                           f'(the stream "{CHANNELS_ANY_STREAM}" for every stream); got {table!r}')
     out = []
     for stream, entry in table.items():

@@ -335,7 +335,7 @@ def attention_lists(status: Mapping[str, Any]) -> list[tuple[str, list[str]]]:
          [f"{f['source']} {blocks}: {msg}" for f in files for blocks, msg in error_groups(f.get("errors") or {})]
          + [f"{k} {line}" for k, v in sorted((status.get("failed_blocks") or {}).items()) for line in v["blocks"]]),
         ("Outputs whose input is no longer in the archive (kept as they were)", list(status.get("gone") or [])),
-        ("Outputs with chunk files missing (deleted or lost since written; they would read as zeros; the next "
+        ("Outputs with chunk files missing (deleted or lost since written; they read as NaN; the next "
          "run reruns their blocks)",
          [f"{f['source']}: frames {_frames(f['chunks_missing'])}" for f in files if f.get("chunks_missing")]),
         ("Notes of the last run", list(status.get("notes") or [])),

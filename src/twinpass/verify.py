@@ -6,21 +6,26 @@ computed in float64 before the cast to the output type). Reading the stored samp
 taking the same two figures tells whether the chunk files still hold what the run wrote: a
 chunk overwritten, swapped with another, truncated or damaged (a decoding error, or bits
 flipped in an uncompressed chunk that change a sample beyond the output type's rounding)
-shows as a mismatch, named by block, frames and channel. Each chunk file's size is checked
-too: an uncompressed chunk must hold exactly its values' bytes, a compressed one the size its
+shows as a mismatch, named by block, frames and channel. Each chunk file is checked too:
+its CRC-32C checksum, which outputs carry in every chunk file (the ``crc32c`` codec; not in
+outputs written by versions before it), sees any change of its bytes after it was written;
+an uncompressed chunk must hold exactly its values' bytes, a compressed one the size its
 compression header gives (a chunk truncated or extended since can still decode, into wrong
-samples of the same RMS and peak). Chunk files that are missing are
+samples of the same RMS and peak). A block whose chunk files are named so is not compared
+again. Chunk files that are missing are
 reported by ``twinpass status`` already (:meth:`twinpass.io.store.OutputStore.absent_chunks`)
 and are not read again here.
 
 The comparison allows for the cast: a float32 output's samples are the float64 results
 rounded to 24 significant bits, so its RMS and peak may differ from the recorded ones by a
 relative ``2**-24`` (:data:`FLOAT32_RTOL` allows four times that); float64 outputs allow
-:data:`FLOAT64_RTOL` for the order of summation. What it cannot see: a change within that
+:data:`FLOAT64_RTOL` for the order of summation. What it cannot see without checksums: a change within that
 rounding (a flipped low mantissa bit of a float32 sample), a chunk replaced by a valid one
 of the same size whose samples have the same RMS and peak on every channel (samples changed
 in sign or order), or a channel of a block with clipped samples (stored as infinity: that
-channel's levels are not compared). Reads only; the store is opened read-only.
+channel's levels are not compared); with checksums, only a chunk file swapped with or copied
+from another one holding the same RMS and peak on every channel (each file's checksum is its
+own), or a change whose checksum was computed again. Reads only; the store is opened read-only.
 """
 
 from __future__ import annotations
@@ -36,7 +41,7 @@ import numpy as np
 from .core.checks import PASS, WARN
 from .core.loops import channel_stats
 from .errors import StoreError
-from .io.store import OutputStore
+from .io.store import CHECKSUM_BYTES, OutputStore, checksum_body
 
 FLOAT32_RTOL: float = 4.0 * 2.0**-24
 """Relative difference allowed between a float32 output's stored and recorded RMS or peak."""
@@ -97,26 +102,37 @@ flags and type size (a byte each), then the decoded size, block size and compres
 (little-endian 32-bit each)."""
 
 
-def _chunk_file_problem(path: Path, decoded: int, compressed: bool) -> str | None:
-    """What is wrong with the size of one chunk file (None when nothing is, or it is missing:
-    ``twinpass status`` reports missing chunk files itself). Uncompressed, its size must be
-    ``decoded`` bytes; compressed, its Blosc header must say ``decoded`` bytes decoded and the
-    file's own size compressed (a truncated or extended file can still decode, wrongly)."""
+def _chunk_file_problem(path: Path, decoded: int, compressed: bool, checksummed: bool) -> str | None:
+    """What is wrong with one chunk file (None when nothing is, or it is missing: ``twinpass
+    status`` reports missing chunk files itself). With a checksum (the ``crc32c`` codec), its
+    last four bytes must be the CRC-32C of the bytes before them. Uncompressed, its values must
+    take ``decoded`` bytes; compressed, its Blosc header must say ``decoded`` bytes decoded and
+    the compressed size the file holds (a truncated or extended file can still decode, wrongly)."""
     try:
-        size = path.stat().st_size
-        with open(path, "rb") as fh:
-            head = fh.read(BLOSC_HEADER_BYTES)
+        raw = path.read_bytes() if checksummed else None
+        size = path.stat().st_size if raw is None else len(raw)
+        if raw is None:
+            with open(path, "rb") as fh:
+                head = fh.read(BLOSC_HEADER_BYTES)
+        else:
+            head = raw[:BLOSC_HEADER_BYTES]
     except OSError:
         return None
     if size == 0:
         return None
+    if raw is not None:
+        try:
+            checksum_body(raw, str(path))
+        except StoreError:
+            return "does not match its CRC-32C checksum: changed since it was written (damaged, truncated or edited)"
+        size -= CHECKSUM_BYTES
     if not compressed:
-        return None if size == decoded else f"holds {size:,} bytes, where its values take {decoded:,}"
+        return None if size == decoded else f"holds {size:,} bytes of values, where its values take {decoded:,}"
     if len(head) < BLOSC_HEADER_BYTES:
         return f"holds {size:,} bytes, fewer than its compression header's {BLOSC_HEADER_BYTES}"
     nbytes, _blocksize, cbytes = struct.unpack("<III", head[4:16])
     if cbytes != size:
-        return f"holds {size:,} bytes, where its compression header says {cbytes:,} (truncated or extended since)"
+        return f"holds {size:,} compressed bytes, where its compression header says {cbytes:,} (truncated or extended since)"
     if nbytes != decoded:
         return f"its compression header says {nbytes:,} bytes decoded, where its values take {decoded:,}"
     return None
@@ -143,15 +159,17 @@ def verify_file(store: OutputStore, name: str) -> tuple[int, int, int, list[str]
     blocks = frames = values = 0
     lines: list[str] = []
     files = store.chunk_files(name)
+    bad_spans: list[tuple[int, int]] = []
     if files is not None:
-        compressed = store.chunks_compressed(name)
+        compressed, checksummed = store.chunk_format(name)
         for a, b, path, decoded in files:
-            problem = _chunk_file_problem(path, decoded, compressed)
+            problem = _chunk_file_problem(path, decoded, compressed, checksummed)
             if problem is not None:
                 lines.append(f"chunk file {'/'.join(path.parts[-3:])} (frames {a:,}-{b - 1:,}): {problem}")
+                bad_spans.append((a, b))
     for i, (status, (a, b)) in enumerate(zip(table.status.tolist(), table.span.tolist())):
-        if int(status) not in (PASS, WARN):
-            continue
+        if int(status) not in (PASS, WARN) or any(a < y and x < b for x, y in bad_spans):
+            continue  # not done, or its chunk files named already
         where = f"block {i} (frames {int(a):,}-{int(b) - 1:,})"
         try:
             data = store.read(name, int(a), int(b))

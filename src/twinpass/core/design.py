@@ -66,6 +66,7 @@ __all__ = [
     "HALF_POWER_DB",
     "FIR_PREFERENCE",
     "HALF_AMPLITUDE_DB",
+    "REPORT_FLOOR_DB",
     "ROUNDING_LIMIT",
 ]
 
@@ -73,6 +74,13 @@ HALF_POWER_DB: float = 10.0 * math.log10(0.5)
 """-3.0103 dB: the overall level a cutoff marks with ``cutoff_means="overall-3db"``."""
 HALF_AMPLITUDE_DB: float = 20.0 * math.log10(0.5)
 """-6.0206 dB: overall level of a Butterworth run twice at its per-pass cutoff."""
+REPORT_FLOOR_DB: float = -300.0
+"""Lowest gain (dB) :func:`format_report` prints as a number; lower ones read ``< -300``.
+
+-300 dB is an amplitude ratio of 1e-15, about 4.5 float64 steps of a unit value (2**-52,
+2.2e-16): filtering in float64 resolves no such level, so a lower figure (an exact zero,
+such as a notch's centre, computes to about -379 dB overall) is an artefact of rounding.
+:func:`response_report` keeps the number computed."""
 
 IIR_FAMILIES: tuple[str, ...] = ("butterworth", "chebyshev1", "chebyshev2", "elliptic")
 CUTOFF_MEANINGS: tuple[str, ...] = ("overall-3db", "per-pass")
@@ -1542,8 +1550,17 @@ def _cell(value: Any, digits: int = 6) -> str:
     return str(value)
 
 
+def _gain_cell(db: float | None) -> str:
+    """A gain (dB) for the text report: ``-inf`` for an exact zero, ``< -300`` below
+    :data:`REPORT_FLOOR_DB`, else six significant digits."""
+    if db is None:
+        return "-inf"
+    return f"< {REPORT_FLOOR_DB:g}" if db < REPORT_FLOOR_DB else _cell(db, 6)
+
+
 def format_report(report: dict[str, Any]) -> str:
-    """Plain-text table of a :func:`response_report` dict for the terminal."""
+    """Plain-text table of a :func:`response_report` dict for the terminal (gains below
+    :data:`REPORT_FLOOR_DB` as ``< -300``, since float64 resolves none)."""
     rows: list[tuple[str, str]] = []
     order_label = "taps" if report.get("n_taps") is not None else "sections"
     order_count = report.get("n_taps") if report.get("n_taps") is not None else report.get("n_sections")
@@ -1590,8 +1607,8 @@ def format_report(report: dict[str, Any]) -> str:
             (
                 str(e["edge"]),
                 _cell(e["hz"], 8),
-                _cell(e["per_pass_db"], 6) if e["per_pass_db"] is not None else "-inf",
-                _cell(e["overall_db"], 6) if e["overall_db"] is not None else "-inf",
+                _gain_cell(e["per_pass_db"]),
+                _gain_cell(e["overall_db"]),
             )
             for e in edges
         ]

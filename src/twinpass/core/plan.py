@@ -702,7 +702,7 @@ def _lost_text(lost: tuple[Span, ...]) -> str:
     """What to say of a complete output whose chunk files are missing (frame spans ``lost``)."""
     frames = sum(b - a for a, b in lost)
     return (f"output chunk files missing for {frames} frames at {_spans_text(lost)} (deleted or lost since they "
-            "were written; they would read as zeros)")
+            "were written; they read as NaN, the fill value)")
 
 
 def _changed_in_part(rec: FileRecord | None, entry: Any, own: tuple[str, str], digest: str,

@@ -120,7 +120,8 @@ class LocalLockFile:
 
     def create(self, data: bytes) -> bool:
         try:
-            fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            with write_errors(f"the lock file {self.path}"):  # a read-only file system: a StoreError
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
         except FileExistsError:
             return False
         try:
