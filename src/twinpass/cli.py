@@ -44,10 +44,11 @@ class _ProgressBar:
     known once its files are prepared, so the total grows as segments report theirs: told
     the segments to come (:meth:`expect`), the bar says its total is the total so far until
     each has reported (``blocks 1/6 so far, 3 more segment(s) to come``). Its line is ended
-    by :meth:`close` (after the run), not when the blocks seen so far are all done. While :meth:`over_logs` is active, a log
-    record (Prefect's, twinpass's) first clears the bar's line, so that the log line starts
-    on a line of its own; the next block draws the bar again below it. Without a TTY it
-    prints a line at most every 5 s, and the final count on :meth:`close`.
+    by :meth:`close` (after the run), not when the blocks seen so far are all done. While
+    :meth:`over_logs` is active, a log record (Prefect's, twinpass's) first clears the bar's
+    line, so that the log line starts on a line of its own; the next block draws the bar
+    again below it. Without a TTY it prints a line at most every 5 s, and the final count on
+    :meth:`close`.
     """
 
     def __init__(self) -> None:

@@ -674,5 +674,5 @@ def _run_busy(busy: list[SegmentWork], prep: Prepared, cfg: JobConfig, store: Ou
                 raise
 
 
-__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "expect_segments", "open_run_store", "prepare", "run_job",
-           "segment_work", "segment_failed", "library_versions", "response_report"]
+__all__ = ["Prepared", "RunResult", "RunTally", "designs_for", "expect_segments", "open_run_store", "prepare",
+           "run_job", "segment_work", "segment_failed", "library_versions", "response_report"]

@@ -427,7 +427,8 @@ def format_status(status: dict[str, Any]) -> str:
     failed = status.get("failed_inputs") or {}
     rerun = ("the next run tries them again" + ("; where a configuration error is the cause, once the configuration "
                                                 "is fixed" if any(CONFIG_FAILED in v for v in failed.values()) else ""))
-    for title, count, entries in ((f"failed at the last run ({rerun})", len(failed), _failed_entries(failed, failed_blocks)),
+    for title, count, entries in ((f"failed at the last run ({rerun})", len(failed),
+                                   _failed_entries(failed, failed_blocks)),
                                   ("left out by the last run (invalid input; an output made earlier is kept as it was)",
                                    None, [f"{k}: {v}" for k, v in sorted((status.get("left_out") or {}).items())]),
                                   ("outputs whose input is no longer in the archive (kept as they were, marked "

@@ -187,16 +187,16 @@ def choose_layout(
         floor; ``remedy`` is one more remedy."""
         return ConfigError(
             f"{at}[processing] memory_budget_mib = {memory_budget_mib:g} fits blocks of at most "
-            f"{samples_text(longest)}{made} {halos}, below the shortest block of {floor} samples at {sample_rate_hz:g} Hz "
-            f"({floor_why}): raise memory_budget_mib to at least {budget_for(whole)} MiB"
+            f"{samples_text(longest)}{made} {halos}, below the shortest block of {floor} samples at "
+            f"{sample_rate_hz:g} Hz ({floor_why}): raise memory_budget_mib to at least {budget_for(whole)} MiB"
             + (f" or {CARRY_REMEDY}" if carry and halo else "") + remedy
         )
 
     if chunk is not None and chunk < CHUNK_FLOOR_SAMPLES:
         raise ConfigError(
-            f"{at}[output] chunk_seconds = {chunk_seconds:g} makes chunks of {samples_text(chunk)} at {sample_rate_hz:g} "
-            f"Hz, below the shortest chunk of {CHUNK_FLOOR_SAMPLES} samples (each chunk is a file of its own): "
-            f"set chunk_seconds to at least {_rounded(CHUNK_FLOOR_SAMPLES / sample_rate_hz)} s, or leave it out "
+            f"{at}[output] chunk_seconds = {chunk_seconds:g} makes chunks of {samples_text(chunk)} at "
+            f"{sample_rate_hz:g} Hz, below the shortest chunk of {CHUNK_FLOOR_SAMPLES} samples (each chunk is a file "
+            f"of its own): set chunk_seconds to at least {_rounded(CHUNK_FLOOR_SAMPLES / sample_rate_hz)} s, or leave it out "
             "for one chunk per block"
         )
     if block_seconds is not None:
