@@ -843,3 +843,57 @@ def test_absent_chunks_of_a_zarr_input_are_noted(tmp_path):
     assert [f.relpath for f in disc.files] == ["site/a.zarr"]
     (note,) = disc.warnings
     assert note.startswith("site/a.zarr: 1 of its 4 chunks are absent and read as the fill value 0.0"), note
+
+
+def test_channel_major_arrays_are_left_out_above_the_channel_limit(tmp_path):
+    # Arrays are time-major, (samples, channels) (numpy.save and zarr-python store the shape
+    # given); one saved transposed, (2, 2000), would be 2000 channels of 2 samples, filtered
+    # along the wrong axis. 1024 channels is the documented default of [archive] max_channels.
+    import zarr
+
+    root = tmp_path / "archive"
+    x = np.random.default_rng(0).standard_normal((2000, 2)).astype(np.float32)
+    (root / "s").mkdir(parents=True)
+    np.save(root / "s" / "cm.npy", x.T.copy())
+    arr = zarr.create_array(store=str(root / "z" / "cm.zarr"), shape=(2, 2000), dtype="float32", chunks=(2, 500))
+    arr[:] = x.T
+    arr.attrs.update(sample_rate_hz=100.0)
+    disc = discover(job(tmp_path, include=("**/*.npy", "**/*.zarr"), sample_rate_hz=100.0))
+    assert disc.files == ()
+    bad = reasons(disc)
+    assert set(bad) == {"s/cm.npy", "z/cm.zarr"}
+    for rel in bad:
+        assert bad[rel].startswith("2000 channels, more than [archive] max_channels = 1024, and more channels "
+                                   "than its 2 samples"), bad[rel]
+        assert "store it time-major, shape (samples, channels): transpose it" in bad[rel]
+        assert "raise [archive] max_channels to 2000" in bad[rel]
+    # a limit raised for such a file lets it through, with the reader's note (NPY and Zarr alike)
+    disc = discover(job(tmp_path, include=("**/*.npy", "**/*.zarr"), sample_rate_hz=100.0, max_channels=2000))
+    assert sorted(f.relpath for f in disc.files) == ["s/cm.npy", "z/cm.zarr"]
+    for rel in ("s/cm.npy", "z/cm.zarr"):
+        assert f"{rel}: shape (2, 2000) has more channels than samples; arrays must be time-major " \
+               "(samples, channels): transpose it if it is channel-major" in disc.warnings
+
+
+def test_a_short_file_of_more_channels_than_samples_within_the_limit_is_filtered(tmp_path):
+    # The last file of a stream may hold one frame of 8 channels: more channels than samples,
+    # but a plausible channel count, so it is read (with a note), and joins its stream.
+    root = tmp_path / "archive"
+    npy(root, "s1/s1_20240501T000000.npy", 100, channels=8)
+    npy(root, "s1/s1_20240501T000010.npy", 1, channels=8, seed=1)  # 100 frames at 10 Hz = 10 s before
+    disc = discover(job(tmp_path, name_pattern="{stream}/{stream}_{start:%Y%m%dT%H%M%S}", sample_rate_hz=10.0))
+    assert disc.invalid == ()
+    assert [f.channels for f in disc.files] == [8, 8]
+    assert any(w.startswith("s1/s1_20240501T000010.npy: shape (1, 8) has more channels than samples")
+               for w in disc.warnings)
+    segments, bad = disc.segments()
+    assert bad == [] and [s.frames for s in segments] == [101]
+
+
+def test_a_wide_file_above_the_channel_limit_is_left_out_naming_the_setting(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "wide.npy", 20, channels=12)
+    disc = discover(job(tmp_path, sample_rate_hz=10.0, max_channels=8))
+    assert reasons(disc) == {"wide.npy": "12 channels, more than [archive] max_channels = 8 | raise [archive] "
+                                         "max_channels to 12 or more if it really holds 12 channels, or leave it "
+                                         "out with [archive] exclude"}

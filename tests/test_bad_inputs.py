@@ -606,7 +606,8 @@ def test_config_refuses_nan_and_infinite_numbers(table, key, value):
 # Valid ranges as the settings' docstrings in twinpass.config and README "Checks, status and
 # report" state them: seam_samples in [0, 4096] (0 = seam check off), coherence_min in [0, 1], the
 # passband and phase thresholds >= 0 with warn <= fail (grade() warns above the first and fails
-# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0.
+# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0,
+# max_channels >= 1.
 OUT_OF_RANGE = [
     ("checks", "seam_samples = -3", "seam_samples = -3", "0 turns the seam check off"),
     ("checks", "seam_samples = 4097", "seam_samples = 4097", "[0, 4096]"),
@@ -625,6 +626,7 @@ OUT_OF_RANGE = [
     ("processing", "carry_threshold = 0.0", "carry_threshold = 0.0", 'set mode = "carry" or "halo"'),
     ("processing", "carry_threshold = -1.0", "carry_threshold = -1.0", "> 0"),
     ("archive", "sample_rate_hz = 0.0", "sample_rate_hz = 0.0", "> 0"),
+    ("archive", "max_channels = 0", "max_channels = 0", ">= 1"),
 ]
 
 
@@ -647,6 +649,7 @@ def test_config_refuses_values_out_of_their_documented_range(table, lines, named
     ("flow", "retries = 0\nretry_delay_seconds = 0.0"),
     ("engine", "retry_backoff_seconds = 0.0"),
     ("processing", "carry_threshold = 0.01"),
+    ("archive", "max_channels = 1"),
 ])
 def test_config_accepts_the_ends_of_the_documented_ranges(table, lines):
     parse_config(_BASE + f"[{table}]\n{lines}\n", source="job.toml")

@@ -82,6 +82,26 @@ follow it (after "; "); discovery makes it the remedy."""
 WRAPPED_REWRITE = "Rewrite the file as RF64 (or W64)"
 
 
+TIME_MAJOR = "store it time-major, shape (samples, channels): transpose it"
+"""What to do with a 2-D array stored channel-major, (channels, samples): the remedy that
+discovery gives for an array with more channels than ``[archive] max_channels`` and than samples."""
+
+
+def channel_major_note(shape: tuple[int, ...]) -> str | None:
+    """The note for a 2-D array of ``shape`` with more channels than samples, or ``None``.
+
+    Arrays are time-major, shape (samples, channels): one with more channels than samples
+    was most likely stored channel-major by mistake. A short file of a stream (one frame of
+    eight channels) is that shape too, so this is a note, not an error.
+    """
+    if len(shape) != 2 or int(shape[1]) <= int(shape[0]):
+        return None
+    return (
+        f"shape {tuple(int(d) for d in shape)} has more channels than samples; arrays must be time-major "
+        "(samples, channels): transpose it if it is channel-major"
+    )
+
+
 READABLE = "readable by the user running twinpass"
 """The end of a reader's error for a file it may not read, after "; make ...": the remedy
 (discovery gives it as such)."""

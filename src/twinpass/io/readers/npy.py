@@ -32,6 +32,7 @@ from ._common import (
     Codec,
     FileReader,
     InterleavedRecording,
+    channel_major_note,
     option_rate,
     truncated_mode,
 )
@@ -167,11 +168,8 @@ class NpyReader(FileReader):
             warnings.append(f"{what}; read up to the last whole frame ({present})")
         if frames == 0:
             raise CorruptInputError(f"{path}: array of shape {shape} holds no frames", path=path)
-        if len(shape) == 2 and channels > stored:
-            warnings.append(
-                f"shape {shape} has more channels than samples; arrays must be time-major "
-                "(samples, channels): transpose it if it is channel-major"
-            )
+        if (note := channel_major_note(shape)) is not None:
+            warnings.append(note)
         info = RecordingInfo(
             path=path,
             format=self.name,

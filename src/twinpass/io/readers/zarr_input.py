@@ -21,6 +21,7 @@ from ._common import (
     READABLE,
     Codec,
     WindowRecording,
+    channel_major_note,
     check_options,
     is_url,
     normalize_path,
@@ -182,6 +183,7 @@ class ZarrReader(Reader):
             sample_format=dtype.name,
             start_time=start,
             full_scale=codec.full_scale,
+            warnings=tuple(n for n in (channel_major_note(shape),) if n is not None),
             extra={"store": store, "array": arr_path, "chunks": tuple(int(c) for c in array.chunks)},
         )
         return ZarrRecording(info, ReaderSpec.create(self.name, store, spec_opts), array, codec)
