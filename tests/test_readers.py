@@ -329,6 +329,29 @@ def test_truncated_data_chunk_with_warn_reads_whole_frames(tmp_path):
             rec.read(0, 501)
 
 
+def test_samples_past_a_data_size_declared_too_small_are_counted_in_the_note(tmp_path):
+    # RIFF (Microsoft "Multiple channel audio data and WAVE files"): the data chunk's size
+    # field at byte 4 of the chunk bounds its samples, so a reader takes the declared 1000
+    # frames (scipy.io.wavfile reads the same); the 1000 frames after them are no chunk.
+    x = _ints("int16", (2000, 2))
+    fmt = fmt_chunk(PCM, 2, 1000, 16)
+    blob = riff([fmt, chunk(b"data", x.tobytes(), size=1000 * 4)])
+    path = _write(tmp_path / "short_size.wav", blob)
+    with pytest.warns(wavfile.WavFileWarning):  # scipy stops at the unknown "chunk" as well
+        assert np.array_equal(wavfile.read(path)[1], x[:1000])
+    at = 12 + len(fmt)  # the data chunk
+    with open_recording(path) as rec:
+        assert rec.info.frames == 1000
+        assert np.array_equal(rec.read(0, 1000), x[:1000] / 32768.0)
+        (note,) = rec.info.warnings
+    assert f"invalid chunk id {x[1000:1002].tobytes()[:4]!r} at byte {at + 8 + 4000}" in note
+    assert note.endswith(
+        f"the rest of the file, 4000 bytes from byte {at + 8 + 4000} to byte {len(blob)}, was ignored: it follows "
+        f"the data chunk and holds 1000 whole frames of 4 bytes, left out if they are samples (the data chunk's "
+        f"size field at byte {at + 4} says 4000 bytes; 8000 would take them in)"
+    ), note
+
+
 def test_zero_data_size_followed_by_frames_names_the_sizes_to_write(tmp_path):
     # A recorder writes its header with sizes 0 and fills them in when it closes the file; one
     # that stopped first leaves 0 in the data chunk's size field (Microsoft "Multiple channel
