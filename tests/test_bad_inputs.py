@@ -230,14 +230,16 @@ def bad_zero_byte_raw(root: Path) -> Expect:
 def bad_raw_without_sidecar(root: Path) -> Expect:
     rel = stem("nosidecar") + ".bin"
     put(root, rel, pcm16(400).tobytes())
-    return {rel: (["needs a sidecar", f"{rel}.toml", 'dtype = "int16"'], [REMEDY_EXCLUDE])}
+    return {rel: (["needs a sidecar", f"{rel}.toml"],
+                  [f"write its sidecar {root / rel}.toml", 'dtype = "int16", channels = 2', REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_frames_contradict_size(root: Path) -> Expect:
     rel = stem("sidecarframes") + ".bin"
     put(root, rel, pcm16(400).tobytes())
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\nframes = 500\n')
-    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes", "fix frames"], [REMEDY_EXCLUDE])}
+    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes"],
+                  [f"fix frames (or dtype, channels, header_bytes) in its sidecar {root / rel}.toml", REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
@@ -245,7 +247,15 @@ def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
     put(root, rel, bytes(801))  # 801 bytes cannot be whole 2-byte frames
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
     return {rel: (["801 data bytes", "not a whole number of 2-byte frames", "400 frames + 1 bytes"],
-                  [REMEDY_EXCLUDE])}
+                  [f"check dtype, channels and header_bytes in its sidecar {root / rel}.toml", REMEDY_EXCLUDE])}
+
+
+def bad_sidecar_key(root: Path) -> Expect:
+    rel = stem("sidecarkey") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = "1"\nsample_rate_hz = 100.0\n')
+    return {rel: (["channels must be an integer >= 1, got '1'"], [f"correct its sidecar {root / rel}.toml",
+                                                                  REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
@@ -304,6 +314,7 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_raw_without_sidecar,
     bad_sidecar_frames_contradict_size,
     bad_sidecar_dtype_contradicts_size,
+    bad_sidecar_key,
     bad_sidecar_rate_far_too_low,
     bad_nan_run_fail_policy,
     bad_overlap,

@@ -854,6 +854,8 @@ def test_raw_sidecar_problems_name_both_files(tmp_path, data_len, side, pattern)
     assert str(path) in str(err.value) and err.value.path == str(path)
     if "unknown" in pattern or "frames" in pattern:
         assert str(path) + ".toml" in str(err.value)
+    if pattern != "no frames":  # the fix is in the sidecar: the remedy, the message's last clause, names it
+        assert f"its sidecar {path}.toml" in err.value.remedy and str(err.value).endswith(f"; {err.value.remedy}")
 
 
 def test_raw_missing_or_ambiguous_sidecar(tmp_path):
@@ -862,6 +864,9 @@ def test_raw_missing_or_ambiguous_sidecar(tmp_path):
     with pytest.raises(CorruptInputError) as err:
         open_recording(path)
     assert str(path) in str(err.value) and str(path) + ".toml" in str(err.value)
+    assert "\n" not in str(err.value)  # one line, as status lines and logs show it
+    assert err.value.remedy == (f'write its sidecar {path}.toml, one key per line, e.g. dtype = "int16", '
+                                "channels = 2, sample_rate_hz = 1000.0")
     (tmp_path / "lone.raw.toml").write_text('dtype = "int16"\nchannels = 1\n')
     (tmp_path / "lone.json").write_text('{"dtype": "int16", "channels": 1}')
     with pytest.raises(CorruptInputError, match="several sidecars"):

@@ -809,6 +809,11 @@ def _open_info(cfg: JobConfig, abspath: str, fmt: str | None = None) -> tuple[An
     except (TwinpassError, OSError) as e:
         text = _strip_path(str(e), abspath)
         remedy = _REMEDY_EXCLUDE
+        own = getattr(e, "remedy", None)
+        if own and text.endswith(f"; {own}"):
+            # the reader knows the fix (in a sidecar, say): that is the remedy
+            text = text[: -len(own) - 2]
+            remedy = f"{own}, or leave the file out with [archive] exclude"
         if TRUNCATED_HINT in text:
             # the reader's hint names its own option; the remedy names the configuration key
             text = text.replace(f"; {TRUNCATED_HINT}", "")
