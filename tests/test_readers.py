@@ -858,6 +858,20 @@ def test_raw_sidecar_problems_name_both_files(tmp_path, data_len, side, pattern)
         assert f"its sidecar {path}.toml" in err.value.remedy and str(err.value).endswith(f"; {err.value.remedy}")
 
 
+@pytest.mark.parametrize("fmt", ["toml", "json"])
+def test_raw_sidecar_starting_with_a_byte_order_mark_is_read(tmp_path, fmt):
+    # Some editors start UTF-8 text with the byte-order mark EF BB BF (U+FEFF, the Unicode
+    # standard's "UTF-8 signature"); Python's "utf-8-sig" codec skips it, and so does the reader.
+    x = _ints("int16", (50, 2))
+    path = _raw_case(tmp_path, x.astype("<i2").tobytes(), {"dtype": "int16", "channels": 2, "sample_rate_hz": 10.0},
+                     fmt=fmt)
+    side = Path(f"{path}.{fmt}")
+    side.write_bytes(b"\xef\xbb\xbf" + side.read_bytes())
+    with open_recording(path) as rec:
+        assert (rec.info.channels, rec.info.frames, rec.info.sample_rate_hz) == (2, 50, 10.0)
+        assert np.array_equal(rec.read(0, 50), x / 32768.0)
+
+
 def test_raw_missing_or_ambiguous_sidecar(tmp_path):
     path = tmp_path / "lone.raw"
     path.write_bytes(bytes(8))

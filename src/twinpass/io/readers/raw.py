@@ -2,7 +2,8 @@
 
 The sidecar sits next to the data file: ``<file>.toml`` or ``<file>.json`` (e.g.
 ``run1.bin.toml``), or the same name with the suffix replaced (``run1.toml``); the reader
-option ``sidecar`` names one explicitly. Exactly one candidate may exist. Keys:
+option ``sidecar`` names one explicitly. Exactly one candidate may exist. It is UTF-8 text (a
+byte-order mark at its start is skipped). Keys:
 
 =================  ========  ====================================================
 key                required  meaning
@@ -130,11 +131,11 @@ def _load_sidecar(path: str, side: str) -> dict[str, Any]:
     if len(text) > _SIDECAR_MAX_BYTES:
         raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB; {_fix_sidecar(side)}", path=path,
                                 remedy=_fix_sidecar(side))
-    try:
+    try:  # UTF-8; a byte-order mark that some editors write first is not part of the text
         if side.lower().endswith(".json"):
-            doc = json.loads(text.decode("utf-8"))
+            doc = json.loads(text.decode("utf-8-sig"))
         else:
-            doc = tomllib.loads(text.decode("utf-8"))
+            doc = tomllib.loads(text.decode("utf-8-sig"))
     except (ValueError, UnicodeDecodeError, RecursionError) as exc:
         raise CorruptInputError(
             f"{path}: its sidecar {side} cannot be parsed: {exc}; {_fix_sidecar(side)}", path=path,
