@@ -858,6 +858,26 @@ def test_raw_sidecar_problems_name_both_files(tmp_path, data_len, side, pattern)
         assert f"its sidecar {path}.toml" in err.value.remedy and str(err.value).endswith(f"; {err.value.remedy}")
 
 
+@pytest.mark.parametrize(("start", "said"), [
+    ("0001-01-01T00:00:00+05:00", "is before year 1 in UTC"),
+    ("9999-12-31T23:00:00-05:00", "is after year 9999 in UTC"),
+    ("0000-01-01T00:00:00", "is in year 0"),
+])
+def test_a_start_time_outside_years_1_to_9999_is_refused_as_out_of_range(tmp_path, start, said):
+    # Python's datetime holds the years datetime.MINYEAR = 1 to MAXYEAR = 9999; midnight of
+    # 1 January of year 1 at +05:00 is 19:00 of 31 December of year 0 in UTC (ISO 8601 offsets).
+    assert (dt.MINYEAR, dt.MAXYEAR) == (1, 9999)
+    x = _ints("int16", (20, 1)).astype("<i2").tobytes()
+    path = _raw_case(tmp_path, x, {"dtype": "int16", "channels": 1, "sample_rate_hz": 10.0, "start_time": start})
+    arr = zarr.create_array(store=str(tmp_path / "a.zarr"), shape=(20,), dtype="int16")
+    arr.attrs.update(sample_rate_hz=10.0, start_time=start)
+    for p in (path, tmp_path / "a.zarr"):
+        with pytest.raises(CorruptInputError) as err:
+            open_recording(p)
+        assert f"start_time {start!r} {said}, outside the times twinpass can hold (years 1 to 9999)" in str(err.value)
+        assert "ISO 8601" not in str(err.value)
+
+
 @pytest.mark.parametrize("fmt", ["toml", "json"])
 def test_raw_sidecar_starting_with_a_byte_order_mark_is_read(tmp_path, fmt):
     # Some editors start UTF-8 text with the byte-order mark EF BB BF (U+FEFF, the Unicode
