@@ -650,6 +650,40 @@ def test_npy_truncated(tmp_path):
         assert np.array_equal(rec.read(0, 69), x[:69] / 32768.0)
 
 
+@pytest.mark.parametrize(("old", "new", "said"), [
+    (b"{'descr'", b"{garbage", "is damaged at byte 11: 'garbage' is not a literal value; it must be the Python dict "
+                               "literal numpy writes"),
+    (b"(100, 2)", b"f(100,2)", "is damaged at byte {at}: 'f(100,2)' is not a literal value"),
+    (b"'descr'", b"'dxscr'", "is damaged: Header does not contain the correct keys"),
+])
+def test_a_damaged_npy_header_names_the_byte_and_the_fault(tmp_path, old, new, said):
+    # NPY format (numpy.lib.format, version 1.0): 6 magic bytes, 2 version bytes, the header
+    # length as little-endian uint16 at byte 8, then the header text from byte 10: a Python
+    # dict literal of 'descr', 'fortran_order' and 'shape' (np.save writes it).
+    buf = io.BytesIO()
+    np.save(buf, _ints("int16", (100, 2)))
+    blob = buf.getvalue()
+    assert blob[6:8] == b"\x01\x00" and len(old) == len(new)
+    n = int.from_bytes(blob[8:10], "little")
+    path = _write(tmp_path / "h.npy", blob.replace(old, new, 1))
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(path, options={"sample_rate_hz": 1.0})
+    msg = str(err.value)
+    assert msg.startswith(f"{path}: the NPY header ({n} bytes of text from byte 10) ")
+    assert said.format(at=blob.find(old)) in msg and "<ast." not in msg, msg
+
+
+def test_an_npy_header_cut_short_says_where_the_file_ends(tmp_path):
+    buf = io.BytesIO()
+    np.save(buf, _ints("int16", (100, 2)))
+    blob = buf.getvalue()
+    n = int.from_bytes(blob[8:10], "little")  # header length, numpy.lib.format version 1.0
+    path = _write(tmp_path / "cut.npy", blob[:40])
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(path, options={"sample_rate_hz": 1.0})
+    assert str(err.value) == f"{path}: the NPY header ({n} bytes of text from byte 10) is cut short: the file ends at byte 40"
+
+
 class _CyclicWithFinalizer:
     """Garbage whose collection runs Python code (a finalizer), where threads can switch."""
 
@@ -736,7 +770,7 @@ def test_npy_header_parse_tried_again_after_the_spurious_ast_error(tmp_path, mon
     monkeypatch.setattr(npformat, "read_array_header_1_0", always)
     npy._parse_header.cache_clear()
     calls.clear()
-    with pytest.raises(CorruptInputError, match="NPY header is damaged .*something else"):
+    with pytest.raises(CorruptInputError, match="NPY header .*is damaged: something else"):
         open_recording(path)
     assert len(calls) == 1
 
