@@ -1008,6 +1008,29 @@ def test_zarr_array_inside_group(tmp_path):
         open_recording(tmp_path / "missing.zarr")
 
 
+@pytest.mark.parametrize(("fmt", "meta"), [(3, "zarr.json"), (2, ".zarray")])
+def test_damaged_zarr_metadata_is_named(tmp_path, fmt, meta):
+    # Zarr format 3 keeps an array's metadata in zarr.json, format 2 in .zarray (the Zarr
+    # specifications; zarr-python writes them below); JSON text cut short does not parse.
+    store = tmp_path / "a.zarr"
+    zarr.create_array(store, shape=(20,), dtype="float32", zarr_format=fmt)[:] = 1.0
+    blob = (store / meta).read_bytes()
+    (store / meta).write_bytes(blob[: len(blob) // 2])
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(store, options={"sample_rate_hz": 10})
+    assert str(err.value).startswith(f"{store}: its metadata file {store / meta} is damaged (JSONDecodeError: ")
+    assert err.value.remedy == f"restore {store / meta} from a copy, or re-export the array"
+    assert str(err.value).endswith(f"; {err.value.remedy}")
+
+
+def test_a_zarr_folder_without_metadata_says_so(tmp_path):
+    (tmp_path / "empty.zarr").mkdir()
+    with pytest.raises(InputError) as err:
+        open_recording(tmp_path / "empty.zarr")
+    assert str(err.value).endswith(f"; the folder {tmp_path / 'empty.zarr'} holds no zarr.json (nor .zarray, "
+                                   "for Zarr format 2)")
+
+
 # ----------------------------------------------------------------------------- specs, read-only
 
 

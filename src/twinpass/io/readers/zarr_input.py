@@ -11,6 +11,7 @@ else unknown) and ``start_time`` (ISO 8601; no zone = UTC). Integer arrays are s
 
 from __future__ import annotations
 
+import json
 import os
 from typing import Any
 
@@ -33,6 +34,8 @@ from ._common import (
 from .base import Reader, ReaderSpec, RecordingInfo
 
 _MARKERS = ("zarr.json", ".zarray", ".zgroup")
+_METADATA = ("zarr.json", ".zarray", ".zattrs")
+"""An array's metadata files: ``zarr.json`` (Zarr format 3), ``.zarray`` and ``.zattrs`` (format 2)."""
 _NAMED = 5
 """Damaged chunks named in an error (the rest are counted)."""
 
@@ -210,9 +213,26 @@ class ZarrReader(Reader):
                 f"or with the option array: {listed}",
                 path=store,
             )
+        folder = os.path.join(store, *arr_path.split("/")) if arr_path else store
+        local = not is_url(store)
+        present = [os.path.join(folder, m) for m in _METADATA if local and os.path.isfile(os.path.join(folder, m))]
         missing = (FileNotFoundError, getattr(zarr.errors, "NodeNotFoundError", FileNotFoundError))
         if isinstance(exc, missing):
-            return InputError(f"{shown}: no Zarr array at this location ({exc})", path=store)
+            none = (f"; the folder {folder} holds no zarr.json (nor .zarray, for Zarr format 2)"
+                    if local and not present and os.path.isdir(folder) else "")
+            return InputError(f"{shown}: no Zarr array at this location ({exc}){none}", path=store)
+        for meta in present:
+            try:
+                with open(meta, "rb") as fh:
+                    json.loads(fh.read())
+            except (OSError, ValueError) as bad:
+                fix = f"restore {meta} from a copy, or re-export the array"
+                return CorruptInputError(
+                    f"{shown}: its metadata file {meta} is damaged ({type(bad).__name__}: {bad}); {fix}",
+                    path=store,
+                    remedy=fix,
+                )
+        what = f": its metadata file {present[0]} was refused" if present else ""
         return CorruptInputError(
-            f"{shown}: cannot be opened as a Zarr array ({type(exc).__name__}: {exc})", path=store
+            f"{shown}: cannot be opened as a Zarr array{what} ({type(exc).__name__}: {exc})", path=store
         )
