@@ -897,3 +897,34 @@ def test_a_wide_file_above_the_channel_limit_is_left_out_naming_the_setting(tmp_
     assert reasons(disc) == {"wide.npy": "12 channels, more than [archive] max_channels = 8 | raise [archive] "
                                          "max_channels to 12 or more if it really holds 12 channels, or leave it "
                                          "out with [archive] exclude"}
+
+
+def test_an_overlap_names_where_the_start_times_were_read(tmp_path):
+    # Broadcast WAVE bext (EBU Tech 3285): OriginationDate/OriginationTime give the start; two
+    # files of one folder (one stream) 400 frames at 8000 Hz (50 ms) long, the second starting
+    # 20 ms into the first, a third at the very start of the second. Which source is named is a
+    # twinpass rule: where each start time was read.
+    root = tmp_path / "archive"
+    for rel in ("field/a.wav", "field/b.wav", "field/c.wav"):
+        wav(root, rel, 400)
+    add_bext(root / "field/a.wav", "2024-05-02", "06:30:00")
+    for rel in ("field/b.wav", "field/c.wav"):  # TimeReference: samples since midnight (at 8000 Hz)
+        add_bext(root / rel, "2024-05-02", "00:00:00")
+        blob = bytearray((root / rel).read_bytes())
+        at = blob.index(b"bext") + 8 + 338
+        blob[at:at + 8] = struct.pack("<Q", (6 * 3600 + 30 * 60) * 8000 + 160)
+        (root / rel).write_bytes(bytes(blob))
+    disc = discover(job(tmp_path))
+    assert by_path(disc)["field/a.wav"].start_source == "the file's bext chunk"
+    assert reasons(disc)["field/c.wav"].startswith("same stream 'field' and start time")
+    _, bad = disc.segments()
+    (over,) = [b for b in bad if b.path == "field/b.wav"]
+    assert over.reason.startswith("overlaps field/a.wav of stream 'field' by 240.0 samples")
+    assert over.remedy.startswith("correct the start time of one of the two files (in the file's bext chunk), ")
+    # the same files named by a manifest: the manifest is where to correct them
+    (tmp_path / "m.csv").write_text("path,stream,start_time\n"
+                                    "field/a.wav,f,2024-05-02T06:30:00Z\nfield/b.wav,f,2024-05-02T06:30:00.02Z\n")
+    disc = discover(job(tmp_path, manifest="m.csv", exclude=("field/c.wav",)))
+    _, bad = disc.segments()
+    (over,) = bad
+    assert over.remedy.startswith(f"correct the start time of one of the two files (in the manifest {tmp_path / 'm.csv'}), ")

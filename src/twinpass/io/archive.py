@@ -1184,6 +1184,32 @@ def _identify_stage_array(
     )
 
 
+def _start_source(
+    cfg: JobConfig, rel: str, info: Any, start: _dt.datetime | None, manifest: dict[str, _Row] | None,
+    pattern: NamePattern | None, stage: bool,
+) -> str | None:
+    """Where the start time ``start`` that :func:`_identify` (``stage``: :func:`_identify_stage_array`)
+    gave ``rel`` was read, for messages (:attr:`FileEntry.start_source`); ``None`` without one."""
+    if start is None:
+        return None
+    if manifest is not None and rel in manifest:
+        return f"the manifest {cfg.manifest_path}"
+    if pattern is not None and not stage:
+        return "the file name, read with [archive] name_pattern"
+    return _stored_where(info)
+
+
+def _stored_where(info: Any) -> str:
+    """Where a reader found the start time stored with a recording, for messages."""
+    if info.format == "wav":
+        return "the file's bext chunk"
+    if info.extra.get("sidecar"):
+        return "the file's sidecar (start_time)"
+    if info.format == "zarr":
+        return "the array's attribute start_time"
+    return "the time stored in the file"
+
+
 def output_name(entry: FileEntry) -> str:
     """The output array name of a discovered file: :attr:`FileEntry.output_name` when
     discovery set one (an array of an earlier job's output store), else
@@ -1305,6 +1331,7 @@ def _examine(
             attrs = _finished_array_attrs(where)
             info, spec = _open_info(cfg, abspath, "zarr")
             stream, start = _identify_stage_array(cfg, rel, info, attrs, manifest)
+        source = _start_source(cfg, rel, info, start, manifest, pattern, where is not None)
         # Labels change no sample: a list that does not fit leaves that label off the
         # output (a note says so), and the file is filtered as usual.
         mismatched: list[LabelMismatch] = []
@@ -1335,7 +1362,7 @@ def _examine(
         notes.append(f"{rel}: {note}")
     notes += [f"{rel}: {n}" for n in label_notes]
     entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills,
-                      output_name=out_name, channel_names=labels.names, units=labels.units)
+                      output_name=out_name, channel_names=labels.names, units=labels.units, start_source=source)
     return entry, notes, scan_entry, was_scanned
 
 
