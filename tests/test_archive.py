@@ -928,3 +928,36 @@ def test_an_overlap_names_where_the_start_times_were_read(tmp_path):
     _, bad = disc.segments()
     (over,) = bad
     assert over.remedy.startswith(f"correct the start time of one of the two files (in the manifest {tmp_path / 'm.csv'}), ")
+
+
+def test_files_selected_but_for_a_suffix_their_reader_accepts_are_noted(tmp_path):
+    # The WAV reader opens .wav, .wave, .bwf (Broadcast WAVE, EBU Tech 3285) and .rf64 (EBU
+    # Tech 3306) files; "**/*.wav" selects only the first, so discovery notes the others, as
+    # it notes A.WAV, rather than leaving them out silently.
+    root = tmp_path / "archive"
+    wav(root, "s1/a.wav", 800)
+    for rel in ("s1/b.bwf", "s1/c.rf64", "s1/d.wave", "skip/e.bwf", "s1/notes.txt"):
+        wav(root, rel, 800)
+    disc = discover(job(tmp_path, include=("**/*.wav",), exclude=("skip/**",)))
+    assert [f.relpath for f in disc.files] == ["s1/a.wav"]
+    (note,) = [w for w in disc.warnings if "suffix" in w]
+    assert note.startswith("3 file(s) have a suffix that their reader accepts as well as the one [archive] include "
+                           "selects, but were not selected: s1/b.bwf, s1/c.rf64, s1/d.wave; add patterns for them "
+                           '(e.g. "**/*.bwf", "**/*.rf64", "**/*.wave")'), note
+    disc = discover(job(tmp_path, include=("**/*.wav", "**/*.bwf", "**/*.rf64", "**/*.wave"), exclude=("skip/**",)))
+    assert len(disc.files) == 4 and not [w for w in disc.warnings if "suffix" in w]
+
+
+def test_an_empty_folder_named_like_a_recording_is_noted(tmp_path):
+    root = tmp_path / "archive"
+    wav(root, "s1/a.wav", 800)
+    (root / "s1" / "b.wav").mkdir()  # a folder, not a recording
+    wav(root, "s2/c.wav/inner.wav", 800)  # a folder named like one, holding one: read, not noted
+    (root / "s3" / "plain").mkdir(parents=True)  # no recording's name: not noted
+    disc = discover(job(tmp_path, include=("**/*.wav",)))
+    assert sorted(f.relpath for f in disc.files) == ["s1/a.wav", "s2/c.wav/inner.wav"] and disc.invalid == ()
+    (note,) = [w for w in disc.warnings if "folder" in w]
+    assert note.startswith("1 folder(s) named like recordings match [archive] include but hold no file it selects: "
+                           "s1/b.wav/; a recording is a file"), note
+    disc = discover(job(tmp_path, include=("**/*.wav",), exclude=("s1/b.wav",)))
+    assert not [w for w in disc.warnings if "folder" in w]

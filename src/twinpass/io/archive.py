@@ -11,7 +11,9 @@ Zarr metadata) is a candidate like a file and is not searched further. Symbolic 
 folders are followed once (no loops). The output store, the manifest and anything reached
 through a link into the output store are never taken as input. Globs match letter case
 exactly; files that one would select but for the case (``A.WAV`` against ``**/*.wav``) are
-noted, not selected. A folder that cannot be
+noted, not selected, and so are files that one would select but for a suffix their reader
+accepts too (``a.bwf`` against ``**/*.wav``) and folders named like a recording that the globs
+select but that hold none (an empty folder ``x.wav``). A folder that cannot be
 listed is reported (as ``FOLDER/``), and the files recorded under it are not taken as
 removed. Only regular files (after
 following symbolic links) are opened: a named pipe, socket, device or broken link that the
@@ -174,7 +176,7 @@ from twinpass.io.readers._common import (
     WRAPPED_REWRITE,
     file_kind,
 )
-from twinpass.io.readers.registry import open_recording, reader_for
+from twinpass.io.readers.registry import available_readers, get_reader, open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_input import (
     INPUT_GONE,
@@ -429,6 +431,9 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     found: list[str] = []
     refused: list[InvalidFile] = []
     case_only: list[str] = []
+    suffix_only: list[str] = []
+    folders: list[str] = []  # folders named like a recording that the globs select
+    aliases = _suffix_aliases()
     seen_dirs: set[str] = set()
     arrays: dict[str, tuple[str, str]] = {}
     notes: list[str] = []
@@ -437,6 +442,14 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         """Note ``rel`` if an include glob selects it but for the letter case (and no exclude does)."""
         if any(rx.match(rel) for rx in include_any_case) and not any(rx.match(rel) for rx in exclude):
             case_only.append(_shown(rel))
+
+    def by_suffix_only(rel: str) -> None:
+        """Note ``rel`` if an include glob selects it but for its suffix, another that its reader
+        accepts too (``a.bwf`` against ``**/*.wav``), and no exclude glob leaves it out."""
+        sfx = PurePosixPath(rel).suffix
+        probes = [rel[: len(rel) - len(sfx)] + alt for alt in aliases.get(sfx.lower(), ())]
+        if _selected_any(probes, include, []) and not any(rx.match(rel) for rx in exclude):
+            suffix_only.append(_shown(rel))
 
     def take_store(folder: str, rel: str | None) -> None:
         """The arrays of the output store at ``folder`` as candidates; ``rel`` is the store's
@@ -550,12 +563,17 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 elif not any(_inside(real_dir, f) for f in fenced):
                     by_case_only(rel)
                 continue
+            if PurePosixPath(name).suffix.lower() in aliases and _selected(rel, include, exclude):
+                folders.append(rel)  # named like a recording (x.wav): noted unless it holds one
             keep.append(name)
         dirnames[:] = keep
         for name in sorted(filenames):
             rel = name if rel_dir == "." else f"{rel_dir}/{name}"
             if not _selected(rel, include, exclude):
+                noted = len(case_only)
                 by_case_only(rel)
+                if len(case_only) == noted:
+                    by_suffix_only(rel)
                 continue
             real_file = os.path.realpath(os.path.join(dirpath, name))
             if real_file in skip_files or any(_inside(real_file, f) for f in fenced):
@@ -565,8 +583,39 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 refused.append(bad)
                 continue
             found.append(rel)
+    if suffix_only:
+        notes.append(_suffix_note(sorted(suffix_only)))
+    taken = [*found, *(b.path for b in refused)]
+    empty = [_shown(d) for d in folders if not any(p.startswith(f"{d}/") for p in taken)]
+    if empty:
+        shown = ", ".join(f"{d}/" for d in empty[:5]) + (f" and {len(empty) - 5} more" if len(empty) > 5 else "")
+        notes.append(
+            f"{len(empty)} folder(s) named like recordings match [archive] include but hold no file it selects: "
+            f"{shown}; a recording is a file (only a Zarr array is a folder), so they were not read: put the "
+            "recording there as a file, or leave them out with [archive] exclude"
+        )
     return ArchiveListing(sorted(found), sorted(refused, key=lambda b: b.path), sorted(case_only), arrays,
                           tuple(notes))
+
+
+def _suffix_aliases() -> dict[str, tuple[str, ...]]:
+    """For each file suffix a reader claims (lower case), the other suffixes of that reader
+    (``".bwf"``: ``".wav"``, ``".wave"``, ``".rf64"``)."""
+    out: dict[str, tuple[str, ...]] = {}
+    for name in available_readers():
+        suffixes = tuple(str(x).lower() for x in getattr(get_reader(name), "suffixes", ()) or ())
+        for sfx in suffixes:
+            out.setdefault(sfx, tuple(x for x in suffixes if x != sfx))
+    return out
+
+
+def _suffix_note(names: list[str]) -> str:
+    """The note for files that [archive] include selects but for a suffix their reader accepts too."""
+    shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+    return (
+        f"{len(names)} file(s) have a suffix that their reader accepts as well as the one [archive] include "
+        f"selects, but were not selected: {shown}; add patterns for them (e.g. {_case_globs(names)}) to include them"
+    )
 
 
 # -- name patterns -----------------------------------------------------------
