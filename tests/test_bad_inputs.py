@@ -230,14 +230,16 @@ def bad_zero_byte_raw(root: Path) -> Expect:
 def bad_raw_without_sidecar(root: Path) -> Expect:
     rel = stem("nosidecar") + ".bin"
     put(root, rel, pcm16(400).tobytes())
-    return {rel: (["needs a sidecar", f"{rel}.toml", 'dtype = "int16"'], [REMEDY_EXCLUDE])}
+    return {rel: (["needs a sidecar", f"{rel}.toml"],
+                  [f"write its sidecar {root / rel}.toml", 'dtype = "int16", channels = 2', REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_frames_contradict_size(root: Path) -> Expect:
     rel = stem("sidecarframes") + ".bin"
     put(root, rel, pcm16(400).tobytes())
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\nframes = 500\n')
-    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes", "fix frames"], [REMEDY_EXCLUDE])}
+    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes"],
+                  [f"fix frames (or dtype, channels, header_bytes) in its sidecar {root / rel}.toml", REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
@@ -245,7 +247,15 @@ def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
     put(root, rel, bytes(801))  # 801 bytes cannot be whole 2-byte frames
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
     return {rel: (["801 data bytes", "not a whole number of 2-byte frames", "400 frames + 1 bytes"],
-                  [REMEDY_EXCLUDE])}
+                  [f"check dtype, channels and header_bytes in its sidecar {root / rel}.toml", REMEDY_EXCLUDE])}
+
+
+def bad_sidecar_key(root: Path) -> Expect:
+    rel = stem("sidecarkey") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = "1"\nsample_rate_hz = 100.0\n')
+    return {rel: (["channels must be an integer >= 1, got '1'"], [f"correct its sidecar {root / rel}.toml",
+                                                                  REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
@@ -304,6 +314,7 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_raw_without_sidecar,
     bad_sidecar_frames_contradict_size,
     bad_sidecar_dtype_contradicts_size,
+    bad_sidecar_key,
     bad_sidecar_rate_far_too_low,
     bad_nan_run_fail_policy,
     bad_overlap,
@@ -606,7 +617,8 @@ def test_config_refuses_nan_and_infinite_numbers(table, key, value):
 # Valid ranges as the settings' docstrings in twinpass.config and README "Checks, status and
 # report" state them: seam_samples in [0, 4096] (0 = seam check off), coherence_min in [0, 1], the
 # passband and phase thresholds >= 0 with warn <= fail (grade() warns above the first and fails
-# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0.
+# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0,
+# max_channels >= 1.
 OUT_OF_RANGE = [
     ("checks", "seam_samples = -3", "seam_samples = -3", "0 turns the seam check off"),
     ("checks", "seam_samples = 4097", "seam_samples = 4097", "[0, 4096]"),
@@ -625,6 +637,7 @@ OUT_OF_RANGE = [
     ("processing", "carry_threshold = 0.0", "carry_threshold = 0.0", 'set mode = "carry" or "halo"'),
     ("processing", "carry_threshold = -1.0", "carry_threshold = -1.0", "> 0"),
     ("archive", "sample_rate_hz = 0.0", "sample_rate_hz = 0.0", "> 0"),
+    ("archive", "max_channels = 0", "max_channels = 0", ">= 1"),
 ]
 
 
@@ -647,6 +660,7 @@ def test_config_refuses_values_out_of_their_documented_range(table, lines, named
     ("flow", "retries = 0\nretry_delay_seconds = 0.0"),
     ("engine", "retry_backoff_seconds = 0.0"),
     ("processing", "carry_threshold = 0.01"),
+    ("archive", "max_channels = 1"),
 ])
 def test_config_accepts_the_ends_of_the_documented_ranges(table, lines):
     parse_config(_BASE + f"[{table}]\n{lines}\n", source="job.toml")

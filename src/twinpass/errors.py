@@ -28,11 +28,14 @@ class KernelError(TwinpassError, ValueError):
 
 
 class InputError(TwinpassError):
-    """An input recording cannot be used. ``path`` names the file when known."""
+    """An input recording cannot be used. ``path`` names the file when known; ``remedy``,
+    when given, is what to do, as the message's last clause (after "; "), for a fix that is
+    not in the file itself (its sidecar, say)."""
 
-    def __init__(self, message: str, path: str | None = None) -> None:
+    def __init__(self, message: str, path: str | None = None, remedy: str | None = None) -> None:
         super().__init__(message)
         self.path = path
+        self.remedy = remedy
 
 
 class UnsupportedFormatError(InputError):

@@ -2,7 +2,8 @@
 
 The sidecar sits next to the data file: ``<file>.toml`` or ``<file>.json`` (e.g.
 ``run1.bin.toml``), or the same name with the suffix replaced (``run1.toml``); the reader
-option ``sidecar`` names one explicitly. Exactly one candidate may exist. Keys:
+option ``sidecar`` names one explicitly. Exactly one candidate may exist. It is UTF-8 text (a
+byte-order mark at its start is skipped). Keys:
 
 =================  ========  ====================================================
 key                required  meaning
@@ -72,7 +73,13 @@ SIDECAR_KEYS = (
     "units",
 )
 _SIDECAR_MAX_BYTES = 1 << 20
-_EXAMPLE = 'dtype = "int16"\nchannels = 2\nsample_rate_hz = 1000.0'
+_EXAMPLE = 'dtype = "int16", channels = 2, sample_rate_hz = 1000.0'
+"""The keys a sidecar needs, written inline for a one-line message (one key per line in the file)."""
+
+
+def _fix_sidecar(side: str) -> str:
+    """The remedy of a reader error whose fix is in the sidecar ``side``."""
+    return f"correct its sidecar {side}"
 
 
 def sidecar_candidates(path: str) -> list[str]:
@@ -96,14 +103,17 @@ def _find_sidecar(path: str, explicit: Any) -> str:
     cands = sidecar_candidates(path)
     found = [c for c in cands if os.path.isfile(c)]
     if not found:
+        remedy = f"write its sidecar {cands[0]}, one key per line, e.g. {_EXAMPLE}"
         raise CorruptInputError(
             f"{path}: raw data needs a sidecar describing it; none found (looked for "
-            f"{', '.join(cands)}). Write {cands[0]} such as:\n{_EXAMPLE}",
+            f"{', '.join(cands)}); {remedy}",
             path=path,
+            remedy=remedy,
         )
     if len(found) > 1:
+        remedy = "keep exactly one of its sidecars (delete or rename the others)"
         raise CorruptInputError(
-            f"{path}: several sidecars found ({', '.join(found)}); keep exactly one", path=path
+            f"{path}: several sidecars found ({', '.join(found)}); {remedy}", path=path, remedy=remedy
         )
     return found[0]
 
@@ -119,25 +129,32 @@ def _load_sidecar(path: str, side: str) -> dict[str, Any]:
     except OSError as exc:
         raise CorruptInputError(f"{path}: cannot read its sidecar {side} ({exc})", path=path) from None
     if len(text) > _SIDECAR_MAX_BYTES:
-        raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB", path=path)
-    try:
+        raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB; {_fix_sidecar(side)}", path=path,
+                                remedy=_fix_sidecar(side))
+    try:  # UTF-8; a byte-order mark that some editors write first is not part of the text
         if side.lower().endswith(".json"):
-            doc = json.loads(text.decode("utf-8"))
+            doc = json.loads(text.decode("utf-8-sig"))
         else:
-            doc = tomllib.loads(text.decode("utf-8"))
+            doc = tomllib.loads(text.decode("utf-8-sig"))
     except (ValueError, UnicodeDecodeError, RecursionError) as exc:
-        raise CorruptInputError(f"{path}: its sidecar {side} cannot be parsed: {exc}", path=path) from None
+        raise CorruptInputError(
+            f"{path}: its sidecar {side} cannot be parsed: {exc}; {_fix_sidecar(side)}", path=path,
+            remedy=_fix_sidecar(side),
+        ) from None
     if not isinstance(doc, dict):
         raise CorruptInputError(
-            f"{path}: its sidecar {side} must hold a table/object of keys, not {type(doc).__name__}",
+            f"{path}: its sidecar {side} must hold a table/object of keys, not {type(doc).__name__}; "
+            f"{_fix_sidecar(side)}",
             path=path,
+            remedy=_fix_sidecar(side),
         )
     unknown = sorted(str(k) for k in doc if k not in SIDECAR_KEYS)
     if unknown:
         raise CorruptInputError(
             f"{path}: its sidecar {side} has unknown key(s) {', '.join(map(repr, unknown))}; "
-            f"allowed keys: {', '.join(SIDECAR_KEYS)}",
+            f"allowed keys: {', '.join(SIDECAR_KEYS)}; {_fix_sidecar(side)}",
             path=path,
+            remedy=_fix_sidecar(side),
         )
     return doc
 
@@ -251,32 +268,37 @@ class RawReader(FileReader):
                 labels = {}
                 label_warnings = (f"{exc}; the sidecar's channel_names and units are not used until this is "
                                   "corrected (the samples are read as usual)",)
-        except CorruptInputError as exc:
-            exc.path = path
-            raise
+        except InputError as exc:  # a key of the sidecar: the fix is there
+            fix = _fix_sidecar(side)
+            raise type(exc)(f"{exc}; {fix}", path=path, remedy=fix) from None
         rate = resolve_rate(path, rate, f"sidecar {side}", rate_opt)
         frame = codec.itemsize * channels
         payload = size - header
         if payload < 0:
+            fix = f"fix header_bytes in its sidecar {side}"
             raise CorruptInputError(
-                f"{path}: the file has {size} bytes, fewer than header_bytes = {header} in its sidecar "
-                f"{side}; fix header_bytes",
+                f"{path}: the file has {size} bytes, fewer than header_bytes = {header} in its sidecar; {fix}",
                 path=path,
+                remedy=fix,
             )
         frames, rest = divmod(payload, frame)
         if rest:
+            fix = (f"check dtype, channels and header_bytes in its sidecar {side}, or cut the partial frame "
+                   "from the data file")
             raise CorruptInputError(
                 f"{path}: {payload} data bytes (file size {size} - header_bytes {header}) are not a whole "
                 f"number of {frame}-byte frames ({channels} channels x {codec.itemsize} bytes): "
-                f"{frames} frames + {rest} bytes. Check dtype, channels and header_bytes in {side}, "
-                "or cut the partial frame from the data file",
+                f"{frames} frames + {rest} bytes; {fix}",
                 path=path,
+                remedy=fix,
             )
         if expected is not None and expected != frames:
+            fix = f"fix frames (or dtype, channels, header_bytes) in its sidecar {side}"
             raise CorruptInputError(
-                f"{path}: its sidecar {side} declares frames = {expected} but the file holds {frames} "
-                f"frames of {frame} bytes; fix frames (or dtype/channels/header_bytes) in the sidecar",
+                f"{path}: its sidecar declares frames = {expected} but the file holds {frames} "
+                f"frames of {frame} bytes; {fix}",
                 path=path,
+                remedy=fix,
             )
         if frames == 0:
             raise CorruptInputError(

@@ -11,6 +11,7 @@ else unknown) and ``start_time`` (ISO 8601; no zone = UTC). Integer arrays are s
 
 from __future__ import annotations
 
+import json
 import os
 from typing import Any
 
@@ -21,6 +22,7 @@ from ._common import (
     READABLE,
     Codec,
     WindowRecording,
+    channel_major_note,
     check_options,
     is_url,
     normalize_path,
@@ -32,6 +34,8 @@ from ._common import (
 from .base import Reader, ReaderSpec, RecordingInfo
 
 _MARKERS = ("zarr.json", ".zarray", ".zgroup")
+_METADATA = ("zarr.json", ".zarray", ".zattrs")
+"""An array's metadata files: ``zarr.json`` (Zarr format 3), ``.zarray`` and ``.zattrs`` (format 2)."""
 _NAMED = 5
 """Damaged chunks named in an error (the rest are counted)."""
 
@@ -182,6 +186,7 @@ class ZarrReader(Reader):
             sample_format=dtype.name,
             start_time=start,
             full_scale=codec.full_scale,
+            warnings=tuple(n for n in (channel_major_note(shape),) if n is not None),
             extra={"store": store, "array": arr_path, "chunks": tuple(int(c) for c in array.chunks)},
         )
         return ZarrRecording(info, ReaderSpec.create(self.name, store, spec_opts), array, codec)
@@ -208,9 +213,26 @@ class ZarrReader(Reader):
                 f"or with the option array: {listed}",
                 path=store,
             )
+        folder = os.path.join(store, *arr_path.split("/")) if arr_path else store
+        local = not is_url(store)
+        present = [os.path.join(folder, m) for m in _METADATA if local and os.path.isfile(os.path.join(folder, m))]
         missing = (FileNotFoundError, getattr(zarr.errors, "NodeNotFoundError", FileNotFoundError))
         if isinstance(exc, missing):
-            return InputError(f"{shown}: no Zarr array at this location ({exc})", path=store)
+            none = (f"; the folder {folder} holds no zarr.json (nor .zarray, for Zarr format 2)"
+                    if local and not present and os.path.isdir(folder) else "")
+            return InputError(f"{shown}: no Zarr array at this location ({exc}){none}", path=store)
+        for meta in present:
+            try:
+                with open(meta, "rb") as fh:
+                    json.loads(fh.read())
+            except (OSError, ValueError) as bad:
+                fix = f"restore {meta} from a copy, or re-export the array"
+                return CorruptInputError(
+                    f"{shown}: its metadata file {meta} is damaged ({type(bad).__name__}: {bad}); {fix}",
+                    path=store,
+                    remedy=fix,
+                )
+        what = f": its metadata file {present[0]} was refused" if present else ""
         return CorruptInputError(
-            f"{shown}: cannot be opened as a Zarr array ({type(exc).__name__}: {exc})", path=store
+            f"{shown}: cannot be opened as a Zarr array{what} ({type(exc).__name__}: {exc})", path=store
         )
