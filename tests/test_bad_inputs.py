@@ -256,6 +256,14 @@ def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
     return {rel: (["400 frames at 1e-30 Hz", "would end after year 9999"], ["check the sample rate"])}
 
 
+def bad_sidecar_gain_zero(root: Path) -> Expect:
+    # y = x * gain + offset with gain 0 is the offset alone: no signal left (twinpass rule: refused)
+    rel = stem("sidecargain") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\ngain = 0.0\n')
+    return {rel: ([f"{rel}.toml: gain = 0", "set gain to"], [REMEDY_EXCLUDE])}
+
+
 def bad_nan_run_fail_policy(root: Path) -> Expect:
     rel = stem("nanfail") + ".wav"
     x = noise(1000, 2).astype(np.float32)
@@ -305,6 +313,7 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_sidecar_frames_contradict_size,
     bad_sidecar_dtype_contradicts_size,
     bad_sidecar_rate_far_too_low,
+    bad_sidecar_gain_zero,
     bad_nan_run_fail_policy,
     bad_overlap,
     bad_hidden_output_name,

@@ -16,7 +16,7 @@ key                required  meaning
 ``sample_rate_hz`` no        Hz; else the ``sample_rate_hz`` option, else unknown
 ``header_bytes``   no        bytes to skip at the start of the file (default 0)
 ``start_time``     no        ISO 8601 time of the first sample (no zone = UTC)
-``gain``           no        ``y = x_scaled * gain + offset`` (default 1)
+``gain``           no        ``y = x_scaled * gain + offset`` (default 1; not 0)
 ``offset``         no        (default 0)
 ``frames``         no        expected frame count, checked against the file size
 ``channel_names``  no        one name per channel (distinct, not empty), e.g.
@@ -199,6 +199,11 @@ def _codec(doc: dict[str, Any], where: str, path: str) -> Codec:
         )
     gain = _float_key(doc, "gain", 1.0, where)
     offset = _float_key(doc, "offset", 0.0, where)
+    if gain == 0.0:
+        raise CorruptInputError(
+            f"{where}: gain = 0 makes every sample equal to the offset ({offset:g}), leaving no signal to "
+            "filter; set gain to the factor from the stored values to physical units (1 when they need none)"
+        )
     if name.strip().lower() == "int24":
         return Codec("i", 3, order, gain, offset)
     try:
