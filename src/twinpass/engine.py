@@ -305,7 +305,7 @@ def run_block(job: BlockJob) -> BlockResult:
         if job.write:
             from .io.store import write_block_data
 
-            with np.errstate(over="ignore"):  # beyond the output type: counted as clipped, stored as inf
+            with np.errstate(over="ignore"):  # beyond the output type: stored as inf, counted as clipped (fails)
                 stored = y.astype(job.out_dtype)
             write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
                              stored, sync=job.sync, fence=job.fence)

@@ -438,7 +438,7 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
         status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
         from .io.store import write_block_data
 
-        with np.errstate(over="ignore"):  # beyond the output type: counted as clipped, stored as inf
+        with np.errstate(over="ignore"):  # beyond the output type: stored as inf, counted as clipped (fails)
             stored = y.astype(job.out_dtype)
         write_block_data(job.store_location, p.array_name, p.start - job.edge_samples - p.file_offset,
                          stored, sync=job.sync, fence=job.fence)
