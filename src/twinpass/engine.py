@@ -1296,10 +1296,11 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
 
 def inputs_changed_during_run(seg: SegmentWork) -> dict[str, str]:
     """The input files of ``seg`` that changed since the run planned them (fingerprint
-    taken at discovery), with how: :func:`twinpass.io.fingerprint.changed_since`."""
+    taken at discovery), their sidecars included, with how:
+    :func:`twinpass.io.fingerprint.changed_since`."""
     out = {}
     for fw in seg.files:
-        how = changed_since(fw.spec.path, fw.fingerprint)
+        how = changed_since(fw.spec.path, fw.fingerprint, fw.spec)
         if how is not None:
             out[fw.relpath] = how
     return out
@@ -1308,8 +1309,8 @@ def inputs_changed_during_run(seg: SegmentWork) -> dict[str, str]:
 def _moved_message(relpath: str, moved: dict[str, str]) -> str:
     """Why ``relpath`` is not marked complete: inputs of its segment (``moved``: path -> how)
     changed while the run read them."""
-    outcome = ("the output is not marked complete, since it may mix samples from before and after the change: "
-               "rerun to filter the new contents")
+    outcome = ("the output is not marked complete, since it was filtered, in part or in whole, from the file as it "
+               "was before the change: rerun to filter the new contents")
     if set(moved) == {relpath}:
         return f"the file changed while this run read it ({moved[relpath]}); {outcome}"
     which = "; ".join(f"{rel}: {how}" for rel, how in sorted(moved.items()))
