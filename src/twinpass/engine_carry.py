@@ -115,6 +115,7 @@ from .engine import (
     record_result,
     segment_edge_samples,
     segment_layout,
+    segment_sources,
     with_retries,
 )
 from .errors import ConfigError, KernelError
@@ -830,7 +831,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     """
     k = cfg.checks.seam_samples
     m = len(pieces)
-    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
+    sources = segment_sources(seg)
     retries = cfg.engine.retries
 
     def job(p: Piece, before: int = 0, **extra: Any) -> PieceJob:

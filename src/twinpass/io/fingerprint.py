@@ -48,8 +48,8 @@ from twinpass.core.plan import fingerprint_changed
 from twinpass.errors import ConfigError, InputError, TwinpassError
 
 __all__ = [
-    "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "changed_since", "decoding_of", "fingerprint_file",
-    "fingerprint_changed", "design_digest",
+    "BYTE_FIELDS", "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "changed_since", "decoding_of",
+    "fingerprint_file", "fingerprint_changed", "design_digest",
 ]
 
 CHUNK_BYTES = 1 << 20
@@ -326,7 +326,9 @@ def _size_and_mtime(p: Path) -> tuple[int, int]:
     return int(size), int(max((st.st_mtime_ns for _, st in files), default=p.stat().st_mtime_ns))
 
 
-_BYTE_FIELDS = ("size", "mtime_ns", "mode", "algorithm", "whole", "digest")
+BYTE_FIELDS = ("size", "mtime_ns", "mode", "algorithm", "whole", "digest")
+"""The fields of a fingerprint that describe the file's bytes (what :func:`changed_since`
+needs of a planned fingerprint, without its decoding)."""
 
 
 def changed_since(path: str | os.PathLike[str], planned: Mapping[str, Any] | None,
@@ -368,8 +370,8 @@ def _bytes_changed(p: Path, planned: Mapping[str, Any]) -> str | None:
         now = fingerprint_file(p, str(planned.get("mode", "fast")))
     except InputError as e:
         return str(e)
-    changed, why = fingerprint_changed({k: planned[k] for k in _BYTE_FIELDS if k in planned},
-                                       {k: now[k] for k in _BYTE_FIELDS if k in now})
+    changed, why = fingerprint_changed({k: planned[k] for k in BYTE_FIELDS if k in planned},
+                                       {k: now[k] for k in BYTE_FIELDS if k in now})
     return why if changed else None
 
 
@@ -382,7 +384,7 @@ def _sidecar_changed(spec: Any, planned: Mapping[str, Any]) -> str | None:
             info = rec.info
     except TwinpassError as e:
         return f"its sidecar {side} no longer reads as when the run planned the file: {e}"
-    bytes_alike = {k: planned[k] for k in _BYTE_FIELDS if k in planned}
+    bytes_alike = {k: planned[k] for k in BYTE_FIELDS if k in planned}
     changed, why = fingerprint_changed({**bytes_alike, "decoding": planned["decoding"], "sidecar": side},
                                        {**bytes_alike, "decoding": decoding_of(info), "sidecar": side})
     return why if changed else None
