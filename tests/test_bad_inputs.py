@@ -32,7 +32,7 @@ from scipy import signal
 
 from twinpass import cli
 from twinpass.config import JobConfig, load_config, parse_config
-from twinpass.core.checks import FIGURES
+from twinpass.core.checks import FAIL, FIGURES
 from twinpass.errors import ConfigError
 from twinpass.io.archive import discover
 from twinpass.io.readers import open_recording
@@ -266,6 +266,14 @@ def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
     return {rel: (["400 frames at 1e-30 Hz", "would end after year 9999"], ["check the sample rate"])}
 
 
+def bad_sidecar_gain_zero(root: Path) -> Expect:
+    # y = x * gain + offset with gain 0 is the offset alone: no signal left (twinpass rule: refused)
+    rel = stem("sidecargain") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\ngain = 0.0\n')
+    return {rel: ([f"{rel}.toml: gain = 0", "set gain to"], [REMEDY_EXCLUDE])}
+
+
 def bad_nan_run_fail_policy(root: Path) -> Expect:
     rel = stem("nanfail") + ".wav"
     x = noise(1000, 2).astype(np.float32)
@@ -316,6 +324,7 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_sidecar_dtype_contradicts_size,
     bad_sidecar_key,
     bad_sidecar_rate_far_too_low,
+    bad_sidecar_gain_zero,
     bad_nan_run_fail_policy,
     bad_overlap,
     bad_hidden_output_name,
@@ -504,19 +513,41 @@ def test_integer_extremes_filter_to_finite_output_without_clipping(tmp_path):
         assert set(table.counts()) >= {"pass"} and table.counts()["warn"] == 0
 
 
-def test_output_beyond_the_float32_range_is_counted_clipped_without_a_python_warning(tmp_path, recwarn):
+def test_output_beyond_the_float32_range_fails_its_blocks_without_a_python_warning(tmp_path, recwarn):
     # float64 input near 1e40 (float32's largest finite value is 3.4e38, IEEE 754 binary32):
-    # a float32 output stores inf there, counted in the clipped figure (the block warns),
-    # and the cast says nothing on the terminal (no RuntimeWarning "overflow in cast").
+    # a float32 output stores inf there, counted in the clipped figure. An infinity is not the
+    # filtered value (twinpass rule): those blocks fail, the file is not marked complete and
+    # the outcome names the setting that holds the values; the cast says nothing on the
+    # terminal (no RuntimeWarning "overflow in cast").
     from conftest import make_signal, write_config, write_stream
 
-    write_stream(tmp_path / "archive", "hot", make_signal(4000, 1, 200.0, seed=4) * 1e40, 200.0, 1)
+    x = make_signal(4000, 1, 200.0, seed=4) * 1e40
+    write_stream(tmp_path / "archive", "hot", x, 200.0, 1)
     cfg = load_config(write_config(tmp_path, output={"dtype": "float32", "compression": "none"}))
     res = run_job(cfg)
-    assert res.counts()["complete"] == 1
-    table = OutputStore.open(cfg.store_location, mode="r").read_block_table("hot/hot_20260301T000000")
-    assert np.sum(table.figures[..., list(FIGURES).index("clipped")]) > 0
+    (out,) = res.outcomes
+    assert out.status == "failed" and res.counts()["complete"] == 0
+    name = "hot/hot_20260301T000000"
+    table = OutputStore.open(cfg.store_location, mode="r").read_block_table(name)
+    clipped = table.figures[..., list(FIGURES).index("clipped")]
+    assert np.sum(clipped) > 0
+    failed = np.flatnonzero(np.asarray(table.status) == FAIL)
+    assert failed.size and set(failed) == set(np.flatnonzero(np.sum(clipped, axis=-1) > 0))
+    said = out.check_failures.summary
+    assert "output sample(s) beyond the output type's range" in said
+    assert 'What to do: set [output] dtype = "float64"' in said
+    assert [r.complete for r in OutputStore.open(cfg.store_location, mode="r").file_records().values()] == [False]
     assert not [w for w in recwarn.list if "overflow encountered in cast" in str(w.message)]
+
+    # The remedy: a float64 output holds the values; whole-signal reference scipy.signal.sosfiltfilt.
+    cfg = load_config(write_config(tmp_path, output={"dtype": "float64", "compression": "none"}))
+    res = run_job(cfg)
+    assert [o.status for o in res.outcomes] == ["complete"]
+    y = OutputStore.open(cfg.store_location, mode="r").read(name)
+    design = res.designs[200.0]
+    ref = signal.sosfiltfilt(design.sos, x, axis=0, padtype="odd", padlen=min(design.effective_length, len(x) - 1))
+    assert y.dtype == np.float64 and np.all(np.isfinite(y))
+    assert np.max(np.abs(y - ref)) <= 1e-8 * np.max(np.abs(x))
 
 
 # -- configuration errors --------------------------------------------------------------

@@ -25,6 +25,7 @@ from typing import Iterator
 from urllib.parse import urlparse
 from urllib.request import url2pathname
 
+import numpy as np
 import pytest
 
 pytest.register_assert_rewrite("prefect_fixtures")  # helpers with asserts, loaded as a plug-in too
@@ -519,6 +520,31 @@ def test_a_segment_whose_checks_fail_is_not_retried(prefect_client, npy_archive,
     assert north.state.is_completed()
     table = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_block_table(array_name(bad))
     assert table.status[2] == BlockStatus.FAIL and not table.errors
+
+
+def test_a_segment_whose_input_is_damaged_is_not_retried(prefect_client, tmp_path):
+    # An int16 Zarr input (zarr-python, format 3) one of whose chunk files no codec decodes,
+    # unchanged since the plan: its blocks fail once each, naming the chunk, and the segment
+    # task ends Failed after one run although a retry is configured (a retry reads the same).
+    import zarr
+
+    archive = tmp_path / "archive"
+    path = archive / "south" / "south_20260301T000000.zarr"
+    a = zarr.create_array(path, shape=(FILE_FRAMES, 2), chunks=(500, 2), dtype="int16", zarr_format=3)
+    a[:] = (np.random.default_rng(5).standard_normal((FILE_FRAMES, 2)) * 3000).astype(np.int16)
+    (path / "c" / "3" / "0").write_bytes(b"\x00garbage" * 10)  # frames 1500-2000
+    cfg = write_job(tmp_path, archive, engine_retries=2, flow_retries=1)
+    cfg.write_text(cfg.read_text(encoding="utf-8").replace('include = ["**/*.npy"]', 'include = ["**/*.zarr"]'),
+                   encoding="utf-8")
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_failed(), state.message
+    (seg,) = runs_of(final_task_runs(prefect_client, flow_run_id(state), expected=3), flows.filter_segment)
+    assert seg.state.is_failed() and seg.run_count == 1, (seg.state.name, seg.run_count)
+    assert "not retried (its input is damaged" in seg.state.message, seg.state.message
+    assert "chunk c/3/0 (frames 1500-2000) of the store is damaged" in seg.state.message, seg.state.message
+    table = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_block_table("south/south_20260301T000000")
+    assert table.errors and all(e.startswith("DamagedInputError: ") for e in table.errors.values()), table.errors
+    assert not any(rec.complete for rec in OutputStore.open(str(tmp_path / "out.zarr"), mode="r").file_records().values())
 
 
 def test_locked_store_exits_2_naming_the_lock(prefect_server, npy_archive, tmp_path, monkeypatch, capsys):

@@ -46,6 +46,11 @@ class CorruptInputError(InputError):
     """The file's header or data are damaged or contradict each other."""
 
 
+class DamagedInputError(CorruptInputError):
+    """Part of a file's data cannot be decoded, and reading that part alone fails again (a
+    damaged chunk of a Zarr array): a block is not retried for it, since a retry reads the same."""
+
+
 class ArchiveError(TwinpassError):
     """Discovery, grouping into streams/segments or planning failed."""
 

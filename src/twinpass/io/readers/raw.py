@@ -17,7 +17,7 @@ key                required  meaning
 ``sample_rate_hz`` no        Hz; else the ``sample_rate_hz`` option, else unknown
 ``header_bytes``   no        bytes to skip at the start of the file (default 0)
 ``start_time``     no        ISO 8601 time of the first sample (no zone = UTC)
-``gain``           no        ``y = x_scaled * gain + offset`` (default 1)
+``gain``           no        ``y = x_scaled * gain + offset`` (default 1; not 0)
 ``offset``         no        (default 0)
 ``frames``         no        expected frame count, checked against the file size
 ``channel_names``  no        one name per channel (distinct, not empty), e.g.
@@ -30,6 +30,11 @@ key                required  meaning
 ``[archive.channels]``); they do not change how the file decodes, so editing them
 refilters nothing, and a mistake in them (a count other than ``channels``, an empty or
 repeated name) is a warning: the file is read as usual without the sidecar's labels.
+
+The sidecar is read when the file is opened. The recording's spec keeps the bytes it read
+(the option ``sidecar_as_read``, set by the reader: the sidecar's path and bytes), so a file
+reopened from its spec, in any process, decodes as when it was first opened even if the
+sidecar has been edited since; a spec's ``as_found()`` drops them, and reads the sidecar again.
 
 ``x_scaled`` follows the usual convention: signed integers ``v / 2**(bits - 1)``,
 unsigned ``(v - 2**(bits - 1)) / 2**(bits - 1)``, floats as stored.
@@ -45,7 +50,7 @@ from typing import Any, BinaryIO
 
 import numpy as np
 
-from ...errors import CorruptInputError, InputError, UnsupportedFormatError
+from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
 from ._common import (
     READABLE,
     Codec,
@@ -118,16 +123,30 @@ def _find_sidecar(path: str, explicit: Any) -> str:
     return found[0]
 
 
-def _load_sidecar(path: str, side: str) -> dict[str, Any]:
+def _read_sidecar(path: str, side: str) -> bytes:
+    """The bytes of the sidecar ``side`` of ``path`` (at most 1 MiB and one byte, to tell a
+    larger one)."""
     try:
         with open(side, "rb") as f:
-            text = f.read(_SIDECAR_MAX_BYTES + 1)
+            return f.read(_SIDECAR_MAX_BYTES + 1)
     except PermissionError as exc:
         raise InputError(
             f"{path}: cannot read its sidecar {side} ({exc.strerror or exc}); make the sidecar {READABLE}", path=path
         ) from None
     except OSError as exc:
         raise CorruptInputError(f"{path}: cannot read its sidecar {side} ({exc})", path=path) from None
+
+
+def _as_read(path: str, value: Any) -> tuple[str, bytes]:
+    """The option ``sidecar_as_read``: (the sidecar's path, its bytes)."""
+    if (not isinstance(value, (tuple, list)) or len(value) != 2 or not isinstance(value[0], str)
+            or not isinstance(value[1], bytes)):
+        raise ConfigError(f"{path}: option sidecar_as_read must be (the sidecar's path, its bytes), as the "
+                          f"reader sets it in a recording's spec; got {type(value).__name__}")
+    return normalize_path(value[0]), value[1]
+
+
+def _load_sidecar(path: str, side: str, text: bytes) -> dict[str, Any]:
     if len(text) > _SIDECAR_MAX_BYTES:
         raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB; {_fix_sidecar(side)}", path=path,
                                 remedy=_fix_sidecar(side))
@@ -216,6 +235,11 @@ def _codec(doc: dict[str, Any], where: str, path: str) -> Codec:
         )
     gain = _float_key(doc, "gain", 1.0, where)
     offset = _float_key(doc, "offset", 0.0, where)
+    if gain == 0.0:
+        raise CorruptInputError(
+            f"{where}: gain = 0 makes every sample equal to the offset ({offset:g}), leaving no signal to "
+            "filter; set gain to the factor from the stored values to physical units (1 when they need none)"
+        )
     if name.strip().lower() == "int24":
         return Codec("i", 3, order, gain, offset)
     try:
@@ -244,14 +268,20 @@ class RawReader(FileReader):
 
     name = "raw"
     suffixes = (".raw", ".bin", ".dat")
-    options = ("sample_rate_hz", "sidecar")
+    options = ("sample_rate_hz", "sidecar", "sidecar_as_read")
+    snapshot_options = ("sidecar_as_read",)
 
     def _open_file(self, path: str, fh: BinaryIO, size: int, opts: dict[str, Any]) -> InterleavedRecording:
         rate_opt = option_rate(path, opts)
-        side = _find_sidecar(path, opts.get("sidecar"))
-        if opts.get("sidecar") is not None:
-            opts["sidecar"] = side  # absolute, so the spec reopens from any directory
-        doc = _load_sidecar(path, side)
+        if opts.get("sidecar_as_read") is not None:  # reopened from a spec: decoded as when first opened
+            side, text = _as_read(path, opts["sidecar_as_read"])
+        else:
+            side = _find_sidecar(path, opts.get("sidecar"))
+            if opts.get("sidecar") is not None:
+                opts["sidecar"] = side  # absolute, so the spec reopens from any directory
+            text = _read_sidecar(path, side)
+            opts["sidecar_as_read"] = (side, text)
+        doc = _load_sidecar(path, side, text)
         where = f"{path}: sidecar {side}"
         try:
             codec = _codec(doc, where, path)

@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
+from ...errors import ConfigError, CorruptInputError, DamagedInputError, InputError, UnsupportedFormatError
 from ._common import (
     READABLE,
     Codec,
@@ -73,12 +73,14 @@ class ZarrRecording(WindowRecording):
 
     def _damage(self, start: int, stop: int, exc: Exception) -> CorruptInputError:
         """The error for frames [start, stop) that failed with ``exc``, naming the chunks (store
-        key and frames; shards, in a sharded array) that fail when read one at a time."""
+        key and frames; shards, in a sharded array) that fail when read one at a time: a
+        :class:`DamagedInputError` when some do, and none of them for an I/O error."""
         a = self._array
         grid = tuple(int(n) for n in (getattr(a, "shards", None) or a.chunks))
         cols = -(-int(a.shape[1]) // grid[1]) if len(grid) == 2 else 1
         bad: list[str] = []
         first: Exception = exc
+        io_error = False
         for row in range(start // grid[0], -(-stop // grid[0])):
             lo, hi = row * grid[0], min((row + 1) * grid[0], self.info.frames)
             for col in range(cols):
@@ -87,6 +89,7 @@ class ZarrRecording(WindowRecording):
                     a[tuple(slice(c * n, (c + 1) * n) for c, n in zip(at, grid))]
                 except Exception as one:
                     first = first if bad else one
+                    io_error = io_error or isinstance(one, OSError)
                     bad.append(f"{a.metadata.encode_chunk_key(at)} (frames {lo}-{hi})")
         if not bad:
             what = "a chunk of the store is damaged"
@@ -94,7 +97,8 @@ class ZarrRecording(WindowRecording):
             more = f" and {len(bad) - _NAMED} more" if len(bad) > _NAMED else ""
             what = (f"chunk {bad[0]} of the store is damaged" if len(bad) == 1
                     else f"chunks {', '.join(bad[:_NAMED])}{more} of the store are damaged")
-        return CorruptInputError(
+        damaged = bool(bad) and not io_error  # chunks that fail again alone, in decoding, not in I/O
+        return (DamagedInputError if damaged else CorruptInputError)(
             f"{self.info.path}: frames [{start}, {stop}) cannot be read: {what} ({type(first).__name__}: {first})",
             path=self.info.path,
         )
