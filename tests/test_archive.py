@@ -868,3 +868,121 @@ def test_absent_chunks_of_a_zarr_input_are_noted(tmp_path):
     assert [f.relpath for f in disc.files] == ["site/a.zarr"]
     (note,) = disc.warnings
     assert note.startswith("site/a.zarr: 1 of its 4 chunks are absent and read as the fill value 0.0"), note
+
+
+def test_channel_major_arrays_are_left_out_above_the_channel_limit(tmp_path):
+    # Arrays are time-major, (samples, channels) (numpy.save and zarr-python store the shape
+    # given); one saved transposed, (2, 2000), would be 2000 channels of 2 samples, filtered
+    # along the wrong axis. 1024 channels is the documented default of [archive] max_channels.
+    import zarr
+
+    root = tmp_path / "archive"
+    x = np.random.default_rng(0).standard_normal((2000, 2)).astype(np.float32)
+    (root / "s").mkdir(parents=True)
+    np.save(root / "s" / "cm.npy", x.T.copy())
+    arr = zarr.create_array(store=str(root / "z" / "cm.zarr"), shape=(2, 2000), dtype="float32", chunks=(2, 500))
+    arr[:] = x.T
+    arr.attrs.update(sample_rate_hz=100.0)
+    disc = discover(job(tmp_path, include=("**/*.npy", "**/*.zarr"), sample_rate_hz=100.0))
+    assert disc.files == ()
+    bad = reasons(disc)
+    assert set(bad) == {"s/cm.npy", "z/cm.zarr"}
+    for rel in bad:
+        assert bad[rel].startswith("2000 channels, more than [archive] max_channels = 1024, and more channels "
+                                   "than its 2 samples"), bad[rel]
+        assert "store it time-major, shape (samples, channels): transpose it" in bad[rel]
+        assert "raise [archive] max_channels to 2000" in bad[rel]
+    # a limit raised for such a file lets it through, with the reader's note (NPY and Zarr alike)
+    disc = discover(job(tmp_path, include=("**/*.npy", "**/*.zarr"), sample_rate_hz=100.0, max_channels=2000))
+    assert sorted(f.relpath for f in disc.files) == ["s/cm.npy", "z/cm.zarr"]
+    for rel in ("s/cm.npy", "z/cm.zarr"):
+        assert f"{rel}: shape (2, 2000) has more channels than samples; arrays must be time-major " \
+               "(samples, channels): transpose it if it is channel-major" in disc.warnings
+
+
+def test_a_short_file_of_more_channels_than_samples_within_the_limit_is_filtered(tmp_path):
+    # The last file of a stream may hold one frame of 8 channels: more channels than samples,
+    # but a plausible channel count, so it is read (with a note), and joins its stream.
+    root = tmp_path / "archive"
+    npy(root, "s1/s1_20240501T000000.npy", 100, channels=8)
+    npy(root, "s1/s1_20240501T000010.npy", 1, channels=8, seed=1)  # 100 frames at 10 Hz = 10 s before
+    disc = discover(job(tmp_path, name_pattern="{stream}/{stream}_{start:%Y%m%dT%H%M%S}", sample_rate_hz=10.0))
+    assert disc.invalid == ()
+    assert [f.channels for f in disc.files] == [8, 8]
+    assert any(w.startswith("s1/s1_20240501T000010.npy: shape (1, 8) has more channels than samples")
+               for w in disc.warnings)
+    segments, bad = disc.segments()
+    assert bad == [] and [s.frames for s in segments] == [101]
+
+
+def test_a_wide_file_above_the_channel_limit_is_left_out_naming_the_setting(tmp_path):
+    root = tmp_path / "archive"
+    npy(root, "wide.npy", 20, channels=12)
+    disc = discover(job(tmp_path, sample_rate_hz=10.0, max_channels=8))
+    assert reasons(disc) == {"wide.npy": "12 channels, more than [archive] max_channels = 8 | raise [archive] "
+                                         "max_channels to 12 or more if it really holds 12 channels, or leave it "
+                                         "out with [archive] exclude"}
+
+
+def test_an_overlap_names_where_the_start_times_were_read(tmp_path):
+    # Broadcast WAVE bext (EBU Tech 3285): OriginationDate/OriginationTime give the start; two
+    # files of one folder (one stream) 400 frames at 8000 Hz (50 ms) long, the second starting
+    # 20 ms into the first, a third at the very start of the second. Which source is named is a
+    # twinpass rule: where each start time was read.
+    root = tmp_path / "archive"
+    for rel in ("field/a.wav", "field/b.wav", "field/c.wav"):
+        wav(root, rel, 400)
+    add_bext(root / "field/a.wav", "2024-05-02", "06:30:00")
+    for rel in ("field/b.wav", "field/c.wav"):  # TimeReference: samples since midnight (at 8000 Hz)
+        add_bext(root / rel, "2024-05-02", "00:00:00")
+        blob = bytearray((root / rel).read_bytes())
+        at = blob.index(b"bext") + 8 + 338
+        blob[at:at + 8] = struct.pack("<Q", (6 * 3600 + 30 * 60) * 8000 + 160)
+        (root / rel).write_bytes(bytes(blob))
+    disc = discover(job(tmp_path))
+    assert by_path(disc)["field/a.wav"].start_source == "the file's bext chunk"
+    assert reasons(disc)["field/c.wav"].startswith("same stream 'field' and start time")
+    _, bad = disc.segments()
+    (over,) = [b for b in bad if b.path == "field/b.wav"]
+    assert over.reason.startswith("overlaps field/a.wav of stream 'field' by 240.0 samples")
+    assert over.remedy.startswith("correct the start time of one of the two files (in the file's bext chunk), ")
+    # the same files named by a manifest: the manifest is where to correct them
+    (tmp_path / "m.csv").write_text("path,stream,start_time\n"
+                                    "field/a.wav,f,2024-05-02T06:30:00Z\nfield/b.wav,f,2024-05-02T06:30:00.02Z\n")
+    disc = discover(job(tmp_path, manifest="m.csv", exclude=("field/c.wav",)))
+    _, bad = disc.segments()
+    (over,) = bad
+    assert over.remedy.startswith(f"correct the start time of one of the two files (in the manifest {tmp_path / 'm.csv'}), ")
+
+
+def test_files_selected_but_for_a_suffix_their_reader_accepts_are_noted(tmp_path):
+    # The WAV reader opens .wav, .wave, .bwf (Broadcast WAVE, EBU Tech 3285) and .rf64 (EBU
+    # Tech 3306) files; "**/*.wav" selects only the first, so discovery notes the others, as
+    # it notes A.WAV, rather than leaving them out silently.
+    root = tmp_path / "archive"
+    wav(root, "s1/a.wav", 800)
+    for rel in ("s1/b.bwf", "s1/c.rf64", "s1/d.wave", "skip/e.bwf", "s1/notes.txt"):
+        wav(root, rel, 800)
+    disc = discover(job(tmp_path, include=("**/*.wav",), exclude=("skip/**",)))
+    assert [f.relpath for f in disc.files] == ["s1/a.wav"]
+    (note,) = [w for w in disc.warnings if "suffix" in w]
+    assert note.startswith("3 file(s) have a suffix that their reader accepts as well as the one [archive] include "
+                           "selects, but were not selected: s1/b.bwf, s1/c.rf64, s1/d.wave; add patterns for them "
+                           '(e.g. "**/*.bwf", "**/*.rf64", "**/*.wave")'), note
+    disc = discover(job(tmp_path, include=("**/*.wav", "**/*.bwf", "**/*.rf64", "**/*.wave"), exclude=("skip/**",)))
+    assert len(disc.files) == 4 and not [w for w in disc.warnings if "suffix" in w]
+
+
+def test_an_empty_folder_named_like_a_recording_is_noted(tmp_path):
+    root = tmp_path / "archive"
+    wav(root, "s1/a.wav", 800)
+    (root / "s1" / "b.wav").mkdir()  # a folder, not a recording
+    wav(root, "s2/c.wav/inner.wav", 800)  # a folder named like one, holding one: read, not noted
+    (root / "s3" / "plain").mkdir(parents=True)  # no recording's name: not noted
+    disc = discover(job(tmp_path, include=("**/*.wav",)))
+    assert sorted(f.relpath for f in disc.files) == ["s1/a.wav", "s2/c.wav/inner.wav"] and disc.invalid == ()
+    (note,) = [w for w in disc.warnings if "folder" in w]
+    assert note.startswith("1 folder(s) named like recordings match [archive] include but hold no file it selects: "
+                           "s1/b.wav/; a recording is a file"), note
+    disc = discover(job(tmp_path, include=("**/*.wav",), exclude=("s1/b.wav",)))
+    assert not [w for w in disc.warnings if "folder" in w]

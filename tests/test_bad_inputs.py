@@ -32,7 +32,7 @@ from scipy import signal
 
 from twinpass import cli
 from twinpass.config import JobConfig, load_config, parse_config
-from twinpass.core.checks import FIGURES
+from twinpass.core.checks import FAIL, FIGURES
 from twinpass.errors import ConfigError
 from twinpass.io.archive import discover
 from twinpass.io.readers import open_recording
@@ -230,14 +230,16 @@ def bad_zero_byte_raw(root: Path) -> Expect:
 def bad_raw_without_sidecar(root: Path) -> Expect:
     rel = stem("nosidecar") + ".bin"
     put(root, rel, pcm16(400).tobytes())
-    return {rel: (["needs a sidecar", f"{rel}.toml", 'dtype = "int16"'], [REMEDY_EXCLUDE])}
+    return {rel: (["needs a sidecar", f"{rel}.toml"],
+                  [f"write its sidecar {root / rel}.toml", 'dtype = "int16", channels = 2', REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_frames_contradict_size(root: Path) -> Expect:
     rel = stem("sidecarframes") + ".bin"
     put(root, rel, pcm16(400).tobytes())
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\nframes = 500\n')
-    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes", "fix frames"], [REMEDY_EXCLUDE])}
+    return {rel: (["declares frames = 500", "holds 400 frames of 2 bytes"],
+                  [f"fix frames (or dtype, channels, header_bytes) in its sidecar {root / rel}.toml", REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
@@ -245,7 +247,15 @@ def bad_sidecar_dtype_contradicts_size(root: Path) -> Expect:
     put(root, rel, bytes(801))  # 801 bytes cannot be whole 2-byte frames
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\n')
     return {rel: (["801 data bytes", "not a whole number of 2-byte frames", "400 frames + 1 bytes"],
-                  [REMEDY_EXCLUDE])}
+                  [f"check dtype, channels and header_bytes in its sidecar {root / rel}.toml", REMEDY_EXCLUDE])}
+
+
+def bad_sidecar_key(root: Path) -> Expect:
+    rel = stem("sidecarkey") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = "1"\nsample_rate_hz = 100.0\n')
+    return {rel: (["channels must be an integer >= 1, got '1'"], [f"correct its sidecar {root / rel}.toml",
+                                                                  REMEDY_EXCLUDE])}
 
 
 def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
@@ -254,6 +264,14 @@ def bad_sidecar_rate_far_too_low(root: Path) -> Expect:
     put(root, rel, pcm16(400).tobytes())
     put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 1e-30\n')
     return {rel: (["400 frames at 1e-30 Hz", "would end after year 9999"], ["check the sample rate"])}
+
+
+def bad_sidecar_gain_zero(root: Path) -> Expect:
+    # y = x * gain + offset with gain 0 is the offset alone: no signal left (twinpass rule: refused)
+    rel = stem("sidecargain") + ".bin"
+    put(root, rel, pcm16(400).tobytes())
+    put(root, rel + ".toml", b'dtype = "int16"\nchannels = 1\nsample_rate_hz = 100.0\ngain = 0.0\n')
+    return {rel: ([f"{rel}.toml: gain = 0", "set gain to"], [REMEDY_EXCLUDE])}
 
 
 def bad_nan_run_fail_policy(root: Path) -> Expect:
@@ -304,7 +322,9 @@ CATALOGUE: list[Callable[[Path], Expect]] = [
     bad_raw_without_sidecar,
     bad_sidecar_frames_contradict_size,
     bad_sidecar_dtype_contradicts_size,
+    bad_sidecar_key,
     bad_sidecar_rate_far_too_low,
+    bad_sidecar_gain_zero,
     bad_nan_run_fail_policy,
     bad_overlap,
     bad_hidden_output_name,
@@ -493,19 +513,41 @@ def test_integer_extremes_filter_to_finite_output_without_clipping(tmp_path):
         assert set(table.counts()) >= {"pass"} and table.counts()["warn"] == 0
 
 
-def test_output_beyond_the_float32_range_is_counted_clipped_without_a_python_warning(tmp_path, recwarn):
+def test_output_beyond_the_float32_range_fails_its_blocks_without_a_python_warning(tmp_path, recwarn):
     # float64 input near 1e40 (float32's largest finite value is 3.4e38, IEEE 754 binary32):
-    # a float32 output stores inf there, counted in the clipped figure (the block warns),
-    # and the cast says nothing on the terminal (no RuntimeWarning "overflow in cast").
+    # a float32 output stores inf there, counted in the clipped figure. An infinity is not the
+    # filtered value (twinpass rule): those blocks fail, the file is not marked complete and
+    # the outcome names the setting that holds the values; the cast says nothing on the
+    # terminal (no RuntimeWarning "overflow in cast").
     from conftest import make_signal, write_config, write_stream
 
-    write_stream(tmp_path / "archive", "hot", make_signal(4000, 1, 200.0, seed=4) * 1e40, 200.0, 1)
+    x = make_signal(4000, 1, 200.0, seed=4) * 1e40
+    write_stream(tmp_path / "archive", "hot", x, 200.0, 1)
     cfg = load_config(write_config(tmp_path, output={"dtype": "float32", "compression": "none"}))
     res = run_job(cfg)
-    assert res.counts()["complete"] == 1
-    table = OutputStore.open(cfg.store_location, mode="r").read_block_table("hot/hot_20260301T000000")
-    assert np.sum(table.figures[..., list(FIGURES).index("clipped")]) > 0
+    (out,) = res.outcomes
+    assert out.status == "failed" and res.counts()["complete"] == 0
+    name = "hot/hot_20260301T000000"
+    table = OutputStore.open(cfg.store_location, mode="r").read_block_table(name)
+    clipped = table.figures[..., list(FIGURES).index("clipped")]
+    assert np.sum(clipped) > 0
+    failed = np.flatnonzero(np.asarray(table.status) == FAIL)
+    assert failed.size and set(failed) == set(np.flatnonzero(np.sum(clipped, axis=-1) > 0))
+    said = out.check_failures.summary
+    assert "output sample(s) beyond the output type's range" in said
+    assert 'What to do: set [output] dtype = "float64"' in said
+    assert [r.complete for r in OutputStore.open(cfg.store_location, mode="r").file_records().values()] == [False]
     assert not [w for w in recwarn.list if "overflow encountered in cast" in str(w.message)]
+
+    # The remedy: a float64 output holds the values; whole-signal reference scipy.signal.sosfiltfilt.
+    cfg = load_config(write_config(tmp_path, output={"dtype": "float64", "compression": "none"}))
+    res = run_job(cfg)
+    assert [o.status for o in res.outcomes] == ["complete"]
+    y = OutputStore.open(cfg.store_location, mode="r").read(name)
+    design = res.designs[200.0]
+    ref = signal.sosfiltfilt(design.sos, x, axis=0, padtype="odd", padlen=min(design.effective_length, len(x) - 1))
+    assert y.dtype == np.float64 and np.all(np.isfinite(y))
+    assert np.max(np.abs(y - ref)) <= 1e-8 * np.max(np.abs(x))
 
 
 # -- configuration errors --------------------------------------------------------------
@@ -622,7 +664,8 @@ def test_config_refuses_nan_and_infinite_numbers(table, key, value):
 # Valid ranges as the settings' docstrings in twinpass.config and README "Checks, status and
 # report" state them: seam_samples in [0, 4096] (0 = seam check off), coherence_min in [0, 1], the
 # passband and phase thresholds >= 0 with warn <= fail (grade() warns above the first and fails
-# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0.
+# above the second), stopband_margin_db >= 0, retries and retry delays >= 0, carry_threshold > 0,
+# max_channels >= 1.
 OUT_OF_RANGE = [
     ("checks", "seam_samples = -3", "seam_samples = -3", "0 turns the seam check off"),
     ("checks", "seam_samples = 4097", "seam_samples = 4097", "[0, 4096]"),
@@ -641,6 +684,7 @@ OUT_OF_RANGE = [
     ("processing", "carry_threshold = 0.0", "carry_threshold = 0.0", 'set mode = "carry" or "halo"'),
     ("processing", "carry_threshold = -1.0", "carry_threshold = -1.0", "> 0"),
     ("archive", "sample_rate_hz = 0.0", "sample_rate_hz = 0.0", "> 0"),
+    ("archive", "max_channels = 0", "max_channels = 0", ">= 1"),
 ]
 
 
@@ -663,6 +707,7 @@ def test_config_refuses_values_out_of_their_documented_range(table, lines, named
     ("flow", "retries = 0\nretry_delay_seconds = 0.0"),
     ("engine", "retry_backoff_seconds = 0.0"),
     ("processing", "carry_threshold = 0.01"),
+    ("archive", "max_channels = 1"),
 ])
 def test_config_accepts_the_ends_of_the_documented_ranges(table, lines):
     parse_config(_BASE + f"[{table}]\n{lines}\n", source="job.toml")

@@ -701,9 +701,15 @@ def test_values_beyond_float32_range_count_as_clipped() -> None:
     y[[5, 6, 7], 0] = [1e39, -2e39, 3.4e38]  # the last one still fits
     fig = checks.block_figures(x, y, design, CFG, out_dtype="float32", response=False)
     np.testing.assert_array_equal(col(fig, "clipped"), [2, 0])
-    assert checks.grade(fig, design, CFG, TOL) == WARN
+    # Twinpass rule: an infinity stored for a finite result is not the filtered value: the
+    # block fails, on the channel that clipped, with the setting that holds the values.
+    assert checks.grade(fig, design, CFG, TOL) == FAIL
+    (found,) = checks.findings(fig, design, CFG, TOL)
+    assert (found.figure, found.channel, found.value, found.status) == ("clipped", 0, 2.0, FAIL)
+    assert found.describe() == "2 output sample(s) beyond the output type's range, stored as infinity, on channel 0"
     fig64 = checks.block_figures(x, y, design, CFG, out_dtype="float64", response=False)
     np.testing.assert_array_equal(col(fig64, "clipped"), [0, 0])
+    assert checks.grade(fig64, design, CFG, TOL) == PASS
 
 
 def test_levels_of_a_sine() -> None:
@@ -749,7 +755,7 @@ def test_grading_thresholds_follow_the_configuration() -> None:
         (dict(phase_deg=CFG.phase_fail_deg + 0.1), FAIL),
         (dict(stopband_att_db=60.0 - CFG.stopband_margin_db + 0.1), PASS),
         (dict(stopband_att_db=60.0 - CFG.stopband_margin_db - 0.1), FAIL),
-        (dict(clipped=1.0), WARN),
+        (dict(clipped=1.0), FAIL),
         (dict(passband_bins=100.0, coherent_bins=49.0), FAIL),
         (dict(passband_bins=100.0, coherent_bins=51.0), PASS),
     ]
@@ -965,7 +971,7 @@ def test_the_limits_shown_are_the_limits_grading_uses():
     assert graded(passband_bins=100.0, coherent_bins=100.0 * share) == PASS
     assert graded(passband_bins=100.0, coherent_bins=100.0 * share - 1.0) == FAIL
     assert graded(nonfinite_out=0.0) == PASS and graded(nonfinite_out=1.0) == FAIL
-    assert graded(clipped=1.0) == WARN
+    assert graded(clipped=0.0) == PASS and graded(clipped=1.0) == FAIL
     # A design that states no attenuation is graded against the rejection level instead.
     fixed = design_filter(ResponseSpec(kind="lowpass", family="butterworth", order=4, cutoff_hz=(20.0,)), 500.0)
     assert checks.grading_limits(fixed, cfg, tol)["stopband_att_db"].fail == pytest.approx(30.0 - 10.0)

@@ -965,3 +965,19 @@ def test_a_notch_too_wide_before_the_rate_is_known_names_no_nyquist_figure(tmp_p
     assert "Nyquist" not in text and "e+14" not in text, text
     with pytest.raises(SpecError, match=r"between 0 Hz and Nyquist 500 Hz; use a width below 100 Hz"):
         validate_spec(ResponseSpec(kind="notch", notch_hz=450.0, notch_width_hz=150.0), 1000.0)
+
+
+@pytest.mark.parametrize("spec", [
+    ResponseSpec(kind="lowpass", order=4, cutoff_hz=(20.0,)),
+    ResponseSpec(kind="bandpass", family="elliptic", passband_hz=(0.5, 30.0), stopband_hz=(0.1, 45.0),
+                 passband_ripple_db=1.0, stopband_attenuation_db=60.0),
+])
+def test_a_rate_far_above_the_band_edges_is_refused_without_floating_point_warnings(spec):
+    # At 1e300 Hz the edges are ~1e-299 of the Nyquist frequency: scipy's design arithmetic
+    # (scipy.signal.ellipord, tf2zpk) divides by values that underflow to 0 there, and warns.
+    # The design is refused with its reason (a pole on the unit circle; an order estimate that
+    # failed); the floating-point warnings on the way say nothing more and are not shown.
+    with np.errstate(divide="warn", invalid="warn"), warnings.catch_warnings():
+        warnings.simplefilter("error")  # a warning would be raised here instead of the SpecError
+        with pytest.raises(SpecError):
+            design_filter(spec, 1e300)

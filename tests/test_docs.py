@@ -77,6 +77,16 @@ def test_every_configuration_key_is_in_the_reference_with_its_default() -> None:
             assert tomllib.loads(f"v = {cell}")["v"] == default, f"[{table}] {key}: README default {cell!r}"
 
 
+def test_the_readme_says_how_npy_files_are_read() -> None:
+    # Source: src/twinpass/io/readers/npy.py reads each window with positional reads
+    # (twinpass.io.readers._common.read_exact, os.preadv) and maps no file into memory.
+    code = (ROOT / "src" / "twinpass" / "io" / "readers" / "npy.py").read_text(encoding="utf-8")
+    assert "memmap(" not in code and "import mmap" not in code and "InterleavedRecording" in code
+    (row,) = [r for r in _rows(_section((ROOT / "README.md").read_text(encoding="utf-8"), "Input formats and scaling"))
+              if r[0] == "NumPy"]
+    assert "memory-mapped" not in row[2] and "positional reads" in row[2], row
+
+
 def _options(parser: argparse.ArgumentParser) -> set[str]:
     return {o for a in parser._actions for o in a.option_strings if o not in ("-h", "--help")}
 

@@ -1005,3 +1005,90 @@ def test_a_tls_scheduler_address_without_tls_settings_is_a_configuration_error()
         with dask_client("tls://127.0.0.1:1"):
             pass
     assert "tls://127.0.0.1:1" in str(err.value) and "--scheduler" in str(err.value)
+
+
+def _int16_zarr_stream(root: Path, name: str, x: np.ndarray) -> Path:
+    """An int16 Zarr array input of chunks of 500 frames (zarr-python, format 3: chunk keys c/<row>/<col>)."""
+    import zarr
+
+    path = root / f"{name}.zarr"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    a = zarr.create_array(path, shape=x.shape, chunks=(500, x.shape[1]), dtype="int16", zarr_format=3)
+    a[:] = x
+    a.attrs["sample_rate_hz"] = 200.0
+    return path
+
+
+def test_a_damaged_chunk_of_an_unchanged_input_is_reported_as_damage_and_not_retried(tmp_path, caplog):
+    # An integer input is not read end to end when the run plans it: a chunk whose bytes no
+    # codec decodes is met by the blocks. The input has not changed, so this is damage: named by
+    # chunk and frames, with the remedy, tried once per block, and said alike by the next run.
+    # The other file of the archive completes (whole-signal reference scipy.signal.sosfiltfilt).
+    rng = np.random.default_rng(6)
+    damaged = _int16_zarr_stream(tmp_path / "archive" / "deck", "deck_20260301T000000",
+                                 (rng.standard_normal((2000, 2)) * 3000).astype(np.int16))
+    (damaged / "c" / "2" / "0").write_bytes(b"\x00garbage" * 10)  # frames 1000-1500
+    good = write_stream(tmp_path / "archive", "mast", make_signal(2000, 2, 200.0, seed=2), 200.0, 1)
+    cfg = load_config(write_config(tmp_path, include=["**/*.npy", "**/*.zarr"],
+                                   engine={"retries": 2, "retry_backoff_seconds": 0.0}))
+    for _ in range(2):
+        caplog.clear()
+        with caplog.at_level(logging.ERROR, logger="twinpass.engine"):
+            res = run_job(cfg)
+        outcomes = {o.relpath: o for o in res.outcomes}
+        bad = outcomes["deck/deck_20260301T000000.zarr"]
+        assert bad.status == "failed"
+        for error in bad.errors.values():
+            assert error.startswith(f"DamagedInputError: {damaged}: frames "), error
+            assert "chunk c/2/0 (frames 1000-1500) of the store is damaged" in error, error
+            assert "has not changed since the run planned it" in error and "[archive] exclude" in error, error
+            assert "changed while this run" not in error, error
+        logged = [r.getMessage() for r in caplog.records if "deck" in r.getMessage()]
+        assert logged and all("after 1 attempt(s)" in m for m in logged if "attempt" in m), logged
+        assert outcomes[good.relpaths[0]].status in ("complete", "skipped")
+    y = read_output(tmp_path / "out.zarr", good.arrays)[0]
+    filt = open_store(tmp_path / "out.zarr")[good.arrays[0]].attrs["filter"]
+    x = np.load(good.paths[0])
+    ref = scipy.signal.sosfiltfilt(np.asarray(filt["sos"]), x, axis=0, padtype=filt["edge"],
+                                   padlen=int(filt["edge_samples"]))
+    assert np.max(np.abs(y - ref)) <= 1e-8 * np.max(np.abs(x))
+
+
+def test_a_chunk_damaged_after_the_run_planned_the_input_says_the_input_changed(tmp_path):
+    # The same damage made after the run planned the input: its chunk file is new since, so
+    # the input changed while the run used it, and the blocks say so (a rerun reads it afresh).
+    from twinpass.engine import dask_client, run_segment
+    from twinpass.io.store import OutputStore
+    from twinpass.job import prepare
+
+    rng = np.random.default_rng(6)
+    path = _int16_zarr_stream(tmp_path / "archive" / "deck", "deck_20260301T000000",
+                              (rng.standard_normal((2000, 2)) * 3000).astype(np.int16))
+    cfg = load_config(write_config(tmp_path, include=["**/*.zarr"], engine={"retries": 0}))
+    store = OutputStore.open(cfg.store_location, mode="a", archive_root=cfg.archive_root)
+    prep = prepare(cfg, store)
+    (seg,) = prep.work
+    (path / "c" / "2" / "0").write_bytes(b"\x00garbage" * 10)
+    with dask_client("threads", 1) as client:
+        (outcome,) = run_segment(seg, prep.designs[200.0], cfg, store, client)
+    assert outcome.status == "failed"
+    for error in outcome.errors.values():
+        assert f"{path}: the file changed while this run used it: " in error, error
+        assert "chunk c/2/0 (frames 1000-1500)" in error and "DamagedInputError" not in error, error
+
+
+def test_retries_are_kept_for_errors_a_retry_may_clear_and_not_for_damage():
+    # Transient read errors are retried; damage that decodes no better when read again is not.
+    from twinpass.engine import with_retries
+    from twinpass.errors import CorruptInputError, DamagedInputError
+
+    for error, attempts in ((CorruptInputError("x: cannot be read"), 3), (DamagedInputError("x: damaged"), 1)):
+        calls: list[int] = []
+
+        def work() -> None:
+            calls.append(1)
+            raise error
+
+        result, message, tried = with_retries(work, 2, 0.0)
+        assert result is None and tried == attempts == len(calls)
+        assert message is not None and message.startswith(type(error).__name__), message

@@ -25,6 +25,7 @@ from typing import Iterator
 from urllib.parse import urlparse
 from urllib.request import url2pathname
 
+import numpy as np
 import pytest
 
 pytest.register_assert_rewrite("prefect_fixtures")  # helpers with asserts, loaded as a plug-in too
@@ -206,9 +207,10 @@ def test_block_failing_once_is_retried_by_the_segment_task(prefect_client, npy_a
     history = [s.name for s in prefect_client.read_task_run_states(north.id)]
     assert "Retrying" in history, history
     # The retry resumes: it reruns only the failed blocks, one per north file; the run's
-    # count holds the blocks of both attempts (every block of both streams, then the retried ones).
+    # count holds each block once (every block of both streams), and the retried ones apart.
     summary = state.result()
-    assert summary["counts"]["blocks_run"] == 2 * FILES_PER_STREAM * BLOCKS_PER_FILE + FILES_PER_STREAM
+    assert summary["counts"]["blocks_run"] == 2 * FILES_PER_STREAM * BLOCKS_PER_FILE
+    assert summary["counts"]["blocks_retried"] == FILES_PER_STREAM
     check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
 
 
@@ -229,9 +231,9 @@ def test_file_failing_always_fails_the_flow_naming_it(prefect_client, npy_archiv
     assert cli.main(["run", str(cfg), "--no-report"]) == 1
     out = capsys.readouterr().out
     assert f"failed: {bad}" in out and "complete 5, skipped (unchanged) 0, failed 1" in out, out
-    # Blocks run, the failed segment's too: 3 files x 4 blocks per stream, and the retry
-    # reruns the one block not done.
-    assert f"blocks run {2 * FILES_PER_STREAM * BLOCKS_PER_FILE + 1}" in out, out
+    # Blocks run, the failed segment's too: 3 files x 4 blocks per stream, each once (the
+    # retry reran the one block not done, which failed again).
+    assert f"blocks run {2 * FILES_PER_STREAM * BLOCKS_PER_FILE}" in out, out
 
     run = _flow_run_of(prefect_client, cfg)
     assert run.state.is_failed()
@@ -521,6 +523,31 @@ def test_a_segment_whose_checks_fail_is_not_retried(prefect_client, npy_archive,
     assert table.status[2] == BlockStatus.FAIL and not table.errors
 
 
+def test_a_segment_whose_input_is_damaged_is_not_retried(prefect_client, tmp_path):
+    # An int16 Zarr input (zarr-python, format 3) one of whose chunk files no codec decodes,
+    # unchanged since the plan: its blocks fail once each, naming the chunk, and the segment
+    # task ends Failed after one run although a retry is configured (a retry reads the same).
+    import zarr
+
+    archive = tmp_path / "archive"
+    path = archive / "south" / "south_20260301T000000.zarr"
+    a = zarr.create_array(path, shape=(FILE_FRAMES, 2), chunks=(500, 2), dtype="int16", zarr_format=3)
+    a[:] = (np.random.default_rng(5).standard_normal((FILE_FRAMES, 2)) * 3000).astype(np.int16)
+    (path / "c" / "3" / "0").write_bytes(b"\x00garbage" * 10)  # frames 1500-2000
+    cfg = write_job(tmp_path, archive, engine_retries=2, flow_retries=1)
+    cfg.write_text(cfg.read_text(encoding="utf-8").replace('include = ["**/*.npy"]', 'include = ["**/*.zarr"]'),
+                   encoding="utf-8")
+    state = flows.archive_run(config_path=str(cfg), report=False, return_state=True)
+    assert state.is_failed(), state.message
+    (seg,) = runs_of(final_task_runs(prefect_client, flow_run_id(state), expected=3), flows.filter_segment)
+    assert seg.state.is_failed() and seg.run_count == 1, (seg.state.name, seg.run_count)
+    assert "not retried (its input is damaged" in seg.state.message, seg.state.message
+    assert "chunk c/3/0 (frames 1500-2000) of the store is damaged" in seg.state.message, seg.state.message
+    table = OutputStore.open(str(tmp_path / "out.zarr"), mode="r").read_block_table("south/south_20260301T000000")
+    assert table.errors and all(e.startswith("DamagedInputError: ") for e in table.errors.values()), table.errors
+    assert not any(rec.complete for rec in OutputStore.open(str(tmp_path / "out.zarr"), mode="r").file_records().values())
+
+
 def test_locked_store_exits_2_naming_the_lock(prefect_server, npy_archive, tmp_path, monkeypatch, capsys):
     cfg = write_job(tmp_path, npy_archive)
     monkeypatch.setenv("PREFECT_LOGGING_LEVEL", "INFO")
@@ -799,8 +826,10 @@ def test_a_segment_begun_before_the_flow_run_is_retried_by_its_task(prefect_clie
     runs = final_task_runs(prefect_client, flow_run_id(state), expected=3)
     north = next(t for t in runs_of(runs, flows.filter_segment) if "north" in t.name)
     assert north.run_count == 2
-    # Both attempts' blocks: every block of both streams, then the failed ones again.
-    assert state.result()["counts"]["blocks_run"] == 2 * FILES_PER_STREAM * BLOCKS_PER_FILE + FILES_PER_STREAM
+    # Every block of both streams once; the failed ones, done by the retry, counted apart.
+    counts = state.result()["counts"]
+    assert counts["blocks_run"] == 2 * FILES_PER_STREAM * BLOCKS_PER_FILE
+    assert counts["blocks_retried"] == FILES_PER_STREAM
     check_against_sosfiltfilt(str(tmp_path / "out.zarr"), npy_archive, "north")
 
 

@@ -329,6 +329,29 @@ def test_truncated_data_chunk_with_warn_reads_whole_frames(tmp_path):
             rec.read(0, 501)
 
 
+def test_samples_past_a_data_size_declared_too_small_are_counted_in_the_note(tmp_path):
+    # RIFF (Microsoft "Multiple channel audio data and WAVE files"): the data chunk's size
+    # field at byte 4 of the chunk bounds its samples, so a reader takes the declared 1000
+    # frames (scipy.io.wavfile reads the same); the 1000 frames after them are no chunk.
+    x = _ints("int16", (2000, 2))
+    fmt = fmt_chunk(PCM, 2, 1000, 16)
+    blob = riff([fmt, chunk(b"data", x.tobytes(), size=1000 * 4)])
+    path = _write(tmp_path / "short_size.wav", blob)
+    with pytest.warns(wavfile.WavFileWarning):  # scipy stops at the unknown "chunk" as well
+        assert np.array_equal(wavfile.read(path)[1], x[:1000])
+    at = 12 + len(fmt)  # the data chunk
+    with open_recording(path) as rec:
+        assert rec.info.frames == 1000
+        assert np.array_equal(rec.read(0, 1000), x[:1000] / 32768.0)
+        (note,) = rec.info.warnings
+    assert f"invalid chunk id {x[1000:1002].tobytes()[:4]!r} at byte {at + 8 + 4000}" in note
+    assert note.endswith(
+        f"the rest of the file, 4000 bytes from byte {at + 8 + 4000} to byte {len(blob)}, was ignored: it follows "
+        f"the data chunk and holds 1000 whole frames of 4 bytes, left out if they are samples (the data chunk's "
+        f"size field at byte {at + 4} says 4000 bytes; 8000 would take them in)"
+    ), note
+
+
 def test_zero_data_size_followed_by_frames_names_the_sizes_to_write(tmp_path):
     # A recorder writes its header with sizes 0 and fills them in when it closes the file; one
     # that stopped first leaves 0 in the data chunk's size field (Microsoft "Multiple channel
@@ -627,6 +650,40 @@ def test_npy_truncated(tmp_path):
         assert np.array_equal(rec.read(0, 69), x[:69] / 32768.0)
 
 
+@pytest.mark.parametrize(("old", "new", "said"), [
+    (b"{'descr'", b"{garbage", "is damaged at byte 11: 'garbage' is not a literal value; it must be the Python dict "
+                               "literal numpy writes"),
+    (b"(100, 2)", b"f(100,2)", "is damaged at byte {at}: 'f(100,2)' is not a literal value"),
+    (b"'descr'", b"'dxscr'", "is damaged: Header does not contain the correct keys"),
+])
+def test_a_damaged_npy_header_names_the_byte_and_the_fault(tmp_path, old, new, said):
+    # NPY format (numpy.lib.format, version 1.0): 6 magic bytes, 2 version bytes, the header
+    # length as little-endian uint16 at byte 8, then the header text from byte 10: a Python
+    # dict literal of 'descr', 'fortran_order' and 'shape' (np.save writes it).
+    buf = io.BytesIO()
+    np.save(buf, _ints("int16", (100, 2)))
+    blob = buf.getvalue()
+    assert blob[6:8] == b"\x01\x00" and len(old) == len(new)
+    n = int.from_bytes(blob[8:10], "little")
+    path = _write(tmp_path / "h.npy", blob.replace(old, new, 1))
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(path, options={"sample_rate_hz": 1.0})
+    msg = str(err.value)
+    assert msg.startswith(f"{path}: the NPY header ({n} bytes of text from byte 10) ")
+    assert said.format(at=blob.find(old)) in msg and "<ast." not in msg, msg
+
+
+def test_an_npy_header_cut_short_says_where_the_file_ends(tmp_path):
+    buf = io.BytesIO()
+    np.save(buf, _ints("int16", (100, 2)))
+    blob = buf.getvalue()
+    n = int.from_bytes(blob[8:10], "little")  # header length, numpy.lib.format version 1.0
+    path = _write(tmp_path / "cut.npy", blob[:40])
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(path, options={"sample_rate_hz": 1.0})
+    assert str(err.value) == f"{path}: the NPY header ({n} bytes of text from byte 10) is cut short: the file ends at byte 40"
+
+
 class _CyclicWithFinalizer:
     """Garbage whose collection runs Python code (a finalizer), where threads can switch."""
 
@@ -713,7 +770,7 @@ def test_npy_header_parse_tried_again_after_the_spurious_ast_error(tmp_path, mon
     monkeypatch.setattr(npformat, "read_array_header_1_0", always)
     npy._parse_header.cache_clear()
     calls.clear()
-    with pytest.raises(CorruptInputError, match="NPY header is damaged .*something else"):
+    with pytest.raises(CorruptInputError, match="NPY header .*is damaged: something else"):
         open_recording(path)
     assert len(calls) == 1
 
@@ -831,6 +888,42 @@ def test_raw_sidecar_problems_name_both_files(tmp_path, data_len, side, pattern)
     assert str(path) in str(err.value) and err.value.path == str(path)
     if "unknown" in pattern or "frames" in pattern:
         assert str(path) + ".toml" in str(err.value)
+    if pattern != "no frames":  # the fix is in the sidecar: the remedy, the message's last clause, names it
+        assert f"its sidecar {path}.toml" in err.value.remedy and str(err.value).endswith(f"; {err.value.remedy}")
+
+
+@pytest.mark.parametrize(("start", "said"), [
+    ("0001-01-01T00:00:00+05:00", "is before year 1 in UTC"),
+    ("9999-12-31T23:00:00-05:00", "is after year 9999 in UTC"),
+    ("0000-01-01T00:00:00", "is in year 0"),
+])
+def test_a_start_time_outside_years_1_to_9999_is_refused_as_out_of_range(tmp_path, start, said):
+    # Python's datetime holds the years datetime.MINYEAR = 1 to MAXYEAR = 9999; midnight of
+    # 1 January of year 1 at +05:00 is 19:00 of 31 December of year 0 in UTC (ISO 8601 offsets).
+    assert (dt.MINYEAR, dt.MAXYEAR) == (1, 9999)
+    x = _ints("int16", (20, 1)).astype("<i2").tobytes()
+    path = _raw_case(tmp_path, x, {"dtype": "int16", "channels": 1, "sample_rate_hz": 10.0, "start_time": start})
+    arr = zarr.create_array(store=str(tmp_path / "a.zarr"), shape=(20,), dtype="int16")
+    arr.attrs.update(sample_rate_hz=10.0, start_time=start)
+    for p in (path, tmp_path / "a.zarr"):
+        with pytest.raises(CorruptInputError) as err:
+            open_recording(p)
+        assert f"start_time {start!r} {said}, outside the times twinpass can hold (years 1 to 9999)" in str(err.value)
+        assert "ISO 8601" not in str(err.value)
+
+
+@pytest.mark.parametrize("fmt", ["toml", "json"])
+def test_raw_sidecar_starting_with_a_byte_order_mark_is_read(tmp_path, fmt):
+    # Some editors start UTF-8 text with the byte-order mark EF BB BF (U+FEFF, the Unicode
+    # standard's "UTF-8 signature"); Python's "utf-8-sig" codec skips it, and so does the reader.
+    x = _ints("int16", (50, 2))
+    path = _raw_case(tmp_path, x.astype("<i2").tobytes(), {"dtype": "int16", "channels": 2, "sample_rate_hz": 10.0},
+                     fmt=fmt)
+    side = Path(f"{path}.{fmt}")
+    side.write_bytes(b"\xef\xbb\xbf" + side.read_bytes())
+    with open_recording(path) as rec:
+        assert (rec.info.channels, rec.info.frames, rec.info.sample_rate_hz) == (2, 50, 10.0)
+        assert np.array_equal(rec.read(0, 50), x / 32768.0)
 
 
 def test_raw_missing_or_ambiguous_sidecar(tmp_path):
@@ -839,6 +932,9 @@ def test_raw_missing_or_ambiguous_sidecar(tmp_path):
     with pytest.raises(CorruptInputError) as err:
         open_recording(path)
     assert str(path) in str(err.value) and str(path) + ".toml" in str(err.value)
+    assert "\n" not in str(err.value)  # one line, as status lines and logs show it
+    assert err.value.remedy == (f'write its sidecar {path}.toml, one key per line, e.g. dtype = "int16", '
+                                "channels = 2, sample_rate_hz = 1000.0")
     (tmp_path / "lone.raw.toml").write_text('dtype = "int16"\nchannels = 1\n')
     (tmp_path / "lone.json").write_text('{"dtype": "int16", "channels": 1}')
     with pytest.raises(CorruptInputError, match="several sidecars"):
@@ -910,6 +1006,29 @@ def test_zarr_array_inside_group(tmp_path):
         open_recording(f"{store}#nothing/here")
     with pytest.raises(InputError, match="no such Zarr store"):
         open_recording(tmp_path / "missing.zarr")
+
+
+@pytest.mark.parametrize(("fmt", "meta"), [(3, "zarr.json"), (2, ".zarray")])
+def test_damaged_zarr_metadata_is_named(tmp_path, fmt, meta):
+    # Zarr format 3 keeps an array's metadata in zarr.json, format 2 in .zarray (the Zarr
+    # specifications; zarr-python writes them below); JSON text cut short does not parse.
+    store = tmp_path / "a.zarr"
+    zarr.create_array(store, shape=(20,), dtype="float32", zarr_format=fmt)[:] = 1.0
+    blob = (store / meta).read_bytes()
+    (store / meta).write_bytes(blob[: len(blob) // 2])
+    with pytest.raises(CorruptInputError) as err:
+        open_recording(store, options={"sample_rate_hz": 10})
+    assert str(err.value).startswith(f"{store}: its metadata file {store / meta} is damaged (JSONDecodeError: ")
+    assert err.value.remedy == f"restore {store / meta} from a copy, or re-export the array"
+    assert str(err.value).endswith(f"; {err.value.remedy}")
+
+
+def test_a_zarr_folder_without_metadata_says_so(tmp_path):
+    (tmp_path / "empty.zarr").mkdir()
+    with pytest.raises(InputError) as err:
+        open_recording(tmp_path / "empty.zarr")
+    assert str(err.value).endswith(f"; the folder {tmp_path / 'empty.zarr'} holds no zarr.json (nor .zarray, "
+                                   "for Zarr format 2)")
 
 
 # ----------------------------------------------------------------------------- specs, read-only

@@ -658,6 +658,19 @@ def test_the_overlay_puts_t0_and_its_marker_on_one_sample_of_a_drifting_input(tm
     assert len(markers) == 1 and markers[0].get_xdata()[0] == 0.0  # the marker too
 
 
+def test_status_tells_apart_designs_at_rates_alike_to_six_digits() -> None:
+    # A rate of 200.00000001 Hz (a sidecar's) gets its own design, as 200 Hz does; "%g" (six
+    # significant digits) shows both as 200, Python's repr the shortest text that reads back
+    # as the same float (Python documentation, floating-point repr).
+    from twinpass.status import limits_line
+
+    rates = (200.0, 200.00000001, 1e-3, 44100.0)
+    lines = [limits_line({"sample_rate_hz": fs, "outputs": 1, "limits": None, "note": "n"}) for fs in rates]
+    heads = [line.split(" (", 1)[0] for line in lines]
+    assert heads == ["limits at 200 Hz", "limits at 200.00000001 Hz", "limits at 0.001 Hz", "limits at 44100 Hz"]
+    assert [float(h.split()[2]) for h in heads] == list(rates)
+
+
 def test_the_report_and_status_show_the_limits_the_blocks_are_graded_against(tmp_path: Path) -> None:
     # Reference: the README's [checks] defaults and rule (a stopband fails below the spec's
     # stopband_attenuation_db less stopband_margin_db, 10 dB: 60 - 10 = 50 dB; the passband

@@ -152,3 +152,89 @@ def test_a_cached_nan_scan_is_not_reused_after_a_sidecar_edit(tmp_path):
     second = discover(cfg, scan_cache=first.scans)
     assert second.scanned == (RAW,)
     assert second.files[0].nonfinite_runs == ((300, 301),)
+
+
+def _edit_sidecar_when_block_starts(monkeypatch, root: Path, block: int, **keys: object) -> list[int]:
+    """Fault injection: rewrite the sidecar (``keys``) as block ``block`` of the file starts, once,
+    at the engine's fault hook (blocks run in this process's threads). Returns the blocks seen."""
+    from twinpass import faults
+
+    seen: list[int] = []
+    real = faults.apply
+
+    def apply(name: str, index: int) -> set[str]:
+        if index == block and block not in seen:
+            _sidecar(root, **keys)
+        seen.append(index)
+        return real(name, index)
+
+    monkeypatch.setattr(faults, "apply", apply)
+    return seen
+
+
+@pytest.mark.parametrize("mode", ["halo", "carry"])
+def test_a_sidecar_edited_while_a_run_reads_the_file_leaves_it_not_complete(tmp_path, monkeypatch, mode):
+    root = tmp_path / "archive"
+    codes = pcm16(6000, 2, seed=7)
+    put(root, RAW, codes.astype("<i2").tobytes())
+    _sidecar(root, gain=1.0)
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN}, output={"dtype": "float64"},
+               processing={"block_seconds": 10.0, "mode": mode})
+    seen = _edit_sidecar_when_block_starts(monkeypatch, root, 2, gain=2.5)
+    first = run(cfg)
+    assert 2 in seen and max(seen) >= 3  # the edit came with blocks still to read the file
+    (out,) = first.outcomes
+    assert out.status == "failed", out
+    said = " ".join(out.errors.values())
+    assert f"its sidecar {Path(SIDECAR).name} changed" in said and "gain 1.0 -> 2.5" in said
+    assert "not marked complete" in said
+    store = OutputStore.open(cfg.store_location, mode="r")
+    assert [r.complete for r in store.file_records().values()] == [False]
+    # Every block decoded the file as the run planned it (gain 1), before and after the edit.
+    x = codes.astype(np.float64) / 2**15
+    y = store.read(RAW[: -len(".bin")])
+    assert np.max(np.abs(y - _reference(first.designs[float(RATE)], x))) <= 1e-9 * np.max(np.abs(x))
+
+    monkeypatch.undo()
+    second = run(cfg)
+    assert [o.status for o in second.outcomes] == ["complete"]
+    y = OutputStore.open(cfg.store_location, mode="r").read(RAW[: -len(".bin")])
+    ref = _reference(second.designs[float(RATE)], 2.5 * x)  # the gain the sidecar gives now
+    assert np.max(np.abs(y - ref)) <= 1e-9 * np.max(np.abs(2.5 * x))
+
+
+def test_a_label_edit_of_the_sidecar_while_a_run_reads_the_file_changes_no_verdict(tmp_path, monkeypatch):
+    # Channel names change no sample (twinpass rule): the output is complete as filtered.
+    root = tmp_path / "archive"
+    codes = pcm16(6000, 2, seed=8)
+    put(root, RAW, codes.astype("<i2").tobytes())
+    _sidecar(root)
+    cfg = load(tmp_path, archive={"name_pattern": PATTERN}, output={"dtype": "float64"},
+               processing={"block_seconds": 10.0})
+    seen = _edit_sidecar_when_block_starts(monkeypatch, root, 2, channel_names=["north", "south"])
+    res = run(cfg)
+    assert 2 in seen
+    assert [o.status for o in res.outcomes] == ["complete"]
+
+
+def test_a_raw_files_spec_decodes_as_when_it_was_opened(tmp_path):
+    # Decoding by hand (numpy frombuffer, / 2**15, times the gain), as in the module notes.
+    import pickle
+
+    from twinpass.io.readers import open_recording
+
+    root = tmp_path / "archive"
+    codes = pcm16(500, 2, seed=3)
+    data = put(root, RAW, codes.astype("<i2").tobytes())
+    _sidecar(root, gain=1.0)
+    with open_recording(data) as rec:
+        spec = rec.spec
+    _sidecar(root, gain=4.0)
+    x = codes.astype(np.float64) / 2**15
+    for again in (spec, pickle.loads(pickle.dumps(spec))):  # in this process or another
+        with again.open() as rec:
+            assert rec.info.extra["gain"] == 1.0
+            np.testing.assert_array_equal(rec.read(0, 500), x)
+    with spec.as_found().open() as rec:  # the sidecar as it reads now
+        assert rec.info.extra["gain"] == 4.0
+        np.testing.assert_array_equal(rec.read(0, 500), 4.0 * x)

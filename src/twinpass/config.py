@@ -116,6 +116,9 @@ class ArchiveConfig:
     wrapped_sizes: str = "error"
     """Plain RIFF WAV over 4 GiB whose 32-bit sizes wrapped (data the last chunk, ending before
     the file): error | read (the data runs to the end of the file)."""
+    max_channels: int = 1024
+    """Most channels a recording may have (>= 1); a file with more is left out, most likely a
+    2-D array stored channel-major, (channels, samples), instead of time-major."""
     channels: tuple[StreamChannels, ...] | None = None
     """Channel names and units per stream (``[archive.channels."<stream>"]``, ``"*"`` for every
     stream), written to the outputs' attributes; None when none are given."""
@@ -527,6 +530,8 @@ def _check_ranges(cfg: JobConfig) -> None:
     rate = cfg.archive.sample_rate_hz
     _require(src, "archive", "sample_rate_hz", rate, rate is None or rate > 0,
              "must be > 0 (Hz), the sample rate of the recordings that store none")
+    _require(src, "archive", "max_channels", cfg.archive.max_channels, cfg.archive.max_channels >= 1,
+             "must be >= 1 (the most channels a recording may have)")
     _require(src, "engine", "retry_backoff_seconds", cfg.engine.retry_backoff_seconds,
              cfg.engine.retry_backoff_seconds >= 0, "must be >= 0 (seconds before the first retry of a block)")
     _require(src, "flow", "retries", fl.retries, fl.retries >= 0, "must be >= 0 (0 = no retries of a segment)")

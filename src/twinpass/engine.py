@@ -56,9 +56,10 @@ from .core.kernel import block_reach, filtfilt_window, resolve_edge_samples
 from .core.nonfinite import FillSpan, apply_fill, filter_with_holes, hole_mask
 from .core.plan import SegmentReads
 from .core.types import RESETTING_DIGEST, Design
-from .errors import ConfigError, CorruptInputError, InputError, RunStoppedError, StoreError, TwinpassError
+from .errors import (ConfigError, CorruptInputError, DamagedInputError, InputError, RunStoppedError, StoreError,
+                     TwinpassError)
 from .io.channels import ChannelLabels
-from .io.fingerprint import changed_since
+from .io.fingerprint import BYTE_FIELDS, changed_since
 from .io.readers._common import SHORT_READ_HINT, with_config_keys
 from .io.readers.base import ReaderSpec
 
@@ -80,6 +81,19 @@ class SourceSlice:
     frames: int
     fill: tuple[FillSpan, ...] = ()
     """Linear fills of the file's NaN/Inf runs (file samples), applied to every read."""
+    planned: tuple[tuple[str, Any], ...] = ()
+    """The byte fields of the file's fingerprint when the run planned it (size, modification
+    time, digest: :func:`twinpass.io.fingerprint.changed_since`), to tell a file that changed
+    since from one damaged as it was; empty: not known."""
+
+
+def segment_sources(seg: SegmentWork) -> tuple[SourceSlice, ...]:
+    """The files of ``seg`` as its block tasks read them."""
+    return tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill, _byte_fields(f.fingerprint)) for f in seg.files)
+
+
+def _byte_fields(fingerprint: dict[str, Any] | None) -> tuple[tuple[str, Any], ...]:
+    return tuple((k, fingerprint[k]) for k in BYTE_FIELDS if k in fingerprint) if fingerprint else ()
 
 
 def _changed_during_run(path: str, exc: InputError) -> InputError:
@@ -87,8 +101,23 @@ def _changed_during_run(path: str, exc: InputError) -> InputError:
     with its options named as the configuration keys, and what follows for its blocks."""
     found = with_config_keys(str(exc)).removeprefix(f"{path}: ").removesuffix(
         f"; {SHORT_READ_HINT}")
-    return type(exc)(f"{path}: the file changed while this run used it: {found}; its blocks are recorded as "
-                     "not done: rerun to filter it afresh", path=path)
+    kind = CorruptInputError if isinstance(exc, DamagedInputError) else type(exc)  # changed: retried
+    return kind(f"{path}: the file changed while this run used it: {found}; its blocks are recorded as "
+                "not done: rerun to filter it afresh", path=path)
+
+
+def _read_failed(src: SourceSlice, exc: CorruptInputError) -> InputError:
+    """The error for a window of ``src`` that its reader could not read although it opened as
+    planned: damage in the file as the run planned it (the reader's error, with the remedy; not
+    retried), the reader's own error for a file that did not change, or the file's change."""
+    if not src.planned or changed_since(src.spec.path, dict(src.planned)) is not None:
+        return _changed_during_run(src.spec.path, exc)
+    if isinstance(exc, DamagedInputError):
+        return DamagedInputError(
+            f"{exc}; the input has not changed since the run planned it, so a rerun meets the same damage: restore "
+            "the damaged part from a copy (or repair it), or leave the input out with [archive] exclude",
+            path=src.spec.path)
+    return exc
 
 
 def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channels: int) -> np.ndarray:
@@ -125,8 +154,8 @@ def read_segment_window(sources: tuple[SourceSlice, ...], a: int, b: int, channe
                 )
             try:
                 part = rec.read(lo - src.seg_offset, hi - src.seg_offset)
-            except CorruptInputError as exc:  # cut short while this block read it
-                raise _changed_during_run(src.spec.path, exc) from None
+            except CorruptInputError as exc:  # cut short while this block read it, or damaged
+                raise _read_failed(src, exc) from None
         if src.fill:
             apply_fill(part, lo - src.seg_offset, src.fill)
         if (lo, hi) == (a, b) and part.dtype == np.float64 and part.flags.c_contiguous and part.flags.writeable:
@@ -248,13 +277,20 @@ def _filter_block(job: BlockJob, tamper: set[str]) -> tuple[np.ndarray, np.ndarr
 T = TypeVar("T")
 
 
+def was_damaged(error: str | None) -> bool:
+    """Whether a block's recorded error text (as :func:`with_retries` gives it) is damage of its
+    input that reading again cannot clear (:class:`DamagedInputError`)."""
+    return bool(error) and str(error).startswith(f"{DamagedInputError.__name__}: ")
+
+
 def with_retries(work: Callable[[], T], retries: int, first_delay_s: float) -> tuple[T | None, str | None, int]:
     """Run ``work``, retrying it ``retries`` times after the waits of :func:`retry_delays`.
 
     Returns ``(result, None, attempts)``, or ``(None, error, attempts)`` when every attempt
     raised: the last error's type and message and, for errors that are not twinpass's own,
     a short traceback. A :class:`RunStoppedError` (another run holds the store) is not
-    retried: no retry could write. Never raises for an ``Exception``.
+    retried: no retry could write; nor a :class:`DamagedInputError` (input that decodes no
+    better when read again). Never raises for an ``Exception``.
     """
     delays = retry_delays(retries, first_delay_s)
     last = ""
@@ -265,7 +301,7 @@ def with_retries(work: Callable[[], T], retries: int, first_delay_s: float) -> t
             last = f"{type(exc).__name__}: {exc}"
             if not isinstance(exc, TwinpassError):
                 last += "\n" + traceback.format_exc(limit=4)
-            if isinstance(exc, RunStoppedError):
+            if isinstance(exc, (RunStoppedError, DamagedInputError)):
                 return None, last, attempt + 1
             if attempt < retries:
                 time.sleep(delays[attempt])
@@ -305,7 +341,7 @@ def run_block(job: BlockJob) -> BlockResult:
         if job.write:
             from .io.store import write_block_data
 
-            with np.errstate(over="ignore"):  # beyond the output type: counted as clipped, stored as inf
+            with np.errstate(over="ignore"):  # beyond the output type: stored as inf, counted as clipped (fails)
                 stored = y.astype(job.out_dtype)
             write_block_data(job.store_location, job.array_name, job.core[0] - job.file_offset,
                              stored, sync=job.sync, fence=job.fence)
@@ -893,7 +929,7 @@ def block_jobs(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, lay
     """
     k = cfg.checks.seam_samples
     every = cfg.checks.every
-    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
+    sources = segment_sources(seg)
     jobs: list[BlockJob] = []
     for fw in seg.files:
         todo = todo_by_file.get(fw.array_name)
@@ -1296,10 +1332,11 @@ def finish_segment(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any,
 
 def inputs_changed_during_run(seg: SegmentWork) -> dict[str, str]:
     """The input files of ``seg`` that changed since the run planned them (fingerprint
-    taken at discovery), with how: :func:`twinpass.io.fingerprint.changed_since`."""
+    taken at discovery), their sidecars included, with how:
+    :func:`twinpass.io.fingerprint.changed_since`."""
     out = {}
     for fw in seg.files:
-        how = changed_since(fw.spec.path, fw.fingerprint)
+        how = changed_since(fw.spec.path, fw.fingerprint, fw.spec)
         if how is not None:
             out[fw.relpath] = how
     return out
@@ -1308,8 +1345,8 @@ def inputs_changed_during_run(seg: SegmentWork) -> dict[str, str]:
 def _moved_message(relpath: str, moved: dict[str, str]) -> str:
     """Why ``relpath`` is not marked complete: inputs of its segment (``moved``: path -> how)
     changed while the run read them."""
-    outcome = ("the output is not marked complete, since it may mix samples from before and after the change: "
-               "rerun to filter the new contents")
+    outcome = ("the output is not marked complete, since it was filtered, in part or in whole, from the file as it "
+               "was before the change: rerun to filter the new contents")
     if set(moved) == {relpath}:
         return f"the file changed while this run read it ({moved[relpath]}); {outcome}"
     which = "; ".join(f"{rel}: {how}" for rel, how in sorted(moved.items()))

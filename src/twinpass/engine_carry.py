@@ -115,6 +115,7 @@ from .engine import (
     record_result,
     segment_edge_samples,
     segment_layout,
+    segment_sources,
     with_retries,
 )
 from .errors import ConfigError, KernelError
@@ -438,7 +439,7 @@ def step_output(job: PieceJob, state_f: np.ndarray, state_b: np.ndarray,
         status = _checks.grade(figs, job.design, job.checks_cfg, job.design.tolerance)
         from .io.store import write_block_data
 
-        with np.errstate(over="ignore"):  # beyond the output type: counted as clipped, stored as inf
+        with np.errstate(over="ignore"):  # beyond the output type: stored as inf, counted as clipped (fails)
             stored = y.astype(job.out_dtype)
         write_block_data(job.store_location, p.array_name, p.start - job.edge_samples - p.file_offset,
                          stored, sync=job.sync, fence=job.fence)
@@ -830,7 +831,7 @@ def _run_carry(seg: SegmentWork, design: Design, cfg: JobConfig, store: Any, cli
     """
     k = cfg.checks.seam_samples
     m = len(pieces)
-    sources = tuple(SourceSlice(f.spec, f.seg_offset, f.frames, f.fill) for f in seg.files)
+    sources = segment_sources(seg)
     retries = cfg.engine.retries
 
     def job(p: Piece, before: int = 0, **extra: Any) -> PieceJob:

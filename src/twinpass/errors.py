@@ -28,11 +28,14 @@ class KernelError(TwinpassError, ValueError):
 
 
 class InputError(TwinpassError):
-    """An input recording cannot be used. ``path`` names the file when known."""
+    """An input recording cannot be used. ``path`` names the file when known; ``remedy``,
+    when given, is what to do, as the message's last clause (after "; "), for a fix that is
+    not in the file itself (its sidecar, say)."""
 
-    def __init__(self, message: str, path: str | None = None) -> None:
+    def __init__(self, message: str, path: str | None = None, remedy: str | None = None) -> None:
         super().__init__(message)
         self.path = path
+        self.remedy = remedy
 
 
 class UnsupportedFormatError(InputError):
@@ -41,6 +44,11 @@ class UnsupportedFormatError(InputError):
 
 class CorruptInputError(InputError):
     """The file's header or data are damaged or contradict each other."""
+
+
+class DamagedInputError(CorruptInputError):
+    """Part of a file's data cannot be decoded, and reading that part alone fails again (a
+    damaged chunk of a Zarr array): a block is not retried for it, since a retry reads the same."""
 
 
 class ArchiveError(TwinpassError):

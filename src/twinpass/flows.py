@@ -74,10 +74,11 @@ from .engine import (
     retry_delays,
     run_segment,
     warm_compiled_loops,
+    was_damaged,
     with_check_failures,
 )
-from .errors import (BlockFailedError, ChecksFailedError, ConfigError, FlowRunCancelledError, RunStoppedError,
-                     TwinpassError, failure_text)
+from .errors import (BlockFailedError, ChecksFailedError, ConfigError, DamagedInputError, FlowRunCancelledError,
+                     RunStoppedError, TwinpassError, failure_text)
 from .headstart import HeadStart, claim
 from .heartbeats import flow_heartbeats
 from .io.store import OutputStore
@@ -333,9 +334,10 @@ def design_task(prep: Prepared) -> dict[str, Any]:
 
 def _worth_retrying(task: Any, task_run: Any, state: Any) -> bool:
     """Retry a failed segment unless only checks failed (the same blocks give the same
-    figures) or the configuration does not suit it (e.g. blocks too large for the memory
-    budget). A segment of a stopped run ends Cancelled, which is never retried."""
-    return not isinstance(getattr(state, "data", None), (ChecksFailedError, ConfigError))
+    figures), its blocks failed only on damaged input (a retry reads the same), or the
+    configuration does not suit it (e.g. blocks too large for the memory budget). A segment
+    of a stopped run ends Cancelled, which is never retried."""
+    return not isinstance(getattr(state, "data", None), (ChecksFailedError, DamagedInputError, ConfigError))
 
 
 @task(name="filter-segment", cache_policy=NO_CACHE, retries=1, retry_delay_seconds=5.0,
@@ -446,6 +448,9 @@ def _filter_segment(seg: SegmentWork, prep: Prepared, store: OutputStore, run: _
         if not any(o.errors for o in failed):  # every block ran; only their checks failed
             raise ChecksFailedError(f"segment {seg.segment_id}: {names}; not retried (the same blocks give "
                                     "the same figures): see `twinpass status` or the report")
+        if all(was_damaged(r) for r in reasons):  # (and checks failed): a retry reads the same
+            raise DamagedInputError(f"segment {seg.segment_id}: {names}; not retried (its input is damaged: a "
+                                    "retry reads the same)")
         raise BlockFailedError(f"segment {seg.segment_id}: {names}")
     return outcomes
 

@@ -143,10 +143,17 @@ def _limits(outputs: list[Mapping[str, Any]], root: Mapping[str, Any],
             "designs": sorted(designs.values(), key=lambda d: (d["sample_rate_hz"], d["design_digest"]))}
 
 
+def rate_text(hz: float) -> str:
+    """A sample rate in Hz as short text that still tells it from any other: ``"500"``, but
+    ``"200.00000001"`` where six significant digits would show two rates alike."""
+    short = f"{float(hz):g}"
+    return short if float(short) == float(hz) else repr(float(hz))
+
+
 def limits_line(entry: Mapping[str, Any]) -> str:
     """One design's limits in a line: ``"limits at 500 Hz: passband deviation warn beyond ±0.8 dB, ..."``."""
     rules = entry.get("limits")
-    head = f"limits at {float(entry['sample_rate_hz']):g} Hz ({entry['outputs']} output(s))"
+    head = f"limits at {rate_text(entry['sample_rate_hz'])} Hz ({entry['outputs']} output(s))"
     if not rules:
         return f"{head}: not known ({entry.get('note')})"
     shown = [r for r in rules if r["figure"] in ("passband_dev_db", "phase_deg", "stopband_att_db", "seam_mismatch")]

@@ -231,6 +231,7 @@ __all__ = [
     "summarise",
     "seam_mismatch",
     "SEAM_FACTOR",
+    "CLIPPED_REMEDY",
     "ESTIMATOR_ERROR_DB",
     "ESTIMATOR_ERROR_DEG",
 ]
@@ -319,6 +320,9 @@ COHERENT_FRACTION_MIN: float = 0.5
 bins with input energy fails: its output is not explained by its input."""
 MIN_CANDIDATE_BINS: int = 8
 """The coherent-fraction rule applies only with at least this many passband bins."""
+CLIPPED_REMEDY: str = '[output] dtype = "float64"'
+"""The setting that holds output values beyond float32's range (about 3.4e38 in magnitude),
+which a float32 output stores as infinity: the remedy of a block that fails on clipped samples."""
 SEAM_FACTOR: float = 10.0
 """A seam mismatch above ``SEAM_FACTOR * tolerance`` fails.
 
@@ -1333,7 +1337,7 @@ class Finding:
         on = f" on channel {self.channel}"
         if self.figure in ("nonfinite_in", "nonfinite_out", "clipped"):
             what = {"nonfinite_in": "non-finite input sample(s)", "nonfinite_out": "non-finite output sample(s)",
-                    "clipped": "output sample(s) beyond the output type's range"}[self.figure]
+                    "clipped": "output sample(s) beyond the output type's range, stored as infinity,"}[self.figure]
             return f"{self.value:,.0f} {what}{on}"
         if self.figure == "passband_dev_db":
             return f"passband deviation {self.value:+.3g} dB{on}, limit {self.limit:.3g} dB either way"
@@ -1425,8 +1429,9 @@ def grading_limits(design: Design, cfg: ChecksConfig, tolerance: float) -> dict[
                               basis="any NaN or infinite input sample fails"),
         "nonfinite_out": Limit("nonfinite_out", "non-finite output samples", "samples", None, 0.0,
                                basis="any NaN or infinite output sample fails"),
-        "clipped": Limit("clipped", "clipped output samples", "samples", 0.0, None,
-                         basis="output samples beyond the output type's range warn"),
+        "clipped": Limit("clipped", "clipped output samples", "samples", None, 0.0,
+                         basis=("any output sample beyond the output type's range fails: it is stored as "
+                                f"infinity, not as the filtered value ({CLIPPED_REMEDY} holds it)")),
         "passband_dev_db": Limit(
             "passband_dev_db", "passband deviation", "dB", base + cfg.passband_warn_db, base + cfg.passband_fail_db,
             either_way=True,
@@ -1473,7 +1478,7 @@ def findings(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: 
     lim = grading_limits(design, cfg, tolerance)
     for name in ("nonfinite_in", "nonfinite_out"):
         found += _worst(_column(figures, name), float(lim[name].fail or 0.0), FAIL, name)
-    found += _worst(_column(figures, "clipped"), float(lim["clipped"].warn or 0.0), WARN, "clipped")
+    found += _worst(_column(figures, "clipped"), float(lim["clipped"].fail or 0.0), FAIL, "clipped")
     for name in ("passband_dev_db", "phase_deg"):
         values, rule = _column(figures, name), lim[name]
         found += (_worst(values, float(rule.fail or 0.0), FAIL, name, judged=np.abs(values))
@@ -1517,7 +1522,7 @@ def grade(figures: np.ndarray, design: Design, cfg: ChecksConfig, tolerance: flo
         The worst over channels of these rules (NaN figures are not measured and ignored):
 
         * non-finite input or output samples: fail;
-        * clipped output samples: warn;
+        * clipped output samples (beyond the output type's range, stored as infinity): fail;
         * ``|passband_dev_db| > ripple/2 + ESTIMATOR_ERROR_DB + passband_warn_db``: warn;
           ``... + passband_fail_db``: fail (``ripple`` is the spec's overall passband
           ripple, 0 when not given);

@@ -1295,6 +1295,11 @@ def _auto(spec: ResponseSpec, fs: float) -> tuple[str, np.ndarray | None, np.nda
     return best[2], best[3], best[4], best[5]
 
 
+# A rate far above the band edges (1e300 Hz) makes scipy divide by coefficients that underflow
+# to 0; whatever that gives is refused by the checks of the design (a NaN or unstable section,
+# a response that misses the spec) and reported with its remedy, so the floating-point warnings
+# of the arithmetic on the way are not printed.
+@np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore")
 def design_filter(spec: ResponseSpec, sample_rate_hz: float, tolerance: float = 1e-9) -> Design:
     """Design the per-pass filter whose two-pass response meets ``spec``.
 

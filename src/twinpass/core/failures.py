@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from twinpass.core.checks import FAIL, WARN, Finding, findings, seam_scale
+from twinpass.core.checks import CLIPPED_REMEDY, FAIL, WARN, Finding, findings, seam_scale
 from twinpass.core.types import Design
 
 if TYPE_CHECKING:  # the configuration module is not part of the numeric core
@@ -65,7 +65,8 @@ class _Failed:
     index: int
     text: str
     kinds: frozenset[str]
-    """``response``, ``integrity``, ``seam``, ``follows`` (a seam failure next to a block
+    """``response``, ``integrity``, ``clipped`` (output beyond the output type's range),
+    ``seam``, ``follows`` (a seam failure next to a block
     failing for another reason) or ``unexplained`` (figures within the limits now)."""
 
 
@@ -135,13 +136,14 @@ _REMEDIES = {
                 "same figures is no passing fault of the run: either the output there is wrong, or the input there "
                 "is one the check cannot judge (the report lists what it cannot see)",
     "integrity": "look at the input at those frames and at [processing] nonfinite, then rerun",
+    "clipped": f"set {CLIPPED_REMEDY}: the output there is larger than float32 can hold",
     "seam": "rerun; a seam mismatch that stays means the halo is too short for this filter (see the design "
             "report's effective length)",
     "follows": "a seam failure that follows from another block's failure or warning passes once that block's "
                "output is right",
     "unexplained": "rerun (the figures recorded are within the limits now)",
 }
-_ORDER = ("response", "integrity", "seam", "unexplained", "follows")
+_ORDER = ("response", "integrity", "clipped", "seam", "unexplained", "follows")
 _CAUSE = {"response": "response check", "integrity": "integrity check"}
 
 
@@ -157,7 +159,9 @@ def _seam_remedy(design: Design, tolerance: float) -> str:
 
 
 def _kind(f: Finding) -> str:
-    return "response" if f.response else "seam" if f.figure == "seam_mismatch" else "integrity"
+    if f.response:
+        return "response"
+    return {"seam_mismatch": "seam", "clipped": "clipped"}.get(f.figure, "integrity")
 
 
 def explain(files: Sequence[FileBlocks | None], design: Design, cfg: ChecksConfig,
@@ -212,7 +216,7 @@ def explain(files: Sequence[FileBlocks | None], design: Design, cfg: ChecksConfi
                     kinds = {"follows"}
                     text += f", following from {' and '.join(causes)}"
             failed.append(_Failed(i, f"{_where(fb, i, fs)}: {text}", frozenset(kinds or {"unexplained"})))
-        rank = {"response": 0, "integrity": 0, "seam": 1, "unexplained": 1, "follows": 2}
+        rank = {"response": 0, "integrity": 0, "clipped": 0, "seam": 1, "unexplained": 1, "follows": 2}
         first = sorted(failed, key=lambda f: (min(rank[kd] for kd in f.kinds), f.index))
         present = set().union(*(f.kinds for f in failed))
         remedies = {**_REMEDIES, "seam": _seam_remedy(design, tolerance)}

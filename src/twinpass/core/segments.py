@@ -105,6 +105,9 @@ class FileEntry:
     """One name per channel for the output's attributes (``twinpass.io.channels``), or ``None``."""
     units: tuple[str, ...] | None = field(default=None, compare=False)
     """One unit per channel for the output's attributes, or ``None``."""
+    start_source: str | None = field(default=None, compare=False)
+    """Where :attr:`start_time` was read, for messages (``"the file's bext chunk"``, ``"the
+    manifest /data/manifest.csv"``...), or ``None`` when unknown or there is no start time."""
 
     @property
     def holes(self) -> tuple[tuple[int, int], ...]:
@@ -297,6 +300,16 @@ def _make_segment(stream: str, files: list[FileEntry], why: tuple[str | None, st
     )
 
 
+def start_sources(a: FileEntry, b: FileEntry) -> str:
+    """Where the start times of two files were read, for a remedy that asks to correct one:
+    ``"in the file's bext chunk"`` when both come from one kind of place, else each by file."""
+    if a.start_source is None or b.start_source is None:
+        return "where it was read: the file name, the manifest or the file itself"
+    if a.start_source == b.start_source:
+        return f"in {a.start_source}"
+    return f"{a.relpath}: in {a.start_source}; {b.relpath}: in {b.start_source}"
+
+
 def _sort_key(f: FileEntry) -> tuple[_dt.datetime, str]:
     assert f.start_time is not None
     return (f.start_time, f.relpath)
@@ -325,7 +338,7 @@ def _stream_segments(stream: str, files: list[FileEntry]) -> tuple[list[Segment]
                     f"overlaps {prev.relpath} of stream {stream!r} by {-off:.1f} samples: it starts at "
                     f"{f.start_time.isoformat()} before {prev.relpath} ends at "  # type: ignore[union-attr]
                     f"{prev.end_time.isoformat()}",  # type: ignore[union-attr]
-                    "correct the start time of one of the two files (file name or manifest), "
+                    f"correct the start time of one of the two files ({start_sources(prev, f)}), "
                     "or remove the repeated data / exclude one of them with [archive] exclude",
                 )
             )

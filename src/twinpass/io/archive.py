@@ -11,7 +11,9 @@ Zarr metadata) is a candidate like a file and is not searched further. Symbolic 
 folders are followed once (no loops). The output store, the manifest and anything reached
 through a link into the output store are never taken as input. Globs match letter case
 exactly; files that one would select but for the case (``A.WAV`` against ``**/*.wav``) are
-noted, not selected. A folder that cannot be
+noted, not selected, and so are files that one would select but for a suffix their reader
+accepts too (``a.bwf`` against ``**/*.wav``) and folders named like a recording that the globs
+select but that hold none (an empty folder ``x.wav``). A folder that cannot be
 listed is reported (as ``FOLDER/``), and the files recorded under it are not taken as
 removed. Only regular files (after
 following symbolic links) are opened: a named pipe, socket, device or broken link that the
@@ -90,7 +92,8 @@ Patterns are compiled to one regular expression once per discovery.
 Bad input
 ---------
 Problems of single files never stop discovery: an unreadable or unknown file, a damaged
-header, zero frames, a missing sample rate, an unparsable start time or one outside the
+header, zero frames, a missing sample rate, more channels than ``[archive] max_channels``
+(most likely a 2-D array stored channel-major), an unparsable start time or one outside the
 years 1 to 9999 once taken to UTC, a path the pattern
 does not match, a second file with the same (stream, start time), a path that cannot name
 an output array (a hidden ``.name`` component, the reserved ``_twinpass`` prefix) or whose
@@ -168,12 +171,13 @@ from twinpass.io.readers._common import (
     CONFIG_WRAPPED,
     HEADER_REWRITE,
     READABLE,
+    TIME_MAJOR,
     TRUNCATED_HINT,
     WRAPPED_HINT,
     WRAPPED_REWRITE,
     file_kind,
 )
-from twinpass.io.readers.registry import open_recording, reader_for
+from twinpass.io.readers.registry import available_readers, get_reader, open_recording, reader_for
 from twinpass.io.scan import fill_spans_for, holds_floats, scan_channel_runs
 from twinpass.io.store_input import (
     INPUT_GONE,
@@ -428,6 +432,9 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     found: list[str] = []
     refused: list[InvalidFile] = []
     case_only: list[str] = []
+    suffix_only: list[str] = []
+    folders: list[str] = []  # folders named like a recording that the globs select
+    aliases = _suffix_aliases()
     seen_dirs: set[str] = set()
     arrays: dict[str, tuple[str, str]] = {}
     notes: list[str] = []
@@ -436,6 +443,14 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
         """Note ``rel`` if an include glob selects it but for the letter case (and no exclude does)."""
         if any(rx.match(rel) for rx in include_any_case) and not any(rx.match(rel) for rx in exclude):
             case_only.append(_shown(rel))
+
+    def by_suffix_only(rel: str) -> None:
+        """Note ``rel`` if an include glob selects it but for its suffix, another that its reader
+        accepts too (``a.bwf`` against ``**/*.wav``), and no exclude glob leaves it out."""
+        sfx = PurePosixPath(rel).suffix
+        probes = [rel[: len(rel) - len(sfx)] + alt for alt in aliases.get(sfx.lower(), ())]
+        if _selected_any(probes, include, []) and not any(rx.match(rel) for rx in exclude):
+            suffix_only.append(_shown(rel))
 
     def take_store(folder: str, rel: str | None) -> None:
         """The arrays of the output store at ``folder`` as candidates; ``rel`` is the store's
@@ -549,12 +564,17 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 elif not any(_inside(real_dir, f) for f in fenced):
                     by_case_only(rel)
                 continue
+            if PurePosixPath(name).suffix.lower() in aliases and _selected(rel, include, exclude):
+                folders.append(rel)  # named like a recording (x.wav): noted unless it holds one
             keep.append(name)
         dirnames[:] = keep
         for name in sorted(filenames):
             rel = name if rel_dir == "." else f"{rel_dir}/{name}"
             if not _selected(rel, include, exclude):
+                noted = len(case_only)
                 by_case_only(rel)
+                if len(case_only) == noted:
+                    by_suffix_only(rel)
                 continue
             real_file = os.path.realpath(os.path.join(dirpath, name))
             if real_file in skip_files or any(_inside(real_file, f) for f in fenced):
@@ -564,8 +584,39 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 refused.append(bad)
                 continue
             found.append(rel)
+    if suffix_only:
+        notes.append(_suffix_note(sorted(suffix_only)))
+    taken = [*found, *(b.path for b in refused)]
+    empty = [_shown(d) for d in folders if not any(p.startswith(f"{d}/") for p in taken)]
+    if empty:
+        shown = ", ".join(f"{d}/" for d in empty[:5]) + (f" and {len(empty) - 5} more" if len(empty) > 5 else "")
+        notes.append(
+            f"{len(empty)} folder(s) named like recordings match [archive] include but hold no file it selects: "
+            f"{shown}; a recording is a file (only a Zarr array is a folder), so they were not read: put the "
+            "recording there as a file, or leave them out with [archive] exclude"
+        )
     return ArchiveListing(sorted(found), sorted(refused, key=lambda b: b.path), sorted(case_only), arrays,
                           tuple(notes))
+
+
+def _suffix_aliases() -> dict[str, tuple[str, ...]]:
+    """For each file suffix a reader claims (lower case), the other suffixes of that reader
+    (``".bwf"``: ``".wav"``, ``".wave"``, ``".rf64"``)."""
+    out: dict[str, tuple[str, ...]] = {}
+    for name in available_readers():
+        suffixes = tuple(str(x).lower() for x in getattr(get_reader(name), "suffixes", ()) or ())
+        for sfx in suffixes:
+            out.setdefault(sfx, tuple(x for x in suffixes if x != sfx))
+    return out
+
+
+def _suffix_note(names: list[str]) -> str:
+    """The note for files that [archive] include selects but for a suffix their reader accepts too."""
+    shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+    return (
+        f"{len(names)} file(s) have a suffix that their reader accepts as well as the one [archive] include "
+        f"selects, but were not selected: {shown}; add patterns for them (e.g. {_case_globs(names)}) to include them"
+    )
 
 
 # -- name patterns -----------------------------------------------------------
@@ -808,6 +859,11 @@ def _open_info(cfg: JobConfig, abspath: str, fmt: str | None = None) -> tuple[An
     except (TwinpassError, OSError) as e:
         text = _strip_path(str(e), abspath)
         remedy = _REMEDY_EXCLUDE
+        own = getattr(e, "remedy", None)
+        if own and text.endswith(f"; {own}"):
+            # the reader knows the fix (in a sidecar, say): that is the remedy
+            text = text[: -len(own) - 2]
+            remedy = f"{own}, or leave the file out with [archive] exclude"
         if TRUNCATED_HINT in text:
             # the reader's hint names its own option; the remedy names the configuration key
             text = text.replace(f"; {TRUNCATED_HINT}", "")
@@ -836,7 +892,24 @@ def _open_info(cfg: JobConfig, abspath: str, fmt: str | None = None) -> tuple[An
         )
     if not info.sample_rate_hz > 0:
         raise _Bad(f"sample rate {info.sample_rate_hz!r} Hz is not positive", _REMEDY_EXCLUDE)
+    if info.channels > cfg.archive.max_channels:
+        raise _Bad(*_too_many_channels(info, cfg.archive.max_channels))
     return info, spec
+
+
+def _too_many_channels(info: Any, limit: int) -> tuple[str, str]:
+    """Reason and remedy for a recording of more channels than ``[archive] max_channels``; one
+    with more channels than samples too is most likely a 2-D array stored channel-major."""
+    n, frames = int(info.channels), int(info.frames)
+    reason = f"{n} channels, more than [archive] max_channels = {limit}"
+    raise_it = f"raise [archive] max_channels to {n} or more if it really holds {n} channels"
+    if n > frames:
+        return (
+            f"{reason}, and more channels than its {frames} samples: it looks stored channel-major, "
+            "(channels, samples), and would be filtered along the wrong axis",
+            f"{TIME_MAJOR}; or {raise_it}; or leave it out with [archive] exclude",
+        )
+    return reason, f"{raise_it}, or leave it out with [archive] exclude"
 
 
 def _runs_summary(runs: list[ChannelRun]) -> str:
@@ -1203,6 +1276,32 @@ def _identify_stage_array(
     )
 
 
+def _start_source(
+    cfg: JobConfig, rel: str, info: Any, start: _dt.datetime | None, manifest: dict[str, _Row] | None,
+    pattern: NamePattern | None, stage: bool,
+) -> str | None:
+    """Where the start time ``start`` that :func:`_identify` (``stage``: :func:`_identify_stage_array`)
+    gave ``rel`` was read, for messages (:attr:`FileEntry.start_source`); ``None`` without one."""
+    if start is None:
+        return None
+    if manifest is not None and rel in manifest:
+        return f"the manifest {cfg.manifest_path}"
+    if pattern is not None and not stage:
+        return "the file name, read with [archive] name_pattern"
+    return _stored_where(info)
+
+
+def _stored_where(info: Any) -> str:
+    """Where a reader found the start time stored with a recording, for messages."""
+    if info.format == "wav":
+        return "the file's bext chunk"
+    if info.extra.get("sidecar"):
+        return "the file's sidecar (start_time)"
+    if info.format == "zarr":
+        return "the array's attribute start_time"
+    return "the time stored in the file"
+
+
 def output_name(entry: FileEntry) -> str:
     """The output array name of a discovered file: :attr:`FileEntry.output_name` when
     discovery set one (an array of an earlier job's output store), else
@@ -1324,6 +1423,7 @@ def _examine(
             attrs = _finished_array_attrs(where)
             info, spec = _open_info(cfg, abspath, "zarr")
             stream, start = _identify_stage_array(cfg, rel, info, attrs, manifest)
+        source = _start_source(cfg, rel, info, start, manifest, pattern, where is not None)
         # Labels change no sample: a list that does not fit leaves that label off the
         # output (a note says so), and the file is filtered as usual.
         mismatched: list[LabelMismatch] = []
@@ -1355,7 +1455,7 @@ def _examine(
         notes.append(f"{rel}: {note}")
     notes += [f"{rel}: {n}" for n in label_notes]
     entry = FileEntry(rel, spec, info, stream, start, fp, nonfinite_runs=union, nonfinite_fill=fills,
-                      output_name=out_name, channel_names=labels.names, units=labels.units)
+                      output_name=out_name, channel_names=labels.names, units=labels.units, start_source=source)
     return entry, notes, scan_entry, was_scanned
 
 

@@ -45,11 +45,11 @@ from pathlib import Path
 from typing import Any, BinaryIO, Mapping, NamedTuple
 
 from twinpass.core.plan import fingerprint_changed
-from twinpass.errors import ConfigError, InputError
+from twinpass.errors import ConfigError, InputError, TwinpassError
 
 __all__ = [
-    "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "changed_since", "decoding_of", "fingerprint_file",
-    "fingerprint_changed", "design_digest",
+    "BYTE_FIELDS", "CHUNK_BYTES", "ALGORITHM", "MAX_ROWS", "ZARR_ALGORITHM", "changed_since", "decoding_of",
+    "fingerprint_file", "fingerprint_changed", "design_digest",
 ]
 
 CHUNK_BYTES = 1 << 20
@@ -326,10 +326,13 @@ def _size_and_mtime(p: Path) -> tuple[int, int]:
     return int(size), int(max((st.st_mtime_ns for _, st in files), default=p.stat().st_mtime_ns))
 
 
-_BYTE_FIELDS = ("size", "mtime_ns", "mode", "algorithm", "whole", "digest")
+BYTE_FIELDS = ("size", "mtime_ns", "mode", "algorithm", "whole", "digest")
+"""The fields of a fingerprint that describe the file's bytes (what :func:`changed_since`
+needs of a planned fingerprint, without its decoding)."""
 
 
-def changed_since(path: str | os.PathLike[str], planned: Mapping[str, Any] | None) -> str | None:
+def changed_since(path: str | os.PathLike[str], planned: Mapping[str, Any] | None,
+                  spec: Any = None) -> str | None:
     """How the input at ``path`` changed since its fingerprint ``planned`` was taken, or
     ``None`` when it did not: a run checks this before marking outputs complete, so that an
     input rewritten while the run read it (a recorder still writing it, an earlier job's
@@ -339,10 +342,22 @@ def changed_since(path: str | os.PathLike[str], planned: Mapping[str, Any] | Non
     fingerprinted again only when the size is the same and the modification time is not,
     and then compared by :func:`fingerprint_changed`'s rules (so a ``touch`` of a file whose
     digest covers every byte is no change).
+
+    A file that decodes through a sidecar (``sidecar`` in ``planned``) changes also with it:
+    given the run's ``spec`` (:class:`~twinpass.io.readers.base.ReaderSpec`), the file is
+    opened as its sidecar reads now (:meth:`~twinpass.io.readers.base.ReaderSpec.as_found`)
+    and how it decodes is compared with ``planned["decoding"]``, the fields that differ named.
     """
     if not planned or "size" not in planned or "mtime_ns" not in planned:
         return None
-    p = Path(path)
+    how = _bytes_changed(Path(path), planned)
+    if how is None and spec is not None and planned.get("sidecar") and isinstance(planned.get("decoding"), Mapping):
+        how = _sidecar_changed(spec, planned)
+    return how
+
+
+def _bytes_changed(p: Path, planned: Mapping[str, Any]) -> str | None:
+    """How the bytes of ``p`` changed since ``planned`` (see :func:`changed_since`), or ``None``."""
     try:
         size, mtime_ns = _size_and_mtime(p)
     except OSError as e:
@@ -355,8 +370,23 @@ def changed_since(path: str | os.PathLike[str], planned: Mapping[str, Any] | Non
         now = fingerprint_file(p, str(planned.get("mode", "fast")))
     except InputError as e:
         return str(e)
-    changed, why = fingerprint_changed({k: planned[k] for k in _BYTE_FIELDS if k in planned},
-                                       {k: now[k] for k in _BYTE_FIELDS if k in now})
+    changed, why = fingerprint_changed({k: planned[k] for k in BYTE_FIELDS if k in planned},
+                                       {k: now[k] for k in BYTE_FIELDS if k in now})
+    return why if changed else None
+
+
+def _sidecar_changed(spec: Any, planned: Mapping[str, Any]) -> str | None:
+    """How the decoding of the file of ``spec``, opened as its sidecar reads now, differs from
+    ``planned["decoding"]`` (the sidecar named), or ``None``."""
+    side = planned["sidecar"]
+    try:
+        with spec.as_found().open() as rec:
+            info = rec.info
+    except TwinpassError as e:
+        return f"its sidecar {side} no longer reads as when the run planned the file: {e}"
+    bytes_alike = {k: planned[k] for k in BYTE_FIELDS if k in planned}
+    changed, why = fingerprint_changed({**bytes_alike, "decoding": planned["decoding"], "sidecar": side},
+                                       {**bytes_alike, "decoding": decoding_of(info), "sidecar": side})
     return why if changed else None
 
 

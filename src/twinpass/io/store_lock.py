@@ -119,11 +119,11 @@ class LocalLockFile:
         return LocalLockFile(self.root, self.path.name + suffix)
 
     def create(self, data: bytes) -> bool:
-        try:
-            with write_errors(f"the lock file {self.path}"):  # a read-only file system: a StoreError
+        with write_errors(f"the lock file {self.path}"):  # a read-only file system: a StoreError
+            try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-        except FileExistsError:
-            return False
+            except FileExistsError:
+                return False
         try:
             with write_errors(f"the lock file {self.path}"):
                 with os.fdopen(fd, "wb") as f:

@@ -15,6 +15,7 @@ import datetime as _dt
 import math
 import operator
 import os
+import re
 import stat
 import threading
 from collections.abc import Mapping
@@ -80,6 +81,26 @@ HEADER_REWRITE = "rewrite its header with the real sizes"
 """The start of the WAV reader's remedy for a data chunk whose size field says 0 while frames
 follow it (after "; "); discovery makes it the remedy."""
 WRAPPED_REWRITE = "Rewrite the file as RF64 (or W64)"
+
+
+TIME_MAJOR = "store it time-major, shape (samples, channels): transpose it"
+"""What to do with a 2-D array stored channel-major, (channels, samples): the remedy that
+discovery gives for an array with more channels than ``[archive] max_channels`` and than samples."""
+
+
+def channel_major_note(shape: tuple[int, ...]) -> str | None:
+    """The note for a 2-D array of ``shape`` with more channels than samples, or ``None``.
+
+    Arrays are time-major, shape (samples, channels): one with more channels than samples
+    was most likely stored channel-major by mistake. A short file of a stream (one frame of
+    eight channels) is that shape too, so this is a note, not an error.
+    """
+    if len(shape) != 2 or int(shape[1]) <= int(shape[0]):
+        return None
+    return (
+        f"shape {tuple(int(d) for d in shape)} has more channels than samples; arrays must be time-major "
+        "(samples, channels): transpose it if it is channel-major"
+    )
 
 
 READABLE = "readable by the user running twinpass"
@@ -161,11 +182,22 @@ def resolve_rate(path: str, stored: float | None, source: str, option: float | N
     return stored
 
 
+_YEAR_ZERO = re.compile(r"year 0 is out of range")
+"""How :meth:`datetime.datetime.fromisoformat` refuses a well-formed time of year 0."""
+
+
 def parse_time(value: Any, where: str) -> _dt.datetime:
     """ISO 8601 text (or a datetime/date) as a timezone-aware UTC datetime.
 
-    Times without a zone are taken as UTC.
+    Times without a zone are taken as UTC. A time that is well formed but outside the years
+    1 to 9999 in UTC (:class:`datetime.datetime`'s range) is refused as out of range.
     """
+
+    def out_of_range(side: str) -> CorruptInputError:
+        return CorruptInputError(
+            f"{where}: start_time {value!r} is {side}, outside the times twinpass can hold (years 1 to 9999)"
+        )
+
     try:
         if isinstance(value, _dt.datetime):
             t = value
@@ -175,12 +207,17 @@ def parse_time(value: Any, where: str) -> _dt.datetime:
             t = _dt.datetime.fromisoformat(value.strip())
         else:
             raise TypeError(f"expected ISO 8601 text, got {type(value).__name__}")
-        return t.replace(tzinfo=UTC) if t.tzinfo is None else t.astimezone(UTC)
-    except (TypeError, ValueError, OverflowError) as exc:
+    except (TypeError, ValueError) as exc:
+        if _YEAR_ZERO.fullmatch(str(exc)):
+            raise out_of_range("in year 0") from None
         raise CorruptInputError(
             f"{where}: start_time {value!r} is not an ISO 8601 time such as "
             f"'2024-05-01T12:00:00Z' ({exc})"
         ) from None
+    try:
+        return t.replace(tzinfo=UTC) if t.tzinfo is None else t.astimezone(UTC)
+    except OverflowError:  # its offset takes it past year 1 or year 9999
+        raise out_of_range("before year 1 in UTC" if t.year < 5000 else "after year 9999 in UTC") from None
 
 
 # --------------------------------------------------------------------------- samples

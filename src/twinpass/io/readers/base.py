@@ -68,6 +68,15 @@ class ReaderSpec:
 
         return get_reader(self.format).open(self.path, dict(self.options))
 
+    def as_found(self) -> "ReaderSpec":
+        """This spec without the options in which its reader kept what it read beside the file
+        when it first opened it (:attr:`Reader.snapshot_options`, e.g. a raw file's sidecar):
+        it opens the file as the files read now, to tell whether they changed since."""
+        from .registry import get_reader
+
+        kept = frozenset(getattr(get_reader(self.format), "snapshot_options", ()))
+        return ReaderSpec(self.format, self.path, tuple((k, v) for k, v in self.options if k not in kept))
+
 
 def _reopen(spec: ReaderSpec) -> "Recording":
     return spec.open()
@@ -120,6 +129,10 @@ class Reader(abc.ABC):
     """File name endings this reader claims, lower case with the dot, e.g. ``(".wav",)``."""
     options: ClassVar[tuple[str, ...]] = ()
     """Option keys :meth:`open` accepts; any other key raises :class:`~twinpass.errors.ConfigError`."""
+    snapshot_options: ClassVar[tuple[str, ...]] = ()
+    """Options among :attr:`options` in which :meth:`open` keeps, in the recording's spec, what
+    it read beside the file (a raw file's sidecar), so that every reopening from the spec
+    decodes the file as the first opening did (:meth:`ReaderSpec.as_found` drops them)."""
 
     def guess_can_open(self, path: str) -> bool:
         """Cheap test on the name (and at most the first bytes) of ``path``."""

@@ -18,6 +18,7 @@ claims is an error, or with ``"warn"`` ends at the last whole frame (with a warn
 
 from __future__ import annotations
 
+import ast
 import functools
 import io
 import threading
@@ -32,7 +33,9 @@ from ._common import (
     Codec,
     FileReader,
     InterleavedRecording,
+    channel_major_note,
     option_rate,
+    pread,
     truncated_mode,
 )
 from .base import ReaderSpec, RecordingInfo
@@ -95,6 +98,61 @@ def _parse_header_from(fh: BinaryIO, version: tuple[int, int]) -> tuple[tuple[in
     raise AssertionError("unreachable")  # pragma: no cover
 
 
+_LITERAL_NODES = (ast.Expression, ast.Dict, ast.Tuple, ast.List, ast.Constant, ast.UnaryOp, ast.USub, ast.UAdd,
+                  ast.Load)
+"""The syntax of a header numpy writes: a dict of quoted strings, numbers, booleans and tuples."""
+
+
+def header_damage(fh: BinaryIO, version: tuple[int, int], exc: Exception) -> str:
+    """What is wrong with the header numpy refused (``exc``), after "the NPY header": where its
+    text lies and, when that text is not the dict literal numpy writes, the byte of the first
+    fault and what it is (numpy's own message then shows parser objects, not places), else
+    numpy's message."""
+    start = 10 if version == (1, 0) else 12  # magic (6), version (2), header length (2 or 4 bytes)
+    raw = pread(fh, 8, start - 8)
+    n = int.from_bytes(raw, "little") if len(raw) == start - 8 else -1
+    if not 0 <= n <= _HEADER_BYTES_MAX:
+        return f"is damaged ({exc})"
+    blob = pread(fh, start, n)
+    head = f"({n} bytes of text from byte {start})"
+    if len(blob) < n:
+        return f"{head} is cut short: the file ends at byte {start + len(blob)}"
+    try:
+        with _HEADER_LOCK:  # Python's parser, as numpy's: one thread at a time (see _HEADER_LOCK)
+            fault = _literal_fault(blob.decode("latin-1"))
+    except Exception:  # pragma: no cover - the account is a courtesy; numpy's message stays
+        fault = None
+    if fault is None:
+        return f"{head} is damaged: {exc}"
+    at, why = fault
+    return (f"{head} is damaged at byte {start + at}: {why}; it must be the Python dict literal numpy writes, "
+            "of quoted strings, numbers, True/False and tuples")
+
+
+def _literal_fault(text: str) -> tuple[int, str] | None:
+    """(character offset, what is wrong) of the first fault that keeps ``text`` from being a
+    literal of the kinds numpy writes in a header, or ``None`` when it is one."""
+    starts = [0]
+    for line in text.splitlines(keepends=True):
+        starts.append(starts[-1] + len(line))
+
+    def offset(lineno: int, col: int) -> int:  # col: UTF-8 bytes into the line, as ast counts
+        line = text[starts[lineno - 1]:starts[lineno]] if lineno <= len(starts) - 1 else ""
+        return starts[lineno - 1] + len(line.encode("utf-8")[:col].decode("utf-8", "ignore"))
+
+    try:
+        tree = ast.parse(text, mode="eval")
+    except SyntaxError as e:
+        line = max(1, e.lineno or 1)
+        return starts[min(line, len(starts)) - 1] + max(0, (e.offset or 1) - 1), f"invalid syntax ({e.msg})"
+    odd = [node for node in ast.walk(tree) if not isinstance(node, _LITERAL_NODES)]
+    if not odd:
+        return None
+    node = min(odd, key=lambda nd: (nd.lineno, nd.col_offset))
+    what = ast.get_source_segment(text, node) or type(node).__name__
+    return offset(node.lineno, node.col_offset), f"{what!r} is not a literal value"
+
+
 class NpyRecording(InterleavedRecording):
     """An open ``.npy`` file; Fortran-order arrays are read one channel column at a time."""
 
@@ -132,7 +190,9 @@ class NpyReader(FileReader):
         try:
             shape, fortran, dtype = read_header(fh, version)
         except Exception as exc:  # numpy's parser leaks ValueError, SyntaxError, tokenize.TokenError...
-            raise CorruptInputError(f"{path}: the NPY header is damaged ({exc})", path=path) from None
+            raise CorruptInputError(
+                f"{path}: the NPY header {header_damage(fh, version, exc)}", path=path
+            ) from None
         offset = fh.tell()
         if dtype.hasobject:
             raise UnsupportedFormatError(f"{path}: NPY arrays of Python objects are not supported", path=path)
@@ -167,11 +227,8 @@ class NpyReader(FileReader):
             warnings.append(f"{what}; read up to the last whole frame ({present})")
         if frames == 0:
             raise CorruptInputError(f"{path}: array of shape {shape} holds no frames", path=path)
-        if len(shape) == 2 and channels > stored:
-            warnings.append(
-                f"shape {shape} has more channels than samples; arrays must be time-major "
-                "(samples, channels): transpose it if it is channel-major"
-            )
+        if (note := channel_major_note(shape)) is not None:
+            warnings.append(note)
         info = RecordingInfo(
             path=path,
             format=self.name,

@@ -2,7 +2,8 @@
 
 The sidecar sits next to the data file: ``<file>.toml`` or ``<file>.json`` (e.g.
 ``run1.bin.toml``), or the same name with the suffix replaced (``run1.toml``); the reader
-option ``sidecar`` names one explicitly. Exactly one candidate may exist. Keys:
+option ``sidecar`` names one explicitly. Exactly one candidate may exist. It is UTF-8 text (a
+byte-order mark at its start is skipped). Keys:
 
 =================  ========  ====================================================
 key                required  meaning
@@ -16,7 +17,7 @@ key                required  meaning
 ``sample_rate_hz`` no        Hz; else the ``sample_rate_hz`` option, else unknown
 ``header_bytes``   no        bytes to skip at the start of the file (default 0)
 ``start_time``     no        ISO 8601 time of the first sample (no zone = UTC)
-``gain``           no        ``y = x_scaled * gain + offset`` (default 1)
+``gain``           no        ``y = x_scaled * gain + offset`` (default 1; not 0)
 ``offset``         no        (default 0)
 ``frames``         no        expected frame count, checked against the file size
 ``channel_names``  no        one name per channel (distinct, not empty), e.g.
@@ -29,6 +30,11 @@ key                required  meaning
 ``[archive.channels]``); they do not change how the file decodes, so editing them
 refilters nothing, and a mistake in them (a count other than ``channels``, an empty or
 repeated name) is a warning: the file is read as usual without the sidecar's labels.
+
+The sidecar is read when the file is opened. The recording's spec keeps the bytes it read
+(the option ``sidecar_as_read``, set by the reader: the sidecar's path and bytes), so a file
+reopened from its spec, in any process, decodes as when it was first opened even if the
+sidecar has been edited since; a spec's ``as_found()`` drops them, and reads the sidecar again.
 
 ``x_scaled`` follows the usual convention: signed integers ``v / 2**(bits - 1)``,
 unsigned ``(v - 2**(bits - 1)) / 2**(bits - 1)``, floats as stored.
@@ -44,7 +50,7 @@ from typing import Any, BinaryIO
 
 import numpy as np
 
-from ...errors import CorruptInputError, InputError, UnsupportedFormatError
+from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
 from ._common import (
     READABLE,
     Codec,
@@ -72,7 +78,13 @@ SIDECAR_KEYS = (
     "units",
 )
 _SIDECAR_MAX_BYTES = 1 << 20
-_EXAMPLE = 'dtype = "int16"\nchannels = 2\nsample_rate_hz = 1000.0'
+_EXAMPLE = 'dtype = "int16", channels = 2, sample_rate_hz = 1000.0'
+"""The keys a sidecar needs, written inline for a one-line message (one key per line in the file)."""
+
+
+def _fix_sidecar(side: str) -> str:
+    """The remedy of a reader error whose fix is in the sidecar ``side``."""
+    return f"correct its sidecar {side}"
 
 
 def sidecar_candidates(path: str) -> list[str]:
@@ -96,48 +108,72 @@ def _find_sidecar(path: str, explicit: Any) -> str:
     cands = sidecar_candidates(path)
     found = [c for c in cands if os.path.isfile(c)]
     if not found:
+        remedy = f"write its sidecar {cands[0]}, one key per line, e.g. {_EXAMPLE}"
         raise CorruptInputError(
             f"{path}: raw data needs a sidecar describing it; none found (looked for "
-            f"{', '.join(cands)}). Write {cands[0]} such as:\n{_EXAMPLE}",
+            f"{', '.join(cands)}); {remedy}",
             path=path,
+            remedy=remedy,
         )
     if len(found) > 1:
+        remedy = "keep exactly one of its sidecars (delete or rename the others)"
         raise CorruptInputError(
-            f"{path}: several sidecars found ({', '.join(found)}); keep exactly one", path=path
+            f"{path}: several sidecars found ({', '.join(found)}); {remedy}", path=path, remedy=remedy
         )
     return found[0]
 
 
-def _load_sidecar(path: str, side: str) -> dict[str, Any]:
+def _read_sidecar(path: str, side: str) -> bytes:
+    """The bytes of the sidecar ``side`` of ``path`` (at most 1 MiB and one byte, to tell a
+    larger one)."""
     try:
         with open(side, "rb") as f:
-            text = f.read(_SIDECAR_MAX_BYTES + 1)
+            return f.read(_SIDECAR_MAX_BYTES + 1)
     except PermissionError as exc:
         raise InputError(
             f"{path}: cannot read its sidecar {side} ({exc.strerror or exc}); make the sidecar {READABLE}", path=path
         ) from None
     except OSError as exc:
         raise CorruptInputError(f"{path}: cannot read its sidecar {side} ({exc})", path=path) from None
+
+
+def _as_read(path: str, value: Any) -> tuple[str, bytes]:
+    """The option ``sidecar_as_read``: (the sidecar's path, its bytes)."""
+    if (not isinstance(value, (tuple, list)) or len(value) != 2 or not isinstance(value[0], str)
+            or not isinstance(value[1], bytes)):
+        raise ConfigError(f"{path}: option sidecar_as_read must be (the sidecar's path, its bytes), as the "
+                          f"reader sets it in a recording's spec; got {type(value).__name__}")
+    return normalize_path(value[0]), value[1]
+
+
+def _load_sidecar(path: str, side: str, text: bytes) -> dict[str, Any]:
     if len(text) > _SIDECAR_MAX_BYTES:
-        raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB", path=path)
-    try:
+        raise CorruptInputError(f"{path}: its sidecar {side} is larger than 1 MiB; {_fix_sidecar(side)}", path=path,
+                                remedy=_fix_sidecar(side))
+    try:  # UTF-8; a byte-order mark that some editors write first is not part of the text
         if side.lower().endswith(".json"):
-            doc = json.loads(text.decode("utf-8"))
+            doc = json.loads(text.decode("utf-8-sig"))
         else:
-            doc = tomllib.loads(text.decode("utf-8"))
+            doc = tomllib.loads(text.decode("utf-8-sig"))
     except (ValueError, UnicodeDecodeError, RecursionError) as exc:
-        raise CorruptInputError(f"{path}: its sidecar {side} cannot be parsed: {exc}", path=path) from None
+        raise CorruptInputError(
+            f"{path}: its sidecar {side} cannot be parsed: {exc}; {_fix_sidecar(side)}", path=path,
+            remedy=_fix_sidecar(side),
+        ) from None
     if not isinstance(doc, dict):
         raise CorruptInputError(
-            f"{path}: its sidecar {side} must hold a table/object of keys, not {type(doc).__name__}",
+            f"{path}: its sidecar {side} must hold a table/object of keys, not {type(doc).__name__}; "
+            f"{_fix_sidecar(side)}",
             path=path,
+            remedy=_fix_sidecar(side),
         )
     unknown = sorted(str(k) for k in doc if k not in SIDECAR_KEYS)
     if unknown:
         raise CorruptInputError(
             f"{path}: its sidecar {side} has unknown key(s) {', '.join(map(repr, unknown))}; "
-            f"allowed keys: {', '.join(SIDECAR_KEYS)}",
+            f"allowed keys: {', '.join(SIDECAR_KEYS)}; {_fix_sidecar(side)}",
             path=path,
+            remedy=_fix_sidecar(side),
         )
     return doc
 
@@ -199,6 +235,11 @@ def _codec(doc: dict[str, Any], where: str, path: str) -> Codec:
         )
     gain = _float_key(doc, "gain", 1.0, where)
     offset = _float_key(doc, "offset", 0.0, where)
+    if gain == 0.0:
+        raise CorruptInputError(
+            f"{where}: gain = 0 makes every sample equal to the offset ({offset:g}), leaving no signal to "
+            "filter; set gain to the factor from the stored values to physical units (1 when they need none)"
+        )
     if name.strip().lower() == "int24":
         return Codec("i", 3, order, gain, offset)
     try:
@@ -227,14 +268,20 @@ class RawReader(FileReader):
 
     name = "raw"
     suffixes = (".raw", ".bin", ".dat")
-    options = ("sample_rate_hz", "sidecar")
+    options = ("sample_rate_hz", "sidecar", "sidecar_as_read")
+    snapshot_options = ("sidecar_as_read",)
 
     def _open_file(self, path: str, fh: BinaryIO, size: int, opts: dict[str, Any]) -> InterleavedRecording:
         rate_opt = option_rate(path, opts)
-        side = _find_sidecar(path, opts.get("sidecar"))
-        if opts.get("sidecar") is not None:
-            opts["sidecar"] = side  # absolute, so the spec reopens from any directory
-        doc = _load_sidecar(path, side)
+        if opts.get("sidecar_as_read") is not None:  # reopened from a spec: decoded as when first opened
+            side, text = _as_read(path, opts["sidecar_as_read"])
+        else:
+            side = _find_sidecar(path, opts.get("sidecar"))
+            if opts.get("sidecar") is not None:
+                opts["sidecar"] = side  # absolute, so the spec reopens from any directory
+            text = _read_sidecar(path, side)
+            opts["sidecar_as_read"] = (side, text)
+        doc = _load_sidecar(path, side, text)
         where = f"{path}: sidecar {side}"
         try:
             codec = _codec(doc, where, path)
@@ -251,32 +298,37 @@ class RawReader(FileReader):
                 labels = {}
                 label_warnings = (f"{exc}; the sidecar's channel_names and units are not used until this is "
                                   "corrected (the samples are read as usual)",)
-        except CorruptInputError as exc:
-            exc.path = path
-            raise
+        except InputError as exc:  # a key of the sidecar: the fix is there
+            fix = _fix_sidecar(side)
+            raise type(exc)(f"{exc}; {fix}", path=path, remedy=fix) from None
         rate = resolve_rate(path, rate, f"sidecar {side}", rate_opt)
         frame = codec.itemsize * channels
         payload = size - header
         if payload < 0:
+            fix = f"fix header_bytes in its sidecar {side}"
             raise CorruptInputError(
-                f"{path}: the file has {size} bytes, fewer than header_bytes = {header} in its sidecar "
-                f"{side}; fix header_bytes",
+                f"{path}: the file has {size} bytes, fewer than header_bytes = {header} in its sidecar; {fix}",
                 path=path,
+                remedy=fix,
             )
         frames, rest = divmod(payload, frame)
         if rest:
+            fix = (f"check dtype, channels and header_bytes in its sidecar {side}, or cut the partial frame "
+                   "from the data file")
             raise CorruptInputError(
                 f"{path}: {payload} data bytes (file size {size} - header_bytes {header}) are not a whole "
                 f"number of {frame}-byte frames ({channels} channels x {codec.itemsize} bytes): "
-                f"{frames} frames + {rest} bytes. Check dtype, channels and header_bytes in {side}, "
-                "or cut the partial frame from the data file",
+                f"{frames} frames + {rest} bytes; {fix}",
                 path=path,
+                remedy=fix,
             )
         if expected is not None and expected != frames:
+            fix = f"fix frames (or dtype, channels, header_bytes) in its sidecar {side}"
             raise CorruptInputError(
-                f"{path}: its sidecar {side} declares frames = {expected} but the file holds {frames} "
-                f"frames of {frame} bytes; fix frames (or dtype/channels/header_bytes) in the sidecar",
+                f"{path}: its sidecar declares frames = {expected} but the file holds {frames} "
+                f"frames of {frame} bytes; {fix}",
                 path=path,
+                remedy=fix,
             )
         if frames == 0:
             raise CorruptInputError(

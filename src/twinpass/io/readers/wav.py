@@ -204,7 +204,7 @@ def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout
                 "(a chunk size is wrong or an odd-sized chunk lacks its pad byte)"
             )
             if found_both:
-                lay.warnings.append(msg + "; the rest of the file was ignored")
+                lay.warnings.append(f"{msg}; {_rest_ignored(lay, pos, walk_end)}")
                 break
             raise CorruptInputError(msg, path=path)
         in_ds64 = rid != b"RIFF" and csize == _U32_MAX
@@ -281,6 +281,25 @@ def _walk(path: str, fh: BinaryIO, size: int, wrapped: str = "error") -> _Layout
             path=path,
         )
     return lay
+
+
+def _rest_ignored(lay: _Layout, pos: int, end: int) -> str:
+    """What a walk stopped at byte ``pos`` by an invalid chunk id leaves out, up to byte ``end``
+    (the end of the RIFF chunk or of the file). Right after the data chunk, bytes that are no
+    chunk are most likely samples its size field leaves out: said in whole frames."""
+    rest = end - pos
+    text = f"the rest of the file, {rest} bytes from byte {pos} to byte {end}, was ignored"
+    data_end = lay.data_offset + lay.data_size
+    align = max(lay.block_align, 1)
+    frames = (end - data_end) // align
+    if pos in (data_end, data_end + (lay.data_size & 1)) and frames > 0:
+        field_ = "size in the ds64 chunk" if lay.data_size_at == 28 else "size field"
+        text += (
+            f": it follows the data chunk and holds {frames} whole frames of {align} bytes, left out if they are "
+            f"samples (the data chunk's {field_} at byte {lay.data_size_at} says {lay.data_size} bytes; "
+            f"{lay.data_size + frames * align} would take them in)"
+        )
+    return text
 
 
 def _zero_data_size(path: str, fh: BinaryIO, lay: _Layout, size: int) -> None:

@@ -11,16 +11,18 @@ else unknown) and ``start_time`` (ISO 8601; no zone = UTC). Integer arrays are s
 
 from __future__ import annotations
 
+import json
 import os
 from typing import Any
 
 import numpy as np
 
-from ...errors import ConfigError, CorruptInputError, InputError, UnsupportedFormatError
+from ...errors import ConfigError, CorruptInputError, DamagedInputError, InputError, UnsupportedFormatError
 from ._common import (
     READABLE,
     Codec,
     WindowRecording,
+    channel_major_note,
     check_options,
     is_url,
     normalize_path,
@@ -32,6 +34,8 @@ from ._common import (
 from .base import Reader, ReaderSpec, RecordingInfo
 
 _MARKERS = ("zarr.json", ".zarray", ".zgroup")
+_METADATA = ("zarr.json", ".zarray", ".zattrs")
+"""An array's metadata files: ``zarr.json`` (Zarr format 3), ``.zarray`` and ``.zattrs`` (format 2)."""
 _NAMED = 5
 """Damaged chunks named in an error (the rest are counted)."""
 
@@ -69,12 +73,14 @@ class ZarrRecording(WindowRecording):
 
     def _damage(self, start: int, stop: int, exc: Exception) -> CorruptInputError:
         """The error for frames [start, stop) that failed with ``exc``, naming the chunks (store
-        key and frames; shards, in a sharded array) that fail when read one at a time."""
+        key and frames; shards, in a sharded array) that fail when read one at a time: a
+        :class:`DamagedInputError` when some do, and none of them for an I/O error."""
         a = self._array
         grid = tuple(int(n) for n in (getattr(a, "shards", None) or a.chunks))
         cols = -(-int(a.shape[1]) // grid[1]) if len(grid) == 2 else 1
         bad: list[str] = []
         first: Exception = exc
+        io_error = False
         for row in range(start // grid[0], -(-stop // grid[0])):
             lo, hi = row * grid[0], min((row + 1) * grid[0], self.info.frames)
             for col in range(cols):
@@ -83,6 +89,7 @@ class ZarrRecording(WindowRecording):
                     a[tuple(slice(c * n, (c + 1) * n) for c, n in zip(at, grid))]
                 except Exception as one:
                     first = first if bad else one
+                    io_error = io_error or isinstance(one, OSError)
                     bad.append(f"{a.metadata.encode_chunk_key(at)} (frames {lo}-{hi})")
         if not bad:
             what = "a chunk of the store is damaged"
@@ -90,7 +97,8 @@ class ZarrRecording(WindowRecording):
             more = f" and {len(bad) - _NAMED} more" if len(bad) > _NAMED else ""
             what = (f"chunk {bad[0]} of the store is damaged" if len(bad) == 1
                     else f"chunks {', '.join(bad[:_NAMED])}{more} of the store are damaged")
-        return CorruptInputError(
+        damaged = bool(bad) and not io_error  # chunks that fail again alone, in decoding, not in I/O
+        return (DamagedInputError if damaged else CorruptInputError)(
             f"{self.info.path}: frames [{start}, {stop}) cannot be read: {what} ({type(first).__name__}: {first})",
             path=self.info.path,
         )
@@ -182,6 +190,7 @@ class ZarrReader(Reader):
             sample_format=dtype.name,
             start_time=start,
             full_scale=codec.full_scale,
+            warnings=tuple(n for n in (channel_major_note(shape),) if n is not None),
             extra={"store": store, "array": arr_path, "chunks": tuple(int(c) for c in array.chunks)},
         )
         return ZarrRecording(info, ReaderSpec.create(self.name, store, spec_opts), array, codec)
@@ -208,9 +217,26 @@ class ZarrReader(Reader):
                 f"or with the option array: {listed}",
                 path=store,
             )
+        folder = os.path.join(store, *arr_path.split("/")) if arr_path else store
+        local = not is_url(store)
+        present = [os.path.join(folder, m) for m in _METADATA if local and os.path.isfile(os.path.join(folder, m))]
         missing = (FileNotFoundError, getattr(zarr.errors, "NodeNotFoundError", FileNotFoundError))
         if isinstance(exc, missing):
-            return InputError(f"{shown}: no Zarr array at this location ({exc})", path=store)
+            none = (f"; the folder {folder} holds no zarr.json (nor .zarray, for Zarr format 2)"
+                    if local and not present and os.path.isdir(folder) else "")
+            return InputError(f"{shown}: no Zarr array at this location ({exc}){none}", path=store)
+        for meta in present:
+            try:
+                with open(meta, "rb") as fh:
+                    json.loads(fh.read())
+            except (OSError, ValueError) as bad:
+                fix = f"restore {meta} from a copy, or re-export the array"
+                return CorruptInputError(
+                    f"{shown}: its metadata file {meta} is damaged ({type(bad).__name__}: {bad}); {fix}",
+                    path=store,
+                    remedy=fix,
+                )
+        what = f": its metadata file {present[0]} was refused" if present else ""
         return CorruptInputError(
-            f"{shown}: cannot be opened as a Zarr array ({type(exc).__name__}: {exc})", path=store
+            f"{shown}: cannot be opened as a Zarr array{what} ({type(exc).__name__}: {exc})", path=store
         )
