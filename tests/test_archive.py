@@ -888,8 +888,8 @@ def test_channel_major_arrays_are_left_out_above_the_channel_limit(tmp_path):
     bad = reasons(disc)
     assert set(bad) == {"s/cm.npy", "z/cm.zarr"}
     for rel in bad:
-        assert bad[rel].startswith("2000 channels, more than [archive] max_channels = 1024, and more channels "
-                                   "than its 2 samples"), bad[rel]
+        assert bad[rel].startswith("2000 channels, more than its 2 samples and than [archive] max_channels = "
+                                   "1024: it looks stored channel-major"), bad[rel]
         assert "store it time-major, shape (samples, channels): transpose it" in bad[rel]
         assert "raise [archive] max_channels to 2000" in bad[rel]
     # a limit raised for such a file lets it through, with the reader's note (NPY and Zarr alike)
@@ -915,13 +915,16 @@ def test_a_short_file_of_more_channels_than_samples_within_the_limit_is_filtered
     assert bad == [] and [s.frames for s in segments] == [101]
 
 
-def test_a_wide_file_above_the_channel_limit_is_left_out_naming_the_setting(tmp_path):
+def test_a_file_of_more_samples_than_channels_is_read_whatever_its_channel_count(tmp_path):
+    # Many-channel recordings (sensor arrays of thousands of channels) are time-major with
+    # more samples than channels: the channel limit does not apply to them.
     root = tmp_path / "archive"
     npy(root, "wide.npy", 20, channels=12)
+    npy(root, "tall.npy", 10, channels=12, seed=1)
     disc = discover(job(tmp_path, sample_rate_hz=10.0, max_channels=8))
-    assert reasons(disc) == {"wide.npy": "12 channels, more than [archive] max_channels = 8 | raise [archive] "
-                                         "max_channels to 12 or more if it really holds 12 channels, or leave it "
-                                         "out with [archive] exclude"}
+    assert [f.relpath for f in disc.files] == ["wide.npy"]
+    assert reasons(disc)["tall.npy"].startswith("12 channels, more than its 10 samples and than [archive] "
+                                                "max_channels = 8")
 
 
 def test_an_overlap_names_where_the_start_times_were_read(tmp_path):

@@ -214,3 +214,25 @@ def test_levels_below_the_float32_range_stored_as_zero_are_no_false_alarm(tmp_pa
     peaks = np.asarray(table.figures)[:, 0, list(table.columns).index("peak_out")]
     assert np.any((peaks > 0) & (peaks < 1e-45))  # such blocks exist in this run
     assert _status(cfg)["verified"]["damaged"] == {}
+
+
+def test_a_chunk_failing_its_checksum_is_a_store_error_and_the_report_is_still_written(tmp_path):
+    # Zarr's crc32c codec refuses the chunk; the store says which frames and what to do, and
+    # the report, which reads outputs for its before/after plot, passes over that output.
+    from twinpass.errors import StoreError
+
+    cfg = _filtered(tmp_path, compression="none")
+    for name in ARRAYS:
+        for chunk in (tmp_path / "out.zarr" / name / "c").rglob("*"):
+            if chunk.is_file():
+                raw = bytearray(chunk.read_bytes())
+                raw[9] ^= 0x10
+                chunk.write_bytes(bytes(raw))
+    store = OutputStore.open(cfg.store_location, mode="r")
+    with pytest.raises(StoreError, match=r"frames \[0, 2000\) cannot be read: a chunk file does not match its "
+                                         r"CRC-32C checksum .*twinpass status --verify"):
+        store.read(ARRAYS[0], 0, 2000)
+    out = tmp_path / "r.html"
+    proc = conftest.run_cli(["report", str(tmp_path / "twinpass.toml"), "--output", str(out)], check=False)
+    assert proc.returncode == 0 and "Traceback" not in proc.stderr, proc.stdout + proc.stderr
+    assert out.stat().st_size > 0

@@ -117,8 +117,10 @@ class ArchiveConfig:
     """Plain RIFF WAV over 4 GiB whose 32-bit sizes wrapped (data the last chunk, ending before
     the file): error | read (the data runs to the end of the file)."""
     max_channels: int = 1024
-    """Most channels a recording may have (>= 1); a file with more is left out, most likely a
-    2-D array stored channel-major, (channels, samples), instead of time-major."""
+    """Most channels a recording of fewer samples than channels may have (>= 1); a file with
+    more channels than both is left out, most likely a 2-D array stored channel-major,
+    (channels, samples), instead of time-major. Files of more samples than channels are read
+    whatever their channel count."""
     channels: tuple[StreamChannels, ...] | None = None
     """Channel names and units per stream (``[archive.channels."<stream>"]``, ``"*"`` for every
     stream), written to the outputs' attributes; None when none are given."""

@@ -185,8 +185,6 @@ def warned_line(summary: dict[str, Any]) -> str:
         worst.append(f"passband deviation {summary['passband_dev_db']:+.2f} dB")
     if summary.get("phase_deg") is not None:
         worst.append(f"phase {summary['phase_deg']:+.2g} deg")
-    if summary.get("clipped"):
-        worst.append(f"{summary['clipped']:,} clipped output sample(s)")
     figures = f" (worst of the file: {', '.join(worst)})" if worst else ""
     return (f"{summary.get('blocks_warn')} of {summary.get('blocks')} block(s) graded warn{figures}; "
             "complete all the same: `twinpass status` shows each figure against its limits")

@@ -113,9 +113,9 @@ def _largest_transient(cfg: JobConfig, store: OutputStore, names: list[str]) -> 
             with open_recording(str(src)) as rec:
                 a, z, i, before = _excursion_window(rec, int(span[0]), int(span[1]), ch,
                                                     int(OVERLAY_SECONDS * fs / 2))
+            after = store.read(name, a, z)[:, ch].astype(np.float64)  # a damaged chunk: a StoreError
         except (TwinpassError, OSError):
             continue
-        after = store.read(name, a, z)[:, ch].astype(np.float64)
         t = (np.arange(a, z) - i) / fs
         return {"file": f"{attrs['source']} (channel {ch}, counted from 0; samples {a}-{z - 1}; t = 0 at the "
                         "input's largest excursion from its mean over the window shown)",

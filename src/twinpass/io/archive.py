@@ -92,7 +92,7 @@ Patterns are compiled to one regular expression once per discovery.
 Bad input
 ---------
 Problems of single files never stop discovery: an unreadable or unknown file, a damaged
-header, zero frames, a missing sample rate, more channels than ``[archive] max_channels``
+header, zero frames, a missing sample rate, more channels than samples and than ``[archive] max_channels``
 (most likely a 2-D array stored channel-major), an unparsable start time or one outside the
 years 1 to 9999 once taken to UTC, a path the pattern
 does not match, a second file with the same (stream, start time), a path that cannot name
@@ -892,24 +892,21 @@ def _open_info(cfg: JobConfig, abspath: str, fmt: str | None = None) -> tuple[An
         )
     if not info.sample_rate_hz > 0:
         raise _Bad(f"sample rate {info.sample_rate_hz!r} Hz is not positive", _REMEDY_EXCLUDE)
-    if info.channels > cfg.archive.max_channels:
-        raise _Bad(*_too_many_channels(info, cfg.archive.max_channels))
+    if info.channels > cfg.archive.max_channels and info.channels > info.frames:
+        raise _Bad(*_channel_major(info, cfg.archive.max_channels))
     return info, spec
 
 
-def _too_many_channels(info: Any, limit: int) -> tuple[str, str]:
-    """Reason and remedy for a recording of more channels than ``[archive] max_channels``; one
-    with more channels than samples too is most likely a 2-D array stored channel-major."""
+def _channel_major(info: Any, limit: int) -> tuple[str, str]:
+    """Reason and remedy for a recording of more channels than samples and than ``[archive]
+    max_channels``: most likely a 2-D array stored channel-major."""
     n, frames = int(info.channels), int(info.frames)
-    reason = f"{n} channels, more than [archive] max_channels = {limit}"
-    raise_it = f"raise [archive] max_channels to {n} or more if it really holds {n} channels"
-    if n > frames:
-        return (
-            f"{reason}, and more channels than its {frames} samples: it looks stored channel-major, "
-            "(channels, samples), and would be filtered along the wrong axis",
-            f"{TIME_MAJOR}; or {raise_it}; or leave it out with [archive] exclude",
-        )
-    return reason, f"{raise_it}, or leave it out with [archive] exclude"
+    return (
+        f"{n} channels, more than its {frames} samples and than [archive] max_channels = {limit}: it looks "
+        "stored channel-major, (channels, samples), and would be filtered along the wrong axis",
+        f"{TIME_MAJOR}; or raise [archive] max_channels to {n} or more if it really holds {n} channels; or "
+        "leave it out with [archive] exclude",
+    )
 
 
 def _runs_summary(runs: list[ChannelRun]) -> str:

@@ -543,6 +543,9 @@ def _make_chunk_codec(arr: zarr.Array) -> tuple[Callable[[np.ndarray], Any], Cal
     return (lambda a: checksummed(encode(a))), (lambda b: decode(checksum_body(b, arr.path)))
 
 
+_DAMAGED_CHUNK_REMEDY = ("`twinpass status --verify` names every such chunk; restore the store from a copy, or "
+                         "delete that output's folder in the store and run again")
+
 CHECKSUM_BYTES: int = 4
 """Bytes of the CRC-32C checksum at the end of each chunk file of arrays with the ``crc32c`` codec."""
 
@@ -573,7 +576,7 @@ def checksum_body(raw: Any, where: str) -> memoryview:
     view = memoryview(raw).cast("B")
     if len(view) < CHECKSUM_BYTES or crc32c(view[:-CHECKSUM_BYTES]) != bytes(view[-CHECKSUM_BYTES:]):
         raise StoreError(f"a chunk of {where} does not match its CRC-32C checksum: the chunk file changed after it "
-                         "was written (damaged, truncated or edited); the store is damaged there: rerun with --force")
+                         f"was written (damaged, truncated or edited). {_DAMAGED_CHUNK_REMEDY}")
     return view[:-CHECKSUM_BYTES]
 
 
@@ -1803,7 +1806,13 @@ class OutputStore:
         stop = n if stop is None else stop
         if not 0 <= start <= stop <= n:
             raise StoreError(f"{name}: cannot read frames [{start}, {stop}) of {n}")
-        return np.asarray(arr[start:stop, :])
+        try:
+            return np.asarray(arr[start:stop, :])
+        except ValueError as e:
+            if "checksum" not in str(e):  # Zarr's crc32c codec: "Stored and computed checksum do not match"
+                raise
+            raise StoreError(f"{name}: frames [{start}, {stop}) cannot be read: a chunk file does not match its "
+                             f"CRC-32C checksum (changed since it was written). {_DAMAGED_CHUNK_REMEDY}") from e
 
     def array_attrs(self, name: str) -> dict[str, Any]:
         """The attributes of an output array."""

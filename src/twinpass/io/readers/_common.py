@@ -127,9 +127,10 @@ def check_options(reader: Reader, path: str, options: Mapping[str, Any] | None) 
     opts = dict(options or {})
     unknown = sorted(set(opts) - set(reader.options))
     if unknown:
+        internal = reader.snapshot_options  # set by the reader itself, not by users
         raise ConfigError(
             f"{path}: reader {reader.name!r} does not accept the option(s) {', '.join(map(repr, unknown))}; "
-            f"accepted options: {', '.join(reader.options) or '(none)'}"
+            f"accepted options: {', '.join(o for o in reader.options if o not in internal) or '(none)'}"
         )
     return opts
 
