@@ -495,7 +495,8 @@ def _make_chunk_codec(arr: zarr.Array) -> tuple[Callable[[np.ndarray], Any], Cal
     CRC-32C checksum) with Zarr's default chunk keys; ``None`` for any other chain (Zarr reads
     and writes those itself).
 
-    The encoder takes a whole chunk's values and returns its bytes; the decoder takes the
+    The encoder takes a whole chunk's values and returns its bytes (with a checksum, a tuple
+    of the bytes and the checksum: :func:`checksummed`); the decoder takes the
     bytes of a chunk file and returns the chunk, shape ``arr.chunks``, and raises
     :class:`~twinpass.errors.StoreError` when the chunk's checksum does not match its bytes.
     The Blosc step is numcodecs' ``Blosc`` with the codec's own settings, which is what Zarr
@@ -559,9 +560,16 @@ def crc32c(data: Any) -> bytes:
     return int(google_crc32c.value(np.frombuffer(data, dtype=np.uint8))).to_bytes(CHECKSUM_BYTES, "little")
 
 
-def checksummed(payload: Any) -> bytes:
-    """``payload`` (bytes-like) followed by its CRC-32C checksum."""
-    return bytes(payload) + crc32c(payload)
+def checksummed(payload: Any) -> tuple[Any, bytes]:
+    """``payload`` (bytes-like) and its CRC-32C checksum, the parts of a chunk file in their
+    order (written one after the other: joining them would copy every chunk once more)."""
+    return payload, crc32c(payload)
+
+
+def _write_parts(f: Any, payload: Any) -> None:
+    """Write ``payload`` to the open file ``f``: bytes-like, or a tuple of bytes-like parts."""
+    for part in payload if isinstance(payload, tuple) else (payload,):
+        f.write(part)
 
 
 def checksum_body(raw: Any, where: str) -> memoryview:
@@ -680,7 +688,8 @@ def _data_sync(fd: int) -> None:
 
 
 def _put_file(path: Path, payload: Any, *, sync: bool = False) -> None:
-    """Write ``payload`` (bytes-like) to a temporary file beside ``path``, then rename it into place.
+    """Write ``payload`` (bytes-like, or a tuple of parts) to a temporary file beside ``path``, then rename it
+    into place.
 
     With ``sync``, the data reach the disk before the rename (``fdatasync``), and the folder
     is synced after it (where the system allows), so that the new file's name is durable too.
@@ -691,7 +700,7 @@ def _put_file(path: Path, payload: Any, *, sync: bool = False) -> None:
     tmp = path.with_name(f"{path.name}.{uuid.uuid4().hex}.partial")
     try:
         with open(tmp, "wb") as f:
-            f.write(payload)
+            _write_parts(f, payload)
             if sync:
                 f.flush()
                 _data_sync(f.fileno())
@@ -708,7 +717,8 @@ def _put_file(path: Path, payload: Any, *, sync: bool = False) -> None:
 
 
 def _overwrite_file(path: Path, payload: Any, *, sync: bool = True) -> None:
-    """Write ``payload`` (bytes-like) over the file at ``path`` in place (created if missing).
+    """Write ``payload`` (bytes-like, or a tuple of parts) over the file at ``path`` in place (created if
+    missing).
 
     For the chunks of a block being computed: its status in the block table is pending and
     its file is marked incomplete while it is written, and it is recorded done only after
@@ -739,7 +749,7 @@ def _overwrite_file(path: Path, payload: Any, *, sync: bool = True) -> None:
         return
     with os.fdopen(fd, "wb") as f:
         if os.fstat(fd).st_nlink == 1:
-            f.write(payload)
+            _write_parts(f, payload)
             f.truncate()  # a shorter chunk than the file held
             if sync:  # durable before the block is recorded
                 f.flush()
