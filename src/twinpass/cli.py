@@ -501,7 +501,8 @@ status`` names them all)."""
 def _print_failed(reasons: dict[str, str]) -> None:
     """The run's failed files (path -> reason), one line a reason: ``failed: PATH: REASON``,
     or the first :data:`FAILED_NAMED` paths and a count of the rest when several failed alike."""
-    from .status import failure_groups, named_list
+    from .core.text import named_list
+    from .status import failure_groups
 
     for paths, reason in failure_groups(reasons):
         shown = paths[0] if len(paths) == 1 else f"{named_list(paths, FAILED_NAMED)} ({len(paths)} files)"

@@ -20,7 +20,8 @@ from .errors import TwinpassError
 from .io.readers.registry import open_recording
 from .io.store import OutputStore
 from .report import DEFAULT_CAUTIONS, largest_excursion, render_report
-from .status import (LISTED, collect_status, design_limits, error_groups, failure_groups, named_list, parse_spec,
+from .core.text import named_list
+from .status import (LISTED, collect_status, design_limits, error_groups, failure_groups, parse_spec,
                      root_spec, run_checks, stored_design, usable_filter)
 
 OVERLAY_SECONDS = 4.0

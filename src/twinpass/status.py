@@ -18,6 +18,7 @@ from .core import checks as _checks
 from .core.types import UNRECORDED_KIND, Design, ResponseSpec
 from .core.blocks import block_list
 from .core.failures import SHOWN
+from .core.text import named_list
 from .errors import CONFIG_FAILED, StoreError, TwinpassError
 from .io.store_input import gone_since
 from .io.store_util import RESERVED_PREFIX as RESERVED
@@ -243,13 +244,6 @@ def collect_status(store: OutputStore, checks: ChecksConfig | None = None) -> di
 
 RETRIED_SHOWN = 3
 """Files :func:`retried_line` names (the rest are counted)."""
-
-
-def named_list(items: Sequence[str], shown: int, noun: str = "") -> str:
-    """The first ``shown`` of ``items`` and a count of the rest: ``"a, b, c and 5 more"``
-    (``noun``, e.g. ``" file(s)"``, follows the count)."""
-    more = len(items) - shown
-    return ", ".join(items[:shown]) + (f" and {more} more{noun}" if more > 0 else "")
 
 
 def failure_groups(failed: Mapping[str, str]) -> list[tuple[list[str], str]]:

@@ -163,6 +163,7 @@ from twinpass.core.nonfinite import (
 )
 from twinpass.core.blocks import samples_text
 from twinpass.core.segments import FileEntry, InvalidFile, Segment, build_segments
+from twinpass.core.text import named_list
 from twinpass.errors import ArchiveError, ConfigError, InputError, TwinpassError
 from twinpass.io.channels import LabelMismatch, labels_for
 from twinpass.io.fingerprint import fingerprint_changed, fingerprint_file
@@ -483,7 +484,7 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
                 arrays[ident] = (folder, name)
                 picked += 1
         if orphans:
-            shown = ", ".join(orphans[:3]) + (f" and {len(orphans) - 3} more" if len(orphans) > 3 else "")
+            shown = named_list(orphans, 3)
             notes.append(
                 f"{len(orphans)} array(s) of the output store {folder} are kept outputs of inputs the earlier job "
                 f"no longer has (attribute {INPUT_GONE}: deleted, renamed, moved or excluded there), so they are not "
@@ -589,7 +590,7 @@ def walk_archive(cfg: JobConfig) -> ArchiveListing:
     taken = [*found, *(b.path for b in refused)]
     empty = [_shown(d) for d in folders if not any(p.startswith(f"{d}/") for p in taken)]
     if empty:
-        shown = ", ".join(f"{d}/" for d in empty[:5]) + (f" and {len(empty) - 5} more" if len(empty) > 5 else "")
+        shown = named_list([f"{d}/" for d in empty], 5)
         notes.append(
             f"{len(empty)} folder(s) named like recordings match [archive] include but hold no file it selects: "
             f"{shown}; a recording is a file (only a Zarr array is a folder), so they were not read: put the "
@@ -612,7 +613,7 @@ def _suffix_aliases() -> dict[str, tuple[str, ...]]:
 
 def _suffix_note(names: list[str]) -> str:
     """The note for files that [archive] include selects but for a suffix their reader accepts too."""
-    shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+    shown = named_list(names, 5)
     return (
         f"{len(names)} file(s) have a suffix that their reader accepts as well as the one [archive] include "
         f"selects, but were not selected: {shown}; add patterns for them (e.g. {_case_globs(names)}) to include them"
@@ -1167,8 +1168,7 @@ def _unordered_note(entries: Sequence[FileEntry]) -> list[str]:
     alone = [e.relpath for e in entries if e.start_time is None and e.stream == e.relpath]
     if len(alone) < 2:
         return []
-    named = ", ".join(alone[:UNORDERED_NAMED]) + (f" and {len(alone) - UNORDERED_NAMED} more"
-                                                  if len(alone) > UNORDERED_NAMED else "")
+    named = named_list(alone, UNORDERED_NAMED)
     return [f"{len(alone)} files have no start time ({named}): [archive] name_pattern and manifest are not set and "
             "the files store none, so each is a stream and a segment of its own, filtered alone with edge zones at "
             "both of its ends; to join files that follow each other without a gap into one segment, set [archive] "
@@ -1242,7 +1242,7 @@ def _finished_array_attrs(where: tuple[str, str]) -> dict[str, Any]:
         )
     lost = absent_chunk_frames(os.path.join(folder, array))
     if lost:
-        shown = ", ".join(f"[{a}, {b})" for a, b in lost[:5]) + (f" and {len(lost) - 5} more" if len(lost) > 5 else "")
+        shown = named_list([f"[{a}, {b})" for a, b in lost], 5)
         raise _Bad(
             f"array {array} of the output store {folder} is marked complete but the chunk files of frames {shown} "
             "are missing or empty (deleted or lost since the earlier job wrote them): they would read as its fill "
@@ -1541,7 +1541,7 @@ def discover(
     entries: list[FileEntry] = []
     warnings: list[str] = list(listing.notes)
     if case_only:
-        shown = ", ".join(case_only[:5]) + (f" and {len(case_only) - 5} more" if len(case_only) > 5 else "")
+        shown = named_list(case_only, 5)
         warnings.append(
             f"{len(case_only)} file(s) match [archive] include but for the letter case and were not selected: "
             f"{shown}; globs match case exactly: add patterns for them (e.g. {_case_globs(case_only)}) to "
