@@ -74,7 +74,7 @@ class ReaderSpec:
         it opens the file as the files read now, to tell whether they changed since."""
         from .registry import get_reader
 
-        kept = frozenset(getattr(get_reader(self.format), "snapshot_options", ()))
+        kept = frozenset(get_reader(self.format).snapshot_options)
         return ReaderSpec(self.format, self.path, tuple((k, v) for k, v in self.options if k not in kept))
 
 
